@@ -55,7 +55,7 @@ class Problem:
             loc += f" line {self.where}" if isinstance(self.where, int) else f" {self.where}"
         if self.field:
             loc += f": {self.field}"
-        return f"{loc}: {self.why}" if self.field else f"{loc}: {self.why}"
+        return f"{loc}: {self.why}"
 
 
 class InventoryError(Exception):

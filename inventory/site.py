@@ -758,9 +758,13 @@ class _Loader:
             return None
         posed = {}
         if stations is not None:
+            pose_cols = ["x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"]
             for row in stations.itertuples():
-                if row.x is not None and not pd.isna(row.x):
+                values = [getattr(row, c) for c in pose_cols]
+                if all(v is not None and not pd.isna(v) for v in values):
                     posed[row.file] = row
+                elif any(v is not None and not pd.isna(v) for v in values):
+                    posed[row.file] = None  # a partial pose, already reported
         readable = []
         extents = []
         points = 0
@@ -773,7 +777,8 @@ class _Loader:
             points += info.point_count
             if path.name in posed:
                 row = posed[path.name]
-                extents.append(_posed_extent(info.bounds, row))
+                if row is not None:
+                    extents.append(_posed_extent(info.bounds, row))
                 continue
             crs_text = info.crs_wkt
             if crs_text is None:
