@@ -1,0 +1,356 @@
+"""The one-page close report ``report-<period>.html``: self-contained, images embedded.
+
+Contents: the headline figures, a shaded-relief map of the survey surface with each pile's
+footprint coloured by its variance in % of book (a diverging scheme of our own: deficit in
+slate blue, surplus in rust, neutral in pale stone; its legend is the colour bar), a bar
+chart of variance in tonnes with 2-sigma bars and the tolerance marked, the pile table, the
+scale diagnostics, the movements summary, the duplicates and the cautions.
+
+Figures are drawn with matplotlib (Agg) and embedded as base64 PNG, so the file opens with
+no network and no companion files.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+from pathlib import Path
+from typing import Any, Iterable
+
+import numpy as np
+import pandas as pd
+
+from ..results import CloseResult
+from ._atomic import atomic_path
+from .workbook import CAUTIONS, SIGN_CONVENTION
+
+__all__ = ["write_report", "variance_colormap", "VARIANCE_COLORS"]
+
+#: Our diverging scheme for variance %: deficit (survey below book) -> neutral -> surplus.
+VARIANCE_COLORS = ("#24466b", "#5f86a8", "#eae6dc", "#c98a5a", "#8c3b1c")
+
+#: Sun position for the hillshade: the cartographic convention (light from the north-west,
+#: 45 degrees up) so relief reads the right way round (common practice).
+_AZIMUTH_DEG = 315.0
+_ALTITUDE_DEG = 45.0
+
+_DPI = 110
+# PNG metadata left empty so the same close draws byte-identical images
+_PNG_META = {"Software": None}
+
+
+def variance_colormap():
+    """The report's diverging colour map (matplotlib ``LinearSegmentedColormap``)."""
+    from matplotlib.colors import LinearSegmentedColormap
+
+    cmap = LinearSegmentedColormap.from_list("inventory_variance", VARIANCE_COLORS, N=256)
+    cmap.set_bad("#bbbbbb")
+    return cmap
+
+
+def _variance_norm(piles: pd.DataFrame):
+    """Symmetric about zero, wide enough for the largest variance and the tolerances."""
+    from matplotlib.colors import Normalize
+
+    values = np.abs(pd.to_numeric(piles["variance_pct"], errors="coerce").to_numpy(float))
+    tol = pd.to_numeric(piles["tolerance_pct"], errors="coerce").to_numpy(float)
+    span = np.nanmax(np.concatenate([values, tol, [1.0]]))
+    span = float(math.ceil(span)) if np.isfinite(span) else 5.0
+    return Normalize(vmin=-span, vmax=span)
+
+
+def _figure(width: float, height: float):
+    """A figure drawn by Agg without pyplot: no global backend switch, nothing to close."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height))
+    return fig, fig.subplots()
+
+
+def _png(fig) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=_DPI, metadata=_PNG_META, bbox_inches="tight")
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _map_figure(result: CloseResult) -> str:
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.colors import LightSource
+    from matplotlib.patches import PathPatch
+    from matplotlib.path import Path as MplPath
+
+    surface = result.surface
+    grid = surface.grid
+    z = np.asarray(surface.z, dtype=float)
+    valid = np.isfinite(z)
+    fig, ax = _figure(8.0, 8.0 * grid.nrows / max(grid.ncols, 1) + 0.8)
+    extent = (grid.west, grid.east, grid.south, grid.north)
+    if valid.any():
+        zf = np.where(valid, z, np.nanmin(z))
+        ls = LightSource(azdeg=_AZIMUTH_DEG, altdeg=_ALTITUDE_DEG)
+        shade = ls.hillshade(zf, vert_exag=2.0, dx=grid.cell, dy=grid.cell)
+        shade = np.ma.masked_where(~valid, shade)
+        ax.imshow(shade, cmap="gray", extent=extent, origin="upper", vmin=0, vmax=1,
+                  interpolation="nearest")
+    cmap = variance_colormap()
+    norm = _variance_norm(result.piles)
+    piles = result.piles.set_index("pile_id")
+    for pid, geom in zip(result.footprints["pile_id"], result.footprints.geometry):
+        pct = piles["variance_pct"].get(pid, np.nan) if pid in piles.index else np.nan
+        colour = cmap(norm(pct)) if pct is not None and np.isfinite(pct) else cmap(np.nan)
+        oot = bool(piles["out_of_tolerance"].get(pid, False)) if pid in piles.index else False
+        for poly in getattr(geom, "geoms", [geom]):
+            verts, codes = [], []
+            for ring in [poly.exterior, *poly.interiors]:
+                xy = np.asarray(ring.coords)
+                verts.extend(xy.tolist())
+                codes.extend([MplPath.MOVETO] + [MplPath.LINETO] * (len(xy) - 2)
+                             + [MplPath.CLOSEPOLY])
+            patch = PathPatch(MplPath(verts, codes), facecolor=colour, alpha=0.65,
+                              edgecolor="black", linewidth=2.2 if oot else 0.8,
+                              linestyle="-" if oot else "--")
+            ax.add_patch(patch)
+        c = geom.representative_point()
+        ax.annotate(str(pid), (c.x, c.y), ha="center", va="center", fontsize=8,
+                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.8))
+    if result.coverage_gaps is not None and len(result.coverage_gaps):
+        for geom in result.coverage_gaps.geometry:
+            for poly in getattr(geom, "geoms", [geom]):
+                xy = np.asarray(poly.exterior.coords)
+                ax.plot(xy[:, 0], xy[:, 1], color="#6a1b9a", linewidth=1.0)
+    sm = ScalarMappable(norm=norm, cmap=cmap)
+    cbar = fig.colorbar(sm, ax=ax, shrink=0.7, pad=0.02)
+    cbar.set_label("variance, % of book (survey - book)")
+    ax.set_xlim(grid.west, grid.east)
+    ax.set_ylim(grid.south, grid.north)
+    ax.set_aspect("equal")
+    ax.set_xlabel(f"easting (m, {result.crs})")
+    ax.set_ylabel(f"northing (m, {result.crs})")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+    ax.set_title(f"Survey {result.survey_date}: piles by variance "
+                 "(thick outline = out of tolerance, purple = unscanned area)", fontsize=9)
+    return _png(fig)
+
+
+def _bar_figure(result: CloseResult) -> str:
+    p = result.piles
+    n = len(p)
+    fig, ax = _figure(8.0, 1.2 + 0.45 * max(n, 1))
+    cmap = variance_colormap()
+    norm = _variance_norm(p)
+    y = np.arange(n)
+    var = pd.to_numeric(p["variance_t"], errors="coerce").to_numpy(float)
+    sig2 = 2.0 * pd.to_numeric(p["variance_sigma_t"], errors="coerce").to_numpy(float)
+    pct = pd.to_numeric(p["variance_pct"], errors="coerce").to_numpy(float)
+    colours = [cmap(norm(v)) if np.isfinite(v) else cmap(np.nan) for v in pct]
+    ax.barh(y, np.nan_to_num(var), color=colours, edgecolor="black", linewidth=0.5)
+    ax.errorbar(np.nan_to_num(var), y, xerr=np.nan_to_num(sig2), fmt="none", ecolor="black",
+                capsize=3, linewidth=1.0, label="2 sigma")
+    tol_t = (pd.to_numeric(p["tolerance_pct"], errors="coerce").to_numpy(float) / 100.0
+             * np.abs(pd.to_numeric(p["book_t"], errors="coerce").to_numpy(float)))
+    ax.scatter(np.concatenate([tol_t, -tol_t]), np.concatenate([y, y]), marker="|", s=180,
+               color="#444444", label="tolerance")
+    ax.axvline(0.0, color="black", linewidth=0.8)
+    ax.set_yticks(y, [str(v) for v in p["pile_id"]], fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("variance, t (survey - book)")
+    ax.legend(loc="lower right", fontsize=7, frameon=False)
+    ax.set_title("Variance per pile with its 2-sigma uncertainty", fontsize=9)
+    ax.grid(axis="x", linewidth=0.3)
+    return _png(fig)
+
+
+def _num(v: Any, digits: int = 2, signed: bool = False) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return ""
+    if isinstance(v, (bool, np.bool_)):
+        return "yes" if v else "no"
+    if isinstance(v, (int, np.integer)):
+        return f"{int(v):,}"
+    if isinstance(v, (float, np.floating)):
+        f = float(v) + 0.0  # no "-0.00"
+        if round(f, digits) == 0:
+            f = 0.0
+        return f"{f:+,.{digits}f}" if signed else f"{f:,.{digits}f}"
+    return html.escape(str(v))
+
+
+def _table(headers: Iterable[str], rows: Iterable[Iterable[str]],
+           classes: Iterable[str] | None = None) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in headers)
+    body = []
+    cls_iter = iter(classes) if classes is not None else None
+    for row in rows:
+        cls = next(cls_iter, "") if cls_iter is not None else ""
+        attr = f' class="{cls}"' if cls else ""
+        body.append(f"<tr{attr}>" + "".join(f"<td>{c}</td>" for c in row) + "</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def _pile_rows(p: pd.DataFrame) -> tuple[list[list[str]], list[str]]:
+    rows, classes = [], []
+    for r in p.itertuples(index=False):
+        rows.append([
+            html.escape(str(r.pile_id)), html.escape(str(r.material)),
+            _num(r.volume_m3, 1), _num(r.survey_t), _num(r.book_t),
+            _num(r.variance_t, signed=True), _num(r.variance_pct, signed=True),
+            _num(2 * r.variance_sigma_t), _num(r.tolerance_pct),
+            _num(bool(r.significant)), _num(bool(r.out_of_tolerance)),
+            _num(r.adjustment_t, signed=True), _num(r.closing_t),
+            html.escape(str(r.flags or "")),
+        ])
+        classes.append("oot" if r.out_of_tolerance else ("sig" if r.significant else ""))
+    return rows, classes
+
+
+def _movement_summary(mv: pd.DataFrame) -> str:
+    if mv is None or not len(mv):
+        return "<p>No movements this period.</p>"
+    df = mv.copy()
+    df["counted"] = df["counted"].astype(bool)
+    df["tonnes"] = pd.to_numeric(df["tonnes"], errors="coerce")
+    rows = []
+    for kind, g in df.groupby("kind", sort=True):
+        c = g[g["counted"]]
+        rows.append([
+            html.escape(str(kind)), _num(len(g)), _num(int((~g["counted"]).sum())),
+            _num(float(c.loc[c["tonnes"] > 0, "tonnes"].sum())),
+            _num(float(-c.loc[c["tonnes"] < 0, "tonnes"].sum())),
+            _num(float(c["tonnes"].sum()), signed=True),
+            _num(float(c.loc[~c["before_survey"].astype(bool), "tonnes"].sum()), signed=True),
+        ])
+    return _table(["kind", "records", "not counted", "into piles (t)", "out of piles (t)",
+                   "net (t)", "net after the survey (t)"], rows)
+
+
+_CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:24px;color:#1d232a;
+max-width:1100px}
+h1{font-size:1.5em;margin-bottom:0} h2{font-size:1.15em;margin-top:1.6em;
+border-bottom:1px solid #c9ced6}
+.facts{color:#4b5563;margin-top:4px}
+table{border-collapse:collapse;font-size:0.85em;margin:8px 0}
+th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:right}
+th{background:#e8ecf1} td:first-child,th:first-child{text-align:left;white-space:nowrap}
+tr.oot td{background:#f2c4b8} tr.sig td{background:#f7e3ae}
+.legend span{display:inline-block;width:14px;height:14px;border:1px solid #777;
+vertical-align:middle;margin:0 4px 0 14px}
+.caution{background:#fff7e0;border-left:4px solid #c98a5a;padding:8px 12px}
+img{max-width:100%;height:auto}
+.headline td{font-size:1.05em}
+"""
+
+
+def report_html(result: CloseResult) -> str:
+    """The report page as a string (see :func:`write_report`)."""
+    p = result.piles
+    book = float(pd.to_numeric(p["book_t"], errors="coerce").sum())
+    survey = float(pd.to_numeric(p["survey_t"], errors="coerce").sum())
+    var = float(pd.to_numeric(p["variance_t"], errors="coerce").sum())
+    adj = float(pd.to_numeric(p["adjustment_t"], errors="coerce").sum())
+    closing = float(pd.to_numeric(p["closing_t"], errors="coerce").sum())
+    n_oot = int(p["out_of_tolerance"].astype(bool).sum())
+    n_sig = int(p["significant"].astype(bool).sum())
+    pct = 100.0 * var / book if book else float("nan")
+    esc = html.escape
+    headline = _table(["figure", "value"], [
+        ["Book stock at survey (t)", _num(book)],
+        ["Survey stock (t)", _num(survey)],
+        ["Variance, survey - book (t)", _num(var, signed=True)],
+        ["Variance, % of book", _num(pct, signed=True)],
+        ["Adjustments (t)", _num(adj, signed=True)],
+        ["Closing stock (t)", _num(closing)],
+        ["Piles out of tolerance", _num(n_oot)],
+        ["Piles with a significant variance", _num(n_sig)],
+    ])
+    pile_rows, pile_classes = _pile_rows(p)
+    piles_table = _table(
+        ["pile", "material", "volume (m³)", "survey (t)", "book (t)", "variance (t)",
+         "variance (%)", "2 sigma (t)", "tolerance (%)", "significant", "out of tolerance",
+         "adjustment (t)", "closing (t)", "flags"], pile_rows, pile_classes)
+    sd = result.scale_diagnostics
+    if sd is not None and len(sd):
+        scale_rows = [[esc(str(r.scale_id)),
+                       esc(", ".join(map(str, r.piles)) if isinstance(r.piles, (list, tuple))
+                           else str(r.piles)),
+                       _num(r.tonnes), _num(r.bias_pct, signed=True), _num(r.bias_sigma_pct),
+                       _num(bool(r.flagged)), esc(str(r.message or ""))]
+                      for r in sd.itertuples(index=False)]
+        scales = _table(["scale", "piles", "tonnes weighed", "shared bias (%)", "sigma (%)",
+                         "flagged", "message"], scale_rows,
+                        ["oot" if r.flagged else "" for r in sd.itertuples(index=False)])
+    else:
+        scales = "<p>No scale diagnostics for this period.</p>"
+    dup = result.duplicates
+    if dup is not None and len(dup):
+        cols = [c for c in dup.columns]
+        dups = _table(cols, [[esc(str(v)) for v in row]
+                             for row in dup.itertuples(index=False, name=None)])
+    else:
+        dups = "<p>No duplicate records found.</p>"
+    journal = result.journal
+    if journal is not None and len(journal):
+        jt = _table(["pile", "material", "adjustment (t)", "code", "reason"],
+                    [[esc(str(r.pile_id)), esc(str(r.material)), _num(r.adjustment_t, signed=True),
+                      esc(str(r.reason_code)), esc(str(r.reason))]
+                     for r in journal.itertuples(index=False)])
+    else:
+        jt = "<p>No adjustments this period.</p>"
+    cautions = "".join(f"<li>{esc(c)}</li>" for c in CAUTIONS)
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Stock close {esc(result.period)}: {esc(result.site_name)}</title>
+<style>{_CSS}</style></head>
+<body>
+<h1>Stock close {esc(result.period)}: {esc(result.site_name)}</h1>
+<p class="facts">Survey {esc(result.survey_date)} (instant {esc(str(result.survey_instant))}),
+previous survey {esc(result.previous_survey_date or "none")}; CRS {esc(result.crs)};
+time zone {esc(result.timezone)}.</p>
+<p>{esc(SIGN_CONVENTION)}</p>
+{headline}
+<h2>Map</h2>
+<img alt="Shaded relief of the survey surface with piles coloured by variance"
+src="data:image/png;base64,{_map_figure(result)}">
+<h2>Variance and its uncertainty</h2>
+<img alt="Bar chart of variance per pile with 2-sigma bars"
+src="data:image/png;base64,{_bar_figure(result)}">
+<h2>Piles</h2>
+<p class="legend">Row colours:<span style="background:#f2c4b8"></span>out of tolerance
+<span style="background:#f7e3ae"></span>significant (exceeds its combined uncertainty)</p>
+{piles_table}
+<h2>Adjustment journal</h2>
+{jt}
+<h2>Scale diagnostics</h2>
+{scales}
+<h2>Movements</h2>
+{_movement_summary(result.movements)}
+<h2>Duplicates</h2>
+{dups}
+<h2>Cautions</h2>
+<div class="caution"><ul>{cautions}</ul></div>
+</body></html>
+"""
+
+
+def write_report(result: CloseResult, path: str | Path) -> Path:
+    """Write the self-contained HTML report of one close.
+
+    Parameters
+    ----------
+    result : CloseResult
+    path : str or Path
+        Destination ``report-<period>.html``; written beside it, then renamed.
+
+    Returns
+    -------
+    Path
+    """
+    text = report_html(result)
+    dest = Path(path)
+    with atomic_path(dest) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return dest
