@@ -22,6 +22,7 @@ Out-of-tolerance rows are filled red, significant rows amber, by conditional for
 from __future__ import annotations
 
 import math
+import threading
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterable, Mapping
@@ -557,8 +558,48 @@ def write_workbook(result: CloseResult, path: str | Path) -> Path:
     wb.properties.modified = stamp
     dest = Path(path)
     with atomic_path(dest) as tmp:
-        wb.save(tmp)
+        _save(wb, tmp)
     return dest
+
+
+_SAVE_LOCK = threading.Lock()
+
+
+def _exact_number_text(value: Any) -> str:
+    """openpyxl's number text, but round-trip exact: repr() of a float (17 digits at most)."""
+    if isinstance(value, float) and math.isfinite(value):
+        return repr(value)
+    return _openpyxl_safe_string(value)
+
+
+def _openpyxl_safe_string(value: Any) -> str:
+    from openpyxl.compat.strings import safe_string
+
+    return safe_string(value)
+
+
+def _save(wb, path: Path) -> None:
+    """Save with every float written to the last bit.
+
+    openpyxl formats numbers with ``"%.16g"``, which loses the 17th significant digit some
+    doubles need, so the workbook would not hold exactly the ledger's numbers. Excel itself
+    writes up to 17 digits; we swap in ``repr`` for the duration of the save only.
+    """
+    try:
+        from openpyxl.cell import _writer
+    except ImportError:  # pragma: no cover - openpyxl layout changed; tests will notice
+        wb.save(path)
+        return
+    with _SAVE_LOCK:
+        original = getattr(_writer, "safe_string", None)
+        if original is None:  # pragma: no cover
+            wb.save(path)
+            return
+        _writer.safe_string = _exact_number_text
+        try:
+            wb.save(path)
+        finally:
+            _writer.safe_string = original
 
 
 def _stamp(result: CloseResult) -> datetime:
@@ -644,5 +685,5 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
     notes.column_dimensions["B"].width = 40
     dest = Path(path)
     with atomic_path(dest) as tmp:
-        wb.save(tmp)
+        _save(wb, tmp)
     return dest

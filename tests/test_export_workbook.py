@@ -1,0 +1,288 @@
+"""The close workbook: same numbers as the ledger, live formulas, formats, LibreOffice reads it."""
+
+from __future__ import annotations
+
+import csv
+import math
+import shutil
+import subprocess
+from datetime import datetime
+
+import numpy as np
+import pytest
+
+from inventory.export.workbook import (
+    FILL_OUT_OF_TOLERANCE,
+    FILL_SIGNIFICANT,
+    SHEETS,
+    write_history_workbook,
+    write_workbook,
+)
+from inventory.ledger import Ledger
+from inventory.results import PILE_COLUMNS
+from test_export_fake import make_close_result
+
+INPUTS = {"piles.gpkg": "b" * 64}
+
+
+@pytest.fixture
+def result():
+    return make_close_result("2026-01")
+
+
+@pytest.fixture
+def book(result, tmp_path):
+    from openpyxl import load_workbook
+
+    path = write_workbook(result, tmp_path / "variance-2026-01.xlsx")
+    return load_workbook(path), path
+
+
+def _pile_rows(ws, n):
+    header = [c.value for c in ws[1]]
+    rows = [[c.value for c in ws[i]] for i in range(2, 2 + n)]
+    return header, rows
+
+
+def _same(expected, got):
+    """Exact equality; a NaN figure is an empty cell."""
+    if isinstance(expected, (float, np.floating)) and math.isnan(expected):
+        return got is None
+    if isinstance(expected, (bool, np.bool_)):
+        return got is bool(expected)
+    if expected == "" and got is None:
+        return True
+    return expected == got
+
+
+def test_sheets_and_pile_figures_exactly(book, result):
+    wb, _ = book
+    assert tuple(wb.sheetnames) == SHEETS
+    header, rows = _pile_rows(wb["Piles"], len(result.piles))
+    assert header == PILE_COLUMNS
+    for exp, got in zip(result.piles[PILE_COLUMNS].itertuples(index=False), rows):
+        for col, e, g in zip(PILE_COLUMNS, exp, got):
+            assert _same(e, g), (col, e, g)
+
+
+def test_workbook_holds_the_ledger_numbers(result, tmp_path):
+    from openpyxl import load_workbook
+
+    with Ledger(tmp_path / "ledger.sqlite") as led:
+        led.record_close(result, INPUTS, "0.1.0")
+        stored = led.adopted("2026-01")
+    ws = load_workbook(write_workbook(result, tmp_path / "w.xlsx"))["Piles"]
+    _, rows = _pile_rows(ws, len(stored))
+    for exp, got in zip(stored.itertuples(index=False), rows):
+        for col, e, g in zip(PILE_COLUMNS, exp, got):
+            if e is None:
+                e = float("nan") if col not in ("flags",) else ""
+            assert _same(e, g), (col, e, g)
+
+
+def test_totals_are_live_formulas(book, result):
+    wb, _ = book
+    ws = wb["Piles"]
+    n = len(result.piles)
+    total_row = n + 3
+    assert ws.cell(row=total_row, column=1).value == "Total"
+    col = PILE_COLUMNS.index("book_t") + 1
+    from openpyxl.utils import get_column_letter
+
+    L = get_column_letter(col)
+    assert ws.cell(row=total_row, column=col).value == f"=SUM({L}2:{L}{n + 1})"
+    summary = [str(c.value) for row in wb["Summary"].iter_rows() for c in row if c.value]
+    assert any(v.startswith("=Piles!$") for v in summary)
+    assert any(v.startswith("=COUNTIF(Piles!") for v in summary)
+    var = wb["Variance"]
+    assert str(var["O2"].value).startswith("=E2-C2")  # survey - book, re-checkable
+    adj = wb["Adjustments"]
+    assert any(str(c.value).startswith("=SUM(C2:C") for row in adj.iter_rows() for c in row)
+
+
+def test_frozen_headers_filters_and_formats(book, result):
+    wb, _ = book
+    ws = wb["Piles"]
+    assert ws.freeze_panes == "B2"
+    n = len(result.piles)
+    from openpyxl.utils import get_column_letter
+
+    assert ws.auto_filter.ref == f"A1:{get_column_letter(len(PILE_COLUMNS))}{n + 1}"
+    fmt = {h: ws.cell(row=2, column=j + 1).number_format for j, h in enumerate(PILE_COLUMNS)}
+    assert '"t"' in fmt["book_t"] and '"m³"' in fmt["volume_m3"]
+    assert fmt["variance_pct"].startswith("+0.00") and '"%"' in fmt["variance_pct"]
+    assert fmt["scanned_fraction"] == "0.0%"
+    for name in ("Movements", "Variance", "Adjustments", "Scales", "Run"):
+        assert wb[name].freeze_panes in ("A2", "B2"), name
+        assert wb[name].auto_filter.ref, name
+    # widths fit the header at least
+    for j, h in enumerate(PILE_COLUMNS, start=1):
+        assert ws.column_dimensions[get_column_letter(j)].width >= len(h), h
+
+
+def test_rows_are_marked_with_a_legend(book):
+    wb, _ = book
+    rules = [r for rng in wb["Piles"].conditional_formatting for r in rng.rules]
+    fills = {r.dxf.fill.bgColor.rgb for r in rules}
+    assert {FILL_OUT_OF_TOLERANCE, FILL_SIGNIFICANT} <= fills
+    legend = {c.fill.fgColor.rgb for row in wb["Summary"].iter_rows() for c in row
+              if c.value == "row colour"}
+    assert legend == {FILL_OUT_OF_TOLERANCE, FILL_SIGNIFICANT}
+    text = " ".join(str(c.value) for row in wb["Summary"].iter_rows() for c in row if c.value)
+    assert "variance = survey - book" in text
+    assert "licensed surveyors" in text
+
+
+def test_movement_times_and_text_safety(book, result):
+    wb, _ = book
+    ws = wb["Movements"]
+    header = [c.value for c in ws[1]]
+    t_utc = header.index("time_utc") + 1
+    t_loc = header.index("time_local") + 1
+    first = result.movements["time"].iloc[0]
+    assert ws.cell(row=2, column=t_utc).value == first.tz_convert("UTC").tz_localize(None)
+    # Europe/Berlin is UTC+1 in January (IANA tz database)
+    assert (ws.cell(row=2, column=t_loc).value - ws.cell(row=2, column=t_utc).value).seconds == 3600
+    note = header.index("note") + 1
+    cell = ws.cell(row=7, column=note)
+    assert cell.value == "=duplicate of T1004" and cell.data_type == "s"
+
+
+def test_summary_facts(book, result):
+    wb, _ = book
+    facts = {r[0].value: r[1].value for r in wb["Summary"].iter_rows(min_row=3, max_row=10)}
+    assert facts["Period"] == "2026-01"
+    assert facts["Survey instant (UTC)"] == datetime(2026, 1, 28, 11, 0)
+    assert facts["Piles"] == 3
+
+
+def test_nan_and_missing_values_become_empty_cells(tmp_path):
+    from openpyxl import load_workbook
+
+    res = make_close_result("2026-01")
+    res.piles.loc[0, "variance_pct"] = float("inf")
+    res.journal = res.journal.iloc[0:0]
+    path = write_workbook(res, tmp_path / "w.xlsx")
+    ws = load_workbook(path)["Piles"]
+    assert ws.cell(row=2, column=PILE_COLUMNS.index("variance_pct") + 1).value is None
+    assert ws.cell(row=3, column=PILE_COLUMNS.index("volume_tin_m3") + 1).value is None
+
+
+def test_write_replaces_atomically(result, tmp_path, monkeypatch):
+    import openpyxl
+
+    path = tmp_path / "w.xlsx"
+    write_workbook(result, path)
+    before = path.read_bytes()
+
+    def boom(self, filename):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(openpyxl.Workbook, "save", boom)
+    with pytest.raises(OSError):
+        write_workbook(result, path)
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["w.xlsx"]
+
+
+def test_history_workbook(tmp_path):
+    from openpyxl import load_workbook
+
+    with Ledger(tmp_path / "ledger.sqlite") as led:
+        m1 = make_close_result("2026-01")
+        led.record_close(m1, INPUTS, "0.1.0")
+        m2 = make_close_result("2026-02", opening=led.opening_for("2026-02"), period_index=1)
+        led.record_close(m2, INPUTS, "0.1.0")
+        df = led.history()
+    wb = load_workbook(write_history_workbook(df, tmp_path / "history.xlsx"))
+    assert wb.sheetnames == ["History", "By month", "Notes"]
+    ws = wb["History"]
+    header = [c.value for c in ws[1]]
+    assert header == list(df.columns)
+    vi = header.index("variance_t")
+    assert [ws.cell(row=i, column=vi + 1).value for i in range(2, 2 + len(df))] == \
+        df["variance_t"].tolist()
+    pv = wb["By month"]
+    assert [c.value for c in pv[1]] == ["pile_id", "2026-01", "2026-02", "Total"]
+    assert pv["D2"].value == "=SUM(B2:C2)"
+    assert pv.cell(row=2, column=2).value == df[(df.pile_id == pv["A2"].value)
+                                                & (df.period == "2026-01")]["variance_t"].iloc[0]
+
+
+# -- LibreOffice, an independent reader -------------------------------------------------------
+
+def _soffice():
+    return shutil.which("soffice") or shutil.which("libreoffice")
+
+
+def _to_csv(xlsx, outdir):
+    """Every sheet to CSV with LibreOffice headless.
+
+    Filter options (LibreOffice wiki, "Filter Options" for CSV): 44 = comma, 34 = double
+    quote, 76 = UTF-8, 1 = start row, then cell format, language, quoted-as-text=false,
+    detect-special-numbers=true, save-as-shown=false (raw values), formulas=false,
+    remove-space=false, -1 = all sheets into <name>-<Sheet>.csv (LibreOffice >= 7.2).
+    """
+    exe = _soffice()
+    profile = outdir / "lo-profile"
+    cmd = [exe, f"-env:UserInstallation=file://{profile}", "--headless", "--norestore",
+           "--convert-to", "csv:Text - txt - csv (StarCalc):44,34,76,1,,0,false,true,false,"
+           "false,false,-1", "--outdir", str(outdir), str(xlsx)]
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stderr
+    sheets = {}
+    for name in SHEETS:
+        f = outdir / f"{xlsx.stem}-{name}.csv"
+        assert f.exists(), (name, proc.stdout, proc.stderr)
+        with open(f, newline="", encoding="utf-8") as fh:
+            sheets[name] = list(csv.reader(fh))
+    return sheets
+
+
+def _lo_number(text):
+    """LibreOffice writes 15 significant digits; a % format still shows as percent."""
+    if text.endswith("%"):
+        return float(text[:-1]) / 100.0
+    return float(text)
+
+
+@pytest.mark.tools
+def test_libreoffice_reads_the_same_numbers(result, tmp_path):
+    if not _soffice():
+        pytest.skip("LibreOffice (soffice) not installed; `make tools` installs "
+                    "libreoffice-calc-nogui when root with apt-get")
+    xlsx = write_workbook(result, tmp_path / "variance-2026-01.xlsx")
+    sheets = _to_csv(xlsx, tmp_path)
+    for name, rows in sheets.items():
+        for row in rows:
+            for v in row:  # a broken formula shows as Err:nnn or #NAME? in Calc
+                assert not v.startswith(("Err:", "#NAME", "#REF", "#VALUE", "#DIV")), (name, v)
+    piles = sheets["Piles"]
+    assert piles[0] == PILE_COLUMNS
+    n = len(result.piles)
+    for exp, got in zip(result.piles[PILE_COLUMNS].itertuples(index=False), piles[1:1 + n]):
+        for col, e, g in zip(PILE_COLUMNS, exp, got):
+            if isinstance(e, (bool, np.bool_)):
+                assert g == ("TRUE" if e else "FALSE"), col
+            elif isinstance(e, str):
+                assert g == e, col
+            elif math.isnan(e):
+                assert g == "", col
+            else:
+                # Calc keeps the full double but writes 15 significant digits
+                assert _lo_number(g) == pytest.approx(float(e), rel=1e-14, abs=1e-13), col
+    # the totals row is computed by Calc itself from the formulas
+    total = piles[n + 2]
+    assert total[0] == "Total"
+    for col in ("book_t", "survey_t", "variance_t", "adjustment_t", "closing_t"):
+        j = PILE_COLUMNS.index(col)
+        assert float(total[j]) == pytest.approx(result.piles[col].sum(), rel=1e-12), col
+    summary = {r[0]: r[1] for r in sheets["Summary"] if len(r) >= 2 and r[0]}
+    assert int(summary["Piles out of tolerance"]) == int(result.piles.out_of_tolerance.sum())
+    assert int(summary["Piles with a significant variance"]) == int(result.piles.significant.sum())
+    assert float(summary["Variance (survey - book)"]) == pytest.approx(
+        result.piles.variance_t.sum(), rel=1e-12)
+    var = sheets["Variance"]
+    sb = var[0].index("survey_minus_book_t")
+    for i, r in enumerate(result.piles.itertuples(index=False), start=1):
+        assert float(var[i][sb]) == pytest.approx(r.survey_t - r.book_t, rel=1e-12, abs=1e-9)
