@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from . import __version__
-from .errors import EXIT_BAD_INPUT, EXIT_OK, EXIT_RUN_FAILED, InputErrors, InventoryError
+from .errors import EXIT_BAD_INPUT, EXIT_OK, EXIT_RUN_FAILED, InputError, InputErrors, InventoryError
 
 __all__ = ["main", "build_parser"]
 
@@ -55,6 +55,89 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _progress(args: argparse.Namespace):
+    """Progress lines on a terminal (stderr), silence otherwise."""
+    if getattr(args, "quiet", False) or not sys.stderr.isatty():
+        return None
+    return lambda text: _err(f"... {text}")
+
+
+@_command("sample")
+def _cmd_sample(args: argparse.Namespace) -> int:
+    from .demo import write_sample_site
+
+    dest = write_sample_site(args.dir, seed=args.seed) if args.seed is not None else write_sample_site(args.dir)
+    _out(f"wrote the invented sample site to {dest}")
+    _out(f"next: inventory check {dest}")
+    return EXIT_OK
+
+
+@_command("survey")
+def _cmd_survey(args: argparse.Namespace) -> int:
+    from .site import load_site
+    from .survey import measure_survey
+
+    site = load_site(args.site)
+    out_dir = args.out or (site.root / "surveys-processed" / args.date)
+    result = measure_survey(site, args.date, out_dir=out_dir, progress=_progress(args),
+                            workers=args.workers, scheduler=args.scheduler)
+    _out(result.format_summary())
+    for path in result.written:
+        _out(f"  {path}")
+    return EXIT_OK
+
+
+@_command("close")
+def _cmd_close(args: argparse.Namespace) -> int:
+    from .close import close_period
+
+    closed = close_period(args.site, args.period, progress=_progress(args),
+                          workers=args.workers, scheduler=args.scheduler)
+    _out(closed.summary())
+    return EXIT_OK
+
+
+@_command("reopen")
+def _cmd_reopen(args: argparse.Namespace) -> int:
+    from .close import reopen_period
+
+    reopen_id = reopen_period(args.site, args.period, args.reason)
+    _out(f"reopened {args.period} (reopening {reopen_id}); the reason is kept in the ledger")
+    return EXIT_OK
+
+
+@_command("history")
+def _cmd_history(args: argparse.Namespace) -> int:
+    from .close import period_history
+
+    frame = period_history(args.site, pile=args.pile, material=args.material, start=args.start, end=args.end)
+    if args.format == "csv":
+        sys.stdout.write(frame.to_csv(index=False))
+    elif args.format == "json":
+        sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
+    elif args.format == "xlsx":
+        from .export.workbook import write_history_workbook
+
+        if args.output is None:
+            raise InputError("--output", "--format xlsx needs --output FILE.xlsx", field="output")
+        write_history_workbook(frame, args.output)
+        _out(f"wrote {len(frame)} rows to {args.output}")
+    else:
+        if frame.empty:
+            _out("no closes in the ledger for that selection")
+            return EXIT_OK
+        cols = ["period", "pile_id", "material", "book_t", "survey_t", "variance_t", "variance_pct",
+                "variance_sigma_t", "significant", "out_of_tolerance", "adjustment_t"]
+        shown = frame[cols].copy()
+        for c in ("book_t", "survey_t", "variance_t", "variance_sigma_t", "adjustment_t"):
+            shown[c] = shown[c].map(lambda v: "" if v != v else f"{v:,.1f}")
+        shown["variance_pct"] = shown["variance_pct"].map(lambda v: "" if v != v else f"{v:+.2f}")
+        for c in ("significant", "out_of_tolerance"):
+            shown[c] = shown[c].map(lambda v: "yes" if v else "")
+        _out(shown.to_string(index=False))
+    return EXIT_OK
+
+
 # ----------------------------------------------------------------------------- parser
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
@@ -72,6 +155,46 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("check", parents=[common], help="validate a site folder, change nothing",
                        description="Validate everything in a site folder and print a summary, or every problem found. Writes nothing.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+
+    p = sub.add_parser("sample", parents=[common], help="write the invented demo site",
+                       description="Write the invented demo site (point clouds, pile register, books) into DIR.")
+    p.add_argument("dir", type=Path, metavar="DIR", help="destination folder (created)")
+    p.add_argument("--seed", type=int, default=None, help="simulator seed (default: the committed sample's)")
+
+    scale_out = argparse.ArgumentParser(add_help=False)
+    scale_out.add_argument("--workers", type=int, default=None, metavar="N",
+                           help="run on a local Dask cluster of N worker processes")
+    scale_out.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                           help="run on an existing Dask cluster (e.g. tcp://host:8786)")
+    scale_out.add_argument("-q", "--quiet", action="store_true", help="no progress lines")
+
+    p = sub.add_parser("survey", parents=[common, scale_out], help="process one survey: classified cloud, surface, coverage",
+                       description="Turn one survey's point clouds into a cleaned, classified cloud and a stockpile surface raster.")
+    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p.add_argument("--date", required=True, metavar="YYYY-MM-DD", help="survey folder name")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="output folder (default SITE/surveys-processed/DATE)")
+
+    p = sub.add_parser("close", parents=[common, scale_out], help="close one month: volumes, book, variance, outputs, ledger",
+                       description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
+    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p.add_argument("--period", required=True, metavar="YYYY-MM", help="the month to close")
+
+    p = sub.add_parser("reopen", parents=[common], help="unlock a closed month (reason kept for good)",
+                       description="Unlock a closed period so that it can be closed again. The reason is kept in the ledger.")
+    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p.add_argument("--period", required=True, metavar="YYYY-MM")
+    p.add_argument("--reason", required=True, help="why the period is reopened")
+
+    p = sub.add_parser("history", parents=[common], help="variance by pile and month from the ledger",
+                       description="Variance by pile and month from the ledger, for finance.")
+    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p.add_argument("--pile", default=None, help="only this pile id")
+    p.add_argument("--material", default=None, help="only this material")
+    p.add_argument("--from", dest="start", default=None, metavar="YYYY-MM", help="first period")
+    p.add_argument("--to", dest="end", default=None, metavar="YYYY-MM", help="last period")
+    p.add_argument("--format", choices=("table", "csv", "json", "xlsx"), default="table")
+    p.add_argument("--output", type=Path, default=None, metavar="FILE", help="file for --format xlsx")
     return parser
 
 
@@ -95,6 +218,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return err.exit_code
     except KeyboardInterrupt:
         _err("interrupted")
+        return EXIT_RUN_FAILED
+    except Exception as err:  # a failed run is one line too; --verbose shows where
+        if args.verbose:
+            traceback.print_exc()
+        _err(f"error: the run failed: {type(err).__name__}: {err} (rerun with --verbose for the traceback)")
         return EXIT_RUN_FAILED
 
 
