@@ -46,8 +46,7 @@ def variance_colormap():
     from matplotlib.colors import LinearSegmentedColormap
 
     cmap = LinearSegmentedColormap.from_list("inventory_variance", VARIANCE_COLORS, N=256)
-    cmap.set_bad("#bbbbbb")
-    return cmap
+    return cmap.with_extremes(bad="#bbbbbb")
 
 
 def _variance_norm(piles: pd.DataFrame):

@@ -1,0 +1,115 @@
+"""The HTML report: self-contained, images embedded, cautions present, Chromium renders it."""
+
+from __future__ import annotations
+
+import base64
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+
+import pytest
+
+from inventory.export.report import report_html, variance_colormap, write_report
+from test_export_fake import make_close_result
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG spec (ISO/IEC 15948), section 5.2
+
+
+class _Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.refs: list[str] = []
+        self.imgs: list[str] = []
+        self.tags: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        for k, v in attrs:
+            if k in ("src", "href") and v is not None:
+                self.refs.append(v)
+                if tag == "img":
+                    self.imgs.append(v)
+
+
+@pytest.fixture
+def result():
+    return make_close_result("2026-02", period_index=1)
+
+
+def test_self_contained_with_embedded_images(result, tmp_path):
+    path = write_report(result, tmp_path / "report-2026-02.html")
+    text = path.read_text(encoding="utf-8")
+    p = _Collect()
+    p.feed(text)
+    assert len(p.imgs) == 2  # the map and the variance chart
+    for src in p.imgs:
+        assert src.startswith("data:image/png;base64,")
+        assert base64.b64decode(src.split(",", 1)[1]).startswith(PNG_SIGNATURE)
+    # nothing fetched from anywhere: every reference is inline data
+    assert all(r.startswith("data:") for r in p.refs)
+    assert "<link" not in text and "<script" not in text
+    assert not re.search(r"url\((?!data:)", text)
+
+
+def test_content(result):
+    text = report_html(result)
+    for pid in result.piles.pile_id:
+        assert pid in text
+    assert "variance = survey - book" in text
+    assert "legal metrology rules" in text and "licensed surveyors" in text
+    assert "Never walk on stockpiles or under reclaim faces" in text
+    assert "Scale diagnostics" in text and "BS-IN" in text
+    assert text.count('class="oot"') >= int(result.piles.out_of_tolerance.sum())
+    # an out-of-tolerance pile row is marked
+    assert re.search(r'<tr class="oot"><td>P-LIME-1</td>', text)
+
+
+def test_text_from_inputs_is_escaped(result):
+    result.duplicates.loc[0, "detail"] = "<script>alert(1)</script>"
+    text = report_html(result)
+    assert "<script>" not in text and "&lt;script&gt;" in text
+
+
+def test_same_close_same_report(result):
+    assert report_html(result) == report_html(result)
+
+
+def test_colour_scheme_is_diverging_and_our_own():
+    cmap = variance_colormap()
+    lo, mid, hi = cmap(0.0), cmap(0.5), cmap(1.0)
+    assert lo[2] > lo[0] and hi[0] > hi[2]  # blue deficit, red surplus
+    assert min(mid[:3]) > 0.85  # a pale neutral at zero
+    assert cmap.name == "inventory_variance"
+
+
+@pytest.mark.tools
+def test_chromium_renders_the_report(result, tmp_path):
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    if not exe:
+        pytest.skip("Chromium not installed; `make tools` installs Debian's chromium when root")
+    page = write_report(result, tmp_path / "report.html")
+    shot = tmp_path / "report.png"
+    # flags: headless as root in a closed network (no sandbox, no background fetches),
+    # with a fresh profile so no earlier state is read
+    cmd = [exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+           "--no-first-run", "--disable-background-networking", "--disable-component-update",
+           "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}",
+           "--window-size=1200,2400", f"--screenshot={shot}", page.as_uri()]
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert shot.read_bytes().startswith(PNG_SIGNATURE)
+    import matplotlib.image as mpimg
+
+    img = mpimg.imread(shot)
+    assert img.shape[0] == 2400 and img.shape[1] == 1200
+    # the page drew something: many distinct colours (relief, piles, tables), not a blank page
+    rgb = (img[..., :3] * 255).astype("uint8").reshape(-1, 3)
+    assert len({tuple(c) for c in rgb[:: 37]}) > 50
+    dom = subprocess.run([exe, "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run",
+                          "--disable-background-networking", "--disable-component-update",
+                          "--disable-sync", f"--user-data-dir={tmp_path / 'profile2'}",
+                          "--dump-dom", page.as_uri()], capture_output=True, text=True,
+                         timeout=120)
+    assert dom.returncode == 0
+    assert "Stock close 2026-02" in dom.stdout and dom.stdout.count("<img") == 2
