@@ -282,41 +282,61 @@ class Ledger:
         if own_tx:
             con.execute("COMMIT")
 
-    def _begin_write(self) -> bool:
-        """BEGIN IMMEDIATE on the real file, creating it if needed; True if created now."""
-        created = False
-        if self._pending_create:
+    def _begin_write(self) -> tuple[bool, bool]:
+        """BEGIN IMMEDIATE on the real file, creating it if needed.
+
+        Returns ``(was_pending, file_is_new)``: whether this object had not touched the file
+        yet, and whether the file did not exist before (then a rollback removes it again).
+        """
+        was_pending = self._pending_create
+        file_is_new = False
+        if was_pending:
+            file_is_new = not self.path.exists()
             self._con.close()  # type: ignore[union-attr]
             self._con = None
             self._con = self._connect(self.path)
-            created = True
         try:
             self._db.execute("BEGIN IMMEDIATE")  # the write lock, before any check
         except sqlite3.Error as err:
             raise LedgerError(f"{self.path}: cannot start a transaction: {err}") from err
-        if created:
+        if was_pending:
             try:
-                self._create_schema()
+                # another process may have created the ledger since we looked: check again
+                # now that we hold the write lock
+                has_tables = self._db.execute(
+                    "SELECT COUNT(*) FROM sqlite_master WHERE type = 'table'").fetchone()[0]
+                if has_tables:
+                    self._check_schema()
+                else:
+                    self._create_schema()
             except BaseException:
-                self._rollback(True)
+                self._rollback((was_pending, file_is_new))
                 raise
-        return created
+        return was_pending, file_is_new
 
-    def _rollback(self, created: bool) -> None:
-        self._db.execute("ROLLBACK")
-        if created:
+    def _rollback(self, state: tuple[bool, bool]) -> None:
+        was_pending, file_is_new = state
+        if self._db.in_transaction:
+            self._db.execute("ROLLBACK")
+        if not was_pending:
+            return
+        if not file_is_new:
+            has_tables = self._db.execute(
+                "SELECT COUNT(*) FROM sqlite_master WHERE type = 'table'").fetchone()[0]
+            if has_tables:  # someone else's ledger: keep reading it
+                self._pending_create = False
+                return
+        self.close()
+        if file_is_new:
             # we made the file for this transaction: leave the folder as it was
-            self.close()
             for suffix in ("", "-wal", "-shm", "-journal"):
                 Path(str(self.path) + suffix).unlink(missing_ok=True)
-            self._con = self._connect(None)
-            self._create_schema()
-        else:
-            return
+        self._con = self._connect(None)
+        self._create_schema()
 
-    def _commit(self, created: bool) -> None:
+    def _commit(self, state: tuple[bool, bool]) -> None:
         self._db.execute("COMMIT")
-        if created:
+        if state[0]:
             self._pending_create = False
 
     def _check_schema(self) -> None:
@@ -526,7 +546,7 @@ class Ledger:
             When a later period is already closed, or the result cannot be stored.
         """
         period = _check_period(result.period)
-        created = self._begin_write()
+        state = self._begin_write()
         con = self._db
         try:
             if self.is_locked(period):
@@ -546,13 +566,13 @@ class Ledger:
             close_id = self._insert(result, inputs, version, who or getpass.getuser())
             yield close_id
         except BaseException:
-            self._rollback(created)
+            self._rollback(state)
             raise
         else:
             try:
-                self._commit(created)
+                self._commit(state)
             except sqlite3.Error as err:
-                self._rollback(created)
+                self._rollback(state)
                 raise LedgerError(f"{self.path}: commit of {period} failed: {err}") from err
 
     def record_close(
@@ -655,7 +675,7 @@ class Ledger:
         who = who or getpass.getuser()
         if self._pending_create:
             raise LedgerError(f"{self.path}: no ledger yet; period {period} was never closed")
-        self._begin_write()
+        state = self._begin_write()
         con = self._db
         try:
             close_id = self._adopted_close_id(period)
@@ -681,9 +701,9 @@ class Ledger:
             )
             reopen_id = int(cur.lastrowid)
         except BaseException:
-            self._rollback(False)
+            self._rollback(state)
             raise
-        self._commit(False)
+        self._commit(state)
         return reopen_id
 
 

@@ -245,6 +245,25 @@ def test_failed_first_close_leaves_no_file(tmp_path):
     assert not any(p.name.startswith("other.sqlite") for p in tmp_path.iterdir())
 
 
+def test_two_first_closes_of_one_site(tmp_path):
+    path = tmp_path / "ledger.sqlite"
+    first, second = Ledger(path).open(), Ledger(path).open()
+    try:
+        assert not path.exists()
+        first.record_close(make_close_result("2026-01"), INPUTS, "0.1.0", who="a")
+        # the second saw no ledger when it opened; it must find the first one's close now,
+        # refuse, and leave the file alone
+        with pytest.raises(PeriodLockedError):
+            second.record_close(make_close_result("2026-01"), INPUTS, "0.1.0", who="b")
+        assert path.exists()
+        assert second.is_locked("2026-01")
+    finally:
+        first.close()
+        second.close()
+    with Ledger(path) as led:
+        assert led.closes()["closed_by"].tolist() == ["a"]
+
+
 def test_bad_input_hash_rolls_back(ledger_path):
     with Ledger(ledger_path) as led:
         with pytest.raises(LedgerError, match="not a SHA-256"):
