@@ -125,10 +125,15 @@ CORRELATED_SIGMA_M = 0.01
 CORRELATION_LENGTH_M = 15.0
 
 #: Interpolation error per metre of distance to the nearest scanned cell, per unit of rim
-#: slope. Linear interpolation across a crest with flanks of slope s on both sides misses
-#: about s d / 2 at distance d from the rim (geometry of a ridge); 0.5 is that worst case,
-#: checked against hidden sectors of handbook solids in tests/test_volume.py.
-INTERP_SLOPE_FACTOR = 0.5
+#: slope. Interpolating across a hole over an apex or ridge whose flanks have slope s
+#: gives a flat top at rim height, missing s d at distance d from the rim (geometry of a
+#: cone); 1.0 is that worst case. Checked against holes hidden over the apex, a flank and
+#: an end of handbook solids in tests/test_volume.py.
+INTERP_SLOPE_FACTOR = 1.0
+
+#: Width of the band of scanned cells around a gap whose mean slope sets that gap's
+#: interpolation error (cells).
+_RIM_CELLS = 3
 
 #: Point scatter (m) assumed when the surface carries no per-cell scatter at all.
 #: Terrestrial laser range noise of a few millimetres to 1 cm at stockpile ranges (common
@@ -275,7 +280,9 @@ def _window_weights(poly: shapely.Geometry, grid: Grid, rows: slice, cols: slice
     w[inner] = 1.0
     edge = hit & ~inner
     if edge.any():
-        w[edge] = shapely.area(shapely.intersection(boxes[edge], poly)) / grid.cell_area
+        # Dividing by the nominal cell area keeps sum(w) * a equal to the polygon's area;
+        # the clip only removes float noise of a cell wholly inside but touching the edge.
+        w[edge] = np.clip(shapely.area(shapely.intersection(boxes[edge], poly)) / grid.cell_area, 0.0, 1.0)
     return w
 
 
@@ -453,16 +460,22 @@ def _gap_sigma(work: _PileWork, a: float, cell: float, noise_sd: float, k: float
     else:
         dist = np.full(work.w.shape, max(work.w.shape) * cell)
     lab, n = ndimage.label(unscanned, structure=np.ones((3, 3)))
-    gy, gx = np.gradient(work.z, cell)
+    # Slope from scanned cells only: interpolated cells inside a gap are flatter than the
+    # ground they replace, so gradients touching them would understate the rim slope.
+    zs = np.where(work.scanned, work.z, np.nan)
+    gy, gx = np.gradient(zs, cell)
     slope = np.hypot(gx, gy)
-    slope = np.where(np.isfinite(slope), slope, 0.0)
-    # Rim of each gap: scanned cells next to it, labelled with the gap they border.
-    rim_lab = ndimage.grey_dilation(lab, size=(3, 3)) * work.scanned
-    sums = np.bincount(rim_lab.ravel(), weights=slope.ravel(), minlength=n + 1)
+    good = np.isfinite(slope)
+    # Rim of each gap: a band of scanned cells up to _RIM_CELLS away from it, labelled with
+    # the gap they border (where two gaps share a rim, either label is fine).
+    size = 2 * _RIM_CELLS + 1
+    rim_lab = ndimage.grey_dilation(lab, size=(size, size)) * (work.scanned & good)
+    slope0 = np.where(good, slope, 0.0)
+    sums = np.bincount(rim_lab.ravel(), weights=slope0.ravel(), minlength=n + 1)
     cnts = np.bincount(rim_lab.ravel(), minlength=n + 1)
     rim_slope = np.divide(sums, cnts, out=np.zeros(n + 1), where=cnts > 0)
-    # A gap with no scanned rim (the whole window unscanned) takes the steepest slope seen.
-    rim_slope[cnts == 0] = float(slope.max()) if slope.size else 0.0
+    # A gap with no measurable rim takes the steepest slope seen in the window.
+    rim_slope[cnts == 0] = float(slope0.max()) if slope0.size else 0.0
     sig = np.sqrt((k * rim_slope[lab] * dist) ** 2 + noise_sd**2)
     per_gap = np.bincount(lab[gaps], weights=(work.w * a * sig)[gaps], minlength=n + 1)
     return float(np.sqrt(np.sum(per_gap[1:] ** 2)))
