@@ -113,3 +113,21 @@ def test_chromium_renders_the_report(result, tmp_path):
                          timeout=120)
     assert dom.returncode == 0
     assert "Stock close 2026-02" in dom.stdout and dom.stdout.count("<img") == 2
+
+
+def test_quiet_month_and_a_pile_without_book(tmp_path):
+    import pandas as pd
+
+    res = make_close_result("2026-01")
+    res.movements = res.movements.iloc[0:0]
+    res.journal = res.journal.iloc[0:0]
+    res.scale_diagnostics = res.scale_diagnostics.iloc[0:0]
+    res.duplicates = pd.DataFrame()
+    res.coverage_gaps = res.coverage_gaps.iloc[0:0]
+    res.piles.loc[1, ["variance_pct", "variance_sigma_t"]] = float("nan")  # book of 0 t
+    text = write_report(res, tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "No movements this period." in text
+    assert "No adjustments this period." in text
+    assert "No scale diagnostics" in text
+    cells = re.findall(r"<td>([^<]*)</td>", text)
+    assert cells and not any("nan" in c.lower() for c in cells)  # a missing figure is blank

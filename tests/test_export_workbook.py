@@ -286,3 +286,20 @@ def test_libreoffice_reads_the_same_numbers(result, tmp_path):
     sb = var[0].index("survey_minus_book_t")
     for i, r in enumerate(result.piles.itertuples(index=False), start=1):
         assert float(var[i][sb]) == pytest.approx(r.survey_t - r.book_t, rel=1e-12, abs=1e-9)
+
+
+def test_quiet_month_and_awkward_text(tmp_path):
+    """No movements, no adjustments, no diagnostics; a control character in a note."""
+    import pandas as pd
+    from openpyxl import load_workbook
+
+    res = make_close_result("2026-01")
+    res.movements = res.movements.iloc[0:0]
+    res.journal = res.journal.iloc[0:0]
+    res.scale_diagnostics = res.scale_diagnostics.iloc[0:0]
+    res.duplicates = pd.DataFrame()
+    res.piles.loc[0, "flags"] = "bad\x07byte " + "x" * 40000
+    wb = load_workbook(write_workbook(res, tmp_path / "w.xlsx"))
+    flag = wb["Piles"].cell(row=2, column=PILE_COLUMNS.index("flags") + 1).value
+    assert flag.startswith("bad\ufffdbyte") and len(flag) == 32767  # Excel's cell limit
+    assert wb["Movements"].max_row >= 1 and [c.value for c in wb["Movements"][1]][0] == "kind"

@@ -129,9 +129,18 @@ def _cell_value(value: Any, tz: ZoneInfo | None = None) -> Any:
     return value
 
 
+#: Excel's limit on the characters in one cell (Excel specifications and limits).
+_MAX_CELL_CHARS = 32767
+
+
 def _put(ws, row: int, col: int, value: Any, fmt: str | None = None, tz: ZoneInfo | None = None):
+    from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
+
     cell = ws.cell(row=row, column=col)
     v = _cell_value(value, tz)
+    if isinstance(v, str):
+        # control characters are not allowed in the XML; an over-long cell makes Excel repair
+        v = ILLEGAL_CHARACTERS_RE.sub("\ufffd", v)[:_MAX_CELL_CHARS]
     cell.value = v
     if isinstance(v, str) and v.startswith("="):
         cell.data_type = "s"  # text from an input file is never a formula
