@@ -94,6 +94,10 @@ BIAS_ROW_COLUMNS = ["period", "pile_id", "scale_id", "signed_t", "variance_t", "
 #: 3 sigma: common practice for outlier rejection.
 REJECT_Z = 3.0
 
+#: A scale bias is only named when at least this many pile-months bear on it: with one pile,
+#: a scale bias cannot be told from an error on that pile.
+MIN_PILE_MONTHS = 2
+
 #: Floor on a pile's sigma in the bias fit, tonnes, so that a pile with no stated uncertainty
 #: does not get infinite weight.
 _SIGMA_FLOOR_T = 1e-6
@@ -341,21 +345,27 @@ def _scale_diagnostics(
             X[i, scale_ids.index(r.scale_id)] -= r.signed_t
     use = np.isfinite(v)
     excluded: list[int] = []
+    protected: set[int] = set()
+    # Leave out gross outliers one at a time (worst first), judged against their stated
+    # sigma; never more than half the rows, never a row whose scale would be left with no
+    # data, and keep at least 2 degrees of freedom for the fit's own sigma.
+    max_reject = int(use.sum()) // 2
     while True:
         b, cov, resid = _wls(X[use], v[use], sig[use])
-        z = np.full(len(v), 0.0)
-        z[use] = resid / sig[use]
-        dof = use.sum() - np.linalg.matrix_rank(X[use]) if use.any() else 0
-        worst = int(np.argmax(np.abs(z)))
-        if abs(z[worst]) <= REJECT_Z or dof <= 1:
+        z = np.zeros(len(v))
+        z[use] = np.abs(resid) / sig[use]
+        z[list(protected)] = 0.0
+        worst = int(np.argmax(z))
+        dof_after = int(use.sum()) - 1 - np.linalg.matrix_rank(X[use]) if use.any() else 0
+        if z[worst] <= REJECT_Z or len(excluded) >= max_reject or dof_after < 2:
             break
-        use[worst] = False
+        trial = use.copy()
+        trial[worst] = False
+        if np.any(np.all(X[trial] == 0, axis=0) & np.any(X[use] != 0, axis=0)):
+            protected.add(worst)
+            continue
+        use = trial
         excluded.append(worst)
-        # keep every scale estimable: never drop a pile that leaves a column empty
-        if np.any(np.all(X[use] == 0, axis=0) & np.any(X != 0, axis=0)):
-            use[worst] = True
-            excluded.pop()
-            break
 
     out = []
     this_period = keys["period"] == str(period)
@@ -363,7 +373,12 @@ def _scale_diagnostics(
         col = X[:, j] != 0
         piles_fed = sorted(set(keys.loc[col & this_period.to_numpy(), "pile_id"]))
         tonnes = float(-X[col & this_period.to_numpy(), j].sum())
-        bj, sj = float(b[j]), float(np.sqrt(cov[j, j])) if np.isfinite(cov[j, j]) else float("nan")
+        # b is the book's inflation per recorded tonne; a scale reading (1 + beta) x the true
+        # mass inflates it by beta / (1 + beta) per recorded tonne, so beta = b / (1 - b).
+        fb = float(b[j])
+        sfb = float(np.sqrt(cov[j, j])) if np.isfinite(cov[j, j]) else float("nan")
+        bj = fb / (1.0 - fb)
+        sj = sfb / (1.0 - fb) ** 2
         mpe = float("nan")
         s_obj = (scales or {}).get(sid)
         if s_obj is not None:
@@ -373,11 +388,15 @@ def _scale_diagnostics(
                 mpe = float("nan")
         significant = np.isfinite(sj) and abs(bj) > k * sj
         beyond = np.isfinite(mpe) and abs(bj) > mpe
-        flagged = bool(significant and beyond and col[use].sum() >= 1)
+        n_used = int(col[use].sum())
+        flagged = bool(significant and beyond and n_used >= MIN_PILE_MONTHS)
         months = keys.loc[col, "period"].nunique()
-        basis = f"{int(col[use].sum())} pile-month(s)" + (f" over {months} months" if months > 1 else "")
+        basis = f"{n_used} pile-month(s)" + (f" over {months} months" if months > 1 else "")
         same_sign = _same_sign_note(p, piles_fed)
-        if flagged:
+        if n_used < MIN_PILE_MONTHS:
+            msg = (f"belt scale {sid} fed one pile this month and there is no history: {100 * bj:+.2f} % "
+                   f"cannot be told from an error on that pile")
+        elif flagged:
             msg = (f"belt scale {sid} appears to read {100 * bj:+.2f} % (+/- {100 * sj:.2f} %), beyond its "
                    f"in-service MPE of {100 * mpe:.2f} %: have it checked and recalibrated ({basis}; {same_sign})")
         elif significant:
@@ -395,7 +414,7 @@ def _scale_diagnostics(
             rows_now = np.where(this_period.to_numpy())[0]
             for i in rows_now:
                 if X[i, j] != 0:
-                    fitted[p.index[p["pile_id"] == keys.loc[i, "pile_id"]]] += X[i, j] * bj
+                    fitted[p.index[p["pile_id"] == keys.loc[i, "pile_id"]]] += X[i, j] * fb
     return pd.DataFrame(out, columns=SCALE_COLUMNS), fitted, now
 
 
@@ -470,7 +489,10 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
         elif i in partner:
             other = p.loc[partner[i], "pile_id"]
             code[i] = "TRANSFER_SUSPECT"
-            text[i] = (f"{v:+.1f} t mirrors {p.loc[partner[i], 'variance_t']:+.1f} t on pile {other}: "
+            own = f"{v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
+            j = partner[i]
+            theirs = f"{residual[j]:+.1f} t"
+            text[i] = (f"{own} mirrors {theirs} on pile {other}: "
                        f"suspected unrecorded transfer {'to' if v < 0 else 'from'} {other}")
             flags[i] = f"pair:{other}"
         elif not p.loc[i, "out_of_tolerance"]:

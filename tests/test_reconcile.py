@@ -1,0 +1,269 @@
+"""Reconciliation rules with hand-computed numbers: variance, significance, tolerance,
+per-material totals, measured change vs net movement, scale-bias fit, journal."""
+
+from __future__ import annotations
+
+import math
+from types import SimpleNamespace as NS
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from inventory.book import book_stock
+from inventory.reconcile import REASON_CODES, SIGN_CONVENTION, ReconcileSettings, reconcile
+from inventory.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
+
+T = pd.Timestamp
+SQRT3 = math.sqrt(3.0)
+START, END = T("2026-09-30T22:00Z"), T("2026-10-31T23:00Z")
+AT = T("2026-10-31T12:00Z")
+SCALES = {
+    "B1": NS(id="B1", kind="belt", direction="in", accuracy_class="1", scale_interval_kg=None, in_service=True),
+    "R1": NS(id="R1", kind="belt", direction="out", accuracy_class="1", scale_interval_kg=None, in_service=True),
+}
+MATERIALS = {
+    "coal": NS(name="coal", tolerance_pct=3.0, density_sd_t_m3=0.05),
+    "ore": NS(name="ore", tolerance_pct=None, density_sd_t_m3=0.1),
+}
+
+
+def book_from(opening: dict, belt_t: dict | None = None, sigma: dict | None = None, materials: dict | None = None,
+              scale: str = "B1", after: dict | None = None):
+    """Book with the given openings; belt `scale` delivers belt_t[p] tonnes to pile p, one day
+    per pile, before the survey; `after` adds belt tonnes after the survey."""
+    piles = sorted(opening)
+    op = pd.DataFrame({"pile_id": piles, "tonnes": [opening[p] for p in piles],
+                       "sigma_t": [(sigma or {}).get(p, 0.0) for p in piles]})
+    rows, routes = [], []
+    day = T("2026-10-02T00:00Z")
+    for p, t in list((belt_t or {}).items()) + [(p, t) for p, t in (after or {}).items()]:
+        is_after = p in (after or {}) and (belt_t or {}).get(p) != t
+        start = T("2026-10-31T13:00Z") if is_after else day
+        rows.append({"scale_id": scale, "start": start, "end": start + pd.Timedelta(hours=1), "tonnes": t})
+        routes.append({"scale_id": scale, "pile_id": p, "start": start, "end": start + pd.Timedelta(hours=1)})
+        day += pd.Timedelta(days=1)
+    mv = NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)) if rows else NS()
+    pile_tab = pd.DataFrame({"pile_id": piles, "material": [(materials or {}).get(p, "coal") for p in piles]})
+    return book_stock(mv, op, AT, SCALES, pile_tab, END, START)
+
+
+def survey_of(values: dict, sigma: dict | float = 0.0, **extra) -> pd.DataFrame:
+    piles = sorted(values)
+    df = pd.DataFrame({"pile_id": piles, "survey_t": [values[p] for p in piles]})
+    df["survey_sigma_t"] = [sigma[p] for p in piles] if isinstance(sigma, dict) else sigma
+    for k, v in extra.items():
+        df[k] = [v[p] for p in piles]
+    return df
+
+
+def test_variance_significance_tolerance_flags_and_reasons():
+    # book 1000 t, book sigma 3 t (opening); survey sigma 4 t -> variance sigma 5 t, k = 2 -> 10 t;
+    # coal tolerance 3 % -> 30 t.
+    book = book_from({"A": 1000.0, "B": 1000.0, "C": 1000.0}, sigma={"A": 3.0, "B": 3.0, "C": 3.0})
+    sv = survey_of({"A": 1040.0, "B": 1008.0, "C": 975.0}, 4.0)
+    r = reconcile(sv, book, MATERIALS, ReconcileSettings(significance_k=2.0))
+    p = r.piles.set_index("pile_id")
+    assert list(r.piles.columns[: len(PILE_COLUMNS)]) == PILE_COLUMNS
+    assert p.loc["A", "variance_t"] == pytest.approx(40.0)
+    assert p.loc["A", "variance_pct"] == pytest.approx(4.0)
+    assert p.loc["A", "variance_sigma_t"] == pytest.approx(5.0)
+    # A: 40 t > 10 t significant, > 30 t out of tolerance
+    assert p.loc["A", "significant"] and p.loc["A", "out_of_tolerance"]
+    assert p.loc["A", "reason_code"] == "UNEXPLAINED"
+    # B: 8 t < 10 t not significant, within tolerance
+    assert not p.loc["B", "significant"] and not p.loc["B", "out_of_tolerance"]
+    assert p.loc["B", "reason_code"] == "WITHIN_SIGMA"
+    # C: -25 t significant, within 30 t
+    assert p.loc["C", "significant"] and not p.loc["C", "out_of_tolerance"]
+    assert p.loc["C", "reason_code"] == "WITHIN_TOL"
+    assert "significant" in p.loc["A", "flags"] and "out_of_tolerance" in p.loc["A", "flags"]
+
+
+def test_default_tolerance_applies_to_materials_without_one():
+    book = book_from({"X": 1000.0}, materials={"X": "ore"})
+    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, {"default_tolerance_pct": 2.0})
+    x = r.piles.iloc[0]
+    assert x.tolerance_pct == 2.0 and x.out_of_tolerance          # 25 t > 2 % of 1000 t
+    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, {"default_tolerance_pct": 3.0})
+    assert not r.piles.iloc[0].out_of_tolerance
+
+
+def test_adjustment_closing_and_journal_to_survey_and_to_midpoint():
+    # survey 11:00... after the survey the belt delivers 50 t: closing = adopted + 50
+    book = book_from({"A": 1000.0, "B": 400.0}, after={"A": 50.0})
+    sv = survey_of({"A": 1040.0})                                  # B not surveyed
+    r = reconcile(sv, book, MATERIALS, {"adjust_to": "survey"})
+    p = r.piles.set_index("pile_id")
+    assert p.loc["A", "after_survey_net_t"] == pytest.approx(50.0)
+    assert p.loc["A", "adjustment_t"] == pytest.approx(40.0)
+    assert p.loc["A", "closing_t"] == pytest.approx(1090.0)        # 1000 + 40 + 50
+    assert p.loc["B", "adjustment_t"] == 0.0 and p.loc["B", "closing_t"] == pytest.approx(400.0)
+    assert p.loc["B", "reason_code"] == "NOT_SURVEYED"
+    assert list(r.journal.columns) == JOURNAL_COLUMNS
+    assert r.journal[["pile_id", "adjustment_t"]].values.tolist() == [["A", 40.0]]
+    assert r.journal["reason_code"].isin(REASON_CODES).all()
+    assert "positive increases" in SIGN_CONVENTION
+    mid = reconcile(sv, book, MATERIALS, {"adjust_to": "midpoint"}).piles.set_index("pile_id")
+    assert mid.loc["A", "adjustment_t"] == pytest.approx(20.0)
+    assert mid.loc["A", "closing_t"] == pytest.approx(1070.0)
+    with pytest.raises(ValueError, match="adjust_to"):
+        reconcile(sv, book, MATERIALS, {"adjust_to": "book"})
+
+
+def test_per_material_totals_handle_correlated_errors():
+    # Two coal piles fed by belt B1 (class 1 in service, MPE 1 %): 600 t and 300 t.
+    # Book sigma per pile: 6/sqrt3 and 3/sqrt3; one scale -> linear: 9/sqrt3 = 5.196 t.
+    # Survey: sigma 60 and 30 t, of which density (sd 0.05 t/m3 x 1000 / 500 m3) 50 and 25 t.
+    # Density common to the material: sqrt((60^2-50^2) + (30^2-25^2) + (50+25)^2) = sqrt(7000).
+    book = book_from({"A": 0.0, "B": 0.0}, belt_t={"A": 600.0, "B": 300.0})
+    sv = survey_of({"A": 640.0, "B": 310.0}, {"A": 60.0, "B": 30.0}, volume_m3={"A": 1000.0, "B": 500.0})
+    r = reconcile(sv, book, MATERIALS)
+    m = r.materials.set_index("material").loc["coal"]
+    assert m.book_t == pytest.approx(900.0) and m.survey_t == pytest.approx(950.0)
+    assert m.variance_t == pytest.approx(50.0)
+    assert m.variance_pct == pytest.approx(100 * 50 / 900)
+    assert m.book_sigma_t == pytest.approx(9.0 / SQRT3)
+    assert m.survey_sigma_t == pytest.approx(math.sqrt(7000.0))
+    assert m.variance_sigma_t == pytest.approx(math.sqrt(7000.0 + 27.0))
+    assert not m.significant                                       # 50 < 2 x 83.8
+    assert m.out_of_tolerance                                      # 50 > 3 % of 900 = 27
+
+
+def test_measured_change_vs_net_movement_separates_opening_error():
+    # Previous survey 900 t; 20 t booked between it and the opening; opening balance 950 t
+    # (30 t more than the previous survey rolled forward: an opening error). This month the
+    # belt delivers 100 t; survey 1010 t.
+    book = book_from({"A": 950.0}, belt_t={"A": 100.0})
+    sv = survey_of({"A": 1010.0}, 2.0)
+    prev = pd.DataFrame({"pile_id": ["A"], "survey_t": [900.0], "survey_sigma_t": [2.0], "after_survey_net_t": [20.0]})
+    r = reconcile(sv, book, MATERIALS, previous=prev)
+    c = r.change.iloc[0]
+    assert c.measured_change_t == pytest.approx(110.0)             # 1010 - 900
+    assert c.net_movement_t == pytest.approx(120.0)                # 20 + 100
+    assert c.difference_t == pytest.approx(-10.0)
+    assert c.opening_gap_t == pytest.approx(-30.0)                 # 920 - 950
+    assert r.piles.iloc[0].variance_t == pytest.approx(-40.0)      # = difference + opening gap
+    # sigma: surveys 2 and 2, belt 1 % of 100 t / sqrt3 = 0.577 t
+    assert c.difference_sigma_t == pytest.approx(math.sqrt(4 + 4 + (1.0 / SQRT3) ** 2))
+    assert c.significant                                           # 10 > 2 x 2.89
+
+
+def _planted(beta: float, T: dict) -> dict:
+    """Variance of a pile fed T recorded tonnes by a scale reading (1 + beta) x true."""
+    return {p: -beta / (1 + beta) * t for p, t in T.items()}
+
+
+def test_scale_bias_exact_fit_is_named():
+    # B1 reads 2 % high. Piles P1-P3 fed 1000, 2000, 3000 t; P4 fed by nothing.
+    # Fit: b = sum T(-v) / sum T^2 = 0.02/1.02 exactly -> beta = 2.00 %. Residuals 0, so
+    # sigma_b = survey sigma / sqrt(sum T^2) = 1 / sqrt(14e6), beta sigma = that / (1 - b)^2.
+    T_ = {"P1": 1000.0, "P2": 2000.0, "P3": 3000.0}
+    opening = {"P1": 5000.0, "P2": 5000.0, "P3": 5000.0, "P4": 5000.0}
+    book = book_from(opening, belt_t=T_)
+    v = _planted(0.02, T_)
+    sv = survey_of({p: opening[p] + T_.get(p, 0.0) + v.get(p, 0.0) for p in opening}, 1.0)
+    r = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10")
+    d = r.scale_diagnostics.set_index("scale_id").loc["B1"]
+    assert list(r.scale_diagnostics.columns) == SCALE_COLUMNS
+    assert d.bias_pct == pytest.approx(2.0, abs=1e-9)
+    b = 0.02 / 1.02
+    assert d.bias_sigma_pct == pytest.approx(100 * (1 / math.sqrt(14e6)) / (1 - b) ** 2, rel=1e-6)
+    assert d.flagged and "B1" in d.message and "+2.00 %" in d.message
+    assert d.piles == "P1,P2,P3" and d.tonnes == pytest.approx(6000.0)
+    p = r.piles.set_index("pile_id")
+    assert (p.loc[["P1", "P2", "P3"], "reason_code"] == "SCALE_BIAS").all()
+    assert "scale:B1" in p.loc["P3", "flags"]
+
+
+def test_scale_bias_within_class_mpe_is_not_named():
+    # 0.5 % high on a class 1 scale (in-service MPE 1 %): significant with these sigmas, not named
+    T_ = {"P1": 10000.0, "P2": 20000.0, "P3": 30000.0}
+    opening = {p: 0.0 for p in T_}
+    book = book_from(opening, belt_t=T_)
+    v = _planted(0.005, T_)
+    r = reconcile(survey_of({p: T_[p] + v[p] for p in T_}, 1.0), book, MATERIALS, scales=SCALES)
+    d = r.scale_diagnostics.iloc[0]
+    assert d.bias_pct == pytest.approx(0.5, abs=1e-9)
+    assert not d.flagged and "within its MPE" in d.message
+
+
+def test_reclaim_scale_reading_high_shows_as_stock_over():
+    # R1 reclaims and reads 2 % high: dispatches overstated, survey above book (v > 0).
+    T_ = {"P1": 1000.0, "P2": 3000.0}
+    opening = {"P1": 5000.0, "P2": 5000.0}
+    book = book_from(opening, belt_t=T_, scale="R1")
+    v = {p: +0.02 / 1.02 * t for p, t in T_.items()}
+    sv = survey_of({p: opening[p] - T_[p] + v[p] for p in T_}, 1.0)
+    r = reconcile(sv, book, MATERIALS, scales=SCALES)
+    d = r.scale_diagnostics.set_index("scale_id").loc["R1"]
+    assert d.bias_pct == pytest.approx(2.0, abs=1e-9) and d.flagged
+
+
+def test_outlier_pile_is_left_out_of_the_fit_and_paired_as_a_transfer():
+    # P1-P3 as above with a 2 % bias; P4 also fed (1500 t) but 300 t were moved into it from P5
+    # without a record: P4 +300 t over its bias share, P5 -300 t. With P4 in, the fit gives
+    # b = -0.0077 (hand: sum T(-v) / sum T^2 = (280000 - 405000*...) < 0); P4's residual is the
+    # worst (> 3 sigma) so it is left out and b returns to 2 %.
+    T_ = {"P1": 1000.0, "P2": 2000.0, "P3": 3000.0, "P4": 1500.0}
+    opening = {"P1": 5000.0, "P2": 5000.0, "P3": 5000.0, "P4": 5000.0, "P5": 5000.0}
+    book = book_from(opening, belt_t=T_)
+    v = _planted(0.02, T_)
+    v["P4"] += 300.0
+    v["P5"] = -300.0
+    sv = survey_of({p: opening[p] + T_.get(p, 0.0) + v[p] for p in opening}, 1.0)
+    r = reconcile(sv, book, MATERIALS, scales=SCALES)
+    d = r.scale_diagnostics.iloc[0]
+    assert d.bias_pct == pytest.approx(2.0, abs=1e-9) and d.flagged
+    assert "left out of the fit as outliers: P4" in d.message
+    p = r.piles.set_index("pile_id")
+    assert p.loc["P4", "reason_code"] == "TRANSFER_SUSPECT" and p.loc["P5", "reason_code"] == "TRANSFER_SUSPECT"
+    assert "pair:P5" in p.loc["P4", "flags"] and "pair:P4" in p.loc["P5", "flags"]
+    assert (p.loc[["P1", "P2", "P3"], "reason_code"] == "SCALE_BIAS").all()
+
+
+def test_opposite_variances_of_different_materials_are_not_paired():
+    book = book_from({"A": 1000.0, "B": 1000.0}, materials={"A": "coal", "B": "ore"})
+    r = reconcile(survey_of({"A": 1100.0, "B": 900.0}, 1.0), book, MATERIALS)
+    assert set(r.piles["reason_code"]) == {"UNEXPLAINED"}
+
+
+def test_history_over_months_makes_a_bias_nameable():
+    # One pile per month fed 2000 t by B1 reading 1.5 % high, noise sigma 20 t.
+    # This month alone: one pile -> cannot be named.
+    # With three earlier months of the same: sigma_b = 20 / sqrt(4 x 2000^2) = 0.5 %
+    # (x 1/(1-b)^2 = 1.0302 -> 0.515 %), and 1.5 % > 2 x 0.515 % and > MPE 1 %: named.
+    v = -0.015 / 1.015 * 2000.0
+    book = book_from({"P1": 4000.0}, belt_t={"P1": 2000.0})
+    sv = survey_of({"P1": 6000.0 + v}, 20.0)
+    alone = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10")
+    d = alone.scale_diagnostics.iloc[0]
+    assert d.bias_pct == pytest.approx(1.5, abs=1e-9) and not d.flagged
+    assert "cannot be told" in d.message
+    history = pd.DataFrame({
+        "period": ["2026-07", "2026-08", "2026-09"], "pile_id": ["P1"] * 3, "scale_id": ["B1"] * 3,
+        "signed_t": [2000.0] * 3, "variance_t": [v] * 3, "noise_sigma_t": [20.0] * 3,
+    })
+    pooled = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10", history=history)
+    d = pooled.scale_diagnostics.iloc[0]
+    b = 0.015 / 1.015
+    assert d.bias_sigma_pct == pytest.approx(0.5 / (1 - b) ** 2, rel=1e-9)
+    assert d.flagged and "over 4 months" in d.message
+    # this month's rows come back for the next close
+    assert pooled.bias_rows[["pile_id", "scale_id", "signed_t"]].values.tolist() == [["P1", "B1", 2000.0]]
+
+
+def test_birge_ratio_inflates_sigma_when_scatter_exceeds_stated_sigmas():
+    # Equal T = 1000 t on 4 piles, variances -10 +/- 2 t, stated sigma 1 t (scatter within the
+    # 3-sigma outlier limit): b = mean(-v)/1000 = 0.01; residuals (v + 10) = [-2, 2, -2, 2] t;
+    # chi2 = 16, dof 3; sigma_b = 1/sqrt(4e6) x sqrt(16/3) = 1.155e-3 (before the beta
+    # conversion 1/(1-b)^2).
+    T_ = {f"P{i}": 1000.0 for i in range(4)}
+    book = book_from({p: 0.0 for p in T_}, belt_t=T_)
+    v = dict(zip(T_, [-12.0, -8.0, -12.0, -8.0]))
+    r = reconcile(survey_of({p: 1000.0 + v[p] for p in T_}, 1.0), book, MATERIALS, scales=SCALES)
+    d = r.scale_diagnostics.iloc[0]
+    b = 0.01
+    assert d.bias_pct == pytest.approx(100 * b / (1 - b), rel=1e-9)
+    assert d.bias_sigma_pct == pytest.approx(100 * math.sqrt(16 / 3) / 2000.0 / (1 - b) ** 2, rel=1e-9)
+    assert "left out" not in d.message
