@@ -119,6 +119,14 @@ CREATE TABLE reopenings (
     reopened_by  TEXT NOT NULL,
     reason       TEXT NOT NULL CHECK (length(trim(reason)) > 0)
 );
+-- one row per period ever closed: for a person browsing the file
+CREATE VIEW periods AS
+    SELECT period,
+           MAX(status = 'adopted') AS locked,
+           MAX(CASE WHEN status = 'adopted' THEN close_id END) AS adopted_close_id,
+           COUNT(*) AS closes,
+           (SELECT COUNT(*) FROM reopenings r WHERE r.period = c.period) AS reopenings
+    FROM closes c GROUP BY period;
 CREATE TRIGGER closes_keep BEFORE DELETE ON closes
     BEGIN SELECT RAISE(ABORT, 'closes are kept forever'); END;
 CREATE TRIGGER closes_only_supersede BEFORE UPDATE ON closes

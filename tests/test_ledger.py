@@ -120,6 +120,8 @@ def test_reopen_needs_a_reason_and_keeps_everything(ledger_path):
         assert len(every) == 2 * len(res.piles)
         adopted = led.history()
         assert adopted["survey_t"].tolist() == res2.piles["survey_t"].tolist()
+        view = led._db.execute("SELECT * FROM periods").fetchall()
+        assert view == [("2026-01", 1, led.closes().close_id.max(), 2, 1)]
         reo = led.reopenings("2026-01")
         assert reo.loc[0, "reason"] == "weighbridge tickets of the 14th were missing"
         assert reo.loc[0, "reopened_by"] == "b"
