@@ -148,3 +148,15 @@ def test_ogrinfo_reads_the_layers(gpkg, result):
                            "pile_id = 'P-LIME-1'"], capture_output=True, text=True, timeout=60)
     m = re.search(r"out_of_tolerance \((?:Integer|Integer\(Boolean\))\) = (\d)", proc.stdout)
     assert m and m.group(1) == "1", proc.stdout
+
+
+def test_undecided_flag_stays_empty(result, tmp_path):
+    """A significance that could not be decided (NaN) is NULL, never a True."""
+    res = result
+    res.piles["significant"] = res.piles["significant"].astype(object)
+    res.piles.loc[0, "significant"] = float("nan")
+    proc_path = write_layers(res, tmp_path / "p.gpkg")
+    df = read_piles_layer(proc_path)
+    first = df.loc[df.pile_id == "P-COAL-1", "significant"].iloc[0]
+    assert first is None or (isinstance(first, float) and math.isnan(first))
+    assert bool(df.loc[df.pile_id == "P-LIME-1", "significant"].iloc[0]) is True

@@ -38,8 +38,14 @@ def _piles_layer(result: CloseResult):
     gdf = gpd.GeoDataFrame(merged[PILE_COLUMNS + ["geometry"]], geometry="geometry",
                            crs=result.footprints.crs or result.crs)
     for col in ("significant", "out_of_tolerance"):
-        gdf[col] = gdf[col].astype(bool)
+        # nullable: a flag that could not be decided stays empty, it does not become True
+        gdf[col] = pd.array([None if _missing(v) else bool(v) for v in gdf[col]],
+                            dtype="boolean")
     return gdf
+
+
+def _missing(value) -> bool:
+    return value is None or value is pd.NA or (isinstance(value, float) and value != value)
 
 
 def _as_crs(gdf, crs: str, what: str):

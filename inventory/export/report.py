@@ -99,7 +99,7 @@ def _map_figure(result: CloseResult) -> str:
     for pid, geom in zip(result.footprints["pile_id"], result.footprints.geometry):
         pct = piles["variance_pct"].get(pid, np.nan) if pid in piles.index else np.nan
         colour = cmap(norm(pct)) if pct is not None and np.isfinite(pct) else cmap(np.nan)
-        oot = bool(piles["out_of_tolerance"].get(pid, False)) if pid in piles.index else False
+        oot = _flag(piles["out_of_tolerance"].get(pid, False)) if pid in piles.index else False
         for poly in getattr(geom, "geoms", [geom]):
             verts, codes = [], []
             for ring in [poly.exterior, *poly.interiors]:
@@ -162,6 +162,15 @@ def _bar_figure(result: CloseResult) -> str:
     return _png(fig)
 
 
+def _flag(v: Any) -> bool:
+    """A yes/no figure; missing (None, NaN, NA) counts as no."""
+    if v is None or v is pd.NA:
+        return False
+    if isinstance(v, (float, np.floating)) and not math.isfinite(float(v)):
+        return False
+    return bool(v)
+
+
 def _num(v: Any, digits: int = 2, signed: bool = False) -> str:
     if v is None or (isinstance(v, float) and not math.isfinite(v)):
         return ""
@@ -197,11 +206,12 @@ def _pile_rows(p: pd.DataFrame) -> tuple[list[list[str]], list[str]]:
             _num(r.volume_m3, 1), _num(r.survey_t), _num(r.book_t),
             _num(r.variance_t, signed=True), _num(r.variance_pct, signed=True),
             _num(2 * r.variance_sigma_t), _num(r.tolerance_pct),
-            _num(bool(r.significant)), _num(bool(r.out_of_tolerance)),
+            _num(_flag(r.significant)), _num(_flag(r.out_of_tolerance)),
             _num(r.adjustment_t, signed=True), _num(r.closing_t),
             html.escape(str(r.flags or "")),
         ])
-        classes.append("oot" if r.out_of_tolerance else ("sig" if r.significant else ""))
+        classes.append("oot" if _flag(r.out_of_tolerance)
+                       else ("sig" if _flag(r.significant) else ""))
     return rows, classes
 
 
@@ -209,7 +219,8 @@ def _movement_summary(mv: pd.DataFrame) -> str:
     if mv is None or not len(mv):
         return "<p>No movements this period.</p>"
     df = mv.copy()
-    df["counted"] = df["counted"].astype(bool)
+    df["counted"] = df["counted"].map(_flag).astype(bool)
+    df["before_survey"] = df["before_survey"].map(_flag).astype(bool)
     df["tonnes"] = pd.to_numeric(df["tonnes"], errors="coerce")
     rows = []
     for kind, g in df.groupby("kind", sort=True):
@@ -219,7 +230,7 @@ def _movement_summary(mv: pd.DataFrame) -> str:
             _num(float(c.loc[c["tonnes"] > 0, "tonnes"].sum())),
             _num(float(-c.loc[c["tonnes"] < 0, "tonnes"].sum())),
             _num(float(c["tonnes"].sum()), signed=True),
-            _num(float(c.loc[~c["before_survey"].astype(bool), "tonnes"].sum()), signed=True),
+            _num(float(c.loc[~c["before_survey"], "tonnes"].sum()), signed=True),
         ])
     return _table(["kind", "records", "not counted", "into piles (t)", "out of piles (t)",
                    "net (t)", "net after the survey (t)"], rows)
@@ -251,8 +262,8 @@ def report_html(result: CloseResult) -> str:
     var = float(pd.to_numeric(p["variance_t"], errors="coerce").sum())
     adj = float(pd.to_numeric(p["adjustment_t"], errors="coerce").sum())
     closing = float(pd.to_numeric(p["closing_t"], errors="coerce").sum())
-    n_oot = int(p["out_of_tolerance"].astype(bool).sum())
-    n_sig = int(p["significant"].astype(bool).sum())
+    n_oot = sum(_flag(v) for v in p["out_of_tolerance"])
+    n_sig = sum(_flag(v) for v in p["significant"])
     pct = 100.0 * var / book if book else float("nan")
     esc = html.escape
     headline = _table(["figure", "value"], [
@@ -276,11 +287,11 @@ def report_html(result: CloseResult) -> str:
                        esc(", ".join(map(str, r.piles)) if isinstance(r.piles, (list, tuple))
                            else str(r.piles)),
                        _num(r.tonnes), _num(r.bias_pct, signed=True), _num(r.bias_sigma_pct),
-                       _num(bool(r.flagged)), esc(str(r.message or ""))]
+                       _num(_flag(r.flagged)), esc(str(r.message or ""))]
                       for r in sd.itertuples(index=False)]
         scales = _table(["scale", "piles", "tonnes weighed", "shared bias (%)", "sigma (%)",
                          "flagged", "message"], scale_rows,
-                        ["oot" if r.flagged else "" for r in sd.itertuples(index=False)])
+                        ["oot" if _flag(r.flagged) else "" for r in sd.itertuples(index=False)])
     else:
         scales = "<p>No scale diagnostics for this period.</p>"
     dup = result.duplicates
