@@ -166,10 +166,21 @@ def _header(ws, row: int, names: Iterable[str]) -> None:
     bottom = Border(bottom=Side(style="thin"))
     for j, name in enumerate(names, start=1):
         c = ws.cell(row=row, column=j, value=name)
-        c.font = Font(bold=True)
+        c.font = Font(name="Calibri", bold=True, size=11)
         c.fill = fill
         c.border = bottom
         c.alignment = Alignment(vertical="center")
+
+
+def _print_setup(ws, landscape: bool = True, title_rows: str | None = None) -> None:
+    """Print (and PDF export) on pages as wide as the sheet, header row repeated."""
+    ws.page_setup.orientation = "landscape" if landscape else "portrait"
+    ws.page_setup.paperSize = ws.PAPERSIZE_A4
+    ws.sheet_properties.pageSetUpPr.fitToPage = True
+    ws.page_setup.fitToWidth = 1
+    ws.page_setup.fitToHeight = 0
+    if title_rows:
+        ws.print_title_rows = title_rows
 
 
 def _shown_len(value: Any, fmt: str | None) -> int:
@@ -217,6 +228,7 @@ def _table(ws, df: pd.DataFrame, columns: list[str], *, formats: Mapping[str, st
     last = 1 + len(data)
     ws.freeze_panes = freeze
     ws.auto_filter.ref = f"A1:{get_column_letter(len(columns))}{max(last, 1)}"
+    _print_setup(ws, title_rows="1:1")
     return 2, last
 
 
@@ -251,12 +263,12 @@ def _total_row(ws, row: int, label_col: int, label: str, sums: Mapping[int, tupl
     fill = PatternFill("solid", fgColor=_TOTAL_FILL)
     top = Border(top=Side(style="thin"), bottom=Side(style="double"))
     c = ws.cell(row=row, column=label_col, value=label)
-    c.font = Font(bold=True)
+    c.font = Font(name="Calibri", bold=True, size=11)
     for col, (first, last) in sums.items():
         letter = get_column_letter(col)
         cell = _formula(ws, row, col, f"=SUM({letter}{first}:{letter}{max(last, first)})"
                         if last >= first else "=0", formats.get(col))
-        cell.font = Font(bold=True)
+        cell.font = Font(name="Calibri", bold=True, size=11)
         cell.fill = fill
         cell.border = top
 
@@ -323,6 +335,7 @@ def _variance_sheet(wb, result: CloseResult) -> None:
     first, last = 2, 1 + n
     ws.freeze_panes = "B2"
     ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(last, 1)}"
+    _print_setup(ws, title_rows="1:1")
     _mark_rows(ws, first, last, len(cols), cols.index("out_of_tolerance") + 1,
                cols.index("significant") + 1)
     sums = {cols.index(c) + 1: (first, last)
@@ -366,6 +379,7 @@ def _movements_sheet(wb, result: CloseResult) -> None:
             _put(ws, i, j, v, fmt, zone)
     first, last = 2, 1 + len(mv)
     ws.freeze_panes = "A2"
+    _print_setup(ws, title_rows="1:1")
     ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(last, 1)}"
     t = get_column_letter(cols.index("tonnes") + 1)
     k = get_column_letter(cols.index("counted") + 1)
@@ -465,7 +479,7 @@ def _header_at(ws, row: int, names: list[str]) -> None:
     from openpyxl.styles import Font
 
     for j, name in enumerate(names, start=1):
-        ws.cell(row=row, column=j, value=name).font = Font(bold=True)
+        ws.cell(row=row, column=j, value=name).font = Font(name="Calibri", bold=True, size=11)
 
 
 def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
@@ -473,7 +487,7 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
 
     ws.title = "Summary"
     ws["A1"] = f"Stock close {result.period}: {result.site_name}"
-    ws["A1"].font = Font(bold=True, size=14)
+    ws["A1"].font = Font(name="Calibri", bold=True, size=14)
     instant = _cell_value(result.survey_instant)
     facts: list[tuple[str, Any, str | None]] = [
         ("Site", result.site_name, None),
@@ -487,11 +501,11 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
     ]
     r = 3
     for label, value, fmt in facts:
-        ws.cell(row=r, column=1, value=label).font = Font(bold=True)
+        ws.cell(row=r, column=1, value=label).font = Font(name="Calibri", bold=True, size=11)
         _put(ws, r, 2, value, fmt)
         r += 1
     r += 1
-    ws.cell(row=r, column=1, value="Totals (formulas over the Piles sheet)").font = Font(bold=True)
+    ws.cell(row=r, column=1, value="Totals (formulas over the Piles sheet)").font = Font(name="Calibri", bold=True, size=11)
     r += 1
     totals = [
         ("Opening", f"={refs['opening_t']}", _FMT_T),
@@ -511,10 +525,12 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
         _formula(ws, r, 2, formula, fmt)
         r += 1
     r += 1
-    ws.cell(row=r, column=1, value="Sign convention").font = Font(bold=True)
-    ws.cell(row=r, column=2, value=SIGN_CONVENTION).alignment = Alignment(wrap_text=True)
+    ws.cell(row=r, column=1, value="Sign convention").font = Font(name="Calibri", bold=True, size=11)
+    # long texts are left to run on into the empty cells to their right (no wrapping, so
+    # no row-height guessing); figures stay in a column of their own width
+    ws.cell(row=r, column=2, value=SIGN_CONVENTION)
     r += 2
-    ws.cell(row=r, column=1, value="Legend").font = Font(bold=True)
+    ws.cell(row=r, column=1, value="Legend").font = Font(name="Calibri", bold=True, size=11)
     r += 1
     for fill, text in (
         (FILL_OUT_OF_TOLERANCE, "Out of tolerance: |variance %| exceeds the material's tolerance"),
@@ -525,12 +541,17 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
         ws.cell(row=r, column=2, value=text)
         r += 1
     r += 1
-    ws.cell(row=r, column=1, value="Cautions").font = Font(bold=True)
+    ws.cell(row=r, column=1, value="Cautions").font = Font(name="Calibri", bold=True, size=11)
     for text in CAUTIONS:
-        ws.cell(row=r, column=2, value=text).alignment = Alignment(wrap_text=True)
+        ws.cell(row=r, column=2, value=text)
         r += 1
     ws.column_dimensions["A"].width = 36
-    ws.column_dimensions["B"].width = 90
+    ws.column_dimensions["B"].width = 22
+    for row in ws.iter_rows(min_row=3, min_col=2, max_col=2):
+        for c in row:
+            c.alignment = Alignment(horizontal="left")
+    ws.page_setup.orientation = "portrait"
+    ws.page_setup.paperSize = ws.PAPERSIZE_A4
 
 
 def write_workbook(result: CloseResult, path: str | Path) -> Path:
@@ -680,10 +701,10 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
 
     notes = wb.create_sheet("Notes")
     notes["A1"] = "Variance history from the ledger (adopted closes unless status says otherwise)"
-    notes["A1"].font = Font(bold=True)
+    notes["A1"].font = Font(name="Calibri", bold=True, size=11)
     notes["A3"] = SIGN_CONVENTION
     notes["A5"] = "Legend"
-    notes["A5"].font = Font(bold=True)
+    notes["A5"].font = Font(name="Calibri", bold=True, size=11)
     notes["A6"].fill = PatternFill("solid", fgColor=FILL_OUT_OF_TOLERANCE)
     notes["B6"] = "Out of tolerance"
     notes["A7"].fill = PatternFill("solid", fgColor=FILL_SIGNIFICANT)
