@@ -49,15 +49,16 @@ __all__ = [
     "SCALE_LOAD_COLUMNS",
     "BookResult",
     "book_stock",
+    "opening_from_close",
     "period_bounds",
 ]
 
 #: Columns of :attr:`BookResult.piles`. Receipts, dispatches and transfers are positive
 #: tonnes counted after the opening instant and at or before the survey instant.
 BOOK_PILE_COLUMNS = [
-    "pile_id", "material", "opening_t", "opening_sigma_t", "receipts_t", "dispatches_t",
-    "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t", "after_survey_net_t",
-    "book_end_t",
+    "pile_id", "material", "opening_t", "opening_sigma_t", "opening_density_sigma_t",
+    "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t",
+    "after_survey_net_t", "book_end_t",
 ]
 
 #: Columns of :attr:`BookResult.belt_split`: one row per piece of a belt-scale interval.
@@ -145,6 +146,51 @@ def period_bounds(period: str, timezone: str | ZoneInfo) -> tuple[pd.Timestamp, 
     return start_local.tz_convert("UTC"), end_local.tz_convert("UTC")
 
 
+def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: str = "survey") -> pd.DataFrame:
+    """Opening balances (with their uncertainty) from the previous close's adopted pile table.
+
+    The opening is the previous closing_t. When that closing was set from a survey, the
+    survey's error is now in the book: ``sigma_t`` carries it, and ``density_sigma_t`` the part
+    of it due to the bulk density (volume x density sd), which is the *same* error as this
+    month's survey density error when the same table density is used - reconcile subtracts
+    the two instead of adding them. With ``adjust_to = "midpoint"`` the closing was
+    (survey + book) / 2, so half the survey error and half the book error carry over.
+
+    Parameters
+    ----------
+    adopted : DataFrame
+        PILE_COLUMNS of the previous close (``pile_id``, ``closing_t``, ``survey_t``,
+        ``survey_sigma_t``, ``book_sigma_t``, ``volume_m3``, ``material`` as available).
+    materials : mapping or DataFrame, optional
+        ``density_sd_t_m3`` per material.
+    adjust_to : str
+        The previous close's ``adjust_to``.
+
+    Returns
+    -------
+    DataFrame
+        ``pile_id``, ``tonnes``, ``sigma_t``, ``density_sigma_t``.
+    """
+    a = pd.DataFrame(adopted).copy()
+    f = 1.0 if adjust_to == "survey" else 0.5
+    col = lambda c: pd.to_numeric(a[c], errors="coerce") if c in a else pd.Series(np.nan, index=a.index)  # noqa: E731
+    surveyed = col("survey_t").notna()
+    s_sig, b_sig = col("survey_sigma_t").fillna(0.0), col("book_sigma_t").fillna(0.0)
+    sd = pd.Series(np.nan, index=a.index)
+    if materials is not None and "material" in a:
+        if isinstance(materials, pd.DataFrame):
+            table = dict(zip(materials["material"].astype(str), materials["density_sd_t_m3"]))
+        else:
+            table = {str(k): _get(m, "density_sd_t_m3") for k, m in materials.items()}
+        sd = a["material"].astype(str).map(table).astype(float)
+    dens = (col("volume_m3") * sd).fillna(0.0)
+    sigma = np.where(surveyed, np.sqrt((f * s_sig) ** 2 + ((1 - f) * b_sig) ** 2), b_sig)
+    return pd.DataFrame({
+        "pile_id": a["pile_id"].astype(str), "tonnes": col("closing_t"),
+        "sigma_t": sigma, "density_sigma_t": np.where(surveyed, f * dens, 0.0),
+    })
+
+
 def _utc_instant(value: Any, name: str) -> pd.Timestamp:
     ts = pd.Timestamp(value)
     if ts.tzinfo is None:
@@ -227,9 +273,18 @@ def _pile_table(piles: Any) -> pd.DataFrame:
 def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd.DataFrame:
     """pile_id, tonnes, sigma_t, start (UTC or NaT) from a dict or a DataFrame."""
     if opening is None:
-        return pd.DataFrame({"pile_id": [], "tonnes": [], "sigma_t": [], "start": []})
+        return pd.DataFrame({"pile_id": [], "tonnes": [], "sigma_t": [], "density_sigma_t": [], "start": []})
     if isinstance(opening, Mapping):
         df = pd.DataFrame({"pile_id": [str(k) for k in opening], "tonnes": [float(v) for v in opening.values()]})
+        missing = ~np.isfinite(df["tonnes"])
+        if missing.any():
+            # The ledger stores no closing for a pile it could not close; the pile opens
+            # empty, and the controller is told.
+            warnings.warn(
+                "no opening balance for pile(s) " + ", ".join(df.loc[missing, "pile_id"]) + ": taken as 0 t",
+                InputWarning, stacklevel=3,
+            )
+            df.loc[missing, "tonnes"] = 0.0
     else:
         df = pd.DataFrame(opening).copy()
         if "tonnes" not in df.columns and "closing_t" in df.columns:
@@ -237,7 +292,8 @@ def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd
     df = _with_provenance(df, "opening.csv", ["pile_id", "tonnes"])
     df["pile_id"] = df["pile_id"].astype(str)
     df["tonnes"] = pd.to_numeric(df["tonnes"], errors="coerce")
-    df["sigma_t"] = pd.to_numeric(df["sigma_t"], errors="coerce").fillna(0.0) if "sigma_t" in df else 0.0
+    for c in ("sigma_t", "density_sigma_t"):
+        df[c] = pd.to_numeric(df[c], errors="coerce").fillna(0.0) if c in df else 0.0
     if "as_of" in df.columns:
         df["start"] = _utc_column(df, "as_of", df["source"].iloc[0] if len(df) else "opening.csv", problems)
     else:
@@ -250,7 +306,7 @@ def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd
     dup = df["pile_id"].duplicated(keep=False)
     for r in df[dup].itertuples():
         problems.append(Problem(r.source, int(r.line), "pile_id", f"pile {r.pile_id!r} has more than one opening balance"))
-    return df[["pile_id", "tonnes", "sigma_t", "start"]]
+    return df[["pile_id", "tonnes", "sigma_t", "density_sigma_t", "start"]]
 
 
 # ----------------------------------------------------------------------------- checks
@@ -488,8 +544,11 @@ def book_stock(
     opening : mapping or DataFrame or None
         Opening book stock: ``{pile_id: tonnes}`` or a DataFrame with ``pile_id`` and
         ``tonnes`` (or ``closing_t``, as the ledger stores it), optional ``as_of`` (the
-        instant the balance holds at; records at or before it are already in it) and
-        ``sigma_t`` (its 1-sigma, added in quadrature). Piles without one open at 0 t.
+        instant the balance holds at; records at or before it are already in it),
+        ``sigma_t`` (its 1-sigma, added in quadrature) and ``density_sigma_t`` (the part of
+        that sigma due to the bulk density, when the opening is an adopted survey figure; it
+        is common with this survey's density error, see :func:`opening_from_close`). Piles
+        without one open at 0 t; a NaN in a mapping is taken as 0 t with a warning.
     at : datetime
         Survey instant (tz-aware). Records at or before it are in the book at survey.
     scales : mapping
@@ -659,6 +718,7 @@ def _pile_balances(pile_tab: pd.DataFrame, open_tab: pd.DataFrame, mov: pd.DataF
     op = open_tab.set_index("pile_id")
     out["opening_t"] = out["pile_id"].map(op["tonnes"]).fillna(0.0).astype(float)
     out["opening_sigma_t"] = out["pile_id"].map(op["sigma_t"]).fillna(0.0).astype(float)
+    out["opening_density_sigma_t"] = out["pile_id"].map(op["density_sigma_t"]).fillna(0.0).astype(float)
     c = mov[mov["counted"]]
     pre = c[c["before_survey"]]
 

@@ -252,7 +252,11 @@ def reconcile(
     surveyed = S.notna()
     p["variance_t"] = S - B
     p["variance_pct"] = np.where(B > 0, 100.0 * p["variance_t"] / B.where(B > 0), np.nan)
-    p["variance_sigma_t"] = np.sqrt(p["survey_sigma_t"].astype(float).fillna(0.0) ** 2 + p["book_sigma_t"] ** 2)
+    if "opening_density_sigma_t" not in p:
+        p["opening_density_sigma_t"] = 0.0
+    p["opening_density_sigma_t"] = p["opening_density_sigma_t"].astype(float).fillna(0.0)
+    p["_d_survey"] = _density_part(p, info)
+    p["variance_sigma_t"] = _variance_sigma(p, p["book_sigma_t"])
     p["significant"] = surveyed & (p["variance_t"].abs() > k * p["variance_sigma_t"])
     tol = p["material"].map(lambda m: _num(info.get(m, {}).get("tolerance_pct")))
     p["tolerance_pct"] = tol.where(tol.notna() & (tol > 0), cfg.default_tolerance_pct).astype(float)
@@ -287,7 +291,7 @@ def reconcile(
     journal = p[surveyed & (p["adjustment_t"] != 0)][["pile_id", "material", "adjustment_t", "reason_code", "reason"]]
     journal = journal.reset_index(drop=True)[JOURNAL_COLUMNS]
     materials_out = _per_material(p, book, info, k, factor)
-    change = None if previous is None else _change(p, previous, k)
+    change = None if previous is None else _change(p, previous, k, info)
     return Reconciliation(
         piles=piles_out, materials=materials_out, change=change, scale_diagnostics=diag,
         journal=journal, bias_rows=bias_rows, settings=cfg,
@@ -297,13 +301,42 @@ def reconcile(
 # ----------------------------------------------------------------------------- diagnostics
 
 
+def _density_part(df: pd.DataFrame, info: dict) -> pd.Series:
+    """The part of each survey sigma due to the bulk density (volume x density sd), tonnes.
+
+    Taken from a ``density_sigma_t`` column when the survey table has one, else from
+    ``volume_m3`` and the material's ``density_sd_t_m3``; 0 when neither is known (the whole
+    survey sigma is then treated as independent of everything else).
+    """
+    sigma = df["survey_sigma_t"].astype(float).fillna(0.0) if "survey_sigma_t" in df else pd.Series(0.0, index=df.index)
+    if "density_sigma_t" in df:
+        d = pd.to_numeric(df["density_sigma_t"], errors="coerce")
+    elif "volume_m3" in df and "material" in df:
+        sd = df["material"].map(lambda m: _num(info.get(m, {}).get("density_sd_t_m3")))
+        d = pd.to_numeric(df["volume_m3"], errors="coerce") * sd
+    else:
+        d = pd.Series(0.0, index=df.index)
+    return np.minimum(d.fillna(0.0).abs(), sigma)
+
+
+def _variance_sigma(p: pd.DataFrame, book_sigma: pd.Series) -> pd.Series:
+    """sigma of survey - book, with the density error shared by survey and opening.
+
+    When the opening is an adopted survey figure, the same table density erred in both: its
+    part enters as (d_survey - d_opening) instead of in quadrature twice. Everything else
+    (volume errors, scale errors, the rest of the opening) is independent.
+    """
+    s_ind = np.clip(p["survey_sigma_t"].astype(float).fillna(0.0) ** 2 - p["_d_survey"] ** 2, 0.0, None)
+    b_ind = np.clip(book_sigma ** 2 - p["opening_density_sigma_t"] ** 2, 0.0, None)
+    return np.sqrt(s_ind + b_ind + (p["_d_survey"] - p["opening_density_sigma_t"]) ** 2)
+
+
 def _noise_sigma(p: pd.DataFrame, book: BookResult) -> pd.Series:
     """Per pile sigma of the variance without the belt scales' own class terms."""
     sl = book.scale_load
     other = sl[sl["kind"] != "belt"].groupby("pile_id")["sigma_t"].apply(lambda s: float(np.sum(np.square(s))))
-    var = (p["survey_sigma_t"].astype(float).fillna(0.0) ** 2 + p["opening_sigma_t"] ** 2
-           + p["pile_id"].map(other).fillna(0.0))
-    return np.sqrt(var)
+    book_wo_belts = np.sqrt(p["opening_sigma_t"] ** 2 + p["pile_id"].map(other).fillna(0.0))
+    return _variance_sigma(p, book_wo_belts)
 
 
 def _scale_diagnostics(
@@ -508,7 +541,7 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
 # ----------------------------------------------------------------------------- aggregates
 
 
-def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, factor: float) -> pd.DataFrame:
+def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, factor: float) -> pd.DataFrame:  # noqa: C901
     """Totals per material with correlations handled: one scale's error is common to all the
     piles it weighed for (linear within a scale, quadrature across scales); one material's
     density error is common to all its piles."""
@@ -517,18 +550,18 @@ def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, facto
     for mat, g in p.groupby("material", sort=True, dropna=False):
         sv = g[g["survey_t"].notna()]
         sigma_S = sv["survey_sigma_t"].astype(float).fillna(0.0)
-        dsd = _num(info.get(mat, {}).get("density_sd_t_m3"))
-        if "volume_m3" in sv and np.isfinite(dsd) and sv["volume_m3"].notna().all():
-            d = sv["volume_m3"].astype(float) * dsd          # density part, common to the material
-            rest = np.clip(sigma_S ** 2 - d ** 2, 0.0, None)
-            s_survey = float(np.sqrt(rest.sum() + d.sum() ** 2))
-        else:
-            s_survey = float(np.sqrt((sigma_S ** 2).sum()))
-        per_scale = sl[sl["material"] == mat].groupby("scale_id")["sigma_t"].sum()
-        s_book = float(np.sqrt((per_scale ** 2).sum() + (g["opening_sigma_t"] ** 2).sum()))
+        d_S, d_O = sv["_d_survey"], sv["opening_density_sigma_t"]
+        s_ind = float(np.clip(sigma_S ** 2 - d_S ** 2, 0.0, None).sum())
+        # density: one error for all piles of the material, in this survey and in any opening
+        # that was an adopted survey
+        s_survey = float(np.sqrt(s_ind + d_S.sum() ** 2))
+        per_scale = sl[sl["pile_id"].isin(sv["pile_id"])].groupby("scale_id")["sigma_t"].sum()
+        o_ind = float(np.clip(sv["opening_sigma_t"] ** 2 - d_O ** 2, 0.0, None).sum())
+        s_book = float(np.sqrt((per_scale ** 2).sum() + o_ind + d_O.sum() ** 2))
+        s_v_val = float(np.sqrt(s_ind + (per_scale ** 2).sum() + o_ind + (d_S.sum() - d_O.sum()) ** 2))
         S, Bk = float(sv["survey_t"].sum()), float(sv["book_t"].sum())
         v = S - Bk
-        s_v = float(np.hypot(s_survey, s_book))
+        s_v = s_v_val
         tol = _num(info.get(mat, {}).get("tolerance_pct"))
         tol = tol if np.isfinite(tol) and tol > 0 else float(g["tolerance_pct"].iloc[0])
         rows.append({
@@ -540,7 +573,7 @@ def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, facto
     return pd.DataFrame(rows, columns=MATERIAL_COLUMNS)
 
 
-def _change(p: pd.DataFrame, previous: pd.DataFrame, k: float) -> pd.DataFrame:
+def _change(p: pd.DataFrame, previous: pd.DataFrame, k: float, info: dict) -> pd.DataFrame:
     """Measured change between two surveys vs the net movement booked between them.
 
     net movement = (movements from the previous survey to this opening) + (book - opening);
@@ -550,17 +583,23 @@ def _change(p: pd.DataFrame, previous: pd.DataFrame, k: float) -> pd.DataFrame:
     prev = pd.DataFrame(previous).copy()
     prev["pile_id"] = prev["pile_id"].astype(str)
     prev = prev.rename(columns={"survey_t": "previous_survey_t", "survey_sigma_t": "previous_sigma_t",
-                                "after_survey_net_t": "previous_after_t"})
+                                "after_survey_net_t": "previous_after_t"}).drop(columns=["material"], errors="ignore")
     for c in ("previous_sigma_t", "previous_after_t"):
         if c not in prev:
             prev[c] = 0.0
-    m = p.merge(prev[["pile_id", "previous_survey_t", "previous_sigma_t", "previous_after_t"]], on="pile_id", how="inner")
+    prev["material"] = prev["pile_id"].map(dict(zip(p["pile_id"], p["material"])))
+    prev["survey_sigma_t"] = prev["previous_sigma_t"]
+    prev["previous_d_t"] = _density_part(prev, info)
+    m = p.merge(prev[["pile_id", "previous_survey_t", "previous_sigma_t", "previous_after_t", "previous_d_t"]],
+                on="pile_id", how="inner")
     m["measured_change_t"] = m["survey_t"] - m["previous_survey_t"]
     m["net_movement_t"] = m["previous_after_t"].fillna(0.0) + (m["book_t"] - m["opening_t"])
     m["difference_t"] = m["measured_change_t"] - m["net_movement_t"]
     movement_var = np.clip(m["book_sigma_t"] ** 2 - m["opening_sigma_t"] ** 2, 0.0, None)
-    m["difference_sigma_t"] = np.sqrt(m["survey_sigma_t"].astype(float).fillna(0.0) ** 2
-                                      + m["previous_sigma_t"].astype(float).fillna(0.0) ** 2 + movement_var)
+    # the table density erred alike in both surveys: its parts subtract
+    now_ind = np.clip(m["survey_sigma_t"].astype(float).fillna(0.0) ** 2 - m["_d_survey"] ** 2, 0.0, None)
+    prev_ind = np.clip(m["previous_sigma_t"].astype(float).fillna(0.0) ** 2 - m["previous_d_t"] ** 2, 0.0, None)
+    m["difference_sigma_t"] = np.sqrt(now_ind + prev_ind + (m["_d_survey"] - m["previous_d_t"]) ** 2 + movement_var)
     m["significant"] = m["difference_t"].abs() > k * m["difference_sigma_t"]
     m["opening_gap_t"] = m["variance_t"] - m["difference_t"]
     return m[CHANGE_COLUMNS].sort_values("pile_id").reset_index(drop=True)

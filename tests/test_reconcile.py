@@ -10,7 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from inventory.book import book_stock
+from inventory.book import book_stock, opening_from_close
+from inventory.errors import InputWarning
 from inventory.reconcile import REASON_CODES, SIGN_CONVENTION, ReconcileSettings, reconcile
 from inventory.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
 
@@ -267,3 +268,33 @@ def test_birge_ratio_inflates_sigma_when_scatter_exceeds_stated_sigmas():
     assert d.bias_pct == pytest.approx(100 * b / (1 - b), rel=1e-9)
     assert d.bias_sigma_pct == pytest.approx(100 * math.sqrt(16 / 3) / 2000.0 / (1 - b) ** 2, rel=1e-9)
     assert "left out" not in d.message
+
+
+def test_density_error_shared_with_an_adopted_opening_is_not_counted_twice():
+    # Previous close adopted its survey: 1000 t from 1000 m3 at 1.0 t/m3, density sd 0.04 ->
+    # density part 40 t, volume part 30 t, survey sigma 50 t.
+    # This month: 1100 m3 -> density part 44 t, volume part 30 t, survey sigma sqrt(900 + 1936).
+    # Book: opening 1000 t + 100 t on B1 (class 1 in service: bound 1 t, sigma 1/sqrt3).
+    # Variance sigma = sqrt(30^2 + (30^2 + 1/3) + (44 - 40)^2) = sqrt(1816.33) = 42.62 t
+    # (independent treatment would give sqrt(2836 + 2500.33) = 73.05 t).
+    mats = {"coal": NS(tolerance_pct=3.0, density_sd_t_m3=0.04)}
+    adopted = pd.DataFrame({"pile_id": ["A"], "material": ["coal"], "closing_t": [1000.0], "survey_t": [1000.0],
+                            "survey_sigma_t": [50.0], "book_sigma_t": [9.0], "volume_m3": [1000.0]})
+    opening = opening_from_close(adopted, mats, "survey")
+    assert opening[["tonnes", "sigma_t", "density_sigma_t"]].values.tolist() == [[1000.0, 50.0, 40.0]]
+    rows = [{"scale_id": "B1", "start": T("2026-10-02T00:00Z"), "end": T("2026-10-02T01:00Z"), "tonnes": 100.0}]
+    routes = [{"scale_id": "B1", "pile_id": "A", "start": T("2026-10-01T00:00Z"), "end": T("2026-11-01T00:00Z")}]
+    book = book_stock(NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)), opening, AT, SCALES,
+                      pd.DataFrame({"pile_id": ["A"], "material": ["coal"]}), END, START)
+    sv = survey_of({"A": 1100.0}, math.sqrt(900 + 44.0 ** 2), volume_m3={"A": 1100.0})
+    r = reconcile(sv, book, mats)
+    assert r.piles.iloc[0].variance_sigma_t == pytest.approx(math.sqrt(900 + 900 + 1 / 3 + 16), rel=1e-9)
+    # midpoint: half the survey error and half the book error carried over
+    mid = opening_from_close(adopted, mats, "midpoint").iloc[0]
+    assert mid.sigma_t == pytest.approx(math.hypot(25.0, 4.5)) and mid.density_sigma_t == pytest.approx(20.0)
+
+
+def test_missing_ledger_opening_opens_empty_with_a_warning():
+    with pytest.warns(InputWarning, match="pile.s. B: taken as 0 t"):
+        book = book_stock(NS(), {"A": 10.0, "B": float("nan")}, AT, SCALES, ["A", "B"], END, START)
+    assert book.piles.set_index("pile_id")["opening_t"].to_dict() == {"A": 10.0, "B": 0.0}
