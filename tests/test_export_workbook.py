@@ -303,3 +303,15 @@ def test_quiet_month_and_awkward_text(tmp_path):
     flag = wb["Piles"].cell(row=2, column=PILE_COLUMNS.index("flags") + 1).value
     assert flag.startswith("bad\ufffdbyte") and len(flag) == 32767  # Excel's cell limit
     assert wb["Movements"].max_row >= 1 and [c.value for c in wb["Movements"][1]][0] == "kind"
+
+
+def test_history_workbook_without_closes(tmp_path):
+    from openpyxl import load_workbook
+
+    with Ledger(tmp_path / "ledger.sqlite") as led:
+        df = led.history()
+    wb = load_workbook(write_history_workbook(df, tmp_path / "h.xlsx"))
+    assert [c.value for c in wb["History"][1]] == list(df.columns)
+    assert wb["History"].max_row == 1
+    assert wb["By month"]["A1"].value == "No closed periods match."
+    assert not (tmp_path / "ledger.sqlite").exists()  # reading never creates a ledger
