@@ -1,0 +1,273 @@
+"""The surface grid of a survey: points -> per-cell statistic, coverage, hole filling, GeoTIFF.
+
+Gridding streams: :class:`SurfaceAccumulator` takes points chunk by chunk and keeps only
+per-cell sums (``numpy.bincount``), so memory is the grid, not the cloud. The cell
+statistic is ``mean`` or ``max`` for any chunking; ``median`` needs every point of a cell in
+one call (the survey step feeds whole tiles whose edges fall on cell edges) and says so
+when a cell comes back.
+
+Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
+the scanned cell centres (scipy ``griddata``), only where the nearest scanned cell is at
+most ``max_fill_distance_m`` away; larger gaps stay nodata and are reported.
+
+Rasters are written as tiled (256 x 256), DEFLATE-compressed GeoTIFFs with overviews, CRS
+and nodata, through a temporary file renamed into place.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from .errors import RunError
+from .grid import Grid, Surface
+
+__all__ = [
+    "STATISTICS",
+    "SURFACE_NODATA",
+    "SurfaceAccumulator",
+    "FillReport",
+    "fill_holes",
+    "grid_points",
+    "write_geotiff",
+    "write_surface",
+    "write_coverage",
+    "read_geotiff",
+]
+
+#: Cell statistics of surface points (site.toml ``[grid] statistic``).
+STATISTICS = ("mean", "median", "max")
+#: Nodata of the surface GeoTIFF (float32); NaN would also do, but not every GIS reads it.
+SURFACE_NODATA = -9999.0
+#: Tile edge of written GeoTIFFs (OGC COG 21-026 asks for multiples of 16; 256 is usual).
+TILE = 256
+
+
+class SurfaceAccumulator:
+    """Per-cell statistic, count and spread of points on a grid, fed chunk by chunk.
+
+    Examples
+    --------
+    >>> g = Grid(0.0, 2.0, 1.0, 2, 2, "EPSG:32633")
+    >>> acc = SurfaceAccumulator(g)
+    >>> acc.add(np.array([0.5, 0.5, 1.5]), np.array([1.5, 1.5, 0.5]), np.array([1.0, 3.0, 5.0]))
+    3
+    >>> s = acc.result()
+    >>> s.z.tolist(), s.count.tolist()
+    ([[2.0, nan], [nan, 5.0]], [[2, 0], [0, 1]])
+    """
+
+    def __init__(self, grid: Grid, statistic: str = "mean") -> None:
+        if statistic not in STATISTICS:
+            raise ValueError(f"statistic must be one of {STATISTICS}, got {statistic!r}")
+        self.grid = grid
+        self.statistic = statistic
+        n = grid.nrows * grid.ncols
+        self._n = np.zeros(n, np.int64)
+        self._s1 = np.zeros(n)          # sum of (z - z0)
+        self._s2 = np.zeros(n)          # sum of (z - z0)^2
+        self._stat = np.full(n, np.nan) # max or median (mean comes from the sums)
+        self._z0: float | None = None   # reference height; keeps the sums well conditioned
+        self.outside = 0
+
+    def add(self, x: np.ndarray, y: np.ndarray, z: np.ndarray) -> int:
+        """Add points; returns how many fell inside the grid."""
+        x, y, z = (np.asarray(a, float) for a in (x, y, z))
+        row, col, inside = self.grid.index(x, y)
+        self.outside += int((~inside).sum())
+        if not inside.any():
+            return 0
+        k = (row * self.grid.ncols + col)[inside]
+        z = z[inside]
+        if self._z0 is None:
+            self._z0 = float(np.mean(z))
+        dz = z - self._z0
+        size = self._n.size
+        if self.statistic == "median":
+            cells = np.unique(k)
+            if (self._n[cells] > 0).any():
+                raise RunError("median gridding needs all points of a cell in one call; "
+                               "a cell was fed twice (tiles must end on cell edges)")
+            order = np.lexsort((z, k))
+            ks, zs = k[order], z[order]
+            starts = np.flatnonzero(np.r_[True, ks[1:] != ks[:-1]])
+            counts = np.diff(np.r_[starts, len(ks)])
+            lo = zs[starts + (counts - 1) // 2]
+            hi = zs[starts + counts // 2]
+            self._stat[ks[starts]] = 0.5 * (lo + hi)
+        elif self.statistic == "max":
+            cur = np.where(np.isnan(self._stat), -np.inf, self._stat)
+            np.maximum.at(cur, k, z)
+            self._stat = np.where(np.isinf(cur), np.nan, cur)
+        self._n += np.bincount(k, minlength=size)
+        self._s1 += np.bincount(k, dz, minlength=size)
+        self._s2 += np.bincount(k, dz * dz, minlength=size)
+        return int(inside.sum())
+
+    def result(self, date: str = "") -> Surface:
+        """The surface so far (no hole filling)."""
+        n = self._n
+        z0 = self._z0 or 0.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = self._s1 / n
+            m = mean + z0 if self.statistic == "mean" else self._stat
+            dm = m - z0
+            # spread about the cell statistic: E[(z - m)^2] = E[dz^2] - 2 dm E[dz] + dm^2
+            var = self._s2 / n - 2 * dm * mean + dm * dm
+            sd = np.where(n >= 2, np.sqrt(np.maximum(var, 0.0)), np.nan)
+        z = np.where(n > 0, m, np.nan)
+        shape = self.grid.shape
+        return Surface(self.grid, z.reshape(shape), n.astype(np.int32).reshape(shape), sd.reshape(shape),
+                       np.zeros(shape, bool), date, {"statistic": self.statistic})
+
+
+def grid_points(grid: Grid, x: np.ndarray, y: np.ndarray, z: np.ndarray, statistic: str = "mean",
+                date: str = "") -> Surface:
+    """Grid one array of points (convenience over :class:`SurfaceAccumulator`)."""
+    acc = SurfaceAccumulator(grid, statistic)
+    acc.add(x, y, z)
+    return acc.result(date)
+
+
+@dataclass(frozen=True)
+class FillReport:
+    """What hole filling did: cells filled, and enclosed gaps left as nodata."""
+
+    filled_cells: int
+    gap_cells: int
+    gap_area_m2: float
+    largest_gap_m2: float
+
+    def __str__(self) -> str:
+        return (f"{self.filled_cells} cells filled, {self.gap_cells} cells "
+                f"({self.gap_area_m2:.1f} m2) of enclosed gaps left empty")
+
+
+def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillReport]:
+    """Fill unscanned cells whose nearest scanned cell is at most ``max_distance_m`` away.
+
+    Linear interpolation over the Delaunay triangulation of scanned cell centres (scipy
+    ``griddata``); cells outside that triangulation are not extrapolated. Gaps that stay
+    empty and are enclosed by data (not connected to the grid edge) are reported.
+    """
+    from scipy import ndimage
+    from scipy.interpolate import griddata
+
+    g = surface.grid
+    scanned = np.isfinite(surface.z) & (surface.count > 0)
+    z = surface.z.copy()
+    filled = np.zeros(g.shape, bool)
+    if scanned.any() and (~scanned).any() and max_distance_m > 0:
+        dist = ndimage.distance_transform_edt(~scanned) * g.cell
+        target = ~scanned & (dist <= max_distance_m + 1e-9)
+        if target.any():
+            # scanned cells near a target are all the triangulation needs
+            reach = int(math.ceil(max_distance_m / g.cell)) + 2
+            near = ndimage.binary_dilation(target, iterations=reach) & scanned
+            cx, cy = g.centers()
+            if near.sum() >= 3:
+                try:
+                    zt = griddata(np.column_stack([cx[near], cy[near]]), surface.z[near],
+                                  np.column_stack([cx[target], cy[target]]), method="linear")
+                except Exception:  # QhullError: all source cells on one line
+                    zt = np.full(int(target.sum()), np.nan)
+                ok = np.isfinite(zt)
+                idx = np.flatnonzero(target.ravel())[ok]
+                z.ravel()[idx] = zt[ok]
+                filled.ravel()[idx] = True
+    empty = ~scanned & ~filled
+    labels, n = ndimage.label(empty)
+    gap_cells, largest = 0, 0
+    if n:
+        edge = np.unique(np.r_[labels[0], labels[-1], labels[:, 0], labels[:, -1]])
+        sizes = np.bincount(labels.ravel(), minlength=n + 1)
+        enclosed = np.setdiff1d(np.arange(1, n + 1), edge)
+        if enclosed.size:
+            gap_cells = int(sizes[enclosed].sum())
+            largest = int(sizes[enclosed].max())
+    out = Surface(g, z, surface.count, surface.sd, filled, surface.date,
+                  dict(surface.meta, max_fill_distance_m=max_distance_m))
+    return out, FillReport(int(filled.sum()), gap_cells, gap_cells * g.cell_area, largest * g.cell_area)
+
+
+def _overview_factors(shape: tuple[int, int]) -> list[int]:
+    factors, f = [], 2
+    while max(shape) / f >= TILE / 2 and min(shape) / f >= 1:
+        factors.append(f)
+        f *= 2
+    return factors
+
+
+def write_geotiff(path: "str | Path", bands: Sequence[np.ndarray], grid: Grid, *, nodata: float | None,
+                  dtype: str = "float32", descriptions: Sequence[str] = ()) -> Path:
+    """Write bands on ``grid`` as a tiled, DEFLATE-compressed GeoTIFF with overviews.
+
+    NaN in float input becomes ``nodata``. The file appears only when complete.
+    """
+    import rasterio
+    from rasterio.enums import Resampling
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    floating = np.dtype(dtype).kind == "f"
+    profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(bands), dtype=dtype,
+                   crs=grid.crs or None, transform=grid.transform, nodata=nodata, tiled=True,
+                   blockxsize=TILE, blockysize=TILE, compress="deflate", predictor=3 if floating else 2,
+                   BIGTIFF="IF_SAFER")
+    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
+    os.close(fd)
+    try:
+        with rasterio.open(tmp, "w", **profile) as dst:
+            for i, band in enumerate(bands, start=1):
+                arr = np.asarray(band)
+                if floating and nodata is not None:
+                    arr = np.where(np.isfinite(arr), arr, nodata)
+                dst.write(arr.astype(dtype), i)
+                if i - 1 < len(descriptions):
+                    dst.set_band_description(i, descriptions[i - 1])
+            factors = _overview_factors(grid.shape)
+            if factors:
+                dst.build_overviews(factors, Resampling.average if floating else Resampling.nearest)
+                dst.update_tags(ns="rio_overview", resampling="average" if floating else "nearest")
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def write_surface(surface: Surface, path: "str | Path") -> Path:
+    """The surface elevations (float32, nodata :data:`SURFACE_NODATA`)."""
+    return write_geotiff(path, [surface.z], surface.grid, nodata=SURFACE_NODATA, dtype="float32",
+                         descriptions=[f"surface elevation m ({surface.meta.get('statistic', 'mean')})"])
+
+
+def write_coverage(surface: Surface, path: "str | Path") -> Path:
+    """Coverage raster: band 1 surface points per cell, band 2 1 where the cell was filled.
+
+    Both bands are int32 with nodata -1 (no cell is nodata; 0 points means not scanned).
+    """
+    return write_geotiff(path, [surface.count.astype(np.int32), surface.filled.astype(np.int32)],
+                         surface.grid, nodata=-1, dtype="int32",
+                         descriptions=["surface points per cell", "interpolated cell (1) or not (0)"])
+
+
+def read_geotiff(path: "str | Path") -> tuple[np.ndarray, Grid]:
+    """Band 1 of a north-up GeoTIFF as float64 with NaN for nodata, and its grid."""
+    import rasterio
+
+    with rasterio.open(path) as src:
+        t = src.transform
+        if t.b != 0 or t.d != 0 or abs(t.a + t.e) > 1e-9:
+            raise RunError(f"{path}: not a north-up grid of square cells")
+        arr = src.read(1).astype(float)
+        if src.nodata is not None:
+            arr[arr == src.nodata] = np.nan
+        crs = src.crs.to_string() if src.crs else ""
+        return arr, Grid(t.c, t.f, t.a, src.height, src.width, crs)

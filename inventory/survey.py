@@ -1,0 +1,400 @@
+"""One survey's point clouds -> a classified cloud and the stockpile surface grid.
+
+``measure_survey(site, date)`` is what ``inventory survey SITE --date D`` runs:
+
+1. **Read and place** every cloud file of ``surveys/<date>/`` in chunks: station-frame
+   clouds through their pose from ``stations.csv`` (:mod:`inventory.cloud.georef`), others
+   from their own CRS (or ``[survey] default_crs``) into the site CRS with one transformer
+   per input CRS (:mod:`inventory.cloud.crs`).
+2. **Tile**: points are spilled to disk by square tiles of the site grid (edges on cell
+   edges), so that no step holds more than one tile and its neighbours in memory.
+3. **Clean and classify** each tile with a buffer of neighbouring points through the
+   pipeline (``[survey] pipeline`` or ``pipelines/stockpile.json``); only the tile's own
+   points are kept, so results do not depend on the tiling as long as the buffer is wider
+   than the stages' reach.
+4. **Grid** the surface class (ASPRS 2) streaming into the site grid; fill holes up to
+   ``[grid] max_fill_distance_m``; write ``surface-<date>.tif``, ``coverage-<date>.tif``
+   and ``classified-<date>.laz``.
+
+Memory is the grid plus a few tiles, whatever the size of the files.
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+import tempfile
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from .cloud.classes import CLASS_NAMES, GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
+from .cloud.crs import TransformerCache, horizontal_unit_factor, parse_crs
+from .cloud.georef import StationPose, poses_from_stations
+from .cloud.io import DEFAULT_CHUNK, POINT_DTYPE, CloudWriter, open_cloud
+from .cloud.pipeline import Pipeline, load_pipeline, pdal_available
+from .errors import CoverageWarning, CRSError, InputError, PipelineError
+from .grid import Grid, Surface
+from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
+
+__all__ = ["SurveyResult", "measure_survey", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
+
+#: Tile edge in metres: 100 m x 100 m holds about 10-50 million scanner points at most.
+DEFAULT_TILE_M = 100.0
+#: Neighbouring points around a tile: wider than the reach of every stage of the default
+#: pipeline (slope envelope window 12 m, outlier neighbourhoods well under 1 m).
+DEFAULT_BUFFER_M = 15.0
+
+Progress = Callable[[str], None]
+
+
+@dataclass
+class SurveyResult:
+    """What one survey produced.
+
+    Attributes
+    ----------
+    date : str
+    surface : Surface
+        Filled surface on the site grid (``surface.filled`` marks interpolated cells).
+    classified_path, surface_path, coverage_path : Path or None
+    class_counts : dict[int, int]
+        Points per ASPRS class in the classified cloud.
+    points_read : int
+        Points in the files.
+    points_kept : int
+        Points after range gates and crops (the classified cloud).
+    fill : FillReport
+    engine : str
+        ``"pdal"`` or ``"builtin"``.
+    """
+
+    date: str
+    surface: Surface
+    classified_path: Path | None
+    surface_path: Path | None
+    coverage_path: Path | None
+    class_counts: dict[int, int]
+    points_read: int
+    points_kept: int
+    points_outside: int
+    fill: FillReport
+    files: list[Path]
+    engine: str
+    timings: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def written(self) -> list[Path]:
+        return [p for p in (self.surface_path, self.coverage_path, self.classified_path) if p is not None]
+
+    def format_summary(self) -> str:
+        """One line: points read, kept, per class, cells and coverage."""
+        s = self.surface
+        cells = s.grid.nrows * s.grid.ncols
+        scanned = int(s.scanned.sum())
+        order = (GROUND, UNCLASSIFIED, OVERHEAD_STRUCTURE, LOW_NOISE, HIGH_NOISE)
+        parts = [f"{CLASS_NAMES.get(c, c)} {self.class_counts.get(c, 0):,}" for c in order]
+        parts += [f"class {c} {n:,}" for c, n in sorted(self.class_counts.items()) if c not in order]
+        return (f"survey {self.date}: {self.points_read:,} points read, {self.points_kept:,} kept "
+                f"({', '.join(parts)}); {cells:,} cells of {s.grid.cell:g} m, "
+                f"{scanned / cells:.1%} scanned, {self.fill.filled_cells:,} filled, "
+                f"{self.fill.gap_area_m2:,.1f} m2 of enclosed gaps left empty")
+
+
+@dataclass
+class _Source:
+    path: Path
+    index: int
+    pose: StationPose | None
+    crs: Any  # pyproj CRS of a georeferenced file
+
+
+def _survey_ref(site: Any, date: str) -> Any:
+    surveys = getattr(site, "surveys", {}) or {}
+    if date not in surveys:
+        have = ", ".join(sorted(surveys)) or "none"
+        raise InputError(Path(site.root) / "surveys" / date, f"no survey folder for {date} (surveys: {have})",
+                         field="date")
+    return surveys[date]
+
+
+def _pipeline_for(site: Any, pipeline: "Pipeline | str | Path | None") -> Pipeline:
+    if isinstance(pipeline, Pipeline):
+        p = pipeline
+    elif pipeline is not None:
+        p = Pipeline.from_file(pipeline)
+    else:
+        configured = getattr(getattr(site.config, "survey", None), "pipeline", None)
+        p = load_pipeline(Path(site.root) / configured if configured is not None else None)
+    if not p.filters_only:
+        raise PipelineError(f"{p.source}: a survey pipeline holds filters only; the survey step reads "
+                            "the survey folder and writes the classified cloud itself")
+    for s in p.stages:
+        if s.type == "filters.reprojection":
+            raise PipelineError(f"{p.source}: stage {s.index + 1}: no filters.reprojection in a survey "
+                                "pipeline; clouds are brought into the site CRS before it runs")
+    return p
+
+
+def _sources(site: Any, ref: Any) -> list[_Source]:
+    poses: dict[str, StationPose | None] = {}
+    if getattr(ref, "stations", None) is not None:
+        poses = poses_from_stations(ref.stations, Path(ref.folder) / "stations.csv")
+    default = getattr(site.config.survey, "default_crs", None)
+    out = []
+    for i, path in enumerate(ref.files):
+        path = Path(path)
+        pose = poses.get(path.name)
+        crs = None
+        if pose is None:
+            with open_cloud(path, default_crs=default) as cloud:
+                crs = cloud.crs
+            if crs is None:
+                raise CRSError(path, "the file carries no CRS, has no pose in stations.csv, and site.toml "
+                               "has no [survey] default_crs", field="crs")
+        out.append(_Source(path, i, pose, crs))
+    return out
+
+
+def _extent(sources: list[_Source], site_crs: Any, cache: TransformerCache) -> tuple[float, float, float, float]:
+    boxes = []
+    for src in sources:
+        with open_cloud(src.path) as cloud:
+            mins, maxs = cloud.mins, cloud.maxs
+        if src.pose is not None:
+            boxes.append(src.pose.box_in_site(mins, maxs))
+        else:
+            boxes.append(cache.get(src.crs, site_crs).bounds(mins[0], mins[1], maxs[0], maxs[1]))
+    b = np.asarray(boxes, float)
+    return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
+
+
+class _TileSpill:
+    """Points spilled to one raw file per tile of the grid."""
+
+    def __init__(self, grid: Grid, tile_cells: int, folder: Path) -> None:
+        self.grid = grid
+        self.tc = tile_cells
+        self.nty = math.ceil(grid.nrows / tile_cells)
+        self.ntx = math.ceil(grid.ncols / tile_cells)
+        self.folder = folder
+        self.counts: dict[int, int] = {}
+        self.zmin = math.inf
+
+    def tile_of(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        row, col, inside = self.grid.index(x, y)
+        return (row // self.tc) * self.ntx + (col // self.tc), inside
+
+    def path(self, tile: int) -> Path:
+        return self.folder / f"tile_{tile}.bin"
+
+    def add(self, pts: np.ndarray) -> int:
+        """Spill points; returns how many fell outside the grid."""
+        tile, inside = self.tile_of(pts["X"], pts["Y"])
+        pts, tile = pts[inside], tile[inside]
+        if len(pts):
+            self.zmin = min(self.zmin, float(pts["Z"].min()))
+        order = np.argsort(tile, kind="stable")
+        pts, tile = pts[order], tile[order]
+        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]]) if len(tile) else np.array([], int)
+        ends = np.r_[starts[1:], len(tile)]
+        for a, b in zip(starts, ends):
+            t = int(tile[a])
+            with open(self.path(t), "ab") as f:
+                pts[a:b].tofile(f)
+            self.counts[t] = self.counts.get(t, 0) + int(b - a)
+        return int((~inside).sum())
+
+    def box(self, tile: int) -> tuple[float, float, float, float]:
+        ty, tx = divmod(tile, self.ntx)
+        c = self.grid.cell
+        west = self.grid.west + tx * self.tc * c
+        north = self.grid.north - ty * self.tc * c
+        return west, north - self.tc * c, west + self.tc * c, north
+
+    def neighbours(self, tile: int) -> list[int]:
+        ty, tx = divmod(tile, self.ntx)
+        return [(ty + dy) * self.ntx + tx + dx for dy in (-1, 0, 1) for dx in (-1, 0, 1)
+                if (dy or dx) and 0 <= ty + dy < self.nty and 0 <= tx + dx < self.ntx
+                and ((ty + dy) * self.ntx + tx + dx) in self.counts]
+
+
+def _load(path: Path) -> np.ndarray:
+    return np.fromfile(path, dtype=POINT_DTYPE)
+
+
+def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray, int]:
+    core = _load(spill.path(tile))
+    x0, y0, x1, y1 = spill.box(tile)
+    extra = []
+    for nb in spill.neighbours(tile):
+        pts = _load(spill.path(nb))
+        m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
+            (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
+        extra.append(pts[m])
+    return np.concatenate([core] + extra) if extra else core, len(core)
+
+
+def _classify_tile(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
+                   engine: str) -> np.ndarray:
+    pts, _ = _tile_job(spill, tile, buffer_m)
+    out, _ = pipeline.run(pts, crs, engine=engine)
+    own, _ = spill.tile_of(out["X"], out["Y"])
+    return out[own == tile]
+
+
+def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
+                   progress: Progress | None = None, *, pipeline: "Pipeline | str | Path | None" = None,
+                   engine: str = "auto", tile_size_m: float = DEFAULT_TILE_M,
+                   buffer_m: float = DEFAULT_BUFFER_M, chunk_size: int = DEFAULT_CHUNK,
+                   workers: int | None = None, scheduler: str | None = None,
+                   write_classified: bool = True) -> SurveyResult:
+    """Turn one survey's point clouds into a classified cloud and a surface grid.
+
+    Parameters
+    ----------
+    site : Site
+        A loaded site (:func:`inventory.site.load_site`); uses ``root``, ``crs``,
+        ``config.grid``, ``config.survey`` and ``surveys[date]`` (``folder``, ``files``,
+        ``stations``).
+    date : str
+        Survey date ``YYYY-MM-DD`` (a folder under ``surveys/``).
+    out_dir : path, optional
+        Where the GeoTIFFs and the classified LAZ go; nothing is written when ``None``.
+    progress : callable, optional
+        Called with a short text as long steps advance.
+    pipeline : Pipeline or path, optional
+        Overrides ``[survey] pipeline`` and the packaged default.
+    engine : "auto" | "pdal" | "builtin"
+    tile_size_m, buffer_m : float
+        Processing tiles and the neighbouring points each tile sees.
+    chunk_size : int
+        Points per read chunk.
+    workers, scheduler : optional
+        Classify tiles on a local Dask cluster of ``workers`` processes or on the cluster
+        at ``scheduler`` (it must see this machine's temporary folder).
+    write_classified : bool
+        Write ``classified-<date>.laz`` (when ``out_dir`` is given).
+
+    Returns
+    -------
+    SurveyResult
+    """
+    say = progress or (lambda text: None)
+    t_start = time.perf_counter()
+    timings: dict[str, float] = {}
+    ref = _survey_ref(site, date)
+    pipe = _pipeline_for(site, pipeline)
+    used_engine = "pdal" if (engine == "pdal" or (engine == "auto" and pdal_available())) else "builtin"
+    site_crs = parse_crs(site.crs, where=str(Path(site.root) / "site.toml"), field="crs")
+    if horizontal_unit_factor(site_crs) != 1.0:
+        raise CRSError(Path(site.root) / "site.toml", f"site CRS {site.crs} is not projected in metres",
+                       field="crs")
+    grid_cfg = site.config.grid
+    cell = float(grid_cfg.cell_size_m)
+    cache = TransformerCache()
+    sources = _sources(site, ref)
+    grid = Grid.snapped(*_extent(sources, site_crs, cache), cell=cell, crs=site.crs)
+    tile_cells = max(1, int(round(tile_size_m / cell)))
+    if buffer_m > tile_size_m:
+        raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
+
+    tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
+    try:
+        spill = _TileSpill(grid, tile_cells, tmp)
+        read = outside = 0
+        total = sum(open_cloud(s.path).count for s in sources)
+        for src in sources:
+            with open_cloud(src.path, chunk_size=chunk_size) as cloud:
+                reproject = None if src.pose is not None else cache.get(src.crs, site_crs)
+                for chunk in cloud.chunks():
+                    if src.pose is not None:
+                        chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
+                            chunk["X"], chunk["Y"], chunk["Z"])
+                    elif not reproject.is_identity:
+                        chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
+                    chunk["PointSourceId"] = src.index
+                    outside += spill.add(chunk)
+                    read += len(chunk)
+                    say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
+        timings["read"] = time.perf_counter() - t_start
+
+        t0 = time.perf_counter()
+        acc = SurfaceAccumulator(grid, grid_cfg.statistic)
+        counts: dict[int, int] = {}
+        kept = 0
+        writer = None
+        classified_path = None
+        if out_dir is not None and write_classified:
+            classified_path = Path(out_dir) / f"classified-{date}.laz"
+            writer = CloudWriter(classified_path, crs=site_crs,
+                                 offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
+        tiles = sorted(spill.counts)
+        try:
+            for i, result in enumerate(_run_tiles(spill, tiles, buffer_m, pipe, site_crs, used_engine,
+                                                  workers, scheduler)):
+                cls = result["Classification"]
+                for c, n in zip(*np.unique(cls, return_counts=True)):
+                    counts[int(c)] = counts.get(int(c), 0) + int(n)
+                kept += len(result)
+                g = cls == GROUND
+                acc.add(result["X"][g], result["Y"][g], result["Z"][g])
+                if writer is not None:
+                    writer.write(result)
+                say(f"classifying: tile {i + 1} of {len(tiles)}")
+        except BaseException:
+            if writer is not None:
+                writer.close(ok=False)
+            raise
+        if writer is not None:
+            writer.close()
+        timings["classify"] = time.perf_counter() - t0
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+    t0 = time.perf_counter()
+    say("gridding the surface and filling holes")
+    surface, fill = fill_holes(acc.result(date), float(grid_cfg.max_fill_distance_m))
+    surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
+    if fill.gap_cells:
+        warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
+                                      f"{grid_cfg.max_fill_distance_m} m from any scan left as nodata "
+                                      f"(largest {fill.largest_gap_m2:.1f} m2)"), stacklevel=2)
+    surface_path = coverage_path = None
+    if out_dir is not None:
+        surface_path = write_surface(surface, Path(out_dir) / f"surface-{date}.tif")
+        coverage_path = write_coverage(surface, Path(out_dir) / f"coverage-{date}.tif")
+    timings["grid"] = time.perf_counter() - t0
+    timings["total"] = time.perf_counter() - t_start
+    return SurveyResult(date, surface, classified_path, surface_path, coverage_path, counts, read, kept,
+                        outside, fill, [s.path for s in sources], used_engine, timings)
+
+
+def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,
+               workers: int | None, scheduler: str | None):
+    if not workers and not scheduler:
+        for t in tiles:
+            yield _classify_tile(spill, t, buffer_m, pipe, crs, engine)
+        return
+    from dask.distributed import Client, LocalCluster, as_completed
+
+    cluster = None
+    if scheduler:
+        client = Client(scheduler)
+    else:
+        cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True)
+        client = Client(cluster)
+    try:
+        crs_wkt = crs.to_wkt()
+        futures = [client.submit(_classify_tile, spill, t, buffer_m, pipe, crs_wkt, engine, pure=False)
+                   for t in tiles]
+        for fut in as_completed(futures):
+            yield fut.result()
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
