@@ -293,9 +293,10 @@ class Trajectory:
     @classmethod
     def from_poses(cls, gps_time: Any, xyz: Any, roll_deg: Any, pitch_deg: Any, yaw_deg: Any,
                    **kw: Any) -> "Trajectory":
-        """From pose columns (angles in degrees, the site convention)."""
-        return cls(np.asarray(gps_time, float), np.asarray(xyz, float),
-                   euler_rotation(roll_deg, pitch_deg, yaw_deg), **kw)
+        """From pose columns (angles in degrees, the site convention; scalars are broadcast)."""
+        t = np.asarray(gps_time, float)
+        angles = [np.broadcast_to(np.asarray(a, float), t.shape) for a in (roll_deg, pitch_deg, yaw_deg)]
+        return cls(t, np.asarray(xyz, float), euler_rotation(*angles), **kw)
 
     @classmethod
     def from_machine_axes(cls, gps_time: Any, machine: Machine, travel_m: Any, slew_deg: Any,
