@@ -62,8 +62,9 @@ SIGN_CONVENTION = (
 #: Reason codes of the adjustment journal (our own naming), checked in this order.
 REASON_CODES: dict[str, str] = {
     "NOT_SURVEYED": "no survey figure for the pile: book carried forward unadjusted",
+    "SCALE_BIAS": "at least half of it explained by the estimated bias of a named belt scale, the rest "
+                  "within k sigma: have the scale checked",
     "WITHIN_SIGMA": "variance within k sigma of zero: inside the combined uncertainty of survey and book",
-    "SCALE_BIAS": "explained by the estimated bias of a named belt scale: have the scale checked",
     "TRANSFER_SUSPECT": "mirrors an opposite variance on another pile of the same material: "
                         "suspected unrecorded transfer",
     "WITHIN_TOL": "significant but within the material's tolerance: routine stock adjustment",
@@ -405,7 +406,7 @@ def _scale_diagnostics(
     for j, sid in enumerate(scale_ids):
         col = X[:, j] != 0
         piles_fed = sorted(set(keys.loc[col & this_period.to_numpy(), "pile_id"]))
-        tonnes = float(-X[col & this_period.to_numpy(), j].sum())
+        tonnes = float(np.abs(X[col & this_period.to_numpy(), j]).sum())
         # b is the book's inflation per recorded tonne; a scale reading (1 + beta) x the true
         # mass inflates it by beta / (1 + beta) per recorded tonne, so beta = b / (1 - b).
         fb = float(b[j])
@@ -426,9 +427,11 @@ def _scale_diagnostics(
         months = keys.loc[col, "period"].nunique()
         basis = f"{n_used} pile-month(s)" + (f" over {months} months" if months > 1 else "")
         same_sign = _same_sign_note(p, piles_fed)
+        excluded_here = [i for i in excluded if X[i, j] != 0]
         if n_used < MIN_PILE_MONTHS:
-            msg = (f"belt scale {sid} fed one pile this month and there is no history: {100 * bj:+.2f} % "
-                   f"cannot be told from an error on that pile")
+            why = (f"only {n_used} pile-month(s) left once outliers were set aside" if excluded_here
+                   else "it fed one pile this month and there is no history")
+            msg = (f"belt scale {sid}: {why}; {100 * bj:+.2f} % cannot be told from an error on that pile")
         elif flagged:
             msg = (f"belt scale {sid} appears to read {100 * bj:+.2f} % (+/- {100 * sj:.2f} %), beyond its "
                    f"in-service MPE of {100 * mpe:.2f} %: have it checked and recalibrated ({basis}; {same_sign})")
@@ -437,9 +440,10 @@ def _scale_diagnostics(
                    f"its MPE of {100 * mpe:.2f} % ({basis})")
         else:
             msg = f"no significant bias on belt scale {sid}: {100 * bj:+.2f} % (+/- {100 * sj:.2f} %) ({basis})"
-        if excluded:
-            left_out = sorted({f"{keys.loc[i, 'pile_id']}" + (f" ({keys.loc[i, 'period']})" if months > 1 else "") for i in excluded})
-            msg += "; left out of the fit as outliers: " + ", ".join(left_out)
+        if excluded_here:
+            left_out = sorted({f"{keys.loc[i, 'pile_id']}" + (f" ({keys.loc[i, 'period']})" if months > 1 else "")
+                               for i in excluded_here})
+            msg += "; set aside as outliers: " + ", ".join(left_out)
         out.append({"scale_id": sid, "piles": ",".join(piles_fed), "tonnes": tonnes, "bias_pct": 100 * bj,
                     "bias_sigma_pct": 100 * sj, "flagged": flagged, "message": msg})
         if flagged:
@@ -510,15 +514,15 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
         if not np.isfinite(p.loc[i, "survey_t"]):
             code[i] = "NOT_SURVEYED"
             text[i] = REASON_CODES["NOT_SURVEYED"]
+        elif pid in scale_of and abs(residual[i]) <= k * sig[i] and abs(fitted[i]) >= 0.5 * abs(v):
+            code[i] = "SCALE_BIAS"
+            text[i] = f"{fitted[i]:+.1f} t of {v:+.1f} t explained by belt scale {', '.join(scale_of[pid])}"
+            flags[i] = "scale:" + ",".join(scale_of[pid])
         elif not p.loc[i, "significant"]:
             code[i] = "WITHIN_SIGMA"
             text[i] = f"{v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
             if p.loc[i, "out_of_tolerance"]:
                 text[i] += " although out of tolerance: the measurement is too uncertain to judge this pile"
-        elif pid in scale_of and abs(residual[i]) <= k * sig[i]:
-            code[i] = "SCALE_BIAS"
-            text[i] = f"{fitted[i]:+.1f} t of {v:+.1f} t explained by belt scale {', '.join(scale_of[pid])}"
-            flags[i] = "scale:" + ",".join(scale_of[pid])
         elif i in partner:
             other = p.loc[partner[i], "pile_id"]
             code[i] = "TRANSFER_SUSPECT"
@@ -601,5 +605,6 @@ def _change(p: pd.DataFrame, previous: pd.DataFrame, k: float, info: dict) -> pd
     prev_ind = np.clip(m["previous_sigma_t"].astype(float).fillna(0.0) ** 2 - m["previous_d_t"] ** 2, 0.0, None)
     m["difference_sigma_t"] = np.sqrt(now_ind + prev_ind + (m["_d_survey"] - m["previous_d_t"]) ** 2 + movement_var)
     m["significant"] = m["difference_t"].abs() > k * m["difference_sigma_t"]
-    m["opening_gap_t"] = m["variance_t"] - m["difference_t"]
+    gap = m["variance_t"] - m["difference_t"]
+    m["opening_gap_t"] = gap.where(gap.abs() > 1e-9, 0.0)  # rounding dust when opening = previous survey
     return m[CHANGE_COLUMNS].sort_values("pile_id").reset_index(drop=True)

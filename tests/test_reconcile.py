@@ -216,7 +216,7 @@ def test_outlier_pile_is_left_out_of_the_fit_and_paired_as_a_transfer():
     r = reconcile(sv, book, MATERIALS, scales=SCALES)
     d = r.scale_diagnostics.iloc[0]
     assert d.bias_pct == pytest.approx(2.0, abs=1e-9) and d.flagged
-    assert "left out of the fit as outliers: P4" in d.message
+    assert "set aside as outliers: P4" in d.message
     p = r.piles.set_index("pile_id")
     assert p.loc["P4", "reason_code"] == "TRANSFER_SUSPECT" and p.loc["P5", "reason_code"] == "TRANSFER_SUSPECT"
     assert "pair:P5" in p.loc["P4", "flags"] and "pair:P4" in p.loc["P5", "flags"]
@@ -267,7 +267,7 @@ def test_birge_ratio_inflates_sigma_when_scatter_exceeds_stated_sigmas():
     b = 0.01
     assert d.bias_pct == pytest.approx(100 * b / (1 - b), rel=1e-9)
     assert d.bias_sigma_pct == pytest.approx(100 * math.sqrt(16 / 3) / 2000.0 / (1 - b) ** 2, rel=1e-9)
-    assert "left out" not in d.message
+    assert "set aside" not in d.message
 
 
 def test_density_error_shared_with_an_adopted_opening_is_not_counted_twice():
