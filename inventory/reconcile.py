@@ -306,12 +306,16 @@ def _density_part(df: pd.DataFrame, info: dict) -> pd.Series:
     """The part of each survey sigma due to the bulk density (volume x density sd), tonnes.
 
     Taken from a ``density_sigma_t`` column when the survey table has one, else from
-    ``volume_m3`` and the material's ``density_sd_t_m3``; 0 when neither is known (the whole
+    ``volume_m3`` and its ``density_sd_t_m3`` column, else the material's
+    ``density_sd_t_m3``; 0 when none is known (the whole
     survey sigma is then treated as independent of everything else).
     """
     sigma = df["survey_sigma_t"].astype(float).fillna(0.0) if "survey_sigma_t" in df else pd.Series(0.0, index=df.index)
     if "density_sigma_t" in df:
         d = pd.to_numeric(df["density_sigma_t"], errors="coerce")
+    elif "volume_m3" in df and "density_sd_t_m3" in df:
+        # the survey table's own density sd (a pile override may carry its own)
+        d = pd.to_numeric(df["volume_m3"], errors="coerce") * pd.to_numeric(df["density_sd_t_m3"], errors="coerce")
     elif "volume_m3" in df and "material" in df:
         sd = df["material"].map(lambda m: _num(info.get(m, {}).get("density_sd_t_m3")))
         d = pd.to_numeric(df["volume_m3"], errors="coerce") * sd
