@@ -1,0 +1,183 @@
+"""The PDAL-style pipeline runner: parsing, stage semantics, clear errors."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import shapely
+from scipy.spatial import cKDTree
+
+from inventory.cloud.clean import elm_low_points, limits_mask, parse_limits, statistical_outliers
+from inventory.cloud.io import empty_points, read_cloud
+from inventory.cloud.pipeline import STAGES, Pipeline, load_pipeline, pdal_available
+from inventory.errors import PipelineError
+
+
+def _pts(n=2000, seed=0):
+    rng = np.random.default_rng(seed)
+    p = empty_points(n)
+    p["X"], p["Y"], p["Z"] = rng.random(n) * 50, rng.random(n) * 50, rng.random(n) * 5
+    p["Classification"] = rng.integers(0, 20, n)
+    p["ReturnNumber"] = p["NumberOfReturns"] = 1
+    return p
+
+
+def run(stages, pts, crs="EPSG:25832"):
+    return Pipeline.from_json(json.dumps(stages)).run(pts, crs, engine="builtin")[0]
+
+
+def test_range_semantics_follow_pdal_dimrange():
+    # PDAL filters/private/DimRange.cpp: same dimension OR-ed, different dimensions AND-ed;
+    # NaN fails a plain range and passes a negated one; ( ) exclusive, [ ] inclusive.
+    p = empty_points(6)
+    p["Z"] = [0.0, 1.0, 2.0, 3.0, np.nan, 5.0]
+    p["Classification"] = [2, 2, 7, 2, 2, 1]
+    assert limits_mask(p, parse_limits("Z[1:3)")).tolist() == [False, True, True, False, False, False]
+    assert limits_mask(p, parse_limits("Z![1:3)")).tolist() == [True, False, False, True, True, True]
+    assert limits_mask(p, parse_limits("Z[:1],Z[5:]")).tolist() == [True, True, False, False, False, True]
+    assert limits_mask(p, parse_limits("Z[0:5],Classification[2:2]")).tolist() == \
+        [True, True, False, True, False, False]
+    with pytest.raises(PipelineError, match="lower:upper"):
+        parse_limits("Z<5")
+    with pytest.raises(PipelineError, match="not in the point cloud"):
+        limits_mask(p, parse_limits("HeightAboveGround[0:1]"))
+
+
+def test_station_range_gates_keep_clouds_without_station():
+    p = empty_points(4)
+    p["StationRange"] = [0.5, 10.0, 500.0, np.nan]
+    out = run([{"type": "filters.range", "limits": "StationRange![0:1.5)"},
+               {"type": "filters.range", "limits": "StationRange!(150:]"}], p)
+    assert np.isnan(out["StationRange"][-1]) and out["StationRange"][:-1].tolist() == [10.0]
+
+
+def test_statistical_outliers_match_brute_force():
+    # Rusu et al. 2008 as PDAL filters.outlier computes it: mean distance to mean_k
+    # neighbours, threshold = mean + multiplier * sample sd, outlier when >= threshold.
+    rng = np.random.default_rng(5)
+    xyz = np.vstack([rng.random((500, 3)), rng.random((5, 3)) * 10 + 5])
+    d = np.sqrt(((xyz[:, None, :] - xyz[None, :, :]) ** 2).sum(-1))
+    d.sort(axis=1)
+    mean_d = d[:, 1:9].mean(axis=1)
+    ref = mean_d >= mean_d.mean() + 2.0 * mean_d.std(ddof=1)
+    got = statistical_outliers(xyz, 8, 2.0)
+    np.testing.assert_array_equal(got, ref)
+    assert got[-5:].all()
+
+
+def test_elm_matches_pdal_walk():
+    # PDAL ELMFilter::cull: per cell, from the lowest point up, mark while the gap to the
+    # next point is >= threshold; the top point of a cell is never marked.
+    x = np.array([0.5, 0.5, 0.5, 0.5, 1.5, 1.5])
+    y = np.full(6, 0.5)
+    z = np.array([10.0, 7.0, 8.5, 10.2, 3.0, 9.0])
+    got = elm_low_points(x, y, z, cell=1.0, threshold=1.0)
+    # cell 0 sorted: 7.0 (gap 1.5 -> noise), 8.5 (gap 1.5 -> noise), 10.0 (gap 0.2 -> stop)
+    # cell 1: 3.0 (gap 6 -> noise), 9.0 top
+    assert got.tolist() == [False, True, True, False, True, False]
+
+
+def test_outlier_and_assign_stages():
+    p = _pts()
+    p["Z"][:3] = 100.0
+    out = run([{"type": "filters.assign", "assignment": "Classification[:]=1"},
+               {"type": "filters.outlier", "method": "statistical", "mean_k": 8, "multiplier": 3.0}], p)
+    assert (out["Classification"][:3] == 7).all()
+    assert set(np.unique(out["Classification"])) == {1, 7}
+    out = run([{"type": "filters.assign", "value": "Classification = 2", "condition": "Z[0:1]"}], _pts())
+    assert ((out["Classification"] == 2) | (out["Z"] > 1)).all()
+    with pytest.raises(PipelineError, match="outside our subset"):
+        run([{"type": "filters.assign", "value": "Classification = 2 WHERE Z > 1"}], _pts())
+
+
+def test_crop_polygon_matches_shapely():
+    p = _pts()
+    poly = "POLYGON ((10 10, 40 12, 30 40, 12 30, 10 10))"
+    out = run([{"type": "filters.crop", "polygon": poly}], p)
+    ref = shapely.contains_xy(shapely.from_wkt(poly), p["X"], p["Y"])  # reference: shapely
+    assert len(out) == ref.sum()
+    out = run([{"type": "filters.crop", "polygon": poly, "outside": True}], p)
+    assert len(out) == (~ref).sum()
+    out = run([{"type": "filters.crop", "bounds": "([0, 25], [0, 25])"}], p)
+    assert ((out["X"] <= 25) & (out["Y"] <= 25)).all() and len(out) > 0
+
+
+def test_reader_reprojection_writer(tmp_path):
+    from inventory.cloud.io import write_cloud
+
+    p = _pts()
+    p["X"] += 2_000_000
+    p["Y"] += 600_000
+    src = write_cloud(tmp_path / "in.las", p, "EPSG:2264")
+    dst = tmp_path / "out.laz"
+    pipe = Pipeline.from_json(json.dumps([str(src), {"type": "filters.reprojection", "out_srs": "EPSG:32119"},
+                                          {"type": "writers.las", "filename": str(dst)}]))
+    out, crs = pipe.run(engine="builtin")
+    assert crs.to_epsg() == 32119
+    back, bcrs = read_cloud(dst)
+    assert bcrs.to_epsg() == 32119 and len(back) == len(p)
+    # US survey feet to metres, z too (1200/3937 m per ftUS)
+    stored, _ = read_cloud(src)   # the input as stored (1 mm of a foot)
+    np.testing.assert_allclose(back["Z"], stored["Z"] * 1200 / 3937, atol=0.0005 + 1e-9)
+
+
+def test_unknown_stage_and_option_are_errors():
+    with pytest.raises(PipelineError, match="unknown stage type 'filters.smrf'"):
+        Pipeline.from_json('[{"type": "filters.smrf"}]')
+    with pytest.raises(PipelineError, match="unknown option.*mean_kk"):
+        Pipeline.from_json('[{"type": "filters.outlier", "mean_kk": 8}]')
+    with pytest.raises(PipelineError, match="'limits' is required"):
+        Pipeline.from_json('[{"type": "filters.range"}]')
+    with pytest.raises(PipelineError, match="only take its default"):
+        run([{"type": "filters.csf", "hdiff": 0.5}], _pts())
+    with pytest.raises(PipelineError, match="not valid JSON"):
+        Pipeline.from_json("[{")
+    with pytest.raises(PipelineError, match="linear"):
+        Pipeline.from_json('[{"type": "filters.range", "limits": "Z[0:1]", "tag": "a"},'
+                           ' {"type": "filters.range", "limits": "Z[0:1]", "inputs": ["b"]}]')
+
+
+def test_csf_stage_separates_box_from_plane():
+    # CSF (Zhang et al. 2016) on a flat plane with a 3 m box: the plane is ground, the box top not.
+    rng = np.random.default_rng(2)
+    n = 20000
+    p = empty_points(n)
+    p["X"], p["Y"] = rng.random(n) * 40, rng.random(n) * 40
+    box = (p["X"] > 15) & (p["X"] < 25) & (p["Y"] > 15) & (p["Y"] < 25)
+    p["Z"] = np.where(box, 3.0, 0.0) + rng.normal(0, 0.01, n)
+    p["ReturnNumber"] = p["NumberOfReturns"] = 1
+    out = run([{"type": "filters.csf", "resolution": 1.0, "rigidness": 3}], p)
+    cls = out["Classification"]
+    assert (cls[~box] == 2).mean() > 0.99
+    assert (cls[box] == 1).mean() > 0.95
+
+
+def test_packaged_pipelines_parse(repo_root):
+    for path in sorted((repo_root / "pipelines").glob("*.json")):
+        Pipeline.from_file(path)
+    assert [s.type for s in load_pipeline().stages][-1] == "inventory.slope_ground"
+
+
+def test_every_stage_has_a_runner():
+    assert all(spec.run is not None for spec in STAGES.values())
+
+
+@pytest.mark.skipif(not pdal_available(), reason="PDAL's Python bindings are not installed")
+def test_pdal_engine_agrees_with_builtin():
+    # Reference: PDAL itself, for the PDAL-native stages of the packaged pipeline.
+    p = _pts()
+    stages = [{"type": "filters.range", "limits": "Z[1:4]"},
+              {"type": "filters.outlier", "method": "statistical", "mean_k": 8, "multiplier": 2.0}]
+    a = Pipeline.from_json(json.dumps(stages)).run(p, "EPSG:25832", engine="pdal")[0]
+    b = Pipeline.from_json(json.dumps(stages)).run(p, "EPSG:25832", engine="builtin")[0]
+    assert len(a) == len(b)
+    np.testing.assert_array_equal(np.sort(a["Classification"]), np.sort(b["Classification"]))
+
+
+def test_engine_pdal_without_pdal_is_clear():
+    if pdal_available():
+        pytest.skip("PDAL is installed here")
+    with pytest.raises(PipelineError, match="PDAL's Python bindings"):
+        Pipeline.from_json('[{"type": "filters.range", "limits": "Z[0:1]"}]').run(_pts(), engine="pdal")
