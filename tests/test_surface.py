@@ -1,0 +1,153 @@
+"""Surface gridding, hole filling and GeoTIFF writing."""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+import rasterio
+from scipy.stats import binned_statistic_2d
+
+from inventory.errors import RunError
+from inventory.grid import Grid
+from inventory.surface import (SURFACE_NODATA, SurfaceAccumulator, fill_holes, grid_points,
+                               read_geotiff, write_coverage, write_surface)
+
+
+def _cloud(n=20000, seed=0):
+    rng = np.random.default_rng(seed)
+    x = 1000 + rng.random(n) * 30
+    y = 2000 + rng.random(n) * 20
+    z = 50 + 0.1 * (x - 1000) + rng.normal(0, 0.05, n)
+    return x, y, z
+
+
+@pytest.mark.parametrize("stat", ["mean", "median", "max"])
+def test_cell_statistic_matches_scipy(stat):
+    # Reference: scipy.stats.binned_statistic_2d on the same cell edges.
+    x, y, z = _cloud()
+    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
+    s = grid_points(g, x, y, z, stat)
+    xe = g.west + np.arange(g.ncols + 1) * g.cell
+    ye = g.south + np.arange(g.nrows + 1) * g.cell
+    ref, _, _, _ = binned_statistic_2d(x, y, z, statistic=stat, bins=[xe, ye])
+    ref = ref.T[::-1]    # scipy: [x bin, y bin] south-up; ours: rows north to south
+    np.testing.assert_allclose(s.z, ref, equal_nan=True, atol=1e-9)
+    cnt, _, _, _ = binned_statistic_2d(x, y, z, statistic="count", bins=[xe, ye])
+    np.testing.assert_array_equal(s.count, cnt.T[::-1].astype(int))
+
+
+def test_streaming_equals_one_shot_and_sd():
+    x, y, z = _cloud()
+    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=1.0)
+    acc = SurfaceAccumulator(g, "mean")
+    for part in np.array_split(np.arange(len(z)), 7):
+        acc.add(x[part], y[part], z[part])
+    a, b = acc.result(), grid_points(g, x, y, z)
+    np.testing.assert_allclose(a.z, b.z, equal_nan=True, atol=1e-9)
+    np.testing.assert_array_equal(a.count, b.count)
+    # sd about the cell mean = numpy population standard deviation of the cell's points
+    r, c, _ = g.index(x, y)
+    sel = (r == 3) & (c == 4)
+    assert a.sd[3, 4] == pytest.approx(np.std(z[sel]), rel=1e-9)
+
+
+def test_median_refuses_a_cell_fed_twice():
+    g = Grid(0.0, 1.0, 1.0, 1, 1)
+    acc = SurfaceAccumulator(g, "median")
+    acc.add(np.array([0.5]), np.array([0.5]), np.array([1.0]))
+    with pytest.raises(RunError, match="fed twice"):
+        acc.add(np.array([0.5]), np.array([0.5]), np.array([2.0]))
+
+
+def test_snapped_grids_align_across_surveys():
+    a = Grid.snapped(1000.13, 2000.4, 1030.0, 2020.0, cell=0.5)
+    b = Grid.snapped(998.77, 2001.9, 1025.2, 2019.1, cell=0.5)
+    assert a.aligned_with(b)
+    assert a.west % 0.5 == 0 and a.north % 0.5 == 0
+
+
+def _plane_with_hole(cell=0.5):
+    g = Grid(0.0, 50.0, cell, int(50 / cell), int(50 / cell), "EPSG:25832")
+    cx, cy = g.centers()
+    z = 10 + 0.2 * cx - 0.1 * cy
+    count = np.ones(g.shape, np.int32)
+    return g, cx, cy, z, count
+
+
+def test_small_holes_filled_exactly_on_a_plane():
+    # Linear interpolation reproduces a plane exactly (a TIN of a plane is the plane).
+    from inventory.grid import Surface
+
+    g, cx, cy, z, count = _plane_with_hole()
+    hole = (np.hypot(cx - 20, cy - 20) < 2.0)
+    zz = np.where(hole, np.nan, z)
+    cc = np.where(hole, 0, count)
+    s = Surface(g, zz, cc, np.full(g.shape, np.nan), np.zeros(g.shape, bool))
+    filled, rep = fill_holes(s, 3.0)
+    assert rep.filled_cells == hole.sum() and rep.gap_cells == 0
+    np.testing.assert_allclose(filled.z[hole], z[hole], atol=1e-9)
+    assert filled.filled[hole].all() and not filled.filled[~hole].any()
+
+
+def test_large_gap_left_empty_and_reported():
+    from inventory.grid import Surface
+
+    g, cx, cy, z, count = _plane_with_hole()
+    gap = (np.abs(cx - 25) < 5) & (np.abs(cy - 25) < 5)          # 10 m x 10 m
+    s = Surface(g, np.where(gap, np.nan, z), np.where(gap, 0, count), np.full(g.shape, np.nan),
+                np.zeros(g.shape, bool))
+    filled, rep = fill_holes(s, 3.0)
+    # Cells within 3 m of data are filled: the ring; the 4 m x 4 m core stays empty.
+    core = (np.abs(cx - 25) < 2) & (np.abs(cy - 25) < 2)
+    assert np.isnan(filled.z[core]).all()
+    assert rep.gap_cells == np.isnan(filled.z).sum() > 0
+    assert rep.gap_area_m2 == pytest.approx(rep.gap_cells * 0.25)
+    np.testing.assert_allclose(filled.z[filled.filled], z[filled.filled], atol=1e-9)
+
+
+def test_geotiff_round_trip(tmp_path):
+    x, y, z = _cloud()
+    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
+    s = grid_points(g, x, y, z)
+    path = write_surface(s, tmp_path / "surface.tif")
+    cov = write_coverage(s, tmp_path / "coverage.tif")
+    with rasterio.open(path) as src:
+        assert src.crs.to_epsg() == 25832
+        assert src.nodata == SURFACE_NODATA
+        assert src.profile["tiled"] and src.profile["compress"] == "deflate"
+        assert src.transform == g.transform
+    back, g2 = read_geotiff(path)
+    assert g2.aligned_with(g) and g2.shape == g.shape
+    np.testing.assert_allclose(back, s.z.astype(np.float32), equal_nan=True)
+    with rasterio.open(cov) as src:
+        np.testing.assert_array_equal(src.read(1), s.count)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["coverage.tif", "surface.tif"]
+
+
+def test_overviews_on_a_larger_grid(tmp_path):
+    g = Grid(0.0, 600.0, 1.0, 600, 600, "EPSG:25832")
+    from inventory.grid import Surface
+
+    z = np.fromfunction(lambda r, c: r * 0.01 + c * 0.02, g.shape)
+    s = Surface(g, z, np.ones(g.shape, np.int32), np.zeros(g.shape), np.zeros(g.shape, bool))
+    path = write_surface(s, tmp_path / "big.tif")
+    with rasterio.open(path) as src:
+        assert src.overviews(1) == [2, 4]
+
+
+@pytest.mark.tools
+def test_gdalinfo_reads_crs_and_nodata(tmp_path):
+    # Reference: GDAL's own gdalinfo (Debian gdal-bin).
+    if shutil.which("gdalinfo") is None:
+        pytest.skip("gdalinfo (Debian package gdal-bin) is not installed")
+    x, y, z = _cloud()
+    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
+    path = write_surface(grid_points(g, x, y, z), tmp_path / "s.tif")
+    out = subprocess.run(["gdalinfo", str(path)], capture_output=True, text=True, check=True).stdout
+    assert 'ID["EPSG",25832]' in out
+    assert "NoData Value=-9999" in out
+    assert f"Pixel Size = ({g.cell:.15f},-{g.cell:.15f})" in out
+    assert "COMPRESSION=DEFLATE" in out
