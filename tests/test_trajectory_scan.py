@@ -178,3 +178,11 @@ def test_written_survey_round_trips(tmp_path, machine_scan, variant):
     assert keep.all()
     # Stored at 1 mm and 1 microsecond: still within the range noise.
     assert float(np.sqrt(np.mean(distance_to_cone(xyz) ** 2))) < RANGE_SD_M
+
+
+def test_ray_caster_finds_a_wall_steeper_than_its_slope_bound():
+    # A 5 m vertical step at x = 10: a level ray from (0, 0, 3) meets it at t = 10 although
+    # the caster is told the terrain is flat (it steps in, then bisects the crossing).
+    wall = lambda x, y: np.where(x > 10.0, 5.0, 0.0)  # noqa: E731
+    t = cast_rays(wall, np.array([0.0, 0.0, 3.0]), np.array([[1.0, 0.0, 0.0]]), max_slope=0.0, max_range_m=50)
+    assert abs(t[0] - 10.0) < 1e-6

@@ -42,6 +42,9 @@ __all__ = [
     "cast_rays",
     "simulate_machine_scan",
     "write_machine_survey",
+    "demo_stacker",
+    "demo_motion",
+    "write_demo_machine_survey",
 ]
 
 Height = Callable[[np.ndarray, np.ndarray], np.ndarray]
@@ -117,8 +120,9 @@ def cast_rays(height: Height, origins: np.ndarray, dirs: np.ndarray, *, max_slop
               max_range_m: float, tol_m: float = 1e-4, max_steps: int = 2000) -> np.ndarray:
     """Distance along each unit ray to its first terrain hit, ``inf`` for none.
 
-    ``height`` must be vectorised and its slope nowhere steeper than ``max_slope`` (rise over
-    run), else rays may pass through the surface. Rays starting below the terrain miss.
+    ``height`` must be vectorised. Where its slope is steeper than ``max_slope`` (rise over
+    run) a ray may step into the terrain; the crossing is then found by bisection, but a
+    feature thinner than one step may be missed. A ray starting below the terrain returns 0.
     """
     origins = np.asarray(origins, float)
     dirs = np.asarray(dirs, float)
@@ -127,17 +131,37 @@ def cast_rays(height: Height, origins: np.ndarray, dirs: np.ndarray, *, max_slop
     t = np.zeros(n)
     hit = np.full(n, np.inf)
     k = 1.0 / math.sqrt(1.0 + max_slope * max_slope)
+    above_t = np.zeros(n)  # the last ray parameter known to lie above the terrain
     active = np.arange(n)
+    # Rays that stepped into terrain steeper than max_slope; bracketed, then bisected below.
+    under_idx: list[np.ndarray] = []
+    under_t: list[np.ndarray] = []
     for _ in range(max_steps):
         if len(active) == 0:
             break
-        p = origins[active] + t[active, None] * dirs[active]
+        ta = t[active]
+        p = origins[active] + ta[:, None] * dirs[active]
         gap = p[:, 2] - height(p[:, 0], p[:, 1])
-        done = (gap < tol_m) & (gap > -tol_m)
-        hit[active[done]] = t[active[done]]
-        t[active] += gap * k
-        alive = ~done & (gap > 0) & (t[active] <= max_range_m)
+        done = np.abs(gap) < tol_m
+        hit[active[done]] = ta[done]
+        below = gap <= -tol_m
+        under_idx.append(active[below])
+        under_t.append(ta[below])
+        up = gap > 0
+        above_t[active[up]] = ta[up]
+        t[active] = ta + gap * k
+        alive = ~done & up & (t[active] <= max_range_m)
         active = active[alive]
+    if under_idx:
+        idx = np.concatenate(under_idx)
+        lo, hi = above_t[idx], np.concatenate(under_t)
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            p = origins[idx] + mid[:, None] * dirs[idx]
+            above = p[:, 2] > height(p[:, 0], p[:, 1])
+            lo = np.where(above, mid, lo)
+            hi = np.where(above, hi, mid)
+        hit[idx] = 0.5 * (lo + hi)
     return hit
 
 
@@ -277,3 +301,74 @@ def write_machine_survey(folder: str | Path, scan: MachineScan, *, name: str = "
     _write_csv(path, table)
     return cloud, path
 
+
+
+# ------------------------------------------------------------------------ the demo terminal
+
+#: The demo stacker as :func:`inventory.demo.scenario.terminal_at` places it (local frame):
+#: rails along local x at y = 120.5, slew axis at x = 80 (survey 0) or 88 (survey 1), luff
+#: pivot 12 m above the pad, 26 m boom whose nose is 4 degrees down, pointing south.
+_STACKER_RAIL_Y = 120.5
+_STACKER_X = (80.0, 88.0)
+_STACKER_PIVOT_H = 12.0
+_STACKER_BOOM_M = 26.0
+_STACKER_LUFF_DEG = -4.0
+_STACKER_SLEW_DEG = -90.0
+
+#: The demo machine scan: one head turn in 60 s while the boom slews 60 degrees onto its
+#: parked heading over C2, travels 6 m and luffs 2 degrees.
+DEMO_MOTION_SECONDS = 60.0
+
+
+def demo_stacker(k: int) -> Machine:
+    """The demo stacker (site CRS) at survey ``k``, with a scanner hung 1 m under its boom tip.
+
+    Its travel axis is the local x coordinate of the slew axis; the scanner's boresight
+    levels it for the parked luff and adds a small mounting error (0.3, 0.4, 0.8 degrees).
+    """
+    from .scenario import SITE_ORIGIN, pad_height
+
+    z0 = float(pad_height(_STACKER_X[k], _STACKER_RAIL_Y))
+    return Machine(
+        id="stacker",
+        rail_origin=np.array([SITE_ORIGIN[0], SITE_ORIGIN[1] + _STACKER_RAIL_Y, z0]),
+        rail_azimuth_deg=0.0,
+        pivot_height_m=_STACKER_PIVOT_H,
+        boom_length_m=_STACKER_BOOM_M,
+        scanner_lever_arm_m=np.array([0.0, 0.0, -1.0]),
+        boresight_deg=np.array([0.3, _STACKER_LUFF_DEG + 0.4, 0.8]),
+    )
+
+
+def demo_motion(k: int) -> MachineMotion:
+    """Axes of the demo machine scan at survey ``k``: ends parked as the static scans see it."""
+    x = _STACKER_X[k]
+    return MachineMotion(DEMO_MOTION_SECONDS, travel_m=(x - 6.0, x),
+                         slew_deg=(_STACKER_SLEW_DEG - 60.0, _STACKER_SLEW_DEG),
+                         luff_deg=(_STACKER_LUFF_DEG + 2.0, _STACKER_LUFF_DEG))
+
+
+
+def write_demo_machine_survey(folder: str | Path, terminal, k: int, start_utc: datetime, *, seed: int = 0,
+                              variant: str = "pose") -> MachineScan:
+    """Scan the demo terminal from the stacker boom at survey ``k`` and write it to ``folder``.
+
+    Writes ``machine_scan.laz`` (scanner frame, adjusted standard GPS time) and
+    ``trajectory.csv`` (see :func:`write_machine_survey`). ``terminal`` is
+    :func:`inventory.demo.scenario.terminal_at`'s result; only its terrain (pad and piles) is
+    scanned. Finish the scan before the static stations start: the boom ends parked where
+    they see it. Returns the scan (its ``true_xyz`` and ``samples`` are the truth).
+    """
+    from .scenario import SITE_ORIGIN
+
+    ox, oy = SITE_ORIGIN[0], SITE_ORIGIN[1]
+
+    def height(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        return terminal.height(np.asarray(x) - ox, np.asarray(y) - oy)
+
+    machine = demo_stacker(k)
+    scan = simulate_machine_scan(
+        height, machine, demo_motion(k), ScannerHead(el_min_deg=-85.0, el_max_deg=-12.0), start_utc=start_utc,
+        max_slope=1.0, range_sd_m=0.012, max_range_m=45.0, rng=np.random.default_rng([seed, 9, k]))
+    write_machine_survey(folder, scan, variant=variant)
+    return scan
