@@ -101,12 +101,12 @@ def _write_npz(path: Path, arrays: dict[str, np.ndarray]) -> None:
 
 def _write_tif(path: Path, z: np.ndarray, west: float, north: float, cell: float) -> None:
     import rasterio
-    from rasterio.transform import from_origin
+    from affine import Affine
 
     path.parent.mkdir(parents=True, exist_ok=True)
     profile = dict(
         driver="GTiff", width=z.shape[1], height=z.shape[0], count=1, dtype="float32", crs=SITE_CRS,
-        transform=from_origin(west, north, cell, cell), nodata=-9999.0, compress="deflate", predictor=3,
+        transform=Affine(cell, 0.0, west, 0.0, -cell, north), nodata=-9999.0, compress="deflate", predictor=3,
         tiled=True, blockxsize=256, blockysize=256,
     )
     with rasterio.Env(GDAL_PAM_ENABLED="NO"):
