@@ -229,8 +229,8 @@ def _problems(path: Path, machines=None) -> list:
 
 def test_pose_table_round_trip(tmp_path):
     path = _write(tmp_path, POSE_HEADER
-                  + "100.0,2026-10-31T09:00:00+00:00,10,20,30,0,0,0\n"
-                  + "101.0,2026-10-31T09:00:01+00:00,12,20,30,0,0,90\n")
+                  + "100.0,,10,20,30,0,0,0\n"
+                  + "101.0,,12,20,30,0,0,90\n")
     traj = load_trajectory(path)
     assert traj.span == (100.0, 101.0) and traj.source == str(path)
     xyz, _, _ = georeference([[1.0, 0, 0]], [100.5], traj)
@@ -319,3 +319,35 @@ def test_unknown_column_warns(tmp_path):
     path = _write(tmp_path, "gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg,speed\n100,0,0,0,0,0,0,1\n101,0,0,0,0,0,0,1\n")
     with pytest.warns(InputWarning, match="speed"):
         read_trajectories(path)
+
+
+def test_time_column_matching_neither_time_base_warns(tmp_path):
+    # 2026-10-31T09:00:00Z: adjusted standard GPS time is computed by the tool; the week-seconds
+    # reading is independent: 2026-10-31 is a Saturday, so 09:00:18 GPS is 6 days + 9 h + 18 s
+    # into the GPS week (weeks start Sunday 00:00; GPS - UTC = 18 s).
+    week_s = 6 * 86400 + 9 * 3600 + 18
+    ok = _write(tmp_path, POSE_HEADER + f"{week_s},2026-10-31T10:00:00+01:00,0,0,0,0,0,0\n"
+                f"{week_s + 1},2026-10-31T10:00:01+01:00,0,0,0,0,0,0\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        read_trajectories(ok)
+    adjusted = adjusted_gps_time(datetime(2026, 10, 31, 9, tzinfo=timezone.utc))
+    assert (adjusted + 1e9) % (7 * 86400) == week_s
+    bad = _write(tmp_path, POSE_HEADER + f"{week_s + 3600},2026-10-31T10:00:00+01:00,0,0,0,0,0,0\n"
+                 f"{week_s + 3601},2026-10-31T10:00:01+01:00,0,0,0,0,0,0\n")
+    with pytest.warns(InputWarning, match="line 2: time"):
+        read_trajectories(bad)
+
+
+def test_problems_list_collects_instead_of_raising(tmp_path):
+    path = _write(tmp_path, POSE_HEADER + "100,,0,0,0,0,0,0\n99,,0,0,0,0,0,0\n")
+    problems: list = []
+    assert read_trajectories(path, problems=problems) == {}
+    assert [(p.where, p.field, p.severity) for p in problems] == [(3, "gps_time", "error")]
+
+
+def test_all_points_outside_hints_at_the_time_base():
+    traj = Trajectory.from_poses([4.7e8, 4.7e8 + 60], [[0, 0, 0]] * 2, 0, 0, 0)
+    with pytest.warns(InputWarning, match="same GPS time base"):
+        _, keep, _ = georeference(np.zeros((3, 3)), [3600.0, 3601.0, 3602.0], traj)
+    assert not keep.any()

@@ -70,6 +70,8 @@ __all__ = [
     "GPS_EPOCH",
     "GPS_UTC_LEAP_S",
     "ADJUSTED_GPS_OFFSET_S",
+    "GPS_WEEK_S",
+    "TIME_MATCH_S",
     "Machine",
     "Trajectory",
     "euler_rotation",
@@ -100,6 +102,8 @@ GPS_UTC_LEAP_S = 18
 _LEAP_VALID_FROM = datetime(2017, 1, 1, tzinfo=timezone.utc)
 #: Adjusted standard GPS time = standard GPS time - 1e9 s (ASPRS LAS 1.4 R15, Global Encoding).
 ADJUSTED_GPS_OFFSET_S = 1.0e9
+#: GPS week-time LAS files count seconds from the start of the GPS week (Sunday 00:00 GPS).
+GPS_WEEK_S = 7 * 86400
 
 _POSE = ("x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg")
 _AXES = ("travel_m", "slew_deg", "luff_deg")
@@ -397,9 +401,14 @@ def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_a
     name = source or "the cloud"
     where = trajectory.source or "the trajectory"
     if counts["outside_span"]:
+        hint = ""
+        if not inside.any() and np.isfinite(t).any():
+            # Every point outside: usually two time bases (week seconds vs adjusted standard).
+            hint = (f"; the points run from {np.nanmin(t):.3f} to {np.nanmax(t):.3f} s: are the cloud and the "
+                    "trajectory in the same GPS time base (week seconds or adjusted standard)?")
         warnings.warn(InputWarning(
             f"{name}: {counts['outside_span']} of {len(t)} points lie outside the time span of {where} "
-            f"({t0:.3f} to {t1:.3f} s) and were rejected"), stacklevel=2)
+            f"({t0:.3f} to {t1:.3f} s) and were rejected{hint}"), stacklevel=2)
     if counts["in_gap"]:
         g = trajectory.gaps(max_gap_s)
         warnings.warn(InputWarning(
@@ -536,24 +545,59 @@ def trajectory_from_frame(frame: pd.DataFrame, machines: Mapping[str, Machine] |
 
 
 def read_trajectories(path: str | Path, machines: Mapping[str, Machine] | None = None,
-                      *, display: str | None = None) -> dict[str | None, Trajectory]:
+                      *, display: str | None = None, problems: list[Problem] | None = None
+                      ) -> dict[str | None, Trajectory]:
     """Read and check ``trajectory.csv``; every problem names file, line and field.
 
-    Raises :class:`~inventory.errors.InputErrors` listing all problems; warnings (unknown
-    columns) are issued as :class:`~inventory.errors.InputWarning`.
+    Without ``problems``, raises :class:`~inventory.errors.InputErrors` listing all problems
+    and issues warnings (unknown columns, a ``time`` that does not match ``gps_time``) as
+    :class:`~inventory.errors.InputWarning`. With a ``problems`` list (a site check that
+    collects everything), appends to it instead and returns what could be read.
     """
     display = display or str(path)
-    problems: list[Problem] = []
-    frame = read_table(Path(path), table_schema("trajectory"), problems, display=display)
-    if not any(p.severity == "error" for p in problems):
-        out = trajectory_from_frame(frame, machines, display=display, problems=problems)
-    else:
-        out = {}
-    if any(p.severity == "error" for p in problems):
-        raise InputErrors(problems)
-    for p in problems:
+    own = problems is None
+    found: list[Problem] = []
+    frame = read_table(Path(path), table_schema("trajectory"), found, display=display)
+    out: dict[str | None, Trajectory] = {}
+    if not any(p.severity == "error" for p in found):
+        out = trajectory_from_frame(frame, machines, display=display, problems=found)
+        _check_time_column(frame, display, found)
+    if not own:
+        problems.extend(found)  # type: ignore[union-attr]
+        return out
+    if any(p.severity == "error" for p in found):
+        raise InputErrors(found)
+    for p in found:
         warnings.warn(InputWarning(str(p)), stacklevel=2)
     return out
+
+
+#: How far the ``time`` column may be from ``gps_time`` before it is reported (s): loggers
+#: print times to the millisecond; a full second apart means a different clock or time base.
+TIME_MATCH_S = 0.5
+
+
+def _check_time_column(frame: pd.DataFrame, display: str, problems: list[Problem]) -> None:
+    """Warn (once) where ``time`` matches ``gps_time`` neither as adjusted standard GPS time
+    nor as GPS week seconds: the sign of a trajectory logged in another time base."""
+    if "time" not in frame.columns:
+        return
+    for row in frame.itertuples():
+        when, gps = getattr(row, "time"), getattr(row, "gps_time")
+        if when is None or pd.isna(when) or gps is None or pd.isna(gps):
+            continue
+        when = pd.Timestamp(when).to_pydatetime()
+        if when < _LEAP_VALID_FROM:
+            continue
+        adjusted = adjusted_gps_time(when)
+        week = (adjusted + ADJUSTED_GPS_OFFSET_S) % GPS_WEEK_S
+        if min(abs(gps - adjusted), abs(gps - week)) > TIME_MATCH_S:
+            problems.append(Problem(
+                display, int(row.line), "time",
+                f"{when.isoformat()} is {adjusted:.3f} s in adjusted standard GPS time and {week:.3f} s "
+                f"of its GPS week, but gps_time is {gps:.3f}; check the logger's clock and time base",
+                "warning"))
+            return
 
 
 def load_trajectory(path: str | Path, machines: Mapping[str, Machine] | None = None,
