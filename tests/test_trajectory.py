@@ -351,3 +351,10 @@ def test_all_points_outside_hints_at_the_time_base():
     with pytest.warns(InputWarning, match="same GPS time base"):
         _, keep, _ = georeference(np.zeros((3, 3)), [3600.0, 3601.0, 3602.0], traj)
     assert not keep.any()
+
+
+def test_warn_false_only_counts():
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        _, keep, counts = georeference(np.zeros((3, 3)), [-5.0, 0.5, 2.0], _gappy(), warn=False)
+    assert counts == {"points": 3, "kept": 1, "outside_span": 1, "in_gap": 1}

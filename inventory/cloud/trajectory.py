@@ -340,7 +340,7 @@ class Trajectory:
 
 def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_arm: Any = None,
                  boresight: Any = None, max_gap_s: float = DEFAULT_MAX_GAP_S,
-                 *, source: str = "") -> tuple[np.ndarray, np.ndarray, dict[str, int]]:
+                 *, source: str = "", warn: bool = True) -> tuple[np.ndarray, np.ndarray, dict[str, int]]:
     """Place scanner-frame points in the site CRS with the pose at each point's own time.
 
     Parameters
@@ -360,6 +360,9 @@ def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_a
         Trajectory intervals longer than this are not bridged.
     source : str
         Name of the cloud, for the warning.
+    warn : bool
+        Issue the warnings below; a caller that streams a file chunk by chunk passes False
+        and reports the summed ``counts`` once.
 
     Returns
     -------
@@ -400,7 +403,7 @@ def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_a
               "in_gap": int(in_gap.sum())}
     name = source or "the cloud"
     where = trajectory.source or "the trajectory"
-    if counts["outside_span"]:
+    if warn and counts["outside_span"]:
         hint = ""
         if not inside.any() and np.isfinite(t).any():
             # Every point outside: usually two time bases (week seconds vs adjusted standard).
@@ -409,7 +412,7 @@ def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_a
         warnings.warn(InputWarning(
             f"{name}: {counts['outside_span']} of {len(t)} points lie outside the time span of {where} "
             f"({t0:.3f} to {t1:.3f} s) and were rejected{hint}"), stacklevel=2)
-    if counts["in_gap"]:
+    if warn and counts["in_gap"]:
         g = trajectory.gaps(max_gap_s)
         warnings.warn(InputWarning(
             f"{name}: {counts['in_gap']} points fall in {len(g)} gap(s) longer than {max_gap_s:g} s "
