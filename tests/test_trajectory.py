@@ -358,3 +358,22 @@ def test_warn_false_only_counts():
         warnings.simplefilter("error")
         _, keep, counts = georeference(np.zeros((3, 3)), [-5.0, 0.5, 2.0], _gappy(), warn=False)
     assert counts == {"points": 3, "kept": 1, "outside_span": 1, "in_gap": 1}
+
+
+def test_utc_from_adjusted_gps_inverts():
+    from inventory.cloud.trajectory import utc_from_adjusted_gps
+
+    when = datetime(2026, 10, 31, 11, 30, 15, 250000, tzinfo=timezone.utc)
+    assert utc_from_adjusted_gps(adjusted_gps_time(when)) == when
+    with pytest.raises(ValueError):
+        utc_from_adjusted_gps(3600.0)  # week seconds, not adjusted standard time
+
+
+def test_extent_hand_computed():
+    # A 2 x 2 x 2 box around the scanner, carried from x = 100 to x = 110 heading north
+    # (yaw 90): the box keeps its size, so x spans 99..111 and y 199..201.
+    traj = Trajectory.from_poses([0.0, 1.0], [[100, 200, 0], [110, 200, 0]], 0.0, 0.0, 90.0)
+    assert traj.extent([-1, -1, -1], [1, 1, 1]) == pytest.approx((99.0, 199.0, 111.0, 201.0))
+    # With a lever arm of 5 m along the body x (north after yaw 90): y shifts by 5.
+    traj = Trajectory.from_poses([0.0, 1.0], [[100, 200, 0], [110, 200, 0]], 0.0, 0.0, 90.0, lever_arm=(5, 0, 0))
+    assert traj.extent([-1, -1, -1], [1, 1, 1]) == pytest.approx((99.0, 204.0, 111.0, 206.0))

@@ -53,7 +53,7 @@ from __future__ import annotations
 import math
 import warnings
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
@@ -82,6 +82,7 @@ __all__ = [
     "load_trajectory",
     "trajectory_from_frame",
     "adjusted_gps_time",
+    "utc_from_adjusted_gps",
 ]
 
 #: A trajectory interval longer than this is a logging dropout, not a sampling step, and is
@@ -122,6 +123,20 @@ def adjusted_gps_time(utc: datetime) -> float:
     if utc < _LEAP_VALID_FROM:
         raise ValueError(f"{utc.isoformat()} is before 2017-01-01; the leap-second count is not known here")
     return (utc - GPS_EPOCH).total_seconds() + GPS_UTC_LEAP_S - ADJUSTED_GPS_OFFSET_S
+
+
+def utc_from_adjusted_gps(seconds: float) -> datetime:
+    """The UTC instant of an adjusted standard GPS time (inverse of :func:`adjusted_gps_time`).
+
+    Examples
+    --------
+    >>> utc_from_adjusted_gps(238630400.0).isoformat()
+    '2019-04-06T23:59:42+00:00'
+    """
+    utc = GPS_EPOCH + timedelta(seconds=float(seconds) + ADJUSTED_GPS_OFFSET_S - GPS_UTC_LEAP_S)
+    if utc < _LEAP_VALID_FROM:
+        raise ValueError(f"{seconds} s is before 2017-01-01 (or not adjusted standard GPS time)")
+    return utc
 
 
 def euler_rotation(roll_deg: Any, pitch_deg: Any, yaw_deg: Any) -> Rotation:
@@ -322,6 +337,20 @@ class Trajectory:
         dt = np.diff(self.gps_time)
         i = np.nonzero(dt > max_gap_s)[0]
         return np.stack([self.gps_time[i], self.gps_time[i + 1]], axis=1)
+
+    def extent(self, mins: Any, maxs: Any) -> tuple[float, float, float, float]:
+        """Site ``(xmin, ymin, xmax, ymax)`` of a scanner-frame bounding box placed at every
+        sample (its 8 corners through lever arm, boresight and pose): the area a cloud with
+        those header bounds can cover. Between samples the corners move by the interpolation,
+        so at sparse samples the true extent can exceed this by a little."""
+        lo, hi = np.asarray(mins, float), np.asarray(maxs, float)
+        corners = np.array([[a, b, c] for a in (lo[0], hi[0]) for b in (lo[1], hi[1]) for c in (lo[2], hi[2])])
+        body = euler_rotation(*self.boresight_deg).apply(corners) + self.lever_arm
+        m = len(self.gps_time)
+        placed = self.rotation[np.repeat(np.arange(m), 8)].apply(np.tile(body, (m, 1)))
+        placed += np.repeat(self.position, 8, axis=0)
+        return (float(placed[:, 0].min()), float(placed[:, 1].min()),
+                float(placed[:, 0].max()), float(placed[:, 1].max()))
 
     def poses_at(self, t: Any) -> tuple[Rotation, np.ndarray]:
         """Body orientation (Slerp) and position (linear) at times ``t`` inside the span.
