@@ -377,3 +377,19 @@ def test_extent_hand_computed():
     # With a lever arm of 5 m along the body x (north after yaw 90): y shifts by 5.
     traj = Trajectory.from_poses([0.0, 1.0], [[100, 200, 0], [110, 200, 0]], 0.0, 0.0, 90.0, lever_arm=(5, 0, 0))
     assert traj.extent([-1, -1, -1], [1, 1, 1]) == pytest.approx((99.0, 204.0, 111.0, 206.0))
+
+
+@settings(max_examples=40, deadline=None)
+@given(roll=angle, pitch=st.floats(-89.0, 89.0), yaw=angle,
+       origin=st.tuples(*[st.floats(-1e4, 1e4)] * 3), t=st.floats(0.0, 1.0))
+def test_a_still_trajectory_places_points_like_a_static_station(roll, pitch, yaw, origin, t):
+    # Cross-check with the static-station path (inventory.cloud.georef.StationPose.apply):
+    # a trajectory that does not move must give the same site coordinates at any time.
+    from inventory.cloud.georef import StationPose
+
+    pts = np.random.default_rng(0).normal(0, 20, (50, 3))
+    pose = StationPose("S", *origin, roll_deg=roll, pitch_deg=pitch, yaw_deg=yaw)
+    x, y, z, _ = pose.apply(pts[:, 0], pts[:, 1], pts[:, 2])
+    traj = Trajectory.from_poses([0.0, 1.0], [origin, origin], roll, pitch, yaw)
+    xyz, _, _ = georeference(pts, np.full(50, t), traj)
+    np.testing.assert_allclose(xyz, np.stack([x, y, z], axis=1), atol=1e-8)

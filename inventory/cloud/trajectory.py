@@ -155,7 +155,7 @@ def euler_rotation(roll_deg: Any, pitch_deg: Any, yaw_deg: Any) -> Rotation:
 # --------------------------------------------------------------------------------- machines
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Machine:
     """Geometry of a rail-mounted machine with a slewing, luffing boom and a scanner on it.
 
