@@ -254,8 +254,10 @@ def test_incomplete_pose_names_line_and_field(tmp_path):
 
 
 def test_bad_number_and_missing_gps_time_name_line_and_field(tmp_path):
-    path = _write(tmp_path, POSE_HEADER + "100,,0,0,zero,0,0,0\n,,0,0,0,0,0,0\n101,,0,0,0,0,0,0\n")
-    assert set(_problems(path)) == {(2, "z"), (3, "gps_time")}
+    path = _write(tmp_path, POSE_HEADER + "100,,0,0,zero,0,0,0\n101,,0,0,0,0,0,0\n102,,0,0,0,0,0,0\n")
+    assert _problems(path) == [(2, "z")]
+    path = _write(tmp_path, POSE_HEADER + "100,,0,0,0,0,0,0\n,,0,0,0,0,0,0\n101,,0,0,0,0,0,0\n")
+    assert _problems(path) == [(3, "gps_time")]
 
 
 def test_time_without_offset_is_refused(tmp_path):
@@ -393,3 +395,18 @@ def test_a_still_trajectory_places_points_like_a_static_station(roll, pitch, yaw
     traj = Trajectory.from_poses([0.0, 1.0], [origin, origin], roll, pitch, yaw)
     xyz, _, _ = georeference(pts, np.full(50, t), traj)
     np.testing.assert_allclose(xyz, np.stack([x, y, z], axis=1), atol=1e-8)
+
+
+def test_time_alone_gives_adjusted_gps_time(tmp_path):
+    path = _write(tmp_path, POSE_HEADER + ",2026-10-31T10:00:00+01:00,0,0,0,0,0,0\n"
+                  ",2026-10-31T10:00:00.5+01:00,1,0,0,0,0,0\n")
+    traj = load_trajectory(path)
+    # 2026-10-31T09:00:00Z: 2442 GPS weeks + 6 days + 9 h + 18 s since 1980-01-06 (hand count:
+    # 2442 weeks end on Sunday 2026-10-25), minus 1e9.
+    t0 = 2442 * 604800 + 6 * 86400 + 9 * 3600 + 18 - 1e9
+    assert traj.span == pytest.approx((t0, t0 + 0.5), abs=1e-6)
+    mixed = _write(tmp_path, POSE_HEADER + "5,2026-10-31T10:00:00+01:00,0,0,0,0,0,0\n"
+                   ",2026-10-31T10:00:01+01:00,1,0,0,0,0,0\n")
+    assert _problems(mixed) == [(3, "gps_time")]
+    neither = _write(tmp_path, POSE_HEADER + ",,0,0,0,0,0,0\n,2026-10-31T10:00:01+01:00,1,0,0,0,0,0\n")
+    assert _problems(neither) == [(2, "gps_time")]

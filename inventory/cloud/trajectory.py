@@ -28,8 +28,9 @@ nothing is converted: adjusted standard GPS time (GPS seconds since 1980-01-06 m
 the LAS global-encoding GPS-time-type bit is set (ASPRS LAS 1.4 R15, section 2.4, "Global
 Encoding" bit 0), else GPS seconds of the week. A week-time scan that crosses the week
 boundary (Sunday 00:00 GPS) is not supported: its times jump back. The optional ``time``
-column (ISO 8601 with offset) is for people; :func:`adjusted_gps_time` converts one to the
-other.
+column (ISO 8601 with offset) is for people and is checked against ``gps_time``; a table with
+no ``gps_time`` at all takes it from ``time`` as adjusted standard GPS time
+(:func:`adjusted_gps_time`), which suits clouds whose LAS files carry that time base.
 
 Time checks
 -----------
@@ -535,6 +536,37 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
     return traj
 
 
+def _fill_gps_time(frame: pd.DataFrame, display: str, problems: list[Problem]) -> bool:
+    """Derive ``gps_time`` from ``time`` (as adjusted standard GPS time) when no row gives it.
+
+    Returns False (with a problem) when some rows give ``gps_time`` and others do not, or a
+    needed ``time`` is missing or too early.
+    """
+    given = frame["gps_time"].map(_given).to_numpy()
+    if given.all():
+        frame["gps_time"] = frame["gps_time"].astype(float)
+        return True
+    lines = frame["line"].to_numpy()
+    if given.any():
+        j = int(np.nonzero(~given)[0][0])
+        problems.append(Problem(display, int(lines[j]), "gps_time", "value is missing (other rows give gps_time)"))
+        return False
+    when = pd.to_datetime(frame["time"], utc=True)
+    if when.isna().any():
+        j = int(np.nonzero(when.isna().to_numpy())[0][0])
+        problems.append(Problem(display, int(lines[j]), "gps_time", "value is missing: give gps_time or time"))
+        return False
+    early = (when < pd.Timestamp(_LEAP_VALID_FROM)).to_numpy()
+    if early.any():
+        j = int(np.nonzero(early)[0][0])
+        problems.append(Problem(display, int(lines[j]), "time",
+                                "before 2017-01-01: give gps_time (the leap-second count is not known here)"))
+        return False
+    seconds = (when - pd.Timestamp(GPS_EPOCH)).dt.total_seconds().to_numpy()
+    frame["gps_time"] = seconds + GPS_UTC_LEAP_S - ADJUSTED_GPS_OFFSET_S
+    return True
+
+
 def trajectory_from_frame(frame: pd.DataFrame, machines: Mapping[str, Machine] | None = None,
                           *, display: str = "trajectory.csv", problems: list[Problem] | None = None
                           ) -> dict[str | None, Trajectory]:
@@ -558,7 +590,7 @@ def trajectory_from_frame(frame: pd.DataFrame, machines: Mapping[str, Machine] |
     machines = machines or {}
     if len(frame) == 0:
         problems.append(Problem(display, 2, None, "the table has a header but no rows"))
-    else:
+    elif _fill_gps_time(frame, display, problems):
         named = frame["file"].map(_given).to_numpy()
         if named.any() and not named.all():
             j = int(np.nonzero(~named)[0][0])
