@@ -410,3 +410,15 @@ def test_time_alone_gives_adjusted_gps_time(tmp_path):
     assert _problems(mixed) == [(3, "gps_time")]
     neither = _write(tmp_path, POSE_HEADER + ",,0,0,0,0,0,0\n,2026-10-31T10:00:01+01:00,1,0,0,0,0,0\n")
     assert _problems(neither) == [(2, "gps_time")]
+
+
+def test_ins_machine_gives_lever_arm_to_a_pose_table(tmp_path):
+    # A machine with its own GNSS/INS pose: only lever arm and boresight in site.toml.
+    machines = machines_from_config({"reclaimer2": {"scanner_lever_arm_m": [0, 3, 0], "boresight_deg": [0, 0, 0]}})
+    assert not machines["reclaimer2"].has_boom
+    path = _write(tmp_path, "machine," + POSE_HEADER + "reclaimer2,0,,10,20,30,0,0,90\nreclaimer2,1,,10,20,30,0,0,90\n")
+    traj = load_trajectory(path, machines)
+    xyz, _, _ = georeference([[0.0, 0.0, 0.0]], [0.5], traj)
+    np.testing.assert_allclose(xyz, [[7.0, 20.0, 30.0]], atol=1e-12)  # 3 m to the left of north = west
+    axes = _write(tmp_path, AXES_HEADER + "boom.laz,reclaimer2,0,5,90,30\nboom.laz,reclaimer2,1,5,90,30\n")
+    assert _problems(axes, machines) == [(2, "machine")]

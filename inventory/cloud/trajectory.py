@@ -181,23 +181,33 @@ class Machine:
         Scanner origin in the boom-tip frame.
     boresight_deg : (3,) ndarray
         ``[roll, pitch, yaw]`` of the scanner frame in the boom-tip frame.
+
+    A machine that logs its own pose (GNSS/INS) gives only the lever arm and boresight,
+    measured in the frame of that pose; the boom geometry is then ``None``.
     """
 
     id: str
-    rail_origin: np.ndarray
-    rail_azimuth_deg: float
-    pivot_height_m: float
-    boom_length_m: float
+    rail_origin: np.ndarray | None = None
+    rail_azimuth_deg: float | None = None
+    pivot_height_m: float | None = None
+    boom_length_m: float | None = None
     pivot_offset_m: float = 0.0
     scanner_lever_arm_m: np.ndarray = field(default_factory=lambda: np.zeros(3))
     boresight_deg: np.ndarray = field(default_factory=lambda: np.zeros(3))
+
+    @property
+    def has_boom(self) -> bool:
+        """Whether the rail-and-boom geometry is given (needed for machine axes)."""
+        return all(getattr(self, k) is not None for k in _MACHINE_AXES_KEYS)
 
 
 _MACHINE_KEYS = {
     "rail_origin": 3, "rail_azimuth_deg": 0, "pivot_height_m": 0, "pivot_offset_m": 0,
     "boom_length_m": 0, "scanner_lever_arm_m": 3, "boresight_deg": 3,
 }
-_MACHINE_REQUIRED = ("rail_origin", "rail_azimuth_deg", "pivot_height_m", "boom_length_m")
+#: The rail-and-boom geometry; all or none (a machine with its own GNSS/INS pose needs only
+#: the scanner's lever arm and boresight).
+_MACHINE_AXES_KEYS = ("rail_origin", "rail_azimuth_deg", "pivot_height_m", "boom_length_m")
 
 
 def _config_number(value: Any, path: str, key: str) -> float:
@@ -221,9 +231,11 @@ def machines_from_config(machines: Mapping[str, Any] | None, path: str | Path = 
         for key in table:
             if key not in _MACHINE_KEYS:
                 raise InputError(path, "unknown key", field=f"machines.{mid}.{key}")
-        for key in _MACHINE_REQUIRED:
-            if key not in table:
-                raise InputError(path, "required key is missing", field=f"machines.{mid}.{key}")
+        if any(key in table for key in _MACHINE_AXES_KEYS):
+            for key in _MACHINE_AXES_KEYS:
+                if key not in table:
+                    raise InputError(path, "required key is missing (the boom geometry needs all of "
+                                     + ", ".join(_MACHINE_AXES_KEYS) + ")", field=f"machines.{mid}.{key}")
         vals: dict[str, Any] = {}
         for key, size in _MACHINE_KEYS.items():
             if key not in table:
@@ -236,7 +248,7 @@ def machines_from_config(machines: Mapping[str, Any] | None, path: str | Path = 
                 vals[key] = np.array([_config_number(v, path, name) for v in seq])
             else:
                 vals[key] = _config_number(table[key], path, name)
-        if vals["boom_length_m"] < 0:
+        if vals.get("boom_length_m", 0.0) < 0:
             raise InputError(path, "must not be negative", field=f"machines.{mid}.boom_length_m")
         out[str(mid)] = Machine(id=str(mid), **vals)
     return out
@@ -250,6 +262,8 @@ def machine_poses(machine: Machine, travel_m: Any, slew_deg: Any, luff_deg: Any
     the tip frame has yaw = heading, pitch = -luff (``Ry`` with a positive angle turns x
     downwards) and roll = 0.
     """
+    if not machine.has_boom:
+        raise ValueError(f"machine {machine.id!r} has no boom geometry ({', '.join(_MACHINE_AXES_KEYS)})")
     s, sl, lu = np.broadcast_arrays(np.asarray(travel_m, float), np.asarray(slew_deg, float),
                                     np.asarray(luff_deg, float))
     az = math.radians(machine.rail_azimuth_deg)
@@ -511,6 +525,10 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
                                     f"{mid!r} is not a machine of site.toml [machines] (known: {known})"))
     elif variant == "axes":
         problems.append(Problem(display, first, "machine", "machine axes need the machine id"))
+    if variant == "axes" and machine is not None and not machine.has_boom:
+        problems.append(Problem(display, first, "machine",
+                                f"site.toml [machines.{machine.id}] gives no boom geometry for machine axes "
+                                f"({', '.join(_MACHINE_AXES_KEYS)})"))
     if len(problems) > n0:
         return None
     if variant == "axes":
