@@ -202,6 +202,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    if not args.verbose:
+        # our warnings are messages for the user: one line each, no source line
+        import warnings
+
+        def _show(message, category, filename, lineno, file=None, line=None):
+            _err(f"warning: {message}")
+
+        warnings.showwarning = _show
     try:
         return _COMMANDS[args.command](args)
     except InputErrors as err:

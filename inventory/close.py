@@ -320,20 +320,20 @@ def close_period(
             names: dict[str, str] = {
                 "workbook": f"variance-{period}.xlsx",
                 "layers": f"piles-{period}.gpkg",
-                "surface": f"surface-{ref.date}.tif",
                 "thickness": f"thickness-{ref.date}.tif",
                 "report": f"report-{period}.html",
                 "manifest": "run.json",
             }
             write_workbook(result, tmp / names["workbook"])
             write_layers(result, tmp / names["layers"])
-            write_raster(surface.z, surface.grid, tmp / names["surface"], description=f"stockpile surface {ref.date}")
             write_raster(thickness, surface.grid, tmp / names["thickness"], description=f"thickness above base {ref.date}")
             if change is not None:
                 names["change"] = f"change-{prev_date}_{ref.date}.tif"
                 write_raster(change, surface.grid, tmp / names["change"], description=f"surface change {prev_date} to {ref.date}")
-            if survey.classified_path is not None:
-                names["classified"] = Path(survey.classified_path).name
+            for key, path in (("surface", survey.surface_path), ("coverage", survey.coverage_path),
+                              ("classified", survey.classified_path)):
+                if path is not None:
+                    names[key] = Path(path).name
             write_report(result, tmp / names["report"])
             done("outputs")
             timings_total = dict(timings)
