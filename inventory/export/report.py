@@ -16,6 +16,7 @@ import base64
 import html
 import io
 import math
+import re
 from pathlib import Path
 from typing import Any, Iterable
 
@@ -74,6 +75,24 @@ def _png(fig) -> str:
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
+#: Margin around the piles on the map: a share of the piles' extent, at least some metres,
+#: so the toe and the ground around it show.
+_MAP_MARGIN_SHARE = 0.12
+_MAP_MARGIN_MIN_M = 10.0
+
+
+def _map_window(result: CloseResult) -> tuple[float, float, float, float]:
+    """The piles' extent plus a margin, within the grid (the survey may reach far beyond)."""
+    grid = result.surface.grid
+    foot = result.footprints
+    if foot is None or not len(foot) or foot.geometry.is_empty.all():
+        return grid.bounds
+    x0, y0, x1, y1 = (float(v) for v in foot.total_bounds)
+    m = max(_MAP_MARGIN_SHARE * max(x1 - x0, y1 - y0), _MAP_MARGIN_MIN_M)
+    return (max(x0 - m, grid.west), max(y0 - m, grid.south),
+            min(x1 + m, grid.east), min(y1 + m, grid.north))
+
+
 def _map_figure(result: CloseResult) -> str:
     from matplotlib.cm import ScalarMappable
     from matplotlib.colors import LightSource
@@ -84,8 +103,16 @@ def _map_figure(result: CloseResult) -> str:
     grid = surface.grid
     z = np.asarray(surface.z, dtype=float)
     valid = np.isfinite(z)
-    fig, ax = _figure(8.0, 8.0 * grid.nrows / max(grid.ncols, 1) + 0.8)
-    extent = (grid.west, grid.east, grid.south, grid.north)
+    wx0, wy0, wx1, wy1 = _map_window(result)
+    fig, ax = _figure(8.0, min(8.0 * (wy1 - wy0) / max(wx1 - wx0, 1e-9), 12.0) + 0.8)
+    # shade only the cells in view (a survey grid can be much larger than the yard)
+    rows, cols = grid.window(wx0, wy0, wx1, wy1)
+    z = z[rows, cols]
+    valid = valid[rows, cols]
+    r0 = rows.start or 0
+    c0 = cols.start or 0
+    extent = (grid.west + c0 * grid.cell, grid.west + (c0 + z.shape[1]) * grid.cell,
+              grid.north - (r0 + z.shape[0]) * grid.cell, grid.north - r0 * grid.cell)
     if valid.any():
         zf = np.where(valid, z, np.nanmin(z))
         ls = LightSource(azdeg=_AZIMUTH_DEG, altdeg=_ALTITUDE_DEG)
@@ -122,8 +149,9 @@ def _map_figure(result: CloseResult) -> str:
     sm = ScalarMappable(norm=norm, cmap=cmap)
     cbar = fig.colorbar(sm, ax=ax, shrink=0.7, pad=0.02)
     cbar.set_label("variance, % of book (survey - book)")
-    ax.set_xlim(grid.west, grid.east)
-    ax.set_ylim(grid.south, grid.north)
+    xmin, ymin, xmax, ymax = _map_window(result)
+    ax.set_xlim(xmin, xmax)
+    ax.set_ylim(ymin, ymax)
     ax.set_aspect("equal")
     ax.set_xlabel(f"easting (m, {result.crs})")
     ax.set_ylabel(f"northing (m, {result.crs})")
@@ -186,6 +214,9 @@ def _num(v: Any, digits: int = 2, signed: bool = False) -> str:
     return html.escape(str(v))
 
 
+_NUMERIC = re.compile(r"^[+\-]?[\d,]+(\.\d+)?$")
+
+
 def _table(headers: Iterable[str], rows: Iterable[Iterable[str]],
            classes: Iterable[str] | None = None) -> str:
     head = "".join(f"<th>{html.escape(h)}</th>" for h in headers)
@@ -194,7 +225,9 @@ def _table(headers: Iterable[str], rows: Iterable[Iterable[str]],
     for row in rows:
         cls = next(cls_iter, "") if cls_iter is not None else ""
         attr = f' class="{cls}"' if cls else ""
-        body.append(f"<tr{attr}>" + "".join(f"<td>{c}</td>" for c in row) + "</tr>")
+        body.append(f"<tr{attr}>" + "".join(
+            f'<td class="n">{c}</td>' if _NUMERIC.match(str(c)) else f"<td>{c}</td>"
+            for c in row) + "</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
@@ -243,8 +276,9 @@ h1{font-size:1.5em;margin-bottom:0} h2{font-size:1.15em;margin-top:1.6em;
 border-bottom:1px solid #c9ced6}
 .facts{color:#4b5563;margin-top:4px}
 table{border-collapse:collapse;font-size:0.85em;margin:8px 0}
-th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:right}
-th{background:#e8ecf1} td:first-child,th:first-child{text-align:left;white-space:nowrap}
+th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:left;vertical-align:top}
+td.n{text-align:right;white-space:nowrap}
+th{background:#e8ecf1} td:first-child{white-space:nowrap}
 tr.oot td{background:#f2c4b8} tr.sig td{background:#f7e3ae}
 .legend span{display:inline-block;width:14px;height:14px;border:1px solid #777;
 vertical-align:middle;margin:0 4px 0 14px}
@@ -297,8 +331,8 @@ def report_html(result: CloseResult) -> str:
     dup = result.duplicates
     if dup is not None and len(dup):
         cols = [c for c in dup.columns]
-        dups = _table(cols, [[esc(str(v)) for v in row]
-                             for row in dup.itertuples(index=False, name=None)])
+        dups = _table(cols, [[_num(v) if isinstance(v, (float, np.floating)) else esc(str(v))
+                              for v in row] for row in dup.itertuples(index=False, name=None)])
     else:
         dups = "<p>No duplicate records found.</p>"
     journal = result.journal
