@@ -96,6 +96,7 @@ class SurveyConfig:
     default_crs: str | None = None
     pipeline: Path | None = None
     default_time: str = "12:00"
+    trajectory_max_gap_s: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -121,6 +122,7 @@ class SiteConfig:
     survey: SurveyConfig = SurveyConfig()
     base: BaseConfig = BaseConfig()
     reconcile: ReconcileConfig = ReconcileConfig()
+    machines: dict = field(default_factory=dict)  # id -> inventory.cloud.trajectory.Machine
     raw: dict = field(default_factory=dict, compare=False)
 
 
@@ -418,6 +420,7 @@ class _Loader:
                 default_crs=s.get("default_crs"),
                 pipeline=(self.root / pipeline) if pipeline else None,
                 default_time=str(s.get("default_time", "12:00")),
+                trajectory_max_gap_s=float(s.get("trajectory_max_gap_s", 1.0)),
             ),
             base=BaseConfig(
                 floor_raster=(self.root / floor) if (self.root / floor).is_file() else None,
@@ -430,8 +433,19 @@ class _Loader:
                 adjust_to=str(r.get("adjust_to", "survey")),
                 duplicate_window_min=float(r.get("duplicate_window_min", 10.0)),
             ),
+            machines=self._machines(raw),
             raw=raw,
         )
+
+    def _machines(self, raw: dict) -> dict:
+        from .cloud.trajectory import machines_from_config
+        from .errors import InputError
+
+        try:
+            return machines_from_config(raw.get("machines"), self.rel(self.root / "site.toml"))
+        except InputError as err:
+            self.problems.append(err.problem)
+            return {}
 
     def _site_crs(self, raw: dict) -> str | None:
         from pyproj import CRS
@@ -753,6 +767,17 @@ class _Loader:
                     self.error(station_path, row.line, missing[0], "a station pose needs all of x, y, z, roll_deg, pitch_deg, yaw_deg")
                 if not (folder / row.file).is_file():
                     self.error(station_path, row.line, "file", f"no file {row.file!r} in {self.rel(folder)}")
+        trajectories: dict = {}
+        trajectory_path = folder / "trajectory.csv"
+        if trajectory_path.is_file():
+            from .cloud.trajectory import read_trajectories
+
+            trajectories = read_trajectories(
+                trajectory_path, config.machines, display=self.rel(trajectory_path), problems=self.problems
+            ) or {}
+            for name in trajectories:
+                if name is not None and not (folder / name).is_file():
+                    self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
         if not files:
             self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
             return None
@@ -765,6 +790,7 @@ class _Loader:
                     posed[row.file] = row
                 elif any(v is not None and not pd.isna(v) for v in values):
                     posed[row.file] = None  # a partial pose, already reported
+        station_files = set(stations["file"]) if stations is not None else set()
         readable = []
         extents = []
         points = 0
@@ -779,6 +805,10 @@ class _Loader:
                 row = posed[path.name]
                 if row is not None:
                     extents.append(_posed_extent(info.bounds, row))
+                continue
+            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None)
+            if moving is not None:
+                extents.append(moving.extent(info.bounds[0], info.bounds[1]))
                 continue
             crs_text = info.crs_wkt
             if crs_text is None:
@@ -797,6 +827,10 @@ class _Loader:
             return None
         if stations is not None and stations["time"].notna().any():
             instant = max(stations["time"]).to_pydatetime()
+        elif trajectories:
+            from .cloud.trajectory import utc_from_adjusted_gps
+
+            instant = max(utc_from_adjusted_gps(t.span[1]) for t in trajectories.values())
         else:
             hh, mm = (int(v) for v in config.survey.default_time.split(":"))
             zone = tz or timezone.utc

@@ -363,3 +363,28 @@ def test_cli_check_ok_prints_summary(good_site, capsys):
     assert "piles     2: A (coal), B (salt)" in out
     assert "2026-10-31  1 file(s), 50 points" in out
     assert "2026-10  2 tickets, 1 belt totals, 1 routing windows, 1 transfers" in out
+
+
+# --- moving-machine trajectories ------------------------------------------------------------
+def _machine_survey(site: Path, rows: str) -> Path:
+    survey = site / "surveys/2026-10-31"
+    write_cloud(survey / "boom.laz", crs=None)
+    (survey / "trajectory.csv").write_text("file,gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg\n" + rows)
+    return survey
+
+
+def test_trajectory_times_must_increase(good_site):
+    _machine_survey(good_site, "boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,999.0,500001,5700000,20,0,0,0\n")
+    msgs = errors_of(good_site)
+    assert any(m.startswith("site/surveys/2026-10-31/trajectory.csv line 3: gps_time:") for m in msgs), msgs
+
+
+def test_trajectory_places_a_cloud_without_crs(good_site):
+    # a cloud in a scanner frame with no CRS is fine when trajectory.csv places it
+    _machine_survey(good_site, "boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,1010.0,500001,5700000,20,0,0,10\n")
+    assert errors_of(good_site) == []
+
+
+def test_trajectory_names_a_missing_file(good_site):
+    _machine_survey(good_site, "gone.laz,1000.0,500000,5700000,20,0,0,0\ngone.laz,1010.0,500001,5700000,20,0,0,10\n")
+    assert "site/surveys/2026-10-31/trajectory.csv: file: no file 'gone.laz' in site/surveys/2026-10-31" in errors_of(good_site)
