@@ -133,7 +133,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
             shown[c] = shown[c].map(lambda v: "" if v != v else f"{v:,.1f}")
         shown["variance_pct"] = shown["variance_pct"].map(lambda v: "" if v != v else f"{v:+.2f}")
         for c in ("significant", "out_of_tolerance"):
-            shown[c] = shown[c].map(lambda v: "yes" if v else "")
+            shown[c] = shown[c].map(lambda v: "" if v is None or v != v else ("yes" if v else "no"))
         _out(shown.to_string(index=False))
     return EXIT_OK
 
