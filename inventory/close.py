@@ -152,6 +152,15 @@ def _assemble_piles(vols: pd.DataFrame, rec_piles: pd.DataFrame) -> pd.DataFrame
     return table[PILE_COLUMNS + [c for c in table.columns if c not in PILE_COLUMNS]]
 
 
+def _publishable(folder: Path) -> None:
+    """Give staged outputs the permissions of ordinary new files (temp files are private)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(folder, 0o777 & ~mask)
+    for path in folder.rglob("*"):
+        os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~mask)
+
+
 @contextmanager
 def _staging(folder: Path) -> Iterator[Path]:
     folder.parent.mkdir(parents=True, exist_ok=True)
@@ -339,6 +348,8 @@ def close_period(
             timings_total = dict(timings)
             result.run["timings"] = timings_total
             write_manifest(result, tmp / names["manifest"])
+
+            _publishable(tmp)
 
             step("ledger")
             say("recording the close in the ledger")
