@@ -639,7 +639,12 @@ def book_stock(
         "t_ns": pieces["hi"].astype("int64"), "pile_id": pieces["pile_id"],
         "tonnes": sign * pieces["tonnes"].astype(float), "scale_id": pieces["scale_id"],
         "dup_ok": pieces["pile_id"].notna(),
-        "note": np.where(pieces["pile_id"].isna(), "no routing window: booked to no pile", ""),
+        "note": np.where(
+            pieces["pile_id"].isna(), "no routing window: booked to no pile",
+            # show the split where an interval was shared out (routing change or cut-off)
+            [f"{sh:.4g} of {tt:g} t ({_hhmm(lo)}-{_hhmm(hi)} of the interval)" if sh < 1.0 else ""
+             for sh, tt, lo, hi in zip(pieces["share"], pieces["T"], pieces["lo"], pieces["hi"])],
+        ),
         "source": pieces["source"], "line": pieces["line"], "bound": frac * pieces["tonnes"].astype(float),
     })
 
@@ -707,6 +712,10 @@ def book_stock(
         piles=piles_out[BOOK_PILE_COLUMNS], movements=movements_out, belt_split=split, duplicates=dups,
         scale_load=scale_load, at=at_ts, period_start=start_ts, period_end=end_ts, messages=messages,
     )
+
+
+def _hhmm(ns: int) -> str:
+    return pd.Timestamp(int(ns), unit="ns", tz="UTC").strftime("%H:%MZ")
 
 
 def _join(notes: np.ndarray, text: str) -> np.ndarray:

@@ -283,3 +283,17 @@ def test_opening_sigma_adds_in_quadrature():
     # belt bound 1 % x 692.82 t = 6.9282 t -> sigma 4.0 t; with opening 3.0 t: 5.0 t
     r = book_stock(moves(belts=belts, routing=routing), opening, T("2026-10-15T00:00Z"), scales(), ["A"], END, START)
     assert r.piles["book_sigma_t"].iloc[0] == pytest.approx(5.0, rel=1e-9)
+
+
+def test_belt_interval_spanning_the_period_end_is_cut_there():
+    # 60 t from 22:30Z to 23:30Z on 31 Oct; the period ends 23:00Z (midnight in Berlin):
+    # 30 t roll the survey figure forward, 30 t belong to November (not counted).
+    belts = intervals([("B1", "2026-10-31T22:30Z", "2026-10-31T23:30Z", 60.0)], ["scale_id", "start", "end", "tonnes"])
+    routing = intervals([("B1", "A", "2026-10-01T00:00Z", "2026-11-02T00:00Z")], ["scale_id", "pile_id", "start", "end"])
+    r = book_stock(moves(belts=belts, routing=routing), {"A": 100.0}, T("2026-10-31T12:00Z"), scales(), ["A"], END, START)
+    a = r.piles.iloc[0]
+    assert a.book_t == pytest.approx(100.0) and a.after_survey_net_t == pytest.approx(30.0)
+    m = r.movements
+    assert m["counted"].tolist() == [True, False]
+    assert "next period" in m["note"].iloc[1]
+    assert m["note"].iloc[0].startswith("0.5 of 60 t (22:30Z-23:00Z")
