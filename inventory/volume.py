@@ -14,7 +14,7 @@ cell *i* inside the footprint (exact polygon-cell intersection, :func:`footprint
     V_cut = sum_i w_i a max(b_i - z_i, 0)          (material below base, below_base_m3)
 
 Cells inside the footprint that the survey left empty (no points and not filled) are
-interpolated here (linear, nearest at the edge) and flagged ``unfilled_gap``.
+interpolated here (see 3. below) and the pile is flagged ``unfilled_gap``.
 
 Base surfaces
 -------------
@@ -44,12 +44,23 @@ Terms are independent and added in quadrature,
    and for a small one to :math:`\sigma_{sc} A` (fully correlated).
 3. Interpolated (unscanned) cells: the error of interpolating across a gap grows with the
    distance :math:`d_i` to the nearest scanned cell and with the slope around the gap
-   (linear interpolation across a crest misses about half the slope change times the
-   distance): :math:`\sigma_i = \sqrt{(k\,s_{rim} d_i)^2 + s_0^2}`, with :math:`s_{rim}`
-   the mean slope of the scanned cells on the gap's rim and :math:`s_0` the survey's point
-   scatter. Interpolation errors within one gap share a sign (a concave crest is
-   undercut everywhere), so they are summed linearly within a gap and in quadrature
-   between gaps: :math:`\sigma_{gap}^2 = \sum_k (\sum_{i\in k} w_i a \sigma_i)^2`.
+   (interpolating across a hole over an apex whose flanks have slope *s* gives a flat
+   top, missing *s d* at distance *d* from the rim):
+   :math:`\sigma_i = \sqrt{\min(k\,s_{rim} d_i,\ H/2)^2 + s_0^2}`, with :math:`s_{rim}`
+   the mean slope of the scanned cells on the gap's rim, *H* the highest scanned
+   thickness of the pile (an interpolated cell is rarely wrong by more than half the
+   pile's height) and :math:`s_0` the survey's point scatter. Interpolation errors within
+   one gap share a sign (a concave crest is undercut everywhere), so they are summed
+   linearly within a gap and in quadrature between gaps:
+   :math:`\sigma_{gap}^2 = \sum_k (\sum_{i\in k} w_i a \sigma_i)^2`. This is
+   deliberately conservative for large shadows; the pile is flagged ``low_scan`` when
+   less than 80 % of it was scanned.
+
+   Gaps the survey left empty are interpolated here (linear over a Delaunay triangulation
+   of the surrounding cells). Footprints enclose their piles, so empty cells at least
+   1 m outside every footprint are taken as floor at the pile's base before
+   interpolating: a shadow that runs off the back of a pile is closed at the toe
+   instead of being extrapolated.
 4. Base: ``level`` 0; ``floor`` :math:`A_+\sigma_f`, the floor survey's error taken as
    fully correlated over the pile (Anderson 2019, systematic term); ``toe``
    :math:`g^T C g + (A_+\sigma_{rough})^2` with :math:`C` the plane's parameter
@@ -92,7 +103,8 @@ import numpy as np
 import pandas as pd
 import shapely
 from scipy import ndimage
-from scipy.interpolate import griddata
+from scipy.interpolate import LinearNDInterpolator
+from scipy.spatial import Delaunay, QhullError
 from scipy.signal import fftconvolve
 
 from ._volume_base import BaseModel, bilinear, fill_nearest, parse_base, toe_base
@@ -131,6 +143,11 @@ CORRELATION_LENGTH_M = 15.0
 #: an end of handbook solids in tests/test_volume.py.
 INTERP_SLOPE_FACTOR = 1.0
 
+#: Cap of an interpolated cell's error as a share of the highest scanned thickness of the
+#: pile: the true thickness lies between 0 and about that height, and so does the
+#: interpolated one, so their difference rarely exceeds half of it (engineering judgement).
+_GAP_CAP_FRACTION = 0.5
+
 #: Width of the band of scanned cells around a gap whose mean slope sets that gap's
 #: interpolation error (cells).
 _RIM_CELLS = 3
@@ -161,6 +178,10 @@ TOE_RESIDUAL_FLAG_M = 0.10
 #: Extra cells around each footprint window, in metres, so that gap distances and gap
 #: interpolation see scanned cells beyond the footprint edge.
 _PAD_M = 6.0
+
+#: Unscanned cells at least this far outside every footprint are taken as floor at the
+#: pile's base when a gap is interpolated (metres; about a bay wall's thickness).
+_GROUND_CLEARANCE_M = 1.0
 
 #: Output columns of :func:`measure_piles`, in order.
 VOLUME_COLUMNS = [
@@ -404,14 +425,6 @@ def _prepare(
     missing = inside & ~np.isfinite(z)
     if missing.all():
         return None
-    if missing.any():
-        flags.append("unfilled_gap")
-        ok = np.isfinite(z)
-        rr, cc = np.nonzero(ok)
-        mr, mc = np.nonzero(missing)
-        vals = griddata(np.column_stack([rr, cc]), z[ok], np.column_stack([mr, mc]), method="linear")
-        z[mr, mc] = vals
-        z = np.where(inside | ok, fill_nearest(z), z)
 
     kind, level = parse_base(base_spec)
     if kind == "level":
@@ -441,7 +454,42 @@ def _prepare(
     if not model.ok:
         return _PileWork(rows, cols, sub, w, z, np.full(w.shape, np.nan), scanned, model, flags)
     bz = model.floor if model.kind == "floor" else _plane_on(model, sub)
+    if missing.any():
+        flags.append("unfilled_gap")
+        # Footprints enclose their piles, so unscanned ground outside every footprint is
+        # floor: it takes the base elevation, which closes a shadow that runs off the
+        # pile instead of letting the interpolation run free beyond the toe.
+        # Cells right at the footprint edge stay free: a pile pushed against a wall has no
+        # floor there.
+        clear = ndimage.distance_transform_edt(~inside) * grid.cell >= _GROUND_CLEARANCE_M
+        ground = ~np.isfinite(z) & clear
+        for _, g in others:
+            if ground.any() and g.intersects(shapely.box(*sub.bounds)):
+                ground &= _window_weights(g, grid, rows, cols) <= 0
+        z = np.where(ground, bz, z)
+        z = _fill_gaps(z, inside)
     return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags)
+
+
+def _fill_gaps(z: np.ndarray, inside: np.ndarray) -> np.ndarray:
+    """Fill NaN cells of a window by linear interpolation (nearest beyond the hull)."""
+    ok = np.isfinite(z)
+    out = z.copy()
+    # Only known cells next to a gap can be corners of the triangles that cover it (a
+    # Delaunay triangle stays Delaunay when far points are dropped); fewer points keep
+    # Qhull fast.
+    near = ok & ndimage.binary_dilation(~ok, structure=np.ones((3, 3)), iterations=2)
+    rr, cc = np.nonzero(near)
+    mr, mc = np.nonzero(~ok)
+    if len(rr) >= 3:
+        try:
+            # A regular lattice is Qhull's degenerate case (every square is cocircular):
+            # joggled input ("QJ") keeps the triangles valid.
+            tri = Delaunay(np.column_stack([rr, cc]).astype(float), qhull_options="QJ Qbb Qc")
+            out[mr, mc] = LinearNDInterpolator(tri, z[near])(np.column_stack([mr, mc]).astype(float))
+        except QhullError:
+            pass  # collinear known cells: nearest below
+    return np.where(inside | ok, fill_nearest(out), out)
 
 
 def _plane_on(model: BaseModel, sub: Grid) -> np.ndarray:
@@ -476,7 +524,11 @@ def _gap_sigma(work: _PileWork, a: float, cell: float, noise_sd: float, k: float
     rim_slope = np.divide(sums, cnts, out=np.zeros(n + 1), where=cnts > 0)
     # A gap with no measurable rim takes the steepest slope seen in the window.
     rim_slope[cnts == 0] = float(slope0.max()) if slope0.size else 0.0
-    sig = np.sqrt((k * rim_slope[lab] * dist) ** 2 + noise_sd**2)
+    # An interpolated cell cannot be wrong by more than the pile is high: cap the
+    # distance-grown error at half the highest scanned thickness in the footprint.
+    th = (work.z - work.base)[work.scanned & (work.w > 0)]
+    cap = _GAP_CAP_FRACTION * float(np.max(th)) if th.size else np.inf
+    sig = np.sqrt(np.minimum(k * rim_slope[lab] * dist, max(cap, 0.0)) ** 2 + noise_sd**2)
     per_gap = np.bincount(lab[gaps], weights=(work.w * a * sig)[gaps], minlength=n + 1)
     return float(np.sqrt(np.sum(per_gap[1:] ** 2)))
 

@@ -138,9 +138,9 @@ def point_cloud(grid, h, density, noise, rng, hide=None):
     return x, y, z
 
 
-def grid_points(grid, x, y, z):
+def grid_points(grid, x, y, z, fill=True):
     """Mean, count and scatter of points per cell; empty cells filled by linear
-    interpolation (nearest beyond the hull) and marked ``filled``."""
+    interpolation (nearest beyond the hull) and marked ``filled``; left NaN when not ``fill``."""
     r, c, ins = grid.index(x, y)
     flat = r[ins] * grid.ncols + c[ins]
     zz = z[ins]
@@ -157,6 +157,9 @@ def grid_points(grid, x, y, z):
     cnt = cnt.reshape(grid.shape)
     sd = sd.reshape(grid.shape)
     empty = cnt == 0
+    if empty.any() and not fill:
+        zc[empty] = np.nan
+        return Surface(grid, zc, cnt.astype(np.int32), sd, np.zeros(grid.shape, bool))
     if empty.any():
         xs, ys = grid.centers()
         zc[empty] = griddata((xs[~empty], ys[~empty]), zc[~empty], (xs[empty], ys[empty]), method="linear")
