@@ -468,7 +468,7 @@ def _find_duplicates(wb: pd.DataFrame, window_min: float) -> tuple[pd.Series, pd
 
 
 def _split_belts(
-    belts: pd.DataFrame, routing: pd.DataFrame, scales: Mapping[str, Any], cuts: Iterable[int]
+    belts: pd.DataFrame, routing: pd.DataFrame, cuts: Iterable[int]
 ) -> tuple[pd.DataFrame, list[str]]:
     """Spread each belt interval over its routing windows and cut it at the given instants.
 
@@ -602,67 +602,11 @@ def book_stock(
     at_ns, end_ns = _ns(at_ts), _ns(end_ts)
     messages: list[str] = []
 
-    # --- weighbridge tickets
-    counted, dup_note, dups = _find_duplicates(wb, duplicate_window_min)
-    mat_of = dict(zip(pile_tab["pile_id"], pile_tab["material"]))
-    if "material" in wb and pile_tab["material"].notna().any():
-        mism = wb["material"].notna() & (wb["material"].astype(str) != wb["pile_id"].map(mat_of).astype(str))
-        for r in wb[mism].itertuples():
-            text = f"ticket {r.ticket} carries material {r.material!r} into pile {r.pile_id} of {mat_of.get(r.pile_id)!r}"
-            dup_note[r.Index] = (dup_note[r.Index] + "; " if dup_note[r.Index] else "") + text
-            messages.append(f"{r.source} line {int(r.line)}: {text}")
-    bridge_bound = np.zeros(len(wb))
-    for sid, idx in wb.groupby("scale_id").groups.items():
-        s = scales[sid]
-        cls, e, ins = _get(s, "accuracy_class"), _get(s, "scale_interval_kg"), bool(_get(s, "in_service", True))
-        g = wb.loc[idx]
-        # a net is the difference of two weighings: its bound is the sum of theirs
-        bridge_bound[wb.index.get_indexer(idx)] = (
-            weighbridge_mpe_t(g["gross_t"].to_numpy(), cls, e, ins) + weighbridge_mpe_t(g["tare_t"].to_numpy(), cls, e, ins)
-        )
-    wmov = pd.DataFrame({
-        "kind": "weighbridge", "reference": wb["ticket"], "t_ns": _ns(wb["time"]) if len(wb) else np.array([], "int64"),
-        "pile_id": wb["pile_id"], "tonnes": np.where(wb["direction"] == "in", 1.0, -1.0) * wb["net_t"],
-        "scale_id": wb["scale_id"], "dup_ok": counted, "note": dup_note, "source": wb["source"], "line": wb["line"],
-        "bound": bridge_bound,
-    })
-
-    # --- belt scales
+    wmov, dups, wb_msgs = _weighbridge_movements(wb, pile_tab, scales, duplicate_window_min)
     cuts = [at_ns, end_ns] + [v for v in start_ns.values() if v is not None]
-    pieces, belt_msgs = _split_belts(belts, routing, scales, cuts)
-    messages += belt_msgs
-    sign = pieces["scale_id"].map(lambda s: 1.0 if _get(scales[s], "direction") == "in" else -1.0).astype(float)
-    frac = pieces["scale_id"].map(lambda s: belt_mpe_fraction(_get(scales[s], "accuracy_class"), bool(_get(scales[s], "in_service", True)))).astype(float)
-    interval = [f"{_from_ns([a])[0].isoformat()}/{_from_ns([b])[0].isoformat()}" for a, b in zip(pieces["a"], pieces["b"])]
-    bmov = pd.DataFrame({
-        "kind": "belt", "reference": [f"{s} {i}" for s, i in zip(pieces["scale_id"], interval)],
-        "t_ns": pieces["hi"].astype("int64"), "pile_id": pieces["pile_id"],
-        "tonnes": sign * pieces["tonnes"].astype(float), "scale_id": pieces["scale_id"],
-        "dup_ok": pieces["pile_id"].notna(),
-        "note": np.where(
-            pieces["pile_id"].isna(), "no routing window: booked to no pile",
-            # show the split where an interval was shared out (routing change or cut-off)
-            [f"{sh:.4g} of {tt:g} t ({_hhmm(lo)}-{_hhmm(hi)} of the interval)" if sh < 1.0 else ""
-             for sh, tt, lo, hi in zip(pieces["share"], pieces["T"], pieces["lo"], pieces["hi"])],
-        ),
-        "source": pieces["source"], "line": pieces["line"], "bound": frac * pieces["tonnes"].astype(float),
-    })
-
-    # --- transfers: one row out of the source pile, one into the destination
-    tref = tr["reference"].where(tr["reference"].notna(), None)
-    tref = [str(x) if x is not None and str(x) != "" else f"transfer line {int(ln)}" for x, ln in zip(tref, tr["line"])]
-    t_ns = _ns(tr["time"]) if len(tr) else np.array([], "int64")
-    tmov = pd.concat([
-        pd.DataFrame({"kind": "transfer", "reference": tref, "t_ns": t_ns, "pile_id": tr["from_pile"],
-                      "tonnes": -tr["tonnes"].astype(float), "note": [f"to {p}" for p in tr["to_pile"]]}),
-        pd.DataFrame({"kind": "transfer", "reference": tref, "t_ns": t_ns, "pile_id": tr["to_pile"],
-                      "tonnes": tr["tonnes"].astype(float), "note": [f"from {p}" for p in tr["from_pile"]]}),
-    ], ignore_index=True)
-    tmov["scale_id"] = None
-    tmov["dup_ok"] = True
-    tmov["source"] = list(tr["source"]) * 2
-    tmov["line"] = list(tr["line"]) * 2
-    tmov["bound"] = 0.0  # a transfer is not weighed by an instrument of ours; see the module doc
+    pieces, bmov, belt_msgs = _belt_movements(belts, routing, scales, cuts)
+    tmov = _transfer_movements(tr)
+    messages += wb_msgs + belt_msgs
 
     mov = pd.concat([m for m in (wmov, bmov, tmov) if len(m)], ignore_index=True) if (len(wmov) + len(bmov) + len(tmov)) else pd.DataFrame(
         columns=["kind", "reference", "t_ns", "pile_id", "tonnes", "scale_id", "dup_ok", "note", "source", "line", "bound"])
@@ -697,13 +641,11 @@ def book_stock(
     movements_out = movements_out[MOVEMENT_COLUMNS].reset_index(drop=True)
 
     split = pieces.assign(
-        interval=interval,
         interval_t=pieces["T"].astype(float),
         start=_utc_index(pieces["lo"]),
         end=_utc_index(pieces["hi"]),
         counted=counted_all[(mov["kind"] == "belt").to_numpy()],
         before_survey=pieces["hi"].astype("int64") <= at_ns,
-        note=bmov["note"].values if len(bmov) else [],
     )
     split = split.sort_values(["scale_id", "interval", "start", "pile_id"], kind="mergesort")[BELT_SPLIT_COLUMNS].reset_index(drop=True)
     for msg in messages:
@@ -712,6 +654,83 @@ def book_stock(
         piles=piles_out[BOOK_PILE_COLUMNS], movements=movements_out, belt_split=split, duplicates=dups,
         scale_load=scale_load, at=at_ts, period_start=start_ts, period_end=end_ts, messages=messages,
     )
+
+
+def _weighbridge_movements(
+    wb: pd.DataFrame, pile_tab: pd.DataFrame, scales: Mapping[str, Any], window_min: float
+) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+    """One signed movement per ticket with its MPE bound; the duplicates table; messages."""
+    messages: list[str] = []
+    counted, note, dups = _find_duplicates(wb, window_min)
+    mat_of = dict(zip(pile_tab["pile_id"], pile_tab["material"]))
+    if "material" in wb and pile_tab["material"].notna().any():
+        mism = wb["material"].notna() & (wb["material"].astype(str) != wb["pile_id"].map(mat_of).astype(str))
+        for r in wb[mism].itertuples():
+            text = f"ticket {r.ticket} carries material {r.material!r} into pile {r.pile_id} of {mat_of.get(r.pile_id)!r}"
+            note[r.Index] = (note[r.Index] + "; " if note[r.Index] else "") + text
+            messages.append(f"{r.source} line {int(r.line)}: {text}")
+    bound = np.zeros(len(wb))
+    for sid, idx in wb.groupby("scale_id").groups.items():
+        s = scales[sid]
+        cls, e, ins = _get(s, "accuracy_class"), _get(s, "scale_interval_kg"), bool(_get(s, "in_service", True))
+        g = wb.loc[idx]
+        # a net is the difference of two weighings: its bound is the sum of theirs
+        bound[wb.index.get_indexer(idx)] = (
+            weighbridge_mpe_t(g["gross_t"].to_numpy(), cls, e, ins) + weighbridge_mpe_t(g["tare_t"].to_numpy(), cls, e, ins)
+        )
+    mov = pd.DataFrame({
+        "kind": "weighbridge", "reference": wb["ticket"], "t_ns": _ns(wb["time"]) if len(wb) else np.array([], "int64"),
+        "pile_id": wb["pile_id"], "tonnes": np.where(wb["direction"] == "in", 1.0, -1.0) * wb["net_t"],
+        "scale_id": wb["scale_id"], "dup_ok": counted, "note": note, "source": wb["source"], "line": wb["line"],
+        "bound": bound,
+    })
+    return mov, dups, messages
+
+
+def _belt_movements(
+    belts: pd.DataFrame, routing: pd.DataFrame, scales: Mapping[str, Any], cuts: list[int]
+) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+    """Belt pieces (see :func:`_split_belts`) as signed movements with their MPE bound."""
+    pieces, messages = _split_belts(belts, routing, cuts)
+    sign = pieces["scale_id"].map(lambda s: 1.0 if _get(scales[s], "direction") == "in" else -1.0).astype(float)
+    frac = pieces["scale_id"].map(
+        lambda s: belt_mpe_fraction(_get(scales[s], "accuracy_class"), bool(_get(scales[s], "in_service", True)))
+    ).astype(float)
+    pieces["interval"] = [f"{_from_ns([a])[0].isoformat()}/{_from_ns([b])[0].isoformat()}"
+                          for a, b in zip(pieces["a"], pieces["b"])]
+    # show the split where an interval was shared out (routing change or cut-off)
+    shared = [f"{sh:.4g} of {tt:g} t ({_hhmm(lo)}-{_hhmm(hi)} of the interval)" if sh < 1.0 else ""
+              for sh, tt, lo, hi in zip(pieces["share"], pieces["T"], pieces["lo"], pieces["hi"])]
+    pieces["note"] = np.where(pieces["pile_id"].isna(), "no routing window: booked to no pile", shared) if len(pieces) else []
+    mov = pd.DataFrame({
+        "kind": "belt", "reference": [f"{s} {i}" for s, i in zip(pieces["scale_id"], pieces["interval"])],
+        "t_ns": pieces["hi"].astype("int64"), "pile_id": pieces["pile_id"],
+        "tonnes": sign * pieces["tonnes"].astype(float), "scale_id": pieces["scale_id"],
+        "dup_ok": pieces["pile_id"].notna(), "note": pieces["note"],
+        "source": pieces["source"], "line": pieces["line"], "bound": frac * pieces["tonnes"].astype(float),
+    })
+    return pieces, mov, messages
+
+
+def _transfer_movements(tr: pd.DataFrame) -> pd.DataFrame:
+    """One row out of the source pile and one into the destination per transfer."""
+    ref = [str(x) if x is not None and not pd.isna(x) and str(x) != "" else f"transfer line {int(ln)}"
+           for x, ln in zip(tr["reference"], tr["line"])]
+    t_ns = _ns(tr["time"]) if len(tr) else np.array([], "int64")
+    mov = pd.concat([
+        pd.DataFrame({"kind": "transfer", "reference": ref, "t_ns": t_ns, "pile_id": tr["from_pile"],
+                      "tonnes": -tr["tonnes"].astype(float), "note": [f"to {p}" for p in tr["to_pile"]]}),
+        pd.DataFrame({"kind": "transfer", "reference": ref, "t_ns": t_ns, "pile_id": tr["to_pile"],
+                      "tonnes": tr["tonnes"].astype(float), "note": [f"from {p}" for p in tr["from_pile"]]}),
+    ], ignore_index=True)
+    mov["scale_id"] = None
+    mov["dup_ok"] = True
+    mov["source"] = list(tr["source"]) * 2
+    mov["line"] = list(tr["line"]) * 2
+    # A transfer is not weighed by an instrument of the books' (it is moved by loader or
+    # dozer and recorded from a work order), so it adds no scale uncertainty.
+    mov["bound"] = 0.0
+    return mov
 
 
 def _hhmm(ns: int) -> str:
