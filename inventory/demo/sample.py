@@ -52,6 +52,8 @@ DEFAULT_SEED = 20261031
 TOOL_CELL_M = 0.5
 FINE_CELL_M = 0.05
 _SUB = int(round(TOOL_CELL_M / FINE_CELL_M))
+#: Minutes between the starts of two station set-ups (scan 5 min, move and level the tripod).
+STATION_INTERVAL_MIN = 10
 #: Footprints reach this far beyond the largest toe outline of the two surveys.
 FOOTPRINT_MARGIN_M = 1.0
 #: Timestamp GDAL writes into the GeoPackage (gpkg_contents.last_change).
@@ -332,7 +334,7 @@ def _build(root: Path, seed: int) -> None:
         scene = term.scene()
         last = t0
         for i, st in enumerate(spec.stations):
-            start = t0 + timedelta(minutes=11 * i)
+            start = t0 + timedelta(minutes=STATION_INTERVAL_MIN * i)
             last = start
             res = scan(scene, st, model, np.random.default_rng([seed, 2, k, i]))
             geo = st.station_id == spec.georeferenced
@@ -531,6 +533,7 @@ def _write_books(root: Path, bk, tz: ZoneInfo, instants: list[datetime], tonnes:
                        "transfer_rows": sum(1 for t in bk.transfers if t.recorded and period(t.time) == p)}
                    for p in periods},
     }
+    ratio = {p.pile_id: MATERIALS[p.material].table_density_t_m3 / MATERIALS[p.material].density_t_m3 for p in PILES}
     for k, inst in enumerate(instants):
         book = book_at(inst)
         out["book_at_survey_t"].append({
@@ -538,6 +541,8 @@ def _write_books(root: Path, bk, tz: ZoneInfo, instants: list[datetime], tonnes:
             "book_t": {p: round(v, 2) for p, v in book.items()},
             "true_t": {p: round(v, 4) for p, v in tonnes[k].items()},
             "book_minus_true_t": {p: round(book[p] - tonnes[k][p], 2) for p in book},
+            # What a perfect survey would report with the material table's densities, minus book.
+            "variance_at_table_density_t": {p: round(tonnes[k][p] * ratio[p] - book[p], 2) for p in book},
         })
     return out
 
@@ -584,35 +589,40 @@ def _write_overview(path: Path, terminals: list[Terminal], footprints: dict) -> 
     xc = west + (np.arange(ncols) + 0.5) * TOOL_CELL_M
     yc = north - (np.arange(nrows) + 0.5) * TOOL_CELL_M
     X, Y = np.meshgrid(xc, yc)
-    fig, axes = plt.subplots(1, 2, figsize=(14, 5.4), dpi=90)
-    ls = LightSource(azdeg=315, altdeg=35)
+    fig, axes = plt.subplots(1, 2, figsize=(15, 5.3), dpi=90, layout="constrained")
+    ls = LightSource(azdeg=315, altdeg=40)
     for ax, term in zip(axes, terminals):
         z = term.height(X, Y)
-        rgb = ls.shade(z, cmap=plt.get_cmap("gist_earth"), vert_exag=2.0, blend_mode="soft", dx=TOOL_CELL_M, dy=TOOL_CELL_M)
-        ax.imshow(rgb, extent=(PAD_BOUNDS[0], PAD_BOUNDS[2], PAD_BOUNDS[1], PAD_BOUNDS[3]), origin="upper")
+        thick = z - pad_height(X, Y)
+        shade = ls.hillshade(z, vert_exag=1.5, dx=TOOL_CELL_M, dy=TOOL_CELL_M)
+        extent = (PAD_BOUNDS[0], PAD_BOUNDS[2], PAD_BOUNDS[1], PAD_BOUNDS[3])
+        ax.imshow(shade, extent=extent, origin="upper", cmap="gray", vmin=0.0, vmax=1.0)
+        im = ax.imshow(np.ma.masked_less(thick, 0.02), extent=extent, origin="upper", cmap="YlOrBr",
+                       vmin=0.0, vmax=12.0, alpha=0.55)
         for pid, geom in footprints.items():
             xs, ys = geom.exterior.xy
             ax.plot(xs, ys, color="black", lw=0.8)
             c = geom.representative_point()
-            ax.text(c.x, c.y, pid, ha="center", va="center", fontsize=8, color="white", weight="bold")
+            ax.text(c.x, c.y, pid, ha="center", va="center", fontsize=9, color="black", weight="bold")
+        from shapely.geometry import MultiPoint
+
         for solid in term.solids:
             corners = np.array([[sx, sy, sz] for sx in (-1, 1) for sy in (-1, 1) for sz in (-1, 1)]) * np.asarray(solid.half)
             pts = corners @ np.asarray(solid.rotation).T + np.asarray(solid.center)
-            from shapely.geometry import MultiPoint
-
-            hull = MultiPoint(pts[:, :2]).convex_hull
-            hx, hy = hull.exterior.xy
-            ax.fill(hx, hy, color="tab:red", alpha=0.6, lw=0)
+            hx, hy = MultiPoint(pts[:, :2]).convex_hull.exterior.xy
+            ax.fill(hx, hy, color="tab:red", alpha=0.75, lw=0)
         for st in term.survey.stations:
-            marker = "*" if st.station_id == term.survey.georeferenced else "^"
-            ax.plot(st.x, st.y, marker, color="yellow", mec="black", ms=9)
-            ax.text(st.x + 2, st.y + 2, st.station_id, fontsize=7, color="yellow")
-        ax.set_title(f"survey {term.survey.date}: true surface, footprints, machines (red), stations")
-        ax.set_xlabel(f"local x, m (site E = x + {SITE_ORIGIN[0]:.0f})")
-        ax.set_ylabel(f"local y, m (site N = y + {SITE_ORIGIN[1]:.0f})")
+            geo = st.station_id == term.survey.georeferenced
+            ax.plot(st.x, st.y, "*" if geo else "^", color="tab:blue", mec="white", ms=10 if geo else 7)
+            ax.text(st.x + 2, st.y + 2, st.station_id, fontsize=7, color="navy")
+        ax.set_title(f"survey {term.survey.date}", fontsize=10)
+        ax.set_xlabel(f"local x, m (EPSG:25832 E = x + {SITE_ORIGIN[0]:.0f})")
+        ax.set_ylabel(f"local y, m (N = y + {SITE_ORIGIN[1]:.0f})")
         ax.set_xlim(PAD_BOUNDS[0], PAD_BOUNDS[2])
         ax.set_ylim(PAD_BOUNDS[1], PAD_BOUNDS[3])
-    fig.tight_layout()
+    fig.colorbar(im, ax=axes, shrink=0.8, label="pile thickness above the pad, m")
+    fig.suptitle(f"{SITE_NAME}: true surface (hillshade), pile thickness, footprints (black), "
+                 "machines and structures (red), scanner stations (triangles; star = georeferenced file)", fontsize=10)
     fig.savefig(path, format="png", metadata={"Software": None})
     plt.close(fig)
 

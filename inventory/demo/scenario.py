@@ -198,17 +198,18 @@ def _stations(k: int) -> tuple[Station, ...]:
     gallery_roof = round(float(pad_height(gx, 102.0)) + _GALLERY_ROOF, 3)
     mast_top = round(float(pad_height(*_MAST)) + _MAST_H, 3)
     yaw = (
-        (17.0, 212.5, 95.0, 301.0, 48.0, 160.0, 250.0, 122.0, 77.5),
-        (133.0, 4.0, 271.5, 66.0, 190.0, 345.0, 12.0, 203.0, 318.0),
+        (17.0, 212.5, 95.0, 301.0, 48.0, 160.0, 250.0, 122.0, 77.5, 5.5, 281.0, 140.0, 33.0, 199.0, 64.0),
+        (133.0, 4.0, 271.5, 66.0, 190.0, 345.0, 12.0, 203.0, 318.0, 87.0, 150.5, 260.0, 111.0, 42.0, 222.0),
     )[k]
     tilt = (
-        (0.04, -0.03), (-0.02, 0.05), (0.0, 0.0), (0.03, 0.02), (-0.05, 0.01),
-        (0.02, -0.04), (0.0, 0.0), (0.01, 0.03), (-0.03, -0.02),
+        (0.04, -0.03), (-0.02, 0.05), (0.0, 0.0), (0.03, 0.02), (-0.05, 0.01), (0.02, -0.04), (0.0, 0.0),
+        (0.01, 0.03), (-0.03, -0.02), (0.02, 0.02), (-0.04, 0.0), (0.0, -0.03), (0.05, -0.01), (-0.01, 0.04),
+        (0.03, -0.02),
     )
-    # 0.36 degree steps: 19 cm between points at 30 m. Tripods look down to -25 degrees (a
-    # blind circle of about 4.7 m radius), the elevated stations to -35 and -40 degrees.
-    step = dict(az_step_deg=0.36, el_step_deg=0.36)
-    low = dict(el_min_deg=-25.0, **step)
+    # 0.4 degree steps: 21 cm between points at 30 m. Tripods look down to -20 degrees (a
+    # blind circle of about 6 m radius), the elevated stations to -35 and -40 degrees.
+    step = dict(az_step_deg=0.4, el_step_deg=0.4)
+    low = dict(el_min_deg=-20.0, **step)
     return (
         tripod("ST1", 10.0, 55.0, yaw[0], *tilt[0], **low),
         tripod("ST2", 42.0, 86.0, yaw[1], *tilt[1], **low),
@@ -219,12 +220,18 @@ def _stations(k: int) -> tuple[Station, ...]:
         Station("ST7", _MAST[0], _MAST[1], mast_top + _INSTRUMENT_HEIGHT, yaw[6], *tilt[6], el_min_deg=-40.0, **step),
         tripod("ST8", 180.0, 128.0, yaw[7], *tilt[7], **low),
         tripod("ST9", 62.0, 130.0, yaw[8], *tilt[8], **low),
+        tripod("ST10", 100.0, 16.0, yaw[9], *tilt[9], **low),
+        tripod("ST11", 140.0, 130.0, yaw[10], *tilt[10], **low),
+        tripod("ST12", 8.0, 90.0, yaw[11], *tilt[11], **low),
+        tripod("ST13", 222.0, 96.0, yaw[12], *tilt[12], **low),
+        tripod("ST14", 96.0, 128.0, yaw[13], *tilt[13], **low),
+        tripod("ST15", 46.0, 62.0, yaw[14], *tilt[14], **low),
     )
 
 
 SURVEYS: tuple[SurveySpec, ...] = (
-    SurveySpec("2026-09-30", "+02:00", "13:05", _stations(0), "ST6"),
-    SurveySpec("2026-10-31", "+01:00", "12:50", _stations(1), "ST6"),
+    SurveySpec("2026-09-30", "+02:00", "12:15", _stations(0), "ST6"),
+    SurveySpec("2026-10-31", "+01:00", "12:10", _stations(1), "ST6"),
 )
 
 
