@@ -28,7 +28,6 @@ a pile with a large throughput and a small net change.
 
 from __future__ import annotations
 
-import math
 import warnings
 from dataclasses import dataclass, field
 from datetime import datetime

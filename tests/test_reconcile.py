@@ -6,7 +6,6 @@ from __future__ import annotations
 import math
 from types import SimpleNamespace as NS
 
-import numpy as np
 import pandas as pd
 import pytest
 
