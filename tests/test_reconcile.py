@@ -297,3 +297,18 @@ def test_missing_ledger_opening_opens_empty_with_a_warning():
     with pytest.warns(InputWarning, match="pile.s. B: taken as 0 t"):
         book = book_stock(NS(), {"A": 10.0, "B": float("nan")}, AT, SCALES, ["A", "B"], END, START)
     assert book.piles.set_index("pile_id")["opening_t"].to_dict() == {"A": 10.0, "B": 0.0}
+
+
+def test_totals_agree_and_row_order_does_not_matter():
+    book = book_from({"A": 1000.0, "B": 500.0, "C": 800.0}, belt_t={"A": 300.0, "B": 200.0},
+                     materials={"A": "coal", "B": "coal", "C": "ore"})
+    sv = survey_of({"A": 1290.0, "B": 712.0, "C": 790.0}, {"A": 20.0, "B": 15.0, "C": 30.0})
+    r = reconcile(sv, book, MATERIALS, scales=SCALES)
+    m = r.materials.set_index("material")
+    p = r.piles.set_index("pile_id")
+    assert m.loc["coal", "variance_t"] == pytest.approx(p.loc[["A", "B"], "variance_t"].sum())
+    assert m.loc["coal", "adjustment_t"] == pytest.approx(r.journal.set_index("pile_id").loc[["A", "B"], "adjustment_t"].sum())
+    assert m.loc["ore", "variance_t"] == pytest.approx(-10.0)
+    shuffled = reconcile(sv.iloc[::-1].reset_index(drop=True), book, MATERIALS, scales=SCALES)
+    pd.testing.assert_frame_equal(r.piles, shuffled.piles)
+    pd.testing.assert_frame_equal(r.scale_diagnostics, shuffled.scale_diagnostics)
