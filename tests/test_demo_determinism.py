@@ -27,11 +27,24 @@ def _digests(root: Path) -> dict[str, str]:
 @pytest.mark.slow
 @pytest.mark.skipif(not (SITE / "site.toml").is_file(), reason="sample_site/ not generated yet")
 def test_sample_regenerates_byte_for_byte(tmp_path: Path):
-    fresh = write_sample_site(tmp_path / "site", seed=DEFAULT_SEED)
+    """`inventory sample DIR --seed <default>` (the command line) writes the committed bytes."""
+    from inventory.cli import main
+
+    fresh = tmp_path / "site"
+    assert main(["sample", str(fresh), "--seed", str(DEFAULT_SEED)]) == 0
     got, want = _digests(fresh), _digests(SITE)
     assert sorted(got) == sorted(want)
     differ = [name for name in want if got[name] != want[name]]
     assert not differ, f"regenerated files differ: {differ}"
+
+
+def test_sample_refuses_a_non_empty_folder(tmp_path: Path):
+    from inventory.errors import InputError
+
+    (tmp_path / "keep.txt").write_text("mine")
+    with pytest.raises(InputError, match="not empty"):
+        write_sample_site(tmp_path)
+    assert [p.name for p in tmp_path.iterdir()] == ["keep.txt"]
 
 
 def test_a_different_seed_gives_a_different_scan(tmp_path: Path):

@@ -273,6 +273,26 @@ def test_pose_puts_every_cloud_on_the_true_surface(truth):
                 assert np.median(above) > 0.5
 
 
+def test_pile_points_fall_inside_their_own_footprint(truth):
+    """Labels and register agree: every point labelled as pile i lies in pile i's footprint."""
+    import geopandas as gpd
+    import laspy
+    import shapely
+
+    piles = gpd.read_file(SITE / "piles.gpkg", layer="piles").set_index("pile_id")
+    index = {p["index"]: p["pile_id"] for p in truth["piles"]}
+    survey = truth["surveys"][0]
+    labels = np.load(SITE / survey["labels"])
+    geo = [name for name, f in survey["files"].items() if f["georeferenced"]][0]
+    las = laspy.read(SITE / "surveys" / survey["date"] / geo)
+    pile = labels[f"{survey['files'][geo]['station_id']}_pile"]
+    assert (pile > 0).sum() > 1000
+    for i in np.unique(pile[pile > 0]):
+        m = pile == i
+        inside = shapely.contains_xy(piles.geometry[index[int(i)]], np.asarray(las.x)[m], np.asarray(las.y)[m])
+        assert inside.all(), index[int(i)]
+
+
 def test_some_movements_come_after_each_survey_instant(truth):
     """Cut-off: on both survey days something moves after the scan."""
     for k, survey in enumerate(truth["surveys"]):

@@ -28,6 +28,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 
 from .. import __version__
+from ..errors import InputError
 from . import books as _books
 from .scenario import (
     MATERIALS,
@@ -231,6 +232,7 @@ def write_sample_site(dest: str | os.PathLike, seed: int = DEFAULT_SEED, *, over
     ----------
     dest : path
         Folder to create. Must not exist, or be empty, unless ``overwrite`` is true.
+        The site is built in a temporary folder beside it and renamed into place.
     seed : int
         Seed of every random draw; the same seed gives the same bytes.
     overwrite : bool
@@ -240,10 +242,17 @@ def write_sample_site(dest: str | os.PathLike, seed: int = DEFAULT_SEED, *, over
     -------
     Path
         ``dest``.
+
+    Raises
+    ------
+    InputError
+        When ``dest`` is a file, or a non-empty folder and ``overwrite`` is false.
     """
     dest = Path(dest)
+    if dest.exists() and not dest.is_dir():
+        raise InputError(dest, "is a file; the sample site needs a new folder")
     if dest.exists() and any(dest.iterdir()) and not overwrite:
-        raise FileExistsError(f"{dest} exists and is not empty (pass overwrite=True to replace it)")
+        raise InputError(dest, "folder exists and is not empty; choose a new folder (nothing was written)")
     parent = dest.resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=".sample-", dir=parent))
