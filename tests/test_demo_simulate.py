@@ -255,3 +255,26 @@ def test_station_frame_round_trips_with_the_contract_pose():
     pts = np.random.default_rng(1).normal(size=(50, 3)) * 20
     back = to_station_frame(pts, st) @ rot.T + st.origin
     assert np.allclose(back, pts)
+
+
+def test_raster_scene_reproduces_a_plane_exactly():
+    from inventory.demo.simulate import raster_scene
+
+    # Bilinear interpolation reproduces any plane exactly, so the scan must land on it.
+    cell, west, north = 0.5, -40.0, 40.0
+    xs = west + (np.arange(160) + 0.5) * cell
+    ys = north - (np.arange(160) + 0.5) * cell
+    X, Y = np.meshgrid(xs, ys)
+    plane = 2.0 + 0.02 * X - 0.015 * Y
+    pile = (np.hypot(X - 10, Y) < 5).astype(int)
+    scene = raster_scene(plane, west, north, cell, pile=pile, reflectivity=0.4)
+    st = Station("R", 0.0, 0.0, 4.0, az_step_deg=1.0, el_step_deg=0.5, el_min_deg=-40, el_max_deg=0,
+                 profile_range_m=35.0)
+    res = scan(scene, st, EXACT)
+    inside = (np.abs(res.xyz[:, 0]) < 39.5) & (np.abs(res.xyz[:, 1]) < 39.5)
+    assert inside.sum() > 5000
+    p = res.xyz[inside]
+    assert np.allclose(p[:, 2], 2.0 + 0.02 * p[:, 0] - 0.015 * p[:, 1], atol=1e-6)
+    labelled = res.kind[inside] == KIND_PILE
+    assert np.all(np.hypot(p[labelled, 0] - 10, p[labelled, 1]) < 5 + cell)
+    assert labelled.sum() > 50

@@ -51,6 +51,7 @@ __all__ = [
     "ScannerModel",
     "ScanResult",
     "scan",
+    "raster_scene",
     "station_rotation",
     "to_station_frame",
     "max_range_for",
@@ -264,6 +265,71 @@ class Scene:
     solids: Sequence[Solid] = ()
     dust: Sequence[DustCloud] = ()
     birds: Sequence[Sphere] = ()
+
+
+def raster_scene(
+    z: np.ndarray,
+    west: float,
+    north: float,
+    cell: float,
+    *,
+    pile: np.ndarray | None = None,
+    reflectivity: float | np.ndarray = 0.3,
+    solids: Sequence[Solid] = (),
+    dust: Sequence[DustCloud] = (),
+    birds: Sequence[Sphere] = (),
+) -> Scene:
+    """A scene whose terrain is a north-up raster, interpolated bilinearly between cell centres.
+
+    Parameters
+    ----------
+    z : (nrows, ncols) array
+        Heights at cell centres; row 0 is the northern edge (GeoTIFF order). Outside the raster
+        the edge values continue.
+    west, north, cell : float
+        Outer corner of cell (0, 0) and the cell size (scene units, metres).
+    pile : (nrows, ncols) int array, optional
+        1-based pile index per cell (0 = ground), taken from the nearest cell.
+    reflectivity : float or (nrows, ncols) array
+        Reflectivity per cell (nearest cell) or one value.
+    solids, dust, birds : as in :class:`Scene`
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> z = np.add.outer(-np.arange(4.0), np.arange(5.0)) * 0.1    # a plane rising east and north
+    >>> sc = raster_scene(z, west=0.0, north=4.0, cell=1.0)
+    >>> float(np.round(sc.height(np.array([2.5]), np.array([1.5]))[0], 6))
+    0.0
+    """
+    z = np.asarray(z, dtype=float)
+    nrows, ncols = z.shape
+    pile_arr = np.zeros(z.shape, dtype=int) if pile is None else np.asarray(pile, dtype=int)
+    refl_arr = np.broadcast_to(np.asarray(reflectivity, dtype=float), z.shape)
+
+    def frac_index(x, y):
+        fx = np.clip((np.asarray(x) - west) / cell - 0.5, 0.0, ncols - 1.0)
+        fy = np.clip((north - np.asarray(y)) / cell - 0.5, 0.0, nrows - 1.0)
+        return fx, fy
+
+    def height(x, y):
+        fx, fy = frac_index(x, y)
+        c0 = np.minimum(np.floor(fx).astype(int), max(ncols - 2, 0))
+        r0 = np.minimum(np.floor(fy).astype(int), max(nrows - 2, 0))
+        c1 = np.minimum(c0 + 1, ncols - 1)
+        r1 = np.minimum(r0 + 1, nrows - 1)
+        tx, ty = fx - c0, fy - r0
+        top = z[r0, c0] * (1 - tx) + z[r0, c1] * tx
+        bottom = z[r1, c0] * (1 - tx) + z[r1, c1] * tx
+        return top * (1 - ty) + bottom * ty
+
+    def info(x, y):
+        fx, fy = frac_index(x, y)
+        r = np.rint(fy).astype(int)
+        c = np.rint(fx).astype(int)
+        return pile_arr[r, c], refl_arr[r, c]
+
+    return Scene(height, info, solids, dust, birds)
 
 
 @dataclass(frozen=True)
