@@ -10,6 +10,38 @@
 
 Every byte is reproducible: fixed seeds, fixed LAS creation dates, a fixed GeoPackage
 timestamp, fixed PNG metadata, fixed zip entry dates and ``\\n`` line endings.
+
+The truth (for tests; the tool never reads it)
+-----------------------------------------------
+``truth.json`` keys:
+
+* ``site``: name, crs, timezone, ``local_origin_in_site_crs`` (site = local + origin), ``pad``.
+* ``materials``: per material ``density_t_m3`` (true), ``table_density_t_m3`` (materials.csv),
+  ``repose_deg``, ``reflectivity``, ``max_range_m``.
+* ``piles``: list of ``index`` (1-based, as in the labels), ``pile_id``, ``material``, ``base``,
+  ``description``, ``density_t_m3`` (true).
+* ``surveys``: list per survey of ``date``, ``instant`` (ISO with offset), ``piles`` (per pile
+  ``volume_m3`` analytic above its base, ``volume_fine_m3`` 0.05 m integration, ``tonnes`` true,
+  ``tonnes_at_table_density``, ``shape`` parameters), ``files`` (per LAZ: ``station_id``,
+  ``points``, ``georeferenced``, ``pose_site`` [x, y, z, roll, pitch, yaw] or null,
+  ``origin_site``, angular steps, ``counts`` per label kind), ``counts`` (per kind, all files),
+  ``machine_points`` (structure + machine + vehicle), ``noise_points`` (dust + bird + ghost),
+  ``objects`` (solid ids, names, kinds), ``dust_clouds``, ``birds``, ``surface`` and ``labels``
+  (paths below).
+* ``label_codes``: the ``kind`` codes (0 pad, 1 pile, 2 structure, 3 machine, 4 vehicle,
+  5 dust, 6 bird, 7 ghost) and what ``pile`` and ``object`` hold.
+* ``books``: ``opening``, ``true_net_t`` per pile (before the first survey, between the surveys,
+  after the second), ``book_at_survey_t`` per survey (``book_t`` from the records with a repeated
+  ticket counted once, ``true_t``, ``book_minus_true_t``, ``variance_at_table_density_t``),
+  ``counts`` of rows per period.
+* ``faults``: ``belt_bias``, ``duplicate_ticket``, ``missing_transfer``, ``density_low`` with
+  their exact values and their effect on book or survey tonnes.
+* ``scanner``, ``volume_method``, ``generator`` (seed, version).
+
+``truth/surface-<date>.tif``: the true surface (pad and piles, no machines) as the mean over
+each 0.5 m tool cell of a 0.05 m sampling, float32, on the same grid as ``base/floor.tif``.
+``truth/labels-<date>.npz``: ``<station>_kind``, ``<station>_pile``, ``<station>_object``
+(uint8), one entry per point in LAZ file order.
 """
 
 from __future__ import annotations
