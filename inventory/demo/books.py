@@ -78,6 +78,8 @@ _TRANSFERS = [
     (1, "FE2", "FE1", 400.0), (1, "FE2", "FE1", 360.0), (1, "L2", "L1", 260.0),
 ]
 _FLEET = 16
+#: Minutes before the same truck crosses the weighbridge again (load, haul, tip, return).
+_ROUND_TRIP_MIN = 50
 
 
 @dataclass
@@ -375,8 +377,11 @@ def make_books(
         times.extend(zip(when, [rows[i] for i in order]))
     times.sort(key=lambda x: x[0])
     tickets: list[Ticket] = []
+    free_at = [start] * _FLEET  # a truck is back at the weighbridge one round trip later
     for i, (when, (w, p, d, net)) in enumerate(times):
-        v = int(rng.integers(_FLEET))
+        ready = [j for j in range(_FLEET) if free_at[j] <= when]
+        v = int(ready[int(rng.integers(len(ready)))]) if ready else int(np.argmin(free_at))
+        free_at[v] = when + timedelta(minutes=_ROUND_TRIP_MIN)
         tare = fleet_tare[v] + rng.normal(0.0, 0.05)
         gross = tare + net
         g_rec, t_rec = _round_e([gross + rng.normal(0.0, WEIGHING_SD_T), tare + rng.normal(0.0, WEIGHING_SD_T)])

@@ -155,7 +155,7 @@ _BAY_WALL_T, _BAY_WALL_H = 0.6, 4.5
 _GALLERY = (106.0, 58.0, 108.5, 146.0)
 _GALLERY_UNDERSIDE, _GALLERY_ROOF = 6.5, 9.0
 _MAST = (172.0, 42.0)
-_MAST_SIZE, _MAST_H = 2.4, 7.0
+_MAST_SIZE, _MAST_H = 2.4, 10.0
 _INSTRUMENT_HEIGHT = 1.6  # scanner optical centre above its stand (common practice ~1.5-1.8 m)
 
 
