@@ -117,10 +117,19 @@ def _read_surface_raster(path: Path, like: Surface) -> np.ndarray | None:
     return out
 
 
+def _month_before(period: str) -> str:
+    year, month = int(period[:4]), int(period[5:7])
+    return f"{year - 1}-12" if month == 1 else f"{year}-{month - 1:02d}"
+
+
 def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
-    from_ledger = ledger.opening_for(period)
-    if from_ledger is not None:
-        return from_ledger, "ledger (adopted closing of the previous period)"
+    from .book import opening_from_close
+
+    # opening_for refuses when the month before was skipped or is reopened and not closed
+    if ledger.opening_for(period) is not None:
+        adopted = ledger.adopted(_month_before(period))
+        opening = opening_from_close(adopted, site.materials, site.config.reconcile.adjust_to)
+        return opening, "ledger (adopted closing of the previous period)"
     if site.opening is not None:
         return site.opening, "opening.csv"
     raise InputError(
@@ -276,7 +285,8 @@ def close_period(
             if prev_period and ledger.is_locked(prev_period):
                 adopted = ledger.adopted(prev_period)
                 if len(adopted):
-                    previous = adopted[["pile_id", "survey_t", "survey_sigma_t"]]
+                    previous = adopted[["pile_id", "material", "survey_t", "survey_sigma_t", "volume_m3",
+                                        "after_survey_net_t"]]
             rec = _rec.reconcile(
                 vols, book, site.materials, site.config.reconcile, previous=previous,
                 period=period, scales=site.scales,
@@ -301,6 +311,12 @@ def close_period(
                 scale_diagnostics=rec.scale_diagnostics, duplicates=book.duplicates,
                 surface=surface, thickness=thickness, change=change, coverage_gaps=gaps,
                 survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
+                tables={
+                    "Materials": rec.materials,
+                    "Measured change": rec.change,
+                    "Belt split": book.belt_split,
+                },
+                reason_codes=dict(rec.reason_codes),
                 run={
                     "inputs": inputs,
                     "parameters": {

@@ -74,3 +74,9 @@ class CloseResult:
     coverage_gaps: Any               # GeoDataFrame: pile_id, area_m2, geometry
     survey_extent: Any               # GeoDataFrame: survey_date, points, geometry
     run: dict = field(default_factory=dict)  # inputs (path -> sha256), parameters, versions, timings
+    #: Further tables a controller reads beside the main ones, by sheet title: e.g.
+    #: "Belt split" (belt totals cut at routing changes and the survey instant),
+    #: "Measured change" (change between two surveys vs net movement), "Materials".
+    tables: dict = field(default_factory=dict)
+    #: Reason codes of the adjustment journal: code -> what it means.
+    reason_codes: dict = field(default_factory=dict)

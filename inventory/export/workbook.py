@@ -408,7 +408,31 @@ def _journal_sheet(wb, result: CloseResult) -> None:
     _total_row(ws, last + 2, 1, "Total", {col: (first, last)}, {col: _FMT_T_SIGNED})
     ws.cell(row=last + 4, column=1, value=(
         "A positive adjustment increases book stock (book + adjustment = adopted figure)."))
+    from openpyxl.styles import Font
+
+    r = last + 6
+    if result.reason_codes:
+        ws.cell(row=r, column=1, value="Reason codes").font = Font(name="Calibri", bold=True, size=11)
+        for code, meaning in result.reason_codes.items():
+            r += 1
+            ws.cell(row=r, column=1, value=code)
+            ws.cell(row=r, column=2, value=meaning)
     _fit_columns(ws)
+
+
+def _extra_sheets(wb, result: CloseResult) -> None:
+    """One sheet per further table of the close (belt split, measured change, materials)."""
+    for title, frame in (result.tables or {}).items():
+        if frame is None:
+            continue
+        ws = wb.create_sheet(str(title)[:31])
+        shown = frame.rename(columns=str).copy()
+        for col in shown.columns:  # lists and sets (e.g. pile ids) as plain text
+            if shown[col].map(lambda v: isinstance(v, (list, tuple, set, np.ndarray))).any():
+                shown[col] = shown[col].map(
+                    lambda v: ", ".join(map(str, v)) if isinstance(v, (list, tuple, set, np.ndarray)) else v)
+        _table(ws, shown, list(shown.columns), tz=ZoneInfo(result.timezone) if result.timezone else None)
+        _fit_columns(ws)
 
 
 def _scales_sheet(wb, result: CloseResult) -> None:
@@ -577,6 +601,7 @@ def write_workbook(result: CloseResult, path: str | Path) -> Path:
     _journal_sheet(wb, result)
     _scales_sheet(wb, result)
     _duplicates_sheet(wb, result)
+    _extra_sheets(wb, result)
     _run_sheet(wb, result)
     _summary_sheet(summary, result, refs)
     wb.properties.title = f"Stock close {result.period}"
