@@ -2,7 +2,8 @@
 
 The public API, for a notebook that wants to do step by step what ``inventory close`` does:
 
->>> from inventory import load_site, measure_survey, measure_piles, book_stock, reconcile  # doctest: +SKIP
+>>> from inventory import load_site, measure_survey, measure_piles, book_stock  # doctest: +SKIP
+>>> from inventory.reconcile import reconcile                        # doctest: +SKIP
 >>> site = load_site("sample_site")                                  # doctest: +SKIP
 >>> survey = measure_survey(site, "2026-10-31")                      # doctest: +SKIP
 >>> piles = measure_piles(survey.surface, site.piles, site.materials)  # doctest: +SKIP
@@ -27,7 +28,6 @@ _API = {
     "measure_piles": "volume",
     "BaseSurfaces": "volume",
     "book_stock": "book",
-    "reconcile": "reconcile",
     "close_period": "close",
     "reopen_period": "close",
     "period_history": "close",
