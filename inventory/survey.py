@@ -37,7 +37,7 @@ from .cloud.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from .cloud.georef import StationPose, poses_from_stations
 from .cloud.io import DEFAULT_CHUNK, POINT_DTYPE, CloudWriter, open_cloud
 from .cloud.pipeline import Pipeline, load_pipeline, pdal_available
-from .errors import CoverageWarning, CRSError, InputError, PipelineError
+from .errors import CoverageWarning, CRSError, InputError, PipelineError, RunError
 from .grid import Grid, Surface
 from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
 
@@ -307,7 +307,10 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     try:
         spill = _TileSpill(grid, tile_cells, tmp)
         read = outside = 0
-        total = sum(open_cloud(s.path).count for s in sources)
+        total = 0
+        for src in sources:
+            with open_cloud(src.path) as cloud:
+                total += cloud.count
         for src in sources:
             with open_cloud(src.path, chunk_size=chunk_size) as cloud:
                 reproject = None if src.pose is not None else cache.get(src.crs, site_crs)
@@ -324,8 +327,8 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         timings["read"] = time.perf_counter() - t_start
 
         t0 = time.perf_counter()
-        acc = SurfaceAccumulator(grid, grid_cfg.statistic)
         counts: dict[int, int] = {}
+        ground_box = [math.inf, math.inf, -math.inf, -math.inf]
         kept = 0
         writer = None
         classified_path = None
@@ -341,8 +344,13 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                 for c, n in zip(*np.unique(cls, return_counts=True)):
                     counts[int(c)] = counts.get(int(c), 0) + int(n)
                 kept += len(result)
-                g = cls == GROUND
-                acc.add(result["X"][g], result["Y"][g], result["Z"][g])
+                g = result[cls == GROUND]
+                if len(g):
+                    ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
+                                  max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
+                    tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
+                    with open(tmp / f"ground_{tile}.bin", "ab") as f:
+                        np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
                 if writer is not None:
                     writer.write(result)
                 say(f"classifying: tile {i + 1} of {len(tiles)}")
@@ -353,11 +361,23 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         if writer is not None:
             writer.close()
         timings["classify"] = time.perf_counter() - t0
+
+        # The surface grid covers the surface points only: far returns (ghosts, distant
+        # buildings) widen the files' header boxes but not the grid. Its origin is snapped
+        # to the cell size, so it lines up with every other survey of the site, and its
+        # tiles' edges fall on cell edges (what the median statistic needs).
+        t0 = time.perf_counter()
+        say("gridding the surface and filling holes")
+        if not math.isfinite(ground_box[0]):
+            raise RunError(f"survey {date}: no point was classified as surface")
+        sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
+        acc = SurfaceAccumulator(sgrid, grid_cfg.statistic)
+        for f in sorted(tmp.glob("ground_*.bin")):
+            xyz = np.fromfile(f).reshape(-1, 3)
+            acc.add(xyz[:, 0], xyz[:, 1], xyz[:, 2])
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
 
-    t0 = time.perf_counter()
-    say("gridding the surface and filling holes")
     surface, fill = fill_holes(acc.result(date), float(grid_cfg.max_fill_distance_m))
     surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
     if fill.gap_cells:

@@ -78,7 +78,7 @@ def test_cone_at_angle_of_repose_is_all_surface(slope):
     crest = z > z.max() - 0.5
     assert (cls[crest] == GROUND).all()
     strict, _ = slope_ground(x, y, z, np.ones(len(z), np.uint8), np.zeros(len(z), bool),
-                             SlopeGroundParams(max_slope_deg=25.0))
+                             SlopeGroundParams(max_slope_deg=25.0, face_slope_deg=25.0))
     assert (strict[crest] != GROUND).mean() > 0.5
 
 
@@ -109,3 +109,55 @@ def test_vertical_wall_is_not_surface():
     assert (cls[wall & (z > 0.5)] != GROUND).all()
     assert (cls[wall] != GROUND).mean() > 0.9
     assert (cls[~wall] == GROUND).mean() >= 0.995
+
+
+def _windrow_with_face(face_deg, seed=3):
+    """A 38-degree windrow, 8 m high, cut square by a reclaim face at ``face_deg``."""
+    rng = np.random.default_rng(seed)
+    n = 60000
+    x, y = rng.random(n) * 70 - 10, rng.random(n) * 40 - 20
+    t38, tf = math.tan(math.radians(38)), math.tan(math.radians(face_deg))
+    z = np.minimum(8.0, (10.24 - np.abs(y)) * t38)          # flanks; crest 8 m
+    z = np.minimum(z, (45.0 - x) * tf)                       # the face at x = 45
+    z = np.minimum(z, (x + 0.0) * t38)                        # conical-ish far end
+    return x, y, np.maximum(z, 0.0) + rng.normal(0, 0.005, n)
+
+
+def test_reclaim_face_and_top_behind_it_stay_surface():
+    # A loader's reclaim face stands steeper than repose (here 60 degrees, as the demo
+    # site's FE1); the top behind it must stay surface. Without the face rule the band
+    # behind the edge is lost (the test can fail).
+    x, y, z = _windrow_with_face(60.0)
+    top = (z > 7.9) & (x > 35)
+    cls, _ = slope_ground(x, y, z, np.ones(len(z), np.uint8), np.zeros(len(z), bool))
+    assert (cls == GROUND).mean() >= 0.995
+    assert (cls[top] == GROUND).all()
+    plain, _ = slope_ground(x, y, z, np.ones(len(z), np.uint8), np.zeros(len(z), bool),
+                            SlopeGroundParams(face_slope_deg=50.0))
+    assert (plain[top] != GROUND).mean() > 0.3
+
+
+def test_flat_roof_of_a_machine_is_not_rescued_as_a_face():
+    # A 9 m x 6 m portal, 2.6 m tall, on a flat pad (the demo stacker's rail portal).
+    rng = np.random.default_rng(8)
+    n = 40000
+    x, y = rng.random(n) * 40, rng.random(n) * 40
+    portal = (np.abs(x - 20) < 4.5) & (np.abs(y - 20) < 3.0)
+    x, y = x[~portal], y[~portal]
+    z = np.zeros(len(x))
+    m = 8000
+    rx, ry = 15.5 + rng.random(m) * 9, 17 + rng.random(m) * 6      # roof
+    w = 6000                                                       # walls
+    side = rng.integers(0, 4, w)
+    s = rng.random(w)
+    wx = np.choose(side, [15.5 + 9 * s, 15.5 + 9 * s, np.full(w, 15.5), np.full(w, 24.5)])
+    wy = np.choose(side, [np.full(w, 17.0), np.full(w, 23.0), 17 + 6 * s, 17 + 6 * s])
+    wz = rng.random(w) * 2.6
+    X, Y, Z = np.r_[x, rx, wx], np.r_[y, ry, wy], np.r_[z, np.full(m, 2.6), wz]
+    cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
+    assert (cls[len(x):len(x) + m] != GROUND).all()     # no roof point
+    # Wall feet: at 77 points/m2 the lowest wall point within d of a point is about
+    # 2.6 m / (200 per m x 2d) high, so the surface class creeps about 0.3 m up the wall.
+    wall = np.arange(len(Z)) >= len(x) + m
+    assert (cls[wall & (Z > 0.5)] != GROUND).all()
+    assert (cls[:len(x)] == GROUND).mean() >= 0.999

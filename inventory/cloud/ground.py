@@ -65,7 +65,7 @@ import contextlib
 import math
 import os
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -86,14 +86,21 @@ class SlopeGroundParams:
     """Options of :func:`slope_ground` (also the options of stage ``inventory.slope_ground``)."""
 
     max_slope_deg: float = 50.0   # above the steepest repose angle, 40 deg (REFERENCES.md)
-    tolerance: float = 0.15       # m; ranging noise of survey scanners is 5-10 mm (common practice)
+    tolerance: float = 0.10       # m; ranging noise of survey scanners is 2-25 mm (common practice)
     cell: float = 0.25            # m; seed grid
     window: float = 12.0          # m; a 12 m tall object needs 10 m of propagation at 50 deg
     overhead_gap: float = 2.0     # m of empty space below a layer to call it overhead
+    face_slope_deg: float = 70.0  # reclaim faces cut by loaders stand up to about this (common practice)
+    face_attached: float = 0.5    # share of a steep patch's surroundings that must continue it
+    max_top_area: float = 400.0   # m2; walled flat tops up to this size are objects, not ground
 
     def __post_init__(self) -> None:
         if not 0 < self.max_slope_deg < 90:
             raise PipelineError(f"max_slope_deg must be between 0 and 90, got {self.max_slope_deg}")
+        if not 0 < self.face_slope_deg < 90:
+            raise PipelineError(f"face_slope_deg must be between 0 and 90, got {self.face_slope_deg}")
+        if not 0 <= self.face_attached <= 1:
+            raise PipelineError(f"face_attached must be between 0 and 1, got {self.face_attached}")
         for name in ("tolerance", "cell", "window", "overhead_gap"):
             if not getattr(self, name) > 0:
                 raise PipelineError(f"{name} must be positive, got {getattr(self, name)}")
@@ -174,6 +181,152 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
     return (z[nb] + t * d).min(axis=1)
 
 
+def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
+                    params: SlopeGroundParams) -> np.ndarray:
+    """Points kept only by the steeper ``face_slope_deg`` bound that belong to the surface.
+
+    Candidates lie on the envelope of ``face_slope_deg`` but not of ``max_slope_deg``:
+    reclaim faces cut by a loader and the pile top behind them, but also the middle of a
+    machine's flat roof and the feet of walls. Candidate points are rasterised on cells of
+    ``2 * cell`` and joined into patches of 8-connected cells whose lowest points differ by
+    no more than the face slope allows over one cell; a patch that rises at least
+    ``overhead_gap`` (a face, not the strip along the foot of a wall) is accepted when at least ``face_attached`` of the
+    cells around it hold surface points that continue it: the lowest patch point next to
+    the cell within tolerance plus ``max_slope_deg`` over one cell of the cell's highest
+    surface point. A cut pile top is surrounded by the pile it was cut
+    from; a roof is surrounded by its own edges, which are not surface.
+    """
+    from scipy import ndimage
+
+    steep = replace(params, max_slope_deg=params.face_slope_deg)
+    e = np.minimum(slope_envelope(x, y, z, steep), _local_envelope(x, y, z, steep))
+    cand = ~ground & (z - e <= params.tolerance)
+    out = np.zeros(len(z), bool)
+    if not cand.any():
+        return out
+    c = 2 * params.cell
+    x0, y0 = x.min(), y.min()
+    col = ((x - x0) // c).astype(np.int64)
+    row = ((y - y0) // c).astype(np.int64)
+    shape = (int(row.max()) + 1, int(col.max()) + 1)
+
+    size = shape[0] * shape[1]
+
+    def extreme_grid(sel: np.ndarray, fn: np.ufunc, fill: float) -> np.ndarray:
+        g = np.full(size, fill)
+        fn.at(g, row[sel] * shape[1] + col[sel], z[sel])
+        return np.where(np.isinf(g), np.nan, g).reshape(shape)
+
+    # A patch continues the surface where its lowest points meet the highest surface
+    # points of the cell beside it: the foot of a reclaim face meets the pad, the edge of
+    # the cut top meets the flank. The underside of a truck body or a roof does not.
+    zc = extreme_grid(cand, np.minimum, np.inf)
+    zc_top = extreme_grid(cand, np.maximum, -np.inf)
+    zg = extreme_grid(ground, np.maximum, -np.inf)
+    has_c, has_g = np.isfinite(zc), np.isfinite(zg)
+    labels, n = _continuous_patches(zc, params.tolerance + math.tan(math.radians(params.face_slope_deg)) * c)
+    reach = params.tolerance + math.tan(math.radians(params.max_slope_deg)) * c
+    accepted = np.zeros(n + 1, bool)
+    box = np.ones((3, 3), bool)
+    for i, sl in enumerate(ndimage.find_objects(labels), start=1):
+        if sl is None:
+            continue
+        sl = tuple(slice(max(s.start - 1, 0), s.stop + 1) for s in sl)
+        comp = labels[sl] == i
+        if zc_top[sl][comp].max() - zc[sl][comp].min() < params.overhead_gap:
+            continue   # a strip along the foot of a wall, not a face up to a top
+        ring = ndimage.binary_dilation(comp, structure=box) & ~comp
+        z_next = ndimage.grey_erosion(np.where(comp, zc[sl], np.inf), footprint=box, mode="constant",
+                                      cval=np.inf)
+        with np.errstate(invalid="ignore"):
+            ok = ring & has_g[sl] & (np.abs(z_next - zg[sl]) <= reach)
+        if ring.sum() and ok.sum() >= params.face_attached * ring.sum():
+            accepted[i] = True
+    out[cand] = accepted[labels[row[cand], col[cand]]]
+    return out
+
+
+def _continuous_patches(zc: np.ndarray, step: float) -> tuple[np.ndarray, int]:
+    """Label 8-connected cells with finite ``zc`` where neighbours differ by at most ``step``."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    nr, nc = zc.shape
+    idx = np.arange(nr * nc).reshape(nr, nc)
+    ok = np.isfinite(zc)
+    rows, cols = [], []
+    for dr, dc in ((0, 1), (1, 0), (1, 1), (1, -1)):
+        a = (slice(0, nr - dr), slice(max(-dc, 0), nc - max(dc, 0)))
+        b = (slice(dr, nr), slice(max(dc, 0), nc + min(dc, 0)))
+        with np.errstate(invalid="ignore"):
+            link = ok[a] & ok[b] & (np.abs(zc[a] - zc[b]) <= step)
+        rows.append(idx[a][link])
+        cols.append(idx[b][link])
+    r, c_ = np.concatenate(rows), np.concatenate(cols)
+    graph = coo_matrix((np.ones(len(r), bool), (r, c_)), shape=(nr * nc, nr * nc))
+    _, comp = connected_components(graph, directed=False)
+    labels = np.zeros(nr * nc, np.int64)
+    uniq, inv = np.unique(comp[ok.ravel()], return_inverse=True)
+    labels[ok.ravel()] = inv + 1
+    return labels.reshape(nr, nc), len(uniq)
+
+
+def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
+                 params: SlopeGroundParams) -> np.ndarray:
+    """Ground points on the flat top of an object with walls (a machine roof, a container).
+
+    The envelope lets a flat top through once it is farther than ``height / tan(max_slope)``
+    from every wall foot. Such a top is an island of surface cells (cells of ``2 * cell``,
+    8-connected) cut off from the rest by cells that hold only non-surface points (its
+    walls and roof edges), not by unscanned cells as an occluded pile top would be. An
+    island of at most ``max_top_area`` m2, with at least half of the cells around it
+    occupied by non-surface points and standing more than ``overhead_gap`` / 2 above the
+    lowest point within 3 m of it (the foot of its walls), is not surface.
+    """
+    from scipy import ndimage
+
+    out = np.zeros(len(z), bool)
+    if not ground.any() or ground.all():
+        return out
+    c = 2 * params.cell
+    x0, y0 = x.min(), y.min()
+    col = ((x - x0) // c).astype(np.int64)
+    row = ((y - y0) // c).astype(np.int64)
+    shape = (int(row.max()) + 1, int(col.max()) + 1)
+    k = row * shape[1] + col
+    size = shape[0] * shape[1]
+    has_g = (np.bincount(k[ground], minlength=size) > 0).reshape(shape)
+    has_o = (np.bincount(k[~ground], minlength=size) > 0).reshape(shape) & ~has_g
+    zg = np.full(size, np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zg = (np.bincount(k[ground], z[ground], minlength=size) /
+              np.bincount(k[ground], minlength=size)).reshape(shape)
+    zlow = np.full(size, np.inf)
+    np.minimum.at(zlow, k, z)
+    zlow = zlow.reshape(shape)
+    margin = int(math.ceil(3.0 / c))
+    labels, n = ndimage.label(has_g, structure=np.ones((3, 3), bool))
+    if n < 2:
+        return out
+    areas = np.bincount(labels.ravel(), minlength=n + 1) * c * c
+    drop = np.zeros(n + 1, bool)
+    for i, sl in enumerate(ndimage.find_objects(labels), start=1):
+        if areas[i] > params.max_top_area:
+            continue
+        sl = tuple(slice(max(s.start - 1, 0), s.stop + 1) for s in sl)
+        comp = labels[sl] == i
+        ring = ndimage.binary_dilation(comp, structure=np.ones((3, 3), bool)) & ~comp
+        walls = ring & has_o[sl]
+        if not ring.any() or walls.sum() < 0.5 * ring.sum():
+            continue
+        around = tuple(slice(max(a.start - margin, 0), a.stop + margin) for a in sl)
+        if np.nanmedian(zg[sl][comp]) - zlow[around].min() > params.overhead_gap / 2:
+            drop[i] = True
+    if drop.any():
+        out[ground] = drop[labels[row[ground], col[ground]]]
+    return out
+
+
 def _overhead(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, cell: float,
               gap: float) -> np.ndarray:
     """Points in a layer of their column with at least ``gap`` of empty space below it."""
@@ -238,8 +391,12 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # within 1 m in 3D, i.e. no surface at the point's own level.
     above_any = (d <= 1.0) & (dz > reach)
     xyz = np.column_stack([xs, ys, zs])
-    n3 = cKDTree(xyz).query_ball_point(xyz, r=1.0, return_length=True, workers=-1) - 1
+    tree = cKDTree(xyz)
+    n3 = tree.query_ball_point(xyz, r=1.0, return_length=True, workers=-1) - 1
     deep = (n3 < 3) & (2 * above_any.sum(axis=1) >= k2)
+    # A point with company within 0.5 m (the foot of a wall, ground under a gallery) is
+    # part of something, not a stray return.
+    plan &= tree.query_ball_point(xyz, r=0.5, return_length=True, workers=-1) - 1 < 3
 
     out[idx[plan | deep]] = True
     return out
@@ -282,6 +439,9 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     e = np.minimum(slope_envelope(xu, yu, zu, params), _local_envelope(xu, yu, zu, params))
     h = zu - e
     ground = h <= params.tolerance
+    ground &= ~_walled_tops(xu, yu, zu, ground, params)
+    if params.face_slope_deg > params.max_slope_deg:
+        ground |= _attached_faces(xu, yu, zu, ground, params)
     over = _overhead(xu, yu, zu, h, params.cell * 2, params.overhead_gap)
     cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
     out[use] = cls

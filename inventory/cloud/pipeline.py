@@ -43,8 +43,8 @@ Our own stage (not a PDAL stage)
 --------------------------------
 ``inventory.slope_ground``
     The stockyard ground classifier of :mod:`inventory.cloud.ground`; options
-    max_slope_deg 50, tolerance 0.15, cell 0.25, window 12, overhead_gap 2.0,
-    ignore ``"Classification[7:7],Classification[18:18]"``. Its ``inventory.`` prefix
+    max_slope_deg 50, tolerance 0.1, cell 0.25, window 12, overhead_gap 2.0,
+    face_slope_deg 70, face_attached 0.5, max_top_area 400, ignore ``"Classification[7:7],Classification[18:18]"``. Its ``inventory.`` prefix
     marks it as ours: with the PDAL engine the pipeline is cut around it, the PDAL stages
     run in PDAL and this one in our runner.
 """
@@ -371,7 +371,8 @@ def _write_las(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
 def _slope_ground(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     o = stage.options
     params = SlopeGroundParams(**{k: _as_float(o[k], k) for k in
-                                  ("max_slope_deg", "tolerance", "cell", "window", "overhead_gap")})
+                                  ("max_slope_deg", "tolerance", "cell", "window", "overhead_gap",
+                                   "face_slope_deg", "face_attached", "max_top_area")})
     ignore = limits_mask(pts, _ranges(o["ignore"])) if o["ignore"] else np.zeros(len(pts), bool)
     cls, _ = slope_ground(pts["X"], pts["Y"], pts["Z"], pts["Classification"], ignore, params)
     pts = pts.copy()
@@ -401,8 +402,10 @@ STAGES: dict[str, _Spec] = {
                                     "dataformat_id": 6, "compression": "", "scale_x": 0.001,
                                     "scale_y": 0.001, "scale_z": 0.001, "offset_x": "",
                                     "offset_y": "", "offset_z": ""}, _write_las),
-    "inventory.slope_ground": _Spec("filter", {"max_slope_deg": 50.0, "tolerance": 0.15, "cell": 0.25,
+    "inventory.slope_ground": _Spec("filter", {"max_slope_deg": 50.0, "tolerance": 0.1, "cell": 0.25,
                                                "window": 12.0, "overhead_gap": 2.0,
+                                               "face_slope_deg": 70.0, "face_attached": 0.5,
+                                               "max_top_area": 400.0,
                                                "ignore": "Classification[7:7],Classification[18:18]"},
                                     _slope_ground),
 }
