@@ -423,8 +423,12 @@ def _prepare(
     z = surface.z[rows, cols].astype(float)
     scanned = (surface.count[rows, cols] > 0) & np.isfinite(z)
     missing = inside & ~np.isfinite(z)
-    if missing.all():
-        return None
+    if missing[inside].all():
+        # Nothing to interpolate from: the survey has no surface over this footprint.
+        model = BaseModel(kind="none", grid=sub, ok=False, flags=["no_data"],
+                          note="no surface data over the footprint")
+        return _PileWork(rows, cols, sub, w, z, np.full(w.shape, np.nan), scanned, model,
+                         flags + model.flags)
 
     kind, level = parse_base(base_spec)
     if kind == "level":
@@ -663,7 +667,7 @@ def measure_piles(
         (no footprint, off the grid, no base) has NaN numbers and says why in ``flags``
         and ``base_note``; the other piles are still measured. ``flags`` is a
         semicolon-separated list of: ``below_base``, ``low_scan``, ``tin_mismatch``,
-        ``unfilled_gap``, ``floor_gap``, ``no_floor``, ``toe_shared``, ``toe_no_ring``,
+        ``unfilled_gap``, ``no_data``, ``floor_gap``, ``no_floor``, ``toe_shared``, ``toe_no_ring``,
         ``toe_fit``, ``off_grid``, ``off_grid_part``, ``bad_geometry``,
         ``geometry_repaired``, ``bad_base``, ``no_density``, ``density_sd_unknown``.
     """

@@ -592,6 +592,16 @@ def test_bad_piles_do_not_stop_the_batch():
     assert t.volume_m3.iloc[1:].isna().all()
 
 
+def test_footprint_without_surface_data():
+    h, V, poly = cone()
+    grid = make_grid(poly, 1.0)
+    s = grid_surface(grid, h)
+    s.z[:] = np.nan
+    s.count[:] = 0
+    r = measure_piles(s, piles_frame([poly], ["level:50"]), MATS).iloc[0]
+    assert np.isnan(r.volume_m3) and "no_data" in r["flags"] and "no surface" in r.base_note
+
+
 def test_unscanned_unfilled_cells_are_interpolated_and_flagged():
     h, V, poly = cone()
     grid = make_grid(poly, 0.5)
