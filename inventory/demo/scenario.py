@@ -219,12 +219,12 @@ def _stations(k: int) -> tuple[Station, ...]:
         tripod("ST6", 185.0, 78.0, yaw[5], *tilt[5], **low),
         Station("ST7", _MAST[0], _MAST[1], mast_top + _INSTRUMENT_HEIGHT, yaw[6], *tilt[6], el_min_deg=-40.0, **step),
         tripod("ST8", 180.0, 128.0, yaw[7], *tilt[7], **low),
-        tripod("ST9", 62.0, 130.0, yaw[8], *tilt[8], **low),
+        tripod("ST9", 62.0, 123.0, yaw[8], *tilt[8], **low),
         tripod("ST10", 100.0, 16.0, yaw[9], *tilt[9], **low),
         tripod("ST11", 140.0, 130.0, yaw[10], *tilt[10], **low),
         tripod("ST12", 8.0, 90.0, yaw[11], *tilt[11], **low),
         tripod("ST13", 222.0, 96.0, yaw[12], *tilt[12], **low),
-        tripod("ST14", 96.0, 128.0, yaw[13], *tilt[13], **low),
+        tripod("ST14", 95.0, 121.0, yaw[13], *tilt[13], **low),
         tripod("ST15", 46.0, 62.0, yaw[14], *tilt[14], **low),
     )
 
