@@ -215,6 +215,34 @@ def _place_campaigns(slots: list[datetime], campaigns: list[tuple[str, int]], ta
     return placed
 
 
+def _belt_jobs(belt_need: dict, w: int, sid: str, rate: float, rng) -> list[tuple[str, int]]:
+    """Campaigns (pile, hours) that belt ``sid`` must run in window ``w``, 3 to 8 hours each."""
+    jobs = []
+    for (ww, p), need in belt_need.items():
+        if ww != w or _PILE_CHANNELS[p]["belt"][0] != sid or need <= 0:
+            continue
+        hours = max(1, int(round(need / rate)))
+        while hours > 0:
+            n = min(hours, int(rng.integers(3, 9)))
+            jobs.append((p, n))
+            hours -= n
+    return jobs
+
+
+def _first_evening(jobs: list[tuple[str, int]], pile: str, evening: list[datetime], taken: set):
+    """Move the first campaign of ``pile`` to the given evening slots (what does not fit stays)."""
+    mine = [j for j in jobs if j[0] == pile]
+    if not evening or not mine:
+        return []
+    jobs.remove(mine[0])
+    n = min(mine[0][1], len(evening))
+    hours = evening[:n]
+    taken.update(hours)
+    if mine[0][1] > n:
+        jobs.append((pile, mine[0][1] - n))
+    return [(pile, hours)]
+
+
 def _round_e(x: np.ndarray) -> np.ndarray:
     return np.round(np.round(np.asarray(x) / WEIGHBRIDGE_E_T) * WEIGHBRIDGE_E_T, 2)
 
@@ -316,32 +344,12 @@ def make_books(
         taken: set = set()
         for w in range(3):
             slots = _hour_slots(belt_spans[w])
-            jobs = []
-            for (ww, p), need in belt_need.items():
-                if ww != w or _PILE_CHANNELS[p]["belt"][0] != sid or need <= 0:
-                    continue
-                hours = max(1, int(round(need / spec["rate_t_h"])))
-                while hours > 0:
-                    n = min(hours, int(rng.integers(3, 9)))
-                    jobs.append((p, n))
-                    hours -= n
-            # After the first survey the stacker tops up C2 that same evening (cut-off matters).
+            jobs = _belt_jobs(belt_need, w, sid, spec["rate_t_h"], rng)
+            placed = []
             if w == 1 and sid == "BC1":
-                first = [s for s in slots if s.astimezone(tz).date() == instants[0].astimezone(tz).date()]
-                jobs_c2 = [j for j in jobs if j[0] == "C2"]
-                if first and jobs_c2:
-                    jobs.remove(jobs_c2[0])
-                    n = min(jobs_c2[0][1], len(first))
-                    hours = first[:n]
-                    taken.update(hours)
-                    placed = [("C2", hours)]
-                    rest = jobs_c2[0][1] - n
-                    if rest:
-                        jobs.append(("C2", rest))
-                else:
-                    placed = []
-            else:
-                placed = []
+                # After the first survey the stacker tops up C2 that same evening (cut-off matters).
+                day = instants[0].astimezone(tz).date()
+                placed = _first_evening(jobs, "C2", [s for s in slots if s.astimezone(tz).date() == day], taken)
             order = rng.permutation(len(jobs))
             placed += _place_campaigns(slots, [jobs[i] for i in order], taken, rng)
             by_pile: dict[str, list[list[datetime]]] = {}
@@ -357,7 +365,7 @@ def make_books(
                     for h in hours:
                         belts.append(BeltHour(sid, p, h, h + timedelta(hours=1), float(tonnes[i]), 0.0))
                         i += 1
-        # Recorded totals: calibration bias, hourly noise, the planted bias in October on BC2.
+    # Recorded totals: calibration bias, hourly noise, the planted bias in October on BC2.
     belts.sort(key=lambda b: (b.scale_id, b.start))
     fb = FAULTS["belt_bias"]
     for b in belts:
