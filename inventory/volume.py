@@ -47,7 +47,9 @@ Terms are independent and added in quadrature,
    (interpolating across a hole over an apex whose flanks have slope *s* gives a flat
    top, missing *s d* at distance *d* from the rim):
    :math:`\sigma_i = \sqrt{\min(k\,s_{rim} d_i,\ H/2)^2 + s_0^2}`, with :math:`s_{rim}`
-   the mean slope of the scanned cells on the gap's rim, *H* the highest scanned
+   the larger of the mean slope of the scanned cells on the gap's rim and the rim's
+   relief (10-90 % range of its heights) over the gap's width (a step hidden in a gap,
+   such as a strip along a wall, shows only there), *H* the highest scanned
    thickness of the pile (an interpolated cell is rarely wrong by more than half the
    pile's height) and :math:`s_0` the survey's point scatter. Interpolation errors within
    one gap share a sign (a concave crest is undercut everywhere), so they are summed
@@ -528,13 +530,38 @@ def _gap_sigma(work: _PileWork, a: float, cell: float, noise_sd: float, k: float
     rim_slope = np.divide(sums, cnts, out=np.zeros(n + 1), where=cnts > 0)
     # A gap with no measurable rim takes the steepest slope seen in the window.
     rim_slope[cnts == 0] = float(slope0.max()) if slope0.size else 0.0
+    # A gap can also hide a step that the flat ground around it does not show (a strip
+    # along a wall, between a flat top and the floor): the relief of the scanned cells
+    # around each gap cell, over the width they span, is a slope the interpolation has to
+    # bridge.
+    relief = _local_relief_slope(work.z, work.scanned, dist, cell, gaps)
+    gap_slope = np.maximum(rim_slope[lab], relief)
     # An interpolated cell cannot be wrong by more than the pile is high: cap the
     # distance-grown error at half the highest scanned thickness in the footprint.
     th = (work.z - work.base)[work.scanned & (work.w > 0)]
     cap = _GAP_CAP_FRACTION * float(np.max(th)) if th.size else np.inf
-    sig = np.sqrt(np.minimum(k * rim_slope[lab] * dist, max(cap, 0.0)) ** 2 + noise_sd**2)
+    sig = np.sqrt(np.minimum(k * gap_slope * dist, max(cap, 0.0)) ** 2 + noise_sd**2)
     per_gap = np.bincount(lab[gaps], weights=(work.w * a * sig)[gaps], minlength=n + 1)
     return float(np.sqrt(np.sum(per_gap[1:] ** 2)))
+
+
+def _local_relief_slope(
+    z: np.ndarray, scanned: np.ndarray, dist: np.ndarray, cell: float, where: np.ndarray
+) -> np.ndarray:
+    """Range of scanned heights in a square reaching one cell past the nearest scanned
+    cell, divided by the square's width, at the cells in ``where`` (0 elsewhere)."""
+    out = np.zeros(z.shape)
+    if not where.any() or not scanned.any():
+        return out
+    hi = np.where(scanned, z, -np.inf)
+    lo = np.where(scanned, z, np.inf)
+    reach = np.ceil(dist / cell).astype(np.int64) + 1
+    for r in np.unique(reach[where]):
+        sel = where & (reach == r)
+        size = 2 * int(r) + 1
+        rng_ = ndimage.maximum_filter(hi, size=size) - ndimage.minimum_filter(lo, size=size)
+        out[sel] = rng_[sel] / (2 * r * cell)
+    return np.where(np.isfinite(out), out, 0.0)
 
 
 def _tin(work: _PileWork, poly: shapely.Geometry, points: np.ndarray | None) -> tuple[float, float]:

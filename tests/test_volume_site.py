@@ -196,9 +196,10 @@ def test_sample_site_interval_covers_truth():
 @pytest.mark.slow
 @pytest.mark.xfail(
     strict=True,
-    reason="the demo's station plan leaves 25-60 % of most piles unscanned (scanned_fraction "
-    "0.41-0.75 at both surveys); no interpolation recovers 1 % from that. Remove this marker "
-    "when the demo scans its piles from all sides.",
+    reason="demo site v3 (2026-12-01): 5 of 7 piles are within 1 % but C2 is 1.3-1.5 % low "
+    "(75-79 % scanned; shadows at its conical ends) and S1 2.5-3.0 % low (the survey fills the "
+    "unscanned strip along the bay's west wall by interpolating across the removed wall down to "
+    "the pad). Both lie inside their 95 % intervals. Remove this marker when they are within 1 %.",
 )
 def test_sample_site_big_piles_within_one_percent():
     _need_sample()
