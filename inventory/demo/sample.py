@@ -36,7 +36,7 @@ The truth (for tests; the tool never reads it)
   ``counts`` of rows per period.
 * ``faults``: ``belt_bias``, ``duplicate_ticket``, ``missing_transfer``, ``density_low`` with
   their exact values and their effect on book or survey tonnes.
-* ``scanner``, ``volume_method``, ``generator`` (seed, version).
+* ``scanner``, ``volume_method``, ``generator`` (seed, truth_format).
 
 ``truth/surface-<date>.tif``: the true surface (pad and piles, no machines) as the mean over
 each 0.5 m tool cell of a 0.05 m sampling, float32, on the same grid as ``base/floor.tif``.
@@ -59,7 +59,6 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from .. import __version__
 from ..errors import InputError
 from . import books as _books
 from .scenario import (
@@ -155,7 +154,7 @@ def _write_laz(path: Path, xyz: np.ndarray, res: ScanResult, gps0: float, statio
 
     header = laspy.LasHeader(point_format=6, version="1.4")
     header.creation_date = survey_day
-    header.generating_software = f"inventory {__version__} demo"
+    header.generating_software = "inventory sample (simulated)"
     header.system_identifier = "simulated static laser scanner"
     header.global_encoding.gps_time_type = laspy.header.GpsTimeType.STANDARD
     header.scales = np.array([0.001, 0.001, 0.001])
@@ -305,7 +304,7 @@ def _build(root: Path, seed: int) -> None:
     terminals = [terminal_at(k, np.random.default_rng([seed, 1, k])) for k in range(len(SURVEYS))]
     truth: dict = {
         "about": "True answers of the invented demo site; read by tests only, never by the tool.",
-        "generator": {"function": "inventory.demo.write_sample_site", "seed": seed, "version": __version__},
+        "generator": {"function": "inventory.demo.write_sample_site", "seed": seed, "truth_format": 1},
         "site": {
             "name": SITE_NAME, "crs": SITE_CRS, "timezone": SITE_TIMEZONE,
             "local_origin_in_site_crs": list(SITE_ORIGIN),
