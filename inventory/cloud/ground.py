@@ -189,11 +189,11 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     reclaim faces cut by a loader and the pile top behind them, but also the middle of a
     machine's flat roof and the feet of walls. Candidate points are rasterised on cells of
     ``2 * cell`` and joined into patches of 8-connected cells whose lowest points differ by
-    no more than the face slope allows over one cell; a patch that rises at least
-    ``overhead_gap`` (a face, not the strip along the foot of a wall) is accepted when at least ``face_attached`` of the
-    cells around it hold surface points that continue it: the lowest patch point next to
-    the cell within tolerance plus ``max_slope_deg`` over one cell of the cell's highest
-    surface point. A cut pile top is surrounded by the pile it was cut
+    no more than the face slope allows over one cell. A patch that rises at least
+    ``overhead_gap`` (a face, not the strip along the foot of a wall) is accepted when at
+    least ``face_attached`` of the scanned cells around it hold surface points that
+    continue it: their height range meets the patch's range beside them within tolerance
+    plus ``max_slope_deg`` over one cell. A cut pile top is surrounded by the pile it was cut
     from; a roof is surrounded by its own edges, which are not surface.
     """
     from scipy import ndimage
@@ -222,8 +222,10 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     # the cut top meets the flank. The underside of a truck body or a roof does not.
     zc = extreme_grid(cand, np.minimum, np.inf)
     zc_top = extreme_grid(cand, np.maximum, -np.inf)
-    zg = extreme_grid(ground, np.maximum, -np.inf)
-    has_c, has_g = np.isfinite(zc), np.isfinite(zg)
+    zg_lo = extreme_grid(ground, np.minimum, np.inf)
+    zg_hi = extreme_grid(ground, np.maximum, -np.inf)
+    has_g = np.isfinite(zg_lo)
+    occupied = (np.bincount(row * shape[1] + col, minlength=size) > 0).reshape(shape)
     labels, n = _continuous_patches(zc, params.tolerance + math.tan(math.radians(params.face_slope_deg)) * c)
     reach = params.tolerance + math.tan(math.radians(params.max_slope_deg)) * c
     accepted = np.zeros(n + 1, bool)
@@ -236,11 +238,15 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
         if zc_top[sl][comp].max() - zc[sl][comp].min() < params.overhead_gap:
             continue   # a strip along the foot of a wall, not a face up to a top
         ring = ndimage.binary_dilation(comp, structure=box) & ~comp
-        z_next = ndimage.grey_erosion(np.where(comp, zc[sl], np.inf), footprint=box, mode="constant",
-                                      cval=np.inf)
+        # heights the patch reaches next to each cell, against the surface heights in it
+        nb_lo = ndimage.grey_erosion(np.where(comp, zc[sl], np.inf), footprint=box, mode="constant",
+                                     cval=np.inf)
+        nb_hi = ndimage.grey_dilation(np.where(comp, zc_top[sl], -np.inf), footprint=box, mode="constant",
+                                      cval=-np.inf)
         with np.errstate(invalid="ignore"):
-            ok = ring & has_g[sl] & (np.abs(z_next - zg[sl]) <= reach)
-        if ring.sum() and ok.sum() >= params.face_attached * ring.sum():
+            ok = ring & has_g[sl] & (zg_lo[sl] <= nb_hi + reach) & (zg_hi[sl] >= nb_lo - reach)
+        seen = (ring & occupied[sl]).sum()   # unscanned cells around it count neither way
+        if seen and ok.sum() >= params.face_attached * seen:
             accepted[i] = True
     out[cand] = accepted[labels[row[cand], col[cand]]]
     return out
@@ -437,26 +443,31 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
         return out, height
     xu, yu, zu = x[use], y[use], z[use]
     e = np.minimum(slope_envelope(xu, yu, zu, params), _local_envelope(xu, yu, zu, params))
-    h = zu - e
-    ground = h <= params.tolerance
-    ground &= ~_walled_tops(xu, yu, zu, ground, params)
-    if params.face_slope_deg > params.max_slope_deg:
-        ground |= _attached_faces(xu, yu, zu, ground, params)
-    over = _overhead(xu, yu, zu, h, params.cell * 2, params.overhead_gap)
-    cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
-    out[use] = cls
-    height[use] = h
+    height[use] = zu - e
+    # Noise points are judged against the envelope of the rest: those on it are surface
+    # after all and take part in the region rules below.
     noise = ignore & (classification == LOW_NOISE)
+    rescued = np.zeros(len(z), bool)
     if noise.any():
         en = slope_envelope(xu, yu, zu, params, x[noise], y[noise])
         hn = z[noise] - en
+        height[noise] = np.where(np.isfinite(hn), hn, np.nan)
         high = np.isfinite(hn) & (hn > params.tolerance)
-        on_surface = np.isfinite(hn) & (np.abs(hn) <= params.tolerance)
         sub = out[noise]
         sub[high] = HIGH_NOISE
-        sub[on_surface] = GROUND
         out[noise] = sub
-        height[noise] = np.where(np.isfinite(hn), hn, np.nan)
+        rescued[np.flatnonzero(noise)[np.isfinite(hn) & (np.abs(hn) <= params.tolerance)]] = True
+    judged = use | rescued
+    xs, ys, zs, hs = x[judged], y[judged], z[judged], height[judged]
+    ground = (hs <= params.tolerance) | rescued[judged]
+    ground &= ~_walled_tops(xs, ys, zs, ground, params)
+    if params.face_slope_deg > params.max_slope_deg:
+        ground |= _attached_faces(xs, ys, zs, ground, params)
+    over = _overhead(xs, ys, zs, hs, params.cell * 2, params.overhead_gap)
+    cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
+    # rescued points are surface or, if a region rule took them out, stay noise
+    cls[rescued[judged] & ~ground] = LOW_NOISE
+    out[judged] = cls
     return out, height
 
 
