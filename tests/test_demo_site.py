@@ -186,6 +186,22 @@ def test_books_match_truth_up_to_scale_noise_and_the_planted_faults(truth):
             assert abs(value - true_t - effect) < 0.003 * moved[pid] + 1.0, (k, pid, value - true_t, effect)
 
 
+def test_recorded_movement_between_surveys(truth):
+    """Book change between the surveys from the CSVs, and what a perfect survey would show."""
+    s1, s2 = (_t(s["instant"]) for s in truth["surveys"])
+    b1, _ = _book_from_csv(s1)
+    b2, moved = _book_from_csv(s2)
+    between = truth["books"]["between_surveys"]
+    effects = defaultdict(float)
+    for key in ("belt_bias", "missing_transfer"):
+        for pid, v in truth["faults"][key]["book_effect_t"].items():
+            effects[pid] += v
+    for pid in b1:
+        assert b2[pid] - b1[pid] == pytest.approx(between["recorded_net_t"][pid], abs=0.05)
+        noise = between["recorded_net_t"][pid] - between["true_net_t"][pid] - effects[pid]
+        assert abs(noise) < 0.003 * moved[pid] + 1.0, pid
+
+
 def test_planted_faults_are_in_the_files(truth):
     f = truth["faults"]
     oct_tickets = _rows(SITE / "movements" / "2026-10" / "weighbridge.csv")

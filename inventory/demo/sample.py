@@ -32,8 +32,9 @@ The truth (for tests; the tool never reads it)
   5 dust, 6 bird, 7 ghost) and what ``pile`` and ``object`` hold.
 * ``books``: ``opening``, ``true_net_t`` per pile (before the first survey, between the surveys,
   after the second), ``book_at_survey_t`` per survey (``book_t`` from the records with a repeated
-  ticket counted once, ``true_t``, ``book_minus_true_t``, ``variance_at_table_density_t``),
-  ``counts`` of rows per period.
+  ticket counted once, no adjustment posted; ``true_t``, ``book_minus_true_t``,
+  ``variance_at_table_density_t``), ``between_surveys`` (``recorded_net_t``, ``true_net_t``,
+  ``variance_if_adjusted_to_first_survey_t``), ``counts`` of rows per period.
 * ``faults``: ``belt_bias``, ``duplicate_ticket``, ``missing_transfer``, ``density_low`` with
   their exact values and their effect on book or survey tonnes.
 * ``scanner``, ``volume_method``, ``generator`` (seed, truth_format).
@@ -558,6 +559,20 @@ def _write_books(root: Path, bk, tz: ZoneInfo, instants: list[datetime], tonnes:
                 book[t.to_pile] += t.tonnes
         return book
 
+    def recorded_between(t0: datetime, t1: datetime) -> dict[str, float]:
+        net = {p: 0.0 for p in bk.opening_t}
+        for t in tickets:
+            if t0 < t.time <= t1:
+                net[t.pile_id] += t.net_t if t.direction == "in" else -t.net_t
+        for b in bk.belts:
+            if t0 <= b.start and b.end <= t1:
+                net[b.pile_id] += b.recorded_t * (1 if _books.BELTS[b.scale_id]["direction"] == "in" else -1)
+        for t in bk.transfers:
+            if t.recorded and t0 < t.time <= t1:
+                net[t.from_pile] -= t.tonnes
+                net[t.to_pile] += t.tonnes
+        return net
+
     out = {
         "opening": {"as_of": _iso(bk.opening_as_of, tz), "tonnes": bk.opening_t,
                     "note": "opening.csv = true stock at as_of rounded to 0.1 t"},
@@ -567,6 +582,9 @@ def _write_books(root: Path, bk, tz: ZoneInfo, instants: list[datetime], tonnes:
                 "movements after the first survey on 2026-09-30 sit in movements/2026-09 but count "
                 "towards that change.",
         "book_at_survey_t": [],
+        "book_note": "book_t = opening.csv + every record up to the survey instant (a repeated ticket "
+                     "counted once), with no adjustment posted; a close that adjusts book to survey "
+                     "starts the next period from the adjusted figure instead (see between_surveys)",
         "counts": {p: {"weighbridge_rows": sum(1 for t in tickets if period(t.time) == p) + (p == "2026-10"),
                        "belt_rows": sum(1 for b in bk.belts if period(b.start) == p),
                        "routing_rows": sum(1 for r in bk.routes if period(r.start) == p),
@@ -584,6 +602,14 @@ def _write_books(root: Path, bk, tz: ZoneInfo, instants: list[datetime], tonnes:
             # What a perfect survey would report with the material table's densities, minus book.
             "variance_at_table_density_t": {p: round(tonnes[k][p] * ratio[p] - book[p], 2) for p in book},
         })
+    rec = recorded_between(instants[0], instants[1])
+    out["between_surveys"] = {
+        "recorded_net_t": {p: round(v, 2) for p, v in rec.items()},
+        "true_net_t": {p: round(tonnes[1][p] - tonnes[0][p], 4) for p in rec},
+        # A perfect survey at the table densities, with book set to the first survey's figure.
+        "variance_if_adjusted_to_first_survey_t": {
+            p: round((tonnes[1][p] - tonnes[0][p]) * ratio[p] - rec[p], 2) for p in rec},
+    }
     return out
 
 
