@@ -14,9 +14,8 @@ yard is frozen for the scan), and some movements happen after the scan so cut-of
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
-from datetime import date, datetime, timedelta, timezone
+from datetime import datetime, timedelta, timezone
 from zoneinfo import ZoneInfo
 
 import numpy as np

@@ -76,7 +76,7 @@ from .scenario import (
     terminal_at,
 )
 from .shapes import BayPile, Cone, Windrow
-from .simulate import KIND_NAMES, ScannerModel, ScanResult, max_range_for, scan, station_rotation, to_station_frame
+from .simulate import KIND_NAMES, ScannerModel, ScanResult, max_range_for, scan, to_station_frame
 
 __all__ = ["DEFAULT_SEED", "write_sample_site", "TOOL_CELL_M", "FINE_CELL_M"]
 
