@@ -1,7 +1,8 @@
-"""``python -m inventory.demo.run_demo DIR``: write the invented demo site and check it.
+"""``python -m inventory.demo.run_demo DIR``: write the invented demo site, check it, close it.
 
 Used by ``make demo``. Writes the site into DIR unless a site is already there, validates it
-with the same code as ``inventory check`` and prints where everything went.
+with the same code as ``inventory check``, closes each of its months that is not closed yet
+(as ``inventory close`` does), prints where everything went and the variance history.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m inventory.demo.run_demo", description=__doc__.splitlines()[0])
     parser.add_argument("dir", type=Path, help="folder for the demo site")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="simulator seed")
+    parser.add_argument("--check-only", action="store_true", help="write and check the site, close nothing")
     args = parser.parse_args(argv)
 
     root: Path = args.dir
@@ -42,8 +44,29 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     print(report.site.summary())
     print(f"check: ok ({len(report.warnings)} warning(s))")
-    print(f"next: inventory close {root} --period 2026-09, then --period 2026-10")
-    return 0
+    if args.check_only:
+        return 0
+
+    from ..cli import main as cli_main
+    from ..ledger import Ledger
+
+    ledger_path = root / "ledger.sqlite"
+    for period in report.site.periods:
+        if report.site.survey_for(period) is None:
+            continue
+        if ledger_path.is_file():
+            with Ledger(ledger_path) as ledger:
+                if ledger.is_locked(period):
+                    print(f"{period} is already closed (inventory reopen {root} --period {period} --reason ... to redo it)")
+                    continue
+        print(f"\n$ inventory close {root} --period {period}")
+        code = cli_main(["close", str(root), "--period", period])
+        if code != 0:
+            return code
+    print(f"\n$ inventory history {root}")
+    code = cli_main(["history", str(root)])
+    print(f"\nopen {root / 'closes'} for the workbooks, layers, rasters and reports")
+    return code
 
 
 if __name__ == "__main__":
