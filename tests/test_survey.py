@@ -104,10 +104,10 @@ def test_all_three_arrivals_are_placed(synthetic):
     assert result.points_read == len(yard.points)
     labels, cls, idx = _match(result.classified_path, yard)
     # Every input point is in the classified cloud once, except the points of the posed
-    # file within 1.5 m of its scanner (the near gate of pipelines/stockpile.json).
+    # file within 3 m of its scanner (the near gate of pipelines/stockpile.json).
     folder = site.surveys[DATE].folder
     b, _ = read_cloud(folder / "b.laz")
-    near = np.sqrt(b["X"] ** 2 + b["Y"] ** 2 + b["Z"] ** 2) < 1.5
+    near = np.sqrt(b["X"] ** 2 + b["Y"] ** 2 + b["Z"] ** 2) < 3.0
     assert near.sum() > 0
     assert len(np.unique(idx)) == len(idx) == result.points_kept == len(yard.points) - near.sum()
 
@@ -268,6 +268,19 @@ def test_sample_site_surface_rms(sample_survey):
     ref = np.full(s.grid.shape, np.nan)
     ref[inside] = true_z[r[inside], c[inside]]
     covered = s.scanned & np.isfinite(ref)
+    # Cells beside a step in the true surface steeper than any face (70 deg over one
+    # cell: a bay wall's face) hold two true heights; which one a few points near the
+    # cell edge pick is chance, so they are left out (about 100 of 80,000 cells).
+    step = np.tan(np.radians(70.0)) * s.grid.cell + 0.3
+    beside = np.zeros(s.grid.shape, bool)
+    for a, b in (((slice(None), slice(1, None)), (slice(None), slice(None, -1))),
+                 ((slice(1, None), slice(None)), (slice(None, -1), slice(None)))):
+        with np.errstate(invalid="ignore"):
+            jump = np.abs(ref[a] - ref[b]) > step
+        beside[a] |= jump
+        beside[b] |= jump
+    assert beside[covered].sum() < 0.005 * covered.sum()
+    covered &= ~beside
     assert covered.sum() > 10000
     rms = np.sqrt(np.mean((s.z - ref)[covered] ** 2))
-    assert rms <= 0.05, f"surface RMS {rms:.3f} m on covered cells"
+    assert rms <= 0.05, f"surface RMS {rms:.3f} m on covered cells"   # issue 4 acceptance figure

@@ -279,15 +279,15 @@ def _continuous_patches(zc: np.ndarray, step: float) -> tuple[np.ndarray, int]:
 
 def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
                  params: SlopeGroundParams) -> np.ndarray:
-    """Ground points on the flat top of an object with walls (a machine roof, a container).
+    """Ground points on the flat top of an object with walls (a machine roof, a wall top).
 
     The envelope lets a flat top through once it is farther than ``height / tan(max_slope)``
-    from every wall foot. Such a top is an island of surface cells (cells of ``2 * cell``,
-    8-connected) cut off from the rest by cells that hold only non-surface points (its
-    walls and roof edges), not by unscanned cells as an occluded pile top would be. An
-    island of at most ``max_top_area`` m2, with at least half of the cells around it
-    occupied by non-surface points and standing more than ``overhead_gap`` / 2 above the
-    lowest point within 3 m of it (the foot of its walls), is not surface.
+    from every wall foot. Such a top is an island: surface cells (cells of ``2 * cell``)
+    joined only where neighbours continue each other in height (a step no steeper than
+    ``face_slope_deg``), cut off from the rest by its walls or by a drop. An island of at
+    most ``max_top_area`` m2 with at least four scanned cells around it, standing more than
+    ``overhead_gap`` / 2 above the lowest point within ``window`` / 2 of it, is not surface.
+    A pile is never such an island: its flanks continue into the pad.
     """
     from scipy import ndimage
 
@@ -310,8 +310,9 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     zlow = np.full(size, np.inf)
     np.minimum.at(zlow, k, z)
     zlow = zlow.reshape(shape)
-    margin = int(math.ceil(3.0 / c))
-    labels, n = ndimage.label(has_g, structure=np.ones((3, 3), bool))
+    margin = int(math.ceil(params.window / 2 / c))
+    step = params.tolerance + math.tan(math.radians(max(params.face_slope_deg, params.max_slope_deg))) * c
+    labels, n = _continuous_patches(np.where(has_g, zg, np.nan), step)
     if n < 2:
         return out
     areas = np.bincount(labels.ravel(), minlength=n + 1) * c * c
@@ -322,14 +323,70 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
         sl = tuple(slice(max(s.start - 1, 0), s.stop + 1) for s in sl)
         comp = labels[sl] == i
         ring = ndimage.binary_dilation(comp, structure=np.ones((3, 3), bool)) & ~comp
-        walls = ring & has_o[sl]
-        if not ring.any() or walls.sum() < 0.5 * ring.sum():
+        # around a top: its walls (non-surface points) or a drop to surface below it;
+        # unscanned cells count neither way
+        walls = ring & (has_o[sl] | has_g[sl])
+        if walls.sum() < 4:
             continue
         around = tuple(slice(max(a.start - margin, 0), a.stop + margin) for a in sl)
         if np.nanmedian(zg[sl][comp]) - zlow[around].min() > params.overhead_gap / 2:
             drop[i] = True
     if drop.any():
         out[ground] = drop[labels[row[ground], col[ground]]]
+    return out
+
+
+def _chamfer_min(g: np.ndarray, weight: float, iterations: int) -> np.ndarray:
+    """Lower envelope ``min_n (g_n + weight * d_n)`` by 16-neighbour chamfer propagation."""
+    g = g.copy()
+    nrow, ncol = g.shape
+    steps = [(dr, dc, weight * math.hypot(dr, dc)) for dr, dc in _STEPS]
+    for _ in range(iterations):
+        before = g.copy()
+        for dr, dc, w in steps:
+            dst = g[max(dr, 0):nrow + min(dr, 0), max(dc, 0):ncol + min(dc, 0)]
+            src = g[max(-dr, 0):nrow + min(-dr, 0), max(-dc, 0):ncol + min(-dc, 0)]
+            np.minimum(dst, src + w, out=dst)
+        if np.array_equal(before, g):
+            break
+    return g
+
+
+def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
+            params: SlopeGroundParams, radius: float = 10.0) -> np.ndarray:
+    """Surface points in cells that stand above other surface more than a face could.
+
+    On cells of ``2 * cell`` holding surface points (their mean height), a cell is a spike
+    when it stands more than ``3 * tolerance`` above ``z_n + tan(face_slope) * d`` for a
+    surface cell n at distance d up to ``radius``: no reclaim face, let alone a flank,
+    rises that fast. Sparse returns from wall tops, gallery roofs, machine decks and the
+    platform a scanner stands on, which got through the point rules, end here.
+    """
+    out = np.zeros(len(z), bool)
+    if not ground.any():
+        return out
+    c = 2 * params.cell
+    t = math.tan(math.radians(max(params.face_slope_deg, params.max_slope_deg)))
+    x0, y0 = x.min(), y.min()
+    col = ((x - x0) // c).astype(np.int64)
+    row = ((y - y0) // c).astype(np.int64)
+    shape = (int(row.max()) + 1, int(col.max()) + 1)
+    k = row * shape[1] + col
+    size = shape[0] * shape[1]
+    n = np.bincount(k[ground], minlength=size)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zm = (np.bincount(k[ground], z[ground], minlength=size) / n).reshape(shape)
+    zf = np.where(np.isfinite(zm), zm, np.inf)
+    env = _chamfer_min(zf, t * c, int(math.ceil(radius / c)))
+    # the envelope from the neighbours alone: one more step from each neighbour
+    low = np.full(shape, np.inf)
+    for dr, dc, w in [(dr, dc, t * c * math.hypot(dr, dc)) for dr, dc in _STEPS]:
+        low[max(dr, 0):shape[0] + min(dr, 0), max(dc, 0):shape[1] + min(dc, 0)] = np.minimum(
+            low[max(dr, 0):shape[0] + min(dr, 0), max(dc, 0):shape[1] + min(dc, 0)],
+            env[max(-dr, 0):shape[0] + min(-dr, 0), max(-dc, 0):shape[1] + min(-dc, 0)] + w)
+    with np.errstate(invalid="ignore"):
+        spike = np.isfinite(zm) & (zm - low > 3 * params.tolerance)
+    out[ground] = spike.ravel()[k[ground]]
     return out
 
 
@@ -463,6 +520,7 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     ground &= ~_walled_tops(xs, ys, zs, ground, params)
     if params.face_slope_deg > params.max_slope_deg:
         ground |= _attached_faces(xs, ys, zs, ground, params)
+    ground &= ~_spikes(xs, ys, zs, ground, params)
     over = _overhead(xs, ys, zs, hs, params.cell * 2, params.overhead_gap)
     cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
     # rescued points are surface or, if a region rule took them out, stay noise
