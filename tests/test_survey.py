@@ -284,3 +284,40 @@ def test_sample_site_surface_rms(sample_survey):
     assert covered.sum() > 10000
     rms = np.sqrt(np.mean((s.z - ref)[covered] ** 2))
     assert rms <= 0.05, f"surface RMS {rms:.3f} m on covered cells"   # issue 4 acceptance figure
+
+
+@pytest.mark.slow
+def test_dask_workers_give_the_same_result(synthetic):
+    # The tiles are independent: a local Dask cluster must reproduce the serial run.
+    yard, site, result, out = synthetic
+    messages = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        par = measure_survey(site, DATE, out_dir=None, tile_size_m=40.0, buffer_m=15.0, workers=2,
+                             progress=messages.append)
+    assert par.class_counts == result.class_counts
+    np.testing.assert_allclose(par.surface.z, result.surface.z, equal_nan=True)
+    assert any(m.startswith("reading a.laz") for m in messages)
+    assert any(m.startswith("classifying: tile") for m in messages)
+
+
+def test_enclosed_gap_is_warned(tmp_path):
+    # A ring of pad with a 20 m hole in the middle: more than max_fill_distance_m from data.
+    rng = np.random.default_rng(0)
+    folder = tmp_path / "surveys" / DATE
+    folder.mkdir(parents=True)
+    from inventory.cloud.io import empty_points
+
+    n = 40000
+    x, y = rng.random(n) * 60, rng.random(n) * 60
+    keep = np.hypot(x - 30, y - 30) > 10
+    p = empty_points(int(keep.sum()))
+    p["X"], p["Y"], p["Z"] = 500_000 + x[keep], 5_700_000 + y[keep], 100 + rng.normal(0, 0.005, keep.sum())
+    p["ReturnNumber"] = p["NumberOfReturns"] = 1
+    write_cloud(folder / "ring.laz", p, SITE_CRS)
+    site = _site(tmp_path, [folder / "ring.laz"])
+    with pytest.warns(CoverageWarning, match="enclosed gaps"):
+        r = measure_survey(site, DATE)
+    # the hole is pi 10^2 = 314 m2; cells within 3 m of data are filled, the rest reported
+    assert 100 < r.fill.gap_area_m2 < 314
+    assert r.fill.filled_cells > 0
