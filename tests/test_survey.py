@@ -199,18 +199,27 @@ def _sample_truth():
     return json.loads(path.read_text())
 
 
-@pytest.fixture(scope="module")
-def sample_survey(tmp_path_factory):
+_SAMPLE_RUNS: dict = {}
+
+
+def _sample_run(which, tmp_path_factory):
+    """measure_survey on the sample site's latest or earliest survey, once per session."""
     truth = _sample_truth()
     from inventory.site import load_site
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        site = load_site(SAMPLE)
-        date = max(site.surveys)
-        out = tmp_path_factory.mktemp("sample-out")
-        result = measure_survey(site, date, out_dir=out)
-    return truth, site, date, result
+    if which not in _SAMPLE_RUNS:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            site = load_site(SAMPLE)
+            date = max(site.surveys) if which == "latest" else min(site.surveys)
+            out = tmp_path_factory.mktemp(f"sample-out-{which}")
+            _SAMPLE_RUNS[which] = (truth, site, date, measure_survey(site, date, out_dir=out))
+    return _SAMPLE_RUNS[which]
+
+
+@pytest.fixture(scope="module")
+def sample_survey(tmp_path_factory):
+    return _sample_run("latest", tmp_path_factory)
 
 
 def _sample_labels(site, date, result):
@@ -258,8 +267,14 @@ def test_sample_site_classification(sample_survey):
 
 
 @pytest.mark.slow
-def test_sample_site_surface_rms(sample_survey):
-    truth, site, date, result = sample_survey
+@pytest.mark.parametrize("which", [
+    "latest",
+    pytest.param("earliest", marks=pytest.mark.xfail(
+        reason="measured 6.6 cm RMS on 2026-09-30: single returns on bay-wall tops and the "
+               "gallery roof are classified surface (issue 4 follow-up)", strict=False)),
+])
+def test_sample_site_surface_rms(which, tmp_path_factory):
+    truth, site, date, result = _sample_run(which, tmp_path_factory)
     true_z, tg = read_geotiff(SAMPLE / "truth" / f"surface-{date}.tif")
     s = result.surface
     assert tg.aligned_with(s.grid)
