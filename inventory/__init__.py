@@ -25,6 +25,7 @@ _API = {
     "check_site": "site",
     "Site": "site",
     "measure_survey": "survey",
+    "SurveyResult": "survey",
     "measure_piles": "volume",
     "BaseSurfaces": "volume",
     "book_stock": "book",
