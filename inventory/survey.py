@@ -37,7 +37,8 @@ from .cloud.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from .cloud.georef import StationPose, poses_from_stations
 from .cloud.io import DEFAULT_CHUNK, POINT_DTYPE, CloudWriter, open_cloud
 from .cloud.pipeline import Pipeline, load_pipeline, pdal_available
-from .errors import CoverageWarning, CRSError, InputError, PipelineError, RunError
+from .cloud.trajectory import DEFAULT_MAX_GAP_S, Trajectory, georeference, read_trajectories
+from .errors import CoverageWarning, CRSError, InputError, InputWarning, PipelineError, RunError
 from .grid import Grid, Surface
 from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
 
@@ -86,6 +87,9 @@ class SurveyResult:
     files: list[Path]
     engine: str
     timings: dict[str, float] = field(default_factory=dict)
+    #: Moving-scanner points not placed: outside the trajectory's time span, inside its gaps.
+    points_outside_span: int = 0
+    points_in_gap: int = 0
 
     @property
     def written(self) -> list[Path]:
@@ -102,7 +106,10 @@ class SurveyResult:
         return (f"survey {self.date}: {self.points_read:,} points read, {self.points_kept:,} kept "
                 f"({', '.join(parts)}); {cells:,} cells of {s.grid.cell:g} m, "
                 f"{scanned / cells:.1%} scanned, {self.fill.filled_cells:,} filled, "
-                f"{self.fill.gap_area_m2:,.1f} m2 of enclosed gaps left empty")
+                f"{self.fill.gap_area_m2:,.1f} m2 of enclosed gaps left empty"
+                + (f"; trajectory: {self.points_outside_span:,} points outside its time span rejected, "
+                   f"{self.points_in_gap:,} in its gaps dropped"
+                   if self.points_outside_span or self.points_in_gap else ""))
 
 
 @dataclass
@@ -111,6 +118,7 @@ class _Source:
     index: int
     pose: StationPose | None
     crs: Any  # pyproj CRS of a georeferenced file
+    trajectory: Trajectory | None = None  # a moving scanner's cloud (scanner frame, per-point pose)
 
 
 def _survey_ref(site: Any, date: str) -> Any:
@@ -145,19 +153,51 @@ def _sources(site: Any, ref: Any) -> list[_Source]:
     if getattr(ref, "stations", None) is not None:
         poses = poses_from_stations(ref.stations, Path(ref.folder) / "stations.csv")
     default = getattr(site.config.survey, "default_crs", None)
+    # A moving scanner's clouds: the trajectory named for the file, else the table's one
+    # trajectory for every file that stations.csv does not list (as the site check does).
+    trajectories: dict[str | None, Trajectory] = {}
+    trajectory_csv = Path(ref.folder) / "trajectory.csv"
+    if trajectory_csv.is_file():
+        trajectories = read_trajectories(trajectory_csv, getattr(site.config, "machines", None) or {})
+    listed = set(ref.stations["file"]) if getattr(ref, "stations", None) is not None else set()
     out = []
     for i, path in enumerate(ref.files):
         path = Path(path)
         pose = poses.get(path.name)
         crs = None
+        moving = None
         if pose is None:
+            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in listed else None)
+        if moving is not None:
+            pass  # placed by its trajectory: no CRS needed
+        elif pose is None:
             with open_cloud(path, default_crs=default) as cloud:
                 crs = cloud.crs
             if crs is None:
                 raise CRSError(path, "the file carries no CRS, has no pose in stations.csv, and site.toml "
                                "has no [survey] default_crs", field="crs")
-        out.append(_Source(path, i, pose, crs))
+        out.append(_Source(path, i, pose, crs, moving))
     return out
+
+
+def _warn_trajectory(src: _Source, counts: dict[str, int], max_gap_s: float) -> None:
+    """One InputWarning per moving-scanner file whose points were not all placed."""
+    traj = src.trajectory
+    parts = []
+    if counts["outside_span"]:
+        t0, t1 = traj.span
+        parts.append(f"{counts['outside_span']:,} lie outside the time span of {traj.source or 'the trajectory'} "
+                     f"({t0:.3f} to {t1:.3f} s) and were rejected")
+    if counts["in_gap"]:
+        g = traj.gaps(max_gap_s)
+        parts.append(f"{counts['in_gap']:,} fall in {len(g)} gap(s) longer than {max_gap_s:g} s "
+                     f"(first {g[0, 0]:.3f} to {g[0, 1]:.3f} s) and were dropped")
+    if parts and not counts.get("kept"):
+        parts.append("none was placed: are the cloud and the trajectory in the same GPS time base "
+                     "(week seconds or adjusted standard)?")
+    if parts:
+        warnings.warn(InputWarning(f"{src.path}: of {counts['points']:,} points, " + "; ".join(parts)),
+                      stacklevel=3)
 
 
 def _extent(sources: list[_Source], site_crs: Any, cache: TransformerCache) -> tuple[float, float, float, float]:
@@ -167,6 +207,8 @@ def _extent(sources: list[_Source], site_crs: Any, cache: TransformerCache) -> t
             mins, maxs = cloud.mins, cloud.maxs
         if src.pose is not None:
             boxes.append(src.pose.box_in_site(mins, maxs))
+        elif src.trajectory is not None:
+            boxes.append(src.trajectory.extent(mins, maxs))
         else:
             boxes.append(cache.get(src.crs, site_crs).bounds(mins[0], mins[1], maxs[0], maxs[1]))
     b = np.asarray(boxes, float)
@@ -311,19 +353,39 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         for src in sources:
             with open_cloud(src.path) as cloud:
                 total += cloud.count
+        max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
+        rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
         for src in sources:
             with open_cloud(src.path, chunk_size=chunk_size) as cloud:
-                reproject = None if src.pose is not None else cache.get(src.crs, site_crs)
+                reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
+                file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
                 for chunk in cloud.chunks():
+                    n_chunk = len(chunk)
                     if src.pose is not None:
                         chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
                             chunk["X"], chunk["Y"], chunk["Z"])
+                    elif src.trajectory is not None:
+                        # Each point with the pose at its own GPS time; the sums are reported
+                        # once per file below, not once per chunk.
+                        own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
+                        xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
+                                                    warn=False, source=src.path.name)
+                        chunk = chunk[keep]
+                        chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
+                        chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
+                        for key in file_rejected:
+                            file_rejected[key] += c[key]
+                        file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
                     elif not reproject.is_identity:
                         chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
                     chunk["PointSourceId"] = src.index
                     outside += spill.add(chunk)
-                    read += len(chunk)
+                    read += n_chunk
                     say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
+                if src.trajectory is not None:
+                    _warn_trajectory(src, file_rejected, max_gap_s)
+                    rejected["outside_span"] += file_rejected["outside_span"]
+                    rejected["in_gap"] += file_rejected["in_gap"]
         timings["read"] = time.perf_counter() - t_start
 
         t0 = time.perf_counter()
@@ -391,7 +453,8 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     timings["grid"] = time.perf_counter() - t0
     timings["total"] = time.perf_counter() - t_start
     return SurveyResult(date, surface, classified_path, surface_path, coverage_path, counts, read, kept,
-                        outside, fill, [s.path for s in sources], used_engine, timings)
+                        outside, fill, [s.path for s in sources], used_engine, timings,
+                        rejected["outside_span"], rejected["in_gap"])
 
 
 def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,
