@@ -552,7 +552,7 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
     ws.cell(row=r, column=1, value="Sign convention").font = Font(name="Calibri", bold=True, size=11)
     # long texts are left to run on into the empty cells to their right (no wrapping, so
     # no row-height guessing); figures stay in a column of their own width
-    ws.cell(row=r, column=2, value=SIGN_CONVENTION)
+    ws.cell(row=r, column=2, value=SIGN_CONVENTION.removeprefix("Sign convention: "))
     r += 2
     ws.cell(row=r, column=1, value="Legend").font = Font(name="Calibri", bold=True, size=11)
     r += 1
