@@ -21,11 +21,12 @@ frame and their adjusted standard GPS time, and ``trajectory.csv`` in the survey
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import tempfile
 from dataclasses import dataclass
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable
 
@@ -33,7 +34,8 @@ import laspy
 import numpy as np
 import pandas as pd
 
-from ..cloud.trajectory import Machine, Trajectory, adjusted_gps_time, euler_rotation, machine_poses
+from ..cloud.trajectory import (Machine, Trajectory, adjusted_gps_time, euler_rotation, machine_poses,
+                                utc_from_adjusted_gps)
 
 __all__ = [
     "MachineMotion",
@@ -228,13 +230,18 @@ def simulate_machine_scan(height: Height, machine: Machine, motion: MachineMotio
     )
 
 
-def _iso(start: datetime, seconds: np.ndarray) -> list[str]:
-    return [(start + timedelta(seconds=float(s))).astimezone(timezone.utc).isoformat(timespec="milliseconds")
-            for s in seconds]
+def _iso(gps_time: np.ndarray) -> list[str]:
+    return [utc_from_adjusted_gps(float(t)).isoformat(timespec="milliseconds") for t in gps_time]
 
 
-def _write_las(path: Path, points: np.ndarray, gps_time: np.ndarray, range_m: np.ndarray) -> None:
+def _write_las(path: Path, points: np.ndarray, gps_time: np.ndarray, range_m: np.ndarray,
+               start_utc: datetime) -> None:
     header = laspy.LasHeader(point_format=6, version="1.4")
+    # Fixed header texts and the scan's own date (laspy would write today's date and its
+    # version), so the same scan gives the same bytes.
+    header.creation_date = start_utc.astimezone(timezone.utc).date()
+    header.generating_software = "inventory sample (simulated)"
+    header.system_identifier = "simulated machine-mounted scanner"
     header.scales = np.array([0.001, 0.001, 0.001])  # 1 mm, below the ranging noise (common practice)
     header.offsets = np.zeros(3)
     # Global encoding bit 0: GPS times are adjusted standard GPS time (ASPRS LAS 1.4 R15).
@@ -278,14 +285,14 @@ def write_machine_survey(folder: str | Path, scan: MachineScan, *, name: str = "
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     cloud = folder / name
-    _write_las(cloud, scan.points, scan.gps_time, scan.range_m)
+    _write_las(cloud, scan.points, scan.gps_time, scan.range_m, scan.start_utc)
     s = scan.samples
     t = s["gps_time"].to_numpy()
     table = pd.DataFrame({"file": [name] * len(s)})
     if variant == "axes":
         table["machine"] = scan.machine.id
     table["gps_time"] = t
-    table["time"] = _iso(scan.start_utc, t - t[0])
+    table["time"] = _iso(t)
     if variant == "axes":
         table["travel_m"], table["slew_deg"], table["luff_deg"] = s["travel_m"], s["slew_deg"], s["luff_deg"]
     elif variant == "pose":
@@ -350,7 +357,7 @@ def demo_motion(k: int) -> MachineMotion:
 
 
 def write_demo_machine_survey(folder: str | Path, terminal, k: int, start_utc: datetime, *, seed: int = 0,
-                              variant: str = "pose") -> MachineScan:
+                              variant: str = "pose", log_delay_s: float = 0.0) -> MachineScan:
     """Scan the demo terminal from the stacker boom at survey ``k`` and write it to ``folder``.
 
     Writes ``machine_scan.laz`` (scanner frame, adjusted standard GPS time) and
@@ -358,6 +365,10 @@ def write_demo_machine_survey(folder: str | Path, terminal, k: int, start_utc: d
     :func:`inventory.demo.scenario.terminal_at`'s result; only its terrain (pad and piles) is
     scanned. Finish the scan before the static stations start: the boom ends parked where
     they see it. Returns the scan (its ``true_xyz`` and ``samples`` are the truth).
+
+    ``log_delay_s`` starts the machine's log that long after the scanner's first ray (a
+    logger switched on late): the points before the first logged sample cannot be placed, and
+    the returned scan's ``samples`` are the logged ones.
     """
     from .scenario import SITE_ORIGIN
 
@@ -370,5 +381,9 @@ def write_demo_machine_survey(folder: str | Path, terminal, k: int, start_utc: d
     scan = simulate_machine_scan(
         height, machine, demo_motion(k), ScannerHead(el_min_deg=-85.0, el_max_deg=-12.0), start_utc=start_utc,
         max_slope=1.0, range_sd_m=0.012, max_range_m=45.0, rng=np.random.default_rng([seed, 9, k]))
+    if log_delay_s > 0:
+        t0 = adjusted_gps_time(start_utc)
+        logged = scan.samples[scan.samples["gps_time"] >= t0 + log_delay_s - 1e-6].reset_index(drop=True)
+        scan = dataclasses.replace(scan, samples=logged)
     write_machine_survey(folder, scan, variant=variant)
     return scan

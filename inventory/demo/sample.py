@@ -4,6 +4,7 @@
 
     site.toml  materials.csv  piles.gpkg  opening.csv  base/floor.tif
     surveys/2026-09-30/ST1.laz ... stations.csv      (and the same for 2026-10-31)
+    surveys/2026-10-15/machine_scan.laz trajectory.csv   (scanner on the stacker boom)
     movements/2026-09/{weighbridge,belt_scales,routing,transfers}.csv   (and 2026-10)
     overview.png   README.md
     truth.json  truth/surface-<date>.tif  truth/labels-<date>.npz       (tests only)
@@ -38,9 +39,18 @@ The truth (for tests; the tool never reads it)
 * ``faults``: ``belt_bias``, ``duplicate_ticket``, ``missing_transfer``, ``density_low`` with
   their exact values and their effect on book or survey tonnes.
 * ``scanner``, ``volume_method``, ``generator`` (seed, truth_format).
+* ``machine_survey``: the machine-mounted survey of part of the yard (``surveys/2026-10-15``):
+  ``date``, ``terrain_of_survey`` (the pile shapes scanned: those of that survey date),
+  ``machine`` (geometry, lever arm, boresight), ``motion`` (true axes), ``head`` (scan
+  pattern), ``logged_samples`` (columns ``gps_time``, ``travel_m``, ``slew_deg``,
+  ``luff_deg`` as logged; the true pose between samples is the cosine ramp of ``motion``),
+  ``counts`` (``points`` written, ``outside_span`` before the first logged sample,
+  ``in_gap``, ``pile`` and ``pad`` hits), ``surface`` (path below).
 
 ``truth/surface-<date>.tif``: the true surface (pad and piles, no machines) as the mean over
 each 0.5 m tool cell of a 0.05 m sampling, float32, on the same grid as ``base/floor.tif``.
+``truth/surface-2026-10-15.tif`` (the machine survey): the same true surface, only on the cells
+holding at least one true hit of the machine scan (nodata elsewhere).
 ``truth/labels-<date>.npz``: ``<station>_kind``, ``<station>_pile``, ``<station>_object``
 (uint8), one entry per point in LAZ file order.
 """
@@ -89,6 +99,15 @@ _SUB = int(round(TOOL_CELL_M / FINE_CELL_M))
 STATION_INTERVAL_MIN = 10
 #: Footprints reach this far beyond the largest toe outline of the two surveys.
 FOOTPRINT_MARGIN_M = 1.0
+#: The machine-mounted survey (issue 9): the stacker's boom scanner, mid-October, scanning the
+#: terrain (pad and piles) as modelled for survey MACHINE_TERRAIN (the scenario has no
+#: mid-month state; the books do not refer to this survey and no close uses it, as the close of
+#: 2026-10 takes the month's last survey). Its log starts MACHINE_LOG_DELAY_S after the first
+#: ray, so the points before it are rejected when placed (the counts are in the truth).
+MACHINE_SURVEY_DATE = "2026-10-15"
+MACHINE_SURVEY_START_LOCAL = "10:00"
+MACHINE_TERRAIN = 1
+MACHINE_LOG_DELAY_S = 0.5
 #: Timestamp GDAL writes into the GeoPackage (gpkg_contents.last_change).
 _GPKG_DATE = "2026-11-02T08:00:00Z"
 _ZIP_DATE = (2026, 11, 2, 8, 0, 0)
@@ -363,6 +382,7 @@ def _build(root: Path, seed: int) -> None:
     survey_truth = []
     instants = []
     tonnes = []
+    zmeans = []
     for k, (spec, term) in enumerate(zip(SURVEYS, terminals)):
         day = date.fromisoformat(spec.date)
         h, m = map(int, spec.start_local.split(":"))
@@ -413,6 +433,7 @@ def _build(root: Path, seed: int) -> None:
         instants.append(instant)
 
         zmean, vfine = _fine_integrals(term)
+        zmeans.append(zmean)
         _write_tif(root / "truth" / f"surface-{spec.date}.tif", zmean, west + SITE_ORIGIN[0], north + SITE_ORIGIN[1],
                    TOOL_CELL_M)
         piles_t = {}
@@ -448,10 +469,67 @@ def _build(root: Path, seed: int) -> None:
     bk = _books.make_books(tonnes, instants, materials, tz, np.random.default_rng([seed, 3]))
     truth["books"] = _write_books(root, bk, tz, instants, tonnes)
     truth["faults"] = _fault_truth(bk, tz, instants, terminals)
+    truth["machine_survey"] = _machine_survey(root, terminals[MACHINE_TERRAIN], zmeans[MACHINE_TERRAIN], seed, tz)
 
     _write_overview(root / "overview.png", terminals, footprints)
     _write_readme(root, truth)
     _write_text(root / "truth.json", json.dumps(truth, indent=1, sort_keys=False, ensure_ascii=True) + "\n")
+
+
+def _machine_survey(root: Path, term: Terminal, zmean: np.ndarray, seed: int, tz: ZoneInfo) -> dict:
+    """Write the machine-mounted survey and its true surface; return its truth record.
+
+    Its random draws come from their own stream (``[seed, 9, k]``, see
+    :func:`inventory.demo.machine_scan.write_demo_machine_survey`), so adding it changed no
+    byte of the static surveys or the books.
+    """
+    from .machine_scan import ScannerHead, demo_motion, write_demo_machine_survey
+
+    day = date.fromisoformat(MACHINE_SURVEY_DATE)
+    h, m = map(int, MACHINE_SURVEY_START_LOCAL.split(":"))
+    start = datetime(day.year, day.month, day.day, h, m, tzinfo=tz).astimezone(_UTC)
+    k = MACHINE_TERRAIN
+    scan = write_demo_machine_survey(root / "surveys" / MACHINE_SURVEY_DATE, term, k, start, seed=seed,
+                                     log_delay_s=MACHINE_LOG_DELAY_S)
+    local = scan.true_xyz[:, :2] - np.array(SITE_ORIGIN[:2])
+    thick = term.thicknesses(local[:, 0], local[:, 1]).sum(axis=0)
+    pile = int((thick > 1e-6).sum())
+    # As trajectory.csv states it (6 decimals), which is what the survey compares with.
+    logged0 = round(float(scan.samples["gps_time"].iloc[0]), 6)
+    # The true surface on the cells the scan reached (a true hit inside the cell).
+    west, north, nrows, ncols = _truth_grid()
+    col = np.floor((local[:, 0] - west) / TOOL_CELL_M).astype(int)
+    row = np.floor((north - local[:, 1]) / TOOL_CELL_M).astype(int)
+    ok = (row >= 0) & (row < nrows) & (col >= 0) & (col < ncols)
+    hit = np.zeros((nrows, ncols), bool)
+    hit[row[ok], col[ok]] = True
+    _write_tif(root / "truth" / f"surface-{MACHINE_SURVEY_DATE}.tif", np.where(hit, zmean, -9999.0),
+               west + SITE_ORIGIN[0], north + SITE_ORIGIN[1], TOOL_CELL_M)
+    mach, motion, head = scan.machine, demo_motion(k), ScannerHead(el_min_deg=-85.0, el_max_deg=-12.0)
+    s = scan.samples
+    return {
+        "date": MACHINE_SURVEY_DATE, "start": _iso(start, tz), "terrain_of_survey": SURVEYS[k].date,
+        "files": ["machine_scan.laz", "trajectory.csv"], "trajectory_variant": "pose",
+        "note": "the cloud is in the scanner frame with adjusted standard GPS times; trajectory.csv gives the "
+                "scanner's own pose (lever arm and boresight folded in) at 10 Hz; the log starts "
+                f"{MACHINE_LOG_DELAY_S} s after the first ray. The terrain is that of survey "
+                f"{SURVEYS[k].date} (the scenario has no mid-month state); no close uses this survey.",
+        "machine": {"id": mach.id, "rail_origin_site": [float(v) for v in mach.rail_origin],
+                    "rail_azimuth_deg": mach.rail_azimuth_deg, "pivot_height_m": mach.pivot_height_m,
+                    "pivot_offset_m": mach.pivot_offset_m, "boom_length_m": mach.boom_length_m,
+                    "scanner_lever_arm_m": [float(v) for v in mach.scanner_lever_arm_m],
+                    "boresight_deg": [round(float(v), 6) for v in mach.boresight_deg]},
+        "motion": {"duration_s": motion.duration_s, "travel_m": list(motion.travel_m), "slew_deg": list(motion.slew_deg),
+                   "luff_deg": list(motion.luff_deg), "profile": "cosine ramp from start to end value"},
+        "head": {"turn_deg": head.turn_deg, "az_step_deg": head.az_step_deg,
+                 "el_range_deg": [head.el_min_deg, head.el_max_deg], "el_step_deg": head.el_step_deg,
+                 "range_sd_m": 0.012, "max_range_m": 45.0},
+        "first_ray_gps_time": round(float(scan.gps_time.min()), 6),
+        "logged_samples": {c: [round(float(v), 6) for v in s[c]] for c in ("gps_time", "travel_m", "slew_deg", "luff_deg")},
+        "counts": {"points": int(len(scan.points)), "outside_span": int((scan.gps_time < logged0).sum()),
+                   "in_gap": 0, "pile": pile, "pad": int(len(scan.points)) - pile},
+        "surface": f"truth/surface-{MACHINE_SURVEY_DATE}.tif",
+    }
 
 
 def _write_site_toml(root: Path) -> None:
@@ -694,6 +772,7 @@ def _write_overview(path: Path, terminals: list[Terminal], footprints: dict) -> 
 
 
 def _write_readme(root: Path, truth: dict) -> None:
+    ms = truth["machine_survey"]
     lines = [
         f"# {SITE_NAME}",
         "",
@@ -712,6 +791,16 @@ def _write_readme(root: Path, truth: dict) -> None:
         "Surveys: " + ", ".join(f"{s['date']} ({len(s['files'])} scanner stations)" for s in truth["surveys"]) + ".",
         "Each station's cloud is in the scanner's own frame with its pose in `stations.csv`, except one",
         "station per survey that is already georeferenced (blank pose).",
+        "",
+        f"A third survey, {ms['date']}, is a machine-mounted scan of part of the yard: a scanner hung under",
+        "the stacker's boom tip turns once while the boom slews 60 degrees, travels 6 m and luffs 2 degrees",
+        f"({ms['motion']['duration_s']:g} s). `machine_scan.laz` holds {ms['counts']['points']:,} points in the scanner's own frame with",
+        "their GPS times; `trajectory.csv` gives the scanner's pose at 10 Hz, and the survey step places",
+        "every point with the pose at its own time. The log starts "
+        f"{ms['logged_samples']['gps_time'][0] - ms['first_ray_gps_time']:.1f} s after the first ray, so",
+        f"{ms['counts']['outside_span']:,} points cannot be placed and are reported as rejected. The scanned terrain is",
+        f"that of the {ms['terrain_of_survey']} survey (the scenario has no mid-month state); no close uses this",
+        "survey: the close of 2026-10 takes the month's last survey.",
         "",
         "The books for 2026-10 carry planted faults (see `truth.json`, key `faults`).",
     ]
