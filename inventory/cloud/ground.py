@@ -138,54 +138,55 @@ def slope_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGro
     qy = y if qy is None else qy
     if len(z) == 0:
         return np.full(len(qx), np.inf)
-    t = math.tan(math.radians(params.max_slope_deg))
-    c = params.cell
-    x0, y0 = x.min() - c, y.min() - c
-    ncol = int((x.max() - x0) // c) + 2
-    nrow = int((y.max() - y0) // c) + 2
-    col = ((x - x0) // c).astype(np.int64)
-    row = ((y - y0) // c).astype(np.int64)
-    key = row * ncol + col
-    order = np.lexsort((z, key))
-    first = np.ones(len(order), bool)
-    first[1:] = key[order][1:] != key[order][:-1]
-    seeds = order[first]
-    skey = key[seeds]
+    return _EnvelopeGrid(x, y, z, params).at(qx, qy)
 
-    g = np.full(nrow * ncol, np.inf)
-    g[skey] = z[seeds]
-    g = g.reshape(nrow, ncol)
-    # Anchor of each cell: its lowest point, or the cell centre for empty cells.
-    ax = (x0 + (np.arange(ncol) + 0.5) * c)[None, :].repeat(nrow, 0).ravel()
-    ay = (y0 + (np.arange(nrow) + 0.5) * c)[:, None].repeat(ncol, 1).ravel()
-    ax[skey], ay[skey] = x[seeds], y[seeds]
 
-    weights = [(dr, dc, t * c * math.hypot(dr, dc)) for dr, dc in _STEPS]
-    for _ in range(int(math.ceil(params.window / c))):
-        before = g.copy()
-        for dr, dc, w in weights:
-            dst = g[max(dr, 0):nrow + min(dr, 0), max(dc, 0):ncol + min(dc, 0)]
-            src = g[max(-dr, 0):nrow + min(-dr, 0), max(-dc, 0):ncol + min(-dc, 0)]
-            np.minimum(dst, src + w, out=dst)
-        if np.array_equal(before, g):
-            break
-    gf = g.ravel()
+class _EnvelopeGrid:
+    """The propagated seed grid of :func:`slope_envelope`, built once, queried many times."""
 
-    qcol = np.floor((qx - x0) / c).astype(np.int64)
-    qrow = np.floor((qy - y0) / c).astype(np.int64)
-    e = np.full(len(qx), np.inf)
-    for dr in (-1, 0, 1):
-        for dc in (-1, 0, 1):
-            r, cc = qrow + dr, qcol + dc
-            ok = (r >= 0) & (r < nrow) & (cc >= 0) & (cc < ncol)
-            k = (r * ncol + cc)[ok]
-            cand = gf[k] + t * np.hypot(qx[ok] - ax[k], qy[ok] - ay[k])
-            e[ok] = np.minimum(e[ok], cand)
-    return e
+    def __init__(self, x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGroundParams) -> None:
+        t = self.t = math.tan(math.radians(params.max_slope_deg))
+        c = self.c = params.cell
+        x0, y0 = self.x0, self.y0 = x.min() - c, y.min() - c
+        ncol = self.ncol = int((x.max() - x0) // c) + 2
+        nrow = self.nrow = int((y.max() - y0) // c) + 2
+        col = ((x - x0) // c).astype(np.int64)
+        row = ((y - y0) // c).astype(np.int64)
+        key = row * ncol + col
+        order = np.lexsort((z, key))
+        first = np.ones(len(order), bool)
+        first[1:] = key[order][1:] != key[order][:-1]
+        seeds = order[first]
+        skey = key[seeds]
+
+        g = np.full(nrow * ncol, np.inf)
+        g[skey] = z[seeds]
+        g = g.reshape(nrow, ncol)
+        # Anchor of each cell: its lowest point, or the cell centre for empty cells.
+        ax = (x0 + (np.arange(ncol) + 0.5) * c)[None, :].repeat(nrow, 0).ravel()
+        ay = (y0 + (np.arange(nrow) + 0.5) * c)[:, None].repeat(ncol, 1).ravel()
+        ax[skey], ay[skey] = x[seeds], y[seeds]
+        self.ax, self.ay = ax, ay
+        self.g = _chamfer_min(g, t * c, int(math.ceil(params.window / c))).ravel()
+
+    def at(self, qx: np.ndarray, qy: np.ndarray) -> np.ndarray:
+        """The envelope at query points: the seeds of the 3 x 3 cells around each, exactly."""
+        gf, ax, ay, t, c, nrow, ncol = self.g, self.ax, self.ay, self.t, self.c, self.nrow, self.ncol
+        qcol = np.floor((qx - self.x0) / c).astype(np.int64)
+        qrow = np.floor((qy - self.y0) / c).astype(np.int64)
+        e = np.full(len(qx), np.inf)
+        for dr in (-1, 0, 1):
+            for dc in (-1, 0, 1):
+                r, cc = qrow + dr, qcol + dc
+                ok = (r >= 0) & (r < nrow) & (cc >= 0) & (cc < ncol)
+                k = (r * ncol + cc)[ok]
+                cand = gf[k] + t * np.hypot(qx[ok] - ax[k], qy[ok] - ay[k])
+                e[ok] = np.minimum(e[ok], cand)
+        return e
 
 
 def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGroundParams,
-                    k: int = 16) -> np.ndarray:
+                    k: int = 16, knn: "tuple[np.ndarray, np.ndarray] | None" = None) -> np.ndarray:
     """The envelope over each point's ``k`` nearest neighbours in plan, at exact distances.
 
     The grid envelope only sees the lowest point of each cell; on a wall, the points just
@@ -196,15 +197,68 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
     n = len(z)
     if n < 2:
         return np.full(n, np.inf)
-    kk = min(k + 1, n)
-    xy = np.column_stack([x, y])
-    d, nb = cKDTree(xy).query(xy, k=kk, workers=-1)
+    if knn is None:
+        xy = np.column_stack([x, y])
+        knn = cKDTree(xy).query(xy, k=min(k + 1, n), workers=-1)
+    d, nb = knn
     t = math.tan(math.radians(params.max_slope_deg))
     return (z[nb] + t * d).min(axis=1)
 
 
+class _PlanNeighbours:
+    """Nearest neighbours in plan of every point, and from them of any subset's points.
+
+    One query of the ``K`` nearest points of the whole cloud answers "the k nearest
+    members of a subset" for a subset member whenever at least k of its K neighbours are
+    members (the list holds every point closer than its last one); the few others are
+    queried again within the subset. Saves a tree and a query per subset.
+    """
+
+    K = 24
+
+    def __init__(self, x: np.ndarray, y: np.ndarray) -> None:
+        from scipy.spatial import cKDTree
+
+        self.xy = np.column_stack([x, y])
+        n = len(x)
+        self.d = self.nb = None
+        if n >= 2:
+            self.d, self.nb = cKDTree(self.xy).query(self.xy, k=min(self.K, n), workers=-1)
+
+    def within(self, members: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """Distances and indices (numbered within the subset) of each member's k nearest members."""
+        from scipy.spatial import cKDTree
+
+        idx = np.flatnonzero(members)
+        k = min(k, len(idx))
+        if k < 2 or self.nb is None:
+            sub = self.xy[idx]
+            d, nb = cKDTree(sub).query(sub, k=max(k, 1), workers=-1)
+            return d.reshape(len(idx), -1), nb.reshape(len(idx), -1)
+        pos = np.cumsum(members) - 1
+        d, nb = self.d[idx], self.nb[idx]
+        valid = members[nb]
+        dd, nn = d[:, :k].copy(), nb[:, :k].copy()
+        mixed = np.flatnonzero(~valid[:, :k].all(axis=1))
+        short = np.zeros(0, np.int64)
+        if len(mixed):
+            # members first, in distance order: the j-th member of a row goes to column j
+            vm = valid[mixed]
+            rank = np.cumsum(vm, axis=1)
+            r, c = np.nonzero(vm & (rank <= k))
+            dd[mixed[r], rank[r, c] - 1] = d[mixed[r], c]
+            nn[mixed[r], rank[r, c] - 1] = nb[mixed[r], c]
+            short = mixed[rank[:, -1] < k]
+        nn = pos[nn]
+        if len(short):
+            sub = self.xy[idx]
+            dd[short], nn[short] = cKDTree(sub).query(sub[short], k=k, workers=-1)
+        return dd, nn
+
+
 def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
-                    params: SlopeGroundParams) -> np.ndarray:
+                    params: SlopeGroundParams, knn: "tuple[np.ndarray, np.ndarray] | None" = None
+                    ) -> np.ndarray:
     """Points kept only by the steeper ``face_slope_deg`` bound that belong to the surface.
 
     Candidates lie on the envelope of ``face_slope_deg`` but not of ``max_slope_deg``:
@@ -221,7 +275,7 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     from scipy import ndimage
 
     steep = replace(params, max_slope_deg=params.face_slope_deg)
-    e = np.minimum(slope_envelope(x, y, z, steep), _local_envelope(x, y, z, steep))
+    e = np.minimum(slope_envelope(x, y, z, steep), _local_envelope(x, y, z, steep, knn=knn))
     cand = ~ground & (z - e <= params.tolerance)
     out = np.zeros(len(z), bool)
     if not cand.any():
@@ -360,15 +414,22 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
 
 def _chamfer_min(g: np.ndarray, weight: float, iterations: int) -> np.ndarray:
     """Lower envelope ``min_n (g_n + weight * d_n)`` by 16-neighbour chamfer propagation."""
-    g = g.copy()
+    g = np.array(g, dtype=float)   # a copy
     nrow, ncol = g.shape
-    steps = [(dr, dc, weight * math.hypot(dr, dc)) for dr, dc in _STEPS]
+    before = np.empty_like(g)
+    buf = np.empty_like(g)
+    steps = []
+    for dr, dc in _STEPS:
+        dst = g[max(dr, 0):nrow + min(dr, 0), max(dc, 0):ncol + min(dc, 0)]
+        src = g[max(-dr, 0):nrow + min(-dr, 0), max(-dc, 0):ncol + min(-dc, 0)]
+        steps.append((dst, src, buf[:dst.shape[0], :dst.shape[1]], weight * math.hypot(dr, dc)))
+    # Each step reads the grid as the previous step left it (Gauss-Seidel over the 16
+    # steps), through a scratch buffer instead of a fresh temporary per step.
     for _ in range(iterations):
-        before = g.copy()
-        for dr, dc, w in steps:
-            dst = g[max(dr, 0):nrow + min(dr, 0), max(dc, 0):ncol + min(dc, 0)]
-            src = g[max(-dr, 0):nrow + min(-dr, 0), max(-dc, 0):ncol + min(-dc, 0)]
-            np.minimum(dst, src + w, out=dst)
+        np.copyto(before, g)
+        for dst, src, tmp, w in steps:
+            np.add(src, w, out=tmp)
+            np.minimum(dst, tmp, out=dst)
         if np.array_equal(before, g):
             break
     return g
@@ -459,7 +520,7 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray) -> n
 
 
 def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
-                      params: SlopeGroundParams) -> np.ndarray:
+                      params: SlopeGroundParams, plan: "_PlanNeighbours | None" = None) -> np.ndarray:
     """Points under the surface around them (multipath returns), by two tests.
 
     With ``reach(d) = tan(max_slope) * d + tolerance`` for a neighbour at distance d in plan:
@@ -483,7 +544,9 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     t = math.tan(math.radians(params.max_slope_deg))
     xs, ys, zs = x[idx], y[idx], z[idx]
 
-    d, nb = cKDTree(np.column_stack([xs, ys])).query(np.column_stack([xs, ys]), k=k2 + 1, workers=-1)
+    if plan is None:
+        plan = _PlanNeighbours(x, y)
+    d, nb = plan.within(use, k2 + 1)
     d, nb = d[:, 1:], nb[:, 1:]
     dz = zs[nb] - zs[:, None]
     reach = t * d + params.tolerance
@@ -494,13 +557,15 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # Deeper points: above-reach neighbours in plan (any height) and almost no points
     # within 1 m in 3D, i.e. no surface at the point's own level.
     above_any = (d <= 1.0) & (dz > reach)
+    # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
+    # point itself included, is farther than r": one 4-nearest query answers both radii
+    # (counting every neighbour within r is what made this slow near a scanner).
     xyz = np.column_stack([xs, ys, zs])
-    tree = cKDTree(xyz)
-    n3 = tree.query_ball_point(xyz, r=1.0, return_length=True, workers=-1) - 1
-    deep = (n3 < 3) & (2 * above_any.sum(axis=1) >= k2)
+    d4 = cKDTree(xyz).query(xyz, k=4, workers=-1)[0][:, -1]
+    deep = (d4 > 1.0) & (2 * above_any.sum(axis=1) >= k2)
     # A point with company within 0.5 m (the foot of a wall, ground under a gallery) is
     # part of something, not a stray return.
-    plan &= tree.query_ball_point(xyz, r=0.5, return_length=True, workers=-1) - 1 < 3
+    plan &= d4 > 0.5
 
     out[idx[plan | deep]] = True
     return out
@@ -531,7 +596,9 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     # Points below the slope cone of most of their neighbours cannot be surface (nothing
     # that gravity built is that steep underneath); they join the ignored noise and are
     # judged again below against the envelope of the rest.
-    low = _below_neighbours(x, y, z, ~ignore, params)
+    # One plan-view neighbour query serves the three subsets that need one.
+    plan = _PlanNeighbours(x, y)
+    low = _below_neighbours(x, y, z, ~ignore, params, plan)
     out[low] = LOW_NOISE
     # A return with no other return within ISOLATION_M is nobody's surface (range
     # ambiguity ghosts, birds far out); alone it would be its own envelope.
@@ -544,14 +611,15 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     if not use.any():
         return out, height
     xu, yu, zu = x[use], y[use], z[use]
-    e = np.minimum(slope_envelope(xu, yu, zu, params), _local_envelope(xu, yu, zu, params))
+    envelope = _EnvelopeGrid(xu, yu, zu, params)   # built once: points and noise query it
+    e = np.minimum(envelope.at(xu, yu), _local_envelope(xu, yu, zu, params, knn=plan.within(use, 17)))
     height[use] = zu - e
     # Noise points are judged against the envelope of the rest: those on it are surface
     # after all and take part in the region rules below.
     noise = ignore & (classification == LOW_NOISE)
     rescued = np.zeros(len(z), bool)
     if noise.any():
-        en = slope_envelope(xu, yu, zu, params, x[noise], y[noise])
+        en = envelope.at(x[noise], y[noise])
         hn = z[noise] - en
         height[noise] = np.where(np.isfinite(hn), hn, np.nan)
         high = np.isfinite(hn) & (hn > params.tolerance)
@@ -564,7 +632,7 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     ground = (hs <= params.tolerance) | rescued[judged]
     ground &= ~_walled_tops(xs, ys, zs, ground, params)
     if params.face_slope_deg > params.max_slope_deg:
-        ground |= _attached_faces(xs, ys, zs, ground, params)
+        ground |= _attached_faces(xs, ys, zs, ground, params, knn=plan.within(judged, 17))
     ground &= ~_spikes(xs, ys, zs, ground, params)
     over = _overhead(xs, ys, zs, hs, params.cell * 2, params.overhead_gap)
     cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
