@@ -96,8 +96,19 @@ def _site_inputs(site: Site, survey_dates: list[str], period: str) -> list[Path]
     return files
 
 
-def _previous_survey(site: Site, date: str) -> str | None:
-    earlier = [d for d in site.surveys if d < date]
+def _previous_survey(site: Site, date: str, ledger: Any = None, period: str | None = None) -> str | None:
+    """The survey this close compares with (change raster, measured change).
+
+    The survey of the previous period's adopted close when the ledger has one; else the
+    latest survey of an earlier month. A survey earlier in the same month (a mid-month
+    machine scan, say) is not the state the previous period closed on.
+    """
+    if ledger is not None and period is not None:
+        closes = ledger.closes()
+        prev = closes[(closes["period"] == _month_before(period)) & (closes["status"] == "adopted")]
+        if len(prev):
+            return str(prev["survey_date"].iloc[-1])
+    earlier = [d for d in site.surveys if d[:7] < date[:7]]
     return max(earlier) if earlier else None
 
 
@@ -250,7 +261,7 @@ def close_period(
                 f"reopen it first (inventory reopen {site.root} --period {period} --reason \"...\")"
             )
         opening, opening_source = _opening(site, ledger, period)
-        prev_date = _previous_survey(site, ref.date)
+        prev_date = _previous_survey(site, ref.date, ledger, period)
         done("load")
         folder = site.root / "closes" / period
         with _staging(folder) as tmp:
