@@ -293,7 +293,7 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                    progress: Progress | None = None, *, pipeline: "Pipeline | str | Path | None" = None,
                    engine: str = "auto", tile_size_m: float = DEFAULT_TILE_M,
                    buffer_m: float = DEFAULT_BUFFER_M, chunk_size: int = DEFAULT_CHUNK,
-                   workers: int | None = None, scheduler: str | None = None,
+                   workers: int | None = None, scheduler: str | None = None, threads: bool = False,
                    write_classified: bool = True) -> SurveyResult:
     """Turn one survey's point clouds into a classified cloud and a surface grid.
 
@@ -316,9 +316,11 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         Processing tiles and the neighbouring points each tile sees.
     chunk_size : int
         Points per read chunk.
-    workers, scheduler : optional
-        Classify tiles on a local Dask cluster of ``workers`` processes or on the cluster
-        at ``scheduler`` (it must see this machine's temporary folder).
+    workers, scheduler, threads : optional
+        Classify tiles on a local Dask cluster of ``workers`` processes (a pool of
+        ``workers`` threads with ``threads=True``) or on the Dask cluster at ``scheduler``
+        (its workers must see this machine's temporary folder); see
+        :mod:`inventory.scale_out`. Every way gives the same files.
     write_classified : bool
         Write ``classified-<date>.laz`` (when ``out_dir`` is given).
 
@@ -401,7 +403,7 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         tiles = sorted(spill.counts)
         try:
             for i, result in enumerate(_run_tiles(spill, tiles, buffer_m, pipe, site_crs, used_engine,
-                                                  workers, scheduler)):
+                                                  workers, scheduler, threads)):
                 cls = result["Classification"]
                 for c, n in zip(*np.unique(cls, return_counts=True)):
                     counts[int(c)] = counts.get(int(c), 0) + int(n)
@@ -458,26 +460,12 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
 
 
 def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,
-               workers: int | None, scheduler: str | None):
-    if not workers and not scheduler:
-        for t in tiles:
-            yield _classify_tile(spill, t, buffer_m, pipe, crs, engine)
-        return
-    from dask.distributed import Client, LocalCluster, as_completed
+               workers: int | None, scheduler: str | None, threads: bool = False):
+    """Classified tiles in the order of ``tiles``, however they are run (so that every way
+    writes the same classified cloud and adds the surface sums in the same order)."""
+    from .scale_out import executor
 
-    cluster = None
-    if scheduler:
-        client = Client(scheduler)
-    else:
-        cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True)
-        client = Client(cluster)
-    try:
-        crs_wkt = crs.to_wkt()
-        futures = [client.submit(_classify_tile, spill, t, buffer_m, pipe, crs_wkt, engine, pure=False)
-                   for t in tiles]
-        for fut in as_completed(futures):
-            yield fut.result()
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+    with executor(workers, scheduler, threads=threads) as ex:
+        # A CRS travels to worker processes as WKT (pyproj CRS objects pickle as WKT anyway).
+        crs_arg = crs if ex.kind != "dask" else crs.to_wkt()
+        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs_arg, engine) for t in tiles))

@@ -301,21 +301,6 @@ def test_sample_site_surface_rms(which, tmp_path_factory):
     assert rms <= 0.05, f"surface RMS {rms:.3f} m on covered cells"   # issue 4 acceptance figure
 
 
-@pytest.mark.slow
-def test_dask_workers_give_the_same_result(synthetic):
-    # The tiles are independent: a local Dask cluster must reproduce the serial run.
-    yard, site, result, out = synthetic
-    messages = []
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        par = measure_survey(site, DATE, out_dir=None, tile_size_m=40.0, buffer_m=15.0, workers=2,
-                             progress=messages.append)
-    assert par.class_counts == result.class_counts
-    np.testing.assert_allclose(par.surface.z, result.surface.z, equal_nan=True)
-    assert any(m.startswith("reading a.laz") for m in messages)
-    assert any(m.startswith("classifying: tile") for m in messages)
-
-
 def test_enclosed_gap_is_warned(tmp_path):
     # A ring of pad with a 20 m hole in the middle: more than max_fill_distance_m from data.
     rng = np.random.default_rng(0)
