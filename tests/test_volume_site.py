@@ -16,7 +16,6 @@ with conical ends, reclaim face, bay pile), as written to truth.json by the demo
 
 from __future__ import annotations
 
-import json
 import warnings
 from functools import lru_cache
 from pathlib import Path
@@ -122,12 +121,33 @@ def test_simulated_surveys_interval_covers_truth():
 
 def test_doubling_range_noise_increases_sigma():
     # Honesty: the same scan with twice the scanner's range noise (same rays, same seeds)
-    # must report a larger random term for every pile and a larger total sigma overall.
+    # must report a larger random term for every pile. (The total is dominated by the
+    # interpolation term, which depends on which cells the noisier returns happen to hit:
+    # FE1's fell from 62 to 56 m3 here with 0.1 % more of it scanned; the controlled
+    # comparison of the total is the next test.)
     _need_sample()
     t1 = _table(1, 1, 1.0)[0]
     t2 = _table(1, 1, 2.0)[0]
     assert (t2.sigma_random_m3.values > t1.sigma_random_m3.values).all()
-    assert t2.volume_sigma_m3.sum() > t1.volume_sigma_m3.sum()
+
+
+def test_more_noise_on_the_same_cells_increases_every_sigma():
+    # Honesty, with the scan geometry held fixed: the same points with extra elevation noise
+    # (doubling the scanner's mean range sd of 1.75 cm: sqrt(2^2 - 1) x 1.75 cm more) hit
+    # the same cells, so only the noise changes: every pile's random term and the total
+    # sigma must rise. (Pile by pile the total can move either way by a few tenths of a
+    # percent: the slope mismatch is itself estimated from noisy gradients.)
+    _need_sample()
+    pts, _, _ = _scan(1, 1)
+    base = demo_sim.ScannerModel()
+    extra = np.sqrt(3.0) * 0.5 * (base.range_sd_near_m + base.range_sd_far_m)
+    noisy = pts.copy()
+    noisy[:, 2] += np.random.default_rng(7).normal(0.0, extra, len(pts))
+    t1 = _table(1, 1)[0]
+    t2 = _measure(noisy)
+    assert (t2.scanned_fraction.values == t1.scanned_fraction.values).all()
+    assert (t2.sigma_random_m3.values > t1.sigma_random_m3.values).all()
+    assert t2.volume_sigma_m3.sum() > t1.volume_sigma_m3.sum(), (t1.volume_sigma_m3.values, t2.volume_sigma_m3.values)
 
 
 def test_hiding_a_fifth_of_a_pile_increases_sigma_and_still_covers():
@@ -165,23 +185,32 @@ def test_simulated_surveys_interval_covers_truth_more_seeds():
     assert np.mean(hits) >= COVERAGE_BAR, hits
 
 
-# ----------------------------------------------------------------------------- end to end
-@lru_cache(maxsize=None)
-def _sample_tables():
-    survey = pytest.importorskip("inventory.survey", reason="inventory.survey not available")
-    from inventory.site import load_site
+@pytest.mark.slow
+def test_simulated_surveys_sigma_is_useful():
+    # Honest is not enough: an interval many times wider than the errors hides every
+    # variance. Over three seeds the median sigma stays within 2 % of the pile's volume
+    # (issue 6: variances of 2-4 % must be able to stand out), and the errors are not
+    # all tiny against it (at least one pile-survey beyond a third of its sigma).
+    _need_sample()
+    sig, z = [], []
+    for seed in (1, 2, 3):
+        for k in (0, 1):
+            table, truth = _table(k, seed)
+            t = table.pile_id.map(truth)
+            sig += list(table.volume_sigma_m3 / t)
+            z += list((table.volume_m3 - t) / table.volume_sigma_m3)
+    assert np.median(sig) <= 0.02, np.round(sig, 4)
+    assert np.max(np.abs(z)) > 1 / 3, np.round(z, 2)
 
-    site = load_site(SAMPLE)
-    truth = json.loads(TRUTH.read_text())
-    out = []
-    for sv in truth["surveys"]:
-        res = survey.measure_survey(site, sv["date"], out_dir=None, write_classified=False)
-        base = BaseSurfaces.from_site(site, res.surface.grid)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", CoverageWarning)
-            table = measure_piles(res.surface, site.piles, site.materials, base)
-        out.append((sv["date"], table, {p: v["volume_m3"] for p, v in sv["piles"].items()}))
-    return out
+
+# ----------------------------------------------------------------------------- end to end
+def _sample_tables():
+    """Both sample surveys through the real chain (shared, cached: tests/_sample_chain.py)."""
+    pytest.importorskip("inventory.survey", reason="inventory.survey not available")
+    import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
+
+    return [(sv["date"], chain.volumes(sv["date"]), {p: v["volume_m3"] for p, v in sv["piles"].items()})
+            for sv in chain.truth()["surveys"]]
 
 
 @pytest.mark.slow
@@ -196,11 +225,12 @@ def test_sample_site_interval_covers_truth():
 @pytest.mark.slow
 @pytest.mark.xfail(
     strict=True,
-    reason="demo site v4: at 2026-10-31 FE1 is 2.8 % high (79 % scanned; its reclaim face and "
-    "the loader's shadow are interpolated across) and S1 2.5 % low (the survey fills the unscanned "
-    "strip along the bay's west wall by interpolating across the removed wall down to the pad); the "
-    "other 12 pile-surveys are within 1 %, and all 14 lie inside their 95 % intervals. Remove this "
-    "marker when every pile of 1,000 m3 or more is within 1 %.",
+    reason="demo site v4: at 2026-10-31 FE1 is 3.4 % high (79 % scanned; its reclaim face and the "
+    "loader's shadow are interpolated across, and its scanned cells there are 0.14 m rms off the true "
+    "surface) and S1 2.5 % low (the survey fills the unscanned strip along the bay's west wall by "
+    "interpolating across the removed wall down to the pad); the other 12 pile-surveys are within "
+    "1 %, and all 14 lie inside their 95 % intervals (z = +1.40 and -1.74). Remove this marker when "
+    "every pile of 1,000 m3 or more is within 1 %.",
 )
 def test_sample_site_big_piles_within_one_percent():
     _need_sample()
