@@ -1,18 +1,37 @@
-"""Throughput of the survey step against bare laspy LAZ decoding, and peak memory.
+"""Throughput and memory of the survey step against a bare LAZ decode (issue 8).
 
-Usage: python bench/bench_survey.py [SITE] [--date D]
+Usage::
 
-Without SITE it writes the synthetic yard (inventory.cloud.synthetic) as a survey folder
-in a temporary directory, at a few densities. Prints points per second of
-(1) ``laspy`` decoding the same LAZ files chunk by chunk, (2) ``measure_survey`` end to
-end (read, place, tile, clean, classify, grid, write), and the process's peak resident
-memory. Numbers only; nothing is asserted.
+    python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points
+    python bench/bench_survey.py --sizes 1 10          # millions of points
+    python bench/bench_survey.py --huge                # also 200 M points
+    python bench/bench_survey.py --workers 1 2         # also time local Dask clusters of 1 and 2 workers
+    python bench/bench_survey.py --site sample_site    # a real site's latest survey
+
+Synthetic surveys are stockyards (``inventory.cloud.synthetic.make_yard``, piles, machines,
+a gallery, noise) laid side by side, 120 m apart, at 100 points/m2 on piles and machines,
+and written to one LAZ file yard by yard, so that generating 200 million points needs
+the memory of one yard. For each survey it prints, measured in the same run:
+
+* the bare decode: ``laspy`` (lazrs backend) reading the file chunk by chunk, points/s;
+* the survey step: ``measure_survey`` end to end (read, place, tile, clean, classify,
+  grid, fill, write the GeoTIFFs and the classified LAZ), points/s and its steps;
+* their ratio (issue 8 target: at most 3, aim 2);
+* the peak resident memory of the process that ran it (``getrusage``), and of the
+  largest Dask worker process when workers ran;
+* with ``--workers``: the speed-up of each worker count over the first one.
+
+Each measurement runs in a fresh child process, so that one peak does not hide the next.
+Numbers only; nothing is asserted.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import os
 import resource
+import subprocess
 import sys
 import tempfile
 import time
@@ -20,62 +39,75 @@ import types
 import warnings
 from pathlib import Path
 
-import laspy
+DATE = "2026-10-31"
+CRS = "EPSG:25832"
+#: Points per m2 on piles and machines: a terrestrial scan at 10-30 m range (common practice).
+DENSITY = 100.0
+#: Spacing of the yards laid side by side (a yard is 110 m x 80 m).
+PITCH_M = 120.0
 
 
-def _peak_rss_mb() -> float:
-    # ru_maxrss is in kilobytes on Linux (getrusage(2)).
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+def _peak_rss_mb(who: int = resource.RUSAGE_SELF) -> float:
+    # ru_maxrss is in kilobytes on Linux (getrusage(2)); for RUSAGE_CHILDREN it is the
+    # largest descendant that has been waited for.
+    return resource.getrusage(who).ru_maxrss / 1024.0
 
 
-def _decode_rate(files: list[Path]) -> tuple[int, float]:
-    n, t0 = 0, time.perf_counter()
-    for f in files:
-        with laspy.open(f) as r:
-            for chunk in r.chunk_iterator(1_000_000):
-                n += len(chunk)
-    return n, time.perf_counter() - t0
+def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
+    """Write about ``n_points`` synthetic stockyard points to one LAZ, a yard at a time."""
+    import numpy as np
 
-
-def _synthetic_site(root: Path, density: float):
-    from inventory.cloud.io import write_cloud
+    from inventory.cloud.io import CloudWriter
     from inventory.cloud.synthetic import make_yard
 
-    folder = root / "surveys" / "2026-10-31"
-    folder.mkdir(parents=True)
-    yard = make_yard(density=density, pad_density=density / 6)
-    write_cloud(folder / "yard.laz", yard.points, "EPSG:25832")
+    first = make_yard(density=density, seed=0, pad_density=density / 6)
+    per_yard = len(first.points)
+    n_yards = max(1, -(-n_points // per_yard))
+    cols = max(1, int(np.ceil(np.sqrt(n_yards))))
+    x0, y0 = first.origin
+    writer = CloudWriter(path, crs=CRS, offset=(x0 - 10.0, y0 - 10.0, 0.0))
+    written = 0
+    try:
+        for i in range(n_yards):
+            pts = first.points if i == 0 else make_yard(density=density, seed=i, pad_density=density / 6).points
+            pts = pts[: n_points - written]
+            r, c = divmod(i, cols)
+            pts["X"] += c * PITCH_M
+            pts["Y"] += r * PITCH_M
+            writer.write(pts)
+            written += len(pts)
+    except BaseException:
+        writer.close(ok=False)
+        raise
+    writer.close()
+    return written
+
+
+def _decode(files: list[Path]) -> tuple[int, float, str]:
+    import laspy
+
+    n, t0 = 0, time.perf_counter()
+    backend = ""
+    for f in files:
+        with laspy.open(f) as r:
+            backend = type(getattr(r, "point_source", None)).__name__ if hasattr(r, "point_source") else ""
+            for chunk in r.chunk_iterator(1_000_000):
+                n += len(chunk)
+    return n, time.perf_counter() - t0, backend
+
+
+def _site(root: Path, files: list[Path]):
     grid = types.SimpleNamespace(cell_size_m=0.5, max_fill_distance_m=3.0, statistic="mean")
     survey = types.SimpleNamespace(default_crs=None, pipeline=None)
-    ref = types.SimpleNamespace(folder=folder, files=[folder / "yard.laz"], stations=None)
-    return types.SimpleNamespace(root=root, crs="EPSG:25832",
-                                 config=types.SimpleNamespace(grid=grid, survey=survey),
-                                 surveys={"2026-10-31": ref}), "2026-10-31"
+    ref = types.SimpleNamespace(folder=files[0].parent, files=files, stations=None)
+    return types.SimpleNamespace(root=root, crs=CRS, config=types.SimpleNamespace(grid=grid, survey=survey),
+                                 surveys={DATE: ref})
 
 
-def _run(site, date: str, label: str) -> None:
+def _child(args: argparse.Namespace) -> int:
+    """One measurement in this (fresh) process; prints one JSON line."""
     from inventory.survey import measure_survey
 
-    files = list(site.surveys[date].files)
-    n, dt = _decode_rate(files)
-    with tempfile.TemporaryDirectory() as out, warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        t0 = time.perf_counter()
-        result = measure_survey(site, date, out_dir=out)
-        total = time.perf_counter() - t0
-    steps = ", ".join(f"{k} {v:.1f} s" for k, v in result.timings.items())
-    print(f"{label}: {n:,} points")
-    print(f"  laspy LAZ decode      {n / dt:12,.0f} points/s  ({dt:.2f} s)")
-    print(f"  measure_survey        {n / total:12,.0f} points/s  ({total:.2f} s: {steps})")
-    print(f"  peak RSS so far       {_peak_rss_mb():12,.0f} MB")
-    print(f"  {result.format_summary()}")
-
-
-def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("site", nargs="?", help="a site folder (default: synthetic yards)")
-    ap.add_argument("--date", help="survey date (default: the latest)")
-    args = ap.parse_args(argv)
     if args.site:
         from inventory.site import load_site
 
@@ -83,12 +115,90 @@ def main(argv: list[str] | None = None) -> int:
             warnings.simplefilter("ignore")
             site = load_site(args.site)
         date = args.date or max(site.surveys)
-        _run(site, date, f"{args.site} {date}")
+    else:
+        f = Path(args.file)
+        site, date = _site(f.parent, [f]), DATE
+    files = [Path(p) for p in site.surveys[date].files]
+    out: dict = {}
+    if args.what == "decode":
+        n, dt, backend = _decode(files)
+        out.update(points=n, seconds=dt, backend=backend)
+    else:
+        with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t0 = time.perf_counter()
+            r = measure_survey(site, date, out_dir=tmp, workers=args.workers or None)
+            dt = time.perf_counter() - t0
+        out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary())
+    out.update(rss_mb=_peak_rss_mb(), children_rss_mb=_peak_rss_mb(resource.RUSAGE_CHILDREN))
+    print("RESULT " + json.dumps(out), flush=True)
+    return 0
+
+
+def _measure(extra: list[str]) -> dict:
+    cmd = [sys.executable, os.path.abspath(__file__), "--child", *extra]
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    for line in proc.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    raise RuntimeError(f"benchmark child failed:\n{proc.stderr[-3000:]}")
+
+
+def _report(label: str, src: list[str], workers: list[int]) -> None:
+    dec = _measure(["decode", *src])
+    n = dec["points"]
+    rate_dec = n / dec["seconds"]
+    print(f"{label}: {n:,} points", flush=True)
+    print(f"  bare LAZ decode (laspy {dec['backend'] or 'lazrs'})  {rate_dec:12,.0f} points/s  "
+          f"({dec['seconds']:.2f} s)", flush=True)
+    first = None
+    for w in workers:
+        run = _measure(["survey", *src, "--workers", str(w)])
+        rate = n / run["seconds"]
+        steps = ", ".join(f"{k} {v:.1f} s" for k, v in run["timings"].items())
+        who = "serial" if w == 0 else f"{w} Dask worker{'s' * (w > 1)}"
+        line = (f"  survey step, {who:16s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps})\n"
+                f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB")
+        if w:
+            line += f" (largest worker {run['children_rss_mb']:,.0f} MB)"
+        if first is None:
+            first = run["seconds"]
+        elif w:
+            line += f"   speed-up over the first run {first / run['seconds']:.2f}x"
+        print(line, flush=True)
+    print(f"  {run['summary']}", flush=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--site", help="a site folder instead of synthetic surveys")
+    ap.add_argument("--date", help="survey date of --site (default: the latest)")
+    ap.add_argument("--sizes", type=float, nargs="+", default=[1, 10, 50], help="millions of points")
+    ap.add_argument("--huge", action="store_true", help="also 200 million points")
+    ap.add_argument("--workers", type=int, nargs="+", default=[0],
+                    help="worker counts to time (0 = serial in-process; e.g. --workers 1 2)")
+    ap.add_argument("--keep", help="folder for the generated LAZ files (default: a temporary folder)")
+    ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
+    ap.add_argument("--file", help=argparse.SUPPRESS)
+    args, rest = ap.parse_known_args(argv)
+    if args.what:
+        args.workers = args.workers[0]
+        return _child(args)
+    if args.site:
+        src = ["--site", args.site] + (["--date", args.date] if args.date else [])
+        _report(f"{args.site} {args.date or 'latest'}", src, args.workers)
         return 0
-    for density in (25.0, 100.0):
-        with tempfile.TemporaryDirectory() as tmp:
-            site, date = _synthetic_site(Path(tmp), density)
-            _run(site, date, f"synthetic yard, {density:g} points/m2 on piles and machines")
+    sizes = list(args.sizes) + ([200] if args.huge else [])
+    with tempfile.TemporaryDirectory(dir=args.keep) as tmp:
+        for m in sizes:
+            n = int(m * 1_000_000)
+            path = Path(tmp) / f"survey-{m:g}M.laz"
+            t0 = time.perf_counter()
+            written = write_survey(path, n)
+            print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
+                  f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
+            _report(f"synthetic survey {m:g} M", ["--file", str(path)], args.workers)
+            path.unlink()
     return 0
 
 
