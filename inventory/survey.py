@@ -11,12 +11,17 @@
 3. **Clean and classify** each tile with a buffer of neighbouring points through the
    pipeline (``[survey] pipeline`` or ``pipelines/stockpile.json``); only the tile's own
    points are kept, so results do not depend on the tiling as long as the buffer is wider
-   than the stages' reach.
+   than the stages' reach (except through statistics taken over a whole tile: the
+   threshold of ``filters.outlier`` is the mean and spread of the tile and its buffer).
+   Tiles run serially, on threads or on Dask (``workers``, ``scheduler``;
+   :mod:`inventory.scale_out`) and come back in tile order, so every way writes the same
+   files.
 4. **Grid** the surface class (ASPRS 2) streaming into the site grid; fill holes up to
    ``[grid] max_fill_distance_m``; write ``surface-<date>.tif``, ``coverage-<date>.tif``
    and ``classified-<date>.laz``.
 
-Memory is the grid plus a few tiles, whatever the size of the files.
+Memory is the grid plus a few tiles (two per worker in flight), whatever the size of the
+files; ``bench/bench_survey.py`` measures it with the throughput.
 """
 
 from __future__ import annotations
