@@ -511,8 +511,15 @@ def _overhead(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, cell: 
 ISOLATION_M = 2.0
 
 
-def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray) -> np.ndarray:
-    """Points with no other point within :data:`ISOLATION_M` in 3D."""
+def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
+              near: "dict | None" = None) -> np.ndarray:
+    """Points with no other point within :data:`ISOLATION_M` in 3D.
+
+    ``near`` may hold the nearest points in 3D of a superset of ``use`` (``idx``, ``d``,
+    ``nb`` from :func:`_below_neighbours`): the second-nearest member of ``use`` (the point
+    itself is the first) is then read from those lists, and only points with fewer than two
+    members among them are queried again.
+    """
     from scipy.spatial import cKDTree
 
     out = np.zeros(len(z), bool)
@@ -521,13 +528,28 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray) -> n
         out[idx] = True
         return out
     xyz = np.column_stack([x[idx], y[idx], z[idx]])
-    d, _ = cKDTree(xyz).query(xyz, k=2, workers=-1)
-    out[idx[d[:, 1] > ISOLATION_M]] = True
+    if near is None or len(near["idx"]) < 2:
+        d, _ = cKDTree(xyz).query(xyz, k=2, workers=-1)
+        out[idx[d[:, 1] > ISOLATION_M]] = True
+        return out
+    sup, d, nb = near["idx"], near["d"], near["nb"]
+    rows = use[sup]
+    valid = use[sup[nb[rows]]]
+    rank = np.cumsum(valid, axis=1)
+    second = valid & (rank == 2)
+    has = second.any(axis=1)
+    d2 = np.full(len(has), np.inf)
+    d2[has] = d[rows][has, second[has].argmax(axis=1)]
+    short = np.flatnonzero(~has)      # positions among the rows, same order as idx
+    if len(short):
+        d2[short] = cKDTree(xyz).query(xyz[short], k=2, workers=-1)[0][:, 1]
+    out[idx[d2 > ISOLATION_M]] = True
     return out
 
 
 def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
-                      params: SlopeGroundParams, plan: "_PlanNeighbours | None" = None) -> np.ndarray:
+                      params: SlopeGroundParams, plan: "_PlanNeighbours | None" = None,
+                      near3: "dict | None" = None) -> np.ndarray:
     """Points under the surface around them (multipath returns), by two tests.
 
     With ``reach(d) = tan(max_slope) * d + tolerance`` for a neighbour at distance d in plan:
@@ -568,7 +590,10 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # point itself included, is farther than r": one 4-nearest query answers both radii
     # (counting every neighbour within r is what made this slow near a scanner).
     xyz = np.column_stack([xs, ys, zs])
-    d4 = cKDTree(xyz).query(xyz, k=4, workers=-1)[0][:, -1]
+    d3, nb3 = cKDTree(xyz).query(xyz, k=4, workers=-1)
+    d4 = d3[:, -1]
+    if near3 is not None:   # handed on to _isolated
+        near3.update(idx=idx, d=d3, nb=nb3)
     deep = (d4 > 1.0) & (2 * above_any.sum(axis=1) >= k2)
     # A point with company within 0.5 m (the foot of a wall, ground under a gallery) is
     # part of something, not a stray return.
@@ -605,11 +630,12 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     # judged again below against the envelope of the rest.
     # One plan-view neighbour query serves the three subsets that need one.
     plan = _PlanNeighbours(x, y)
-    low = _below_neighbours(x, y, z, ~ignore, params, plan)
+    near: dict = {}
+    low = _below_neighbours(x, y, z, ~ignore, params, plan, near)
     out[low] = LOW_NOISE
     # A return with no other return within ISOLATION_M is nobody's surface (range
     # ambiguity ghosts, birds far out); alone it would be its own envelope.
-    alone = _isolated(x, y, z, ~ignore & ~low)
+    alone = _isolated(x, y, z, ~ignore & ~low, near or None)
     out[alone] = HIGH_NOISE
     classification = out.copy()
     ignore = ignore | low | alone
