@@ -16,6 +16,9 @@ from typing import Any
 
 import pandas as pd
 
+# bound at import, before any test patches inventory.survey.measure_survey with a cache
+from inventory.survey import measure_survey as _measure_survey
+
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_site"
 TRUTH = SAMPLE / "truth.json"
 
@@ -42,13 +45,28 @@ def site() -> Any:
 
 
 @lru_cache(maxsize=None)
-def survey(date: str) -> Any:
-    """:class:`inventory.survey.SurveyResult` of one survey (no files written)."""
-    from inventory.survey import measure_survey
+def _out_root() -> Path:
+    import atexit
+    import shutil
+    import tempfile
 
+    root = Path(tempfile.mkdtemp(prefix="inventory-sample-chain-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)
+    return root
+
+
+@lru_cache(maxsize=None)
+def survey(date: str) -> Any:
+    """:class:`inventory.survey.SurveyResult` of one survey, run once per session.
+
+    Its files (surface and coverage GeoTIFFs, classified LAZ) are written to a temporary
+    folder removed at exit, so tests that need them share the one run too.
+    """
+    out = _out_root() / date
+    out.mkdir(exist_ok=True)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return measure_survey(site(), date, out_dir=None, write_classified=False)
+        return _measure_survey(site(), date, out_dir=out)
 
 
 @lru_cache(maxsize=None)

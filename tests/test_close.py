@@ -17,6 +17,7 @@ from pathlib import Path
 
 import pytest
 
+import _sample_chain
 from inventory.cli import main
 from inventory.close import STEPS, close_period
 from inventory.export.layers import read_piles_layer
@@ -60,34 +61,27 @@ def _tree(root: Path) -> dict[str, str]:
     return out
 
 
-@pytest.fixture(scope="module")
-def survey_cache(tmp_path_factory):
-    """Runs each survey once for this module; later closes copy its outputs.
+def _cached_survey(site, date, out_dir=None, progress=None, **kw):
+    """The sample site's survey from the session's one run (tests/_sample_chain.py), its files
+    copied into ``out_dir`` as the real step would write them.
 
-    The interruption tests check that a close is all-or-nothing, which does not need the
-    survey to be measured again each time.
+    The survey step itself is checked in tests/test_survey.py; here it only has to be the
+    same for every close, which also makes the closes of this module quick.
     """
-    store = tmp_path_factory.mktemp("survey-cache")
-    from inventory.survey import measure_survey as real
+    res = _sample_chain.survey(date)
+    moved = {}
+    for name in ("classified_path", "surface_path", "coverage_path"):
+        src = getattr(res, name)
+        if src is not None and out_dir is not None:
+            dst = Path(out_dir) / Path(src).name
+            shutil.copy2(src, dst)
+            moved[name] = dst
+    return dataclasses.replace(res, **moved)
 
-    cache: dict[str, object] = {}
 
-    def cached(site, date, out_dir=None, progress=None, **kw):
-        if date not in cache:
-            folder = store / date
-            folder.mkdir()
-            cache[date] = real(site, date, out_dir=folder, progress=progress, **kw)
-        res = cache[date]
-        moved = {}
-        for name in ("classified_path", "surface_path", "coverage_path"):
-            src = getattr(res, name)
-            if src is not None:
-                dst = Path(out_dir) / Path(src).name
-                shutil.copy2(src, dst)
-                moved[name] = dst
-        return dataclasses.replace(res, **moved)
-
-    return cached
+@pytest.fixture(scope="module")
+def survey_cache():
+    return _cached_survey
 
 
 @pytest.fixture(scope="module")
@@ -97,8 +91,10 @@ def closed_site(tmp_path_factory, sample_site_path):
         pytest.skip("sample_site/ has not been generated yet (inventory sample sample_site)")
     site = tmp_path_factory.mktemp("e2e") / "site"
     shutil.copytree(sample_site_path, site, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*"))
-    for period in ("2026-09", "2026-10"):
-        assert main(["close", str(site), "--period", period, "--quiet"]) == 0
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr("inventory.survey.measure_survey", _cached_survey)
+        for period in ("2026-09", "2026-10"):
+            assert main(["close", str(site), "--period", period, "--quiet"]) == 0
     return site
 
 
