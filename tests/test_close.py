@@ -177,6 +177,8 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
         with Ledger(site / "ledger.sqlite") as led:
             assert not led.is_locked("2026-10"), checkpoint
     # and after all that, the close goes through and gives the numbers of the first close
+    first_rasters = {name: (site / "closes" / "2026-10" / name).read_bytes()
+                     for name in ("thickness-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif")}
     figures = ["pile_id", "survey_t", "book_t", "variance_t", "variance_sigma_t", "closing_t"]
     with Ledger(site / "ledger.sqlite") as led:
         hist = led.history(include_superseded=True)
@@ -187,3 +189,8 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
     assert done.close_id > 0
     # a rerun on the same inputs gives the same numbers (DESIGN: reproducible close)
     assert again.to_dict("records") == first.to_dict("records")
+    # ... and the same rasters, byte for byte; the superseded close's folder is kept beside
+    for name, data in first_rasters.items():
+        assert (site / "closes" / "2026-10" / name).read_bytes() == data, name
+    kept = [p.name for p in (site / "closes").iterdir() if p.name.startswith("2026-10.superseded-")]
+    assert len(kept) == 1
