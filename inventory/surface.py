@@ -7,8 +7,9 @@ one call (the survey step feeds whole tiles whose edges fall on cell edges) and 
 when a cell comes back.
 
 Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
-the scanned cell centres (scipy ``griddata``), only where the nearest scanned cell is at
-most ``max_fill_distance_m`` away; larger gaps stay nodata and are reported.
+the scanned cell centres (what scipy ``griddata(method="linear")`` does, in grid
+coordinates), only where the nearest scanned cell is at most ``max_fill_distance_m`` away;
+larger gaps stay nodata and are reported.
 
 Rasters are written as tiled (256 x 256), DEFLATE-compressed GeoTIFFs with overviews, CRS
 and nodata, through a temporary file renamed into place.
@@ -157,7 +158,6 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     empty and are enclosed by data (not connected to the grid edge) are reported.
     """
     from scipy import ndimage
-    from scipy.interpolate import griddata
 
     g = surface.grid
     scanned = np.isfinite(surface.z) & (surface.count > 0)
@@ -170,11 +170,9 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
             # scanned cells near a target are all the triangulation needs
             reach = int(math.ceil(max_distance_m / g.cell)) + 2
             near = ndimage.binary_dilation(target, iterations=reach) & scanned
-            cx, cy = g.centers()
             if near.sum() >= 3:
                 try:
-                    zt = griddata(np.column_stack([cx[near], cy[near]]), surface.z[near],
-                                  np.column_stack([cx[target], cy[target]]), method="linear")
+                    zt = _linear_on_lattice(near, target, surface.z)
                 except Exception:  # QhullError: all source cells on one line
                     zt = np.full(int(target.sum()), np.nan)
                 ok = np.isfinite(zt)
@@ -194,6 +192,83 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     out = Surface(g, z, surface.count, surface.sd, filled, surface.date,
                   dict(surface.meta, max_fill_distance_m=max_distance_m))
     return out, FillReport(int(filled.sum()), gap_cells, gap_cells * g.cell_area, largest * g.cell_area)
+
+
+#: Triangles whose bounding box holds at most this many lattice points list them all.
+_SMALL_TRIANGLE = 64
+
+
+def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Linear interpolation of ``z`` at the ``target`` cells over a Delaunay triangulation
+    of the ``near`` cells, as ``scipy.interpolate.griddata(method="linear")``.
+
+    Cells are points of the integer lattice (column, -row). Triangulating there, not at
+    projected coordinates of 10^5-10^6 m, matters: Qhull then loses no cell as
+    "coplanar" (at site coordinates it dropped up to 40 % of them on a regular grid and
+    spent seconds on the rest). Targets are located without scipy's walk (whose set-up
+    inverts every triangle's matrix): each triangle lists the lattice points of its
+    bounding box and keeps the targets inside it by exact integer orientation tests
+    (edges included: the value on a shared edge is the same from both sides). The value
+    is the barycentric sum in the triangle found; targets outside every triangle get NaN,
+    as from griddata.
+    """
+    from scipy.spatial import Delaunay
+
+    nrow, ncol = near.shape
+    vr, vc = np.divmod(np.flatnonzero(near.ravel()), ncol)
+    tri = Delaunay(np.column_stack([vc, -vr]).astype(float))
+    simp = tri.simplices
+    u, v = vc[simp].astype(np.int64), -vr[simp].astype(np.int64)
+    area2 = (u[:, 1] - u[:, 0]) * (v[:, 2] - v[:, 0]) - (v[:, 1] - v[:, 0]) * (u[:, 2] - u[:, 0])
+    umin, umax, vmin, vmax = u.min(1), u.max(1), v.min(1), v.max(1)
+    nbox = (umax - umin + 1) * (vmax - vmin + 1)
+    found = np.full(near.shape, -1, np.int64)
+
+    def inside(t: np.ndarray, pu: np.ndarray, pv: np.ndarray) -> np.ndarray:
+        sign = np.sign(area2[t])
+        ok = sign != 0
+        for a, b in ((0, 1), (1, 2), (2, 0)):
+            ok &= ((u[t, b] - u[t, a]) * (pv - v[t, a]) - (v[t, b] - v[t, a]) * (pu - u[t, a])) * sign >= 0
+        return ok
+
+    small = np.flatnonzero(nbox <= _SMALL_TRIANGLE)
+    if len(small):
+        counts = nbox[small]
+        t = np.repeat(small, counts)
+        k = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
+        width = (umax - umin + 1)[t]
+        pu, pv = umin[t] + k % width, vmin[t] + k // width
+        keep = target[-pv, pu]
+        t, pu, pv = t[keep], pu[keep], pv[keep]
+        hit = inside(t, pu, pv)
+        found[-pv[hit], pu[hit]] = t[hit]
+    big = np.flatnonzero(nbox > _SMALL_TRIANGLE)
+    rest = np.flatnonzero((found < 0).ravel() & target.ravel())
+    if len(big) and len(rest):
+        rr, rc = np.divmod(rest, ncol)
+        step = max(1, 2_000_000 // len(big))
+        for i in range(0, len(rest), step):
+            pu = np.repeat(rc[i:i + step], len(big))
+            pv = -np.repeat(rr[i:i + step], len(big))
+            t = np.tile(big, len(rc[i:i + step]))
+            hit = inside(t, pu, pv) & (pu >= umin[t]) & (pu <= umax[t])
+            j = np.flatnonzero(hit)
+            found[-pv[j], pu[j]] = t[j]
+    s = found[target]
+    out = np.full(len(s), np.nan)
+    ok = s >= 0
+    tr, tc = np.divmod(np.flatnonzero(target.ravel()), ncol)
+    px, py = tc[ok].astype(float), -tr[ok].astype(float)
+    vx, vy = u[s[ok]].astype(float), v[s[ok]].astype(float)
+    a, b = vx[:, 0] - vx[:, 2], vx[:, 1] - vx[:, 2]
+    c, d = vy[:, 0] - vy[:, 2], vy[:, 1] - vy[:, 2]
+    det = a * d - b * c
+    dx, dy = px - vx[:, 2], py - vy[:, 2]
+    c0 = (d * dx - b * dy) / det
+    c1 = (a * dy - c * dx) / det
+    zv = z[near][simp[s[ok]]]
+    out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
+    return out
 
 
 def _overview_factors(shape: tuple[int, int]) -> list[int]:
