@@ -18,7 +18,7 @@ the memory of one yard. For each survey it prints, measured in the same run:
   grid, fill, write the GeoTIFFs and the classified LAZ), points/s and its steps;
 * their ratio (issue 8 target: at most 3, aim 2);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
-  largest Dask worker process when workers ran;
+  largest Dask process when workers ran (sampled with psutil if installed);
 * with ``--workers``: the speed-up of each worker count over the first one.
 
 Each measurement runs in a fresh child process, so that one peak does not hide the next.
@@ -47,10 +47,9 @@ DENSITY = 100.0
 PITCH_M = 120.0
 
 
-def _peak_rss_mb(who: int = resource.RUSAGE_SELF) -> float:
-    # ru_maxrss is in kilobytes on Linux (getrusage(2)); for RUSAGE_CHILDREN it is the
-    # largest descendant that has been waited for.
-    return resource.getrusage(who).ru_maxrss / 1024.0
+def _peak_rss_mb() -> float:
+    # ru_maxrss is in kilobytes on Linux (getrusage(2))
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
@@ -104,6 +103,37 @@ def _site(root: Path, files: list[Path]):
                                  surveys={DATE: ref})
 
 
+class _WorkerMemory:
+    """Peak resident memory of this process's descendants (Dask workers), sampled twice a
+    second with psutil when it is installed; 0 when it is not."""
+
+    def __init__(self) -> None:
+        import threading
+
+        self.peak_mb = 0.0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        try:
+            import psutil
+        except ImportError:
+            return
+        me = psutil.Process()
+        while not self._stop.wait(0.5):
+            for p in me.children(recursive=True):
+                try:
+                    self.peak_mb = max(self.peak_mb, p.memory_info().rss / 2**20)
+                except psutil.Error:
+                    pass
+
+    def stop(self) -> float:
+        self._stop.set()
+        self._thread.join()
+        return self.peak_mb
+
+
 def _child(args: argparse.Namespace) -> int:
     """One measurement in this (fresh) process; prints one JSON line."""
     from inventory.survey import measure_survey
@@ -124,13 +154,15 @@ def _child(args: argparse.Namespace) -> int:
         n, dt, backend = _decode(files)
         out.update(points=n, seconds=dt, backend=backend)
     else:
+        watch = _WorkerMemory()
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t0 = time.perf_counter()
             r = measure_survey(site, date, out_dir=tmp, workers=args.workers or None)
             dt = time.perf_counter() - t0
-        out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary())
-    out.update(rss_mb=_peak_rss_mb(), children_rss_mb=_peak_rss_mb(resource.RUSAGE_CHILDREN))
+        out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary(),
+                   children_rss_mb=watch.stop())
+    out.update(rss_mb=_peak_rss_mb())
     print("RESULT " + json.dumps(out), flush=True)
     return 0
 
