@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
-import math
 import shutil
 import sqlite3
 import subprocess
@@ -23,26 +22,9 @@ from inventory.close import STEPS, close_period
 from inventory.export.layers import read_piles_layer
 from inventory.ledger import Ledger
 from inventory.results import PILE_COLUMNS
+from test_export_agreement import _norm, _rows
 
 pytestmark = pytest.mark.slow
-
-_TEXT = ("pile_id", "material", "base_method", "flags")
-
-
-def _norm(col, v):
-    if v is None or (isinstance(v, float) and math.isnan(v)):
-        return None
-    if col in _TEXT:
-        return v or None
-    if col in ("significant", "out_of_tolerance"):
-        return bool(v)
-    return float(v)
-
-
-def _rows(df):
-    return [[_norm(c, v) for c, v in zip(PILE_COLUMNS, row)]
-            for row in df[PILE_COLUMNS].itertuples(index=False, name=None)]
-
 
 def _workbook_rows(path: Path, n: int):
     from openpyxl import load_workbook
