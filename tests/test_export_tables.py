@@ -32,3 +32,12 @@ def test_extra_tables_and_reason_codes_in_the_workbook(tmp_path):
     adj = wb["Adjustments"]
     texts = [c.value for row in adj.iter_rows() for c in row if isinstance(c.value, str)]
     assert "WITHIN_SIGMA" in texts and "inside the combined uncertainty" in texts
+
+
+def test_report_shows_the_survey_instant_in_site_time():
+    # 11:00 UTC on 28 January is 12:00 in Europe/Berlin (CET, UTC+1; IANA tz database)
+    from inventory.export.report import report_html
+
+    res = make_close_result("2026-01")
+    assert str(res.survey_instant) == "2026-01-28 11:00:00+00:00"
+    assert "instant 2026-01-28 12:00 CET (UTC+0100)" in report_html(res)

@@ -351,7 +351,7 @@ def report_html(result: CloseResult) -> str:
 <style>{_CSS}</style></head>
 <body>
 <h1>Stock close {esc(result.period)}: {esc(result.site_name)}</h1>
-<p class="facts">Survey {esc(result.survey_date)} (instant {esc(str(result.survey_instant))}),
+<p class="facts">Survey {esc(result.survey_date)} (instant {esc(_local_time(result))}),
 previous survey {esc(result.previous_survey_date or "none")}; CRS {esc(result.crs)};
 time zone {esc(result.timezone)}.</p>
 <p>{esc(SIGN_CONVENTION)}</p>
@@ -378,6 +378,18 @@ src="data:image/png;base64,{_bar_figure(result)}">
 <div class="caution"><ul>{cautions}</ul></div>
 </body></html>
 """
+
+
+def _local_time(result: CloseResult) -> str:
+    """The survey instant in the site's time zone, as people on site read clocks."""
+    import pandas as pd
+
+    ts = pd.Timestamp(result.survey_instant)
+    if ts.tzinfo is None:
+        ts = ts.tz_localize("UTC")
+    if result.timezone:
+        ts = ts.tz_convert(result.timezone)
+    return ts.strftime("%Y-%m-%d %H:%M %Z (UTC%z)")
 
 
 def write_report(result: CloseResult, path: str | Path) -> Path:
