@@ -127,19 +127,6 @@ class BaseModel:
         return float(np.sqrt(max(var, 0.0)))
 
 
-def parse_base(spec: str) -> tuple[str, float]:
-    """Split a pile's base column into (kind, level). Raises ValueError on a bad spec."""
-    s = str(spec).strip().lower()
-    if s in ("floor", "toe"):
-        return s, float("nan")
-    if s.startswith("level:"):
-        z = float(s.split(":", 1)[1])  # ValueError on junk, caught by the caller
-        if not np.isfinite(z):
-            raise ValueError(f"level is not a finite number: {spec!r}")
-        return "level", z
-    raise ValueError(f"base must be 'floor', 'toe' or 'level:<z>', got {spec!r}")
-
-
 def _plane_lmeds(x: np.ndarray, y: np.ndarray, z: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Least-median-of-squares plane from random triplets: the robust starting point."""
     n = len(z)

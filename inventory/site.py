@@ -861,12 +861,12 @@ class _Loader:
 
 
 def _posed_extent(bounds, row) -> tuple[float, float, float, float]:
-    from scipy.spatial.transform import Rotation
+    from .cloud.georef import rotation_matrix
 
     (x0, y0, z0), (x1, y1, z1) = bounds
     corners = np.array([[x, y, z] for x in (x0, x1) for y in (y0, y1) for z in (z0, z1)])
-    rot = Rotation.from_euler("ZYX", [row.yaw_deg, row.pitch_deg, row.roll_deg], degrees=True)
-    placed = rot.apply(corners) + np.array([row.x, row.y, row.z])
+    rot = rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg)
+    placed = corners @ rot.T + np.array([row.x, row.y, row.z])
     return (placed[:, 0].min(), placed[:, 1].min(), placed[:, 0].max(), placed[:, 1].max())
 
 

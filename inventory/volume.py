@@ -136,7 +136,8 @@ from scipy.interpolate import LinearNDInterpolator
 from scipy.spatial import Delaunay, QhullError
 from scipy.signal import fftconvolve
 
-from ._volume_base import BaseModel, bilinear, fill_nearest, parse_base, toe_base
+from ._volume_base import BaseModel, bilinear, fill_nearest, toe_base
+from .site import parse_base  # one parser of the pile register's base field, shared with the site check
 from ._volume_tin import tin_volume
 from .errors import CoverageWarning, CRSError, InputError, InputWarning
 from .grid import Grid, Surface
