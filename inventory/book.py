@@ -56,7 +56,8 @@ __all__ = [
 #: tonnes counted after the opening instant and at or before the survey instant.
 BOOK_PILE_COLUMNS = [
     "pile_id", "material", "opening_t", "opening_sigma_t", "opening_density_sigma_t",
-    "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t",
+    "opening_base_sigma_t", "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t",
+    "book_t", "book_sigma_t",
     "after_survey_net_t", "book_end_t",
 ]
 
@@ -149,10 +150,12 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     """Opening balances (with their uncertainty) from the previous close's adopted pile table.
 
     The opening is the previous closing_t. When that closing was set from a survey, the
-    survey's error is now in the book: ``sigma_t`` carries it, and ``density_sigma_t`` the part
+    survey's error is now in the book: ``sigma_t`` carries it, ``density_sigma_t`` the part
     of it due to the bulk density (volume x density sd), which is the *same* error as this
-    month's survey density error when the same table density is used - reconcile subtracts
-    the two instead of adding them. With ``adjust_to = "midpoint"`` the closing was
+    month's survey density error when the same table density is used, and ``base_sigma_t``
+    the part due to a fixed base (a surveyed floor or a level, the same surface every month:
+    the previous close's ``base_sigma_t``) - reconcile subtracts each of these from this
+    month's instead of adding them. With ``adjust_to = "midpoint"`` the closing was
     (survey + book) / 2, so half the survey error and half the book error carry over.
 
     Parameters
@@ -168,7 +171,7 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     Returns
     -------
     DataFrame
-        ``pile_id``, ``tonnes``, ``sigma_t``, ``density_sigma_t``.
+        ``pile_id``, ``tonnes``, ``sigma_t``, ``density_sigma_t``, ``base_sigma_t``.
     """
     a = pd.DataFrame(adopted).copy()
     f = 1.0 if adjust_to == "survey" else 0.5
@@ -187,6 +190,8 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     return pd.DataFrame({
         "pile_id": a["pile_id"].astype(str), "tonnes": col("closing_t"),
         "sigma_t": sigma, "density_sigma_t": np.where(surveyed, f * dens, 0.0),
+        # a ledger written before base_sigma_t was kept has NULL there: no shared part known
+        "base_sigma_t": np.where(surveyed, f * col("base_sigma_t").fillna(0.0), 0.0),
     })
 
 
@@ -272,7 +277,8 @@ def _pile_table(piles: Any) -> pd.DataFrame:
 def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd.DataFrame:
     """pile_id, tonnes, sigma_t, start (UTC or NaT) from a dict or a DataFrame."""
     if opening is None:
-        return pd.DataFrame({"pile_id": [], "tonnes": [], "sigma_t": [], "density_sigma_t": [], "start": []})
+        return pd.DataFrame({"pile_id": [], "tonnes": [], "sigma_t": [], "density_sigma_t": [], "base_sigma_t": [],
+                             "start": []})
     if isinstance(opening, Mapping):
         df = pd.DataFrame({"pile_id": [str(k) for k in opening], "tonnes": [float(v) for v in opening.values()]})
         missing = ~np.isfinite(df["tonnes"])
@@ -291,7 +297,7 @@ def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd
     df = _with_provenance(df, "opening.csv", ["pile_id", "tonnes"])
     df["pile_id"] = df["pile_id"].astype(str)
     df["tonnes"] = pd.to_numeric(df["tonnes"], errors="coerce")
-    for c in ("sigma_t", "density_sigma_t"):
+    for c in ("sigma_t", "density_sigma_t", "base_sigma_t"):
         df[c] = pd.to_numeric(df[c], errors="coerce").fillna(0.0) if c in df else 0.0
     if "as_of" in df.columns:
         df["start"] = _utc_column(df, "as_of", df["source"].iloc[0] if len(df) else "opening.csv", problems)
@@ -305,7 +311,7 @@ def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd
     dup = df["pile_id"].duplicated(keep=False)
     for r in df[dup].itertuples():
         problems.append(Problem(r.source, int(r.line), "pile_id", f"pile {r.pile_id!r} has more than one opening balance"))
-    return df[["pile_id", "tonnes", "sigma_t", "density_sigma_t", "start"]]
+    return df[["pile_id", "tonnes", "sigma_t", "density_sigma_t", "base_sigma_t", "start"]]
 
 
 # ----------------------------------------------------------------------------- checks
@@ -546,7 +552,9 @@ def book_stock(
         instant the balance holds at; records at or before it are already in it),
         ``sigma_t`` (its 1-sigma, added in quadrature) and ``density_sigma_t`` (the part of
         that sigma due to the bulk density, when the opening is an adopted survey figure; it
-        is common with this survey's density error, see :func:`opening_from_close`). Piles
+        is common with this survey's density error, see :func:`opening_from_close`) and
+        ``base_sigma_t`` (likewise the part due to a fixed base, common with this survey's
+        base error). Piles
         without one open at 0 t; a NaN in a mapping is taken as 0 t with a warning.
     at : datetime
         Survey instant (tz-aware). Records at or before it are in the book at survey.
@@ -746,6 +754,7 @@ def _pile_balances(pile_tab: pd.DataFrame, open_tab: pd.DataFrame, mov: pd.DataF
     out["opening_t"] = out["pile_id"].map(op["tonnes"]).fillna(0.0).astype(float)
     out["opening_sigma_t"] = out["pile_id"].map(op["sigma_t"]).fillna(0.0).astype(float)
     out["opening_density_sigma_t"] = out["pile_id"].map(op["density_sigma_t"]).fillna(0.0).astype(float)
+    out["opening_base_sigma_t"] = out["pile_id"].map(op["base_sigma_t"]).fillna(0.0).astype(float)
     c = mov[mov["counted"]]
     pre = c[c["before_survey"]]
 

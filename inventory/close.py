@@ -39,6 +39,11 @@ from .site import Site, load_site
 
 __all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "STEPS"]
 
+#: Months of earlier adopted closes whose belt-scale fit rows are pooled with this month's
+#: (a year: long enough to see a small persistent bias, short enough that a scale has
+#: usually been recalibrated within it; common practice is a yearly verification).
+BIAS_HISTORY_MONTHS = 12
+
 #: The named steps of a close, in order (used for timings and by the interruption tests).
 STEPS = ("load", "survey", "volumes", "book", "reconcile", "outputs", "ledger")
 
@@ -296,11 +301,14 @@ def close_period(
             if prev_period and ledger.is_locked(prev_period):
                 adopted = ledger.adopted(prev_period)
                 if len(adopted):
-                    previous = adopted[["pile_id", "material", "survey_t", "survey_sigma_t", "volume_m3",
-                                        "after_survey_net_t"]]
+                    previous = adopted[["pile_id", "material", "survey_t", "survey_sigma_t", "base_sigma_t",
+                                        "volume_m3", "after_survey_net_t"]]
+            # earlier months' belt-scale fit rows: a bias too small for one month can show
+            # over several
+            history = ledger.scale_fit_history(period, months=BIAS_HISTORY_MONTHS)
             rec = _rec.reconcile(
                 vols, book, site.materials, site.config.reconcile, previous=previous,
-                period=period, scales=site.scales,
+                history=history, period=period, scales=site.scales,
             )
             change = None
             if prev_date is not None:
@@ -328,6 +336,7 @@ def close_period(
                     "Belt split": book.belt_split,
                 },
                 reason_codes=dict(rec.reason_codes),
+                bias_rows=rec.bias_rows,
                 run={
                     "inputs": inputs,
                     "parameters": {

@@ -34,10 +34,11 @@ import pandas as pd
 from .errors import LedgerError, PeriodLockedError
 from .results import JOURNAL_COLUMNS, PILE_COLUMNS, CloseResult
 
-__all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS"]
+__all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
 
-#: Version of the table layout below; bumped on any change, checked on open.
-SCHEMA_VERSION = 1
+#: Version of the table layout below; bumped on any change, checked on open. A ledger of an
+#: older version is brought up to date on open by :data:`_MIGRATIONS`, in one transaction.
+SCHEMA_VERSION = 2
 
 _PERIOD_RE = re.compile(r"^\d{4}-(0[1-9]|1[0-2])$")
 
@@ -111,6 +112,16 @@ CREATE TABLE inputs (
     sha256   TEXT NOT NULL CHECK (length(sha256) = 64),
     PRIMARY KEY (close_id, path)
 );
+CREATE TABLE scale_fit_rows (
+    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
+    line          INTEGER NOT NULL,
+    pile_id       TEXT NOT NULL,
+    scale_id      TEXT,
+    signed_t      REAL NOT NULL,
+    variance_t    REAL,
+    noise_sigma_t REAL,
+    PRIMARY KEY (close_id, line)
+);
 CREATE TABLE reopenings (
     reopen_id    INTEGER PRIMARY KEY,
     period       TEXT NOT NULL,
@@ -146,11 +157,43 @@ CREATE TRIGGER inputs_keep BEFORE DELETE ON inputs
     BEGIN SELECT RAISE(ABORT, 'input hashes are kept forever'); END;
 CREATE TRIGGER inputs_frozen BEFORE UPDATE ON inputs
     BEGIN SELECT RAISE(ABORT, 'input hashes cannot be edited'); END;
+CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
+CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
 CREATE TRIGGER reopenings_keep BEFORE DELETE ON reopenings
     BEGIN SELECT RAISE(ABORT, 'reopenings are kept forever'); END;
 CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
     BEGIN SELECT RAISE(ABORT, 'reopenings cannot be edited'); END;
 """
+
+
+#: Schema changes, from the version a ledger has to the next one. Each runs in one
+#: transaction with the new version row, so a ledger is either migrated or untouched.
+#: 1 -> 2: ``balances.base_sigma_t`` (the fixed-base part of the survey sigma, NULL for
+#: closes made before: no shared part known) and the belt-scale fit rows of each close.
+_MIGRATIONS: dict[int, str] = {
+    1: """
+ALTER TABLE balances ADD COLUMN base_sigma_t REAL;
+CREATE TABLE scale_fit_rows (
+    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
+    line          INTEGER NOT NULL,
+    pile_id       TEXT NOT NULL,
+    scale_id      TEXT,
+    signed_t      REAL NOT NULL,
+    variance_t    REAL,
+    noise_sigma_t REAL,
+    PRIMARY KEY (close_id, line)
+);
+CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
+CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
+""",
+}
+
+#: Columns of :meth:`Ledger.scale_fit_history` (as ``inventory.reconcile.BIAS_ROW_COLUMNS``).
+SCALE_FIT_COLUMNS = ["period", "pile_id", "scale_id", "signed_t", "variance_t", "noise_sigma_t"]
 
 
 def _utc_now() -> str:
@@ -367,10 +410,37 @@ class Ledger:
                 f"({SCHEMA_VERSION}); upgrade the tool"
             )
         if version < SCHEMA_VERSION:
-            raise LedgerError(
-                f"{self.path}: ledger schema version {version} is older than this tool's "
-                f"({SCHEMA_VERSION}) and no migration exists"
-            )
+            self._migrate(int(version))
+
+    def _migrate(self, version: int) -> None:
+        """Bring a ledger of an older schema up to :data:`SCHEMA_VERSION`, one step per
+        transaction (the new version row is written in the same transaction)."""
+        con = self._db
+        while version < SCHEMA_VERSION:
+            script = _MIGRATIONS.get(version)
+            if script is None:
+                raise LedgerError(
+                    f"{self.path}: ledger schema version {version} is older than this tool's "
+                    f"({SCHEMA_VERSION}) and no migration exists"
+                )
+            try:
+                con.execute("BEGIN IMMEDIATE")
+                # another process may have migrated it since we looked
+                now = int(con.execute("SELECT MAX(version) FROM schema_version").fetchone()[0])
+                if now == version:
+                    for stmt in _split_sql(script):
+                        con.execute(stmt)
+                    con.execute("INSERT INTO schema_version (version, applied_utc) VALUES (?, ?)",
+                                (version + 1, _utc_now()))
+                con.execute("COMMIT")
+            except sqlite3.Error as err:
+                if con.in_transaction:
+                    con.execute("ROLLBACK")
+                raise LedgerError(
+                    f"{self.path}: cannot upgrade the ledger from schema version {version} to "
+                    f"{version + 1}: {err} (the file is unchanged)"
+                ) from err
+            version = int(con.execute("SELECT MAX(version) FROM schema_version").fetchone()[0])
 
     # -- queries -------------------------------------------------------------------------
     def schema_version(self) -> int:
@@ -530,6 +600,20 @@ class Ledger:
         rows = self._db.execute(sql, params).fetchall()
         return _typed(pd.DataFrame(rows, columns=HISTORY_COLUMNS))
 
+    def scale_fit_history(self, before: str, months: int = 12) -> pd.DataFrame:
+        """The belt-scale fit rows of the adopted closes of up to ``months`` periods before
+        ``before`` (``SCALE_FIT_COLUMNS``), oldest first: what reconcile pools over months."""
+        _check_period(before)
+        rows = self._db.execute(
+            "SELECT c.period, f.pile_id, f.scale_id, f.signed_t, f.variance_t, f.noise_sigma_t "
+            "FROM scale_fit_rows f JOIN closes c USING (close_id) "
+            "WHERE c.status = 'adopted' AND c.period < ? AND c.period IN "
+            "(SELECT period FROM closes WHERE status = 'adopted' AND period < ? "
+            " ORDER BY period DESC LIMIT ?) ORDER BY c.period, f.line",
+            (before, before, int(months)),
+        ).fetchall()
+        return pd.DataFrame(rows, columns=SCALE_FIT_COLUMNS)
+
     # -- writing -------------------------------------------------------------------------
     @contextmanager
     def closing(
@@ -647,6 +731,16 @@ class Ledger:
                         for i, row in enumerate(
                             journal[JOURNAL_COLUMNS].itertuples(index=False, name=None)
                         )
+                    ],
+                )
+            fit = getattr(result, "bias_rows", None)
+            if fit is not None and len(fit):
+                con.executemany(
+                    "INSERT INTO scale_fit_rows (close_id, line, pile_id, scale_id, signed_t, "
+                    "variance_t, noise_sigma_t) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [
+                        (close_id, i + 1, *(_to_sql(v) for v in row))
+                        for i, row in enumerate(fit[SCALE_FIT_COLUMNS[1:]].itertuples(index=False, name=None))
                     ],
                 )
             for path, digest in sorted((str(p), str(d)) for p, d in inputs.items()):

@@ -9,7 +9,9 @@ Per pile p, with survey tonnes S and its 1-sigma s_S, book tonnes B and its 1-si
 
 * variance v = S - B, variance % = 100 v / B (undefined when B <= 0);
 * sigma of the variance s_v = sqrt(s_S^2 + s_B^2) - survey and book come from independent
-  measurements;
+  measurements - except for the errors an opening that was an earlier survey shares with
+  this survey: the table bulk density and a fixed base (a surveyed floor raster or a level).
+  Each of those enters once, as (this survey's part - the opening's part);
 * *significant* when |v| > k s_v (k = ``significance_k``, 2 by default: about 95 % for a
   normal error);
 * *out of tolerance* when |v| > tol% x |B| (the material's ``tolerance_pct``, else the site
@@ -20,11 +22,13 @@ Per pile p, with survey tonnes S and its 1-sigma s_S, book tonnes B and its 1-si
 
 Scale diagnostics: a belt scale reading a fraction b high inflates the book of every pile it
 fed by b x T (T = tonnes it delivered, negative for a reclaim belt), so v_p = -sum_s b_s T_ps
-+ e_p. The biases b are estimated by weighted least squares over piles (and over earlier
-months when their rows are given), weights 1 / (the pile's variance sigma without the belt
-scales' own class terms)^2, with outlier piles (standardised residual > :data:`REJECT_Z`)
-left out one at a time. A scale is named when |b| > k sigma_b and |b| exceeds its in-service
-MPE.
++ e_p. The biases b are estimated by weighted least squares over this month's piles, and
+again over earlier months pooled with this one when their rows are given (``history``, kept
+by the ledger), weights 1 / (the pile's variance sigma without the belt scales' own class
+terms)^2, with outlier piles (standardised residual > :data:`REJECT_Z`) left out one at a
+time. A scale is named when either fit gives |b| > k sigma_b and |b| beyond its in-service
+MPE: this month's fit catches a scale that went wrong this month, the pooled fit a small bias
+that has been there all along.
 """
 
 from __future__ import annotations
@@ -89,6 +93,10 @@ CHANGE_COLUMNS = [
 #: Rows kept for scale diagnostics of later months (one per pile and belt scale; a pile fed
 #: by no belt has scale_id None so it still counts in the fit).
 BIAS_ROW_COLUMNS = ["period", "pile_id", "scale_id", "signed_t", "variance_t", "noise_sigma_t"]
+
+#: Bases that are the same surface in every survey (a surveyed floor raster, a level): their
+#: error is common to this survey and to an opening that was an earlier survey.
+FIXED_BASES = ("floor", "level")
 
 #: A pile whose residual in the bias fit exceeds this many of its own sigmas is left out of the
 #: fit (an unrecorded transfer or a wrong density there must not be read as a scale bias).
@@ -223,7 +231,9 @@ def reconcile(
         ``after_survey_net_t`` (tonnes booked between that survey and this period's opening;
         0 when the opening is the previous survey itself).
     history : DataFrame, optional
-        :data:`BIAS_ROW_COLUMNS` rows of earlier months, pooled into the scale-bias fit.
+        :data:`BIAS_ROW_COLUMNS` rows of earlier months (``Ledger.scale_fit_history``): a
+        second scale-bias fit pools them with this month's, reported beside this month's
+        own (``history_bias_pct``).
     period : str
         Label of this month for ``bias_rows``.
     scales : mapping, optional
@@ -253,10 +263,13 @@ def reconcile(
     surveyed = S.notna()
     p["variance_t"] = S - B
     p["variance_pct"] = np.where(B > 0, 100.0 * p["variance_t"] / B.where(B > 0), np.nan)
-    if "opening_density_sigma_t" not in p:
-        p["opening_density_sigma_t"] = 0.0
-    p["opening_density_sigma_t"] = p["opening_density_sigma_t"].astype(float).fillna(0.0)
+    for c in ("opening_density_sigma_t", "opening_base_sigma_t"):
+        if c not in p:
+            p[c] = 0.0
+        p[c] = p[c].astype(float).fillna(0.0)
     p["_d_survey"] = _density_part(p, info)
+    p["_g_survey"] = _base_part(p)
+    p["base_sigma_t"] = p["_g_survey"].where(surveyed)
     p["variance_sigma_t"] = _variance_sigma(p, p["book_sigma_t"])
     p["significant"] = surveyed & (p["variance_t"].abs() > k * p["variance_sigma_t"])
     tol = p["material"].map(lambda m: _num(info.get(m, {}).get("tolerance_pct")))
@@ -324,16 +337,54 @@ def _density_part(df: pd.DataFrame, info: dict) -> pd.Series:
     return np.minimum(d.fillna(0.0).abs(), sigma)
 
 
-def _variance_sigma(p: pd.DataFrame, book_sigma: pd.Series) -> pd.Series:
-    """sigma of survey - book, with the density error shared by survey and opening.
+def _base_part(df: pd.DataFrame) -> pd.Series:
+    """The part of each survey sigma due to a fixed base, tonnes (0 for a toe base).
 
-    When the opening is an adopted survey figure, the same table density erred in both: its
-    part enters as (d_survey - d_opening) instead of in quadrature twice. Everything else
-    (volume errors, scale errors, the rest of the opening) is independent.
+    A surveyed floor raster or a level is the same surface in every survey, so its error
+    (``sigma_base_m3`` of :func:`inventory.volume.measure_piles`, the floor survey's stated
+    sigma over the footprint) is the same error in this survey and in an opening that was
+    an earlier survey: it cancels in the variance instead of adding twice. A toe plane is
+    fitted anew to each survey's ring and counts as independent. Taken from a
+    ``base_sigma_t`` column when the table has one, else ``sigma_base_m3`` x ``density_t_m3``
+    for the bases in :data:`FIXED_BASES`; never more than the survey sigma.
     """
-    s_ind = np.clip(p["survey_sigma_t"].astype(float).fillna(0.0) ** 2 - p["_d_survey"] ** 2, 0.0, None)
-    b_ind = np.clip(book_sigma ** 2 - p["opening_density_sigma_t"] ** 2, 0.0, None)
-    return np.sqrt(s_ind + b_ind + (p["_d_survey"] - p["opening_density_sigma_t"]) ** 2)
+    sigma = df["survey_sigma_t"].astype(float).fillna(0.0) if "survey_sigma_t" in df else pd.Series(0.0, index=df.index)
+    if "base_sigma_t" in df:
+        g = pd.to_numeric(df["base_sigma_t"], errors="coerce")
+    elif {"sigma_base_m3", "base_method", "density_t_m3"} <= set(df.columns):
+        fixed = df["base_method"].astype(str).str.split(":").str[0].isin(FIXED_BASES)
+        g = (pd.to_numeric(df["sigma_base_m3"], errors="coerce")
+             * pd.to_numeric(df["density_t_m3"], errors="coerce")).where(fixed, 0.0)
+    else:
+        g = pd.Series(0.0, index=df.index)
+    return np.minimum(g.fillna(0.0).abs(), sigma)
+
+
+def _shared_sigma(sigma_a: pd.Series, sigma_b: pd.Series, parts: list[tuple[pd.Series, pd.Series]]) -> pd.Series:
+    """sigma of a - b when ``parts`` [(part in a, part in b), ...] are one error in both.
+
+    Each shared error enters as (part_a - part_b); the rest of each sigma is independent.
+    """
+    a_ind = sigma_a.astype(float).fillna(0.0) ** 2
+    b_ind = sigma_b.astype(float).fillna(0.0) ** 2
+    common = 0.0
+    for pa, pb in parts:
+        a_ind = a_ind - pa ** 2
+        b_ind = b_ind - pb ** 2
+        common = common + (pa - pb) ** 2
+    return np.sqrt(np.clip(a_ind, 0.0, None) + np.clip(b_ind, 0.0, None) + common)
+
+
+def _variance_sigma(p: pd.DataFrame, book_sigma: pd.Series) -> pd.Series:
+    """sigma of survey - book, with the density and fixed-base errors shared by survey and opening.
+
+    When the opening is an adopted survey figure, the same table density erred in both, and
+    a floor raster or level base is the same surface in both: each part enters as (this
+    survey's - the opening's) instead of in quadrature twice. Everything else (volume
+    errors, scale errors, the rest of the opening) is independent.
+    """
+    return _shared_sigma(p["survey_sigma_t"], book_sigma, [
+        (p["_d_survey"], p["opening_density_sigma_t"]), (p["_g_survey"], p["opening_base_sigma_t"])])
 
 
 def _noise_sigma(p: pd.DataFrame, book: BookResult) -> pd.Series:
@@ -348,7 +399,15 @@ def _scale_diagnostics(
     p: pd.DataFrame, book: BookResult, scales: Mapping[str, Any] | None, history: pd.DataFrame | None,
     k: float, period: str,
 ) -> tuple[pd.DataFrame, pd.Series, pd.DataFrame]:
-    """Weighted least-squares belt-scale biases; fitted variance per pile; this month's rows."""
+    """Weighted least-squares belt-scale biases; fitted variance per pile; this month's rows.
+
+    Two fits per scale: this month's piles alone (a scale that went wrong this month), and,
+    when ``history`` has rows of earlier months, those pooled with this month's (a bias too
+    small to see in one month but there all along). A scale is named when either fit finds a
+    bias beyond k sigma and beyond its in-service MPE with at least :data:`MIN_PILE_MONTHS`
+    pile-months behind it. The pooled fit assumes one constant bias over the months pooled,
+    so a scale that changed this month shows in this month's fit first.
+    """
     sl = book.scale_load
     belts = sl[sl["kind"] == "belt"]
     noise = _noise_sigma(p, book)
@@ -363,60 +422,19 @@ def _scale_diagnostics(
             rows.append({"period": period, "pile_id": pid, "scale_id": r.scale_id, "signed_t": r.signed_t,
                          "variance_t": v, "noise_sigma_t": s})
     now = pd.DataFrame(rows, columns=BIAS_ROW_COLUMNS)
-    pooled = now if history is None or len(history) == 0 else pd.concat([pd.DataFrame(history)[BIAS_ROW_COLUMNS], now], ignore_index=True)
     fitted = pd.Series(0.0, index=p.index)
-    scale_ids = sorted(x for x in pooled["scale_id"].dropna().unique())
+    past = pd.DataFrame(columns=BIAS_ROW_COLUMNS)
+    if history is not None and len(history):
+        past = pd.DataFrame(history)[BIAS_ROW_COLUMNS]
+        past = past[past["period"].astype(str) != str(period)]
+    scale_ids = sorted(x for x in now["scale_id"].dropna().unique())
     if not scale_ids:
         return pd.DataFrame(columns=SCALE_COLUMNS), fitted, now
-
-    # design: one row per (period, pile), one column per belt scale; v = X b, X = -T
-    pooled = pooled.assign(period=pooled["period"].astype(str))
-    keys = pooled[["period", "pile_id"]].drop_duplicates().reset_index(drop=True)
-    key_index = {kk: i for i, kk in enumerate(zip(keys["period"], keys["pile_id"]))}
-    X = np.zeros((len(keys), len(scale_ids)))
-    v = np.zeros(len(keys))
-    sig = np.zeros(len(keys))
-    for r in pooled.itertuples():
-        i = key_index[(r.period, r.pile_id)]
-        v[i], sig[i] = r.variance_t, max(float(r.noise_sigma_t), _SIGMA_FLOOR_T)
-        if r.scale_id is not None and not pd.isna(r.scale_id):
-            X[i, scale_ids.index(r.scale_id)] -= r.signed_t
-    use = np.isfinite(v)
-    excluded: list[int] = []
-    protected: set[int] = set()
-    # Leave out gross outliers one at a time (worst first), judged against their stated
-    # sigma; never more than half the rows, never a row whose scale would be left with no
-    # data, and keep at least 2 degrees of freedom for the fit's own sigma.
-    max_reject = int(use.sum()) // 2
-    while True:
-        b, cov, resid = _wls(X[use], v[use], sig[use])
-        z = np.zeros(len(v))
-        z[use] = np.abs(resid) / sig[use]
-        z[list(protected)] = 0.0
-        worst = int(np.argmax(z))
-        dof_after = int(use.sum()) - 1 - np.linalg.matrix_rank(X[use]) if use.any() else 0
-        if z[worst] <= REJECT_Z or len(excluded) >= max_reject or dof_after < 2:
-            break
-        trial = use.copy()
-        trial[worst] = False
-        if np.any(np.all(X[trial] == 0, axis=0) & np.any(X[use] != 0, axis=0)):
-            protected.add(worst)
-            continue
-        use = trial
-        excluded.append(worst)
+    month = _bias_fit(now, scale_ids)
+    pooled = _bias_fit(pd.concat([past, now], ignore_index=True), scale_ids) if len(past) else None
 
     out = []
-    this_period = keys["period"] == str(period)
     for j, sid in enumerate(scale_ids):
-        col = X[:, j] != 0
-        piles_fed = sorted(set(keys.loc[col & this_period.to_numpy(), "pile_id"]))
-        tonnes = float(np.abs(X[col & this_period.to_numpy(), j]).sum())
-        # b is the book's inflation per recorded tonne; a scale reading (1 + beta) x the true
-        # mass inflates it by beta / (1 + beta) per recorded tonne, so beta = b / (1 - b).
-        fb = float(b[j])
-        sfb = float(np.sqrt(cov[j, j])) if np.isfinite(cov[j, j]) else float("nan")
-        bj = fb / (1.0 - fb)
-        sj = sfb / (1.0 - fb) ** 2
         mpe = float("nan")
         s_obj = (scales or {}).get(sid)
         if s_obj is not None:
@@ -424,39 +442,132 @@ def _scale_diagnostics(
                 mpe = belt_mpe_fraction(_get(s_obj, "accuracy_class"), bool(_get(s_obj, "in_service", True)))
             except ValueError:
                 mpe = float("nan")
-        significant = np.isfinite(sj) and abs(bj) > k * sj
-        beyond = np.isfinite(mpe) and abs(bj) > mpe
-        n_used = int(col[use].sum())
-        flagged = bool(significant and beyond and n_used >= MIN_PILE_MONTHS)
-        months = keys.loc[col, "period"].nunique()
-        basis = f"{n_used} pile-month(s)" + (f" over {months} months" if months > 1 else "")
+        m = month.scale(j, k, mpe)
+        piles_fed, tonnes = m["piles"], m["tonnes"]
         same_sign = _same_sign_note(p, piles_fed)
-        excluded_here = [i for i in excluded if X[i, j] != 0]
-        if n_used < MIN_PILE_MONTHS:
-            why = (f"only {n_used} pile-month(s) left once outliers were set aside" if excluded_here
-                   else "it fed one pile this month and there is no history")
-            msg = (f"belt scale {sid}: {why}; {100 * bj:+.2f} % cannot be told from an error on that pile")
-        elif flagged:
-            msg = (f"belt scale {sid} appears to read {100 * bj:+.2f} % (+/- {100 * sj:.2f} %), beyond its "
-                   f"in-service MPE of {100 * mpe:.2f} %: have it checked and recalibrated ({basis}; {same_sign})")
-        elif significant:
-            msg = (f"belt scale {sid} reads {100 * bj:+.2f} % (+/- {100 * sj:.2f} %), significant but within "
-                   f"its MPE of {100 * mpe:.2f} % ({basis})")
+        if m["n_used"] < MIN_PILE_MONTHS:
+            why = (f"only {m['n_used']} pile-month(s) left once outliers were set aside" if m["excluded"]
+                   else "it fed one pile this month")
+            msg = (f"belt scale {sid}: {why}; {100 * m['beta']:+.2f} % this month cannot be told from an "
+                   "error on that pile")
+        elif m["flagged"]:
+            msg = (f"belt scale {sid} appears to read {100 * m['beta']:+.2f} % (+/- {100 * m['sigma']:.2f} %) "
+                   f"this month, beyond its in-service MPE of {100 * mpe:.2f} %: have it checked and "
+                   f"recalibrated ({m['n_used']} pile(s); {same_sign})")
+        elif m["significant"]:
+            msg = (f"belt scale {sid} reads {100 * m['beta']:+.2f} % (+/- {100 * m['sigma']:.2f} %) this month, "
+                   f"significant but within its MPE of {100 * mpe:.2f} % ({m['n_used']} pile(s))")
         else:
-            msg = f"no significant bias on belt scale {sid}: {100 * bj:+.2f} % (+/- {100 * sj:.2f} %) ({basis})"
-        if excluded_here:
-            left_out = sorted({f"{keys.loc[i, 'pile_id']}" + (f" ({keys.loc[i, 'period']})" if months > 1 else "")
-                               for i in excluded_here})
-            msg += "; set aside as outliers: " + ", ".join(left_out)
-        out.append({"scale_id": sid, "piles": ",".join(piles_fed), "tonnes": tonnes, "bias_pct": 100 * bj,
-                    "bias_sigma_pct": 100 * sj, "flagged": flagged, "message": msg})
-        if flagged:
-            # the part of this month's variance the flagged scale explains
-            rows_now = np.where(this_period.to_numpy())[0]
-            for i in rows_now:
-                if X[i, j] != 0:
-                    fitted[p.index[p["pile_id"] == keys.loc[i, "pile_id"]]] += X[i, j] * fb
+            msg = (f"no significant bias on belt scale {sid} this month: {100 * m['beta']:+.2f} % "
+                   f"(+/- {100 * m['sigma']:.2f} %) ({m['n_used']} pile(s))")
+        if m["excluded"]:
+            msg += "; set aside as outliers: " + ", ".join(m["excluded"])
+        h = pooled.scale(j, k, mpe) if pooled is not None else None
+        flagged = m["flagged"]
+        if h is not None and h["months"] > 1:
+            basis = f"{h['n_used']} pile-month(s) over {h['months']} months"
+            if h["flagged"] and not m["flagged"]:
+                msg += (f". Over the last {h['months']} months it appears to read {100 * h['beta']:+.2f} % "
+                        f"(+/- {100 * h['sigma']:.2f} %), beyond its in-service MPE of {100 * mpe:.2f} %: "
+                        f"have it checked and recalibrated ({basis})")
+            else:
+                msg += (f". Over the last {h['months']} months: {100 * h['beta']:+.2f} % "
+                        f"(+/- {100 * h['sigma']:.2f} %) ({basis})")
+            if h["excluded"]:
+                msg += "; set aside as outliers: " + ", ".join(h["excluded"])
+            flagged = flagged or h["flagged"]
+        out.append({"scale_id": sid, "piles": ",".join(piles_fed), "tonnes": tonnes, "bias_pct": 100 * m["beta"],
+                    "bias_sigma_pct": 100 * m["sigma"],
+                    "history_bias_pct": 100 * h["beta"] if h is not None and h["months"] > 1 else np.nan,
+                    "history_bias_sigma_pct": 100 * h["sigma"] if h is not None and h["months"] > 1 else np.nan,
+                    "history_months": h["months"] if h is not None else 1,
+                    "flagged": bool(flagged), "message": msg})
+        # the part of this month's variance the named scale explains: this month's estimate
+        # when this month names it, else the pooled one
+        use = m if m["flagged"] else (h if h is not None and h["flagged"] else None)
+        if use is not None:
+            for pid, x in month.rows_now(j):
+                fitted[p.index[p["pile_id"] == pid]] += x * use["b"]
     return pd.DataFrame(out, columns=SCALE_COLUMNS), fitted, now
+
+
+class _BiasFit:
+    """One weighted least-squares fit of belt-scale biases over (period, pile) rows.
+
+    Design: one row per (period, pile), one column per belt scale; v = X b with X = -T (the
+    signed tonnes each scale put on the pile's book). Gross outliers (standardised residual
+    > :data:`REJECT_Z`) are left out one at a time, worst first; never more than half the
+    rows, never a row whose scale would be left with no data, and at least 2 degrees of
+    freedom are kept for the fit's own sigma.
+    """
+
+    def __init__(self, rows: pd.DataFrame, scale_ids: list[str]) -> None:
+        rows = rows.assign(period=rows["period"].astype(str))
+        keys = rows[["period", "pile_id"]].drop_duplicates().reset_index(drop=True)
+        key_index = {kk: i for i, kk in enumerate(zip(keys["period"], keys["pile_id"]))}
+        X = np.zeros((len(keys), len(scale_ids)))
+        v = np.zeros(len(keys))
+        sig = np.zeros(len(keys))
+        for r in rows.itertuples():
+            i = key_index[(r.period, r.pile_id)]
+            v[i], sig[i] = r.variance_t, max(float(r.noise_sigma_t), _SIGMA_FLOOR_T)
+            if r.scale_id is not None and not pd.isna(r.scale_id) and r.scale_id in scale_ids:
+                X[i, scale_ids.index(r.scale_id)] -= r.signed_t
+        use = np.isfinite(v)
+        excluded: list[int] = []
+        protected: set[int] = set()
+        max_reject = int(use.sum()) // 2
+        while True:
+            b, cov, resid = _wls(X[use], v[use], sig[use])
+            z = np.zeros(len(v))
+            z[use] = np.abs(resid) / sig[use]
+            z[list(protected)] = 0.0
+            worst = int(np.argmax(z))
+            dof_after = int(use.sum()) - 1 - np.linalg.matrix_rank(X[use]) if use.any() else 0
+            if z[worst] <= REJECT_Z or len(excluded) >= max_reject or dof_after < 2:
+                break
+            trial = use.copy()
+            trial[worst] = False
+            if np.any(np.all(X[trial] == 0, axis=0) & np.any(X[use] != 0, axis=0)):
+                protected.add(worst)
+                continue
+            use = trial
+            excluded.append(worst)
+        self.keys, self.X, self.b, self.cov, self.use, self.excluded = keys, X, b, cov, use, excluded
+        self.last = str(rows["period"].iloc[-1]) if len(rows) else ""
+
+    def scale(self, j: int, k: float, mpe: float) -> dict:
+        """Estimate of scale column ``j``: b (book inflation per recorded tonne), beta (the
+        scale's reading error, beta = b / (1 - b): a scale reading (1 + beta) x the true mass
+        inflates the book by beta / (1 + beta) per recorded tonne), their sigmas, and whether
+        it is named."""
+        col = self.X[:, j] != 0
+        now = (self.keys["period"] == self.last).to_numpy()
+        fb = float(self.b[j])
+        sfb = float(np.sqrt(self.cov[j, j])) if np.isfinite(self.cov[j, j]) else float("nan")
+        beta, sigma = fb / (1.0 - fb), sfb / (1.0 - fb) ** 2
+        n_used = int(col[self.use].sum())
+        significant = bool(np.isfinite(sigma) and abs(beta) > k * sigma)
+        beyond = bool(np.isfinite(mpe) and abs(beta) > mpe)
+        months = int(self.keys.loc[col, "period"].nunique())
+        excl = [i for i in self.excluded if self.X[i, j] != 0]
+        return {
+            "b": fb, "beta": beta, "sigma": sigma, "n_used": n_used, "months": months,
+            "significant": significant, "flagged": bool(significant and beyond and n_used >= MIN_PILE_MONTHS),
+            "piles": sorted(set(self.keys.loc[col & now, "pile_id"])),
+            "tonnes": float(np.abs(self.X[col & now, j]).sum()),
+            "excluded": sorted({str(self.keys.loc[i, "pile_id"]) + (f" ({self.keys.loc[i, 'period']})" if months > 1 else "")
+                                for i in excl}),
+        }
+
+    def rows_now(self, j: int) -> list[tuple[str, float]]:
+        """(pile, X) of the latest period's rows that scale ``j`` fed."""
+        now = (self.keys["period"] == self.last).to_numpy()
+        return [(str(self.keys.loc[i, "pile_id"]), float(self.X[i, j])) for i in np.where(now & (self.X[:, j] != 0))[0]]
+
+
+def _bias_fit(rows: pd.DataFrame, scale_ids: list[str]) -> _BiasFit:
+    return _BiasFit(rows, scale_ids)
 
 
 def _same_sign_note(p: pd.DataFrame, piles_fed: list[str]) -> str:
@@ -559,14 +670,16 @@ def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, facto
         sv = g[g["survey_t"].notna()]
         sigma_S = sv["survey_sigma_t"].astype(float).fillna(0.0)
         d_S, d_O = sv["_d_survey"], sv["opening_density_sigma_t"]
-        s_ind = float(np.clip(sigma_S ** 2 - d_S ** 2, 0.0, None).sum())
+        g_S, g_O = sv["_g_survey"], sv["opening_base_sigma_t"]
+        s_ind = float(np.clip(sigma_S ** 2 - d_S ** 2 - g_S ** 2, 0.0, None).sum())
         # density: one error for all piles of the material, in this survey and in any opening
-        # that was an adopted survey
-        s_survey = float(np.sqrt(s_ind + d_S.sum() ** 2))
+        # that was an adopted survey; a fixed base: one error per pile, in both
+        s_survey = float(np.sqrt(s_ind + (g_S ** 2).sum() + d_S.sum() ** 2))
         per_scale = sl[sl["pile_id"].isin(sv["pile_id"])].groupby("scale_id")["sigma_t"].sum()
-        o_ind = float(np.clip(sv["opening_sigma_t"] ** 2 - d_O ** 2, 0.0, None).sum())
-        s_book = float(np.sqrt((per_scale ** 2).sum() + o_ind + d_O.sum() ** 2))
-        s_v_val = float(np.sqrt(s_ind + (per_scale ** 2).sum() + o_ind + (d_S.sum() - d_O.sum()) ** 2))
+        o_ind = float(np.clip(sv["opening_sigma_t"] ** 2 - d_O ** 2 - g_O ** 2, 0.0, None).sum())
+        s_book = float(np.sqrt((per_scale ** 2).sum() + o_ind + (g_O ** 2).sum() + d_O.sum() ** 2))
+        s_v_val = float(np.sqrt(s_ind + (per_scale ** 2).sum() + o_ind + ((g_S - g_O) ** 2).sum()
+                                + (d_S.sum() - d_O.sum()) ** 2))
         S, Bk = float(sv["survey_t"].sum()), float(sv["book_t"].sum())
         v = S - Bk
         s_v = s_v_val
@@ -598,16 +711,17 @@ def _change(p: pd.DataFrame, previous: pd.DataFrame, k: float, info: dict) -> pd
     prev["material"] = prev["pile_id"].map(dict(zip(p["pile_id"], p["material"])))
     prev["survey_sigma_t"] = prev["previous_sigma_t"]
     prev["previous_d_t"] = _density_part(prev, info)
-    m = p.merge(prev[["pile_id", "previous_survey_t", "previous_sigma_t", "previous_after_t", "previous_d_t"]],
-                on="pile_id", how="inner")
+    prev["previous_g_t"] = _base_part(prev)
+    m = p.merge(prev[["pile_id", "previous_survey_t", "previous_sigma_t", "previous_after_t", "previous_d_t",
+                      "previous_g_t"]], on="pile_id", how="inner")
     m["measured_change_t"] = m["survey_t"] - m["previous_survey_t"]
     m["net_movement_t"] = m["previous_after_t"].fillna(0.0) + (m["book_t"] - m["opening_t"])
     m["difference_t"] = m["measured_change_t"] - m["net_movement_t"]
     movement_var = np.clip(m["book_sigma_t"] ** 2 - m["opening_sigma_t"] ** 2, 0.0, None)
-    # the table density erred alike in both surveys: its parts subtract
-    now_ind = np.clip(m["survey_sigma_t"].astype(float).fillna(0.0) ** 2 - m["_d_survey"] ** 2, 0.0, None)
-    prev_ind = np.clip(m["previous_sigma_t"].astype(float).fillna(0.0) ** 2 - m["previous_d_t"] ** 2, 0.0, None)
-    m["difference_sigma_t"] = np.sqrt(now_ind + prev_ind + (m["_d_survey"] - m["previous_d_t"]) ** 2 + movement_var)
+    # the table density and a fixed base erred alike in both surveys: their parts subtract
+    surveys = _shared_sigma(m["survey_sigma_t"], m["previous_sigma_t"],
+                            [(m["_d_survey"], m["previous_d_t"]), (m["_g_survey"], m["previous_g_t"])])
+    m["difference_sigma_t"] = np.sqrt(surveys ** 2 + movement_var)
     m["significant"] = m["difference_t"].abs() > k * m["difference_sigma_t"]
     gap = m["variance_t"] - m["difference_t"]
     m["opening_gap_t"] = gap.where(gap.abs() > 1e-9, 0.0)  # rounding dust when opening = previous survey

@@ -22,7 +22,7 @@ __all__ = ["PILE_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS
 PILE_COLUMNS = [
     "pile_id", "material", "base_method", "area_m2", "scanned_fraction",
     "volume_m3", "volume_sigma_m3", "volume_tin_m3", "below_base_m3",
-    "density_t_m3", "survey_t", "survey_dry_t", "survey_sigma_t",
+    "density_t_m3", "survey_t", "survey_dry_t", "survey_sigma_t", "base_sigma_t",
     "opening_t", "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t",
     "book_t", "book_sigma_t",
     "variance_t", "variance_pct", "variance_sigma_t", "significant", "tolerance_pct",
@@ -48,7 +48,8 @@ MOVEMENT_COLUMNS = [
 JOURNAL_COLUMNS = ["pile_id", "material", "adjustment_t", "reason_code", "reason"]
 
 #: Columns of ``CloseResult.scale_diagnostics``.
-SCALE_COLUMNS = ["scale_id", "piles", "tonnes", "bias_pct", "bias_sigma_pct", "flagged", "message"]
+SCALE_COLUMNS = ["scale_id", "piles", "tonnes", "bias_pct", "bias_sigma_pct", "history_bias_pct",
+                 "history_bias_sigma_pct", "history_months", "flagged", "message"]
 
 
 @dataclass
@@ -80,3 +81,6 @@ class CloseResult:
     tables: dict = field(default_factory=dict)
     #: Reason codes of the adjustment journal: code -> what it means.
     reason_codes: dict = field(default_factory=dict)
+    #: This month's rows of the belt-scale bias fit (``inventory.reconcile.BIAS_ROW_COLUMNS``),
+    #: kept by the ledger so that later months can pool them; None = none to keep.
+    bias_rows: Any = None

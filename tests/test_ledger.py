@@ -339,3 +339,82 @@ def test_period_format_is_checked(ledger_path):
         res.period = "2026-13"
         with pytest.raises(LedgerError, match="YYYY-MM"):
             led.record_close(res, INPUTS, "0.1.0")
+
+
+def _as_version_1(path) -> None:
+    """Turn a ledger into the layout of schema version 1 (before base_sigma_t and the scale
+    fit rows), as a file written by the first release would be."""
+    con = sqlite3.connect(path)
+    con.executescript(
+        "DROP TRIGGER scale_fit_rows_keep; DROP TRIGGER scale_fit_rows_frozen; DROP TABLE scale_fit_rows;"
+        "ALTER TABLE balances DROP COLUMN base_sigma_t; UPDATE schema_version SET version = 1;"
+    )
+    con.commit()
+    con.close()
+
+
+def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(ledger_path):
+    res = make_close_result("2026-01")
+    with Ledger(ledger_path) as led:
+        led.record_close(res, INPUTS, "0.1.0")
+    _as_version_1(ledger_path)
+    before = [r for r in _dump(ledger_path) if r.startswith("INSERT INTO \"balances\"")]
+    with Ledger(ledger_path) as led:
+        assert led.schema_version() == SCHEMA_VERSION == 2
+        back = led.adopted("2026-01")
+        # the old close reads back with every figure; the new column is unknown for it
+        _same_frame(res.piles, back, [c for c in PILE_COLUMNS if c != "base_sigma_t"])
+        assert back["base_sigma_t"].isna().all()
+        assert led.scale_fit_history("2026-02").empty
+        # and the next close keeps its scale fit rows
+        nxt = make_close_result("2026-02")
+        nxt.bias_rows = pd.DataFrame({"period": ["2026-02"], "pile_id": ["P1"], "scale_id": ["BC1"],
+                                      "signed_t": [1200.0], "variance_t": [-15.0], "noise_sigma_t": [9.0]})
+        led.record_close(nxt, INPUTS, "0.2.0")
+        hist = led.scale_fit_history("2026-03")
+    assert hist.values.tolist() == [["2026-02", "P1", "BC1", 1200.0, -15.0, 9.0]]
+    # the old rows are still there, one more column at the end (NULL)
+    after = [r for r in _dump(ledger_path) if r.startswith("INSERT INTO \"balances\"")]
+    assert [a.replace(",NULL)", ")") for a in after[: len(before)]] == before
+
+
+def test_upgrade_that_cannot_write_leaves_the_file_unchanged(ledger_path, tmp_path):
+    with Ledger(ledger_path) as led:
+        led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
+    _as_version_1(ledger_path)
+    before = _dump(ledger_path)
+    # an existing table of the new layout's name makes the upgrade fail half-way
+    con = sqlite3.connect(ledger_path)
+    con.execute("CREATE TABLE scale_fit_rows (x)")
+    con.commit()
+    con.close()
+    with pytest.raises(LedgerError, match="cannot upgrade the ledger from schema version 1 to 2"):
+        Ledger(ledger_path).open()
+    con = sqlite3.connect(ledger_path)
+    con.execute("DROP TABLE scale_fit_rows")
+    con.commit()
+    con.close()
+    assert _dump(ledger_path) == before
+
+
+def test_scale_fit_history_takes_adopted_closes_of_the_months_before(ledger_path):
+    def close(period, variance):
+        r = make_close_result(period)
+        r.bias_rows = pd.DataFrame({"period": [period], "pile_id": ["P1"], "scale_id": ["BC1"],
+                                    "signed_t": [1000.0], "variance_t": [variance], "noise_sigma_t": [5.0]})
+        return r
+
+    with Ledger(ledger_path) as led:
+        for i, period in enumerate(("2026-01", "2026-02", "2026-03")):
+            led.record_close(close(period, float(i)), INPUTS, "0.2.0")
+        led.reopen("2026-03", "density corrected")
+        led.record_close(close("2026-03", 9.0), INPUTS, "0.2.0")
+        every = led.scale_fit_history("2026-04")
+        last_two = led.scale_fit_history("2026-04", months=2)
+        before_march = led.scale_fit_history("2026-03")
+        with pytest.raises(sqlite3.DatabaseError, match="cannot be edited"):
+            led._db.execute("UPDATE scale_fit_rows SET variance_t = 0")
+    # the superseded March close (variance 2) is not pooled; its replacement (9) is
+    assert every[["period", "variance_t"]].values.tolist() == [["2026-01", 0.0], ["2026-02", 1.0], ["2026-03", 9.0]]
+    assert last_two["period"].tolist() == ["2026-02", "2026-03"]
+    assert before_march["period"].tolist() == ["2026-01", "2026-02"]

@@ -247,10 +247,42 @@ def test_history_over_months_makes_a_bias_nameable():
     pooled = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10", history=history)
     d = pooled.scale_diagnostics.iloc[0]
     b = 0.015 / 1.015
-    assert d.bias_sigma_pct == pytest.approx(0.5 / (1 - b) ** 2, rel=1e-9)
-    assert d.flagged and "over 4 months" in d.message
+    # this month's own figure is unchanged; the pooled one sits beside it
+    assert d.bias_pct == pytest.approx(1.5, abs=1e-9) and d.bias_sigma_pct == alone.scale_diagnostics.iloc[0].bias_sigma_pct
+    assert d.history_bias_pct == pytest.approx(1.5, abs=1e-9) and d.history_months == 4
+    assert d.history_bias_sigma_pct == pytest.approx(0.5 / (1 - b) ** 2, rel=1e-9)
+    assert d.flagged and "Over the last 4 months it appears to read +1.50 %" in d.message
+    assert "4 pile-month(s) over 4 months" in d.message
+    p = pooled.piles.set_index("pile_id")
+    assert p.loc["P1", "reason_code"] == "SCALE_BIAS"
     # this month's rows come back for the next close
     assert pooled.bias_rows[["pile_id", "scale_id", "signed_t"]].values.tolist() == [["P1", "B1", 2000.0]]
+
+
+def test_a_bias_new_this_month_is_named_from_this_month_not_diluted_by_history():
+    # B1 read true for three months (variances 0 +/- 20 t on 2000 t), then 2 % high this month on
+    # two piles of 2000 t each, noise 20 t: this month alone b = 0.02/1.02, sigma
+    # 20 / sqrt(2 x 2000^2) = 0.707 % -> 2.83 sigma, beyond MPE 1 %: named from this month.
+    # Pooled over the four months it would read about 1 %: reported beside it, not instead.
+    T_ = {"P1": 2000.0, "P2": 2000.0}
+    book = book_from({"P1": 4000.0, "P2": 4000.0}, belt_t=T_)
+    v = _planted(0.02, T_)
+    sv = survey_of({p: 6000.0 + v[p] for p in T_}, 20.0)
+    history = pd.DataFrame({
+        "period": [m for m in ("2026-07", "2026-08", "2026-09") for _ in T_], "pile_id": list(T_) * 3,
+        "scale_id": ["B1"] * 6, "signed_t": [2000.0] * 6, "variance_t": [0.0] * 6, "noise_sigma_t": [20.0] * 6,
+    })
+    r = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10", history=history)
+    d = r.scale_diagnostics.iloc[0]
+    b = 0.02 / 1.02
+    assert d.bias_pct == pytest.approx(2.0, abs=1e-9)
+    assert d.bias_sigma_pct == pytest.approx(100 * 20 / math.sqrt(2 * 2000.0 ** 2) / (1 - b) ** 2, rel=1e-9)
+    # pooled: b_pooled = sum T(-v) / sum T^2 = (2 x 2000 x 2000 b) / (8 x 2000^2) = b / 4
+    bp = b / 4
+    assert d.history_bias_pct == pytest.approx(100 * bp / (1 - bp), rel=1e-9)
+    assert d.flagged and "appears to read +2.00 %" in d.message and "this month" in d.message
+    p = r.piles.set_index("pile_id")
+    assert (p.loc[["P1", "P2"], "reason_code"] == "SCALE_BIAS").all()
 
 
 def test_birge_ratio_inflates_sigma_when_scatter_exceeds_stated_sigmas():
@@ -291,6 +323,38 @@ def test_density_error_shared_with_an_adopted_opening_is_not_counted_twice():
     # midpoint: half the survey error and half the book error carried over
     mid = opening_from_close(adopted, mats, "midpoint").iloc[0]
     assert mid.sigma_t == pytest.approx(math.hypot(25.0, 4.5)) and mid.density_sigma_t == pytest.approx(20.0)
+
+
+def test_floor_base_error_shared_with_an_adopted_opening_cancels():
+    # Previous close adopted its survey of a pile on a surveyed floor: 1000 t at 1.0 t/m3,
+    # survey sigma 50 t = sqrt(40^2 density + 20^2 floor + 22.36^2 rest). The floor raster's
+    # error (20 t) is the same surface next month. This month 1100 m3: density 44 t, floor
+    # 21 t (material over slightly more of the floor), rest 30 t. Book adds 100 t on B1
+    # (sigma 1/sqrt3). Variance sigma = sqrt(30^2 + 22.36^2 + 1/3 + (44-40)^2 + (21-20)^2).
+    # A toe base is fitted anew each survey: nothing shared, 21 t enters twice in quadrature.
+    mats = {"coal": NS(tolerance_pct=3.0, density_sd_t_m3=0.04)}
+    rest_prev = math.sqrt(50.0 ** 2 - 40.0 ** 2 - 20.0 ** 2)
+    adopted = pd.DataFrame({"pile_id": ["A"], "material": ["coal"], "closing_t": [1000.0], "survey_t": [1000.0],
+                            "survey_sigma_t": [50.0], "base_sigma_t": [20.0], "book_sigma_t": [9.0],
+                            "volume_m3": [1000.0]})
+    opening = opening_from_close(adopted, mats, "survey")
+    assert opening[["sigma_t", "density_sigma_t", "base_sigma_t"]].values.tolist() == [[50.0, 40.0, 20.0]]
+    rows = [{"scale_id": "B1", "start": T("2026-10-02T00:00Z"), "end": T("2026-10-02T01:00Z"), "tonnes": 100.0}]
+    routes = [{"scale_id": "B1", "pile_id": "A", "start": T("2026-10-01T00:00Z"), "end": T("2026-11-01T00:00Z")}]
+    book = book_stock(NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)), opening, AT, SCALES,
+                      pd.DataFrame({"pile_id": ["A"], "material": ["coal"]}), END, START)
+    assert book.piles.iloc[0].opening_base_sigma_t == 20.0
+    sigma_now = math.sqrt(30.0 ** 2 + 44.0 ** 2 + 21.0 ** 2)
+    common = dict(volume_m3={"A": 1100.0}, sigma_base_m3={"A": 21.0}, density_t_m3={"A": 1.0})
+    floor = reconcile(survey_of({"A": 1100.0}, sigma_now, base_method={"A": "floor"}, **common), book, mats)
+    expected = math.sqrt(30.0 ** 2 + rest_prev ** 2 + 1 / 3 + 4.0 ** 2 + 1.0 ** 2)
+    assert floor.piles.iloc[0].variance_sigma_t == pytest.approx(expected, rel=1e-9)
+    assert floor.piles.iloc[0].base_sigma_t == pytest.approx(21.0)
+    toe = reconcile(survey_of({"A": 1100.0}, sigma_now, base_method={"A": "toe"}, **common), book, mats)
+    # the toe survey's 21 t is independent; the opening's floor part (20 t) then has no partner
+    expected_toe = math.sqrt(30.0 ** 2 + 21.0 ** 2 + rest_prev ** 2 + 20.0 ** 2 + 1 / 3 + 4.0 ** 2)
+    assert toe.piles.iloc[0].variance_sigma_t == pytest.approx(expected_toe, rel=1e-9)
+    assert toe.piles.iloc[0].base_sigma_t == 0.0
 
 
 def test_missing_ledger_opening_opens_empty_with_a_warning():

@@ -80,9 +80,10 @@ def _close_both(site, survey) -> dict:
         warnings.simplefilter("ignore")
         b10 = book_stock(site.movements_for("2026-10"), opening, site.surveys["2026-10-31"].instant,
                          site.scales, piles, e10, s10, duplicate_window_min=cfg.duplicate_window_min)
-    previous = r9.piles[["pile_id", "survey_t", "survey_sigma_t", "after_survey_net_t", "volume_m3"]]
-    r10 = reconcile(survey(1), b10, site.materials, cfg, previous=previous, period="2026-10",
-                    scales=site.scales)
+    previous = r9.piles[["pile_id", "survey_t", "survey_sigma_t", "base_sigma_t", "after_survey_net_t", "volume_m3"]]
+    # as close_period does: September's belt-scale fit rows are October's history
+    r10 = reconcile(survey(1), b10, site.materials, cfg, previous=previous, history=r9.bias_rows,
+                    period="2026-10", scales=site.scales)
     out["2026-10"] = (b10, r10)
     return out
 
@@ -219,16 +220,6 @@ def test_belt_scale_bias_is_estimated(closes, truth):
 
 
 @slow
-@pytest.mark.xfail(
-    strict=True,
-    reason="BC2's +1.5 % is estimated (+1.57 %) but its sigma is 1.07 % from two piles in one month "
-    "(variance sigma L1 87 t, L2 53 t: both surveys' volume sigmas plus book noise, 22 and 28 t): "
-    "1.5 sigma, below k = 2. The floor raster's 0.03 m (17-20 m3 of each floor pile's volume sigma) "
-    "is the same in both surveys and cancels in the change, but reconcile treats the two surveys' "
-    "sigmas as independent (only density is shared); sharing sigma_base_m3 like density would give "
-    "about 0.77 % (2.0 sigma, borderline). L1's October sigma is 50 m3 of interpolation over a 4.9 m "
-    "shadow (82 % scanned).",
-)
 def test_belt_scale_bias_is_named(closes, truth):
     fault = truth["faults"]["belt_bias"]
     _, rec = closes["2026-10"]

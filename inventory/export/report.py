@@ -321,10 +321,13 @@ def report_html(result: CloseResult) -> str:
                        esc(", ".join(map(str, r.piles)) if isinstance(r.piles, (list, tuple))
                            else str(r.piles)),
                        _num(r.tonnes), _num(r.bias_pct, signed=True), _num(r.bias_sigma_pct),
+                       _num(getattr(r, "history_bias_pct", float("nan")), signed=True),
+                       _num(getattr(r, "history_bias_sigma_pct", float("nan"))),
+                       _num(getattr(r, "history_months", float("nan"))),
                        _num(_flag(r.flagged)), esc(str(r.message or ""))]
                       for r in sd.itertuples(index=False)]
-        scales = _table(["scale", "piles", "tonnes weighed", "shared bias (%)", "sigma (%)",
-                         "flagged", "message"], scale_rows,
+        scales = _table(["scale", "piles", "tonnes weighed", "bias this month (%)", "sigma (%)",
+                         "bias over months (%)", "sigma (%)", "months", "flagged", "message"], scale_rows,
                         ["oot" if _flag(r.flagged) else "" for r in sd.itertuples(index=False)])
     else:
         scales = "<p>No scale diagnostics for this period.</p>"

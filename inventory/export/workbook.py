@@ -445,8 +445,10 @@ def _scales_sheet(wb, result: CloseResult) -> None:
         sd["piles"] = sd["piles"].map(
             lambda v: ", ".join(map(str, v)) if isinstance(v, (list, tuple, set, np.ndarray))
             else v)
-    _table(ws, sd, SCALE_COLUMNS, formats={"bias_pct": _FMT_PCT_SIGNED,
-                                           "bias_sigma_pct": _FMT_PCT})
+    _table(ws, sd, SCALE_COLUMNS, formats={"bias_pct": _FMT_PCT_SIGNED, "bias_sigma_pct": _FMT_PCT,
+                                           "history_bias_pct": _FMT_PCT_SIGNED,
+                                           "history_bias_sigma_pct": _FMT_PCT,
+                                           "history_months": _FMT_INT})
     _mark_rows(ws, 2, 1 + len(sd), len(SCALE_COLUMNS), SCALE_COLUMNS.index("flagged") + 1, None)
     _fit_columns(ws)
 
