@@ -141,6 +141,7 @@ from .site import parse_base  # one parser of the pile register's base field, sh
 from ._volume_tin import tin_volume
 from .errors import CoverageWarning, CRSError, InputError, InputWarning
 from .grid import Grid, Surface
+from .surface import lone_patches
 
 __all__ = [
     "BaseSurfaces",
@@ -511,20 +512,25 @@ def _prepare(
             if ground.any() and g.intersects(shapely.box(*sub.bounds)):
                 ground &= _window_weights(g, grid, rows, cols) <= 0
         z = np.where(ground, bz, z)
-        z = _fill_gaps(z, inside)
+        z = _fill_gaps(z, inside, lone_patches(scanned))
     return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags)
 
 
-def _fill_gaps(z: np.ndarray, inside: np.ndarray) -> np.ndarray:
-    """Fill NaN cells of a window by linear interpolation (nearest beyond the hull)."""
-    ok = np.isfinite(z)
+def _fill_gaps(z: np.ndarray, inside: np.ndarray, lone: np.ndarray | None = None) -> np.ndarray:
+    """Fill NaN cells of a window by linear interpolation (nearest beyond the hull).
+
+    ``lone`` cells (lone scanned patches, :func:`inventory.surface.lone_patches`) keep
+    their value but are not corners of the interpolation, as in the survey's hole filling.
+    """
+    known = np.isfinite(z)
+    ok = known & ~lone if lone is not None else known
     out = z.copy()
     # Only known cells next to a gap can be corners of the triangles that cover it (a
     # Delaunay triangle stays Delaunay when far points are dropped); fewer points keep
     # Qhull fast.
     near = ok & ndimage.binary_dilation(~ok, structure=np.ones((3, 3)), iterations=2)
     rr, cc = np.nonzero(near)
-    mr, mc = np.nonzero(~ok)
+    mr, mc = np.nonzero(~known)
     if len(rr) >= 3:
         try:
             # A regular lattice is Qhull's degenerate case (every square is cocircular):
@@ -533,7 +539,7 @@ def _fill_gaps(z: np.ndarray, inside: np.ndarray) -> np.ndarray:
             out[mr, mc] = LinearNDInterpolator(tri, z[near])(np.column_stack([mr, mc]).astype(float))
         except QhullError:
             pass  # collinear known cells: nearest below
-    return np.where(inside | ok, fill_nearest(out), out)
+    return np.where(inside | known, fill_nearest(out), out)
 
 
 def _plane_on(model: BaseModel, sub: Grid) -> np.ndarray:
