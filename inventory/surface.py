@@ -6,10 +6,16 @@ statistic is ``mean`` or ``max`` for any chunking; ``median`` needs every point 
 one call (the survey step feeds whole tiles whose edges fall on cell edges) and says so
 when a cell comes back.
 
+Object returns (not surface, not noise) may be fed too (:meth:`SurfaceAccumulator.add_objects`):
+a cell whose surface points an object return of the same cell reaches down to is taken
+as covered by the object (surface points on a wall top or a vehicle roof) and comes back
+empty, to be filled like any unscanned cell.
+
 Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
 the scanned cell centres (what scipy ``griddata(method="linear")`` does, in grid
 coordinates), only where the nearest scanned cell is at most ``max_fill_distance_m`` away;
-larger gaps stay nodata and are reported.
+larger gaps stay nodata and are reported. Lone patches of one to three scanned cells
+(:func:`lone_patches`) keep their value but do not seed the fill.
 
 Rasters are written as tiled (256 x 256), DEFLATE-compressed GeoTIFFs with overviews, CRS
 and nodata, through a temporary file renamed into place.

@@ -86,7 +86,8 @@ Terms are independent and added in quadrature,
    The pile is flagged ``low_scan`` when less than 80 % of it was scanned.
 
    Gaps the survey left empty are interpolated here (linear over a Delaunay triangulation
-   of the surrounding cells). Footprints enclose their piles, so empty cells at least
+   of the surrounding cells; lone scanned patches, :func:`inventory.surface.lone_patches`,
+   are not corners, as in the survey's hole filling). Footprints enclose their piles, so empty cells at least
    1 m outside every footprint are taken as floor at the pile's base before
    interpolating: a shadow that runs off the back of a pile is closed at the toe
    instead of being extrapolated.
