@@ -61,6 +61,9 @@ TILE = 256
 #: unclassified beside surface points of the same cell also empties it (a filled cell
 #: then), while a gallery or a boom metres above the ground does not.
 OBJECT_CLEARANCE_M = 0.5
+#: Largest patch of surface cells taken as the top of an object: a road vehicle's plan
+#: area, 2.55 m x 16.5 m (EU Directive 96/53/EC maximum width and articulated length).
+OBJECT_TOP_MAX_M2 = 2.55 * 16.5
 #: Scanned patches of at most this many cells, touching no other scanned cell, are not
 #: used to fill the gap around them (:func:`lone_patches`).
 LONE_PATCH_CELLS = 3
@@ -91,6 +94,7 @@ class SurfaceAccumulator:
         self._s2 = np.zeros(n)          # sum of (z - z0)^2
         self._stat = np.full(n, np.nan) # max or median (mean comes from the sums)
         self._top = np.full(n, -np.inf) # highest surface point of each cell
+        self._bottom = np.full(n, np.inf)  # lowest surface point of each cell
         self._low_object = np.full(n, np.inf)  # lowest object return of each cell (add_objects)
         self._z0: float | None = None   # reference height; keeps the sums well conditioned
         self.outside = 0
@@ -128,6 +132,7 @@ class SurfaceAccumulator:
         self._s1 += np.bincount(k, dz, minlength=size)
         self._s2 += np.bincount(k, dz * dz, minlength=size)
         np.maximum.at(self._top, k, z)
+        np.minimum.at(self._bottom, k, z)
         return int(inside.sum())
 
     def add_objects(self, x: np.ndarray, y: np.ndarray, z: np.ndarray) -> int:
@@ -145,17 +150,46 @@ class SurfaceAccumulator:
         return int(inside.sum())
 
     def object_cells(self) -> np.ndarray:
-        """Cells with surface points that an object return of the same cell reaches down to.
+        """Cells whose surface points lie on an object, by the object returns around them.
 
-        A laser return cannot come from below an opaque ground surface, so a non-surface
-        return lower than, or less than :data:`OBJECT_CLEARANCE_M` above, the highest
-        surface point of its cell means those "surface" points lie on the object (single
-        returns on a wall top, a vehicle roof, a machine) or right at its foot, where
-        the classifier's split is least reliable. Overhead structure well above the ground
-        (a gallery, a stacker boom) leaves the cell alone. Boolean (nrows, ncols).
+        A laser return cannot come from below an opaque ground surface. So:
+
+        * a cell with an object return lower than, or less than :data:`OBJECT_CLEARANCE_M`
+          above, its highest surface point holds "surface" points on the object (single
+          returns on a wall top, a vehicle roof) or right at its foot, where the
+          classifier's split is least reliable;
+        * a patch of scanned cells cut off from the rest of the surface (8-neighbours; the
+          cells above removed first), of at most :data:`OBJECT_TOP_MAX_M2`, with object
+          returns in the cells around it more than :data:`OBJECT_CLEARANCE_M` below its
+          lowest surface point, is the top of the object those returns come from (the
+          roof of a loader whose sides were scanned down to the ground).
+
+        Overhead structure well above the ground (a gallery, a stacker boom) leaves the
+        cells under it alone. Boolean (nrows, ncols); all False when no object return was
+        added.
         """
-        hit = (self._n > 0) & (self._low_object < self._top + OBJECT_CLEARANCE_M)
-        return hit.reshape(self.grid.shape)
+        from scipy import ndimage
+
+        shape = self.grid.shape
+        has = self._n.reshape(shape) > 0
+        low = self._low_object.reshape(shape)
+        covered = has & (low < self._top.reshape(shape) + OBJECT_CLEARANCE_M)
+        if not np.isfinite(low).any():
+            return covered
+        labels, n = ndimage.label(has & ~covered, structure=np.ones((3, 3), bool))
+        if n == 0:
+            return covered
+        ids = np.arange(1, n + 1)
+        sizes = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+        small = ids[sizes * self.grid.cell_area <= OBJECT_TOP_MAX_M2]
+        if small.size:
+            around = ndimage.minimum_filter(low, size=3, mode="constant", cval=np.inf)
+            bottom = ndimage.minimum(self._bottom.reshape(shape), labels, small)
+            below = ndimage.minimum(around, labels, small)
+            on_top = small[np.asarray(below) < np.asarray(bottom) - OBJECT_CLEARANCE_M]
+            if on_top.size:
+                covered |= np.isin(labels, on_top)
+        return covered
 
     def result(self, date: str = "") -> Surface:
         """The surface so far (no hole filling).
