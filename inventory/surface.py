@@ -6,10 +6,14 @@ statistic is ``mean`` or ``max`` for any chunking; ``median`` needs every point 
 one call (the survey step feeds whole tiles whose edges fall on cell edges) and says so
 when a cell comes back.
 
-Object returns (not surface, not noise) may be fed too (:meth:`SurfaceAccumulator.add_objects`):
-a cell whose surface points an object return of the same cell reaches down to is taken
-as covered by the object (surface points on a wall top or a vehicle roof) and comes back
-empty, to be filled like any unscanned cell.
+Object returns (not surface, not noise) may be fed too (:meth:`SurfaceAccumulator.add_objects`).
+Surface points on an object (a classifier's slip: single returns on a wall top, a vehicle
+roof) are then recognised by the object returns beside or below them
+(:meth:`SurfaceAccumulator.object_cells`) and their cells come back empty, to be filled
+like any unscanned cell. On the sample site (survey 2026-10-31) this removed every
+loader-roof and 90 % of the wall-top "surface" points the classifier let through, and with
+:func:`lone_patches` took FE1 from +3.4 % to +0.4 % of its true volume and S1 from -2.5 %
+to -0.8 %.
 
 Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
 the scanned cell centres (what scipy ``griddata(method="linear")`` does, in grid

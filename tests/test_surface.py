@@ -170,6 +170,41 @@ def test_object_returns_empty_the_cells_they_stand_in():
     assert a.meta["object_cells"] == on_wall.sum() * g.nrows
 
 
+def test_surface_patch_on_an_object_is_emptied():
+    # A loader (4 m x 2.5 m, roof 3 m up) on a pad whose shadow hides the pad around it:
+    # its roof returns were called surface, its sides object. The roof is a patch cut off
+    # from the pad with object returns 3 m below it: emptied. A patch of real pad seen
+    # between two such machines, level with the objects' feet, stays.
+    rng = np.random.default_rng(5)
+    g = Grid(0.0, 20.0, 0.5, 40, 40)
+    x, y = rng.random(40000) * 20, rng.random(40000) * 20
+    shadow = (x > 4) & (x < 10) & (y > 4) & (y < 10)
+    roof = (x > 5) & (x < 9) & (y > 6) & (y < 8.5)
+    patch = (x > 14) & (x < 15) & (y > 14) & (y < 15)
+    keep = ~shadow & ~((x > 12) & (x < 17) & (y > 12) & (y < 17)) | patch
+    z = np.zeros_like(x)
+    sx = np.r_[rng.random(400) * 4 + 5, np.full(200, 5.01), np.full(200, 8.99)]
+    sy = np.r_[np.full(400, 6.01), rng.random(400) * 2.5 + 6]
+    sz = rng.random(800) * 3.0
+    rx, ry = rng.random(300) * 4 + 5, rng.random(300) * 2.5 + 6
+    mx = np.r_[np.full(200, 13.9), np.full(200, 15.1)]                # two machines' sides
+    my, mz = rng.random(400) * 1 + 14, rng.random(400) * 2.5
+    acc = SurfaceAccumulator(g, "mean")
+    acc.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
+    acc.add_objects(np.r_[sx, mx], np.r_[sy, my], np.r_[sz, mz])
+    s = acc.result()
+    cx, cy = g.centers()
+    on_roof = (cx > 5.25) & (cx < 8.75) & (cy > 6.25) & (cy < 8.25)
+    assert (s.count[on_roof] == 0).all()
+    assert np.nanmax(s.z) < 0.01                       # nothing of the roof is left
+    in_patch = (cx > 14.25) & (cx < 14.75) & (cy > 14.25) & (cy < 14.75)
+    assert (s.count[in_patch] > 0).all()
+    # without object returns the roof stays (the classifier's word is all there is)
+    acc2 = SurfaceAccumulator(g, "mean")
+    acc2.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
+    assert (acc2.result().count[on_roof] > 0).all() and not acc2.object_cells().any()
+
+
 def test_geotiff_round_trip(tmp_path):
     x, y, z = _cloud()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
