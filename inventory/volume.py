@@ -87,9 +87,9 @@ Terms are independent and added in quadrature,
 
    Gaps the survey left empty are interpolated here (linear over a Delaunay triangulation
    of the surrounding cells; lone scanned patches, :func:`inventory.surface.lone_patches`,
-   are not corners, as in the survey's hole filling). Footprints enclose their piles, so empty cells at least
-   1 m outside every footprint are taken as floor at the pile's base before
-   interpolating: a shadow that runs off the back of a pile is closed at the toe
+   are not corners, as in the survey's hole filling). Footprints enclose their piles, so
+   empty cells at least 1 m outside every footprint are taken as floor at the pile's base
+   before interpolating: a shadow that runs off the back of a pile is closed at the toe
    instead of being extrapolated.
 4. Base: ``level`` 0; ``floor`` :math:`A_+\sigma_f`, the floor survey's error taken as
    fully correlated over the pile (Anderson 2019, systematic term); ``toe``
