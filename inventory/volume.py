@@ -86,9 +86,10 @@ Terms are independent and added in quadrature,
    The pile is flagged ``low_scan`` when less than 80 % of it was scanned.
 
    Gaps the survey left empty are interpolated here (linear over a Delaunay triangulation
-   of the surrounding cells). Footprints enclose their piles, so empty cells at least
-   1 m outside every footprint are taken as floor at the pile's base before
-   interpolating: a shadow that runs off the back of a pile is closed at the toe
+   of the surrounding cells; lone scanned patches, :func:`inventory.surface.lone_patches`,
+   are not corners, as in the survey's hole filling). Footprints enclose their piles, so
+   empty cells at least 1 m outside every footprint are taken as floor at the pile's base
+   before interpolating: a shadow that runs off the back of a pile is closed at the toe
    instead of being extrapolated.
 4. Base: ``level`` 0; ``floor`` :math:`A_+\sigma_f`, the floor survey's error taken as
    fully correlated over the pile (Anderson 2019, systematic term); ``toe``
@@ -141,6 +142,7 @@ from .site import parse_base  # one parser of the pile register's base field, sh
 from ._volume_tin import tin_volume
 from .errors import CoverageWarning, CRSError, InputError, InputWarning
 from .grid import Grid, Surface
+from .surface import lone_patches
 
 __all__ = [
     "BaseSurfaces",
@@ -511,20 +513,25 @@ def _prepare(
             if ground.any() and g.intersects(shapely.box(*sub.bounds)):
                 ground &= _window_weights(g, grid, rows, cols) <= 0
         z = np.where(ground, bz, z)
-        z = _fill_gaps(z, inside)
+        z = _fill_gaps(z, inside, lone_patches(scanned))
     return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags)
 
 
-def _fill_gaps(z: np.ndarray, inside: np.ndarray) -> np.ndarray:
-    """Fill NaN cells of a window by linear interpolation (nearest beyond the hull)."""
-    ok = np.isfinite(z)
+def _fill_gaps(z: np.ndarray, inside: np.ndarray, lone: np.ndarray | None = None) -> np.ndarray:
+    """Fill NaN cells of a window by linear interpolation (nearest beyond the hull).
+
+    ``lone`` cells (lone scanned patches, :func:`inventory.surface.lone_patches`) keep
+    their value but are not corners of the interpolation, as in the survey's hole filling.
+    """
+    known = np.isfinite(z)
+    ok = known & ~lone if lone is not None else known
     out = z.copy()
     # Only known cells next to a gap can be corners of the triangles that cover it (a
     # Delaunay triangle stays Delaunay when far points are dropped); fewer points keep
     # Qhull fast.
     near = ok & ndimage.binary_dilation(~ok, structure=np.ones((3, 3)), iterations=2)
     rr, cc = np.nonzero(near)
-    mr, mc = np.nonzero(~ok)
+    mr, mc = np.nonzero(~known)
     if len(rr) >= 3:
         try:
             # A regular lattice is Qhull's degenerate case (every square is cocircular):
@@ -533,7 +540,7 @@ def _fill_gaps(z: np.ndarray, inside: np.ndarray) -> np.ndarray:
             out[mr, mc] = LinearNDInterpolator(tri, z[near])(np.column_stack([mr, mc]).astype(float))
         except QhullError:
             pass  # collinear known cells: nearest below
-    return np.where(inside | ok, fill_nearest(out), out)
+    return np.where(inside | known, fill_nearest(out), out)
 
 
 def _plane_on(model: BaseModel, sub: Grid) -> np.ndarray:

@@ -108,6 +108,103 @@ def test_large_gap_left_empty_and_reported():
     np.testing.assert_allclose(filled.z[filled.filled], z[filled.filled], atol=1e-9)
 
 
+def test_lone_patch_does_not_seed_the_fill():
+    # A return the classifier let through (dust 2 m above a pad) in the middle of a gap:
+    # the gap is filled from its rim (a plane, so exactly), the lone cell keeps its own
+    # value. Without the rule the triangulation would make a cone of it.
+    from inventory.grid import Surface
+    from inventory.surface import lone_patches
+
+    g, cx, cy, z, count = _plane_with_hole()
+    hole = np.hypot(cx - 20, cy - 20) < 2.5
+    dust = (np.abs(cx - 20) < 0.5) & (np.abs(cy - 20.25) < 0.25)     # two cells
+    zz = np.where(hole & ~dust, np.nan, np.where(dust, z + 2.0, z))
+    cc = np.where(hole & ~dust, 0, count)
+    s = Surface(g, zz, cc, np.full(g.shape, np.nan), np.zeros(g.shape, bool))
+    assert (lone_patches(cc > 0) == dust).all()
+    filled, rep = fill_holes(s, 3.0)
+    gap = hole & ~dust
+    assert filled.filled[gap].all() and rep.filled_cells == gap.sum()
+    np.testing.assert_allclose(filled.z[gap], z[gap], atol=1e-9)
+    np.testing.assert_allclose(filled.z[dust], z[dust] + 2.0)
+    # A scan line of cells (a chain, however sparse its neighbours) is data, not a lone patch.
+    line = np.zeros(g.shape, bool)
+    line[10, 5:15] = True
+    assert not lone_patches(line).any()
+
+
+def test_object_returns_empty_the_cells_they_stand_in():
+    # A wall 0.5 m wide and 4 m tall on a flat pad: its top returns were called surface,
+    # its face returns were not (the single-return case of issue 4). The wall-top cells
+    # hold object returns below their surface points, so they come back empty; the pad
+    # beside the wall and the ground under a gallery 6 m up keep their cells, and feeding
+    # the objects before or after the surface points gives the same result.
+    rng = np.random.default_rng(3)
+    g = Grid(0.0, 10.0, 0.5, 20, 20)
+    n = 8000
+    x, y = rng.random(n) * 10, rng.random(n) * 10
+    wall = (x >= 4.0) & (x < 4.5)
+    z = np.where(wall, 4.0, 0.0) + rng.normal(0, 0.005, n)
+    fx = np.where(rng.random(600) < 0.5, 4.0 + 1e-6, 4.5 - 1e-6)     # both faces of the wall
+    fy, fz = rng.random(600) * 10, rng.random(600) * 4.0
+    gx, gy = 7.0 + rng.random(300) * 1.0, rng.random(300) * 10        # gallery, 6 m up
+    gz = 6.0 + rng.random(300) * 2.0
+    ox, oy, oz = np.r_[fx, gx], np.r_[fy, gy], np.r_[fz, gz]
+    results = []
+    for objects_first in (True, False):
+        acc = SurfaceAccumulator(g, "mean")
+        if objects_first:
+            acc.add_objects(ox, oy, oz)
+        acc.add(x, y, z)
+        if not objects_first:
+            acc.add_objects(ox, oy, oz)
+        results.append(acc.result())
+    a, b = results
+    np.testing.assert_array_equal(a.count, b.count)
+    np.testing.assert_array_equal(a.z, b.z)
+    cols = np.arange(g.ncols) * 0.5 + 0.25
+    on_wall = (cols > 4.0) & (cols < 4.5)
+    assert (a.count[:, on_wall] == 0).all() and np.isnan(a.z[:, on_wall]).all()
+    assert (a.count[:, ~on_wall] > 0).all()
+    assert np.nanmax(np.abs(a.z[:, ~on_wall])) < 0.05
+    assert a.meta["object_cells"] == on_wall.sum() * g.nrows
+
+
+def test_surface_patch_on_an_object_is_emptied():
+    # A loader (4 m x 2.5 m, roof 3 m up) on a pad whose shadow hides the pad around it:
+    # its roof returns were called surface, its sides object. The roof is a patch cut off
+    # from the pad with object returns 3 m below it: emptied. A patch of real pad seen
+    # between two such machines, level with the objects' feet, stays.
+    rng = np.random.default_rng(5)
+    g = Grid(0.0, 20.0, 0.5, 40, 40)
+    x, y = rng.random(40000) * 20, rng.random(40000) * 20
+    shadow = (x > 4) & (x < 10) & (y > 4) & (y < 10)
+    roof = (x > 5) & (x < 9) & (y > 6) & (y < 8.5)
+    patch = (x > 14) & (x < 15) & (y > 14) & (y < 15)
+    keep = ~shadow & ~((x > 12) & (x < 17) & (y > 12) & (y < 17)) | patch
+    z = np.zeros_like(x)
+    sx = np.r_[rng.random(400) * 4 + 5, np.full(200, 5.01), np.full(200, 8.99)]
+    sy = np.r_[np.full(400, 6.01), rng.random(400) * 2.5 + 6]
+    sz = rng.random(800) * 3.0
+    rx, ry = rng.random(300) * 4 + 5, rng.random(300) * 2.5 + 6
+    mx = np.r_[np.full(200, 13.9), np.full(200, 15.1)]                # two machines' sides
+    my, mz = rng.random(400) * 1 + 14, rng.random(400) * 2.5
+    acc = SurfaceAccumulator(g, "mean")
+    acc.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
+    acc.add_objects(np.r_[sx, mx], np.r_[sy, my], np.r_[sz, mz])
+    s = acc.result()
+    cx, cy = g.centers()
+    on_roof = (cx > 5.25) & (cx < 8.75) & (cy > 6.25) & (cy < 8.25)
+    assert (s.count[on_roof] == 0).all()
+    assert np.nanmax(s.z) < 0.01                       # nothing of the roof is left
+    in_patch = (cx > 14.25) & (cx < 14.75) & (cy > 14.25) & (cy < 14.75)
+    assert (s.count[in_patch] > 0).all()
+    # without object returns the roof stays (the classifier's word is all there is)
+    acc2 = SurfaceAccumulator(g, "mean")
+    acc2.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
+    assert (acc2.result().count[on_roof] > 0).all() and not acc2.object_cells().any()
+
+
 def test_geotiff_round_trip(tmp_path):
     x, y, z = _cloud()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")

@@ -226,12 +226,12 @@ def test_sample_site_interval_covers_truth():
 @pytest.mark.slow
 @pytest.mark.xfail(
     strict=True,
-    reason="demo site v4: at 2026-10-31 FE1 is 3.4 % high (79 % scanned; its reclaim face and the "
-    "loader's shadow are interpolated across, and its scanned cells there are 0.14 m rms off the true "
-    "surface) and S1 2.5 % low (the survey fills the unscanned strip along the bay's west wall by "
-    "interpolating across the removed wall down to the pad); the other 12 pile-surveys are within "
-    "1 %, and all 14 lie inside their 95 % intervals (z = +1.40 and -1.74). Remove this marker when "
-    "every pile of 1,000 m3 or more is within 1 %.",
+    reason="needs the survey step to feed object returns to SurfaceAccumulator.add_objects "
+    "(inventory/survey.py, issue 8's file): without them, at 2026-10-31 S1 is 2.5 % low (single "
+    "returns on the bay's wall tops called surface, and the strip along its west wall filled across "
+    "the wall from the pad) and FE1 1.25 % high (its loader's roof called surface and filled around). "
+    "With them every pile of 1,000 m3 or more was within 1 % (largest S1 -0.84 %, FE1 +0.41 %) and "
+    "all 14 pile-surveys inside their 95 % intervals. Remove this marker with that change.",
 )
 def test_sample_site_big_piles_within_one_percent():
     _need_sample()
