@@ -46,6 +46,7 @@ __all__ = [
     "FillReport",
     "fill_holes",
     "lone_patches",
+    "object_cells",
     "grid_points",
     "write_geotiff",
     "write_surface",
@@ -154,46 +155,17 @@ class SurfaceAccumulator:
         return int(inside.sum())
 
     def object_cells(self) -> np.ndarray:
-        """Cells whose surface points lie on an object, by the object returns around them.
-
-        A laser return cannot come from below an opaque ground surface. So:
-
-        * a cell with an object return lower than, or less than :data:`OBJECT_CLEARANCE_M`
-          above, its highest surface point holds "surface" points on the object (single
-          returns on a wall top, a vehicle roof) or right at its foot, where the
-          classifier's split is least reliable;
-        * a patch of scanned cells cut off from the rest of the surface (8-neighbours,
-          once the cells of the first rule are taken out), of at most :data:`OBJECT_TOP_MAX_M2`, with object
-          returns in the cells around it more than :data:`OBJECT_CLEARANCE_M` below its
-          lowest surface point, is the top of the object those returns come from (the
-          roof of a loader whose sides were scanned down to the ground).
-
-        Overhead structure well above the ground (a gallery, a stacker boom) leaves the
-        cells under it alone. Boolean (nrows, ncols); all False when no object return was
-        added.
-        """
-        from scipy import ndimage
-
+        """Cells whose surface points lie on an object (:func:`object_cells` of what was
+        fed); all False when no object return was added."""
         shape = self.grid.shape
-        has = self._n.reshape(shape) > 0
-        low = self._low_object.reshape(shape)
-        covered = has & (low < self._top.reshape(shape) + OBJECT_CLEARANCE_M)
-        if not np.isfinite(low).any():
-            return covered
-        labels, n = ndimage.label(has & ~covered, structure=np.ones((3, 3), bool))
-        if n == 0:
-            return covered
-        ids = np.arange(1, n + 1)
-        sizes = np.bincount(labels.ravel(), minlength=n + 1)[1:]
-        small = ids[sizes * self.grid.cell_area <= OBJECT_TOP_MAX_M2]
-        if small.size:
-            around = ndimage.minimum_filter(low, size=3, mode="constant", cval=np.inf)
-            bottom = ndimage.minimum(self._bottom.reshape(shape), labels, small)
-            below = ndimage.minimum(around, labels, small)
-            on_top = small[np.asarray(below) < np.asarray(bottom) - OBJECT_CLEARANCE_M]
-            if on_top.size:
-                covered |= np.isin(labels, on_top)
-        return covered
+        return object_cells(self._n.reshape(shape) > 0, self._top.reshape(shape), self._bottom.reshape(shape),
+                            self._low_object.reshape(shape), self.grid.cell_area)
+
+    def extremes(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per cell (nrows, ncols): highest and lowest surface point, lowest object return
+        (-inf / +inf / +inf where none), for :func:`object_cells` over several grids."""
+        shape = self.grid.shape
+        return self._top.reshape(shape), self._bottom.reshape(shape), self._low_object.reshape(shape)
 
     def result(self, date: str = "") -> Surface:
         """The surface so far (no hole filling).
@@ -202,7 +174,14 @@ class SurfaceAccumulator:
         fed) are left empty: count 0, no elevation, so hole filling treats them as
         unscanned. ``meta["object_cells"]`` says how many.
         """
-        covered = self.object_cells().ravel()
+        return self._result(date, self.object_cells().ravel())
+
+    def result_without_objects(self, date: str = "") -> Surface:
+        """:meth:`result` with no cell taken out for objects (the caller applies
+        :func:`object_cells` itself, e.g. over the whole survey when it grids tile by tile)."""
+        return self._result(date, np.zeros(self._n.size, bool))
+
+    def _result(self, date: str, covered: np.ndarray) -> Surface:
         n = np.where(covered, 0, self._n)
         z0 = self._z0 or 0.0
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -217,6 +196,60 @@ class SurfaceAccumulator:
         return Surface(self.grid, z.reshape(shape), n.astype(np.int32).reshape(shape), sd.reshape(shape),
                        np.zeros(shape, bool), date,
                        {"statistic": self.statistic, "object_cells": int(covered.sum())})
+
+
+def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
+                 cell_area_m2: float) -> np.ndarray:
+    """Cells whose surface points lie on an object, by the object returns around them.
+
+    A laser return cannot come from below an opaque ground surface. So:
+
+    * a cell with an object return lower than, or less than :data:`OBJECT_CLEARANCE_M`
+      above, its highest surface point holds "surface" points on the object (single
+      returns on a wall top, a vehicle roof) or right at its foot, where the
+      classifier's split is least reliable;
+    * a patch of scanned cells cut off from the rest of the surface (8-neighbours,
+      once the cells of the first rule are taken out), of at most :data:`OBJECT_TOP_MAX_M2`,
+      with object returns in the cells around it more than :data:`OBJECT_CLEARANCE_M` below
+      its lowest surface point, is the top of the object those returns come from (the
+      roof of a loader whose sides were scanned down to the ground).
+
+    Overhead structure well above the ground (a gallery, a stacker boom) leaves the
+    cells under it alone.
+
+    Parameters
+    ----------
+    has : bool array
+        Cells with surface points.
+    top, bottom : float arrays
+        Highest and lowest surface point of each cell.
+    low_object : float array
+        Lowest object return of each cell (+inf where none).
+    cell_area_m2 : float
+
+    Returns
+    -------
+    bool array, the shape of ``has``.
+    """
+    from scipy import ndimage
+
+    covered = has & (low_object < top + OBJECT_CLEARANCE_M)
+    if not np.isfinite(low_object).any():
+        return covered
+    labels, n = ndimage.label(has & ~covered, structure=np.ones((3, 3), bool))
+    if n == 0:
+        return covered
+    ids = np.arange(1, n + 1)
+    sizes = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    small = ids[sizes * cell_area_m2 <= OBJECT_TOP_MAX_M2]
+    if small.size:
+        around = ndimage.minimum_filter(low_object, size=3, mode="constant", cval=np.inf)
+        lowest = ndimage.minimum(bottom, labels, small)
+        below = ndimage.minimum(around, labels, small)
+        on_top = small[np.asarray(below) < np.asarray(lowest) - OBJECT_CLEARANCE_M]
+        if on_top.size:
+            covered |= np.isin(labels, on_top)
+    return covered
 
 
 def grid_points(grid: Grid, x: np.ndarray, y: np.ndarray, z: np.ndarray, statistic: str = "mean",
