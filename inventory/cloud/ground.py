@@ -56,11 +56,19 @@ The envelope alone has two blind spots, both handled on cells of ``2 * cell``:
   (:func:`_attached_faces`). The strip along the foot of a wall rises too little, a roof
   is surrounded by its own edges.
 * *Flat tops.* A roof or wall top farther than ``height / tan(max_slope)`` from every wall
-  foot passes the envelope. Surface cells are joined into height-continuous islands; an
-  island of at most ``max_top_area`` m2 standing more than ``overhead_gap / 2`` above the
-  lowest point near it is an object top (:func:`_walled_tops`). A pile is never an island:
-  its flanks continue into the pad. Cells standing above other surface more steeply than
-  ``face_slope_deg`` allows are dropped last (:func:`_spikes`).
+  foot passes the envelope. Surface cells are joined into height-continuous islands; two
+  cells are not joined across an object's face (a point that is not surface standing in
+  either cell between their two heights). An island of at most ``max_top_area`` m2 is an
+  object top (:func:`_walled_tops`) when
+  - surface lies beside it but none at its own level: it is cut off by faces or steps
+    going down from it on every side (a bay-wall top 0.6 m above the pile leaning on it,
+    its far side in the wall's shadow), or
+  - it stands more than ``overhead_gap / 2`` above the lowest point within ``window`` of
+    it, with at least four scanned cells around it, or with fewer (a sparse scan) but
+    nothing beside it at its level (the lowest returns of a machine over its own shadow).
+  A pile is never an island: its flanks continue into the pad. Cells standing above
+  other surface more steeply than ``face_slope_deg`` allows are dropped last
+  (:func:`_spikes`).
 
 Classes written: 2 for ground; among the rest, 19 (overhead structure) for points that sit
 in a layer of their column with at least ``overhead_gap`` metres of empty space below it
@@ -335,8 +343,14 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     return out
 
 
-def _continuous_patches(zc: np.ndarray, step: float) -> tuple[np.ndarray, int]:
-    """Label 8-connected cells with finite ``zc`` where neighbours differ by at most ``step``."""
+def _continuous_patches(zc: np.ndarray, step: float, faces: "tuple[np.ndarray, np.ndarray, float] | None" = None
+                        ) -> tuple[np.ndarray, int]:
+    """Label 8-connected cells with finite ``zc`` where neighbours differ by at most ``step``.
+
+    ``faces`` = (lowest, highest, margin): heights of the other (not surface) points of each
+    cell; two cells are then not joined where such a point of either lies between their
+    heights, more than ``margin`` from both: the step between them is an object's face.
+    """
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -349,6 +363,12 @@ def _continuous_patches(zc: np.ndarray, step: float) -> tuple[np.ndarray, int]:
         b = (slice(dr, nr), slice(max(dc, 0), nc + min(dc, 0)))
         with np.errstate(invalid="ignore"):
             link = ok[a] & ok[b] & (np.abs(zc[a] - zc[b]) <= step)
+            if faces is not None:
+                o_lo, o_hi, m = faces
+                lo = np.fmin(zc[a], zc[b]) + m
+                hi = np.fmax(zc[a], zc[b]) - m
+                for o in (a, b):
+                    link &= ~((o_lo[o] < hi) & (o_hi[o] > lo))
         rows.append(idx[a][link])
         cols.append(idx[b][link])
     r, c_ = np.concatenate(rows), np.concatenate(cols)
@@ -367,9 +387,16 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     The envelope lets a flat top through once it is farther than ``height / tan(max_slope)``
     from every wall foot. Such a top is an island: surface cells (cells of ``2 * cell``)
     joined only where neighbours continue each other in height (a step no steeper than
-    ``face_slope_deg``), cut off from the rest by its walls or by a drop. An island of at
-    most ``max_top_area`` m2 with at least four scanned cells around it, standing more than
-    ``overhead_gap`` / 2 above the lowest point within ``window`` / 2 of it, is not surface.
+    ``face_slope_deg``, and no point that is not surface in either cell lying between the
+    two heights by more than ``tolerance``: that is a wall's face), cut off from the rest by
+    its walls or by a drop. An island of at most ``max_top_area`` m2 is not surface when
+
+    * the surface cells around it are all lower than it by more than ``tolerance``
+      (it is cut off by faces or steps going down from it), or
+    * it stands more than ``overhead_gap`` / 2 above the lowest point within ``window`` of
+      it and has at least four scanned cells around it, or at least one and no surface
+      beside it at its level.
+
     A pile is never such an island: its flanks continue into the pad.
     """
     from scipy import ndimage
@@ -393,9 +420,15 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     zlow = np.full(size, np.inf)
     np.minimum.at(zlow, k, z)
     zlow = zlow.reshape(shape)
-    margin = int(math.ceil(params.window / 2 / c))
+    margin = int(math.ceil(params.window / c))
     step = params.tolerance + math.tan(math.radians(max(params.face_slope_deg, params.max_slope_deg))) * c
-    labels, n = _continuous_patches(np.where(has_g, zg, np.nan), step)
+    other = ~ground
+    o_lo = np.full(size, np.inf)
+    np.minimum.at(o_lo, k[other], z[other])
+    o_hi = np.full(size, -np.inf)
+    np.maximum.at(o_hi, k[other], z[other])
+    faces = (o_lo.reshape(shape), o_hi.reshape(shape), params.tolerance)
+    labels, n = _continuous_patches(np.where(has_g, zg, np.nan), step, faces)
     if n < 2:
         return out
     areas = np.bincount(labels.ravel(), minlength=n + 1) * c * c
@@ -409,7 +442,17 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
         # around a top: its walls (non-surface points) or a drop to surface below it;
         # unscanned cells count neither way
         walls = ring & (has_o[sl] | has_g[sl])
-        if walls.sum() < 4:
+        if not walls.any():
+            continue
+        # surface beside it: none at its level means it is cut off by a face or a step
+        # that goes down from it on every side where there is surface
+        beside = ring & has_g[sl]
+        with np.errstate(invalid="ignore"):
+            level = (beside & (zg[sl] >= np.nanmin(zg[sl][comp]) - params.tolerance)).any()
+        if not level and beside.any():
+            drop[i] = True
+            continue
+        if walls.sum() < 4 and level:
             continue
         around = tuple(slice(max(a.start - margin, 0), a.stop + margin) for a in sl)
         if np.nanmedian(zg[sl][comp]) - zlow[around].min() > params.overhead_gap / 2:
