@@ -182,7 +182,7 @@ class _EnvelopeGrid:
         ay = (y0 + (np.arange(nrow) + 0.5) * c)[:, None].repeat(ncol, 1).ravel()
         ax[skey], ay[skey] = x[seeds], y[seeds]
         self.ax, self.ay = ax, ay
-        self.g = _chamfer_min(g, t * c, int(math.ceil(params.window / c))).ravel()
+        self.g = _chamfer_min(g, t * c).ravel()
 
     def at(self, qx: np.ndarray, qy: np.ndarray) -> np.ndarray:
         """The envelope at query points: the seeds of the 3 x 3 cells around each, exactly."""
@@ -190,6 +190,17 @@ class _EnvelopeGrid:
         qcol = np.floor((qx - self.x0) / c).astype(np.int64)
         qrow = np.floor((qy - self.y0) / c).astype(np.int64)
         e = np.full(len(qx), np.inf)
+        if len(qx) and qcol.min() >= 1 and qcol.max() <= ncol - 2 and qrow.min() >= 1 and qrow.max() <= nrow - 2:
+            # every 3 x 3 block inside the grid (always so for the seeds' own points: the
+            # grid has a border of one cell)
+            base = qrow * ncol + qcol
+            for off in (-ncol - 1, -ncol, -ncol + 1, -1, 0, 1, ncol - 1, ncol, ncol + 1):
+                k = base + off
+                cand = np.hypot(qx - ax[k], qy - ay[k])
+                cand *= t
+                cand += gf[k]
+                np.minimum(e, cand, out=e)
+            return e
         for dr in (-1, 0, 1):
             for dc in (-1, 0, 1):
                 r, cc = qrow + dr, qcol + dc
@@ -250,19 +261,22 @@ class _PlanNeighbours:
             sub = self.xy[idx]
             d, nb = cKDTree(sub).query(sub, k=max(k, 1), workers=-1)
             return d.reshape(len(idx), -1), nb.reshape(len(idx), -1)
+        if len(idx) == len(members):
+            return self.d[:, :k], self.nb[:, :k]
         pos = np.cumsum(members) - 1
-        d, nb = self.d[idx], self.nb[idx]
-        valid = members[nb]
-        dd, nn = d[:, :k].copy(), nb[:, :k].copy()
-        mixed = np.flatnonzero(~valid[:, :k].all(axis=1))
+        # gather only the first k columns; rows with a non-member among them are redone
+        # from all K columns
+        dd, nn = self.d[:, :k][idx], self.nb[:, :k][idx]
+        mixed = np.flatnonzero(~members[nn].all(axis=1))
         short = np.zeros(0, np.int64)
         if len(mixed):
             # members first, in distance order: the j-th member of a row goes to column j
-            vm = valid[mixed]
+            d, nb = self.d[idx[mixed]], self.nb[idx[mixed]]
+            vm = members[nb]
             rank = np.cumsum(vm, axis=1)
             r, c = np.nonzero(vm & (rank <= k))
-            dd[mixed[r], rank[r, c] - 1] = d[mixed[r], c]
-            nn[mixed[r], rank[r, c] - 1] = nb[mixed[r], c]
+            dd[mixed[r], rank[r, c] - 1] = d[r, c]
+            nn[mixed[r], rank[r, c] - 1] = nb[r, c]
             short = mixed[rank[:, -1] < k]
         nn = pos[nn]
         if len(short):
@@ -462,26 +476,42 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     return out
 
 
-def _chamfer_min(g: np.ndarray, weight: float, iterations: int) -> np.ndarray:
-    """Lower envelope ``min_n (g_n + weight * d_n)`` by 16-neighbour chamfer propagation."""
+def _chamfer_min(g: np.ndarray, weight: float) -> np.ndarray:
+    """Lower envelope ``min_n (g_n + weight * d_n)`` over the whole grid, d the 16-neighbour
+    chamfer distance in cells.
+
+    Two raster passes, down the rows and back up (Borgefors 1986, sequential algorithm, from
+    memory): a shortest chamfer path never turns back across rows, so each pass finalises a
+    row from the one or two rows before it (diagonal and knight steps) and then along the row
+    itself, where the running minimum of ``g - weight * col`` (and mirrored) is the exact
+    left and right propagation. Equal, to rounding, to iterating the 16 steps to convergence.
+    """
     g = np.array(g, dtype=float)   # a copy
     nrow, ncol = g.shape
-    before = np.empty_like(g)
-    buf = np.empty_like(g)
-    steps = []
-    for dr, dc in _STEPS:
-        dst = g[max(dr, 0):nrow + min(dr, 0), max(dc, 0):ncol + min(dc, 0)]
-        src = g[max(-dr, 0):nrow + min(-dr, 0), max(-dc, 0):ncol + min(-dc, 0)]
-        steps.append((dst, src, buf[:dst.shape[0], :dst.shape[1]], weight * math.hypot(dr, dc)))
-    # Each step reads the grid as the previous step left it (Gauss-Seidel over the 16
-    # steps), through a scratch buffer instead of a fresh temporary per step.
-    for _ in range(iterations):
-        np.copyto(before, g)
-        for dst, src, tmp, w in steps:
-            np.add(src, w, out=tmp)
-            np.minimum(dst, tmp, out=dst)
-        if np.array_equal(before, g):
-            break
+    if nrow == 0 or ncol == 0:
+        return g
+    w1, w2, w5 = weight, weight * math.sqrt(2.0), weight * math.sqrt(5.0)
+    ramp = weight * np.arange(ncol, dtype=float)
+    tmp = np.empty(ncol)
+    for rows in (range(nrow), range(nrow - 1, -1, -1)):
+        p1 = p2 = None
+        for r in rows:
+            cur = g[r]
+            if p1 is not None:
+                np.minimum(cur, np.add(p1, w1, out=tmp), out=cur)
+                np.minimum(cur[1:], np.add(p1[:-1], w2, out=tmp[1:]), out=cur[1:])
+                np.minimum(cur[:-1], np.add(p1[1:], w2, out=tmp[:-1]), out=cur[:-1])
+                np.minimum(cur[2:], np.add(p1[:-2], w5, out=tmp[2:]), out=cur[2:])
+                np.minimum(cur[:-2], np.add(p1[2:], w5, out=tmp[:-2]), out=cur[:-2])
+            if p2 is not None:
+                np.minimum(cur[1:], np.add(p2[:-1], w5, out=tmp[1:]), out=cur[1:])
+                np.minimum(cur[:-1], np.add(p2[1:], w5, out=tmp[:-1]), out=cur[:-1])
+            left = np.minimum.accumulate(np.subtract(cur, ramp, out=tmp))
+            left += ramp
+            right = np.minimum.accumulate((cur + ramp)[::-1])[::-1]
+            right -= ramp
+            np.minimum(left, right, out=cur)
+            p2, p1 = p1, cur
     return g
 
 
@@ -510,7 +540,7 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
     with np.errstate(invalid="ignore", divide="ignore"):
         zm = (np.bincount(k[ground], z[ground], minlength=size) / n).reshape(shape)
     zf = np.where(np.isfinite(zm), zm, np.inf)
-    env = _chamfer_min(zf, t * c, int(math.ceil(radius / c)))
+    env = _chamfer_min(zf, t * c)
     # the envelope from the neighbours alone: one more step from each neighbour
     low = np.full(shape, np.inf)
     for dr, dc, w in [(dr, dc, t * c * math.hypot(dr, dc)) for dr, dc in _STEPS]:
@@ -558,10 +588,10 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
               near: "dict | None" = None) -> np.ndarray:
     """Points with no other point within :data:`ISOLATION_M` in 3D.
 
-    ``near`` may hold the nearest points in 3D of a superset of ``use`` (``idx``, ``d``,
-    ``nb`` from :func:`_below_neighbours`): the second-nearest member of ``use`` (the point
-    itself is the first) is then read from those lists, and only points with fewer than two
-    members among them are queried again.
+    ``near`` may hold the nearest points in plan of a superset of ``use`` (``idx``, ``d``,
+    ``nb``, ``dz`` from :func:`_below_neighbours`): a point with a member of ``use`` among
+    them closer than :data:`ISOLATION_M` in 3D is not isolated; only the others are
+    queried in 3D.
     """
     from scipy.spatial import cKDTree
 
@@ -575,18 +605,13 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         d, _ = cKDTree(xyz).query(xyz, k=2, workers=-1)
         out[idx[d[:, 1] > ISOLATION_M]] = True
         return out
-    sup, d, nb = near["idx"], near["d"], near["nb"]
-    rows = use[sup]
-    valid = use[sup[nb[rows]]]
-    rank = np.cumsum(valid, axis=1)
-    second = valid & (rank == 2)
-    has = second.any(axis=1)
-    d2 = np.full(len(has), np.inf)
-    d2[has] = d[rows][has, second[has].argmax(axis=1)]
-    short = np.flatnonzero(~has)      # positions among the rows, same order as idx
+    sup, d, nb, dz = near["idx"], near["d"], near["nb"], near["dz"]
+    rows = use[sup]                    # rows of the superset in use, in the order of idx
+    close = use[sup[nb[rows]]] & (d[rows] ** 2 + dz[rows] ** 2 <= ISOLATION_M ** 2)
+    short = np.flatnonzero(~close.any(axis=1))
     if len(short):
-        d2[short] = cKDTree(xyz).query(xyz[short], k=2, workers=-1)[0][:, 1]
-    out[idx[d2 > ISOLATION_M]] = True
+        d2 = cKDTree(xyz).query(xyz[short], k=2, workers=-1)[0][:, 1]
+        out[idx[short[d2 > ISOLATION_M]]] = True
     return out
 
 
@@ -628,20 +653,20 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
 
     # Deeper points: above-reach neighbours in plan (any height) and almost no points
     # within 1 m in 3D, i.e. no surface at the point's own level.
-    above_any = (d <= 1.0) & (dz > reach)
-    # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
-    # point itself included, is farther than r": one 4-nearest query answers both radii
-    # (counting every neighbour within r is what made this slow near a scanner).
-    xyz = np.column_stack([xs, ys, zs])
-    d3, nb3 = cKDTree(xyz).query(xyz, k=4, workers=-1)
-    d4 = d3[:, -1]
+    deep = 2 * ((d <= 1.0) & (dz > reach)).sum(axis=1) >= k2
     if near3 is not None:   # handed on to _isolated
-        near3.update(idx=idx, d=d3, nb=nb3)
-    deep = (d4 > 1.0) & (2 * above_any.sum(axis=1) >= k2)
-    # A point with company within 0.5 m (the foot of a wall, ground under a gallery) is
-    # part of something, not a stray return.
-    plan &= d4 > 0.5
-
+        near3.update(idx=idx, d=d, nb=nb, dz=dz)
+    # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
+    # point itself included, is farther than r": one 4-nearest query answers both radii,
+    # asked only for the points that pass the plan tests (a few per cent).
+    cand = np.flatnonzero(plan | deep)
+    if len(cand):
+        xyz = np.column_stack([xs, ys, zs])
+        d4 = cKDTree(xyz).query(xyz[cand], k=4, workers=-1)[0][:, -1]
+        deep[cand] &= d4 > 1.0
+        # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
+        # is part of something, not a stray return.
+        plan[cand] &= d4 > 0.5
     out[idx[plan | deep]] = True
     return out
 
