@@ -256,28 +256,35 @@ class _PlanNeighbours:
             self.tree = cKDTree(self.xy)
             self.d, self.nb = self.tree.query(self.xy, k=min(self.K, n), workers=-1)
 
-    def within(self, members: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
-        """Distances and indices (numbered within the subset) of each member's k nearest members."""
+    def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None
+               ) -> tuple[np.ndarray, np.ndarray]:
+        """Distances and indices (numbered within the subset) of each member's k nearest members.
+
+        ``rows`` (a mask, members only) limits the answer to those members' rows.
+        """
         from scipy.spatial import cKDTree
 
         idx = np.flatnonzero(members)
+        sel = idx if rows is None else np.flatnonzero(rows & members)
         k = min(k, len(idx))
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
             sub = self.xy[idx]
-            d, nb = cKDTree(sub).query(sub, k=max(k, 1), workers=-1)
-            return d.reshape(len(idx), -1), nb.reshape(len(idx), -1)
+            d, nb = cKDTree(sub).query(self.xy[sel], k=max(k, 1), workers=-1)
+            return d.reshape(len(sel), -1), nb.reshape(len(sel), -1)
         if len(idx) == len(members):
-            return self.d[:, :k], self.nb[:, :k]
+            if rows is None:
+                return self.d[:, :k], self.nb[:, :k]
+            return np.take(self.d[:, :k], sel, axis=0), np.take(self.nb[:, :k], sel, axis=0)
         # np.take: row gathers twice as fast as fancy indexing
         pos = (np.cumsum(members) - 1).astype(np.int32 if len(members) < 2**31 else np.int64)
-        dd = np.take(self.d[:, :k], idx, axis=0)
-        nn = np.take(self.nb[:, :k], idx, axis=0)
+        dd = np.take(self.d[:, :k], sel, axis=0)
+        nn = np.take(self.nb[:, :k], sel, axis=0)
         mixed = np.flatnonzero(np.take(~members, nn).any(axis=1))
         m = 2 * k
         while len(mixed):
             # more neighbours from the same tree; members first, in distance order: the
             # j-th member of a row goes to column j
-            d, nb = self.tree.query(self.xy[idx[mixed]], k=min(m, len(members)), workers=-1)
+            d, nb = self.tree.query(self.xy[sel[mixed]], k=min(m, len(members)), workers=-1)
             d, nb = d.reshape(len(mixed), -1), nb.reshape(len(mixed), -1)
             vm = members[np.minimum(nb, len(members) - 1)] & np.isfinite(d)
             rank = np.cumsum(vm, axis=1)
@@ -297,6 +304,9 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
                     ) -> np.ndarray:
     """Points kept only by the steeper ``face_slope_deg`` bound that belong to the surface.
 
+    ``knn``: the 16 nearest points in plan (and the point itself) of the points not in
+    ``ground``, in their order, as :meth:`_PlanNeighbours.within` gives them.
+
     Candidates lie on the envelope of ``face_slope_deg`` but not of ``max_slope_deg``:
     reclaim faces cut by a loader and the pile top behind them, but also the middle of a
     machine's flat roof and the feet of walls. Candidate points are rasterised on cells of
@@ -311,8 +321,11 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     from scipy import ndimage
 
     steep = replace(params, max_slope_deg=params.face_slope_deg)
-    e = np.minimum(slope_envelope(x, y, z, steep), _local_envelope(x, y, z, steep, knn=knn))
-    cand = ~ground & (z - e <= params.tolerance)
+    other = ~ground     # only these can become candidates: the envelope at them alone
+    e = slope_envelope(x, y, z, steep, qx=x[other], qy=y[other])
+    local = _local_envelope(x, y, z, steep)[other] if knn is None else _local_envelope(x, y, z, steep, knn=knn)
+    cand = np.zeros(len(z), bool)
+    cand[other] = z[other] - np.minimum(e, local) <= params.tolerance
     out = np.zeros(len(z), bool)
     if not cand.any():
         return out
@@ -753,7 +766,9 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     ground = (hs <= params.tolerance) | rescued[judged]
     ground &= ~_walled_tops(xs, ys, zs, ground, params)
     if params.face_slope_deg > params.max_slope_deg:
-        ground |= _attached_faces(xs, ys, zs, ground, params, knn=plan.within(judged, 17))
+        rows = judged.copy()
+        rows[judged] = ~ground
+        ground |= _attached_faces(xs, ys, zs, ground, params, knn=plan.within(judged, 17, rows))
     ground &= ~_spikes(xs, ys, zs, ground, params)
     over = _overhead(xs, ys, zs, hs, params.cell * 2, params.overhead_gap)
     cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
