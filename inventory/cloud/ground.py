@@ -82,7 +82,8 @@ they stay 7.
 
 Measured (tests/test_cloud_ground.py, tests/test_survey.py): on the synthetic yard and the
 demo site at least 98 % of machine and vehicle points leave the surface class and at most
-0.5 % of pile points are dropped. Known limits: the surface class creeps up the foot of a
+0.5 % of pile points are dropped; the sample site's month-end surfaces are within 2.9 cm
+(2026-09-30) and 3.4 cm (2026-10-31) RMS of the truth on covered cells. Known limits: the surface class creeps up the foot of a
 wall by about ``tan(max_slope) x point spacing + tolerance`` (0.2-0.3 m at 50-80
 points/m2); a face steeper than ``face_slope_deg`` still loses a band behind its edge.
 
@@ -231,7 +232,9 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
         knn = cKDTree(xy).query(xy, k=min(k + 1, n), workers=-1)
     d, nb = knn
     t = math.tan(math.radians(params.max_slope_deg))
-    return (z[nb] + t * d).min(axis=1)
+    e = np.multiply(d, t)
+    e += np.take(z, nb)
+    return e.min(axis=1)
 
 
 class _PlanNeighbours:
