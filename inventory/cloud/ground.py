@@ -93,7 +93,7 @@ nearest (:class:`_PlanNeighbours`); 3D distances are asked of a tree only for th
 points the plan tests leave open (multipath candidates, returns without a close plan
 neighbour); the envelope grid is built once and queried for points and noise, and its
 propagation is two raster passes. Measured on the sample survey 2026-09-30 (68 tiles,
-1.23 M points with buffers, 2 shared cores): about 7.5 s of CPU, from 12-13 s before
+1.23 M points with buffers, 2 shared cores, load 3-5): 6-8 s of CPU, from 11-13 s before
 these changes.
 
 :func:`csf_ground` wraps the ``cloth-simulation-filter`` package (Zhang et al. 2016) with
