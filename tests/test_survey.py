@@ -267,12 +267,7 @@ def test_sample_site_classification(sample_survey):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("which", [
-    "latest",
-    pytest.param("earliest", marks=pytest.mark.xfail(
-        reason="measured 6.6 cm RMS on 2026-09-30: single returns on bay-wall tops and the "
-               "gallery roof are classified surface (issue 4 follow-up)", strict=False)),
-])
+@pytest.mark.parametrize("which", ["latest", "earliest"])
 def test_sample_site_surface_rms(which, tmp_path_factory):
     truth, site, date, result = _sample_run(which, tmp_path_factory)
     true_z, tg = read_geotiff(SAMPLE / "truth" / f"surface-{date}.tif")
