@@ -193,7 +193,9 @@ def _outlier(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
         bad = statistical_outliers(xyz, _as_int(o["mean_k"], "mean_k"), _as_float(o["multiplier"], "multiplier"))
     elif method == "radius":
         from scipy.spatial import cKDTree
-        n = cKDTree(xyz).query_ball_point(xyz, _as_float(o["radius"], "radius"), return_length=True, workers=-1)
+
+        from ..scale_out import job_threads
+        n = cKDTree(xyz).query_ball_point(xyz, _as_float(o["radius"], "radius"), return_length=True, workers=job_threads())
         bad = n <= _as_int(o["min_k"], "min_k")
     else:
         raise PipelineError(f"filters.outlier method must be 'statistical' or 'radius', got {o['method']!r}")
