@@ -47,7 +47,7 @@ from .errors import CoverageWarning, CRSError, InputError, InputWarning, Pipelin
 from .grid import Grid, Surface
 from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
 
-__all__ = ["SurveyResult", "measure_survey", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
+__all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
 
 #: Tile edge in metres: 100 m x 100 m holds about 10-50 million scanner points at most.
 DEFAULT_TILE_M = 100.0
@@ -474,3 +474,67 @@ def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipel
         # A CRS travels to worker processes as WKT (pyproj CRS objects pickle as WKT anyway).
         crs_arg = crs if ex.kind != "dask" else crs.to_wkt()
         yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs_arg, engine) for t in tiles))
+
+
+def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
+                kw: dict[str, Any]) -> tuple[SurveyResult, list[warnings.WarningMessage]]:
+    """One survey as a job of :func:`measure_surveys`: its result and the warnings it raised
+    (a worker process cannot show them; the caller raises them again)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = measure_survey(site, date, out_dir, **kw)
+    return result, [w for w in caught]
+
+
+def measure_surveys(site: Any, dates: "list[str]", out_dirs: "list[str | Path | None] | None" = None,
+                    progress: Progress | None = None, *, workers: int | None = None,
+                    scheduler: str | None = None, threads: bool = False,
+                    **kw: Any) -> list[SurveyResult]:
+    """Several surveys of a site, each as :func:`measure_survey`, in the order of ``dates``.
+
+    Surveys share nothing, so with ``workers`` or ``scheduler`` they run side by side (one
+    survey per worker, its tiles serially within it) on an executor of
+    :mod:`inventory.scale_out`; a single survey runs its tiles on the workers instead.
+    Either way the files and results are those of serial runs. Warnings raised by a survey
+    are raised again here, in the order of ``dates``.
+
+    Parameters
+    ----------
+    site : Site
+    dates : list of str
+        Survey dates (folders under ``surveys/``), each at most once.
+    out_dirs : list, optional
+        Output folder of each date (``None`` writes nothing); default nothing is written.
+    progress : callable, optional
+        Given to each survey when they run one after the other; with several workers, one
+        line per survey finished.
+    workers, scheduler, threads
+        As for :func:`measure_survey`.
+    **kw
+        Other keyword arguments of :func:`measure_survey` (``pipeline``, ``engine``,
+        ``tile_size_m``, ...).
+    """
+    from .scale_out import executor
+
+    dates = list(dates)
+    if len(set(dates)) != len(dates):
+        raise ValueError(f"a survey date is given twice: {dates}")
+    out_dirs = list(out_dirs) if out_dirs is not None else [None] * len(dates)
+    if len(out_dirs) != len(dates):
+        raise ValueError("out_dirs must give one folder per date")
+    for date in dates:
+        _survey_ref(site, date)          # an unknown date fails before any work starts
+    parallel = len(dates) > 1 and (scheduler or (workers or 0) > 1)
+    if not parallel:
+        return [measure_survey(site, d, o, progress, workers=workers, scheduler=scheduler, threads=threads, **kw)
+                for d, o in zip(dates, out_dirs)]
+    say = progress or (lambda text: None)
+    results = []
+    with executor(workers, scheduler, threads=threads) as ex:
+        jobs = ((site, d, o, kw) for d, o in zip(dates, out_dirs))
+        for i, (result, caught) in enumerate(ex.map(_survey_job, jobs, window=len(dates))):
+            for w in caught:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+            say(f"survey {result.date} done ({i + 1} of {len(dates)})")
+            results.append(result)
+    return results
