@@ -16,12 +16,14 @@
    Tiles run serially, on threads or on Dask (``workers``, ``scheduler``;
    :mod:`inventory.scale_out`) and come back in tile order, so every way writes the same
    files.
-4. **Grid** the surface class (ASPRS 2) streaming into the site grid; fill holes up to
-   ``[grid] max_fill_distance_m``; write ``surface-<date>.tif``, ``coverage-<date>.tif``
-   and ``classified-<date>.laz``.
+4. **Grid** the surface class (ASPRS 2) tile by tile into the site grid (a cell lies in
+   one tile); fill holes up to ``[grid] max_fill_distance_m`` window by window
+   (:data:`FILL_WINDOW_CELLS` cells and a margin); write ``surface-<date>.tif``,
+   ``coverage-<date>.tif`` and ``classified-<date>.laz``.
 
-Memory is the grid plus a few tiles (two per worker in flight), whatever the size of the
-files; ``bench/bench_survey.py`` measures it with the throughput.
+Memory is the output grid (about 21 bytes a cell) plus a few tiles (two per worker in
+flight) or one fill window, whatever the size of the files; ``bench/bench_survey.py``
+measures it with the throughput.
 """
 
 from __future__ import annotations
@@ -274,15 +276,28 @@ def _load(path: Path) -> np.ndarray:
     return np.fromfile(path, dtype=POINT_DTYPE)
 
 
+#: Points read at a time from a neighbouring tile's spill file (about 50 MB).
+_BLOCK = 1_000_000
+
+
 def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray, int]:
+    """A tile's points followed by its neighbours' points within ``buffer_m`` of it.
+
+    Neighbouring files are read in blocks of :data:`_BLOCK` points, so a tile never holds
+    its neighbours whole (eight of them inside a large survey).
+    """
     core = _load(spill.path(tile))
     x0, y0, x1, y1 = spill.box(tile)
     extra = []
     for nb in spill.neighbours(tile):
-        pts = _load(spill.path(nb))
-        m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
-            (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
-        extra.append(pts[m])
+        with open(spill.path(nb), "rb") as f:
+            while True:
+                pts = np.fromfile(f, dtype=POINT_DTYPE, count=_BLOCK)
+                if not len(pts):
+                    break
+                m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
+                    (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
+                extra.append(pts[m])
     return np.concatenate([core] + extra) if extra else core, len(core)
 
 
@@ -440,14 +455,12 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
         if not math.isfinite(ground_box[0]):
             raise RunError(f"survey {date}: no point was classified as surface")
         sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
-        acc = SurfaceAccumulator(sgrid, grid_cfg.statistic)
-        for f in sorted(tmp.glob("ground_*.bin")):
-            xyz = np.fromfile(f).reshape(-1, 3)
-            acc.add(xyz[:, 0], xyz[:, 1], xyz[:, 2])
+        raw = _grid_tiles(spill, tmp, sgrid, grid_cfg.statistic, date)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
 
-    surface, fill = fill_holes(acc.result(date), float(grid_cfg.max_fill_distance_m))
+    surface, fill = _fill_windows(raw, float(grid_cfg.max_fill_distance_m))
+    del raw
     surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
@@ -462,6 +475,91 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     return SurveyResult(date, surface, classified_path, surface_path, coverage_path, counts, read, kept,
                         outside, fill, [s.path for s in sources], used_engine, timings,
                         rejected["outside_span"], rejected["in_gap"])
+
+
+def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date: str) -> Surface:
+    """The surface points of each tile (``tmp/ground_<tile>.bin``) gridded tile by tile.
+
+    A cell belongs to one tile (tile edges are cell edges of the spill grid, and ``sgrid``
+    is that grid shifted by whole cells), so each tile's cells are complete and are
+    computed with a :class:`~inventory.surface.SurfaceAccumulator` the size of the tile:
+    memory is the output grid plus one tile, never per-cell sums of the whole survey.
+    Cells are found once on the spill grid (as the tiles were) and shifted into ``sgrid``.
+    """
+    g = spill.grid
+    roff = int(round((g.north - sgrid.north) / g.cell))
+    coff = int(round((sgrid.west - g.west) / g.cell))
+    z = np.full(sgrid.shape, np.nan)
+    count = np.zeros(sgrid.shape, np.int32)
+    sd = np.full(sgrid.shape, np.nan)
+    for tile in sorted(spill.counts):
+        path = tmp / f"ground_{tile}.bin"
+        if not path.exists():
+            continue
+        xyz = np.fromfile(path).reshape(-1, 3)
+        row, col, _ = g.index(xyz[:, 0], xyz[:, 1])
+        row -= roff
+        col -= coff
+        r0, c0 = int(row.min()), int(col.min())
+        r1, c1 = int(row.max()) + 1, int(col.max()) + 1
+        # The tile's cells on a grid of unit cells at the origin: cell centres land in the
+        # cells already found, whatever the rounding of projected coordinates.
+        acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, sgrid.crs), statistic)
+        acc.add(col - c0 + 0.5, -(row - r0 + 0.5), xyz[:, 2])
+        part = acc.result(date)
+        have = part.count > 0
+        z[r0:r1, c0:c1][have] = part.z[have]
+        count[r0:r1, c0:c1][have] = part.count[have]
+        sd[r0:r1, c0:c1][have] = part.sd[have]
+    return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date, {"statistic": statistic})
+
+
+#: Hole filling runs on windows of this many cells a side (plus a margin), never on the whole survey.
+FILL_WINDOW_CELLS = 1024
+
+
+def _fill_windows(surface: Surface, max_distance_m: float,
+                  window: int = FILL_WINDOW_CELLS) -> tuple[Surface, FillReport]:
+    """:func:`~inventory.surface.fill_holes` window by window, with a margin.
+
+    Each window of ``window`` cells is filled from itself and a margin of eight times the
+    reach of the fill (the distance plus two cells) around it, and keeps its own cells:
+    memory is that of one window, not of a Delaunay triangulation of the whole survey. A
+    cell's fill then comes from the scanned cells within the margin (at least 8 x
+    ``max_distance_m``) around its window; only triangles that the whole-survey
+    triangulation would stretch across wider gaps differ. The windows are fixed by the
+    grid, so the result does not depend on how the survey was run. The report's enclosed
+    gaps are found on the whole grid, as :func:`fill_holes` does.
+    """
+    g = surface.grid
+    reach = int(math.ceil(max_distance_m / g.cell)) + 2 if max_distance_m > 0 else 0
+    margin = 8 * reach
+    z = surface.z.copy()
+    filled = np.zeros(g.shape, bool)
+    scanned = surface.count > 0
+    if reach:
+        for r0 in range(0, g.nrows, window):
+            for c0 in range(0, g.ncols, window):
+                r1, c1 = min(r0 + window, g.nrows), min(c0 + window, g.ncols)
+                if scanned[r0:r1, c0:c1].all():
+                    continue
+                R0, C0 = max(r0 - margin, 0), max(c0 - margin, 0)
+                R1, C1 = min(r1 + margin, g.nrows), min(c1 + margin, g.ncols)
+                if not scanned[R0:R1, C0:C1].any():
+                    continue
+                sub = Grid(g.west + C0 * g.cell, g.north - R0 * g.cell, g.cell, R1 - R0, C1 - C0, g.crs)
+                part, _ = fill_holes(Surface(sub, surface.z[R0:R1, C0:C1], surface.count[R0:R1, C0:C1],
+                                             surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
+                                     max_distance_m)
+                core = (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0))
+                z[r0:r1, c0:c1] = part.z[core]
+                filled[r0:r1, c0:c1] = part.filled[core]
+    # Enclosed gaps left empty, on the whole grid: cells with a value count as covered.
+    _, gaps = fill_holes(Surface(g, z, np.where(filled, 1, surface.count).astype(np.int32), surface.sd,
+                                 np.zeros(g.shape, bool), surface.date), 0.0)
+    out = Surface(g, z, surface.count, surface.sd, filled, surface.date,
+                  dict(surface.meta, max_fill_distance_m=max_distance_m))
+    return out, FillReport(int(filled.sum()), gaps.gap_cells, gaps.gap_area_m2, gaps.largest_gap_m2)
 
 
 def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,

@@ -133,3 +133,31 @@ def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
             np.testing.assert_array_equal(np.asarray(la[dim]), np.asarray(lb[dim]))
     with pytest.raises(ValueError, match="given twice"):
         measure_surveys(site, [dates[0], dates[0]])
+
+
+def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
+    # Holes filled window by window (here 64 cells, so many windows and holes across their
+    # edges) against fill_holes on the whole grid: on a plane, linear interpolation gives
+    # the plane in any triangle (a linear function is reproduced exactly: from memory), so
+    # the values agree to rounding and the filled cells and gap report exactly.
+    from inventory.grid import Grid, Surface
+    from inventory.surface import fill_holes
+    from inventory.survey import _fill_windows
+
+    rng = np.random.default_rng(2)
+    g = Grid(500000.0, 6000300.0, 0.5, 300, 340, CRS)
+    rows, cols = np.mgrid[0:300, 0:340]
+    z = 100.0 + 0.03 * cols - 0.02 * rows
+    count = np.ones(g.shape, np.int32)
+    for r, c in rng.integers(0, 300, size=(60, 2)):         # holes of radius 1-4 cells
+        count[(rows - r) ** 2 + (cols - c) ** 2 <= rng.integers(1, 5) ** 2] = 0
+    count[100:140, 200:260] = 0                              # one gap wider than the fill distance
+    surface = Surface(g, np.where(count > 0, z, np.nan), count, np.full(g.shape, np.nan),
+                      np.zeros(g.shape, bool), DATE, {"statistic": "mean"})
+    whole, whole_report = fill_holes(surface, 2.0)
+    windowed, report = _fill_windows(surface, 2.0, window=64)
+    assert report == whole_report and report.filled_cells > 500 and report.gap_cells > 0
+    np.testing.assert_array_equal(windowed.filled, whole.filled)
+    np.testing.assert_allclose(windowed.z[windowed.filled], z[windowed.filled], rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(windowed.count, surface.count)
+    assert windowed.meta["max_fill_distance_m"] == 2.0
