@@ -570,8 +570,26 @@ def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipel
 
     with executor(workers, scheduler, threads=threads) as ex:
         # A CRS travels to worker processes as WKT (pyproj CRS objects pickle as WKT anyway).
-        crs_arg = crs if ex.kind != "dask" else crs.to_wkt()
-        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs_arg, engine) for t in tiles))
+        if ex.kind != "dask":
+            yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine) for t in tiles))
+            return
+        # Worker processes leave each classified tile in the spill folder and send back its
+        # name only: no tile of points is pickled through the scheduler.
+        for path in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine)
+                                                    for t in tiles)):
+            pts = _load(path)
+            path.unlink()
+            yield pts
+
+
+def _classify_tile_to_file(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
+                           engine: str) -> Path:
+    """:func:`_classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
+    in the spill folder, whose path is returned."""
+    out = _classify_tile(spill, tile, buffer_m, pipeline, crs, engine)
+    path = spill.folder / f"classified_{tile}.bin"
+    out.tofile(path)
+    return path
 
 
 def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
