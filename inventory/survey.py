@@ -514,33 +514,41 @@ def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date:
     return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date, {"statistic": statistic})
 
 
-#: Hole filling runs on windows of this many cells a side (plus a margin), never on the whole survey.
-FILL_WINDOW_CELLS = 1024
+#: Hole filling runs on windows of this many cells a side (plus a margin), never on the
+#: whole survey; a grid of at most this squared cells is one window (as before windows).
+FILL_WINDOW_CELLS = 512
 
 
 def _fill_windows(surface: Surface, max_distance_m: float,
                   window: int = FILL_WINDOW_CELLS) -> tuple[Surface, FillReport]:
     """:func:`~inventory.surface.fill_holes` window by window, with a margin.
 
-    Each window of ``window`` cells is filled from itself and a margin of eight times the
-    reach of the fill (the distance plus two cells) around it, and keeps its own cells:
-    memory is that of one window, not of a Delaunay triangulation of the whole survey. A
-    cell's fill then comes from the scanned cells within the margin (at least 8 x
-    ``max_distance_m``) around its window; only triangles that the whole-survey
-    triangulation would stretch across wider gaps differ. The windows are fixed by the
-    grid, so the result does not depend on how the survey was run. The report's enclosed
-    gaps are found on the whole grid, as :func:`fill_holes` does.
+    A grid of at most ``window`` x ``window`` cells is filled whole, exactly as
+    :func:`fill_holes` does. A larger one is cut into windows of ``window`` cells, each
+    filled from itself and a margin of four times the reach of the fill (the distance plus
+    two cells) around it, keeping its own cells: memory is that of one window, not of a
+    Delaunay triangulation of the whole survey. A cell's fill then comes from the scanned
+    cells within the margin around its window; only triangles that the whole-survey
+    triangulation would stretch across wider gaps, and the diagonals it would choose among
+    cocircular cells, can differ. The windows are fixed by the grid, so the result does
+    not depend on how the survey was run. The report's enclosed gaps are found on the
+    whole grid, as :func:`fill_holes` finds them.
+
+    ``surface`` is consumed: its ``z`` becomes the filled surface's.
     """
     g = surface.grid
     reach = int(math.ceil(max_distance_m / g.cell)) + 2 if max_distance_m > 0 else 0
-    margin = 8 * reach
-    z = surface.z.copy()
-    filled = np.zeros(g.shape, bool)
     scanned = surface.count > 0
-    if reach:
-        for r0 in range(0, g.nrows, window):
-            for c0 in range(0, g.ncols, window):
-                r1, c1 = min(r0 + window, g.nrows), min(c0 + window, g.ncols)
+    filled = np.zeros(g.shape, bool)
+    if reach and (~scanned).any():
+        if g.nrows * g.ncols <= window * window:
+            wr, wc, margin = g.nrows, g.ncols, 0
+        else:
+            wr, wc, margin = window, window, 4 * reach
+        fills = []   # (flat index, value): z is changed after every window has read it
+        for r0 in range(0, g.nrows, wr):
+            for c0 in range(0, g.ncols, wc):
+                r1, c1 = min(r0 + wr, g.nrows), min(c0 + wc, g.ncols)
                 if scanned[r0:r1, c0:c1].all():
                     continue
                 R0, C0 = max(r0 - margin, 0), max(c0 - margin, 0)
@@ -552,12 +560,20 @@ def _fill_windows(surface: Surface, max_distance_m: float,
                                              surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
                                      max_distance_m)
                 core = (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0))
-                z[r0:r1, c0:c1] = part.z[core]
-                filled[r0:r1, c0:c1] = part.filled[core]
+                rr, cc = np.nonzero(part.filled[core])
+                if len(rr):
+                    fills.append(((rr + r0) * g.ncols + cc + c0, part.z[core][rr, cc]))
+                del part
+        for idx, values in fills:
+            surface.z.ravel()[idx] = values
+            filled.ravel()[idx] = True
+        del fills
     # Enclosed gaps left empty, on the whole grid: cells with a value count as covered.
-    _, gaps = fill_holes(Surface(g, z, np.where(filled, 1, surface.count).astype(np.int32), surface.sd,
-                                 np.zeros(g.shape, bool), surface.date), 0.0)
-    out = Surface(g, z, surface.count, surface.sd, filled, surface.date,
+    covered = surface.count.copy()
+    covered[filled] = 1
+    _, gaps = fill_holes(Surface(g, surface.z, covered, surface.sd, filled, surface.date), 0.0)
+    del covered
+    out = Surface(g, surface.z, surface.count, surface.sd, filled, surface.date,
                   dict(surface.meta, max_fill_distance_m=max_distance_m))
     return out, FillReport(int(filled.sum()), gaps.gap_cells, gaps.gap_area_m2, gaps.largest_gap_m2)
 

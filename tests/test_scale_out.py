@@ -7,6 +7,7 @@ LocalCluster of two worker processes (the tiles and the pipeline are pickled to 
 
 from __future__ import annotations
 
+import dataclasses
 import types
 import warnings
 
@@ -155,7 +156,12 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
     surface = Surface(g, np.where(count > 0, z, np.nan), count, np.full(g.shape, np.nan),
                       np.zeros(g.shape, bool), DATE, {"statistic": "mean"})
     whole, whole_report = fill_holes(surface, 2.0)
-    windowed, report = _fill_windows(surface, 2.0, window=64)
+    # a grid of at most window x window cells is filled whole: exactly fill_holes
+    one, one_report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=340)
+    assert one_report == whole_report
+    np.testing.assert_array_equal(one.z, whole.z)
+    np.testing.assert_array_equal(one.filled, whole.filled)
+    windowed, report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=64)
     assert report == whole_report and report.filled_cells > 500 and report.gap_cells > 0
     np.testing.assert_array_equal(windowed.filled, whole.filled)
     np.testing.assert_allclose(windowed.z[windowed.filled], z[windowed.filled], rtol=0, atol=1e-9)
