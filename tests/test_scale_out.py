@@ -97,24 +97,28 @@ def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
         assert _volume(other, yard).volume_m3 == v0.volume_m3
 
 
-def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
-    # Independent surveys run one per Dask worker process; each gives what a serial run of
-    # it gives, file for file, and the results come back in the order of the dates.
-    from inventory.survey import measure_surveys
-
-    root = tmp_path / "site"
+def _two_survey_site(root, density=6.0):
     dates = ["2026-09-30", "2026-10-31"]
     refs = {}
     for seed, date in zip((4, 5), dates):
         folder = root / "surveys" / date
         folder.mkdir(parents=True)
-        write_cloud(folder / "yard.laz", make_yard(density=6.0, pad_density=1.5, seed=seed).points, CRS)
+        write_cloud(folder / "yard.laz", make_yard(density=density, pad_density=density / 4, seed=seed).points, CRS)
         refs[date] = types.SimpleNamespace(folder=folder, files=[folder / "yard.laz"], stations=None)
     grid = types.SimpleNamespace(cell_size_m=0.5, max_fill_distance_m=3.0, statistic="mean")
     site = types.SimpleNamespace(
         root=root, crs=CRS,
         config=types.SimpleNamespace(grid=grid, survey=types.SimpleNamespace(default_crs=None, pipeline=None)),
         surveys=refs)
+    return site, dates
+
+
+def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
+    # Independent surveys run one per Dask worker process; each gives what a serial run of
+    # it gives, file for file, and the results come back in the order of the dates.
+    from inventory.survey import measure_surveys
+
+    site, dates = _two_survey_site(tmp_path / "site")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         serial = measure_surveys(site, dates, [tmp_path / "serial" / d for d in dates], tile_size_m=40.0)
@@ -167,3 +171,23 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
     np.testing.assert_allclose(windowed.z[windowed.filled], z[windowed.filled], rtol=0, atol=1e-9)
     np.testing.assert_array_equal(windowed.count, surface.count)
     assert windowed.meta["max_fill_distance_m"] == 2.0
+
+
+def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
+    import inventory.site
+    from inventory.cli import build_parser, main
+
+    args = build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--date", "2026-10-31"])
+    assert args.date == ["2026-09-30", "2026-10-31"] and not args.all
+    with pytest.raises(SystemExit):
+        build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--all"])   # one or the other
+    site, dates = _two_survey_site(tmp_path / "site", density=2.0)
+    monkeypatch.setattr(inventory.site, "load_site", lambda root: site)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["survey", str(site.root), "--all", "--out", str(tmp_path / "out"), "-q"]) == 0
+    out = capsys.readouterr().out
+    assert out.index("survey 2026-09-30:") < out.index("survey 2026-10-31:")
+    for d in dates:
+        assert (tmp_path / "out" / d / f"surface-{d}.tif").is_file()
+        assert (tmp_path / "out" / d / f"classified-{d}.laz").is_file()
