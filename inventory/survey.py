@@ -520,19 +520,24 @@ FILL_WINDOW_CELLS = 512
 
 
 def _fill_windows(surface: Surface, max_distance_m: float,
-                  window: int = FILL_WINDOW_CELLS) -> tuple[Surface, FillReport]:
+                  window: int = FILL_WINDOW_CELLS, margin_reach: int = 4) -> tuple[Surface, FillReport]:
     """:func:`~inventory.surface.fill_holes` window by window, with a margin.
 
     A grid of at most ``window`` x ``window`` cells is filled whole, exactly as
     :func:`fill_holes` does. A larger one is cut into windows of ``window`` cells, each
-    filled from itself and a margin of four times the reach of the fill (the distance plus
-    two cells) around it, keeping its own cells: memory is that of one window, not of a
-    Delaunay triangulation of the whole survey. A cell's fill then comes from the scanned
-    cells within the margin around its window; only triangles that the whole-survey
-    triangulation would stretch across wider gaps, and the diagonals it would choose among
-    cocircular cells, can differ. The windows are fixed by the grid, so the result does
-    not depend on how the survey was run. The report's enclosed gaps are found on the
-    whole grid, as :func:`fill_holes` finds them.
+    filled from itself and a margin of ``margin_reach`` times the reach of the fill (the
+    distance plus two cells) around it, keeping its own cells: memory is that of one
+    window, not of a Delaunay triangulation of the whole survey. A cell's fill then comes
+    from the scanned cells within the margin around its window. Against one triangulation
+    of the whole grid, what differs is the choice among equally Delaunay diagonals of
+    cocircular cells (the lattice is full of them, and Qhull's choice depends on every
+    input point) and triangles stretched across gaps wider than the margin. Measured on the
+    sample site's surface tiled 3 x 3 (1.7 million cells, 435,000 filled): 44,554 filled
+    values differ, median 1.2 mm, 99th percentile 16 cm, largest 0.63 m; 3,009 cells
+    filled by the whole-grid triangulation only; a wider margin (8 or 16 times) changes
+    this little. CPU 20 s against 31 s, peak memory 350 MB against 1.1 GB. The windows are
+    fixed by the grid, so the result does not depend on how the survey was run. The
+    report's enclosed gaps are found on the whole grid, as :func:`fill_holes` finds them.
 
     ``surface`` is consumed: its ``z`` becomes the filled surface's.
     """
@@ -544,7 +549,7 @@ def _fill_windows(surface: Surface, max_distance_m: float,
         if g.nrows * g.ncols <= window * window:
             wr, wc, margin = g.nrows, g.ncols, 0
         else:
-            wr, wc, margin = window, window, 4 * reach
+            wr, wc, margin = window, window, margin_reach * reach
         fills = []   # (flat index, value): z is changed after every window has read it
         for r0 in range(0, g.nrows, wr):
             for c0 in range(0, g.ncols, wc):
