@@ -206,11 +206,11 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
                 f"   CPU {run['cpu_s']:.0f} s")
         if w > 1:
             line += f" (largest worker {run['children_rss_mb']:,.0f} MB)"
-        if w == 1:
+        if w == 1 and base is None:
             base = run["seconds"]
         if first is None:
             first = run["seconds"]
-        else:
+        elif run["seconds"] not in (base, first):
             ref = base if base is not None else first
             line += f"   speed-up over the {'one-worker' if base is not None else 'first'} run {ref / run['seconds']:.2f}x"
         print(line, flush=True)
