@@ -367,100 +367,103 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     if buffer_m > tile_size_m:
         raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
 
-    tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
-    try:
-        spill = _TileSpill(grid, tile_cells, tmp)
-        read = outside = 0
-        total = 0
-        for src in sources:
-            with open_cloud(src.path) as cloud:
-                total += cloud.count
-        max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
-        rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
-        for src in sources:
-            with open_cloud(src.path, chunk_size=chunk_size) as cloud:
-                reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
-                file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
-                for chunk in cloud.chunks():
-                    n_chunk = len(chunk)
-                    if src.pose is not None:
-                        chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
-                            chunk["X"], chunk["Y"], chunk["Z"])
-                    elif src.trajectory is not None:
-                        # Each point with the pose at its own GPS time; the sums are reported
-                        # once per file below, not once per chunk.
-                        own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
-                        xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
-                                                    warn=False, source=src.path.name)
-                        chunk = chunk[keep]
-                        chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
-                        chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
-                        for key in file_rejected:
-                            file_rejected[key] += c[key]
-                        file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
-                    elif not reproject.is_identity:
-                        chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
-                    chunk["PointSourceId"] = src.index
-                    outside += spill.add(chunk)
-                    read += n_chunk
-                    say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
-                if src.trajectory is not None:
-                    _warn_trajectory(src, file_rejected, max_gap_s)
-                    rejected["outside_span"] += file_rejected["outside_span"]
-                    rejected["in_gap"] += file_rejected["in_gap"]
-        timings["read"] = time.perf_counter() - t_start
+    from .scale_out import executor
 
-        t0 = time.perf_counter()
-        counts: dict[int, int] = {}
-        ground_box = [math.inf, math.inf, -math.inf, -math.inf]
-        kept = 0
-        writer = None
-        classified_path = None
-        if out_dir is not None and write_classified:
-            classified_path = Path(out_dir) / f"classified-{date}.laz"
-            writer = CloudWriter(classified_path, crs=site_crs,
-                                 offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
-        tiles = sorted(spill.counts)
+    # One executor for the tiles and the fill windows (a local cluster starts while reading).
+    with executor(workers, scheduler, threads=threads) as ex:
+        tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
         try:
-            for i, result in enumerate(_run_tiles(spill, tiles, buffer_m, pipe, site_crs, used_engine,
-                                                  workers, scheduler, threads)):
-                cls = result["Classification"]
-                for c, n in zip(*np.unique(cls, return_counts=True)):
-                    counts[int(c)] = counts.get(int(c), 0) + int(n)
-                kept += len(result)
-                g = result[cls == GROUND]
-                if len(g):
-                    ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
-                                  max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
-                    tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
-                    with open(tmp / f"ground_{tile}.bin", "ab") as f:
-                        np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+            spill = _TileSpill(grid, tile_cells, tmp)
+            read = outside = 0
+            total = 0
+            for src in sources:
+                with open_cloud(src.path) as cloud:
+                    total += cloud.count
+            max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
+            rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
+            for src in sources:
+                with open_cloud(src.path, chunk_size=chunk_size) as cloud:
+                    reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
+                    file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
+                    for chunk in cloud.chunks():
+                        n_chunk = len(chunk)
+                        if src.pose is not None:
+                            chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
+                                chunk["X"], chunk["Y"], chunk["Z"])
+                        elif src.trajectory is not None:
+                            # Each point with the pose at its own GPS time; the sums are reported
+                            # once per file below, not once per chunk.
+                            own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
+                            xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
+                                                        warn=False, source=src.path.name)
+                            chunk = chunk[keep]
+                            chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
+                            chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
+                            for key in file_rejected:
+                                file_rejected[key] += c[key]
+                            file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
+                        elif not reproject.is_identity:
+                            chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
+                        chunk["PointSourceId"] = src.index
+                        outside += spill.add(chunk)
+                        read += n_chunk
+                        say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
+                    if src.trajectory is not None:
+                        _warn_trajectory(src, file_rejected, max_gap_s)
+                        rejected["outside_span"] += file_rejected["outside_span"]
+                        rejected["in_gap"] += file_rejected["in_gap"]
+            timings["read"] = time.perf_counter() - t_start
+
+            t0 = time.perf_counter()
+            counts: dict[int, int] = {}
+            ground_box = [math.inf, math.inf, -math.inf, -math.inf]
+            kept = 0
+            writer = None
+            classified_path = None
+            if out_dir is not None and write_classified:
+                classified_path = Path(out_dir) / f"classified-{date}.laz"
+                writer = CloudWriter(classified_path, crs=site_crs,
+                                     offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
+            tiles = sorted(spill.counts)
+            try:
+                for i, result in enumerate(_run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, used_engine)):
+                    cls = result["Classification"]
+                    for c, n in zip(*np.unique(cls, return_counts=True)):
+                        counts[int(c)] = counts.get(int(c), 0) + int(n)
+                    kept += len(result)
+                    g = result[cls == GROUND]
+                    if len(g):
+                        ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
+                                      max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
+                        tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
+                        with open(tmp / f"ground_{tile}.bin", "ab") as f:
+                            np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+                    if writer is not None:
+                        writer.write(result)
+                    say(f"classifying: tile {i + 1} of {len(tiles)}")
+            except BaseException:
                 if writer is not None:
-                    writer.write(result)
-                say(f"classifying: tile {i + 1} of {len(tiles)}")
-        except BaseException:
+                    writer.close(ok=False)
+                raise
             if writer is not None:
-                writer.close(ok=False)
-            raise
-        if writer is not None:
-            writer.close()
-        timings["classify"] = time.perf_counter() - t0
+                writer.close()
+            timings["classify"] = time.perf_counter() - t0
 
-        # The surface grid covers the surface points only: far returns (ghosts, distant
-        # buildings) widen the files' header boxes but not the grid. Its origin is snapped
-        # to the cell size, so it lines up with every other survey of the site, and its
-        # tiles' edges fall on cell edges (what the median statistic needs).
-        t0 = time.perf_counter()
-        say("gridding the surface and filling holes")
-        if not math.isfinite(ground_box[0]):
-            raise RunError(f"survey {date}: no point was classified as surface")
-        sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
-        raw = _grid_tiles(spill, tmp, sgrid, grid_cfg.statistic, date)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+            # The surface grid covers the surface points only: far returns (ghosts, distant
+            # buildings) widen the files' header boxes but not the grid. Its origin is snapped
+            # to the cell size, so it lines up with every other survey of the site, and its
+            # tiles' edges fall on cell edges (what the median statistic needs).
+            t0 = time.perf_counter()
+            say("gridding the surface and filling holes")
+            if not math.isfinite(ground_box[0]):
+                raise RunError(f"survey {date}: no point was classified as surface")
+            sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
+            raw = _grid_tiles(spill, tmp, sgrid, grid_cfg.statistic, date)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
 
-    surface, fill = _fill_windows(raw, float(grid_cfg.max_fill_distance_m))
-    del raw
+        surface, fill = _fill_windows(raw, float(grid_cfg.max_fill_distance_m), ex=ex)
+        del raw
     surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
@@ -519,15 +522,25 @@ def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date:
 FILL_WINDOW_CELLS = 512
 
 
-def _fill_windows(surface: Surface, max_distance_m: float,
-                  window: int = FILL_WINDOW_CELLS, margin_reach: int = 4) -> tuple[Surface, FillReport]:
+def _fill_window(sub: Surface, max_distance_m: float, core: tuple[slice, slice], r0: int, c0: int,
+                 ncols: int) -> tuple[np.ndarray, np.ndarray]:
+    """One window of :func:`_fill_windows`: flat indices (in the whole grid) and values of
+    the cells filled in its core."""
+    part, _ = fill_holes(sub, max_distance_m)
+    rr, cc = np.nonzero(part.filled[core])
+    return (rr + r0) * ncols + cc + c0, part.z[core][rr, cc]
+
+
+def _fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WINDOW_CELLS,
+                  margin_reach: int = 4, ex: Any = None) -> tuple[Surface, FillReport]:
     """:func:`~inventory.surface.fill_holes` window by window, with a margin.
 
     A grid of at most ``window`` x ``window`` cells is filled whole, exactly as
     :func:`fill_holes` does. A larger one is cut into windows of ``window`` cells, each
     filled from itself and a margin of ``margin_reach`` times the reach of the fill (the
     distance plus two cells) around it, keeping its own cells: memory is that of one
-    window, not of a Delaunay triangulation of the whole survey. A cell's fill then comes
+    window, not of a Delaunay triangulation of the whole survey; windows run on ``ex`` (an
+    :class:`~inventory.scale_out.Executor`) when given. A cell's fill then comes
     from the scanned cells within the margin around its window. Against one triangulation
     of the whole grid, what differs is the choice among equally Delaunay diagonals of
     cocircular cells (the lattice is full of them, and Qhull's choice depends on every
@@ -550,25 +563,25 @@ def _fill_windows(surface: Surface, max_distance_m: float,
             wr, wc, margin = g.nrows, g.ncols, 0
         else:
             wr, wc, margin = window, window, margin_reach * reach
-        fills = []   # (flat index, value): z is changed after every window has read it
-        for r0 in range(0, g.nrows, wr):
-            for c0 in range(0, g.ncols, wc):
-                r1, c1 = min(r0 + wr, g.nrows), min(c0 + wc, g.ncols)
-                if scanned[r0:r1, c0:c1].all():
-                    continue
-                R0, C0 = max(r0 - margin, 0), max(c0 - margin, 0)
-                R1, C1 = min(r1 + margin, g.nrows), min(c1 + margin, g.ncols)
-                if not scanned[R0:R1, C0:C1].any():
-                    continue
-                sub = Grid(g.west + C0 * g.cell, g.north - R0 * g.cell, g.cell, R1 - R0, C1 - C0, g.crs)
-                part, _ = fill_holes(Surface(sub, surface.z[R0:R1, C0:C1], surface.count[R0:R1, C0:C1],
-                                             surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
-                                     max_distance_m)
-                core = (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0))
-                rr, cc = np.nonzero(part.filled[core])
-                if len(rr):
-                    fills.append(((rr + r0) * g.ncols + cc + c0, part.z[core][rr, cc]))
-                del part
+
+        def jobs():
+            for r0 in range(0, g.nrows, wr):
+                for c0 in range(0, g.ncols, wc):
+                    r1, c1 = min(r0 + wr, g.nrows), min(c0 + wc, g.ncols)
+                    if scanned[r0:r1, c0:c1].all():
+                        continue
+                    R0, C0 = max(r0 - margin, 0), max(c0 - margin, 0)
+                    R1, C1 = min(r1 + margin, g.nrows), min(c1 + margin, g.ncols)
+                    if not scanned[R0:R1, C0:C1].any():
+                        continue
+                    sub = Grid(g.west + C0 * g.cell, g.north - R0 * g.cell, g.cell, R1 - R0, C1 - C0, g.crs)
+                    yield (Surface(sub, surface.z[R0:R1, C0:C1], surface.count[R0:R1, C0:C1],
+                                   surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
+                           max_distance_m, (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0)), r0, c0, g.ncols)
+
+        # (flat index, value) of each window: z changes only after every window has read it
+        runs = ex.map(_fill_window, jobs()) if ex is not None else (_fill_window(*job) for job in jobs())
+        fills = [f for f in runs if len(f[0])]
         for idx, values in fills:
             surface.z.ravel()[idx] = values
             filled.ravel()[idx] = True
@@ -583,24 +596,21 @@ def _fill_windows(surface: Surface, max_distance_m: float,
     return out, FillReport(int(filled.sum()), gaps.gap_cells, gaps.gap_area_m2, gaps.largest_gap_m2)
 
 
-def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,
-               workers: int | None, scheduler: str | None, threads: bool = False):
-    """Classified tiles in the order of ``tiles``, however they are run (so that every way
-    writes the same classified cloud and adds the surface sums in the same order)."""
-    from .scale_out import executor
-
-    with executor(workers, scheduler, threads=threads) as ex:
-        # A CRS travels to worker processes as WKT (pyproj CRS objects pickle as WKT anyway).
-        if ex.kind != "dask":
-            yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine) for t in tiles))
-            return
-        # Worker processes leave each classified tile in the spill folder and send back its
-        # name only: no tile of points is pickled through the scheduler.
-        for path in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine)
-                                                    for t in tiles)):
-            pts = _load(path)
-            path.unlink()
-            yield pts
+def _run_tiles(ex: Any, spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any,
+               engine: str):
+    """Classified tiles in the order of ``tiles``, however ``ex`` (an
+    :class:`~inventory.scale_out.Executor`) runs them (so that every way writes the same
+    classified cloud and adds the surface sums in the same order)."""
+    if ex.kind != "dask":
+        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine) for t in tiles))
+        return
+    # Worker processes leave each classified tile in the spill folder and send back its
+    # name only: no tile of points is pickled through the scheduler. A CRS travels as WKT.
+    for path in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine)
+                                                for t in tiles)):
+        pts = _load(path)
+        path.unlink()
+        yield pts
 
 
 def _classify_tile_to_file(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,

@@ -191,3 +191,29 @@ def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
     for d in dates:
         assert (tmp_path / "out" / d / f"surface-{d}.tif").is_file()
         assert (tmp_path / "out" / d / f"classified-{d}.laz").is_file()
+
+
+def test_fill_windows_on_two_worker_processes_match_serial():
+    # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
+    # the serial answer cell for cell.
+    from inventory.grid import Grid, Surface
+    from inventory.survey import _fill_windows
+
+    rng = np.random.default_rng(8)
+    g = Grid(500000.0, 6000300.0, 0.5, 200, 230, CRS)
+    rows, cols = np.mgrid[0:200, 0:230]
+    z = 100.0 + np.sin(cols / 9.0) + np.cos(rows / 7.0)
+    count = (rng.random(g.shape) > 0.15).astype(np.int32)
+    count[50:70, 100:140] = 0
+
+    def surface():
+        return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
+                       np.zeros(g.shape, bool), DATE, {})
+
+    serial, r1 = _fill_windows(surface(), 2.0, window=64)
+    with executor(2) as ex:
+        assert ex.kind == "dask"
+        both, r2 = _fill_windows(surface(), 2.0, window=64, ex=ex)
+    assert r1 == r2 and r1.filled_cells > 1000
+    np.testing.assert_array_equal(serial.z, both.z)
+    np.testing.assert_array_equal(serial.filled, both.filled)
