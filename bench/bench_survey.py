@@ -5,7 +5,7 @@ Usage::
     python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points
     python bench/bench_survey.py --sizes 1 10          # millions of points
     python bench/bench_survey.py --huge                # also 200 M points
-    python bench/bench_survey.py --workers 1 2         # also time local Dask clusters of 1 and 2 workers
+    python bench/bench_survey.py --workers 0 1 2       # serial, one single-threaded worker, 2 Dask workers
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
 
 Synthetic surveys are stockyards (``inventory.cloud.synthetic.make_yard``, piles, machines,
@@ -19,7 +19,12 @@ the memory of one yard. For each survey it prints, measured in the same run:
 * their ratio (issue 8 target: at most 3, aim 2);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
-* with ``--workers``: the speed-up of each worker count over the first one.
+* with ``--workers``: 0 is a serial run in this process (neighbour queries on every core),
+  1 a serial run whose jobs get one thread each (what one Dask worker of one thread does:
+  :func:`inventory.scale_out.job_threads`), N >= 2 a local Dask cluster of N processes;
+  the speed-up of each run over the one-worker run (else the first run), and the CPU
+  seconds of the run and its worker processes (the machine may be shared: wall times are
+  noisy, compare runs of one invocation).
 
 Each measurement runs in a fresh child process, so that one peak does not hide the next.
 Numbers only; nothing is asserted.
@@ -158,11 +163,17 @@ def _child(args: argparse.Namespace) -> int:
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t0 = time.perf_counter()
-            r = measure_survey(site, date, out_dir=tmp, workers=args.workers or None)
+            if args.workers == 1:
+                from inventory.scale_out import _in_job
+
+                r = _in_job(1, measure_survey, site, date, tmp)
+            else:
+                r = measure_survey(site, date, out_dir=tmp, workers=args.workers or None)
             dt = time.perf_counter() - t0
         out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary(),
                    children_rss_mb=watch.stop())
-    out.update(rss_mb=_peak_rss_mb())
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    out.update(rss_mb=_peak_rss_mb(), cpu_s=me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime)
     print("RESULT " + json.dumps(out), flush=True)
     return 0
 
@@ -184,19 +195,24 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
     print(f"  bare LAZ decode (laspy {dec['backend'] or 'lazrs'})  {rate_dec:12,.0f} points/s  "
           f"({dec['seconds']:.2f} s)", flush=True)
     first = None
+    base = None
     for w in workers:
         run = _measure(["survey", *src, "--workers", str(w)])
         rate = n / run["seconds"]
         steps = ", ".join(f"{k} {v:.1f} s" for k, v in run["timings"].items())
-        who = "serial" if w == 0 else f"{w} Dask worker{'s' * (w > 1)}"
-        line = (f"  survey step, {who:16s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps})\n"
-                f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB")
-        if w:
+        who = {0: "serial", 1: "1 worker, 1 thread"}.get(w, f"{w} Dask workers")
+        line = (f"  survey step, {who:18s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps})\n"
+                f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB"
+                f"   CPU {run['cpu_s']:.0f} s")
+        if w > 1:
             line += f" (largest worker {run['children_rss_mb']:,.0f} MB)"
+        if w == 1 and base is None:
+            base = run["seconds"]
         if first is None:
             first = run["seconds"]
-        elif w:
-            line += f"   speed-up over the first run {first / run['seconds']:.2f}x"
+        elif run["seconds"] not in (base, first):
+            ref = base if base is not None else first
+            line += f"   speed-up over the {'one-worker' if base is not None else 'first'} run {ref / run['seconds']:.2f}x"
         print(line, flush=True)
     print(f"  {run['summary']}", flush=True)
 
@@ -208,7 +224,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sizes", type=float, nargs="+", default=[1, 10, 50], help="millions of points")
     ap.add_argument("--huge", action="store_true", help="also 200 million points")
     ap.add_argument("--workers", type=int, nargs="+", default=[0],
-                    help="worker counts to time (0 = serial in-process; e.g. --workers 1 2)")
+                    help="runs to time: 0 serial, 1 one single-threaded worker, N>=2 a local Dask "
+                         "cluster of N processes (e.g. --workers 0 1 2)")
     ap.add_argument("--keep", help="folder for the generated LAZ files (default: a temporary folder)")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)

@@ -75,15 +75,24 @@ def _cmd_sample(args: argparse.Namespace) -> int:
 @_command("survey")
 def _cmd_survey(args: argparse.Namespace) -> int:
     from .site import load_site
-    from .survey import measure_survey
+    from .survey import measure_surveys
 
     site = load_site(args.site)
-    out_dir = args.out or (site.root / "surveys-processed" / args.date)
-    result = measure_survey(site, args.date, out_dir=out_dir, progress=_progress(args),
-                            workers=args.workers, scheduler=args.scheduler)
-    _out(result.format_summary())
-    for path in result.written:
-        _out(f"  {path}")
+    dates = sorted(site.surveys) if args.all else list(dict.fromkeys(args.date or []))
+    if not dates:
+        _err("error: name a survey with --date YYYY-MM-DD (repeatable) or give --all"
+             if not args.all else f"error: {site.root / 'surveys'}: no survey folder")
+        return EXIT_BAD_INPUT
+    if args.out is not None:
+        out_dirs = [args.out] if len(dates) == 1 else [args.out / d for d in dates]
+    else:
+        out_dirs = [site.root / "surveys-processed" / d for d in dates]
+    results = measure_surveys(site, dates, out_dirs, progress=_progress(args),
+                              workers=args.workers, scheduler=args.scheduler)
+    for result in results:
+        _out(result.format_summary())
+        for path in result.written:
+            _out(f"  {path}")
     return EXIT_OK
 
 
@@ -168,12 +177,16 @@ def build_parser() -> argparse.ArgumentParser:
                            help="run on an existing Dask cluster (e.g. tcp://host:8786)")
     scale_out.add_argument("-q", "--quiet", action="store_true", help="no progress lines")
 
-    p = sub.add_parser("survey", parents=[common, scale_out], help="process one survey: classified cloud, surface, coverage",
-                       description="Turn one survey's point clouds into a cleaned, classified cloud and a stockpile surface raster.")
+    p = sub.add_parser("survey", parents=[common, scale_out], help="process surveys: classified cloud, surface, coverage",
+                       description="Turn each survey's point clouds into a cleaned, classified cloud and a stockpile "
+                                   "surface raster. Several surveys run side by side with --workers or --scheduler.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
-    p.add_argument("--date", required=True, metavar="YYYY-MM-DD", help="survey folder name")
+    which = p.add_mutually_exclusive_group(required=True)
+    which.add_argument("--date", action="append", metavar="YYYY-MM-DD",
+                       help="survey folder name (repeat for several surveys)")
+    which.add_argument("--all", action="store_true", help="every survey of the site")
     p.add_argument("--out", type=Path, default=None, metavar="DIR",
-                   help="output folder (default SITE/surveys-processed/DATE)")
+                   help="output folder (default SITE/surveys-processed/DATE; with several surveys DIR/DATE)")
 
     p = sub.add_parser("close", parents=[common, scale_out], help="close one month: volumes, book, variance, outputs, ledger",
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")

@@ -14,7 +14,9 @@ ones before them are taken).
 * ``workers=N, threads=True``: a pool of N threads in this process. NumPy, SciPy's
   KD-tree and the LAZ codec release the GIL for most of the work.
 * ``workers=N``: a local Dask distributed cluster of N worker processes, one thread each
-  (``dask.distributed.LocalCluster``), started and closed here.
+  (``dask.distributed.LocalCluster``), started and closed here. Dask starts its workers
+  with one BLAS/OpenMP thread (``distributed.nanny.pre-spawn-environ``), and each job's
+  own parallel loops get the machine's cores shared among the workers (:func:`job_threads`).
 * ``scheduler=ADDRESS``: an existing Dask cluster (``tcp://host:8786``). Jobs and their
   arguments are pickled to the workers; tile jobs read their points from the spill folder,
   so the workers must see it (same machine, or a shared ``spill_dir``).
@@ -24,18 +26,45 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import os
+import threading
 from typing import Any, Callable, Iterable, Iterator
 
-__all__ = ["Executor", "executor"]
+__all__ = ["Executor", "executor", "job_threads"]
+
+_local = threading.local()
+
+
+def job_threads() -> int:
+    """Threads a job may use for its own parallel loops (SciPy ``cKDTree`` ``workers``).
+
+    ``-1`` (every core) in a serial run; inside a job run by an :class:`Executor` of
+    several workers, the cores of the machine shared among them (one each on a Dask
+    cluster at ``scheduler``, whose size its owner chose), so that N workers do not start
+    N x cores threads.
+    """
+    return getattr(_local, "threads", -1)
+
+
+def _in_job(threads: int, fn: Callable[..., Any], *args: Any) -> Any:
+    """Run ``fn(*args)`` with :func:`job_threads` set to ``threads`` (in a worker thread or process)."""
+    before = getattr(_local, "threads", -1)
+    _local.threads = threads
+    try:
+        return fn(*args)
+    finally:
+        _local.threads = before
 
 
 class Executor:
     """Runs ``fn(*args)`` jobs; see the module docstring. Use as a context manager."""
 
     def __init__(self, kind: str, workers: int, submit: Callable[..., Any], result: Callable[[Any], Any],
-                 close: Callable[[], None] = lambda: None, address: str | None = None) -> None:
+                 close: Callable[[], None] = lambda: None, address: str | None = None,
+                 job_threads: int = -1) -> None:
         self.kind = kind          # "serial" | "threads" | "dask"
         self.workers = workers
+        self.job_threads = job_threads
         self.address = address
         self._submit, self._result, self._close = submit, result, close
 
@@ -51,7 +80,7 @@ class Executor:
         window = max(1, window or 2 * self.workers)
         pending: collections.deque = collections.deque()
         for job in jobs:
-            pending.append(self._submit(fn, *job))
+            pending.append(self._submit(_in_job, self.job_threads, fn, *job))
             if len(pending) >= window:
                 yield self._result(pending.popleft())
         while pending:
@@ -92,16 +121,17 @@ def executor(workers: int | None = None, scheduler: str | None = None, *, thread
         client = Client(scheduler)
         n = max(1, len(client.scheduler_info().get("workers", {})))
         return Executor("dask", n, lambda fn, *a: client.submit(fn, *a, pure=False),
-                        lambda fut: fut.result(), client.close, address=scheduler)
+                        lambda fut: fut.result(), client.close, address=scheduler, job_threads=1)
     n = int(workers or 0)
     if n <= 1:
         return Executor("serial", 1, None, None)  # type: ignore[arg-type]
+    share = max(1, (os.cpu_count() or 1) // n)   # cores per worker
     if threads:
         from concurrent.futures import ThreadPoolExecutor
 
         pool = ThreadPoolExecutor(max_workers=n, thread_name_prefix="inventory")
         return Executor("threads", n, pool.submit, lambda fut: fut.result(),
-                        lambda: pool.shutdown(wait=True, cancel_futures=True))
+                        lambda: pool.shutdown(wait=True, cancel_futures=True), job_threads=share)
     from dask.distributed import Client, LocalCluster
 
     # One thread per process: the jobs are NumPy-bound and bring their own KD-tree threads.
@@ -119,4 +149,4 @@ def executor(workers: int | None = None, scheduler: str | None = None, *, thread
         cluster.close()
 
     return Executor("dask", n, lambda fn, *a: client.submit(fn, *a, pure=False), lambda fut: fut.result(),
-                    close, address=cluster.scheduler_address)
+                    close, address=cluster.scheduler_address, job_threads=share)

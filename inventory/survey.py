@@ -16,12 +16,14 @@
    Tiles run serially, on threads or on Dask (``workers``, ``scheduler``;
    :mod:`inventory.scale_out`) and come back in tile order, so every way writes the same
    files.
-4. **Grid** the surface class (ASPRS 2) streaming into the site grid; fill holes up to
-   ``[grid] max_fill_distance_m``; write ``surface-<date>.tif``, ``coverage-<date>.tif``
-   and ``classified-<date>.laz``.
+4. **Grid** the surface class (ASPRS 2) tile by tile into the site grid (a cell lies in
+   one tile); fill holes up to ``[grid] max_fill_distance_m`` window by window
+   (:data:`FILL_WINDOW_CELLS` cells and a margin); write ``surface-<date>.tif``,
+   ``coverage-<date>.tif`` and ``classified-<date>.laz``.
 
-Memory is the grid plus a few tiles (two per worker in flight), whatever the size of the
-files; ``bench/bench_survey.py`` measures it with the throughput.
+Memory is the output grid (about 21 bytes a cell) plus a few tiles (two per worker in
+flight) or one fill window, whatever the size of the files; ``bench/bench_survey.py``
+measures it with the throughput.
 """
 
 from __future__ import annotations
@@ -47,7 +49,7 @@ from .errors import CoverageWarning, CRSError, InputError, InputWarning, Pipelin
 from .grid import Grid, Surface
 from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
 
-__all__ = ["SurveyResult", "measure_survey", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
+__all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
 
 #: Tile edge in metres: 100 m x 100 m holds about 10-50 million scanner points at most.
 DEFAULT_TILE_M = 100.0
@@ -274,15 +276,28 @@ def _load(path: Path) -> np.ndarray:
     return np.fromfile(path, dtype=POINT_DTYPE)
 
 
+#: Points read at a time from a neighbouring tile's spill file (about 50 MB).
+_BLOCK = 1_000_000
+
+
 def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray, int]:
+    """A tile's points followed by its neighbours' points within ``buffer_m`` of it.
+
+    Neighbouring files are read in blocks of :data:`_BLOCK` points, so a tile never holds
+    its neighbours whole (eight of them inside a large survey).
+    """
     core = _load(spill.path(tile))
     x0, y0, x1, y1 = spill.box(tile)
     extra = []
     for nb in spill.neighbours(tile):
-        pts = _load(spill.path(nb))
-        m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
-            (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
-        extra.append(pts[m])
+        with open(spill.path(nb), "rb") as f:
+            while True:
+                pts = np.fromfile(f, dtype=POINT_DTYPE, count=_BLOCK)
+                if not len(pts):
+                    break
+                m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
+                    (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
+                extra.append(pts[m])
     return np.concatenate([core] + extra) if extra else core, len(core)
 
 
@@ -352,102 +367,103 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     if buffer_m > tile_size_m:
         raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
 
-    tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
-    try:
-        spill = _TileSpill(grid, tile_cells, tmp)
-        read = outside = 0
-        total = 0
-        for src in sources:
-            with open_cloud(src.path) as cloud:
-                total += cloud.count
-        max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
-        rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
-        for src in sources:
-            with open_cloud(src.path, chunk_size=chunk_size) as cloud:
-                reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
-                file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
-                for chunk in cloud.chunks():
-                    n_chunk = len(chunk)
-                    if src.pose is not None:
-                        chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
-                            chunk["X"], chunk["Y"], chunk["Z"])
-                    elif src.trajectory is not None:
-                        # Each point with the pose at its own GPS time; the sums are reported
-                        # once per file below, not once per chunk.
-                        own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
-                        xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
-                                                    warn=False, source=src.path.name)
-                        chunk = chunk[keep]
-                        chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
-                        chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
-                        for key in file_rejected:
-                            file_rejected[key] += c[key]
-                        file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
-                    elif not reproject.is_identity:
-                        chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
-                    chunk["PointSourceId"] = src.index
-                    outside += spill.add(chunk)
-                    read += n_chunk
-                    say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
-                if src.trajectory is not None:
-                    _warn_trajectory(src, file_rejected, max_gap_s)
-                    rejected["outside_span"] += file_rejected["outside_span"]
-                    rejected["in_gap"] += file_rejected["in_gap"]
-        timings["read"] = time.perf_counter() - t_start
+    from .scale_out import executor
 
-        t0 = time.perf_counter()
-        counts: dict[int, int] = {}
-        ground_box = [math.inf, math.inf, -math.inf, -math.inf]
-        kept = 0
-        writer = None
-        classified_path = None
-        if out_dir is not None and write_classified:
-            classified_path = Path(out_dir) / f"classified-{date}.laz"
-            writer = CloudWriter(classified_path, crs=site_crs,
-                                 offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
-        tiles = sorted(spill.counts)
+    # One executor for the tiles and the fill windows (a local cluster starts while reading).
+    with executor(workers, scheduler, threads=threads) as ex:
+        tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
         try:
-            for i, result in enumerate(_run_tiles(spill, tiles, buffer_m, pipe, site_crs, used_engine,
-                                                  workers, scheduler, threads)):
-                cls = result["Classification"]
-                for c, n in zip(*np.unique(cls, return_counts=True)):
-                    counts[int(c)] = counts.get(int(c), 0) + int(n)
-                kept += len(result)
-                g = result[cls == GROUND]
-                if len(g):
-                    ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
-                                  max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
-                    tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
-                    with open(tmp / f"ground_{tile}.bin", "ab") as f:
-                        np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+            spill = _TileSpill(grid, tile_cells, tmp)
+            read = outside = 0
+            total = 0
+            for src in sources:
+                with open_cloud(src.path) as cloud:
+                    total += cloud.count
+            max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
+            rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
+            for src in sources:
+                with open_cloud(src.path, chunk_size=chunk_size) as cloud:
+                    reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
+                    file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
+                    for chunk in cloud.chunks():
+                        n_chunk = len(chunk)
+                        if src.pose is not None:
+                            chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
+                                chunk["X"], chunk["Y"], chunk["Z"])
+                        elif src.trajectory is not None:
+                            # Each point with the pose at its own GPS time; the sums are reported
+                            # once per file below, not once per chunk.
+                            own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
+                            xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
+                                                        warn=False, source=src.path.name)
+                            chunk = chunk[keep]
+                            chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
+                            chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
+                            for key in file_rejected:
+                                file_rejected[key] += c[key]
+                            file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
+                        elif not reproject.is_identity:
+                            chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
+                        chunk["PointSourceId"] = src.index
+                        outside += spill.add(chunk)
+                        read += n_chunk
+                        say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
+                    if src.trajectory is not None:
+                        _warn_trajectory(src, file_rejected, max_gap_s)
+                        rejected["outside_span"] += file_rejected["outside_span"]
+                        rejected["in_gap"] += file_rejected["in_gap"]
+            timings["read"] = time.perf_counter() - t_start
+
+            t0 = time.perf_counter()
+            counts: dict[int, int] = {}
+            ground_box = [math.inf, math.inf, -math.inf, -math.inf]
+            kept = 0
+            writer = None
+            classified_path = None
+            if out_dir is not None and write_classified:
+                classified_path = Path(out_dir) / f"classified-{date}.laz"
+                writer = CloudWriter(classified_path, crs=site_crs,
+                                     offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
+            tiles = sorted(spill.counts)
+            try:
+                for i, result in enumerate(_run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, used_engine)):
+                    cls = result["Classification"]
+                    for c, n in zip(*np.unique(cls, return_counts=True)):
+                        counts[int(c)] = counts.get(int(c), 0) + int(n)
+                    kept += len(result)
+                    g = result[cls == GROUND]
+                    if len(g):
+                        ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
+                                      max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
+                        tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
+                        with open(tmp / f"ground_{tile}.bin", "ab") as f:
+                            np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+                    if writer is not None:
+                        writer.write(result)
+                    say(f"classifying: tile {i + 1} of {len(tiles)}")
+            except BaseException:
                 if writer is not None:
-                    writer.write(result)
-                say(f"classifying: tile {i + 1} of {len(tiles)}")
-        except BaseException:
+                    writer.close(ok=False)
+                raise
             if writer is not None:
-                writer.close(ok=False)
-            raise
-        if writer is not None:
-            writer.close()
-        timings["classify"] = time.perf_counter() - t0
+                writer.close()
+            timings["classify"] = time.perf_counter() - t0
 
-        # The surface grid covers the surface points only: far returns (ghosts, distant
-        # buildings) widen the files' header boxes but not the grid. Its origin is snapped
-        # to the cell size, so it lines up with every other survey of the site, and its
-        # tiles' edges fall on cell edges (what the median statistic needs).
-        t0 = time.perf_counter()
-        say("gridding the surface and filling holes")
-        if not math.isfinite(ground_box[0]):
-            raise RunError(f"survey {date}: no point was classified as surface")
-        sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
-        acc = SurfaceAccumulator(sgrid, grid_cfg.statistic)
-        for f in sorted(tmp.glob("ground_*.bin")):
-            xyz = np.fromfile(f).reshape(-1, 3)
-            acc.add(xyz[:, 0], xyz[:, 1], xyz[:, 2])
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+            # The surface grid covers the surface points only: far returns (ghosts, distant
+            # buildings) widen the files' header boxes but not the grid. Its origin is snapped
+            # to the cell size, so it lines up with every other survey of the site, and its
+            # tiles' edges fall on cell edges (what the median statistic needs).
+            t0 = time.perf_counter()
+            say("gridding the surface and filling holes")
+            if not math.isfinite(ground_box[0]):
+                raise RunError(f"survey {date}: no point was classified as surface")
+            sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
+            raw = _grid_tiles(spill, tmp, sgrid, grid_cfg.statistic, date)
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
 
-    surface, fill = fill_holes(acc.result(date), float(grid_cfg.max_fill_distance_m))
+        surface, fill = _fill_windows(raw, float(grid_cfg.max_fill_distance_m), ex=ex)
+        del raw
     surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
@@ -464,13 +480,208 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                         rejected["outside_span"], rejected["in_gap"])
 
 
-def _run_tiles(spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any, engine: str,
-               workers: int | None, scheduler: str | None, threads: bool = False):
-    """Classified tiles in the order of ``tiles``, however they are run (so that every way
-    writes the same classified cloud and adds the surface sums in the same order)."""
+def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date: str) -> Surface:
+    """The surface points of each tile (``tmp/ground_<tile>.bin``) gridded tile by tile.
+
+    A cell belongs to one tile (tile edges are cell edges of the spill grid, and ``sgrid``
+    is that grid shifted by whole cells), so each tile's cells are complete and are
+    computed with a :class:`~inventory.surface.SurfaceAccumulator` the size of the tile:
+    memory is the output grid plus one tile, never per-cell sums of the whole survey.
+    Cells are found once on the spill grid (as the tiles were) and shifted into ``sgrid``.
+    """
+    g = spill.grid
+    roff = int(round((g.north - sgrid.north) / g.cell))
+    coff = int(round((sgrid.west - g.west) / g.cell))
+    z = np.full(sgrid.shape, np.nan)
+    count = np.zeros(sgrid.shape, np.int32)
+    sd = np.full(sgrid.shape, np.nan)
+    for tile in sorted(spill.counts):
+        path = tmp / f"ground_{tile}.bin"
+        if not path.exists():
+            continue
+        xyz = np.fromfile(path).reshape(-1, 3)
+        row, col, _ = g.index(xyz[:, 0], xyz[:, 1])
+        row -= roff
+        col -= coff
+        r0, c0 = int(row.min()), int(col.min())
+        r1, c1 = int(row.max()) + 1, int(col.max()) + 1
+        # The tile's cells on a grid of unit cells at the origin: cell centres land in the
+        # cells already found, whatever the rounding of projected coordinates.
+        acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, sgrid.crs), statistic)
+        acc.add(col - c0 + 0.5, -(row - r0 + 0.5), xyz[:, 2])
+        part = acc.result(date)
+        have = part.count > 0
+        z[r0:r1, c0:c1][have] = part.z[have]
+        count[r0:r1, c0:c1][have] = part.count[have]
+        sd[r0:r1, c0:c1][have] = part.sd[have]
+    return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date, {"statistic": statistic})
+
+
+#: Hole filling runs on windows of this many cells a side (plus a margin), never on the
+#: whole survey; a grid of at most this squared cells is one window (as before windows).
+FILL_WINDOW_CELLS = 512
+
+
+def _fill_window(sub: Surface, max_distance_m: float, core: tuple[slice, slice], r0: int, c0: int,
+                 ncols: int) -> tuple[np.ndarray, np.ndarray]:
+    """One window of :func:`_fill_windows`: flat indices (in the whole grid) and values of
+    the cells filled in its core."""
+    part, _ = fill_holes(sub, max_distance_m)
+    rr, cc = np.nonzero(part.filled[core])
+    return (rr + r0) * ncols + cc + c0, part.z[core][rr, cc]
+
+
+def _fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WINDOW_CELLS,
+                  margin_reach: int = 4, ex: Any = None) -> tuple[Surface, FillReport]:
+    """:func:`~inventory.surface.fill_holes` window by window, with a margin.
+
+    A grid of at most ``window`` x ``window`` cells is filled whole, exactly as
+    :func:`fill_holes` does. A larger one is cut into windows of ``window`` cells, each
+    filled from itself and a margin of ``margin_reach`` times the reach of the fill (the
+    distance plus two cells) around it, keeping its own cells: memory is that of one
+    window, not of a Delaunay triangulation of the whole survey; windows run on ``ex`` (an
+    :class:`~inventory.scale_out.Executor`) when given. A cell's fill then comes
+    from the scanned cells within the margin around its window. Against one triangulation
+    of the whole grid, what differs is the choice among equally Delaunay diagonals of
+    cocircular cells (the lattice is full of them, and Qhull's choice depends on every
+    input point) and triangles stretched across gaps wider than the margin. Measured on the
+    sample site's surface tiled 3 x 3 (1.7 million cells, 435,000 filled): 44,554 filled
+    values differ, median 1.2 mm, 99th percentile 16 cm, largest 0.63 m; 3,009 cells
+    filled by the whole-grid triangulation only; a wider margin (8 or 16 times) changes
+    this little. CPU 20 s against 31 s, peak memory 350 MB against 1.1 GB. The windows are
+    fixed by the grid, so the result does not depend on how the survey was run. The
+    report's enclosed gaps are found on the whole grid, as :func:`fill_holes` finds them.
+
+    ``surface`` is consumed: its ``z`` becomes the filled surface's.
+    """
+    g = surface.grid
+    reach = int(math.ceil(max_distance_m / g.cell)) + 2 if max_distance_m > 0 else 0
+    scanned = surface.count > 0
+    filled = np.zeros(g.shape, bool)
+    if reach and (~scanned).any():
+        if g.nrows * g.ncols <= window * window:
+            wr, wc, margin = g.nrows, g.ncols, 0
+        else:
+            wr, wc, margin = window, window, margin_reach * reach
+
+        def jobs():
+            for r0 in range(0, g.nrows, wr):
+                for c0 in range(0, g.ncols, wc):
+                    r1, c1 = min(r0 + wr, g.nrows), min(c0 + wc, g.ncols)
+                    if scanned[r0:r1, c0:c1].all():
+                        continue
+                    R0, C0 = max(r0 - margin, 0), max(c0 - margin, 0)
+                    R1, C1 = min(r1 + margin, g.nrows), min(c1 + margin, g.ncols)
+                    if not scanned[R0:R1, C0:C1].any():
+                        continue
+                    sub = Grid(g.west + C0 * g.cell, g.north - R0 * g.cell, g.cell, R1 - R0, C1 - C0, g.crs)
+                    yield (Surface(sub, surface.z[R0:R1, C0:C1], surface.count[R0:R1, C0:C1],
+                                   surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
+                           max_distance_m, (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0)), r0, c0, g.ncols)
+
+        # (flat index, value) of each window: z changes only after every window has read it
+        runs = ex.map(_fill_window, jobs()) if ex is not None else (_fill_window(*job) for job in jobs())
+        fills = [f for f in runs if len(f[0])]
+        for idx, values in fills:
+            surface.z.ravel()[idx] = values
+            filled.ravel()[idx] = True
+        del fills
+    # Enclosed gaps left empty, on the whole grid: cells with a value count as covered.
+    covered = surface.count.copy()
+    covered[filled] = 1
+    _, gaps = fill_holes(Surface(g, surface.z, covered, surface.sd, filled, surface.date), 0.0)
+    del covered
+    out = Surface(g, surface.z, surface.count, surface.sd, filled, surface.date,
+                  dict(surface.meta, max_fill_distance_m=max_distance_m))
+    return out, FillReport(int(filled.sum()), gaps.gap_cells, gaps.gap_area_m2, gaps.largest_gap_m2)
+
+
+def _run_tiles(ex: Any, spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any,
+               engine: str):
+    """Classified tiles in the order of ``tiles``, however ``ex`` (an
+    :class:`~inventory.scale_out.Executor`) runs them (so that every way writes the same
+    classified cloud and adds the surface sums in the same order)."""
+    if ex.kind != "dask":
+        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine) for t in tiles))
+        return
+    # Worker processes leave each classified tile in the spill folder and send back its
+    # name only: no tile of points is pickled through the scheduler. A CRS travels as WKT.
+    for path in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine)
+                                                for t in tiles)):
+        pts = _load(path)
+        path.unlink()
+        yield pts
+
+
+def _classify_tile_to_file(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
+                           engine: str) -> Path:
+    """:func:`_classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
+    in the spill folder, whose path is returned."""
+    out = _classify_tile(spill, tile, buffer_m, pipeline, crs, engine)
+    path = spill.folder / f"classified_{tile}.bin"
+    out.tofile(path)
+    return path
+
+
+def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
+                kw: dict[str, Any]) -> tuple[SurveyResult, list[warnings.WarningMessage]]:
+    """One survey as a job of :func:`measure_surveys`: its result and the warnings it raised
+    (a worker process cannot show them; the caller raises them again)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = measure_survey(site, date, out_dir, **kw)
+    return result, [w for w in caught]
+
+
+def measure_surveys(site: Any, dates: "list[str]", out_dirs: "list[str | Path | None] | None" = None,
+                    progress: Progress | None = None, *, workers: int | None = None,
+                    scheduler: str | None = None, threads: bool = False,
+                    **kw: Any) -> list[SurveyResult]:
+    """Several surveys of a site, each as :func:`measure_survey`, in the order of ``dates``.
+
+    Surveys share nothing, so with ``workers`` or ``scheduler`` they run side by side (one
+    survey per worker, its tiles serially within it) on an executor of
+    :mod:`inventory.scale_out`; a single survey runs its tiles on the workers instead.
+    Either way the files and results are those of serial runs. Warnings raised by a survey
+    are raised again here, in the order of ``dates``.
+
+    Parameters
+    ----------
+    site : Site
+    dates : list of str
+        Survey dates (folders under ``surveys/``), each at most once.
+    out_dirs : list, optional
+        Output folder of each date (``None`` writes nothing); default nothing is written.
+    progress : callable, optional
+        Given to each survey when they run one after the other; with several workers, one
+        line per survey finished.
+    workers, scheduler, threads
+        As for :func:`measure_survey`.
+    **kw
+        Other keyword arguments of :func:`measure_survey` (``pipeline``, ``engine``,
+        ``tile_size_m``, ...).
+    """
     from .scale_out import executor
 
+    dates = list(dates)
+    if len(set(dates)) != len(dates):
+        raise ValueError(f"a survey date is given twice: {dates}")
+    out_dirs = list(out_dirs) if out_dirs is not None else [None] * len(dates)
+    if len(out_dirs) != len(dates):
+        raise ValueError("out_dirs must give one folder per date")
+    for date in dates:
+        _survey_ref(site, date)          # an unknown date fails before any work starts
+    parallel = len(dates) > 1 and (scheduler or (workers or 0) > 1)
+    if not parallel:
+        return [measure_survey(site, d, o, progress, workers=workers, scheduler=scheduler, threads=threads, **kw)
+                for d, o in zip(dates, out_dirs)]
+    say = progress or (lambda text: None)
+    results = []
     with executor(workers, scheduler, threads=threads) as ex:
-        # A CRS travels to worker processes as WKT (pyproj CRS objects pickle as WKT anyway).
-        crs_arg = crs if ex.kind != "dask" else crs.to_wkt()
-        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs_arg, engine) for t in tiles))
+        jobs = ((site, d, o, kw) for d, o in zip(dates, out_dirs))
+        for i, (result, caught) in enumerate(ex.map(_survey_job, jobs, window=len(dates))):
+            for w in caught:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+            say(f"survey {result.date} done ({i + 1} of {len(dates)})")
+            results.append(result)
+    return results

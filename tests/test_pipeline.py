@@ -67,6 +67,20 @@ def test_statistical_outliers_match_brute_force():
     assert got[-5:].all()
 
 
+def test_statistical_outliers_do_not_depend_on_point_order():
+    # Neighbours are searched in Z-order of 1 m blocks; a cloud over many blocks, in any
+    # order, gives the brute-force answer (as above) point for point.
+    rng = np.random.default_rng(11)
+    xyz = np.vstack([rng.random((1500, 3)) * [30.0, 20.0, 1.0], rng.random((8, 3)) * 40 + [0, 0, 5]])
+    d = np.sqrt(((xyz[:, None, :] - xyz[None, :, :]) ** 2).sum(-1))
+    d.sort(axis=1)
+    mean_d = d[:, 1:5].mean(axis=1)
+    ref = mean_d >= mean_d.mean() + 3.0 * mean_d.std(ddof=1)
+    assert 0 < ref.sum() < 50
+    for perm in (np.arange(len(xyz)), rng.permutation(len(xyz)), np.arange(len(xyz))[::-1]):
+        np.testing.assert_array_equal(statistical_outliers(xyz[perm], 4, 3.0), ref[perm])
+
+
 def test_elm_matches_pdal_walk():
     # PDAL ELMFilter::cull: per cell, from the lowest point up, mark while the gap to the
     # next point is >= threshold; the top point of a cell is never marked.

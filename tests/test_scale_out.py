@@ -7,6 +7,7 @@ LocalCluster of two worker processes (the tiles and the pipeline are pickled to 
 
 from __future__ import annotations
 
+import dataclasses
 import types
 import warnings
 
@@ -94,3 +95,125 @@ def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
         for dim in ("X", "Y", "Z", "classification"):
             np.testing.assert_array_equal(np.asarray(las[dim]), np.asarray(ref_las[dim]))
         assert _volume(other, yard).volume_m3 == v0.volume_m3
+
+
+def _two_survey_site(root, density=6.0):
+    dates = ["2026-09-30", "2026-10-31"]
+    refs = {}
+    for seed, date in zip((4, 5), dates):
+        folder = root / "surveys" / date
+        folder.mkdir(parents=True)
+        write_cloud(folder / "yard.laz", make_yard(density=density, pad_density=density / 4, seed=seed).points, CRS)
+        refs[date] = types.SimpleNamespace(folder=folder, files=[folder / "yard.laz"], stations=None)
+    grid = types.SimpleNamespace(cell_size_m=0.5, max_fill_distance_m=3.0, statistic="mean")
+    site = types.SimpleNamespace(
+        root=root, crs=CRS,
+        config=types.SimpleNamespace(grid=grid, survey=types.SimpleNamespace(default_crs=None, pipeline=None)),
+        surveys=refs)
+    return site, dates
+
+
+def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
+    # Independent surveys run one per Dask worker process; each gives what a serial run of
+    # it gives, file for file, and the results come back in the order of the dates.
+    from inventory.survey import measure_surveys
+
+    site, dates = _two_survey_site(tmp_path / "site")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        serial = measure_surveys(site, dates, [tmp_path / "serial" / d for d in dates], tile_size_m=40.0)
+        both = measure_surveys(site, dates, [tmp_path / "dask" / d for d in dates], workers=2, tile_size_m=40.0)
+    assert [r.date for r in both] == dates
+    assert not np.array_equal(serial[0].surface.count, serial[1].surface.count)   # two different surveys
+    for a, b in zip(serial, both):
+        assert a.surface.grid == b.surface.grid
+        np.testing.assert_array_equal(a.surface.z, b.surface.z)
+        np.testing.assert_array_equal(a.surface.filled, b.surface.filled)
+        assert a.class_counts == b.class_counts
+        for name in ("surface", "coverage"):
+            assert (a.surface_path.parent / f"{name}-{a.date}.tif").read_bytes() == \
+                (b.surface_path.parent / f"{name}-{b.date}.tif").read_bytes()
+        la, lb = laspy.read(a.classified_path), laspy.read(b.classified_path)
+        for dim in ("X", "Y", "Z", "classification"):
+            np.testing.assert_array_equal(np.asarray(la[dim]), np.asarray(lb[dim]))
+    with pytest.raises(ValueError, match="given twice"):
+        measure_surveys(site, [dates[0], dates[0]])
+
+
+def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
+    # Holes filled window by window (here 64 cells, so many windows and holes across their
+    # edges) against fill_holes on the whole grid: on a plane, linear interpolation gives
+    # the plane in any triangle (a linear function is reproduced exactly: from memory), so
+    # the values agree to rounding and the filled cells and gap report exactly.
+    from inventory.grid import Grid, Surface
+    from inventory.surface import fill_holes
+    from inventory.survey import _fill_windows
+
+    rng = np.random.default_rng(2)
+    g = Grid(500000.0, 6000300.0, 0.5, 300, 340, CRS)
+    rows, cols = np.mgrid[0:300, 0:340]
+    z = 100.0 + 0.03 * cols - 0.02 * rows
+    count = np.ones(g.shape, np.int32)
+    for r, c in rng.integers(0, 300, size=(60, 2)):         # holes of radius 1-4 cells
+        count[(rows - r) ** 2 + (cols - c) ** 2 <= rng.integers(1, 5) ** 2] = 0
+    count[100:140, 200:260] = 0                              # one gap wider than the fill distance
+    surface = Surface(g, np.where(count > 0, z, np.nan), count, np.full(g.shape, np.nan),
+                      np.zeros(g.shape, bool), DATE, {"statistic": "mean"})
+    whole, whole_report = fill_holes(surface, 2.0)
+    # a grid of at most window x window cells is filled whole: exactly fill_holes
+    one, one_report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=340)
+    assert one_report == whole_report
+    np.testing.assert_array_equal(one.z, whole.z)
+    np.testing.assert_array_equal(one.filled, whole.filled)
+    windowed, report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=64)
+    assert report == whole_report and report.filled_cells > 500 and report.gap_cells > 0
+    np.testing.assert_array_equal(windowed.filled, whole.filled)
+    np.testing.assert_allclose(windowed.z[windowed.filled], z[windowed.filled], rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(windowed.count, surface.count)
+    assert windowed.meta["max_fill_distance_m"] == 2.0
+
+
+def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
+    import inventory.site
+    from inventory.cli import build_parser, main
+
+    args = build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--date", "2026-10-31"])
+    assert args.date == ["2026-09-30", "2026-10-31"] and not args.all
+    with pytest.raises(SystemExit):
+        build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--all"])   # one or the other
+    site, dates = _two_survey_site(tmp_path / "site", density=2.0)
+    monkeypatch.setattr(inventory.site, "load_site", lambda root: site)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["survey", str(site.root), "--all", "--out", str(tmp_path / "out"), "-q"]) == 0
+    out = capsys.readouterr().out
+    assert out.index("survey 2026-09-30:") < out.index("survey 2026-10-31:")
+    for d in dates:
+        assert (tmp_path / "out" / d / f"surface-{d}.tif").is_file()
+        assert (tmp_path / "out" / d / f"classified-{d}.laz").is_file()
+
+
+def test_fill_windows_on_two_worker_processes_match_serial():
+    # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
+    # the serial answer cell for cell.
+    from inventory.grid import Grid, Surface
+    from inventory.survey import _fill_windows
+
+    rng = np.random.default_rng(8)
+    g = Grid(500000.0, 6000300.0, 0.5, 200, 230, CRS)
+    rows, cols = np.mgrid[0:200, 0:230]
+    z = 100.0 + np.sin(cols / 9.0) + np.cos(rows / 7.0)
+    count = (rng.random(g.shape) > 0.15).astype(np.int32)
+    count[50:70, 100:140] = 0
+
+    def surface():
+        return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
+                       np.zeros(g.shape, bool), DATE, {})
+
+    serial, r1 = _fill_windows(surface(), 2.0, window=64)
+    with executor(2) as ex:
+        assert ex.kind == "dask"
+        both, r2 = _fill_windows(surface(), 2.0, window=64, ex=ex)
+    assert r1 == r2 and r1.filled_cells > 1000
+    np.testing.assert_array_equal(serial.z, both.z)
+    np.testing.assert_array_equal(serial.filled, both.filled)

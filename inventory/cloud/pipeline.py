@@ -36,6 +36,9 @@ Stages of the built-in runner (options; PDAL defaults unless noted)
     filename (required), a_srs, minor_version 4, dataformat_id 6, compression,
     scale_x/y/z (0.001 here, not PDAL's 0.01), offset_x/y/z.
 
+A stage function ``_stage(stage, pts, ctx)`` returns the points after the stage; it may change
+``pts`` in place (:meth:`Pipeline.run` works on its own copy of the caller's points).
+
 Every stage also takes PDAL's ``tag`` and ``user_data``; ``inputs`` may only name the
 stage just before (pipelines here are linear).
 
@@ -193,13 +196,14 @@ def _outlier(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
         bad = statistical_outliers(xyz, _as_int(o["mean_k"], "mean_k"), _as_float(o["multiplier"], "multiplier"))
     elif method == "radius":
         from scipy.spatial import cKDTree
-        n = cKDTree(xyz).query_ball_point(xyz, _as_float(o["radius"], "radius"), return_length=True, workers=-1)
+
+        from ..scale_out import job_threads
+        n = cKDTree(xyz).query_ball_point(xyz, _as_float(o["radius"], "radius"), return_length=True, workers=job_threads())
         bad = n <= _as_int(o["min_k"], "min_k")
     else:
         raise PipelineError(f"filters.outlier method must be 'statistical' or 'radius', got {o['method']!r}")
     if bad.all():  # PDAL leaves the view unchanged rather than mark every point
         return pts
-    pts = pts.copy()
     pts["Classification"][bad] = _class(o["class"], "class")
     return pts
 
@@ -208,7 +212,6 @@ def _elm(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     o = stage.options
     low = elm_low_points(pts["X"], pts["Y"], pts["Z"], _as_float(o["cell"], "cell"),
                          _as_float(o["threshold"], "threshold"))
-    pts = pts.copy()
     pts["Classification"][low] = _class(o["class"], "class")
     return pts
 
@@ -256,7 +259,6 @@ def _csf(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     only = _as_bool(o["only_ground"], "only_ground")
     if gc == oc and not only:
         raise PipelineError("filters.csf: ground and non-ground class cannot be equal when only_ground is false")
-    pts = pts.copy()
     cls = pts["Classification"]
     cls[idx[g]] = gc
     if not only:
@@ -270,7 +272,6 @@ _VALUE_RE = re.compile(r"^\s*(?P<dim>[A-Za-z_][A-Za-z0-9_]*)\s*=\s*(?P<val>[-+0-
 
 def _assign(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     o = stage.options
-    pts = pts.copy()
     cond = np.ones(len(pts), bool)
     if o["condition"]:
         cond = limits_mask(pts, _ranges(o["condition"]))
@@ -337,7 +338,6 @@ def _reproject(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     if src is None:
         raise PipelineError("filters.reprojection: the cloud has no CRS; give 'in_srs'")
     dst = parse_crs(o["out_srs"], field="out_srs")
-    pts = pts.copy()
     pts["X"], pts["Y"], pts["Z"] = ctx.transformers.get(src, dst)(pts["X"], pts["Y"], pts["Z"])
     ctx.crs = dst
     return pts
@@ -375,7 +375,6 @@ def _slope_ground(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
                                    "face_slope_deg", "face_attached", "max_top_area")})
     ignore = limits_mask(pts, _ranges(o["ignore"])) if o["ignore"] else np.zeros(len(pts), bool)
     cls, _ = slope_ground(pts["X"], pts["Y"], pts["Z"], pts["Classification"], ignore, params)
-    pts = pts.copy()
     pts["Classification"] = cls
     return pts
 
@@ -511,7 +510,9 @@ class Pipeline:
         if engine == "pdal" and not pdal_available():
             raise PipelineError("engine 'pdal' asked for, but PDAL's Python bindings do not import")
         ctx = _Context(parse_crs(crs) if crs is not None else None)
-        pts = empty_points() if points is None else points
+        # One copy for the whole run: stages change the points they are given in place
+        # (classes, coordinates) and never the caller's array.
+        pts = empty_points() if points is None else points.copy()
         i = 0
         while i < len(self.stages):
             s = self.stages[i]
