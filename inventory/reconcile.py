@@ -68,9 +68,10 @@ REASON_CODES: dict[str, str] = {
     "NOT_SURVEYED": "no survey figure for the pile: book carried forward unadjusted",
     "SCALE_BIAS": "at least half of it explained by the estimated bias of a named belt scale, the rest "
                   "within k sigma: have the scale checked",
+    "TRANSFER_SUSPECT": "mirrors an opposite variance on another pile of the same material (one of "
+                        "the two significant, the pair's transfer estimate beyond k sigma): suspected "
+                        "unrecorded transfer",
     "WITHIN_SIGMA": "variance within k sigma of zero: inside the combined uncertainty of survey and book",
-    "TRANSFER_SUSPECT": "mirrors an opposite variance on another pile of the same material: "
-                        "suspected unrecorded transfer",
     "WITHIN_TOL": "significant but within the material's tolerance: routine stock adjustment",
     "UNEXPLAINED": "significant and out of tolerance with no explanation found: investigate before posting",
 }
@@ -102,6 +103,12 @@ FIXED_BASES = ("floor", "level")
 #: fit (an unrecorded transfer or a wrong density there must not be read as a scale bias).
 #: 3 sigma: common practice for outlier rejection.
 REJECT_Z = 3.0
+
+#: A variance pairs with a significant opposite one as the other side of a suspected
+#: transfer only if it leans that way by at least this many of its own sigmas (our choice:
+#: one sigma keeps a pile whose variance is noise around zero out of a pair, and lets a
+#: poorly scanned receiving pile in).
+PAIR_PARTNER_MIN_Z = 1.0
 
 #: A scale bias is only named when at least this many pile-months bear on it: with one pile,
 #: a scale bias cannot be told from an error on that pile.
@@ -609,20 +616,32 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             scale_of.setdefault(pid, []).append(r.scale_id)
     residual = p["variance_t"] - fitted
     sig = p["variance_sigma_t"]
-    # pairs of opposite significant variances of one material that cancel within k sigma
-    cand = [i for i in range(n) if p.loc[i, "significant"] and not (
+    # Pairs of opposite variances of one material that cancel within k sigma: at least one
+    # significant, the other leaning the mirror way by PAIR_PARTNER_MIN_Z of its own sigma
+    # (a poorly scanned pile can hide the receiving side of a transfer in its own sigma).
+    # The transfer is estimated from both by weighted least squares: t = sum(w_i |v_i|) /
+    # sum(w_i), w = 1/sigma^2, sigma_t = 1/sqrt(sum w); the pair needs |t| > k sigma_t.
+    cand = [i for i in range(n) if np.isfinite(p.loc[i, "survey_t"]) and not (
         p.loc[i, "pile_id"] in scale_of and abs(residual[i]) <= k * sig[i])]
     pairs = []
     for i, j in itertools.combinations(cand, 2):
         if p.loc[i, "material"] != p.loc[j, "material"] or np.sign(residual[i]) == np.sign(residual[j]):
             continue
-        s = np.hypot(sig[i], sig[j])
-        if abs(residual[i] + residual[j]) <= k * s:
-            pairs.append((abs(residual[i] + residual[j]) / max(s, 1e-12), i, j))
-    partner: dict[int, int] = {}
-    for _, i, j in sorted(pairs):
+        if not (p.loc[i, "significant"] or p.loc[j, "significant"]):
+            continue
+        si, sj = max(sig[i], 1e-12), max(sig[j], 1e-12)
+        if min(abs(residual[i]) / si, abs(residual[j]) / sj) < PAIR_PARTNER_MIN_Z:
+            continue
+        s = np.hypot(si, sj)
+        w = np.array([si ** -2, sj ** -2])
+        t = float(np.sum(w * np.abs([residual[i], residual[j]])) / w.sum())
+        st = float(1.0 / np.sqrt(w.sum()))
+        if abs(residual[i] + residual[j]) <= k * s and t > k * st:
+            pairs.append((abs(residual[i] + residual[j]) / s, i, j, t, st))
+    partner: dict[int, tuple[int, float, float]] = {}
+    for _, i, j, t, st in sorted(pairs):
         if i not in partner and j not in partner:
-            partner[i], partner[j] = j, i
+            partner[i], partner[j] = (j, t, st), (i, t, st)
     for i in range(n):
         pid = p.loc[i, "pile_id"]
         v = p.loc[i, "variance_t"]
@@ -633,20 +652,23 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             code[i] = "SCALE_BIAS"
             text[i] = f"{fitted[i]:+.1f} t of {v:+.1f} t explained by belt scale {', '.join(scale_of[pid])}"
             flags[i] = "scale:" + ",".join(scale_of[pid])
+        elif i in partner:
+            j, t, st = partner[i]
+            other = p.loc[j, "pile_id"]
+            code[i] = "TRANSFER_SUSPECT"
+            own = f"{v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
+            theirs = f"{residual[j]:+.1f} t"
+            src, dst = (pid, other) if v < 0 else (other, pid)
+            text[i] = (f"{own} mirrors {theirs} on pile {other}: suspected unrecorded transfer of about "
+                       f"{t:.0f} t (+/- {st:.0f} t) from {src} to {dst}")
+            if not p.loc[i, "significant"]:
+                text[i] += f" ({v:+.1f} t alone is within {k:g} sigma, {k * sig[i]:.1f} t)"
+            flags[i] = f"pair:{other}"
         elif not p.loc[i, "significant"]:
             code[i] = "WITHIN_SIGMA"
             text[i] = f"{v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
             if p.loc[i, "out_of_tolerance"]:
                 text[i] += " although out of tolerance: the measurement is too uncertain to judge this pile"
-        elif i in partner:
-            other = p.loc[partner[i], "pile_id"]
-            code[i] = "TRANSFER_SUSPECT"
-            own = f"{v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
-            j = partner[i]
-            theirs = f"{residual[j]:+.1f} t"
-            text[i] = (f"{own} mirrors {theirs} on pile {other}: "
-                       f"suspected unrecorded transfer {'to' if v < 0 else 'from'} {other}")
-            flags[i] = f"pair:{other}"
         elif not p.loc[i, "out_of_tolerance"]:
             code[i] = "WITHIN_TOL"
             text[i] = f"{v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) within the {p.loc[i, 'tolerance_pct']:g} % tolerance"

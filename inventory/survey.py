@@ -47,7 +47,7 @@ from .cloud.pipeline import Pipeline, load_pipeline, pdal_available
 from .cloud.trajectory import DEFAULT_MAX_GAP_S, Trajectory, georeference, read_trajectories
 from .errors import CoverageWarning, CRSError, InputError, InputWarning, PipelineError, RunError
 from .grid import Grid, Surface
-from .surface import FillReport, SurfaceAccumulator, fill_holes, write_coverage, write_surface
+from .surface import FillReport, SurfaceAccumulator, fill_holes, object_cells, write_coverage, write_surface
 
 __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
 
@@ -438,6 +438,13 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                         tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
                         with open(tmp / f"ground_{tile}.bin", "ab") as f:
                             np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+                    # Object returns (not surface, not noise) tell the grid which surface
+                    # cells lie on an object (inventory.surface.object_cells).
+                    o = result[~np.isin(cls, (GROUND, LOW_NOISE, HIGH_NOISE))]
+                    if len(o):
+                        tile = int(spill.tile_of(o["X"][:1], o["Y"][:1])[0][0])
+                        with open(tmp / f"objects_{tile}.bin", "ab") as f:
+                            np.column_stack([o["X"], o["Y"], o["Z"]]).tofile(f)
                     if writer is not None:
                         writer.write(result)
                     say(f"classifying: tile {i + 1} of {len(tiles)}")
@@ -488,6 +495,13 @@ def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date:
     computed with a :class:`~inventory.surface.SurfaceAccumulator` the size of the tile:
     memory is the output grid plus one tile, never per-cell sums of the whole survey.
     Cells are found once on the spill grid (as the tiles were) and shifted into ``sgrid``.
+
+    The object returns of each tile (``tmp/objects_<tile>.bin``) are gridded alongside;
+    the highest and lowest surface point and the lowest object return of every cell are
+    kept for the whole grid (three grids more), and
+    :func:`~inventory.surface.object_cells` takes out the surface cells that lie on an
+    object over the whole grid at once, so a vehicle or a wall on a tile edge is judged
+    as it would be in one piece.
     """
     g = spill.grid
     roff = int(round((g.north - sgrid.north) / g.cell))
@@ -495,26 +509,50 @@ def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date:
     z = np.full(sgrid.shape, np.nan)
     count = np.zeros(sgrid.shape, np.int32)
     sd = np.full(sgrid.shape, np.nan)
-    for tile in sorted(spill.counts):
-        path = tmp / f"ground_{tile}.bin"
+    top = np.full(sgrid.shape, -np.inf)
+    bottom = np.full(sgrid.shape, np.inf)
+    low_object = np.full(sgrid.shape, np.inf)
+
+    def cells(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if not path.exists():
-            continue
+            return np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0)
         xyz = np.fromfile(path).reshape(-1, 3)
         row, col, _ = g.index(xyz[:, 0], xyz[:, 1])
-        row -= roff
-        col -= coff
-        r0, c0 = int(row.min()), int(col.min())
-        r1, c1 = int(row.max()) + 1, int(col.max()) + 1
+        row, col = row - roff, col - coff
+        # object returns beyond the surface's extent have no cell to judge
+        keep = (row >= 0) & (row < sgrid.nrows) & (col >= 0) & (col < sgrid.ncols)
+        return row[keep], col[keep], xyz[keep, 2]
+
+    for tile in sorted(spill.counts):
+        row, col, zg = cells(tmp / f"ground_{tile}.bin")
+        orow, ocol, zo = cells(tmp / f"objects_{tile}.bin")
+        if not len(row) and not len(orow):
+            continue
+        both_r, both_c = np.concatenate([row, orow]), np.concatenate([col, ocol])
+        r0, c0 = int(both_r.min()), int(both_c.min())
+        r1, c1 = int(both_r.max()) + 1, int(both_c.max()) + 1
         # The tile's cells on a grid of unit cells at the origin: cell centres land in the
         # cells already found, whatever the rounding of projected coordinates.
         acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, sgrid.crs), statistic)
-        acc.add(col - c0 + 0.5, -(row - r0 + 0.5), xyz[:, 2])
-        part = acc.result(date)
+        if len(row):
+            acc.add(col - c0 + 0.5, -(row - r0 + 0.5), zg)
+        if len(orow):
+            acc.add_objects(ocol - c0 + 0.5, -(orow - r0 + 0.5), zo)
+        part = acc.result_without_objects(date)
         have = part.count > 0
         z[r0:r1, c0:c1][have] = part.z[have]
         count[r0:r1, c0:c1][have] = part.count[have]
         sd[r0:r1, c0:c1][have] = part.sd[have]
-    return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date, {"statistic": statistic})
+        t, b, lo = acc.extremes()
+        # tiles' cell boxes never overlap (tile edges are cell edges)
+        top[r0:r1, c0:c1], bottom[r0:r1, c0:c1], low_object[r0:r1, c0:c1] = t, b, lo
+    covered = object_cells(count > 0, top, bottom, low_object, sgrid.cell_area)
+    del top, bottom, low_object
+    z[covered] = np.nan
+    count[covered] = 0
+    sd[covered] = np.nan
+    return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date,
+                   {"statistic": statistic, "object_cells": int(covered.sum())})
 
 
 #: Hole filling runs on windows of this many cells a side (plus a margin), never on the

@@ -222,6 +222,26 @@ def test_outlier_pile_is_left_out_of_the_fit_and_paired_as_a_transfer():
     assert (p.loc[["P1", "P2", "P3"], "reason_code"] == "SCALE_BIAS").all()
 
 
+def test_a_poorly_scanned_receiver_still_pairs_and_noise_does_not():
+    # A: -400 t +/- 30 t (significant). B: +450 t +/- 250 t (1.8 sigma: not significant alone,
+    # but leaning the mirror way by more than one sigma). Sum +50 t within 2 x hypot(30, 250).
+    # Joint estimate (WLS): w = 1/900, 1/62500 -> t = (400/900 + 450/62500) / (1/900 + 1/62500)
+    # = 400.71 t, sigma 1/sqrt(1/900 + 1/62500) = 29.79 t.
+    sig = {"A": 30.0, "B": 250.0, "C": 250.0}
+    book = book_from({"A": 5000.0, "B": 5000.0, "C": 5000.0})
+    r = reconcile(survey_of({"A": 4600.0, "B": 5450.0, "C": 5000.0}, sig), book, MATERIALS)
+    p = r.piles.set_index("pile_id")
+    assert p.loc["A", "significant"] and not p.loc["B", "significant"]
+    assert p.loc["A", "reason_code"] == p.loc["B", "reason_code"] == "TRANSFER_SUSPECT"
+    assert "about 401 t (+/- 30 t) from A to B" in p.loc["B", "reason"]
+    assert "alone is within 2 sigma" in p.loc["B", "reason"]
+    # C's +20 t on 250 t is noise (0.08 sigma): it does not become A's partner
+    r = reconcile(survey_of({"A": 4600.0, "B": 5000.0, "C": 5020.0}, sig), book, MATERIALS)
+    p = r.piles.set_index("pile_id")
+    assert p.loc["A", "reason_code"] == "UNEXPLAINED"
+    assert p.loc["C", "reason_code"] == "WITHIN_SIGMA"
+
+
 def test_opposite_variances_of_different_materials_are_not_paired():
     book = book_from({"A": 1000.0, "B": 1000.0}, materials={"A": "coal", "B": "ore"})
     r = reconcile(survey_of({"A": 1100.0, "B": 900.0}, 1.0), book, MATERIALS)

@@ -193,15 +193,28 @@ def test_unrecorded_transfer_is_a_pair_of_opposite_significant_variances(closes,
     src, dst, tonnes = fault["from_pile"], fault["to_pile"], fault["tonnes"]
     _, rec = closes["2026-10"]
     p = rec.piles.set_index("pile_id")
-    assert p.loc[src, "significant"] and p.loc[dst, "significant"]
+    # FE2 (the source, 86 % scanned) is significant on its own. FE1 (the receiver) leans
+    # the right way by more than one of its sigmas but not two: a fifth of it was hidden
+    # behind the loader at its reclaim face, and the interpolation sigma of that shadow is
+    # about 100 m3 (240 t). The pair is what shows the transfer: both variances, opposite,
+    # cancelling, and their joint estimate far beyond 2 sigma.
+    assert p.loc[src, "significant"]
+    assert p.loc[dst, "variance_t"] > p.loc[dst, "variance_sigma_t"]
     assert p.loc[src, "variance_t"] < 0 < p.loc[dst, "variance_t"]
     for pile in (src, dst):
         assert abs(p.loc[pile, "variance_t"]) == pytest.approx(tonnes, abs=2 * p.loc[pile, "variance_sigma_t"])
         assert p.loc[pile, "reason_code"] == "TRANSFER_SUSPECT"
+    import re
+
+    m = re.search(r"transfer of about (\d+) t \(\+/- (\d+) t\) from (\w+) to (\w+)", p.loc[dst, "reason"])
+    assert m and (m[3], m[4]) == (src, dst), p.loc[dst, "reason"]
+    estimate, sigma = float(m[1]), float(m[2])
+    assert estimate > 2 * sigma and abs(estimate - tonnes) <= 2 * sigma
     assert f"pair:{dst}" in p.loc[src, "flags"] and f"pair:{src}" in p.loc[dst, "flags"]
     # the change table says the same without the opening balance
     c = rec.change.set_index("pile_id")
-    assert c.loc[src, "significant"] and c.loc[dst, "significant"]
+    assert c.loc[src, "significant"] and c.loc[dst, "difference_t"] > c.loc[dst, "difference_sigma_t"]
+    assert c.loc[src, "difference_t"] < 0 < c.loc[dst, "difference_t"]
     # and no other pile is paired
     assert set(p.index[p["reason_code"] == "TRANSFER_SUSPECT"]) == {src, dst}
 

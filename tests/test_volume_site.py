@@ -224,15 +224,6 @@ def test_sample_site_interval_covers_truth():
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(
-    strict=True,
-    reason="needs the survey step to feed object returns to SurfaceAccumulator.add_objects "
-    "(inventory/survey.py, issue 8's file): without them, at 2026-10-31 S1 is 2.5 % low (single "
-    "returns on the bay's wall tops called surface, and the strip along its west wall filled across "
-    "the wall from the pad) and FE1 1.25 % high (its loader's roof called surface and filled around). "
-    "With them every pile of 1,000 m3 or more was within 1 % (largest S1 -0.84 %, FE1 +0.41 %) and "
-    "all 14 pile-surveys inside their 95 % intervals. Remove this marker with that change.",
-)
 def test_sample_site_big_piles_within_one_percent():
     _need_sample()
     errors = {}

@@ -111,6 +111,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..errors import PipelineError
+from ..scale_out import job_threads
 from .classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
@@ -229,7 +230,7 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
         return np.full(n, np.inf)
     if knn is None:
         xy = np.column_stack([x, y])
-        knn = cKDTree(xy).query(xy, k=min(k + 1, n), workers=-1)
+        knn = cKDTree(xy).query(xy, k=min(k + 1, n), workers=job_threads())
     d, nb = knn
     t = math.tan(math.radians(params.max_slope_deg))
     e = np.multiply(d, t)
@@ -257,7 +258,7 @@ class _PlanNeighbours:
         self.d = self.nb = self.tree = None
         if n >= 2:
             self.tree = cKDTree(self.xy)
-            self.d, self.nb = self.tree.query(self.xy, k=min(self.K, n), workers=-1)
+            self.d, self.nb = self.tree.query(self.xy, k=min(self.K, n), workers=job_threads())
 
     def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None
                ) -> tuple[np.ndarray, np.ndarray]:
@@ -272,7 +273,7 @@ class _PlanNeighbours:
         k = min(k, len(idx))
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
             sub = self.xy[idx]
-            d, nb = cKDTree(sub).query(self.xy[sel], k=max(k, 1), workers=-1)
+            d, nb = cKDTree(sub).query(self.xy[sel], k=max(k, 1), workers=job_threads())
             return d.reshape(len(sel), -1), nb.reshape(len(sel), -1)
         if len(idx) == len(members):
             if rows is None:
@@ -287,7 +288,7 @@ class _PlanNeighbours:
         while len(mixed):
             # more neighbours from the same tree; members first, in distance order: the
             # j-th member of a row goes to column j
-            d, nb = self.tree.query(self.xy[sel[mixed]], k=min(m, len(members)), workers=-1)
+            d, nb = self.tree.query(self.xy[sel[mixed]], k=min(m, len(members)), workers=job_threads())
             d, nb = d.reshape(len(mixed), -1), nb.reshape(len(mixed), -1)
             vm = members[np.minimum(nb, len(members) - 1)] & np.isfinite(d)
             rank = np.cumsum(vm, axis=1)
@@ -625,7 +626,7 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         return out
     xyz = np.column_stack([x[idx], y[idx], z[idx]])
     if near is None or len(near["idx"]) < 2:
-        d, _ = cKDTree(xyz).query(xyz, k=2, workers=-1)
+        d, _ = cKDTree(xyz).query(xyz, k=2, workers=job_threads())
         out[idx[d[:, 1] > ISOLATION_M]] = True
         return out
     sup, d, nb, dz = near["idx"], near["d"], near["nb"], near["dz"]
@@ -640,7 +641,7 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         rest = rest[~ok]
     if len(rest):
         short = (np.cumsum(member) - 1)[rest]    # positions in idx
-        d2 = cKDTree(xyz).query(xyz[short], k=2, workers=-1)[0][:, 1]
+        d2 = cKDTree(xyz).query(xyz[short], k=2, workers=job_threads())[0][:, 1]
         out[idx[short[d2 > ISOLATION_M]]] = True
     return out
 
@@ -698,7 +699,7 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     cand = np.flatnonzero(plan | deep)
     if len(cand):
         xyz = np.column_stack([xs, ys, zs])
-        d4 = cKDTree(xyz).query(xyz[cand], k=4, workers=-1)[0][:, -1]
+        d4 = cKDTree(xyz).query(xyz[cand], k=4, workers=job_threads())[0][:, -1]
         deep[cand] &= d4 > 1.0
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
         # is part of something, not a stray return.
