@@ -226,7 +226,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--workers", type=int, nargs="+", default=[0],
                     help="runs to time: 0 serial, 1 one single-threaded worker, N>=2 a local Dask "
                          "cluster of N processes (e.g. --workers 0 1 2)")
-    ap.add_argument("--keep", help="folder for the generated LAZ files (default: a temporary folder)")
+    ap.add_argument("--keep", help="folder where the generated LAZ files are written and kept, and "
+                    "reused by later runs (default: a temporary folder, removed)")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)
     args, rest = ap.parse_known_args(argv)
@@ -238,16 +239,23 @@ def main(argv: list[str] | None = None) -> int:
         _report(f"{args.site} {args.date or 'latest'}", src, args.workers)
         return 0
     sizes = list(args.sizes) + ([200] if args.huge else [])
-    with tempfile.TemporaryDirectory(dir=args.keep) as tmp:
+    keep = Path(args.keep) if args.keep else None
+    if keep is not None:
+        keep.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory() as tmp:
         for m in sizes:
             n = int(m * 1_000_000)
-            path = Path(tmp) / f"survey-{m:g}M.laz"
-            t0 = time.perf_counter()
-            written = write_survey(path, n)
-            print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
-                  f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
+            path = (keep or Path(tmp)) / f"survey-{m:g}M.laz"
+            if keep is not None and path.is_file():
+                print(f"reusing {path} ({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
+            else:
+                t0 = time.perf_counter()
+                written = write_survey(path, n)
+                print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
+                      f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
             _report(f"synthetic survey {m:g} M", ["--file", str(path)], args.workers)
-            path.unlink()
+            if keep is None:
+                path.unlink()
     return 0
 
 
