@@ -71,6 +71,24 @@ _BALANCE_DDL = ",\n    ".join(
 
 # Deletes and edits are refused by triggers, not by convention, so that a tool other than
 # ours (a DB browser) cannot quietly rewrite what was adopted.
+#: The belt-scale fit rows of each close (schema 2), kept and read-only like the rest.
+_SCALE_FIT_TABLE = """CREATE TABLE scale_fit_rows (
+    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
+    line          INTEGER NOT NULL,
+    pile_id       TEXT NOT NULL,
+    scale_id      TEXT,
+    signed_t      REAL NOT NULL,
+    variance_t    REAL,
+    noise_sigma_t REAL,
+    PRIMARY KEY (close_id, line)
+);
+"""
+_SCALE_FIT_TRIGGERS = """CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
+CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
+    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
+"""
+
 _SCHEMA = f"""
 CREATE TABLE schema_version (
     version     INTEGER NOT NULL,
@@ -112,17 +130,7 @@ CREATE TABLE inputs (
     sha256   TEXT NOT NULL CHECK (length(sha256) = 64),
     PRIMARY KEY (close_id, path)
 );
-CREATE TABLE scale_fit_rows (
-    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
-    line          INTEGER NOT NULL,
-    pile_id       TEXT NOT NULL,
-    scale_id      TEXT,
-    signed_t      REAL NOT NULL,
-    variance_t    REAL,
-    noise_sigma_t REAL,
-    PRIMARY KEY (close_id, line)
-);
-CREATE TABLE reopenings (
+{_SCALE_FIT_TABLE}CREATE TABLE reopenings (
     reopen_id    INTEGER PRIMARY KEY,
     period       TEXT NOT NULL,
     close_id     INTEGER NOT NULL REFERENCES closes(close_id),
@@ -157,11 +165,7 @@ CREATE TRIGGER inputs_keep BEFORE DELETE ON inputs
     BEGIN SELECT RAISE(ABORT, 'input hashes are kept forever'); END;
 CREATE TRIGGER inputs_frozen BEFORE UPDATE ON inputs
     BEGIN SELECT RAISE(ABORT, 'input hashes cannot be edited'); END;
-CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
-CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
-CREATE TRIGGER reopenings_keep BEFORE DELETE ON reopenings
+{_SCALE_FIT_TRIGGERS}CREATE TRIGGER reopenings_keep BEFORE DELETE ON reopenings
     BEGIN SELECT RAISE(ABORT, 'reopenings are kept forever'); END;
 CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
     BEGIN SELECT RAISE(ABORT, 'reopenings cannot be edited'); END;
@@ -173,23 +177,7 @@ CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
 #: 1 -> 2: ``balances.base_sigma_t`` (the fixed-base part of the survey sigma, NULL for
 #: closes made before: no shared part known) and the belt-scale fit rows of each close.
 _MIGRATIONS: dict[int, str] = {
-    1: """
-ALTER TABLE balances ADD COLUMN base_sigma_t REAL;
-CREATE TABLE scale_fit_rows (
-    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
-    line          INTEGER NOT NULL,
-    pile_id       TEXT NOT NULL,
-    scale_id      TEXT,
-    signed_t      REAL NOT NULL,
-    variance_t    REAL,
-    noise_sigma_t REAL,
-    PRIMARY KEY (close_id, line)
-);
-CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
-CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
-""",
+    1: "ALTER TABLE balances ADD COLUMN base_sigma_t REAL;\n" + _SCALE_FIT_TABLE + _SCALE_FIT_TRIGGERS,
 }
 
 #: Columns of :meth:`Ledger.scale_fit_history` (as ``inventory.reconcile.BIAS_ROW_COLUMNS``).
