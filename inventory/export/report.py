@@ -241,7 +241,7 @@ def _pile_rows(p: pd.DataFrame) -> tuple[list[list[str]], list[str]]:
             _num(2 * r.variance_sigma_t), _num(r.tolerance_pct),
             _num(_flag(r.significant)), _num(_flag(r.out_of_tolerance)),
             _num(r.adjustment_t, signed=True), _num(r.closing_t),
-            html.escape(str(r.flags or "")),
+            html.escape(str(r.flags or "").replace(";", "; ")),
         ])
         classes.append("oot" if _flag(r.out_of_tolerance)
                        else ("sig" if _flag(r.significant) else ""))
