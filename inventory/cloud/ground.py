@@ -303,6 +303,14 @@ class _PlanNeighbours:
         return dd, np.take(pos, nn)
 
 
+def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
+    """Row and column of each point on the region rules' grid of cell ``c`` (origin at the
+    points' lowest x and y), and the grid's shape."""
+    col = ((x - x.min()) // c).astype(np.int64)
+    row = ((y - y.min()) // c).astype(np.int64)
+    return row, col, (int(row.max()) + 1, int(col.max()) + 1)
+
+
 def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
                     params: SlopeGroundParams, knn: "tuple[np.ndarray, np.ndarray] | None" = None
                     ) -> np.ndarray:
@@ -334,10 +342,7 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     if not cand.any():
         return out
     c = 2 * params.cell
-    x0, y0 = x.min(), y.min()
-    col = ((x - x0) // c).astype(np.int64)
-    row = ((y - y0) // c).astype(np.int64)
-    shape = (int(row.max()) + 1, int(col.max()) + 1)
+    row, col, shape = _region_cells(x, y, c)
 
     size = shape[0] * shape[1]
 
@@ -443,10 +448,7 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     if not ground.any() or ground.all():
         return out
     c = 2 * params.cell
-    x0, y0 = x.min(), y.min()
-    col = ((x - x0) // c).astype(np.int64)
-    row = ((y - y0) // c).astype(np.int64)
-    shape = (int(row.max()) + 1, int(col.max()) + 1)
+    row, col, shape = _region_cells(x, y, c)
     k = row * shape[1] + col
     size = shape[0] * shape[1]
     has_g = (np.bincount(k[ground], minlength=size) > 0).reshape(shape)
@@ -554,10 +556,7 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
         return out
     c = 2 * params.cell
     t = math.tan(math.radians(max(params.face_slope_deg, params.max_slope_deg)))
-    x0, y0 = x.min(), y.min()
-    col = ((x - x0) // c).astype(np.int64)
-    row = ((y - y0) // c).astype(np.int64)
-    shape = (int(row.max()) + 1, int(col.max()) + 1)
+    row, col, shape = _region_cells(x, y, c)
     k = row * shape[1] + col
     size = shape[0] * shape[1]
     n = np.bincount(k[ground], minlength=size)
