@@ -435,16 +435,12 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                     if len(g):
                         ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
                                       max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
-                        tile = int(spill.tile_of(g["X"][:1], g["Y"][:1])[0][0])
-                        with open(tmp / f"ground_{tile}.bin", "ab") as f:
-                            np.column_stack([g["X"], g["Y"], g["Z"]]).tofile(f)
+                        _append_xyz(spill, tmp, "ground", g)
                     # Object returns (not surface, not noise) tell the grid which surface
                     # cells lie on an object (inventory.surface.object_cells).
                     o = result[~np.isin(cls, (GROUND, LOW_NOISE, HIGH_NOISE))]
                     if len(o):
-                        tile = int(spill.tile_of(o["X"][:1], o["Y"][:1])[0][0])
-                        with open(tmp / f"objects_{tile}.bin", "ab") as f:
-                            np.column_stack([o["X"], o["Y"], o["Z"]]).tofile(f)
+                        _append_xyz(spill, tmp, "objects", o)
                     if writer is not None:
                         writer.write(result)
                     say(f"classifying: tile {i + 1} of {len(tiles)}")
@@ -485,6 +481,14 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     return SurveyResult(date, surface, classified_path, surface_path, coverage_path, counts, read, kept,
                         outside, fill, [s.path for s in sources], used_engine, timings,
                         rejected["outside_span"], rejected["in_gap"])
+
+
+def _append_xyz(spill: _TileSpill, tmp: Path, kind: str, pts: np.ndarray) -> None:
+    """Append one classified tile's points (all in one tile) to ``tmp/<kind>_<tile>.bin``
+    as float64 x, y, z rows, read back by :func:`_grid_tiles`."""
+    tile = int(spill.tile_of(pts["X"][:1], pts["Y"][:1])[0][0])
+    with open(tmp / f"{kind}_{tile}.bin", "ab") as f:
+        np.column_stack([pts["X"], pts["Y"], pts["Z"]]).tofile(f)
 
 
 def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date: str) -> Surface:
