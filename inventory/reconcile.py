@@ -437,8 +437,8 @@ def _scale_diagnostics(
     scale_ids = sorted(x for x in now["scale_id"].dropna().unique())
     if not scale_ids:
         return pd.DataFrame(columns=SCALE_COLUMNS), fitted, now
-    month = _bias_fit(now, scale_ids)
-    pooled = _bias_fit(pd.concat([past, now], ignore_index=True), scale_ids) if len(past) else None
+    month = _BiasFit(now, scale_ids)
+    pooled = _BiasFit(pd.concat([past, now], ignore_index=True), scale_ids) if len(past) else None
 
     out = []
     for j, sid in enumerate(scale_ids):
@@ -571,10 +571,6 @@ class _BiasFit:
         """(pile, X) of the latest period's rows that scale ``j`` fed."""
         now = (self.keys["period"] == self.last).to_numpy()
         return [(str(self.keys.loc[i, "pile_id"]), float(self.X[i, j])) for i in np.where(now & (self.X[:, j] != 0))[0]]
-
-
-def _bias_fit(rows: pd.DataFrame, scale_ids: list[str]) -> _BiasFit:
-    return _BiasFit(rows, scale_ids)
 
 
 def _same_sign_note(p: pd.DataFrame, piles_fed: list[str]) -> str:

@@ -13,7 +13,7 @@ roof) are then recognised by the object returns beside or below them
 like any unscanned cell. On the sample site (survey 2026-10-31) this removed all 156
 loader and 215 of the 240 wall-top points the classifier had called surface, at the cost of
 about 650 true surface points (380 of 80,000 cells, then filled); with :func:`lone_patches`
-it took FE1 from +3.33 % to +0.41 % of its true volume and S1 from -2.53 % to -0.84 %.
+it took FE1 from +3.33 % to +0.37 % of its true volume and S1 from -2.53 % to -0.84 %.
 
 Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
 the scanned cell centres (what scipy ``griddata(method="linear")`` does, in grid
