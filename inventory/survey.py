@@ -302,11 +302,69 @@ def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray
 
 
 def _classify_tile(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
-                   engine: str) -> np.ndarray:
+                   engine: str, statistic: str = "mean") -> tuple[np.ndarray, "_TileCells | None"]:
+    """A tile's own points, classified with its neighbours' points around it, and its cells
+    gridded (:func:`_grid_tile`)."""
     pts, _ = _tile_job(spill, tile, buffer_m)
     out, _ = pipeline.run(pts, crs, engine=engine)
     own, _ = spill.tile_of(out["X"], out["Y"])
-    return out[own == tile]
+    out = out[own == tile]
+    return out, _grid_tile(spill.grid, out, statistic)
+
+
+@dataclass
+class _TileCells:
+    """One tile's cells, rows ``r0:r0 + shape[0]`` and columns ``c0:c0 + shape[1]`` of the
+    spill grid: the surface statistic, count and spread of its surface points (no cell
+    taken out for objects), and per cell the highest and lowest surface point and the
+    lowest object return (what :func:`~inventory.surface.object_cells` needs)."""
+
+    r0: int
+    c0: int
+    z: np.ndarray
+    count: np.ndarray
+    sd: np.ndarray
+    top: np.ndarray
+    bottom: np.ndarray
+    low_object: np.ndarray
+
+    def save(self, path: Path) -> Path:
+        np.savez(path, r0=self.r0, c0=self.c0, z=self.z, count=self.count, sd=self.sd, top=self.top,
+                 bottom=self.bottom, low_object=self.low_object)
+        return path
+
+    @classmethod
+    def load(cls, path: Path) -> "_TileCells":
+        with np.load(path) as f:
+            return cls(int(f["r0"]), int(f["c0"]), f["z"], f["count"], f["sd"], f["top"], f["bottom"],
+                       f["low_object"])
+
+
+def _grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> "_TileCells | None":
+    """Grid one classified tile's surface points and object returns (not surface, not
+    noise) on its cells of the spill grid ``g``; ``None`` when it has neither.
+
+    A cell belongs to one tile (tile edges are cell edges), so a tile's cells are
+    complete: this runs inside the tile's job, on the workers when there are any.
+    """
+    cls = pts["Classification"]
+    ground = cls == GROUND
+    objects = ~np.isin(cls, (GROUND, LOW_NOISE, HIGH_NOISE))
+    if not ground.any() and not objects.any():
+        return None
+    row, col, _ = g.index(pts["X"], pts["Y"])
+    r0, c0 = int(row.min()), int(col.min())
+    r1, c1 = int(row.max()) + 1, int(col.max()) + 1
+    # The tile's cells on a grid of unit cells at the origin: cell centres land in the
+    # cells already found, whatever the rounding of projected coordinates.
+    acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, g.crs), statistic)
+    if ground.any():
+        acc.add(col[ground] - c0 + 0.5, -(row[ground] - r0 + 0.5), pts["Z"][ground])
+    if objects.any():
+        acc.add_objects(col[objects] - c0 + 0.5, -(row[objects] - r0 + 0.5), pts["Z"][objects])
+    part = acc.result_without_objects()
+    top, bottom, low_object = acc.extremes()
+    return _TileCells(r0, c0, part.z, part.count, part.sd, top, bottom, low_object)
 
 
 def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
@@ -425,8 +483,10 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                 writer = CloudWriter(classified_path, crs=site_crs,
                                      offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
             tiles = sorted(spill.counts)
+            cell_files: list[Path] = []
             try:
-                for i, result in enumerate(_run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, used_engine)):
+                for i, (result, cells) in enumerate(_run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs,
+                                                                 used_engine, grid_cfg.statistic)):
                     cls = result["Classification"]
                     for c, n in zip(*np.unique(cls, return_counts=True)):
                         counts[int(c)] = counts.get(int(c), 0) + int(n)
@@ -435,12 +495,8 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                     if len(g):
                         ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
                                       max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
-                        _append_xyz(spill, tmp, "ground", g)
-                    # Object returns (not surface, not noise) tell the grid which surface
-                    # cells lie on an object (inventory.surface.object_cells).
-                    o = result[~np.isin(cls, (GROUND, LOW_NOISE, HIGH_NOISE))]
-                    if len(o):
-                        _append_xyz(spill, tmp, "objects", o)
+                    if cells is not None:
+                        cell_files.append(cells.save(tmp / f"cells_{tiles[i]}.npz"))
                     if writer is not None:
                         writer.write(result)
                     say(f"classifying: tile {i + 1} of {len(tiles)}")
@@ -461,7 +517,7 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
             if not math.isfinite(ground_box[0]):
                 raise RunError(f"survey {date}: no point was classified as surface")
             sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
-            raw = _grid_tiles(spill, tmp, sgrid, grid_cfg.statistic, date)
+            raw = _grid_tiles(spill.grid, cell_files, sgrid, grid_cfg.statistic, date)
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
 
@@ -483,31 +539,18 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
                         rejected["outside_span"], rejected["in_gap"])
 
 
-def _append_xyz(spill: _TileSpill, tmp: Path, kind: str, pts: np.ndarray) -> None:
-    """Append one classified tile's points (all in one tile) to ``tmp/<kind>_<tile>.bin``
-    as float64 x, y, z rows, read back by :func:`_grid_tiles`."""
-    tile = int(spill.tile_of(pts["X"][:1], pts["Y"][:1])[0][0])
-    with open(tmp / f"{kind}_{tile}.bin", "ab") as f:
-        np.column_stack([pts["X"], pts["Y"], pts["Z"]]).tofile(f)
+def _grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, date: str) -> Surface:
+    """The surface grid ``sgrid`` put together from the tiles' cells (:class:`_TileCells`
+    saved in ``cell_files``, gridded on the spill grid ``g`` by each tile's job).
 
-
-def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date: str) -> Surface:
-    """The surface points of each tile (``tmp/ground_<tile>.bin``) gridded tile by tile.
-
-    A cell belongs to one tile (tile edges are cell edges of the spill grid, and ``sgrid``
-    is that grid shifted by whole cells), so each tile's cells are complete and are
-    computed with a :class:`~inventory.surface.SurfaceAccumulator` the size of the tile:
-    memory is the output grid plus one tile, never per-cell sums of the whole survey.
-    Cells are found once on the spill grid (as the tiles were) and shifted into ``sgrid``.
-
-    The object returns of each tile (``tmp/objects_<tile>.bin``) are gridded alongside;
-    the highest and lowest surface point and the lowest object return of every cell are
-    kept for the whole grid (three grids more), and
-    :func:`~inventory.surface.object_cells` takes out the surface cells that lie on an
-    object over the whole grid at once, so a vehicle or a wall on a tile edge is judged
-    as it would be in one piece.
+    ``sgrid`` is ``g`` shifted by whole cells; each tile's block is shifted into it and
+    clipped (object returns beyond the surface's extent have no cell to judge). Memory is
+    the output grid plus one tile's cells, never per-cell sums of the whole survey. The
+    highest and lowest surface point and the lowest object return of every cell are kept
+    for the whole grid (three grids more), and :func:`~inventory.surface.object_cells`
+    takes out the surface cells that lie on an object over the whole grid at once, so a
+    vehicle or a wall on a tile edge is judged as it would be in one piece.
     """
-    g = spill.grid
     roff = int(round((g.north - sgrid.north) / g.cell))
     coff = int(round((sgrid.west - g.west) / g.cell))
     z = np.full(sgrid.shape, np.nan)
@@ -516,40 +559,23 @@ def _grid_tiles(spill: _TileSpill, tmp: Path, sgrid: Grid, statistic: str, date:
     top = np.full(sgrid.shape, -np.inf)
     bottom = np.full(sgrid.shape, np.inf)
     low_object = np.full(sgrid.shape, np.inf)
-
-    def cells(path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        if not path.exists():
-            return np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0)
-        xyz = np.fromfile(path).reshape(-1, 3)
-        row, col, _ = g.index(xyz[:, 0], xyz[:, 1])
-        row, col = row - roff, col - coff
-        # object returns beyond the surface's extent have no cell to judge
-        keep = (row >= 0) & (row < sgrid.nrows) & (col >= 0) & (col < sgrid.ncols)
-        return row[keep], col[keep], xyz[keep, 2]
-
-    for tile in sorted(spill.counts):
-        row, col, zg = cells(tmp / f"ground_{tile}.bin")
-        orow, ocol, zo = cells(tmp / f"objects_{tile}.bin")
-        if not len(row) and not len(orow):
+    for path in cell_files:
+        t = _TileCells.load(path)
+        # the block's rows and columns in sgrid, clipped to it
+        r0, c0 = t.r0 - roff, t.c0 - coff
+        r1, c1 = r0 + t.z.shape[0], c0 + t.z.shape[1]
+        R0, C0 = max(r0, 0), max(c0, 0)
+        R1, C1 = min(r1, sgrid.nrows), min(c1, sgrid.ncols)
+        if R0 >= R1 or C0 >= C1:
             continue
-        both_r, both_c = np.concatenate([row, orow]), np.concatenate([col, ocol])
-        r0, c0 = int(both_r.min()), int(both_c.min())
-        r1, c1 = int(both_r.max()) + 1, int(both_c.max()) + 1
-        # The tile's cells on a grid of unit cells at the origin: cell centres land in the
-        # cells already found, whatever the rounding of projected coordinates.
-        acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, sgrid.crs), statistic)
-        if len(row):
-            acc.add(col - c0 + 0.5, -(row - r0 + 0.5), zg)
-        if len(orow):
-            acc.add_objects(ocol - c0 + 0.5, -(orow - r0 + 0.5), zo)
-        part = acc.result_without_objects(date)
-        have = part.count > 0
-        z[r0:r1, c0:c1][have] = part.z[have]
-        count[r0:r1, c0:c1][have] = part.count[have]
-        sd[r0:r1, c0:c1][have] = part.sd[have]
-        t, b, lo = acc.extremes()
-        # tiles' cell boxes never overlap (tile edges are cell edges)
-        top[r0:r1, c0:c1], bottom[r0:r1, c0:c1], low_object[r0:r1, c0:c1] = t, b, lo
+        src = (slice(R0 - r0, R1 - r0), slice(C0 - c0, C1 - c0))
+        dst = (slice(R0, R1), slice(C0, C1))
+        have = t.count[src] > 0
+        z[dst][have] = t.z[src][have]
+        count[dst][have] = t.count[src][have]
+        sd[dst][have] = t.sd[src][have]
+        # tiles' cell blocks never overlap (tile edges are cell edges)
+        top[dst], bottom[dst], low_object[dst] = t.top[src], t.bottom[src], t.low_object[src]
     covered = object_cells(count > 0, top, bottom, low_object, sgrid.cell_area)
     del top, bottom, low_object
     z[covered] = np.nan
@@ -639,30 +665,36 @@ def _fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WI
 
 
 def _run_tiles(ex: Any, spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any,
-               engine: str):
-    """Classified tiles in the order of ``tiles``, however ``ex`` (an
-    :class:`~inventory.scale_out.Executor`) runs them (so that every way writes the same
-    classified cloud and adds the surface sums in the same order)."""
+               engine: str, statistic: str = "mean"):
+    """Classified tiles and their cells (:func:`_classify_tile`) in the order of ``tiles``,
+    however ``ex`` (an :class:`~inventory.scale_out.Executor`) runs them (so that every
+    way writes the same classified cloud)."""
     if ex.kind != "dask":
-        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine) for t in tiles))
+        yield from ex.map(_classify_tile, ((spill, t, buffer_m, pipe, crs, engine, statistic) for t in tiles))
         return
     # Worker processes leave each classified tile in the spill folder and send back its
-    # name only: no tile of points is pickled through the scheduler. A CRS travels as WKT.
-    for path in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine)
-                                                for t in tiles)):
+    # name and its cells only: no tile of points is pickled through the scheduler. A CRS
+    # travels as WKT. The results are that small, so more tiles may wait finished than
+    # there are workers: a large tile then holds up neither worker.
+    for path, cells in ex.map(_classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine, statistic)
+                                                       for t in tiles), window=TILES_IN_FLIGHT * ex.workers):
         pts = _load(path)
         path.unlink()
-        yield pts
+        yield pts, cells
+
+
+#: Tiles submitted to each Dask worker and not yet taken back (see :func:`_run_tiles`).
+TILES_IN_FLIGHT = 4
 
 
 def _classify_tile_to_file(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
-                           engine: str) -> Path:
+                           engine: str, statistic: str = "mean") -> tuple[Path, "_TileCells | None"]:
     """:func:`_classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
-    in the spill folder, whose path is returned."""
-    out = _classify_tile(spill, tile, buffer_m, pipeline, crs, engine)
+    in the spill folder, whose path is returned with the tile's cells."""
+    out, cells = _classify_tile(spill, tile, buffer_m, pipeline, crs, engine, statistic)
     path = spill.folder / f"classified_{tile}.bin"
     out.tofile(path)
-    return path
+    return path, cells
 
 
 def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
