@@ -728,6 +728,22 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     height : ndarray of float
         Height above the slope-limited envelope (NaN where it could not be computed).
     """
+    # Neighbour queries run two to three times faster on points that are near in memory
+    # when they are near in space; the stage works in that order and answers in the caller's.
+    from .clean import spatial_order
+
+    order = spatial_order(x, y)
+    cls, height = _slope_ground(x[order], y[order], z[order], classification[order], ignore[order], params)
+    out_cls = np.empty_like(cls)
+    out_h = np.empty_like(height)
+    out_cls[order] = cls
+    out_h[order] = height
+    return out_cls, out_h
+
+
+def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np.ndarray,
+                  ignore: np.ndarray, params: SlopeGroundParams) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`slope_ground` on points in :func:`~inventory.cloud.clean.spatial_order`."""
     out = classification.astype(np.uint8).copy()
     # Points below the slope cone of most of their neighbours cannot be surface (nothing
     # that gravity built is that steep underneath); they join the ignored noise and are
