@@ -5,8 +5,10 @@ Usage::
     python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points
     python bench/bench_survey.py --sizes 1 10          # millions of points
     python bench/bench_survey.py --huge                # also 200 M points
-    python bench/bench_survey.py --workers 0 1 2       # serial, one single-threaded worker, 2 Dask workers
+    python bench/bench_survey.py --workers 0 1 2       # serial, a Dask cluster of 1 worker, of 2
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
+    python bench/bench_survey.py --pipeline bench/surface-only.json   # the step without cleaning
+                                                       # and classifier (its floor)
 
 Synthetic surveys are stockyards (``inventory.cloud.synthetic.make_yard``, piles, machines,
 a gallery, noise) laid side by side, 120 m apart, at 100 points/m2 on piles and machines,
@@ -19,12 +21,13 @@ the memory of one yard. For each survey it prints, measured in the same run:
 * their ratio (issue 8 target: at most 3, aim 2);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
-* with ``--workers``: 0 is a serial run in this process (neighbour queries on every core),
-  1 a serial run whose jobs get one thread each (what one Dask worker of one thread does:
-  :func:`inventory.scale_out.job_threads`), N >= 2 a local Dask cluster of N processes;
-  the speed-up of each run over the one-worker run (else the first run), and the CPU
-  seconds of the run and its worker processes (the machine may be shared: wall times are
-  noisy, compare runs of one invocation).
+* with ``--workers``: 0 is a serial run in this process (neighbour queries on every core,
+  what ``--workers`` 0 or 1 does), N >= 1 a local Dask cluster of N single-threaded worker
+  processes, started before the clock starts (its start-up is printed apart) and used
+  through ``scheduler=`` as an existing cluster would be; the speed-up of each run over the
+  one-worker run (else the first run), and the CPU seconds of the run and its worker
+  processes (the machine may be shared: wall times are noisy, compare runs of one
+  invocation).
 
 Each measurement runs in a fresh child process, so that one peak does not hide the next.
 Numbers only; nothing is asserted.
@@ -162,14 +165,24 @@ def _child(args: argparse.Namespace) -> int:
         watch = _WorkerMemory()
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            t0 = time.perf_counter()
-            if args.workers == 1:
-                from inventory.scale_out import _in_job
+            if args.workers:
+                from dask.distributed import LocalCluster
 
-                r = _in_job(1, measure_survey, site, date, tmp)
+                t_up = time.perf_counter()
+                cluster = LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True,
+                                       dashboard_address=":0")
+                out["cluster_start_s"] = time.perf_counter() - t_up
+                t0 = time.perf_counter()
+                try:
+                    r = measure_survey(site, date, out_dir=tmp, scheduler=cluster.scheduler_address,
+                                       pipeline=args.pipeline)
+                    dt = time.perf_counter() - t0
+                finally:
+                    cluster.close()
             else:
-                r = measure_survey(site, date, out_dir=tmp, workers=args.workers or None)
-            dt = time.perf_counter() - t0
+                t0 = time.perf_counter()
+                r = measure_survey(site, date, out_dir=tmp, pipeline=args.pipeline)
+                dt = time.perf_counter() - t0
         out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary(),
                    children_rss_mb=watch.stop())
     me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
@@ -200,12 +213,13 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
         run = _measure(["survey", *src, "--workers", str(w)])
         rate = n / run["seconds"]
         steps = ", ".join(f"{k} {v:.1f} s" for k, v in run["timings"].items())
-        who = {0: "serial", 1: "1 worker, 1 thread"}.get(w, f"{w} Dask workers")
+        who = {0: "serial", 1: "1 Dask worker"}.get(w, f"{w} Dask workers")
         line = (f"  survey step, {who:18s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps})\n"
                 f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB"
                 f"   CPU {run['cpu_s']:.0f} s")
-        if w > 1:
-            line += f" (largest worker {run['children_rss_mb']:,.0f} MB)"
+        if w >= 1:
+            line += (f" (largest worker {run['children_rss_mb']:,.0f} MB; cluster start-up "
+                     f"{run['cluster_start_s']:.1f} s, not timed)")
         if w == 1 and base is None:
             base = run["seconds"]
         if first is None:
@@ -224,8 +238,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sizes", type=float, nargs="+", default=[1, 10, 50], help="millions of points")
     ap.add_argument("--huge", action="store_true", help="also 200 million points")
     ap.add_argument("--workers", type=int, nargs="+", default=[0],
-                    help="runs to time: 0 serial, 1 one single-threaded worker, N>=2 a local Dask "
-                         "cluster of N processes (e.g. --workers 0 1 2)")
+                    help="runs to time: 0 serial, N>=1 a local Dask cluster of N single-threaded "
+                         "processes (e.g. --workers 0 1 2)")
+    ap.add_argument("--pipeline", help="a survey pipeline JSON instead of the site's (or the packaged "
+                    "default); e.g. bench/surface-only.json measures the step without cleaning or classifier")
     ap.add_argument("--keep", help="folder where the generated LAZ files are written and kept, and "
                     "reused by later runs (default: a temporary folder, removed)")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
@@ -234,8 +250,9 @@ def main(argv: list[str] | None = None) -> int:
     if args.what:
         args.workers = args.workers[0]
         return _child(args)
+    pipe = ["--pipeline", os.path.abspath(args.pipeline)] if args.pipeline else []
     if args.site:
-        src = ["--site", args.site] + (["--date", args.date] if args.date else [])
+        src = ["--site", args.site] + (["--date", args.date] if args.date else []) + pipe
         _report(f"{args.site} {args.date or 'latest'}", src, args.workers)
         return 0
     sizes = list(args.sizes) + ([200] if args.huge else [])
@@ -253,7 +270,7 @@ def main(argv: list[str] | None = None) -> int:
                 written = write_survey(path, n)
                 print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
                       f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
-            _report(f"synthetic survey {m:g} M", ["--file", str(path)], args.workers)
+            _report(f"synthetic survey {m:g} M", ["--file", str(path)] + pipe, args.workers)
             if keep is None:
                 path.unlink()
     return 0

@@ -16,13 +16,16 @@
    Tiles run serially, on threads or on Dask (``workers``, ``scheduler``;
    :mod:`inventory.scale_out`) and come back in tile order, so every way writes the same
    files.
-4. **Grid** the surface class (ASPRS 2) tile by tile into the site grid (a cell lies in
-   one tile); fill holes up to ``[grid] max_fill_distance_m`` window by window
-   (:data:`FILL_WINDOW_CELLS` cells and a margin); write ``surface-<date>.tif``,
-   ``coverage-<date>.tif`` and ``classified-<date>.laz``.
+4. **Grid** the surface class (ASPRS 2) and the object returns of each tile inside the
+   tile's own job (a cell lies in one tile: :func:`_grid_tile`), so gridding runs on the
+   workers too; paste the tiles' cells into the site grid and take out surface cells lying
+   on an object over the whole grid; fill holes up to ``[grid] max_fill_distance_m``
+   window by window (:data:`FILL_WINDOW_CELLS` cells and a margin); write
+   ``surface-<date>.tif``, ``coverage-<date>.tif`` and ``classified-<date>.laz``.
 
-Memory is the output grid (about 21 bytes a cell) plus a few tiles (two per worker in
-flight) or one fill window, whatever the size of the files; ``bench/bench_survey.py``
+Memory is the output grid (about 21 bytes a cell, plus three grids of per-cell extremes
+while they are pasted) plus a few tiles (two per worker in flight; finished Dask tiles
+wait on disk) or one fill window, whatever the size of the files; ``bench/bench_survey.py``
 measures it with the throughput.
 """
 
