@@ -283,7 +283,7 @@ def _load(path: Path) -> np.ndarray:
 _BLOCK = 1_000_000
 
 
-def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray, int]:
+def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> np.ndarray:
     """A tile's points followed by its neighbours' points within ``buffer_m`` of it.
 
     Neighbouring files are read in blocks of :data:`_BLOCK` points, so a tile never holds
@@ -301,14 +301,14 @@ def _tile_job(spill: _TileSpill, tile: int, buffer_m: float) -> tuple[np.ndarray
                 m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
                     (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
                 extra.append(pts[m])
-    return np.concatenate([core] + extra) if extra else core, len(core)
+    return np.concatenate([core] + extra) if extra else core
 
 
 def _classify_tile(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
-                   engine: str, statistic: str = "mean") -> tuple[np.ndarray, "_TileCells | None"]:
+                   engine: str, statistic: str) -> tuple[np.ndarray, "_TileCells | None"]:
     """A tile's own points, classified with its neighbours' points around it, and its cells
     gridded (:func:`_grid_tile`)."""
-    pts, _ = _tile_job(spill, tile, buffer_m)
+    pts = _tile_job(spill, tile, buffer_m)
     out, _ = pipeline.run(pts, crs, engine=engine)
     own, _ = spill.tile_of(out["X"], out["Y"])
     out = out[own == tile]
@@ -668,7 +668,7 @@ def _fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WI
 
 
 def _run_tiles(ex: Any, spill: _TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: Any,
-               engine: str, statistic: str = "mean"):
+               engine: str, statistic: str):
     """Classified tiles and their cells (:func:`_classify_tile`) in the order of ``tiles``,
     however ``ex`` (an :class:`~inventory.scale_out.Executor`) runs them (so that every
     way writes the same classified cloud)."""
@@ -691,7 +691,7 @@ TILES_IN_FLIGHT = 4
 
 
 def _classify_tile_to_file(spill: _TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: Any,
-                           engine: str, statistic: str = "mean") -> tuple[Path, "_TileCells | None"]:
+                           engine: str, statistic: str) -> tuple[Path, "_TileCells | None"]:
     """:func:`_classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
     in the spill folder, whose path is returned with the tile's cells."""
     out, cells = _classify_tile(spill, tile, buffer_m, pipeline, crs, engine, statistic)
