@@ -220,13 +220,14 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
         if w >= 1:
             line += (f" (largest worker {run['children_rss_mb']:,.0f} MB; cluster start-up "
                      f"{run['cluster_start_s']:.1f} s, not timed)")
-        if w == 1 and base is None:
+        is_base = w == 1 and base is None
+        if is_base:
             base = run["seconds"]
-        if first is None:
-            first = run["seconds"]
-        elif run["seconds"] not in (base, first):
+        if first is not None and not is_base:
             ref = base if base is not None else first
             line += f"   speed-up over the {'one-worker' if base is not None else 'first'} run {ref / run['seconds']:.2f}x"
+        if first is None:
+            first = run["seconds"]
         print(line, flush=True)
     print(f"  {run['summary']}", flush=True)
 
