@@ -18,7 +18,7 @@ $(STAMP): pyproject.toml
 
 # The demo writes a fresh copy of the invented site, checks it and closes its months.
 demo: $(STAMP)
-	$(BIN)/python -m inventory.demo.run_demo $(SITE)
+	$(BIN)/python -m inventory._demo.run_demo $(SITE)
 
 # Outside tools that some reference checks use (gdalinfo, ogrinfo, LibreOffice, Chromium).
 # Installed when we are root and they are missing; tests skip with a reason otherwise.

@@ -10,7 +10,7 @@ Usage::
     python bench/bench_survey.py --pipeline bench/surface-only.json   # the step without cleaning
                                                        # and classifier (its floor)
 
-Synthetic surveys are stockyards (``inventory.cloud.synthetic.make_yard``, piles, machines,
+Synthetic surveys are stockyards (``inventory._demo.synthetic.make_yard``, piles, machines,
 a gallery, noise) laid side by side, 120 m apart, at 100 points/m2 on piles and machines,
 and written to one LAZ file yard by yard, so that generating 200 million points needs
 the memory of one yard. For each survey it prints, measured in the same run:
@@ -64,8 +64,8 @@ def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
     """Write about ``n_points`` synthetic stockyard points to one LAZ, a yard at a time."""
     import numpy as np
 
-    from inventory.cloud.io import CloudWriter
-    from inventory.cloud.synthetic import make_yard
+    from inventory.io.clouds import CloudWriter
+    from inventory._demo.synthetic import make_yard
 
     first = make_yard(density=density, seed=0, pad_density=density / 6)
     per_yard = len(first.points)
@@ -144,10 +144,10 @@ class _WorkerMemory:
 
 def _child(args: argparse.Namespace) -> int:
     """One measurement in this (fresh) process; prints one JSON line."""
-    from inventory.survey import measure_survey
+    from inventory.survey.measure import measure_survey
 
     if args.site:
-        from inventory.site import load_site
+        from inventory.site.load import load_site
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

@@ -3,7 +3,7 @@
 The public API, for a notebook that wants to do step by step what ``inventory close`` does:
 
 >>> from inventory import load_site, measure_survey, measure_piles, book_stock  # doctest: +SKIP
->>> from inventory.reconcile import reconcile                        # doctest: +SKIP
+>>> from inventory import reconcile                                   # doctest: +SKIP
 >>> site = load_site("sample_site")                                  # doctest: +SKIP
 >>> survey = measure_survey(site, "2026-10-31")                      # doctest: +SKIP
 >>> piles = measure_piles(survey.surface, site.piles, site.materials)  # doctest: +SKIP
@@ -17,7 +17,7 @@ from __future__ import annotations
 from importlib import import_module
 from typing import Any
 
-__version__ = "0.1.0"
+from inventory._version import __version__
 
 #: public name -> module that defines it
 _API = {
@@ -25,18 +25,19 @@ _API = {
     "check_site": "site",
     "Site": "site",
     "measure_survey": "survey",
+    "measure_surveys": "survey",
     "SurveyResult": "survey",
     "measure_piles": "volume",
     "BaseSurfaces": "volume",
-    "book_stock": "book",
+    "book_stock": "stock",
+    "reconcile": "stock.reconcile",
     "close_period": "close",
     "reopen_period": "close",
     "period_history": "close",
     "Ledger": "ledger",
-    "write_sample_site": "demo",
-    "Grid": "grid",
-    "Surface": "grid",
-    "CloseResult": "results",
+    "Grid": "model",
+    "Surface": "model",
+    "CloseResult": "model",
 }
 
 __all__ = ["__version__", *_API]

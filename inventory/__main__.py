@@ -1,5 +1,5 @@
 """``python -m inventory`` runs the command line."""
 
-from .cli import main
+from inventory.cli import main
 
 raise SystemExit(main())

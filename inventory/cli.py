@@ -12,8 +12,8 @@ import traceback
 from pathlib import Path
 from typing import Callable, Sequence
 
-from . import __version__
-from .errors import EXIT_BAD_INPUT, EXIT_OK, EXIT_RUN_FAILED, InputError, InputErrors, InventoryError
+from inventory._version import __version__
+from inventory.errors import EXIT_BAD_INPUT, EXIT_OK, EXIT_RUN_FAILED, InputError, InputErrors, InventoryError
 
 __all__ = ["main", "build_parser"]
 
@@ -39,7 +39,7 @@ def _err(text: str) -> None:
 # ----------------------------------------------------------------------------- commands
 @_command("check")
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .site import check_site
+    from inventory.site.load import check_site
 
     report = check_site(args.site)
     for problem in report.warnings:
@@ -64,7 +64,7 @@ def _progress(args: argparse.Namespace):
 
 @_command("sample")
 def _cmd_sample(args: argparse.Namespace) -> int:
-    from .demo import write_sample_site
+    from inventory._demo import write_sample_site
 
     dest = write_sample_site(args.dir, seed=args.seed) if args.seed is not None else write_sample_site(args.dir)
     _out(f"wrote the invented sample site to {dest}")
@@ -74,8 +74,8 @@ def _cmd_sample(args: argparse.Namespace) -> int:
 
 @_command("survey")
 def _cmd_survey(args: argparse.Namespace) -> int:
-    from .site import load_site
-    from .survey import measure_surveys
+    from inventory.site.load import load_site
+    from inventory.survey.measure import measure_surveys
 
     site = load_site(args.site)
     dates = sorted(site.surveys) if args.all else list(dict.fromkeys(args.date or []))
@@ -98,7 +98,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
 
 @_command("close")
 def _cmd_close(args: argparse.Namespace) -> int:
-    from .close import close_period
+    from inventory.close import close_period
 
     closed = close_period(args.site, args.period, progress=_progress(args),
                           workers=args.workers, scheduler=args.scheduler)
@@ -108,7 +108,7 @@ def _cmd_close(args: argparse.Namespace) -> int:
 
 @_command("reopen")
 def _cmd_reopen(args: argparse.Namespace) -> int:
-    from .close import reopen_period
+    from inventory.close import reopen_period
 
     reopen_id = reopen_period(args.site, args.period, args.reason)
     _out(f"reopened {args.period} (reopening {reopen_id}); the reason is kept in the ledger")
@@ -117,7 +117,7 @@ def _cmd_reopen(args: argparse.Namespace) -> int:
 
 @_command("history")
 def _cmd_history(args: argparse.Namespace) -> int:
-    from .close import period_history
+    from inventory.close import period_history
 
     frame = period_history(args.site, pile=args.pile, material=args.material, start=args.start, end=args.end)
     if args.format == "csv":
@@ -125,7 +125,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
     elif args.format == "json":
         sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
     elif args.format == "xlsx":
-        from .export.workbook import write_history_workbook
+        from inventory.export.workbook import write_history_workbook
 
         if args.output is None:
             raise InputError("--output", "--format xlsx needs --output FILE.xlsx", field="output")

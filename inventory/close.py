@@ -2,13 +2,13 @@
 
 Steps, each a plain function of the modules named:
 
-1. load and check the site (:mod:`inventory.site`);
-2. process the period's survey into a surface (:mod:`inventory.survey`);
-3. measure every pile footprint (:mod:`inventory.volume`);
-4. roll the books to the survey instant (:mod:`inventory.book`);
-5. reconcile survey with book (:mod:`inventory.reconcile`);
+1. load and check the site (:mod:`inventory.site.load`);
+2. process the period's survey into a surface (:mod:`inventory.survey.measure`);
+3. measure every pile footprint (:mod:`inventory.volume.measure`);
+4. roll the books to the survey instant (:mod:`inventory.stock.book`);
+5. reconcile survey with book (:mod:`inventory.stock.reconcile`);
 6. write the workbook, layers, rasters, report and run manifest into a temporary folder
-   (:mod:`inventory.export`), then record the close in the ledger (:mod:`inventory.ledger`)
+   (:mod:`inventory.export`), then record the close in the ledger (:mod:`inventory.ledger.store`)
    and move the folder into place inside the same transaction.
 
 A failure anywhere leaves ``ledger.sqlite`` and ``closes/`` exactly as they were: outputs
@@ -31,11 +31,11 @@ from typing import Any, Callable, Iterator
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .errors import InputError, PeriodLockedError, RunError
-from .grid import Surface
-from .results import MOVEMENT_COLUMNS, PILE_COLUMNS, CloseResult
-from .site import Site, load_site
+from inventory._version import __version__
+from inventory.errors import InputError, PeriodLockedError, RunError
+from inventory.model.grid import Surface
+from inventory.model.results import MOVEMENT_COLUMNS, PILE_COLUMNS, CloseResult
+from inventory.site.load import Site, load_site
 
 __all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "STEPS"]
 
@@ -76,7 +76,7 @@ class ClosedPeriod:
 
 # ----------------------------------------------------------------------------- helpers
 def _sha256(path: Path) -> str:
-    from .export.manifest import sha256_file
+    from inventory.export.manifest import sha256_file
 
     return sha256_file(path)
 
@@ -139,7 +139,7 @@ def _month_before(period: str) -> str:
 
 
 def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
-    from .book import opening_from_close
+    from inventory.stock.book import opening_from_close
 
     # opening_for refuses when the month before was skipped or is reopened and not closed
     if ledger.opening_for(period) is not None:
@@ -228,11 +228,11 @@ def close_period(
     PeriodLockedError
         The period is already closed (``reopen_period`` first).
     """
-    from . import book as _book
-    from . import reconcile as _rec
-    from . import volume as _vol
-    from .ledger import Ledger
-    from .survey import measure_survey
+    from inventory.stock import book as _book
+    from inventory.stock import reconcile as _rec
+    from inventory.volume import measure as _vol
+    from inventory.ledger.store import Ledger
+    from inventory.survey.measure import measure_survey
 
     say = progress or (lambda text: None)
     timings: dict[str, float] = {}
@@ -356,11 +356,11 @@ def close_period(
 
             step("outputs")
             say("writing outputs")
-            from .export.layers import write_layers
-            from .export.manifest import write_manifest
-            from .export.rasters import write_raster
-            from .export.report import write_report
-            from .export.workbook import write_workbook
+            from inventory.export.layers import write_layers
+            from inventory.export.manifest import write_manifest
+            from inventory.export.rasters import write_raster
+            from inventory.export.report import write_report
+            from inventory.export.workbook import write_workbook
 
             names: dict[str, str] = {
                 "workbook": f"variance-{period}.xlsx",
@@ -413,7 +413,7 @@ def close_period(
 
 def reopen_period(site_path: str | Path, period: str, reason: str, who: str | None = None) -> int:
     """Unlock a closed period so it can be closed again; the reason is kept for good."""
-    from .ledger import Ledger
+    from inventory.ledger.store import Ledger
 
     root = Path(site_path)
     path = root / "ledger.sqlite"
@@ -428,7 +428,7 @@ def period_history(
     start: str | None = None, end: str | None = None,
 ) -> pd.DataFrame:
     """Variance by pile and month from the ledger (adopted closes)."""
-    from .ledger import HISTORY_COLUMNS, Ledger
+    from inventory.ledger.store import HISTORY_COLUMNS, Ledger
 
     root = Path(site_path)
     path = root / "ledger.sqlite"

@@ -1,6 +1,6 @@
 """The committed sample site run through the real survey chain, once per test session.
 
-``load_site`` -> :func:`inventory.survey.measure_survey` -> :func:`inventory.volume.measure_piles`
+``load_site`` -> :func:`inventory.survey.measure.measure_survey` -> :func:`inventory.volume.measure.measure_piles`
 for both surveys of ``sample_site/``. The survey step takes a minute or two per survey, so
 the results are cached in this module (a process-wide cache: every test file that imports
 it shares one run). Nothing is cached on disk, so a change to the code is always measured.
@@ -16,8 +16,8 @@ from typing import Any
 
 import pandas as pd
 
-# bound at import, before any test patches inventory.survey.measure_survey with a cache
-from inventory.survey import measure_survey as _measure_survey
+# bound at import, before any test patches inventory.survey.measure.measure_survey with a cache
+from inventory.survey.measure import measure_survey as _measure_survey
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_site"
 TRUTH = SAMPLE / "truth.json"
@@ -37,7 +37,7 @@ def truth() -> dict:
 @lru_cache(maxsize=None)
 def site() -> Any:
     """The loaded sample site (the loader's warnings about the planted repeated ticket muted)."""
-    from inventory.site import load_site
+    from inventory.site.load import load_site
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -57,7 +57,7 @@ def _out_root() -> Path:
 
 @lru_cache(maxsize=None)
 def survey(date: str) -> Any:
-    """:class:`inventory.survey.SurveyResult` of one survey, run once per session.
+    """:class:`inventory.survey.measure.SurveyResult` of one survey, run once per session.
 
     Its files (surface and coverage GeoTIFFs, classified LAZ) are written to a temporary
     folder removed at exit, so tests that need them share the one run too.
@@ -73,7 +73,7 @@ def survey(date: str) -> Any:
 def volumes(date: str) -> pd.DataFrame:
     """``measure_piles`` table of one survey, as ``inventory close`` computes it."""
     from inventory.errors import CoverageWarning
-    from inventory.volume import BaseSurfaces, measure_piles
+    from inventory.volume.measure import BaseSurfaces, measure_piles
 
     surface = survey(date).surface
     base = BaseSurfaces.from_site(site(), surface.grid)

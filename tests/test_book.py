@@ -13,15 +13,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from inventory._metrology import (
+from inventory.stock.metrology import (
     BELT_MPE_PCT_INITIAL,
     IN_SERVICE_FACTOR,
     belt_mpe_fraction,
     weighbridge_mpe_t,
 )
-from inventory.book import book_stock, period_bounds
+from inventory.stock.book import book_stock, period_bounds
 from inventory.errors import InputErrors, InputWarning
-from inventory.results import MOVEMENT_COLUMNS
+from inventory.model.results import MOVEMENT_COLUMNS
 
 T = pd.Timestamp
 SQRT3 = math.sqrt(3.0)

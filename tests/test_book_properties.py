@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from inventory.book import book_stock
+from inventory.stock.book import book_stock
 
 START = pd.Timestamp("2026-09-30T22:00Z")
 END = pd.Timestamp("2026-10-31T23:00Z")

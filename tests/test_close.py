@@ -20,8 +20,8 @@ import _sample_chain
 from inventory.cli import main
 from inventory.close import STEPS, close_period
 from inventory.export.layers import read_piles_layer
-from inventory.ledger import Ledger
-from inventory.results import PILE_COLUMNS
+from inventory.ledger.store import Ledger
+from inventory.model.results import PILE_COLUMNS
 from test_export_agreement import _norm, _rows
 
 pytestmark = pytest.mark.slow
@@ -74,7 +74,7 @@ def closed_site(tmp_path_factory, sample_site_path):
     site = tmp_path_factory.mktemp("e2e") / "site"
     shutil.copytree(sample_site_path, site, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*"))
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr("inventory.survey.measure_survey", _cached_survey)
+        mp.setattr("inventory.survey.measure.measure_survey", _cached_survey)
         for period in ("2026-09", "2026-10"):
             assert main(["close", str(site), "--period", period, "--quiet"]) == 0
     return site
@@ -147,7 +147,7 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
     shutil.copytree(closed_site, site)
     with Ledger(site / "ledger.sqlite") as led:
         led.reopen("2026-10", "interruption test")
-    monkeypatch.setattr("inventory.survey.measure_survey", survey_cache)
+    monkeypatch.setattr("inventory.survey.measure.measure_survey", survey_cache)
     for checkpoint in (*STEPS, "commit"):
         rows_before = sqlite3.connect(site / "ledger.sqlite").execute("SELECT COUNT(*) FROM closes").fetchone()
         tree_before = _tree(site / "closes")

@@ -6,8 +6,13 @@ import numpy as np
 import pytest
 from pyproj import CRS, Transformer
 
-from inventory.cloud.crs import (INTERNATIONAL_FOOT_M, US_SURVEY_FOOT_M, TransformerCache,
-                                 parse_crs, vertical_unit_factor)
+from inventory.io.crs import (
+    INTERNATIONAL_FOOT_M,
+    US_SURVEY_FOOT_M,
+    TransformerCache,
+    parse_crs,
+    vertical_unit_factor,
+)
 from inventory.errors import CRSError
 
 

@@ -9,7 +9,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
-from inventory.cloud.georef import StationPose, poses_from_stations, rotation_matrix
+from inventory.survey.placement import StationPose, poses_from_stations
+from inventory.model.pose import rotation_matrix
 from inventory.errors import InputError
 
 angles = st.floats(-180, 180, allow_nan=False)

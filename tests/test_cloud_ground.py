@@ -1,6 +1,6 @@
 """The stockyard ground classifier on synthetic scenes with known labels.
 
-Geometry is invented (inventory.cloud.synthetic); the pass marks are issue 4's acceptance
+Geometry is invented (inventory._demo.synthetic); the pass marks are issue 4's acceptance
 figures: at least 98 % of machine and vehicle points out of the surface class, at most
 0.5 % of true pile-surface points dropped. Angles of repose 30-40 degrees: REFERENCES.md
 (CEMA tables as transcribed; coal 35-38, iron ore about 35, limestone about 38, sand 30-35).
@@ -13,10 +13,10 @@ import math
 import numpy as np
 import pytest
 
-from inventory.cloud.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE
-from inventory.cloud.ground import SlopeGroundParams, slope_ground
-from inventory.cloud.pipeline import load_pipeline
-from inventory.cloud.synthetic import LABELS, make_yard
+from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE
+from inventory.survey.ground import SlopeGroundParams, slope_ground
+from inventory.survey.pipeline import load_pipeline
+from inventory._demo.synthetic import LABELS, make_yard
 
 
 @pytest.fixture(scope="module")

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from pyproj import CRS
 
-from inventory.cloud.io import POINT_DTYPE, CloudWriter, empty_points, open_cloud, read_cloud, write_cloud
+from inventory.io.clouds import POINT_DTYPE, CloudWriter, empty_points, open_cloud, read_cloud, write_cloud
 from inventory.errors import InputError
 
 

@@ -17,11 +17,11 @@ from pyproj import CRS
 from scipy.interpolate import LinearNDInterpolator
 
 from _laspy_samples import laspy_data  # noqa: F401  (fixture)
-from inventory.cloud.crs import INTERNATIONAL_FOOT_M, vertical_unit_factor
-from inventory.cloud.io import open_cloud, read_cloud
-from inventory.cloud.pipeline import Pipeline
-from inventory.grid import Grid
-from inventory.surface import grid_points
+from inventory.io.crs import INTERNATIONAL_FOOT_M, vertical_unit_factor
+from inventory.io.clouds import open_cloud, read_cloud
+from inventory.survey.pipeline import Pipeline
+from inventory.model.grid import Grid
+from inventory.survey.gridding import grid_points
 
 pytestmark = pytest.mark.network
 

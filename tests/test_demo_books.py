@@ -8,8 +8,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pytest
 
-from inventory.demo import books
-from inventory.demo.scenario import MATERIALS, PILES, terminal_at
+from inventory._demo import books
+from inventory._demo.scenario import MATERIALS, PILES, terminal_at
 
 TZ = ZoneInfo("Europe/Berlin")
 UTC = timezone.utc

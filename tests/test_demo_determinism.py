@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from inventory.demo import DEFAULT_SEED, write_sample_site
+from inventory._demo import DEFAULT_SEED, write_sample_site
 
 REPO = Path(__file__).resolve().parent.parent
 SITE = REPO / "sample_site"
@@ -51,8 +51,8 @@ def test_a_different_seed_gives_a_different_scan(tmp_path: Path):
     """The seed reaches the simulator (a cheap check on one station, not the whole site)."""
     import numpy as np
 
-    from inventory.demo.scenario import SURVEYS, terminal_at
-    from inventory.demo.simulate import scan
+    from inventory._demo.scenario import SURVEYS, terminal_at
+    from inventory._demo.simulate import scan
 
     st = SURVEYS[0].stations[0]
     scene = terminal_at(0, np.random.default_rng(1)).scene()

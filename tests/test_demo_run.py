@@ -1,4 +1,4 @@
-"""``python -m inventory.demo.run_demo DIR`` (``make demo``) on a copy of the sample site."""
+"""``python -m inventory._demo.run_demo DIR`` (``make demo``) on a copy of the sample site."""
 
 from __future__ import annotations
 
@@ -13,8 +13,8 @@ SITE = REPO / "sample_site"
 
 @pytest.mark.skipif(not (SITE / "site.toml").is_file(), reason="sample_site/ not generated yet")
 def test_run_demo_checks_an_existing_site(tmp_path: Path, capsys):
-    pytest.importorskip("inventory.site", reason="inventory.site (the loader) is not written yet")
-    from inventory.demo.run_demo import main
+    pytest.importorskip("inventory.site.load", reason="inventory.site.load (the loader) is not written yet")
+    from inventory._demo.run_demo import main
 
     copy = tmp_path / "demo_site"
     shutil.copytree(SITE, copy, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*"))
@@ -26,8 +26,8 @@ def test_run_demo_checks_an_existing_site(tmp_path: Path, capsys):
 
 @pytest.mark.skipif(not (SITE / "site.toml").is_file(), reason="sample_site/ not generated yet")
 def test_run_demo_rejects_a_broken_site(tmp_path: Path, capsys):
-    pytest.importorskip("inventory.site", reason="inventory.site (the loader) is not written yet")
-    from inventory.demo.run_demo import main
+    pytest.importorskip("inventory.site.load", reason="inventory.site.load (the loader) is not written yet")
+    from inventory._demo.run_demo import main
 
     copy = tmp_path / "demo_site"
     shutil.copytree(SITE, copy, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*", "surveys"))

@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 
-from inventory.demo.simulate import (
+from inventory._demo.simulate import (
     KIND_MACHINE,
     KIND_PAD,
     KIND_PILE,
@@ -258,7 +258,7 @@ def test_station_frame_round_trips_with_the_contract_pose():
 
 
 def test_raster_scene_reproduces_a_plane_exactly():
-    from inventory.demo.simulate import raster_scene
+    from inventory._demo.simulate import raster_scene
 
     # Bilinear interpolation reproduces any plane exactly, so the scan must land on it.
     cell, west, north = 0.5, -40.0, 40.0

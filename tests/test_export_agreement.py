@@ -8,8 +8,8 @@ import pytest
 
 from inventory.export import write_layers, write_raster, write_workbook
 from inventory.export.layers import read_piles_layer
-from inventory.ledger import Ledger
-from inventory.results import PILE_COLUMNS
+from inventory.ledger.store import Ledger
+from inventory.model.results import PILE_COLUMNS
 from test_export_fake import make_close_result
 
 INPUTS = {"site.toml": "d" * 64}

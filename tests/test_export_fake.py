@@ -15,8 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from inventory.grid import Grid, Surface
-from inventory.results import (
+from inventory.model.grid import Grid, Surface
+from inventory.model.results import (
     JOURNAL_COLUMNS,
     MOVEMENT_COLUMNS,
     PILE_COLUMNS,

@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 
 from inventory.export.layers import LAYER_NAMES, read_piles_layer, write_layers
-from inventory.ledger import Ledger
-from inventory.results import PILE_COLUMNS
+from inventory.ledger.store import Ledger
+from inventory.model.results import PILE_COLUMNS
 from test_export_fake import make_close_result
 
 

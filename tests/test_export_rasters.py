@@ -11,7 +11,7 @@ import pytest
 
 from inventory.errors import CRSError
 from inventory.export.rasters import NODATA, write_raster
-from inventory.grid import Grid
+from inventory.model.grid import Grid
 from test_export_fake import make_close_result
 
 TILE = 256  # tile edge we ask for (OGC COG 21-026: multiples of 16)

@@ -18,8 +18,8 @@ from inventory.export.workbook import (
     write_history_workbook,
     write_workbook,
 )
-from inventory.ledger import Ledger
-from inventory.results import PILE_COLUMNS
+from inventory.ledger.store import Ledger
+from inventory.model.results import PILE_COLUMNS
 from test_export_fake import make_close_result
 
 INPUTS = {"piles.gpkg": "b" * 64}

@@ -9,8 +9,8 @@ import pandas as pd
 import pytest
 
 from inventory.errors import LedgerError, PeriodLockedError
-from inventory.ledger import BALANCE_COLUMNS, HISTORY_COLUMNS, SCHEMA_VERSION, Ledger
-from inventory.results import PILE_COLUMNS
+from inventory.ledger.store import BALANCE_COLUMNS, HISTORY_COLUMNS, SCHEMA_VERSION, Ledger
+from inventory.model.results import PILE_COLUMNS
 from test_export_fake import make_close_result
 
 INPUTS = {"surveys/2026-01-28/scan.laz": "1" * 64, "movements/2026-01/weighbridge.csv": "2" * 64}
@@ -206,7 +206,7 @@ def test_failure_inside_the_transaction_leaves_the_ledger_as_before(ledger_path)
 
 
 def test_failure_halfway_through_the_rows(ledger_path, monkeypatch):
-    import inventory.ledger as ledger_mod
+    import inventory.ledger.store as ledger_mod
 
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")

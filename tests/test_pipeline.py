@@ -9,9 +9,9 @@ import pytest
 import shapely
 from scipy.spatial import cKDTree
 
-from inventory.cloud.clean import elm_low_points, limits_mask, parse_limits, statistical_outliers
-from inventory.cloud.io import empty_points, read_cloud
-from inventory.cloud.pipeline import STAGES, Pipeline, load_pipeline, pdal_available
+from inventory.survey.clean import elm_low_points, limits_mask, parse_limits, statistical_outliers
+from inventory.io.clouds import empty_points, read_cloud
+from inventory.survey.pipeline import STAGES, Pipeline, load_pipeline, pdal_available
 from inventory.errors import PipelineError
 
 
@@ -119,7 +119,7 @@ def test_crop_polygon_matches_shapely():
 
 
 def test_reader_reprojection_writer(tmp_path):
-    from inventory.cloud.io import write_cloud
+    from inventory.io.clouds import write_cloud
 
     p = _pts()
     p["X"] += 2_000_000

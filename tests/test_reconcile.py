@@ -9,10 +9,10 @@ from types import SimpleNamespace as NS
 import pandas as pd
 import pytest
 
-from inventory.book import book_stock, opening_from_close
+from inventory.stock.book import book_stock, opening_from_close
 from inventory.errors import InputWarning
-from inventory.reconcile import REASON_CODES, SIGN_CONVENTION, ReconcileSettings, reconcile
-from inventory.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
+from inventory.stock.reconcile import REASON_CODES, SIGN_CONVENTION, ReconcileSettings, reconcile
+from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
 
 T = pd.Timestamp
 SQRT3 = math.sqrt(3.0)

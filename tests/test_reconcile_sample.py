@@ -12,7 +12,7 @@ uncertainty, tonnes with the *table* density of materials.csv, which is how the 
 fault enters). The surveys are computed once per session by ``tests/_sample_chain.py``
 (slow: a minute or two per survey), so every test here is marked slow.
 
-The volume sigma is the honest one of :mod:`inventory.volume` (interpolation error from the
+The volume sigma is the honest one of :mod:`inventory.volume.measure` (interpolation error from the
 gaps' own size and slope mismatch), not an assumed figure: these tests check that the
 planted faults stand out of the survey's real noise.
 """
@@ -61,8 +61,8 @@ def _survey(k: int) -> pd.DataFrame:
 
 def _close_both(site, survey) -> dict:
     """Both closes as close_period runs them, with ``survey(k)`` the volume table of survey k."""
-    from inventory.book import book_stock, opening_from_close, period_bounds
-    from inventory.reconcile import reconcile
+    from inventory.stock.book import book_stock, opening_from_close, period_bounds
+    from inventory.stock.reconcile import reconcile
 
     cfg = site.config.reconcile
     piles = site.piles[["pile_id", "material"]]
@@ -109,7 +109,7 @@ def _truth_survey(site, truth: dict, k: int) -> pd.DataFrame:
 def test_book_at_each_survey_matches_the_demo_books(site, truth):
     # truth.json's book_at_survey_t is the demo's own roll of its records from opening.csv
     # (each ticket id once): an independent computation of the same rule.
-    from inventory.book import book_stock, period_bounds
+    from inventory.stock.book import book_stock, period_bounds
 
     both = NS(**{n: pd.concat([getattr(site.movements_for(p), n) for p in ("2026-09", "2026-10")], ignore_index=True)
                  for n in ("weighbridge", "belt_scales", "routing", "transfers")})

@@ -17,11 +17,11 @@ import numpy as np
 import pytest
 from shapely.geometry import box
 
-from inventory.cloud.io import write_cloud
-from inventory.cloud.synthetic import make_yard
-from inventory.scale_out import executor
-from inventory.survey import measure_survey
-from inventory.volume import measure_piles
+from inventory.io.clouds import write_cloud
+from inventory._demo.synthetic import make_yard
+from inventory.parallel import executor
+from inventory.survey.measure import measure_survey
+from inventory.volume.measure import measure_piles
 
 DATE = "2026-10-31"
 CRS = "EPSG:25832"
@@ -116,7 +116,7 @@ def _two_survey_site(root, density=6.0):
 def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
     # Independent surveys run one per Dask worker process; each gives what a serial run of
     # it gives, file for file, and the results come back in the order of the dates.
-    from inventory.survey import measure_surveys
+    from inventory.survey.measure import measure_surveys
 
     site, dates = _two_survey_site(tmp_path / "site")
     with warnings.catch_warnings():
@@ -145,9 +145,9 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
     # edges) against fill_holes on the whole grid: on a plane, linear interpolation gives
     # the plane in any triangle (a linear function is reproduced exactly: from memory), so
     # the values agree to rounding and the filled cells and gap report exactly.
-    from inventory.grid import Grid, Surface
-    from inventory.surface import fill_holes
-    from inventory.survey import _fill_windows
+    from inventory.model.grid import Grid, Surface
+    from inventory.survey.gridding import fill_holes
+    from inventory.survey.measure import _fill_windows
 
     rng = np.random.default_rng(2)
     g = Grid(500000.0, 6000300.0, 0.5, 300, 340, CRS)
@@ -174,7 +174,7 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
 
 
 def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
-    import inventory.site
+    import inventory.site.load
     from inventory.cli import build_parser, main
 
     args = build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--date", "2026-10-31"])
@@ -182,7 +182,7 @@ def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
     with pytest.raises(SystemExit):
         build_parser().parse_args(["survey", "S", "--date", "2026-09-30", "--all"])   # one or the other
     site, dates = _two_survey_site(tmp_path / "site", density=2.0)
-    monkeypatch.setattr(inventory.site, "load_site", lambda root: site)
+    monkeypatch.setattr(inventory.site.load, "load_site", lambda root: site)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["survey", str(site.root), "--all", "--out", str(tmp_path / "out"), "-q"]) == 0
@@ -196,8 +196,8 @@ def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
 def test_fill_windows_on_two_worker_processes_match_serial():
     # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
     # the serial answer cell for cell.
-    from inventory.grid import Grid, Surface
-    from inventory.survey import _fill_windows
+    from inventory.model.grid import Grid, Surface
+    from inventory.survey.measure import _fill_windows
 
     rng = np.random.default_rng(8)
     g = Grid(500000.0, 6000300.0, 0.5, 200, 230, CRS)

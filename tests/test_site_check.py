@@ -16,7 +16,7 @@ from shapely.geometry import Point, Polygon
 from _sitebuilder import write_cloud
 from inventory.cli import main
 from inventory.errors import InputErrors
-from inventory.site import check_site, load_site
+from inventory.site.load import check_site, load_site
 
 
 def errors_of(site: Path) -> list[str]:

@@ -11,9 +11,16 @@ import rasterio
 from scipy.stats import binned_statistic_2d
 
 from inventory.errors import RunError
-from inventory.grid import Grid
-from inventory.surface import (SURFACE_NODATA, SurfaceAccumulator, fill_holes, grid_points,
-                               read_geotiff, write_coverage, write_surface)
+from inventory.model.grid import Grid
+from inventory.survey.gridding import (
+    SURFACE_NODATA,
+    SurfaceAccumulator,
+    fill_holes,
+    grid_points,
+    read_geotiff,
+    write_coverage,
+    write_surface,
+)
 
 
 def _cloud(n=20000, seed=0):
@@ -79,7 +86,7 @@ def _plane_with_hole(cell=0.5):
 
 def test_small_holes_filled_exactly_on_a_plane():
     # Linear interpolation reproduces a plane exactly (a TIN of a plane is the plane).
-    from inventory.grid import Surface
+    from inventory.model.grid import Surface
 
     g, cx, cy, z, count = _plane_with_hole()
     hole = (np.hypot(cx - 20, cy - 20) < 2.0)
@@ -93,7 +100,7 @@ def test_small_holes_filled_exactly_on_a_plane():
 
 
 def test_large_gap_left_empty_and_reported():
-    from inventory.grid import Surface
+    from inventory.model.grid import Surface
 
     g, cx, cy, z, count = _plane_with_hole()
     gap = (np.abs(cx - 25) < 5) & (np.abs(cy - 25) < 5)          # 10 m x 10 m
@@ -112,8 +119,8 @@ def test_lone_patch_does_not_seed_the_fill():
     # A return the classifier let through (dust 2 m above a pad) in the middle of a gap:
     # the gap is filled from its rim (a plane, so exactly), the lone cell keeps its own
     # value. Without the rule the triangulation would make a cone of it.
-    from inventory.grid import Surface
-    from inventory.surface import lone_patches
+    from inventory.model.grid import Surface
+    from inventory.model.grid import lone_patches
 
     g, cx, cy, z, count = _plane_with_hole()
     hole = np.hypot(cx - 20, cy - 20) < 2.5
@@ -226,7 +233,7 @@ def test_geotiff_round_trip(tmp_path):
 
 def test_overviews_on_a_larger_grid(tmp_path):
     g = Grid(0.0, 600.0, 1.0, 600, 600, "EPSG:25832")
-    from inventory.grid import Surface
+    from inventory.model.grid import Surface
 
     z = np.fromfunction(lambda r, c: r * 0.01 + c * 0.02, g.shape)
     s = Surface(g, z, np.ones(g.shape, np.int32), np.zeros(g.shape), np.zeros(g.shape, bool))

@@ -23,14 +23,14 @@ import rasterio
 from pyproj import Transformer
 from scipy.spatial import cKDTree
 
-from inventory.cloud.classes import GROUND
-from inventory.cloud.crs import US_SURVEY_FOOT_M
-from inventory.cloud.georef import StationPose, poses_from_stations
-from inventory.cloud.io import read_cloud, write_cloud
-from inventory.cloud.synthetic import LABELS, make_yard
+from inventory.model.classes import GROUND
+from inventory.io.crs import US_SURVEY_FOOT_M
+from inventory.survey.placement import StationPose, poses_from_stations
+from inventory.io.clouds import read_cloud, write_cloud
+from inventory._demo.synthetic import LABELS, make_yard
 from inventory.errors import CoverageWarning, InputError, PipelineError
-from inventory.surface import read_geotiff
-from inventory.survey import measure_survey
+from inventory.survey.gridding import read_geotiff
+from inventory.survey.measure import measure_survey
 
 DATE = "2026-10-31"
 SITE_CRS = "EPSG:25832"
@@ -205,7 +205,7 @@ _SAMPLE_RUNS: dict = {}
 def _sample_run(which, tmp_path_factory):
     """measure_survey on the sample site's latest or earliest survey, once per session."""
     truth = _sample_truth()
-    from inventory.site import load_site
+    from inventory.site.load import load_site
 
     if which not in _SAMPLE_RUNS:
         with warnings.catch_warnings():
@@ -301,7 +301,7 @@ def test_enclosed_gap_is_warned(tmp_path):
     rng = np.random.default_rng(0)
     folder = tmp_path / "surveys" / DATE
     folder.mkdir(parents=True)
-    from inventory.cloud.io import empty_points
+    from inventory.io.clouds import empty_points
 
     n = 40000
     x, y = rng.random(n) * 60, rng.random(n) * 60

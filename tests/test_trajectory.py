@@ -13,18 +13,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
-from inventory.cloud.georef import rotation_matrix
-from inventory.cloud.trajectory import (
-    Machine,
-    Trajectory,
-    adjusted_gps_time,
-    euler_rotation,
-    georeference,
-    load_trajectory,
-    machine_poses,
-    machines_from_config,
-    read_trajectories,
-)
+from inventory.model.pose import rotation_matrix
+from inventory.model.pose import Machine, Trajectory, adjusted_gps_time, euler_rotation, machine_poses
+from inventory.survey.placement import georeference
+from inventory.site.trajectory import load_trajectory, machines_from_config, read_trajectories
 from inventory.errors import InputError, InputErrors, InputWarning
 
 angle = st.floats(-180.0, 180.0, allow_nan=False)
@@ -37,7 +29,7 @@ angle = st.floats(-180.0, 180.0, allow_nan=False)
 @given(roll=angle, pitch=st.floats(-89.0, 89.0), yaw=angle)
 def test_euler_rotation_is_scipy_zyx_and_the_team_matrix(roll, pitch, yaw):
     # Reference: scipy Rotation.from_euler("ZYX", [yaw, pitch, roll]) (intrinsic z-y'-x''), the
-    # convention of the site contract; and the hand-written Rz @ Ry @ Rx of inventory.cloud.georef.
+    # convention of the site contract; and the hand-written Rz @ Ry @ Rx of inventory.survey.placement.
     ours = euler_rotation(roll, pitch, yaw).as_matrix()
     ref = Rotation.from_euler("ZYX", [yaw, pitch, roll], degrees=True).as_matrix()
     np.testing.assert_allclose(ours, ref, atol=1e-12)
@@ -363,7 +355,7 @@ def test_warn_false_only_counts():
 
 
 def test_utc_from_adjusted_gps_inverts():
-    from inventory.cloud.trajectory import utc_from_adjusted_gps
+    from inventory.model.pose import utc_from_adjusted_gps
 
     when = datetime(2026, 10, 31, 11, 30, 15, 250000, tzinfo=timezone.utc)
     assert utc_from_adjusted_gps(adjusted_gps_time(when)) == when
@@ -385,9 +377,9 @@ def test_extent_hand_computed():
 @given(roll=angle, pitch=st.floats(-89.0, 89.0), yaw=angle,
        origin=st.tuples(*[st.floats(-1e4, 1e4)] * 3), t=st.floats(0.0, 1.0))
 def test_a_still_trajectory_places_points_like_a_static_station(roll, pitch, yaw, origin, t):
-    # Cross-check with the static-station path (inventory.cloud.georef.StationPose.apply):
+    # Cross-check with the static-station path (inventory.survey.placement.StationPose.apply):
     # a trajectory that does not move must give the same site coordinates at any time.
-    from inventory.cloud.georef import StationPose
+    from inventory.survey.placement import StationPose
 
     pts = np.random.default_rng(0).normal(0, 20, (50, 3))
     pose = StationPose("S", *origin, roll_deg=roll, pitch_deg=pitch, yaw_deg=yaw)

@@ -8,9 +8,11 @@ import laspy
 import numpy as np
 import pytest
 
-from inventory.cloud.trajectory import georeference, machine_poses, read_trajectories
-from inventory.demo.machine_scan import demo_motion, demo_stacker, write_demo_machine_survey
-from inventory.demo.scenario import SITE_ORIGIN, terminal_at
+from inventory.survey.placement import georeference
+from inventory.model.pose import machine_poses
+from inventory.site.trajectory import read_trajectories
+from inventory._demo.machine_scan import demo_motion, demo_stacker, write_demo_machine_survey
+from inventory._demo.scenario import SITE_ORIGIN, terminal_at
 
 K = 1  # the 2026-10-31 survey
 

@@ -15,14 +15,10 @@ import numpy as np
 import pytest
 from scipy.interpolate import griddata
 
-from inventory.cloud.trajectory import (
-    Machine,
-    euler_rotation,
-    georeference,
-    machines_from_config,
-    read_trajectories,
-)
-from inventory.demo.machine_scan import (
+from inventory.model.pose import Machine, euler_rotation
+from inventory.survey.placement import georeference
+from inventory.site.trajectory import machines_from_config, read_trajectories
+from inventory._demo.machine_scan import (
     MachineMotion,
     ScannerHead,
     cast_rays,
@@ -133,7 +129,7 @@ def test_sparse_trajectory_log_still_places_points(machine_scan):
     # Logged at 1 Hz instead of 10 Hz: interpolation between samples still holds the cloud
     # near the noise (the motion is smooth), and a 1 Hz log passes a 1.5 s gap limit.
     s = machine_scan.samples.iloc[::10]
-    from inventory.cloud.trajectory import Trajectory
+    from inventory.model.pose import Trajectory
 
     traj = Trajectory.from_machine_axes(s["gps_time"].to_numpy(), STACKER, s["travel_m"].to_numpy(),
                                         s["slew_deg"].to_numpy(), s["luff_deg"].to_numpy())
@@ -145,7 +141,7 @@ def test_sparse_trajectory_log_still_places_points(machine_scan):
 def test_trajectory_dropout_drops_points_with_a_warning(machine_scan):
     s = machine_scan.samples
     cut = s[(s["gps_time"] < s["gps_time"].iloc[200]) | (s["gps_time"] > s["gps_time"].iloc[230])]
-    from inventory.cloud.trajectory import Trajectory
+    from inventory.model.pose import Trajectory
 
     traj = Trajectory.from_machine_axes(cut["gps_time"].to_numpy(), STACKER, cut["travel_m"].to_numpy(),
                                         cut["slew_deg"].to_numpy(), cut["luff_deg"].to_numpy())

@@ -21,7 +21,7 @@ import pytest
 import rasterio
 
 from inventory.errors import InputWarning
-from inventory.survey import measure_survey
+from inventory.survey.measure import measure_survey
 
 REPO = Path(__file__).resolve().parent.parent
 SITE = REPO / "sample_site"
@@ -49,7 +49,7 @@ def _true_surface_on(surface) -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def machine_survey():
-    from inventory.site import load_site
+    from inventory.site.load import load_site
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the sample books' planted duplicate ticket
@@ -108,7 +108,7 @@ def test_october_close_uses_the_month_end_survey(machine_survey):
 
 def test_previous_survey_follows_the_ledger(tmp_path: Path):
     from inventory.close import _previous_survey
-    from inventory.ledger import Ledger
+    from inventory.ledger.store import Ledger
 
     site = types.SimpleNamespace(surveys={d: None for d in ("2026-09-20", "2026-09-30", DATE, "2026-10-31")})
     with Ledger(tmp_path / "ledger.sqlite").open() as ledger:

@@ -21,8 +21,8 @@ from scipy.spatial import Delaunay
 from scipy.spatial.distance import pdist
 
 from inventory.errors import CoverageWarning, InputWarning
-from inventory.grid import Grid, Surface
-from inventory.volume import (
+from inventory.model.grid import Grid, Surface
+from inventory.volume.measure import (
     BaseSurfaces,
     ErrorModel,
     VOLUME_COLUMNS,
@@ -32,7 +32,7 @@ from inventory.volume import (
     spherical_correlation_sum,
     thickness_raster,
 )
-from inventory._volume_tin import positive_part_integral
+from inventory.volume.tin import positive_part_integral
 
 # ----------------------------------------------------------------------------- helpers
 CRS = "EPSG:25832"

@@ -3,8 +3,8 @@
 Two levels:
 
 * The volume step alone: the demo terminal is scanned with the simulator
-  (:mod:`inventory.demo.simulate`), the points it labels pad or pile are kept (a perfect
-  ground classifier), gridded and hole-filled with :mod:`inventory.surface`, and measured.
+  (:mod:`inventory._demo.simulate`), the points it labels pad or pile are kept (a perfect
+  ground classifier), gridded and hole-filled with :mod:`inventory.survey.gridding`, and measured.
   Checks: the 95 % interval covers the true volume; doubling the range noise raises the
   reported sigma; hiding 20 % of a pile from every station raises it and still covers.
 * The sample site end to end (slow): ``load_site`` -> ``measure_survey`` ->
@@ -28,13 +28,13 @@ ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_site"
 TRUTH = SAMPLE / "truth.json"
 
-demo_sim = pytest.importorskip("inventory.demo.simulate", reason="demo simulator not available")
-demo_sc = pytest.importorskip("inventory.demo.scenario", reason="demo scenario not available")
-surface_mod = pytest.importorskip("inventory.surface", reason="inventory.surface not available")
+demo_sim = pytest.importorskip("inventory._demo.simulate", reason="demo simulator not available")
+demo_sc = pytest.importorskip("inventory._demo.scenario", reason="demo scenario not available")
+surface_mod = pytest.importorskip("inventory.survey.gridding", reason="inventory.survey.gridding not available")
 
 from inventory.errors import CoverageWarning  # noqa: E402
-from inventory.grid import Grid  # noqa: E402
-from inventory.volume import BaseSurfaces, measure_piles  # noqa: E402
+from inventory.model.grid import Grid
+from inventory.volume.measure import BaseSurfaces, measure_piles
 
 #: Share of piles whose 95 % interval must contain the truth (the issue's bar).
 COVERAGE_BAR = 0.90
@@ -207,7 +207,7 @@ def test_simulated_surveys_sigma_is_useful():
 # ----------------------------------------------------------------------------- end to end
 def _sample_tables():
     """Both sample surveys through the real chain (shared, cached: tests/_sample_chain.py)."""
-    pytest.importorskip("inventory.survey", reason="inventory.survey not available")
+    pytest.importorskip("inventory.survey.measure", reason="inventory.survey.measure not available")
     import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
 
     return [(sv["date"], chain.volumes(sv["date"]), {p: v["volume_m3"] for p, v in sv["piles"].items()})

@@ -4,11 +4,11 @@ Every writer builds its file beside the destination under a temporary name and r
 into place, so a reader sees either the previous file or the complete new one.
 """
 
-from .layers import write_layers
-from .manifest import sha256_file, write_manifest
-from .rasters import write_raster
-from .report import write_report
-from .workbook import write_history_workbook, write_workbook
+from inventory.export.layers import write_layers
+from inventory.export.manifest import sha256_file, write_manifest
+from inventory.export.rasters import write_raster
+from inventory.export.report import write_report
+from inventory.export.workbook import write_history_workbook, write_workbook
 
 __all__ = [
     "write_workbook", "write_history_workbook", "write_layers", "write_raster",

@@ -17,9 +17,9 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..errors import CRSError
-from ..results import PILE_COLUMNS, CloseResult
-from ._atomic import atomic_path
+from inventory.errors import CRSError
+from inventory.model.results import PILE_COLUMNS, CloseResult
+from inventory.io.atomic import atomic_path
 
 __all__ = ["write_layers", "read_piles_layer", "LAYER_NAMES"]
 

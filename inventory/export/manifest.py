@@ -19,8 +19,8 @@ from typing import Any
 
 import numpy as np
 
-from ..results import CloseResult
-from ._atomic import atomic_path
+from inventory.model.results import CloseResult
+from inventory.io.atomic import atomic_path
 
 __all__ = ["write_manifest", "sha256_file", "library_versions", "MANIFEST_VERSION"]
 
@@ -85,7 +85,7 @@ def library_versions() -> dict[str, str]:
     except ImportError:
         out["PROJ"] = "not installed"
     try:
-        from inventory import __version__
+        from inventory._version import __version__
 
         out["inventory"] = __version__
     except ImportError:  # pragma: no cover - we are inside the package

@@ -1,6 +1,6 @@
 """GeoTIFF outputs of a close: surface, thickness above base, change since the previous survey.
 
-There is one GeoTIFF writer in the package, :func:`inventory.surface.write_geotiff` (tiled
+There is one GeoTIFF writer in the package, :func:`inventory.survey.gridding.write_geotiff` (tiled
 256 x 256, DEFLATE with the floating-point predictor, internal overviews, CRS, nodata,
 written under a temporary name and renamed). This module adds what a close output needs
 on top of it: a CRS is required, NaN becomes the nodata value, and a real value equal to
@@ -14,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import CRSError
-from ..grid import Grid
+from inventory.errors import CRSError
+from inventory.model.grid import Grid
 
 __all__ = ["write_raster", "NODATA"]
 
@@ -53,7 +53,7 @@ def write_raster(
     from rasterio.crs import CRS
     from rasterio.errors import CRSError as RioCRSError
 
-    from ..surface import write_geotiff
+    from inventory.survey.gridding import write_geotiff
 
     arr = np.asarray(array, dtype="float64")
     if arr.shape != grid.shape:

@@ -23,9 +23,9 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
-from ..results import CloseResult
-from ._atomic import atomic_path
-from .workbook import CAUTIONS, SIGN_CONVENTION
+from inventory.model.results import CloseResult
+from inventory.io.atomic import atomic_path
+from inventory.export.workbook import CAUTIONS, SIGN_CONVENTION
 
 __all__ = ["write_report", "variance_colormap", "VARIANCE_COLORS"]
 

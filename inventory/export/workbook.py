@@ -31,8 +31,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from ..results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
-from ._atomic import atomic_path
+from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
+from inventory.io.atomic import atomic_path
 
 __all__ = [
     "write_workbook", "write_history_workbook", "SHEETS", "SIGN_CONVENTION", "CAUTIONS",
@@ -476,7 +476,7 @@ def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
 
 
 def _run_sheet(wb, result: CloseResult) -> None:
-    from .manifest import manifest_dict
+    from inventory.export.manifest import manifest_dict
 
     ws = wb.create_sheet("Run")
     facts = manifest_dict(result)
@@ -680,7 +680,7 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
     Parameters
     ----------
     df : DataFrame
-        As returned by :meth:`inventory.ledger.Ledger.history`.
+        As returned by :meth:`inventory.ledger.store.Ledger.history`.
     path : str or Path
 
     Returns

@@ -1,0 +1,239 @@
+"""Streamed reading and writing of LAS 1.2-1.4, LAZ and COPC files through laspy.
+
+Points travel between steps as numpy structured arrays with PDAL's dimension names
+(:data:`POINT_DTYPE`), so the same arrays can be handed to PDAL's Python bindings or to our
+own pipeline runner. A reader never holds more than one chunk of a file in memory.
+
+COPC files are LAZ 1.4 files with an octree index; read sequentially they are plain LAZ,
+which is all the survey step needs (COPC 1.0 specification, section 1).
+
+Examples
+--------
+>>> with open_cloud("tests/data/cone.laz") as cloud:            # doctest: +SKIP
+...     for chunk in cloud.chunks():
+...         print(chunk["Z"].max())
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+from typing import Iterator
+
+import laspy
+import numpy as np
+from pyproj import CRS
+
+from inventory.errors import CRSError, InputError
+from inventory.io.crs import parse_crs
+
+__all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CloudReader", "CloudWriter", "open_cloud",
+           "read_cloud", "write_cloud", "read_crs", "empty_points"]
+
+#: Points per chunk when streaming; about 60 MB of POINT_DTYPE.
+DEFAULT_CHUNK = 1_000_000
+
+#: One point as it travels through the survey step. Names are PDAL's dimension names
+#: (PDAL Dimension.json); ``StationRange`` is ours: metres from the scanner origin for
+#: clouds given in a scanner's own frame, NaN where the station is unknown.
+POINT_DTYPE = np.dtype([
+    ("X", "f8"), ("Y", "f8"), ("Z", "f8"),
+    ("Intensity", "u2"),
+    ("ReturnNumber", "u1"), ("NumberOfReturns", "u1"),
+    ("Classification", "u1"),
+    ("GpsTime", "f8"),
+    ("PointSourceId", "u2"),
+    ("StationRange", "f8"),
+])
+
+#: laspy attribute for each PDAL dimension we carry (StationRange is not stored in LAS).
+_LAS_FIELDS = {
+    "Intensity": "intensity",
+    "ReturnNumber": "return_number",
+    "NumberOfReturns": "number_of_returns",
+    "Classification": "classification",
+    "GpsTime": "gps_time",
+    "PointSourceId": "point_source_id",
+}
+
+#: Written coordinates are stored as integers of 1 mm (LAS 1.4 R15 section 2.4 scale factors;
+#: 1 mm is far below the 5-10 mm ranging noise of survey scanners: common practice).
+WRITE_SCALE = 0.001
+
+
+def empty_points(n: int = 0) -> np.ndarray:
+    """A zeroed structured array of ``n`` points with NaN StationRange."""
+    pts = np.zeros(n, dtype=POINT_DTYPE)
+    pts["StationRange"] = np.nan
+    return pts
+
+
+def read_crs(header: laspy.LasHeader, path: "str | Path" = "") -> tuple[CRS | None, str | None]:
+    """The CRS stored in a LAS header and where it came from (``"wkt"`` or ``"geotiff"``).
+
+    Returns ``(None, None)`` when the file carries no CRS. A CRS record that cannot be
+    parsed is an :class:`~inventory.errors.CRSError` naming the file.
+    """
+    records = list(header.vlrs) + list(getattr(header, "evlrs", None) or [])
+    has_wkt = any(isinstance(v, laspy.vlrs.known.WktCoordinateSystemVlr) for v in records)
+    has_geokeys = any(isinstance(v, laspy.vlrs.known.GeoKeyDirectoryVlr) for v in records)
+    if not (has_wkt or has_geokeys):
+        return None, None
+    try:
+        crs = header.parse_crs(prefer_wkt=True)
+    except Exception as err:  # laspy raises several types for broken CRS records
+        raise CRSError(path, f"the coordinate system record cannot be read ({err})",
+                       field="crs") from err
+    if crs is None:
+        return None, None
+    return crs, ("wkt" if has_wkt else "geotiff")
+
+
+class CloudReader:
+    """A point cloud file open for streaming; use through :func:`open_cloud`.
+
+    Attributes
+    ----------
+    path : Path
+    count : int
+        Number of point records in the header.
+    crs : pyproj.CRS or None
+        From the file's WKT record, else its GeoTIFF keys, else ``default_crs``.
+    crs_source : str or None
+        ``"wkt"``, ``"geotiff"``, ``"default"`` or ``None``.
+    mins, maxs : ndarray
+        Header bounds (x, y, z) in file units.
+    """
+
+    def __init__(self, path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,
+                 default_crs: "CRS | str | None" = None) -> None:
+        self.path = Path(path)
+        self.chunk_size = int(chunk_size)
+        try:
+            self._reader = laspy.open(self.path)
+        except FileNotFoundError as err:
+            raise InputError(self.path, "file not found") from err
+        except Exception as err:  # laspy.errors.LaspyException and friends
+            raise InputError(self.path, f"not a readable LAS/LAZ file ({err})") from err
+        self.header = self._reader.header
+        self.count = int(self.header.point_count)
+        self.mins = np.asarray(self.header.mins, float)
+        self.maxs = np.asarray(self.header.maxs, float)
+        crs, source = read_crs(self.header, self.path)
+        if crs is None and default_crs is not None:
+            crs, source = parse_crs(default_crs, where=str(self.path)), "default"
+        self.crs, self.crs_source = crs, source
+        self.read = 0
+
+    def __enter__(self) -> "CloudReader":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self._reader.close()
+
+    def chunks(self) -> Iterator[np.ndarray]:
+        """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``."""
+        names = set(self.header.point_format.dimension_names)
+        try:
+            for rec in self._reader.chunk_iterator(self.chunk_size):
+                n = len(rec)
+                out = empty_points(n)
+                out["X"], out["Y"], out["Z"] = rec.x, rec.y, rec.z
+                for dim, attr in _LAS_FIELDS.items():
+                    if attr in names:
+                        out[dim] = np.asarray(rec[attr])
+                self.read += n
+                yield out
+        except (laspy.errors.LaspyException, OSError, ValueError) as err:
+            raise InputError(self.path, f"read failed after {self.read} points ({err})") from err
+
+
+def open_cloud(path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,
+               default_crs: "CRS | str | None" = None) -> CloudReader:
+    """Open a LAS, LAZ or COPC file for streaming.
+
+    Parameters
+    ----------
+    path : path-like
+    chunk_size : int
+        Points per chunk yielded by :meth:`CloudReader.chunks`.
+    default_crs : CRS or str, optional
+        Used when the file carries no CRS (the site's ``[survey] default_crs``).
+    """
+    return CloudReader(path, chunk_size=chunk_size, default_crs=default_crs)
+
+
+def read_cloud(path: "str | Path", **kw: object) -> tuple[np.ndarray, CRS | None]:
+    """Read a whole file into one array (for small files and tests)."""
+    with open_cloud(path, **kw) as cloud:  # type: ignore[arg-type]
+        parts = list(cloud.chunks())
+        return (np.concatenate(parts) if parts else empty_points()), cloud.crs
+
+
+class CloudWriter:
+    """Write points to a LAZ (or LAS) file chunk by chunk, LAS 1.4 point format 6.
+
+    The file appears under its name only when the writer closes without error (temporary
+    file + rename). ``offset`` fixes the integer origin; pass the survey grid's lower-left
+    corner so that every chunk can be stored at :data:`WRITE_SCALE`.
+    """
+
+    def __init__(self, path: "str | Path", *, crs: "CRS | str | None", offset: tuple[float, float, float],
+                 scale: float = WRITE_SCALE, point_format: int = 6) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        header = laspy.LasHeader(point_format=point_format, version="1.4")
+        header.scales = np.array([scale] * 3)
+        header.offsets = np.asarray(offset, float)
+        if crs is not None:
+            header.add_crs(parse_crs(crs))
+        self.header = header
+        compress = self.path.suffix.lower() == ".laz"
+        fd, tmp = tempfile.mkstemp(prefix=self.path.name + ".", suffix=".part", dir=self.path.parent)
+        os.close(fd)
+        self._tmp = Path(tmp)
+        self._writer = laspy.open(self._tmp, mode="w", header=header, do_compress=compress)
+        self.written = 0
+
+    def write(self, points: np.ndarray) -> None:
+        """Append a :data:`POINT_DTYPE` array."""
+        if len(points) == 0:
+            return
+        rec = laspy.ScaleAwarePointRecord.zeros(len(points), header=self.header)
+        rec.x, rec.y, rec.z = points["X"], points["Y"], points["Z"]
+        for dim, attr in _LAS_FIELDS.items():
+            if dim in points.dtype.names:
+                rec[attr] = points[dim]
+        self._writer.write_points(rec)
+        self.written += len(points)
+
+    def close(self, ok: bool = True) -> None:
+        self._writer.close()
+        if ok:
+            os.replace(self._tmp, self.path)
+        else:
+            self._tmp.unlink(missing_ok=True)
+
+    def __enter__(self) -> "CloudWriter":
+        return self
+
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        self.close(ok=exc_type is None)
+
+
+def write_cloud(path: "str | Path", points: np.ndarray, crs: "CRS | str | None" = None,
+                offset: tuple[float, float, float] | None = None) -> Path:
+    """Write one array of points to ``path`` (LAZ when the name ends in ``.laz``)."""
+    if offset is None:
+        if len(points):
+            offset = tuple(np.floor(np.array([points["X"].min(), points["Y"].min(),
+                                              points["Z"].min()])))
+        else:
+            offset = (0.0, 0.0, 0.0)
+    with CloudWriter(path, crs=crs, offset=offset) as w:
+        w.write(points)
+    return Path(path)

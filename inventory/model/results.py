@@ -1,0 +1,86 @@
+"""The result of one month close, as plain tables that the exporters and the ledger read.
+
+Every table is a pandas DataFrame with the columns listed here; tonnes are metric tonnes
+(wet unless the column says dry), volumes cubic metres, sigmas one standard deviation.
+Sign convention everywhere: variance = survey - book; a positive variance means more stock
+on the ground than in the books, and a positive adjustment increases book stock.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+
+from inventory.model.grid import Surface
+
+__all__ = ["PILE_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
+
+#: Columns of ``CloseResult.piles`` (one row per pile), in display order.
+PILE_COLUMNS = [
+    "pile_id", "material", "base_method", "area_m2", "scanned_fraction",
+    "volume_m3", "volume_sigma_m3", "volume_tin_m3", "below_base_m3",
+    "density_t_m3", "survey_t", "survey_dry_t", "survey_sigma_t", "base_sigma_t",
+    "opening_t", "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t",
+    "book_t", "book_sigma_t",
+    "variance_t", "variance_pct", "variance_sigma_t", "significant", "tolerance_pct",
+    "out_of_tolerance", "adjustment_t", "after_survey_net_t", "closing_t", "flags",
+]
+
+#: Columns of ``CloseResult.movements`` (every record that touched the books this period).
+MOVEMENT_COLUMNS = [
+    "kind",        # weighbridge | belt | transfer
+    "reference",   # ticket id, scale id + interval, or transfer reference
+    "time",        # tz-aware UTC timestamp (interval end for belts)
+    "pile_id",
+    "tonnes",      # signed: + into the pile, - out of it
+    "scale_id",
+    "counted",     # False for a duplicate ticket that was dropped
+    "before_survey",  # True when it falls at or before the survey instant
+    "note",
+    "source",      # file the record came from
+    "line",        # its line in that file
+]
+
+#: Columns of ``CloseResult.journal`` (one line per pile adjusted).
+JOURNAL_COLUMNS = ["pile_id", "material", "adjustment_t", "reason_code", "reason"]
+
+#: Columns of ``CloseResult.scale_diagnostics``.
+SCALE_COLUMNS = ["scale_id", "piles", "tonnes", "bias_pct", "bias_sigma_pct", "history_bias_pct",
+                 "history_bias_sigma_pct", "history_months", "flagged", "message"]
+
+
+@dataclass
+class CloseResult:
+    """Everything one close produced, before it is written anywhere."""
+
+    site_name: str
+    period: str                      # YYYY-MM
+    crs: str
+    timezone: str
+    survey_date: str                 # YYYY-MM-DD
+    survey_instant: datetime         # UTC
+    previous_survey_date: str | None
+    piles: Any                       # DataFrame, PILE_COLUMNS
+    footprints: Any                  # GeoDataFrame: pile_id, geometry
+    movements: Any                   # DataFrame, MOVEMENT_COLUMNS
+    journal: Any                     # DataFrame, JOURNAL_COLUMNS
+    scale_diagnostics: Any           # DataFrame, SCALE_COLUMNS
+    duplicates: Any                  # DataFrame: reference, kind (exact|suspected), detail
+    surface: Surface
+    thickness: np.ndarray            # surface - base on the survey grid (NaN outside piles)
+    change: np.ndarray | None        # surface - previous surface, same grid
+    coverage_gaps: Any               # GeoDataFrame: pile_id, area_m2, geometry
+    survey_extent: Any               # GeoDataFrame: survey_date, points, geometry
+    run: dict = field(default_factory=dict)  # inputs (path -> sha256), parameters, versions, timings
+    #: Further tables a controller reads beside the main ones, by sheet title: e.g.
+    #: "Belt split" (belt totals cut at routing changes and the survey instant),
+    #: "Measured change" (change between two surveys vs net movement), "Materials".
+    tables: dict = field(default_factory=dict)
+    #: Reason codes of the adjustment journal: code -> what it means.
+    reason_codes: dict = field(default_factory=dict)
+    #: This month's rows of the belt-scale bias fit (``inventory.stock.reconcile.BIAS_ROW_COLUMNS``),
+    #: kept by the ledger so that later months can pool them; None = none to keep.
+    bias_rows: Any = None

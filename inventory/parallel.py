@@ -1,0 +1,152 @@
+"""Independent jobs (survey tiles, surveys) run serially, on threads, or on a Dask cluster.
+
+The survey step cuts a survey into tiles that are classified alone
+(:mod:`inventory.survey.measure`); a month close of many sites runs surveys that share nothing.
+:func:`executor` turns the ``--workers N`` / ``--scheduler ADDRESS`` options into one
+object with a single method, :meth:`Executor.map`, that yields results **in the order of
+the inputs** whatever order they finish in, with at most ``window`` jobs in flight. Equal
+order is what makes serial, threaded and distributed runs write identical files (the
+classified cloud lists points tile by tile, the surface sums are added in the same order);
+the window is what bounds memory (finished results wait on the workers only until the
+ones before them are taken).
+
+* ``workers=None, scheduler=None``: serial, in this process.
+* ``workers=N, threads=True``: a pool of N threads in this process. NumPy, SciPy's
+  KD-tree and the LAZ codec release the GIL for most of the work.
+* ``workers=N``: a local Dask distributed cluster of N worker processes, one thread each
+  (``dask.distributed.LocalCluster``), started and closed here. Dask starts its workers
+  with one BLAS/OpenMP thread (``distributed.nanny.pre-spawn-environ``), and each job's
+  own parallel loops get the machine's cores shared among the workers (:func:`job_threads`).
+* ``scheduler=ADDRESS``: an existing Dask cluster (``tcp://host:8786``). Jobs and their
+  arguments are pickled to the workers; tile jobs read their points from the spill folder,
+  so the workers must see it (same machine, or a shared ``spill_dir``).
+"""
+
+from __future__ import annotations
+
+import collections
+import contextlib
+import os
+import threading
+from typing import Any, Callable, Iterable, Iterator
+
+__all__ = ["Executor", "executor", "job_threads"]
+
+_local = threading.local()
+
+
+def job_threads() -> int:
+    """Threads a job may use for its own parallel loops (SciPy ``cKDTree`` ``workers``).
+
+    ``-1`` (every core) in a serial run; inside a job run by an :class:`Executor` of
+    several workers, the cores of the machine shared among them (one each on a Dask
+    cluster at ``scheduler``, whose size its owner chose), so that N workers do not start
+    N x cores threads.
+    """
+    return getattr(_local, "threads", -1)
+
+
+def _in_job(threads: int, fn: Callable[..., Any], *args: Any) -> Any:
+    """Run ``fn(*args)`` with :func:`job_threads` set to ``threads`` (in a worker thread or process)."""
+    before = getattr(_local, "threads", -1)
+    _local.threads = threads
+    try:
+        return fn(*args)
+    finally:
+        _local.threads = before
+
+
+class Executor:
+    """Runs ``fn(*args)`` jobs; see the module docstring. Use as a context manager."""
+
+    def __init__(self, kind: str, workers: int, submit: Callable[..., Any], result: Callable[[Any], Any],
+                 close: Callable[[], None] = lambda: None, address: str | None = None,
+                 job_threads: int = -1) -> None:
+        self.kind = kind          # "serial" | "threads" | "dask"
+        self.workers = workers
+        self.job_threads = job_threads
+        self.address = address
+        self._submit, self._result, self._close = submit, result, close
+
+    def map(self, fn: Callable[..., Any], jobs: Iterable[tuple], window: int | None = None) -> Iterator[Any]:
+        """Yield ``fn(*job)`` for each job, in the order of ``jobs``.
+
+        At most ``window`` jobs (default twice the workers) are submitted and not yet taken.
+        """
+        if self.kind == "serial":
+            for job in jobs:
+                yield fn(*job)
+            return
+        window = max(1, window or 2 * self.workers)
+        pending: collections.deque = collections.deque()
+        for job in jobs:
+            pending.append(self._submit(_in_job, self.job_threads, fn, *job))
+            if len(pending) >= window:
+                yield self._result(pending.popleft())
+        while pending:
+            yield self._result(pending.popleft())
+
+    def close(self) -> None:
+        self._close()
+
+    def __enter__(self) -> "Executor":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        where = f" at {self.address}" if self.address else ""
+        return f"Executor({self.kind}, {self.workers} workers{where})"
+
+
+def executor(workers: int | None = None, scheduler: str | None = None, *, threads: bool = False) -> Executor:
+    """An :class:`Executor` for the ``--workers`` / ``--scheduler`` options.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Local parallelism: worker processes of a Dask ``LocalCluster`` (or threads with
+        ``threads=True``). ``None``, 0 or 1 without a scheduler runs serially.
+    scheduler : str, optional
+        Address of a running Dask scheduler; wins over ``workers``.
+    threads : bool
+        Use a thread pool of ``workers`` threads instead of processes.
+    """
+    if workers is not None and int(workers) < 0:
+        raise ValueError(f"workers must be 0 or more, got {workers}")
+    if scheduler:
+        from dask.distributed import Client
+
+        client = Client(scheduler)
+        n = max(1, len(client.scheduler_info().get("workers", {})))
+        return Executor("dask", n, lambda fn, *a: client.submit(fn, *a, pure=False),
+                        lambda fut: fut.result(), client.close, address=scheduler, job_threads=1)
+    n = int(workers or 0)
+    if n <= 1:
+        return Executor("serial", 1, None, None)  # type: ignore[arg-type]
+    share = max(1, (os.cpu_count() or 1) // n)   # cores per worker
+    if threads:
+        from concurrent.futures import ThreadPoolExecutor
+
+        pool = ThreadPoolExecutor(max_workers=n, thread_name_prefix="inventory")
+        return Executor("threads", n, pool.submit, lambda fut: fut.result(),
+                        lambda: pool.shutdown(wait=True, cancel_futures=True), job_threads=share)
+    from dask.distributed import Client, LocalCluster
+
+    # One thread per process: the jobs are NumPy-bound and bring their own KD-tree threads.
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                           dashboard_address=":0")   # any free port: several closes may run at once
+    try:
+        client = Client(cluster)
+    except BaseException:
+        cluster.close()
+        raise
+
+    def close() -> None:
+        with contextlib.suppress(Exception):
+            client.close()
+        cluster.close()
+
+    return Executor("dask", n, lambda fn, *a: client.submit(fn, *a, pure=False), lambda fut: fut.result(),
+                    close, address=cluster.scheduler_address, job_threads=share)

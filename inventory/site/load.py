@@ -1,0 +1,893 @@
+"""The site folder: load it, check all of it once, hand plain objects to every later step.
+
+A site folder holds ``site.toml``, ``piles.gpkg``, ``materials.csv``, optional
+``base/floor.tif``, ``surveys/<YYYY-MM-DD>/`` with point clouds and ``stations.csv``,
+``movements/<YYYY-MM>/`` with weighbridge, belt-scale, routing and transfer records, and
+``opening.csv`` for the first period. :func:`load_site` reads and validates all of it and
+either returns a :class:`Site` or raises :class:`~inventory.errors.InputErrors` listing every
+problem found (not just the first). :func:`check_site` does the same without raising, for
+``inventory check``. Neither writes anything.
+
+Examples
+--------
+>>> from inventory.site.load import check_site
+>>> report = check_site("sample_site")            # doctest: +SKIP
+>>> report.ok                                      # doctest: +SKIP
+True
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import tomllib
+import warnings
+from dataclasses import dataclass, field
+from datetime import date, datetime, time, timezone
+from functools import lru_cache
+from importlib import resources
+from pathlib import Path
+from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import numpy as np
+import pandas as pd
+
+from inventory.io.tables import NET_ROUNDING_T, read_table, table_schema
+from inventory.errors import InputErrors, InputWarning, Problem
+
+__all__ = [
+    "Site",
+    "SiteConfig",
+    "Material",
+    "Scale",
+    "SurveyRef",
+    "Movements",
+    "CheckReport",
+    "load_site",
+    "check_site",
+    "parse_base",
+    "POINT_CLOUD_SUFFIXES",
+]
+
+#: File endings read as point clouds (COPC files end in .copc.laz and are LAZ 1.4).
+POINT_CLOUD_SUFFIXES = (".las", ".laz")
+_SURVEY_DIR = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+_PERIOD_DIR = re.compile(r"^\d{4}-\d{2}$")
+_LEVEL_BASE = re.compile(r"^level:(-?\d+(\.\d+)?)$")
+#: Overlap between two footprints below this many square metres is digitising noise, not an
+#: overlap (a shared toe line drawn twice); common practice for vector QA at survey scale.
+OVERLAP_TOLERANCE_M2 = 0.01
+
+
+# ----------------------------------------------------------------------------- plain objects
+@dataclass(frozen=True)
+class Material:
+    """One material of the material table (``materials.csv``)."""
+
+    name: str
+    bulk_density_t_m3: float
+    density_sd_t_m3: float
+    moisture_pct: float
+    tolerance_pct: float | None = None
+
+
+@dataclass(frozen=True)
+class Scale:
+    """One weighing instrument from ``site.toml`` ``[[scales]]``."""
+
+    id: str
+    kind: str  # "belt" | "weighbridge"
+    accuracy_class: str
+    direction: str | None = None  # belts: "in" feeds piles, "out" reclaims
+    scale_interval_kg: float | None = None
+    in_service: bool = True
+
+
+@dataclass(frozen=True)
+class GridConfig:
+    cell_size_m: float = 0.5
+    max_fill_distance_m: float = 3.0
+    statistic: str = "mean"
+
+
+@dataclass(frozen=True)
+class SurveyConfig:
+    default_crs: str | None = None
+    pipeline: Path | None = None
+    default_time: str = "12:00"
+    trajectory_max_gap_s: float = 1.0
+
+
+@dataclass(frozen=True)
+class BaseConfig:
+    floor_raster: Path | None = None
+    floor_sigma_m: float = 0.03
+    toe_ring_m: float = 3.0
+
+
+@dataclass(frozen=True)
+class ReconcileConfig:
+    significance_k: float = 2.0
+    default_tolerance_pct: float = 3.0
+    adjust_to: str = "survey"
+    duplicate_window_min: float = 10.0
+
+
+@dataclass(frozen=True)
+class SiteConfig:
+    """The sections of ``site.toml`` with their defaults filled in."""
+
+    grid: GridConfig = GridConfig()
+    survey: SurveyConfig = SurveyConfig()
+    base: BaseConfig = BaseConfig()
+    reconcile: ReconcileConfig = ReconcileConfig()
+    machines: dict = field(default_factory=dict)  # id -> inventory.model.pose.Machine
+    raw: dict = field(default_factory=dict, compare=False)
+
+
+@dataclass
+class SurveyRef:
+    """One survey folder: its files, station poses and the instant it stands for."""
+
+    date: str
+    folder: Path
+    files: list[Path]
+    stations: pd.DataFrame | None
+    instant: datetime
+    extent: tuple[float, float, float, float] | None = None  # site CRS, from file headers
+    point_count: int = 0
+
+
+@dataclass
+class Movements:
+    """One period's movement records, checked, with times in UTC."""
+
+    period: str
+    weighbridge: pd.DataFrame
+    belt_scales: pd.DataFrame
+    routing: pd.DataFrame
+    transfers: pd.DataFrame
+
+    @property
+    def record_count(self) -> int:
+        return sum(len(t) for t in (self.weighbridge, self.belt_scales, self.routing, self.transfers))
+
+
+@dataclass
+class Site:
+    """A loaded, validated site folder."""
+
+    root: Path
+    name: str
+    crs: str
+    timezone: ZoneInfo
+    config: SiteConfig
+    scales: dict[str, Scale]
+    materials: dict[str, Material]
+    piles: Any  # GeoDataFrame: pile_id, material, base, density_t_m3, geometry
+    surveys: dict[str, SurveyRef]
+    movements: dict[str, Movements]
+    opening: pd.DataFrame | None
+    warnings: list[Problem] = field(default_factory=list)
+
+    @property
+    def periods(self) -> list[str]:
+        """Periods (``YYYY-MM``) that have movement records or a survey."""
+        return sorted(set(self.movements) | {d[:7] for d in self.surveys})
+
+    def survey_for(self, period: str) -> SurveyRef | None:
+        """The last survey dated inside ``period``, or None."""
+        dates = [d for d in self.surveys if d.startswith(period)]
+        return self.surveys[max(dates)] if dates else None
+
+    def movements_for(self, period: str) -> Movements:
+        """The period's records; empty tables when the period has none."""
+        if period in self.movements:
+            return self.movements[period]
+        return _empty_movements(period)
+
+    def summary(self) -> str:
+        """A few lines for ``inventory check``."""
+        lines = [
+            f"site      {self.name} ({self.crs}, {self.timezone.key})",
+            f"piles     {len(self.piles)}: " + ", ".join(
+                f"{p} ({m})" for p, m in zip(self.piles["pile_id"], self.piles["material"])
+            ),
+            f"materials {len(self.materials)}: " + ", ".join(sorted(self.materials)),
+            f"scales    {len(self.scales)}: " + ", ".join(
+                f"{s.id} ({s.kind} class {s.accuracy_class})" for s in self.scales.values()
+            ),
+        ]
+        if self.surveys:
+            lines.append(f"surveys   {len(self.surveys)}:")
+            for ref in self.surveys.values():
+                local = ref.instant.astimezone(self.timezone).strftime("%Y-%m-%d %H:%M %Z")
+                lines.append(
+                    f"          {ref.date}  {len(ref.files)} file(s), {ref.point_count:,} points, at {local}"
+                )
+        else:
+            lines.append("surveys   none")
+        if self.movements:
+            lines.append(f"movements {len(self.movements)} period(s):")
+            for period, mv in sorted(self.movements.items()):
+                lines.append(
+                    f"          {period}  {len(mv.weighbridge)} tickets, {len(mv.belt_scales)} belt totals, "
+                    f"{len(mv.routing)} routing windows, {len(mv.transfers)} transfers"
+                )
+        else:
+            lines.append("movements none")
+        lines.append(
+            "opening   " + (f"{len(self.opening)} balance(s) in opening.csv" if self.opening is not None else "none (from the ledger)")
+        )
+        return "\n".join(lines)
+
+
+@dataclass
+class CheckReport:
+    """What ``inventory check`` found: the site (when it loaded) and every problem."""
+
+    root: Path
+    site: Site | None
+    problems: list[Problem]
+
+    @property
+    def errors(self) -> list[Problem]:
+        return [p for p in self.problems if p.severity == "error"]
+
+    @property
+    def warnings(self) -> list[Problem]:
+        return [p for p in self.problems if p.severity == "warning"]
+
+    @property
+    def ok(self) -> bool:
+        return not self.errors
+
+
+# ----------------------------------------------------------------------------- entry points
+def load_site(path: str | Path) -> Site:
+    """Load and validate a site folder.
+
+    Raises
+    ------
+    InputErrors
+        When anything is wrong; ``.problems`` lists every problem with file, line or feature
+        and field. Warnings (usable but suspicious input) are issued as
+        :class:`~inventory.errors.InputWarning` and kept in ``Site.warnings``.
+    """
+    report = check_site(path)
+    if not report.ok:
+        raise InputErrors(report.problems)
+    assert report.site is not None  # ok implies loaded; internal invariant, not user input
+    for problem in report.warnings:
+        warnings.warn(str(problem), InputWarning, stacklevel=2)
+    return report.site
+
+
+def check_site(path: str | Path) -> CheckReport:
+    """Validate a site folder and return every problem found. Never writes anything."""
+    root = Path(path)
+    loader = _Loader(root)
+    site = loader.load()
+    return CheckReport(root, site if not any(p.severity == "error" for p in loader.problems) else None, loader.problems)
+
+
+def parse_base(text: str) -> tuple[str, float | None]:
+    """Split a pile's ``base`` into method and level.
+
+    >>> parse_base("level:12.5")
+    ('level', 12.5)
+    >>> parse_base("toe")
+    ('toe', None)
+    """
+    value = (text or "").strip()
+    if value in ("floor", "toe"):
+        return value, None
+    match = _LEVEL_BASE.match(value)
+    if match:
+        return "level", float(match.group(1))
+    raise ValueError(f"'{text}' is not floor, toe or level:<z in metres>")
+
+
+# ----------------------------------------------------------------------------- the loader
+@lru_cache(maxsize=None)
+def _site_schema() -> dict:
+    text = resources.files("inventory").joinpath("_schemas", "site.schema.json").read_text("utf-8")
+    return json.loads(text)
+
+
+def _empty_movements(period: str) -> Movements:
+    def empty(name: str) -> pd.DataFrame:
+        cols = table_schema(name).names + ["line", "source"]
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in cols})
+
+    return Movements(period, empty("weighbridge"), empty("belt_scales"), empty("routing"), empty("transfers"))
+
+
+class _Loader:
+    """Collects problems while reading one site folder; see :func:`check_site`."""
+
+    def __init__(self, root: Path) -> None:
+        self.root = root
+        self.problems: list[Problem] = []
+
+    # -- helpers
+    def rel(self, path: Path) -> str:
+        try:
+            return str(path.relative_to(self.root.parent)) if self.root.parent != Path(".") else str(path)
+        except ValueError:
+            return str(path)
+
+    def error(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
+        shown = self.rel(path) if isinstance(path, Path) else path
+        self.problems.append(Problem(shown, where, fieldname, why))
+
+    def warn(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
+        shown = self.rel(path) if isinstance(path, Path) else path
+        self.problems.append(Problem(shown, where, fieldname, why, "warning"))
+
+    def table(self, path: Path, name: str) -> pd.DataFrame:
+        return read_table(path, table_schema(name), self.problems, display=self.rel(path))
+
+    # -- the whole folder
+    def load(self) -> Site | None:
+        if not self.root.is_dir():
+            self.error(self.root, None, None, "site folder not found")
+            return None
+        raw = self._read_toml()
+        if raw is None:
+            return None
+        config = self._config(raw)
+        crs = self._site_crs(raw)
+        tz = self._timezone(raw)
+        scales = self._scales(raw)
+        materials = self._materials()
+        piles = self._piles(materials)
+        pile_ids = set(piles["pile_id"]) if piles is not None else set()
+        opening = self._opening(pile_ids)
+        movements = self._all_movements(pile_ids, set(materials), scales, tz)
+        surveys = self._surveys(crs, config, tz) if crs else {}
+        if piles is not None and surveys:
+            self._piles_against_surveys(piles, surveys)
+        if piles is None or crs is None or tz is None:
+            return None
+        return Site(
+            root=self.root,
+            name=raw.get("name", ""),
+            crs=crs,
+            timezone=tz,
+            config=config,
+            scales=scales,
+            materials=materials,
+            piles=piles,
+            surveys=surveys,
+            movements=movements,
+            opening=opening,
+            warnings=[p for p in self.problems if p.severity == "warning"],
+        )
+
+    def _read_toml(self) -> dict | None:
+        path = self.root / "site.toml"
+        if not path.is_file():
+            self.error(path, None, None, "file not found")
+            return None
+        try:
+            raw = tomllib.loads(path.read_bytes().decode("utf-8-sig"))
+        except UnicodeDecodeError:
+            self.error(path, None, None, "not UTF-8 text")
+            return None
+        except tomllib.TOMLDecodeError as err:
+            line = getattr(err, "lineno", None)
+            match = re.search(r"line (\d+)", str(err))
+            if line is None and match:
+                line = int(match.group(1))
+            self.error(path, line, None, f"not valid TOML: {err}")
+            return None
+        import jsonschema
+
+        validator = jsonschema.Draft202012Validator(_site_schema())
+        bad = False
+        for err in sorted(validator.iter_errors(raw), key=lambda e: list(e.absolute_path)):
+            where = ".".join(str(p) for p in err.absolute_path) or None
+            if err.validator == "required":
+                missing = re.findall(r"'([^']+)' is a required property", err.message)
+                name = ".".join(filter(None, [where, missing[0] if missing else None]))
+                self.error(path, None, name, "required key is missing")
+            elif err.validator == "additionalProperties":
+                extra = re.findall(r"'([^']+)'", err.message)
+                name = ".".join(filter(None, [where, extra[0] if extra else None]))
+                self.error(path, None, name, "unknown key")
+            else:
+                self.error(path, None, where, err.message)
+            bad = True
+        return None if bad and any(k not in raw for k in ("name", "crs", "timezone")) else raw
+
+    def _config(self, raw: dict) -> SiteConfig:
+        def section(key: str) -> dict:
+            value = raw.get(key, {})
+            return value if isinstance(value, dict) else {}
+
+        g, s, b, r = section("grid"), section("survey"), section("base"), section("reconcile")
+        floor = b.get("floor_raster", "base/floor.tif")
+        pipeline = s.get("pipeline")
+        return SiteConfig(
+            grid=GridConfig(
+                cell_size_m=float(g.get("cell_size_m", 0.5)),
+                max_fill_distance_m=float(g.get("max_fill_distance_m", 3.0)),
+                statistic=str(g.get("statistic", "mean")),
+            ),
+            survey=SurveyConfig(
+                default_crs=s.get("default_crs"),
+                pipeline=(self.root / pipeline) if pipeline else None,
+                default_time=str(s.get("default_time", "12:00")),
+                trajectory_max_gap_s=float(s.get("trajectory_max_gap_s", 1.0)),
+            ),
+            base=BaseConfig(
+                floor_raster=(self.root / floor) if (self.root / floor).is_file() else None,
+                floor_sigma_m=float(b.get("floor_sigma_m", 0.03)),
+                toe_ring_m=float(b.get("toe_ring_m", 3.0)),
+            ),
+            reconcile=ReconcileConfig(
+                significance_k=float(r.get("significance_k", 2.0)),
+                default_tolerance_pct=float(r.get("default_tolerance_pct", 3.0)),
+                adjust_to=str(r.get("adjust_to", "survey")),
+                duplicate_window_min=float(r.get("duplicate_window_min", 10.0)),
+            ),
+            machines=self._machines(raw),
+            raw=raw,
+        )
+
+    def _machines(self, raw: dict) -> dict:
+        from inventory.site.trajectory import machines_from_config
+        from inventory.errors import InputError
+
+        try:
+            return machines_from_config(raw.get("machines"), self.rel(self.root / "site.toml"))
+        except InputError as err:
+            self.problems.append(err.problem)
+            return {}
+
+    def _site_crs(self, raw: dict) -> str | None:
+        from pyproj import CRS
+        from pyproj.exceptions import CRSError as ProjCRSError
+
+        text = raw.get("crs")
+        path = self.root / "site.toml"
+        if not isinstance(text, str):
+            return None
+        try:
+            crs = CRS.from_user_input(text)
+        except ProjCRSError as err:
+            self.error(path, None, "crs", f"unknown CRS {text!r} ({err})")
+            return None
+        if not crs.is_projected:
+            self.error(path, None, "crs", f"{text} ({crs.name}) is not a projected CRS; volumes need metres on the ground")
+            return None
+        unit = crs.axis_info[0].unit_name if crs.axis_info else ""
+        if crs.axis_info and abs(crs.axis_info[0].unit_conversion_factor - 1.0) > 1e-12:
+            self.error(path, None, "crs", f"{text} ({crs.name}) has axis unit {unit}; use a CRS in metres")
+            return None
+        return text
+
+    def _timezone(self, raw: dict) -> ZoneInfo | None:
+        name = raw.get("timezone")
+        if not isinstance(name, str):
+            return None
+        try:
+            return ZoneInfo(name)
+        except (ZoneInfoNotFoundError, ValueError):
+            self.error(self.root / "site.toml", None, "timezone", f"unknown IANA time zone {name!r}")
+            return None
+
+    def _scales(self, raw: dict) -> dict[str, Scale]:
+        path = self.root / "site.toml"
+        scales: dict[str, Scale] = {}
+        for i, item in enumerate(raw.get("scales", []) or []):
+            if not isinstance(item, dict) or "id" not in item:
+                continue
+            where = f"scales[{i}]"
+            if item["id"] in scales:
+                self.error(path, None, f"{where}.id", f"scale id {item['id']!r} is used twice")
+                continue
+            kind = item.get("kind")
+            if kind == "belt" and item.get("direction") not in ("in", "out"):
+                self.error(path, None, f"{where}.direction", "a belt scale needs direction = \"in\" or \"out\"")
+            if kind == "belt" and item.get("accuracy_class") not in ("0.2", "0.5", "1", "2"):
+                self.error(path, None, f"{where}.accuracy_class", "belt weighers have OIML R 50 classes 0.2, 0.5, 1 or 2")
+            if kind == "weighbridge":
+                if item.get("accuracy_class") not in ("I", "II", "III", "IIII"):
+                    self.error(path, None, f"{where}.accuracy_class", "weighbridges have OIML R 76 classes I, II, III or IIII")
+                if "scale_interval_kg" not in item:
+                    self.error(path, None, f"{where}.scale_interval_kg", "a weighbridge needs its verification scale interval e")
+            scales[item["id"]] = Scale(
+                id=item["id"],
+                kind=kind,
+                accuracy_class=str(item.get("accuracy_class")),
+                direction=item.get("direction"),
+                scale_interval_kg=item.get("scale_interval_kg"),
+                in_service=bool(item.get("in_service", True)),
+            )
+        return scales
+
+    def _materials(self) -> dict[str, Material]:
+        path = self.root / "materials.csv"
+        if not path.is_file():
+            self.error(path, None, None, "file not found")
+            return {}
+        frame = self.table(path, "materials")
+        return {
+            row.material: Material(
+                row.material,
+                row.bulk_density_t_m3,
+                row.density_sd_t_m3,
+                row.moisture_pct,
+                None if pd.isna(row.tolerance_pct) else float(row.tolerance_pct),
+            )
+            for row in frame.itertuples()
+        }
+
+    def _piles(self, materials: dict[str, Material]):
+        import geopandas as gpd
+        import pyogrio
+        import shapely
+
+        path = self.root / "piles.gpkg"
+        if not path.is_file():
+            self.error(path, None, None, "file not found")
+            return None
+        try:
+            layers = [name for name, _ in pyogrio.list_layers(path)]
+        except Exception as err:  # pyogrio raises its own DataSourceError family; keep the cause
+            self.error(path, None, None, f"not a readable GeoPackage ({err})")
+            return None
+        if "piles" not in layers:
+            self.error(path, None, None, f"no layer 'piles' (found: {', '.join(layers) or 'none'})")
+            return None
+        frame = gpd.read_file(path, layer="piles", engine="pyogrio", fid_as_index=True)
+        for column in ("pile_id", "material", "base"):
+            if column not in frame.columns:
+                self.error(path, "layer piles", column, "required field is missing")
+        if any(c not in frame.columns for c in ("pile_id", "material", "base")):
+            return None
+        if "density_t_m3" not in frame.columns:
+            frame["density_t_m3"] = np.nan
+        if frame.crs is None:
+            self.error(path, "layer piles", None, "the layer has no CRS")
+        display = self.rel(path)
+        good = np.ones(len(frame), dtype=bool)
+        seen: dict[str, int] = {}
+        for i, (fid, row) in enumerate(frame.iterrows()):
+            pid = row["pile_id"]
+            where = f"feature {fid}" + (f" (pile {pid})" if isinstance(pid, str) and pid else "")
+            if not isinstance(pid, str) or not pid.strip():
+                self.error(display, where, "pile_id", "value is missing")
+                good[i] = False
+                continue
+            if pid in seen:
+                self.error(display, where, "pile_id", f"pile id {pid!r} repeats feature {seen[pid]}")
+                good[i] = False
+            seen.setdefault(pid, fid)
+            if row["material"] not in materials and materials:
+                self.error(display, where, "material", f"unknown material {row['material']!r} (not in materials.csv)")
+            try:
+                parse_base(row["base"])
+            except ValueError as err:
+                self.error(display, where, "base", str(err))
+            density = row["density_t_m3"]
+            if density is not None and not pd.isna(density) and not float(density) > 0:
+                self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
+            geom = row.geometry
+            if geom is None or geom.is_empty:
+                self.error(display, where, "geometry", "empty geometry")
+                good[i] = False
+            elif geom.geom_type not in ("Polygon", "MultiPolygon"):
+                self.error(display, where, "geometry", f"{geom.geom_type} is not a polygon")
+                good[i] = False
+            elif not geom.is_valid:
+                self.error(display, where, "geometry", f"invalid polygon: {shapely.is_valid_reason(geom)}")
+                good[i] = False
+        if not len(frame):
+            self.error(display, "layer piles", None, "the layer has no features")
+        valid = frame[good]
+        if len(valid) > 1:
+            tree = shapely.STRtree(valid.geometry.values)
+            left, right = tree.query(valid.geometry.values, predicate="intersects")
+            for a, b in zip(left, right):
+                if a >= b:
+                    continue
+                area = valid.geometry.values[a].intersection(valid.geometry.values[b]).area
+                if area > OVERLAP_TOLERANCE_M2:
+                    fa, fb = valid.index[a], valid.index[b]
+                    self.error(
+                        display,
+                        f"feature {fb} (pile {valid.iloc[b]['pile_id']})",
+                        "geometry",
+                        f"overlaps pile {valid.iloc[a]['pile_id']} (feature {fa}) by {area:.2f} m2",
+                    )
+        frame = frame.reset_index(drop=True)
+        return frame[["pile_id", "material", "base", "density_t_m3", "geometry"]]
+
+    def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
+        path = self.root / "opening.csv"
+        if not path.is_file():
+            return None
+        frame = self.table(path, "opening")
+        for row in frame.itertuples():
+            if pile_ids and row.pile_id not in pile_ids:
+                self.error(path, row.line, "pile_id", f"unknown pile {row.pile_id!r} (not in piles.gpkg)")
+        return frame
+
+    # -- movements
+    def _all_movements(self, pile_ids, material_names, scales, tz) -> dict[str, Movements]:
+        folder = self.root / "movements"
+        out: dict[str, Movements] = {}
+        if not folder.is_dir():
+            return out
+        for sub in sorted(folder.iterdir()):
+            if not sub.is_dir():
+                continue
+            if not _PERIOD_DIR.match(sub.name):
+                self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
+                continue
+            out[sub.name] = self._movements(sub, pile_ids, material_names, scales)
+        return out
+
+    def _movements(self, folder: Path, piles, materials, scales) -> Movements:
+        period = folder.name
+        mv = _empty_movements(period)
+        names = {"weighbridge": "weighbridge", "belt_scales": "belt_scales", "routing": "routing", "transfers": "transfers"}
+        for attr, name in names.items():
+            path = folder / f"{name}.csv"
+            if path.is_file():
+                setattr(mv, attr, self.table(path, name))
+        for extra in sorted(folder.glob("*.csv")):
+            if extra.stem not in names:
+                self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
+        self._check_weighbridge(folder / "weighbridge.csv", mv.weighbridge, piles, materials, scales)
+        self._check_belts(folder / "belt_scales.csv", mv.belt_scales, scales)
+        self._check_routing(folder / "routing.csv", mv.routing, piles, scales)
+        self._check_transfers(folder / "transfers.csv", mv.transfers, piles)
+        return mv
+
+    def _pile_ok(self, path, line, fieldname, pid, piles) -> None:
+        if piles and pid not in piles:
+            self.error(path, line, fieldname, f"unknown pile {pid!r} (not in piles.gpkg)")
+
+    def _check_weighbridge(self, path: Path, wb: pd.DataFrame, piles, materials, scales) -> None:
+        if wb.empty:
+            return
+        bridges = [s.id for s in scales.values() if s.kind == "weighbridge"]
+        net = []
+        scale_ids = []
+        first: dict[str, tuple] = {}
+        for row in wb.itertuples():
+            self._pile_ok(path, row.line, "pile_id", row.pile_id, piles)
+            if materials and row.material not in materials:
+                self.error(path, row.line, "material", f"unknown material {row.material!r} (not in materials.csv)")
+            if row.tare_t > row.gross_t:
+                self.error(path, row.line, "tare_t", f"tare {row.tare_t:g} t is above gross {row.gross_t:g} t")
+            computed = row.gross_t - row.tare_t
+            if row.net_t is not None and not pd.isna(row.net_t) and abs(row.net_t - computed) > NET_ROUNDING_T:
+                self.error(
+                    path, row.line, "net_t",
+                    f"net {row.net_t:g} t is not gross {row.gross_t:g} - tare {row.tare_t:g} = {computed:.3f} t",
+                )
+            net.append(computed)
+            sid = row.scale_id if isinstance(row.scale_id, str) and row.scale_id else None
+            if sid is None:
+                if len(bridges) == 1:
+                    sid = bridges[0]
+                else:
+                    self.error(path, row.line, "scale_id", f"value is missing and the site has {len(bridges)} weighbridges")
+            elif sid not in scales or scales[sid].kind != "weighbridge":
+                self.error(path, row.line, "scale_id", f"unknown weighbridge {sid!r} (not in site.toml [[scales]])")
+            scale_ids.append(sid)
+            # A repeated ticket id with the same content is a double entry the books must list
+            # (the reconciler counts it once); with different content nobody can tell which is real.
+            key = (row.time, row.direction, row.pile_id, round(row.gross_t, 3), round(row.tare_t, 3))
+            if row.ticket in first:
+                line0, key0 = first[row.ticket]
+                if key0 != key:
+                    self.error(path, row.line, "ticket", f"ticket {row.ticket!r} repeats line {line0} with different content")
+                else:
+                    self.warn(path, row.line, "ticket", f"ticket {row.ticket!r} repeats line {line0}; it will be counted once")
+            else:
+                first[row.ticket] = (row.line, key)
+        wb["net_t"] = np.round(np.asarray(net, dtype=float), 6)
+        wb["scale_id"] = scale_ids
+
+    def _check_belts(self, path: Path, belts: pd.DataFrame, scales) -> None:
+        for row in belts.itertuples():
+            if row.scale_id not in scales or scales[row.scale_id].kind != "belt":
+                self.error(path, row.line, "scale_id", f"unknown belt scale {row.scale_id!r} (not in site.toml [[scales]])")
+            if row.end <= row.start:
+                self.error(path, row.line, "end", f"interval ends ({row.end.isoformat()}) before it starts ({row.start.isoformat()})")
+
+    def _check_routing(self, path: Path, routing: pd.DataFrame, piles, scales) -> None:
+        for row in routing.itertuples():
+            if row.scale_id not in scales or scales[row.scale_id].kind != "belt":
+                self.error(path, row.line, "scale_id", f"unknown belt scale {row.scale_id!r} (not in site.toml [[scales]])")
+            self._pile_ok(path, row.line, "pile_id", row.pile_id, piles)
+            if row.end <= row.start:
+                self.error(path, row.line, "end", f"window ends ({row.end.isoformat()}) before it starts ({row.start.isoformat()})")
+        for sid, group in routing.groupby("scale_id"):
+            group = group.sort_values("start")
+            prev = None
+            for row in group.itertuples():
+                if prev is not None and row.start < prev.end:
+                    self.error(
+                        path, row.line, "start",
+                        f"scale {sid} window overlaps line {prev.line} (a belt feeds one pile at a time)",
+                    )
+                if prev is None or row.end > prev.end:
+                    prev = row
+
+    def _check_transfers(self, path: Path, transfers: pd.DataFrame, piles) -> None:
+        for row in transfers.itertuples():
+            self._pile_ok(path, row.line, "from_pile", row.from_pile, piles)
+            self._pile_ok(path, row.line, "to_pile", row.to_pile, piles)
+            if row.from_pile == row.to_pile:
+                self.error(path, row.line, "to_pile", f"transfer from pile {row.from_pile!r} to itself")
+
+    # -- surveys
+    def _surveys(self, site_crs: str, config: SiteConfig, tz: ZoneInfo | None) -> dict[str, SurveyRef]:
+        folder = self.root / "surveys"
+        out: dict[str, SurveyRef] = {}
+        if not folder.is_dir():
+            return out
+        for sub in sorted(folder.iterdir()):
+            if not sub.is_dir():
+                continue
+            if not _SURVEY_DIR.match(sub.name):
+                self.warn(sub, None, None, "folder name is not a survey date YYYY-MM-DD (ignored)")
+                continue
+            try:
+                day = date.fromisoformat(sub.name)
+            except ValueError:
+                self.error(sub, None, None, "folder name is not a real date")
+                continue
+            ref = self._survey(sub, day, site_crs, config, tz)
+            if ref is not None:
+                out[sub.name] = ref
+        return out
+
+    def _survey(self, folder: Path, day: date, site_crs: str, config: SiteConfig, tz) -> SurveyRef | None:
+        from inventory.io.cloudcheck import inspect_cloud
+
+        files = sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in POINT_CLOUD_SUFFIXES)
+        stations = None
+        station_path = folder / "stations.csv"
+        if station_path.is_file():
+            stations = self.table(station_path, "stations")
+            pose_cols = ["x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"]
+            for row in stations.itertuples():
+                given = [c for c in pose_cols if getattr(row, c) is not None and not pd.isna(getattr(row, c))]
+                if given and len(given) != len(pose_cols):
+                    missing = [c for c in pose_cols if c not in given]
+                    self.error(station_path, row.line, missing[0], "a station pose needs all of x, y, z, roll_deg, pitch_deg, yaw_deg")
+                if not (folder / row.file).is_file():
+                    self.error(station_path, row.line, "file", f"no file {row.file!r} in {self.rel(folder)}")
+        trajectories: dict = {}
+        trajectory_path = folder / "trajectory.csv"
+        if trajectory_path.is_file():
+            from inventory.site.trajectory import read_trajectories
+
+            trajectories = read_trajectories(
+                trajectory_path, config.machines, display=self.rel(trajectory_path), problems=self.problems
+            ) or {}
+            for name in trajectories:
+                if name is not None and not (folder / name).is_file():
+                    self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
+        if not files:
+            self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
+            return None
+        posed = {}
+        if stations is not None:
+            pose_cols = ["x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"]
+            for row in stations.itertuples():
+                values = [getattr(row, c) for c in pose_cols]
+                if all(v is not None and not pd.isna(v) for v in values):
+                    posed[row.file] = row
+                elif any(v is not None and not pd.isna(v) for v in values):
+                    posed[row.file] = None  # a partial pose, already reported
+        station_files = set(stations["file"]) if stations is not None else set()
+        readable = []
+        extents = []
+        points = 0
+        for path in files:
+            info = inspect_cloud(path)
+            if info.error:
+                self.error(path, None, None, f"unreadable point cloud ({info.error})")
+                continue
+            readable.append(path)
+            points += info.point_count
+            if path.name in posed:
+                row = posed[path.name]
+                if row is not None:
+                    extents.append(_posed_extent(info.bounds, row))
+                continue
+            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None)
+            if moving is not None:
+                extents.append(moving.extent(info.bounds[0], info.bounds[1]))
+                continue
+            crs_text = info.crs_wkt
+            if crs_text is None:
+                if config.survey.default_crs is None:
+                    self.error(path, None, "crs", "the file carries no CRS, has no pose in stations.csv, and site.toml has no [survey] default_crs")
+                    continue
+                crs_text = config.survey.default_crs
+            bounds, why = _reproject_bounds(info.bounds, crs_text, site_crs)
+            if why:
+                self.error(path, None, "crs", why)
+                continue
+            extents.append(bounds)
+        if not readable:
+            if files:
+                self.error(folder, None, None, "no readable point cloud in the survey folder")
+            return None
+        if stations is not None and stations["time"].notna().any():
+            instant = max(stations["time"]).to_pydatetime()
+        elif trajectories:
+            from inventory.model.pose import utc_from_adjusted_gps
+
+            instant = max(utc_from_adjusted_gps(t.span[1]) for t in trajectories.values())
+        else:
+            hh, mm = (int(v) for v in config.survey.default_time.split(":"))
+            zone = tz or timezone.utc
+            instant = datetime.combine(day, time(hh, mm), tzinfo=zone).astimezone(timezone.utc)
+            self.warn(folder, None, "time", f"no stations.csv times; survey instant taken as {config.survey.default_time} local")
+        local_day = instant.astimezone(tz).date() if tz else instant.date()
+        if local_day != day:
+            self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
+        extent = None
+        if extents:
+            arr = np.asarray(extents)
+            extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
+        return SurveyRef(folder.name, folder, readable, stations, instant, extent, points)
+
+    def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
+        from shapely.geometry import box
+
+        boxes = [box(*ref.extent) for ref in surveys.values() if ref.extent is not None]
+        if not boxes:
+            return
+        display = self.rel(self.root / "piles.gpkg")
+        for i, row in piles.iterrows():
+            geom = row.geometry
+            if geom is None or geom.is_empty:
+                continue
+            if not any(b.intersects(geom) for b in boxes):
+                self.warn(display, f"pile {row['pile_id']}", "geometry", "lies outside every survey's extent")
+
+
+def _posed_extent(bounds, row) -> tuple[float, float, float, float]:
+    from inventory.model.pose import rotation_matrix
+
+    (x0, y0, z0), (x1, y1, z1) = bounds
+    corners = np.array([[x, y, z] for x in (x0, x1) for y in (y0, y1) for z in (z0, z1)])
+    rot = rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg)
+    placed = corners @ rot.T + np.array([row.x, row.y, row.z])
+    return (placed[:, 0].min(), placed[:, 1].min(), placed[:, 0].max(), placed[:, 1].max())
+
+
+def _reproject_bounds(bounds, crs_text: str, site_crs: str) -> tuple[tuple | None, str | None]:
+    from pyproj import CRS, Transformer
+    from pyproj.exceptions import CRSError as ProjCRSError
+    from pyproj.exceptions import ProjError
+
+    (x0, y0, _), (x1, y1, _) = bounds
+    try:
+        src = CRS.from_user_input(crs_text)
+    except ProjCRSError as err:
+        return None, f"unknown CRS in the file ({err})"
+    dst = CRS.from_user_input(site_crs)
+    if src.equals(dst, ignore_axis_order=True):
+        return (x0, y0, x1, y1), None
+    try:
+        tf = Transformer.from_crs(src, dst, always_xy=True)
+        xs, ys = tf.transform([x0, x1, x0, x1], [y0, y0, y1, y1], errcheck=True)
+    except ProjError as err:
+        return None, f"CRS {src.name!r} differs from the site's {dst.name!r} and no transform is known ({err})"
+    if not np.all(np.isfinite(xs)) or not np.all(np.isfinite(ys)):
+        return None, f"CRS {src.name!r} differs from the site's {dst.name!r} and no transform is known"
+    return (min(xs), min(ys), max(xs), max(ys)), None

@@ -1,0 +1,205 @@
+"""Placing a scanner's own-frame cloud in the site CRS from the station pose.
+
+Convention (the site-folder contract, stations.csv)
+---------------------------------------------------
+``p_site = R @ p_scanner + (x, y, z)`` with ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``:
+right-handed axes, angles in degrees, active rotations, yaw counter-clockwise from site
+east seen from above. This equals scipy's
+``Rotation.from_euler("ZYX", [yaw, pitch, roll], degrees=True).as_matrix()`` (intrinsic
+z-y'-x'' rotations), which the tests use as the reference.
+
+Scanner-frame coordinates are metres; the pose translation is in the site CRS (metres).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+
+from inventory.errors import InputError, InputWarning
+from inventory.model.pose import (
+    DEFAULT_MAX_GAP_S,
+    Trajectory,
+    euler_rotation,
+    rotation_matrix,
+)
+
+__all__ = ["POSE_COLUMNS", "StationPose", "georeference", "poses_from_stations"]
+
+POSE_COLUMNS = ("x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg")
+
+
+@dataclass(frozen=True)
+class StationPose:
+    """Where a scanner stood and how it was turned."""
+
+    station_id: str
+    x: float
+    y: float
+    z: float
+    roll_deg: float = 0.0
+    pitch_deg: float = 0.0
+    yaw_deg: float = 0.0
+
+    @property
+    def matrix(self) -> np.ndarray:
+        return rotation_matrix(self.roll_deg, self.pitch_deg, self.yaw_deg)
+
+    @property
+    def origin(self) -> np.ndarray:
+        return np.array([self.x, self.y, self.z])
+
+    def apply(self, x: np.ndarray, y: np.ndarray, z: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Site coordinates of scanner-frame points, and their range from the scanner (m)."""
+        p = np.vstack([np.asarray(x, float), np.asarray(y, float), np.asarray(z, float)])
+        rng = np.sqrt((p * p).sum(axis=0))
+        q = self.matrix @ p
+        return q[0] + self.x, q[1] + self.y, q[2] + self.z, rng
+
+    def box_in_site(self, mins: np.ndarray, maxs: np.ndarray) -> tuple[float, float, float, float]:
+        """Site (xmin, ymin, xmax, ymax) of a scanner-frame bounding box (its 8 corners)."""
+        corners = np.array([[a, b, c] for a in (mins[0], maxs[0]) for b in (mins[1], maxs[1])
+                            for c in (mins[2], maxs[2])]).T
+        q = self.matrix @ corners
+        return (float(q[0].min() + self.x), float(q[1].min() + self.y),
+                float(q[0].max() + self.x), float(q[1].max() + self.y))
+
+
+def _blank(v: Any) -> bool:
+    if v is None:
+        return True
+    if isinstance(v, str):
+        return v.strip() == ""
+    try:
+        return bool(np.isnan(v))
+    except TypeError:
+        return False
+
+
+def poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
+                        ) -> dict[str, StationPose | None]:
+    """Pose per cloud file name from a stations table (a DataFrame or list of mappings).
+
+    A row whose pose columns are all blank maps to ``None`` (the file is already
+    georeferenced). A row with some but not all pose columns is an
+    :class:`~inventory.errors.InputError` naming the line and the first blank field.
+    """
+    rows: list[Mapping[str, Any]]
+    if hasattr(stations, "to_dict"):
+        rows = stations.to_dict("records")
+    else:
+        rows = list(stations)
+    out: dict[str, StationPose | None] = {}
+    for i, row in enumerate(rows):
+        line = int(row.get("line", i + 2)) if not _blank(row.get("line")) else i + 2
+        name = str(row.get("file", "")).strip()
+        if not name:
+            raise InputError(path, "file name is blank", line=line, field="file")
+        blanks = [c for c in POSE_COLUMNS if _blank(row.get(c))]
+        if len(blanks) == len(POSE_COLUMNS):
+            out[name] = None
+            continue
+        if blanks:
+            raise InputError(path, "pose is incomplete: give all of x, y, z, roll_deg, pitch_deg, "
+                             "yaw_deg or none of them", line=line, field=blanks[0])
+        vals = {}
+        for c in POSE_COLUMNS:
+            try:
+                vals[c] = float(row[c])
+            except (TypeError, ValueError) as err:
+                raise InputError(path, f"not a number: {row[c]!r}", line=line, field=c) from err
+            if not math.isfinite(vals[c]):
+                raise InputError(path, f"not a finite number: {row[c]!r}", line=line, field=c)
+        out[name] = StationPose(str(row.get("station_id", "") or name), **vals)
+    return out
+
+
+def georeference(points_xyz: Any, gps_time: Any, trajectory: Trajectory, lever_arm: Any = None,
+                 boresight: Any = None, max_gap_s: float = DEFAULT_MAX_GAP_S,
+                 *, source: str = "", warn: bool = True) -> tuple[np.ndarray, np.ndarray, dict[str, int]]:
+    """Place scanner-frame points in the site CRS with the pose at each point's own time.
+
+    Parameters
+    ----------
+    points_xyz : (n, 3) array
+        Points in the scanner's own frame, metres.
+    gps_time : (n,) array
+        Their GPS times, in the trajectory's time base.
+    trajectory : Trajectory
+    lever_arm : (3,) array, optional
+        Scanner origin in the body frame; default the trajectory's own (zero unless it came
+        from a machine).
+    boresight : (3,) array, optional
+        ``[roll, pitch, yaw]`` degrees of the scanner in the body frame; default the
+        trajectory's own.
+    max_gap_s : float
+        Trajectory intervals longer than this are not bridged.
+    source : str
+        Name of the cloud, for the warning.
+    warn : bool
+        Issue the warnings below; a caller that streams a file chunk by chunk passes False
+        and reports the summed ``counts`` once.
+
+    Returns
+    -------
+    xyz_site : (k, 3) ndarray
+        The kept points, in input order.
+    keep : (n,) bool ndarray
+        Which input points were kept (filter the other point attributes with it).
+    counts : dict
+        ``{"points": n, "kept": k, "outside_span": ..., "in_gap": ...}``.
+
+    Warns
+    -----
+    InputWarning
+        When points fall outside the trajectory's span or inside a gap.
+
+    Examples
+    --------
+    >>> traj = Trajectory.from_poses([0.0, 1.0], [[0, 0, 0], [10, 0, 0]], 0, 0, [0, 90])
+    >>> xyz, keep, counts = georeference([[1.0, 0, 0]], [0.5], traj)
+    >>> np.round(xyz, 6)   # halfway: at x = 5, turned 45 degrees
+    array([[5.707107, 0.707107, 0.      ]])
+    """
+    p = np.asarray(points_xyz, float).reshape(-1, 3)
+    t = np.asarray(gps_time, float).reshape(-1)
+    if len(t) != len(p):
+        raise ValueError(f"{len(p)} points but {len(t)} times")
+    arm = trajectory.lever_arm if lever_arm is None else np.asarray(lever_arm, float).reshape(3)
+    bore = trajectory.boresight_deg if boresight is None else np.asarray(boresight, float).reshape(3)
+    t0, t1 = trajectory.span
+    inside = (t >= t0) & (t <= t1)  # NaN times fall outside too
+    # The interval each point falls in; a point exactly on a sample is inside either way.
+    idx = np.clip(np.searchsorted(trajectory.gps_time, t, side="right") - 1, 0, len(trajectory.gps_time) - 2)
+    dt = trajectory.gps_time[idx + 1] - trajectory.gps_time[idx]
+    on_sample = (t == trajectory.gps_time[idx]) | (t == trajectory.gps_time[idx + 1])
+    in_gap = inside & (dt > max_gap_s) & ~on_sample
+    keep = inside & ~in_gap
+    counts = {"points": int(len(t)), "kept": int(keep.sum()), "outside_span": int((~inside).sum()),
+              "in_gap": int(in_gap.sum())}
+    name = source or "the cloud"
+    where = trajectory.source or "the trajectory"
+    if warn and counts["outside_span"]:
+        hint = ""
+        if not inside.any() and np.isfinite(t).any():
+            # Every point outside: usually two time bases (week seconds vs adjusted standard).
+            hint = (f"; the points run from {np.nanmin(t):.3f} to {np.nanmax(t):.3f} s: are the cloud and the "
+                    "trajectory in the same GPS time base (week seconds or adjusted standard)?")
+        warnings.warn(InputWarning(
+            f"{name}: {counts['outside_span']} of {len(t)} points lie outside the time span of {where} "
+            f"({t0:.3f} to {t1:.3f} s) and were rejected{hint}"), stacklevel=2)
+    if warn and counts["in_gap"]:
+        g = trajectory.gaps(max_gap_s)
+        warnings.warn(InputWarning(
+            f"{name}: {counts['in_gap']} points fall in {len(g)} gap(s) longer than {max_gap_s:g} s "
+            f"in {where} (first {g[0, 0]:.3f} to {g[0, 1]:.3f} s) and were dropped"), stacklevel=2)
+    rot, pos = trajectory.poses_at(t[keep])
+    body = euler_rotation(*bore).apply(p[keep]) + arm
+    xyz = rot.apply(body) + pos if len(body) else np.empty((0, 3))
+    return xyz.reshape(-1, 3), keep, counts
