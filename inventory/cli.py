@@ -148,6 +148,16 @@ def _cmd_history(args: argparse.Namespace) -> int:
 
 
 # ----------------------------------------------------------------------------- parser
+def _period(text: str) -> str:
+    """argparse type of ``--period``, ``--from`` and ``--to``: a real month, as text."""
+    from inventory.model.period import Period
+
+    try:
+        return str(Period.parse(text))
+    except ValueError as err:
+        raise argparse.ArgumentTypeError(str(err)) from err
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
     common = argparse.ArgumentParser(add_help=False)
@@ -191,12 +201,12 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("close", parents=[common, scale_out], help="close one month: volumes, book, variance, outputs, ledger",
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
-    p.add_argument("--period", required=True, metavar="YYYY-MM", help="the month to close")
+    p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM", help="the month to close")
 
     p = sub.add_parser("reopen", parents=[common], help="unlock a closed month (reason kept for good)",
                        description="Unlock a closed period so that it can be closed again. The reason is kept in the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
-    p.add_argument("--period", required=True, metavar="YYYY-MM")
+    p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM")
     p.add_argument("--reason", required=True, help="why the period is reopened")
 
     p = sub.add_parser("history", parents=[common], help="variance by pile and month from the ledger",
@@ -204,8 +214,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--pile", default=None, help="only this pile id")
     p.add_argument("--material", default=None, help="only this material")
-    p.add_argument("--from", dest="start", default=None, metavar="YYYY-MM", help="first period")
-    p.add_argument("--to", dest="end", default=None, metavar="YYYY-MM", help="last period")
+    p.add_argument("--from", dest="start", default=None, type=_period, metavar="YYYY-MM", help="first period")
+    p.add_argument("--to", dest="end", default=None, type=_period, metavar="YYYY-MM", help="last period")
     p.add_argument("--format", choices=("table", "csv", "json", "xlsx"), default="table")
     p.add_argument("--output", type=Path, default=None, metavar="FILE", help="file for --format xlsx")
     return parser

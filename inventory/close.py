@@ -24,7 +24,6 @@ import tempfile
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable, Iterator
 
@@ -34,6 +33,7 @@ import pandas as pd
 from inventory._version import __version__
 from inventory.errors import InputError, PeriodLockedError, RunError
 from inventory.model.grid import Surface
+from inventory.model.period import Period
 from inventory.model.results import MOVEMENT_COLUMNS, PILE_COLUMNS, CloseResult
 from inventory.site.load import Site, load_site
 
@@ -110,7 +110,7 @@ def _previous_survey(site: Site, date: str, ledger: Any = None, period: str | No
     """
     if ledger is not None and period is not None:
         closes = ledger.closes()
-        prev = closes[(closes["period"] == _month_before(period)) & (closes["status"] == "adopted")]
+        prev = closes[(closes["period"] == str(Period.parse(period).previous())) & (closes["status"] == "adopted")]
         if len(prev):
             return str(prev["survey_date"].iloc[-1])
     earlier = [d for d in site.surveys if d[:7] < date[:7]]
@@ -133,17 +133,12 @@ def _read_surface_raster(path: Path, like: Surface) -> np.ndarray | None:
     return out
 
 
-def _month_before(period: str) -> str:
-    year, month = int(period[:4]), int(period[5:7])
-    return f"{year - 1}-12" if month == 1 else f"{year}-{month - 1:02d}"
-
-
 def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
     from inventory.stock.book import opening_from_close
 
     # opening_for refuses when the month before was skipped or is reopened and not closed
     if ledger.opening_for(period) is not None:
-        adopted = ledger.adopted(_month_before(period))
+        adopted = ledger.adopted(str(Period.parse(period).previous()))
         opening = opening_from_close(adopted, site.materials, site.config.reconcile.adjust_to)
         return opening, "ledger (adopted closing of the previous period)"
     if site.opening is not None:
@@ -228,11 +223,11 @@ def close_period(
     PeriodLockedError
         The period is already closed (``reopen_period`` first).
     """
+    from inventory.ledger.store import Ledger
     from inventory.stock import book as _book
     from inventory.stock import reconcile as _rec
-    from inventory.volume import measure as _vol
-    from inventory.ledger.store import Ledger
     from inventory.survey.measure import measure_survey
+    from inventory.volume import measure as _vol
 
     say = progress or (lambda text: None)
     timings: dict[str, float] = {}
@@ -286,7 +281,7 @@ def close_period(
 
             step("book")
             say("book stock at the survey instant")
-            start, end = _book.period_bounds(period, site.timezone)
+            start, end = Period.parse(period).bounds(site.timezone)
             book = _book.book_stock(
                 site.movements_for(period), opening, at=ref.instant, scales=site.scales,
                 piles=site.piles[["pile_id", "material"]], period_end=end, period_start=start,

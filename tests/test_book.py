@@ -13,15 +13,16 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from inventory.errors import InputErrors, InputWarning
+from inventory.model.period import Period
+from inventory.model.results import MOVEMENT_COLUMNS
+from inventory.stock.book import book_stock
 from inventory.stock.metrology import (
     BELT_MPE_PCT_INITIAL,
     IN_SERVICE_FACTOR,
     belt_mpe_fraction,
     weighbridge_mpe_t,
 )
-from inventory.stock.book import book_stock, period_bounds
-from inventory.errors import InputErrors, InputWarning
-from inventory.model.results import MOVEMENT_COLUMNS
 
 T = pd.Timestamp
 SQRT3 = math.sqrt(3.0)
@@ -149,9 +150,9 @@ def test_opening_as_of_excludes_records_already_in_it():
 def test_period_bounds_respect_site_time_zone_and_dst():
     # Europe/Berlin: CEST (UTC+2) on 1 Oct, CET (UTC+1) on 1 Nov (EU summer time ends on the
     # last Sunday of October - Directive 2000/84/EC).
-    s, e = period_bounds("2026-10", "Europe/Berlin")
+    s, e = Period.parse("2026-10").bounds("Europe/Berlin")
     assert s == T("2026-09-30T22:00Z") and e == T("2026-10-31T23:00Z")
-    s, e = period_bounds("2026-12", "UTC")
+    s, e = Period.parse("2026-12").bounds("UTC")
     assert s == T("2026-12-01T00:00Z") and e == T("2027-01-01T00:00Z")
 
 

@@ -22,11 +22,10 @@ from __future__ import annotations
 import warnings
 from types import SimpleNamespace as NS
 
+import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
 import numpy as np
 import pandas as pd
 import pytest
-
-import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
 
 SITE = chain.SAMPLE
 TRUTH = chain.TRUTH
@@ -61,20 +60,21 @@ def _survey(k: int) -> pd.DataFrame:
 
 def _close_both(site, survey) -> dict:
     """Both closes as close_period runs them, with ``survey(k)`` the volume table of survey k."""
-    from inventory.stock.book import book_stock, opening_from_close, period_bounds
+    from inventory.model.period import Period
+    from inventory.stock.book import book_stock, opening_from_close
     from inventory.stock.reconcile import reconcile
 
     cfg = site.config.reconcile
     piles = site.piles[["pile_id", "material"]]
     out = {}
-    s9, e9 = period_bounds("2026-09", site.timezone)
+    s9, e9 = Period.parse("2026-09").bounds(site.timezone)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         b9 = book_stock(site.movements_for("2026-09"), site.opening, site.surveys["2026-09-30"].instant,
                         site.scales, piles, e9, s9, duplicate_window_min=cfg.duplicate_window_min)
     r9 = reconcile(survey(0), b9, site.materials, cfg, period="2026-09", scales=site.scales)
     out["2026-09"] = (b9, r9)
-    s10, e10 = period_bounds("2026-10", site.timezone)
+    s10, e10 = Period.parse("2026-10").bounds(site.timezone)
     opening = opening_from_close(r9.piles, site.materials, cfg.adjust_to)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -109,12 +109,13 @@ def _truth_survey(site, truth: dict, k: int) -> pd.DataFrame:
 def test_book_at_each_survey_matches_the_demo_books(site, truth):
     # truth.json's book_at_survey_t is the demo's own roll of its records from opening.csv
     # (each ticket id once): an independent computation of the same rule.
-    from inventory.stock.book import book_stock, period_bounds
+    from inventory.model.period import Period
+    from inventory.stock.book import book_stock
 
     both = NS(**{n: pd.concat([getattr(site.movements_for(p), n) for p in ("2026-09", "2026-10")], ignore_index=True)
                  for n in ("weighbridge", "belt_scales", "routing", "transfers")})
-    s9, _ = period_bounds("2026-09", site.timezone)
-    _, e10 = period_bounds("2026-10", site.timezone)
+    s9, _ = Period.parse("2026-09").bounds(site.timezone)
+    _, e10 = Period.parse("2026-10").bounds(site.timezone)
     for k, date in enumerate(("2026-09-30", "2026-10-31")):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.errors import LedgerError, PeriodLockedError
+from inventory.model.period import Period
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, CloseResult
 
 __all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
@@ -39,8 +40,6 @@ __all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SC
 #: Version of the table layout below; bumped on any change, checked on open. A ledger of an
 #: older version is brought up to date on open by :data:`_MIGRATIONS`, in one transaction.
 SCHEMA_VERSION = 2
-
-_PERIOD_RE = re.compile(r"^\d{4}-(0[1-9]|1[0-2])$")
 
 #: Pile columns stored per close, with their SQLite type (every figure of the close).
 _TEXT_COLUMNS = {"pile_id", "material", "base_method", "flags"}
@@ -188,15 +187,12 @@ def _utc_now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
-def _check_period(period: str) -> str:
-    if not isinstance(period, str) or not _PERIOD_RE.match(period):
-        raise LedgerError(f"period must be YYYY-MM, got {period!r}")
-    return period
-
-
-def _previous_month(period: str) -> str:
-    year, month = int(period[:4]), int(period[5:])
-    return f"{year - 1}-12" if month == 1 else f"{year}-{month - 1:02d}"
+def _check_period(period: str | Period) -> str:
+    """The period as the ledger stores it (``YYYY-MM`` text)."""
+    try:
+        return str(Period.parse(period))
+    except ValueError as err:
+        raise LedgerError(str(err)) from err
 
 
 def _to_sql(value: Any) -> Any:
@@ -469,7 +465,7 @@ class Ledger:
             (skipped or reopened and not closed again): its movements would be lost.
         """
         _check_period(period)
-        prev = _previous_month(period)
+        prev = str(Period.parse(period).previous())
         close_id = self._adopted_close_id(prev)
         if close_id is None:
             earlier = self._db.execute(

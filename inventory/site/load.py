@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import json
 import re
-import tomllib
 import warnings
 from dataclasses import dataclass, field
 from datetime import date, datetime, time, timezone
@@ -32,9 +31,11 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
 import pandas as pd
+import tomllib
 
-from inventory.io.tables import NET_ROUNDING_T, read_table, table_schema
 from inventory.errors import InputErrors, InputWarning, Problem
+from inventory.io.tables import NET_ROUNDING_T, read_table, table_schema
+from inventory.model.period import Period
 
 __all__ = [
     "Site",
@@ -53,7 +54,6 @@ __all__ = [
 #: File endings read as point clouds (COPC files end in .copc.laz and are LAZ 1.4).
 POINT_CLOUD_SUFFIXES = (".las", ".laz")
 _SURVEY_DIR = re.compile(r"^\d{4}-\d{2}-\d{2}$")
-_PERIOD_DIR = re.compile(r"^\d{4}-\d{2}$")
 _LEVEL_BASE = re.compile(r"^level:(-?\d+(\.\d+)?)$")
 #: Overlap between two footprints below this many square metres is digitising noise, not an
 #: overlap (a shared toe line drawn twice); common practice for vector QA at survey scale.
@@ -438,8 +438,8 @@ class _Loader:
         )
 
     def _machines(self, raw: dict) -> dict:
-        from inventory.site.trajectory import machines_from_config
         from inventory.errors import InputError
+        from inventory.site.trajectory import machines_from_config
 
         try:
             return machines_from_config(raw.get("machines"), self.rel(self.root / "site.toml"))
@@ -626,7 +626,7 @@ class _Loader:
         for sub in sorted(folder.iterdir()):
             if not sub.is_dir():
                 continue
-            if not _PERIOD_DIR.match(sub.name):
+            if not Period.is_period(sub.name):
                 self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
                 continue
             out[sub.name] = self._movements(sub, pile_ids, material_names, scales)

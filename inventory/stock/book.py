@@ -32,14 +32,17 @@ import warnings
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any, Iterable, Mapping
-from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
 
-from inventory.stock.metrology import RECTANGULAR_SIGMA_PER_BOUND, belt_mpe_fraction, weighbridge_mpe_t
 from inventory.errors import InputErrors, InputWarning, Problem
 from inventory.model.results import MOVEMENT_COLUMNS
+from inventory.stock.metrology import (
+    RECTANGULAR_SIGMA_PER_BOUND,
+    belt_mpe_fraction,
+    weighbridge_mpe_t,
+)
 
 __all__ = [
     "BOOK_PILE_COLUMNS",
@@ -49,7 +52,6 @@ __all__ = [
     "BookResult",
     "book_stock",
     "opening_from_close",
-    "period_bounds",
 ]
 
 #: Columns of :attr:`BookResult.piles`. Receipts, dispatches and transfers are positive
@@ -126,24 +128,6 @@ class BookResult:
 
 
 # ----------------------------------------------------------------------------- helpers
-
-
-def period_bounds(period: str, timezone: str | ZoneInfo) -> tuple[pd.Timestamp, pd.Timestamp]:
-    """First and last instant of a calendar month in the site's time zone, as UTC.
-
-    A month closes at local midnight: for ``"2026-10"`` in Europe/Berlin that is
-    2026-09-30T22:00Z (CEST, UTC+2) to 2026-10-31T23:00Z (CET, UTC+1) - the daylight-saving
-    change on 25 October moves the end by an hour.
-
-    Examples
-    --------
-    >>> period_bounds("2026-10", "Europe/Berlin")
-    (Timestamp('2026-09-30 22:00:00+0000', tz='UTC'), Timestamp('2026-10-31 23:00:00+0000', tz='UTC'))
-    """
-    tz = timezone if isinstance(timezone, ZoneInfo) else ZoneInfo(str(timezone))
-    start_local = pd.Timestamp(f"{period}-01").tz_localize(tz)
-    end_local = (pd.Timestamp(f"{period}-01") + pd.offsets.MonthBegin(1)).tz_localize(tz)
-    return start_local.tz_convert("UTC"), end_local.tz_convert("UTC")
 
 
 def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: str = "survey") -> pd.DataFrame:
