@@ -38,6 +38,7 @@ _API = {
     "Grid": "model",
     "Surface": "model",
     "CloseResult": "model",
+    "Period": "model",
 }
 
 __all__ = ["__version__", *_API]
