@@ -24,8 +24,8 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import CloseResult
+from inventory.model.texts import CAUTIONS, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
-from inventory.export.workbook import CAUTIONS, SIGN_CONVENTION
 
 __all__ = ["write_report", "variance_colormap", "VARIANCE_COLORS"]
 

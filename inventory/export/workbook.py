@@ -32,28 +32,16 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
+from inventory.model.texts import CAUTIONS, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = [
-    "write_workbook", "write_history_workbook", "SHEETS", "SIGN_CONVENTION", "CAUTIONS",
-    "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT",
+    "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE",
+    "FILL_SIGNIFICANT",
 ]
 
 SHEETS = ("Summary", "Piles", "Variance", "Movements", "Adjustments", "Scales",
           "Duplicates", "Run")
-
-SIGN_CONVENTION = (
-    "Sign convention: variance = survey - book. A positive variance means more stock on the "
-    "ground than in the books; a positive adjustment increases book stock. Movements are "
-    "signed + into a pile, - out of it."
-)
-
-CAUTIONS = (
-    "Survey volumes are estimates with the uncertainty shown; they are not weighings.",
-    "Where a figure feeds trade, tax or safety decisions, legal-for-trade weighing rules, "
-    "local legal metrology rules, codes and licensed surveyors take precedence.",
-    "Never walk on stockpiles or under reclaim faces to improve a scan.",
-)
 
 #: Row fills (ARGB). Our own pair: a muted brick for out of tolerance, a sand for significant.
 FILL_OUT_OF_TOLERANCE = "FFF2C4B8"
