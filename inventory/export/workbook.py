@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
-from inventory.model.texts import CAUTIONS, SIGN_CONVENTION
+from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = [
@@ -546,11 +546,8 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
     r += 2
     ws.cell(row=r, column=1, value="Legend").font = Font(name="Calibri", bold=True, size=11)
     r += 1
-    for fill, text in (
-        (FILL_OUT_OF_TOLERANCE, "Out of tolerance: |variance %| exceeds the material's tolerance"),
-        (FILL_SIGNIFICANT, "Significant: |variance| exceeds k x its combined sigma "
-                           "(within tolerance)"),
-    ):
+    for fill, text in ((FILL_OUT_OF_TOLERANCE, ROW_LEGEND["out_of_tolerance"]),
+                       (FILL_SIGNIFICANT, ROW_LEGEND["significant"])):
         ws.cell(row=r, column=1, value="row colour").fill = PatternFill("solid", fgColor=fill)
         ws.cell(row=r, column=2, value=text)
         r += 1
@@ -721,9 +718,9 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
     notes["A5"] = "Legend"
     notes["A5"].font = Font(name="Calibri", bold=True, size=11)
     notes["A6"].fill = PatternFill("solid", fgColor=FILL_OUT_OF_TOLERANCE)
-    notes["B6"] = "Out of tolerance"
+    notes["B6"] = ROW_LEGEND["out_of_tolerance"]
     notes["A7"].fill = PatternFill("solid", fgColor=FILL_SIGNIFICANT)
-    notes["B7"] = "Significant (within tolerance)"
+    notes["B7"] = ROW_LEGEND["significant"]
     for i, text in enumerate(CAUTIONS, start=9):
         notes.cell(row=i, column=1, value=text)
     notes.column_dimensions["A"].width = 14

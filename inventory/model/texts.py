@@ -6,7 +6,7 @@ carry the same cautions; each imports the text from here rather than writing its
 
 from __future__ import annotations
 
-__all__ = ["CAUTIONS", "REASON_CODES", "SIGN_CONVENTION"]
+__all__ = ["CAUTIONS", "REASON_CODES", "ROW_LEGEND", "SIGN_CONVENTION"]
 
 #: How the figures of a close are signed (workbook Summary, Variance and Notes sheets, report).
 SIGN_CONVENTION = (
@@ -36,4 +36,11 @@ REASON_CODES: dict[str, str] = {
     "WITHIN_SIGMA": "variance within k sigma of zero: inside the combined uncertainty of survey and book",
     "WITHIN_TOL": "significant but within the material's tolerance: routine stock adjustment",
     "UNEXPLAINED": "significant and out of tolerance with no explanation found: investigate before posting",
+}
+
+#: Legend of the row colours, by the flag column that sets them (an out-of-tolerance row
+#: takes that colour even when it is also significant).
+ROW_LEGEND: dict[str, str] = {
+    "out_of_tolerance": "Out of tolerance: |variance %| exceeds the material's tolerance",
+    "significant": "Significant: |variance| exceeds k x its combined sigma (within tolerance)",
 }
