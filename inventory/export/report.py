@@ -24,8 +24,8 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import CloseResult
+from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
-from inventory.export.workbook import CAUTIONS, SIGN_CONVENTION
 
 __all__ = ["write_report", "variance_colormap", "VARIANCE_COLORS"]
 
@@ -366,8 +366,8 @@ src="data:image/png;base64,{_map_figure(result)}">
 <img alt="Bar chart of variance per pile with 2-sigma bars"
 src="data:image/png;base64,{_bar_figure(result)}">
 <h2>Piles</h2>
-<p class="legend">Row colours:<span style="background:#f2c4b8"></span>out of tolerance
-<span style="background:#f7e3ae"></span>significant (exceeds its combined uncertainty)</p>
+<p class="legend">Row colours:<span style="background:#f2c4b8"></span>{esc(ROW_LEGEND["out_of_tolerance"])}
+<span style="background:#f7e3ae"></span>{esc(ROW_LEGEND["significant"])}</p>
 {piles_table}
 <h2>Adjustment journal</h2>
 {jt}

@@ -32,28 +32,16 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
+from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = [
-    "write_workbook", "write_history_workbook", "SHEETS", "SIGN_CONVENTION", "CAUTIONS",
-    "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT",
+    "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE",
+    "FILL_SIGNIFICANT",
 ]
 
 SHEETS = ("Summary", "Piles", "Variance", "Movements", "Adjustments", "Scales",
           "Duplicates", "Run")
-
-SIGN_CONVENTION = (
-    "Sign convention: variance = survey - book. A positive variance means more stock on the "
-    "ground than in the books; a positive adjustment increases book stock. Movements are "
-    "signed + into a pile, - out of it."
-)
-
-CAUTIONS = (
-    "Survey volumes are estimates with the uncertainty shown; they are not weighings.",
-    "Where a figure feeds trade, tax or safety decisions, legal-for-trade weighing rules, "
-    "local legal metrology rules, codes and licensed surveyors take precedence.",
-    "Never walk on stockpiles or under reclaim faces to improve a scan.",
-)
 
 #: Row fills (ARGB). Our own pair: a muted brick for out of tolerance, a sand for significant.
 FILL_OUT_OF_TOLERANCE = "FFF2C4B8"
@@ -558,11 +546,8 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
     r += 2
     ws.cell(row=r, column=1, value="Legend").font = Font(name="Calibri", bold=True, size=11)
     r += 1
-    for fill, text in (
-        (FILL_OUT_OF_TOLERANCE, "Out of tolerance: |variance %| exceeds the material's tolerance"),
-        (FILL_SIGNIFICANT, "Significant: |variance| exceeds k x its combined sigma "
-                           "(within tolerance)"),
-    ):
+    for fill, text in ((FILL_OUT_OF_TOLERANCE, ROW_LEGEND["out_of_tolerance"]),
+                       (FILL_SIGNIFICANT, ROW_LEGEND["significant"])):
         ws.cell(row=r, column=1, value="row colour").fill = PatternFill("solid", fgColor=fill)
         ws.cell(row=r, column=2, value=text)
         r += 1
@@ -733,9 +718,9 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
     notes["A5"] = "Legend"
     notes["A5"].font = Font(name="Calibri", bold=True, size=11)
     notes["A6"].fill = PatternFill("solid", fgColor=FILL_OUT_OF_TOLERANCE)
-    notes["B6"] = "Out of tolerance"
+    notes["B6"] = ROW_LEGEND["out_of_tolerance"]
     notes["A7"].fill = PatternFill("solid", fgColor=FILL_SIGNIFICANT)
-    notes["B7"] = "Significant (within tolerance)"
+    notes["B7"] = ROW_LEGEND["significant"]
     for i, text in enumerate(CAUTIONS, start=9):
         notes.cell(row=i, column=1, value=text)
     notes.column_dimensions["A"].width = 14

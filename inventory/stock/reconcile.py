@@ -43,6 +43,7 @@ import pandas as pd
 from inventory.stock.metrology import belt_mpe_fraction
 from inventory.stock.book import BookResult
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
+from inventory.model.texts import REASON_CODES, SIGN_CONVENTION
 
 __all__ = [
     "CHANGE_COLUMNS",
@@ -54,27 +55,6 @@ __all__ = [
     "ReconcileSettings",
     "reconcile",
 ]
-
-#: Written into the workbook beside the journal.
-SIGN_CONVENTION = (
-    "variance = survey - book: positive means more stock on the ground than in the books. "
-    "adjustment_t is posted to book stock: positive increases it (stock gain), negative "
-    "decreases it (stock loss). closing_t = book at survey + adjustment + movements between "
-    "the survey and the period end."
-)
-
-#: Reason codes of the adjustment journal (our own naming), checked in this order.
-REASON_CODES: dict[str, str] = {
-    "NOT_SURVEYED": "no survey figure for the pile: book carried forward unadjusted",
-    "SCALE_BIAS": "at least half of it explained by the estimated bias of a named belt scale, the rest "
-                  "within k sigma: have the scale checked",
-    "TRANSFER_SUSPECT": "mirrors an opposite variance on another pile of the same material (one of "
-                        "the two significant, the pair's transfer estimate beyond k sigma): suspected "
-                        "unrecorded transfer",
-    "WITHIN_SIGMA": "variance within k sigma of zero: inside the combined uncertainty of survey and book",
-    "WITHIN_TOL": "significant but within the material's tolerance: routine stock adjustment",
-    "UNEXPLAINED": "significant and out of tolerance with no explanation found: investigate before posting",
-}
 
 #: Per-material table.
 MATERIAL_COLUMNS = [
