@@ -42,7 +42,17 @@ from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
+from pyproj import CRS
 
+from inventory.errors import (
+    CoverageWarning,
+    CRSError,
+    InputError,
+    PipelineError,
+    RunError,
+)
+from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, open_cloud
+from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from inventory.model.classes import (
     CLASS_NAMES,
     GROUND,
@@ -51,17 +61,13 @@ from inventory.model.classes import (
     OVERHEAD_STRUCTURE,
     UNCLASSIFIED,
 )
-from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
-from inventory.survey.placement import StationPose, poses_from_stations
-from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, open_cloud
-from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
-from inventory.model.pose import DEFAULT_MAX_GAP_S, Trajectory
-from inventory.survey.placement import georeference
-from inventory.site.trajectory import read_trajectories
-from inventory.errors import CoverageWarning, CRSError, InputError, InputWarning, PipelineError, RunError
 from inventory.model.grid import Grid, Surface
+from inventory.parallel import Executor, executor
+from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
 from inventory.survey.gridding import FillReport, write_coverage, write_surface
+from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
+from inventory.survey.placement import Placement, survey_placements
 from inventory.survey.tiles import TileSpill, grid_tiles, run_tiles
 
 __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
@@ -134,16 +140,7 @@ class SurveyResult:
                    if self.points_outside_span or self.points_in_gap else ""))
 
 
-@dataclass
-class _Source:
-    path: Path
-    index: int
-    pose: StationPose | None
-    crs: Any  # pyproj CRS of a georeferenced file
-    trajectory: Trajectory | None = None  # a moving scanner's cloud (scanner frame, per-point pose)
-
-
-def _survey_ref(site: Any, date: str) -> Any:
+def _survey_ref(site: Site, date: str) -> SurveyRef:
     surveys = getattr(site, "surveys", {}) or {}
     if date not in surveys:
         have = ", ".join(sorted(surveys)) or "none"
@@ -152,7 +149,7 @@ def _survey_ref(site: Any, date: str) -> Any:
     return surveys[date]
 
 
-def _pipeline_for(site: Any, pipeline: "Pipeline | str | Path | None") -> Pipeline:
+def _pipeline_for(site: Site, pipeline: "Pipeline | str | Path | None") -> Pipeline:
     if isinstance(pipeline, Pipeline):
         p = pipeline
     elif pipeline is not None:
@@ -170,74 +167,137 @@ def _pipeline_for(site: Any, pipeline: "Pipeline | str | Path | None") -> Pipeli
     return p
 
 
-def _sources(site: Any, ref: Any) -> list[_Source]:
-    poses: dict[str, StationPose | None] = {}
-    if getattr(ref, "stations", None) is not None:
-        poses = poses_from_stations(ref.stations, Path(ref.folder) / "stations.csv")
-    default = getattr(site.config.survey, "default_crs", None)
-    # A moving scanner's clouds: the trajectory named for the file, else the table's one
-    # trajectory for every file that stations.csv does not list (as the site check does).
-    trajectories: dict[str | None, Trajectory] = {}
-    trajectory_csv = Path(ref.folder) / "trajectory.csv"
-    if trajectory_csv.is_file():
-        trajectories = read_trajectories(trajectory_csv, getattr(site.config, "machines", None) or {})
-    listed = set(ref.stations["file"]) if getattr(ref, "stations", None) is not None else set()
-    out = []
-    for i, path in enumerate(ref.files):
-        path = Path(path)
-        pose = poses.get(path.name)
-        crs = None
-        moving = None
-        if pose is None:
-            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in listed else None)
-        if moving is not None:
-            pass  # placed by its trajectory: no CRS needed
-        elif pose is None:
-            with open_cloud(path, default_crs=default) as cloud:
-                crs = cloud.crs
-            if crs is None:
-                raise CRSError(path, "the file carries no CRS, has no pose in stations.csv, and site.toml "
-                               "has no [survey] default_crs", field="crs")
-        out.append(_Source(path, i, pose, crs, moving))
-    return out
+def _site_crs(site: Site) -> CRS:
+    """The site CRS, which must be projected in metres."""
+    site_crs = parse_crs(site.crs, where=str(Path(site.root) / "site.toml"), field="crs")
+    if horizontal_unit_factor(site_crs) != 1.0:
+        raise CRSError(Path(site.root) / "site.toml", f"site CRS {site.crs} is not projected in metres",
+                       field="crs")
+    return site_crs
 
 
-def _warn_trajectory(src: _Source, counts: dict[str, int], max_gap_s: float) -> None:
-    """One InputWarning per moving-scanner file whose points were not all placed."""
-    traj = src.trajectory
-    parts = []
-    if counts["outside_span"]:
-        t0, t1 = traj.span
-        parts.append(f"{counts['outside_span']:,} lie outside the time span of {traj.source or 'the trajectory'} "
-                     f"({t0:.3f} to {t1:.3f} s) and were rejected")
-    if counts["in_gap"]:
-        g = traj.gaps(max_gap_s)
-        parts.append(f"{counts['in_gap']:,} fall in {len(g)} gap(s) longer than {max_gap_s:g} s "
-                     f"(first {g[0, 0]:.3f} to {g[0, 1]:.3f} s) and were dropped")
-    if parts and not counts.get("kept"):
-        parts.append("none was placed: are the cloud and the trajectory in the same GPS time base "
-                     "(week seconds or adjusted standard)?")
-    if parts:
-        warnings.warn(InputWarning(f"{src.path}: of {counts['points']:,} points, " + "; ".join(parts)),
-                      stacklevel=3)
-
-
-def _extent(sources: list[_Source], site_crs: Any, cache: TransformerCache) -> tuple[float, float, float, float]:
+def _extent(placements: list[Placement]) -> tuple[float, float, float, float]:
+    """Site (xmin, ymin, xmax, ymax) of every file's header box, placed."""
     boxes = []
-    for src in sources:
-        with open_cloud(src.path) as cloud:
+    for p in placements:
+        with open_cloud(p.path) as cloud:
             mins, maxs = cloud.mins, cloud.maxs
-        if src.pose is not None:
-            boxes.append(src.pose.box_in_site(mins, maxs))
-        elif src.trajectory is not None:
-            boxes.append(src.trajectory.extent(mins, maxs))
-        else:
-            boxes.append(cache.get(src.crs, site_crs).bounds(mins[0], mins[1], maxs[0], maxs[1]))
+        boxes.append(p.box(mins, maxs))
     b = np.asarray(boxes, float)
     return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
 
 
-def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
+@dataclass
+class _Read:
+    """What :func:`_read_into_spill` read: points in the files, points outside the grid, and a
+    moving scanner's points not placed (outside its trajectory's span, in its gaps)."""
+
+    points: int = 0
+    outside: int = 0
+    outside_span: int = 0
+    in_gap: int = 0
+
+
+def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: int, say: Progress) -> _Read:
+    """Read every file in chunks, place each chunk in the site CRS and spill it by tiles;
+    ``PointSourceId`` becomes the file's index. A file with points not placed is reported in
+    one :class:`~inventory.errors.InputWarning`."""
+    total = 0
+    for p in placements:
+        with open_cloud(p.path) as cloud:
+            total += cloud.count
+    read = _Read()
+    for index, p in enumerate(placements):
+        with open_cloud(p.path, chunk_size=chunk_size) as cloud:
+            for chunk in cloud.chunks():
+                n_chunk = len(chunk)
+                chunk = p.place(chunk)
+                chunk["PointSourceId"] = index
+                read.outside += spill.add(chunk)
+                read.points += n_chunk
+                say(f"reading {p.path.name}: {read.points:,} of {total:,} points ({read.points / max(total, 1):.0%})")
+        unplaced = p.warning()
+        if unplaced is not None:
+            warnings.warn(unplaced, stacklevel=3)   # attributed to the caller of measure_survey
+        read.outside_span += p.outside_span
+        read.in_gap += p.in_gap
+    return read
+
+
+@dataclass
+class _Classified:
+    """What :func:`_classify_tiles` gave: points per class, points kept, the box of the
+    surface points, and each tile's cells (:class:`~inventory.survey.tiles.TileCells`) in a file."""
+
+    counts: dict[int, int]
+    kept: int
+    ground_box: list[float]
+    cell_files: list[Path]
+
+
+def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipeline, site_crs: CRS, engine: str,
+                    statistic: str, classified_path: Path | None, say: Progress) -> _Classified:
+    """Classify and grid every tile (:func:`~inventory.survey.tiles.run_tiles`), in tile
+    order, writing the classified cloud to ``classified_path`` when given; the tiles' cells
+    are saved in the spill folder."""
+    out = _Classified({}, 0, [math.inf, math.inf, -math.inf, -math.inf], [])
+    writer = None
+    if classified_path is not None:
+        grid = spill.grid
+        writer = CloudWriter(classified_path, crs=site_crs,
+                             offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
+    tiles = sorted(spill.counts)
+    try:
+        for i, (result, cells) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, engine,
+                                                      statistic)):
+            cls = result["Classification"]
+            for c, n in zip(*np.unique(cls, return_counts=True)):
+                out.counts[int(c)] = out.counts.get(int(c), 0) + int(n)
+            out.kept += len(result)
+            g = result[cls == GROUND]
+            if len(g):
+                box = out.ground_box
+                out.ground_box = [min(box[0], g["X"].min()), min(box[1], g["Y"].min()),
+                                  max(box[2], g["X"].max()), max(box[3], g["Y"].max())]
+            if cells is not None:
+                out.cell_files.append(cells.save(spill.folder / f"cells_{tiles[i]}.npz"))
+            if writer is not None:
+                writer.write(result)
+            say(f"classifying: tile {i + 1} of {len(tiles)}")
+    except BaseException:
+        if writer is not None:
+            writer.close(ok=False)
+        raise
+    if writer is not None:
+        writer.close()
+    return out
+
+
+def _grid_surface(spill: TileSpill, classified: _Classified, site: Site, date: str) -> Surface:
+    """The surface grid, unfilled, put together from the tiles' cells.
+
+    The surface grid covers the surface points only: far returns (ghosts, distant
+    buildings) widen the files' header boxes but not the grid. Its origin is snapped to the
+    cell size, so it lines up with every other survey of the site, and its tiles' edges fall
+    on cell edges (what the median statistic needs).
+    """
+    box = classified.ground_box
+    if not math.isfinite(box[0]):
+        raise RunError(f"survey {date}: no point was classified as surface")
+    grid_cfg = site.config.grid
+    sgrid = Grid.snapped(*box, cell=float(grid_cfg.cell_size_m), crs=site.crs)
+    return grid_tiles(spill.grid, classified.cell_files, sgrid, grid_cfg.statistic, date)
+
+
+def _write_rasters(surface: Surface, out_dir: "str | Path | None", date: str) -> tuple[Path | None, Path | None]:
+    """``surface-<date>.tif`` and ``coverage-<date>.tif`` in ``out_dir`` (nothing when ``None``)."""
+    if out_dir is None:
+        return None, None
+    return (write_surface(surface, Path(out_dir) / f"surface-{date}.tif"),
+            write_coverage(surface, Path(out_dir) / f"coverage-{date}.tif"))
+
+
+def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
                    progress: Progress | None = None, *, pipeline: "Pipeline | str | Path | None" = None,
                    engine: str = "auto", tile_size_m: float = DEFAULT_TILE_M,
                    buffer_m: float = DEFAULT_BUFFER_M, chunk_size: int = DEFAULT_CHUNK,
@@ -282,134 +342,52 @@ def measure_survey(site: Any, date: str, out_dir: "str | Path | None" = None,
     ref = _survey_ref(site, date)
     pipe = _pipeline_for(site, pipeline)
     used_engine = "pdal" if (engine == "pdal" or (engine == "auto" and pdal_available())) else "builtin"
-    site_crs = parse_crs(site.crs, where=str(Path(site.root) / "site.toml"), field="crs")
-    if horizontal_unit_factor(site_crs) != 1.0:
-        raise CRSError(Path(site.root) / "site.toml", f"site CRS {site.crs} is not projected in metres",
-                       field="crs")
+    site_crs = _site_crs(site)
     grid_cfg = site.config.grid
     cell = float(grid_cfg.cell_size_m)
-    cache = TransformerCache()
-    sources = _sources(site, ref)
-    grid = Grid.snapped(*_extent(sources, site_crs, cache), cell=cell, crs=site.crs)
+    placements = survey_placements(site, ref, site_crs, TransformerCache())
+    grid = Grid.snapped(*_extent(placements), cell=cell, crs=site.crs)
     tile_cells = max(1, int(round(tile_size_m / cell)))
     if buffer_m > tile_size_m:
         raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
-
-    from inventory.parallel import executor
+    classified_path = Path(out_dir) / f"classified-{date}.laz" if out_dir is not None and write_classified else None
 
     # One executor for the tiles and the fill windows (a local cluster starts while reading).
     with executor(workers, scheduler, threads=threads) as ex:
         tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
         try:
             spill = TileSpill(grid, tile_cells, tmp)
-            read = outside = 0
-            total = 0
-            for src in sources:
-                with open_cloud(src.path) as cloud:
-                    total += cloud.count
-            max_gap_s = float(getattr(site.config.survey, "trajectory_max_gap_s", DEFAULT_MAX_GAP_S))
-            rejected = {"outside_span": 0, "in_gap": 0}  # moving-scanner points not placed, all files
-            for src in sources:
-                with open_cloud(src.path, chunk_size=chunk_size) as cloud:
-                    reproject = None if src.pose is not None or src.trajectory is not None else cache.get(src.crs, site_crs)
-                    file_rejected = {"outside_span": 0, "in_gap": 0, "points": 0}
-                    for chunk in cloud.chunks():
-                        n_chunk = len(chunk)
-                        if src.pose is not None:
-                            chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = src.pose.apply(
-                                chunk["X"], chunk["Y"], chunk["Z"])
-                        elif src.trajectory is not None:
-                            # Each point with the pose at its own GPS time; the sums are reported
-                            # once per file below, not once per chunk.
-                            own = np.column_stack([chunk["X"], chunk["Y"], chunk["Z"]])
-                            xyz, keep, c = georeference(own, chunk["GpsTime"], src.trajectory, max_gap_s=max_gap_s,
-                                                        warn=False, source=src.path.name)
-                            chunk = chunk[keep]
-                            chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
-                            chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
-                            for key in file_rejected:
-                                file_rejected[key] += c[key]
-                            file_rejected["kept"] = file_rejected.get("kept", 0) + c["kept"]
-                        elif not reproject.is_identity:
-                            chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
-                        chunk["PointSourceId"] = src.index
-                        outside += spill.add(chunk)
-                        read += n_chunk
-                        say(f"reading {src.path.name}: {read:,} of {total:,} points ({read / max(total, 1):.0%})")
-                    if src.trajectory is not None:
-                        _warn_trajectory(src, file_rejected, max_gap_s)
-                        rejected["outside_span"] += file_rejected["outside_span"]
-                        rejected["in_gap"] += file_rejected["in_gap"]
+            read = _read_into_spill(placements, spill, chunk_size, say)
             timings["read"] = time.perf_counter() - t_start
 
             t0 = time.perf_counter()
-            counts: dict[int, int] = {}
-            ground_box = [math.inf, math.inf, -math.inf, -math.inf]
-            kept = 0
-            writer = None
-            classified_path = None
-            if out_dir is not None and write_classified:
-                classified_path = Path(out_dir) / f"classified-{date}.laz"
-                writer = CloudWriter(classified_path, crs=site_crs,
-                                     offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
-            tiles = sorted(spill.counts)
-            cell_files: list[Path] = []
-            try:
-                for i, (result, cells) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs,
-                                                                 used_engine, grid_cfg.statistic)):
-                    cls = result["Classification"]
-                    for c, n in zip(*np.unique(cls, return_counts=True)):
-                        counts[int(c)] = counts.get(int(c), 0) + int(n)
-                    kept += len(result)
-                    g = result[cls == GROUND]
-                    if len(g):
-                        ground_box = [min(ground_box[0], g["X"].min()), min(ground_box[1], g["Y"].min()),
-                                      max(ground_box[2], g["X"].max()), max(ground_box[3], g["Y"].max())]
-                    if cells is not None:
-                        cell_files.append(cells.save(tmp / f"cells_{tiles[i]}.npz"))
-                    if writer is not None:
-                        writer.write(result)
-                    say(f"classifying: tile {i + 1} of {len(tiles)}")
-            except BaseException:
-                if writer is not None:
-                    writer.close(ok=False)
-                raise
-            if writer is not None:
-                writer.close()
+            classified = _classify_tiles(ex, spill, buffer_m, pipe, site_crs, used_engine, grid_cfg.statistic,
+                                         classified_path, say)
             timings["classify"] = time.perf_counter() - t0
 
-            # The surface grid covers the surface points only: far returns (ghosts, distant
-            # buildings) widen the files' header boxes but not the grid. Its origin is snapped
-            # to the cell size, so it lines up with every other survey of the site, and its
-            # tiles' edges fall on cell edges (what the median statistic needs).
             t0 = time.perf_counter()
             say("gridding the surface and filling holes")
-            if not math.isfinite(ground_box[0]):
-                raise RunError(f"survey {date}: no point was classified as surface")
-            sgrid = Grid.snapped(*ground_box, cell=cell, crs=site.crs)
-            raw = grid_tiles(spill.grid, cell_files, sgrid, grid_cfg.statistic, date)
+            raw = _grid_surface(spill, classified, site, date)
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
 
         surface, fill = fill_windows(raw, float(grid_cfg.max_fill_distance_m), ex=ex)
         del raw
-    surface.meta.update(points_read=read, points_kept=kept, engine=used_engine, pipeline=pipe.source)
+    surface.meta.update(points_read=read.points, points_kept=classified.kept, engine=used_engine,
+                        pipeline=pipe.source)
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
                                       f"{grid_cfg.max_fill_distance_m} m from any scan left as nodata "
                                       f"(largest {fill.largest_gap_m2:.1f} m2)"), stacklevel=2)
-    surface_path = coverage_path = None
-    if out_dir is not None:
-        surface_path = write_surface(surface, Path(out_dir) / f"surface-{date}.tif")
-        coverage_path = write_coverage(surface, Path(out_dir) / f"coverage-{date}.tif")
+    surface_path, coverage_path = _write_rasters(surface, out_dir, date)
     timings["grid"] = time.perf_counter() - t0
     timings["total"] = time.perf_counter() - t_start
-    return SurveyResult(date, surface, classified_path, surface_path, coverage_path, counts, read, kept,
-                        outside, fill, [s.path for s in sources], used_engine, timings,
-                        rejected["outside_span"], rejected["in_gap"])
+    return SurveyResult(date, surface, classified_path, surface_path, coverage_path, classified.counts, read.points,
+                        classified.kept, read.outside, fill, [p.path for p in placements], used_engine, timings,
+                        read.outside_span, read.in_gap)
 
 
-def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
+def _survey_job(site: Site, date: str, out_dir: "str | Path | None",
                 kw: dict[str, Any]) -> tuple[SurveyResult, list[warnings.WarningMessage]]:
     """One survey as a job of :func:`measure_surveys`: its result and the warnings it raised
     (a worker process cannot show them; the caller raises them again)."""
@@ -419,7 +397,7 @@ def _survey_job(site: Any, date: str, out_dir: "str | Path | None",
     return result, [w for w in caught]
 
 
-def measure_surveys(site: Any, dates: "list[str]", out_dirs: "list[str | Path | None] | None" = None,
+def measure_surveys(site: Site, dates: "list[str]", out_dirs: "list[str | Path | None] | None" = None,
                     progress: Progress | None = None, *, workers: int | None = None,
                     scheduler: str | None = None, threads: bool = False,
                     **kw: Any) -> list[SurveyResult]:
@@ -447,8 +425,6 @@ def measure_surveys(site: Any, dates: "list[str]", out_dirs: "list[str | Path | 
         Other keyword arguments of :func:`measure_survey` (``pipeline``, ``engine``,
         ``tile_size_m``, ...).
     """
-    from inventory.parallel import executor
-
     dates = list(dates)
     if len(set(dates)) != len(dates):
         raise ValueError(f"a survey date is given twice: {dates}")
