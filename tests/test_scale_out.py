@@ -147,7 +147,7 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
     # the values agree to rounding and the filled cells and gap report exactly.
     from inventory.model.grid import Grid, Surface
     from inventory.survey.gridding import fill_holes
-    from inventory.survey.measure import _fill_windows
+    from inventory.survey.fill import fill_windows
 
     rng = np.random.default_rng(2)
     g = Grid(500000.0, 6000300.0, 0.5, 300, 340, CRS)
@@ -161,11 +161,11 @@ def test_fill_by_windows_matches_whole_grid_fill_on_a_plane():
                       np.zeros(g.shape, bool), DATE, {"statistic": "mean"})
     whole, whole_report = fill_holes(surface, 2.0)
     # a grid of at most window x window cells is filled whole: exactly fill_holes
-    one, one_report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=340)
+    one, one_report = fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=340)
     assert one_report == whole_report
     np.testing.assert_array_equal(one.z, whole.z)
     np.testing.assert_array_equal(one.filled, whole.filled)
-    windowed, report = _fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=64)
+    windowed, report = fill_windows(dataclasses.replace(surface, z=surface.z.copy()), 2.0, window=64)
     assert report == whole_report and report.filled_cells > 500 and report.gap_cells > 0
     np.testing.assert_array_equal(windowed.filled, whole.filled)
     np.testing.assert_allclose(windowed.z[windowed.filled], z[windowed.filled], rtol=0, atol=1e-9)
@@ -197,7 +197,7 @@ def test_fill_windows_on_two_worker_processes_match_serial():
     # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
     # the serial answer cell for cell.
     from inventory.model.grid import Grid, Surface
-    from inventory.survey.measure import _fill_windows
+    from inventory.survey.fill import fill_windows
 
     rng = np.random.default_rng(8)
     g = Grid(500000.0, 6000300.0, 0.5, 200, 230, CRS)
@@ -210,10 +210,10 @@ def test_fill_windows_on_two_worker_processes_match_serial():
         return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
                        np.zeros(g.shape, bool), DATE, {})
 
-    serial, r1 = _fill_windows(surface(), 2.0, window=64)
+    serial, r1 = fill_windows(surface(), 2.0, window=64)
     with executor(2) as ex:
         assert ex.kind == "dask"
-        both, r2 = _fill_windows(surface(), 2.0, window=64, ex=ex)
+        both, r2 = fill_windows(surface(), 2.0, window=64, ex=ex)
     assert r1 == r2 and r1.filled_cells > 1000
     np.testing.assert_array_equal(serial.z, both.z)
     np.testing.assert_array_equal(serial.filled, both.filled)

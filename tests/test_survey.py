@@ -316,3 +316,24 @@ def test_enclosed_gap_is_warned(tmp_path):
     # the hole is pi 10^2 = 314 m2; cells within 3 m of data are filled, the rest reported
     assert 100 < r.fill.gap_area_m2 < 314
     assert r.fill.filled_cells > 0
+
+
+def test_each_file_gets_the_placement_of_its_arrival(synthetic):
+    """survey_placements: a georeferenced file in the site CRS, a posed file, a file in feet."""
+    from inventory.io.crs import TransformerCache, parse_crs
+    from inventory.survey.placement import CrsPlacement, StationPlacement, survey_placements
+
+    yard, site, result, out = synthetic
+    a, b, c = survey_placements(site, site.surveys[DATE], parse_crs(SITE_CRS), TransformerCache())
+    assert [p.path.name for p in (a, b, c)] == ["a.laz", "b.laz", "c.las"]
+    assert isinstance(a, CrsPlacement) and a.reprojector.is_identity
+    assert isinstance(b, StationPlacement) and b.pose.station_id == "S2"
+    assert isinstance(c, CrsPlacement) and not c.reprojector.is_identity
+    assert all(p.warning() is None and p.outside_span == p.in_gap == 0 for p in (a, b, c))
+    # the feet file's points land back where the yard has them
+    pts, _ = read_cloud(c.path)
+    placed = c.place(pts.copy())
+    xl = yard.points["X"] - yard.origin[0]
+    truth = yard.points[xl >= 75]
+    np.testing.assert_allclose(placed["X"], truth["X"], atol=0.002)
+    np.testing.assert_allclose(placed["Z"], truth["Z"], atol=0.002)

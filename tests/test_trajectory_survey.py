@@ -162,3 +162,35 @@ def test_trajectory_gap_drops_points_with_a_warning(tmp_path: Path):
     assert len([w for w in rec if "machine_scan.laz" in str(w.message)]) == 1
     assert f"{want_gap:,} in its gaps dropped" in result.format_summary()
 
+
+
+def test_trajectory_placement_in_chunks_matches_one_georeference():
+    """The machine scan placed chunk by chunk (as measure_survey reads it): the same points,
+    ranges and counts as one georeference of the whole file, and one warning for the file."""
+    from inventory.io.clouds import open_cloud, read_cloud
+    from inventory.io.crs import TransformerCache, parse_crs
+    from inventory.site.load import load_site
+    from inventory.survey.placement import TrajectoryPlacement, georeference, survey_placements
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the sample books' planted duplicate ticket
+        site = load_site(SITE)
+    (place,) = survey_placements(site, site.surveys[DATE], parse_crs(site.crs), TransformerCache())
+    assert isinstance(place, TrajectoryPlacement)
+    with open_cloud(place.path, chunk_size=7_000) as cloud:
+        parts = [place.place(chunk) for chunk in cloud.chunks()]
+    assert len(parts) > 10
+    placed = np.concatenate(parts)
+
+    whole, _ = read_cloud(place.path)
+    own = np.column_stack([whole["X"], whole["Y"], whole["Z"]])
+    xyz, keep, counts = georeference(own, whole["GpsTime"], place.trajectory, max_gap_s=place.max_gap_s,
+                                     warn=False)
+    np.testing.assert_array_equal(np.column_stack([placed["X"], placed["Y"], placed["Z"]]), xyz)
+    np.testing.assert_array_equal(placed["StationRange"], np.sqrt((own[keep] ** 2).sum(axis=1)))
+    np.testing.assert_array_equal(placed["GpsTime"], whole["GpsTime"][keep])
+    assert (place.points, place.kept, place.outside_span, place.in_gap) == \
+        (counts["points"], counts["kept"], counts["outside_span"], counts["in_gap"])
+    assert place.outside_span == _truth()["counts"]["outside_span"] > 0
+    w = place.warning()
+    assert w is not None and f"of {len(whole):,} points, {place.outside_span:,} lie outside" in str(w)
