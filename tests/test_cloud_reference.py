@@ -114,7 +114,7 @@ def test_autzen_bare_earth_agrees_with_provider(autzen, repo_root):
     # point more than 2 m above the provider's class-2 surface (its TIN) called ground.
     # Compare surfaces, not labels: the provider thinned its ground class (REFERENCES.md).
     pts, provider, crs = autzen
-    out, _ = Pipeline.from_file(repo_root / "pipelines" / "terrain.json").run(pts.copy(), crs, engine="builtin")
+    out, _ = Pipeline.from_file(repo_root / "inventory" / "survey" / "pipelines" / "terrain.json").run(pts.copy(), crs, engine="builtin")
     mad, cells, above = _agreement(out, provider, out["Classification"])
     assert cells > 5000
     assert mad <= 0.3
@@ -127,7 +127,7 @@ def test_autzen_csf_surface_agrees_with_provider(autzen, repo_root):
     # also keeps several hundred points more than 2 m above the provider's surface (flat
     # structures wider than the cloth), which is why terrain.json uses the slope envelope.
     pts, provider, crs = autzen
-    out, _ = Pipeline.from_file(repo_root / "pipelines" / "terrain-csf.json").run(pts.copy(), crs, engine="builtin")
+    out, _ = Pipeline.from_file(repo_root / "inventory" / "survey" / "pipelines" / "terrain-csf.json").run(pts.copy(), crs, engine="builtin")
     mad, cells, _ = _agreement(out, provider, out["Classification"])
     assert cells > 5000
     assert mad <= 0.3

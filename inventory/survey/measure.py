@@ -9,7 +9,7 @@
 2. **Tile**: points are spilled to disk by square tiles of the site grid (edges on cell
    edges), so that no step holds more than one tile and its neighbours in memory.
 3. **Clean and classify** each tile with a buffer of neighbouring points through the
-   pipeline (``[survey] pipeline`` or ``pipelines/stockpile.json``); only the tile's own
+   pipeline (``[survey] pipeline`` or ``inventory/survey/pipelines/stockpile.json``); only the tile's own
    points are kept, so results do not depend on the tiling as long as the buffer is wider
    than the stages' reach (except through statistics taken over a whole tile: the
    threshold of ``filters.outlier`` is the mean and spread of the tile and its buffer).
