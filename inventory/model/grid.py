@@ -35,7 +35,13 @@ class Grid:
     --------
     >>> g = Grid.snapped(1003.2, 2001.1, 1010.0, 2004.9, cell=0.5, crs="EPSG:32633")
     >>> (g.west, g.north, g.nrows, g.ncols)
-    (1003.0, 2005.0, 8, 14)
+    (1003.0, 2005.0, 8, 15)
+
+    ``xmax`` = 1010.0 lies on a cell edge; cells hold their western edge, so a point there
+    falls in column 14, the fifteenth:
+
+    >>> g.index([1010.0], [2003.0])
+    (array([4]), array([14]), array([ True]))
     """
 
     west: float
