@@ -173,10 +173,8 @@ def lone_patches(scanned: np.ndarray, max_cells: int = LONE_PATCH_CELLS) -> np.n
     A scanner sees real ground in scan lines: consecutive returns fall in neighbouring
     cells, so even sparse far ground forms long chains of cells. A patch of one to three
     cells alone in unscanned ground is a return the classifier let through (dust, a bird,
-    the top of an object) as often as it is ground: on the sample site's 2026-10-31
-    survey three dust returns 2.3 m above the pad, in the shadow before FE1's reclaim
-    face, were such patches, and a triangulation through them lifted the filled cells
-    around them by up to 2.4 m (+2.1 % of FE1's volume).
+    the top of an object) as often as it is ground, and a triangulation through it lifts
+    the filled cells around it (docs/classifier.md).
     """
     from scipy import ndimage
 

@@ -3,7 +3,7 @@
 ``surveys/<date>/trajectory.csv`` gives the pose of the scanner's body (or a rail-mounted
 machine's axes) as a time series; :func:`read_trajectories` checks it row by row and builds one
 :class:`~inventory.model.pose.Trajectory` per cloud file. The pose conventions and the time
-base are documented in :mod:`inventory.model.pose`; placing the points is
+base are documented in docs/surveys.md; placing the points is
 :func:`inventory.survey.placement.georeference`.
 """
 
