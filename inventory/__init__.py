@@ -2,8 +2,8 @@
 
 The public API, for a notebook that wants to do step by step what ``inventory close`` does:
 
->>> from inventory import load_site, measure_survey, measure_piles, book_stock  # doctest: +SKIP
->>> from inventory import reconcile                                   # doctest: +SKIP
+>>> from inventory import load_site, measure_survey, measure_piles, book_stock
+>>> from inventory import reconcile
 >>> site = load_site("sample_site")                                  # doctest: +SKIP
 >>> survey = measure_survey(site, "2026-10-31")                      # doctest: +SKIP
 >>> piles = measure_piles(survey.surface, site.piles, site.materials)  # doctest: +SKIP

@@ -2,8 +2,9 @@
 
 Geometry is invented (inventory._demo.synthetic); the pass marks are issue 4's acceptance
 figures: at least 98 % of machine and vehicle points out of the surface class, at most
-0.5 % of true pile-surface points dropped. Angles of repose 30-40 degrees: REFERENCES.md
-(CEMA tables as transcribed; coal 35-38, iron ore about 35, limestone about 38, sand 30-35).
+0.5 % of true pile-surface points dropped. Angles of repose 30-40 degrees: the material
+tables of CEMA, "Belt Conveyors for Bulk Materials" (from memory; coal 35-38, iron ore about
+35, limestone about 38, sand 30-35).
 """
 
 from __future__ import annotations
@@ -84,7 +85,8 @@ def test_cone_at_angle_of_repose_is_all_surface(slope):
 
 def test_broad_flat_crest_is_surface():
     # A 30 m flat-topped pile at 38 degrees: the whole top is surface (a terrain filter with
-    # a coarse cloth strips it, REFERENCES.md).
+    # a coarse cloth strips it: measured with CSF when the classifier was designed, see
+    # docs/classifier.md and CHANGELOG.md).
     rng = np.random.default_rng(4)
     n = 40000
     x, y = rng.random(n) * 80 - 40, rng.random(n) * 80 - 40

@@ -1,9 +1,10 @@
 """Reference checks against the open LiDAR samples of the laspy source distribution.
 
 Source of the data: the laspy sdist on PyPI, ``tests/data/`` (see tests/_laspy_samples.py).
-Facts about the files (REFERENCES.md "Open data at hand"): ``autzen_trim.laz`` has 110,000
+Facts about the files, from that source distribution itself: ``autzen_trim.laz`` has 110,000
 airborne points with the provider's classes 1 and 2, Oregon Lambert in international feet
-with a WKT record; ``simple.copc.laz`` is a COPC file of 1,065 points.
+with a WKT record (the file's own header, VLRs and points); ``simple.copc.laz`` is a COPC file
+of 1,065 points (asserted by laspy's own ``tests/test_copc.py``).
 """
 
 from __future__ import annotations
@@ -46,7 +47,7 @@ def test_streamed_read_matches_laspy(laspy_data, name):
 
 
 def test_copc_point_count(laspy_data):
-    # REFERENCES.md: simple.copc.laz holds 1,065 points.
+    # simple.copc.laz holds 1,065 points: laspy's own tests/test_copc.py (in its sdist) says so.
     pts, _ = read_cloud(laspy_data / "simple.copc.laz")
     assert len(pts) == 1065
 
@@ -112,9 +113,10 @@ def test_autzen_units_reach_metres(autzen):
 def test_autzen_bare_earth_agrees_with_provider(autzen, repo_root):
     # Issue 4 acceptance: median |ours - provider| <= 0.3 m on 2 m cells both cover, and no
     # point more than 2 m above the provider's class-2 surface (its TIN) called ground.
-    # Compare surfaces, not labels: the provider thinned its ground class (REFERENCES.md).
+    # Compare surfaces, not labels: the provider thinned its ground class (an earlier look
+    # at laspy sdist tests/data/autzen_trim.laz; from memory, no test checks it).
     pts, provider, crs = autzen
-    out, _ = Pipeline.from_file(repo_root / "pipelines" / "terrain.json").run(pts.copy(), crs, engine="builtin")
+    out, _ = Pipeline.from_file(repo_root / "inventory" / "survey" / "pipelines" / "terrain.json").run(pts.copy(), crs, engine="builtin")
     mad, cells, above = _agreement(out, provider, out["Classification"])
     assert cells > 5000
     assert mad <= 0.3
@@ -127,7 +129,7 @@ def test_autzen_csf_surface_agrees_with_provider(autzen, repo_root):
     # also keeps several hundred points more than 2 m above the provider's surface (flat
     # structures wider than the cloth), which is why terrain.json uses the slope envelope.
     pts, provider, crs = autzen
-    out, _ = Pipeline.from_file(repo_root / "pipelines" / "terrain-csf.json").run(pts.copy(), crs, engine="builtin")
+    out, _ = Pipeline.from_file(repo_root / "inventory" / "survey" / "pipelines" / "terrain-csf.json").run(pts.copy(), crs, engine="builtin")
     mad, cells, _ = _agreement(out, provider, out["Classification"])
     assert cells > 5000
     assert mad <= 0.3

@@ -49,7 +49,7 @@ def _site_files() -> list[Path]:
 def test_site_toml_follows_the_schema():
     import jsonschema
 
-    schema = json.loads((REPO / "schemas" / "site.schema.json").read_text())
+    schema = json.loads((REPO / "inventory" / "site" / "schemas" / "site.schema.json").read_text())
     config = tomllib.loads((SITE / "site.toml").read_text())
     jsonschema.validate(config, schema)
     kinds = Counter((s["kind"], s.get("direction")) for s in config["scales"])

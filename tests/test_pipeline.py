@@ -169,7 +169,7 @@ def test_csf_stage_separates_box_from_plane():
 
 
 def test_packaged_pipelines_parse(repo_root):
-    for path in sorted((repo_root / "pipelines").glob("*.json")):
+    for path in sorted((repo_root / "inventory" / "survey" / "pipelines").glob("*.json")):
         Pipeline.from_file(path)
     assert [s.type for s in load_pipeline().stages][-1] == "inventory.slope_ground"
 

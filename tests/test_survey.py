@@ -104,7 +104,7 @@ def test_all_three_arrivals_are_placed(synthetic):
     assert result.points_read == len(yard.points)
     labels, cls, idx = _match(result.classified_path, yard)
     # Every input point is in the classified cloud once, except the points of the posed
-    # file within 3 m of its scanner (the near gate of pipelines/stockpile.json).
+    # file within 3 m of its scanner (the near gate of inventory/survey/pipelines/stockpile.json).
     folder = site.surveys[DATE].folder
     b, _ = read_cloud(folder / "b.laz")
     near = np.sqrt(b["X"] ** 2 + b["Y"] ** 2 + b["Z"] ** 2) < 3.0

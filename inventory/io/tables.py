@@ -1,6 +1,6 @@
 """Reading CSV tables against their table schema.
 
-The schemas in ``schemas/*.table.json`` follow a subset of the Frictionless Table Schema
+The schemas in ``inventory/site/schemas/*.table.json`` follow a subset of the Frictionless Table Schema
 specification: field ``name``, ``type`` (``string``, ``number``, ``integer``, ``datetime``),
 ``description`` and ``constraints`` (``required``, ``unique``, ``enum``, ``minimum``,
 ``maximum``, plus ``exclusiveMinimum`` and ``exclusiveMaximum``, which are ours). A
@@ -53,8 +53,8 @@ class TableSchema:
 
 @lru_cache(maxsize=None)
 def table_schema(name: str) -> TableSchema:
-    """The packaged schema ``schemas/<name>.table.json``."""
-    text = resources.files("inventory").joinpath("_schemas", f"{name}.table.json").read_text("utf-8")
+    """The packaged schema ``inventory/site/schemas/<name>.table.json``."""
+    text = resources.files("inventory").joinpath("site", "schemas", f"{name}.table.json").read_text("utf-8")
     doc = json.loads(text)
     return TableSchema(name, tuple(doc["fields"]), tuple(doc.get("primaryKey", ())))
 

@@ -35,7 +35,13 @@ class Grid:
     --------
     >>> g = Grid.snapped(1003.2, 2001.1, 1010.0, 2004.9, cell=0.5, crs="EPSG:32633")
     >>> (g.west, g.north, g.nrows, g.ncols)
-    (1003.0, 2005.0, 8, 14)
+    (1003.0, 2005.0, 8, 15)
+
+    ``xmax`` = 1010.0 lies on a cell edge; cells hold their western edge, so a point there
+    falls in column 14, the fifteenth:
+
+    >>> g.index([1010.0], [2003.0])
+    (array([4]), array([14]), array([ True]))
     """
 
     west: float
@@ -167,10 +173,8 @@ def lone_patches(scanned: np.ndarray, max_cells: int = LONE_PATCH_CELLS) -> np.n
     A scanner sees real ground in scan lines: consecutive returns fall in neighbouring
     cells, so even sparse far ground forms long chains of cells. A patch of one to three
     cells alone in unscanned ground is a return the classifier let through (dust, a bird,
-    the top of an object) as often as it is ground: on the sample site's 2026-10-31
-    survey three dust returns 2.3 m above the pad, in the shadow before FE1's reclaim
-    face, were such patches, and a triangulation through them lifted the filled cells
-    around them by up to 2.4 m (+2.1 % of FE1's volume).
+    the top of an object) as often as it is ground, and a triangulation through it lifts
+    the filled cells around it (docs/classifier.md).
     """
     from scipy import ndimage
 

@@ -1,52 +1,12 @@
 """Placing the points of a moving scanner with the pose at each point's own instant.
 
-A scanner on a stacker, reclaimer or ship loader measures while the machine slews, luffs and
-travels. Its cloud arrives in the scanner's own frame with a GPS time per point; the pose of
-the machine comes as a time series, ``surveys/<date>/trajectory.csv``. Every point is placed
-with the pose interpolated at its own time (direct georeferencing):
+Rotations in the site convention (``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``, degrees),
+trajectories of a scanner's body or of a rail-mounted machine's axes (:class:`Trajectory`,
+:class:`Machine`, :func:`machine_poses`) interpolated at each point's time (position
+linearly, orientation by Slerp), and conversions between UTC and adjusted standard GPS time.
 
-``p_site = R_body(t) @ (B @ p_scanner + a) + T_body(t)``
-
-with ``a`` the lever arm (the scanner origin in the body frame, metres), ``B`` the boresight
-rotation (scanner frame to body frame) and ``R_body(t)``, ``T_body(t)`` the body's orientation
-and position at the point's time: position interpolated linearly, orientation by spherical
-linear interpolation (scipy's :class:`~scipy.spatial.transform.Slerp`). This is the usual
-direct-georeferencing equation of mobile laser scanning (e.g. Glennie, "Rigorous 3D error
-analysis of kinematic scanning LIDAR systems", J. Appl. Geodesy 1, 2007; from memory).
-
-Conventions (the site contract, as for ``stations.csv``)
---------------------------------------------------------
-Every rotation is ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``: right-handed axes, angles in degrees,
-active rotations, yaw counter-clockwise from site east seen from above; equal to scipy's
-``Rotation.from_euler("ZYX", [yaw, pitch, roll], degrees=True)``. Boresight angles are given
-as ``[roll, pitch, yaw]`` in the same convention.
-
-Time base
----------
-``gps_time`` in ``trajectory.csv`` is in the same time base as the points' LAS GPS time, so
-nothing is converted: adjusted standard GPS time (GPS seconds since 1980-01-06 minus 1e9) when
-the LAS global-encoding GPS-time-type bit is set (ASPRS LAS 1.4 R15, section 2.4, "Global
-Encoding" bit 0), else GPS seconds of the week. A week-time scan that crosses the week
-boundary (Sunday 00:00 GPS) is not supported: its times jump back. The optional ``time``
-column (ISO 8601 with offset) is for people and is checked against ``gps_time``; a table with
-no ``gps_time`` at all takes it from ``time`` as adjusted standard GPS time
-(:func:`adjusted_gps_time`), which suits clouds whose LAS files carry that time base.
-
-Time checks
------------
-Points before the first or after the last trajectory sample are rejected and counted. A
-trajectory interval longer than ``max_gap_s`` (a logging dropout) is not bridged: the points
-inside it are dropped, counted and reported with an :class:`~inventory.errors.InputWarning`.
-
-The machine-axes variant
-------------------------
-Instead of a pose, a row may give a rail-mounted machine's axes (``travel_m``, ``slew_deg``,
-``luff_deg``) and its ``machine`` id; the geometry comes from ``site.toml``
-``[machines.<id>]`` (see :class:`Machine`) and :func:`machine_poses` turns the axes into the
-pose of the boom tip. Interpolating that pose linearly between samples replaces the tip's arc
-by its chord; the error is the sagitta ``L * (omega * dt)**2 / 8`` (1.5 mm for a 40 m boom
-slewing 1 deg/s sampled once a second, 0.015 mm at 10 Hz), which is why machines should log at
-a few hertz or more.
+The direct-georeferencing equation, the conventions, the time base and the time checks:
+docs/surveys.md.
 """
 
 from __future__ import annotations

@@ -292,7 +292,7 @@ def parse_base(text: str) -> tuple[str, float | None]:
 # ----------------------------------------------------------------------------- the loader
 @lru_cache(maxsize=None)
 def _site_schema() -> dict:
-    text = resources.files("inventory").joinpath("_schemas", "site.schema.json").read_text("utf-8")
+    text = resources.files("inventory").joinpath("site", "schemas", "site.schema.json").read_text("utf-8")
     return json.loads(text)
 
 

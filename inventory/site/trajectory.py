@@ -3,7 +3,7 @@
 ``surveys/<date>/trajectory.csv`` gives the pose of the scanner's body (or a rail-mounted
 machine's axes) as a time series; :func:`read_trajectories` checks it row by row and builds one
 :class:`~inventory.model.pose.Trajectory` per cloud file. The pose conventions and the time
-base are documented in :mod:`inventory.model.pose`; placing the points is
+base are documented in docs/surveys.md; placing the points is
 :func:`inventory.survey.placement.georeference`.
 """
 
@@ -308,8 +308,16 @@ def load_trajectory(path: str | Path, machines: Mapping[str, Machine] | None = N
 
     Examples
     --------
-    >>> traj = load_trajectory("surveys/2026-10-31/trajectory.csv")        # doctest: +SKIP
-    >>> xyz, keep, counts = georeference(points, gps_time, traj)           # doctest: +SKIP
+    >>> import tempfile, pathlib
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     path = pathlib.Path(d) / "trajectory.csv"
+    ...     _ = path.write_text("gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg\\n"
+    ...                         "100.0,0,0,10,0,0,0\\n100.5,5,0,10,0,0,45\\n101.0,10,0,10,0,0,90\\n")
+    ...     traj = load_trajectory(path)
+    >>> traj.span
+    (100.0, 101.0)
+
+    The points are then placed with :func:`inventory.survey.placement.georeference`.
     """
     found = read_trajectories(path, machines)
     if file is not None and file in found:

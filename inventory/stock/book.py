@@ -1,29 +1,13 @@
 """Book stock per pile at the survey instant, from the month's movement records.
 
-Book stock is what the records say should be on the ground:
+Book stock = opening + receipts - dispatches + transfers in - transfers out up to the survey
+instant (cut-off), with the movements between the survey and the period end summed
+separately (``after_survey_net_t``). Belt-scale totals are split over the routing windows in
+proportion to time (:attr:`BookResult.belt_split`); the book's sigma comes from each
+instrument's accuracy class (:mod:`inventory.stock.metrology`). All instants are compared as
+UTC; input times may carry any UTC offset but must carry one.
 
-    book(p, t) = opening(p) + receipts(p, <= t) - dispatches(p, <= t)
-                 + transfers_in(p, <= t) - transfers_out(p, <= t)
-
-evaluated at the survey instant ``t = at`` (cut-off), not at the period end. The movements
-between the survey and the period end are summed separately (``after_survey_net_t``) so the
-close can roll the adopted survey figure forward to the period end. All instants are compared
-as UTC; input times may carry any UTC offset but must carry one.
-
-Records come from four tables (see the site folder contract): weighbridge tickets, belt-scale
-interval totals, belt routing windows and pile-to-pile transfers. A belt-scale total is spread
-evenly over its interval: the part of it that falls in each routing window goes to that
-window's pile, in proportion to time, and an interval that spans the survey instant or the
-period end is cut there the same way. Every piece is listed in :attr:`BookResult.belt_split`.
-
-The book's uncertainty comes from the accuracy class of each instrument over the tonnes it
-weighed (:mod:`inventory.stock.metrology`): the MPE bounds of one instrument's weighings for one pile
-add linearly (its calibration error is the same all month), sigma = bound / sqrt(3)
-(rectangular), and the sigmas of different instruments add in quadrature. We take no credit
-for receipts and dispatches on one weighbridge cancelling: OIML R 76 bounds the error of each
-weighing, not the shape of the error over the load range (zero, span and linearity errors act
-differently on a gross and a tare), so a signed sum would understate the book's uncertainty on
-a pile with a large throughput and a small net change.
+The book formula, the belt split and how instrument errors add: docs/uncertainty.md.
 """
 
 from __future__ import annotations

@@ -1,34 +1,14 @@
 """Survey stock against book stock: variance, significance, tolerance, scale diagnostics, journal.
 
-Sign convention (written into the workbook as :data:`SIGN_CONVENTION`): variance = survey -
-book. A positive variance means more on the ground than in the books (a gain); a positive
-adjustment increases book stock.
+Sign convention (:data:`SIGN_CONVENTION`): variance = survey - book; a positive adjustment
+increases book stock. Per pile and per material the variance is tested against k sigma
+(significance) and against the material's tolerance; its sigma counts once the errors that
+an opening that was an earlier survey shares with this survey (the table density, a fixed
+base). Belt-scale biases are estimated by weighted least squares over this month's piles
+and over the pooled history; the journal gives each adjustment a reason code.
 
-Per pile p, with survey tonnes S and its 1-sigma s_S, book tonnes B and its 1-sigma s_B
-(both at the survey instant):
-
-* variance v = S - B, variance % = 100 v / B (undefined when B <= 0);
-* sigma of the variance s_v = sqrt(s_S^2 + s_B^2) - survey and book come from independent
-  measurements - except for the errors an opening that was an earlier survey shares with
-  this survey: the table bulk density and a fixed base (a surveyed floor raster or a level).
-  Each of those enters once, as (this survey's part - the opening's part);
-* *significant* when |v| > k s_v (k = ``significance_k``, 2 by default: about 95 % for a
-  normal error);
-* *out of tolerance* when |v| > tol% x |B| (the material's ``tolerance_pct``, else the site
-  default). Both flags are shown; they answer different questions (is the difference real? is
-  it too big to accept?).
-* adjustment = v (``adjust_to = "survey"``) or v / 2 (``"midpoint"``: book moved half-way),
-  closing at period end = B + adjustment + movements after the survey (cut-off roll-forward).
-
-Scale diagnostics: a belt scale reading a fraction b high inflates the book of every pile it
-fed by b x T (T = tonnes it delivered, negative for a reclaim belt), so v_p = -sum_s b_s T_ps
-+ e_p. The biases b are estimated by weighted least squares over this month's piles, and
-again over earlier months pooled with this one when their rows are given (``history``, kept
-by the ledger), weights 1 / (the pile's variance sigma without the belt scales' own class
-terms)^2, with outlier piles (standardised residual > :data:`REJECT_Z`) left out one at a
-time. A scale is named when either fit gives |b| > k sigma_b and |b| beyond its in-service
-MPE: this month's fit catches a scale that went wrong this month, the pooled fit a small bias
-that has been there all along.
+The variance and its sigma, the shared terms and the scale diagnostics:
+docs/uncertainty.md.
 """
 
 from __future__ import annotations

@@ -130,9 +130,8 @@ def limits_mask(points: np.ndarray, ranges: list[DimRange]) -> np.ndarray:
 def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray:
     """Permutation listing points block by block along a Z-order (Morton) curve of ``cell`` blocks.
 
-    Neighbour queries (SciPy ``cKDTree``) run two to three times faster on points that are
-    near in memory when they are near in space (measured: eight neighbours of 600,000 points
-    of a synthetic yard in scan order 3.5 s of CPU, in this order 1.1 s).
+    Neighbour queries (SciPy ``cKDTree``) run faster on points that are near in memory when
+    they are near in space (timings in CHANGELOG.md).
 
     Examples
     --------

@@ -1,28 +1,12 @@
 """The surface grid of a survey: points -> per-cell statistic, coverage, hole filling, GeoTIFF.
 
-Gridding streams: :class:`SurfaceAccumulator` takes points chunk by chunk and keeps only
-per-cell sums (``numpy.bincount``), so memory is the grid, not the cloud. The cell
-statistic is ``mean`` or ``max`` for any chunking; ``median`` needs every point of a cell in
-one call (the survey step feeds whole tiles whose edges fall on cell edges) and says so
-when a cell comes back.
+:class:`SurfaceAccumulator` grids points chunk by chunk (memory is the grid, not the cloud)
+and takes out surface cells lying on an object (:func:`object_cells`); :func:`fill_holes`
+fills unscanned cells by linear interpolation up to ``max_fill_distance_m``, seeded by every
+scanned cell but lone patches (:func:`~inventory.model.grid.lone_patches`).
 
-Object returns (not surface, not noise) may be fed too (:meth:`SurfaceAccumulator.add_objects`).
-Surface points on an object (a classifier's slip: single returns on a wall top, a vehicle
-roof) are then recognised by the object returns beside or below them
-(:meth:`SurfaceAccumulator.object_cells`) and their cells come back empty, to be filled
-like any unscanned cell. On the sample site (survey 2026-10-31) this removed all 156
-loader and 215 of the 240 wall-top points the classifier had called surface, at the cost of
-about 650 true surface points (380 of 80,000 cells, then filled); with :func:`lone_patches`
-it took FE1 from +3.33 % to +0.37 % of its true volume and S1 from -2.53 % to -0.84 %.
-
-Holes (unscanned cells) are filled by linear interpolation over a Delaunay triangulation of
-the scanned cell centres (what scipy ``griddata(method="linear")`` does, in grid
-coordinates), only where the nearest scanned cell is at most ``max_fill_distance_m`` away;
-larger gaps stay nodata and are reported. Lone patches of one to three scanned cells
-(:func:`lone_patches`) keep their value but do not seed the fill.
-
-Rasters are written as tiled (256 x 256), DEFLATE-compressed GeoTIFFs with overviews, CRS
-and nodata, through a temporary file renamed into place.
+Gridding and hole filling: docs/surveys.md; the object and lone-patch rules:
+docs/classifier.md.
 """
 
 from __future__ import annotations
@@ -332,10 +316,9 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
 
     Cells are points of the integer lattice (column, -row). Triangulating there, not at
     projected coordinates of 10^5-10^6 m, matters: Qhull then loses no cell as
-    "coplanar" (at site coordinates it dropped up to 40 % of them on a regular grid and
-    spent seconds on the rest). Targets are located without scipy's walk, whose set-up
-    inverts every triangle's matrix (measured: 2.5 s for 37,000 triangles, most of a
-    small survey's time): each triangle lists the lattice points of its
+    "coplanar", as it does at site coordinates on a regular grid. Targets are located
+    without scipy's walk, whose set-up inverts every triangle's matrix (slow; timings in
+    CHANGELOG.md): each triangle lists the lattice points of its
     bounding box and keeps the targets inside it by exact integer orientation tests
     (edges included: the value on a shared edge is the same from both sides). The value
     is the barycentric sum in the triangle found; targets outside every triangle get NaN,

@@ -1,103 +1,13 @@
 """Ground classification for stockyards: the terrain with the piles on it is "ground".
 
-Why not a terrain filter as is
-------------------------------
-Filters built for natural terrain (CSF, Zhang et al. 2016; SMRF, Pingel et al. 2013) treat
-anything that rises steeply from its surroundings as an object to strip. A stockpile is
-exactly that: flanks at the angle of repose (30-40 degrees, slope 0.58-0.84) over 10-20 m of
-height. With a 1-2 m cloth CSF keeps only a tenth of the pile points (measured, see
-REFERENCES.md); SMRF's default slope of 0.15 is far below any flank.
+:func:`slope_ground` (pipeline stage ``inventory.slope_ground``) keeps every point that lies
+on the slope-limited lower envelope of the cloud (after Vosselman 2000), with region rules
+for reclaim faces and for the flat tops of objects, and sorts the rest into overhead
+structure (19), other (1) and noise (18, 7). :func:`csf_ground` wraps the
+``cloth-simulation-filter`` package (Zhang et al. 2016) with PDAL ``filters.csf`` option
+names for airborne, natural-terrain data.
 
-What separates piles from machines
-----------------------------------
-Piles are made by gravity: no part of a pile surface is steeper than the angle of repose
-of its material, and nothing of a pile hangs over open space. Machines and vehicles break
-both rules: a stacker boom or a conveyor gallery is an *overhang* (points above a lower
-surface in the same column, with empty space between), and a loader on a flank or a truck
-on the pad has near-vertical sides, steeper than any repose angle.
-
-The method (:func:`slope_ground`)
----------------------------------
-Slope-based filtering after Vosselman (2000, "Slope based filtering of laser altimetry
-data", IAPRS 33(B3):935, from memory): a point is ground when no other point lies below it
-by more than the height a slope of ``max_slope_deg`` can climb over the horizontal distance
-between them, plus a noise ``tolerance``. In other words the point must lie on or under the
-*slope-limited lower envelope* of the cloud,
-
-    E(p) = min over q of ( z_q + tan(max_slope) * |xy_p - xy_q| ),
-
-and ground points are those with ``z_p - E(p) <= tolerance``. With ``max_slope_deg`` set
-above the steepest repose angle (default 50 degrees) every point of a pile flank or crest,
-however broad, lies on the envelope and stays; a point on a vertical wall has lower points
-of the same wall right below it and leaves; a boom over a pile has the pile below it.
-
-The envelope is computed on a fine grid (``cell``, default 0.25 m): the lowest point of
-each cell is a seed, the seeds are propagated over the whole grid with a 16-neighbour
-chamfer distance (within 3 % of Euclidean; two raster passes, :func:`_chamfer_min`), and
-each point is finally compared
-with the seeds of its own and the eight neighbouring cells at its exact position, and
-with its 16 nearest points in plan (on a wall, those are the wall points right below it).
-Low noise must be gone first, because a single low outlier would dent the envelope in a
-cone around it: class-7 points (``filters.elm``, ``filters.outlier``) are ignored, and the
-stage itself sets aside points that lie below the slope cone of most of their nearest
-neighbours and have no surface of their own around them (multipath returns).
-
-Returns with no other return within 2 m are high noise (18) before anything else: alone,
-a point is its own envelope.
-
-Region rules on top of the envelope
------------------------------------
-The envelope alone has two blind spots, both handled on cells of ``2 * cell``:
-
-* *Reclaim faces.* A loader cuts faces steeper than repose (60 degrees on the demo site's
-  FE1); the envelope keeps the foot and drops a band of pile top ``height / tan(max_slope)``
-  wide behind the edge. Points that a second envelope at ``face_slope_deg`` (70) keeps are
-  grouped into height-continuous patches; a patch that rises at least ``overhead_gap`` and
-  whose scanned surroundings mostly continue it (the pile it was cut from) is surface
-  (:func:`_attached_faces`). The strip along the foot of a wall rises too little, a roof
-  is surrounded by its own edges.
-* *Flat tops.* A roof or wall top farther than ``height / tan(max_slope)`` from every wall
-  foot passes the envelope. Surface cells are joined into height-continuous islands; two
-  cells are not joined across an object's face (a point that is not surface standing in
-  either cell between their two heights). An island of at most ``max_top_area`` m2 is an
-  object top (:func:`_walled_tops`) when
-  - surface lies beside it but none at its own level: it is cut off by faces or steps
-    going down from it on every side (a bay-wall top 0.6 m above the pile leaning on it,
-    its far side in the wall's shadow), or
-  - it stands more than ``overhead_gap / 2`` above the lowest point within ``window`` of
-    it, with at least four scanned cells around it, or with fewer (a sparse scan) but
-    nothing beside it at its level (the lowest returns of a machine over its own shadow).
-  A pile is never an island: its flanks continue into the pad. Cells standing above
-  other surface more steeply than ``face_slope_deg`` allows are dropped last
-  (:func:`_spikes`).
-
-Classes written: 2 for ground; among the rest, 19 (overhead structure) for points that sit
-in a layer of their column with at least ``overhead_gap`` metres of empty space below it
-(booms, galleries, the upper works of machines), else 1 (other: vehicles, people, the
-lower parts of machines). Ignored class-7 points are judged against the envelope of the
-others: more than ``tolerance`` above it they become 18 (high noise: dust, birds, mixed
-edge returns); within ``tolerance`` of it they are surface after all and become 2 (the
-statistical outlier test flags sparse but real surface far from the scanner); below it
-they stay 7.
-
-Measured (tests/test_cloud_ground.py, tests/test_survey.py): on the synthetic yard and the
-demo site at least 98 % of machine and vehicle points leave the surface class and at most
-0.5 % of pile points are dropped; the sample site's month-end surfaces are within 2.9 cm
-(2026-09-30) and 3.4 cm (2026-10-31) RMS of the truth on covered cells. Known limits: the surface class creeps up the foot of a
-wall by about ``tan(max_slope) x point spacing + tolerance`` (0.2-0.3 m at 50-80
-points/m2); a face steeper than ``face_slope_deg`` still loses a band behind its edge.
-
-Cost: the stage is bound by its one neighbour query (SciPy ``cKDTree``, all cores): the
-17 nearest points in plan of every point serve the three subsets that need their 16
-nearest (:class:`_PlanNeighbours`); 3D distances are asked of a tree only for the few
-points the plan tests leave open (multipath candidates, returns without a close plan
-neighbour); the envelope grid is built once and queried for points and noise, and its
-propagation is two raster passes. Measured on the sample survey 2026-09-30 (68 tiles,
-1.23 M points with buffers, 2 shared cores, load 3-5): 6-8 s of CPU, from 11-13 s before
-these changes.
-
-:func:`csf_ground` wraps the ``cloth-simulation-filter`` package (Zhang et al. 2016) with
-PDAL ``filters.csf`` option names for airborne, natural-terrain data.
+The rules and why, the classes written and the known limits: docs/classifier.md.
 """
 
 from __future__ import annotations
@@ -127,7 +37,7 @@ _STEPS = [(dr, dc) for dr in (-2, -1, 0, 1, 2) for dc in (-2, -1, 0, 1, 2)
 class SlopeGroundParams:
     """Options of :func:`slope_ground` (also the options of stage ``inventory.slope_ground``)."""
 
-    max_slope_deg: float = 50.0   # above the steepest repose angle, 40 deg (REFERENCES.md)
+    max_slope_deg: float = 50.0   # above the steepest repose angle, about 40 deg (common practice, from memory)
     tolerance: float = 0.10       # m; ranging noise of survey scanners is 2-25 mm (common practice)
     cell: float = 0.25            # m; seed grid
     window: float = 12.0          # m; how far around a surface island to look for the ground below it
@@ -728,8 +638,8 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     height : ndarray of float
         Height above the slope-limited envelope (NaN where it could not be computed).
     """
-    # Neighbour queries run two to three times faster on points that are near in memory
-    # when they are near in space; the stage works in that order and answers in the caller's.
+    # Neighbour queries run faster on points that are near in memory when they are near in
+    # space; the stage works in that order and answers in the caller's.
     from inventory.survey.clean import spatial_order
 
     order = spatial_order(x, y)

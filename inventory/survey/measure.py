@@ -1,33 +1,14 @@
 """One survey's point clouds -> a classified cloud and the stockpile surface grid.
 
-``measure_survey(site, date)`` is what ``inventory survey SITE --date D`` runs:
+``measure_survey(site, date)`` is what ``inventory survey SITE --date D`` runs: it reads and
+places every cloud file of ``surveys/<date>/``, spills the points to disk by tiles of the
+site grid, cleans and classifies each tile with a buffer of neighbouring points through the
+pipeline (serially, on threads or on Dask: :mod:`inventory.parallel`), grids each tile's
+surface inside its job, takes out surface cells lying on objects, fills holes window by
+window and writes ``surface-<date>.tif``, ``coverage-<date>.tif`` and
+``classified-<date>.laz``.
 
-1. **Read and place** every cloud file of ``surveys/<date>/`` in chunks: station-frame
-   clouds through their pose from ``stations.csv`` (:mod:`inventory.survey.placement`), others
-   from their own CRS (or ``[survey] default_crs``) into the site CRS with one transformer
-   per input CRS (:mod:`inventory.io.crs`).
-2. **Tile**: points are spilled to disk by square tiles of the site grid (edges on cell
-   edges), so that no step holds more than one tile and its neighbours in memory.
-3. **Clean and classify** each tile with a buffer of neighbouring points through the
-   pipeline (``[survey] pipeline`` or ``pipelines/stockpile.json``); only the tile's own
-   points are kept, so results do not depend on the tiling as long as the buffer is wider
-   than the stages' reach (except through statistics taken over a whole tile: the
-   threshold of ``filters.outlier`` is the mean and spread of the tile and its buffer).
-   Tiles run serially, on threads or on Dask (``workers``, ``scheduler``;
-   :mod:`inventory.parallel`) and come back in tile order, so every way writes the same
-   files.
-4. **Grid** the surface class (ASPRS 2) and the object returns of each tile inside the
-   tile's own job (a cell lies in one tile: :func:`~inventory.survey.tiles.grid_tile`), so
-   gridding runs on the workers too; paste the tiles' cells into the site grid and take out
-   surface cells lying on an object over the whole grid; fill holes up to
-   ``[grid] max_fill_distance_m`` window by window
-   (:data:`~inventory.survey.fill.FILL_WINDOW_CELLS` cells and a margin); write
-   ``surface-<date>.tif``, ``coverage-<date>.tif`` and ``classified-<date>.laz``.
-
-Memory is the output grid (about 21 bytes a cell, plus three grids of per-cell extremes
-while they are pasted) plus a few tiles (two per worker in flight; finished Dask tiles
-wait on disk) or one fill window, whatever the size of the files; ``bench/bench_survey.py``
-measures it with the throughput.
+The steps, tiling, memory and hole filling: docs/surveys.md.
 """
 
 from __future__ import annotations

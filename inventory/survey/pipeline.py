@@ -58,6 +58,7 @@ import json
 import math
 import re
 from dataclasses import dataclass, field
+from importlib import resources
 from pathlib import Path
 from typing import Any, Callable
 
@@ -564,7 +565,8 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
 
 
 def load_pipeline(path: "str | Path | None" = None) -> Pipeline:
-    """A pipeline file, or the stockyard default shipped in ``pipelines/stockpile.json``."""
+    """A pipeline file, or the stockyard default shipped in ``inventory/survey/pipelines/stockpile.json``."""
     if path is None:
-        path = Path(__file__).resolve().parent.parent / "_pipelines" / "stockpile.json"
+        with resources.as_file(resources.files("inventory").joinpath("survey", "pipelines", "stockpile.json")) as default:
+            return Pipeline.from_file(default)
     return Pipeline.from_file(path)

@@ -7,15 +7,11 @@ CRS (:class:`CrsPlacement`), in a scanner's own frame with a station pose from
 pose at each point's time from ``trajectory.csv`` (:class:`TrajectoryPlacement`,
 :func:`georeference`).
 
-Convention (the site-folder contract, stations.csv)
----------------------------------------------------
-``p_site = R @ p_scanner + (x, y, z)`` with ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``:
-right-handed axes, angles in degrees, active rotations, yaw counter-clockwise from site
-east seen from above. This equals scipy's
-``Rotation.from_euler("ZYX", [yaw, pitch, roll], degrees=True).as_matrix()`` (intrinsic
-z-y'-x'' rotations), which the tests use as the reference.
+:func:`poses_from_stations` turns the rows of ``stations.csv`` into station poses
+(``p_site = R @ p_scanner + (x, y, z)``, ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``);
+:func:`georeference` places each point of a moving scanner with the pose at its own time.
 
-Scanner-frame coordinates are metres; the pose translation is in the site CRS (metres).
+The conventions (axes, angles, time base): docs/surveys.md.
 """
 
 from __future__ import annotations

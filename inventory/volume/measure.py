@@ -1,108 +1,14 @@
 r"""Pile volumes above their base, with their uncertainty, and survey tonnes.
 
-For each footprint in ``piles.gpkg`` the grid volume above the pile's base is summed over
-the survey grid, cut by the footprint edge exactly; a TIN volume is computed independently
-as a cross-check; the uncertainty of the volume is built from the scan itself; and the
-volume is turned into wet and dry tonnes with the material's bulk density.
+For each footprint in ``piles.gpkg`` the grid volume above the pile's base (``floor``,
+``level:<z>`` or ``toe``) is summed over the survey grid, cut by the footprint edge exactly
+(:func:`footprint_weights`); a TIN volume is computed independently as a cross-check; the
+uncertainty of the volume is built from the scan itself (random, spatially correlated,
+interpolation and base terms, added in quadrature); and the volume is turned into wet and
+dry tonnes with the material's bulk density.
 
-Grid volume
------------
-With cell area :math:`a`, surface :math:`z_i`, base :math:`b_i` and :math:`w_i` the share of
-cell *i* inside the footprint (exact polygon-cell intersection, :func:`footprint_weights`)::
-
-    V     = sum_i w_i a max(z_i - b_i, 0)          (fill, reported as volume_m3)
-    V_cut = sum_i w_i a max(b_i - z_i, 0)          (material below base, below_base_m3)
-
-Cells inside the footprint that the survey left empty (no points and not filled) are
-interpolated here (see 3. below) and the pile is flagged ``unfilled_gap``.
-
-Base surfaces
--------------
-``floor``: a surveyed floor raster resampled onto the survey grid (bilinear), stated sigma
-:math:`\sigma_f`. ``level:<z>``: a horizontal plane at *z*, exact by definition. ``toe``: a
-plane fitted through the scanned cells of a ring ``toe_ring_m`` wide just outside the
-footprint, less other piles' footprints; least-median-of-squares start (Rousseeuw 1984),
-then least squares on cells within 3 MAD-sigmas, which rejects machines and a neighbour's
-flank. The fit residual (inlier RMS) is reported as ``base_residual_m``.
-
-Uncertainty model (one sigma; the 95 % interval is 1.96 sigma, normal)
-----------------------------------------------------------------------
-Terms are independent and added in quadrature,
-:math:`\sigma_V^2 = \sigma_{rand}^2 + \sigma_{corr}^2 + \sigma_{gap}^2 + \sigma_{base}^2`:
-
-1. Random per-cell error (Lane et al. 2003, ESPL 28:249; Wheaton et al. 2010): a scanned
-   cell's elevation is the mean of its :math:`n_i` points, standard error
-   :math:`s_i/\sqrt{n_i}` with :math:`s_i` the point scatter in the cell (the survey's
-   median scatter where :math:`n_i = 1`). :math:`\sigma_{rand}^2 = \sum_i (w_i a s_i/\sqrt{n_i})^2`.
-2. Spatially correlated error (registration, range bias): a field of sigma
-   :math:`\sigma_{sc}` with a spherical correlation :math:`\rho(d)` of range :math:`\lambda`
-   (Rolstad et al. 2009, J. Glaciol. 55:666; Anderson 2019, ESPL 44:1015).
-   :math:`\sigma_{corr}^2 = \sigma_{sc}^2 a^2 \sum_i \sum_j w_i w_j \rho(d_{ij})`, evaluated
-   exactly by FFT convolution of the weight raster with :math:`\rho`. For a footprint much
-   larger than :math:`\pi\lambda^2` this tends to Rolstad's
-   :math:`\sigma_{sc}^2 \pi \lambda^2 A / 5` (Anderson's :math:`\sqrt{\pi/5}\,\lambda\sqrt{n}L\sigma_{sc}`),
-   and for a small one to :math:`\sigma_{sc} A` (fully correlated).
-3. Interpolated (unscanned) cells. Every footprint cell without a point (filled by the
-   survey or here) carries an interpolation error that grows with the size of its gap and
-   with how much the surface bends there. Linear interpolation across a gap is exact on a
-   plane; it misses where the slope changes inside the gap (a flattened apex or crest, a
-   bridged toe, a step along a wall). Cell *i*, at distance :math:`d_i` from the nearest
-   scanned cell, gets
-
-   .. math:: \sigma_i = \sqrt{\min(k\,m_i d_i,\ H/2)^2 + s_0^2},
-             \qquad m_i = \operatorname{mean}_{j \in R_i} |\nabla z_j - \nabla z_i|
-
-   with :math:`m_i` the slope mismatch: the mean length of the difference between the
-   gradient of the interpolated surface at *i* and the gradients measured at the scanned
-   cells :math:`R_i` within :math:`d_i` plus one cell of it (central differences). Over a
-   hidden apex of slope *s* the interpolation is flat, :math:`m = s`, and the true surface
-   is missed by exactly :math:`s d` (a cone), so :math:`k = 1` is geometry, not a fitted
-   number. A short gap between scan lines on an even flank has :math:`m` near the
-   gradient noise and :math:`d` of one cell: nearly a scanned cell. *H* is the highest
-   scanned thickness of the pile (an interpolated cell is rarely wrong by more than half
-   the pile's height) and :math:`s_0` the survey's point scatter.
-
-   Errors of cells interpolated from the same rim share their sign, errors of different
-   gaps do not: the correlation length of each cell is the width of its own gap,
-   :math:`l_i = 2 r_i`, with :math:`r_i` the radius of the largest unscanned disc covering
-   the cell (the gap's "local thickness", Hildebrand and Rueegsegger 1997; a lone missing
-   cell, 0.5 m from its scanned neighbours' centres, has :math:`l = 1` m at 0.5 m cells; the
-   cells of a wide shadow all have the shadow's width). With
-   the non-stationary Gaussian correlation of Paciorek and Schervish (2006, Environmetrics
-   17:483), positive semi-definite for any field of lengths,
-
-   .. math:: \rho_{ij} = \frac{2 l_i l_j}{l_i^2 + l_j^2}
-             \exp\left(-\frac{2 h_{ij}^2}{l_i^2 + l_j^2}\right), \qquad
-             \sigma_{gap}^2 = \sum_i \sum_j (w_i a \sigma_i)(w_j a \sigma_j) \rho_{ij}
-
-   (:math:`h_{ij}` the distance between cell centres). This is the correlated-error
-   treatment of Rolstad et al. (2009) and Anderson (2019) with the range set by the gap's
-   own extent instead of one range for the footprint. Validated against the demo
-   simulator's true volumes: over 56 pile-surveys of the whole chain (``inventory sample``
-   with the default seed and seeds 11, 12, 13, both surveys, 7 piles) every 95 % interval
-   held the truth and z = error / sigma had a standard deviation of 0.72 (largest
-   :math:`|z|` 1.85); with a perfect ground classifier (simulator labels, 5 seeds, 70
-   pile-surveys; tests/test_volume_site.py) 0.32, largest 0.75.
-   The pile is flagged ``low_scan`` when less than 80 % of it was scanned.
-
-   Gaps the survey left empty are interpolated here (linear over a Delaunay triangulation
-   of the surrounding cells; lone scanned patches, :func:`inventory.model.grid.lone_patches`,
-   are not corners, as in the survey's hole filling). Footprints enclose their piles, so
-   empty cells at least 1 m outside every footprint are taken as floor at the pile's base
-   before interpolating: a shadow that runs off the back of a pile is closed at the toe
-   instead of being extrapolated.
-4. Base: ``level`` 0; ``floor`` :math:`A_+\sigma_f`, the floor survey's error taken as
-   fully correlated over the pile (Anderson 2019, systematic term); ``toe``
-   :math:`g^T C g + (A_+\sigma_{rough})^2` with :math:`C` the plane's parameter
-   covariance, :math:`g = \sum w_i a (1, x_i, y_i)` over cells with positive thickness
-   (area :math:`A_+`), and :math:`\sigma_{rough}` the ring's residual left after the
-   cells' own standard errors are taken out (ground that is not a plane), taken as
-   fully correlated under the pile.
-
-The share of the footprint actually scanned is reported as ``scanned_fraction``.
-
-Tonnes: wet t = V rho (pile override, else material table); dry t = wet (1 - moisture);
-:math:`\sigma_t^2 = (\rho\sigma_V)^2 + (V\sigma_\rho)^2`.
+The formulas, the base surfaces and the uncertainty model with its sources:
+docs/uncertainty.md.
 
 Examples
 --------
