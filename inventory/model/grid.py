@@ -55,11 +55,15 @@ class Grid:
     def snapped(
         cls, xmin: float, ymin: float, xmax: float, ymax: float, *, cell: float, crs: str = ""
     ) -> "Grid":
-        """The smallest grid aligned on multiples of ``cell`` that covers the box."""
+        """The smallest grid aligned on multiples of ``cell`` whose cells hold every point of the box.
+
+        A cell holds its western and northern edges (:meth:`index`), so the grid reaches
+        strictly east of ``xmax`` and strictly south of ``ymin``.
+        """
         if not cell > 0:
             raise ValueError(f"cell size must be positive, got {cell}")
         west = math.floor(xmin / cell) * cell
-        south = math.floor(ymin / cell) * cell
+        south = (math.ceil(ymin / cell) - 1) * cell
         east = (math.floor(xmax / cell) + 1) * cell
         north = (math.floor(ymax / cell) + 1) * cell
         ncols = int(round((east - west) / cell))
