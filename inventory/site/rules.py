@@ -264,7 +264,7 @@ def check_weighbridge(
     bridges = sorted(k for k, s in scales.items() if s.kind == "weighbridge")
     blank = df["scale_id"].isna()
     if len(bridges) == 1:
-        df.loc[blank, "scale_id"] = bridges[0]
+        df["scale_id"] = pd.Series([bridges[0] if b else v for v, b in zip(df["scale_id"], blank)], index=df.index)
     else:
         t.flag(blank, "scale_id", lambda r: f"value is missing and the site has {len(bridges)} weighbridges "
                                             "(it may be left out only when there is one)")
