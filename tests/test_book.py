@@ -1,13 +1,13 @@
 """Book stock at the survey instant: each rule with hand-computed numbers.
 
-All records are built as DataFrames (the site loader's job is parsing files; this module
-takes its tables). Expected values are worked out by hand in the comments beside them.
+All records are built as DataFrames and checked by ``Movements.checked`` (the site loader's
+job is parsing files; this module takes its tables). Expected values are worked out by hand in
+the comments beside them.
 """
 
 from __future__ import annotations
 
 import math
-from types import SimpleNamespace as NS
 
 import numpy as np
 import pandas as pd
@@ -16,6 +16,7 @@ import pytest
 from inventory.errors import InputErrors, InputWarning
 from inventory.model.period import Period
 from inventory.model.results import MOVEMENT_COLUMNS
+from inventory.site.load import Movements, Scale
 from inventory.stock.book import book_stock
 from inventory.stock.metrology import (
     BELT_MPE_PCT_INITIAL,
@@ -28,15 +29,20 @@ T = pd.Timestamp
 SQRT3 = math.sqrt(3.0)
 
 
-def scales(belt_class: str = "1", in_service: bool = True) -> dict:
+def scales() -> dict[str, Scale]:
     return {
-        "WB1": NS(id="WB1", kind="weighbridge", direction=None, accuracy_class="III", scale_interval_kg=20.0,
-                  in_service=in_service),
-        "B1": NS(id="B1", kind="belt", direction="in", accuracy_class=belt_class, scale_interval_kg=None,
-                 in_service=in_service),
-        "R1": NS(id="R1", kind="belt", direction="out", accuracy_class="0.5", scale_interval_kg=None,
-                 in_service=in_service),
+        "WB1": Scale(id="WB1", kind="weighbridge", accuracy_class="III", scale_interval_kg=20.0),
+        "B1": Scale(id="B1", kind="belt", direction="in", accuracy_class="1"),
+        "R1": Scale(id="R1", kind="belt", direction="out", accuracy_class="0.5"),
     }
+
+
+def piles(*ids: str) -> pd.DataFrame:
+    return pd.DataFrame({"pile_id": list(ids), "material": "coal"})
+
+
+def balances(tonnes: dict[str, float]) -> pd.DataFrame:
+    return pd.DataFrame({"pile_id": list(tonnes), "tonnes": list(tonnes.values())})
 
 
 def tickets(rows: list[tuple]) -> pd.DataFrame:
@@ -55,8 +61,9 @@ def intervals(rows: list[tuple], cols: list[str]) -> pd.DataFrame:
     return df
 
 
-def moves(wb=None, belts=None, routing=None, transfers=None) -> NS:
-    return NS(weighbridge=wb, belt_scales=belts, routing=routing, transfers=transfers)
+def moves(wb=None, belts=None, routing=None, transfers=None) -> Movements:
+    return Movements.checked("2026-10", wb, belts, routing, transfers, scales=scales(), pile_ids=["A", "B"],
+                             materials=["coal"])
 
 
 END = T("2026-10-31T23:00Z")
@@ -97,8 +104,8 @@ def test_book_at_survey_and_roll_forward_hand_numbers():
         ("4", "2026-11-02T10:00Z", "in", "A", 40.0, 15.0, "Z"),        # next period: not counted
     ])
     tr = intervals([("A", "B", "2026-10-08T00:00Z", 7.5, "wo-1")], ["from_pile", "to_pile", "time", "tonnes", "reference"])
-    r = book_stock(moves(wb, transfers=tr), {"A": 1000.0, "B": 50.0}, T("2026-10-15T12:00+02:00"), scales(),
-                   ["A", "B"], END, START)
+    r = book_stock(moves(wb, transfers=tr), balances({"A": 1000.0, "B": 50.0}), T("2026-10-15T12:00+02:00"), scales(),
+                   piles("A", "B"), END, START)
     a = r.piles.set_index("pile_id").loc["A"]
     b = r.piles.set_index("pile_id").loc["B"]
     # A: 1000 + 30 - 20 - 7.5 = 1002.5 at survey; +25 after it -> 1027.5 at period end
@@ -120,7 +127,7 @@ def test_survey_after_period_end_rolls_back():
     # survey on 2 Nov: a receipt on 1 Nov (after the period end, before the survey) is in the
     # book at survey and rolled back out of the period-end figure.
     wb = tickets([("1", "2026-11-01T08:00Z", "in", "A", 40.0, 15.0, "Z")])
-    r = book_stock(moves(wb), {"A": 100.0}, T("2026-11-02T12:00Z"), scales(), ["A"], END, START)
+    r = book_stock(moves(wb), balances({"A": 100.0}), T("2026-11-02T12:00Z"), scales(), piles("A"), END, START)
     a = r.piles.iloc[0]
     assert a.book_t == pytest.approx(125.0)
     assert a.after_survey_net_t == pytest.approx(-25.0)
@@ -130,7 +137,7 @@ def test_survey_after_period_end_rolls_back():
 def test_record_at_the_survey_instant_is_before_it_whatever_its_offset():
     # 14:00+02:00 is 12:00Z: "at or before the survey instant" counts it in the book at survey
     wb = tickets([("1", "2026-10-15T14:00+02:00", "in", "A", 40.0, 15.0, "Z")])
-    r = book_stock(moves(wb), {"A": 0.0}, T("2026-10-15T12:00Z"), scales(), ["A"], END, START)
+    r = book_stock(moves(wb), balances({"A": 0.0}), T("2026-10-15T12:00Z"), scales(), piles("A"), END, START)
     assert r.movements["before_survey"].iloc[0]
     assert r.piles["book_t"].iloc[0] == pytest.approx(25.0)
 
@@ -141,7 +148,7 @@ def test_opening_as_of_excludes_records_already_in_it():
         ("1", "2026-10-02T10:00Z", "in", "A", 40.0, 15.0, "Z"),  # before as_of: already in opening
         ("2", "2026-10-04T10:00Z", "in", "A", 40.0, 15.0, "Z"),
     ])
-    r = book_stock(moves(wb), opening, T("2026-10-15T12:00Z"), scales(), ["A"], END)
+    r = book_stock(moves(wb), opening, T("2026-10-15T12:00Z"), scales(), piles("A"), END)
     assert r.piles["book_t"].iloc[0] == pytest.approx(525.0)
     first = r.movements.set_index("reference").loc["1"]
     assert not first.counted and "opening" in first.note
@@ -160,10 +167,11 @@ def test_naive_times_are_refused_with_line_and_field():
     wb = tickets([("1", "2026-10-05T10:00Z", "in", "A", 40.0, 15.0, "Z")])
     wb["time"] = wb["time"].dt.tz_localize(None).astype(object).astype(str)
     with pytest.raises(InputErrors) as err:
-        book_stock(moves(wb), {}, T("2026-10-15T12:00Z"), scales(), ["A"], END, START)
-    assert "weighbridge.csv line 2: time" in str(err.value)
+        moves(wb)
+    assert [str(p) for p in err.value.problems] == [
+        "weighbridge.csv line 2: time: '2026-10-05 10:00:00' has no UTC offset (write e.g. 2026-10-05 10:00:00+01:00)"]
     with pytest.raises(ValueError, match="UTC offset"):
-        book_stock(moves(), {}, pd.Timestamp("2026-10-15T12:00"), scales(), ["A"], END, START)
+        book_stock(moves(), None, pd.Timestamp("2026-10-15T12:00"), scales(), piles("A"), END, START)
 
 
 # --------------------------------------------------------------------- checks on the records
@@ -180,13 +188,35 @@ def test_bad_records_are_listed_with_file_line_field():
                          ("B1", "B", "2026-10-09T00:00Z", "2026-10-20T00:00Z")],  # overlaps line 2
                         ["scale_id", "pile_id", "start", "end"])
     with pytest.raises(InputErrors) as err:
-        book_stock(moves(wb, routing=routing), {}, T("2026-10-15T12:00Z"), scales(), ["A", "B"], END, START)
+        moves(wb, routing=routing)
+    assert sorted((p.path, p.where, p.field) for p in err.value.problems) == [
+        ("routing.csv", 3, "start"),
+        ("weighbridge.csv", 2, "tare_t"),
+        ("weighbridge.csv", 3, "direction"),
+        ("weighbridge.csv", 4, "net_t"),
+        ("weighbridge.csv", 4, "pile_id"),
+    ]
     text = str(err.value)
-    assert "weighbridge.csv line 2: tare_t" in text
-    assert "weighbridge.csv line 3: direction" in text
-    assert "weighbridge.csv line 4: pile_id" in text
-    assert "weighbridge.csv line 4: net_t" in text
-    assert "routing.csv line 3: start" in text and "overlaps line 2" in text
+    assert "weighbridge.csv line 2: tare_t: tare 45 t is above gross 15 t" in text
+    assert "weighbridge.csv line 4: net_t: net 29 t is not gross 45 - tare 15 = 30.000 t" in text
+    assert "routing.csv line 3: start: window of belt 'B1' overlaps line 2" in text
+
+
+def test_book_refuses_movements_checked_against_other_piles():
+    wb = tickets([("1", "2026-10-05T10:00Z", "in", "B", 40.0, 15.0, "Z")])
+    with pytest.raises(ValueError, match=r"name scale\(s\) or pile\(s\) not given here \(B\)"):
+        book_stock(moves(wb), None, T("2026-10-15T12:00Z"), scales(), piles("A"), END, START)
+
+
+def test_opening_is_checked_by_the_opening_rule():
+    opening = pd.DataFrame({"pile_id": ["A", "A", "Q"], "tonnes": [1.0, float("nan"), 2.0]})
+    with pytest.raises(InputErrors) as err:
+        book_stock(moves(), opening, T("2026-10-15T12:00Z"), scales(), piles("A"), END, START)
+    assert [str(p) for p in err.value.problems] == [
+        "opening balances line 3: tonnes: value is missing",
+        "opening balances line 3: pile_id: pile 'A' has more than one opening balance (also line 2)",
+        "opening balances line 4: pile_id: unknown pile 'Q' (not in piles.gpkg)",
+    ]
 
 
 # --------------------------------------------------------------------- duplicates
@@ -197,7 +227,9 @@ def test_exact_duplicate_counted_once_and_listed():
         ("7", "2026-10-05T10:00Z", "in", "A", 45.0, 15.0, "X"),
         ("7", "2026-10-05T10:00Z", "in", "A", 45.0, 15.0, "X"),
     ])
-    r = book_stock(moves(wb), {}, T("2026-10-15T12:00Z"), scales(), ["A"], END, START)
+    with pytest.warns(InputWarning, match="weighbridge.csv line 3: ticket: ticket '7' repeats line 2; it will be counted once"):
+        mv = moves(wb)
+    r = book_stock(mv, None, T("2026-10-15T12:00Z"), scales(), piles("A"), END, START)
     assert r.piles["receipts_t"].iloc[0] == pytest.approx(30.0)   # not 60
     d = r.duplicates
     assert list(d["kind"]) == ["exact"] and d["reference"].iloc[0] == "7"
@@ -212,7 +244,7 @@ def test_suspected_duplicate_is_counted_and_listed_only_inside_the_window():
         ("13", "2026-10-05T10:07Z", "in", "A", 45.0, 15.0, "Y"),   # another truck
         ("14", "2026-10-05T10:08Z", "in", "A", 45.2, 15.0, "X"),   # other gross
     ])
-    r = book_stock(moves(wb), {}, T("2026-10-15T12:00Z"), scales(), ["A"], END, START, duplicate_window_min=10)
+    r = book_stock(moves(wb), None, T("2026-10-15T12:00Z"), scales(), piles("A"), END, START, duplicate_window_min=10)
     assert r.piles["receipts_t"].iloc[0] == pytest.approx(4 * 30.0 + 30.2)  # all counted
     d = r.duplicates
     assert d[["reference", "kind"]].values.tolist() == [["11", "suspected"]]
@@ -228,7 +260,7 @@ def test_belt_interval_split_across_routing_change_and_survey():
     belts = intervals([("B1", "2026-10-10T10:00Z", "2026-10-10T12:00Z", 120.0)], ["scale_id", "start", "end", "tonnes"])
     routing = intervals([("B1", "A", "2026-10-01T00:00Z", "2026-10-10T11:30Z"),
                          ("B1", "B", "2026-10-10T11:30Z", "2026-11-01T00:00Z")], ["scale_id", "pile_id", "start", "end"])
-    r = book_stock(moves(belts=belts, routing=routing), {}, T("2026-10-10T11:00Z"), scales(), ["A", "B"], END, START)
+    r = book_stock(moves(belts=belts, routing=routing), None, T("2026-10-10T11:00Z"), scales(), piles("A", "B"), END, START)
     s = r.belt_split
     assert s[["pile_id", "share", "tonnes", "before_survey"]].values.tolist() == [
         ["A", 0.5, 60.0, True], ["A", 0.25, 30.0, False], ["B", 0.25, 30.0, False]]
@@ -244,7 +276,7 @@ def test_reclaim_belt_dispatches_and_unrouted_tonnes_are_named():
     belts = intervals([("R1", "2026-10-10T10:00Z", "2026-10-10T12:00Z", 80.0)], ["scale_id", "start", "end", "tonnes"])
     routing = intervals([("R1", "A", "2026-10-10T09:00Z", "2026-10-10T11:00Z")], ["scale_id", "pile_id", "start", "end"])
     with pytest.warns(InputWarning, match="belt_scales.csv line 2: 40.000 t of belt R1"):
-        r = book_stock(moves(belts=belts, routing=routing), {"A": 500.0}, T("2026-10-15T00:00Z"), scales(), ["A"], END, START)
+        r = book_stock(moves(belts=belts, routing=routing), balances({"A": 500.0}), T("2026-10-15T00:00Z"), scales(), piles("A"), END, START)
     assert r.piles["dispatches_t"].iloc[0] == pytest.approx(40.0)
     assert r.piles["book_t"].iloc[0] == pytest.approx(460.0)
     unrouted = r.belt_split[r.belt_split["pile_id"].isna()]
@@ -267,7 +299,7 @@ def test_book_sigma_linear_within_scale_quadrature_across_scales():
     ])
     belts = intervals([("B1", "2026-10-10T10:00Z", "2026-10-10T11:00Z", 60.0)], ["scale_id", "start", "end", "tonnes"])
     routing = intervals([("B1", "A", "2026-10-01T00:00Z", "2026-11-01T00:00Z")], ["scale_id", "pile_id", "start", "end"])
-    r = book_stock(moves(wb, belts, routing), {"A": 1000.0}, T("2026-10-15T00:00Z"), scales(), ["A"], END, START)
+    r = book_stock(moves(wb, belts, routing), balances({"A": 1000.0}), T("2026-10-15T00:00Z"), scales(), piles("A"), END, START)
     load = r.scale_load.set_index("scale_id")
     assert load.loc["WB1", "mpe_bound_t"] == pytest.approx(0.18)
     assert load.loc["WB1", "weighed_t"] == pytest.approx(50.0)
@@ -282,7 +314,7 @@ def test_opening_sigma_adds_in_quadrature():
                       ["scale_id", "start", "end", "tonnes"])
     routing = intervals([("B1", "A", "2026-10-01T00:00Z", "2026-11-01T00:00Z")], ["scale_id", "pile_id", "start", "end"])
     # belt bound 1 % x 692.82 t = 6.9282 t -> sigma 4.0 t; with opening 3.0 t: 5.0 t
-    r = book_stock(moves(belts=belts, routing=routing), opening, T("2026-10-15T00:00Z"), scales(), ["A"], END, START)
+    r = book_stock(moves(belts=belts, routing=routing), opening, T("2026-10-15T00:00Z"), scales(), piles("A"), END, START)
     assert r.piles["book_sigma_t"].iloc[0] == pytest.approx(5.0, rel=1e-9)
 
 
@@ -291,7 +323,7 @@ def test_belt_interval_spanning_the_period_end_is_cut_there():
     # 30 t roll the survey figure forward, 30 t belong to November (not counted).
     belts = intervals([("B1", "2026-10-31T22:30Z", "2026-10-31T23:30Z", 60.0)], ["scale_id", "start", "end", "tonnes"])
     routing = intervals([("B1", "A", "2026-10-01T00:00Z", "2026-11-02T00:00Z")], ["scale_id", "pile_id", "start", "end"])
-    r = book_stock(moves(belts=belts, routing=routing), {"A": 100.0}, T("2026-10-31T12:00Z"), scales(), ["A"], END, START)
+    r = book_stock(moves(belts=belts, routing=routing), balances({"A": 100.0}), T("2026-10-31T12:00Z"), scales(), piles("A"), END, START)
     a = r.piles.iloc[0]
     assert a.book_t == pytest.approx(100.0) and a.after_survey_net_t == pytest.approx(30.0)
     m = r.movements

@@ -4,13 +4,13 @@ per-material totals, measured change vs net movement, scale-bias fit, journal.""
 from __future__ import annotations
 
 import math
-from types import SimpleNamespace as NS
 
 import pandas as pd
 import pytest
 
+from inventory.errors import InputErrors
+from inventory.site.load import Material, Movements, ReconcileConfig, Scale
 from inventory.stock.book import book_stock, opening_from_close
-from inventory.errors import InputWarning
 from inventory.stock.reconcile import REASON_CODES, SIGN_CONVENTION, ReconcileSettings, reconcile
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
 
@@ -19,13 +19,24 @@ SQRT3 = math.sqrt(3.0)
 START, END = T("2026-09-30T22:00Z"), T("2026-10-31T23:00Z")
 AT = T("2026-10-31T12:00Z")
 SCALES = {
-    "B1": NS(id="B1", kind="belt", direction="in", accuracy_class="1", scale_interval_kg=None, in_service=True),
-    "R1": NS(id="R1", kind="belt", direction="out", accuracy_class="1", scale_interval_kg=None, in_service=True),
+    "B1": Scale(id="B1", kind="belt", direction="in", accuracy_class="1"),
+    "R1": Scale(id="R1", kind="belt", direction="out", accuracy_class="1"),
 }
-MATERIALS = {
-    "coal": NS(name="coal", tolerance_pct=3.0, density_sd_t_m3=0.05),
-    "ore": NS(name="ore", tolerance_pct=None, density_sd_t_m3=0.1),
-}
+
+
+def material(name: str, density_sd_t_m3: float, tolerance_pct: float | None) -> Material:
+    # bulk density and moisture play no part in reconcile
+    return Material(name, bulk_density_t_m3=1.0, density_sd_t_m3=density_sd_t_m3, moisture_pct=0.0,
+                    tolerance_pct=tolerance_pct)
+
+
+MATERIALS = {"coal": material("coal", 0.05, 3.0), "ore": material("ore", 0.1, None)}
+
+
+def belt_moves(pile_ids, belts: list[dict] | None = None, routes: list[dict] | None = None) -> Movements:
+    return Movements.checked("2026-10", belt_scales=pd.DataFrame(belts) if belts else None,
+                             routing=pd.DataFrame(routes) if routes else None, scales=SCALES, pile_ids=pile_ids,
+                             materials=MATERIALS)
 
 
 def book_from(opening: dict, belt_t: dict | None = None, sigma: dict | None = None, materials: dict | None = None,
@@ -43,7 +54,7 @@ def book_from(opening: dict, belt_t: dict | None = None, sigma: dict | None = No
         rows.append({"scale_id": scale, "start": start, "end": start + pd.Timedelta(hours=1), "tonnes": t})
         routes.append({"scale_id": scale, "pile_id": p, "start": start, "end": start + pd.Timedelta(hours=1)})
         day += pd.Timedelta(days=1)
-    mv = NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)) if rows else NS()
+    mv = belt_moves(piles, rows, routes)
     pile_tab = pd.DataFrame({"pile_id": piles, "material": [(materials or {}).get(p, "coal") for p in piles]})
     return book_stock(mv, op, AT, SCALES, pile_tab, END, START)
 
@@ -82,10 +93,10 @@ def test_variance_significance_tolerance_flags_and_reasons():
 
 def test_default_tolerance_applies_to_materials_without_one():
     book = book_from({"X": 1000.0}, materials={"X": "ore"})
-    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, {"default_tolerance_pct": 2.0})
+    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, ReconcileSettings(default_tolerance_pct=2.0))
     x = r.piles.iloc[0]
     assert x.tolerance_pct == 2.0 and x.out_of_tolerance          # 25 t > 2 % of 1000 t
-    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, {"default_tolerance_pct": 3.0})
+    r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, ReconcileConfig(default_tolerance_pct=3.0))
     assert not r.piles.iloc[0].out_of_tolerance
 
 
@@ -93,7 +104,7 @@ def test_adjustment_closing_and_journal_to_survey_and_to_midpoint():
     # survey 11:00... after the survey the belt delivers 50 t: closing = adopted + 50
     book = book_from({"A": 1000.0, "B": 400.0}, after={"A": 50.0})
     sv = survey_of({"A": 1040.0})                                  # B not surveyed
-    r = reconcile(sv, book, MATERIALS, {"adjust_to": "survey"})
+    r = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="survey"))
     p = r.piles.set_index("pile_id")
     assert p.loc["A", "after_survey_net_t"] == pytest.approx(50.0)
     assert p.loc["A", "adjustment_t"] == pytest.approx(40.0)
@@ -104,11 +115,11 @@ def test_adjustment_closing_and_journal_to_survey_and_to_midpoint():
     assert r.journal[["pile_id", "adjustment_t"]].values.tolist() == [["A", 40.0]]
     assert r.journal["reason_code"].isin(REASON_CODES).all()
     assert "positive increases" in SIGN_CONVENTION
-    mid = reconcile(sv, book, MATERIALS, {"adjust_to": "midpoint"}).piles.set_index("pile_id")
+    mid = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="midpoint")).piles.set_index("pile_id")
     assert mid.loc["A", "adjustment_t"] == pytest.approx(20.0)
     assert mid.loc["A", "closing_t"] == pytest.approx(1070.0)
     with pytest.raises(ValueError, match="adjust_to"):
-        reconcile(sv, book, MATERIALS, {"adjust_to": "book"})
+        reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="book"))
 
 
 def test_per_material_totals_handle_correlated_errors():
@@ -328,14 +339,14 @@ def test_density_error_shared_with_an_adopted_opening_is_not_counted_twice():
     # Book: opening 1000 t + 100 t on B1 (class 1 in service: bound 1 t, sigma 1/sqrt3).
     # Variance sigma = sqrt(30^2 + (30^2 + 1/3) + (44 - 40)^2) = sqrt(1816.33) = 42.62 t
     # (independent treatment would give sqrt(2836 + 2500.33) = 73.05 t).
-    mats = {"coal": NS(tolerance_pct=3.0, density_sd_t_m3=0.04)}
+    mats = {"coal": material("coal", 0.04, 3.0)}
     adopted = pd.DataFrame({"pile_id": ["A"], "material": ["coal"], "closing_t": [1000.0], "survey_t": [1000.0],
                             "survey_sigma_t": [50.0], "book_sigma_t": [9.0], "volume_m3": [1000.0]})
     opening = opening_from_close(adopted, mats, "survey")
     assert opening[["tonnes", "sigma_t", "density_sigma_t"]].values.tolist() == [[1000.0, 50.0, 40.0]]
     rows = [{"scale_id": "B1", "start": T("2026-10-02T00:00Z"), "end": T("2026-10-02T01:00Z"), "tonnes": 100.0}]
     routes = [{"scale_id": "B1", "pile_id": "A", "start": T("2026-10-01T00:00Z"), "end": T("2026-11-01T00:00Z")}]
-    book = book_stock(NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)), opening, AT, SCALES,
+    book = book_stock(belt_moves(["A"], rows, routes), opening, AT, SCALES,
                       pd.DataFrame({"pile_id": ["A"], "material": ["coal"]}), END, START)
     sv = survey_of({"A": 1100.0}, math.sqrt(900 + 44.0 ** 2), volume_m3={"A": 1100.0})
     r = reconcile(sv, book, mats)
@@ -352,7 +363,7 @@ def test_floor_base_error_shared_with_an_adopted_opening_cancels():
     # 21 t (material over slightly more of the floor), rest 30 t. Book adds 100 t on B1
     # (sigma 1/sqrt3). Variance sigma = sqrt(30^2 + 22.36^2 + 1/3 + (44-40)^2 + (21-20)^2).
     # A toe base is fitted anew each survey: nothing shared, 21 t enters twice in quadrature.
-    mats = {"coal": NS(tolerance_pct=3.0, density_sd_t_m3=0.04)}
+    mats = {"coal": material("coal", 0.04, 3.0)}
     rest_prev = math.sqrt(50.0 ** 2 - 40.0 ** 2 - 20.0 ** 2)
     adopted = pd.DataFrame({"pile_id": ["A"], "material": ["coal"], "closing_t": [1000.0], "survey_t": [1000.0],
                             "survey_sigma_t": [50.0], "base_sigma_t": [20.0], "book_sigma_t": [9.0],
@@ -361,7 +372,7 @@ def test_floor_base_error_shared_with_an_adopted_opening_cancels():
     assert opening[["sigma_t", "density_sigma_t", "base_sigma_t"]].values.tolist() == [[50.0, 40.0, 20.0]]
     rows = [{"scale_id": "B1", "start": T("2026-10-02T00:00Z"), "end": T("2026-10-02T01:00Z"), "tonnes": 100.0}]
     routes = [{"scale_id": "B1", "pile_id": "A", "start": T("2026-10-01T00:00Z"), "end": T("2026-11-01T00:00Z")}]
-    book = book_stock(NS(belt_scales=pd.DataFrame(rows), routing=pd.DataFrame(routes)), opening, AT, SCALES,
+    book = book_stock(belt_moves(["A"], rows, routes), opening, AT, SCALES,
                       pd.DataFrame({"pile_id": ["A"], "material": ["coal"]}), END, START)
     assert book.piles.iloc[0].opening_base_sigma_t == 20.0
     sigma_now = math.sqrt(30.0 ** 2 + 44.0 ** 2 + 21.0 ** 2)
@@ -377,10 +388,15 @@ def test_floor_base_error_shared_with_an_adopted_opening_cancels():
     assert toe.piles.iloc[0].base_sigma_t == 0.0
 
 
-def test_missing_ledger_opening_opens_empty_with_a_warning():
-    with pytest.warns(InputWarning, match="pile.s. B: taken as 0 t"):
-        book = book_stock(NS(), {"A": 10.0, "B": float("nan")}, AT, SCALES, ["A", "B"], END, START)
-    assert book.piles.set_index("pile_id")["opening_t"].to_dict() == {"A": 10.0, "B": 0.0}
+def test_ledger_opening_without_a_closing_is_refused_naming_the_pile():
+    # The ledger keeps no closing for a pile it could not close; opening_from_close carries
+    # that as a missing tonnage and book stock refuses it rather than open the pile at 0 t.
+    adopted = pd.DataFrame({"pile_id": ["A", "B"], "material": ["coal", "coal"], "closing_t": [10.0, None]})
+    opening = opening_from_close(adopted, MATERIALS, "survey")
+    piles = pd.DataFrame({"pile_id": ["A", "B"], "material": ["coal", "coal"]})
+    with pytest.raises(InputErrors) as err:
+        book_stock(belt_moves(["A", "B"]), opening, AT, SCALES, piles, END, START)
+    assert [str(p) for p in err.value.problems] == ["opening balances line 3: tonnes: value is missing"]
 
 
 def test_totals_agree_and_row_order_does_not_matter():

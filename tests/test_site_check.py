@@ -96,7 +96,8 @@ def test_tare_above_gross(good_site):
 def test_net_not_gross_minus_tare(good_site):
     edit(good_site / "movements/2026-10/weighbridge.csv", "40.0,15.0,25.0", "40.0,15.0,25.5")
     msgs = errors_of(good_site)
-    assert "site/movements/2026-10/weighbridge.csv line 2: net_t: net 25.5 t is not gross 40 - tare 15 = 25.000 t" in msgs
+    assert ("site/movements/2026-10/weighbridge.csv line 2: net_t: net 25.5 t is not gross 40 - tare 15 = 25.000 t "
+            "(off by 0.5 t; rounding explains at most 0.01 t)") in msgs
 
 
 def test_net_within_rounding_is_accepted(good_site):
@@ -159,7 +160,9 @@ def test_overlapping_routing_windows(good_site):
         "B1,A,2026-10-01T00:00:00+02:00,2026-10-15T00:00:00+02:00\n"
         "B1,B,2026-10-14T00:00:00+02:00,2026-11-01T00:00:00+01:00\n"
     )
-    assert "site/movements/2026-10/routing.csv line 3: start: scale B1 window overlaps line 2 (a belt feeds one pile at a time)" in errors_of(good_site)
+    assert ("site/movements/2026-10/routing.csv line 3: start: window of belt 'B1' overlaps line 2: it starts at "
+            "2026-10-13T22:00:00+00:00, before that window ends at 2026-10-14T22:00:00+00:00 "
+            "(a belt feeds one pile at a time)") in errors_of(good_site)
 
 
 def test_transfer_to_itself(good_site):

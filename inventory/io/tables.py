@@ -29,11 +29,6 @@ from inventory.errors import Problem
 
 __all__ = ["TableSchema", "read_table", "table_schema", "parse_time"]
 
-#: How far a printed net weight may differ from gross - tare before it is an error:
-#: one hundredth of a tonne, the usual print resolution of weighbridge tickets (common practice).
-NET_ROUNDING_T = 0.0105
-
-
 @dataclass(frozen=True)
 class TableSchema:
     """One table's schema: its fields in order and the primary key."""

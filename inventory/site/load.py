@@ -21,6 +21,7 @@ from __future__ import annotations
 import json
 import re
 import warnings
+from collections.abc import Collection, Mapping
 from dataclasses import dataclass, field
 from datetime import date, datetime, time, timezone
 from functools import lru_cache
@@ -34,8 +35,9 @@ import pandas as pd
 import tomllib
 
 from inventory.errors import InputErrors, InputWarning, Problem
-from inventory.io.tables import NET_ROUNDING_T, read_table, table_schema
+from inventory.io.tables import read_table, table_schema
 from inventory.model.period import Period
+from inventory.site.rules import MOVEMENT_TABLES, check_movements, check_opening
 
 __all__ = [
     "Site",
@@ -141,13 +143,58 @@ class SurveyRef:
 
 @dataclass
 class Movements:
-    """One period's movement records, checked, with times in UTC."""
+    """One period's movement records, checked by :mod:`inventory.site.rules`.
+
+    The tables are as the rules return them: times in UTC, ``net_t`` computed from gross and
+    tare, every ticket's ``scale_id`` resolved, ``line`` and ``source`` on every row. Book stock
+    trusts them. The site loader builds them; build your own with :meth:`checked`, which runs
+    the same rules.
+    """
 
     period: str
     weighbridge: pd.DataFrame
     belt_scales: pd.DataFrame
     routing: pd.DataFrame
     transfers: pd.DataFrame
+
+    @classmethod
+    def checked(
+        cls,
+        period: str,
+        weighbridge: pd.DataFrame | None = None,
+        belt_scales: pd.DataFrame | None = None,
+        routing: pd.DataFrame | None = None,
+        transfers: pd.DataFrame | None = None,
+        *,
+        scales: Mapping[str, Scale],
+        pile_ids: Collection[str],
+        materials: Collection[str],
+    ) -> Movements:
+        """Movements from hand-built tables, checked by the rules the site loader applies.
+
+        Tables left out have no records. Rows without ``source`` / ``line`` columns are named
+        ``<table>.csv`` line 2, 3, ... in messages.
+
+        Raises
+        ------
+        InputErrors
+            Listing every problem, when any row breaks a rule. Warnings (a ticket entered
+            twice with the same content) are issued as :class:`~inventory.errors.InputWarning`.
+        """
+        frames, problems = check_movements(
+            weighbridge, belt_scales, routing, transfers, scales=scales, pile_ids=pile_ids, materials=materials,
+        )
+        if any(p.severity == "error" for p in problems):
+            raise InputErrors(problems)
+        for problem in problems:
+            warnings.warn(str(problem), InputWarning, stacklevel=2)
+        return cls(period, **frames)
+
+    @classmethod
+    def empty(cls, period: str) -> Movements:
+        """A period without records."""
+        frames, _ = check_movements(scales={}, pile_ids=None, materials=None)
+        return cls(period, **frames)
 
     @property
     def record_count(self) -> int:
@@ -185,7 +232,7 @@ class Site:
         """The period's records; empty tables when the period has none."""
         if period in self.movements:
             return self.movements[period]
-        return _empty_movements(period)
+        return Movements.empty(period)
 
     def summary(self) -> str:
         """A few lines for ``inventory check``."""
@@ -296,14 +343,6 @@ def _site_schema() -> dict:
     return json.loads(text)
 
 
-def _empty_movements(period: str) -> Movements:
-    def empty(name: str) -> pd.DataFrame:
-        cols = table_schema(name).names + ["line", "source"]
-        return pd.DataFrame({c: pd.Series(dtype=object) for c in cols})
-
-    return Movements(period, empty("weighbridge"), empty("belt_scales"), empty("routing"), empty("transfers"))
-
-
 class _Loader:
     """Collects problems while reading one site folder; see :func:`check_site`."""
 
@@ -345,7 +384,7 @@ class _Loader:
         piles = self._piles(materials)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
-        movements = self._all_movements(pile_ids, set(materials), scales, tz)
+        movements = self._all_movements(pile_ids, set(materials), scales)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
@@ -611,14 +650,12 @@ class _Loader:
         path = self.root / "opening.csv"
         if not path.is_file():
             return None
-        frame = self.table(path, "opening")
-        for row in frame.itertuples():
-            if pile_ids and row.pile_id not in pile_ids:
-                self.error(path, row.line, "pile_id", f"unknown pile {row.pile_id!r} (not in piles.gpkg)")
+        frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
+        self.problems += problems
         return frame
 
     # -- movements
-    def _all_movements(self, pile_ids, material_names, scales, tz) -> dict[str, Movements]:
+    def _all_movements(self, pile_ids: set[str], material_names: set[str], scales: dict[str, Scale]) -> dict[str, Movements]:
         folder = self.root / "movements"
         out: dict[str, Movements] = {}
         if not folder.is_dir():
@@ -632,102 +669,20 @@ class _Loader:
             out[sub.name] = self._movements(sub, pile_ids, material_names, scales)
         return out
 
-    def _movements(self, folder: Path, piles, materials, scales) -> Movements:
-        period = folder.name
-        mv = _empty_movements(period)
-        names = {"weighbridge": "weighbridge", "belt_scales": "belt_scales", "routing": "routing", "transfers": "transfers"}
-        for attr, name in names.items():
+    def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale]) -> Movements:
+        tables: dict[str, pd.DataFrame | None] = {}
+        for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
-            if path.is_file():
-                setattr(mv, attr, self.table(path, name))
+            tables[name] = self.table(path, name) if path.is_file() else None
         for extra in sorted(folder.glob("*.csv")):
-            if extra.stem not in names:
+            if extra.stem not in MOVEMENT_TABLES:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
-        self._check_weighbridge(folder / "weighbridge.csv", mv.weighbridge, piles, materials, scales)
-        self._check_belts(folder / "belt_scales.csv", mv.belt_scales, scales)
-        self._check_routing(folder / "routing.csv", mv.routing, piles, scales)
-        self._check_transfers(folder / "transfers.csv", mv.transfers, piles)
-        return mv
-
-    def _pile_ok(self, path, line, fieldname, pid, piles) -> None:
-        if piles and pid not in piles:
-            self.error(path, line, fieldname, f"unknown pile {pid!r} (not in piles.gpkg)")
-
-    def _check_weighbridge(self, path: Path, wb: pd.DataFrame, piles, materials, scales) -> None:
-        if wb.empty:
-            return
-        bridges = [s.id for s in scales.values() if s.kind == "weighbridge"]
-        net = []
-        scale_ids = []
-        first: dict[str, tuple] = {}
-        for row in wb.itertuples():
-            self._pile_ok(path, row.line, "pile_id", row.pile_id, piles)
-            if materials and row.material not in materials:
-                self.error(path, row.line, "material", f"unknown material {row.material!r} (not in materials.csv)")
-            if row.tare_t > row.gross_t:
-                self.error(path, row.line, "tare_t", f"tare {row.tare_t:g} t is above gross {row.gross_t:g} t")
-            computed = row.gross_t - row.tare_t
-            if row.net_t is not None and not pd.isna(row.net_t) and abs(row.net_t - computed) > NET_ROUNDING_T:
-                self.error(
-                    path, row.line, "net_t",
-                    f"net {row.net_t:g} t is not gross {row.gross_t:g} - tare {row.tare_t:g} = {computed:.3f} t",
-                )
-            net.append(computed)
-            sid = row.scale_id if isinstance(row.scale_id, str) and row.scale_id else None
-            if sid is None:
-                if len(bridges) == 1:
-                    sid = bridges[0]
-                else:
-                    self.error(path, row.line, "scale_id", f"value is missing and the site has {len(bridges)} weighbridges")
-            elif sid not in scales or scales[sid].kind != "weighbridge":
-                self.error(path, row.line, "scale_id", f"unknown weighbridge {sid!r} (not in site.toml [[scales]])")
-            scale_ids.append(sid)
-            # A repeated ticket id with the same content is a double entry the books must list
-            # (the reconciler counts it once); with different content nobody can tell which is real.
-            key = (row.time, row.direction, row.pile_id, round(row.gross_t, 3), round(row.tare_t, 3))
-            if row.ticket in first:
-                line0, key0 = first[row.ticket]
-                if key0 != key:
-                    self.error(path, row.line, "ticket", f"ticket {row.ticket!r} repeats line {line0} with different content")
-                else:
-                    self.warn(path, row.line, "ticket", f"ticket {row.ticket!r} repeats line {line0}; it will be counted once")
-            else:
-                first[row.ticket] = (row.line, key)
-        wb["net_t"] = np.round(np.asarray(net, dtype=float), 6)
-        wb["scale_id"] = scale_ids
-
-    def _check_belts(self, path: Path, belts: pd.DataFrame, scales) -> None:
-        for row in belts.itertuples():
-            if row.scale_id not in scales or scales[row.scale_id].kind != "belt":
-                self.error(path, row.line, "scale_id", f"unknown belt scale {row.scale_id!r} (not in site.toml [[scales]])")
-            if row.end <= row.start:
-                self.error(path, row.line, "end", f"interval ends ({row.end.isoformat()}) before it starts ({row.start.isoformat()})")
-
-    def _check_routing(self, path: Path, routing: pd.DataFrame, piles, scales) -> None:
-        for row in routing.itertuples():
-            if row.scale_id not in scales or scales[row.scale_id].kind != "belt":
-                self.error(path, row.line, "scale_id", f"unknown belt scale {row.scale_id!r} (not in site.toml [[scales]])")
-            self._pile_ok(path, row.line, "pile_id", row.pile_id, piles)
-            if row.end <= row.start:
-                self.error(path, row.line, "end", f"window ends ({row.end.isoformat()}) before it starts ({row.start.isoformat()})")
-        for sid, group in routing.groupby("scale_id"):
-            group = group.sort_values("start")
-            prev = None
-            for row in group.itertuples():
-                if prev is not None and row.start < prev.end:
-                    self.error(
-                        path, row.line, "start",
-                        f"scale {sid} window overlaps line {prev.line} (a belt feeds one pile at a time)",
-                    )
-                if prev is None or row.end > prev.end:
-                    prev = row
-
-    def _check_transfers(self, path: Path, transfers: pd.DataFrame, piles) -> None:
-        for row in transfers.itertuples():
-            self._pile_ok(path, row.line, "from_pile", row.from_pile, piles)
-            self._pile_ok(path, row.line, "to_pile", row.to_pile, piles)
-            if row.from_pile == row.to_pile:
-                self.error(path, row.line, "to_pile", f"transfer from pile {row.from_pile!r} to itself")
+        # an empty register failed to load and is reported on its own: do not also name every row
+        frames, problems = check_movements(
+            **tables, scales=scales, pile_ids=piles or None, materials=materials or None, folder=self.rel(folder),
+        )
+        self.problems += problems
+        return Movements(folder.name, **frames)
 
     # -- surveys
     def _surveys(self, site_crs: str, config: SiteConfig, tz: ZoneInfo | None) -> dict[str, SurveyRef]:

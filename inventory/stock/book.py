@@ -15,13 +15,16 @@ from __future__ import annotations
 import warnings
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Any, Iterable, Mapping
+from collections.abc import Iterable, Mapping
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from inventory.errors import InputErrors, InputWarning, Problem
+from inventory.errors import InputErrors, InputWarning
 from inventory.model.results import MOVEMENT_COLUMNS
+from inventory.site.load import Material, Movements, Scale
+from inventory.site.rules import check_opening
 from inventory.stock.metrology import (
     RECTANGULAR_SIGMA_PER_BOUND,
     belt_mpe_fraction,
@@ -62,10 +65,6 @@ DUPLICATE_COLUMNS = ["reference", "kind", "detail", "pile_id", "tonnes", "counte
 SCALE_LOAD_COLUMNS = [
     "pile_id", "scale_id", "kind", "signed_t", "weighed_t", "mpe_bound_t", "sigma_t",
 ]
-
-#: Weighbridge net must equal gross - tare within this, tonnes: the printed net is rounded to
-#: the ticket's resolution (10 kg is the coarsest common weighbridge division; common practice).
-NET_ROUNDING_T = 0.01
 
 #: Two tickets "have the same weights" when gross and tare agree to this, tonnes (1 kg: finer
 #: than any weighbridge division, so only a reprint or a re-keyed ticket matches).
@@ -114,7 +113,9 @@ class BookResult:
 # ----------------------------------------------------------------------------- helpers
 
 
-def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: str = "survey") -> pd.DataFrame:
+def opening_from_close(
+    adopted: pd.DataFrame, materials: Mapping[str, Material] | None = None, adjust_to: str = "survey"
+) -> pd.DataFrame:
     """Opening balances (with their uncertainty) from the previous close's adopted pile table.
 
     The opening is the previous closing_t. When that closing was set from a survey, the
@@ -131,8 +132,8 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     adopted : DataFrame
         PILE_COLUMNS of the previous close (``pile_id``, ``closing_t``, ``survey_t``,
         ``survey_sigma_t``, ``book_sigma_t``, ``volume_m3``, ``material`` as available).
-    materials : mapping or DataFrame, optional
-        ``density_sd_t_m3`` per material.
+    materials : mapping of str to Material, optional
+        The site's materials (their ``density_sd_t_m3``).
     adjust_to : str
         The previous close's ``adjust_to``.
 
@@ -148,10 +149,7 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     s_sig, b_sig = col("survey_sigma_t").fillna(0.0), col("book_sigma_t").fillna(0.0)
     sd = pd.Series(np.nan, index=a.index)
     if materials is not None and "material" in a:
-        if isinstance(materials, pd.DataFrame):
-            table = dict(zip(materials["material"].astype(str), materials["density_sd_t_m3"]))
-        else:
-            table = {str(k): _get(m, "density_sd_t_m3") for k, m in materials.items()}
+        table = {str(k): m.density_sd_t_m3 for k, m in materials.items()}
         sd = a["material"].astype(str).map(table).astype(float)
     dens = (col("volume_m3") * sd).fillna(0.0)
     sigma = np.where(surveyed, np.sqrt((f * s_sig) ** 2 + ((1 - f) * b_sig) ** 2), b_sig)
@@ -163,33 +161,11 @@ def opening_from_close(adopted: pd.DataFrame, materials: Any = None, adjust_to: 
     })
 
 
-def _utc_instant(value: Any, name: str) -> pd.Timestamp:
+def _utc_instant(value: datetime | pd.Timestamp, name: str) -> pd.Timestamp:
     ts = pd.Timestamp(value)
     if ts.tzinfo is None:
         raise ValueError(f"{name} {value!r} has no UTC offset; every instant must carry one")
     return ts.tz_convert("UTC")
-
-
-def _utc_column(df: pd.DataFrame, col: str, path: str, problems: list[Problem]) -> pd.Series:
-    """The column as tz-aware UTC timestamps; naive or unreadable values become problems."""
-    s = df[col]
-    if isinstance(s.dtype, pd.DatetimeTZDtype):
-        return s.dt.tz_convert("UTC")
-    out = []
-    for line, v in zip(df["line"], s):
-        try:
-            ts = pd.Timestamp(v)
-        except (ValueError, TypeError):
-            ts = pd.NaT
-        if ts is pd.NaT or pd.isna(ts):
-            problems.append(Problem(path, int(line), col, f"not a date-time: {v!r}"))
-            out.append(pd.NaT)
-        elif ts.tzinfo is None:
-            problems.append(Problem(path, int(line), col, f"{v} has no UTC offset"))
-            out.append(pd.NaT)
-        else:
-            out.append(ts.tz_convert("UTC"))
-    return pd.Series(pd.to_datetime(out, utc=True), index=df.index)
 
 
 def _ns(s: pd.Series | pd.Timestamp) -> np.ndarray | int:
@@ -208,171 +184,37 @@ def _from_ns(v: np.ndarray) -> pd.Series:
     return pd.Series(pd.to_datetime(np.asarray(v, dtype="int64"), unit="ns", utc=True))
 
 
-def _with_provenance(df: pd.DataFrame | None, default_source: str, columns: list[str]) -> pd.DataFrame:
-    if df is None:
-        df = pd.DataFrame(columns=columns)
-    df = df.copy()
-    if "source" not in df.columns:
-        df["source"] = default_source
-    if "line" not in df.columns:
-        # header = line 1, as the loader counts
-        df["line"] = np.arange(2, len(df) + 2)
-    df["source"] = df["source"].fillna(default_source).astype(str)
-    return df.reset_index(drop=True)
-
-
-def _get(obj: Any, name: str, default: Any = None) -> Any:
-    if isinstance(obj, Mapping):
-        return obj.get(name, default)
-    return getattr(obj, name, default)
-
-
-def _table(movements: Any, name: str) -> pd.DataFrame | None:
-    t = _get(movements, name)
-    return None if t is None else pd.DataFrame(t)
-
-
-def _pile_table(piles: Any) -> pd.DataFrame:
-    if isinstance(piles, pd.DataFrame):
-        out = pd.DataFrame({"pile_id": piles["pile_id"].astype(str)})
-        out["material"] = piles["material"].astype(object).values if "material" in piles else None
-    else:
-        out = pd.DataFrame({"pile_id": [str(p) for p in piles]})
-        out["material"] = None
+def _pile_table(piles: pd.DataFrame) -> pd.DataFrame:
+    out = pd.DataFrame({"pile_id": piles["pile_id"].astype(str), "material": piles["material"].astype(object).values})
     return out.drop_duplicates("pile_id").sort_values("pile_id").reset_index(drop=True)
 
 
-def _opening_table(opening: Any, known: set[str], problems: list[Problem]) -> pd.DataFrame:
-    """pile_id, tonnes, sigma_t, start (UTC or NaT) from a dict or a DataFrame."""
-    if opening is None:
-        return pd.DataFrame({"pile_id": [], "tonnes": [], "sigma_t": [], "density_sigma_t": [], "base_sigma_t": [],
-                             "start": []})
-    if isinstance(opening, Mapping):
-        df = pd.DataFrame({"pile_id": [str(k) for k in opening], "tonnes": [float(v) for v in opening.values()]})
-        missing = ~np.isfinite(df["tonnes"])
-        if missing.any():
-            # The ledger stores no closing for a pile it could not close; the pile opens
-            # empty, and the controller is told.
-            warnings.warn(
-                "no opening balance for pile(s) " + ", ".join(df.loc[missing, "pile_id"]) + ": taken as 0 t",
-                InputWarning, stacklevel=3,
-            )
-            df.loc[missing, "tonnes"] = 0.0
-    else:
-        df = pd.DataFrame(opening).copy()
-        if "tonnes" not in df.columns and "closing_t" in df.columns:
-            df = df.rename(columns={"closing_t": "tonnes"})
-    df = _with_provenance(df, "opening.csv", ["pile_id", "tonnes"])
-    df["pile_id"] = df["pile_id"].astype(str)
-    df["tonnes"] = pd.to_numeric(df["tonnes"], errors="coerce")
-    for c in ("sigma_t", "density_sigma_t", "base_sigma_t"):
-        df[c] = pd.to_numeric(df[c], errors="coerce").fillna(0.0) if c in df else 0.0
-    if "as_of" in df.columns:
-        df["start"] = _utc_column(df, "as_of", df["source"].iloc[0] if len(df) else "opening.csv", problems)
-    else:
-        df["start"] = pd.Series(pd.NaT, index=df.index, dtype="datetime64[ns, UTC]")
-    for r in df.itertuples():
-        if r.pile_id not in known:
-            problems.append(Problem(r.source, int(r.line), "pile_id", f"unknown pile {r.pile_id!r}"))
-        if not np.isfinite(r.tonnes):
-            problems.append(Problem(r.source, int(r.line), "tonnes", "opening tonnes missing or not a number"))
-    dup = df["pile_id"].duplicated(keep=False)
-    for r in df[dup].itertuples():
-        problems.append(Problem(r.source, int(r.line), "pile_id", f"pile {r.pile_id!r} has more than one opening balance"))
-    return df[["pile_id", "tonnes", "sigma_t", "density_sigma_t", "base_sigma_t", "start"]]
+def _opening_table(opening: pd.DataFrame | None, known: set[str]) -> pd.DataFrame:
+    """pile_id, tonnes, the sigmas and start (UTC or NaT), checked by the site's opening rule.
+
+    The opening is checked here, not trusted: it comes from opening.csv (checked when the site
+    was loaded) or from the ledger's previous close, which no loader has seen.
+    """
+    frame, problems = check_opening(opening, pile_ids=known, path="opening balances")
+    if any(p.severity == "error" for p in problems):
+        raise InputErrors(problems)
+    return frame.rename(columns={"as_of": "start"})[
+        ["pile_id", "tonnes", "sigma_t", "density_sigma_t", "base_sigma_t", "start"]
+    ]
 
 
-# ----------------------------------------------------------------------------- checks
-
-
-def _check_weighbridge(wb: pd.DataFrame, known: set[str], scales: Mapping[str, Any], problems: list[Problem]) -> pd.DataFrame:
-    src = wb["source"]
-    wb["time"] = _utc_column(wb, "time", src.iloc[0] if len(wb) else "weighbridge.csv", problems)
-    wb["ticket"] = wb["ticket"].astype(str)
-    wb["pile_id"] = wb["pile_id"].astype(str)
-    wb["direction"] = wb["direction"].astype(str).str.strip().str.lower()
-    for c in ("gross_t", "tare_t"):
-        wb[c] = pd.to_numeric(wb[c], errors="coerce")
-    computed = wb["gross_t"] - wb["tare_t"]
-    printed = pd.to_numeric(wb["net_t"], errors="coerce") if "net_t" in wb else pd.Series(np.nan, index=wb.index)
-    if "vehicle" not in wb:
-        wb["vehicle"] = None
-    bridges = sorted(k for k, s in scales.items() if _get(s, "kind") == "weighbridge")
-    if "scale_id" not in wb:
-        wb["scale_id"] = None
-    sid = wb["scale_id"].where(wb["scale_id"].notna() & (wb["scale_id"].astype(str) != ""), None)
-    if len(bridges) == 1:
-        sid = sid.fillna(bridges[0])
-    wb["scale_id"] = sid
-    for i, r in enumerate(wb.itertuples()):
-        where = (r.source, int(r.line))
-        if r.direction not in ("in", "out"):
-            problems.append(Problem(*where, "direction", f"{r.direction!r} is neither 'in' nor 'out'"))
-        if r.pile_id not in known:
-            problems.append(Problem(*where, "pile_id", f"unknown pile {r.pile_id!r}"))
-        if not (np.isfinite(r.gross_t) and np.isfinite(r.tare_t)) or r.gross_t <= 0 or r.tare_t <= 0:
-            problems.append(Problem(*where, "gross_t", "gross and tare must be positive numbers"))
-        elif r.tare_t > r.gross_t:
-            problems.append(Problem(*where, "tare_t", f"tare {r.tare_t:g} t is above gross {r.gross_t:g} t"))
-        elif np.isfinite(printed.iloc[i]) and abs(printed.iloc[i] - computed.iloc[i]) > NET_ROUNDING_T:
-            problems.append(Problem(*where, "net_t", f"net {printed.iloc[i]:g} t is not gross - tare = {computed.iloc[i]:.3f} t"))
-        if r.scale_id is None or pd.isna(r.scale_id):
-            problems.append(Problem(*where, "scale_id", f"missing, and the site has {len(bridges)} weighbridges"))
-        elif r.scale_id not in scales or _get(scales[r.scale_id], "kind") != "weighbridge":
-            problems.append(Problem(*where, "scale_id", f"unknown weighbridge {r.scale_id!r}"))
-    wb["net_t"] = computed
-    return wb
-
-
-def _check_intervals(df: pd.DataFrame, name: str, problems: list[Problem]) -> None:
-    path = df["source"].iloc[0] if len(df) else name
-    df["start"] = _utc_column(df, "start", path, problems)
-    df["end"] = _utc_column(df, "end", path, problems)
-    bad = df["end"] <= df["start"]
-    for r in df[bad].itertuples():
-        problems.append(Problem(r.source, int(r.line), "end", f"interval ends ({r.end}) at or before it starts ({r.start})"))
-
-
-def _check_belts(belts: pd.DataFrame, routing: pd.DataFrame, known: set[str], scales: Mapping[str, Any], problems: list[Problem]) -> None:
-    for df, name in ((belts, "belt_scales.csv"), (routing, "routing.csv")):
-        df["scale_id"] = df["scale_id"].astype(str)
-        _check_intervals(df, name, problems)
-        for r in df.itertuples():
-            s = scales.get(r.scale_id)
-            if s is None or _get(s, "kind") != "belt":
-                problems.append(Problem(r.source, int(r.line), "scale_id", f"unknown belt scale {r.scale_id!r}"))
-            elif _get(s, "direction") not in ("in", "out"):
-                problems.append(Problem(r.source, int(r.line), "scale_id", f"belt scale {r.scale_id!r} has no direction (in|out) in site.toml"))
-    belts["tonnes"] = pd.to_numeric(belts["tonnes"], errors="coerce")
-    for r in belts[~(belts["tonnes"] >= 0)].itertuples():
-        problems.append(Problem(r.source, int(r.line), "tonnes", "belt tonnes must be a number >= 0"))
-    routing["pile_id"] = routing["pile_id"].astype(str)
-    for r in routing[~routing["pile_id"].isin(known)].itertuples():
-        problems.append(Problem(r.source, int(r.line), "pile_id", f"unknown pile {r.pile_id!r}"))
-    # One belt feeds one pile at a time: overlapping windows of one scale are an error.
-    ordered = routing.dropna(subset=["start", "end"]).sort_values(["scale_id", "start", "end"])
-    prev_end = ordered.groupby("scale_id")["end"].shift()
-    prev_line = ordered.groupby("scale_id")["line"].shift()
-    for r, pe, pl in zip(ordered.itertuples(), prev_end, prev_line):
-        if pd.notna(pe) and r.start < pe:
-            problems.append(Problem(r.source, int(r.line), "start", f"routing window overlaps line {int(pl)} of belt {r.scale_id!r}"))
-
-
-def _check_transfers(tr: pd.DataFrame, known: set[str], problems: list[Problem]) -> None:
-    tr["time"] = _utc_column(tr, "time", tr["source"].iloc[0] if len(tr) else "transfers.csv", problems)
-    tr["from_pile"] = tr["from_pile"].astype(str)
-    tr["to_pile"] = tr["to_pile"].astype(str)
-    tr["tonnes"] = pd.to_numeric(tr["tonnes"], errors="coerce")
-    if "reference" not in tr:
-        tr["reference"] = None
-    for r in tr.itertuples():
-        for col in ("from_pile", "to_pile"):
-            if getattr(r, col) not in known:
-                problems.append(Problem(r.source, int(r.line), col, f"unknown pile {getattr(r, col)!r}"))
-        if r.from_pile == r.to_pile:
-            problems.append(Problem(r.source, int(r.line), "to_pile", "a transfer must move stock between two different piles"))
-        if not (r.tonnes > 0):
-            problems.append(Problem(r.source, int(r.line), "tonnes", "transfer tonnes must be a number > 0"))
+def _same_site(movements: Movements, scales: Mapping[str, Scale], known: set[str]) -> None:
+    """Refuse movements that were checked against another site's scales or piles."""
+    used_scales = set(movements.weighbridge["scale_id"].dropna()) | set(movements.belt_scales["scale_id"].dropna()) \
+        | set(movements.routing["scale_id"].dropna())
+    used_piles = (set(movements.weighbridge["pile_id"].dropna()) | set(movements.routing["pile_id"].dropna())
+                  | set(movements.transfers["from_pile"].dropna()) | set(movements.transfers["to_pile"].dropna()))
+    lost = sorted(used_scales - set(scales)) + sorted(used_piles - known)
+    if lost:
+        raise ValueError(
+            f"the movements of {movements.period} name scale(s) or pile(s) not given here ({', '.join(lost)}): "
+            "they were checked against another site"
+        )
 
 
 # ----------------------------------------------------------------------------- duplicates
@@ -496,11 +338,11 @@ def _split_belts(
 
 
 def book_stock(
-    movements: Any,
-    opening: Mapping[str, float] | pd.DataFrame | None,
+    movements: Movements,
+    opening: pd.DataFrame | None,
     at: datetime | pd.Timestamp,
-    scales: Mapping[str, Any],
-    piles: Iterable[str] | pd.DataFrame,
+    scales: Mapping[str, Scale],
+    piles: pd.DataFrame,
     period_end: datetime | pd.Timestamp,
     period_start: datetime | pd.Timestamp | None = None,
     duplicate_window_min: float = 10.0,
@@ -509,28 +351,25 @@ def book_stock(
 
     Parameters
     ----------
-    movements : Movements or mapping
-        Anything with ``weighbridge``, ``belt_scales``, ``routing`` and ``transfers``
-        DataFrames (columns per the site folder contract; missing tables = no records).
-        Times must be tz-aware (any offset). ``line`` and ``source`` columns are used in
-        messages when present.
-    opening : mapping or DataFrame or None
-        Opening book stock: ``{pile_id: tonnes}`` or a DataFrame with ``pile_id`` and
-        ``tonnes`` (or ``closing_t``, as the ledger stores it), optional ``as_of`` (the
-        instant the balance holds at; records at or before it are already in it),
-        ``sigma_t`` (its 1-sigma, added in quadrature) and ``density_sigma_t`` (the part of
-        that sigma due to the bulk density, when the opening is an adopted survey figure; it
-        is common with this survey's density error, see :func:`opening_from_close`) and
-        ``base_sigma_t`` (likewise the part due to a fixed base, common with this survey's
-        base error). Piles
-        without one open at 0 t; a NaN in a mapping is taken as 0 t with a warning.
+    movements : Movements
+        The records, checked by :mod:`inventory.site.rules` (as the site loader returns them,
+        or from :meth:`Movements.checked <inventory.site.load.Movements.checked>`); they are
+        not checked again here.
+    opening : DataFrame or None
+        Opening book stock: ``pile_id`` and ``tonnes``, optional ``as_of`` (the instant the
+        balance holds at; records at or before it are already in it), ``sigma_t`` (its
+        1-sigma, added in quadrature), ``density_sigma_t`` (the part of that sigma due to the
+        bulk density, when the opening is an adopted survey figure; it is common with this
+        survey's density error, see :func:`opening_from_close`) and ``base_sigma_t``
+        (likewise the part due to a fixed base, common with this survey's base error). Piles
+        without one open at 0 t. Checked by the site's opening rule
+        (:func:`inventory.site.rules.check_opening`).
     at : datetime
         Survey instant (tz-aware). Records at or before it are in the book at survey.
-    scales : mapping
-        ``{scale_id: Scale}`` with ``kind``, ``direction``, ``accuracy_class``,
-        ``scale_interval_kg``, ``in_service`` (attributes or keys).
-    piles : iterable of str or DataFrame
-        The site's pile ids (a DataFrame may also carry ``material``).
+    scales : mapping of str to Scale
+        The site's scales, those the movements were checked against.
+    piles : DataFrame
+        The site's piles: ``pile_id`` and ``material``.
     period_end : datetime
         End of the period (tz-aware); records after it belong to the next period.
     period_start : datetime, optional
@@ -547,27 +386,22 @@ def book_stock(
     Raises
     ------
     InputErrors
-        When a record is unusable (unknown pile or scale, tare above gross, net not
-        gross - tare, overlapping routing windows, a time without a UTC offset, ...).
+        When an opening balance breaks the opening rule (unknown pile, tonnes not a number,
+        a pile opened twice, a time without a UTC offset).
+    ValueError
+        When an instant has no UTC offset, or the movements name a scale or pile not given.
     """
     at_ts = _utc_instant(at, "survey instant")
     end_ts = _utc_instant(period_end, "period end")
     start_ts = None if period_start is None else _utc_instant(period_start, "period start")
     pile_tab = _pile_table(piles)
     known = set(pile_tab["pile_id"])
-    problems: list[Problem] = []
-
-    wb = _with_provenance(_table(movements, "weighbridge"), "weighbridge.csv",
-                          ["ticket", "time", "direction", "material", "pile_id", "gross_t", "tare_t"])
-    belts = _with_provenance(_table(movements, "belt_scales"), "belt_scales.csv", ["scale_id", "start", "end", "tonnes"])
-    routing = _with_provenance(_table(movements, "routing"), "routing.csv", ["scale_id", "pile_id", "start", "end"])
-    tr = _with_provenance(_table(movements, "transfers"), "transfers.csv", ["from_pile", "to_pile", "time", "tonnes"])
-    open_tab = _opening_table(opening, known, problems)
-    wb = _check_weighbridge(wb, known, scales, problems)
-    _check_belts(belts, routing, known, scales, problems)
-    _check_transfers(tr, known, problems)
-    if any(p.severity == "error" for p in problems):
-        raise InputErrors(problems)
+    _same_site(movements, scales, known)
+    open_tab = _opening_table(opening, known)
+    wb = movements.weighbridge.reset_index(drop=True)
+    belts = movements.belt_scales.reset_index(drop=True)
+    routing = movements.routing.reset_index(drop=True)
+    tr = movements.transfers.reset_index(drop=True)
 
     # Opening instant per pile: its own as_of, else the period start, else no lower bound.
     start_ns = {p: (_ns(start_ts) if start_ts is not None else None) for p in known}
@@ -632,7 +466,7 @@ def book_stock(
 
 
 def _weighbridge_movements(
-    wb: pd.DataFrame, pile_tab: pd.DataFrame, scales: Mapping[str, Any], window_min: float
+    wb: pd.DataFrame, pile_tab: pd.DataFrame, scales: Mapping[str, Scale], window_min: float
 ) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
     """One signed movement per ticket with its MPE bound; the duplicates table; messages."""
     messages: list[str] = []
@@ -647,7 +481,7 @@ def _weighbridge_movements(
     bound = np.zeros(len(wb))
     for sid, idx in wb.groupby("scale_id").groups.items():
         s = scales[sid]
-        cls, e, ins = _get(s, "accuracy_class"), _get(s, "scale_interval_kg"), bool(_get(s, "in_service", True))
+        cls, e, ins = s.accuracy_class, s.scale_interval_kg, s.in_service
         g = wb.loc[idx]
         # a net is the difference of two weighings: its bound is the sum of theirs
         bound[wb.index.get_indexer(idx)] = (
@@ -663,13 +497,13 @@ def _weighbridge_movements(
 
 
 def _belt_movements(
-    belts: pd.DataFrame, routing: pd.DataFrame, scales: Mapping[str, Any], cuts: list[int]
+    belts: pd.DataFrame, routing: pd.DataFrame, scales: Mapping[str, Scale], cuts: list[int]
 ) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
     """Belt pieces (see :func:`_split_belts`) as signed movements with their MPE bound."""
     pieces, messages = _split_belts(belts, routing, cuts)
-    sign = pieces["scale_id"].map(lambda s: 1.0 if _get(scales[s], "direction") == "in" else -1.0).astype(float)
+    sign = pieces["scale_id"].map(lambda s: 1.0 if scales[s].direction == "in" else -1.0).astype(float)
     frac = pieces["scale_id"].map(
-        lambda s: belt_mpe_fraction(_get(scales[s], "accuracy_class"), bool(_get(scales[s], "in_service", True)))
+        lambda s: belt_mpe_fraction(scales[s].accuracy_class, scales[s].in_service)
     ).astype(float)
     pieces["interval"] = [f"{_from_ns([a])[0].isoformat()}/{_from_ns([b])[0].isoformat()}"
                           for a, b in zip(pieces["a"], pieces["b"])]
@@ -746,7 +580,7 @@ def _pile_balances(pile_tab: pd.DataFrame, open_tab: pd.DataFrame, mov: pd.DataF
     return out
 
 
-def _scale_load(mov: pd.DataFrame, scales: Mapping[str, Any]) -> pd.DataFrame:
+def _scale_load(mov: pd.DataFrame, scales: Mapping[str, Scale]) -> pd.DataFrame:
     m = mov[mov["counted"] & mov["before_survey"] & mov["scale_id"].notna()]
     if m.empty:
         return pd.DataFrame(columns=SCALE_LOAD_COLUMNS)
@@ -756,6 +590,6 @@ def _scale_load(mov: pd.DataFrame, scales: Mapping[str, Any]) -> pd.DataFrame:
         # one instrument's error is the same all month: its bounds add linearly
         "mpe_bound_t": g["bound"].sum(),
     }).reset_index()
-    out["kind"] = out["scale_id"].map(lambda s: _get(scales[s], "kind"))
+    out["kind"] = out["scale_id"].map(lambda s: scales[s].kind)
     out["sigma_t"] = out["mpe_bound_t"] * RECTANGULAR_SIGMA_PER_BOUND
     return out[SCALE_LOAD_COLUMNS]

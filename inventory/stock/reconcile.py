@@ -15,12 +15,14 @@ from __future__ import annotations
 
 import itertools
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from inventory.stock.metrology import belt_mpe_fraction
+from inventory.site.load import Material, ReconcileConfig, Scale
 from inventory.stock.book import BookResult
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
 from inventory.model.texts import REASON_CODES, SIGN_CONVENTION
@@ -121,22 +123,15 @@ class Reconciliation:
     reason_codes: dict = field(default_factory=lambda: dict(REASON_CODES))
 
 
-def _get(obj: Any, name: str, default: Any = None) -> Any:
-    if obj is None:
-        return default
-    if isinstance(obj, Mapping):
-        return obj.get(name, default)
-    return getattr(obj, name, default)
-
-
-def _settings(config: Any) -> ReconcileSettings:
-    if isinstance(config, ReconcileSettings):
-        return config
-    s = ReconcileSettings(
-        significance_k=float(_get(config, "significance_k", 2.0)),
-        default_tolerance_pct=float(_get(config, "default_tolerance_pct", 3.0)),
-        adjust_to=str(_get(config, "adjust_to", "survey")),
-    )
+def _settings(config: ReconcileSettings | ReconcileConfig | None) -> ReconcileSettings:
+    if config is None:
+        s = ReconcileSettings()
+    else:
+        s = ReconcileSettings(
+            significance_k=float(config.significance_k),
+            default_tolerance_pct=float(config.default_tolerance_pct),
+            adjust_to=str(config.adjust_to),
+        )
     if s.adjust_to not in ("survey", "midpoint"):
         raise ValueError(f"adjust_to must be 'survey' or 'midpoint', not {s.adjust_to!r}")
     if not s.significance_k > 0:
@@ -144,18 +139,11 @@ def _settings(config: Any) -> ReconcileSettings:
     return s
 
 
-def _material_info(materials: Any) -> dict[str, dict]:
-    """{material: {tolerance_pct, density_sd_t_m3}} from a dict of Material or a DataFrame."""
-    if materials is None:
-        return {}
-    if isinstance(materials, pd.DataFrame):
-        return {
-            str(r["material"]): {"tolerance_pct": r.get("tolerance_pct"), "density_sd_t_m3": r.get("density_sd_t_m3")}
-            for _, r in materials.iterrows()
-        }
+def _material_info(materials: Mapping[str, Material] | None) -> dict[str, dict]:
+    """{material: {tolerance_pct, density_sd_t_m3}} from the site's materials."""
     return {
-        str(k): {"tolerance_pct": _get(m, "tolerance_pct"), "density_sd_t_m3": _get(m, "density_sd_t_m3")}
-        for k, m in materials.items()
+        str(k): {"tolerance_pct": m.tolerance_pct, "density_sd_t_m3": m.density_sd_t_m3}
+        for k, m in (materials or {}).items()
     }
 
 
@@ -170,12 +158,12 @@ def _num(v: Any) -> float:
 def reconcile(
     survey: pd.DataFrame,
     book: BookResult,
-    materials: Any = None,
-    config: Any = None,
+    materials: Mapping[str, Material] | None = None,
+    config: ReconcileSettings | ReconcileConfig | None = None,
     previous: pd.DataFrame | None = None,
     history: pd.DataFrame | None = None,
     period: str = "",
-    scales: Mapping[str, Any] | None = None,
+    scales: Mapping[str, Scale] | None = None,
 ) -> Reconciliation:
     """Compare survey stock with book stock and propose the adjustment journal.
 
@@ -189,10 +177,10 @@ def reconcile(
         totals.
     book : BookResult
         From :func:`inventory.stock.book.book_stock` at the survey instant.
-    materials : mapping or DataFrame, optional
-        Per material ``tolerance_pct`` (None = site default) and ``density_sd_t_m3``.
-    config : ReconcileSettings or site ``ReconcileConfig`` or dict, optional
-        ``significance_k``, ``default_tolerance_pct``, ``adjust_to``.
+    materials : mapping of str to Material, optional
+        The site's materials: ``tolerance_pct`` (None = site default) and ``density_sd_t_m3``.
+    config : ReconcileSettings or the site's ReconcileConfig, optional
+        ``significance_k``, ``default_tolerance_pct``, ``adjust_to`` (defaults when None).
     previous : DataFrame, optional
         The previous survey: ``pile_id``, ``survey_t``, optional ``survey_sigma_t`` and
         ``after_survey_net_t`` (tonnes booked between that survey and this period's opening;
@@ -203,8 +191,8 @@ def reconcile(
         own (``history_bias_pct``).
     period : str
         Label of this month for ``bias_rows``.
-    scales : mapping, optional
-        ``{scale_id: Scale}``; needed to judge a bias against the scale's class MPE.
+    scales : mapping of str to Scale, optional
+        The site's scales; needed to judge a bias against the scale's class MPE.
 
     Returns
     -------
@@ -363,7 +351,7 @@ def _noise_sigma(p: pd.DataFrame, book: BookResult) -> pd.Series:
 
 
 def _scale_diagnostics(
-    p: pd.DataFrame, book: BookResult, scales: Mapping[str, Any] | None, history: pd.DataFrame | None,
+    p: pd.DataFrame, book: BookResult, scales: Mapping[str, Scale] | None, history: pd.DataFrame | None,
     k: float, period: str,
 ) -> tuple[pd.DataFrame, pd.Series, pd.DataFrame]:
     """Weighted least-squares belt-scale biases; fitted variance per pile; this month's rows.
@@ -406,7 +394,7 @@ def _scale_diagnostics(
         s_obj = (scales or {}).get(sid)
         if s_obj is not None:
             try:
-                mpe = belt_mpe_fraction(_get(s_obj, "accuracy_class"), bool(_get(s_obj, "in_service", True)))
+                mpe = belt_mpe_fraction(s_obj.accuracy_class, s_obj.in_service)
             except ValueError:
                 mpe = float("nan")
         m = month.scale(j, k, mpe)
