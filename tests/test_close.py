@@ -16,7 +16,6 @@ from pathlib import Path
 
 import pytest
 
-import _sample_chain
 from inventory.cli import main
 from inventory.close import STEPS, close_period
 from inventory.export.layers import read_piles_layer
@@ -43,38 +42,37 @@ def _tree(root: Path) -> dict[str, str]:
     return out
 
 
-def _cached_survey(site, date, out_dir=None, progress=None, **kw):
-    """The sample site's survey from the session's one run (tests/_sample_chain.py), its files
-    copied into ``out_dir`` as the real step would write them.
+@pytest.fixture(scope="module")
+def survey_cache(sample_chain):
+    """A stand-in for measure_survey: the sample site's survey from the session's one run
+    (``sample_chain``), its files copied into ``out_dir`` as the real step would write them.
 
     The survey step itself is checked in tests/test_survey.py; here it only has to be the
     same for every close, which also makes the closes of this module quick.
     """
-    res = _sample_chain.survey(date)
-    moved = {}
-    for name in ("classified_path", "surface_path", "coverage_path"):
-        src = getattr(res, name)
-        if src is not None and out_dir is not None:
-            dst = Path(out_dir) / Path(src).name
-            shutil.copy2(src, dst)
-            moved[name] = dst
-    return dataclasses.replace(res, **moved)
+    def cached_survey(site, date, out_dir=None, progress=None, **kw):
+        res = sample_chain.survey(date)
+        moved = {}
+        for name in ("classified_path", "surface_path", "coverage_path"):
+            src = getattr(res, name)
+            if src is not None and out_dir is not None:
+                dst = Path(out_dir) / Path(src).name
+                shutil.copy2(src, dst)
+                moved[name] = dst
+        return dataclasses.replace(res, **moved)
+
+    return cached_survey
 
 
 @pytest.fixture(scope="module")
-def survey_cache():
-    return _cached_survey
-
-
-@pytest.fixture(scope="module")
-def closed_site(tmp_path_factory, sample_site_path):
+def closed_site(tmp_path_factory, sample_site_path, survey_cache):
     """The sample site with 2026-09 and 2026-10 closed through the command line."""
     if not (sample_site_path / "site.toml").is_file():
         pytest.skip("sample_site/ has not been generated yet (inventory sample sample_site)")
     site = tmp_path_factory.mktemp("e2e") / "site"
     shutil.copytree(sample_site_path, site, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*"))
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr("inventory.survey.measure.measure_survey", _cached_survey)
+        mp.setattr("inventory.survey.measure.measure_survey", survey_cache)
         for period in ("2026-09", "2026-10"):
             assert main(["close", str(site), "--period", period, "--quiet"]) == 0
     return site

@@ -1,6 +1,6 @@
 """Reference checks against the open LiDAR samples of the laspy source distribution.
 
-Source of the data: the laspy sdist on PyPI, ``tests/data/`` (see tests/_laspy_samples.py).
+Source of the data: the laspy sdist on PyPI, ``tests/data/`` (the ``laspy_data`` fixture of tests/conftest.py).
 Facts about the files, from that source distribution itself: ``autzen_trim.laz`` has 110,000
 airborne points with the provider's classes 1 and 2, Oregon Lambert in international feet
 with a WKT record (the file's own header, VLRs and points); ``simple.copc.laz`` is a COPC file
@@ -17,7 +17,6 @@ import pytest
 from pyproj import CRS
 from scipy.interpolate import LinearNDInterpolator
 
-from _laspy_samples import laspy_data  # noqa: F401  (fixture)
 from inventory.io.crs import INTERNATIONAL_FOOT_M, vertical_unit_factor
 from inventory.io.clouds import open_cloud, read_cloud
 from inventory.survey.pipeline import Pipeline

@@ -9,7 +9,7 @@ September's adopted closing) and check that each fault shows where it should.
 Survey side: the real chain, as ``inventory close`` runs it - ``load_site`` ->
 ``measure_survey`` (read, place, classify, grid, fill) -> ``measure_piles`` (volume, its
 uncertainty, tonnes with the *table* density of materials.csv, which is how the density
-fault enters). The surveys are computed once per session by ``tests/_sample_chain.py``
+fault enters). The surveys are computed once per session by the ``sample_chain`` fixture (tests/conftest.py)
 (slow: a minute or two per survey), so every test here is marked slow.
 
 The volume sigma is the honest one of :mod:`inventory.volume.measure` (interpolation error from the
@@ -20,14 +20,14 @@ planted faults stand out of the survey's real noise.
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
-import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
 import numpy as np
 import pandas as pd
 import pytest
 
-SITE = chain.SAMPLE
-TRUTH = chain.TRUTH
+SITE = Path(__file__).resolve().parents[1] / "sample_site"
+TRUTH = SITE / "truth.json"
 
 pytestmark = pytest.mark.skipif(
     not TRUTH.is_file(), reason="sample_site/truth.json is missing: write the demo site first (inventory sample)"
@@ -43,18 +43,20 @@ Z95 = 1.959963984540054
 
 
 @pytest.fixture(scope="module")
-def truth() -> dict:
-    return chain.truth()
+def truth(sample_chain) -> dict:
+    return sample_chain.truth
 
 
 @pytest.fixture(scope="module")
-def site():
-    return chain.site()
+def site(sample_chain):
+    return sample_chain.site
 
 
-def _survey(k: int) -> pd.DataFrame:
-    """measure_piles table of survey k from the real chain (what close_period passes to reconcile)."""
-    return chain.volumes(DATES[k])
+@pytest.fixture(scope="module")
+def survey(sample_chain):
+    """``survey(k)``: measure_piles table of survey k from the real chain (what close_period
+    passes to reconcile)."""
+    return lambda k: sample_chain.volumes(DATES[k])
 
 
 def _close_both(site, survey) -> dict:
@@ -88,8 +90,8 @@ def _close_both(site, survey) -> dict:
 
 
 @pytest.fixture(scope="module")
-def closes(site):
-    return _close_both(site, _survey)
+def closes(site, survey):
+    return _close_both(site, survey)
 
 
 def _truth_survey(site, truth: dict, k: int) -> pd.DataFrame:
@@ -147,7 +149,7 @@ def test_duplicate_ticket_is_counted_once_and_listed(closes, truth):
 
 
 @slow
-def test_density_error_shows_on_its_pile_and_nowhere_else(closes, truth):
+def test_density_error_shows_on_its_pile_and_nowhere_else(closes, truth, survey):
     # September: opening.csv is true stock, so S1's variance is the density error plus the
     # survey's own volume error, which the survey states: -4 % within the pile's 95 %
     # volume interval (in percent of its volume).
@@ -155,7 +157,7 @@ def test_density_error_shows_on_its_pile_and_nowhere_else(closes, truth):
     pid = fault["pile_id"]
     _, rec = closes["2026-09"]
     p = rec.piles.set_index("pile_id")
-    vol = _survey(0).set_index("pile_id")
+    vol = survey(0).set_index("pile_id")
     tol_pct = Z95 * 100 * vol.loc[pid, "volume_sigma_m3"] / vol.loc[pid, "volume_m3"]
     assert tol_pct < fault["low_pct"] / 2  # the survey resolves the planted error
     assert p.loc[pid, "variance_pct"] == pytest.approx(-fault["low_pct"], abs=tol_pct)

@@ -13,7 +13,6 @@ import geopandas as gpd
 import pytest
 from shapely.geometry import Point, Polygon
 
-from _sitebuilder import write_cloud
 from inventory.cli import main
 from inventory.errors import InputErrors
 from inventory.site.load import check_site, load_site
@@ -278,27 +277,27 @@ def test_survey_folder_without_clouds(good_site):
     assert "site/surveys/2026-11-30: no point cloud file (.las, .laz, .copc.laz) in the survey folder" in errors_of(good_site)
 
 
-def test_cloud_crs_with_no_known_transform(good_site):
+def test_cloud_crs_with_no_known_transform(good_site, write_tiny_cloud):
     survey = good_site / "surveys/2026-10-31"
     local = 'LOCAL_CS["yard grid",LOCAL_DATUM["yard",32767],UNIT["metre",1],AXIS["Easting",EAST],AXIS["Northing",NORTH]]'
-    write_cloud(survey / "a.laz", crs=local)
+    write_tiny_cloud(survey / "a.laz", crs=local)
     msgs = errors_of(good_site)
     assert any(m.startswith("site/surveys/2026-10-31/a.laz: crs: CRS 'yard grid' differs from the site's") and "no transform is known" in m for m in msgs), msgs
 
 
-def test_cloud_without_crs_needs_a_default(good_site):
+def test_cloud_without_crs_needs_a_default(good_site, write_tiny_cloud):
     survey = good_site / "surveys/2026-10-31"
-    write_cloud(survey / "a.laz", crs=None)
+    write_tiny_cloud(survey / "a.laz", crs=None)
     msgs = errors_of(good_site)
     assert any(m.startswith("site/surveys/2026-10-31/a.laz: crs: the file carries no CRS") for m in msgs), msgs
     edit(good_site / "site.toml", "[grid]\n", '[survey]\ndefault_crs = "EPSG:25832"\n\n[grid]\n')
     assert errors_of(good_site) == []
 
 
-def test_cloud_in_another_known_crs_is_accepted(good_site):
+def test_cloud_in_another_known_crs_is_accepted(good_site, write_tiny_cloud):
     # EPSG:4647 is ETRS89 / UTM 32N with a zone prefix on eastings: same datum, known transform
     survey = good_site / "surveys/2026-10-31"
-    write_cloud(survey / "a.laz", crs="EPSG:3857")
+    write_tiny_cloud(survey / "a.laz", crs="EPSG:3857")
     assert errors_of(good_site) == []
 
 
@@ -369,25 +368,30 @@ def test_cli_check_ok_prints_summary(good_site, capsys):
 
 
 # --- moving-machine trajectories ------------------------------------------------------------
-def _machine_survey(site: Path, rows: str) -> Path:
-    survey = site / "surveys/2026-10-31"
-    write_cloud(survey / "boom.laz", crs=None)
-    (survey / "trajectory.csv").write_text("file,gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg\n" + rows)
-    return survey
+@pytest.fixture
+def machine_survey(good_site, write_tiny_cloud):
+    """``machine_survey(rows)``: the good site's survey with a cloud in a moving scanner's
+    frame (no CRS) and ``trajectory.csv`` of the given rows."""
+    def write(rows: str) -> Path:
+        survey = good_site / "surveys/2026-10-31"
+        write_tiny_cloud(survey / "boom.laz", crs=None)
+        (survey / "trajectory.csv").write_text("file,gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg\n" + rows)
+        return survey
+    return write
 
 
-def test_trajectory_times_must_increase(good_site):
-    _machine_survey(good_site, "boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,999.0,500001,5700000,20,0,0,0\n")
+def test_trajectory_times_must_increase(good_site, machine_survey):
+    machine_survey("boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,999.0,500001,5700000,20,0,0,0\n")
     msgs = errors_of(good_site)
     assert any(m.startswith("site/surveys/2026-10-31/trajectory.csv line 3: gps_time:") for m in msgs), msgs
 
 
-def test_trajectory_places_a_cloud_without_crs(good_site):
+def test_trajectory_places_a_cloud_without_crs(good_site, machine_survey):
     # a cloud in a scanner frame with no CRS is fine when trajectory.csv places it
-    _machine_survey(good_site, "boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,1010.0,500001,5700000,20,0,0,10\n")
+    machine_survey("boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,1010.0,500001,5700000,20,0,0,10\n")
     assert errors_of(good_site) == []
 
 
-def test_trajectory_names_a_missing_file(good_site):
-    _machine_survey(good_site, "gone.laz,1000.0,500000,5700000,20,0,0,0\ngone.laz,1010.0,500001,5700000,20,0,0,10\n")
+def test_trajectory_names_a_missing_file(good_site, machine_survey):
+    machine_survey("gone.laz,1000.0,500000,5700000,20,0,0,0\ngone.laz,1010.0,500001,5700000,20,0,0,10\n")
     assert "site/surveys/2026-10-31/trajectory.csv: file: no file 'gone.laz' in site/surveys/2026-10-31" in errors_of(good_site)

@@ -28,11 +28,10 @@ ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_site"
 TRUTH = SAMPLE / "truth.json"
 
-demo_sim = pytest.importorskip("inventory._demo.simulate", reason="demo simulator not available")
-demo_sc = pytest.importorskip("inventory._demo.scenario", reason="demo scenario not available")
-surface_mod = pytest.importorskip("inventory.survey.gridding", reason="inventory.survey.gridding not available")
-
-from inventory.errors import CoverageWarning  # noqa: E402
+import inventory._demo.scenario as demo_sc
+import inventory._demo.simulate as demo_sim
+import inventory.survey.gridding as surface_mod
+from inventory.errors import CoverageWarning
 from inventory.model.grid import Grid
 from inventory.volume.measure import BaseSurfaces, measure_piles
 
@@ -205,29 +204,26 @@ def test_simulated_surveys_sigma_is_useful():
 
 
 # ----------------------------------------------------------------------------- end to end
-def _sample_tables():
-    """Both sample surveys through the real chain (shared, cached: tests/_sample_chain.py)."""
-    pytest.importorskip("inventory.survey.measure", reason="inventory.survey.measure not available")
-    import _sample_chain as chain  # tests/ is on sys.path (tests/conftest.py)
-
+def _sample_tables(chain):
+    """Both sample surveys through the real chain (the session's ``sample_chain`` fixture)."""
     return [(sv["date"], chain.volumes(sv["date"]), {p: v["volume_m3"] for p, v in sv["piles"].items()})
-            for sv in chain.truth()["surveys"]]
+            for sv in chain.truth["surveys"]]
 
 
 @pytest.mark.slow
-def test_sample_site_interval_covers_truth():
+def test_sample_site_interval_covers_truth(sample_chain):
     _need_sample()
     hits = []
-    for _, table, truth in _sample_tables():
+    for _, table, truth in _sample_tables(sample_chain):
         hits += _covered(table, truth)
     assert np.mean(hits) >= COVERAGE_BAR, hits
 
 
 @pytest.mark.slow
-def test_sample_site_big_piles_within_one_percent():
+def test_sample_site_big_piles_within_one_percent(sample_chain):
     _need_sample()
     errors = {}
-    for date, table, truth in _sample_tables():
+    for date, table, truth in _sample_tables(sample_chain):
         for _, r in table.iterrows():
             if truth[r.pile_id] >= BIG_PILE_M3:
                 errors[f"{date} {r.pile_id}"] = r.volume_m3 / truth[r.pile_id] - 1
