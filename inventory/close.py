@@ -32,6 +32,7 @@ import pandas as pd
 
 from inventory._version import __version__
 from inventory.errors import InputError, PeriodLockedError, RunError
+from inventory.io.rasters import read_raster
 from inventory.model.grid import Surface
 from inventory.model.period import Period
 from inventory.model.results import MOVEMENT_COLUMNS, PILE_COLUMNS, CloseResult
@@ -115,22 +116,6 @@ def _previous_survey(site: Site, date: str, ledger: Any = None, period: str | No
             return str(prev["survey_date"].iloc[-1])
     earlier = [d for d in site.surveys if d[:7] < date[:7]]
     return max(earlier) if earlier else None
-
-
-def _read_surface_raster(path: Path, like: Surface) -> np.ndarray | None:
-    """A surface GeoTIFF written by an earlier close, on ``like``'s grid (None if it does not align)."""
-    import rasterio
-    from rasterio.warp import Resampling, reproject
-
-    with rasterio.open(path) as src:
-        data = src.read(1, masked=True).astype("float64").filled(np.nan)
-        out = np.full(like.grid.shape, np.nan)
-        reproject(
-            data, out, src_transform=src.transform, src_crs=src.crs, src_nodata=np.nan,
-            dst_transform=like.grid.transform, dst_crs=src.crs, dst_nodata=np.nan,
-            resampling=Resampling.nearest,
-        )
-    return out
 
 
 def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
@@ -309,7 +294,7 @@ def close_period(
             if prev_date is not None:
                 prev_tif = site.root / "closes" / prev_period / f"surface-{prev_date}.tif"
                 if prev_tif.is_file():
-                    prev_z = _read_surface_raster(prev_tif, surface)
+                    prev_z, _ = read_raster(prev_tif, onto=surface.grid, resampling="nearest")
                     change = surface.z - prev_z
             piles_table = _assemble_piles(vols, rec.piles)
             footprints = site.piles[["pile_id", "geometry"]].copy()
@@ -353,7 +338,7 @@ def close_period(
             say("writing outputs")
             from inventory.export.layers import write_layers
             from inventory.export.manifest import write_manifest
-            from inventory.export.rasters import write_raster
+            from inventory.export.rasters import write_change, write_thickness
             from inventory.export.report import write_report
             from inventory.export.workbook import write_workbook
 
@@ -366,10 +351,10 @@ def close_period(
             }
             write_workbook(result, tmp / names["workbook"])
             write_layers(result, tmp / names["layers"])
-            write_raster(thickness, surface.grid, tmp / names["thickness"], description=f"thickness above base {ref.date}")
+            write_thickness(result, tmp / names["thickness"])
             if change is not None:
                 names["change"] = f"change-{prev_date}_{ref.date}.tif"
-                write_raster(change, surface.grid, tmp / names["change"], description=f"surface change {prev_date} to {ref.date}")
+                write_change(result, tmp / names["change"])
             for key, path in (("surface", survey.surface_path), ("coverage", survey.coverage_path),
                               ("classified", survey.classified_path)):
                 if path is not None:

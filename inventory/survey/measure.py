@@ -64,9 +64,8 @@ from inventory.survey.gridding import (
     SurfaceAccumulator,
     fill_holes,
     object_cells,
-    write_coverage,
-    write_surface,
 )
+from inventory.io.rasters import write_coverage, write_surface
 
 __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
 
