@@ -25,17 +25,23 @@ import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import TYPE_CHECKING, Any, Callable, Iterator
 
 import numpy as np
 import pandas as pd
 
 from inventory._version import __version__
-from inventory.errors import InputError, PeriodLockedError, RunError
+from inventory.errors import InputError, PeriodLockedError
+from inventory.io.rasters import read_raster
 from inventory.model.grid import Surface
 from inventory.model.period import Period
 from inventory.model.results import MOVEMENT_COLUMNS, PILE_COLUMNS, CloseResult
-from inventory.site.load import Site, load_site
+from inventory.site.load import Site, SurveyRef, load_site
+
+if TYPE_CHECKING:
+    from inventory.ledger.store import Ledger
+    from inventory.stock.book import BookResult
+    from inventory.survey.measure import SurveyResult
 
 __all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "STEPS"]
 
@@ -44,7 +50,7 @@ __all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "S
 #: usually been recalibrated within it; common practice is a yearly verification).
 BIAS_HISTORY_MONTHS = 12
 
-#: The named steps of a close, in order (used for timings and by the interruption tests).
+#: The steps of a close, in order: the keys of :attr:`ClosedPeriod.timings`.
 STEPS = ("load", "survey", "volumes", "book", "reconcile", "outputs", "ledger")
 
 Progress = Callable[[str], None]
@@ -117,22 +123,6 @@ def _previous_survey(site: Site, date: str, ledger: Any = None, period: str | No
     return max(earlier) if earlier else None
 
 
-def _read_surface_raster(path: Path, like: Surface) -> np.ndarray | None:
-    """A surface GeoTIFF written by an earlier close, on ``like``'s grid (None if it does not align)."""
-    import rasterio
-    from rasterio.warp import Resampling, reproject
-
-    with rasterio.open(path) as src:
-        data = src.read(1, masked=True).astype("float64").filled(np.nan)
-        out = np.full(like.grid.shape, np.nan)
-        reproject(
-            data, out, src_transform=src.transform, src_crs=src.crs, src_nodata=np.nan,
-            dst_transform=like.grid.transform, dst_crs=src.crs, dst_nodata=np.nan,
-            resampling=Resampling.nearest,
-        )
-    return out
-
-
 def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
     from inventory.stock.book import opening_from_close
 
@@ -192,6 +182,264 @@ def _staging(folder: Path) -> Iterator[Path]:
             shutil.rmtree(tmp, ignore_errors=True)
 
 
+# ----------------------------------------------------------------------------- file names
+# Every name a close gives a file or folder. The survey step names its own outputs
+# (surface-<date>.tif, coverage-<date>.tif, classified-<date>.laz); the close takes those
+# names from the survey's paths and looks for an earlier surface under the same name.
+def _close_folder(root: Path, period: str) -> Path:
+    return root / "closes" / period
+
+
+def _superseded_folder(folder: Path, close_id: int) -> Path:
+    """Where a period's earlier outputs are kept once a new close of it is published."""
+    return folder.with_name(f"{folder.name}.superseded-{close_id}")
+
+
+def _previous_surface_file(root: Path, prev_date: str) -> Path:
+    """The surface GeoTIFF of the close that adopted the survey of ``prev_date``."""
+    return _close_folder(root, prev_date[:7]) / f"surface-{prev_date}.tif"
+
+
+def _output_names(result: CloseResult, survey: SurveyResult) -> dict[str, str]:
+    """File name of every output of a close, by key (the order :meth:`ClosedPeriod.summary` lists)."""
+    period, date = result.period, result.survey_date
+    names = {
+        "workbook": f"variance-{period}.xlsx",
+        "layers": f"piles-{period}.gpkg",
+        "thickness": f"thickness-{date}.tif",
+        "report": f"report-{period}.html",
+        "manifest": "run.json",
+    }
+    if result.change is not None:
+        names["change"] = f"change-{result.previous_survey_date}_{date}.tif"
+    for key, path in (("surface", survey.surface_path), ("coverage", survey.coverage_path),
+                      ("classified", survey.classified_path)):
+        if path is not None:
+            names[key] = Path(path).name
+    return names
+
+
+# ----------------------------------------------------------------------------- the steps
+@dataclass
+class _Loaded:
+    """What the load step found: the site, its survey of the period, the open ledger and
+    what the ledger says about the opening and the previous survey."""
+
+    period: str
+    site: Site
+    ref: SurveyRef
+    ledger: Ledger
+    opening: Any
+    opening_source: str
+    prev_date: str | None
+
+    @property
+    def folder(self) -> Path:
+        return _close_folder(self.site.root, self.period)
+
+
+@dataclass
+class _Volumes:
+    """What the volumes step measured on the survey grid."""
+
+    table: pd.DataFrame
+    thickness: np.ndarray
+    gaps: Any
+
+
+def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
+    """Load and check the site, find the period's survey, open the ledger (left open)."""
+    from inventory.ledger.store import Ledger
+
+    say(f"checking {site_path}")
+    site = load_site(site_path)
+    ref = site.survey_for(period)
+    if ref is None:
+        raise InputError(site.root / "surveys", f"no survey dated in {period} (folders are named YYYY-MM-DD)", field="date")
+    ledger_path = site.root / "ledger.sqlite"
+    ledger = Ledger(ledger_path).open()
+    try:
+        if ledger.is_locked(period):
+            raise PeriodLockedError(
+                f"{ledger_path}: period {period} is closed and locked; "
+                f"reopen it first (inventory reopen {site.root} --period {period} --reason \"...\")"
+            )
+        opening, opening_source = _opening(site, ledger, period)
+        prev_date = _previous_survey(site, ref.date, ledger, period)
+    except BaseException:
+        ledger.close()
+        raise
+    return _Loaded(period, site, ref, ledger, opening, opening_source, prev_date)
+
+
+def _survey(run: _Loaded, staged: Path, progress: Progress | None, workers: int | None,
+            scheduler: str | None, say: Progress) -> SurveyResult:
+    """Process the period's survey into a surface; its files go into ``staged``."""
+    from inventory.survey.measure import measure_survey
+
+    say(f"survey {run.ref.date}: reading, cleaning, classifying, gridding")
+    return measure_survey(run.site, run.ref.date, out_dir=staged, progress=progress, workers=workers,
+                          scheduler=scheduler)
+
+
+def _volumes(site: Site, surface: Surface, say: Progress) -> _Volumes:
+    """Every pile's volume above its base, the thickness raster and the unscanned gaps."""
+    from inventory.volume import measure as _vol
+
+    say(f"volumes of {len(site.piles)} piles")
+    base = _vol.BaseSurfaces.from_site(site, surface.grid)
+    table = _vol.measure_piles(surface, site.piles, site.materials, base)
+    _, thickness = _vol.thickness_raster(surface, site.piles, base)
+    gaps = _vol.coverage_gaps(surface, site.piles)
+    return _Volumes(table, thickness, gaps)
+
+
+def _book(run: _Loaded, say: Progress) -> BookResult:
+    """Book stock rolled from the opening to the survey instant."""
+    from inventory.stock import book as _book
+
+    say("book stock at the survey instant")
+    site, period = run.site, run.period
+    start, end = Period.parse(period).bounds(site.timezone)
+    return _book.book_stock(
+        site.movements_for(period), run.opening, at=run.ref.instant, scales=site.scales,
+        piles=site.piles[["pile_id", "material"]], period_end=end, period_start=start,
+        duplicate_window_min=site.config.reconcile.duplicate_window_min,
+    )
+
+
+def _change(run: _Loaded, surface: Surface) -> np.ndarray | None:
+    """Surface change since the previous survey, when its close left a surface raster."""
+    if run.prev_date is None:
+        return None
+    prev_tif = _previous_surface_file(run.site.root, run.prev_date)
+    if not prev_tif.is_file():
+        return None
+    prev_z, _ = read_raster(prev_tif, onto=surface.grid, resampling="nearest")
+    return surface.z - prev_z
+
+
+def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: BookResult,
+               timings: dict[str, float], say: Progress) -> CloseResult:
+    """Reconcile survey with book and gather everything the outputs and the ledger need."""
+    from inventory.stock import reconcile as _rec
+
+    say("reconciling survey with book")
+    site, period, ref, ledger, surface = run.site, run.period, run.ref, run.ledger, survey.surface
+    previous = None
+    prev_period = run.prev_date[:7] if run.prev_date else None
+    if prev_period and ledger.is_locked(prev_period):
+        adopted = ledger.adopted(prev_period)
+        if len(adopted):
+            previous = adopted[["pile_id", "material", "survey_t", "survey_sigma_t", "base_sigma_t",
+                                "volume_m3", "after_survey_net_t"]]
+    # earlier months' belt-scale fit rows: a bias too small for one month can show
+    # over several
+    history = ledger.scale_fit_history(period, months=BIAS_HISTORY_MONTHS)
+    rec = _rec.reconcile(
+        volumes.table, book, site.materials, site.config.reconcile, previous=previous,
+        history=history, period=period, scales=site.scales,
+    )
+    change = _change(run, surface)
+    movements = book.movements[MOVEMENT_COLUMNS] if len(book.movements) else pd.DataFrame(columns=MOVEMENT_COLUMNS)
+    inputs = {
+        str(p.relative_to(site.root)): _sha256(p)
+        for p in _site_inputs(site, [ref.date], period)
+    }
+    return CloseResult(
+        site_name=site.name, period=period, crs=site.crs, timezone=site.timezone.key,
+        survey_date=ref.date, survey_instant=ref.instant, previous_survey_date=run.prev_date,
+        piles=_assemble_piles(volumes.table, rec.piles), footprints=site.piles[["pile_id", "geometry"]].copy(),
+        movements=movements, journal=rec.journal,
+        scale_diagnostics=rec.scale_diagnostics, duplicates=book.duplicates,
+        surface=surface, thickness=volumes.thickness, change=change, coverage_gaps=volumes.gaps,
+        survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
+        tables={
+            "Materials": rec.materials,
+            "Measured change": rec.change,
+            "Belt split": book.belt_split,
+        },
+        reason_codes=dict(rec.reason_codes),
+        bias_rows=rec.bias_rows,
+        run={
+            "inputs": inputs,
+            "parameters": {
+                "opening_source": run.opening_source,
+                "grid": vars(site.config.grid),
+                "base": {k: str(v) for k, v in vars(site.config.base).items()},
+                "reconcile": vars(site.config.reconcile),
+                "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
+            },
+            # the close's own timings so far; _write_manifest stores the final copy
+            "timings": timings,
+            "survey_summary": survey.format_summary(),
+            "book_messages": list(book.messages),
+            "software_version": __version__,
+        },
+    )
+
+
+def _write_outputs(result: CloseResult, names: dict[str, str], staged: Path, say: Progress) -> None:
+    """Workbook, layers, thickness and change rasters, report into ``staged`` (the survey
+    step has already put its surface, coverage and classified cloud there)."""
+    from inventory.export.layers import write_layers
+    from inventory.export.rasters import write_change, write_thickness
+    from inventory.export.report import write_report
+    from inventory.export.workbook import write_workbook
+
+    say("writing outputs")
+    write_workbook(result, staged / names["workbook"])
+    write_layers(result, staged / names["layers"])
+    write_thickness(result, staged / names["thickness"])
+    if "change" in names:
+        write_change(result, staged / names["change"])
+    write_report(result, staged / names["report"])
+
+
+def _write_manifest(result: CloseResult, names: dict[str, str], staged: Path, timings: dict[str, float]) -> None:
+    """The run manifest, with the timings of every step up to the outputs; then the staged
+    folder gets ordinary permissions, ready to publish."""
+    from inventory.export.manifest import write_manifest
+
+    result.run["timings"] = dict(timings)
+    write_manifest(result, staged / names["manifest"])
+    _publishable(staged)
+
+
+def _publish(staged: Path, folder: Path, aside: Path) -> None:
+    """Move ``staged`` to ``folder``, an existing ``folder`` to ``aside`` first."""
+    if folder.exists():
+        os.replace(folder, aside)
+    os.replace(staged, folder)
+
+
+def _unpublish(staged: Path, folder: Path, aside: Path) -> None:
+    """Undo what :func:`_publish` did, however far it got."""
+    if folder.exists() and not staged.exists():
+        os.replace(folder, staged)
+    if aside.exists():
+        os.replace(aside, folder)
+
+
+def _record(ledger: Ledger, result: CloseResult, staged: Path, folder: Path, say: Progress) -> int:
+    """Record the close in the ledger and publish the staged outputs: both or neither.
+
+    The outputs move into place inside the ledger transaction, which commits after them;
+    if anything fails before the commit is through, they are moved back.
+    """
+    say("recording the close in the ledger")
+    aside = None
+    try:
+        with ledger.closing(result, result.run["inputs"], __version__) as close_id:
+            aside = _superseded_folder(folder, close_id)
+            _publish(staged, folder, aside)
+    except BaseException:
+        if aside is not None:
+            _unpublish(staged, folder, aside)
+        raise
+    return close_id
+
+
 # ----------------------------------------------------------------------------- the close
 def close_period(
     site_path: str | Path,
@@ -200,7 +448,6 @@ def close_period(
     progress: Progress | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
-    _fail_at: str | None = None,
 ) -> ClosedPeriod:
     """Close one period of a site: measure, reconcile, write every output, record the ledger.
 
@@ -223,187 +470,41 @@ def close_period(
     PeriodLockedError
         The period is already closed (``reopen_period`` first).
     """
-    from inventory.ledger.store import Ledger
-    from inventory.stock import book as _book
-    from inventory.stock import reconcile as _rec
-    from inventory.survey.measure import measure_survey
-    from inventory.volume import measure as _vol
-
+    try:
+        period = str(Period.parse(period))
+    except ValueError as err:
+        raise InputError("--period", str(err), field="period") from None
     say = progress or (lambda text: None)
     timings: dict[str, float] = {}
     t0 = time.perf_counter()
-
-    def step(name: str) -> None:
-        # _fail_at lets the tests interrupt a close at each step and check nothing changed
-        if _fail_at == name:
-            raise RunError(f"simulated failure at step {name}")
 
     def done(name: str) -> None:
         nonlocal t0
         timings[name] = round(time.perf_counter() - t0, 3)
         t0 = time.perf_counter()
 
-    if not isinstance(period, str) or len(period) != 7 or period[4] != "-":
-        raise InputError("--period", f"{period!r} is not a period YYYY-MM", field="period")
-
-    step("load")
-    say(f"checking {site_path}")
-    site = load_site(site_path)
-    ref = site.survey_for(period)
-    if ref is None:
-        raise InputError(site.root / "surveys", f"no survey dated in {period} (folders are named YYYY-MM-DD)", field="date")
-    ledger_path = site.root / "ledger.sqlite"
-    ledger = Ledger(ledger_path).open()
+    run = _load(site_path, period, say)
     try:
-        if ledger.is_locked(period):
-            raise PeriodLockedError(
-                f"{ledger_path}: period {period} is closed and locked; "
-                f"reopen it first (inventory reopen {site.root} --period {period} --reason \"...\")"
-            )
-        opening, opening_source = _opening(site, ledger, period)
-        prev_date = _previous_survey(site, ref.date, ledger, period)
         done("load")
-        folder = site.root / "closes" / period
-        with _staging(folder) as tmp:
-            step("survey")
-            say(f"survey {ref.date}: reading, cleaning, classifying, gridding")
-            survey = measure_survey(site, ref.date, out_dir=tmp, progress=progress, workers=workers, scheduler=scheduler)
-            surface = survey.surface
+        with _staging(run.folder) as staged:
+            survey = _survey(run, staged, progress, workers, scheduler, say)
             done("survey")
-
-            step("volumes")
-            say(f"volumes of {len(site.piles)} piles")
-            base = _vol.BaseSurfaces.from_site(site, surface.grid)
-            vols = _vol.measure_piles(surface, site.piles, site.materials, base)
-            _, thickness = _vol.thickness_raster(surface, site.piles, base)
-            gaps = _vol.coverage_gaps(surface, site.piles)
+            volumes = _volumes(run.site, survey.surface, say)
             done("volumes")
-
-            step("book")
-            say("book stock at the survey instant")
-            start, end = Period.parse(period).bounds(site.timezone)
-            book = _book.book_stock(
-                site.movements_for(period), opening, at=ref.instant, scales=site.scales,
-                piles=site.piles[["pile_id", "material"]], period_end=end, period_start=start,
-                duplicate_window_min=site.config.reconcile.duplicate_window_min,
-            )
+            book = _book(run, say)
             done("book")
-
-            step("reconcile")
-            say("reconciling survey with book")
-            previous = None
-            prev_period = prev_date[:7] if prev_date else None
-            if prev_period and ledger.is_locked(prev_period):
-                adopted = ledger.adopted(prev_period)
-                if len(adopted):
-                    previous = adopted[["pile_id", "material", "survey_t", "survey_sigma_t", "base_sigma_t",
-                                        "volume_m3", "after_survey_net_t"]]
-            # earlier months' belt-scale fit rows: a bias too small for one month can show
-            # over several
-            history = ledger.scale_fit_history(period, months=BIAS_HISTORY_MONTHS)
-            rec = _rec.reconcile(
-                vols, book, site.materials, site.config.reconcile, previous=previous,
-                history=history, period=period, scales=site.scales,
-            )
-            change = None
-            if prev_date is not None:
-                prev_tif = site.root / "closes" / prev_period / f"surface-{prev_date}.tif"
-                if prev_tif.is_file():
-                    prev_z = _read_surface_raster(prev_tif, surface)
-                    change = surface.z - prev_z
-            piles_table = _assemble_piles(vols, rec.piles)
-            footprints = site.piles[["pile_id", "geometry"]].copy()
-            movements = book.movements[MOVEMENT_COLUMNS] if len(book.movements) else pd.DataFrame(columns=MOVEMENT_COLUMNS)
-            inputs = {
-                str(p.relative_to(site.root)): _sha256(p)
-                for p in _site_inputs(site, [ref.date], period)
-            }
-            result = CloseResult(
-                site_name=site.name, period=period, crs=site.crs, timezone=site.timezone.key,
-                survey_date=ref.date, survey_instant=ref.instant, previous_survey_date=prev_date,
-                piles=piles_table, footprints=footprints, movements=movements, journal=rec.journal,
-                scale_diagnostics=rec.scale_diagnostics, duplicates=book.duplicates,
-                surface=surface, thickness=thickness, change=change, coverage_gaps=gaps,
-                survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
-                tables={
-                    "Materials": rec.materials,
-                    "Measured change": rec.change,
-                    "Belt split": book.belt_split,
-                },
-                reason_codes=dict(rec.reason_codes),
-                bias_rows=rec.bias_rows,
-                run={
-                    "inputs": inputs,
-                    "parameters": {
-                        "opening_source": opening_source,
-                        "grid": vars(site.config.grid),
-                        "base": {k: str(v) for k, v in vars(site.config.base).items()},
-                        "reconcile": vars(site.config.reconcile),
-                        "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
-                    },
-                    "timings": timings,
-                    "survey_summary": survey.format_summary(),
-                    "book_messages": list(book.messages),
-                    "software_version": __version__,
-                },
-            )
+            result = _reconcile(run, survey, volumes, book, timings, say)
             done("reconcile")
-
-            step("outputs")
-            say("writing outputs")
-            from inventory.export.layers import write_layers
-            from inventory.export.manifest import write_manifest
-            from inventory.export.rasters import write_raster
-            from inventory.export.report import write_report
-            from inventory.export.workbook import write_workbook
-
-            names: dict[str, str] = {
-                "workbook": f"variance-{period}.xlsx",
-                "layers": f"piles-{period}.gpkg",
-                "thickness": f"thickness-{ref.date}.tif",
-                "report": f"report-{period}.html",
-                "manifest": "run.json",
-            }
-            write_workbook(result, tmp / names["workbook"])
-            write_layers(result, tmp / names["layers"])
-            write_raster(thickness, surface.grid, tmp / names["thickness"], description=f"thickness above base {ref.date}")
-            if change is not None:
-                names["change"] = f"change-{prev_date}_{ref.date}.tif"
-                write_raster(change, surface.grid, tmp / names["change"], description=f"surface change {prev_date} to {ref.date}")
-            for key, path in (("surface", survey.surface_path), ("coverage", survey.coverage_path),
-                              ("classified", survey.classified_path)):
-                if path is not None:
-                    names[key] = Path(path).name
-            write_report(result, tmp / names["report"])
+            names = _output_names(result, survey)
+            _write_outputs(result, names, staged, say)
             done("outputs")
-            timings_total = dict(timings)
-            result.run["timings"] = timings_total
-            write_manifest(result, tmp / names["manifest"])
-
-            _publishable(tmp)
-
-            step("ledger")
-            say("recording the close in the ledger")
-            aside = None
-            with ledger.closing(result, inputs, __version__) as close_id:
-                if folder.exists():
-                    aside = folder.with_name(f"{period}.superseded-{close_id}")
-                    os.replace(folder, aside)
-                try:
-                    os.replace(tmp, folder)
-                    if _fail_at == "commit":
-                        raise RunError("simulated failure before the ledger commit")
-                except BaseException:
-                    if folder.exists() and not tmp.exists():
-                        os.replace(folder, tmp)
-                    if aside is not None:
-                        os.replace(aside, folder)
-                    raise
+            _write_manifest(result, names, staged, timings)
+            close_id = _record(run.ledger, result, staged, run.folder, say)
             done("ledger")
     finally:
-        ledger.close()
-    files = {key: folder / name for key, name in names.items()}
-    return ClosedPeriod(result, folder, files, close_id, timings)
+        run.ledger.close()
+    files = {key: run.folder / name for key, name in names.items()}
+    return ClosedPeriod(result, run.folder, files, close_id, timings)
 
 
 def reopen_period(site_path: str | Path, period: str, reason: str, who: str | None = None) -> int:

@@ -17,7 +17,8 @@ from pathlib import Path
 import pytest
 
 from inventory.cli import main
-from inventory.close import STEPS, close_period
+from inventory.close import STEPS, _publish, close_period
+from inventory.errors import InputError, RunError
 from inventory.export.layers import read_piles_layer
 from inventory.ledger.store import Ledger
 from inventory.model.results import PILE_COLUMNS
@@ -140,22 +141,54 @@ def test_history_for_finance(closed_site, capsys):
     assert "2026-09" in table and "2026-10" in table and "S1" in table
 
 
+def _failing(name):
+    def fail(*args, **kwargs):
+        raise RunError(f"simulated failure at {name}")
+    return fail
+
+
+def _publish_then_fail(staged, folder, aside):
+    """The outputs move into place, then the close fails before the ledger commits."""
+    _publish(staged, folder, aside)
+    assert folder.is_dir() and not staged.exists()
+    raise RunError("simulated failure after publishing")
+
+
+def _commit_fails(self, state):
+    # reached with the new outputs in place and the old ones set aside
+    assert list((self.path.parent / "closes").glob("2026-10.superseded-*"))
+    raise sqlite3.OperationalError("simulated failure of the commit")
+
+
+#: Every step function of close_period made to fail, then the publication of the outputs
+#: failing once they are in place, and the ledger commit failing after that.
+INTERRUPTIONS = [(f"inventory.close.{name}", _failing(name)) for name in (
+    "_load", "_survey", "_volumes", "_book", "_reconcile", "_write_outputs", "_write_manifest",
+    "_record", "_publish",
+)] + [
+    ("inventory.close._publish", _publish_then_fail),
+    ("inventory.ledger.store.Ledger._commit", _commit_fails),
+]
+
+
 def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, survey_cache, monkeypatch, tmp_path):
     site = tmp_path / "site"
     shutil.copytree(closed_site, site)
     with Ledger(site / "ledger.sqlite") as led:
         led.reopen("2026-10", "interruption test")
     monkeypatch.setattr("inventory.survey.measure.measure_survey", survey_cache)
-    for checkpoint in (*STEPS, "commit"):
+    for target, failure in INTERRUPTIONS:
         rows_before = sqlite3.connect(site / "ledger.sqlite").execute("SELECT COUNT(*) FROM closes").fetchone()
         tree_before = _tree(site / "closes")
-        with pytest.raises(Exception, match="simulated failure"):
-            close_period(site, "2026-10", _fail_at=checkpoint)
+        with monkeypatch.context() as mp:
+            mp.setattr(target, failure)
+            with pytest.raises(Exception, match="simulated failure"):
+                close_period(site, "2026-10")
         rows_after = sqlite3.connect(site / "ledger.sqlite").execute("SELECT COUNT(*) FROM closes").fetchone()
-        assert rows_after == rows_before, checkpoint
-        assert _tree(site / "closes") == tree_before, checkpoint
+        assert rows_after == rows_before, target
+        assert _tree(site / "closes") == tree_before, target
         with Ledger(site / "ledger.sqlite") as led:
-            assert not led.is_locked("2026-10"), checkpoint
+            assert not led.is_locked("2026-10"), target
     # and after all that, the close goes through and gives the numbers of the first close
     first_rasters = {name: (site / "closes" / "2026-10" / name).read_bytes()
                      for name in ("thickness-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif")}
@@ -167,6 +200,7 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
     with Ledger(site / "ledger.sqlite") as led:
         again = led.adopted("2026-10").sort_values("pile_id")[figures]
     assert done.close_id > 0
+    assert tuple(done.timings) == STEPS
     # a rerun on the same inputs gives the same numbers (DESIGN: reproducible close)
     assert again.to_dict("records") == first.to_dict("records")
     # ... and the same rasters, byte for byte; the superseded close's folder is kept beside
@@ -174,3 +208,11 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
         assert (site / "closes" / "2026-10" / name).read_bytes() == data, name
     kept = [p.name for p in (site / "closes").iterdir() if p.name.startswith("2026-10.superseded-")]
     assert len(kept) == 1
+
+
+@pytest.mark.parametrize("bad", ["2026-13", "2026-1", "26-10", "2026/10", 202610])
+def test_bad_period_is_an_input_error_naming_the_option(bad, tmp_path):
+    with pytest.raises(InputError, match="--period") as err:
+        close_period(tmp_path, bad)
+    assert err.value.field == "period"
+    assert not list(tmp_path.iterdir())

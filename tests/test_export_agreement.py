@@ -6,7 +6,7 @@ import math
 
 import pytest
 
-from inventory.export import write_layers, write_raster, write_workbook
+from inventory.export import write_layers, write_thickness, write_workbook
 from inventory.export.layers import read_piles_layer
 from inventory.ledger.store import Ledger
 from inventory.model.results import PILE_COLUMNS
@@ -62,12 +62,12 @@ def test_rerun_after_reopen_gives_identical_numbers_and_rasters(tmp_path):
     res = make_close_result("2026-01")
     with Ledger(tmp_path / "ledger.sqlite") as led:
         led.record_close(res, INPUTS, "0.1.0")
-        a = write_raster(res.surface.z, res.surface.grid, tmp_path / "a" / "surface.tif")
+        a = write_thickness(res, tmp_path / "a" / "thickness.tif")
         first = _rows(led.adopted("2026-01"))
         led.reopen("2026-01", "rerun check")
         again = make_close_result("2026-01")
         led.record_close(again, INPUTS, "0.1.0")
-        b = write_raster(again.surface.z, again.surface.grid, tmp_path / "b" / "surface.tif")
+        b = write_thickness(again, tmp_path / "b" / "thickness.tif")
         assert _rows(led.adopted("2026-01")) == first
     assert a.read_bytes() == b.read_bytes()
     with pytest.raises(AssertionError):  # the comparison can fail: a changed figure shows

@@ -1,25 +1,18 @@
-"""Surface gridding, hole filling and GeoTIFF writing."""
+"""Surface gridding and hole filling (the GeoTIFFs: tests/test_io_rasters.py)."""
 
 from __future__ import annotations
 
-import shutil
-import subprocess
 
 import numpy as np
 import pytest
-import rasterio
 from scipy.stats import binned_statistic_2d
 
 from inventory.errors import RunError
 from inventory.model.grid import Grid
 from inventory.survey.gridding import (
-    SURFACE_NODATA,
     SurfaceAccumulator,
     fill_holes,
     grid_points,
-    read_geotiff,
-    write_coverage,
-    write_surface,
 )
 
 
@@ -210,48 +203,3 @@ def test_surface_patch_on_an_object_is_emptied():
     acc2 = SurfaceAccumulator(g, "mean")
     acc2.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
     assert (acc2.result().count[on_roof] > 0).all() and not acc2.object_cells().any()
-
-
-def test_geotiff_round_trip(tmp_path):
-    x, y, z = _cloud()
-    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
-    s = grid_points(g, x, y, z)
-    path = write_surface(s, tmp_path / "surface.tif")
-    cov = write_coverage(s, tmp_path / "coverage.tif")
-    with rasterio.open(path) as src:
-        assert src.crs.to_epsg() == 25832
-        assert src.nodata == SURFACE_NODATA
-        assert src.profile["tiled"] and src.profile["compress"] == "deflate"
-        assert src.transform == g.transform
-    back, g2 = read_geotiff(path)
-    assert g2.aligned_with(g) and g2.shape == g.shape
-    np.testing.assert_allclose(back, s.z.astype(np.float32), equal_nan=True)
-    with rasterio.open(cov) as src:
-        np.testing.assert_array_equal(src.read(1), s.count)
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["coverage.tif", "surface.tif"]
-
-
-def test_overviews_on_a_larger_grid(tmp_path):
-    g = Grid(0.0, 600.0, 1.0, 600, 600, "EPSG:25832")
-    from inventory.model.grid import Surface
-
-    z = np.fromfunction(lambda r, c: r * 0.01 + c * 0.02, g.shape)
-    s = Surface(g, z, np.ones(g.shape, np.int32), np.zeros(g.shape), np.zeros(g.shape, bool))
-    path = write_surface(s, tmp_path / "big.tif")
-    with rasterio.open(path) as src:
-        assert src.overviews(1) == [2, 4]
-
-
-@pytest.mark.tools
-def test_gdalinfo_reads_crs_and_nodata(tmp_path):
-    # Reference: GDAL's own gdalinfo (Debian gdal-bin).
-    if shutil.which("gdalinfo") is None:
-        pytest.skip("gdalinfo (Debian package gdal-bin) is not installed")
-    x, y, z = _cloud()
-    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
-    path = write_surface(grid_points(g, x, y, z), tmp_path / "s.tif")
-    out = subprocess.run(["gdalinfo", str(path)], capture_output=True, text=True, check=True).stdout
-    assert 'ID["EPSG",25832]' in out
-    assert "NoData Value=-9999" in out
-    assert f"Pixel Size = ({g.cell:.15f},-{g.cell:.15f})" in out
-    assert "COMPRESSION=DEFLATE" in out

@@ -29,7 +29,7 @@ from inventory.survey.placement import StationPose, poses_from_stations
 from inventory.io.clouds import read_cloud, write_cloud
 from inventory._demo.synthetic import LABELS, make_yard
 from inventory.errors import CoverageWarning, InputError, PipelineError
-from inventory.survey.gridding import read_geotiff
+from inventory.io.rasters import read_raster
 from inventory.survey.measure import measure_survey
 
 DATE = "2026-10-31"
@@ -138,7 +138,7 @@ def test_outputs_and_summary(synthetic):
                                                      f"surface-{DATE}.tif"]
     with rasterio.open(result.surface_path) as src:
         assert src.crs.to_epsg() == 25832 and src.nodata == -9999.0
-    z, g = read_geotiff(result.surface_path)
+    z, g = read_raster(result.surface_path)
     assert g.aligned_with(result.surface.grid)
     np.testing.assert_allclose(z, result.surface.z.astype(np.float32), equal_nan=True)
     line = result.format_summary()
@@ -270,7 +270,7 @@ def test_sample_site_classification(sample_survey):
 @pytest.mark.parametrize("which", ["latest", "earliest"])
 def test_sample_site_surface_rms(which, tmp_path_factory):
     truth, site, date, result = _sample_run(which, tmp_path_factory)
-    true_z, tg = read_geotiff(SAMPLE / "truth" / f"surface-{date}.tif")
+    true_z, tg = read_raster(SAMPLE / "truth" / f"surface-{date}.tif")
     s = result.surface
     assert tg.aligned_with(s.grid)
     cx, cy = s.grid.centers()

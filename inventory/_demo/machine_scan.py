@@ -23,8 +23,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import os
-import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -34,6 +32,7 @@ import laspy
 import numpy as np
 import pandas as pd
 
+from inventory.io.atomic import atomic_path
 from inventory.model.pose import (
     Machine,
     Trajectory,
@@ -259,25 +258,17 @@ def _write_las(path: Path, points: np.ndarray, gps_time: np.ndarray, range_m: np
     las.intensity = np.clip(40000.0 * (1.0 - range_m / 120.0), 1, 65535).astype(np.uint16)
     las.return_number = np.ones(len(points), np.uint8)
     las.number_of_returns = np.ones(len(points), np.uint8)
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
-    os.close(fd)
-    try:
-        las.write(tmp, do_compress=path.suffix.lower() == ".laz")
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    # Uncompressed point records, whatever the name says: laspy chooses compression by a
+    # path's suffix and ignores do_compress, and this file was always written under a
+    # temporary name without ".laz", so the committed sample_site holds LAS data here.
+    # Compressing it would change the sample's bytes (tests/test_demo_determinism.py).
+    with atomic_path(path) as tmp, open(tmp, "wb+") as out:
+        las.write(out, do_compress=False)
 
 
 def _write_csv(path: Path, frame: pd.DataFrame) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         frame.to_csv(tmp, index=False, float_format="%.6f")
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 def write_machine_survey(folder: str | Path, scan: MachineScan, *, name: str = "machine_scan.laz",

@@ -6,11 +6,11 @@ into place, so a reader sees either the previous file or the complete new one.
 
 from inventory.export.layers import write_layers
 from inventory.export.manifest import sha256_file, write_manifest
-from inventory.export.rasters import write_raster
+from inventory.export.rasters import write_change, write_thickness
 from inventory.export.report import write_report
 from inventory.export.workbook import write_history_workbook, write_workbook
 
 __all__ = [
-    "write_workbook", "write_history_workbook", "write_layers", "write_raster",
+    "write_workbook", "write_history_workbook", "write_layers", "write_thickness", "write_change",
     "write_report", "write_manifest", "sha256_file",
 ]

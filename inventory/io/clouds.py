@@ -21,8 +21,6 @@ Examples
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 from typing import Iterator
 
@@ -30,7 +28,8 @@ import laspy
 import numpy as np
 from pyproj import CRS
 
-from inventory.errors import CRSError, InputError
+from inventory.errors import CRSError, InputError, RunError
+from inventory.io.atomic import atomic_path
 from inventory.io.crs import parse_crs
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CloudReader", "CloudWriter", "open_cloud",
@@ -198,10 +197,16 @@ class CloudWriter:
             header.add_crs(parse_crs(crs))
         self.header = header
         compress = self.path.suffix.lower() == ".laz"
-        fd, tmp = tempfile.mkstemp(prefix=self.path.name + ".", suffix=".part", dir=self.path.parent)
-        os.close(fd)
-        self._tmp = Path(tmp)
-        self._writer = laspy.open(self._tmp, mode="w", header=header, do_compress=compress)
+        # The file is written chunk by chunk across calls, so the atomic_path block is
+        # entered here and left in close(): leaving it cleanly renames the file into place,
+        # leaving it with an error removes the temporary file.
+        self._target = atomic_path(self.path)
+        self._tmp = self._target.__enter__()
+        try:
+            self._writer = laspy.open(self._tmp, mode="w", header=header, do_compress=compress)
+        except BaseException as err:
+            self._target.__exit__(type(err), err, err.__traceback__)
+            raise
         self.written = 0
 
     def write(self, points: np.ndarray) -> None:
@@ -217,11 +222,17 @@ class CloudWriter:
         self.written += len(points)
 
     def close(self, ok: bool = True) -> None:
-        self._writer.close()
+        """Finish the file: renamed into place when ``ok``, else removed."""
+        try:
+            self._writer.close()
+        except BaseException as err:
+            self._target.__exit__(type(err), err, err.__traceback__)
+            raise
         if ok:
-            os.replace(self._tmp, self.path)
+            self._target.__exit__(None, None, None)
         else:
-            self._tmp.unlink(missing_ok=True)
+            stop = RunError(f"{self.path}: writing abandoned")
+            self._target.__exit__(RunError, stop, None)
 
     def __enter__(self) -> "CloudWriter":
         return self

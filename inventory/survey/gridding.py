@@ -1,4 +1,4 @@
-"""The surface grid of a survey: points -> per-cell statistic, coverage, hole filling, GeoTIFF.
+"""The surface grid of a survey: points -> per-cell statistic, coverage, hole filling.
 
 :class:`SurfaceAccumulator` grids points chunk by chunk (memory is the grid, not the cloud)
 and takes out surface cells lying on an object (:func:`object_cells`); :func:`fill_holes`
@@ -7,16 +7,14 @@ scanned cell but lone patches (:func:`~inventory.model.grid.lone_patches`).
 
 Gridding and hole filling: docs/surveys.md; the object and lone-patch rules:
 docs/classifier.md.
+
+The surface and coverage GeoTIFFs are written by :mod:`inventory.io.rasters`.
 """
 
 from __future__ import annotations
 
 import math
-import os
-import tempfile
 from dataclasses import dataclass
-from pathlib import Path
-from typing import Sequence
 
 import numpy as np
 
@@ -25,24 +23,15 @@ from inventory.model.grid import Grid, Surface, lone_patches
 
 __all__ = [
     "STATISTICS",
-    "SURFACE_NODATA",
     "SurfaceAccumulator",
     "FillReport",
     "fill_holes",
     "object_cells",
     "grid_points",
-    "write_geotiff",
-    "write_surface",
-    "write_coverage",
-    "read_geotiff",
 ]
 
 #: Cell statistics of surface points (site.toml ``[grid] statistic``).
 STATISTICS = ("mean", "median", "max")
-#: Nodata of the surface GeoTIFF (float32); NaN would also do, but not every GIS reads it.
-SURFACE_NODATA = -9999.0
-#: Tile edge of written GeoTIFFs (OGC COG 21-026 asks for multiples of 16; 256 is usual).
-TILE = 256
 #: Surface points of a cell count as lying on an object when an object return of the same
 #: cell is lower than this above them (metres; :meth:`SurfaceAccumulator.object_cells`).
 #: Half a metre: the height of one 0.5 m cell of a 45 deg slope, so a pile point left
@@ -383,80 +372,3 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
     zv = z[near][simp[s[ok]]]
     out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
     return out
-
-
-def _overview_factors(shape: tuple[int, int]) -> list[int]:
-    factors, f = [], 2
-    while max(shape) / f >= TILE / 2 and min(shape) / f >= 1:
-        factors.append(f)
-        f *= 2
-    return factors
-
-
-def write_geotiff(path: "str | Path", bands: Sequence[np.ndarray], grid: Grid, *, nodata: float | None,
-                  dtype: str = "float32", descriptions: Sequence[str] = ()) -> Path:
-    """Write bands on ``grid`` as a tiled, DEFLATE-compressed GeoTIFF with overviews.
-
-    NaN in float input becomes ``nodata``. The file appears only when complete.
-    """
-    import rasterio
-    from rasterio.enums import Resampling
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    floating = np.dtype(dtype).kind == "f"
-    profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(bands), dtype=dtype,
-                   crs=grid.crs or None, transform=grid.transform, nodata=nodata, tiled=True,
-                   blockxsize=TILE, blockysize=TILE, compress="deflate", predictor=3 if floating else 2,
-                   BIGTIFF="IF_SAFER")
-    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".part", dir=path.parent)
-    os.close(fd)
-    try:
-        with rasterio.open(tmp, "w", **profile) as dst:
-            for i, band in enumerate(bands, start=1):
-                arr = np.asarray(band)
-                if floating and nodata is not None:
-                    arr = np.where(np.isfinite(arr), arr, nodata)
-                dst.write(arr.astype(dtype), i)
-                if i - 1 < len(descriptions):
-                    dst.set_band_description(i, descriptions[i - 1])
-            factors = _overview_factors(grid.shape)
-            if factors:
-                dst.build_overviews(factors, Resampling.average if floating else Resampling.nearest)
-                dst.update_tags(ns="rio_overview", resampling="average" if floating else "nearest")
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
-
-
-def write_surface(surface: Surface, path: "str | Path") -> Path:
-    """The surface elevations (float32, nodata :data:`SURFACE_NODATA`)."""
-    return write_geotiff(path, [surface.z], surface.grid, nodata=SURFACE_NODATA, dtype="float32",
-                         descriptions=[f"surface elevation m ({surface.meta.get('statistic', 'mean')})"])
-
-
-def write_coverage(surface: Surface, path: "str | Path") -> Path:
-    """Coverage raster: band 1 surface points per cell, band 2 1 where the cell was filled.
-
-    Both bands are int32 with nodata -1 (no cell is nodata; 0 points means not scanned).
-    """
-    return write_geotiff(path, [surface.count.astype(np.int32), surface.filled.astype(np.int32)],
-                         surface.grid, nodata=-1, dtype="int32",
-                         descriptions=["surface points per cell", "interpolated cell (1) or not (0)"])
-
-
-def read_geotiff(path: "str | Path") -> tuple[np.ndarray, Grid]:
-    """Band 1 of a north-up GeoTIFF as float64 with NaN for nodata, and its grid."""
-    import rasterio
-
-    with rasterio.open(path) as src:
-        t = src.transform
-        if t.b != 0 or t.d != 0 or abs(t.a + t.e) > 1e-9:
-            raise RunError(f"{path}: not a north-up grid of square cells")
-        arr = src.read(1).astype(float)
-        if src.nodata is not None:
-            arr[arr == src.nodata] = np.nan
-        crs = src.crs.to_string() if src.crs else ""
-        return arr, Grid(t.c, t.f, t.a, src.height, src.width, crs)

@@ -34,6 +34,7 @@ from inventory.errors import (
 )
 from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, open_cloud
 from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
+from inventory.io.rasters import write_coverage, write_surface
 from inventory.model.classes import (
     CLASS_NAMES,
     GROUND,
@@ -46,7 +47,7 @@ from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor, executor
 from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
-from inventory.survey.gridding import FillReport, write_coverage, write_surface
+from inventory.survey.gridding import FillReport
 from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
 from inventory.survey.placement import Placement, survey_placements
 from inventory.survey.tiles import TileSpill, grid_tiles, run_tiles

@@ -47,6 +47,7 @@ from inventory.volume.base import BaseModel, bilinear, fill_nearest, toe_base
 from inventory.site.load import parse_base
 from inventory.volume.tin import tin_volume
 from inventory.errors import CoverageWarning, CRSError, InputError, InputWarning
+from inventory.io.rasters import read_raster
 from inventory.model.grid import Grid, Surface
 from inventory.model.grid import lone_patches
 
@@ -175,30 +176,10 @@ class BaseSurfaces:
         A raster without a CRS is taken to be in the grid's CRS (with an
         :class:`~inventory.errors.InputWarning`). Cells the raster does not cover are NaN.
         """
-        import rasterio
         from rasterio.errors import RasterioIOError
-        from rasterio.warp import Resampling, reproject
 
         try:
-            with rasterio.open(path) as src:
-                src_crs = src.crs
-                if src_crs is None:
-                    warnings.warn(
-                        InputWarning(f"{path}: floor raster has no CRS; taken as {grid.crs or 'the grid CRS'}")
-                    )
-                dst_crs = grid.crs or src_crs
-                if src_crs is None:
-                    src_crs = dst_crs
-                if src_crs is None:
-                    raise CRSError(path, "floor raster and grid both lack a CRS", field="crs")
-                data = src.read(1, masked=True).astype("float64").filled(np.nan)
-                out = np.full(grid.shape, np.nan)
-                reproject(
-                    data, out,
-                    src_transform=src.transform, src_crs=src_crs, src_nodata=np.nan,
-                    dst_transform=grid.transform, dst_crs=dst_crs, dst_nodata=np.nan,
-                    resampling=Resampling.bilinear,
-                )
+            out, _ = read_raster(path, onto=grid, resampling="bilinear", name="floor raster")
         except RasterioIOError as err:
             raise InputError(path, f"cannot read floor raster: {err}", field="floor_raster") from err
         return cls(floor=out, floor_sigma_m=float(sigma), toe_ring_m=float(toe_ring_m))

@@ -1,0 +1,202 @@
+"""GeoTIFF rasters on a :class:`~inventory.model.grid.Grid`: one writer, one reader.
+
+:func:`write_raster` writes bands as a tiled (256 x 256), DEFLATE-compressed GeoTIFF with
+internal overviews, CRS, nodata and band descriptions, through
+:func:`inventory.io.atomic.atomic_path` (the file appears only when complete). The bytes
+depend only on the arrays, the grid and the options, so writing the same data twice gives
+identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
+rasters written with it.
+
+:func:`read_raster` reads one band with NaN for nodata, with its grid, or resampled onto
+another grid (GDAL warping through rasterio).
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+
+from inventory.errors import CRSError, InputWarning, RunError
+from inventory.io.atomic import atomic_path
+from inventory.model.grid import Grid, Surface
+
+__all__ = ["COVERAGE_NODATA", "NODATA", "TILE", "read_raster", "write_coverage", "write_raster", "write_surface"]
+
+#: Nodata of float rasters (a value no elevation or thickness in metres takes); NaN would
+#: also do, but not every GIS reads it.
+NODATA = -9999.0
+#: Nodata of the integer coverage raster (no cell is nodata: 0 points means not scanned).
+COVERAGE_NODATA = -1
+#: Tile edge of written GeoTIFFs (OGC COG 21-026 asks for multiples of 16; 256 is usual).
+TILE = 256
+
+
+def _overview_factors(shape: tuple[int, int]) -> list[int]:
+    factors, f = [], 2
+    while max(shape) / f >= TILE / 2 and min(shape) / f >= 1:
+        factors.append(f)
+        f *= 2
+    return factors
+
+
+def write_raster(
+    path: str | Path,
+    bands: np.ndarray | Sequence[np.ndarray],
+    grid: Grid,
+    *,
+    nodata: float = NODATA,
+    dtype: str = "float32",
+    descriptions: Sequence[str] = (),
+) -> Path:
+    """Write bands on ``grid`` as a tiled, DEFLATE-compressed GeoTIFF with overviews.
+
+    Parameters
+    ----------
+    path : str or Path
+        Destination; written under a temporary name beside it and renamed into place.
+    bands : ndarray (nrows, ncols) or sequence of them
+        One array is one band. In float output NaN and inf become ``nodata``.
+    grid : Grid
+        Georeferencing; ``grid.crs`` must be set.
+    nodata : float
+        The nodata value stored in the file.
+    dtype : str
+        Data type on disk (``float32``, ``int32``, ...). Float bands use the floating-point
+        predictor and averaged overviews, integer bands the horizontal predictor and
+        nearest-neighbour overviews.
+    descriptions : sequence of str
+        Band descriptions (shown by ``gdalinfo`` and GIS layer properties), band 1 first.
+
+    Returns
+    -------
+    Path
+        ``path``.
+
+    Raises
+    ------
+    ValueError
+        A band's shape is not the grid's, or a band holds the nodata value as data.
+    CRSError
+        The grid has no CRS, or one rasterio does not know.
+    """
+    import rasterio
+    from rasterio.crs import CRS
+    from rasterio.enums import Resampling
+    from rasterio.errors import CRSError as RioCRSError
+
+    path = Path(path)
+    arrays = [np.asarray(bands)] if isinstance(bands, np.ndarray) and np.ndim(bands) == 2 else list(bands)
+    if not grid.crs:
+        raise CRSError(str(path), "the grid has no CRS; a GeoTIFF without one is not written")
+    try:
+        CRS.from_user_input(grid.crs)
+    except RioCRSError as err:
+        raise CRSError(str(path), f"unknown CRS {grid.crs!r}: {err}") from err
+    floating = np.dtype(dtype).kind == "f"
+    out = []
+    for band in arrays:
+        arr = np.asarray(band)
+        if arr.shape != grid.shape:
+            raise ValueError(f"array shape {arr.shape} does not match grid {grid.shape}")
+        data = np.isfinite(arr) if floating else np.ones(arr.shape, bool)
+        written = (np.where(data, arr, nodata) if floating else arr).astype(dtype)
+        if np.any(data & (written == np.dtype(dtype).type(nodata))):
+            raise ValueError(f"{path}: data contain the nodata value {nodata}; choose another")
+        out.append(written)
+    profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(out), dtype=dtype,
+                   crs=grid.crs, transform=grid.transform, nodata=nodata, tiled=True,
+                   blockxsize=TILE, blockysize=TILE, compress="deflate", predictor=3 if floating else 2,
+                   BIGTIFF="IF_SAFER")
+    with atomic_path(path) as tmp:
+        with rasterio.open(tmp, "w", **profile) as dst:
+            for i, arr in enumerate(out, start=1):
+                dst.write(arr, i)
+                if i - 1 < len(descriptions):
+                    dst.set_band_description(i, descriptions[i - 1])
+            factors = _overview_factors(grid.shape)
+            if factors:
+                dst.build_overviews(factors, Resampling.average if floating else Resampling.nearest)
+                dst.update_tags(ns="rio_overview", resampling="average" if floating else "nearest")
+    return path
+
+
+def write_surface(surface: Surface, path: str | Path) -> Path:
+    """The surface elevations (float32, nodata :data:`NODATA`)."""
+    return write_raster(path, surface.z, surface.grid,
+                        descriptions=[f"surface elevation m ({surface.meta.get('statistic', 'mean')})"])
+
+
+def write_coverage(surface: Surface, path: str | Path) -> Path:
+    """Coverage raster: band 1 surface points per cell, band 2 1 where the cell was filled.
+
+    Both bands are int32 with nodata :data:`COVERAGE_NODATA`.
+    """
+    return write_raster(path, [surface.count.astype(np.int32), surface.filled.astype(np.int32)],
+                        surface.grid, nodata=COVERAGE_NODATA, dtype="int32",
+                        descriptions=["surface points per cell", "interpolated cell (1) or not (0)"])
+
+
+def read_raster(
+    path: str | Path,
+    band: int = 1,
+    *,
+    onto: Grid | None = None,
+    resampling: str = "nearest",
+    name: str = "raster",
+) -> tuple[np.ndarray, Grid]:
+    """One band of a GeoTIFF as float64 with NaN for nodata, and its grid.
+
+    Parameters
+    ----------
+    path : str or Path
+    band : int
+        Band number, from 1.
+    onto : Grid, optional
+        Resample the band onto this grid (cells it does not cover are NaN) and return it
+        with ``onto``. Without it the file must be a north-up grid of square cells.
+    resampling : str
+        With ``onto``: a :class:`rasterio.enums.Resampling` name (``nearest``, ``bilinear``).
+        A file without a CRS is taken to be in ``onto``'s CRS, with an
+        :class:`~inventory.errors.InputWarning`.
+    name : str
+        What the file is, for messages (``floor raster``).
+
+    Raises
+    ------
+    RunError
+        Without ``onto``: the file is not a north-up grid of square cells.
+    CRSError
+        With ``onto``: neither the file nor ``onto`` has a CRS.
+    rasterio.errors.RasterioIOError
+        The file cannot be opened.
+    """
+    import rasterio
+    from rasterio.warp import Resampling, reproject
+
+    with rasterio.open(path) as src:
+        data = src.read(band, masked=True).astype("float64").filled(np.nan)
+        if onto is None:
+            t = src.transform
+            if t.b != 0 or t.d != 0 or abs(t.a + t.e) > 1e-9:
+                raise RunError(f"{path}: not a north-up grid of square cells")
+            crs = src.crs.to_string() if src.crs else ""
+            return data, Grid(t.c, t.f, t.a, src.height, src.width, crs)
+        src_crs = src.crs
+        if src_crs is None:
+            warnings.warn(InputWarning(f"{path}: {name} has no CRS; taken as {onto.crs or 'the grid CRS'}"))
+        dst_crs = onto.crs or src_crs
+        if src_crs is None:
+            src_crs = dst_crs
+        if src_crs is None:
+            raise CRSError(path, f"{name} and grid both lack a CRS", field="crs")
+        out = np.full(onto.shape, np.nan)
+        reproject(
+            data, out,
+            src_transform=src.transform, src_crs=src_crs, src_nodata=np.nan,
+            dst_transform=onto.transform, dst_crs=dst_crs, dst_nodata=np.nan,
+            resampling=Resampling[resampling],
+        )
+    return out, onto
