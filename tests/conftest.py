@@ -9,6 +9,10 @@ once through the survey chain, and the open LiDAR samples of the laspy source di
   (``load_site`` -> ``measure_survey`` -> ``measure_piles``), run once per test session and
   shared by every test that asks for it; nothing is cached on disk, so a change to the code
   is always measured.
+- ``make_close_result``: a small synthetic close (three cones on a flat yard, EPSG:25832) for
+  the ledger and exporter tests, whose tables agree with each other (variance = survey - book,
+  the footprints cover the piles, the surface shows the piles); ``close_result`` is one, and
+  ``fake_cones`` its cones. ``tests/test_export_fake.py`` checks the fake itself.
 - ``laspy_data``: runs ``pip download --no-binary :all: --no-deps laspy==<installed version>``
   into ``tests/.cache/`` (git-ignored), unpacks the sdist's ``tests/data/`` files and returns
   that folder; skips, saying why, only when the download fails (offline). Source: laspy on
@@ -23,6 +27,7 @@ import subprocess
 import sys
 import tarfile
 import warnings
+from datetime import datetime, timezone
 from functools import cached_property, lru_cache
 from pathlib import Path
 
@@ -33,6 +38,15 @@ import pandas as pd
 import pyproj
 import pytest
 from shapely.geometry import Point
+
+from inventory.model.grid import Grid, Surface
+from inventory.model.results import (
+    JOURNAL_COLUMNS,
+    MOVEMENT_COLUMNS,
+    PILE_COLUMNS,
+    SCALE_COLUMNS,
+    CloseResult,
+)
 
 # bound at import, before any test patches inventory.survey.measure.measure_survey with a cache
 from inventory.survey.measure import measure_survey as _measure_survey
@@ -259,3 +273,233 @@ def laspy_data() -> Path:
         return fetch_laspy_samples()
     except (RuntimeError, OSError, subprocess.TimeoutExpired) as err:
         pytest.skip(f"laspy sample data unavailable (offline?): {err}")
+
+
+# ----------------------------------------------------------------------------- a synthetic close
+
+CRS = "EPSG:25832"  # ETRS89 / UTM 32N, metres
+X0, Y0 = 500000.0, 5700000.0
+CELL = 0.5
+YARD_Z = 100.0
+# (pile_id, material, centre dx, centre dy, radius m, height m, density t/m3, moisture)
+_CONES = [
+    ("P-COAL-1", "coal", 14.0, 20.0, 9.0, 4.0, 0.80, 0.08),
+    ("P-COAL-2", "coal", 36.0, 20.0, 8.0, 3.5, 0.80, 0.08),
+    ("P-LIME-1", "limestone", 56.0, 18.0, 6.0, 3.0, 1.45, 0.02),
+]
+_TOLERANCE_PCT = {"coal": 3.0, "limestone": 2.0}  # common practice (2-5 %)
+K_SIGNIFICANCE = 2.0
+
+
+def _surface(period_index: int) -> tuple[Surface, np.ndarray, np.ndarray]:
+    grid = Grid.snapped(X0, Y0, X0 + 66.0, Y0 + 40.0, cell=CELL, crs=CRS)
+    x, y = grid.centers()
+    z = np.full(grid.shape, YARD_Z)
+    grow = 1.0 + 0.05 * period_index  # the piles grow a little from month to month
+    for _, _, dx, dy, r, h, _, _ in _CONES:
+        d = np.hypot(x - (X0 + dx), y - (Y0 + dy))
+        z = z + np.clip(h * grow * (1.0 - d / r), 0.0, None)
+    count = np.full(grid.shape, 4, dtype=np.int32)
+    sd = np.full(grid.shape, 0.02)
+    filled = np.zeros(grid.shape, dtype=bool)
+    # an unscanned patch on the second pile, filled by interpolation
+    r0, c0 = grid.index(np.array([X0 + 38.0]), np.array([Y0 + 22.0]))[:2]
+    count[r0[0]:r0[0] + 4, c0[0]:c0[0] + 4] = 0
+    sd[r0[0]:r0[0] + 4, c0[0]:c0[0] + 4] = np.nan
+    filled[r0[0]:r0[0] + 4, c0[0]:c0[0] + 4] = True
+    # a corner the scanner never saw and nothing filled
+    z[:6, :8] = np.nan
+    count[:6, :8] = 0
+    sd[:6, :8] = np.nan
+    surface = Surface(grid, z, count, sd, filled, date=f"2026-0{period_index + 1}-28")
+    thickness = z - YARD_Z
+    thickness[~(thickness > 0)] = np.nan
+    return surface, thickness, (r0[0], c0[0])
+
+
+def _make_close_result(period: str = "2026-01", opening: dict[str, float] | None = None,
+                      period_index: int = 0) -> CloseResult:
+    """A consistent three-pile close; ``opening`` overrides the opening tonnes per pile."""
+    import geopandas as gpd
+    from shapely.geometry import Point, box
+
+    surface, thickness, (r0, c0) = _surface(period_index)
+    grid = surface.grid
+    x, y = grid.centers()
+    rows, foots = [], []
+    rng = np.random.default_rng(7 + period_index)
+    for i, (pid, mat, dx, dy, r, h, dens, moist) in enumerate(_CONES):
+        foot = Point(X0 + dx, Y0 + dy).buffer(r + 1.0, quad_segs=16)
+        foots.append(foot)
+        inside = np.hypot(x - (X0 + dx), y - (Y0 + dy)) <= r + 1.0
+        vol = float(np.nansum(np.where(inside, thickness, 0.0)) * grid.cell_area)
+        vol_sigma = 0.005 * vol
+        survey_t = vol * dens
+        survey_sigma = float(np.hypot(vol_sigma * dens, vol * 0.01 * dens))
+        open_t = (opening or {}).get(pid, round(survey_t * 0.9, 1))
+        receipts = round(float(rng.uniform(200, 400)), 2)
+        dispatches = round(float(rng.uniform(100, 300)), 2)
+        t_in = 25.0 if i == 1 else 0.0
+        t_out = 25.0 if i == 0 else 0.0
+        # book chosen so the three piles land in three cases: within, significant, out
+        target_pct = [0.8, -2.8, 6.5][i] * (1 if period_index == 0 else -0.5)
+        book = survey_t / (1.0 + target_pct / 100.0)
+        dispatches = open_t + receipts + t_in - t_out - book
+        book = open_t + receipts - dispatches + t_in - t_out
+        book_sigma = 0.002 * (receipts + abs(dispatches))
+        var = survey_t - book
+        var_sigma = float(np.hypot(survey_sigma, book_sigma))
+        pct = 100.0 * var / book
+        tol = _TOLERANCE_PCT[mat]
+        oot = abs(pct) > tol
+        adj = var if oot else 0.0
+        after = -12.5 if i == 2 else 0.0
+        scanned = float(np.mean((surface.count[inside] > 0)))
+        rows.append({
+            "pile_id": pid, "material": mat, "base_method": "level:100.0",
+            "area_m2": foot.area, "scanned_fraction": scanned,
+            "volume_m3": vol, "volume_sigma_m3": vol_sigma,
+            "volume_tin_m3": np.nan if i == 1 else vol * 1.002, "below_base_m3": 0.0,
+            "density_t_m3": dens, "survey_t": survey_t, "survey_dry_t": survey_t * (1 - moist),
+            "survey_sigma_t": survey_sigma, "opening_t": open_t, "receipts_t": receipts,
+            "dispatches_t": dispatches, "transfers_in_t": t_in, "transfers_out_t": t_out,
+            "book_t": book, "book_sigma_t": book_sigma, "variance_t": var,
+            "variance_pct": pct, "variance_sigma_t": var_sigma,
+            "significant": bool(abs(var) > K_SIGNIFICANCE * var_sigma),
+            "tolerance_pct": tol, "out_of_tolerance": bool(oot), "adjustment_t": adj,
+            "after_survey_net_t": after, "closing_t": book + adj + after,
+            "flags": "coverage_filled" if i == 1 else "",
+        })
+    piles = pd.DataFrame(rows, columns=PILE_COLUMNS)
+    footprints = gpd.GeoDataFrame({"pile_id": [r["pile_id"] for r in rows]},
+                                  geometry=foots, crs=CRS)
+    t0 = pd.Timestamp(f"{period}-03T06:30:00Z")
+    mv = []
+    for k in range(6):
+        pid = _CONES[k % 3][0]
+        mv.append({
+            "kind": "weighbridge", "reference": f"T{1000 + k}",
+            "time": t0 + pd.Timedelta(days=3 * k, hours=k), "pile_id": pid,
+            "tonnes": (1 if k % 2 == 0 else -1) * (30.0 + k), "scale_id": "WB1",
+            "counted": k != 5, "before_survey": k < 5,
+            "note": "=duplicate of T1004" if k == 5 else "", "source": "weighbridge.csv",
+            "line": k + 2,
+        })
+    mv.append({"kind": "belt", "reference": "BS-IN 2026-01-10/2026-01-11",
+               "time": t0 + pd.Timedelta(days=7), "pile_id": "P-COAL-1", "tonnes": 412.75,
+               "scale_id": "BS-IN", "counted": True, "before_survey": True, "note": "",
+               "source": "belt_scales.csv", "line": 2})
+    mv.append({"kind": "transfer", "reference": "TR-1", "time": t0 + pd.Timedelta(days=9),
+               "pile_id": "P-COAL-1", "tonnes": -25.0, "scale_id": None, "counted": True,
+               "before_survey": True, "note": "", "source": "transfers.csv", "line": 2})
+    movements = pd.DataFrame(mv, columns=MOVEMENT_COLUMNS)
+    journal = pd.DataFrame(
+        [{"pile_id": r["pile_id"], "material": r["material"], "adjustment_t": r["adjustment_t"],
+          "reason_code": "SV-OOT", "reason": "survey variance out of tolerance"}
+         for r in rows if r["out_of_tolerance"]], columns=JOURNAL_COLUMNS)
+    scales = pd.DataFrame([
+        {"scale_id": "BS-IN", "piles": "P-COAL-1, P-COAL-2", "tonnes": 812.5, "bias_pct": 1.1,
+         "bias_sigma_pct": 0.4, "flagged": True, "message": "shared bias on the piles it fed"},
+        {"scale_id": "WB1", "piles": "P-COAL-1, P-COAL-2, P-LIME-1", "tonnes": 190.0,
+         "bias_pct": -0.1, "bias_sigma_pct": 0.3, "flagged": False, "message": ""},
+    ], columns=SCALE_COLUMNS)
+    duplicates = pd.DataFrame([{"reference": "T1005", "kind": "exact",
+                                "detail": "same vehicle, tonnes and pile as T1004 within 10 min"}])
+    gap_cells = box(grid.west + c0 * CELL, grid.north - (r0 + 4) * CELL,
+                    grid.west + (c0 + 4) * CELL, grid.north - r0 * CELL)
+    coverage_gaps = gpd.GeoDataFrame({"pile_id": ["P-COAL-2"], "area_m2": [gap_cells.area]},
+                                     geometry=[gap_cells], crs=CRS)
+    extent = box(grid.west + 8 * CELL, grid.south, grid.east, grid.north).union(
+        box(grid.west, grid.south, grid.east, grid.north - 6 * CELL))
+    survey_extent = gpd.GeoDataFrame({"survey_date": [surface.date], "points": [123456]},
+                                     geometry=[extent], crs=CRS)
+    change = None
+    prev = None
+    if period_index > 0:
+        previous, _, _ = _surface(period_index - 1)
+        change = surface.z - previous.z
+        prev = previous.date
+    instant = datetime(2026, period_index + 1, 28, 11, 0, tzinfo=timezone.utc)
+    return CloseResult(
+        site_name="Test yard", period=period, crs=CRS, timezone="Europe/Berlin",
+        survey_date=surface.date, survey_instant=instant, previous_survey_date=prev,
+        piles=piles, footprints=footprints, movements=movements, journal=journal,
+        scale_diagnostics=scales, duplicates=duplicates, surface=surface,
+        thickness=thickness, change=change, coverage_gaps=coverage_gaps,
+        survey_extent=survey_extent,
+        run={"inputs": {"surveys/2026-01-28/scan.laz": "a" * 64, "piles.gpkg": "b" * 64},
+             "parameters": {"grid": {"cell_size_m": CELL}, "significance_k": K_SIGNIFICANCE},
+             "timings": {"survey": 1.25, "volumes": 0.5, "book": 0.1, "reconcile": 0.05}},
+    )
+
+
+@pytest.fixture(scope="session")
+def make_close_result():
+    """``make_close_result(period="2026-01", opening=None, period_index=0)``: a consistent
+    three-pile close; ``opening`` overrides the opening tonnes per pile."""
+    return _make_close_result
+
+
+@pytest.fixture
+def close_result() -> CloseResult:
+    return _make_close_result()
+
+
+@pytest.fixture(scope="session")
+def fake_cones() -> list[tuple]:
+    """The synthetic close's piles: (pile_id, material, dx, dy, radius m, height m, density, moisture)."""
+    return list(_CONES)
+
+
+# ----------------------------------------------------------------------------- comparing pile tables
+
+_TEXT_COLUMNS = ("pile_id", "material", "base_method", "flags")
+
+
+class PileRows:
+    """A close's pile table as comparable rows, from a DataFrame (ledger, GeoPackage layer)
+    or the workbook's Piles sheet: missing figures (None, NaN, empty text) all become None."""
+
+    @staticmethod
+    def norm(col: str, v):
+        if v is None or (isinstance(v, float) and np.isnan(v)):
+            return None
+        if col in _TEXT_COLUMNS:
+            return v or None
+        if col in ("significant", "out_of_tolerance"):
+            return bool(v)
+        return float(v)
+
+    def frame(self, df: pd.DataFrame) -> list[list]:
+        return [[self.norm(c, v) for c, v in zip(PILE_COLUMNS, row)]
+                for row in df[PILE_COLUMNS].itertuples(index=False, name=None)]
+
+    def workbook(self, path: Path, n: int) -> list[list]:
+        from openpyxl import load_workbook
+
+        ws = load_workbook(path)["Piles"]
+        header = [c.value for c in ws[1]]
+        return [[self.norm(c, ws.cell(row=i, column=header.index(c) + 1).value) for c in PILE_COLUMNS]
+                for i in range(2, 2 + n)]
+
+
+@pytest.fixture(scope="session")
+def pile_rows() -> PileRows:
+    """Pile tables as comparable rows (``pile_rows.frame(df)``, ``pile_rows.workbook(path, n)``)."""
+    return PileRows()
+
+
+# ----------------------------------------------------------------------------- a plane of points
+
+
+@pytest.fixture
+def plane_points():
+    """20,000 points (by default) on a 30 x 20 m plane rising 0.1 m per metre east from z = 50,
+    with 5 cm of Gaussian noise: ``x, y, z = plane_points(n=20000, seed=0)``."""
+    def make(n: int = 20000, seed: int = 0):
+        rng = np.random.default_rng(seed)
+        x = 1000 + rng.random(n) * 30
+        y = 2000 + rng.random(n) * 20
+        z = 50 + 0.1 * (x - 1000) + rng.normal(0, 0.05, n)
+        return x, y, z
+    return make

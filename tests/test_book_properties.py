@@ -99,6 +99,7 @@ def same(a: pd.DataFrame, b: pd.DataFrame) -> None:
 PROPS = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
+@pytest.mark.slow
 @PROPS
 @given(site_month(), st.randoms(use_true_random=False))
 def test_reordering_records_changes_no_balance(month, rnd):
@@ -116,6 +117,7 @@ def test_reordering_records_changes_no_balance(month, rnd):
     assert sorted(base.duplicates["reference"]) == sorted(other.duplicates["reference"])
 
 
+@pytest.mark.slow
 @PROPS
 @given(site_month(), st.integers(0, 50), st.floats(0.01, 0.99))
 def test_splitting_a_belt_interval_changes_no_balance(month, which, frac):
@@ -135,6 +137,7 @@ def test_splitting_a_belt_interval_changes_no_balance(month, which, frac):
     same(base.piles, other.piles)
 
 
+@pytest.mark.slow
 @PROPS
 @given(site_month(), st.sampled_from(ZONES))
 def test_time_zone_of_input_times_changes_no_balance(month, zone):

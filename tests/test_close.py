@@ -21,18 +21,8 @@ from inventory.close import STEPS, _publish, close_period
 from inventory.errors import InputError, RunError
 from inventory.export.layers import read_piles_layer
 from inventory.ledger.store import Ledger
-from inventory.model.results import PILE_COLUMNS
-from test_export_agreement import _norm, _rows
 
 pytestmark = pytest.mark.slow
-
-def _workbook_rows(path: Path, n: int):
-    from openpyxl import load_workbook
-
-    ws = load_workbook(path)["Piles"]
-    header = [c.value for c in ws[1]]
-    return [[_norm(c, ws.cell(row=i, column=header.index(c) + 1).value) for c in PILE_COLUMNS]
-            for i in range(2, 2 + n)]
 
 
 def _tree(root: Path) -> dict[str, str]:
@@ -79,16 +69,16 @@ def closed_site(tmp_path_factory, sample_site_path, survey_cache):
     return site
 
 
-def test_two_months_agree_in_ledger_workbook_and_layers(closed_site):
+def test_two_months_agree_in_ledger_workbook_and_layers(pile_rows, closed_site):
     with Ledger(closed_site / "ledger.sqlite") as led:
         for period in ("2026-09", "2026-10"):
             adopted = led.adopted(period).sort_values("pile_id")
             folder = closed_site / "closes" / period
-            ledger_rows = _rows(adopted)
+            ledger_rows = pile_rows.frame(adopted)
             assert len(ledger_rows) == 7
             layer = read_piles_layer(folder / f"piles-{period}.gpkg").sort_values("pile_id")
-            assert _rows(layer) == ledger_rows
-            book = _workbook_rows(folder / f"variance-{period}.xlsx", 7)
+            assert pile_rows.frame(layer) == ledger_rows
+            book = pile_rows.workbook(folder / f"variance-{period}.xlsx", 7)
             assert sorted(book, key=lambda r: r[0]) == ledger_rows
         hist = led.history()
     sep = hist[hist.period == "2026-09"].set_index("pile_id")

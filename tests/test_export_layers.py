@@ -14,11 +14,10 @@ import pytest
 from inventory.export.layers import LAYER_NAMES, read_piles_layer, write_layers
 from inventory.ledger.store import Ledger
 from inventory.model.results import PILE_COLUMNS
-from test_export_fake import make_close_result
 
 
 @pytest.fixture
-def result():
+def result(make_close_result):
     return make_close_result("2026-01")
 
 

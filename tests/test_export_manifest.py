@@ -9,7 +9,6 @@ import numpy as np
 import pytest
 
 from inventory.export.manifest import library_versions, sha256_file, write_manifest
-from test_export_fake import make_close_result
 
 
 def test_sha256_of_known_vectors(tmp_path):
@@ -23,7 +22,7 @@ def test_sha256_of_known_vectors(tmp_path):
     assert sha256_file(big) == hashlib.sha256(data).hexdigest()
 
 
-def test_manifest_content(tmp_path):
+def test_manifest_content(make_close_result, tmp_path):
     import numpy
     import rasterio
 
@@ -47,7 +46,7 @@ def test_manifest_content(tmp_path):
     assert text == json.dumps(doc, indent=2, sort_keys=True, ensure_ascii=False) + "\n"
 
 
-def test_same_close_same_manifest(tmp_path):
+def test_same_close_same_manifest(make_close_result, tmp_path):
     res = make_close_result("2026-01")
     a = write_manifest(res, tmp_path / "a.json").read_bytes()
     b = write_manifest(res, tmp_path / "b.json").read_bytes()
@@ -68,7 +67,7 @@ def test_versions_of_absent_packages(monkeypatch):
     assert library_versions()["lazrs"] == "not installed"
 
 
-def test_manifest_is_written_atomically(tmp_path, monkeypatch):
+def test_manifest_is_written_atomically(make_close_result, tmp_path, monkeypatch):
     from pathlib import Path
 
     res = make_close_result("2026-01")

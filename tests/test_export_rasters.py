@@ -11,11 +11,10 @@ import rasterio
 
 from inventory.export.rasters import write_change, write_thickness
 from inventory.io.rasters import NODATA
-from test_export_fake import make_close_result
 
 
 @pytest.fixture
-def result():
+def result(make_close_result):
     return make_close_result("2026-02", period_index=1)
 
 

@@ -11,7 +11,6 @@ from html.parser import HTMLParser
 import pytest
 
 from inventory.export.report import report_html, variance_colormap, write_report
-from test_export_fake import make_close_result
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG spec (ISO/IEC 15948), section 5.2
 
@@ -33,7 +32,7 @@ class _Collect(HTMLParser):
 
 
 @pytest.fixture
-def result():
+def result(make_close_result):
     return make_close_result("2026-02", period_index=1)
 
 
@@ -115,7 +114,7 @@ def test_chromium_renders_the_report(result, tmp_path):
     assert "Stock close 2026-02" in dom.stdout and dom.stdout.count("<img") == 2
 
 
-def test_quiet_month_and_a_pile_without_book(tmp_path):
+def test_quiet_month_and_a_pile_without_book(make_close_result, tmp_path):
     import pandas as pd
 
     res = make_close_result("2026-01")

@@ -7,10 +7,9 @@ import pandas as pd
 from openpyxl import load_workbook
 
 from inventory.export import write_workbook
-from test_export_fake import make_close_result
 
 
-def test_extra_tables_and_reason_codes_in_the_workbook(tmp_path):
+def test_extra_tables_and_reason_codes_in_the_workbook(make_close_result, tmp_path):
     res = make_close_result("2026-01")
     res.tables = {
         "Belt split": pd.DataFrame({
@@ -34,7 +33,7 @@ def test_extra_tables_and_reason_codes_in_the_workbook(tmp_path):
     assert "WITHIN_SIGMA" in texts and "inside the combined uncertainty" in texts
 
 
-def test_report_shows_the_survey_instant_in_site_time():
+def test_report_shows_the_survey_instant_in_site_time(make_close_result):
     # 11:00 UTC on 28 January is 12:00 in Europe/Berlin (CET, UTC+1; IANA tz database)
     from inventory.export.report import report_html
 

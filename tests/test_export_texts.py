@@ -13,14 +13,13 @@ import pytest
 from inventory.export.report import write_report
 from inventory.export.workbook import write_history_workbook, write_workbook
 from inventory.model.texts import CAUTIONS, REASON_CODES, ROW_LEGEND, SIGN_CONVENTION
-from test_export_fake import make_close_result
 
 EXPORT = Path(__file__).resolve().parents[1] / "inventory" / "export"
 LABEL = "Sign convention: "
 
 
 @pytest.fixture(scope="module")
-def written(tmp_path_factory):
+def written(make_close_result, tmp_path_factory):
     """The workbook (as openpyxl reads it back) and the report (as text) of one close."""
     from openpyxl import load_workbook
 
@@ -96,7 +95,7 @@ def test_same_row_legend_in_workbook_and_report(written):
     assert in_workbook == [ROW_LEGEND["out_of_tolerance"], ROW_LEGEND["significant"]]
 
 
-def test_history_workbook_notes_use_the_same_texts(tmp_path):
+def test_history_workbook_notes_use_the_same_texts(make_close_result, tmp_path):
     from openpyxl import load_workbook
 
     from inventory.ledger.store import Ledger

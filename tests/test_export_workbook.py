@@ -20,13 +20,12 @@ from inventory.export.workbook import (
 )
 from inventory.ledger.store import Ledger
 from inventory.model.results import PILE_COLUMNS
-from test_export_fake import make_close_result
 
 INPUTS = {"piles.gpkg": "b" * 64}
 
 
 @pytest.fixture
-def result():
+def result(make_close_result):
     return make_close_result("2026-01")
 
 
@@ -156,7 +155,7 @@ def test_summary_facts(book, result):
     assert facts["Piles"] == 3
 
 
-def test_nan_and_missing_values_become_empty_cells(tmp_path):
+def test_nan_and_missing_values_become_empty_cells(make_close_result, tmp_path):
     from openpyxl import load_workbook
 
     res = make_close_result("2026-01")
@@ -185,7 +184,7 @@ def test_write_replaces_atomically(result, tmp_path, monkeypatch):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["w.xlsx"]
 
 
-def test_history_workbook(tmp_path):
+def test_history_workbook(make_close_result, tmp_path):
     from openpyxl import load_workbook
 
     with Ledger(tmp_path / "ledger.sqlite") as led:
@@ -288,7 +287,7 @@ def test_libreoffice_reads_the_same_numbers(result, tmp_path):
         assert float(var[i][sb]) == pytest.approx(r.survey_t - r.book_t, rel=1e-12, abs=1e-9)
 
 
-def test_quiet_month_and_awkward_text(tmp_path):
+def test_quiet_month_and_awkward_text(make_close_result, tmp_path):
     """No movements, no adjustments, no diagnostics; a control character in a note."""
     import pandas as pd
     from openpyxl import load_workbook

@@ -17,15 +17,6 @@ from inventory.errors import CRSError, InputWarning, RunError
 from inventory.io.rasters import NODATA, TILE, read_raster, write_coverage, write_raster, write_surface
 from inventory.model.grid import Grid, Surface
 from inventory.survey.gridding import grid_points
-from test_export_fake import make_close_result
-
-
-def _cloud(n=20000, seed=0):
-    rng = np.random.default_rng(seed)
-    x = 1000 + rng.random(n) * 30
-    y = 2000 + rng.random(n) * 20
-    z = 50 + 0.1 * (x - 1000) + rng.normal(0, 0.05, n)
-    return x, y, z
 
 
 def _big():
@@ -38,7 +29,7 @@ def _big():
 
 
 @pytest.fixture
-def surface():
+def surface(make_close_result):
     return make_close_result("2026-01").surface
 
 
@@ -121,8 +112,8 @@ def test_failed_write_keeps_the_old_file(surface, tmp_path, monkeypatch):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.tif"]
 
 
-def test_surface_and_coverage_round_trip(tmp_path):
-    x, y, z = _cloud()
+def test_surface_and_coverage_round_trip(plane_points, tmp_path):
+    x, y, z = plane_points()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
     s = grid_points(g, x, y, z)
     path = write_surface(s, tmp_path / "surface.tif")
@@ -236,11 +227,11 @@ def test_gdalinfo_reads_the_raster(tmp_path):
 
 
 @pytest.mark.tools
-def test_gdalinfo_reads_surface_crs_and_nodata(tmp_path):
+def test_gdalinfo_reads_surface_crs_and_nodata(plane_points, tmp_path):
     # Reference: GDAL's own gdalinfo (Debian gdal-bin).
     if shutil.which("gdalinfo") is None:
         pytest.skip("gdalinfo (Debian package gdal-bin) is not installed")
-    x, y, z = _cloud()
+    x, y, z = plane_points()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
     path = write_surface(grid_points(g, x, y, z), tmp_path / "s.tif")
     out = subprocess.run(["gdalinfo", str(path)], capture_output=True, text=True, check=True).stdout

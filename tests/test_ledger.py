@@ -11,7 +11,6 @@ import pytest
 from inventory.errors import LedgerError, PeriodLockedError
 from inventory.ledger.store import BALANCE_COLUMNS, HISTORY_COLUMNS, SCHEMA_VERSION, Ledger
 from inventory.model.results import PILE_COLUMNS
-from test_export_fake import make_close_result
 
 INPUTS = {"surveys/2026-01-28/scan.laz": "1" * 64, "movements/2026-01/weighbridge.csv": "2" * 64}
 
@@ -43,7 +42,7 @@ def ledger_path(tmp_path):
     return tmp_path / "ledger.sqlite"
 
 
-def test_record_and_read_back_exactly(ledger_path):
+def test_record_and_read_back_exactly(make_close_result, ledger_path):
     res = make_close_result("2026-01")
     with Ledger(ledger_path) as led:
         close_id = led.record_close(res, INPUTS, "0.1.0", who="controller")
@@ -60,7 +59,7 @@ def test_record_and_read_back_exactly(ledger_path):
     assert closes.loc[0, "survey_instant_utc"] == "2026-01-28T11:00:00+00:00"
 
 
-def test_file_is_wal_with_foreign_keys_and_schema_version(ledger_path):
+def test_file_is_wal_with_foreign_keys_and_schema_version(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
         assert led.schema_version() == SCHEMA_VERSION
@@ -74,7 +73,7 @@ def test_file_is_wal_with_foreign_keys_and_schema_version(ledger_path):
     con.close()
 
 
-def test_who_defaults_to_the_logged_in_user(ledger_path, monkeypatch):
+def test_who_defaults_to_the_logged_in_user(make_close_result, ledger_path, monkeypatch):
     import getpass
 
     monkeypatch.setattr(getpass, "getuser", lambda: "night-shift")
@@ -85,7 +84,7 @@ def test_who_defaults_to_the_logged_in_user(ledger_path, monkeypatch):
         assert led.reopenings().loc[0, "reopened_by"] == "night-shift"
 
 
-def test_closed_period_is_locked(ledger_path):
+def test_closed_period_is_locked(make_close_result, ledger_path):
     res = make_close_result("2026-01")
     with Ledger(ledger_path) as led:
         assert not led.is_locked("2026-01")
@@ -97,7 +96,7 @@ def test_closed_period_is_locked(ledger_path):
     assert _dump(ledger_path) == before
 
 
-def test_reopen_needs_a_reason_and_keeps_everything(ledger_path):
+def test_reopen_needs_a_reason_and_keeps_everything(make_close_result, ledger_path):
     res = make_close_result("2026-01")
     with Ledger(ledger_path) as led:
         led.record_close(res, INPUTS, "0.1.0", who="a")
@@ -135,7 +134,7 @@ def test_reopen_needs_a_reason_and_keeps_everything(ledger_path):
     con.close()
 
 
-def test_reopen_of_a_period_never_closed(ledger_path):
+def test_reopen_of_a_period_never_closed(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         with pytest.raises(LedgerError, match="never closed"):
             led.reopen("2026-01", "why not")
@@ -144,7 +143,7 @@ def test_reopen_of_a_period_never_closed(ledger_path):
             led.reopen("2026-02", "why not")
 
 
-def test_opening_comes_from_the_adopted_closing_of_the_month_before(ledger_path):
+def test_opening_comes_from_the_adopted_closing_of_the_month_before(make_close_result, ledger_path):
     m1 = make_close_result("2026-01")
     with Ledger(ledger_path) as led:
         assert led.opening_for("2026-01") is None  # first close: opening.csv
@@ -165,13 +164,13 @@ def test_opening_comes_from_the_adopted_closing_of_the_month_before(ledger_path)
             led.opening_for("2026-03")
 
 
-def test_year_boundary_opening(ledger_path):
+def test_year_boundary_opening(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2025-12"), INPUTS, "0.1.0")
         assert led.opening_for("2026-01") is not None
 
 
-def test_order_of_closes_and_reopens(ledger_path):
+def test_order_of_closes_and_reopens(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
         led.record_close(make_close_result("2026-02", period_index=1), INPUTS, "0.1.0")
@@ -183,14 +182,14 @@ def test_order_of_closes_and_reopens(ledger_path):
         assert led.closed_periods() == ["2026-01"]
 
 
-def test_close_before_a_later_closed_period_is_refused(ledger_path):
+def test_close_before_a_later_closed_period_is_refused(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-03"), INPUTS, "0.1.0")
         with pytest.raises(LedgerError, match="later period 2026-03 is already closed"):
             led.record_close(make_close_result("2026-02"), INPUTS, "0.1.0")
 
 
-def test_failure_inside_the_transaction_leaves_the_ledger_as_before(ledger_path):
+def test_failure_inside_the_transaction_leaves_the_ledger_as_before(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
     before = _dump(ledger_path)
@@ -205,7 +204,7 @@ def test_failure_inside_the_transaction_leaves_the_ledger_as_before(ledger_path)
     assert _dump(ledger_path) == before
 
 
-def test_failure_halfway_through_the_rows(ledger_path, monkeypatch):
+def test_failure_halfway_through_the_rows(make_close_result, ledger_path, monkeypatch):
     import inventory.ledger.store as ledger_mod
 
     with Ledger(ledger_path) as led:
@@ -228,7 +227,7 @@ def test_failure_halfway_through_the_rows(ledger_path, monkeypatch):
     assert _dump(ledger_path) == before
 
 
-def test_failed_first_close_leaves_no_file(tmp_path):
+def test_failed_first_close_leaves_no_file(make_close_result, tmp_path):
     path = tmp_path / "ledger.sqlite"
     with Ledger(path) as led:
         assert led.history().empty
@@ -247,7 +246,7 @@ def test_failed_first_close_leaves_no_file(tmp_path):
     assert not any(p.name.startswith("other.sqlite") for p in tmp_path.iterdir())
 
 
-def test_two_first_closes_of_one_site(tmp_path):
+def test_two_first_closes_of_one_site(make_close_result, tmp_path):
     path = tmp_path / "ledger.sqlite"
     first, second = Ledger(path).open(), Ledger(path).open()
     try:
@@ -266,14 +265,14 @@ def test_two_first_closes_of_one_site(tmp_path):
         assert led.closes()["closed_by"].tolist() == ["a"]
 
 
-def test_bad_input_hash_rolls_back(ledger_path):
+def test_bad_input_hash_rolls_back(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         with pytest.raises(LedgerError, match="not a SHA-256"):
             led.record_close(make_close_result("2026-01"), {"a.csv": "xyz"}, "0.1.0")
         assert not led.is_locked("2026-01")
 
 
-def test_history_filters(ledger_path):
+def test_history_filters(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         m1 = make_close_result("2026-01")
         led.record_close(m1, INPUTS, "0.1.0")
@@ -319,7 +318,7 @@ def test_not_a_ledger(tmp_path):
         Ledger(other).open()
 
 
-def test_newer_schema_is_refused(ledger_path):
+def test_newer_schema_is_refused(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
     con = sqlite3.connect(ledger_path)
@@ -330,7 +329,7 @@ def test_newer_schema_is_refused(ledger_path):
         Ledger(ledger_path).open()
 
 
-def test_period_format_is_checked(ledger_path):
+def test_period_format_is_checked(make_close_result, ledger_path):
     with Ledger(ledger_path) as led:
         for bad in ("2026-1", "2026-00", "26-01", "2026/01"):
             with pytest.raises(LedgerError, match="YYYY-MM"):
@@ -353,7 +352,7 @@ def _as_version_1(path) -> None:
     con.close()
 
 
-def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(ledger_path):
+def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(make_close_result, ledger_path):
     res = make_close_result("2026-01")
     with Ledger(ledger_path) as led:
         led.record_close(res, INPUTS, "0.1.0")
@@ -378,7 +377,7 @@ def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(ledger_path):
     assert [a.replace(",NULL)", ")") for a in after[: len(before)]] == before
 
 
-def test_upgrade_that_cannot_write_leaves_the_file_unchanged(ledger_path, tmp_path):
+def test_upgrade_that_cannot_write_leaves_the_file_unchanged(make_close_result, ledger_path, tmp_path):
     with Ledger(ledger_path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
     _as_version_1(ledger_path)
@@ -397,7 +396,7 @@ def test_upgrade_that_cannot_write_leaves_the_file_unchanged(ledger_path, tmp_pa
     assert _dump(ledger_path) == before
 
 
-def test_scale_fit_history_takes_adopted_closes_of_the_months_before(ledger_path):
+def test_scale_fit_history_takes_adopted_closes_of_the_months_before(make_close_result, ledger_path):
     def close(period, variance):
         r = make_close_result(period)
         r.bias_rows = pd.DataFrame({"period": [period], "pile_id": ["P1"], "scale_id": ["BC1"],

@@ -73,6 +73,7 @@ def _volume(result, yard):
         return measure_piles(result.surface, piles, mats).iloc[0]
 
 
+@pytest.mark.slow
 def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
     yard, site, root = small_site
     serial = _run(site, tmp_path / "serial")

@@ -16,18 +16,10 @@ from inventory.survey.gridding import (
 )
 
 
-def _cloud(n=20000, seed=0):
-    rng = np.random.default_rng(seed)
-    x = 1000 + rng.random(n) * 30
-    y = 2000 + rng.random(n) * 20
-    z = 50 + 0.1 * (x - 1000) + rng.normal(0, 0.05, n)
-    return x, y, z
-
-
 @pytest.mark.parametrize("stat", ["mean", "median", "max"])
-def test_cell_statistic_matches_scipy(stat):
+def test_cell_statistic_matches_scipy(plane_points, stat):
     # Reference: scipy.stats.binned_statistic_2d on the same cell edges.
-    x, y, z = _cloud()
+    x, y, z = plane_points()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
     s = grid_points(g, x, y, z, stat)
     xe = g.west + np.arange(g.ncols + 1) * g.cell
@@ -39,8 +31,8 @@ def test_cell_statistic_matches_scipy(stat):
     np.testing.assert_array_equal(s.count, cnt.T[::-1].astype(int))
 
 
-def test_streaming_equals_one_shot_and_sd():
-    x, y, z = _cloud()
+def test_streaming_equals_one_shot_and_sd(plane_points):
+    x, y, z = plane_points()
     g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=1.0)
     acc = SurfaceAccumulator(g, "mean")
     for part in np.array_split(np.arange(len(z)), 7):

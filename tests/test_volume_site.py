@@ -109,6 +109,7 @@ def _covered(table, truth) -> list[bool]:
 
 
 # ----------------------------------------------------------------------------- volume step alone
+@pytest.mark.slow
 def test_simulated_surveys_interval_covers_truth():
     # The 95 % interval contains the true volume for at least 90 % of the piles of both
     # surveys (one simulator seed here; more seeds in the slow test below).

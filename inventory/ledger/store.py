@@ -446,6 +446,12 @@ class Ledger:
         ).fetchall()
         return [r[0] for r in rows]
 
+    def _later_adopted(self, period: str) -> str | None:
+        """The first period after ``period`` with an adopted close, if any."""
+        return self._db.execute(
+            "SELECT MIN(period) FROM closes WHERE status = 'adopted' AND period > ?", (period,)
+        ).fetchone()[0]
+
     def _adopted_close_id(self, period: str) -> int | None:
         row = self._db.execute(
             "SELECT close_id FROM closes WHERE period = ? AND status = 'adopted'", (period,)
@@ -623,17 +629,13 @@ class Ledger:
         """
         period = _check_period(result.period)
         state = self._begin_write()
-        con = self._db
         try:
             if self.is_locked(period):
                 raise PeriodLockedError(
                     f"{self.path}: period {period} is closed and locked; "
                     f"reopen it first (inventory reopen --period {period} --reason \"...\")"
                 )
-            later = con.execute(
-                "SELECT MIN(period) FROM closes WHERE status = 'adopted' AND period > ?",
-                (period,),
-            ).fetchone()[0]
+            later = self._later_adopted(period)
             if later is not None:
                 raise LedgerError(
                     f"{self.path}: cannot close {period}: the later period {later} is already "
@@ -767,10 +769,7 @@ class Ledger:
             close_id = self._adopted_close_id(period)
             if close_id is None:
                 raise LedgerError(f"{self.path}: period {period} is not closed; nothing to reopen")
-            later = con.execute(
-                "SELECT MIN(period) FROM closes WHERE status = 'adopted' AND period > ?",
-                (period,),
-            ).fetchone()[0]
+            later = self._later_adopted(period)
             if later is not None:
                 # its opening came from this period's closing
                 raise LedgerError(
