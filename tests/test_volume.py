@@ -12,7 +12,6 @@ import warnings
 
 import geopandas as gpd
 import numpy as np
-import pandas as pd
 import pytest
 import shapely
 from scipy import ndimage
@@ -22,10 +21,10 @@ from scipy.spatial.distance import pdist
 
 from inventory.errors import CoverageWarning, InputWarning
 from inventory.model.grid import Grid, Surface
+from inventory.site.load import Material
 from inventory.volume.measure import (
-    BaseSurfaces,
-    ErrorModel,
     VOLUME_COLUMNS,
+    BaseSurfaces,
     coverage_gaps,
     footprint_weights,
     measure_piles,
@@ -191,7 +190,7 @@ def sector(cx, cy, R, a0, a1):
     t = np.linspace(a0, a1, 40)
     return shapely.Polygon([(cx, cy)] + [(cx + R * np.cos(a), cy + R * np.sin(a)) for a in t])
 
-MATS = {"gravel": {"bulk_density_t_m3": 1.6, "density_sd_t_m3": 0.05, "moisture_pct": 4.0}}
+MATS = {"gravel": Material("gravel", bulk_density_t_m3=1.6, density_sd_t_m3=0.05, moisture_pct=4.0)}
 
 
 def piles_frame(polys, bases, ids=None, density=None):
@@ -553,7 +552,7 @@ def test_tonnes_wet_dry_and_sigma():
     # Dry tonnes = wet x (1 - moisture as a wet-basis fraction).
     assert r.survey_dry_t == pytest.approx(r.survey_t * (1 - 0.04))
     # Product of independent errors, first order: sigma_T^2 = (rho sigma_V)^2 + (V sigma_rho)^2.
-    assert r.survey_sigma_t == pytest.approx(np.hypot(1.6 * r.volume_sigma_m3, r.volume_m3 * m["density_sd_t_m3"]))
+    assert r.survey_sigma_t == pytest.approx(np.hypot(1.6 * r.volume_sigma_m3, r.volume_m3 * m.density_sd_t_m3))
     assert t.iloc[1].density_t_m3 == 2.1 and t.iloc[1].survey_t == pytest.approx(r.volume_m3 * 2.1)
     assert np.isnan(t.iloc[2].survey_t) and "no_density" in t.iloc[2]["flags"]
     assert list(t.columns) == VOLUME_COLUMNS
@@ -562,7 +561,7 @@ def test_tonnes_wet_dry_and_sigma():
 
 
 def test_materials_as_objects():
-    # The site's Material objects are attribute-style; both forms are accepted.
+    # Anything with the Material attributes will do (a notebook may pass its own objects).
     class Mat:
         bulk_density_t_m3 = 1.6
         density_sd_t_m3 = 0.05

@@ -33,6 +33,7 @@ import inventory._demo.simulate as demo_sim
 import inventory.survey.gridding as surface_mod
 from inventory.errors import CoverageWarning
 from inventory.model.grid import Grid
+from inventory.site.load import Material
 from inventory.volume.measure import BaseSurfaces, measure_piles
 
 #: Share of piles whose 95 % interval must contain the truth (the issue's bar).
@@ -59,8 +60,8 @@ def _footprints_local():
 
 
 def _materials():
-    return {m.name: {"bulk_density_t_m3": m.table_density_t_m3, "density_sd_t_m3": m.density_sd_t_m3,
-                     "moisture_pct": m.moisture_pct} for m in demo_sc.MATERIALS.values()}
+    return {m.name: Material(m.name, bulk_density_t_m3=m.table_density_t_m3, density_sd_t_m3=m.density_sd_t_m3,
+                             moisture_pct=m.moisture_pct) for m in demo_sc.MATERIALS.values()}
 
 
 # Call with all three arguments: lru_cache keys (1, 1) and (1, 1, 1.0) apart.

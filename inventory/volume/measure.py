@@ -33,23 +33,27 @@ import math
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping
+from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
 import pandas as pd
 import shapely
 from scipy import ndimage
 from scipy.interpolate import LinearNDInterpolator
-from scipy.spatial import Delaunay, QhullError
 from scipy.signal import fftconvolve
+from scipy.spatial import Delaunay, QhullError
 
-from inventory.volume.base import BaseModel, bilinear, fill_nearest, toe_base
-from inventory.site.load import parse_base
-from inventory.volume.tin import tin_volume
 from inventory.errors import CoverageWarning, CRSError, InputError, InputWarning
 from inventory.io.rasters import read_raster
-from inventory.model.grid import Grid, Surface
-from inventory.model.grid import lone_patches
+from inventory.model.grid import Grid, Surface, lone_patches
+from inventory.site.load import Material, parse_base
+from inventory.volume.base import BaseModel, bilinear, fill_nearest, toe_base
+from inventory.volume.tin import tin_volume
+
+if TYPE_CHECKING:
+    import geopandas as gpd
+
+    from inventory.site.load import Site
 
 __all__ = [
     "BaseSurfaces",
@@ -185,7 +189,7 @@ class BaseSurfaces:
         return cls(floor=out, floor_sigma_m=float(sigma), toe_ring_m=float(toe_ring_m))
 
     @classmethod
-    def from_site(cls, site: Any, grid: Grid) -> "BaseSurfaces":
+    def from_site(cls, site: "Site", grid: Grid) -> "BaseSurfaces":
         """Base inputs from a loaded site (``site.config.base``) on ``grid``."""
         cfg = site.config.base
         if getattr(cfg, "floor_raster", None):
@@ -305,16 +309,16 @@ class _PileWork:
     flags: list[str]
 
 
-def _material(materials: Mapping[str, Any], name: Any) -> Any:
+def _material(materials: Mapping[str, Material], name: object) -> Material | None:
     if name is None or (isinstance(name, float) and math.isnan(name)):
         return None
-    return materials.get(str(name)) if hasattr(materials, "get") else None
+    return materials.get(str(name))
 
 
-def _attr(obj: Any, key: str) -> float:
-    val = obj.get(key) if isinstance(obj, Mapping) else getattr(obj, key, None)
+def _number(value: object) -> float:
+    """A material table figure as a float; NaN when it is missing."""
     try:
-        return float(val)
+        return float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError):
         return float("nan")
 
@@ -625,7 +629,7 @@ def _measure_one(
 
 
 # ----------------------------------------------------------------------------- public
-def _check_crs(surface: Surface, piles: Any) -> None:
+def _check_crs(surface: Surface, piles: "gpd.GeoDataFrame") -> None:
     gcrs, pcrs = surface.grid.crs, getattr(piles, "crs", None)
     if not gcrs or pcrs is None:
         return
@@ -635,7 +639,7 @@ def _check_crs(surface: Surface, piles: Any) -> None:
         raise CRSError("piles", f"footprints are in {pcrs.to_string()}, the survey grid in {gcrs}", field="crs")
 
 
-def _footprints(piles: Any) -> list[tuple[str, shapely.Geometry | None, list[str]]]:
+def _footprints(piles: "gpd.GeoDataFrame") -> list[tuple[str, shapely.Geometry | None, list[str]]]:
     out = []
     for pid, geom in zip(piles["pile_id"], piles.geometry):
         flags: list[str] = []
@@ -654,8 +658,8 @@ def _footprints(piles: Any) -> list[tuple[str, shapely.Geometry | None, list[str
 
 def measure_piles(
     surface: Surface,
-    piles: Any,
-    materials: Mapping[str, Any],
+    piles: "gpd.GeoDataFrame",
+    materials: Mapping[str, Material],
     base: BaseSurfaces | None = None,
     *,
     errors: ErrorModel | None = None,
@@ -745,7 +749,7 @@ def measure_piles(
     return pd.DataFrame(rows, columns=VOLUME_COLUMNS)
 
 
-def _tonnes(row: dict[str, Any], rec: Any, materials: Mapping[str, Any], flags: list[str]) -> None:
+def _tonnes(row: dict[str, Any], rec: pd.Series, materials: Mapping[str, Material], flags: list[str]) -> None:
     mat = _material(materials, rec["material"])
     override = rec.get("density_t_m3") if hasattr(rec, "get") else None
     try:
@@ -753,10 +757,10 @@ def _tonnes(row: dict[str, Any], rec: Any, materials: Mapping[str, Any], flags: 
     except (TypeError, ValueError):
         override = float("nan")
     rho = override if np.isfinite(override) and override > 0 else (
-        _attr(mat, "bulk_density_t_m3") if mat is not None else float("nan")
+        _number(mat.bulk_density_t_m3) if mat is not None else float("nan")
     )
-    rho_sd = _attr(mat, "density_sd_t_m3") if mat is not None else float("nan")
-    moist = _attr(mat, "moisture_pct") if mat is not None else float("nan")
+    rho_sd = _number(mat.density_sd_t_m3) if mat is not None else float("nan")
+    moist = _number(mat.moisture_pct) if mat is not None else float("nan")
     if not np.isfinite(rho):
         flags.append("no_density")
     if not np.isfinite(rho_sd):
@@ -773,7 +777,7 @@ def _tonnes(row: dict[str, Any], rec: Any, materials: Mapping[str, Any], flags: 
 
 
 def thickness_raster(
-    surface: Surface, piles: Any, base: BaseSurfaces | None = None
+    surface: Surface, piles: "gpd.GeoDataFrame", base: BaseSurfaces | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """Base elevation and thickness (surface - base) on the survey grid.
 
@@ -807,7 +811,7 @@ def thickness_raster(
     return bz, th
 
 
-def coverage_gaps(surface: Surface, piles: Any) -> Any:
+def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame") -> "gpd.GeoDataFrame":
     """Unscanned parts of each footprint as polygons.
 
     Returns
