@@ -32,156 +32,20 @@ import numpy as np
 import pandas as pd
 
 from inventory.errors import LedgerError, PeriodLockedError
+from inventory.ledger.schema import (
+    BALANCE_COLUMNS,
+    BOOL_COLUMNS,
+    HISTORY_COLUMNS,
+    MIGRATIONS,
+    SCALE_FIT_COLUMNS,
+    SCHEMA,
+    SCHEMA_VERSION,
+    TEXT_COLUMNS,
+)
 from inventory.model.period import Period
-from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, CloseResult
+from inventory.model.results import JOURNAL_COLUMNS, CloseResult
 
 __all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
-
-#: Version of the table layout below; bumped on any change, checked on open. A ledger of an
-#: older version is brought up to date on open by :data:`_MIGRATIONS`, in one transaction.
-SCHEMA_VERSION = 2
-
-#: Pile columns stored per close, with their SQLite type (every figure of the close).
-_TEXT_COLUMNS = {"pile_id", "material", "base_method", "flags"}
-_BOOL_COLUMNS = {"significant", "out_of_tolerance"}
-BALANCE_COLUMNS = list(PILE_COLUMNS)
-
-#: Columns of :meth:`Ledger.history`.
-HISTORY_COLUMNS = [
-    "period", "pile_id", "material", "opening_t", "receipts_t", "dispatches_t",
-    "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t", "survey_t",
-    "survey_sigma_t", "variance_t", "variance_pct", "variance_sigma_t", "significant",
-    "tolerance_pct", "out_of_tolerance", "adjustment_t", "closing_t", "status",
-    "close_id", "closed_utc", "closed_by", "survey_date", "software_version",
-]
-
-
-def _sql_type(col: str) -> str:
-    if col in _TEXT_COLUMNS:
-        return "TEXT"
-    if col in _BOOL_COLUMNS:
-        return "INTEGER CHECK ({0} IN (0, 1) OR {0} IS NULL)".format(col)
-    return "REAL"
-
-
-_BALANCE_DDL = ",\n    ".join(
-    f"{c} {_sql_type(c)}" + (" NOT NULL" if c == "pile_id" else "") for c in BALANCE_COLUMNS
-)
-
-# Deletes and edits are refused by triggers, not by convention, so that a tool other than
-# ours (a DB browser) cannot quietly rewrite what was adopted.
-#: The belt-scale fit rows of each close (schema 2), kept and read-only like the rest.
-_SCALE_FIT_TABLE = """CREATE TABLE scale_fit_rows (
-    close_id      INTEGER NOT NULL REFERENCES closes(close_id),
-    line          INTEGER NOT NULL,
-    pile_id       TEXT NOT NULL,
-    scale_id      TEXT,
-    signed_t      REAL NOT NULL,
-    variance_t    REAL,
-    noise_sigma_t REAL,
-    PRIMARY KEY (close_id, line)
-);
-"""
-_SCALE_FIT_TRIGGERS = """CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows are kept forever'); END;
-CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
-    BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
-"""
-
-_SCHEMA = f"""
-CREATE TABLE schema_version (
-    version     INTEGER NOT NULL,
-    applied_utc TEXT NOT NULL
-);
-CREATE TABLE closes (
-    close_id             INTEGER PRIMARY KEY,
-    period               TEXT NOT NULL CHECK (period GLOB '[0-9][0-9][0-9][0-9]-[0-1][0-9]'),
-    site_name            TEXT NOT NULL,
-    crs                  TEXT NOT NULL,
-    survey_date          TEXT NOT NULL,
-    survey_instant_utc   TEXT NOT NULL,
-    previous_survey_date TEXT,
-    software_version     TEXT NOT NULL,
-    closed_utc           TEXT NOT NULL,
-    closed_by            TEXT NOT NULL,
-    status               TEXT NOT NULL CHECK (status IN ('adopted', 'superseded'))
-);
--- at most one adopted close per period: the lock
-CREATE UNIQUE INDEX closes_one_adopted ON closes(period) WHERE status = 'adopted';
-CREATE TABLE balances (
-    close_id INTEGER NOT NULL REFERENCES closes(close_id),
-    {_BALANCE_DDL},
-    PRIMARY KEY (close_id, pile_id)
-);
-CREATE TABLE journal (
-    close_id     INTEGER NOT NULL REFERENCES closes(close_id),
-    line         INTEGER NOT NULL,
-    pile_id      TEXT NOT NULL,
-    material     TEXT,
-    adjustment_t REAL NOT NULL,
-    reason_code  TEXT,
-    reason       TEXT,
-    PRIMARY KEY (close_id, line)
-);
-CREATE TABLE inputs (
-    close_id INTEGER NOT NULL REFERENCES closes(close_id),
-    path     TEXT NOT NULL,
-    sha256   TEXT NOT NULL CHECK (length(sha256) = 64),
-    PRIMARY KEY (close_id, path)
-);
-{_SCALE_FIT_TABLE}CREATE TABLE reopenings (
-    reopen_id    INTEGER PRIMARY KEY,
-    period       TEXT NOT NULL,
-    close_id     INTEGER NOT NULL REFERENCES closes(close_id),
-    reopened_utc TEXT NOT NULL,
-    reopened_by  TEXT NOT NULL,
-    reason       TEXT NOT NULL CHECK (length(trim(reason)) > 0)
-);
--- one row per period ever closed: for a person browsing the file
-CREATE VIEW periods AS
-    SELECT period,
-           MAX(status = 'adopted') AS locked,
-           MAX(CASE WHEN status = 'adopted' THEN close_id END) AS adopted_close_id,
-           COUNT(*) AS closes,
-           (SELECT COUNT(*) FROM reopenings r WHERE r.period = c.period) AS reopenings
-    FROM closes c GROUP BY period;
-CREATE TRIGGER closes_keep BEFORE DELETE ON closes
-    BEGIN SELECT RAISE(ABORT, 'closes are kept forever'); END;
-CREATE TRIGGER closes_only_supersede BEFORE UPDATE ON closes
-    WHEN NOT (OLD.status = 'adopted' AND NEW.status = 'superseded'
-              AND NEW.close_id = OLD.close_id AND NEW.period = OLD.period
-              AND NEW.closed_utc = OLD.closed_utc AND NEW.closed_by = OLD.closed_by)
-    BEGIN SELECT RAISE(ABORT, 'a close can only be superseded, not edited'); END;
-CREATE TRIGGER balances_keep BEFORE DELETE ON balances
-    BEGIN SELECT RAISE(ABORT, 'balances are kept forever'); END;
-CREATE TRIGGER balances_frozen BEFORE UPDATE ON balances
-    BEGIN SELECT RAISE(ABORT, 'balances cannot be edited'); END;
-CREATE TRIGGER journal_keep BEFORE DELETE ON journal
-    BEGIN SELECT RAISE(ABORT, 'journal lines are kept forever'); END;
-CREATE TRIGGER journal_frozen BEFORE UPDATE ON journal
-    BEGIN SELECT RAISE(ABORT, 'journal lines cannot be edited'); END;
-CREATE TRIGGER inputs_keep BEFORE DELETE ON inputs
-    BEGIN SELECT RAISE(ABORT, 'input hashes are kept forever'); END;
-CREATE TRIGGER inputs_frozen BEFORE UPDATE ON inputs
-    BEGIN SELECT RAISE(ABORT, 'input hashes cannot be edited'); END;
-{_SCALE_FIT_TRIGGERS}CREATE TRIGGER reopenings_keep BEFORE DELETE ON reopenings
-    BEGIN SELECT RAISE(ABORT, 'reopenings are kept forever'); END;
-CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
-    BEGIN SELECT RAISE(ABORT, 'reopenings cannot be edited'); END;
-"""
-
-
-#: Schema changes, from the version a ledger has to the next one. Each runs in one
-#: transaction with the new version row, so a ledger is either migrated or untouched.
-#: 1 -> 2: ``balances.base_sigma_t`` (the fixed-base part of the survey sigma, NULL for
-#: closes made before: no shared part known) and the belt-scale fit rows of each close.
-_MIGRATIONS: dict[int, str] = {
-    1: "ALTER TABLE balances ADD COLUMN base_sigma_t REAL;\n" + _SCALE_FIT_TABLE + _SCALE_FIT_TRIGGERS,
-}
-
-#: Columns of :meth:`Ledger.scale_fit_history` (as ``inventory.stock.reconcile.BIAS_ROW_COLUMNS``).
-SCALE_FIT_COLUMNS = ["period", "pile_id", "scale_id", "signed_t", "variance_t", "noise_sigma_t"]
-
 
 def _utc_now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
@@ -304,7 +168,7 @@ class Ledger:
         if own_tx:
             con.execute("BEGIN IMMEDIATE")
         try:
-            for stmt in _split_sql(_SCHEMA):
+            for stmt in _split_sql(SCHEMA):
                 con.execute(stmt)
             con.execute(
                 "INSERT INTO schema_version (version, applied_utc) VALUES (?, ?)",
@@ -401,7 +265,7 @@ class Ledger:
         transaction (the new version row is written in the same transaction)."""
         con = self._db
         while version < SCHEMA_VERSION:
-            script = _MIGRATIONS.get(version)
+            script = MIGRATIONS.get(version)
             if script is None:
                 raise LedgerError(
                     f"{self.path}: ledger schema version {version} is older than this tool's "
@@ -795,9 +659,9 @@ class Ledger:
 def _typed(df: pd.DataFrame) -> pd.DataFrame:
     """SQLite hands back ints for booleans and None for NULL reals; restore the types."""
     for col in df.columns:
-        if col in _BOOL_COLUMNS:
+        if col in BOOL_COLUMNS:
             df[col] = df[col].map(lambda v: None if v is None else bool(v)).astype(object)
-        elif col in _TEXT_COLUMNS or col in ("period", "status", "closed_utc", "closed_by",
+        elif col in TEXT_COLUMNS or col in ("period", "status", "closed_utc", "closed_by",
                                              "survey_date", "software_version"):
             continue
         elif col == "close_id":
