@@ -258,12 +258,9 @@ def _write_las(path: Path, points: np.ndarray, gps_time: np.ndarray, range_m: np
     las.intensity = np.clip(40000.0 * (1.0 - range_m / 120.0), 1, 65535).astype(np.uint16)
     las.return_number = np.ones(len(points), np.uint8)
     las.number_of_returns = np.ones(len(points), np.uint8)
-    # Uncompressed point records, whatever the name says: laspy chooses compression by a
-    # path's suffix and ignores do_compress, and this file was always written under a
-    # temporary name without ".laz", so the committed sample_site holds LAS data here.
-    # Compressing it would change the sample's bytes (tests/test_demo_determinism.py).
+    # Written to an open file, laspy compresses only when asked: a .laz must hold LAZ data.
     with atomic_path(path) as tmp, open(tmp, "wb+") as out:
-        las.write(out, do_compress=False)
+        las.write(out, do_compress=path.suffix.lower() == ".laz")
 
 
 def _write_csv(path: Path, frame: pd.DataFrame) -> None:
