@@ -180,14 +180,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dir", type=Path, metavar="DIR", help="destination folder (created)")
     p.add_argument("--seed", type=int, default=None, help="simulator seed (default: the committed sample's)")
 
-    scale_out = argparse.ArgumentParser(add_help=False)
-    scale_out.add_argument("--workers", type=int, default=None, metavar="N",
+    parallel = argparse.ArgumentParser(add_help=False)
+    parallel.add_argument("--workers", type=int, default=None, metavar="N",
                            help="run on a local Dask cluster of N worker processes")
-    scale_out.add_argument("--scheduler", default=None, metavar="ADDRESS",
+    parallel.add_argument("--scheduler", default=None, metavar="ADDRESS",
                            help="run on an existing Dask cluster (e.g. tcp://host:8786)")
-    scale_out.add_argument("-q", "--quiet", action="store_true", help="no progress lines")
+    parallel.add_argument("-q", "--quiet", action="store_true", help="no progress lines")
 
-    p = sub.add_parser("survey", parents=[common, scale_out], help="process surveys: classified cloud, surface, coverage",
+    p = sub.add_parser("survey", parents=[common, parallel], help="process surveys: classified cloud, surface, coverage",
                        description="Turn each survey's point clouds into a cleaned, classified cloud and a stockpile "
                                    "surface raster. Several surveys run side by side with --workers or --scheduler.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
@@ -198,7 +198,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, default=None, metavar="DIR",
                    help="output folder (default SITE/surveys-processed/DATE; with several surveys DIR/DATE)")
 
-    p = sub.add_parser("close", parents=[common, scale_out], help="close one month: volumes, book, variance, outputs, ledger",
+    p = sub.add_parser("close", parents=[common, parallel], help="close one month: volumes, book, variance, outputs, ledger",
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM", help="the month to close")
