@@ -14,6 +14,7 @@ Examples
 --------
 >>> import numpy as np, geopandas as gpd, shapely
 >>> from inventory.model.grid import Grid, Surface
+>>> from inventory.site.load import Material
 >>> from inventory.volume.measure import measure_piles, BaseSurfaces
 >>> g = Grid(0.0, 20.0, 0.5, 40, 40)
 >>> x, y = g.centers()
@@ -21,7 +22,7 @@ Examples
 >>> s = Surface(g, z, np.full(g.shape, 5, np.int32), np.full(g.shape, 0.01), np.zeros(g.shape, bool))
 >>> piles = gpd.GeoDataFrame({"pile_id": ["P1"], "material": ["sand"], "base": ["level:0"],
 ...     "density_t_m3": [None]}, geometry=[shapely.Point(10, 10).buffer(7)])
->>> mats = {"sand": {"bulk_density_t_m3": 1.6, "density_sd_t_m3": 0.05, "moisture_pct": 5.0}}
+>>> mats = {"sand": Material("sand", bulk_density_t_m3=1.6, density_sd_t_m3=0.05, moisture_pct=5.0)}
 >>> t = measure_piles(s, piles, mats, BaseSurfaces())
 >>> round(float(t.volume_m3[0]) / (np.pi * 25 * 4 / 3), 2)
 1.0
