@@ -24,6 +24,7 @@ def test_thickness_on_the_survey_grid(result, tmp_path):
         assert ds.transform == result.surface.grid.transform
         assert ds.crs.to_epsg() == 25832 and ds.nodata == NODATA
         assert ds.descriptions == (f"thickness above base {result.survey_date}",)
+        assert ds.units == ("m",)
         band = ds.read(1, masked=True)
     assert np.array_equal(band.mask, ~np.isfinite(result.thickness))
     ok = np.isfinite(result.thickness)
@@ -34,7 +35,9 @@ def test_change_names_both_surveys(result, tmp_path):
     assert result.change is not None and result.previous_survey_date
     path = write_change(result, tmp_path / "change.tif")
     with rasterio.open(path) as ds:
-        assert ds.descriptions == (f"surface change {result.previous_survey_date} to {result.survey_date}",)
+        assert ds.descriptions == (f"surface change {result.previous_survey_date} to {result.survey_date}"
+                                   " (later minus earlier: positive where material was added)",)
+        assert ds.units == ("m",)
         band = ds.read(1, masked=True).filled(np.nan)
     np.testing.assert_array_equal(band, np.where(np.isfinite(result.change), result.change.astype("float32"), np.nan))
 

@@ -8,6 +8,8 @@ import shutil
 import subprocess
 import warnings
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 import rasterio
@@ -101,10 +103,11 @@ def test_failed_write_keeps_the_old_file(surface, tmp_path, monkeypatch):
     path = write_raster(tmp_path / "s.tif", surface.z, surface.grid)
     before = path.read_bytes()
 
-    def broken(*args, **kwargs):
+    def broken(src, dst, **kwargs):
+        Path(dst).write_bytes(b"II*\0 half a file")  # the copy dies halfway
         raise OSError("disk full")
 
-    monkeypatch.setattr("rasterio.io.DatasetWriter.build_overviews", broken)
+    monkeypatch.setattr("rasterio.shutil.copy", broken)
     g, z = _big()
     with pytest.raises(OSError, match="disk full"):
         write_raster(path, z, g)
@@ -239,3 +242,51 @@ def test_gdalinfo_reads_surface_crs_and_nodata(plane_points, tmp_path):
     assert "NoData Value=-9999" in out
     assert f"Pixel Size = ({g.cell:.15f},-{g.cell:.15f})" in out
     assert "COMPRESSION=DEFLATE" in out
+
+
+# ----------------------------------------------------------------------------- cloud optimized
+_VALIDATOR = "osgeo_utils.samples.validate_cloud_optimized_geotiff"
+
+
+def _gdal_python() -> str | None:
+    """The system Python with GDAL's own bindings (Debian's python3-gdal), if any."""
+    import shutil
+    import subprocess
+
+    exe = shutil.which("python3", path="/usr/bin")
+    if exe is None:
+        return None
+    probe = subprocess.run([exe, "-c", f"import {_VALIDATOR}"], capture_output=True)
+    return exe if probe.returncode == 0 else None
+
+
+@pytest.mark.tools
+@pytest.mark.parametrize("dtype", ["float32", "int32"])
+def test_gdal_validates_the_cloud_optimized_layout(tmp_path, dtype):
+    # Reference: GDAL's own COG validator (validate_cloud_optimized_geotiff.py, shipped with
+    # GDAL's Python utilities), on a grid big enough to carry overviews.
+    import subprocess
+
+    exe = _gdal_python()
+    if exe is None:
+        pytest.skip("GDAL's Python utilities (Debian python3-gdal) are not installed")
+    g, z = _big()
+    bands = z if dtype == "float32" else np.where(np.isfinite(z), z * 100, 0).astype("int32")
+    path = write_raster(tmp_path / "cog.tif", bands, g, dtype=dtype, nodata=NODATA if dtype == "float32" else -1)
+    out = subprocess.run([exe, "-m", _VALIDATOR, "--full-check=yes", str(path)], capture_output=True, text=True)
+    assert out.returncode == 0, out.stdout + out.stderr
+    assert "is a valid cloud optimized GeoTIFF" in out.stdout
+
+
+def test_layout_and_units_as_written(tmp_path):
+    # GDAL's COG driver writes its structural metadata ("ghost area") right after the TIFF
+    # header, with the image directories before the data (GDAL COG driver documentation).
+    g, z = _big()
+    path = write_raster(tmp_path / "cog.tif", z, g, descriptions=["thickness"], units=["m"])
+    head = path.read_bytes()[:1024]
+    assert b"LAYOUT=IFDS_BEFORE_DATA" in head
+    with rasterio.open(path) as ds:
+        assert ds.units == ("m",)
+        assert ds.descriptions == ("thickness",)
+        assert ds.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG"
+

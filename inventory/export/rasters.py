@@ -19,7 +19,7 @@ __all__ = ["write_thickness", "write_change"]
 def write_thickness(result: CloseResult, path: str | Path) -> Path:
     """The material thickness above each pile's base (metres, float32; nodata outside piles)."""
     return write_raster(path, result.thickness, result.surface.grid,
-                        descriptions=[f"thickness above base {result.survey_date}"])
+                        descriptions=[f"thickness above base {result.survey_date}"], units=["m"])
 
 
 def write_change(result: CloseResult, path: str | Path) -> Path:
@@ -33,4 +33,6 @@ def write_change(result: CloseResult, path: str | Path) -> Path:
     if result.change is None:
         raise ValueError(f"close {result.period}: no change raster (no earlier surface)")
     return write_raster(path, result.change, result.surface.grid,
-                        descriptions=[f"surface change {result.previous_survey_date} to {result.survey_date}"])
+                        descriptions=[f"surface change {result.previous_survey_date} to {result.survey_date}"
+                                      " (later minus earlier: positive where material was added)"],
+                        units=["m"])

@@ -1,10 +1,10 @@
 """GeoTIFF rasters on a :class:`~inventory.model.grid.Grid`: one writer, one reader.
 
-:func:`write_raster` writes bands as a tiled (256 x 256), DEFLATE-compressed GeoTIFF with
-internal overviews, CRS, nodata and band descriptions, through
-:func:`inventory.io.atomic.atomic_path` (the file appears only when complete). The bytes
-depend only on the arrays, the grid and the options, so writing the same data twice gives
-identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
+:func:`write_raster` writes bands as a Cloud Optimized GeoTIFF (GDAL's COG driver: tiles of
+256 x 256, DEFLATE, internal overviews, the main image's directory first) with CRS, nodata,
+band descriptions and units, through :func:`inventory.io.atomic.atomic_path` (the file
+appears only when complete). The bytes depend only on the arrays, the grid and the options,
+so writing the same data twice gives identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
 rasters written with it.
 
 :func:`read_raster` reads one band with NaN for nodata, with its grid, or resampled onto
@@ -34,14 +34,6 @@ COVERAGE_NODATA = -1
 TILE = 256
 
 
-def _overview_factors(shape: tuple[int, int]) -> list[int]:
-    factors, f = [], 2
-    while max(shape) / f >= TILE / 2 and min(shape) / f >= 1:
-        factors.append(f)
-        f *= 2
-    return factors
-
-
 def write_raster(
     path: str | Path,
     bands: np.ndarray | Sequence[np.ndarray],
@@ -50,8 +42,9 @@ def write_raster(
     nodata: float = NODATA,
     dtype: str = "float32",
     descriptions: Sequence[str] = (),
+    units: Sequence[str] = (),
 ) -> Path:
-    """Write bands on ``grid`` as a tiled, DEFLATE-compressed GeoTIFF with overviews.
+    """Write bands on ``grid`` as a Cloud Optimized GeoTIFF (tiled, DEFLATE, overviews).
 
     Parameters
     ----------
@@ -69,6 +62,9 @@ def write_raster(
         nearest-neighbour overviews.
     descriptions : sequence of str
         Band descriptions (shown by ``gdalinfo`` and GIS layer properties), band 1 first.
+    units : sequence of str
+        Band unit types (``"m"`` for elevations and thicknesses), band 1 first; a band without
+        one has none.
 
     Returns
     -------
@@ -82,9 +78,7 @@ def write_raster(
     CRSError
         The grid has no CRS, or one rasterio does not know.
     """
-    import rasterio
     from rasterio.crs import CRS
-    from rasterio.enums import Resampling
     from rasterio.errors import CRSError as RioCRSError
 
     path = Path(path)
@@ -106,26 +100,31 @@ def write_raster(
         if np.any(data & (written == np.dtype(dtype).type(nodata))):
             raise ValueError(f"{path}: data contain the nodata value {nodata}; choose another")
         out.append(written)
+    from rasterio.io import MemoryFile
+    from rasterio.shutil import copy as copy_dataset
+
     profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(out), dtype=dtype,
-                   crs=grid.crs, transform=grid.transform, nodata=nodata, tiled=True,
-                   blockxsize=TILE, blockysize=TILE, compress="deflate", predictor=3 if floating else 2,
-                   BIGTIFF="IF_SAFER")
-    with atomic_path(path) as tmp:
-        with rasterio.open(tmp, "w", **profile) as dst:
+                   crs=grid.crs, transform=grid.transform, nodata=nodata)
+    # GDAL's COG driver only copies a finished dataset: build it in memory, then copy it into
+    # the layout the COG specification asks for (OGC 21-026).
+    with MemoryFile() as mem:
+        with mem.open(**profile) as ds:
             for i, arr in enumerate(out, start=1):
-                dst.write(arr, i)
+                ds.write(arr, i)
                 if i - 1 < len(descriptions):
-                    dst.set_band_description(i, descriptions[i - 1])
-            factors = _overview_factors(grid.shape)
-            if factors:
-                dst.build_overviews(factors, Resampling.average if floating else Resampling.nearest)
-                dst.update_tags(ns="rio_overview", resampling="average" if floating else "nearest")
+                    ds.set_band_description(i, descriptions[i - 1])
+                if i - 1 < len(units) and units[i - 1]:
+                    ds.set_band_unit(i, units[i - 1])
+        with mem.open() as src, atomic_path(path) as tmp:
+            copy_dataset(src, tmp, driver="COG", BLOCKSIZE=TILE, COMPRESS="DEFLATE",
+                         PREDICTOR="FLOATING_POINT" if floating else "STANDARD",
+                         OVERVIEW_RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER")
     return path
 
 
 def write_surface(surface: Surface, path: str | Path) -> Path:
     """The surface elevations (float32, nodata :data:`NODATA`)."""
-    return write_raster(path, surface.z, surface.grid,
+    return write_raster(path, surface.z, surface.grid, units=["m"],
                         descriptions=[f"surface elevation m ({surface.meta.get('statistic', 'mean')})"])
 
 
