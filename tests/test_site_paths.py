@@ -274,3 +274,12 @@ def test_check_on_site_toml_says_to_give_the_folder(good_site, capsys):
     assert main(["check", str(good_site / "site.toml")]) == 2
     assert (f"error: {good_site / 'site.toml'}: is a file, not a site folder (give the folder that holds site.toml)"
             in capsys.readouterr().err)
+
+
+def test_a_default_floor_raster_linked_outside_is_refused(good_site, tmp_path, capsys):
+    elsewhere = tmp_path / "floor.tif"
+    elsewhere.write_bytes(b"not read")
+    (good_site / "base").mkdir()
+    (good_site / "base" / "floor.tif").symlink_to(elsewhere)
+    assert refused(good_site, capsys) == [
+        f"site/site.toml: base.floor_raster: 'base/floor.tif' is outside the site folder (refused; {OUTSIDE})"]

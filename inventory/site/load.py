@@ -538,8 +538,8 @@ class _Loader:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
         if text is not None:
             return self._config_path(text, "base.floor_raster")
-        default = self.root / "base" / "floor.tif"
-        return default if default.is_file() and not self.outside(default) else None
+        default = "base/floor.tif"
+        return self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
 
     def _config_path(self, text: str | None, key: str) -> Path | None:
         """A file named in site.toml, relative to the site folder (or absolute): it must exist,
