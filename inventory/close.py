@@ -343,7 +343,8 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
     change = _change(run, surface)
     movements = book.movements[MOVEMENT_COLUMNS] if len(book.movements) else pd.DataFrame(columns=MOVEMENT_COLUMNS)
     inputs = {
-        str(p.relative_to(site.root)): _sha256(p)
+        # relative to the site folder; a file site.toml allows outside it shows as ../...
+        Path(os.path.relpath(p, site.root)).as_posix(): _sha256(p)
         for p in _site_inputs(site, [ref.date], period)
     }
     return CloseResult(

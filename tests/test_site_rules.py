@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from inventory.cli import main
 from inventory.errors import InputErrors, InputWarning, Problem
 from inventory.io.tables import read_table, table_schema
 from inventory.model.period import Period
@@ -269,3 +270,79 @@ def test_net_one_print_step_off_is_accepted_by_check_and_by_book(good_site):
     first = book.movements.set_index("reference").loc["T1"]
     assert first.tonnes == pytest.approx(24.42, abs=1e-12)   # booked at gross - tare, not the printed net
     assert np.isclose(book.piles.set_index("pile_id").loc["A", "receipts_t"], 24.42 + 500.0)
+
+
+# --- plausible weights ---------------------------------------------------------------------
+CAPPED = {**SCALES, "WB1": Scale(id="WB1", kind="weighbridge", accuracy_class="III", scale_interval_kg=20.0,
+                                 max_capacity_t=60.0)}
+
+
+def test_a_gross_above_the_weighbridge_capacity_is_refused():
+    _, problems = check("weighbridge", [ticket(gross_t=60.0, tare_t=15.0), ticket(ticket="T2", gross_t=60.02, tare_t=15.0)],
+                        CAPPED)
+    assert [str(p) for p in problems] == [
+        f"{WB} line 3: gross_t: gross 60.02 t is above the capacity 60 t of weighbridge 'WB1' "
+        "(site.toml [[scales]] max_capacity_t)"]
+
+
+def test_without_a_capacity_only_the_absurd_gross_is_refused():
+    assert rules.MAX_TICKET_GROSS_T == 1000.0
+    _, problems = check("weighbridge", [ticket(gross_t=640.0, tare_t=260.0), ticket(ticket="T2", gross_t=1e12, tare_t=15.0)])
+    assert [(p.where, p.field) for p in problems] == [(3, "gross_t")]
+    assert problems[0].why.startswith("gross 1e+12 t is above 1000 t, more than any vehicle a weighbridge weighs")
+
+
+def test_a_stated_capacity_above_the_default_limit_is_honoured():
+    train = {"WB1": Scale(id="WB1", kind="weighbridge", accuracy_class="IIII", scale_interval_kg=500.0,
+                          max_capacity_t=12000.0)}
+    _, problems = check("weighbridge", [ticket(gross_t=9000.0, tare_t=2500.0)], train)
+    assert problems == []
+
+
+def test_max_capacity_t_in_site_toml_is_applied_by_check(good_site, capsys):
+    toml = good_site / "site.toml"
+    toml.write_text(toml.read_text().replace("scale_interval_kg = 20\n", "scale_interval_kg = 20\nmax_capacity_t = 39\n"))
+    before = _files(good_site)
+    assert main(["check", str(good_site)]) == 2
+    assert _files(good_site) == before
+    assert [line for line in capsys.readouterr().err.splitlines() if line.startswith("error:")] == [
+        "error: site/movements/2026-10/weighbridge.csv line 2: gross_t: gross 40 t is above the capacity 39 t of "
+        "weighbridge 'WB1' (site.toml [[scales]] max_capacity_t)"]
+
+
+def _files(root) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+# --- a movement dated outside its folder's month -----------------------------------------
+def test_a_ticket_outside_the_month_names_the_month_it_belongs_to():
+    frame = pd.DataFrame([ticket(time=T("2026-10-31T23:30+01:00")), ticket(ticket="T2", time=T("2026-11-01T00:30+01:00")),
+                          ticket(ticket="T3", time=T("2026-09-30T23:59+02:00"))])
+    # Europe/Berlin: October closes at local midnight, 2026-10-31T23:00Z (CET), opens 2026-09-30T22:00Z (CEST)
+    _, problems = rules.check_weighbridge(frame, scales=SCALES, pile_ids=PILES, materials=MATERIALS, path=WB,
+                                          period=Period.parse("2026-10"), timezone="Europe/Berlin")
+    assert [str(p) for p in problems] == [
+        f"{WB} line 3: time: 2026-11-01T00:30:00+01:00 falls in 2026-11, not in 2026-10 of its folder; "
+        "the ticket belongs in movements/2026-11/",
+        f"{WB} line 4: time: 2026-09-30T23:59:00+02:00 falls in 2026-09, not in 2026-10 of its folder; "
+        "the ticket belongs in movements/2026-09/"]
+
+
+def test_a_transfer_outside_the_month_is_refused_by_movements_checked():
+    with pytest.raises(InputErrors) as err:
+        Movements.checked("2026-10", transfers=pd.DataFrame([transfer(time=T("2026-11-02T10:00+01:00"))]),
+                          scales=SCALES, pile_ids=PILES, materials=MATERIALS, timezone="Europe/Berlin")
+    assert [str(p) for p in err.value.problems] == [
+        f"{TRANSFERS.split('/')[-1]} line 2: time: 2026-11-02T10:00:00+01:00 falls in 2026-11, not in 2026-10 "
+        "of its folder; the transfer belongs in movements/2026-11/"]
+
+
+def test_a_ticket_outside_its_folder_month_is_refused_by_check(good_site, capsys):
+    wb = good_site / "movements/2026-10/weighbridge.csv"
+    wb.write_text(wb.read_text().replace("T2,2026-10-03T09:30:00+02:00", "T2,2026-11-03T09:30:00+01:00"))
+    before = _files(good_site)
+    assert main(["check", str(good_site)]) == 2
+    assert _files(good_site) == before
+    assert [line for line in capsys.readouterr().err.splitlines() if line.startswith("error:")] == [
+        "error: site/movements/2026-10/weighbridge.csv line 3: time: 2026-11-03T09:30:00+01:00 falls in 2026-11, "
+        "not in 2026-10 of its folder; the ticket belongs in movements/2026-11/"]

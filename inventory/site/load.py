@@ -60,6 +60,13 @@ _LEVEL_BASE = re.compile(r"^level:(-?\d+(\.\d+)?)$")
 #: Overlap between two footprints below this many square metres is digitising noise, not an
 #: overlap (a shared toe line drawn twice); common practice for vector QA at survey scale.
 OVERLAP_TOLERANCE_M2 = 0.01
+#: Deepest nesting of tables and arrays accepted in site.toml. The deepest the schema uses is
+#: four levels (``machines.<id>.rail_origin``'s numbers); far deeper is not a site file, and
+#: reading it would exhaust Python's recursion limit.
+MAX_TOML_DEPTH = 16
+#: What every refusal of a path outside the site folder says.
+_OUTSIDE_WHY = ("inputs stay inside the site folder unless site.toml sets "
+                "[paths] allow_outside = true")
 
 
 # ----------------------------------------------------------------------------- plain objects
@@ -84,6 +91,7 @@ class Scale:
     direction: str | None = None  # belts: "in" feeds piles, "out" reclaims
     scale_interval_kg: float | None = None
     in_service: bool = True
+    max_capacity_t: float | None = None  # weighbridges: heaviest gross it may weigh
 
 
 @dataclass(frozen=True)
@@ -169,11 +177,13 @@ class Movements:
         scales: Mapping[str, Scale],
         pile_ids: Collection[str],
         materials: Collection[str],
+        timezone: ZoneInfo | str | None = None,
     ) -> Movements:
         """Movements from hand-built tables, checked by the rules the site loader applies.
 
         Tables left out have no records. Rows without ``source`` / ``line`` columns are named
-        ``<table>.csv`` line 2, 3, ... in messages.
+        ``<table>.csv`` line 2, 3, ... in messages. With the site's ``timezone``, a ticket or
+        transfer dated outside ``period`` is an error, as in a site folder.
 
         Raises
         ------
@@ -183,6 +193,7 @@ class Movements:
         """
         frames, problems = check_movements(
             weighbridge, belt_scales, routing, transfers, scales=scales, pile_ids=pile_ids, materials=materials,
+            period=period if timezone is not None else None, timezone=timezone,
         )
         if any(p.severity == "error" for p in problems):
             raise InputErrors(problems)
@@ -347,44 +358,76 @@ class _Loader:
     """Collects problems while reading one site folder; see :func:`check_site`."""
 
     def __init__(self, root: Path) -> None:
-        self.root = root
+        # Every path is built on the absolute folder, so a path from site.toml resolves against
+        # the site folder whether the folder was given relative or absolute; messages show
+        # paths as the folder was given.
+        self.given = root
+        self.root = root.absolute()
         self.problems: list[Problem] = []
+        self.allow_outside = False
+        self.refused: set[tuple] = set()  # site.toml keys the schema refused
 
     # -- helpers
     def rel(self, path: Path) -> str:
         try:
-            return str(path.relative_to(self.root.parent)) if self.root.parent != Path(".") else str(path)
+            path = self.given / path.relative_to(self.root)
         except ValueError:
             return str(path)
+        try:
+            return str(path.relative_to(self.given.parent)) if self.given.parent != Path(".") else str(path)
+        except ValueError:
+            return str(path)
+
+    def outside(self, path: Path) -> bool:
+        """True when ``path`` (links followed) lies outside the site folder and site.toml does
+        not allow that."""
+        if self.allow_outside:
+            return False
+        return not path.resolve().is_relative_to(self.root.resolve())
 
     def error(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
         self.problems.append(Problem(shown, where, fieldname, why))
+
+    def errors_in(self, path: Path, fieldname: str | None = None) -> list[Problem]:
+        """The errors reported so far on ``path`` (on its ``fieldname`` when given)."""
+        shown = self.rel(path)
+        return [p for p in self.problems if p.severity == "error" and p.path == shown
+                and (fieldname is None or p.field == fieldname)]
 
     def warn(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
         self.problems.append(Problem(shown, where, fieldname, why, "warning"))
 
     def table(self, path: Path, name: str) -> pd.DataFrame:
-        return read_table(path, table_schema(name), self.problems, display=self.rel(path))
+        schema = table_schema(name)
+        if self.outside(path):
+            # refused before reading, so that no line of the linked file shows in a message
+            self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
+            return pd.DataFrame({c: pd.Series(dtype=object) for c in [*schema.names, "line", "source"]})
+        return read_table(path, schema, self.problems, display=self.rel(path))
 
     # -- the whole folder
     def load(self) -> Site | None:
+        if not self.root.exists():
+            self.error(str(self.given), None, None, "the site folder does not exist")
+            return None
         if not self.root.is_dir():
-            self.error(self.root, None, None, "site folder not found")
+            self.error(str(self.given), None, None, "is a file, not a site folder (give the folder that holds site.toml)")
             return None
         raw = self._read_toml()
         if raw is None:
             return None
+        self.allow_outside = self._setting(raw, "paths", "allow_outside", False) is True
         config = self._config(raw)
         crs = self._site_crs(raw)
         tz = self._timezone(raw)
         scales = self._scales(raw)
-        materials = self._materials()
-        piles = self._piles(materials)
+        materials, material_names = self._materials()
+        piles = self._piles(material_names, crs)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
-        movements = self._all_movements(pile_ids, set(materials), scales)
+        movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
@@ -392,7 +435,7 @@ class _Loader:
             return None
         return Site(
             root=self.root,
-            name=raw.get("name", ""),
+            name=str(raw.get("name", "")),
             crs=crs,
             timezone=tz,
             config=config,
@@ -415,6 +458,9 @@ class _Loader:
         except UnicodeDecodeError:
             self.error(path, None, None, "not UTF-8 text")
             return None
+        except RecursionError:
+            self.error(path, None, None, f"tables or arrays nested too deeply to read (at most {MAX_TOML_DEPTH} levels)")
+            return None
         except tomllib.TOMLDecodeError as err:
             line = getattr(err, "lineno", None)
             match = re.search(r"line (\d+)", str(err))
@@ -422,12 +468,18 @@ class _Loader:
                 line = int(match.group(1))
             self.error(path, line, None, f"not valid TOML: {err}")
             return None
+        depth, key = _nesting(raw)
+        if depth > MAX_TOML_DEPTH:
+            self.error(path, None, key, f"tables or arrays nested {depth} levels deep (at most {MAX_TOML_DEPTH})")
+            return None
         import jsonschema
 
         validator = jsonschema.Draft202012Validator(_site_schema())
         bad = False
-        for err in sorted(validator.iter_errors(raw), key=lambda e: list(e.absolute_path)):
+        for err in sorted(validator.iter_errors(raw), key=lambda e: [str(p) for p in e.absolute_path]):
             where = ".".join(str(p) for p in err.absolute_path) or None
+            if err.validator not in ("required", "additionalProperties"):
+                self.refused.add(tuple(err.absolute_path))
             if err.validator == "required":
                 missing = re.findall(r"'([^']+)' is a required property", err.message)
                 name = ".".join(filter(None, [where, missing[0] if missing else None]))
@@ -441,40 +493,71 @@ class _Loader:
             bad = True
         return None if bad and any(k not in raw for k in ("name", "crs", "timezone")) else raw
 
-    def _config(self, raw: dict) -> SiteConfig:
-        def section(key: str) -> dict:
-            value = raw.get(key, {})
-            return value if isinstance(value, dict) else {}
+    def _setting(self, raw: dict, section: str, key: str, default: Any) -> Any:
+        """``raw[section][key]``, or ``default`` when it is absent or the schema refused it
+        (the refusal is reported; a refused value is never converted)."""
+        table = raw.get(section)
+        if not isinstance(table, dict) or key not in table:
+            return default
+        if any(p[:2] in ((section,), (section, key)) for p in self.refused):
+            return default
+        return table[key]
 
-        g, s, b, r = section("grid"), section("survey"), section("base"), section("reconcile")
-        floor = b.get("floor_raster", "base/floor.tif")
-        pipeline = s.get("pipeline")
+    def _config(self, raw: dict) -> SiteConfig:
+        def get(section: str, key: str, default: Any) -> Any:
+            return self._setting(raw, section, key, default)
+
         return SiteConfig(
             grid=GridConfig(
-                cell_size_m=float(g.get("cell_size_m", 0.5)),
-                max_fill_distance_m=float(g.get("max_fill_distance_m", 3.0)),
-                statistic=str(g.get("statistic", "mean")),
+                cell_size_m=float(get("grid", "cell_size_m", 0.5)),
+                max_fill_distance_m=float(get("grid", "max_fill_distance_m", 3.0)),
+                statistic=str(get("grid", "statistic", "mean")),
             ),
             survey=SurveyConfig(
-                default_crs=s.get("default_crs"),
-                pipeline=(self.root / pipeline) if pipeline else None,
-                default_time=str(s.get("default_time", "12:00")),
-                trajectory_max_gap_s=float(s.get("trajectory_max_gap_s", 1.0)),
+                default_crs=get("survey", "default_crs", None),
+                pipeline=self._config_path(get("survey", "pipeline", None), "survey.pipeline"),
+                default_time=str(get("survey", "default_time", "12:00")),
+                trajectory_max_gap_s=float(get("survey", "trajectory_max_gap_s", 1.0)),
             ),
             base=BaseConfig(
-                floor_raster=(self.root / floor) if (self.root / floor).is_file() else None,
-                floor_sigma_m=float(b.get("floor_sigma_m", 0.03)),
-                toe_ring_m=float(b.get("toe_ring_m", 3.0)),
+                floor_raster=self._floor_raster(get("base", "floor_raster", None)),
+                floor_sigma_m=float(get("base", "floor_sigma_m", 0.03)),
+                toe_ring_m=float(get("base", "toe_ring_m", 3.0)),
             ),
             reconcile=ReconcileConfig(
-                significance_k=float(r.get("significance_k", 2.0)),
-                default_tolerance_pct=float(r.get("default_tolerance_pct", 3.0)),
-                adjust_to=str(r.get("adjust_to", "survey")),
-                duplicate_window_min=float(r.get("duplicate_window_min", 10.0)),
+                significance_k=float(get("reconcile", "significance_k", 2.0)),
+                default_tolerance_pct=float(get("reconcile", "default_tolerance_pct", 3.0)),
+                adjust_to=str(get("reconcile", "adjust_to", "survey")),
+                duplicate_window_min=float(get("reconcile", "duplicate_window_min", 10.0)),
             ),
-            machines=self._machines(raw),
+            machines=self._machines(raw) if not any(p[:1] == ("machines",) for p in self.refused) else {},
             raw=raw,
         )
+
+    def _floor_raster(self, text: str | None) -> Path | None:
+        """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
+        if text is not None:
+            return self._config_path(text, "base.floor_raster")
+        default = "base/floor.tif"
+        return self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
+
+    def _config_path(self, text: str | None, key: str) -> Path | None:
+        """A file named in site.toml, relative to the site folder (or absolute): it must exist,
+        and lie inside the site folder unless ``[paths] allow_outside = true``."""
+        if text is None:
+            return None
+        toml = self.root / "site.toml"
+        path = self.root / Path(text)  # an absolute text replaces the folder
+        if self.outside(path):
+            self.error(toml, None, key, f"{text!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
+            return None
+        if not path.is_file():
+            self.error(toml, None, key, f"no file {text!r} (paths are relative to the site folder)")
+            return None
+        real = path.resolve()
+        if real.is_relative_to(self.root.resolve()) and not path.is_relative_to(self.root):
+            path = self.root / real.relative_to(self.root.resolve())  # inside, named absolutely
+        return path
 
     def _machines(self, raw: dict) -> dict:
         from inventory.errors import InputError
@@ -521,9 +604,14 @@ class _Loader:
     def _scales(self, raw: dict) -> dict[str, Scale]:
         path = self.root / "site.toml"
         scales: dict[str, Scale] = {}
-        for i, item in enumerate(raw.get("scales", []) or []):
-            if not isinstance(item, dict) or "id" not in item:
-                continue
+        items = raw.get("scales")
+        if not isinstance(items, list) or ("scales",) in self.refused:
+            return scales
+        for i, given in enumerate(items):
+            if not isinstance(given, dict) or not isinstance(given.get("id"), str):
+                continue  # reported by the schema
+            # a key the schema refused is left out, never converted
+            item = {k: v for k, v in given.items() if ("scales", i, k) not in self.refused}
             where = f"scales[{i}]"
             if item["id"] in scales:
                 self.error(path, None, f"{where}.id", f"scale id {item['id']!r} is used twice")
@@ -536,7 +624,7 @@ class _Loader:
             if kind == "weighbridge":
                 if item.get("accuracy_class") not in ("I", "II", "III", "IIII"):
                     self.error(path, None, f"{where}.accuracy_class", "weighbridges have OIML R 76 classes I, II, III or IIII")
-                if "scale_interval_kg" not in item:
+                if "scale_interval_kg" not in given:
                     self.error(path, None, f"{where}.scale_interval_kg", "a weighbridge needs its verification scale interval e")
             scales[item["id"]] = Scale(
                 id=item["id"],
@@ -545,16 +633,23 @@ class _Loader:
                 direction=item.get("direction"),
                 scale_interval_kg=item.get("scale_interval_kg"),
                 in_service=bool(item.get("in_service", True)),
+                max_capacity_t=item.get("max_capacity_t"),
             )
         return scales
 
-    def _materials(self) -> dict[str, Material]:
+    def _materials(self) -> tuple[dict[str, Material], set[str]]:
+        """The usable materials, and the names of every material row in materials.csv (a
+        refused row is reported once, not again as an unknown material wherever it is used)."""
         path = self.root / "materials.csv"
         if not path.is_file():
             self.error(path, None, None, "file not found")
-            return {}
+            return {}, set()
+        errors_before = len(self.errors_in(path))
         frame = self.table(path, "materials")
-        return {
+        names = set(frame["material"])
+        if len(self.errors_in(path)) > errors_before:
+            names |= _column_values(path, "material")
+        materials = {
             row.material: Material(
                 row.material,
                 row.bulk_density_t_m3,
@@ -564,8 +659,9 @@ class _Loader:
             )
             for row in frame.itertuples()
         }
+        return materials, names
 
-    def _piles(self, materials: dict[str, Material]):
+    def _piles(self, materials: Collection[str], site_crs: str | None):
         import geopandas as gpd
         import pyogrio
         import shapely
@@ -573,6 +669,9 @@ class _Loader:
         path = self.root / "piles.gpkg"
         if not path.is_file():
             self.error(path, None, None, "file not found")
+            return None
+        if self.outside(path):
+            self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
             return None
         try:
             layers = [name for name, _ in pyogrio.list_layers(path)]
@@ -592,6 +691,10 @@ class _Loader:
             frame["density_t_m3"] = np.nan
         if frame.crs is None:
             self.error(path, "layer piles", None, "the layer has no CRS")
+        elif site_crs is not None:
+            frame = self._piles_in_site_crs(frame, path, site_crs)
+            if frame is None:
+                return None
         display = self.rel(path)
         good = np.ones(len(frame), dtype=bool)
         seen: dict[str, int] = {}
@@ -646,6 +749,34 @@ class _Loader:
         frame = frame.reset_index(drop=True)
         return frame[["pile_id", "material", "base", "density_t_m3", "geometry"]]
 
+    def _piles_in_site_crs(self, frame, path: Path, site_crs: str):
+        """The footprints in the site CRS: drawn in another CRS, they are reprojected (the
+        GeoPackage states its CRS, so the transform is not a guess) with a warning; without a
+        known transform the layer is refused."""
+        from pyproj import CRS
+        from pyproj.exceptions import ProjError
+
+        dst = CRS.from_user_input(site_crs)
+        if frame.crs.equals(dst, ignore_axis_order=True):
+            return frame
+        import shapely
+
+        src_name = frame.crs.name
+        try:
+            moved = frame.to_crs(dst)
+            why = ""
+            if not np.all(np.isfinite(shapely.get_coordinates(moved.geometry.values))):
+                moved, why = None, " (the transform gives no finite coordinates)"
+        except ProjError as err:
+            moved, why = None, f" ({err})"
+        if moved is None:
+            self.error(path, "layer piles", None,
+                       f"CRS {src_name!r} differs from the site's {dst.name!r} and no transform is known{why}")
+            return None
+        self.warn(path, "layer piles", None,
+                  f"footprints are in {src_name!r}, not the site CRS {site_crs} ({dst.name}); reprojected to {site_crs}")
+        return moved
+
     def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
         if not path.is_file():
@@ -655,7 +786,8 @@ class _Loader:
         return frame
 
     # -- movements
-    def _all_movements(self, pile_ids: set[str], material_names: set[str], scales: dict[str, Scale]) -> dict[str, Movements]:
+    def _all_movements(self, pile_ids: set[str], material_names: set[str], scales: dict[str, Scale],
+                       tz: ZoneInfo | None) -> dict[str, Movements]:
         folder = self.root / "movements"
         out: dict[str, Movements] = {}
         if not folder.is_dir():
@@ -666,10 +798,11 @@ class _Loader:
             if not Period.is_period(sub.name):
                 self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
                 continue
-            out[sub.name] = self._movements(sub, pile_ids, material_names, scales)
+            out[sub.name] = self._movements(sub, pile_ids, material_names, scales, tz)
         return out
 
-    def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale]) -> Movements:
+    def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale],
+                   tz: ZoneInfo | None) -> Movements:
         tables: dict[str, pd.DataFrame | None] = {}
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
@@ -680,6 +813,7 @@ class _Loader:
         # an empty register failed to load and is reported on its own: do not also name every row
         frames, problems = check_movements(
             **tables, scales=scales, pile_ids=piles or None, materials=materials or None, folder=self.rel(folder),
+            period=Period.parse(folder.name), timezone=tz,
         )
         self.problems += problems
         return Movements(folder.name, **frames)
@@ -710,6 +844,9 @@ class _Loader:
         from inventory.io.cloudcheck import inspect_cloud
 
         files = sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in POINT_CLOUD_SUFFIXES)
+        for path in [p for p in files if self.outside(p)]:
+            self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
+            files.remove(path)
         stations = None
         station_path = folder / "stations.csv"
         if station_path.is_file():
@@ -720,7 +857,9 @@ class _Loader:
                 if given and len(given) != len(pose_cols):
                     missing = [c for c in pose_cols if c not in given]
                     self.error(station_path, row.line, missing[0], "a station pose needs all of x, y, z, roll_deg, pitch_deg, yaw_deg")
-                if not (folder / row.file).is_file():
+                if self.outside(folder / row.file):
+                    self.error(station_path, row.line, "file", f"{row.file!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
+                elif not (folder / row.file).is_file():
                     self.error(station_path, row.line, "file", f"no file {row.file!r} in {self.rel(folder)}")
         trajectories: dict = {}
         trajectory_path = folder / "trajectory.csv"
@@ -731,7 +870,9 @@ class _Loader:
                 trajectory_path, config.machines, display=self.rel(trajectory_path), problems=self.problems
             ) or {}
             for name in trajectories:
-                if name is not None and not (folder / name).is_file():
+                if name is not None and self.outside(folder / name):
+                    self.error(trajectory_path, None, "file", f"{name!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
+                elif name is not None and not (folder / name).is_file():
                     self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
         if not files:
             self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
@@ -790,7 +931,9 @@ class _Loader:
             hh, mm = (int(v) for v in config.survey.default_time.split(":"))
             zone = tz or timezone.utc
             instant = datetime.combine(day, time(hh, mm), tzinfo=zone).astimezone(timezone.utc)
-            self.warn(folder, None, "time", f"no stations.csv times; survey instant taken as {config.survey.default_time} local")
+            if not (station_path.is_file() and self.errors_in(station_path, "time")):
+                # a refused station time is reported as such, not again as a missing one
+                self.warn(folder, None, "time", f"no stations.csv times; survey instant taken as {config.survey.default_time} local")
         local_day = instant.astimezone(tz).date() if tz else instant.date()
         if local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
@@ -813,6 +956,43 @@ class _Loader:
                 continue
             if not any(b.intersects(geom) for b in boxes):
                 self.warn(display, f"pile {row['pile_id']}", "geometry", "lies outside every survey's extent")
+
+
+def _column_values(path: Path, column: str) -> set[str]:
+    """The values of one column of a CSV file, as written (rows refused by the table's rules
+    included); empty when the file cannot be read."""
+    import csv
+    import io
+
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except (OSError, UnicodeDecodeError):
+        return set()
+    rows = csv.reader(io.StringIO(text, newline=""))
+    header = [h.strip() for h in next(rows, [])]
+    if column not in header:
+        return set()
+    at = header.index(column)
+    return {r[at].strip() for r in rows if len(r) > at and r[at].strip()}
+
+
+def _nesting(value: Any) -> tuple[int, str | None]:
+    """How deep tables and arrays nest in parsed TOML, and the top-level key of the deepest
+    (counted without recursion, so any depth can be measured)."""
+    deepest, key = 0, None
+    stack: list[tuple[Any, int, str | None]] = [(value, 1, None)]
+    while stack:
+        item, depth, top = stack.pop()
+        if isinstance(item, dict):
+            children = [(v, k if top is None else top) for k, v in item.items()]
+        elif isinstance(item, list):
+            children = [(v, top) for v in item]
+        else:
+            continue
+        if depth > deepest:
+            deepest, key = depth, top
+        stack.extend((v, depth + 1, t) for v, t in children)
+    return deepest, key
 
 
 def _posed_extent(bounds, row) -> tuple[float, float, float, float]:

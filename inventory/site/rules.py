@@ -17,8 +17,10 @@ The rules:
 weighbridge
     direction is ``in`` or ``out``; gross and tare are positive; tare is not above gross; a
     printed net equals gross - tare within :data:`NET_ROUNDING_T`; the scale is a weighbridge
-    of ``site.toml`` (a blank scale id means the site's only weighbridge); a repeated ticket id
-    with the same content is a warning (counted once), with other content an error.
+    of ``site.toml`` (a blank scale id means the site's only weighbridge); gross is not above
+    the weighbridge's ``max_capacity_t`` (without one, not above :data:`MAX_TICKET_GROSS_T`);
+    a repeated ticket id with the same content is a warning (counted once), with other content
+    an error.
 belt_scales
     a known belt scale with a direction; the interval ends after it starts; tonnes >= 0.
 routing
@@ -30,7 +32,8 @@ opening
     a known pile; tonnes a number; at most one balance per pile.
 every table
     required columns and values present; piles and materials known; every time carries a UTC
-    offset.
+    offset; a ticket or transfer falls in the month of its ``movements/<YYYY-MM>/`` folder (in
+    the site's time zone), when the caller names the month.
 """
 
 from __future__ import annotations
@@ -44,11 +47,13 @@ import pandas as pd
 
 from inventory.errors import Problem
 from inventory.io.tables import parse_time, table_schema
+from inventory.model.period import Period
 
 if TYPE_CHECKING:
     from inventory.site.load import Scale
 
 __all__ = [
+    "MAX_TICKET_GROSS_T",
     "MOVEMENT_TABLES",
     "NET_ROUNDING_T",
     "check_belt_scales",
@@ -65,6 +70,14 @@ __all__ = [
 #: the printed net one such step from gross - tare (40.004 -> 40.00 and 15.006 -> 15.01 print
 #: a net of 25.00 against 24.99), never more. A bigger difference is a keyed or edited figure.
 NET_ROUNDING_T = 0.01
+
+#: The heaviest gross a weighbridge ticket may carry when site.toml gives the weighbridge no
+#: ``max_capacity_t``, tonnes: above it a figure is a keying or unit error, not a vehicle. The
+#: heaviest loads weighed on one platform are ultra-class mine haul trucks, a little over
+#: 600 t gross (from memory: Caterpillar 797F, 623 t), and heavy-haul rail wagons, under
+#: 200 t; road weighbridges are built for 60 to 100 t (common practice). A site that weighs
+#: more in one ticket (a whole train in motion) states its weighbridge's capacity.
+MAX_TICKET_GROSS_T = 1000.0
 
 #: The movement tables of one period, in the order they are checked and reported.
 MOVEMENT_TABLES = ("weighbridge", "belt_scales", "routing", "transfers")
@@ -182,6 +195,22 @@ class _Rows:
         s = self.df[col]
         self.flag(s.notna() & ~s.isin(values), col, lambda r: f"unknown {what} {getattr(r, col)!r} (not in {register})")
 
+    def in_period(self, col: str, period: Period | str | None, timezone: Any, what: str) -> None:
+        """A time outside the month of its folder belongs to another month's books."""
+        if period is None or timezone is None:
+            return
+        month = Period.parse(str(period))
+        start, end = month.bounds(timezone)
+        s = self.df[col]
+        outside = s.notna() & ((s < start) | (s >= end))
+
+        def why(r: Any) -> str:
+            local = getattr(r, col).tz_convert(timezone)
+            owner = Period.of(local)
+            return (f"{local.isoformat()} falls in {owner}, not in {month} of its folder; "
+                    f"the {what} belongs in movements/{owner}/")
+        self.flag(outside, col, why)
+
     def end_after_start(self, what: str) -> None:
         df = self.df
         self.flag(df["start"].notna() & df["end"].notna() & (df["end"] <= df["start"]), "end",
@@ -228,12 +257,15 @@ def check_weighbridge(
     pile_ids: Collection[str] | None,
     materials: Collection[str] | None,
     path: str = "weighbridge.csv",
+    period: Period | str | None = None,
+    timezone: Any = None,
 ) -> tuple[pd.DataFrame, list[Problem]]:
     """Check weighbridge tickets; return them normalised (UTC ``time``, computed ``net_t``,
     resolved ``scale_id``) and the problems found.
 
     ``pile_ids`` / ``materials`` of None skip that check (the register itself failed to load
     and is reported on its own); ``path`` names the file for rows without a ``source``.
+    ``period`` and ``timezone`` (both or neither) name the month the tickets must fall in.
     """
     t = _Rows(frame, "weighbridge", path, table_schema("weighbridge").required)
     piles, mats = _ids(pile_ids), _ids(materials)
@@ -241,6 +273,7 @@ def check_weighbridge(
     for col in ("ticket", "direction", "material", "pile_id", "vehicle", "scale_id"):
         t.text(col)
     t.times("time")
+    t.in_period("time", period, timezone, "ticket")
     t.flag(t.given("direction") & ~df["direction"].isin(["in", "out"]), "direction",
            lambda r: f"{r.direction!r} is not one of in, out")
     t.known("pile_id", piles, "pile", "piles.gpkg")
@@ -273,6 +306,7 @@ def check_weighbridge(
            lambda r: f"unknown weighbridge {r.scale_id!r} (not in site.toml [[scales]])")
     t.flag(kind.notna() & (kind != "weighbridge"), "scale_id",
            lambda r: f"{r.scale_id!r} is a {scales[r.scale_id].kind} scale in site.toml [[scales]], not a weighbridge")
+    _within_capacity(t, scales, kind == "weighbridge", unusable)
 
     # A repeated ticket id with the same content is a double entry the books must list (book
     # stock counts it once); with different content nobody can tell which copy is real.
@@ -291,6 +325,22 @@ def check_weighbridge(
                + ("; it will be counted once" if same else " with different content"),
                "warning" if same else "error")
     return t.result()
+
+
+def _within_capacity(t: _Rows, scales: Mapping[str, Scale], bridge: pd.Series, unusable: pd.Series) -> None:
+    """Gross is not above the weighbridge's stated capacity, or the absurd without one."""
+    df = t.df
+    cap = pd.Series([getattr(scales[v], "max_capacity_t", None) if b else None
+                     for v, b in zip(df["scale_id"], bridge)], index=df.index, dtype=object)
+    stated = cap.notna()
+    limit = cap.where(stated, MAX_TICKET_GROSS_T).astype(float)
+    t.flag(~unusable & stated & (df["gross_t"] > limit), "gross_t",
+           lambda r: f"gross {r.gross_t:g} t is above the capacity {cap[r.Index]:g} t of weighbridge "
+                     f"{r.scale_id!r} (site.toml [[scales]] max_capacity_t)")
+    t.flag(~unusable & ~stated & (df["gross_t"] > limit), "gross_t",
+           lambda r: f"gross {r.gross_t:g} t is above {MAX_TICKET_GROSS_T:g} t, more than any vehicle a "
+                     "weighbridge weighs (a keying or unit error?); a weighbridge built for more states "
+                     "its max_capacity_t in site.toml [[scales]]")
 
 
 def check_belt_scales(
@@ -352,14 +402,17 @@ def check_routing(
 
 
 def check_transfers(
-    frame: pd.DataFrame | None, *, pile_ids: Collection[str] | None, path: str = "transfers.csv"
+    frame: pd.DataFrame | None, *, pile_ids: Collection[str] | None, path: str = "transfers.csv",
+    period: Period | str | None = None, timezone: Any = None,
 ) -> tuple[pd.DataFrame, list[Problem]]:
-    """Check pile-to-pile transfers; return them normalised (UTC time) and the problems."""
+    """Check pile-to-pile transfers; return them normalised (UTC time) and the problems.
+    ``period`` and ``timezone`` name the month the transfers must fall in."""
     t = _Rows(frame, "transfers", path, table_schema("transfers").required)
     df = t.df
     for col in ("from_pile", "to_pile", "reference"):
         t.text(col)
     t.times("time")
+    t.in_period("time", period, timezone, "transfer")
     piles = _ids(pile_ids)
     t.known("from_pile", piles, "pile", "piles.gpkg")
     t.known("to_pile", piles, "pile", "piles.gpkg")
@@ -380,11 +433,15 @@ def check_movements(
     pile_ids: Collection[str] | None,
     materials: Collection[str] | None,
     folder: str | None = None,
+    period: Period | str | None = None,
+    timezone: Any = None,
 ) -> tuple[dict[str, pd.DataFrame], list[Problem]]:
     """All four tables of one period: ``{name: normalised table}`` and every problem.
 
     A table given as None has no records. ``folder`` names the files of rows without a
-    ``source`` column (``<folder>/weighbridge.csv``, ...).
+    ``source`` column (``<folder>/weighbridge.csv``, ...). With ``period`` (the folder's
+    month) and ``timezone`` (the site's), a ticket or transfer dated in another month is an
+    error naming the month it belongs to.
     """
     def where(name: str) -> str:
         return f"{folder}/{name}.csv" if folder else f"{name}.csv"
@@ -394,10 +451,11 @@ def check_movements(
     problems: list[Problem] = []
     checks = (
         ("weighbridge", lambda: check_weighbridge(weighbridge, scales=scales, pile_ids=piles, materials=mats,
-                                                  path=where("weighbridge"))),
+                                                  path=where("weighbridge"), period=period, timezone=timezone)),
         ("belt_scales", lambda: check_belt_scales(belt_scales, scales=scales, path=where("belt_scales"))),
         ("routing", lambda: check_routing(routing, scales=scales, pile_ids=piles, path=where("routing"))),
-        ("transfers", lambda: check_transfers(transfers, pile_ids=piles, path=where("transfers"))),
+        ("transfers", lambda: check_transfers(transfers, pile_ids=piles, path=where("transfers"),
+                                              period=period, timezone=timezone)),
     )
     for name, check in checks:
         out[name], found = check()
