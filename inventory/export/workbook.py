@@ -408,17 +408,23 @@ def _journal_sheet(wb, result: CloseResult) -> None:
     _fit_columns(ws)
 
 
+_LISTS = (list, tuple, set, np.ndarray)
+
+
 def _extra_sheets(wb, result: CloseResult) -> None:
     """One sheet per further table of the close (belt split, measured change, materials)."""
     for title, frame in (result.tables or {}).items():
         if frame is None:
             continue
         ws = wb.create_sheet(str(title)[:31])
+        if not len(frame.columns):
+            ws["A1"] = "Nothing this period."
+            continue
         shown = frame.rename(columns=str).copy()
         for col in shown.columns:  # lists and sets (e.g. pile ids) as plain text
-            if shown[col].map(lambda v: isinstance(v, (list, tuple, set, np.ndarray))).any():
-                shown[col] = shown[col].map(
-                    lambda v: ", ".join(map(str, v)) if isinstance(v, (list, tuple, set, np.ndarray)) else v)
+            # a plain loop: Series.any() refuses an empty (or any) datetime column
+            if any(isinstance(v, _LISTS) for v in shown[col]):
+                shown[col] = shown[col].map(lambda v: ", ".join(map(str, v)) if isinstance(v, _LISTS) else v)
         _table(ws, shown, list(shown.columns), tz=ZoneInfo(result.timezone) if result.timezone else None)
         _fit_columns(ws)
 
