@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import html
 import re
 import shutil
 import subprocess
@@ -130,3 +131,31 @@ def test_quiet_month_and_a_pile_without_book(make_close_result, tmp_path):
     assert "No scale diagnostics" in text
     cells = re.findall(r"<td>([^<]*)</td>", text)
     assert cells and not any("nan" in c.lower() for c in cells)  # a missing figure is blank
+
+
+@pytest.mark.parametrize("pile_id", ["$x^2$", r"$\alpha$", "C$1", r"$\frac{a}{$"])
+def test_pile_ids_are_drawn_as_typed_not_as_mathtext(make_close_result, monkeypatch, pile_id):
+    """A pile id matplotlib could read as mathtext is drawn literally (``$x^2$`` used to stop
+    the report with mathtext's ValueError; ``$\\alpha$`` would have shown as a Greek letter)."""
+    from inventory.export import report
+
+    res = make_close_result("2026-01")
+    old = res.piles.loc[0, "pile_id"]
+    res.piles.loc[0, "pile_id"] = pile_id
+    res.footprints.loc[res.footprints["pile_id"] == old, "pile_id"] = pile_id
+    figures = []
+    real_png = report._png
+
+    def keep(fig):
+        figures.append(fig)
+        return real_png(fig)
+
+    monkeypatch.setattr(report, "_png", keep)
+    text = report_html(res)
+    assert len(figures) == 2
+    drawn = [t for fig in figures for t in fig.findobj(lambda a: hasattr(a, "get_parse_math"))
+             if t.get_text() == pile_id]
+    # on the map (its label) and in the bar chart (its tick label), both taken literally
+    assert len(drawn) >= 2
+    assert not any(t.get_parse_math() for t in drawn)
+    assert f"<td>{html.escape(pile_id)}</td>" in text

@@ -38,6 +38,9 @@ _AZIMUTH_DEG = 315.0
 _ALTITUDE_DEG = 45.0
 
 _DPI = 110
+#: Text properties of every text from the user drawn in a chart (pile ids, the CRS, dates):
+#: shown as typed, never read as matplotlib mathtext (a pile id ``$x^2$`` stays ``$x^2$``).
+_LITERAL = {"parse_math": False}
 # PNG metadata left empty so the same close draws byte-identical images
 _PNG_META = {"Software": None}
 
@@ -140,7 +143,8 @@ def _map_figure(result: CloseResult) -> str:
             ax.add_patch(patch)
         c = geom.representative_point()
         ax.annotate(str(pid), (c.x, c.y), ha="center", va="center", fontsize=8,
-                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.8))
+                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.8),
+                    **_LITERAL)
     if result.coverage_gaps is not None and len(result.coverage_gaps):
         for geom in result.coverage_gaps.geometry:
             for poly in getattr(geom, "geoms", [geom]):
@@ -153,12 +157,12 @@ def _map_figure(result: CloseResult) -> str:
     ax.set_xlim(xmin, xmax)
     ax.set_ylim(ymin, ymax)
     ax.set_aspect("equal")
-    ax.set_xlabel(f"easting (m, {result.crs})")
-    ax.set_ylabel(f"northing (m, {result.crs})")
+    ax.set_xlabel(f"easting (m, {result.crs})", **_LITERAL)
+    ax.set_ylabel(f"northing (m, {result.crs})", **_LITERAL)
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
     ax.set_title(f"Survey {result.survey_date}: piles by variance "
-                 "(thick outline = out of tolerance, purple = unscanned area)", fontsize=9)
+                 "(thick outline = out of tolerance, purple = unscanned area)", fontsize=9, **_LITERAL)
     return _png(fig)
 
 
@@ -181,7 +185,7 @@ def _bar_figure(result: CloseResult) -> str:
     ax.scatter(np.concatenate([tol_t, -tol_t]), np.concatenate([y, y]), marker="|", s=180,
                color="#444444", label="tolerance")
     ax.axvline(0.0, color="black", linewidth=0.8)
-    ax.set_yticks(y, [str(v) for v in p["pile_id"]], fontsize=8)
+    ax.set_yticks(y, [str(v) for v in p["pile_id"]], fontsize=8, **_LITERAL)
     ax.invert_yaxis()
     ax.set_xlabel("variance, t (survey - book)")
     ax.legend(loc="lower right", fontsize=7, frameon=False)
