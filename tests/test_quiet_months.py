@@ -3,11 +3,13 @@ weighbridge), a month with no movements folder at all, and a month with only tra
 
 Each is a copy of the sample site with September's movements cut down; the close must go
 through with exit 0, write the workbook, layers and report, and give the books the
-movements that are left (no receipts where nothing moved).
+movements that are left (no receipts where nothing moved). Odd but valid texts from the
+user (a pile id matplotlib could read as mathematics) close the same way.
 """
 
 from __future__ import annotations
 
+import csv
 import dataclasses
 import shutil
 from pathlib import Path
@@ -168,3 +170,20 @@ def test_writers_take_a_close_with_empty_tables(make_close_result, tmp_path, pil
     assert pd.isna(layer.loc[0, "out_of_tolerance"])
     report = (tmp_path / "r.html").read_text(encoding="utf-8")
     assert "No movements this period." in report and "No adjustments this period." in report
+
+
+@pytest.mark.slow
+def test_pile_id_that_looks_like_mathtext_closes(sample_copy, survey_cache, monkeypatch, capsys):
+    odd = "$x^2$"
+    piles = gpd.read_file(sample_copy / "piles.gpkg", layer="piles")
+    piles.loc[piles["pile_id"] == "S1", "pile_id"] = odd
+    piles.to_file(sample_copy / "piles.gpkg", layer="piles", engine="pyogrio")
+    for path in [sample_copy / "opening.csv", *sorted((sample_copy / "movements").glob("*/*.csv"))]:
+        with open(path, newline="") as fh:
+            rows = [[odd if cell == "S1" else cell for cell in row] for row in csv.reader(fh)]
+        with open(path, "w", newline="") as fh:
+            csv.writer(fh, lineterminator="\n").writerows(rows)
+    closed, folder, _ = _close(sample_copy, survey_cache, monkeypatch, capsys)
+    assert odd in closed.index and "S1" not in closed.index
+    report = (folder / f"report-{PERIOD}.html").read_text(encoding="utf-8")
+    assert f"<td>{odd}</td>" in report
