@@ -31,6 +31,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from inventory.export.cells import looks_like_formula
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
@@ -130,7 +131,7 @@ def _put(ws, row: int, col: int, value: Any, fmt: str | None = None, tz: ZoneInf
         # control characters are not allowed in the XML; an over-long cell makes Excel repair
         v = ILLEGAL_CHARACTERS_RE.sub("\ufffd", v)[:_MAX_CELL_CHARS]
     cell.value = v
-    if isinstance(v, str) and v.startswith("="):
+    if looks_like_formula(v):
         cell.data_type = "s"  # text from an input file is never a formula
     if fmt and isinstance(v, (int, float)) and not isinstance(v, bool):
         cell.number_format = fmt
