@@ -159,3 +159,32 @@ def test_pile_ids_are_drawn_as_typed_not_as_mathtext(make_close_result, monkeypa
     assert len(drawn) >= 2
     assert not any(t.get_parse_math() for t in drawn)
     assert f"<td>{html.escape(pile_id)}</td>" in text
+
+
+def test_low_scan_pile_is_marked_next_to_its_variance(make_close_result, monkeypatch):
+    """A pile the volume step flagged low_scan (most of its footprint interpolated) says so
+    beside its variance in the pile table and on its bar, and keeps all its flags."""
+    from inventory.export import report
+
+    res = make_close_result("2026-01")
+    res.piles.loc[2, "scanned_fraction"] = 0.31
+    res.piles.loc[2, "flags"] = "out_of_tolerance;significant;low_scan;unfilled_gap"
+    figures = []
+    real_png = report._png
+    monkeypatch.setattr(report, "_png", lambda fig: figures.append(fig) or real_png(fig))
+    text = report_html(res)
+    table = re.search(r"<h2>Piles</h2>.*?(<table>.*?</table>)", text, flags=re.DOTALL).group(1)
+    headers = re.findall(r"<th>([^<]*)</th>", table)
+    rows = {cells[0]: cells for cells in (
+        re.findall(r"<td[^>]*>(.*?)</td>", row) for row in re.findall(r"<tr[^>]*>(.*?)</tr>", table))
+        if cells}
+    assert len(rows) == 3
+    low = rows["P-LIME-1"]
+    at = headers.index("variance (%)")
+    assert headers[at + 1] == "scanned"
+    assert low[at + 1] == '<span class="low">31 %, low scan: mostly interpolated</span>'
+    assert rows["P-COAL-1"][at + 1] == "{:.0f} %".format(100 * res.piles.loc[0, "scanned_fraction"])
+    assert low[headers.index("flags")] == "out_of_tolerance; significant; low_scan; unfilled_gap"
+    ticks = [t.get_text() for t in figures[1].axes[0].get_yticklabels()]
+    assert ticks == ["P-COAL-1", "P-COAL-2", "P-LIME-1 (low scan)"]
+    assert [bool(b.get_hatch()) for b in figures[1].axes[0].patches[:3]] == [False, False, True]

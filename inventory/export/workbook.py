@@ -297,6 +297,7 @@ _VARIANCE_COLUMNS = [
     "pile_id", "material", "book_t", "book_sigma_t", "survey_t", "survey_sigma_t",
     "variance_t", "variance_sigma_t", "variance_2sigma_t", "variance_pct", "tolerance_pct",
     "tolerance_t", "significant", "out_of_tolerance", "survey_minus_book_t",
+    "scanned_fraction", "flags",
 ]
 
 
