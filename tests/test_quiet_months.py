@@ -187,3 +187,43 @@ def test_pile_id_that_looks_like_mathtext_closes(sample_copy, survey_cache, monk
     assert odd in closed.index and "S1" not in closed.index
     report = (folder / f"report-{PERIOD}.html").read_text(encoding="utf-8")
     assert f"<td>{odd}</td>" in report
+
+
+@pytest.mark.slow
+def test_close_warns_only_about_its_own_period(sample_copy, survey_cache, monkeypatch, capsys):
+    """The sample's October weighbridge repeats a ticket: closing September says nothing of
+    it, closing October says it once, and ``inventory check`` reports it whatever the month."""
+    repeat = "movements/2026-10/weighbridge.csv line 381: ticket: ticket '018546' repeats line 377"
+    assert main(["check", str(sample_copy)]) == 0
+    assert capsys.readouterr().err.count(repeat) == 1
+    _, _, err = _close(sample_copy, survey_cache, monkeypatch, capsys)
+    assert "movements/2026-10" not in err
+    assert main(["close", str(sample_copy), "--period", "2026-10", "--quiet"]) == 0
+    assert capsys.readouterr().err.count(repeat) == 1
+
+
+def test_load_site_for_a_period_issues_only_that_periods_movement_warnings(good_site):
+    import warnings
+
+    from inventory.errors import InputWarning
+    from inventory.site.load import load_site
+
+    sep = good_site / "movements" / "2026-09"
+    sep.mkdir()
+    ticket = "T9,2026-09-02T08:00:00+02:00,in,coal,A,40.0,15.0,25.0,XY1\n"
+    (sep / "weighbridge.csv").write_text(
+        "ticket,time,direction,material,pile_id,gross_t,tare_t,net_t,vehicle\n" + ticket + ticket)
+
+    def issued(**kw) -> list[str]:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            site = load_site(good_site, **kw)
+        assert [str(p) for p in site.warnings] == [
+            "site/movements/2026-09/weighbridge.csv line 3: ticket: ticket 'T9' repeats line 2; "
+            "it will be counted once"]
+        return [str(w.message) for w in caught if issubclass(w.category, InputWarning)]
+
+    assert issued() == issued(period="2026-09") == [
+        "site/movements/2026-09/weighbridge.csv line 3: ticket: ticket 'T9' repeats line 2; "
+        "it will be counted once"]
+    assert issued(period="2026-10") == []
