@@ -214,16 +214,15 @@ def test_load_site_for_a_period_issues_only_that_periods_movement_warnings(good_
     (sep / "weighbridge.csv").write_text(
         "ticket,time,direction,material,pile_id,gross_t,tare_t,net_t,vehicle\n" + ticket + ticket)
 
+    repeat = ("site/movements/2026-09/weighbridge.csv line 3: ticket: ticket 'T9' repeats line 2; "
+              "it will be counted once")
+
     def issued(**kw) -> list[str]:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             site = load_site(good_site, **kw)
-        assert [str(p) for p in site.warnings] == [
-            "site/movements/2026-09/weighbridge.csv line 3: ticket: ticket 'T9' repeats line 2; "
-            "it will be counted once"]
+        assert [str(p) for p in site.warnings] == [repeat]
         return [str(w.message) for w in caught if issubclass(w.category, InputWarning)]
 
-    assert issued() == issued(period="2026-09") == [
-        "site/movements/2026-09/weighbridge.csv line 3: ticket: ticket 'T9' repeats line 2; "
-        "it will be counted once"]
+    assert issued() == issued(period="2026-09") == [repeat]
     assert issued(period="2026-10") == []
