@@ -121,7 +121,10 @@ def _cmd_history(args: argparse.Namespace) -> int:
 
     frame = period_history(args.site, pile=args.pile, material=args.material, start=args.start, end=args.end)
     if args.format == "csv":
-        sys.stdout.write(frame.to_csv(index=False))
+        from inventory.export.cells import write_csv
+
+        # text a spreadsheet would run as a formula (a pile id "=1+1") is neutralised
+        sys.stdout.write(write_csv(frame, index=False))
     elif args.format == "json":
         sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
     elif args.format == "xlsx":

@@ -252,7 +252,7 @@ def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
     from inventory.ledger.store import Ledger
 
     say(f"checking {site_path}")
-    site = load_site(site_path)
+    site = load_site(site_path, period)  # warns only about this period's movements
     ref = site.survey_for(period)
     if ref is None:
         raise InputError(site.root / "surveys", f"no survey dated in {period} (folders are named YYYY-MM-DD)", field="date")

@@ -206,3 +206,26 @@ def test_bad_period_is_an_input_error_naming_the_option(bad, tmp_path):
         close_period(tmp_path, bad)
     assert err.value.field == "period"
     assert not list(tmp_path.iterdir())
+
+
+def test_volume_flags_reach_every_output(closed_site):
+    """September's S1 is mostly interpolated (the volume step flags it low_scan): the flag is
+    in the ledger, the layer, both workbook sheets and the report beside its variance."""
+    from openpyxl import load_workbook
+
+    folder = closed_site / "closes" / "2026-09"
+    with Ledger(closed_site / "ledger.sqlite") as led:
+        ledger_flags = led.adopted("2026-09").set_index("pile_id")["flags"].to_dict()
+    s1 = ledger_flags["S1"].split(";")
+    assert "low_scan" in s1 and "out_of_tolerance" in s1  # the volume step's and reconcile's
+    layer = read_piles_layer(folder / "piles-2026-09.gpkg").set_index("pile_id")["flags"]
+    assert layer.to_dict() == ledger_flags
+    wb = load_workbook(folder / "variance-2026-09.xlsx")
+    for sheet in ("Piles", "Variance"):
+        rows = list(wb[sheet].iter_rows(values_only=True))
+        col = rows[0].index("flags")
+        in_sheet = {r[0]: r[col] or "" for r in rows[1:8]}
+        assert in_sheet == ledger_flags, sheet
+    report = (folder / "report-2026-09.html").read_text(encoding="utf-8")
+    s1_row = next(r for r in report.split("<tr") if r.startswith(' class="oot"><td>S1</td>'))
+    assert "low scan: mostly interpolated" in s1_row

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import html
 import re
 import shutil
 import subprocess
@@ -130,3 +131,60 @@ def test_quiet_month_and_a_pile_without_book(make_close_result, tmp_path):
     assert "No scale diagnostics" in text
     cells = re.findall(r"<td>([^<]*)</td>", text)
     assert cells and not any("nan" in c.lower() for c in cells)  # a missing figure is blank
+
+
+@pytest.mark.parametrize("pile_id", ["$x^2$", r"$\alpha$", "C$1", r"$\frac{a}{$"])
+def test_pile_ids_are_drawn_as_typed_not_as_mathtext(make_close_result, monkeypatch, pile_id):
+    """A pile id matplotlib could read as mathtext is drawn literally (``$x^2$`` used to stop
+    the report with mathtext's ValueError; ``$\\alpha$`` would have shown as a Greek letter)."""
+    from inventory.export import report
+
+    res = make_close_result("2026-01")
+    old = res.piles.loc[0, "pile_id"]
+    res.piles.loc[0, "pile_id"] = pile_id
+    res.footprints.loc[res.footprints["pile_id"] == old, "pile_id"] = pile_id
+    figures = []
+    real_png = report._png
+
+    def keep(fig):
+        figures.append(fig)
+        return real_png(fig)
+
+    monkeypatch.setattr(report, "_png", keep)
+    text = report_html(res)
+    assert len(figures) == 2
+    drawn = [t for fig in figures for t in fig.findobj(lambda a: hasattr(a, "get_parse_math"))
+             if t.get_text() == pile_id]
+    # on the map (its label) and in the bar chart (its tick label), both taken literally
+    assert len(drawn) >= 2
+    assert not any(t.get_parse_math() for t in drawn)
+    assert f"<td>{html.escape(pile_id)}</td>" in text
+
+
+def test_low_scan_pile_is_marked_next_to_its_variance(make_close_result, monkeypatch):
+    """A pile the volume step flagged low_scan (most of its footprint interpolated) says so
+    beside its variance in the pile table and on its bar, and keeps all its flags."""
+    from inventory.export import report
+
+    res = make_close_result("2026-01")
+    res.piles.loc[2, "scanned_fraction"] = 0.31
+    res.piles.loc[2, "flags"] = "out_of_tolerance;significant;low_scan;unfilled_gap"
+    figures = []
+    real_png = report._png
+    monkeypatch.setattr(report, "_png", lambda fig: figures.append(fig) or real_png(fig))
+    text = report_html(res)
+    table = re.search(r"<h2>Piles</h2>.*?(<table>.*?</table>)", text, flags=re.DOTALL).group(1)
+    headers = re.findall(r"<th>([^<]*)</th>", table)
+    rows = {cells[0]: cells for cells in (
+        re.findall(r"<td[^>]*>(.*?)</td>", row) for row in re.findall(r"<tr[^>]*>(.*?)</tr>", table))
+        if cells}
+    assert len(rows) == 3
+    low = rows["P-LIME-1"]
+    at = headers.index("variance (%)")
+    assert headers[at + 1] == "scanned"
+    assert low[at + 1] == '<span class="low">31 %, low scan: mostly interpolated</span>'
+    assert rows["P-COAL-1"][at + 1] == "{:.0f} %".format(100 * res.piles.loc[0, "scanned_fraction"])
+    assert low[headers.index("flags")] == "out_of_tolerance; significant; low_scan; unfilled_gap"
+    ticks = [t.get_text() for t in figures[1].axes[0].get_yticklabels()]
+    assert ticks == ["P-COAL-1", "P-COAL-2", "P-LIME-1 (low scan)"]
+    assert [bool(b.get_hatch()) for b in figures[1].axes[0].patches[:3]] == [False, False, True]

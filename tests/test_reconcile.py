@@ -91,6 +91,23 @@ def test_variance_significance_tolerance_flags_and_reasons():
     assert "significant" in p.loc["A", "flags"] and "out_of_tolerance" in p.loc["A", "flags"]
 
 
+def test_volume_flags_are_kept_beside_reconciliation_flags():
+    # A: out of tolerance with the volume step's low_scan and unfilled_gap flags; B: quiet
+    # except for below_base; C: no volume flags at all (same numbers as the test above)
+    book = book_from({"A": 1000.0, "B": 1000.0, "C": 1000.0}, sigma={"A": 3.0, "B": 3.0, "C": 3.0})
+    sv = survey_of({"A": 1040.0, "B": 1008.0, "C": 975.0}, 4.0,
+                   flags={"A": "low_scan;unfilled_gap", "B": "below_base", "C": ""},
+                   scanned_fraction={"A": 0.42, "B": 0.97, "C": 1.0})
+    p = reconcile(sv, book, MATERIALS, ReconcileSettings(significance_k=2.0)).piles.set_index("pile_id")
+    assert p.loc["A", "flags"] == "out_of_tolerance;significant;low_scan;unfilled_gap"
+    assert p.loc["B", "flags"] == "below_base"
+    assert p.loc["C", "flags"] == "significant"
+    # the low-scan pile's reason says its variance rests on interpolation
+    assert p.loc["A", "reason_code"] == "UNEXPLAINED"
+    assert "low scan: only 42 % of the footprint scanned" in p.loc["A", "reason"]
+    assert "low scan" not in p.loc["B", "reason"] and "low scan" not in p.loc["C", "reason"]
+
+
 def test_default_tolerance_applies_to_materials_without_one():
     book = book_from({"X": 1000.0}, materials={"X": "ore"})
     r = reconcile(survey_of({"X": 1025.0}), book, MATERIALS, ReconcileSettings(default_tolerance_pct=2.0))

@@ -4,6 +4,7 @@ Every writer builds its file beside the destination under a temporary name and r
 into place, so a reader sees either the previous file or the complete new one.
 """
 
+from inventory.export.cells import write_csv
 from inventory.export.layers import write_layers
 from inventory.export.manifest import sha256_file, write_manifest
 from inventory.export.rasters import write_change, write_thickness
@@ -12,5 +13,5 @@ from inventory.export.workbook import write_history_workbook, write_workbook
 
 __all__ = [
     "write_workbook", "write_history_workbook", "write_layers", "write_thickness", "write_change",
-    "write_report", "write_manifest", "sha256_file",
+    "write_report", "write_manifest", "sha256_file", "write_csv",
 ]

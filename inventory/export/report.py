@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.model.results import CloseResult
+from inventory.stock.reconcile import LOW_SCAN_FLAG
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
@@ -38,6 +39,9 @@ _AZIMUTH_DEG = 315.0
 _ALTITUDE_DEG = 45.0
 
 _DPI = 110
+#: Text properties of every text from the user drawn in a chart (pile ids, the CRS, dates):
+#: shown as typed, never read as matplotlib mathtext (a pile id ``$x^2$`` stays ``$x^2$``).
+_LITERAL = {"parse_math": False}
 # PNG metadata left empty so the same close draws byte-identical images
 _PNG_META = {"Software": None}
 
@@ -140,7 +144,8 @@ def _map_figure(result: CloseResult) -> str:
             ax.add_patch(patch)
         c = geom.representative_point()
         ax.annotate(str(pid), (c.x, c.y), ha="center", va="center", fontsize=8,
-                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.8))
+                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.8),
+                    **_LITERAL)
     if result.coverage_gaps is not None and len(result.coverage_gaps):
         for geom in result.coverage_gaps.geometry:
             for poly in getattr(geom, "geoms", [geom]):
@@ -153,13 +158,23 @@ def _map_figure(result: CloseResult) -> str:
     ax.set_xlim(xmin, xmax)
     ax.set_ylim(ymin, ymax)
     ax.set_aspect("equal")
-    ax.set_xlabel(f"easting (m, {result.crs})")
-    ax.set_ylabel(f"northing (m, {result.crs})")
+    ax.set_xlabel(f"easting (m, {result.crs})", **_LITERAL)
+    ax.set_ylabel(f"northing (m, {result.crs})", **_LITERAL)
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
     ax.set_title(f"Survey {result.survey_date}: piles by variance "
-                 "(thick outline = out of tolerance, purple = unscanned area)", fontsize=9)
+                 "(thick outline = out of tolerance, purple = unscanned area)", fontsize=9, **_LITERAL)
     return _png(fig)
+
+
+def _flags(v: Any) -> list[str]:
+    """A pile's ``;``-separated flags as a list (missing: none)."""
+    return [f for f in v.split(";") if f] if isinstance(v, str) else []
+
+
+def _low_scan(v: Any) -> bool:
+    """True for a pile the volume step flagged as mostly unscanned."""
+    return LOW_SCAN_FLAG in _flags(v)
 
 
 def _bar_figure(result: CloseResult) -> str:
@@ -173,7 +188,11 @@ def _bar_figure(result: CloseResult) -> str:
     sig2 = 2.0 * pd.to_numeric(p["variance_sigma_t"], errors="coerce").to_numpy(float)
     pct = pd.to_numeric(p["variance_pct"], errors="coerce").to_numpy(float)
     colours = [cmap(norm(v)) if np.isfinite(v) else cmap(np.nan) for v in pct]
-    ax.barh(y, np.nan_to_num(var), color=colours, edgecolor="black", linewidth=0.5)
+    bars = ax.barh(y, np.nan_to_num(var), color=colours, edgecolor="black", linewidth=0.5)
+    low = [_low_scan(v) for v in p["flags"]]
+    for bar, is_low in zip(bars, low):
+        if is_low:  # the figure rests on interpolation: hatched, and said in the label
+            bar.set_hatch("///")
     ax.errorbar(np.nan_to_num(var), y, xerr=np.nan_to_num(sig2), fmt="none", ecolor="black",
                 capsize=3, linewidth=1.0, label="2 sigma")
     tol_t = (pd.to_numeric(p["tolerance_pct"], errors="coerce").to_numpy(float) / 100.0
@@ -181,11 +200,13 @@ def _bar_figure(result: CloseResult) -> str:
     ax.scatter(np.concatenate([tol_t, -tol_t]), np.concatenate([y, y]), marker="|", s=180,
                color="#444444", label="tolerance")
     ax.axvline(0.0, color="black", linewidth=0.8)
-    ax.set_yticks(y, [str(v) for v in p["pile_id"]], fontsize=8)
+    ax.set_yticks(y, [f"{v} (low scan)" if is_low else str(v) for v, is_low in zip(p["pile_id"], low)],
+                  fontsize=8, **_LITERAL)
     ax.invert_yaxis()
     ax.set_xlabel("variance, t (survey - book)")
     ax.legend(loc="lower right", fontsize=7, frameon=False)
-    ax.set_title("Variance per pile with its 2-sigma uncertainty", fontsize=9)
+    ax.set_title("Variance per pile with its 2-sigma uncertainty"
+                 + (" (hatched = low scan: mostly interpolated)" if any(low) else ""), fontsize=9)
     ax.grid(axis="x", linewidth=0.3)
     return _png(fig)
 
@@ -238,14 +259,30 @@ def _pile_rows(p: pd.DataFrame) -> tuple[list[list[str]], list[str]]:
             html.escape(str(r.pile_id)), html.escape(str(r.material)),
             _num(r.volume_m3, 1), _num(r.survey_t), _num(r.book_t),
             _num(r.variance_t, signed=True), _num(r.variance_pct, signed=True),
+            _coverage(r.scanned_fraction, r.flags),
             _num(2 * r.variance_sigma_t), _num(r.tolerance_pct),
             _num(_flag(r.significant)), _num(_flag(r.out_of_tolerance)),
             _num(r.adjustment_t, signed=True), _num(r.closing_t),
-            html.escape(str(r.flags or "").replace(";", "; ")),
+            html.escape("; ".join(_flags(r.flags))),
         ])
         classes.append("oot" if _flag(r.out_of_tolerance)
                        else ("sig" if _flag(r.significant) else ""))
     return rows, classes
+
+
+def _coverage(scanned_fraction: Any, flags: Any) -> str:
+    """The scanned share of the footprint, marked when the volume step flagged it low."""
+    share = _num(100.0 * float(scanned_fraction), 0) if _finite(scanned_fraction) else ""
+    if _low_scan(flags):
+        return f'<span class="low">{share + " %, " if share else ""}low scan: mostly interpolated</span>'
+    return f"{share} %" if share else ""
+
+
+def _finite(v: Any) -> bool:
+    try:
+        return math.isfinite(float(v))
+    except (TypeError, ValueError):
+        return False
 
 
 def _movement_summary(mv: pd.DataFrame) -> str:
@@ -285,6 +322,7 @@ vertical-align:middle;margin:0 4px 0 14px}
 .caution{background:#fff7e0;border-left:4px solid #c98a5a;padding:8px 12px}
 img{max-width:100%;height:auto}
 .headline td{font-size:1.05em}
+span.low{color:#8c3b1c;font-weight:bold}
 """
 
 
@@ -313,7 +351,7 @@ def report_html(result: CloseResult) -> str:
     pile_rows, pile_classes = _pile_rows(p)
     piles_table = _table(
         ["pile", "material", "volume (m³)", "survey (t)", "book (t)", "variance (t)",
-         "variance (%)", "2 sigma (t)", "tolerance (%)", "significant", "out of tolerance",
+         "variance (%)", "scanned", "2 sigma (t)", "tolerance (%)", "significant", "out of tolerance",
          "adjustment (t)", "closing (t)", "flags"], pile_rows, pile_classes)
     sd = result.scale_diagnostics
     if sd is not None and len(sd):

@@ -31,6 +31,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from inventory.export.cells import looks_like_formula
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
@@ -130,7 +131,7 @@ def _put(ws, row: int, col: int, value: Any, fmt: str | None = None, tz: ZoneInf
         # control characters are not allowed in the XML; an over-long cell makes Excel repair
         v = ILLEGAL_CHARACTERS_RE.sub("\ufffd", v)[:_MAX_CELL_CHARS]
     cell.value = v
-    if isinstance(v, str) and v.startswith("="):
+    if looks_like_formula(v):
         cell.data_type = "s"  # text from an input file is never a formula
     if fmt and isinstance(v, (int, float)) and not isinstance(v, bool):
         cell.number_format = fmt
@@ -296,6 +297,7 @@ _VARIANCE_COLUMNS = [
     "pile_id", "material", "book_t", "book_sigma_t", "survey_t", "survey_sigma_t",
     "variance_t", "variance_sigma_t", "variance_2sigma_t", "variance_pct", "tolerance_pct",
     "tolerance_t", "significant", "out_of_tolerance", "survey_minus_book_t",
+    "scanned_fraction", "flags",
 ]
 
 
@@ -408,17 +410,23 @@ def _journal_sheet(wb, result: CloseResult) -> None:
     _fit_columns(ws)
 
 
+_LISTS = (list, tuple, set, np.ndarray)
+
+
 def _extra_sheets(wb, result: CloseResult) -> None:
     """One sheet per further table of the close (belt split, measured change, materials)."""
     for title, frame in (result.tables or {}).items():
         if frame is None:
             continue
         ws = wb.create_sheet(str(title)[:31])
+        if not len(frame.columns):
+            ws["A1"] = "Nothing this period."
+            continue
         shown = frame.rename(columns=str).copy()
         for col in shown.columns:  # lists and sets (e.g. pile ids) as plain text
-            if shown[col].map(lambda v: isinstance(v, (list, tuple, set, np.ndarray))).any():
-                shown[col] = shown[col].map(
-                    lambda v: ", ".join(map(str, v)) if isinstance(v, (list, tuple, set, np.ndarray)) else v)
+            # a plain loop: Series.any() refuses an empty (or any) datetime column
+            if any(isinstance(v, _LISTS) for v in shown[col]):
+                shown[col] = shown[col].map(lambda v: ", ".join(map(str, v)) if isinstance(v, _LISTS) else v)
         _table(ws, shown, list(shown.columns), tz=ZoneInfo(result.timezone) if result.timezone else None)
         _fit_columns(ws)
 

@@ -288,6 +288,8 @@ class CheckReport:
     root: Path
     site: Site | None
     problems: list[Problem]
+    #: the problems found in each period's movement tables (also in ``problems``)
+    by_period: dict[str, list[Problem]] = field(default_factory=dict)
 
     @property
     def errors(self) -> list[Problem]:
@@ -303,8 +305,11 @@ class CheckReport:
 
 
 # ----------------------------------------------------------------------------- entry points
-def load_site(path: str | Path) -> Site:
+def load_site(path: str | Path, period: str | None = None) -> Site:
     """Load and validate a site folder.
+
+    ``period`` (``YYYY-MM``, for a close): warnings about other periods' movement tables are
+    kept in ``Site.warnings`` but not issued.
 
     Raises
     ------
@@ -317,8 +322,11 @@ def load_site(path: str | Path) -> Site:
     if not report.ok:
         raise InputErrors(report.problems)
     assert report.site is not None  # ok implies loaded; internal invariant, not user input
+    others = {id(p) for month, found in report.by_period.items() if period is not None and month != period
+              for p in found}
     for problem in report.warnings:
-        warnings.warn(str(problem), InputWarning, stacklevel=2)
+        if id(problem) not in others:
+            warnings.warn(str(problem), InputWarning, stacklevel=2)
     return report.site
 
 
@@ -327,7 +335,8 @@ def check_site(path: str | Path) -> CheckReport:
     root = Path(path)
     loader = _Loader(root)
     site = loader.load()
-    return CheckReport(root, site if not any(p.severity == "error" for p in loader.problems) else None, loader.problems)
+    return CheckReport(root, site if not any(p.severity == "error" for p in loader.problems) else None, loader.problems,
+                       loader.by_period)
 
 
 def parse_base(text: str) -> tuple[str, float | None]:
@@ -366,6 +375,7 @@ class _Loader:
         self.problems: list[Problem] = []
         self.allow_outside = False
         self.refused: set[tuple] = set()  # site.toml keys the schema refused
+        self.by_period: dict[str, list[Problem]] = {}
 
     # -- helpers
     def rel(self, path: Path) -> str:
@@ -798,7 +808,9 @@ class _Loader:
             if not Period.is_period(sub.name):
                 self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
                 continue
+            start = len(self.problems)
             out[sub.name] = self._movements(sub, pile_ids, material_names, scales, tz)
+            self.by_period[sub.name] = self.problems[start:]
         return out
 
     def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale],

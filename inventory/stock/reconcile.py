@@ -236,25 +236,31 @@ def reconcile(
     factor = 1.0 if cfg.adjust_to == "survey" else 0.5
     p["adjustment_t"] = np.where(surveyed, factor * p["variance_t"].fillna(0.0), 0.0)
     p["closing_t"] = B + p["adjustment_t"] + p["after_survey_net_t"]
-    p["flags"] = flags
+    # the volume step's flags (low_scan, unfilled_gap, below_base, ...) are kept after
+    # reconciliation's own
+    survey_flags = [_flag_list(v) for v in p["flags"]] if "flags" in p else [[] for _ in range(len(p))]
+    for i, f in enumerate(survey_flags):
+        if LOW_SCAN_FLAG in f:
+            detail[i] += _low_scan_note(p.loc[i, "scanned_fraction"] if "scanned_fraction" in p else np.nan)
     p["reason_code"] = reason
     p["reason"] = detail
     for c in PILE_COLUMNS:
         if c not in p:
             p[c] = np.nan
-    base_flags = []
-    for r in p.itertuples():
-        f = [] if not r.flags else [r.flags]
-        if r.book_t < 0:
-            f.insert(0, "negative_book")
-        if not np.isfinite(r.survey_t):
-            f.insert(0, "not_surveyed")
-        if r.significant:
-            f.insert(0, "significant")
+    all_flags = []
+    for r, own, extra in zip(p.itertuples(), survey_flags, flags):
+        f = []
         if r.out_of_tolerance:
-            f.insert(0, "out_of_tolerance")
-        base_flags.append(";".join(f))
-    p["flags"] = base_flags
+            f.append("out_of_tolerance")
+        if r.significant:
+            f.append("significant")
+        if not np.isfinite(r.survey_t):
+            f.append("not_surveyed")
+        if r.book_t < 0:
+            f.append("negative_book")
+        f += _flag_list(extra) + own
+        all_flags.append(";".join(dict.fromkeys(f)))
+    p["flags"] = all_flags
     piles_out = p[PILE_COLUMNS + ["reason_code", "reason"]].copy()
 
     journal = p[surveyed & (p["adjustment_t"] != 0)][["pile_id", "material", "adjustment_t", "reason_code", "reason"]]
@@ -545,6 +551,26 @@ def _wls(X: np.ndarray, v: np.ndarray, sig: np.ndarray) -> tuple[np.ndarray, np.
         chi2 = float(np.sum((resid * w) ** 2))
         cov = cov * max(1.0, chi2 / dof)
     return b, cov, resid
+
+
+#: The volume step's flag for a pile whose footprint is mostly unscanned (its surface
+#: interpolated over what the scanner missed or the classifier removed).
+LOW_SCAN_FLAG = "low_scan"
+
+
+def _flag_list(value: Any) -> list[str]:
+    """A ``;``-separated flags text as a list (missing or empty: no flags)."""
+    if not isinstance(value, str):
+        return []
+    return [f for f in value.split(";") if f]
+
+
+def _low_scan_note(scanned_fraction: Any) -> str:
+    """What the reason of a low-scan pile adds: its figure rests on interpolation."""
+    share = _num(scanned_fraction)
+    scanned = f"only {share * 100:.0f} % of the footprint scanned" if np.isfinite(share) else "footprint mostly unscanned"
+    return (f"; low scan: {scanned}, the rest interpolated, so the variance may come from the "
+            "unscanned part: check the survey's coverage before posting")
 
 
 def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -> tuple[list, list, list]:
