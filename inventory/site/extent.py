@@ -11,7 +11,8 @@ every pile footprint.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Callable
+from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 from inventory.errors import Problem
 from inventory.model.grid import Grid
