@@ -19,9 +19,12 @@ the ledger commits only after they are in place.
 from __future__ import annotations
 
 import os
+import re
 import shutil
+import socket
 import tempfile
 import time
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from inventory._version import __version__
-from inventory.errors import InputError, PeriodLockedError
+from inventory.errors import InputError, InventoryWarning, PeriodLockedError
 from inventory.io.rasters import read_raster
 from inventory.model.grid import Surface
 from inventory.model.period import Period
@@ -132,11 +135,41 @@ def _opening(site: Site, ledger: Any, period: str) -> tuple[Any, str]:
         opening = opening_from_close(adopted, site.materials, site.config.reconcile.adjust_to)
         return opening, "ledger (adopted closing of the previous period)"
     if site.opening is not None:
+        _check_opening_date(site, period)
         return site.opening, "opening.csv"
     raise InputError(
         site.root / "opening.csv", f"no opening balances for {period}: the ledger has no close of the "
         "previous period and the site has no opening.csv", field="tonnes",
     )
+
+
+def _check_opening_date(site: Site, period: str) -> None:
+    """Refuse opening.csv balances not dated within ``period`` when the ledger has no close of
+    the month before: movements between the opening and the period's start would be skipped
+    (an October close opened from a 1 September balance), or the opening is from a later month."""
+    month = Period.parse(period)
+    start, end = month.bounds(site.timezone)
+    tz = site.timezone
+    for row in site.opening.itertuples():
+        as_of = getattr(row, "as_of", None)
+        if as_of is None or pd.isna(as_of):
+            continue
+        as_of = pd.Timestamp(as_of)
+        if start <= as_of < end:
+            continue
+        shown = as_of.tz_convert(tz).strftime("%Y-%m-%d %H:%M")
+        first = start.tz_convert(tz).strftime("%Y-%m-%d %H:%M")
+        if as_of < start:
+            why = (f"the opening is dated {shown}, before the start of {period} ({first}), and the ledger has no "
+                   f"close of {month.previous()}: the movements from {shown} to {first} would be skipped; close "
+                   f"{Period.of(as_of.tz_convert(tz).date())} first, or give an opening dated at the start "
+                   f"of {period}")
+        else:
+            why = (f"the opening is dated {shown}, after the end of {period}; give an opening dated at the start "
+                   f"of {period}")
+        line = getattr(row, "line", None)
+        raise InputError(site.root / "opening.csv", why, line=int(line) if line is not None and pd.notna(line) else None,
+                         field="as_of")
 
 
 def _survey_extent(site: Site, surface: Surface, date: str, points: int):
@@ -171,10 +204,54 @@ def _publishable(folder: Path) -> None:
         os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~mask)
 
 
+def _host() -> str:
+    """This machine's name as it goes into staging folder names (letters and digits only)."""
+    return re.sub(r"[^A-Za-z0-9]", "", socket.gethostname()) or "host"
+
+
+#: A staging folder of a close: ``.<period>.partial-<host>-<pid>-<random>`` (``_staging``);
+#: without host and pid as named by earlier versions.
+_STAGING_NAME = re.compile(
+    r"^\.(?P<period>\d{4}-\d{2})\.partial-(?:(?P<host>[A-Za-z0-9]+)-(?P<pid>\d+)-)?[A-Za-z0-9_]+$"
+)
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # exists but belongs to someone else
+        return True
+    return True
+
+
+def _clear_stale_staging(root: Path) -> list[Path]:
+    """Remove the staging folders that killed closes of this site left in ``closes/``.
+
+    Only folders named as :func:`_staging` names them, and only those of a close that is no
+    longer running: made on this machine by a process that has ended (a close running on
+    another machine, or still running here, keeps its folder).
+    """
+    closes = root / "closes"
+    if not closes.is_dir():
+        return []
+    removed = []
+    for entry in sorted(closes.iterdir()):
+        match = _STAGING_NAME.match(entry.name)
+        if match is None or not entry.is_dir() or entry.is_symlink():
+            continue
+        if match["pid"] is not None and (match["host"] != _host() or _pid_alive(int(match["pid"]))):
+            continue
+        shutil.rmtree(entry)
+        removed.append(entry)
+    return removed
+
+
 @contextmanager
 def _staging(folder: Path) -> Iterator[Path]:
     folder.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.partial-", dir=folder.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.partial-{_host()}-{os.getpid()}-", dir=folder.parent))
     try:
         yield tmp
     finally:
@@ -247,8 +324,47 @@ class _Volumes:
     gaps: Any
 
 
+def _check_writable(root: Path, period: str) -> None:
+    """Refuse, before any work, a site where the close could not write its ledger or outputs."""
+    def refuse(path: Path, why: str) -> None:
+        raise InputError(path, why)
+
+    need = "the close writes ledger.sqlite and closes/ there"
+    if not os.access(root, os.W_OK | os.X_OK):
+        refuse(root, f"the site folder is not writable ({need}); give write permission or close a writable copy")
+    for name in ("ledger.sqlite", "ledger.sqlite-wal", "ledger.sqlite-shm"):
+        path = root / name
+        if path.exists() and not os.access(path, os.R_OK | os.W_OK):
+            refuse(path, "the ledger file is not writable; give write permission")
+    closes = root / "closes"
+    if closes.exists() or closes.is_symlink():
+        if not closes.is_dir():
+            refuse(closes, "is not a folder; the close keeps its outputs in the folder closes/")
+        if not os.access(closes, os.W_OK | os.X_OK):
+            refuse(closes, "the outputs folder is not writable; give write permission")
+    folder = _close_folder(root, period)
+    if (folder.exists() or folder.is_symlink()) and not folder.is_dir():
+        refuse(folder, f"is not a folder; the outputs of {period} go into a folder of this name: move it away")
+
+
+def _check_output_names(ledger: Ledger, folder: Path) -> None:
+    """Refuse, before any work, a close whose earlier outputs could not be kept aside under
+    ``<period>.superseded-<close id>`` because something already has that name."""
+    if not folder.is_dir():
+        return
+    closes = ledger.closes()
+    next_id = int(closes["close_id"].max()) + 1 if len(closes) else 1
+    aside = _superseded_folder(folder, next_id)
+    if aside.exists() or aside.is_symlink():
+        raise InputError(
+            aside, f"already exists: this close (ledger close {next_id}) keeps the current {folder.name}/ "
+            f"under this name; move it out of {folder.parent.name}/ first",
+        )
+
+
 def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
-    """Load and check the site, find the period's survey, open the ledger (left open)."""
+    """Load and check the site, find the period's survey, check that the close can write
+    what it will write, open the ledger (left open); then clear what killed closes left."""
     from inventory.ledger.store import Ledger
 
     say(f"checking {site_path}")
@@ -256,6 +372,7 @@ def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
     ref = site.survey_for(period)
     if ref is None:
         raise InputError(site.root / "surveys", f"no survey dated in {period} (folders are named YYYY-MM-DD)", field="date")
+    _check_writable(site.root, period)
     ledger_path = site.root / "ledger.sqlite"
     ledger = Ledger(ledger_path).open()
     try:
@@ -266,6 +383,12 @@ def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
             )
         opening, opening_source = _opening(site, ledger, period)
         prev_date = _previous_survey(site, ref.date, ledger, period)
+        _check_output_names(ledger, _close_folder(site.root, period))
+        removed = _clear_stale_staging(site.root)
+        if removed:
+            warnings.warn(InventoryWarning(
+                f"removed {len(removed)} staging folder(s) left in {site.root / 'closes'} by interrupted closes: "
+                + ", ".join(p.name for p in removed)), stacklevel=3)
     except BaseException:
         ledger.close()
         raise
@@ -512,11 +635,24 @@ def reopen_period(site_path: str | Path, period: str, reason: str, who: str | No
     """Unlock a closed period so it can be closed again; the reason is kept for good."""
     from inventory.ledger.store import Ledger
 
+    try:
+        period = str(Period.parse(period))
+    except ValueError as err:
+        raise InputError("--period", str(err), field="period") from None
+    if not isinstance(reason, str) or not reason.strip():
+        raise InputError("--reason", "a reason is required (it is kept in the ledger for good); say why "
+                         "the period is reopened")
     root = Path(site_path)
     path = root / "ledger.sqlite"
     if not path.is_file():
         raise InputError(path, f"no ledger: period {period} was never closed", field="period")
     with Ledger(path) as ledger:
+        if not ledger.is_locked(period):
+            raise InputError(path, f"period {period} is not closed; nothing to reopen", field="period")
+        later = [p for p in ledger.closed_periods() if p > period]
+        if later:
+            raise InputError(path, f"cannot reopen {period}: {later[0]} is closed and opened from it; "
+                             f"reopen {later[-1]} first, then each month back to {period}", field="period")
         return ledger.reopen(period, reason, who)
 
 

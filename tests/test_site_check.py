@@ -296,8 +296,17 @@ def test_cloud_without_crs_needs_a_default(good_site, write_tiny_cloud):
 
 def test_cloud_in_another_known_crs_is_accepted(good_site, write_tiny_cloud):
     # EPSG:4647 is ETRS89 / UTM 32N with a zone prefix on eastings: same datum, known transform
+    import laspy
+    from pyproj import Transformer
+
     survey = good_site / "surveys/2026-10-31"
     write_tiny_cloud(survey / "a.laz", crs="EPSG:3857")
+    # the same points in EPSG:3857 coordinates, so that they still cover the piles
+    las = laspy.read(survey / "a.laz")
+    x, y = Transformer.from_crs("EPSG:25832", "EPSG:3857", always_xy=True).transform(las.x, las.y)
+    las.header.offsets = [float(x.min()), float(y.min()), 0.0]
+    las.x, las.y = x, y
+    las.write(survey / "a.laz")
     assert errors_of(good_site) == []
 
 
@@ -373,8 +382,15 @@ def machine_survey(good_site, write_tiny_cloud):
     """``machine_survey(rows)``: the good site's survey with a cloud in a moving scanner's
     frame (no CRS) and ``trajectory.csv`` of the given rows."""
     def write(rows: str) -> Path:
+        import laspy
+
         survey = good_site / "surveys/2026-10-31"
         write_tiny_cloud(survey / "boom.laz", crs=None)
+        # in the scanner's frame: metres around the scanner, not site coordinates
+        las = laspy.read(survey / "boom.laz")
+        las.header.offsets = [0.0, 0.0, 0.0]
+        las.x, las.y = las.x - 500000.0, las.y - 5700000.0
+        las.write(survey / "boom.laz")
         (survey / "trajectory.csv").write_text("file,gps_time,x,y,z,roll_deg,pitch_deg,yaw_deg\n" + rows)
         return survey
     return write

@@ -1,15 +1,25 @@
 """A cheap look at a point cloud file: header only, no points decoded.
 
 Used by the site check to name unreadable files and files whose CRS cannot reach the site's,
-before any long step starts.
+before any long step starts. :func:`size_problem` also compares what the header promises
+with what the file holds, so a truncated or damaged file is named here rather than failing
+half-way through a survey: for LAS, the point records between the start of point data and
+the file's end (or its first extended VLR); for LAZ, the chunk table that the compressor
+writes after the points (LAZ specification 1.4 R1, "chunk table"), whose offset is the first
+8 bytes of the point data and whose entries give every chunk's compressed size.
 """
 
 from __future__ import annotations
 
+import struct
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
-__all__ = ["CloudInfo", "inspect_cloud"]
+__all__ = ["CloudInfo", "inspect_cloud", "size_problem"]
+
+#: ``chunk_size`` of a LAZ file whose chunks hold varying numbers of points (LAZ 1.4 R1).
+_VARIABLE_CHUNKS = 0xFFFFFFFF
 
 
 @dataclass(frozen=True)
@@ -25,10 +35,96 @@ class CloudInfo:
     error: str | None = None
 
 
+def _las_problem(header: Any, size: int) -> str | None:
+    """Uncompressed points: the header's count against the bytes between the start of the
+    point data and the end of the file, or what follows the points in the same file (LAS 1.3
+    internal waveform packets, LAS 1.4 extended VLRs)."""
+    start = int(header.offset_to_point_data)
+    record = int(header.point_format.size)
+    count = int(header.point_count)
+    end = size
+    following = [int(getattr(header, "start_of_waveform_data_packet_record", 0) or 0)]
+    if int(getattr(header, "number_of_evlrs", 0) or 0) > 0:
+        following.append(int(header.start_of_first_evlr or 0))
+    for at in following:
+        if at >= start:
+            end = min(end, at)
+    held = max(end - start, 0) // record
+    if held < count:
+        return (f"truncated or damaged: the header says {count:,} points ({start + count * record:,} bytes "
+                f"with the header) but the file has {size:,} bytes, room for {held:,} points")
+    if held > count:
+        return (f"damaged header: the header says {count:,} points but the file holds {held:,} "
+                f"point records")
+    return None
+
+
+def _laz_problem(header: Any, path: Path, size: int) -> str | None:
+    """Compressed points: the chunk table must lie inside the file and account for every
+    compressed byte and for the header's point count."""
+    start = int(header.offset_to_point_data)
+    count = int(header.point_count)
+    try:
+        vlr = header.vlrs[header.vlrs.index("LasZipVlr")]
+    except (ValueError, KeyError, IndexError):
+        return "damaged: compressed points but no LASzip record describing them"
+    with open(path, "rb") as f:
+        f.seek(start)
+        raw = f.read(8)
+        if len(raw) < 8:
+            return (f"truncated: the file ends at byte {size:,}, before its compressed points "
+                    f"(which start at byte {start:,})")
+        table_at = struct.unpack("<q", raw)[0]
+        if table_at == -1:
+            return None  # no chunk table written (a streamed file): nothing cheap to compare
+        if table_at < start + 8 or table_at + 8 > size:
+            return (f"truncated or damaged: its chunk table should start at byte {table_at:,} but the file "
+                    f"has {size:,} bytes")
+        try:
+            import lazrs
+        except ImportError:
+            return None
+        f.seek(start)
+        try:
+            laz_vlr = lazrs.LazVlr(vlr.record_data)
+            table = lazrs.read_chunk_table(f, laz_vlr)
+        except (lazrs.LazrsError, OSError, ValueError) as err:
+            return f"truncated or damaged: its chunk table cannot be read ({err})"
+    compressed = sum(int(b) for _, b in table)
+    if start + 8 + compressed != table_at:
+        return (f"damaged: its chunks hold {compressed:,} bytes of points but the chunk table says "
+                f"{table_at - start - 8:,}")
+    chunk = int(laz_vlr.chunk_size())
+    if chunk == _VARIABLE_CHUNKS:
+        low = high = sum(int(n) for n, _ in table)
+    else:
+        low, high = (len(table) - 1) * chunk + 1, len(table) * chunk
+    if count == 0 and not table:
+        return None
+    if not low <= count <= high:
+        held = f"{low:,}" if low == high else f"between {low:,} and {high:,}"
+        return f"damaged header: the header says {count:,} points but the file's chunks hold {held}"
+    return None
+
+
+def size_problem(path: str | Path, header: Any) -> str | None:
+    """Why the file cannot hold the points its header promises, or ``None``.
+
+    ``header`` is the file's ``laspy.LasHeader``. Reads no point, only the file size and,
+    for LAZ, the chunk table (a few bytes per 50,000 points).
+    """
+    path = Path(path)
+    size = path.stat().st_size
+    if header.are_points_compressed:
+        return _laz_problem(header, path, size)
+    return _las_problem(header, size)
+
+
 def inspect_cloud(path: str | Path) -> CloudInfo:
     """Read the header of a LAS/LAZ/COPC file.
 
-    Never raises for a bad file: the reason goes into ``CloudInfo.error``.
+    Never raises for a bad file: the reason goes into ``CloudInfo.error``, including a file
+    too short for the points its header promises (:func:`size_problem`).
     """
     import laspy
 
@@ -40,6 +136,9 @@ def inspect_cloud(path: str | Path) -> CloudInfo:
                 crs = header.parse_crs()
             except Exception as err:  # laspy raises several types for broken CRS VLRs
                 return CloudInfo(path, error=f"its CRS record cannot be parsed: {err}")
+            problem = size_problem(path, header)
+            if problem is not None:
+                return CloudInfo(path, point_count=int(header.point_count), error=problem)
             return CloudInfo(
                 path,
                 point_count=int(header.point_count),

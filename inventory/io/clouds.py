@@ -30,6 +30,7 @@ from pyproj import CRS
 
 from inventory.errors import CRSError, InputError, RunError
 from inventory.io.atomic import atomic_path
+from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CloudReader", "CloudWriter", "open_cloud",
@@ -122,6 +123,13 @@ class CloudReader:
             raise InputError(self.path, f"not a readable LAS/LAZ file ({err})") from err
         self.header = self._reader.header
         self.count = int(self.header.point_count)
+        try:
+            problem = size_problem(self.path, self.header)
+        except OSError as err:
+            problem = f"cannot be read ({err})"
+        if problem is not None:
+            self._reader.close()
+            raise InputError(self.path, problem)
         self.mins = np.asarray(self.header.mins, float)
         self.maxs = np.asarray(self.header.maxs, float)
         crs, source = read_crs(self.header, self.path)
@@ -152,8 +160,13 @@ class CloudReader:
                         out[dim] = np.asarray(rec[attr])
                 self.read += n
                 yield out
-        except (laspy.errors.LaspyException, OSError, ValueError) as err:
-            raise InputError(self.path, f"read failed after {self.read} points ({err})") from err
+        except (laspy.errors.LaspyException, OSError, ValueError, RuntimeError) as err:
+            # RuntimeError: the LAZ decoder's own errors (lazrs.LazrsError) on damaged data
+            raise InputError(self.path, f"truncated or damaged: decoding failed after {self.read:,} of "
+                                        f"{self.count:,} points ({err})") from err
+        if self.read != self.count:
+            raise InputError(self.path, f"truncated or damaged: the header says {self.count:,} points "
+                                        f"but only {self.read:,} could be read")
 
 
 def open_cloud(path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,

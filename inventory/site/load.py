@@ -37,6 +37,7 @@ import tomllib
 from inventory.errors import InputErrors, InputWarning, Problem
 from inventory.io.tables import read_table, table_schema
 from inventory.model.period import Period
+from inventory.site.extent import survey_extent_problems
 from inventory.site.rules import MOVEMENT_TABLES, check_movements, check_opening
 
 __all__ = [
@@ -441,6 +442,7 @@ class _Loader:
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
+            self.problems += survey_extent_problems(surveys, piles, config.grid.cell_size_m, self.rel)
         if piles is None or crs is None or tz is None:
             return None
         return Site(

@@ -45,6 +45,7 @@ from inventory.model.classes import (
 )
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor, executor
+from inventory.site.extent import grid_size_problem
 from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
 from inventory.survey.gridding import FillReport
@@ -328,7 +329,11 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
     grid_cfg = site.config.grid
     cell = float(grid_cfg.cell_size_m)
     placements = survey_placements(site, ref, site_crs, TransformerCache())
-    grid = Grid.snapped(*_extent(placements), cell=cell, crs=site.crs)
+    extent = _extent(placements)
+    too_large = grid_size_problem(extent, cell)
+    if too_large is not None:   # before any point is read, not out of memory after all of them
+        raise InputError(ref.folder, too_large, field="extent")
+    grid = Grid.snapped(*extent, cell=cell, crs=site.crs)
     tile_cells = max(1, int(round(tile_size_m / cell)))
     if buffer_m > tile_size_m:
         raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
