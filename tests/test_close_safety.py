@@ -310,7 +310,7 @@ def test_reopen_of_an_open_or_earlier_month_exits_2(good_site, capsys):
 
 
 @pytest.mark.parametrize("argv, text", [
-    (["check", "{missing}"], "site folder not found"),
+    (["check", "{missing}"], "the site folder does not exist"),
     (["survey", "{site}", "--date", "2026-10-30"], "no survey folder for 2026-10-30"),
     (["close", "{site}", "--period", "2026-11"], "no survey dated in 2026-11"),
     (["history", "{site}", "--format", "xlsx"], "--format xlsx needs --output"),
