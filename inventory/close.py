@@ -35,6 +35,7 @@ import pandas as pd
 
 from inventory._version import __version__
 from inventory.errors import InputError, InventoryWarning, PeriodLockedError
+from inventory.io.atomic import publishable
 from inventory.io.rasters import read_raster
 from inventory.model.grid import Surface
 from inventory.model.period import Period
@@ -193,15 +194,6 @@ def _assemble_piles(vols: pd.DataFrame, rec_piles: pd.DataFrame) -> pd.DataFrame
         if col not in table.columns:
             table[col] = vols.set_index("pile_id")[col].reindex(table["pile_id"]).to_numpy() if col in vols.columns else np.nan
     return table[PILE_COLUMNS + [c for c in table.columns if c not in PILE_COLUMNS]]
-
-
-def _publishable(folder: Path) -> None:
-    """Give staged outputs the permissions of ordinary new files (temp files are private)."""
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(folder, 0o777 & ~mask)
-    for path in folder.rglob("*"):
-        os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~mask)
 
 
 def _host() -> str:
@@ -527,7 +519,7 @@ def _write_manifest(result: CloseResult, names: dict[str, str], staged: Path, ti
 
     result.run["timings"] = dict(timings)
     write_manifest(result, staged / names["manifest"])
-    _publishable(staged)
+    publishable(staged)
 
 
 def _publish(staged: Path, folder: Path, aside: Path) -> None:

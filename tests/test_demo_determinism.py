@@ -36,6 +36,12 @@ def test_sample_regenerates_byte_for_byte(tmp_path: Path):
     assert sorted(got) == sorted(want)
     differ = [name for name in want if got[name] != want[name]]
     assert not differ, f"regenerated files differ: {differ}"
+    # built under a private temporary name, the site gets ordinary permissions when published
+    import os
+    mask = os.umask(0)
+    os.umask(mask)
+    assert fresh.stat().st_mode & 0o777 == 0o777 & ~mask
+    assert (fresh / "materials.csv").stat().st_mode & 0o777 == 0o666 & ~mask
 
 
 def test_sample_refuses_a_non_empty_folder(tmp_path: Path):

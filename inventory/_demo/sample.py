@@ -70,7 +70,6 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from inventory.errors import InputError
 from inventory._demo import books as _books
 from inventory._demo.scenario import (
     MATERIALS,
@@ -94,6 +93,8 @@ from inventory._demo.simulate import (
     scan,
     to_station_frame,
 )
+from inventory.errors import InputError
+from inventory.io.atomic import publishable
 
 __all__ = ["DEFAULT_SEED", "write_sample_site", "TOOL_CELL_M", "FINE_CELL_M"]
 
@@ -316,6 +317,7 @@ def write_sample_site(dest: str | os.PathLike, seed: int = DEFAULT_SEED, *, over
     tmp = Path(tempfile.mkdtemp(prefix=".sample-", dir=parent))
     try:
         _build(tmp, seed)
+        publishable(tmp)
         if dest.exists():
             shutil.rmtree(dest)
         os.replace(tmp, dest)
@@ -490,7 +492,11 @@ def _machine_survey(root: Path, term: Terminal, zmean: np.ndarray, seed: int, tz
     :func:`inventory._demo.machine_scan.write_demo_machine_survey`), so adding it changed no
     byte of the static surveys or the books.
     """
-    from inventory._demo.machine_scan import ScannerHead, demo_motion, write_demo_machine_survey
+    from inventory._demo.machine_scan import (
+        ScannerHead,
+        demo_motion,
+        write_demo_machine_survey,
+    )
 
     day = date.fromisoformat(MACHINE_SURVEY_DATE)
     h, m = map(int, MACHINE_SURVEY_START_LOCAL.split(":"))

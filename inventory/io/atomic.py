@@ -11,7 +11,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["atomic_path"]
+__all__ = ["atomic_path", "publishable"]
 
 
 @contextmanager
@@ -42,3 +42,14 @@ def atomic_path(path: str | Path, suffix: str | None = None) -> Iterator[Path]:
                     leftover.unlink()
                 except FileNotFoundError:
                     pass
+
+
+def publishable(folder: str | Path) -> None:
+    """Give a folder built under a private temporary name, and everything in it, the
+    permissions of ordinary new files and folders (``tempfile`` makes them owner-only)."""
+    folder = Path(folder)
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(folder, 0o777 & ~mask)
+    for path in folder.rglob("*"):
+        os.chmod(path, (0o777 if path.is_dir() else 0o666) & ~mask)
