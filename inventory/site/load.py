@@ -410,13 +410,13 @@ class _Loader:
         shown = self.rel(path) if isinstance(path, Path) else path
         self.problems.append(Problem(shown, where, fieldname, why, "warning"))
 
-    def table(self, path: Path, name: str) -> pd.DataFrame:
+    def table(self, path: Path, name: str, *, empty_ok: bool = False) -> pd.DataFrame:
         schema = table_schema(name)
         if self.outside(path):
             # refused before reading, so that no line of the linked file shows in a message
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
             return pd.DataFrame({c: pd.Series(dtype=object) for c in [*schema.names, "line", "source"]})
-        return read_table(path, schema, self.problems, display=self.rel(path))
+        return read_table(path, schema, self.problems, display=self.rel(path), empty_ok=empty_ok)
 
     # -- the whole folder
     def load(self) -> Site | None:
@@ -820,7 +820,8 @@ class _Loader:
         tables: dict[str, pd.DataFrame | None] = {}
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
-            tables[name] = self.table(path, name) if path.is_file() else None
+            # a header alone is a table with no records this month
+            tables[name] = self.table(path, name, empty_ok=True) if path.is_file() else None
         for extra in sorted(folder.glob("*.csv")):
             if extra.stem not in MOVEMENT_TABLES:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
