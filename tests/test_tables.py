@@ -236,3 +236,12 @@ def test_time_outside_the_years_a_timestamp_holds(good_site, capsys):
 def test_first_day_of_the_calendar_with_an_offset_is_a_value_error():
     with pytest.raises(ValueError, match="outside the dates a time can hold"):
         parse_time("0001-01-01T00:30:00+01:00")
+
+
+def test_station_file_name_too_long_for_the_system(good_site, capsys):
+    # a name longer than the file system allows made the existence check itself fail
+    path = good_site / "surveys/2026-10-31/stations.csv"
+    name = "x" * 5000
+    path.write_text(path.read_text().replace("a.laz,S1", f"{name},S1"))
+    errors = refused(good_site, capsys)
+    assert f"site/surveys/2026-10-31/stations.csv line 2: file: no file '{name}' in site/surveys/2026-10-31" in errors

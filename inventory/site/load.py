@@ -874,7 +874,7 @@ class _Loader:
                     self.error(station_path, row.line, missing[0], "a station pose needs all of x, y, z, roll_deg, pitch_deg, yaw_deg")
                 if self.outside(folder / row.file):
                     self.error(station_path, row.line, "file", f"{row.file!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
-                elif not (folder / row.file).is_file():
+                elif not _is_file(folder / row.file):
                     self.error(station_path, row.line, "file", f"no file {row.file!r} in {self.rel(folder)}")
         trajectories: dict = {}
         trajectory_path = folder / "trajectory.csv"
@@ -887,7 +887,7 @@ class _Loader:
             for name in trajectories:
                 if name is not None and self.outside(folder / name):
                     self.error(trajectory_path, None, "file", f"{name!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
-                elif name is not None and not (folder / name).is_file():
+                elif name is not None and not _is_file(folder / name):
                     self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
         if not files:
             self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
@@ -1008,6 +1008,14 @@ def _nesting(value: Any) -> tuple[int, str | None]:
             deepest, key = depth, top
         stack.extend((v, depth + 1, t) for v, t in children)
     return deepest, key
+
+
+def _is_file(path: Path) -> bool:
+    """``path.is_file()``, False for a name the system cannot look up (too long, say)."""
+    try:
+        return path.is_file()
+    except (OSError, ValueError):
+        return False
 
 
 def _posed_extent(bounds, row) -> tuple[float, float, float, float]:
