@@ -42,8 +42,8 @@ KNOWN = {
     "material": ["coal", "salt"], "file": ["a.laz"], "machine": ["M1"],
 }
 SCALE = {"weighbridge": ["WB1"], "belt_scales": ["B1"], "routing": ["B1"]}
-# any text a person might type into a cell, without line breaks
-TEXT = st.text(st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n\x00"), min_size=1, max_size=12)
+# any text a person might type into a cell, not blank, without line breaks
+TEXT = st.text(st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n\x00"), min_size=1, max_size=12).filter(str.strip)
 OFFSETS = [timezone(timedelta(hours=h)) for h in (-5, 0, 1, 2, 9)]
 
 
