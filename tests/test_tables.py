@@ -245,3 +245,11 @@ def test_station_file_name_too_long_for_the_system(good_site, capsys):
     path.write_text(path.read_text().replace("a.laz,S1", f"{name},S1"))
     errors = refused(good_site, capsys)
     assert f"site/surveys/2026-10-31/stations.csv line 2: file: no file '{name}' in site/surveys/2026-10-31" in errors
+
+
+def test_value_longer_than_csv_allows(good_site, capsys):
+    # a 200,000-character material name: over the csv module's field size limit
+    path = good_site / "materials.csv"
+    path.write_text(path.read_text() + "x" * 200_000 + ",1.0,0.1,1,\n")
+    errors = refused(good_site, capsys)
+    assert "site/materials.csv line 4: a value is longer than 131072 characters" in errors

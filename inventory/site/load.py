@@ -984,11 +984,14 @@ def _column_values(path: Path, column: str) -> set[str]:
     except (OSError, UnicodeDecodeError):
         return set()
     rows = csv.reader(io.StringIO(text, newline=""))
-    header = [h.strip() for h in next(rows, [])]
-    if column not in header:
+    try:  # a file csv cannot read (a value over its size limit) is reported by read_table
+        header = [h.strip() for h in next(rows, [])]
+        if column not in header:
+            return set()
+        at = header.index(column)
+        return {r[at].strip() for r in rows if len(r) > at and r[at].strip()}
+    except csv.Error:
         return set()
-    at = header.index(column)
-    return {r[at].strip() for r in rows if len(r) > at and r[at].strip()}
 
 
 def _nesting(value: Any) -> tuple[int, str | None]:
