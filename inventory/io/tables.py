@@ -29,6 +29,10 @@ from inventory.errors import Problem
 
 __all__ = ["TableSchema", "read_table", "table_schema", "parse_time"]
 
+#: The years a time may fall in: the range of pandas' nanosecond timestamps, whole years.
+_FIRST_YEAR, _LAST_YEAR = pd.Timestamp.min.year + 1, pd.Timestamp.max.year - 1
+
+
 @dataclass(frozen=True)
 class TableSchema:
     """One table's schema: its fields in order and the primary key."""
@@ -71,7 +75,13 @@ def parse_time(text: str) -> datetime:
         raise ValueError(f"'{text}' is not an ISO 8601 date-time") from None
     if t.tzinfo is None or t.utcoffset() is None:
         raise ValueError(f"'{text}' has no UTC offset (write e.g. {value}+01:00)")
-    return t.astimezone(timezone.utc)
+    try:
+        utc = t.astimezone(timezone.utc)
+    except OverflowError:
+        raise ValueError(f"'{text}' is outside the dates a time can hold") from None
+    if not _FIRST_YEAR <= utc.year <= _LAST_YEAR:
+        raise ValueError(f"'{text}' is outside the years {_FIRST_YEAR}-{_LAST_YEAR}")
+    return utc
 
 
 def _convert(value: str, ftype: str) -> Any:
@@ -109,26 +119,158 @@ def _check_constraints(value: Any, cons: dict) -> str | None:
     return None
 
 
+#: Byte-order marks of encodings other than UTF-8, as a spreadsheet program may save a table.
+_OTHER_BOMS = (
+    (b"\xff\xfe\x00\x00", "UTF-32"),
+    (b"\x00\x00\xfe\xff", "UTF-32"),
+    (b"\xff\xfe", "UTF-16"),
+    (b"\xfe\xff", "UTF-16"),
+)
+
+
 def _decode(path: Path, display: str, problems: list[Problem]) -> str | None:
-    raw = path.read_bytes()
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        problems.append(Problem(display, None, None, f"cannot be read ({err.strerror or err})"))
+        return None
     if raw.startswith(b"\xef\xbb\xbf"):  # a byte-order mark, as spreadsheet programs write it
         raw = raw[3:]
+    for bom, name in _OTHER_BOMS:
+        if raw.startswith(bom):
+            problems.append(Problem(display, None, None, f"{name} text (it starts with a {name} byte-order mark); save the file as UTF-8"))
+            return None
     try:
-        return raw.decode("utf-8")
+        text = raw.decode("utf-8")
     except UnicodeDecodeError as err:
         line = raw[: err.start].count(b"\n") + 1
         problems.append(Problem(display, line, None, f"not UTF-8 text (byte 0x{raw[err.start]:02x}); save the file as UTF-8"))
         return None
+    if "\x00" in text:
+        at = text.index("\x00")
+        problems.append(Problem(display, text.count("\n", 0, at) + 1, None,
+                                "holds a NUL byte: not a text file, or UTF-16 text; save the file as UTF-8"))
+        return None
+    return text
+
+
+def _open_quote_line(lines: list[str], start: int, stop: int) -> int | None:
+    """The line (1-based) of a quote still open at the end of line ``stop``, reading a
+    record from the start of line ``start``; None when no quote is open there.
+
+    Follows the CSV quoting rules: a quote at the start of a value opens it, a doubled
+    quote inside is a quote, a single one closes it.
+    """
+    opened: int | None = None
+    at_start = True
+    for number in range(start, min(stop, len(lines)) + 1):
+        text = lines[number - 1]
+        i = 0
+        while i < len(text):
+            c = text[i]
+            if opened is not None:
+                if c == '"':
+                    if text[i + 1 : i + 2] == '"':
+                        i += 1
+                    else:
+                        opened = None
+            elif c == '"' and at_start:
+                opened = number
+            at_start = opened is None and c in ",\r\n"
+            i += 1
+    return opened
+
+
+def _header_problems(
+    header: list[str], raw_header: str, schema: TableSchema, display: str, problems: list[Problem]
+) -> bool:
+    """Check the header line; append its problems and return True when the rows can be read."""
+    known = set(schema.names)
+    if ";" in raw_header:
+        names = [h.strip() for h in raw_header.split(";")]
+        if set(schema.required) <= set(names) and all(n in known for n in names if n):
+            problems.append(Problem(
+                display, 1, None,
+                "the file seems to use ';' between values; the tool needs ',' between values "
+                "(and '.' for decimals): save it as comma-separated CSV",
+            ))
+            return False
+    ok = True
+    first: dict[str, int] = {}
+    for position, name in enumerate(header, start=1):
+        if not name:
+            continue
+        if name in first:
+            problems.append(Problem(display, 1, name, f"the column appears twice (columns {first[name]} and {position})"))
+            ok = False
+        else:
+            first[name] = position
+    return ok
+
+
+def _records(text: str, display: str, problems: list[Problem]):
+    """Yield ``(line, cells)`` for each record of ``text``, ``cells`` None for a record
+    that cannot be read; quote errors become problems.
+
+    A record whose quoted value runs over a line break is a problem (no value of these
+    tables holds one: it is a quote opened by mistake), as is a quote never closed.
+    """
+    lines = io.StringIO(text, newline="").readlines()  # split as the reader splits
+    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
+    start = 1
+    while True:
+        try:
+            record = next(reader)
+        except StopIteration:
+            return
+        except csv.Error as err:
+            line = reader.line_num
+            opened = _open_quote_line(lines, start, line)
+            if "expected after" in str(err):
+                problems.append(Problem(display, line, None,
+                                        "text after the closing quote of a value (a stray '\"'?); "
+                                        "a quoted value ends at its closing quote, and a quote inside one is doubled"))
+            elif "field limit" in str(err) and opened is None:
+                problems.append(Problem(display, line, None,
+                                        f"a value is longer than {csv.field_size_limit()} characters"))
+            elif "field limit" in str(err):
+                problems.append(Problem(display, opened, None,
+                                        f"the quote opened on this line is not closed within {csv.field_size_limit()} "
+                                        "characters (a stray '\"'?)"))
+            else:
+                problems.append(Problem(display, opened or start, None,
+                                        "the quote opened on this line is never closed (a stray '\"'?), "
+                                        "so every row after it would be read into one value"))
+            return
+        end = reader.line_num
+        if end > start and any("\n" in cell or "\r" in cell for cell in record):
+            opened = _open_quote_line(lines, start, end - 1) or start
+            problems.append(Problem(
+                display, opened, None,
+                f"the quote opened on this line closes only on line {end}, so lines {opened}-{end} would be "
+                "read as one value (a stray '\"'?); a value cannot hold a line break",
+            ))
+            yield end, None
+        else:
+            yield end, record
+        start = end + 1
 
 
 def read_table(
-    path: Path, schema: TableSchema, problems: list[Problem], *, display: str | None = None
+    path: Path, schema: TableSchema, problems: list[Problem], *, display: str | None = None,
+    empty_ok: bool = False,
 ) -> pd.DataFrame:
     """Read one CSV against its schema, appending every problem found to ``problems``.
 
     Returns a DataFrame with the schema's columns (missing optional ones as empty), typed
     values (times as tz-aware UTC ``Timestamp``), and two extra columns: ``line`` (the CSV
     line number, header = 1) and ``source`` (``display``). Rows with errors are left out.
+    A file with a header and no rows is a problem unless ``empty_ok`` (a table with no
+    records this month), when it reads as an empty table.
+
+    A row with more or fewer cells than the header, a quote never closed or closed only
+    lines later, a header naming a column twice, and a file that is not UTF-8 are problems
+    too; a UTF-8 byte-order mark is accepted.
     """
     display = display or str(path)
     columns = schema.names + ["line", "source"]
@@ -136,13 +278,19 @@ def read_table(
     text = _decode(path, display, problems)
     if text is None:
         return empty
-    reader = csv.reader(io.StringIO(text, newline=""))
+    records = _records(text, display, problems)
     try:
-        header = next(reader)
+        _, header = next(records)
     except StopIteration:
-        problems.append(Problem(display, 1, None, "the file is empty (expected a header line)"))
+        header = None
+    if header is None:
+        if not any(p.path == display and p.severity == "error" for p in problems):
+            problems.append(Problem(display, 1, None, "the file is empty (expected a header line)"))
         return empty
     header = [h.strip() for h in header]
+    raw_header = io.StringIO(text, newline="").readline()
+    if not _header_problems(header, raw_header, schema, display, problems):
+        return empty
     known = set(schema.names)
     for name in schema.required:
         if name not in header:
@@ -158,9 +306,15 @@ def read_table(
     seen: dict[str, dict[Any, int]] = {
         f["name"]: {} for f in schema.fields if f.get("constraints", {}).get("unique")
     }
-    for record in reader:
-        line = reader.line_num
+    for line, record in records:
+        if record is None:
+            continue
         if not any(cell.strip() for cell in record):
+            continue
+        if len(record) != len(header):
+            hint = " (decimal commas? the tool needs ',' between values and '.' for decimals)" if len(record) > len(header) else ""
+            problems.append(Problem(display, line, None,
+                                    f"the row has {len(record)} cells, the header {len(header)}{hint}"))
             continue
         row: dict[str, Any] = {"line": line, "source": display}
         ok = True
@@ -195,7 +349,7 @@ def read_table(
             row[name] = value
         if ok:
             rows.append(row)
-    if not rows and not any(p.path == display and p.severity == "error" for p in problems):
+    if not rows and not empty_ok and not any(p.path == display and p.severity == "error" for p in problems):
         problems.append(Problem(display, 2, None, "the table has a header but no rows"))
     if not rows:
         return empty

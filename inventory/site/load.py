@@ -410,13 +410,13 @@ class _Loader:
         shown = self.rel(path) if isinstance(path, Path) else path
         self.problems.append(Problem(shown, where, fieldname, why, "warning"))
 
-    def table(self, path: Path, name: str) -> pd.DataFrame:
+    def table(self, path: Path, name: str, *, empty_ok: bool = False) -> pd.DataFrame:
         schema = table_schema(name)
         if self.outside(path):
             # refused before reading, so that no line of the linked file shows in a message
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
             return pd.DataFrame({c: pd.Series(dtype=object) for c in [*schema.names, "line", "source"]})
-        return read_table(path, schema, self.problems, display=self.rel(path))
+        return read_table(path, schema, self.problems, display=self.rel(path), empty_ok=empty_ok)
 
     # -- the whole folder
     def load(self) -> Site | None:
@@ -820,7 +820,8 @@ class _Loader:
         tables: dict[str, pd.DataFrame | None] = {}
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
-            tables[name] = self.table(path, name) if path.is_file() else None
+            # a header alone is a table with no records this month
+            tables[name] = self.table(path, name, empty_ok=True) if path.is_file() else None
         for extra in sorted(folder.glob("*.csv")):
             if extra.stem not in MOVEMENT_TABLES:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
@@ -873,7 +874,7 @@ class _Loader:
                     self.error(station_path, row.line, missing[0], "a station pose needs all of x, y, z, roll_deg, pitch_deg, yaw_deg")
                 if self.outside(folder / row.file):
                     self.error(station_path, row.line, "file", f"{row.file!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
-                elif not (folder / row.file).is_file():
+                elif not _is_file(folder / row.file):
                     self.error(station_path, row.line, "file", f"no file {row.file!r} in {self.rel(folder)}")
         trajectories: dict = {}
         trajectory_path = folder / "trajectory.csv"
@@ -886,7 +887,7 @@ class _Loader:
             for name in trajectories:
                 if name is not None and self.outside(folder / name):
                     self.error(trajectory_path, None, "file", f"{name!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
-                elif name is not None and not (folder / name).is_file():
+                elif name is not None and not _is_file(folder / name):
                     self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
         if not files:
             self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
@@ -983,11 +984,14 @@ def _column_values(path: Path, column: str) -> set[str]:
     except (OSError, UnicodeDecodeError):
         return set()
     rows = csv.reader(io.StringIO(text, newline=""))
-    header = [h.strip() for h in next(rows, [])]
-    if column not in header:
+    try:  # a file csv cannot read (a value over its size limit) is reported by read_table
+        header = [h.strip() for h in next(rows, [])]
+        if column not in header:
+            return set()
+        at = header.index(column)
+        return {r[at].strip() for r in rows if len(r) > at and r[at].strip()}
+    except csv.Error:
         return set()
-    at = header.index(column)
-    return {r[at].strip() for r in rows if len(r) > at and r[at].strip()}
 
 
 def _nesting(value: Any) -> tuple[int, str | None]:
@@ -1007,6 +1011,14 @@ def _nesting(value: Any) -> tuple[int, str | None]:
             deepest, key = depth, top
         stack.extend((v, depth + 1, t) for v, t in children)
     return deepest, key
+
+
+def _is_file(path: Path) -> bool:
+    """``path.is_file()``, False for a name the system cannot look up (too long, say)."""
+    try:
+        return path.is_file()
+    except (OSError, ValueError):
+        return False
 
 
 def _posed_extent(bounds, row) -> tuple[float, float, float, float]:
