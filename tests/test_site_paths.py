@@ -112,6 +112,13 @@ def test_a_floor_raster_that_does_not_exist_names_key_and_path(good_site, capsys
         "site/site.toml: base.floor_raster: no file 'base/flor.tif' (paths are relative to the site folder)"]
 
 
+def test_a_floor_raster_name_too_long_for_the_file_system_is_not_found(good_site, capsys):
+    name = "a" * 300 + ".tif"  # longer than a file name may be (255 bytes on common file systems)
+    add_toml(good_site, f'[base]\nfloor_raster = "{name}"\n')
+    assert refused(good_site, capsys) == [
+        f"site/site.toml: base.floor_raster: no file '{name}' (paths are relative to the site folder)"]
+
+
 def test_an_absolute_floor_raster_outside_the_site_is_refused(good_site, tmp_path, capsys):
     elsewhere = tmp_path / "elsewhere.tif"
     elsewhere.write_bytes(b"not read")

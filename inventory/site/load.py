@@ -563,7 +563,7 @@ class _Loader:
         if self.outside(path):
             self.error(toml, None, key, f"{text!r} is outside the site folder (refused; {_OUTSIDE_WHY})")
             return None
-        if not path.is_file():
+        if not _is_file(path):
             self.error(toml, None, key, f"no file {text!r} (paths are relative to the site folder)")
             return None
         real = path.resolve()
