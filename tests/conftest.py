@@ -21,6 +21,7 @@ once through the survey chain, and the open LiDAR samples of the laspy source di
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import shutil
 import subprocess
@@ -222,6 +223,25 @@ class SampleChain:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", CoverageWarning)
             return measure_piles(surface, self.site.piles, self.site.materials, base)
+
+
+@pytest.fixture(scope="session")
+def survey_cache(sample_chain):
+    """A stand-in for ``measure_survey``: the sample site's survey from the session's one run
+    (``sample_chain``), its files copied into ``out_dir`` as the real step writes them. Closes
+    that differ only in their books use it; the survey step itself is tested on its own."""
+    def cached_survey(site, date, out_dir=None, progress=None, **kw):
+        res = sample_chain.survey(date)
+        moved = {}
+        for name in ("classified_path", "surface_path", "coverage_path"):
+            src = getattr(res, name)
+            if src is not None and out_dir is not None:
+                dst = Path(out_dir) / Path(src).name
+                shutil.copy2(src, dst)
+                moved[name] = dst
+        return dataclasses.replace(res, **moved)
+
+    return cached_survey
 
 
 @pytest.fixture(scope="session")

@@ -7,7 +7,6 @@ refused; interrupted closes leave everything as it was.
 
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import shutil
 import sqlite3
@@ -31,28 +30,6 @@ def _tree(root: Path) -> dict[str, str]:
         rel = str(p.relative_to(root))
         out[rel] = hashlib.sha256(p.read_bytes()).hexdigest() if p.is_file() else "dir"
     return out
-
-
-@pytest.fixture(scope="module")
-def survey_cache(sample_chain):
-    """A stand-in for measure_survey: the sample site's survey from the session's one run
-    (``sample_chain``), its files copied into ``out_dir`` as the real step would write them.
-
-    The survey step itself is checked in tests/test_survey.py; here it only has to be the
-    same for every close, which also makes the closes of this module quick.
-    """
-    def cached_survey(site, date, out_dir=None, progress=None, **kw):
-        res = sample_chain.survey(date)
-        moved = {}
-        for name in ("classified_path", "surface_path", "coverage_path"):
-            src = getattr(res, name)
-            if src is not None and out_dir is not None:
-                dst = Path(out_dir) / Path(src).name
-                shutil.copy2(src, dst)
-                moved[name] = dst
-        return dataclasses.replace(res, **moved)
-
-    return cached_survey
 
 
 @pytest.fixture(scope="module")

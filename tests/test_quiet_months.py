@@ -10,7 +10,6 @@ user (a pile id matplotlib could read as mathematics) close the same way.
 from __future__ import annotations
 
 import csv
-import dataclasses
 import shutil
 from pathlib import Path
 
@@ -26,25 +25,6 @@ from inventory.ledger.store import Ledger
 from inventory.model.results import JOURNAL_COLUMNS, MOVEMENT_COLUMNS, SCALE_COLUMNS
 
 PERIOD = "2026-09"
-
-
-@pytest.fixture(scope="module")
-def survey_cache(sample_chain):
-    """measure_survey from the session's one run of the sample survey (``sample_chain``),
-    its files copied into ``out_dir`` as the real step writes them: these closes differ only
-    in their movements."""
-    def cached_survey(site, date, out_dir=None, progress=None, **kw):
-        res = sample_chain.survey(date)
-        moved = {}
-        for name in ("classified_path", "surface_path", "coverage_path"):
-            src = getattr(res, name)
-            if src is not None and out_dir is not None:
-                dst = Path(out_dir) / Path(src).name
-                shutil.copy2(src, dst)
-                moved[name] = dst
-        return dataclasses.replace(res, **moved)
-
-    return cached_survey
 
 
 def _opening(site: Path) -> dict[str, float]:
