@@ -90,3 +90,13 @@ def test_point_dtype_names_are_pdal_dimensions():
     # PDAL Dimension.json names (from memory); StationRange is ours.
     assert set(POINT_DTYPE.names) == {"X", "Y", "Z", "Intensity", "ReturnNumber", "NumberOfReturns",
                                       "Classification", "GpsTime", "PointSourceId", "StationRange"}
+
+
+def test_header_names_inventory_as_generating_software(tmp_path):
+    # Reference: laspy's reading of the LAS 1.4 header fields (32 bytes each).
+    from inventory._version import __version__
+
+    path = write_cloud(tmp_path / "named.laz", _points(10), "EPSG:25832")
+    header = laspy.read(path).header
+    assert header.generating_software == f"inventory {__version__}"
+    assert header.system_identifier == "OTHER"

@@ -28,6 +28,7 @@ import laspy
 import numpy as np
 from pyproj import CRS
 
+from inventory._version import __version__
 from inventory.errors import CRSError, InputError, RunError
 from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
@@ -65,6 +66,11 @@ _LAS_FIELDS = {
 #: Written coordinates are stored as integers of 1 mm (LAS 1.4 R15 section 2.4 scale factors;
 #: 1 mm is far below the 5-10 mm ranging noise of survey scanners: common practice).
 WRITE_SCALE = 0.001
+
+#: The header's "Generating Software" (LAS 1.4 R15 section 2.4: 32 characters at most).
+GENERATING_SOFTWARE = f"inventory {__version__}"[:32]
+#: The header's "System Identifier": the spec's value for data not from one hardware system.
+SYSTEM_IDENTIFIER = "OTHER"
 
 
 def empty_points(n: int = 0) -> np.ndarray:
@@ -206,6 +212,8 @@ class CloudWriter:
         header = laspy.LasHeader(point_format=point_format, version="1.4")
         header.scales = np.array([scale] * 3)
         header.offsets = np.asarray(offset, float)
+        header.generating_software = GENERATING_SOFTWARE
+        header.system_identifier = SYSTEM_IDENTIFIER
         if crs is not None:
             header.add_crs(parse_crs(crs))
         self.header = header
