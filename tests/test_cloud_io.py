@@ -89,7 +89,10 @@ def test_unreadable_file_is_an_input_error(tmp_path):
 def test_point_dtype_names_are_pdal_dimensions():
     # PDAL Dimension.json names (from memory); StationRange is ours.
     assert set(POINT_DTYPE.names) == {"X", "Y", "Z", "Intensity", "ReturnNumber", "NumberOfReturns",
-                                      "Classification", "GpsTime", "PointSourceId", "StationRange"}
+                                      "Classification", "GpsTime", "PointSourceId", "StationRange",
+                                      "Red", "Green", "Blue", "ScanAngleRank", "UserData"}
+    # every dimension a point carries, and nothing more: 3 x 8 + 2 + 3 x 1 + 8 + 2 + 8 + 3 x 2 + 4 + 1
+    assert POINT_DTYPE.itemsize == 58
 
 
 def test_header_names_inventory_as_generating_software(tmp_path):
@@ -100,3 +103,45 @@ def test_header_names_inventory_as_generating_software(tmp_path):
     header = laspy.read(path).header
     assert header.generating_software == f"inventory {__version__}"
     assert header.system_identifier == "OTHER"
+
+
+def _coloured(n=500, seed=3):
+    rng = np.random.default_rng(seed)
+    pts = _points(n, seed)
+    for c in ("Red", "Green", "Blue"):
+        pts[c] = rng.integers(0, 65536, n)
+    pts["UserData"] = rng.integers(0, 256, n)
+    pts["ScanAngleRank"] = rng.integers(-15000, 15001, n) * 0.006
+    return pts
+
+
+def test_colour_scan_angle_and_user_data_round_trip_in_point_format_7(tmp_path):
+    pts = _coloured()
+    las = laspy.read(write_cloud(tmp_path / "rgb.laz", pts, "EPSG:25832"))
+    assert las.header.point_format.id == 7
+    for dim, attr in [("Red", "red"), ("Green", "green"), ("Blue", "blue"), ("UserData", "user_data")]:
+        np.testing.assert_array_equal(np.asarray(las[attr]), pts[dim])
+    np.testing.assert_array_equal(np.asarray(las.scan_angle), np.round(pts["ScanAngleRank"] / 0.006))
+    back, _ = read_cloud(tmp_path / "rgb.laz")
+    np.testing.assert_array_equal(back[["Red", "Green", "Blue", "UserData", "PointSourceId"]],
+                                  pts[["Red", "Green", "Blue", "UserData", "PointSourceId"]])
+    np.testing.assert_allclose(back["ScanAngleRank"], pts["ScanAngleRank"], atol=1e-4)
+
+
+def test_las_1_2_colour_and_whole_degree_scan_angle_are_read(tmp_path):
+    # point format 3 stores the scan angle rank in whole degrees (LAS 1.2, section 2.5)
+    header = laspy.LasHeader(point_format=3, version="1.2")
+    las = laspy.LasData(header)
+    las.x, las.y, las.z = np.arange(4.0), np.arange(4.0), np.arange(4.0)
+    las.red, las.green, las.blue = [1, 2, 3, 4], [5, 6, 7, 8], [9, 10, 11, 65535]
+    las.scan_angle_rank = np.array([-90, -1, 0, 45], np.int8)
+    las.user_data = np.array([0, 1, 200, 255], np.uint8)
+    las.write(tmp_path / "old.las")
+    pts, _ = read_cloud(tmp_path / "old.las")
+    assert pts["Blue"].tolist() == [9, 10, 11, 65535] and pts["Red"].tolist() == [1, 2, 3, 4]
+    assert pts["ScanAngleRank"].tolist() == [-90.0, -1.0, 0.0, 45.0]
+    assert pts["UserData"].tolist() == [0, 1, 200, 255]
+    # written again in LAS 1.4 point format 7, the angle becomes 0.006 degree steps
+    again = laspy.read(write_cloud(tmp_path / "new.laz", pts))
+    assert again.header.point_format.id == 7
+    assert np.asarray(again.scan_angle).tolist() == [-15000, -167, 0, 7500]

@@ -235,14 +235,14 @@ def _sample_labels(site, date, result):
     out_src = np.asarray(las.point_source_id)
     out_cls = np.asarray(las.classification)
     kinds, classes = [], []
-    for i, path in enumerate(ref.files):
+    for path in ref.files:
         pts, crs = read_cloud(path, default_crs=site.config.survey.default_crs)
         pose = poses.get(path.name)
         if pose is not None:
             pts["X"], pts["Y"], pts["Z"], _ = pose.apply(pts["X"], pts["Y"], pts["Z"])
         kind = npz[f"{ids.get(path.name, path.stem)}_kind"]
         assert len(kind) == len(pts)
-        mine = out_src == i
+        mine = np.isin(out_src, np.unique(pts["PointSourceId"]))   # each sample file has its own id
         got = np.full(len(pts), 255, np.uint8)
         if mine.any():
             d, j = cKDTree(np.column_stack([pts["X"], pts["Y"], pts["Z"]])).query(out_xyz[mine],

@@ -35,14 +35,15 @@ from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CloudReader", "CloudWriter", "open_cloud",
-           "read_cloud", "write_cloud", "read_crs", "empty_points"]
+           "read_cloud", "write_cloud", "read_crs", "empty_points", "has_colour"]
 
-#: Points per chunk when streaming: 47 MB of POINT_DTYPE (47 bytes a point).
+#: Points per chunk when streaming: 58 MB of POINT_DTYPE (58 bytes a point).
 DEFAULT_CHUNK = 1_000_000
 
 #: One point as it travels through the survey step. Names are PDAL's dimension names
 #: (PDAL Dimension.json); ``StationRange`` is ours: metres from the scanner origin for
 #: clouds given in a scanner's own frame, NaN where the station is unknown.
+#: ``ScanAngleRank`` is in degrees, as PDAL gives it for every LAS point format.
 POINT_DTYPE = np.dtype([
     ("X", "f8"), ("Y", "f8"), ("Z", "f8"),
     ("Intensity", "u2"),
@@ -51,9 +52,13 @@ POINT_DTYPE = np.dtype([
     ("GpsTime", "f8"),
     ("PointSourceId", "u2"),
     ("StationRange", "f8"),
+    ("Red", "u2"), ("Green", "u2"), ("Blue", "u2"),
+    ("ScanAngleRank", "f4"),
+    ("UserData", "u1"),
 ])
 
-#: laspy attribute for each PDAL dimension we carry (StationRange is not stored in LAS).
+#: laspy attribute for each PDAL dimension we carry as it is stored (StationRange is not
+#: stored in LAS; the scan angle is converted, see :data:`SCAN_ANGLE_STEP`).
 _LAS_FIELDS = {
     "Intensity": "intensity",
     "ReturnNumber": "return_number",
@@ -61,7 +66,24 @@ _LAS_FIELDS = {
     "Classification": "classification",
     "GpsTime": "gps_time",
     "PointSourceId": "point_source_id",
+    "Red": "red",
+    "Green": "green",
+    "Blue": "blue",
+    "UserData": "user_data",
 }
+
+#: Degrees per unit of the LAS 1.4 ``scan_angle`` of point formats 6-10 (LAS 1.4 R15
+#: section 2.6.2); formats 0-5 store whole degrees in ``scan_angle_rank``.
+SCAN_ANGLE_STEP = 0.006
+
+#: Colour dimensions: a cloud that has them is written in point format 7, else 6.
+COLOUR = ("Red", "Green", "Blue")
+
+
+def has_colour(point_format: laspy.PointFormat) -> bool:
+    """Whether a LAS point format stores red, green and blue."""
+    return "red" in set(point_format.dimension_names)
+
 
 #: Written coordinates are stored as integers of 1 mm (LAS 1.4 R15 section 2.4 scale factors;
 #: 1 mm is far below the 5-10 mm ranging noise of survey scanners: common practice).
@@ -164,6 +186,10 @@ class CloudReader:
                 for dim, attr in _LAS_FIELDS.items():
                     if attr in names:
                         out[dim] = np.asarray(rec[attr])
+                if "scan_angle" in names:
+                    out["ScanAngleRank"] = np.asarray(rec["scan_angle"]) * SCAN_ANGLE_STEP
+                elif "scan_angle_rank" in names:
+                    out["ScanAngleRank"] = np.asarray(rec["scan_angle_rank"])
                 self.read += n
                 yield out
         except (laspy.errors.LaspyException, OSError, ValueError, RuntimeError) as err:
@@ -198,7 +224,8 @@ def read_cloud(path: "str | Path", **kw: object) -> tuple[np.ndarray, CRS | None
 
 
 class CloudWriter:
-    """Write points to a LAZ (or LAS) file chunk by chunk, LAS 1.4 point format 6.
+    """Write points to a LAZ (or LAS) file chunk by chunk, LAS 1.4 point format 6 (7 to keep
+    colour). Extra bytes dimensions of the input are not carried.
 
     The file appears under its name only when the writer closes without error (temporary
     file + rename). ``offset`` fixes the integer origin; pass the survey grid's lower-left
@@ -236,9 +263,16 @@ class CloudWriter:
             return
         rec = laspy.ScaleAwarePointRecord.zeros(len(points), header=self.header)
         rec.x, rec.y, rec.z = points["X"], points["Y"], points["Z"]
+        names = set(self.header.point_format.dimension_names)
         for dim, attr in _LAS_FIELDS.items():
-            if dim in points.dtype.names:
+            if dim in points.dtype.names and attr in names:
                 rec[attr] = points[dim]
+        if "ScanAngleRank" in points.dtype.names:
+            angle = points["ScanAngleRank"].astype(np.float64)
+            if "scan_angle" in names:
+                rec["scan_angle"] = np.round(angle / SCAN_ANGLE_STEP).astype(np.int16)
+            elif "scan_angle_rank" in names:
+                rec["scan_angle_rank"] = np.round(angle).astype(np.int8)
         self._writer.write_points(rec)
         self.written += len(points)
 
@@ -263,14 +297,19 @@ class CloudWriter:
 
 
 def write_cloud(path: "str | Path", points: np.ndarray, crs: "CRS | str | None" = None,
-                offset: tuple[float, float, float] | None = None) -> Path:
-    """Write one array of points to ``path`` (LAZ when the name ends in ``.laz``)."""
+                offset: tuple[float, float, float] | None = None, point_format: int | None = None) -> Path:
+    """Write one array of points to ``path`` (LAZ when the name ends in ``.laz``); point
+    format 7 when any point has a colour, else 6, unless ``point_format`` is given."""
     if offset is None:
         if len(points):
             offset = tuple(np.floor(np.array([points["X"].min(), points["Y"].min(),
                                               points["Z"].min()])))
         else:
             offset = (0.0, 0.0, 0.0)
-    with CloudWriter(path, crs=crs, offset=offset) as w:
+    if point_format is None:
+        coloured = len(points) and all(c in points.dtype.names for c in COLOUR) and \
+            any(points[c].any() for c in COLOUR)
+        point_format = 7 if coloured else 6
+    with CloudWriter(path, crs=crs, offset=offset, point_format=point_format) as w:
         w.write(points)
     return Path(path)

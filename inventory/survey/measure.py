@@ -32,7 +32,7 @@ from inventory.errors import (
     PipelineError,
     RunError,
 )
-from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, open_cloud
+from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, has_colour, open_cloud
 from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from inventory.io.rasters import write_coverage, write_surface
 from inventory.model.classes import (
@@ -179,23 +179,26 @@ class _Read:
     outside: int = 0
     outside_span: int = 0
     in_gap: int = 0
+    #: Some file stores colour (the classified cloud then keeps it: point format 7).
+    colour: bool = False
 
 
 def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: int, say: Progress) -> _Read:
     """Read every file in chunks, place each chunk in the site CRS and spill it by tiles;
-    ``PointSourceId`` becomes the file's index. A file with points not placed is reported in
-    one :class:`~inventory.errors.InputWarning`."""
+    every point keeps the dimensions it was read with (colour, point source id, scan angle,
+    user data, ...). A file with points not placed is reported in one
+    :class:`~inventory.errors.InputWarning`."""
     total = 0
     for p in placements:
         with open_cloud(p.path) as cloud:
             total += cloud.count
     read = _Read()
-    for index, p in enumerate(placements):
+    for p in placements:
         with open_cloud(p.path, chunk_size=chunk_size) as cloud:
+            read.colour = read.colour or has_colour(cloud.header.point_format)
             for chunk in cloud.chunks():
                 n_chunk = len(chunk)
                 chunk = p.place(chunk)
-                chunk["PointSourceId"] = index
                 read.outside += spill.add(chunk)
                 read.points += n_chunk
                 say(f"reading {p.path.name}: {read.points:,} of {total:,} points ({read.points / max(total, 1):.0%})")
@@ -219,16 +222,18 @@ class _Classified:
 
 
 def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipeline, site_crs: CRS, engine: str,
-                    statistic: str, classified_path: Path | None, say: Progress) -> _Classified:
+                    statistic: str, classified_path: Path | None, say: Progress,
+                    colour: bool = False) -> _Classified:
     """Classify and grid every tile (:func:`~inventory.survey.tiles.run_tiles`), in tile
-    order, writing the classified cloud to ``classified_path`` when given; the tiles' cells
-    are saved in the spill folder."""
+    order, writing the classified cloud to ``classified_path`` when given (LAS 1.4 point
+    format 7 when ``colour``, else 6); the tiles' cells are saved in the spill folder."""
     out = _Classified({}, 0, [math.inf, math.inf, -math.inf, -math.inf], [])
     writer = None
     if classified_path is not None:
         grid = spill.grid
         writer = CloudWriter(classified_path, crs=site_crs,
-                             offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0))
+                             offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
+                             point_format=7 if colour else 6)
     tiles = sorted(spill.counts)
     try:
         for i, (result, cells) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, engine,
@@ -349,7 +354,7 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
 
             t0 = time.perf_counter()
             classified = _classify_tiles(ex, spill, buffer_m, pipe, site_crs, used_engine, grid_cfg.statistic,
-                                         classified_path, say)
+                                         classified_path, say, colour=read.colour)
             timings["classify"] = time.perf_counter() - t0
 
             t0 = time.perf_counter()

@@ -83,7 +83,7 @@ def _load(path: Path) -> np.ndarray:
     return np.fromfile(path, dtype=POINT_DTYPE)
 
 
-#: Points read at a time from a neighbouring tile's spill file (about 50 MB).
+#: Points read at a time from a neighbouring tile's spill file (about 60 MB).
 _BLOCK = 1_000_000
 
 
