@@ -84,3 +84,25 @@ def test_cloud_without_colour_is_written_in_point_format_6(good_site, tmp_path):
         warnings.simplefilter("ignore")
         result = measure_survey(load_site(good_site), DATE, out_dir=tmp_path / "out")
     assert laspy.read(result.classified_path).header.point_format.id == 6
+
+
+@pytest.mark.parametrize("mask", [0o002, 0o027])
+def test_survey_outputs_follow_the_umask(good_site, tmp_path, mask):
+    # Outputs are written under a temporary name (mkstemp makes 0600) and renamed: the files
+    # in place must have the permissions of any new file, 0666 less the umask.
+    import os
+
+    from inventory.site.load import load_site
+    from inventory.survey.measure import measure_survey
+
+    site = load_site(good_site)
+    old = os.umask(mask)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            result = measure_survey(site, DATE, out_dir=tmp_path / "out")
+    finally:
+        os.umask(old)
+    assert len(result.written) == 3
+    for path in result.written:
+        assert oct(path.stat().st_mode & 0o777) == oct(0o666 & ~mask), path.name
