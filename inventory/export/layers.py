@@ -6,9 +6,11 @@ One file ``piles-<period>.gpkg`` (OGC GeoPackage) with three layers in the site 
     The footprint polygon of each pile with every column of the close's pile table
     (``PILE_COLUMNS``), stored as the same float64 values the ledger holds.
 ``coverage_gaps``
-    Polygons of unscanned area inside the footprints (pile_id, area_m2).
+    Polygons of unscanned area inside the footprints (pile_id, area_m2), scan speckle merged
+    away (:func:`inventory.volume.measure.coverage_gaps`).
 ``survey_extent``
-    The outline of the survey (survey_date, points).
+    The outline of the survey (survey_date, points), speckle closed and simplified to the
+    cell size (``inventory.close._survey_extent``).
 
 Every layer also carries ``period`` and ``survey_date`` on each feature. The layers describe
 themselves: a description per layer in ``gpkg_contents`` and a title and description per
@@ -95,7 +97,8 @@ _LAYER_TEXTS = {
     "piles": "Stock piles closed for {period}: each pile's footprint with its survey volume, "
              "tonnes, book stock, variance and adjustment. Survey of {date}.",
     "coverage_gaps": "Unscanned areas inside the pile footprints, close of {period}, survey of "
-                     "{date}: the surface there is interpolated.",
+                     "{date}: scan speckle narrower than the fill distance merged away; the "
+                     "surface there is interpolated or missing.",
     "survey_extent": "Outline of the area the survey of {date} covered (close of {period}).",
 }
 
