@@ -11,7 +11,12 @@ import subprocess
 import numpy as np
 import pytest
 
-from inventory.export.layers import LAYER_NAMES, read_piles_layer, write_layers
+from inventory.export.layers import (
+    COMMON_COLUMNS,
+    LAYER_NAMES,
+    read_piles_layer,
+    write_layers,
+)
 from inventory.ledger.store import Ledger
 from inventory.model.results import PILE_COLUMNS
 
@@ -53,7 +58,7 @@ def test_layers_crs_and_counts(gpkg, result):
 
 def test_pile_attributes_are_the_close_figures_exactly(gpkg, result):
     df = read_piles_layer(gpkg)
-    assert list(df.columns) == PILE_COLUMNS
+    assert list(df.columns) == PILE_COLUMNS + COMMON_COLUMNS
     for exp, got in zip(result.piles[PILE_COLUMNS].itertuples(index=False),
                         df[PILE_COLUMNS].itertuples(index=False)):
         for col, e, g in zip(PILE_COLUMNS, exp, got):
@@ -140,8 +145,8 @@ def test_ogrinfo_reads_the_layers(gpkg, result):
     proc = subprocess.run(["ogrinfo", "-so", str(gpkg), "piles"], capture_output=True, text=True,
                           timeout=60)
     for col in PILE_COLUMNS:
-        assert re.search(rf"^{col}: ", proc.stdout, re.M), col
-    assert re.search(r"^variance_t: Real", proc.stdout, re.M)
+        assert re.search(rf"^{col}: ", proc.stdout, re.MULTILINE), col
+    assert re.search(r"^variance_t: Real", proc.stdout, re.MULTILINE)
     # a value as GDAL's own reader prints it
     proc = subprocess.run(["ogrinfo", "-q", str(gpkg), "piles", "-where",
                            "pile_id = 'P-LIME-1'"], capture_output=True, text=True, timeout=60)
@@ -159,3 +164,92 @@ def test_undecided_flag_stays_empty(result, tmp_path):
     first = df.loc[df.pile_id == "P-COAL-1", "significant"].iloc[0]
     assert first is None or (isinstance(first, float) and math.isnan(first))
     assert bool(df.loc[df.pile_id == "P-LIME-1", "significant"].iloc[0]) is True
+
+
+def _sql(path, query, args=()):
+    con = sqlite3.connect(path)
+    try:
+        return con.execute(query, args).fetchall()
+    finally:
+        con.close()
+
+
+def test_every_feature_carries_period_and_survey_date(gpkg, result):
+    import pyogrio
+
+    for name in LAYER_NAMES:
+        df = pyogrio.read_dataframe(gpkg, layer=name, read_geometry=False)
+        assert len(df) > 0, name
+        assert set(df["period"]) == {"2026-01"}, name
+        assert set(df["survey_date"]) == {result.survey_date}, name
+
+
+def test_layer_descriptions_name_period_and_survey(gpkg, result):
+    rows = dict(_sql(gpkg, "SELECT table_name, description FROM gpkg_contents"))
+    assert set(rows) == set(LAYER_NAMES)
+    for name, text in rows.items():
+        assert "2026-01" in text and result.survey_date in text, (name, text)
+    assert rows["piles"].startswith("Stock piles closed for 2026-01")
+    assert "Unscanned" in rows["coverage_gaps"]
+
+
+def test_data_columns_describe_every_field_with_units(gpkg):
+    # OGC GeoPackage 1.3, annex F.9 (schema extension): gpkg_data_columns, registered in
+    # gpkg_extensions for both of its tables with extension_name gpkg_schema, scope read-write
+    ext = _sql(gpkg, "SELECT table_name, column_name, definition, scope FROM gpkg_extensions "
+                     "WHERE extension_name = 'gpkg_schema' ORDER BY table_name")
+    assert ext == [
+        ("gpkg_data_column_constraints", None, "http://www.geopackage.org/spec/#extension_schema",
+         "read-write"),
+        ("gpkg_data_columns", None, "http://www.geopackage.org/spec/#extension_schema",
+         "read-write"),
+    ]
+    for layer in LAYER_NAMES:
+        columns = [r[1] for r in _sql(gpkg, f'PRAGMA table_info("{layer}")') if not r[5]]
+        described = {r[0]: r[1:] for r in _sql(
+            gpkg, "SELECT column_name, title, description FROM gpkg_data_columns "
+                  "WHERE table_name = ?", (layer,))}
+        assert sorted(described) == sorted(columns), layer
+        for col, (title, description) in described.items():
+            assert title and description and len(description) > 15, (layer, col)
+            for ending, unit in (("_t_m3", "tonnes per cubic metre"), ("_t", "tonnes"),
+                                 ("_m3", "cubic metres"), ("_m2", "square metres"),
+                                 ("_pct", "percent"), ("_m", "metres")):
+                if col.endswith(ending):
+                    assert f"Unit: {unit}" in description, (layer, col, description)
+                    break
+            else:
+                assert "Unit:" not in description, (layer, col, description)
+    (title, description), = _sql(gpkg, "SELECT title, description FROM gpkg_data_columns "
+                                       "WHERE table_name = 'piles' AND column_name = 'variance_t'")
+    assert title == "Variance [t]"
+    assert description.startswith("Survey stock minus book stock")
+    assert description.endswith("Unit: tonnes (t).")
+    (density,), = _sql(gpkg, "SELECT description FROM gpkg_data_columns "
+                             "WHERE column_name = 'density_t_m3'")
+    assert density.endswith("Unit: tonnes per cubic metre (t/m3).")
+    assert ("piles", "period") in _sql(gpkg, "SELECT table_name, column_name FROM gpkg_data_columns")
+    # the metadata leaves the file a valid SQLite database
+    assert _sql(gpkg, "PRAGMA integrity_check") == [("ok",)]
+
+
+@pytest.mark.tools
+def test_ogrinfo_reads_the_descriptions(gpkg):
+    if not shutil.which("ogrinfo"):
+        pytest.skip("ogrinfo (Debian gdal-bin) not installed; `make tools` installs it when root")
+    proc = subprocess.run(["ogrinfo", "-so", str(gpkg), "piles"], capture_output=True, text=True,
+                          timeout=60, check=False)
+    assert proc.returncode == 0, proc.stderr
+    assert "Warning" not in proc.stderr and "ERROR" not in proc.stderr, proc.stderr
+    # GDAL's GPKG driver reports gpkg_contents.description as the layer's DESCRIPTION
+    assert "DESCRIPTION=Stock piles closed for 2026-01" in proc.stdout
+    proc = subprocess.run(["ogrinfo", "-json", "-so", str(gpkg), "piles"], capture_output=True,
+                          text=True, timeout=60, check=False)
+    if proc.returncode != 0 and "-json" in (proc.stdout + proc.stderr):
+        pytest.skip("this ogrinfo has no -json (GDAL < 3.7); data columns checked through SQLite")
+    import json
+
+    fields = {f["name"]: f for f in json.loads(proc.stdout)["layers"][0]["fields"]}
+    # GDAL >= 3.7 reads gpkg_data_columns name as the alternative name, description as comment
+    assert fields["variance_t"]["alternativeName"] == "Variance [t]"
+    assert fields["variance_t"]["comment"].endswith("Unit: tonnes (t).")

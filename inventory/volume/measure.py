@@ -64,6 +64,8 @@ __all__ = [
     "measure_piles",
     "thickness_raster",
     "coverage_gaps",
+    "close_speckle",
+    "tidy_outline",
     "spherical_correlation_sum",
 ]
 
@@ -812,20 +814,84 @@ def thickness_raster(
     return bz, th
 
 
-def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame") -> "gpd.GeoDataFrame":
-    """Unscanned parts of each footprint as polygons.
+def close_speckle(mask: np.ndarray, radius_m: float, cell: float) -> np.ndarray:
+    """``mask`` after a morphological closing with a disc of ``radius_m``.
+
+    Unset runs narrower than about twice the radius, between set cells, become set (scan
+    speckle); every set cell stays set. The grid is padded first, so the border does not
+    erode what lies along it.
+
+    >>> m = np.ones((5, 9), bool); m[2, 4] = False
+    >>> bool(close_speckle(m, 0.5, 0.5).all())
+    True
+    >>> m[:, 3:6] = False
+    >>> int((~close_speckle(m, 0.5, 0.5)).sum())
+    15
+    """
+    r = math.floor(radius_m / cell) if cell > 0 else 0
+    if r < 1 or not mask.any():
+        return mask.copy()
+    yy, xx = np.ogrid[-r:r + 1, -r:r + 1]
+    disc = xx * xx + yy * yy <= r * r
+    padded = np.pad(mask, r)
+    return ndimage.binary_closing(padded, structure=disc)[r:-r, r:-r] | mask
+
+
+def tidy_outline(geom: shapely.Geometry, min_area_m2: float, cell: float) -> shapely.Geometry:
+    """A polygon outline a person can read: holes and parts smaller than ``min_area_m2``
+    removed, the boundary simplified to the cell size (topology kept, so no part crosses
+    another and no hole leaves its part). An empty geometry when nothing is left."""
+    polys = []
+    for part in shapely.get_parts(geom):
+        if part.geom_type != "Polygon" or part.area < min_area_m2:
+            continue
+        holes = [ring for ring in part.interiors if shapely.Polygon(ring).area >= min_area_m2]
+        polys.append(shapely.Polygon(part.exterior, holes))
+    if not polys:
+        return shapely.MultiPolygon()
+    merged = shapely.union_all(polys)
+    out = shapely.simplify(merged, cell, preserve_topology=True) if cell > 0 else merged
+    return shapely.make_valid(out) if not out.is_valid else out
+
+
+def _fill_distance(surface: Surface, fill_distance_m: float | None) -> float:
+    if fill_distance_m is not None:
+        return float(fill_distance_m)
+    value = (surface.meta or {}).get("max_fill_distance_m")
+    return float(value) if value is not None else 0.0
+
+
+def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame",
+                  fill_distance_m: float | None = None) -> "gpd.GeoDataFrame":
+    """Unscanned parts of each footprint as polygons, scan speckle merged away.
+
+    The scanned cells are first closed over half the fill distance (``close_speckle``), so
+    that unscanned runs narrower than the fill distance between scanned cells are not gaps;
+    what remains unscanned in a footprint is polygonised, parts and holes smaller than a
+    square of the fill distance's side are dropped and the outline simplified to the cell
+    size (``tidy_outline``), then clipped to the footprint. A gap wider than the fill
+    distance is kept.
+
+    Parameters
+    ----------
+    surface : Surface
+    piles : GeoDataFrame
+    fill_distance_m : float, optional
+        The grid's ``max_fill_distance_m``; by default the surface's own (``surface.meta``),
+        and without one the unscanned cells are returned as they are.
 
     Returns
     -------
     GeoDataFrame
-        Columns ``pile_id``, ``area_m2``, ``geometry`` (Polygon or MultiPolygon, the
-        unscanned cells clipped to the footprint), one row per pile that has a gap, in the
-        piles' CRS.
+        Columns ``pile_id``, ``area_m2``, ``geometry`` (Polygon or MultiPolygon), one row
+        per pile that has a gap, in the piles' CRS.
     """
     import geopandas as gpd
     from rasterio.features import shapes
 
     grid = surface.grid
+    fill = _fill_distance(surface, fill_distance_m)
+    scanned = close_speckle(surface.count > 0, fill / 2.0, grid.cell)
     recs = []
     for pid, poly, _ in _footprints(piles):
         if poly is None:
@@ -833,7 +899,7 @@ def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame") -> "gpd.GeoDataFr
         (rows, cols), w = footprint_weights(poly, grid)
         if w.size == 0:
             continue
-        gap = (w > 0) & (surface.count[rows, cols] <= 0)
+        gap = (w > 0) & ~scanned[rows, cols]
         if not gap.any():
             continue
         sub = _subgrid(grid, rows, cols)
@@ -841,8 +907,11 @@ def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame") -> "gpd.GeoDataFr
             shapely.geometry.shape(g)
             for g, _ in shapes(gap.astype(np.uint8), mask=gap, transform=sub.transform)
         ]
-        clipped = shapely.intersection(shapely.union_all(geoms), poly)
-        if clipped.is_empty:
+        merged = shapely.union_all(geoms)
+        if fill > 0:
+            merged = tidy_outline(merged, fill * fill, grid.cell)
+        clipped = shapely.intersection(merged, poly)
+        if clipped.is_empty or clipped.area <= 0:
             continue
         recs.append({"pile_id": pid, "area_m2": float(clipped.area), "geometry": clipped})
     return gpd.GeoDataFrame(
