@@ -136,10 +136,10 @@ def test_an_absolute_floor_raster_inside_the_site_is_used(good_site):
 
 
 def test_allow_outside_lets_a_floor_raster_outside_be_used(good_site, tmp_path):
-    elsewhere = tmp_path / "shared" / "floor.tif"
+    elsewhere = tmp_path / "site_survey_office" / "floor.tif"
     elsewhere.parent.mkdir()
     elsewhere.write_bytes(b"checked when the close reads it")
-    add_toml(good_site, '[paths]\nallow_outside = true\n\n[base]\nfloor_raster = "../shared/floor.tif"\n')
+    add_toml(good_site, '[paths]\nallow_outside = true\n\n[base]\nfloor_raster = "../site_survey_office/floor.tif"\n')
     site = load_site(good_site)
     assert site.config.base.floor_raster.resolve() == elsewhere.resolve()
 
