@@ -27,6 +27,7 @@ import pandas as pd
 
 from inventory.errors import CRSError
 from inventory.io.atomic import atomic_path
+from inventory.io.tables import is_blank
 from inventory.model.results import PILE_COLUMNS, CloseResult
 
 __all__ = ["FIELDS", "LAYER_NAMES", "read_piles_layer", "unit_of", "write_layers"]
@@ -196,13 +197,9 @@ def _piles_layer(result: CloseResult):
                            crs=result.footprints.crs or result.crs)
     for col in ("significant", "out_of_tolerance"):
         # nullable: a flag that could not be decided stays empty, it does not become True
-        gdf[col] = pd.array([None if _missing(v) else bool(v) for v in gdf[col]],
+        gdf[col] = pd.array([None if is_blank(v) else bool(v) for v in gdf[col]],
                             dtype="boolean")
     return gdf
-
-
-def _missing(value) -> bool:
-    return value is None or value is pd.NA or (isinstance(value, float) and value != value)
 
 
 def _as_crs(gdf, crs: str, what: str):

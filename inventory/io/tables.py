@@ -27,7 +27,7 @@ import pandas as pd
 
 from inventory.errors import Problem
 
-__all__ = ["TableSchema", "read_table", "table_schema", "parse_time"]
+__all__ = ["TableSchema", "is_blank", "read_table", "table_schema", "parse_time"]
 
 #: The years a time may fall in: the range of pandas' nanosecond timestamps, whole years.
 _FIRST_YEAR, _LAST_YEAR = pd.Timestamp.min.year + 1, pd.Timestamp.max.year - 1
@@ -51,6 +51,22 @@ class TableSchema:
 
 
 @lru_cache(maxsize=None)
+def is_blank(value: Any) -> bool:
+    """Whether a cell holds no value: None, NaN, NaT, ``pd.NA`` or blank text.
+
+    >>> [is_blank(v) for v in (None, float("nan"), pd.NaT, "  ", "", 0, "A1")]
+    [True, True, True, True, True, False, False]
+    """
+    if value is None:
+        return True
+    if isinstance(value, str):
+        return value.strip() == ""
+    try:
+        return bool(pd.isna(value))
+    except (TypeError, ValueError):
+        return False
+
+
 def table_schema(name: str) -> TableSchema:
     """The packaged schema ``inventory/site/schemas/<name>.table.json``."""
     text = resources.files("inventory").joinpath("site", "schemas", f"{name}.table.json").read_text("utf-8")

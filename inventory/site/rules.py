@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.errors import Problem
-from inventory.io.tables import parse_time, table_schema
+from inventory.io.tables import is_blank, parse_time, table_schema
 from inventory.model.period import Period
 
 if TYPE_CHECKING:
@@ -97,17 +97,6 @@ _OPENING_SIGMAS = ("sigma_t", "density_sigma_t", "base_sigma_t")
 
 
 # ----------------------------------------------------------------------------- helpers
-def _missing(value: Any) -> bool:
-    if value is None:
-        return True
-    if isinstance(value, str):
-        return value.strip() == ""
-    try:
-        return bool(pd.isna(value))
-    except (TypeError, ValueError):
-        return False
-
-
 class _Rows:
     """One table being checked: the working copy, its provenance and the problems found."""
 
@@ -227,7 +216,7 @@ class _Rows:
 
 def _blank(s: pd.Series) -> pd.Series:
     """True where a value is missing: None, NaN, NaT or a blank string."""
-    return pd.Series([_missing(v) for v in s], index=s.index, dtype=bool)
+    return pd.Series([is_blank(v) for v in s], index=s.index, dtype=bool)
 
 
 def _utc(value: Any) -> pd.Timestamp:

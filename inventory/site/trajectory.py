@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.errors import InputError, InputErrors, InputWarning, Problem
-from inventory.io.tables import read_table, table_schema
+from inventory.io.tables import is_blank, read_table, table_schema
 from inventory.model.pose import (
     ADJUSTED_GPS_OFFSET_S,
     AXIS_FIELDS,
@@ -90,11 +90,6 @@ def machines_from_config(machines: Mapping[str, Any] | None, path: str | Path = 
 # ---------------------------------------------------------------------------------- the table
 
 
-def _given(v: Any) -> bool:
-    return v is not None and not (isinstance(v, float) and math.isnan(v)) and not (
-        isinstance(v, str) and not v.strip())
-
-
 def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
                       machines: Mapping[str, Machine], problems: list[Problem]) -> Trajectory | None:
     """One file's rows as a Trajectory, appending problems instead of raising."""
@@ -111,8 +106,8 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
         problems.append(Problem(display, int(lines[i + 1]), "gps_time",
                                 f"{t[i + 1]!r} is not after {t[i]!r} on line {int(lines[i])}; "
                                 "times must strictly increase"))
-    pose_rows = rows[list(POSE_FIELDS)].map(_given)
-    axes_rows = rows[list(AXIS_FIELDS)].map(_given)
+    pose_rows = ~rows[list(POSE_FIELDS)].map(is_blank).astype(bool)
+    axes_rows = ~rows[list(AXIS_FIELDS)].map(is_blank).astype(bool)
     has_pose = pose_rows.any(axis=1).to_numpy()
     has_axes = axes_rows.any(axis=1).to_numpy()
     variant = "axes" if has_axes[0] and not has_pose[0] else "pose"
@@ -120,7 +115,7 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
     flags = axes_rows if variant == "axes" else pose_rows
     for j, line in enumerate(lines):
         if (has_pose[j] if variant == "axes" else has_axes[j]):
-            problems.append(Problem(display, int(line), next(c for c in other if _given(rows.iloc[j][c])),
+            problems.append(Problem(display, int(line), next(c for c in other if not is_blank(rows.iloc[j][c])),
                                     f"this trajectory gives {'machine axes' if variant == 'axes' else 'poses'} "
                                     "(from its first row); give one kind per file"))
             break
@@ -129,13 +124,13 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
             problems.append(Problem(display, int(line), missing[0], "value is missing: give all of "
                                     + ", ".join(cols)))
             break
-    mids = {str(m) for m in rows["machine"] if _given(m)}
+    mids = {str(m) for m in rows["machine"] if not is_blank(m)}
     machine = None
     if len(mids) > 1:
         problems.append(Problem(display, first, "machine", f"one trajectory names several machines: {sorted(mids)}"))
     elif mids:
         mid = mids.pop()
-        blank = [int(l) for l, m in zip(lines, rows["machine"]) if not _given(m)]
+        blank = [int(l) for l, m in zip(lines, rows["machine"]) if is_blank(m)]
         if blank:
             problems.append(Problem(display, blank[0], "machine", f"value is missing (other rows give {mid!r})"))
         machine = machines.get(mid)
@@ -180,7 +175,7 @@ def _fill_gps_time(frame: pd.DataFrame, display: str, problems: list[Problem]) -
     Returns False (with a problem) when some rows give ``gps_time`` and others do not, or a
     needed ``time`` is missing or too early.
     """
-    given = frame["gps_time"].map(_given).to_numpy()
+    given = ~frame["gps_time"].map(is_blank).to_numpy(dtype=bool)
     if given.all():
         frame["gps_time"] = frame["gps_time"].astype(float)
         return True
@@ -229,7 +224,7 @@ def trajectory_from_frame(frame: pd.DataFrame, machines: Mapping[str, Machine] |
     if len(frame) == 0:
         problems.append(Problem(display, 2, None, "the table has a header but no rows"))
     elif _fill_gps_time(frame, display, problems):
-        named = frame["file"].map(_given).to_numpy()
+        named = ~frame["file"].map(is_blank).to_numpy(dtype=bool)
         if named.any() and not named.all():
             j = int(np.nonzero(~named)[0][0])
             problems.append(Problem(display, int(frame["line"].iloc[j]), "file",

@@ -29,6 +29,7 @@ from pyproj import CRS
 from inventory.errors import CRSError, InputError, InputWarning
 from inventory.io.clouds import open_cloud
 from inventory.io.crs import Reprojector, TransformerCache
+from inventory.io.tables import is_blank
 from inventory.model.pose import (
     DEFAULT_MAX_GAP_S,
     Trajectory,
@@ -81,17 +82,6 @@ class StationPose:
                 float(q[0].max() + self.x), float(q[1].max() + self.y))
 
 
-def _blank(v: Any) -> bool:
-    if v is None:
-        return True
-    if isinstance(v, str):
-        return v.strip() == ""
-    try:
-        return bool(np.isnan(v))
-    except TypeError:
-        return False
-
-
 def poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
                         ) -> dict[str, StationPose | None]:
     """Pose per cloud file name from a stations table (a DataFrame or list of mappings).
@@ -107,11 +97,11 @@ def poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
         rows = list(stations)
     out: dict[str, StationPose | None] = {}
     for i, row in enumerate(rows):
-        line = int(row.get("line", i + 2)) if not _blank(row.get("line")) else i + 2
+        line = int(row.get("line", i + 2)) if not is_blank(row.get("line")) else i + 2
         name = str(row.get("file", "")).strip()
         if not name:
             raise InputError(path, "file name is blank", line=line, field="file")
-        blanks = [c for c in POSE_COLUMNS if _blank(row.get(c))]
+        blanks = [c for c in POSE_COLUMNS if is_blank(row.get(c))]
         if len(blanks) == len(POSE_COLUMNS):
             out[name] = None
             continue
