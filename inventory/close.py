@@ -174,26 +174,12 @@ def _check_opening_date(site: Site, period: str) -> None:
 
 
 def _survey_extent(site: Site, surface: Surface, date: str, points: int):
-    """The outline of the scanned cells as a person reads it: speckle closed over half the
-    fill distance, holes and stray parts smaller than a square of the fill distance's side
-    dropped, simplified to the cell size (``inventory.volume.measure.tidy_outline``)."""
+    """The survey_extent layer: the scanned cells' outline (``scanned_outline``)."""
     import geopandas as gpd
-    import rasterio.features
-    import shapely
 
-    from inventory.volume import measure as _vol
+    from inventory.volume.measure import scanned_outline
 
-    fill = float(site.config.grid.max_fill_distance_m)
-    cell = surface.grid.cell
-    mask = _vol.close_speckle(surface.count > 0, fill / 2.0, cell)
-    shapes = [
-        shapely.geometry.shape(geom)
-        for geom, value in rasterio.features.shapes(mask.astype("uint8"), mask=mask, transform=surface.grid.transform)
-        if value == 1
-    ]
-    geom = shapely.union_all(shapes) if shapes else shapely.Polygon()
-    if fill > 0 and not geom.is_empty:
-        geom = _vol.tidy_outline(geom, fill * fill, cell)
+    geom = scanned_outline(surface, site.config.grid.max_fill_distance_m)
     return gpd.GeoDataFrame({"survey_date": [date], "points": [int(points)]}, geometry=[geom], crs=site.crs)
 
 

@@ -66,6 +66,7 @@ __all__ = [
     "coverage_gaps",
     "close_speckle",
     "tidy_outline",
+    "scanned_outline",
     "spherical_correlation_sum",
 ]
 
@@ -861,6 +862,28 @@ def _fill_distance(surface: Surface, fill_distance_m: float | None) -> float:
     return float(value) if value is not None else 0.0
 
 
+def _outline(mask: np.ndarray, transform: Any, fill: float, cell: float) -> shapely.Geometry:
+    """The set cells of ``mask`` as polygons, tidied (:func:`tidy_outline`) when ``fill`` > 0."""
+    from rasterio.features import shapes
+
+    geoms = [shapely.geometry.shape(g)
+             for g, value in shapes(mask.astype(np.uint8), mask=mask, transform=transform) if value == 1]
+    merged = shapely.union_all(geoms) if geoms else shapely.Polygon()
+    if fill > 0 and not merged.is_empty:
+        merged = tidy_outline(merged, fill * fill, cell)
+    return merged
+
+
+def scanned_outline(surface: Surface, fill_distance_m: float | None = None) -> shapely.Geometry:
+    """The outline of a survey's scanned cells as a person reads it: speckle closed over half
+    the fill distance (:func:`close_speckle`), holes and stray parts smaller than a square of
+    the fill distance's side dropped and the boundary simplified to the cell size
+    (:func:`tidy_outline`). ``fill_distance_m`` defaults to the surface's own."""
+    fill = _fill_distance(surface, fill_distance_m)
+    mask = close_speckle(surface.count > 0, fill / 2.0, surface.grid.cell)
+    return _outline(mask, surface.grid.transform, fill, surface.grid.cell)
+
+
 def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame",
                   fill_distance_m: float | None = None) -> "gpd.GeoDataFrame":
     """Unscanned parts of each footprint as polygons, scan speckle merged away.
@@ -887,7 +910,6 @@ def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame",
         per pile that has a gap, in the piles' CRS.
     """
     import geopandas as gpd
-    from rasterio.features import shapes
 
     grid = surface.grid
     fill = _fill_distance(surface, fill_distance_m)
@@ -902,14 +924,7 @@ def coverage_gaps(surface: Surface, piles: "gpd.GeoDataFrame",
         gap = (w > 0) & ~scanned[rows, cols]
         if not gap.any():
             continue
-        sub = _subgrid(grid, rows, cols)
-        geoms = [
-            shapely.geometry.shape(g)
-            for g, _ in shapes(gap.astype(np.uint8), mask=gap, transform=sub.transform)
-        ]
-        merged = shapely.union_all(geoms)
-        if fill > 0:
-            merged = tidy_outline(merged, fill * fill, grid.cell)
+        merged = _outline(gap, _subgrid(grid, rows, cols).transform, fill, grid.cell)
         clipped = shapely.intersection(merged, poly)
         if clipped.is_empty or clipped.area <= 0:
             continue
