@@ -18,6 +18,7 @@ the ledger commits only after they are in place.
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -27,6 +28,7 @@ import time
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterator
 
@@ -254,9 +256,28 @@ def _close_folder(root: Path, period: str) -> Path:
     return root / "closes" / period
 
 
-def _superseded_folder(folder: Path, close_id: int) -> Path:
-    """Where a period's earlier outputs are kept once a new close of it is published."""
-    return folder.with_name(f"{folder.name}.superseded-{close_id}")
+def _held_close_id(ledger: Ledger, folder: Path) -> int | None:
+    """Which close the outputs in ``folder`` are of: its run.json says so; for folders
+    written before run.json carried it, the last close the ledger superseded for the period."""
+    try:
+        held = json.loads((folder / "run.json").read_text(encoding="utf-8")).get("close_id")
+        if isinstance(held, int):
+            return held
+    except (OSError, ValueError, AttributeError):
+        pass
+    reopened = ledger.reopenings(folder.name)
+    if len(reopened):
+        return int(reopened["close_id"].iloc[-1])
+    return None
+
+
+def _superseded_folder(folder: Path, held: int | None) -> Path:
+    """Where a period's earlier outputs are kept once a new close of it is published,
+    named after the close they hold (``2026-10.superseded-close-1``)."""
+    if held is None:
+        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+        return folder.with_name(f"{folder.name}.superseded-{stamp}")
+    return folder.with_name(f"{folder.name}.superseded-close-{held}")
 
 
 def _previous_surface_file(root: Path, prev_date: str) -> Path:
@@ -336,16 +357,15 @@ def _check_writable(root: Path, period: str) -> None:
 
 def _check_output_names(ledger: Ledger, folder: Path) -> None:
     """Refuse, before any work, a close whose earlier outputs could not be kept aside under
-    ``<period>.superseded-<close id>`` because something already has that name."""
+    ``<period>.superseded-close-<id>`` because something already has that name."""
     if not folder.is_dir():
         return
-    closes = ledger.closes()
-    next_id = int(closes["close_id"].max()) + 1 if len(closes) else 1
-    aside = _superseded_folder(folder, next_id)
+    held = _held_close_id(ledger, folder)
+    aside = _superseded_folder(folder, held)
     if aside.exists() or aside.is_symlink():
         raise InputError(
-            aside, f"already exists: this close (ledger close {next_id}) keeps the current {folder.name}/ "
-            f"under this name; move it out of {folder.parent.name}/ first",
+            aside, f"already exists: this close keeps the current {folder.name}/ "
+            f"(outputs of ledger close {held}) under this name; move it out of {folder.parent.name}/ first",
         )
 
 
@@ -532,22 +552,65 @@ def _unpublish(staged: Path, folder: Path, aside: Path) -> None:
         os.replace(aside, folder)
 
 
-def _record(ledger: Ledger, result: CloseResult, staged: Path, folder: Path, say: Progress) -> int:
-    """Record the close in the ledger and publish the staged outputs: both or neither.
+def _mark_superseded(aside: Path, held: int | None, close_id: int, closed_utc: str) -> None:
+    """Say in the set-aside folder which close replaced it: a SUPERSEDED.txt beside the
+    outputs, and ``superseded_by_close`` in its run.json."""
+    from inventory.io.atomic import atomic_path
 
-    The outputs move into place inside the ledger transaction, which commits after them;
-    if anything fails before the commit is through, they are moved back.
-    """
-    say("recording the close in the ledger")
-    aside = None
+    which = f"close {held}" if held is not None else "an earlier close"
+    text = (
+        f"The outputs in this folder are those of ledger {which} of {aside.name.split('.')[0]}.\n"
+        f"They were superseded by ledger close {close_id}, recorded {closed_utc}, whose outputs "
+        f"are in ../{aside.name.split('.')[0]}/.\nDo not post from these files.\n"
+    )
+    with atomic_path(aside / "SUPERSEDED.txt") as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    manifest = aside / "run.json"
     try:
-        with ledger.closing(result, result.run["inputs"], __version__) as close_id:
-            aside = _superseded_folder(folder, close_id)
+        data = json.loads(manifest.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return
+    if isinstance(data, dict):
+        data["superseded_by_close"] = close_id
+        data["superseded_utc"] = closed_utc
+        with atomic_path(manifest) as tmp:
+            tmp.write_text(json.dumps(data, indent=2, sort_keys=True, ensure_ascii=False) + "\n",
+                           encoding="utf-8")
+
+
+def _record(run: _Loaded, result: CloseResult, names: dict[str, str], staged: Path,
+            timings: dict[str, float], done: Callable[[str], None], say: Progress) -> int:
+    """Reserve the close in the ledger, write every output with its close id, publish:
+    all or nothing.
+
+    The outputs are written and moved into place inside the ledger transaction, which
+    commits after them; if anything fails before the commit is through, the outputs are
+    moved back and the ledger is as it was.
+    """
+    ledger, folder = run.ledger, run.folder
+    held = _held_close_id(ledger, folder) if folder.is_dir() else None
+    aside = _superseded_folder(folder, held)
+    closed_utc = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    published = False
+    say("recording the close in the ledger")
+    try:
+        with ledger.closing(result, result.run["inputs"], __version__, closed_utc=closed_utc) as close_id:
+            result.close_id, result.closed_utc = close_id, closed_utc
+            _write_outputs(result, names, staged, say)
+            done("outputs")
+            _write_manifest(result, names, staged, timings)
+            published = True
             _publish(staged, folder, aside)
     except BaseException:
-        if aside is not None:
+        result.close_id = result.closed_utc = None
+        if published:
             _unpublish(staged, folder, aside)
         raise
+    if aside.is_dir():
+        try:
+            _mark_superseded(aside, held, close_id, closed_utc)
+        except OSError as err:  # the close is recorded; only the note is missing
+            warnings.warn(InventoryWarning(f"{aside}: cannot mark it superseded: {err}"), stacklevel=2)
     return close_id
 
 
@@ -607,10 +670,7 @@ def close_period(
             result = _reconcile(run, survey, volumes, book, timings, say)
             done("reconcile")
             names = _output_names(result, survey)
-            _write_outputs(result, names, staged, say)
-            done("outputs")
-            _write_manifest(result, names, staged, timings)
-            close_id = _record(run.ledger, result, staged, run.folder, say)
+            close_id = _record(run, result, names, staged, timings, done, say)
             done("ledger")
     finally:
         run.ledger.close()

@@ -8,6 +8,7 @@ refused; interrupted closes leave everything as it was.
 from __future__ import annotations
 
 import hashlib
+import json
 import shutil
 import sqlite3
 import subprocess
@@ -175,6 +176,15 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
         assert (site / "closes" / "2026-10" / name).read_bytes() == data, name
     kept = [p.name for p in (site / "closes").iterdir() if p.name.startswith("2026-10.superseded-")]
     assert len(kept) == 1
+    aside = site / "closes" / kept[0]
+    old_run = json.loads((aside / "run.json").read_text())
+    new_run = json.loads((site / "closes" / "2026-10" / "run.json").read_text())
+    # the folder is named after the close it holds and says which close replaced it
+    assert kept == [f"2026-10.superseded-close-{old_run['close_id']}"]
+    assert old_run["superseded_by_close"] == new_run["close_id"] == done.close_id
+    assert f"superseded by ledger close {done.close_id}" in (aside / "SUPERSEDED.txt").read_text()
+    assert "superseded_by_close" not in new_run
+    assert new_run["closed_utc"] == old_run["superseded_utc"]
 
 
 @pytest.mark.parametrize("bad", ["2026-13", "2026-1", "26-10", "2026/10", 202610])

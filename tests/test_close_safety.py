@@ -188,7 +188,7 @@ def test_stray_superseded_folder_is_refused_before_any_work(good_site, capsys, m
 
     assert main(["close", str(good_site), "--period", "2026-10"]) == 0
     assert main(["reopen", str(good_site), "--period", "2026-10", "--reason", "rescan"]) == 0
-    stray = good_site / "closes" / "2026-10.superseded-2"
+    stray = good_site / "closes" / "2026-10.superseded-close-1"   # the name close 1's outputs get
     stray.mkdir()
     (stray / "note.txt").write_text("kept by hand\n")
     capsys.readouterr()
@@ -197,8 +197,8 @@ def test_stray_superseded_folder_is_refused_before_any_work(good_site, capsys, m
     monkeypatch.setattr(close, "_survey", lambda *a, **k: surveyed.append(a))
     assert main(["close", str(good_site), "--period", "2026-10"]) == 2
     assert error_lines(capsys.readouterr().err) == [(
-        f"error: {stray}: already exists: this close (ledger close 2) keeps the current 2026-10/ under this "
-        "name; move it out of closes/ first")]
+        f"error: {stray}: already exists: this close keeps the current 2026-10/ (outputs of ledger close 1) "
+        "under this name; move it out of closes/ first")]
     assert surveyed == []
     assert snapshot(good_site) == before
 

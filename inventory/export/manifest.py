@@ -128,6 +128,8 @@ def manifest_dict(result: CloseResult) -> dict[str, Any]:
         "manifest_version": MANIFEST_VERSION,
         "site": result.site_name,
         "period": result.period,
+        "close_id": result.close_id,
+        "closed_utc": result.closed_utc,
         "crs": result.crs,
         "timezone": result.timezone,
         "survey_date": result.survey_date,

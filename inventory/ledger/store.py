@@ -472,12 +472,14 @@ class Ledger:
     @contextmanager
     def closing(
         self, result: CloseResult, inputs: Mapping[str | Path, str], version: str,
-        *, who: str | None = None,
+        *, who: str | None = None, closed_utc: str | None = None,
     ) -> Iterator[int]:
         """Record a close in one transaction that commits only when the block succeeds.
 
-        The caller can move its outputs into place inside the ``with`` block: if the
-        block raises, nothing is committed and the ledger is exactly as before.
+        The close id is known inside the ``with`` block, so the caller can write it into
+        its outputs there and move them into place: if the block raises, nothing is
+        committed and the ledger is exactly as before. The block holds the ledger's write
+        lock; other writers wait (up to the connection timeout) until it ends.
 
         Yields
         ------
@@ -505,7 +507,8 @@ class Ledger:
                     f"{self.path}: cannot close {period}: the later period {later} is already "
                     f"closed; reopen {later} first"
                 )
-            close_id = self._insert(result, inputs, version, who or getpass.getuser())
+            close_id = self._insert(result, inputs, version, who or getpass.getuser(),
+                                    closed_utc or _utc_now())
             yield close_id
         except BaseException:
             self._rollback(state)
@@ -542,7 +545,8 @@ class Ledger:
         return close_id
 
     def _insert(
-        self, result: CloseResult, inputs: Mapping[str | Path, str], version: str, who: str
+        self, result: CloseResult, inputs: Mapping[str | Path, str], version: str, who: str,
+        closed_utc: str,
     ) -> int:
         con = self._db
         piles = result.piles
@@ -559,7 +563,7 @@ class Ledger:
                 "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'adopted')",
                 (result.period, result.site_name, result.crs, result.survey_date,
                  _instant_text(result.survey_instant), result.previous_survey_date,
-                 str(version), _utc_now(), who),
+                 str(version), closed_utc, who),
             )
             close_id = int(cur.lastrowid)
             placeholders = ", ".join("?" for _ in range(len(BALANCE_COLUMNS) + 1))

@@ -84,3 +84,8 @@ class CloseResult:
     #: This month's rows of the belt-scale bias fit (``inventory.stock.reconcile.BIAS_ROW_COLUMNS``),
     #: kept by the ledger so that later months can pool them; None = none to keep.
     bias_rows: Any = None
+    #: The ledger's id of this close and the UTC time it was recorded (ISO 8601, "Z"),
+    #: set when the ledger reserves the close, before any output is written; None for a
+    #: result that is not being recorded (tests, previews).
+    close_id: int | None = None
+    closed_utc: str | None = None
