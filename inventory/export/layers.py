@@ -28,70 +28,15 @@ import pandas as pd
 from inventory.errors import CRSError
 from inventory.io.atomic import atomic_path
 from inventory.io.tables import is_blank
+from inventory.model.columns import FIELDS, unit_of
 from inventory.model.results import PILE_COLUMNS, CloseResult
 
-__all__ = ["FIELDS", "LAYER_NAMES", "read_piles_layer", "unit_of", "write_layers"]
+__all__ = ["LAYER_NAMES", "read_piles_layer", "write_layers"]
 
 LAYER_NAMES = ("piles", "coverage_gaps", "survey_extent")
 
 #: Columns every layer carries on each feature, after its own.
 COMMON_COLUMNS = ["period", "survey_date"]
-
-#: Units by the ending of a column name: (symbol, words). ``density_t_m3`` is matched first.
-_UNITS = (
-    ("_t_m3", ("t/m3", "tonnes per cubic metre")),
-    ("_m3", ("m3", "cubic metres")),
-    ("_m2", ("m2", "square metres")),
-    ("_pct", ("%", "percent")),
-    ("_t", ("t", "tonnes")),
-    ("_m", ("m", "metres")),
-)
-
-#: Field -> (title, description) for the fields of the three layers; the unit is added from
-#: the column name (:func:`unit_of`).
-FIELDS: dict[str, tuple[str, str]] = {
-    "pile_id": ("Pile", "Identifier of the pile in the site's pile register (piles.gpkg)."),
-    "material": ("Material", "Material held in the pile (materials.csv)."),
-    "base_method": ("Base method", "How the pile's base surface was taken: floor, level:<z> or toe."),
-    "area_m2": ("Area", "Horizontal area of the polygon."),
-    "scanned_fraction": ("Scanned fraction",
-                         ("Share of the footprint's cells hit by the scan (0 to 1); the rest "
-                          "is interpolated.")),
-    "volume_m3": ("Volume", "Volume between the surveyed surface and the base, from the grid."),
-    "volume_sigma_m3": ("Volume uncertainty", "Standard uncertainty (1 sigma) of the volume."),
-    "volume_tin_m3": ("Volume (TIN)", "Volume from the triangulated surface, as a cross-check."),
-    "below_base_m3": ("Volume below base", "Volume where the surface lies below the base."),
-    "density_t_m3": ("Bulk density", "Bulk density used to turn volume into tonnes."),
-    "survey_t": ("Survey stock", "Stock measured by the survey (volume times density)."),
-    "survey_dry_t": ("Survey stock, dry", "Survey stock less the material's moisture."),
-    "survey_sigma_t": ("Survey uncertainty", "Standard uncertainty (1 sigma) of the survey stock."),
-    "base_sigma_t": ("Base uncertainty", "Part of the survey uncertainty due to the base surface."),
-    "opening_t": ("Opening stock", "Book stock at the start of the period."),
-    "receipts_t": ("Receipts", "Tonnes received into the pile up to the survey instant."),
-    "dispatches_t": ("Dispatches", "Tonnes dispatched from the pile up to the survey instant."),
-    "transfers_in_t": ("Transfers in", "Tonnes moved into the pile from other piles."),
-    "transfers_out_t": ("Transfers out", "Tonnes moved out of the pile to other piles."),
-    "book_t": ("Book stock", "Book stock at the survey instant."),
-    "book_sigma_t": ("Book uncertainty", "Standard uncertainty (1 sigma) of the book stock."),
-    "variance_t": ("Variance", "Survey stock minus book stock: positive is a gain, negative a loss."),
-    "variance_pct": ("Variance share", "Variance as a percentage of the book stock."),
-    "variance_sigma_t": ("Variance uncertainty",
-                         "Standard uncertainty (1 sigma) of the variance, survey and book combined."),
-    "significant": ("Significant",
-                    "1 when the variance exceeds k sigma, 0 when not, empty when undecided."),
-    "tolerance_pct": ("Tolerance", "The material's variance tolerance."),
-    "out_of_tolerance": ("Out of tolerance",
-                         ("1 when the variance is outside the tolerance, 0 when not, empty "
-                          "when undecided.")),
-    "adjustment_t": ("Adjustment", "Adjustment posted to book stock: positive increases it."),
-    "after_survey_net_t": ("Net after survey",
-                           "Net movements between the survey instant and the end of the period."),
-    "closing_t": ("Closing stock", "Book stock at the end of the period, after the adjustment."),
-    "flags": ("Flags", "Warnings on the pile from the volume step and the reconciliation."),
-    "points": ("Points", "Number of survey points read."),
-    "period": ("Period", "The month closed (YYYY-MM)."),
-    "survey_date": ("Survey date", "Date of the survey the figures rest on (YYYY-MM-DD)."),
-}
 
 #: Layer descriptions for ``gpkg_contents``; ``{period}`` and ``{date}`` are filled in.
 _LAYER_TEXTS = {
@@ -105,22 +50,6 @@ _LAYER_TEXTS = {
 
 #: The schema extension's rows in ``gpkg_extensions`` (OGC GeoPackage 1.3, F.9, table 90).
 _SCHEMA_EXTENSION = "http://www.geopackage.org/spec/#extension_schema"
-
-
-def unit_of(column: str) -> tuple[str, str] | None:
-    """The unit a column name carries, as (symbol, words), or ``None``.
-
-    >>> unit_of("variance_t")
-    ('t', 'tonnes')
-    >>> unit_of("density_t_m3")
-    ('t/m3', 'tonnes per cubic metre')
-    >>> unit_of("pile_id") is None
-    True
-    """
-    for ending, unit in _UNITS:
-        if column.endswith(ending):
-            return unit
-    return None
 
 
 def _field_text(column: str) -> tuple[str, str]:

@@ -1,0 +1,82 @@
+"""What every output column means: a title, a description and the unit its name carries.
+
+One dictionary for every exporter (GeoPackage ``gpkg_data_columns``, the workbook), so a
+column is described once. A column's unit comes from the ending of its name (``_t`` tonnes,
+``_m3`` cubic metres, ...): see :func:`unit_of`.
+"""
+
+from __future__ import annotations
+
+__all__ = ["FIELDS", "unit_of"]
+
+#: Units by the ending of a column name: (symbol, words). ``density_t_m3`` is matched first.
+_UNITS = (
+    ("_t_m3", ("t/m3", "tonnes per cubic metre")),
+    ("_m3", ("m3", "cubic metres")),
+    ("_m2", ("m2", "square metres")),
+    ("_pct", ("%", "percent")),
+    ("_t", ("t", "tonnes")),
+    ("_m", ("m", "metres")),
+)
+
+#: Column -> (title, description) for every column an output table or layer carries; the
+#: unit is added from the column name (:func:`unit_of`). One dictionary for the GeoPackage's
+#: ``gpkg_data_columns`` and the workbook's column list.
+FIELDS: dict[str, tuple[str, str]] = {
+    "pile_id": ("Pile", "Identifier of the pile in the site's pile register (piles.gpkg)."),
+    "material": ("Material", "Material held in the pile (materials.csv)."),
+    "base_method": ("Base method", "How the pile's base surface was taken: floor, level:<z> or toe."),
+    "area_m2": ("Area", "Horizontal area of the polygon."),
+    "scanned_fraction": ("Scanned fraction",
+                         ("Share of the footprint's cells hit by the scan (0 to 1); the rest "
+                          "is interpolated.")),
+    "volume_m3": ("Volume", "Volume between the surveyed surface and the base, from the grid."),
+    "volume_sigma_m3": ("Volume uncertainty", "Standard uncertainty (1 sigma) of the volume."),
+    "volume_tin_m3": ("Volume (TIN)", "Volume from the triangulated surface, as a cross-check."),
+    "below_base_m3": ("Volume below base", "Volume where the surface lies below the base."),
+    "density_t_m3": ("Bulk density", "Bulk density used to turn volume into tonnes."),
+    "survey_t": ("Survey stock", "Stock measured by the survey (volume times density)."),
+    "survey_dry_t": ("Survey stock, dry", "Survey stock less the material's moisture."),
+    "survey_sigma_t": ("Survey uncertainty", "Standard uncertainty (1 sigma) of the survey stock."),
+    "base_sigma_t": ("Base uncertainty", "Part of the survey uncertainty due to the base surface."),
+    "opening_t": ("Opening stock", "Book stock at the start of the period."),
+    "receipts_t": ("Receipts", "Tonnes received into the pile up to the survey instant."),
+    "dispatches_t": ("Dispatches", "Tonnes dispatched from the pile up to the survey instant."),
+    "transfers_in_t": ("Transfers in", "Tonnes moved into the pile from other piles."),
+    "transfers_out_t": ("Transfers out", "Tonnes moved out of the pile to other piles."),
+    "book_t": ("Book stock", "Book stock at the survey instant."),
+    "book_sigma_t": ("Book uncertainty", "Standard uncertainty (1 sigma) of the book stock."),
+    "variance_t": ("Variance", "Survey stock minus book stock: positive is a gain, negative a loss."),
+    "variance_pct": ("Variance share", "Variance as a percentage of the book stock."),
+    "variance_sigma_t": ("Variance uncertainty",
+                         "Standard uncertainty (1 sigma) of the variance, survey and book combined."),
+    "significant": ("Significant",
+                    "1 when the variance exceeds k sigma, 0 when not, empty when undecided."),
+    "tolerance_pct": ("Tolerance", "The material's variance tolerance."),
+    "out_of_tolerance": ("Out of tolerance",
+                         ("1 when the variance is outside the tolerance, 0 when not, empty "
+                          "when undecided.")),
+    "adjustment_t": ("Adjustment", "Adjustment posted to book stock: positive increases it."),
+    "after_survey_net_t": ("Net after survey",
+                           "Net movements between the survey instant and the end of the period."),
+    "closing_t": ("Closing stock", "Book stock at the end of the period, after the adjustment."),
+    "flags": ("Flags", "Warnings on the pile from the volume step and the reconciliation."),
+    "points": ("Points", "Number of survey points read."),
+    "period": ("Period", "The month closed (YYYY-MM)."),
+    "survey_date": ("Survey date", "Date of the survey the figures rest on (YYYY-MM-DD)."),
+}
+
+def unit_of(column: str) -> tuple[str, str] | None:
+    """The unit a column name carries, as (symbol, words), or ``None``.
+
+    >>> unit_of("variance_t")
+    ('t', 'tonnes')
+    >>> unit_of("density_t_m3")
+    ('t/m3', 'tonnes per cubic metre')
+    >>> unit_of("pile_id") is None
+    True
+    """
+    for ending, unit in _UNITS:
+        if column.endswith(ending):
+            return unit
+    return None
