@@ -40,7 +40,6 @@ from inventory.model.symbology import (
     PILE_FILL_OPACITY,
     SURVEY_EXTENT_COLOR,
     THICKNESS_COLORS,
-    VARIANCE_COLORS,
     ColourClass,
     ramp_stops,
     ramp_top,
@@ -312,6 +311,8 @@ def _ramp_axis(fig, rect, stops: list[tuple[float, str]], title: str) -> None:
     ax.imshow(np.arange(_RAMP_STEPS)[None, :], cmap=cmap, vmin=0, vmax=_RAMP_STEPS - 1,
               aspect="auto", interpolation="nearest", extent=(low, high, 0, 1))
     ax.set_yticks([])
+    for spine in ax.spines.values():  # no frame over the end colours
+        spine.set_visible(False)
     ax.set_xticks([v for v, _ in stops], [f"{v:g}" for v, _ in stops], fontsize=8)
     ax.set_title(title, fontsize=9, loc="left")
 
