@@ -506,6 +506,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         },
         reason_codes=dict(rec.reason_codes),
         bias_rows=rec.bias_rows,
+        vertical_reference=site.vertical_reference,
         run={
             "inputs": inputs,
             "parameters": {

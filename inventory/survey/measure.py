@@ -366,7 +366,7 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
         surface, fill = fill_windows(raw, float(grid_cfg.max_fill_distance_m), ex=ex)
         del raw
     surface.meta.update(points_read=read.points, points_kept=classified.kept, engine=used_engine,
-                        pipeline=pipe.source)
+                        pipeline=pipe.source, vertical_reference=site.vertical_reference)
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
                                       f"{grid_cfg.max_fill_distance_m} m from any scan left as nodata "
