@@ -63,7 +63,6 @@ __all__ = [
 #: Namespaces of SLD 1.0.0 and of the OGC Filter Encoding 1.0 it uses.
 SLD_NS = "http://www.opengis.net/sld"
 OGC_NS = "http://www.opengis.net/ogc"
-_XLINK_NS = "http://www.w3.org/1999/xlink"
 _XSI_NS = "http://www.w3.org/2001/XMLSchema-instance"
 _SCHEMA_LOCATION = f"{SLD_NS} http://schemas.opengis.net/sld/1.0.0/StyledLayerDescriptor.xsd"
 
@@ -76,7 +75,10 @@ _RAMP_STEPS = 257
 #: Steps the ramps' top is rounded up to (metres).
 _RAMP_STEP_M = 0.5
 
-for _prefix, _uri in (("", SLD_NS), ("ogc", OGC_NS), ("xlink", _XLINK_NS), ("xsi", _XSI_NS)):
+# how ElementTree writes these namespaces: SLD as the default namespace (as SLD documents
+# are customarily written and read), the filter and schema-instance ones with their
+# customary prefixes
+for _prefix, _uri in (("", SLD_NS), ("ogc", OGC_NS), ("xsi", _XSI_NS)):
     ET.register_namespace(_prefix, _uri)
 
 
