@@ -511,6 +511,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
             "inputs": inputs,
             "parameters": {
                 "opening_source": run.opening_source,
+                "vertical_reference": site.vertical_reference,
                 "grid": vars(site.config.grid),
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),

@@ -90,7 +90,9 @@ def test_gdal_reads_layers_and_rasters(closed_site):
     assert "Layer name: piles" in out and "Feature Count: 7" in out
     assert "Layer name: survey_extent" in out and "Layer name: coverage_gaps" in out
     assert 'ID["EPSG",25832]' in out
-    close_id = json.loads((folder / "run.json").read_text())["close_id"]
+    run = json.loads((folder / "run.json").read_text())
+    close_id = run["close_id"]
+    assert run["parameters"]["vertical_reference"] == "as surveyed, metres"
     for name in ("surface-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif", "thickness-2026-10-31.tif"):
         info = subprocess.run(["gdalinfo", str(folder / name)], capture_output=True, text=True, check=True).stdout
         assert 'ID["EPSG",25832]' in info
