@@ -53,6 +53,8 @@ __all__ = [
     "OGC_NS",
     "change_stops",
     "close_variance_classes",
+    "piles_sld",
+    "raster_sld",
     "layer_style_name",
     "raster_style_path",
     "thickness_stops",
