@@ -7,7 +7,7 @@ Steps, each a plain function of the modules named:
 3. measure every pile footprint (:mod:`inventory.volume.measure`);
 4. roll the books to the survey instant (:mod:`inventory.stock.book`);
 5. reconcile survey with book (:mod:`inventory.stock.reconcile`);
-6. write the workbook, layers, rasters, report and run manifest into a temporary folder
+6. write the workbook, layers, rasters, their styles, report and run manifest into a temporary folder
    (:mod:`inventory.export`), then record the close in the ledger (:mod:`inventory.ledger.store`)
    and move the folder into place inside the same transaction.
 
@@ -297,11 +297,25 @@ def _output_names(result: CloseResult, survey: SurveyResult) -> dict[str, str]:
     }
     if result.change is not None:
         names["change"] = f"change-{result.previous_survey_date}_{date}.tif"
+    names.update(_style_names(names))
+    names["legend"] = f"legend-{period}.png"
     for key, path in (("surface", survey.surface_path), ("coverage", survey.coverage_path),
                       ("classified", survey.classified_path)):
         if path is not None:
             names[key] = Path(path).name
     return names
+
+
+def _style_names(names: dict[str, str]) -> dict[str, str]:
+    """File names of the SLD styles written beside the layers and rasters."""
+    from inventory.export.styles import layer_style_name, raster_style_path
+
+    styles = {f"{key}_sld": layer_style_name(names["layers"], layer).name
+              for key, layer in (("piles", "piles"), ("gaps", "coverage_gaps"), ("extent", "survey_extent"))}
+    for key in ("thickness", "change"):
+        if key in names:
+            styles[f"{key}_sld"] = raster_style_path(names[key]).name
+    return styles
 
 
 # ----------------------------------------------------------------------------- the steps
@@ -492,10 +506,12 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         },
         reason_codes=dict(rec.reason_codes),
         bias_rows=rec.bias_rows,
+        vertical_reference=site.vertical_reference,
         run={
             "inputs": inputs,
             "parameters": {
                 "opening_source": run.opening_source,
+                "vertical_reference": site.vertical_reference,
                 "grid": vars(site.config.grid),
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),
@@ -516,6 +532,7 @@ def _write_outputs(result: CloseResult, names: dict[str, str], staged: Path, say
     from inventory.export.layers import write_layers
     from inventory.export.rasters import write_change, write_thickness
     from inventory.export.report import write_report
+    from inventory.export.styles import write_legend, write_styles
     from inventory.export.workbook import write_workbook
 
     say("writing outputs")
@@ -524,6 +541,9 @@ def _write_outputs(result: CloseResult, names: dict[str, str], staged: Path, say
     write_thickness(result, staged / names["thickness"])
     if "change" in names:
         write_change(result, staged / names["change"])
+    write_styles(result, staged / names["layers"], staged / names["thickness"],
+                 staged / names["change"] if "change" in names else None)
+    write_legend(result, staged / names["legend"])
     write_report(result, staged / names["report"])
 
 

@@ -70,7 +70,11 @@ def test_every_output_is_there_and_readable_by_others(closed_site):
     names = sorted(p.name for p in folder.iterdir())
     for expected in ("variance-2026-10.xlsx", "piles-2026-10.gpkg", "surface-2026-10-31.tif",
                      "thickness-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif",
-                     "classified-2026-10-31.laz", "report-2026-10.html", "run.json"):
+                     "classified-2026-10-31.laz", "report-2026-10.html", "run.json",
+                     # styles beside the layers and rasters, and their legend
+                     "piles-2026-10.piles.sld", "piles-2026-10.coverage_gaps.sld",
+                     "piles-2026-10.survey_extent.sld", "thickness-2026-10-31.sld",
+                     "change-2026-09-30_2026-10-31.sld", "legend-2026-10.png"):
         assert expected in names
     for p in folder.iterdir():
         assert p.stat().st_mode & 0o044, f"{p.name} is not readable by the group/others"
@@ -86,10 +90,40 @@ def test_gdal_reads_layers_and_rasters(closed_site):
     assert "Layer name: piles" in out and "Feature Count: 7" in out
     assert "Layer name: survey_extent" in out and "Layer name: coverage_gaps" in out
     assert 'ID["EPSG",25832]' in out
-    for name in ("surface-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif"):
+    run = json.loads((folder / "run.json").read_text())
+    close_id = run["close_id"]
+    assert run["parameters"]["vertical_reference"] == "as surveyed, metres"
+    for name in ("surface-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif", "thickness-2026-10-31.tif"):
         info = subprocess.run(["gdalinfo", str(folder / name)], capture_output=True, text=True, check=True).stdout
         assert 'ID["EPSG",25832]' in info
         assert "NoData Value=-9999" in info
+        assert "VERTICAL_REFERENCE=as surveyed, metres" in info and "Unit Type: m" in info
+        # the close's own rasters say which ledger close wrote them (run.json's close_id)
+        assert (f"CLOSE_ID={close_id}" in info) == (not name.startswith("surface")), name
+    layers = subprocess.run(["ogrinfo", "-al", "-geom=NO", str(folder / "piles-2026-10.gpkg"), "piles"],
+                            capture_output=True, text=True, check=True).stdout
+    assert layers.count(f"close_id (Integer64) = {close_id}") == 7
+
+
+def _raster_content(path: Path) -> tuple[str, dict, dict]:
+    """A GeoTIFF's content to compare across closes: a digest of every band and overview's
+    bytes, the rest of its description (georeferencing, layout, band texts, metadata) and,
+    apart, the two metadata items that name the close (CLOSE_ID, CLOSED_UTC)."""
+    import rasterio
+
+    digest = hashlib.sha256()
+    with rasterio.open(path) as ds:
+        for band in range(1, ds.count + 1):
+            digest.update(ds.read(band).tobytes())
+            for factor in ds.overviews(band):
+                digest.update(ds.read(band, out_shape=(ds.height // factor, ds.width // factor)).tobytes())
+        tags = ds.tags()
+        ids = {k: tags.pop(k, None) for k in ("CLOSE_ID", "CLOSED_UTC")}
+        meta = {"profile": {k: str(v) for k, v in ds.profile.items()}, "tags": tags,
+                "structure": ds.tags(ns="IMAGE_STRUCTURE"), "descriptions": ds.descriptions,
+                "units": ds.units, "overviews": [ds.overviews(b) for b in range(1, ds.count + 1)],
+                "band_tags": [ds.tags(b) for b in range(1, ds.count + 1)]}
+    return digest.hexdigest(), meta, ids
 
 
 def test_second_close_of_a_locked_period_is_refused(closed_site, capsys):
@@ -158,7 +192,7 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
         with Ledger(site / "ledger.sqlite") as led:
             assert not led.is_locked("2026-10"), target
     # and after all that, the close goes through and gives the numbers of the first close
-    first_rasters = {name: (site / "closes" / "2026-10" / name).read_bytes()
+    first_rasters = {name: _raster_content(site / "closes" / "2026-10" / name)
                      for name in ("thickness-2026-10-31.tif", "change-2026-09-30_2026-10-31.tif")}
     figures = ["pile_id", "survey_t", "book_t", "variance_t", "variance_sigma_t", "closing_t"]
     with Ledger(site / "ledger.sqlite") as led:
@@ -171,9 +205,13 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
     assert tuple(done.timings) == STEPS
     # a rerun on the same inputs gives the same numbers (DESIGN: reproducible close)
     assert again.to_dict("records") == first.to_dict("records")
-    # ... and the same rasters, byte for byte; the superseded close's folder is kept beside
-    for name, data in first_rasters.items():
-        assert (site / "closes" / "2026-10" / name).read_bytes() == data, name
+    # ... and the same rasters: every pixel, band, overview and metadata item but the close's
+    # own id and time; the superseded close's folder is kept beside
+    for name, (pixels, meta, ids) in first_rasters.items():
+        again_pixels, again_meta, again_ids = _raster_content(site / "closes" / "2026-10" / name)
+        assert again_pixels == pixels and again_meta == meta, name
+        assert again_ids["CLOSE_ID"] == str(done.close_id) != ids["CLOSE_ID"], name
+        assert again_ids["CLOSED_UTC"] >= ids["CLOSED_UTC"], name
     kept = [p.name for p in (site / "closes").iterdir() if p.name.startswith("2026-10.superseded-")]
     assert len(kept) == 1
     aside = site / "closes" / kept[0]

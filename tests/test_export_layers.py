@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 from inventory.export.layers import (
+    CLOSE_COLUMNS,
     COMMON_COLUMNS,
     LAYER_NAMES,
     read_piles_layer,
@@ -184,11 +185,35 @@ def test_every_feature_carries_period_and_survey_date(gpkg, result):
         assert set(df["survey_date"]) == {result.survey_date}, name
 
 
+def test_a_recorded_close_puts_its_id_on_every_feature(result, tmp_path):
+    import dataclasses
+
+    import pyogrio
+
+    recorded = dataclasses.replace(result, close_id=12, closed_utc="2026-02-03T07:00:00+00:00",
+                                   vertical_reference="DHHN2016 (NHN), metres")
+    path = write_layers(recorded, tmp_path / "piles-2026-01.gpkg")
+    for name in LAYER_NAMES:
+        df = pyogrio.read_dataframe(path, layer=name, read_geometry=False)
+        assert list(df.columns[-4:]) == COMMON_COLUMNS + CLOSE_COLUMNS, name
+        assert set(df["close_id"]) == {12}, name
+        assert set(df["closed_utc"]) == {"2026-02-03T07:00:00+00:00"}, name
+    assert list(read_piles_layer(path).columns) == PILE_COLUMNS + COMMON_COLUMNS + CLOSE_COLUMNS
+    described = _sql(path, "SELECT column_name, title FROM gpkg_data_columns WHERE table_name = "
+                           "'survey_extent' AND column_name IN ('close_id', 'closed_utc') ORDER BY 1")
+    assert described == [("close_id", "Close id"), ("closed_utc", "Closed (UTC)")]
+    for name, text in _sql(path, "SELECT table_name, description FROM gpkg_contents"):
+        assert text.endswith("Heights: DHHN2016 (NHN), metres. Ledger close 12, recorded "
+                             "2026-02-03T07:00:00+00:00."), (name, text)
+
+
 def test_layer_descriptions_name_period_and_survey(gpkg, result):
     rows = dict(_sql(gpkg, "SELECT table_name, description FROM gpkg_contents"))
     assert set(rows) == set(LAYER_NAMES)
     for name, text in rows.items():
         assert "2026-01" in text and result.survey_date in text, (name, text)
+        # the default vertical reference; no close id for a close not recorded
+        assert text.endswith("Heights: as surveyed, metres."), (name, text)
     assert rows["piles"].startswith("Stock piles closed for 2026-01")
     assert "Unscanned" in rows["coverage_gaps"]
 

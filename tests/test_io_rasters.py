@@ -126,7 +126,9 @@ def test_surface_and_coverage_round_trip(plane_points, tmp_path):
         assert src.nodata == NODATA
         assert src.profile["tiled"] and src.profile["compress"] == "deflate"
         assert src.transform == g.transform
-        assert src.descriptions == ("surface elevation m (mean)",)
+        assert src.descriptions == ("surface elevation, metres (mean of the points per cell); "
+                                    "vertical reference: as surveyed, metres",)
+        assert src.tags()["VERTICAL_REFERENCE"] == "as surveyed, metres"
     back, g2 = read_raster(path)
     assert g2 == g
     np.testing.assert_allclose(back, s.z.astype(np.float32), equal_nan=True)
@@ -242,6 +244,19 @@ def test_gdalinfo_reads_surface_crs_and_nodata(plane_points, tmp_path):
     assert "NoData Value=-9999" in out
     assert f"Pixel Size = ({g.cell:.15f},-{g.cell:.15f})" in out
     assert "COMPRESSION=DEFLATE" in out
+    assert "VERTICAL_REFERENCE=as surveyed, metres" in out
+    assert "vertical reference: as surveyed, metres" in out  # the band description
+
+
+def test_surface_states_the_sites_vertical_reference(plane_points, tmp_path):
+    x, y, z = plane_points()
+    g = Grid.snapped(x.min(), y.min(), x.max(), y.max(), cell=0.5, crs="EPSG:25832")
+    s = grid_points(g, x, y, z)
+    s.meta["vertical_reference"] = "DHHN2016 height (EPSG:7837), metres"
+    with rasterio.open(write_surface(s, tmp_path / "s.tif")) as ds:
+        assert ds.tags()["VERTICAL_REFERENCE"] == "DHHN2016 height (EPSG:7837), metres"
+        assert ds.descriptions[0].endswith("vertical reference: DHHN2016 height (EPSG:7837), metres")
+        assert ds.units == ("m",)
 
 
 # ----------------------------------------------------------------------------- cloud optimized
@@ -272,7 +287,9 @@ def test_gdal_validates_the_cloud_optimized_layout(tmp_path, dtype):
         pytest.skip("GDAL's Python utilities (Debian python3-gdal) are not installed")
     g, z = _big()
     bands = z if dtype == "float32" else np.where(np.isfinite(z), z * 100, 0).astype("int32")
-    path = write_raster(tmp_path / "cog.tif", bands, g, dtype=dtype, nodata=NODATA if dtype == "float32" else -1)
+    # metadata items as a close writes them must not break the layout
+    path = write_raster(tmp_path / "cog.tif", bands, g, dtype=dtype, nodata=NODATA if dtype == "float32" else -1,
+                        tags={"CLOSE_ID": "3", "VERTICAL_REFERENCE": "DHHN2016 (NHN), metres"})
     out = subprocess.run([exe, "-m", _VALIDATOR, "--full-check=yes", str(path)], capture_output=True, text=True)
     assert out.returncode == 0, out.stdout + out.stderr
     assert "is a valid cloud optimized GeoTIFF" in out.stdout

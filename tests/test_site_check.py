@@ -194,6 +194,31 @@ def test_feet_crs_refused(good_site):
     assert any("has axis unit foot; use a CRS in metres" in m for m in msgs), msgs
 
 
+def test_vertical_reference_default_text_and_crs(good_site):
+    toml = good_site / "site.toml"
+    assert load_site(good_site).vertical_reference == "as surveyed, metres"
+    original = toml.read_text()
+    toml.write_text('vertical_reference = "DHHN2016 (NHN),\tmetres"\n' + original)
+    assert load_site(good_site).vertical_reference == "DHHN2016 (NHN), metres"
+    # a vertical CRS names itself: EPSG:7837 is "DHHN2016 height" in the EPSG database (pyproj)
+    toml.write_text('vertical_crs = "EPSG:7837"\n' + original)
+    assert load_site(good_site).vertical_reference == "DHHN2016 height (EPSG:7837), metres"
+
+
+@pytest.mark.parametrize("line, why", [
+    ('vertical_crs = "EPSG:25832"', "vertical_crs: EPSG:25832 (ETRS89 / UTM zone 32N) is not a vertical CRS"),
+    # EPSG:6360 is NAVD88 height in US survey feet (pyproj database)
+    ('vertical_crs = "EPSG:6360"', "vertical_crs: EPSG:6360 (NAVD88 height (ftUS)) has heights in US survey foot"),
+    ('vertical_reference = ""', "vertical_reference: '' should be non-empty"),
+    ('vertical_reference = 5', "vertical_reference: 5 is not of type 'string'"),
+])
+def test_bad_vertical_reference_is_named(good_site, line, why):
+    toml = good_site / "site.toml"
+    toml.write_text(line + "\n" + toml.read_text())
+    msgs = errors_of(good_site)
+    assert any(m.startswith(f"site/site.toml: {why}") for m in msgs), msgs
+
+
 def test_missing_required_key(good_site):
     edit(good_site / "site.toml", 'timezone = "Europe/Berlin"\n', "")
     assert "site/site.toml: timezone: required key is missing" in errors_of(good_site)

@@ -12,8 +12,11 @@ One file ``piles-<period>.gpkg`` (OGC GeoPackage) with three layers in the site 
     The outline of the survey (survey_date, points), speckle closed and simplified to the
     cell size (``inventory.close._survey_extent``).
 
-Every layer also carries ``period`` and ``survey_date`` on each feature. The layers describe
-themselves: a description per layer in ``gpkg_contents`` and a title and description per
+Every layer also carries ``period`` and ``survey_date`` on each feature, and, for a close
+recorded in the ledger, ``close_id`` and ``closed_utc`` (:data:`CLOSE_COLUMNS`), so months
+loaded together stay apart. The layers describe themselves: a description per layer in
+``gpkg_contents`` (which ends with the vertical reference of the survey heights) and a title
+and description per
 field (with its unit) in ``gpkg_data_columns``, the GeoPackage schema extension (OGC
 GeoPackage 1.3, annex F.9), written with SQLite once GDAL has written the layers.
 """
@@ -31,12 +34,14 @@ from inventory.io.tables import is_blank
 from inventory.model.columns import FIELDS, unit_of
 from inventory.model.results import PILE_COLUMNS, CloseResult
 
-__all__ = ["LAYER_NAMES", "read_piles_layer", "write_layers"]
+__all__ = ["CLOSE_COLUMNS", "COMMON_COLUMNS", "LAYER_NAMES", "read_piles_layer", "write_layers"]
 
 LAYER_NAMES = ("piles", "coverage_gaps", "survey_extent")
 
 #: Columns every layer carries on each feature, after its own.
 COMMON_COLUMNS = ["period", "survey_date"]
+#: Columns every layer carries after those when the close is recorded (``close_id`` set).
+CLOSE_COLUMNS = ["close_id", "closed_utc"]
 
 #: Layer descriptions for ``gpkg_contents``; ``{period}`` and ``{date}`` are filled in.
 _LAYER_TEXTS = {
@@ -92,6 +97,9 @@ def _describe(path: Path, result: CloseResult) -> None:
                     (table, _SCHEMA_EXTENSION))
             for layer in LAYER_NAMES:
                 text = _LAYER_TEXTS[layer].format(period=result.period, date=result.survey_date)
+                text += f" Heights: {result.vertical_reference}."
+                if result.close_id is not None:
+                    text += f" Ledger close {result.close_id}, recorded {result.closed_utc}."
                 con.execute("UPDATE gpkg_contents SET description = ? WHERE table_name = ?",
                             (text, layer))
                 geom_col = con.execute("SELECT column_name FROM gpkg_geometry_columns "
@@ -176,8 +184,13 @@ def write_layers(result: CloseResult, path: str | Path) -> Path:
             gdf = gdf.reset_index(drop=True)
             gdf["period"] = str(result.period)
             gdf["survey_date"] = str(result.survey_date)
-            gdf = gdf[[c for c in gdf.columns if c not in COMMON_COLUMNS + ["geometry"]]
-                      + COMMON_COLUMNS + ["geometry"]]
+            common = list(COMMON_COLUMNS)
+            if result.close_id is not None:
+                gdf["close_id"] = pd.array([int(result.close_id)] * len(gdf), dtype="Int64")
+                gdf["closed_utc"] = str(result.closed_utc)
+                common += CLOSE_COLUMNS
+            gdf = gdf[[c for c in gdf.columns if c not in common + ["geometry"]]
+                      + common + ["geometry"]]
             for col in gdf.columns:
                 if col != "geometry" and pd.api.types.is_float_dtype(gdf[col]):
                     gdf[col] = gdf[col].astype("float64")

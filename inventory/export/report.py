@@ -1,8 +1,10 @@
 """The one-page close report ``report-<period>.html``: self-contained, images embedded.
 
 Contents: the headline figures, a shaded-relief map of the survey surface with each pile's
-footprint coloured by its variance in % of book (a diverging scheme of our own: deficit in
-slate blue, surplus in rust, neutral in pale stone; its legend is the colour bar), a bar
+footprint coloured by its variance class in % of book (five classes of a diverging scheme of
+our own: deficit in slate blue, surplus in rust, near book in pale stone; its legend is the
+colour bar; the classes and colours are :mod:`inventory.model.symbology`'s, which the
+GIS styles use too), a bar
 chart of variance in tonnes with 2-sigma bars and the tolerance marked, the pile table, the
 scale diagnostics, the movements summary, the duplicates and the cautions.
 
@@ -25,13 +27,22 @@ import pandas as pd
 
 from inventory.model.results import CloseResult
 from inventory.stock.reconcile import LOW_SCAN_FLAG
+from inventory.model.symbology import (
+    COVERAGE_GAP_COLOR,
+    NO_VALUE_COLOR,
+    OUTLINE_OTHER,
+    OUTLINE_OUT_OF_TOLERANCE,
+    OUT_OF_TOLERANCE_COLOR,
+    PILE_FILL_OPACITY,
+    SIGNIFICANT_COLOR,
+    VARIANCE_COLORS,
+    variance_classes,
+    variance_span,
+)
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = ["write_report", "variance_colormap", "VARIANCE_COLORS"]
-
-#: Our diverging scheme for variance %: deficit (survey below book) -> neutral -> surplus.
-VARIANCE_COLORS = ("#24466b", "#5f86a8", "#eae6dc", "#c98a5a", "#8c3b1c")
 
 #: Sun position for the hillshade: the cartographic convention (light from the north-west,
 #: 45 degrees up) so relief reads the right way round (common practice).
@@ -47,22 +58,23 @@ _PNG_META = {"Software": None}
 
 
 def variance_colormap():
-    """The report's diverging colour map (matplotlib ``LinearSegmentedColormap``)."""
-    from matplotlib.colors import LinearSegmentedColormap
+    """The report's classed colour map: one colour per variance class, deficit first
+    (matplotlib ``ListedColormap``; below and above the span the outer colours, missing
+    values grey)."""
+    from matplotlib.colors import ListedColormap
 
-    cmap = LinearSegmentedColormap.from_list("inventory_variance", VARIANCE_COLORS, N=256)
-    return cmap.with_extremes(bad="#bbbbbb")
+    cmap = ListedColormap(VARIANCE_COLORS, name="inventory_variance")
+    return cmap.with_extremes(bad=NO_VALUE_COLOR, under=VARIANCE_COLORS[0], over=VARIANCE_COLORS[-1])
 
 
 def _variance_norm(piles: pd.DataFrame):
-    """Symmetric about zero, wide enough for the largest variance and the tolerances."""
-    from matplotlib.colors import Normalize
+    """The variance classes of this close as a ``BoundaryNorm``: symmetric about zero, wide
+    enough for the largest variance and the tolerances (:func:`variance_span`)."""
+    from matplotlib.colors import BoundaryNorm
 
-    values = np.abs(pd.to_numeric(piles["variance_pct"], errors="coerce").to_numpy(float))
-    tol = pd.to_numeric(piles["tolerance_pct"], errors="coerce").to_numpy(float)
-    span = np.nanmax(np.concatenate([values, tol, [1.0]]))
-    span = float(math.ceil(span)) if np.isfinite(span) else 5.0
-    return Normalize(vmin=-span, vmax=span)
+    span = variance_span(piles["variance_pct"], piles["tolerance_pct"])
+    edges = [c.lower for c in variance_classes(span)[1:]]
+    return BoundaryNorm([-span, *edges, span], ncolors=len(VARIANCE_COLORS))
 
 
 def _figure(width: float, height: float):
@@ -138,9 +150,10 @@ def _map_figure(result: CloseResult) -> str:
                 verts.extend(xy.tolist())
                 codes.extend([MplPath.MOVETO] + [MplPath.LINETO] * (len(xy) - 2)
                              + [MplPath.CLOSEPOLY])
-            patch = PathPatch(MplPath(verts, codes), facecolor=colour, alpha=0.65,
-                              edgecolor="black", linewidth=2.2 if oot else 0.8,
-                              linestyle="-" if oot else "--")
+            width, dashes = OUTLINE_OUT_OF_TOLERANCE if oot else OUTLINE_OTHER
+            patch = PathPatch(MplPath(verts, codes), facecolor=colour, alpha=PILE_FILL_OPACITY,
+                              edgecolor="black", linewidth=width,
+                              linestyle="-" if dashes is None else (0, dashes))
             ax.add_patch(patch)
         c = geom.representative_point()
         ax.annotate(str(pid), (c.x, c.y), ha="center", va="center", fontsize=8,
@@ -150,10 +163,10 @@ def _map_figure(result: CloseResult) -> str:
         for geom in result.coverage_gaps.geometry:
             for poly in getattr(geom, "geoms", [geom]):
                 xy = np.asarray(poly.exterior.coords)
-                ax.plot(xy[:, 0], xy[:, 1], color="#6a1b9a", linewidth=1.0)
+                ax.plot(xy[:, 0], xy[:, 1], color=COVERAGE_GAP_COLOR, linewidth=1.0)
     sm = ScalarMappable(norm=norm, cmap=cmap)
-    cbar = fig.colorbar(sm, ax=ax, shrink=0.7, pad=0.02)
-    cbar.set_label("variance, % of book (survey - book)")
+    cbar = fig.colorbar(sm, ax=ax, shrink=0.7, pad=0.02, ticks=norm.boundaries)
+    cbar.set_label("variance class, % of book (survey - book)")
     xmin, ymin, xmax, ymax = _map_window(result)
     ax.set_xlim(xmin, xmax)
     ax.set_ylim(ymin, ymax)
@@ -316,14 +329,14 @@ table{border-collapse:collapse;font-size:0.85em;margin:8px 0}
 th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:left;vertical-align:top}
 td.n{text-align:right;white-space:nowrap}
 th{background:#e8ecf1} td:first-child{white-space:nowrap}
-tr.oot td{background:#f2c4b8} tr.sig td{background:#f7e3ae}
+tr.oot td{background:OOT_COLOR} tr.sig td{background:SIG_COLOR}
 .legend span{display:inline-block;width:14px;height:14px;border:1px solid #777;
 vertical-align:middle;margin:0 4px 0 14px}
 .caution{background:#fff7e0;border-left:4px solid #c98a5a;padding:8px 12px}
 img{max-width:100%;height:auto}
 .headline td{font-size:1.05em}
 span.low{color:#8c3b1c;font-weight:bold}
-"""
+""".replace("OOT_COLOR", OUT_OF_TOLERANCE_COLOR).replace("SIG_COLOR", SIGNIFICANT_COLOR)
 
 
 def report_html(result: CloseResult) -> str:
@@ -404,8 +417,8 @@ src="data:image/png;base64,{_map_figure(result)}">
 <img alt="Bar chart of variance per pile with 2-sigma bars"
 src="data:image/png;base64,{_bar_figure(result)}">
 <h2>Piles</h2>
-<p class="legend">Row colours:<span style="background:#f2c4b8"></span>{esc(ROW_LEGEND["out_of_tolerance"])}
-<span style="background:#f7e3ae"></span>{esc(ROW_LEGEND["significant"])}</p>
+<p class="legend">Row colours:<span style="background:{OUT_OF_TOLERANCE_COLOR}"></span>{esc(ROW_LEGEND["out_of_tolerance"])}
+<span style="background:{SIGNIFICANT_COLOR}"></span>{esc(ROW_LEGEND["significant"])}</p>
 {piles_table}
 <h2>Adjustment journal</h2>
 {jt}

@@ -2,7 +2,7 @@
 
 :func:`write_raster` writes bands as a Cloud Optimized GeoTIFF (GDAL's COG driver: tiles of
 256 x 256, DEFLATE, internal overviews, the main image's directory first) with CRS, nodata,
-band descriptions and units, through :func:`inventory.io.atomic.atomic_path` (the file
+band descriptions and units, dataset metadata items (tags), through :func:`inventory.io.atomic.atomic_path` (the file
 appears only when complete). The bytes depend only on the arrays, the grid and the options,
 so writing the same data twice gives identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
 rasters written with it.
@@ -14,7 +14,7 @@ another grid (GDAL warping through rasterio).
 from __future__ import annotations
 
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -22,6 +22,7 @@ import numpy as np
 from inventory.errors import CRSError, InputWarning, RunError
 from inventory.io.atomic import atomic_path
 from inventory.model.grid import Grid, Surface
+from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 
 __all__ = ["COVERAGE_NODATA", "NODATA", "TILE", "read_raster", "write_coverage", "write_raster", "write_surface"]
 
@@ -43,6 +44,7 @@ def write_raster(
     dtype: str = "float32",
     descriptions: Sequence[str] = (),
     units: Sequence[str] = (),
+    tags: Mapping[str, object] | None = None,
 ) -> Path:
     """Write bands on ``grid`` as a Cloud Optimized GeoTIFF (tiled, DEFLATE, overviews).
 
@@ -65,6 +67,10 @@ def write_raster(
     units : sequence of str
         Band unit types (``"m"`` for elevations and thicknesses), band 1 first; a band without
         one has none.
+    tags : mapping, optional
+        Dataset metadata items (GDAL's default domain: ``gdalinfo`` lists them under
+        Metadata, rasterio's ``tags()`` returns them), e.g. ``VERTICAL_REFERENCE``; a value
+        of ``None`` is left out, others are written as text.
 
     Returns
     -------
@@ -109,6 +115,9 @@ def write_raster(
     # the layout the COG specification asks for (OGC 21-026).
     with MemoryFile() as mem:
         with mem.open(**profile) as ds:
+            items = {str(k): str(v) for k, v in (tags or {}).items() if v is not None}
+            if items:
+                ds.update_tags(**items)
             for i, arr in enumerate(out, start=1):
                 ds.write(arr, i)
                 if i - 1 < len(descriptions):
@@ -123,19 +132,28 @@ def write_raster(
 
 
 def write_surface(surface: Surface, path: str | Path) -> Path:
-    """The surface elevations (float32, nodata :data:`NODATA`)."""
+    """The surface elevations (float32, nodata :data:`NODATA`).
+
+    The band description gives the cell statistic and the vertical reference
+    (``surface.meta["vertical_reference"]``, else :data:`DEFAULT_VERTICAL_REFERENCE`), which
+    is also the metadata item ``VERTICAL_REFERENCE``; ``SURVEY_DATE`` is the survey's date.
+    """
+    vref = surface.meta.get("vertical_reference") or DEFAULT_VERTICAL_REFERENCE
     return write_raster(path, surface.z, surface.grid, units=["m"],
-                        descriptions=[f"surface elevation m ({surface.meta.get('statistic', 'mean')})"])
+                        descriptions=[f"surface elevation, metres ({surface.meta.get('statistic', 'mean')} "
+                                      f"of the points per cell); vertical reference: {vref}"],
+                        tags={"VERTICAL_REFERENCE": vref, "SURVEY_DATE": surface.date or None})
 
 
 def write_coverage(surface: Surface, path: str | Path) -> Path:
     """Coverage raster: band 1 surface points per cell, band 2 1 where the cell was filled.
 
-    Both bands are int32 with nodata :data:`COVERAGE_NODATA`.
+    Both bands are int32 with nodata :data:`COVERAGE_NODATA`; metadata item ``SURVEY_DATE``.
     """
     return write_raster(path, [surface.count.astype(np.int32), surface.filled.astype(np.int32)],
                         surface.grid, nodata=COVERAGE_NODATA, dtype="int32",
-                        descriptions=["surface points per cell", "interpolated cell (1) or not (0)"])
+                        descriptions=["surface points per cell", "interpolated cell (1) or not (0)"],
+                        tags={"SURVEY_DATE": surface.date or None})
 
 
 def read_raster(

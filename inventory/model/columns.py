@@ -64,6 +64,8 @@ FIELDS: dict[str, tuple[str, str]] = {
     "points": ("Points", "Number of survey points read."),
     "period": ("Period", "The month closed (YYYY-MM)."),
     "survey_date": ("Survey date", "Date of the survey the figures rest on (YYYY-MM-DD)."),
+    "close_id": ("Close id", "The ledger's id of the close that wrote this file (run.json close_id)."),
+    "closed_utc": ("Closed (UTC)", "When that close was recorded in the ledger: UTC, ISO 8601."),
 }
 
 def unit_of(column: str) -> tuple[str, str] | None:

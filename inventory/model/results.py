@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from inventory.model.grid import Surface
+from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 
 __all__ = ["PILE_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
 
@@ -89,3 +90,6 @@ class CloseResult:
     #: result that is not being recorded (tests, previews).
     close_id: int | None = None
     closed_utc: str | None = None
+    #: What the survey heights are referred to (``site.toml`` ``vertical_reference``):
+    #: written in the raster metadata and the GeoPackage layer descriptions.
+    vertical_reference: str = DEFAULT_VERTICAL_REFERENCE

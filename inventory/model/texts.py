@@ -6,7 +6,11 @@ carry the same cautions; each imports the text from here rather than writing its
 
 from __future__ import annotations
 
-__all__ = ["CAUTIONS", "REASON_CODES", "ROW_LEGEND", "SIGN_CONVENTION"]
+__all__ = ["CAUTIONS", "DEFAULT_VERTICAL_REFERENCE", "REASON_CODES", "ROW_LEGEND", "SIGN_CONVENTION"]
+
+#: What the outputs say about heights when ``site.toml`` states no vertical reference
+#: (``vertical_reference`` or ``vertical_crs``): the heights are those of the survey files.
+DEFAULT_VERTICAL_REFERENCE = "as surveyed, metres"
 
 #: How the figures of a close are signed (workbook Summary, Variance and Notes sheets, report).
 SIGN_CONVENTION = (

@@ -37,6 +37,7 @@ import tomllib
 from inventory.errors import InputErrors, InputWarning, Problem
 from inventory.io.tables import read_table, table_schema
 from inventory.model.period import Period
+from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 from inventory.site.extent import survey_extent_problems
 from inventory.site.rules import MOVEMENT_TABLES, check_movements, check_opening
 
@@ -229,6 +230,9 @@ class Site:
     movements: dict[str, Movements]
     opening: pd.DataFrame | None
     warnings: list[Problem] = field(default_factory=list)
+    #: What the survey heights are referred to, as the outputs state it: ``site.toml``
+    #: ``vertical_reference``, else the name of its ``vertical_crs``, else the default.
+    vertical_reference: str = DEFAULT_VERTICAL_REFERENCE
 
     @property
     def periods(self) -> list[str]:
@@ -458,6 +462,7 @@ class _Loader:
             movements=movements,
             opening=opening,
             warnings=[p for p in self.problems if p.severity == "warning"],
+            vertical_reference=self._vertical_reference(raw),
         )
 
     def _read_toml(self) -> dict | None:
@@ -602,6 +607,36 @@ class _Loader:
             self.error(path, None, "crs", f"{text} ({crs.name}) has axis unit {unit}; use a CRS in metres")
             return None
         return text
+
+    def _vertical_reference(self, raw: dict) -> str:
+        """``vertical_reference`` as given; else ``"<name> (EPSG:n), metres"`` from a
+        ``vertical_crs`` that is a vertical CRS in metres; else the default."""
+        def top(key: str) -> Any:  # a value the schema refused is reported, never used
+            return None if (key,) in self.refused else raw.get(key)
+
+        text = top("vertical_reference")
+        if isinstance(text, str) and text.strip():
+            return " ".join(text.split())
+        code = top("vertical_crs")
+        if not isinstance(code, str):
+            return DEFAULT_VERTICAL_REFERENCE
+        from pyproj import CRS
+        from pyproj.exceptions import CRSError as ProjCRSError
+
+        path = self.root / "site.toml"
+        try:
+            crs = CRS.from_user_input(code)
+        except ProjCRSError as err:
+            self.error(path, None, "vertical_crs", f"unknown CRS {code!r} ({err})")
+            return DEFAULT_VERTICAL_REFERENCE
+        if not crs.is_vertical:
+            self.error(path, None, "vertical_crs", f"{code} ({crs.name}) is not a vertical CRS")
+            return DEFAULT_VERTICAL_REFERENCE
+        if crs.axis_info and abs(crs.axis_info[0].unit_conversion_factor - 1.0) > 1e-12:
+            self.error(path, None, "vertical_crs", f"{code} ({crs.name}) has heights in "
+                       f"{crs.axis_info[0].unit_name}; use a vertical CRS in metres")
+            return DEFAULT_VERTICAL_REFERENCE
+        return f"{crs.name} ({code}), metres"
 
     def _timezone(self, raw: dict) -> ZoneInfo | None:
         name = raw.get("timezone")

@@ -298,7 +298,8 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
     site : Site
         A loaded site (:func:`inventory.site.load.load_site`); uses ``root``, ``crs``,
         ``config.grid``, ``config.survey`` and ``surveys[date]`` (``folder``, ``files``,
-        ``stations``).
+        ``stations``), and ``vertical_reference`` when it has one (stated in the surface
+        raster; without it the default of :func:`~inventory.io.rasters.write_surface`).
     date : str
         Survey date ``YYYY-MM-DD`` (a folder under ``surveys/``).
     out_dir : path, optional
@@ -366,7 +367,8 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
         surface, fill = fill_windows(raw, float(grid_cfg.max_fill_distance_m), ex=ex)
         del raw
     surface.meta.update(points_read=read.points, points_kept=classified.kept, engine=used_engine,
-                        pipeline=pipe.source)
+                        pipeline=pipe.source,
+                        vertical_reference=getattr(site, "vertical_reference", None))
     if fill.gap_cells:
         warnings.warn(CoverageWarning(f"survey {date}: {fill.gap_area_m2:.1f} m2 of enclosed gaps wider than "
                                       f"{grid_cfg.max_fill_distance_m} m from any scan left as nodata "
