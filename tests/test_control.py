@@ -1,0 +1,164 @@
+"""Registration by control points: the least-squares similarity fit against PROJ's Helmert
+operation, weights, and refusals (too few points, a line of points, points that disagree)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from pyproj import Transformer
+
+from inventory.errors import InputError, InputErrors
+from inventory.model.similarity import fit_similarity
+from inventory.site.control import read_control
+from inventory.site.load import check_site, load_site
+
+RNG = np.random.default_rng(18)
+
+
+def _local_points(n: int = 8) -> np.ndarray:
+    return np.column_stack([RNG.uniform(-300, 300, n), RNG.uniform(-300, 300, n), RNG.uniform(-5, 40, n)])
+
+
+def test_7_parameter_fit_recovers_proj_helmert():
+    # Independent implementation: PROJ's Helmert operation through pyproj (position-vector
+    # convention, exact rotation matrix); the fit must recover its seven parameters.
+    pipeline = ("+proj=helmert +x=486250.25 +y=5734100.5 +z=12.75 +rx=30 +ry=-45 +rz=108000 "
+                "+s=150 +convention=position_vector +exact")
+    helmert = Transformer.from_pipeline(pipeline)
+    p = _local_points()
+    q = np.column_stack(helmert.transform(p[:, 0], p[:, 1], p[:, 2]))
+    fit = fit_similarity(p, q, model="7-parameter")
+    origin = np.array(helmert.transform(0.0, 0.0, 0.0))
+    # PROJ's linear part, column by column from the unit vectors
+    linear = np.column_stack([np.array(helmert.transform(*e)) - origin for e in np.eye(3)])
+    np.testing.assert_allclose(fit.translation, [486250.25, 5734100.5, 12.75], atol=1e-6)
+    assert fit.scale == pytest.approx(1 + 150e-6, abs=1e-10)
+    np.testing.assert_allclose(fit.scale * fit.rotation, linear, atol=1e-9)
+    assert fit.yaw_deg == pytest.approx(30.0, abs=0.01)  # rz = 108000" = 30 degrees
+    check = _local_points(20)
+    np.testing.assert_allclose(fit.apply_xyz(check), np.column_stack(helmert.transform(*check.T)), atol=1e-6)
+
+
+def test_4_plus_1_fit_recovers_proj_2d_helmert_and_height_shift():
+    # Independent implementation: PROJ's 2-D Helmert (+theta in arc seconds, +s the scale
+    # factor as PROJ applies it in the 2-D form) followed by an affine height offset.
+    pipeline = ("+proj=pipeline +step +proj=helmert +x=486250.25 +y=5734100.5 +theta=-7200 +s=1.0003 "
+                "+step +proj=affine +zoff=-3.25")
+    proj = Transformer.from_pipeline(pipeline)
+    p = _local_points()
+    q = np.column_stack(proj.transform(p[:, 0], p[:, 1], p[:, 2]))
+    fit = fit_similarity(p, q, model="4+1")
+    assert fit.scale == pytest.approx(1.0003, abs=1e-10)
+    # PROJ's positive theta turns clockwise, ours counter-clockwise (checked on the points below)
+    assert fit.yaw_deg == pytest.approx(2.0, abs=1e-9)
+    assert fit.translation[2] == pytest.approx(-3.25, abs=1e-9)
+    check = _local_points(20)
+    np.testing.assert_allclose(fit.apply_xyz(check), np.column_stack(proj.transform(*check.T)), atol=1e-6)
+    # heights are shifted, never scaled or tilted
+    np.testing.assert_allclose(fit.apply_xyz(check)[:, 2], check[:, 2] - 3.25, atol=1e-9)
+
+
+def test_weights_follow_sigma():
+    p = _local_points(6)
+    q = p + [500000.0, 5700000.0, 10.0]
+    q[0] += [0.05, -0.04, 0.03]          # one poorly measured point
+    tight = fit_similarity(p, q, weights=[1 / 0.05 ** 2] + [1 / 0.002 ** 2] * 5)
+    equal = fit_similarity(p, q)
+    r_tight = q - tight.apply_xyz(p)
+    r_equal = q - equal.apply_xyz(p)
+    # down-weighted, the bad point keeps its error and the others fit closer
+    assert np.linalg.norm(r_tight[1:], axis=1).max() < np.linalg.norm(r_equal[1:], axis=1).max()
+    assert np.linalg.norm(r_tight[0]) > np.linalg.norm(r_equal[0])
+
+
+def test_fit_refuses_lines_and_too_few_points():
+    with pytest.raises(ValueError, match="at least 3"):
+        fit_similarity(np.eye(3)[:2], np.eye(3)[:2])
+    line = np.column_stack([np.arange(5.0), np.zeros(5), np.zeros(5)])
+    with pytest.raises(ValueError, match="one line"):
+        fit_similarity(line, line + 100)
+    # the 4+1 model fixes its rotation from horizontal positions alone: a line will do
+    assert fit_similarity(line, line + 100, model="4+1").scale == pytest.approx(1.0)
+
+
+CONTROL = "point_id,x,y,z,e,n,h,sigma_m\n"
+
+
+def _control_rows(p, q, sigma=None):
+    rows = [CONTROL.strip()]
+    for i, (a, b) in enumerate(zip(p, q)):
+        s = "" if sigma is None else f"{sigma[i]}"
+        rows.append(f"CP{i + 1},{a[0]:.4f},{a[1]:.4f},{a[2]:.4f},{b[0]:.4f},{b[1]:.4f},{b[2]:.4f},{s}")
+    return "\n".join(rows) + "\n"
+
+
+def test_read_control_reports_residuals(tmp_path):
+    p = _local_points(5)
+    q = p + [500000.0, 5700000.0, 10.0]
+    q[2, 0] += 0.02
+    path = tmp_path / "control.csv"
+    path.write_text(_control_rows(p, q))
+    reg = read_control(path)
+    assert reg.point_ids == ["CP1", "CP2", "CP3", "CP4", "CP5"]
+    assert reg.worst[0] == "CP3"
+    assert reg.rms_m == pytest.approx(np.sqrt((reg.residuals ** 2).sum(axis=1).mean()))
+    assert 0.005 < reg.rms_m < 0.02
+    d = reg.as_dict()
+    assert d["model"] == "7-parameter" and len(d["points"]) == 5 and d["points"][2]["point_id"] == "CP3"
+    assert reg.summary().startswith("control.csv: 7-parameter fit on 5 points, RMS 0.0")
+
+
+def _site_with_control(good_site, text: str, toml_extra: str = ""):
+    survey = good_site / "surveys" / "2026-10-31"
+    (survey / "control.csv").write_text(text)
+    if toml_extra:
+        with open(good_site / "site.toml", "a") as f:
+            f.write(toml_extra)
+    return survey / "control.csv"
+
+
+def test_disagreeing_control_points_are_refused(good_site):
+    p = _local_points(4)
+    q = p + [500000.0, 5700000.0, 10.0]
+    q[3] += [0.4, -0.3, 0.2]
+    _site_with_control(good_site, _control_rows(p, q))
+    report = check_site(good_site)
+    errors = [str(e) for e in report.errors]
+    assert len(errors) == 1
+    line = errors[0]
+    assert line.startswith("site/surveys/2026-10-31/control.csv: control points disagree: 7-parameter fit RMS ")
+    assert "exceeds the tolerance 0.050 m" in line and "\n" not in line
+    with pytest.raises(InputErrors):
+        load_site(good_site)
+
+
+def test_tolerance_and_model_come_from_site_toml(good_site):
+    # the survey's frame is nearly the site's here (its cloud carries site coordinates)
+    p = _local_points(4) * 0.1 + [500010.0, 5700000.0, 10.0]
+    q = p + [0.25, -0.1, 0.05]
+    q[3] += [0.04, -0.03, 0.02]
+    _site_with_control(good_site, _control_rows(p, q),
+                       '\n[survey]\ncontrol_model = "4+1"\ncontrol_rms_max_m = 0.5\n')
+    site = load_site(good_site)
+    reg = site.surveys["2026-10-31"].control
+    assert reg.transform.model == "4+1" and reg.tolerance_m == 0.5 and reg.rms_m > 0.01
+
+
+def test_too_few_control_points_are_refused(good_site):
+    p = _local_points(2)
+    _site_with_control(good_site, _control_rows(p, p + 100))
+    errors = [str(e) for e in check_site(good_site).errors]
+    assert errors == ["site/surveys/2026-10-31/control.csv: 2 usable control point(s); at least 3 are needed "
+                      "to register the survey"]
+
+
+def test_read_control_raises_without_problem_list(tmp_path):
+    path = tmp_path / "control.csv"
+    path.write_text(CONTROL + "A,0,0,0,1,1,x,\n")
+    with pytest.raises(InputErrors) as err:
+        read_control(path)
+    assert "line 2: h" in str(err.value)
+    line = np.column_stack([np.arange(4.0), np.zeros(4), np.zeros(4)])
+    path.write_text(_control_rows(line, line + 10))
+    with pytest.raises(InputError, match="cannot fix a 7-parameter transform: the points lie on one line"):
+        read_control(path)
