@@ -605,8 +605,9 @@ def _write_e57(path: Path, scans: list[dict], coordinate_metadata: str = "") -> 
             index, count = scan["returns"]
             proto.set("returnIndex", libe57.IntegerNode(imf, 0, 0, 15))
             proto.set("returnCount", libe57.IntegerNode(imf, 1, 0, 15))
-            arrays["returnIndex"] = np.asarray(index, np.int64)
-            arrays["returnCount"] = np.asarray(count, np.int64)
+            # int16: the bindings take numpy's 'l' as 32-bit, and int64 arrays carry 'l'
+            arrays["returnIndex"] = np.asarray(index, np.int16)
+            arrays["returnCount"] = np.asarray(count, np.int16)
         codecs = libe57.VectorNode(imf, True)
         points = libe57.CompressedVectorNode(imf, proto, codecs)
         node.set("points", points)
