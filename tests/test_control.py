@@ -162,3 +162,81 @@ def test_read_control_raises_without_problem_list(tmp_path):
     path.write_text(_control_rows(line, line + 10))
     with pytest.raises(InputError, match="cannot fix a 7-parameter transform: the points lie on one line"):
         read_control(path)
+
+
+def test_multi_scan_e57_registered_only_by_control_points(good_site, write_e57):
+    import warnings
+
+    from pyproj import CRS
+    from scipy.spatial.transform import Rotation
+
+    from inventory.io.crs import TransformerCache
+    from inventory.model.similarity import Similarity
+    from inventory.survey.placement import ControlPlacement, survey_placements
+
+    rng = np.random.default_rng(99)
+    folder = good_site / "surveys" / "2026-10-31"
+    (folder / "a.laz").unlink()
+    (folder / "stations.csv").unlink()
+    # the truth: the scanner's project frame -> site, a 7-parameter similarity
+    truth = Similarity("7-parameter", Rotation.from_euler("ZYX", [35.0, 0.02, -0.01], degrees=True).as_matrix(),
+                       1.0002, np.array([500000.0, 5700000.0, 10.0]))
+    scans, project = [], []
+    for i in range(3):   # three scans, each in its own frame, posed in the project frame
+        pts = np.column_stack([rng.uniform(-15, 45, 2000), rng.uniform(-15, 15, 2000), rng.uniform(0, 5, 2000)])
+        rot = Rotation.from_euler("ZYX", [120.0 * i + 10, 1.5, -2.0], degrees=True)
+        origin = np.array([10.0 * i, 3.0 - 2 * i, 1.6])
+        x, y, z, w = rot.as_quat()
+        scans.append(dict(xyz=rot.inv().apply(pts - origin), pose=([w, x, y, z], origin), name=f"st{i + 1}"))
+        project.append(pts)
+    write_e57(folder / "project.e57", scans)      # no coordinateMetadata: a local frame
+    # control targets around the scanned area, measured in the site with 4 mm noise
+    cp = np.array([[-20.0, -20, 0], [50, -20, 1], [50, 20, 3], [-20, 20, 2], [15, 0, 6]])
+    site_cp = truth.apply_xyz(cp) + rng.normal(0, 0.004, cp.shape)
+    (folder / "control.csv").write_text(_control_rows(cp, site_cp, sigma=[0.005] * 5))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")   # no stations.csv times: the default instant
+        site = load_site(good_site)
+    reg = site.surveys["2026-10-31"].control
+    assert reg is not None and 0.001 < reg.rms_m < 0.01
+    (placement,) = survey_placements(site, site.surveys["2026-10-31"], CRS(site.crs), TransformerCache())
+    assert isinstance(placement, ControlPlacement)
+    with placement.open(chunk_size=1000) as cloud:
+        placed = np.concatenate([placement.place(c) for c in cloud.chunks()])
+    got = np.column_stack([placed["X"], placed["Y"], placed["Z"]])
+    want = truth.apply_xyz(np.concatenate(project))
+    err = np.linalg.norm(got - want, axis=1)
+    # every point within the control fit's own RMS of where it truly lies
+    assert np.sqrt((err ** 2).mean()) < reg.rms_m and err.max() < 2 * reg.rms_m
+    x0, y0, x1, y1 = placement.extent()
+    assert x0 <= got[:, 0].min() and got[:, 0].max() <= x1 and y0 <= got[:, 1].min() and got[:, 1].max() <= y1
+
+
+def test_survey_summary_names_the_control_fit(good_site, write_e57, tmp_path):
+    import warnings
+
+    from inventory.survey.measure import measure_survey
+
+    rng = np.random.default_rng(7)
+    folder = good_site / "surveys" / "2026-10-31"
+    (folder / "a.laz").unlink()
+    (folder / "stations.csv").unlink()
+    # a flat yard with a cone, scanned in a frame 1000 m east and 2 m up of the site's
+    x, y = rng.uniform(-15, 45, 20000), rng.uniform(-15, 15, 20000)
+    z = 10.0 + np.clip(4.0 - 0.5 * np.hypot(x, y), 0, None)
+    pts = np.column_stack([x - 1000.0, y, z + 2.0])
+    write_e57(folder / "yard.e57", [dict(xyz=pts - [-990.0, 0, 2], pose=([1, 0, 0, 0], [-990.0, 0.0, 2.0]))])
+    cp = np.array([[-1020.0, -20, 12], [-950, -20, 12], [-950, 20, 12], [-1020, 20, 12.5]])
+    site_cp = cp + [1000.0 + 500000.0, 5700000.0, -2.0]
+    site_cp[0, 0] += 0.006
+    (folder / "control.csv").write_text(_control_rows(cp, site_cp))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        site = load_site(good_site)
+        result = measure_survey(site, "2026-10-31", out_dir=tmp_path / "out")
+    assert result.registration is site.surveys["2026-10-31"].control
+    assert result.format_summary().endswith(f"; registered by {result.registration.summary()}")
+    assert "control.csv: 7-parameter fit on 4 points, RMS 0.00" in result.format_summary()
+    # the surface lies where the site is: the cone's top near the site origin
+    s = result.surface
+    assert s.grid.west < 500000.0 < s.grid.west + s.grid.ncols * s.grid.cell
