@@ -203,8 +203,16 @@ class PlyReader:
                     rows.append(words)
                 try:
                     values = np.array(rows, dtype=float)
-                except ValueError as err:
-                    raise InputError(self.path, f"a vertex value is not a number ({err})", line=line) from err
+                except ValueError:
+                    first = line - len(rows) + 1
+                    for k, words in enumerate(rows):
+                        for w in words:
+                            try:
+                                float(w)
+                            except ValueError:
+                                raise InputError(self.path, f"not a number: {w.decode('ascii', 'replace')!r}",
+                                                 line=first + k) from None
+                    raise
                 rec = np.empty(n, self._dtype)
                 for k, (name, _) in enumerate(self._props):
                     rec[name] = values[:, k]
