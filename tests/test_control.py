@@ -240,3 +240,28 @@ def test_survey_summary_names_the_control_fit(good_site, write_e57, tmp_path):
     # the surface lies where the site is: the cone's top near the site origin
     s = result.surface
     assert s.grid.west < 500000.0 < s.grid.west + s.grid.ncols * s.grid.cell
+
+
+def test_residuals_reach_the_manifest_and_the_report(close_result, tmp_path):
+    import dataclasses
+    import json
+
+    from inventory.export.manifest import manifest_dict
+    from inventory.export.report import report_html
+
+    p = _local_points(4)
+    q = p + [500000.0, 5700000.0, 10.0]
+    q[1, 1] += 0.012
+    path = tmp_path / "control.csv"
+    path.write_text(_control_rows(p, q))
+    reg = read_control(path)
+    result = dataclasses.replace(close_result, run={**(close_result.run or {}),
+                                                    "survey_registration": reg.as_dict()})
+    manifest = json.loads(json.dumps(manifest_dict(result)))
+    got = manifest["other"]["survey_registration"]
+    assert got["rms_m"] == pytest.approx(reg.rms_m) and [pt["point_id"] for pt in got["points"]] == reg.point_ids
+    page = report_html(result)
+    assert "<h2>Registration by control points</h2>" in page
+    assert f"RMS {reg.rms_m:.3f} m (tolerance 0.050 m)" in page
+    assert "CP2" in page
+    assert "Registration by control points" not in report_html(close_result)
