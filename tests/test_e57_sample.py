@@ -19,32 +19,29 @@ DATE = "2026-09-30"
 
 
 def _to_e57(folder, write_e57) -> None:
-    """Every station's LAZ of the survey becomes one scan of ``survey.e57`` (pose from
-    stations.csv; the georeferenced station gets a translation only); stations.csv keeps the
-    times, with the poses now in the file."""
-    rows = list(csv.DictReader(open(folder / "stations.csv", newline="")))
+    """Every posed station's LAZ of the survey becomes one scan of ``survey.e57`` with the
+    station's pose; the georeferenced station's file stays as it is (it was delivered without
+    its scanner's origin, so its points have no range to gate). stations.csv keeps the times."""
+    with open(folder / "stations.csv", newline="") as f:
+        rows = list(csv.DictReader(f))
+    posed = [r for r in rows if r["x"]]
     scans = []
-    for row in rows:
+    for row in posed:
         pts, _ = read_cloud(folder / row["file"])
-        xyz = np.column_stack([pts["X"], pts["Y"], pts["Z"]])
-        if row["x"]:
-            rot = Rotation.from_matrix(rotation_matrix(float(row["roll_deg"]), float(row["pitch_deg"]),
-                                                       float(row["yaw_deg"])))
-            t = [float(row["x"]), float(row["y"]), float(row["z"])]
-            local = xyz
-        else:
-            rot = Rotation.identity()
-            t = np.floor(xyz.min(axis=0))
-            local = xyz - t
+        local = np.column_stack([pts["X"], pts["Y"], pts["Z"]])
+        rot = Rotation.from_matrix(rotation_matrix(float(row["roll_deg"]), float(row["pitch_deg"]),
+                                                   float(row["yaw_deg"])))
+        t = [float(row["x"]), float(row["y"]), float(row["z"])]
         x, y, z, w = rot.as_quat()
         scans.append(dict(name=row["station_id"], xyz=local, pose=([w, x, y, z], t),
                           intensity=pts["Intensity"].astype(float), intensity_limits=(0, 65535),
                           returns=(pts["ReturnNumber"].astype(int) - 1, pts["NumberOfReturns"].astype(int))))
         (folder / row["file"]).unlink()
     write_e57(folder / "survey.e57", scans)   # no coordinateMetadata: site.toml's default_crs
-    last = max(rows, key=lambda r: r["time"])
-    (folder / "stations.csv").write_text("file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg\n"
-                                         f"survey.e57,all,{last['time']},,,,,,\n")
+    last = max(posed, key=lambda r: r["time"])
+    lines = ["file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg", f"survey.e57,all,{last['time']},,,,,,"]
+    lines += [f"{r['file']},{r['station_id']},{r['time']},,,,,," for r in rows if not r["x"]]
+    (folder / "stations.csv").write_text("\n".join(lines) + "\n")
 
 
 def test_sample_site_as_e57_closes_with_the_same_volumes(sample_copy, tmp_path, write_e57, survey_cache,
