@@ -195,3 +195,16 @@ def test_truncated_e57_is_refused(good_site, write_e57, tmp_path):
     assert "\n" not in str(err.value)
     errors = [str(e) for e in check_site(good_site).errors]
     assert len(errors) == 1 and errors[0].startswith("site/surveys/2026-10-31/cut.e57: not a readable E57 file")
+
+
+def test_whole_file_pose_places_a_single_scan_file_without_crs(good_site, write_e57):
+    local = np.random.default_rng(4).uniform(-8, 8, (200, 3))
+    folder = good_site / SURVEY
+    write_e57(folder / "one.e57", [dict(xyz=local, pose=None)])      # no pose, no CRS in the file
+    with open(folder / "stations.csv", "a") as f:
+        f.write("one.e57,S9,2026-10-31T15:00:00+01:00,500005,5700001,10.2,0,0,-30\n")
+    site = load_site(good_site)
+    pts, placement = _placed(site, "one.e57")
+    expect = Rotation.from_euler("z", -30, degrees=True).apply(local) + [500005, 5700001, 10.2]
+    np.testing.assert_allclose(np.column_stack([pts["X"], pts["Y"], pts["Z"]]), expect, atol=1e-9)
+    assert placement.crs is None

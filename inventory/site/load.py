@@ -930,6 +930,7 @@ class _Loader:
                 elif any(v is not None and not pd.isna(v) for v in values):
                     posed[row.file] = None  # a partial pose, already reported
         station_files = set(stations["file"]) if stations is not None else set()
+        e57_all_posed: set[str] = set()   # E57 files whose every scan has its pose from stations.csv
         readable = []
         extents = []
         points = 0
@@ -938,6 +939,9 @@ class _Loader:
                 info = self._e57(path, station_path, posed.get(path.name), scan_rows.get(path.name, []))
                 if info is None:
                     continue
+                info, all_posed = info
+                if all_posed:
+                    e57_all_posed.add(path.name)
             else:
                 info = inspect_cloud(path)
             if info.error:
@@ -946,21 +950,32 @@ class _Loader:
                 continue
             readable.append(path)
             points += info.point_count
-            if control is not None and not (path.name in posed and path.suffix.lower() != ".e57"):
-                # in the survey's own frame (E57 scans through their poses): moved by the control fit
-                (x0, y0, z0), (x1, y1, z1) = info.bounds
-                corners = np.array([[a, b, c] for a in (x0, x1) for b in (y0, y1) for c in (z0, z1)])
+            is_e57 = path.suffix.lower() == ".e57"
+            row = posed.get(path.name) if not is_e57 else None
+            moving = None if is_e57 or path.name in posed else (
+                trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None))
+            if control is not None:
+                # every file lands in the survey's own frame first, then moves by the control fit
+                if row is not None:
+                    box, z = _posed_extent(info.bounds, row), (row.z - 1.0, row.z + 1.0)
+                elif moving is not None:
+                    box, z = moving.extent(info.bounds[0], info.bounds[1]), (info.bounds[0][2], info.bounds[1][2])
+                else:
+                    (x0, y0, z0), (x1, y1, z1) = info.bounds
+                    box, z = (x0, y0, x1, y1), (z0, z1)
+                corners = np.array([[a, b, c] for a in (box[0], box[2]) for b in (box[1], box[3]) for c in z])
                 moved = control.transform.apply_xyz(corners)
                 extents.append((moved[:, 0].min(), moved[:, 1].min(), moved[:, 0].max(), moved[:, 1].max()))
                 continue
-            if path.name in posed and path.suffix.lower() != ".e57":
-                row = posed[path.name]
+            if path.name in posed and not is_e57:
                 if row is not None:
                     extents.append(_posed_extent(info.bounds, row))
                 continue
-            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None)
             if moving is not None:
                 extents.append(moving.extent(info.bounds[0], info.bounds[1]))
+                continue
+            if is_e57 and path.name in e57_all_posed:
+                extents.append((info.bounds[0][0], info.bounds[0][1], info.bounds[1][0], info.bounds[1][1]))
                 continue
             crs_text = info.crs_wkt
             if crs_text is None:
@@ -1005,8 +1020,9 @@ class _Loader:
         return SurveyRef(folder.name, folder, readable, stations, instant, extent, points, control)
 
     def _e57(self, path: Path, station_path: Path, file_row: Any, scan_rows: list) -> Any:
-        """Look over an E57 file with the scan poses stations.csv gives it; ``None`` when a
-        stations.csv row names no scan of it (reported)."""
+        """Look over an E57 file with the scan poses stations.csv gives it: ``(CloudInfo,
+        every scan posed by stations.csv)``; ``None`` when a stations.csv row names no scan of
+        it (reported)."""
         from inventory.io.cloudcheck import CloudInfo, inspect_cloud
         from inventory.io.e57 import E57Reader
         from inventory.model.pose import rotation_matrix
@@ -1017,7 +1033,7 @@ class _Loader:
                 found = [(row, reader.scan_index("" if row is file_row else str(row.scan))) for row in rows]
                 count = len(reader.scans)
         except Exception as err:  # inventory.errors.InputError: the reader names what is wrong
-            return CloudInfo(path, error=getattr(err, "why", str(err)))
+            return CloudInfo(path, error=getattr(err, "why", str(err))), False
         poses = {}
         for row, idx in found:
             if idx is None:
@@ -1025,7 +1041,7 @@ class _Loader:
                 self.error(station_path, row.line, "scan", f"{path.name} has {what} (numbers 1-{count} or names)")
                 return None
             poses[idx] = (rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg), np.array([row.x, row.y, row.z]))
-        return inspect_cloud(path, poses=poses)
+        return inspect_cloud(path, poses=poses), len(poses) == count
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
