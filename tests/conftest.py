@@ -535,7 +535,8 @@ def _write_e57(path: Path, scans: list[dict], coordinate_metadata: str = "") -> 
     azimuth, elevation in radians), optional ``invalid`` (n,) states, ``intensity`` (n,)
     with ``intensity_limits`` (lo, hi), ``rgb`` (n, 3) 0-255, ``returns`` ((n,), (n,))
     return index and count, ``pose`` ``(quaternion w x y z, translation)`` or ``None`` for
-    a scan without pose, ``name``. Coordinates are stored as doubles.
+    a scan without pose, ``name``, ``acquisitionStart`` / ``acquisitionEnd`` (GPS seconds)
+    and ``time_stamp`` (n,) seconds after the start. Coordinates are stored as doubles.
     """
     import uuid
 
@@ -568,6 +569,12 @@ def _write_e57(path: Path, scans: list[dict], coordinate_metadata: str = "") -> 
             pose.set("rotation", rot)
             pose.set("translation", tr)
             node.set("pose", pose)
+        for key in ("acquisitionStart", "acquisitionEnd"):
+            if key in scan:   # GPS seconds since 1980-01-06 (E57 DateTime)
+                when = libe57.StructureNode(imf)
+                when.set("dateTimeValue", libe57.FloatNode(imf, float(scan[key])))
+                when.set("isAtomicClockReferenced", libe57.IntegerNode(imf, 0))
+                node.set(key, when)
         arrays: dict[str, np.ndarray] = {}
         proto = libe57.StructureNode(imf)
         if "xyz" in scan:
@@ -608,6 +615,9 @@ def _write_e57(path: Path, scans: list[dict], coordinate_metadata: str = "") -> 
             # int16: the bindings take numpy's 'l' as 32-bit, and int64 arrays carry 'l'
             arrays["returnIndex"] = np.asarray(index, np.int16)
             arrays["returnCount"] = np.asarray(count, np.int16)
+        if "time_stamp" in scan:
+            proto.set("timeStamp", libe57.FloatNode(imf, 0.0, libe57.E57_DOUBLE))
+            arrays["timeStamp"] = np.asarray(scan["time_stamp"], float)
         codecs = libe57.VectorNode(imf, True)
         points = libe57.CompressedVectorNode(imf, proto, codecs)
         node.set("points", points)

@@ -208,3 +208,27 @@ def test_whole_file_pose_places_a_single_scan_file_without_crs(good_site, write_
     expect = Rotation.from_euler("z", -30, degrees=True).apply(local) + [500005, 5700001, 10.2]
     np.testing.assert_allclose(np.column_stack([pts["X"], pts["Y"], pts["Z"]]), expect, atol=1e-9)
     assert placement.crs is None
+
+
+def test_acquisition_times_give_the_survey_instant_and_gps_time(good_site, write_e57):
+    from datetime import datetime, timezone
+
+    from inventory.model.pose import GPS_EPOCH, GPS_UTC_LEAP_S
+
+    folder = good_site / SURVEY
+    (folder / "stations.csv").unlink()
+    (folder / "a.laz").unlink()
+    # 2026-10-31 13:00:00 UTC as GPS seconds since the GPS epoch (IS-GPS-200; 18 leap seconds)
+    start = (datetime(2026, 10, 31, 13, 0, tzinfo=timezone.utc) - GPS_EPOCH).total_seconds() + GPS_UTC_LEAP_S
+    local = np.random.default_rng(6).uniform(-10, 10, (100, 3)) * [3, 1, 0.2]   # over both piles
+    ts = np.linspace(0.0, 300.0, 100)
+    write_e57(folder / "timed.e57", [dict(xyz=local, pose=([1, 0, 0, 0], [500015.0, 5700000.0, 10.0]),
+                                          acquisitionStart=start, acquisitionEnd=start + 300.0, time_stamp=ts)],
+              "EPSG:25832")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")   # no "no stations.csv times" warning: the file has its times
+        site = load_site(good_site)
+    assert site.surveys["2026-10-31"].instant == datetime(2026, 10, 31, 13, 5, tzinfo=timezone.utc)
+    pts, _ = _placed(site, "timed.e57")
+    # adjusted standard GPS time (LAS 1.4): GPS seconds minus 1e9
+    np.testing.assert_allclose(pts["GpsTime"], start + ts - 1e9, atol=1e-6)

@@ -14,7 +14,10 @@ For every scan this reader takes
 - intensity, brought to LAS's 16-bit range with the scan's ``intensityLimits`` (else the
   limits of the intensity field itself): ``I16 = round(65535 (I - min) / (max - min))``;
 - colour, the same way with ``colorLimits`` (8-bit 0-255 becomes 0-65535, as LAS stores it);
-- ``returnIndex`` / ``returnCount`` as LAS return number (1-based) and number of returns.
+- ``returnIndex`` / ``returnCount`` as LAS return number (1-based) and number of returns;
+- ``timeStamp`` (seconds after the scan's ``acquisitionStart``, GPS time) as adjusted standard
+  GPS time, the LAS 1.4 time base, when the scan gives its start; ``isIntensityInvalid``,
+  ``isColorInvalid`` and ``isTimeStampInvalid`` blank the value (0, or NaN for time).
 
 Points come out in :data:`~inventory.io.clouds.POINT_DTYPE` chunks of at most
 ``chunk_size``, one scan at a time (``PointSourceId`` is the scan's 1-based index;
@@ -30,6 +33,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from datetime import datetime
 from functools import lru_cache
 from pathlib import Path
 from typing import Any, Iterator, Mapping
@@ -39,6 +43,7 @@ from pyproj import CRS
 
 from inventory.errors import InputError
 from inventory.io.crs import parse_crs
+from inventory.model.pose import ADJUSTED_GPS_OFFSET_S, utc_from_adjusted_gps
 
 __all__ = ["E57Reader", "E57Scan", "E57_SUFFIXES"]
 
@@ -85,6 +90,10 @@ class E57Scan:
     fields: tuple
     intensity_limits: tuple[float, float] | None
     colour_limits: dict
+    #: ``acquisitionStart`` / ``acquisitionEnd`` as GPS seconds since 1980-01-06 (E57
+    #: DateTime); ``None`` when absent or zero (writers that fill in nothing write 0).
+    acquisition_start: float | None = None
+    acquisition_end: float | None = None
 
     @property
     def label(self) -> str:
@@ -154,7 +163,12 @@ def _scan(index: int, node: Any) -> E57Scan:
         colour[e57_name] = (float(lo), float(hi)) if lo is not None and hi is not None else \
             (_field_limits(proto, e57_name) or (0.0, 255.0))
     name = _value(scan, "name")
-    return E57Scan(index, str(name or ""), int(points.childCount()), rotation, translation, fields, limits, colour)
+    times = []
+    for key in ("acquisitionStart", "acquisitionEnd"):
+        t = _value(scan, key, "dateTimeValue")
+        times.append(float(t) if t is not None and float(t) > 0 else None)
+    return E57Scan(index, str(name or ""), int(points.childCount()), rotation, translation, fields, limits, colour,
+                   times[0], times[1])
 
 
 def _quaternion_matrix(q: list[float]) -> np.ndarray:
@@ -273,6 +287,18 @@ class E57Reader:
             return int(key) - 1
         return next((s.index for s in self.scans if s.name == key), None)
 
+    def acquired_utc(self) -> "datetime | None":
+        """When the last scan ended (else started), in UTC; ``None`` when the file does not say
+        or says a time before 2017 (whose leap seconds are not known here)."""
+        times = [s.acquisition_end or s.acquisition_start for s in self.scans]
+        times = [t for t in times if t]
+        if not times:
+            return None
+        try:
+            return utc_from_adjusted_gps(max(times) - ADJUSTED_GPS_OFFSET_S)
+        except ValueError:
+            return None
+
     def missing_poses(self) -> list[E57Scan]:
         """The scans with no pose in the file and none given by the caller."""
         return [s for s in self.scans if s.rotation is None and s.index not in self.poses]
@@ -342,9 +368,12 @@ class E57Reader:
         if state in s.fields:
             names.append((state, "b"))
         if with_attributes:
-            for f in ("intensity", "colorRed", "colorGreen", "colorBlue"):
+            for f in ("intensity", "colorRed", "colorGreen", "colorBlue", "timeStamp"):
                 if f in s.fields:
                     names.append((f, "d"))
+            for f in ("isIntensityInvalid", "isColorInvalid", "isTimeStampInvalid"):
+                if f in s.fields:
+                    names.append((f, "b"))
             for f in ("returnIndex", "returnCount"):
                 if f in s.fields:
                     names.append((f, "q"))
@@ -403,9 +432,19 @@ class E57Reader:
         out["PointSourceId"] = s.index + 1
         if "intensity" in raw:
             out["Intensity"] = _scale16(raw["intensity"][valid], s.intensity_limits)
+            if "isIntensityInvalid" in raw:
+                out["Intensity"][raw["isIntensityInvalid"][valid] != 0] = 0
         for e57_name, dim in _COLOURS:
             if e57_name in raw:
                 out[dim] = _scale16(raw[e57_name][valid], s.colour_limits[e57_name])
+                if "isColorInvalid" in raw:
+                    out[dim][raw["isColorInvalid"][valid] != 0] = 0
+        if "timeStamp" in raw and s.acquisition_start is not None:
+            # seconds since the scan's start (ASTM E2807), as adjusted standard GPS time (LAS 1.4)
+            gps = raw["timeStamp"][valid] + (s.acquisition_start - ADJUSTED_GPS_OFFSET_S)
+            if "isTimeStampInvalid" in raw:
+                gps[raw["isTimeStampInvalid"][valid] != 0] = np.nan
+            out["GpsTime"] = gps
         out["ReturnNumber"] = raw["returnIndex"][valid] + 1 if "returnIndex" in raw else 1
         out["NumberOfReturns"] = raw["returnCount"][valid] if "returnCount" in raw else 1
         return out

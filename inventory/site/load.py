@@ -931,6 +931,7 @@ class _Loader:
                     posed[row.file] = None  # a partial pose, already reported
         station_files = set(stations["file"]) if stations is not None else set()
         e57_all_posed: set[str] = set()   # E57 files whose every scan has its pose from stations.csv
+        e57_times: list[datetime] = []     # when E57 files say their scans ended
         readable = []
         extents = []
         points = 0
@@ -939,9 +940,11 @@ class _Loader:
                 info = self._e57(path, station_path, posed.get(path.name), scan_rows.get(path.name, []))
                 if info is None:
                     continue
-                info, all_posed = info
+                info, all_posed, acquired = info
                 if all_posed:
                     e57_all_posed.add(path.name)
+                if acquired is not None:
+                    e57_times.append(acquired)
             else:
                 info = inspect_cloud(path)
             if info.error:
@@ -1003,6 +1006,8 @@ class _Loader:
             from inventory.model.pose import utc_from_adjusted_gps
 
             instant = max(utc_from_adjusted_gps(t.span[1]) for t in trajectories.values())
+        elif e57_times:
+            instant = max(e57_times)   # the E57 files' own acquisition times
         else:
             hh, mm = (int(v) for v in config.survey.default_time.split(":"))
             zone = tz or timezone.utc
@@ -1021,8 +1026,8 @@ class _Loader:
 
     def _e57(self, path: Path, station_path: Path, file_row: Any, scan_rows: list) -> Any:
         """Look over an E57 file with the scan poses stations.csv gives it: ``(CloudInfo,
-        every scan posed by stations.csv)``; ``None`` when a stations.csv row names no scan of
-        it (reported)."""
+        every scan posed by stations.csv, when its scans ended (UTC) or None)``; ``None`` when a
+        stations.csv row names no scan of it (reported)."""
         from inventory.io.cloudcheck import CloudInfo, inspect_cloud
         from inventory.io.e57 import E57Reader
         from inventory.model.pose import rotation_matrix
@@ -1032,8 +1037,9 @@ class _Loader:
                 rows = list(scan_rows) + ([file_row] if file_row is not None else [])
                 found = [(row, reader.scan_index("" if row is file_row else str(row.scan))) for row in rows]
                 count = len(reader.scans)
+                acquired = reader.acquired_utc()
         except Exception as err:  # inventory.errors.InputError: the reader names what is wrong
-            return CloudInfo(path, error=getattr(err, "why", str(err))), False
+            return CloudInfo(path, error=getattr(err, "why", str(err))), False, None
         poses = {}
         for row, idx in found:
             if idx is None:
@@ -1041,7 +1047,7 @@ class _Loader:
                 self.error(station_path, row.line, "scan", f"{path.name} has {what} (numbers 1-{count} or names)")
                 return None
             poses[idx] = (rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg), np.array([row.x, row.y, row.z]))
-        return inspect_cloud(path, poses=poses), len(poses) == count
+        return inspect_cloud(path, poses=poses), len(poses) == count, acquired
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
