@@ -232,3 +232,11 @@ def test_acquisition_times_give_the_survey_instant_and_gps_time(good_site, write
     pts, _ = _placed(site, "timed.e57")
     # adjusted standard GPS time (LAS 1.4): GPS seconds minus 1e9
     np.testing.assert_allclose(pts["GpsTime"], start + ts - 1e9, atol=1e-6)
+
+
+def test_a_pose_that_is_no_rotation_is_refused(tmp_path, write_e57):
+    path = write_e57(tmp_path / "zero.e57", [dict(xyz=np.zeros((3, 3)), pose=([0, 0, 0, 0], [1.0, 2.0, 3.0]))])
+    with pytest.raises(InputError) as err:
+        open_cloud(path)
+    assert str(err.value) == (f"{path}: damaged E57 structure (scan 1: its pose is not a rotation quaternion "
+                              "and a translation ([0.0, 0.0, 0.0, 0.0], [1.0, 2.0, 3.0]))")

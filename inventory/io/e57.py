@@ -146,6 +146,9 @@ def _scan(index: int, node: Any) -> E57Scan:
         t = [_value(scan, "pose", "translation", k) for k in "xyz"]
         q = [1.0, 0.0, 0.0, 0.0] if any(v is None for v in q) else [float(v) for v in q]
         t = [0.0, 0.0, 0.0] if any(v is None for v in t) else [float(v) for v in t]
+        if not all(math.isfinite(v) for v in q + t) or math.sqrt(sum(v * v for v in q)) < 1e-9:
+            raise ValueError(f"scan {index + 1}: its pose is not a rotation quaternion and a translation "
+                             f"({q}, {t})")
         rotation = _quaternion_matrix(q)
         translation = np.asarray(t, float)
     limits = None
