@@ -110,7 +110,8 @@ class SurveyResult:
         return [p for p in (self.surface_path, self.coverage_path, self.classified_path) if p is not None]
 
     def format_summary(self) -> str:
-        """One line: points read, kept, per class, cells and coverage."""
+        """One line: points read, kept, per class, cells and coverage, and the control-point
+        fit when the survey was registered by one."""
         s = self.surface
         cells = s.grid.nrows * s.grid.ncols
         scanned = int(s.scanned.sum())

@@ -5,7 +5,11 @@ A cloud arrives in one of three ways, each a :class:`Placement` that
 CRS (:class:`CrsPlacement`), in a scanner's own frame with a station pose from
 ``stations.csv`` (:class:`StationPlacement`), or in a moving scanner's own frame with the
 pose at each point's time from ``trajectory.csv`` (:class:`TrajectoryPlacement`,
-:func:`georeference`).
+:func:`georeference`). An E57 file's scans are placed by their own poses, or by poses that
+``stations.csv`` gives them (:class:`E57Placement`). A survey with ``control.csv`` is in a
+frame of its own: each file is placed in that frame as above (a file with no pose as it is,
+:class:`FramePlacement`) and then moved by the survey's fitted similarity transform
+(:class:`ControlPlacement`, :mod:`inventory.site.control`).
 
 :func:`poses_from_stations` turns the rows of ``stations.csv`` into station poses
 (``p_site = R @ p_scanner + (x, y, z)``, ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``);
