@@ -265,3 +265,17 @@ def test_residuals_reach_the_manifest_and_the_report(close_result, tmp_path):
     assert f"RMS {reg.rms_m:.3f} m (tolerance 0.050 m)" in page
     assert "CP2" in page
     assert "Registration by control points" not in report_html(close_result)
+
+
+def test_a_close_with_disagreeing_control_writes_nothing(good_site):
+    from inventory.close import close_period
+
+    p = _local_points(4) * 0.1 + [500010.0, 5700000.0, 10.0]
+    q = p.copy()
+    q[2] += [0.3, 0.3, -0.2]
+    _site_with_control(good_site, _control_rows(p, q))
+    before = sorted(x.relative_to(good_site) for x in good_site.rglob("*"))
+    with pytest.raises(InputErrors) as err:
+        close_period(good_site, "2026-10")
+    assert "site/surveys/2026-10-31/control.csv: control points disagree" in str(err.value)
+    assert sorted(x.relative_to(good_site) for x in good_site.rglob("*")) == before
