@@ -105,8 +105,10 @@ def _site_inputs(site: Site, survey_dates: list[str], period: str) -> list[Path]
     for d in survey_dates:
         ref = site.surveys[d]
         files.extend(ref.files)
-        if (ref.folder / "stations.csv").is_file():
-            files.append(ref.folder / "stations.csv")
+        for table in ("stations.csv", "control.csv", "crs.prj"):
+            if (ref.folder / table).is_file():
+                files.append(ref.folder / table)
+        files.extend(p.with_suffix(".prj") for p in ref.files if p.with_suffix(".prj").is_file())
     mv = root / "movements" / period
     if mv.is_dir():
         files.extend(sorted(mv.glob("*.csv")))
@@ -520,6 +522,8 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
             # the close's own timings so far; _write_manifest stores the final copy
             "timings": timings,
             "survey_summary": survey.format_summary(),
+            "survey_registration": (survey.registration.as_dict()
+                                    if getattr(survey, "registration", None) is not None else None),
             "book_messages": list(book.messages),
             "software_version": __version__,
         },

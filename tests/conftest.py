@@ -523,3 +523,116 @@ def plane_points():
         z = 50 + 0.1 * (x - 1000) + rng.normal(0, 0.05, n)
         return x, y, z
     return make
+
+
+# ----------------------------------------------------------------------------- E57 files
+
+
+def _write_e57(path: Path, scans: list[dict], coordinate_metadata: str = "") -> Path:
+    """Write an E57 file through libE57Format (pye57's bindings), an independent writer.
+
+    Each scan is a dict: ``xyz`` (n, 3) cartesian or ``rae`` (n, 3) spherical (range,
+    azimuth, elevation in radians), optional ``invalid`` (n,) states, ``intensity`` (n,)
+    with ``intensity_limits`` (lo, hi), ``rgb`` (n, 3) 0-255, ``returns`` ((n,), (n,))
+    return index and count, ``pose`` ``(quaternion w x y z, translation)`` or ``None`` for
+    a scan without pose, ``name``, ``acquisitionStart`` / ``acquisitionEnd`` (GPS seconds)
+    and ``time_stamp`` (n,) seconds after the start. Coordinates are stored as doubles.
+    """
+    import uuid
+
+    from pye57 import libe57
+
+    imf = libe57.ImageFile(str(path), "w")
+    imf.extensionsAdd("", libe57.E57_V1_0_URI)
+    root = imf.root()
+    root.set("formatName", libe57.StringNode(imf, "ASTM E57 3D Imaging Data File"))
+    root.set("guid", libe57.StringNode(imf, "{%s}" % uuid.uuid4()))
+    root.set("versionMajor", libe57.IntegerNode(imf, libe57.E57_FORMAT_MAJOR))
+    root.set("versionMinor", libe57.IntegerNode(imf, libe57.E57_FORMAT_MINOR))
+    root.set("coordinateMetadata", libe57.StringNode(imf, coordinate_metadata))
+    root.set("data3D", libe57.VectorNode(imf, True))
+    root.set("images2D", libe57.VectorNode(imf, True))
+    data3d = root["data3D"]
+    for k, scan in enumerate(scans):
+        node = libe57.StructureNode(imf)
+        node.set("guid", libe57.StringNode(imf, "{%s}" % uuid.uuid4()))
+        node.set("name", libe57.StringNode(imf, scan.get("name", f"scan{k + 1}")))
+        if scan.get("pose") is not None:
+            q, t = scan["pose"]
+            pose = libe57.StructureNode(imf)
+            rot = libe57.StructureNode(imf)
+            for key, v in zip("wxyz", q):
+                rot.set(key, libe57.FloatNode(imf, float(v)))
+            tr = libe57.StructureNode(imf)
+            for key, v in zip("xyz", t):
+                tr.set(key, libe57.FloatNode(imf, float(v)))
+            pose.set("rotation", rot)
+            pose.set("translation", tr)
+            node.set("pose", pose)
+        for key in ("acquisitionStart", "acquisitionEnd"):
+            if key in scan:   # GPS seconds since 1980-01-06 (E57 DateTime)
+                when = libe57.StructureNode(imf)
+                when.set("dateTimeValue", libe57.FloatNode(imf, float(scan[key])))
+                when.set("isAtomicClockReferenced", libe57.IntegerNode(imf, 0))
+                node.set(key, when)
+        arrays: dict[str, np.ndarray] = {}
+        proto = libe57.StructureNode(imf)
+        if "xyz" in scan:
+            for key, col in zip(("cartesianX", "cartesianY", "cartesianZ"), np.asarray(scan["xyz"], float).T):
+                proto.set(key, libe57.FloatNode(imf, 0.0, libe57.E57_DOUBLE))
+                arrays[key] = np.ascontiguousarray(col)
+            state = "cartesianInvalidState"
+        else:
+            for key, col in zip(("sphericalRange", "sphericalAzimuth", "sphericalElevation"),
+                                np.asarray(scan["rae"], float).T):
+                proto.set(key, libe57.FloatNode(imf, 0.0, libe57.E57_DOUBLE))
+                arrays[key] = np.ascontiguousarray(col)
+            state = "sphericalInvalidState"
+        n = len(next(iter(arrays.values())))
+        if "invalid" in scan:
+            proto.set(state, libe57.IntegerNode(imf, 0, 0, 2))
+            arrays[state] = np.asarray(scan["invalid"], np.int8)
+        if "intensity" in scan:
+            lo, hi = scan["intensity_limits"]
+            limits = libe57.StructureNode(imf)
+            limits.set("intensityMinimum", libe57.FloatNode(imf, float(lo)))
+            limits.set("intensityMaximum", libe57.FloatNode(imf, float(hi)))
+            node.set("intensityLimits", limits)
+            proto.set("intensity", libe57.FloatNode(imf, float(lo), libe57.E57_DOUBLE, float(lo), float(hi)))
+            arrays["intensity"] = np.asarray(scan["intensity"], float)
+        if "rgb" in scan:
+            limits = libe57.StructureNode(imf)
+            for key, col in zip(("Red", "Green", "Blue"), np.asarray(scan["rgb"]).T):
+                limits.set(f"color{key}Minimum", libe57.IntegerNode(imf, 0))
+                limits.set(f"color{key}Maximum", libe57.IntegerNode(imf, 255))
+                proto.set(f"color{key}", libe57.IntegerNode(imf, 0, 0, 255))
+                arrays[f"color{key}"] = np.asarray(col, np.uint8)
+            node.set("colorLimits", limits)
+        if "returns" in scan:
+            index, count = scan["returns"]
+            proto.set("returnIndex", libe57.IntegerNode(imf, 0, 0, 15))
+            proto.set("returnCount", libe57.IntegerNode(imf, 1, 0, 15))
+            # int16: the bindings take numpy's 'l' as 32-bit, and int64 arrays carry 'l'
+            arrays["returnIndex"] = np.asarray(index, np.int16)
+            arrays["returnCount"] = np.asarray(count, np.int16)
+        if "time_stamp" in scan:
+            proto.set("timeStamp", libe57.FloatNode(imf, 0.0, libe57.E57_DOUBLE))
+            arrays["timeStamp"] = np.asarray(scan["time_stamp"], float)
+        codecs = libe57.VectorNode(imf, True)
+        points = libe57.CompressedVectorNode(imf, proto, codecs)
+        node.set("points", points)
+        data3d.append(node)
+        bufs = libe57.VectorSourceDestBuffer()
+        for key, arr in arrays.items():
+            bufs.append(libe57.SourceDestBuffer(imf, key, arr, n, True, True))
+        writer = points.writer(bufs)
+        writer.write(n)
+        writer.close()
+    imf.close()
+    return Path(path)
+
+
+@pytest.fixture(scope="session")
+def write_e57():
+    """``write_e57(path, scans, coordinate_metadata="")``: an E57 file written by libE57Format."""
+    return _write_e57

@@ -299,7 +299,7 @@ def test_survey_with_no_readable_cloud(good_site):
 
 def test_survey_folder_without_clouds(good_site):
     (good_site / "surveys/2026-11-30").mkdir()
-    assert "site/surveys/2026-11-30: no point cloud file (.las, .laz, .copc.laz) in the survey folder" in errors_of(good_site)
+    assert "site/surveys/2026-11-30: no point cloud file (.las, .laz, .copc.laz, .e57, .ply, .xyz, .txt) in the survey folder" in errors_of(good_site)
 
 
 def test_cloud_crs_with_no_known_transform(good_site, write_tiny_cloud):

@@ -339,6 +339,20 @@ span.low{color:#8c3b1c;font-weight:bold}
 """.replace("OOT_COLOR", OUT_OF_TOLERANCE_COLOR).replace("SIG_COLOR", SIGNIFICANT_COLOR)
 
 
+def _registration(result: CloseResult) -> str:
+    """The survey's control-point fit (run["survey_registration"]), when it had one."""
+    reg = (result.run or {}).get("survey_registration")
+    if not reg:
+        return ""
+    esc = html.escape
+    rows = [[esc(str(pt["point_id"])), _num(pt["de_m"], 3, signed=True), _num(pt["dn_m"], 3, signed=True),
+             _num(pt["dh_m"], 3, signed=True), _num(pt["residual_m"], 3)] for pt in reg.get("points", [])]
+    return (f"<h2>Registration by control points</h2>\n<p>{esc(str(reg['model']))} transform from "
+            f"{esc(Path(str(reg['source'])).name)}: scale {reg['scale']:.6f}, rotation about the vertical "
+            f"{reg['yaw_deg']:.4f}°; RMS {reg['rms_m']:.3f} m (tolerance {reg['tolerance_m']:.3f} m).</p>\n"
+            + _table(["point", "dE (m)", "dN (m)", "dh (m)", "residual (m)"], rows))
+
+
 def report_html(result: CloseResult) -> str:
     """The report page as a string (see :func:`write_report`)."""
     p = result.piles
@@ -420,6 +434,7 @@ src="data:image/png;base64,{_bar_figure(result)}">
 <p class="legend">Row colours:<span style="background:{OUT_OF_TOLERANCE_COLOR}"></span>{esc(ROW_LEGEND["out_of_tolerance"])}
 <span style="background:{SIGNIFICANT_COLOR}"></span>{esc(ROW_LEGEND["significant"])}</p>
 {piles_table}
+{_registration(result)}
 <h2>Adjustment journal</h2>
 {jt}
 <h2>Scale diagnostics</h2>

@@ -1,4 +1,5 @@
-"""A cheap look at a point cloud file: header only, no points decoded.
+"""A cheap look at a point cloud file: header only, no points decoded (for LAS/LAZ/COPC;
+E57, PLY and text files have no header bounds, so their coordinates are read once).
 
 Used by the site check to name unreadable files and files whose CRS cannot reach the site's,
 before any long step starts. :func:`size_problem` also compares what the header promises
@@ -120,15 +121,39 @@ def size_problem(path: str | Path, header: Any) -> str | None:
     return _las_problem(header, size)
 
 
-def inspect_cloud(path: str | Path) -> CloudInfo:
-    """Read the header of a LAS/LAZ/COPC file.
+def _inspect_other(path: Path, poses: "dict | None") -> CloudInfo:
+    """E57, PLY and text files: their reader's count, CRS and bounds. E57 bounds are the
+    scans' boxes through their poses (``poses`` replacing the file's), PLY and text bounds
+    are measured; either costs one pass over the coordinates."""
+    from inventory.errors import InputError
+    from inventory.io.clouds import open_cloud
+
+    try:
+        with open_cloud(path, poses=poses) as reader:
+            lo, hi = reader.bounds
+            crs = reader.crs
+            return CloudInfo(path, point_count=int(reader.count),
+                             bounds=(tuple(map(float, lo)), tuple(map(float, hi))),
+                             crs_wkt=crs.to_wkt() if crs is not None else None,
+                             version=path.suffix.lower().lstrip("."))
+    except InputError as err:
+        return CloudInfo(path, error=err.why)
+    except OSError as err:
+        return CloudInfo(path, error=str(err) or type(err).__name__)
+
+
+def inspect_cloud(path: str | Path, poses: "dict | None" = None) -> CloudInfo:
+    """Read the header of a LAS/LAZ/COPC file, or look over an E57, PLY or text file.
 
     Never raises for a bad file: the reason goes into ``CloudInfo.error``, including a file
-    too short for the points its header promises (:func:`size_problem`).
+    too short for the points its header promises (:func:`size_problem`). ``poses`` are an
+    E57 file's scan poses given in stations.csv (see :func:`inventory.io.clouds.open_cloud`).
     """
     import laspy
 
     path = Path(path)
+    if path.suffix.lower() not in (".las", ".laz"):
+        return _inspect_other(path, poses)
     try:
         with laspy.open(path) as reader:
             header = reader.header

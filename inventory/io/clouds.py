@@ -1,4 +1,9 @@
-"""Streamed reading and writing of LAS 1.2-1.4, LAZ and COPC files through laspy.
+"""Streamed reading of point cloud files, and writing of LAS 1.4 / LAZ through laspy.
+
+:func:`open_cloud` picks the reader by the file's ending: LAS 1.2-1.4, LAZ and COPC through
+laspy (here), E57 (:mod:`inventory.io.e57`), PLY (:mod:`inventory.io.ply`) and delimited text
+(:mod:`inventory.io.xyz`). Every reader has ``count``, ``crs``, ``crs_source``, ``mins``,
+``maxs``, ``has_colour`` and ``chunks()``.
 
 Points travel between steps as numpy structured arrays with PDAL's dimension names
 (:data:`POINT_DTYPE`), so the same arrays can be handed to PDAL's Python bindings or to our
@@ -22,7 +27,7 @@ Examples
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Iterator
+from typing import Any, Iterator
 
 import laspy
 import numpy as np
@@ -34,8 +39,16 @@ from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
 
-__all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CloudReader", "CloudWriter", "open_cloud",
-           "read_cloud", "write_cloud", "read_crs", "empty_points", "has_colour"]
+__all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter", "open_cloud",
+           "read_cloud", "write_cloud", "read_crs", "empty_points", "has_colour", "sidecar_crs"]
+
+#: File endings of LAS, LAZ and COPC (which ends in .copc.laz) files.
+LAS_SUFFIXES = (".las", ".laz")
+#: Every file ending :func:`open_cloud` reads.
+CLOUD_SUFFIXES = LAS_SUFFIXES + (".e57", ".ply", ".xyz", ".txt")
+#: A PLY or text cloud's CRS: ``<name>.prj`` beside it, else this file for the whole folder
+#: (WKT or an authority code such as ``EPSG:25832``).
+CRS_SIDECAR = "crs.prj"
 
 #: Points per chunk when streaming: 58 MB of POINT_DTYPE (58 bytes a point).
 DEFAULT_CHUNK = 1_000_000
@@ -158,6 +171,7 @@ class CloudReader:
         if problem is not None:
             self._reader.close()
             raise InputError(self.path, problem)
+        self.has_colour = has_colour(self.header.point_format)
         self.mins = np.asarray(self.header.mins, float)
         self.maxs = np.asarray(self.header.maxs, float)
         crs, source = read_crs(self.header, self.path)
@@ -201,18 +215,52 @@ class CloudReader:
                                         f"but only {self.read:,} could be read")
 
 
+def sidecar_crs(path: "str | Path") -> tuple[CRS | None, Path | None]:
+    """The CRS given beside a file that cannot carry one (PLY, text): ``<name>.prj``, else
+    ``crs.prj`` in its folder; ``(None, None)`` when neither exists."""
+    path = Path(path)
+    for candidate in (path.with_suffix(".prj"), path.parent / CRS_SIDECAR):
+        if candidate.is_file():
+            try:
+                text = candidate.read_text("utf-8-sig").strip()
+            except (OSError, UnicodeDecodeError) as err:
+                raise CRSError(candidate, f"cannot be read ({err})", field="crs") from err
+            return parse_crs(text, where=str(candidate)), candidate
+    return None, None
+
+
 def open_cloud(path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,
-               default_crs: "CRS | str | None" = None) -> CloudReader:
-    """Open a LAS, LAZ or COPC file for streaming.
+               default_crs: "CRS | str | None" = None, poses: "dict | None" = None) -> "CloudReader | Any":
+    """Open a point cloud file for streaming: LAS, LAZ, COPC, E57, PLY or delimited text.
 
     Parameters
     ----------
     path : path-like
     chunk_size : int
-        Points per chunk yielded by :meth:`CloudReader.chunks`.
+        Points per chunk yielded by the reader's ``chunks()``.
     default_crs : CRS or str, optional
-        Used when the file carries no CRS (the site's ``[survey] default_crs``).
+        Used when the file carries no CRS (the site's ``[survey] default_crs``); a PLY or
+        text file takes its CRS from :func:`sidecar_crs` first.
+    poses : dict, optional
+        E57 only: ``{scan index (0-based): (R (3, 3), t (3,))}`` replacing the file's poses.
     """
+    suffix = Path(path).suffix.lower()
+    if suffix == ".e57":
+        from inventory.io.e57 import E57Reader
+
+        return E57Reader(path, chunk_size=chunk_size, default_crs=default_crs, poses=poses)
+    if suffix in (".ply", ".xyz", ".txt"):
+        from inventory.io.ply import PlyReader
+        from inventory.io.xyz import TextCloudReader
+
+        crs, source = sidecar_crs(path)
+        where = source.name if source is not None else None
+        if crs is None and default_crs is not None:
+            crs, where = parse_crs(default_crs, where=str(path)), "default"
+        kind = PlyReader if suffix == ".ply" else TextCloudReader
+        return kind(path, chunk_size=chunk_size, crs=crs, crs_source=where)
+    if poses:
+        raise ValueError("scan poses are for E57 files only")
     return CloudReader(path, chunk_size=chunk_size, default_crs=default_crs)
 
 

@@ -55,8 +55,9 @@ __all__ = [
     "POINT_CLOUD_SUFFIXES",
 ]
 
-#: File endings read as point clouds (COPC files end in .copc.laz and are LAZ 1.4).
-POINT_CLOUD_SUFFIXES = (".las", ".laz")
+#: File endings read as point clouds: LAS, LAZ (COPC files end in .copc.laz and are LAZ
+#: 1.4), E57, PLY and delimited text.
+POINT_CLOUD_SUFFIXES = (".las", ".laz", ".e57", ".ply", ".xyz", ".txt")
 _SURVEY_DIR = re.compile(r"^\d{4}-\d{2}-\d{2}$")
 _LEVEL_BASE = re.compile(r"^level:(-?\d+(\.\d+)?)$")
 #: Overlap between two footprints below this many square metres is digitising noise, not an
@@ -109,6 +110,8 @@ class SurveyConfig:
     pipeline: Path | None = None
     default_time: str = "12:00"
     trajectory_max_gap_s: float = 1.0
+    control_model: str = "7-parameter"
+    control_rms_max_m: float = 0.05
 
 
 @dataclass(frozen=True)
@@ -149,6 +152,7 @@ class SurveyRef:
     instant: datetime
     extent: tuple[float, float, float, float] | None = None  # site CRS, from file headers
     point_count: int = 0
+    control: Any = None  # inventory.site.control.Registration when control.csv registers the survey
 
 
 @dataclass
@@ -535,6 +539,8 @@ class _Loader:
                 pipeline=self._config_path(get("survey", "pipeline", None), "survey.pipeline"),
                 default_time=str(get("survey", "default_time", "12:00")),
                 trajectory_max_gap_s=float(get("survey", "trajectory_max_gap_s", 1.0)),
+                control_model=str(get("survey", "control_model", "7-parameter")),
+                control_rms_max_m=float(get("survey", "control_rms_max_m", 0.05)),
             ),
             base=BaseConfig(
                 floor_raster=self._floor_raster(get("base", "floor_raster", None)),
@@ -902,7 +908,16 @@ class _Loader:
         if station_path.is_file():
             stations = self.table(station_path, "stations")
             pose_cols = ["x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"]
+            seen: dict[tuple, int] = {}
             for row in stations.itertuples():
+                scan = "" if row.scan is None or pd.isna(row.scan) else str(row.scan).strip()
+                if scan and not str(row.file).lower().endswith(".e57"):
+                    self.error(station_path, row.line, "scan", "a scan is named for E57 files only")
+                if (row.file, scan) in seen:
+                    what = f"scan {scan!r} of {row.file}" if scan else repr(row.file)
+                    self.error(station_path, row.line, "scan" if scan else "file",
+                               f"{what} is listed twice (first on line {seen[(row.file, scan)]})")
+                seen.setdefault((row.file, scan), row.line)
                 given = [c for c in pose_cols if getattr(row, c) is not None and not pd.isna(getattr(row, c))]
                 if given and len(given) != len(pose_cols):
                     missing = [c for c in pose_cols if c not in given]
@@ -925,41 +940,90 @@ class _Loader:
                 elif name is not None and not _is_file(folder / name):
                     self.error(trajectory_path, None, "file", f"no file {name!r} in {self.rel(folder)}")
         if not files:
-            self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz) in the survey folder")
+            self.error(folder, None, None, "no point cloud file (.las, .laz, .copc.laz, .e57, .ply, .xyz, .txt) "
+                       "in the survey folder")
             return None
+        control = None
+        control_path = folder / "control.csv"
+        if control_path.is_file():
+            from inventory.site.control import read_control
+
+            control = read_control(control_path, model=config.survey.control_model,
+                                   tolerance_m=config.survey.control_rms_max_m, display=self.rel(control_path),
+                                   problems=self.problems)
         posed = {}
+        scan_rows: dict[str, list] = {}
         if stations is not None:
             pose_cols = ["x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"]
             for row in stations.itertuples():
+                if row.scan is not None and not pd.isna(row.scan) and str(row.scan).strip():
+                    scan_rows.setdefault(row.file, []).append(row)
+                    continue
                 values = [getattr(row, c) for c in pose_cols]
                 if all(v is not None and not pd.isna(v) for v in values):
                     posed[row.file] = row
                 elif any(v is not None and not pd.isna(v) for v in values):
                     posed[row.file] = None  # a partial pose, already reported
         station_files = set(stations["file"]) if stations is not None else set()
+        e57_all_posed: set[str] = set()   # E57 files whose every scan has its pose from stations.csv
+        e57_times: list[datetime] = []     # when E57 files say their scans ended
         readable = []
         extents = []
         points = 0
         for path in files:
-            info = inspect_cloud(path)
+            if path.suffix.lower() == ".e57":
+                info = self._e57(path, station_path, posed.get(path.name), scan_rows.get(path.name, []))
+                if info is None:
+                    continue
+                info, all_posed, acquired = info
+                if all_posed:
+                    e57_all_posed.add(path.name)
+                if acquired is not None:
+                    e57_times.append(acquired)
+            else:
+                info = inspect_cloud(path)
             if info.error:
-                self.error(path, None, None, f"unreadable point cloud ({info.error})")
+                why = f"unreadable point cloud ({info.error})" if path.suffix.lower() in (".las", ".laz") else info.error
+                self.error(path, None, None, why)
                 continue
             readable.append(path)
             points += info.point_count
-            if path.name in posed:
-                row = posed[path.name]
+            is_e57 = path.suffix.lower() == ".e57"
+            row = posed.get(path.name) if not is_e57 else None
+            moving = None if is_e57 or path.name in posed else (
+                trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None))
+            if control is not None:
+                # every file lands in the survey's own frame first, then moves by the control fit
+                if row is not None:
+                    box, z = _posed_extent(info.bounds, row), (row.z - 1.0, row.z + 1.0)
+                elif moving is not None:
+                    box, z = moving.extent(info.bounds[0], info.bounds[1]), (info.bounds[0][2], info.bounds[1][2])
+                else:
+                    (x0, y0, z0), (x1, y1, z1) = info.bounds
+                    box, z = (x0, y0, x1, y1), (z0, z1)
+                corners = np.array([[a, b, c] for a in (box[0], box[2]) for b in (box[1], box[3]) for c in z])
+                moved = control.transform.apply_xyz(corners)
+                extents.append((moved[:, 0].min(), moved[:, 1].min(), moved[:, 0].max(), moved[:, 1].max()))
+                continue
+            if path.name in posed and not is_e57:
                 if row is not None:
                     extents.append(_posed_extent(info.bounds, row))
                 continue
-            moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None)
             if moving is not None:
                 extents.append(moving.extent(info.bounds[0], info.bounds[1]))
+                continue
+            if is_e57 and path.name in e57_all_posed:
+                extents.append((info.bounds[0][0], info.bounds[0][1], info.bounds[1][0], info.bounds[1][1]))
                 continue
             crs_text = info.crs_wkt
             if crs_text is None:
                 if config.survey.default_crs is None:
-                    self.error(path, None, "crs", "the file carries no CRS, has no pose in stations.csv, and site.toml has no [survey] default_crs")
+                    if path.suffix.lower() in (".ply", ".xyz", ".txt"):
+                        self.error(path, None, "crs", f"carries no CRS: give it in {path.with_suffix('.prj').name} or "
+                                   "crs.prj beside it, a pose in stations.csv, control points in control.csv, or "
+                                   "[survey] default_crs in site.toml")
+                    else:
+                        self.error(path, None, "crs", "the file carries no CRS, has no pose in stations.csv, and site.toml has no [survey] default_crs")
                     continue
                 crs_text = config.survey.default_crs
             bounds, why = _reproject_bounds(info.bounds, crs_text, site_crs)
@@ -977,6 +1041,8 @@ class _Loader:
             from inventory.model.pose import utc_from_adjusted_gps
 
             instant = max(utc_from_adjusted_gps(t.span[1]) for t in trajectories.values())
+        elif e57_times:
+            instant = max(e57_times)   # the E57 files' own acquisition times
         else:
             hh, mm = (int(v) for v in config.survey.default_time.split(":"))
             zone = tz or timezone.utc
@@ -991,7 +1057,32 @@ class _Loader:
         if extents:
             arr = np.asarray(extents)
             extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
-        return SurveyRef(folder.name, folder, readable, stations, instant, extent, points)
+        return SurveyRef(folder.name, folder, readable, stations, instant, extent, points, control)
+
+    def _e57(self, path: Path, station_path: Path, file_row: Any, scan_rows: list) -> Any:
+        """Look over an E57 file with the scan poses stations.csv gives it: ``(CloudInfo,
+        every scan posed by stations.csv, when its scans ended (UTC) or None)``; ``None`` when a
+        stations.csv row names no scan of it (reported)."""
+        from inventory.io.cloudcheck import CloudInfo, inspect_cloud
+        from inventory.io.e57 import E57Reader
+        from inventory.model.pose import rotation_matrix
+
+        try:
+            with E57Reader(path) as reader:
+                rows = list(scan_rows) + ([file_row] if file_row is not None else [])
+                found = [(row, reader.scan_index("" if row is file_row else str(row.scan))) for row in rows]
+                count = len(reader.scans)
+                acquired = reader.acquired_utc()
+        except Exception as err:  # inventory.errors.InputError: the reader names what is wrong
+            return CloudInfo(path, error=getattr(err, "why", str(err))), False, None
+        poses = {}
+        for row, idx in found:
+            if idx is None:
+                what = f"no scan {str(row.scan)!r}" if row is not file_row else f"{count} scans: give each pose a scan"
+                self.error(station_path, row.line, "scan", f"{path.name} has {what} (numbers 1-{count} or names)")
+                return None
+            poses[idx] = (rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg), np.array([row.x, row.y, row.z]))
+        return inspect_cloud(path, poses=poses), len(poses) == count, acquired
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box

@@ -32,7 +32,7 @@ from inventory.errors import (
     PipelineError,
     RunError,
 )
-from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, has_colour, open_cloud
+from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter
 from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from inventory.io.rasters import write_coverage, write_surface
 from inventory.model.classes import (
@@ -50,7 +50,8 @@ from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
 from inventory.survey.gridding import FillReport
 from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
-from inventory.survey.placement import Placement, survey_placements
+from inventory.site.control import Registration
+from inventory.survey.placement import ControlPlacement, Placement, survey_placements
 from inventory.survey.tiles import TileSpill, grid_tiles, run_tiles
 
 __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
@@ -101,13 +102,16 @@ class SurveyResult:
     #: Moving-scanner points not placed: outside the trajectory's time span, inside its gaps.
     points_outside_span: int = 0
     points_in_gap: int = 0
+    #: The survey's fit to its control points (control.csv), when it has them.
+    registration: Registration | None = None
 
     @property
     def written(self) -> list[Path]:
         return [p for p in (self.surface_path, self.coverage_path, self.classified_path) if p is not None]
 
     def format_summary(self) -> str:
-        """One line: points read, kept, per class, cells and coverage."""
+        """One line: points read, kept, per class, cells and coverage, and the control-point
+        fit when the survey was registered by one."""
         s = self.surface
         cells = s.grid.nrows * s.grid.ncols
         scanned = int(s.scanned.sum())
@@ -120,7 +124,8 @@ class SurveyResult:
                 f"{self.fill.gap_area_m2:,.1f} m2 of enclosed gaps left empty"
                 + (f"; trajectory: {self.points_outside_span:,} points outside its time span rejected, "
                    f"{self.points_in_gap:,} in its gaps dropped"
-                   if self.points_outside_span or self.points_in_gap else ""))
+                   if self.points_outside_span or self.points_in_gap else "")
+                + (f"; registered by {self.registration.summary()}" if self.registration is not None else ""))
 
 
 def _survey_ref(site: Site, date: str) -> SurveyRef:
@@ -161,12 +166,7 @@ def _site_crs(site: Site) -> CRS:
 
 def _extent(placements: list[Placement]) -> tuple[float, float, float, float]:
     """Site (xmin, ymin, xmax, ymax) of every file's header box, placed."""
-    boxes = []
-    for p in placements:
-        with open_cloud(p.path) as cloud:
-            mins, maxs = cloud.mins, cloud.maxs
-        boxes.append(p.box(mins, maxs))
-    b = np.asarray(boxes, float)
+    b = np.asarray([p.extent() for p in placements], float)
     return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
 
 
@@ -190,12 +190,12 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
     :class:`~inventory.errors.InputWarning`."""
     total = 0
     for p in placements:
-        with open_cloud(p.path) as cloud:
+        with p.open() as cloud:
             total += cloud.count
     read = _Read()
     for p in placements:
-        with open_cloud(p.path, chunk_size=chunk_size) as cloud:
-            read.colour = read.colour or has_colour(cloud.header.point_format)
+        with p.open(chunk_size) as cloud:
+            read.colour = read.colour or cloud.has_colour
             for chunk in cloud.chunks():
                 n_chunk = len(chunk)
                 chunk = p.place(chunk)
@@ -378,7 +378,8 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
     timings["total"] = time.perf_counter() - t_start
     return SurveyResult(date, surface, classified_path, surface_path, coverage_path, classified.counts, read.points,
                         classified.kept, read.outside, fill, [p.path for p in placements], used_engine, timings,
-                        read.outside_span, read.in_gap)
+                        read.outside_span, read.in_gap,
+                        next((p.registration for p in placements if isinstance(p, ControlPlacement)), None))
 
 
 def _survey_job(site: Site, date: str, out_dir: "str | Path | None",

@@ -5,7 +5,11 @@ A cloud arrives in one of three ways, each a :class:`Placement` that
 CRS (:class:`CrsPlacement`), in a scanner's own frame with a station pose from
 ``stations.csv`` (:class:`StationPlacement`), or in a moving scanner's own frame with the
 pose at each point's time from ``trajectory.csv`` (:class:`TrajectoryPlacement`,
-:func:`georeference`).
+:func:`georeference`). An E57 file's scans are placed by their own poses, or by poses that
+``stations.csv`` gives them (:class:`E57Placement`). A survey with ``control.csv`` is in a
+frame of its own: each file is placed in that frame as above (a file with no pose as it is,
+:class:`FramePlacement`) and then moved by the survey's fitted similarity transform
+(:class:`ControlPlacement`, :mod:`inventory.site.control`).
 
 :func:`poses_from_stations` turns the rows of ``stations.csv`` into station poses
 (``p_site = R @ p_scanner + (x, y, z)``, ``R = Rz(yaw) @ Ry(pitch) @ Rx(roll)``);
@@ -27,8 +31,8 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.errors import CRSError, InputError, InputWarning
-from inventory.io.clouds import open_cloud
-from inventory.io.crs import Reprojector, TransformerCache
+from inventory.io.clouds import CRS_SIDECAR, DEFAULT_CHUNK, open_cloud
+from inventory.io.crs import Reprojector, TransformerCache, parse_crs
 from inventory.io.tables import is_blank
 from inventory.model.pose import (
     DEFAULT_MAX_GAP_S,
@@ -36,11 +40,13 @@ from inventory.model.pose import (
     euler_rotation,
     rotation_matrix,
 )
+from inventory.site.control import CONTROL_FILE, DEFAULT_CONTROL_RMS_MAX_M, Registration, read_control
 from inventory.site.load import Site, SurveyRef
 from inventory.site.trajectory import read_trajectories
 
-__all__ = ["POSE_COLUMNS", "CrsPlacement", "Placement", "StationPlacement", "StationPose", "TrajectoryPlacement",
-           "georeference", "poses_from_stations", "survey_placements"]
+__all__ = ["POSE_COLUMNS", "ControlPlacement", "CrsPlacement", "E57Placement", "FramePlacement", "Placement", "StationPlacement", "StationPose", "TrajectoryPlacement",
+           "georeference", "poses_from_stations", "scan_poses_from_stations", "survey_placements",
+           "survey_registration"]
 
 POSE_COLUMNS = ("x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg")
 
@@ -101,6 +107,8 @@ def poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
         name = str(row.get("file", "")).strip()
         if not name:
             raise InputError(path, "file name is blank", line=line, field="file")
+        if not is_blank(row.get("scan")):
+            continue  # one scan of an E57 file: scan_poses_from_stations
         blanks = [c for c in POSE_COLUMNS if is_blank(row.get(c))]
         if len(blanks) == len(POSE_COLUMNS):
             out[name] = None
@@ -108,15 +116,43 @@ def poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
         if blanks:
             raise InputError(path, "pose is incomplete: give all of x, y, z, roll_deg, pitch_deg, "
                              "yaw_deg or none of them", line=line, field=blanks[0])
-        vals = {}
-        for c in POSE_COLUMNS:
-            try:
-                vals[c] = float(row[c])
-            except (TypeError, ValueError) as err:
-                raise InputError(path, f"not a number: {row[c]!r}", line=line, field=c) from err
-            if not math.isfinite(vals[c]):
-                raise InputError(path, f"not a finite number: {row[c]!r}", line=line, field=c)
-        out[name] = StationPose(str(row.get("station_id", "") or name), **vals)
+        out[name] = StationPose(str(row.get("station_id", "") or name), **_pose_values(row, path, line))
+    return out
+
+
+def _pose_values(row: Mapping[str, Any], path: "str | Path", line: int) -> dict[str, float]:
+    vals = {}
+    for c in POSE_COLUMNS:
+        try:
+            vals[c] = float(row[c])
+        except (TypeError, ValueError) as err:
+            raise InputError(path, f"not a number: {row[c]!r}", line=line, field=c) from err
+        if not math.isfinite(vals[c]):
+            raise InputError(path, f"not a finite number: {row[c]!r}", line=line, field=c)
+    return vals
+
+
+def scan_poses_from_stations(stations: Any, path: "str | Path" = "stations.csv"
+                             ) -> dict[str, dict[str, tuple[StationPose, int]]]:
+    """The poses that ``stations.csv`` gives to single scans of E57 files (rows with a
+    ``scan``: the scan's 1-based number or its name): ``{file: {scan: (pose, line)}}``.
+
+    A scan row must give the whole pose (its file's own pose is what a blank would mean).
+    """
+    rows = stations.to_dict("records") if hasattr(stations, "to_dict") else list(stations)
+    out: dict[str, dict[str, tuple[StationPose, int]]] = {}
+    for i, row in enumerate(rows):
+        if is_blank(row.get("scan")):
+            continue
+        line = int(row.get("line", i + 2)) if not is_blank(row.get("line")) else i + 2
+        name = str(row.get("file", "")).strip()
+        scan = str(row["scan"]).strip()
+        blanks = [c for c in POSE_COLUMNS if is_blank(row.get(c))]
+        if blanks:
+            raise InputError(path, f"scan {scan!r} of {name}: a scan row replaces the scan's pose and needs all "
+                             "of x, y, z, roll_deg, pitch_deg, yaw_deg", line=line, field=blanks[0])
+        pose = StationPose(str(row.get("station_id", "") or scan), **_pose_values(row, path, line))
+        out.setdefault(name, {})[scan] = (pose, line)
     return out
 
 
@@ -240,6 +276,20 @@ class Placement(ABC):
         """What to report about the file's points not placed; ``None`` when all were."""
         return None
 
+    def open(self, chunk_size: int = DEFAULT_CHUNK) -> Any:
+        """The file open for streaming (see :func:`~inventory.io.clouds.open_cloud`)."""
+        return open_cloud(self.path, chunk_size=chunk_size)
+
+    def extent(self) -> tuple[float, float, float, float]:
+        """Site (xmin, ymin, xmax, ymax) the file's points can reach."""
+        with self.open() as cloud:
+            return self.box(cloud.mins, cloud.maxs)
+
+    def zrange(self) -> tuple[float, float]:
+        """Lowest and highest height the placed points can have (for a registration's box)."""
+        with self.open() as cloud:
+            return float(cloud.mins[2]), float(cloud.maxs[2])
+
 
 class CrsPlacement(Placement):
     """A cloud in a CRS of its own (its header's or ``[survey] default_crs``), reprojected
@@ -279,6 +329,13 @@ class StationPlacement(Placement):
     def place(self, chunk: np.ndarray) -> np.ndarray:
         chunk["X"], chunk["Y"], chunk["Z"], chunk["StationRange"] = self.pose.apply(chunk["X"], chunk["Y"], chunk["Z"])
         return chunk
+
+    def zrange(self) -> tuple[float, float]:
+        with self.open() as cloud:
+            lo, hi = cloud.mins, cloud.maxs
+        corners = np.array([[a, b, c] for a in (lo[0], hi[0]) for b in (lo[1], hi[1]) for c in (lo[2], hi[2])]).T
+        z = (self.pose.matrix @ corners)[2] + self.pose.z
+        return float(z.min()), float(z.max())
 
 
 class TrajectoryPlacement(Placement):
@@ -329,6 +386,187 @@ class TrajectoryPlacement(Placement):
         return InputWarning(f"{self.path}: of {self.points:,} points, " + "; ".join(parts))
 
 
+class FramePlacement(Placement):
+    """A cloud already in the survey's own frame (a survey registered by control points):
+    its coordinates are taken as they are, for :class:`ControlPlacement` to move."""
+
+    def box(self, mins: np.ndarray, maxs: np.ndarray) -> tuple[float, float, float, float]:
+        return float(mins[0]), float(mins[1]), float(maxs[0]), float(maxs[1])
+
+    def place(self, chunk: np.ndarray) -> np.ndarray:
+        return chunk
+
+
+class E57Placement(Placement):
+    """An E57 file: each scan placed by its pose (the file's, or the one ``stations.csv``
+    gives it), then from the file's frame to the site: reprojected from ``crs`` (the file's
+    ``coordinateMetadata`` or ``[survey] default_crs``), or taken as the survey frame
+    (``crs=None``, for :class:`ControlPlacement`). Scans whose pose came from stations.csv
+    are in the site CRS (or the survey frame) already."""
+
+    def __init__(self, path: Path, scan_poses: "dict[str, tuple[StationPose, int]]", crs: CRS | None,
+                 site_crs: CRS | None = None, cache: TransformerCache | None = None,
+                 stations_csv: "Path | None" = None) -> None:
+        super().__init__(path)
+        self.scan_poses = scan_poses
+        self.crs = crs
+        self._site_crs = site_crs
+        self._cache = cache
+        self._stations_csv = stations_csv
+        self._given: dict[int, tuple[np.ndarray, np.ndarray]] | None = None
+
+    def given_poses(self) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+        """``{scan index: (R, t)}`` from stations.csv, scans named by number or name."""
+        if self._given is None:
+            from inventory.io.e57 import E57Reader
+
+            with E57Reader(self.path) as reader:
+                count = len(reader.scans)
+                names = sorted(s.name for s in reader.scans if s.name)
+                found = {key: reader.scan_index(key) for key in self.scan_poses}
+            given = {}
+            where = self._stations_csv or "stations.csv"
+            for key, (pose, line) in self.scan_poses.items():
+                idx = found[key]
+                if idx is None and key == "":
+                    raise InputError(where, f"{self.path.name} holds {count} scans: give each pose a scan "
+                                     "(number or name)", line=line, field="scan")
+                if idx is None:
+                    raise InputError(where, f"{self.path.name} has no scan {key!r} (it holds {count}: numbers "
+                                     f"1-{count} or names {', '.join(names) or 'none'})", line=line, field="scan")
+                given[idx] = (pose.matrix, pose.origin)
+            self._given = given
+        return self._given
+
+    def open(self, chunk_size: int = DEFAULT_CHUNK) -> Any:
+        return open_cloud(self.path, chunk_size=chunk_size, poses=self.given_poses())
+
+    @property
+    def reprojector(self) -> Reprojector | None:
+        if self.crs is None or self._cache is None:
+            return None
+        return self._cache.get(self.crs, self._site_crs)
+
+    def _scan_boxes(self) -> list[tuple[int, np.ndarray, np.ndarray]]:
+        """Each scan's placed box corners: ``(index, lo, hi)`` in the file's frame (or the
+        site's, for scans posed by stations.csv)."""
+        out = []
+        with self.open() as reader:
+            for s, (lo, hi) in zip(reader.scans, reader.local_bounds()):
+                if not np.all(np.isfinite(lo)):
+                    continue
+                rot, t = reader.pose(s.index)
+                corners = np.array([[a, b, c] for a in (lo[0], hi[0]) for b in (lo[1], hi[1]) for c in (lo[2], hi[2])])
+                placed = corners @ rot.T + t
+                out.append((s.index, placed.min(axis=0), placed.max(axis=0)))
+        return out
+
+    def extent(self) -> tuple[float, float, float, float]:
+        boxes = []
+        given = self.given_poses()
+        reproject = self.reprojector
+        for idx, lo, hi in self._scan_boxes():
+            if reproject is None or idx in given or reproject.is_identity:
+                boxes.append((lo[0], lo[1], hi[0], hi[1]))
+            else:
+                boxes.append(reproject.bounds(lo[0], lo[1], hi[0], hi[1]))
+        if not boxes:
+            return 0.0, 0.0, 0.0, 0.0
+        b = np.asarray(boxes, float)
+        return float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max())
+
+    def box(self, mins: np.ndarray, maxs: np.ndarray) -> tuple[float, float, float, float]:
+        return self.extent()
+
+    def zrange(self) -> tuple[float, float]:
+        boxes = self._scan_boxes()
+        if not boxes:
+            return 0.0, 0.0
+        return float(min(b[1][2] for b in boxes)), float(max(b[2][2] for b in boxes))
+
+    def place(self, chunk: np.ndarray) -> np.ndarray:
+        reproject = self.reprojector
+        if reproject is None or reproject.is_identity or not len(chunk):
+            return chunk
+        if int(chunk["PointSourceId"][0]) - 1 in self.given_poses():
+            return chunk  # a reader's chunk holds one scan's points; this scan is posed in the site
+        chunk["X"], chunk["Y"], chunk["Z"] = reproject(chunk["X"], chunk["Y"], chunk["Z"])
+        return chunk
+
+
+class ControlPlacement(Placement):
+    """A cloud of a survey registered by control points: placed in the survey's own frame
+    by ``inner``, then moved to the site by the survey's fitted similarity transform."""
+
+    def __init__(self, inner: Placement, registration: Registration) -> None:
+        super().__init__(inner.path)
+        self.inner = inner
+        self.registration = registration
+
+    def open(self, chunk_size: int = DEFAULT_CHUNK) -> Any:
+        return self.inner.open(chunk_size)
+
+    def _moved_box(self, box: tuple[float, float, float, float], z: tuple[float, float]
+                   ) -> tuple[float, float, float, float]:
+        corners = np.array([[a, b, c] for a in (box[0], box[2]) for b in (box[1], box[3]) for c in z])
+        q = self.registration.transform.apply_xyz(corners)
+        return float(q[:, 0].min()), float(q[:, 1].min()), float(q[:, 0].max()), float(q[:, 1].max())
+
+    def extent(self) -> tuple[float, float, float, float]:
+        return self._moved_box(self.inner.extent(), self.inner.zrange())
+
+    def box(self, mins: np.ndarray, maxs: np.ndarray) -> tuple[float, float, float, float]:
+        return self._moved_box(self.inner.box(mins, maxs), self.inner.zrange())
+
+    def zrange(self) -> tuple[float, float]:
+        box = self.inner.extent()
+        z = self.inner.zrange()
+        corners = np.array([[a, b, c] for a in (box[0], box[2]) for b in (box[1], box[3]) for c in z])
+        q = self.registration.transform.apply_xyz(corners)
+        return float(q[:, 2].min()), float(q[:, 2].max())
+
+    def place(self, chunk: np.ndarray) -> np.ndarray:
+        chunk = self.inner.place(chunk)
+        chunk["X"], chunk["Y"], chunk["Z"] = self.registration.transform.apply(chunk["X"], chunk["Y"], chunk["Z"])
+        return chunk
+
+    def warning(self) -> InputWarning | None:
+        return self.inner.warning()
+
+    @property
+    def outside_span(self) -> int:  # type: ignore[override]
+        return self.inner.outside_span
+
+    @property
+    def in_gap(self) -> int:  # type: ignore[override]
+        return self.inner.in_gap
+
+
+def survey_registration(site: Site, ref: SurveyRef) -> Registration | None:
+    """The survey's fit to its ``control.csv`` (as the site loader made it, else read now);
+    ``None`` when the survey has no control points. Raises
+    :class:`~inventory.errors.InputError` for control that cannot be used."""
+    existing = getattr(ref, "control", None)
+    if existing is not None:
+        return existing
+    path = Path(ref.folder) / CONTROL_FILE
+    if not path.is_file():
+        return None
+    survey = site.config.survey
+    return read_control(path, model=getattr(survey, "control_model", "7-parameter"),
+                        tolerance_m=float(getattr(survey, "control_rms_max_m", DEFAULT_CONTROL_RMS_MAX_M)))
+
+
+def _no_crs(path: Path) -> CRSError:
+    if path.suffix.lower() in (".ply", ".xyz", ".txt"):
+        return CRSError(path, f"a {path.suffix.lower().lstrip('.').upper()} file carries no CRS: give it in "
+                        f"{path.with_suffix('.prj').name} or {CRS_SIDECAR} beside it (WKT or e.g. EPSG:25832), "
+                        "a pose in stations.csv, control points in control.csv, or [survey] default_crs in site.toml",
+                        field="crs")
+    return CRSError(path, "the file carries no CRS, has no pose in stations.csv, and site.toml "
+                    "has no [survey] default_crs", field="crs")
+
+
 def survey_placements(site: Site, ref: SurveyRef, site_crs: CRS, cache: TransformerCache) -> list[Placement]:
     """The :class:`Placement` of each cloud file of a survey, in the order of ``ref.files``.
 
@@ -336,8 +574,15 @@ def survey_placements(site: Site, ref: SurveyRef, site_crs: CRS, cache: Transfor
     ``trajectory.csv`` named for the file, or the table's one trajectory for every file that
     ``stations.csv`` does not list (as the site check does), makes it a moving scanner's;
     else it is placed from its own CRS or ``[survey] default_crs``, and a file with neither
-    is a :class:`~inventory.errors.CRSError`.
+    is a :class:`~inventory.errors.CRSError`. An E57 file's scans are placed by their poses
+    (:class:`E57Placement`). A survey with ``control.csv`` has every file's placement
+    followed by its fitted transform (:class:`ControlPlacement`); its files need no CRS.
     """
+    registration = survey_registration(site, ref)
+    stations_csv = Path(ref.folder) / "stations.csv"
+    scan_poses: dict[str, dict[str, tuple[StationPose, int]]] = {}
+    if getattr(ref, "stations", None) is not None:
+        scan_poses = scan_poses_from_stations(ref.stations, stations_csv)
     poses: dict[str, StationPose | None] = {}
     if getattr(ref, "stations", None) is not None:
         poses = poses_from_stations(ref.stations, Path(ref.folder) / "stations.csv")
@@ -351,18 +596,42 @@ def survey_placements(site: Site, ref: SurveyRef, site_crs: CRS, cache: Transfor
     out: list[Placement] = []
     for path in ref.files:
         path = Path(path)
-        pose = poses.get(path.name)
-        if pose is not None:
-            out.append(StationPlacement(path, pose))
-            continue
-        moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in listed else None)
-        if moving is not None:
-            out.append(TrajectoryPlacement(path, moving, max_gap_s))
-            continue
-        with open_cloud(path, default_crs=default) as cloud:
-            crs = cloud.crs
-        if crs is None:
-            raise CRSError(path, "the file carries no CRS, has no pose in stations.csv, and site.toml "
-                           "has no [survey] default_crs", field="crs")
-        out.append(CrsPlacement(path, crs, site_crs, cache))
+        inner = _placement(path, poses, scan_poses, trajectories, listed, registration is not None, default,
+                           site_crs, cache, max_gap_s, stations_csv)
+        out.append(ControlPlacement(inner, registration) if registration is not None else inner)
     return out
+
+
+def _placement(path: Path, poses: dict, scan_poses: dict, trajectories: dict, listed: set, registered: bool,
+               default: Any, site_crs: CRS, cache: TransformerCache, max_gap_s: float,
+               stations_csv: Path) -> Placement:
+    """One file's placement to the site CRS, or to the survey frame when ``registered``."""
+    if path.suffix.lower() == ".e57":
+        given = dict(scan_poses.get(path.name, {}))
+        pose = poses.get(path.name)
+        if pose is not None:   # a whole-file pose row: the file's one scan
+            given[""] = (pose, 0)
+        placement = E57Placement(path, given, None, site_crs, cache, stations_csv)
+        if registered:
+            return placement
+        with placement.open() as reader:
+            crs = reader.crs if reader.crs is not None else (parse_crs(default, where=str(path)) if default else None)
+            unposed = [s for s in reader.scans if s.index not in placement.given_poses()]
+        if crs is None and unposed:
+            raise CRSError(path, "the E57 file's frame has no CRS (coordinateMetadata), site.toml has no "
+                           "[survey] default_crs and the survey has no control.csv", field="crs")
+        placement.crs = crs
+        return placement
+    pose = poses.get(path.name)
+    if pose is not None:
+        return StationPlacement(path, pose)
+    moving = trajectories.get(path.name) or (trajectories.get(None) if path.name not in listed else None)
+    if moving is not None:
+        return TrajectoryPlacement(path, moving, max_gap_s)
+    if registered:
+        return FramePlacement(path)
+    with open_cloud(path, default_crs=default) as cloud:
+        crs = cloud.crs
+    if crs is None:
+        raise _no_crs(path)
+    return CrsPlacement(path, crs, site_crs, cache)
