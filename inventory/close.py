@@ -703,16 +703,93 @@ def reopen_period(site_path: str | Path, period: str, reason: str, who: str | No
         return ledger.reopen(period, reason, who)
 
 
+def _finance_settings(root: Path) -> tuple[dict[str, float], str]:
+    """The materials' density sd (materials.csv) and ``[reconcile] adjust_to`` (site.toml),
+    read leniently for ``history``: what cannot be read is left at its default (no density
+    part shared, ``survey``); ``inventory check`` reports it."""
+    import tomllib
+
+    density_sd: dict[str, float] = {}
+    try:
+        mats = pd.read_csv(root / "materials.csv", dtype={"material": str})
+        for name, sd in zip(mats["material"], pd.to_numeric(mats["density_sd_t_m3"], errors="coerce")):
+            if isinstance(name, str) and np.isfinite(sd):
+                density_sd[name] = float(sd)
+    except (OSError, ValueError, KeyError):
+        pass
+    adjust_to = "survey"
+    try:
+        raw = tomllib.loads((root / "site.toml").read_text(encoding="utf-8-sig"))
+        value = raw.get("reconcile", {}).get("adjust_to", "survey")
+        adjust_to = value if value in ("survey", "midpoint") else "survey"
+    except (OSError, ValueError, AttributeError):
+        pass
+    return density_sd, adjust_to
+
+
+def _known(path: Path, what: str, value: str, known: list[str]) -> None:
+    """Refuse a pile or material the ledger never had, naming the near miss (case)."""
+    if value in known:
+        return
+    same = [k for k in known if k.casefold() == value.casefold()]
+    if same:
+        hint = f"did you mean '{same[0]}'? ({what}s are matched exactly, case included)"
+    elif known:
+        shown = ", ".join(known[:12]) + (", ..." if len(known) > 12 else "")
+        hint = f"the ledger has {what}s {shown}"
+    else:
+        hint = "the ledger has no closes yet"
+    raise InputError(path, f"no {what} '{value}' in the ledger; {hint}", field=what if what == "material" else "pile_id")
+
+
 def period_history(
     site_path: str | Path, *, pile: str | None = None, material: str | None = None,
-    start: str | None = None, end: str | None = None,
+    start: str | None = None, end: str | None = None, by: str | None = None,
 ) -> pd.DataFrame:
-    """Variance by pile and month from the ledger (adopted closes)."""
+    """Variance by pile and month from the ledger (adopted closes), or aggregated.
+
+    Parameters
+    ----------
+    site_path : str or Path
+        The site folder (its ``ledger.sqlite``, ``materials.csv`` and ``site.toml``).
+    pile, material : str, optional
+        Only this pile / material (matched exactly; an unknown one is an error naming the
+        near miss).
+    start, end : str, optional
+        First and last period, ``YYYY-MM``, both included.
+    by : {"pile", "material", "month"}, optional
+        Aggregate (:func:`inventory.ledger.history.aggregate_history`): one row per pile,
+        material or month and a total row, each with a sigma that keeps shared errors.
+
+    Raises
+    ------
+    InputError
+        The site folder does not exist, or the pile or material is unknown to the ledger.
+    """
+    from inventory.ledger.history import aggregate_history, by_columns
     from inventory.ledger.store import HISTORY_COLUMNS, Ledger
 
     root = Path(site_path)
+    if not root.is_dir():
+        raise InputError(root, "the site folder does not exist")
+    if start is not None and end is not None and str(start) > str(end):
+        raise InputError("--from", f"{start} is after --to {end}", field="period")
     path = root / "ledger.sqlite"
     if not path.is_file():
-        return pd.DataFrame(columns=HISTORY_COLUMNS)
+        if pile is not None or material is not None:
+            raise InputError(path, "no ledger: the site has no closes yet", field="pile_id" if pile else "material")
+        return pd.DataFrame(columns=HISTORY_COLUMNS if by is None else by_columns(by))
     with Ledger(path) as ledger:
-        return ledger.history(pile=pile, material=material, start=start, end=end)
+        if pile is not None:
+            _known(path, "pile", pile, ledger.pile_ids())
+        if material is not None:
+            _known(path, "material", material, ledger.materials())
+        rows = ledger.history(pile=pile, material=material, start=start, end=end, all_columns=by is not None)
+        if by is None:
+            return rows
+        before = None
+        if len(rows):
+            prev = str(Period.parse(min(rows["period"])).previous())
+            before = ledger.history(pile=pile, material=material, start=prev, end=prev, all_columns=True)
+    density_sd, adjust_to = _finance_settings(root)
+    return aggregate_history(rows, by, before, density_sd=density_sd, adjust_to=adjust_to)

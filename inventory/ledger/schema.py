@@ -25,12 +25,13 @@ TEXT_COLUMNS = {"pile_id", "material", "base_method", "flags"}
 BOOL_COLUMNS = {"significant", "out_of_tolerance"}
 BALANCE_COLUMNS = list(PILE_COLUMNS)
 
-#: Columns of :meth:`Ledger.history`.
+#: Columns of :meth:`Ledger.history` (``reason_code`` and ``reason`` from the close's journal
+#: line of the pile, blank when the pile was not adjusted).
 HISTORY_COLUMNS = [
     "period", "pile_id", "material", "opening_t", "receipts_t", "dispatches_t",
     "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t", "survey_t",
     "survey_sigma_t", "variance_t", "variance_pct", "variance_sigma_t", "significant",
-    "tolerance_pct", "out_of_tolerance", "adjustment_t", "closing_t", "status",
+    "tolerance_pct", "out_of_tolerance", "adjustment_t", "reason_code", "reason", "closing_t", "status",
     "close_id", "closed_utc", "closed_by", "survey_date", "software_version",
 ]
 
