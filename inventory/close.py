@@ -487,6 +487,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
         tables={
             "Materials": rec.materials,
+            "Site totals": rec.site_totals,
             "Measured change": rec.change,
             "Belt split": book.belt_split,
         },

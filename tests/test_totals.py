@@ -177,3 +177,44 @@ def test_month_totals_match_a_monte_carlo_of_the_same_model(mc):
         row = tot[tot["period"] == period].iloc[0]
         assert row["variance_t"] == pytest.approx(value[0], abs=1e-6)
         assert row["variance_sigma_t"] == pytest.approx(float(np.std(value)), rel=0.02)
+
+
+def _close_frame():
+    """Three surveyed piles of a first close (openings from opening.csv, sigma 5 t each)."""
+    return pd.DataFrame({
+        "pile_id": ["A", "B", "C"], "material": ["coal", "coal", "ore"],
+        "base_method": ["floor", "floor", "level:100.0"],
+        "survey_t": [1000.0, 800.0, 600.0], "book_t": [990.0, 810.0, 590.0], "adjustment_t": [10.0, -10.0, 10.0],
+        "survey_sigma_t": [50.0, 40.0, 30.0], "_d_survey": [30.0, 20.0, 12.0], "_g_survey": [20.0, 10.0, 0.0],
+        "opening_sigma_t": [5.0, 5.0, 5.0], "opening_density_sigma_t": [0.0] * 3, "opening_base_sigma_t": [0.0] * 3,
+    })
+
+
+def test_site_totals_share_density_floor_and_scale_errors():
+    from inventory.stock.totals import close_site_totals
+
+    scale_load = pd.DataFrame({"pile_id": ["A", "B", "C"], "scale_id": ["BC1", "BC1", "WB1"],
+                               "sigma_t": [3.0, 2.0, 1.0]})
+    tot = close_site_totals(_close_frame(), scale_load).iloc[0]
+    # worked by hand: independent survey parts 1200 + 1100 + 756; coal density (30 + 20)^2;
+    # ore density 12^2; one floor raster under A and B (20 + 10)^2; the level base of C is 0
+    assert tot["survey_sigma_t"] == pytest.approx(np.sqrt(3056 + 2500 + 144 + 900))
+    # openings 3 x 5^2; belt BC1 (3 + 2)^2 linear over its piles; WB1 1^2
+    assert tot["book_sigma_t"] == pytest.approx(np.sqrt(75 + 25 + 1))
+    assert tot["variance_sigma_t"] == pytest.approx(np.sqrt(3056 + 2500 + 144 + 900 + 75 + 25 + 1))
+    assert tot["variance_t"] == pytest.approx(10.0) and tot["piles"] == 3
+
+
+def test_report_headline_shows_the_site_total_sigmas(close_result):
+    import dataclasses
+
+    from inventory.export.report import report_html
+    from inventory.stock.totals import close_site_totals
+
+    frame = _close_frame()
+    res = dataclasses.replace(close_result, tables={**close_result.tables,
+                                                    "Site totals": close_site_totals(frame, None)})
+    page = report_html(res)
+    want = np.sqrt(3056 + 2500 + 144 + 900 + 75)
+    assert "Variance, 1 sigma (t; shared density and floor errors counted once)" in page
+    assert f"{want:,.2f}" in page

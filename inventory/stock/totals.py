@@ -39,7 +39,7 @@ import pandas as pd
 
 __all__ = [
     "SPAN_COLUMNS", "MONTH_TOTAL_COLUMNS", "budget_sigma", "pile_error_parts", "month_totals",
-    "span_variance", "opening_parts",
+    "span_variance", "opening_parts", "SITE_TOTAL_COLUMNS", "close_sigmas", "close_site_totals",
 ]
 
 #: Columns of :func:`span_variance`.
@@ -308,3 +308,68 @@ def span_variance(rows: pd.DataFrame, before: pd.DataFrame | None = None,
         "monthly_variance_t": monthly,
         "adjustment_t": float(_col(rows, "adjustment_t").fillna(0.0).sum()) if len(rows) else 0.0,
     }
+
+
+#: Columns of :func:`close_site_totals` (one row: the site's total of one close).
+SITE_TOTAL_COLUMNS = [
+    "piles", "survey_t", "survey_sigma_t", "book_t", "book_sigma_t", "variance_t", "variance_pct",
+    "variance_sigma_t", "adjustment_t",
+]
+
+
+def _base_key(base_method: Any, pile_id: Any) -> tuple:
+    """The error a pile's fixed-base part belongs to: the site's floor raster, or the pile's
+    own level (the same in this survey and in an opening that was an earlier survey)."""
+    kind = str(base_method).split(":")[0]
+    return ("floor",) if kind == "floor" else ("base", str(pile_id))
+
+
+def close_sigmas(sv: pd.DataFrame, scale_load: pd.DataFrame | None) -> tuple[float, float, float]:
+    """Sigma of the survey total, the book total and the variance total of one close's
+    surveyed piles ``sv``, shared errors counted once.
+
+    ``sv`` has reconcile's per-pile parts: ``survey_sigma_t`` with its density part
+    ``_d_survey`` and fixed-base part ``_g_survey``; ``opening_sigma_t`` with
+    ``opening_density_sigma_t`` and ``opening_base_sigma_t``; ``material``, ``base_method``,
+    ``pile_id``. ``scale_load`` (:data:`inventory.stock.book.SCALE_LOAD_COLUMNS`) gives each
+    instrument's sigma per pile: one instrument's error adds linearly over its piles.
+    The density part adds linearly over a material's piles, the floor part over every pile
+    on the floor raster, and each shared part of the survey cancels against the same part
+    of an opening that was an earlier survey.
+    """
+    survey: list[tuple[Hashable | None, float]] = []
+    book: list[tuple[Hashable | None, float]] = []
+    variance: list[tuple[Hashable | None, float]] = []
+    base = sv["base_method"] if "base_method" in sv else pd.Series(None, index=sv.index)
+    for i in sv.index:
+        s = float(np.nan_to_num(sv.at[i, "survey_sigma_t"]))
+        d_s, g_s = float(sv.at[i, "_d_survey"]), float(sv.at[i, "_g_survey"])
+        o = float(np.nan_to_num(sv.at[i, "opening_sigma_t"]))
+        d_o, g_o = float(sv.at[i, "opening_density_sigma_t"]), float(sv.at[i, "opening_base_sigma_t"])
+        ind_s = float(np.sqrt(max(s * s - d_s * d_s - g_s * g_s, 0.0)))
+        ind_o = float(np.sqrt(max(o * o - d_o * d_o - g_o * g_o, 0.0)))
+        dk, gk = ("density", sv.at[i, "material"]), _base_key(base[i], sv.at[i, "pile_id"])
+        survey += [(None, ind_s), (dk, d_s), (gk, g_s)]
+        book += [(None, ind_o), (dk, d_o), (gk, g_o)]
+        variance += [(None, ind_s), (None, ind_o), (dk, d_s), (dk, -d_o), (gk, g_s), (gk, -g_o)]
+    if scale_load is not None and len(scale_load):
+        sl = scale_load[scale_load["pile_id"].isin(sv["pile_id"])]
+        for sid, sig in zip(sl["scale_id"], sl["sigma_t"]):
+            book.append((("scale", sid), float(sig)))
+            variance.append((("scale", sid), float(sig)))
+    return budget_sigma(survey), budget_sigma(book), budget_sigma(variance)
+
+
+def close_site_totals(p: pd.DataFrame, scale_load: pd.DataFrame | None) -> pd.DataFrame:
+    """The site's totals of one close (surveyed piles), with their sigmas
+    (:func:`close_sigmas`): :data:`SITE_TOTAL_COLUMNS`, one row."""
+    sv = p[pd.to_numeric(p["survey_t"], errors="coerce").notna()]
+    s_survey, s_book, s_var = close_sigmas(sv, scale_load)
+    survey_t, book_t = float(sv["survey_t"].sum()), float(sv["book_t"].sum())
+    v = survey_t - book_t
+    return pd.DataFrame([{
+        "piles": int(len(sv)), "survey_t": survey_t, "survey_sigma_t": s_survey, "book_t": book_t,
+        "book_sigma_t": s_book, "variance_t": v, "variance_pct": 100 * v / book_t if book_t > 0 else np.nan,
+        "variance_sigma_t": s_var, "adjustment_t": float(pd.to_numeric(sv["adjustment_t"], errors="coerce").sum())
+        if "adjustment_t" in sv else np.nan,
+    }], columns=SITE_TOTAL_COLUMNS)
