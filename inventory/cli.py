@@ -101,7 +101,7 @@ def _cmd_close(args: argparse.Namespace) -> int:
     from inventory.close import close_period
 
     closed = close_period(args.site, args.period, progress=_progress(args),
-                          workers=args.workers, scheduler=args.scheduler)
+                          workers=args.workers, scheduler=args.scheduler, ledger_url=args.ledger)
     _out(closed.summary())
     return EXIT_OK
 
@@ -110,7 +110,7 @@ def _cmd_close(args: argparse.Namespace) -> int:
 def _cmd_reopen(args: argparse.Namespace) -> int:
     from inventory.close import reopen_period
 
-    reopen_id = reopen_period(args.site, args.period, args.reason)
+    reopen_id = reopen_period(args.site, args.period, args.reason, ledger_url=args.ledger)
     _out(f"reopened {args.period} (reopening {reopen_id}); the reason is kept in the ledger")
     return EXIT_OK
 
@@ -124,13 +124,13 @@ def _cmd_history(args: argparse.Namespace) -> int:
         _err("error: --format xlsx needs --output FILE.xlsx (a workbook is written to a file, "
              "not to the terminal)")
         return EXIT_BAD_INPUT
-    frame = period_history(args.site, pile=args.pile, material=args.material, start=args.start,
-                           end=args.end, by=args.by)
+    select = dict(pile=args.pile, material=args.material, start=args.start, end=args.end,
+                  ledger_url=args.ledger, site_id=args.site_id)
+    frame = period_history(args.site, by=args.by, **select)
     rows = frame
     if args.by is not None and args.format in ("xlsx", "html"):
         # the chart and the History sheet draw the pile rows behind the totals
-        rows = period_history(args.site, pile=args.pile, material=args.material, start=args.start,
-                              end=args.end)
+        rows = period_history(args.site, **select)
     if args.format == "xlsx":
         from inventory.export.workbook import write_history_workbook
 
@@ -145,7 +145,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
     elif args.format == "json":
         text = hx.history_json(frame)
     elif args.format == "html":
-        text = hx.history_html(frame, rows, title=f"Variance history: {args.site.name}")
+        text = hx.history_html(frame, rows, title="Variance history" + (f": {args.site.name}" if args.site else ""))
     else:
         text = hx.history_table(frame) + "\n"
     if args.output is not None:
@@ -207,20 +207,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, default=None, metavar="DIR",
                    help="output folder (default SITE/surveys-processed/DATE; with several surveys DIR/DATE)")
 
-    p = sub.add_parser("close", parents=[common, parallel], help="close one month: volumes, book, variance, outputs, ledger",
+    shared = argparse.ArgumentParser(add_help=False)
+    shared.add_argument("--ledger", default=None, metavar="URL",
+                        help="a ledger shared by several sites on PostgreSQL (postgresql://user@host/db) "
+                             "instead of [ledger] url in site.toml or SITE/ledger.sqlite")
+
+    p = sub.add_parser("close", parents=[common, parallel, shared], help="close one month: volumes, book, variance, outputs, ledger",
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM", help="the month to close")
 
-    p = sub.add_parser("reopen", parents=[common], help="unlock a closed month (reason kept for good)",
+    p = sub.add_parser("reopen", parents=[common, shared], help="unlock a closed month (reason kept for good)",
                        description="Unlock a closed period so that it can be closed again. The reason is kept in the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM")
     p.add_argument("--reason", required=True, help="why the period is reopened")
 
-    p = sub.add_parser("history", parents=[common], help="variance by pile and month from the ledger",
-                       description="Variance by pile and month from the ledger, for finance.")
-    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p = sub.add_parser("history", parents=[common, shared], help="variance by pile and month from the ledger",
+                       description="Variance by pile and month from the ledger, for finance. On a shared "
+                                   "ledger: every site, unless --site-id names one.")
+    p.add_argument("site", type=Path, metavar="SITE", nargs="?", default=None,
+                   help="site folder (may be left out with --ledger)")
+    p.add_argument("--site-id", default=None, help="on a shared ledger: only this site")
     p.add_argument("--pile", default=None, help="only this pile id")
     p.add_argument("--material", default=None, help="only this material")
     p.add_argument("--from", dest="start", default=None, type=_period, metavar="YYYY-MM", help="first period")

@@ -42,12 +42,13 @@ _SPAN_OUT = ["first_period", "last_period", "months", "piles", "start_t", "end_t
 _COUNTS = ["significant_count", "out_of_tolerance_count", "reason_codes"]
 
 
-def by_columns(by: str) -> list[str]:
-    """Columns of :func:`aggregate_history` for ``by``."""
+def by_columns(by: str, sites: bool = False) -> list[str]:
+    """Columns of :func:`aggregate_history` for ``by`` (``sites``: rows of a shared ledger,
+    where a pile is named by its site and its id)."""
     if by == "month":
         return MONTH_TOTAL_COLUMNS + _COUNTS
     if by == "pile":
-        return ["pile_id", "material"] + _SPAN_OUT + _COUNTS
+        return (["site_id"] if sites else []) + ["pile_id", "material"] + _SPAN_OUT + _COUNTS
     if by == "material":
         return ["material"] + _SPAN_OUT + _COUNTS
     raise ValueError(f"by must be one of {', '.join(BY_CHOICES)}, not {by!r}")
@@ -99,7 +100,8 @@ def aggregate_history(
         :func:`by_columns` of ``by``; the last row is the total of the selection
         (``TOTAL_LABEL`` in the key column).
     """
-    cols = by_columns(by)
+    sites = rows is not None and "site_id" in rows.columns
+    cols = by_columns(by, sites)
     if rows is None or rows.empty:
         return pd.DataFrame(columns=cols)
     if "status" in rows:
@@ -121,8 +123,9 @@ def aggregate_history(
         out.append(total)
     else:
         key = "pile_id" if by == "pile" else "material"
-        for value, g in rows.groupby(key, sort=True, dropna=False):
-            rec = {key: value}
+        keys = ["site_id", key] if sites and by == "pile" else [key]
+        for value, g in rows.groupby(keys, sort=True, dropna=False):
+            rec = dict(zip(keys, value))
             if by == "pile":
                 rec["material"] = g["material"].iloc[-1]
             rec.update(span_variance(g, before, **kw))
@@ -131,6 +134,8 @@ def aggregate_history(
         rec = {key: TOTAL_LABEL}
         if by == "pile":
             rec["material"] = ""
+            if sites:
+                rec["site_id"] = ""
         rec.update(span_variance(rows, before, **kw))
         rec.update(_counts(rows))
         out.append(rec)

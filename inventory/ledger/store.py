@@ -95,6 +95,9 @@ class Ledger:
         When the file is not a ledger, is from a newer version of the tool, or is unreadable.
     """
 
+    #: Columns naming the site of each history row (none in a one-site SQLite ledger).
+    _site_columns: tuple[str, ...] = ()
+
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         self._con: sqlite3.Connection | None = None
@@ -456,13 +459,13 @@ class Ledger:
             params.append(_check_period(end))
         if start is not None and end is not None and start > end:
             raise LedgerError(f"history: start {start} is after end {end}")
-        columns = list(HISTORY_COLUMNS)
+        columns = [*self._site_columns, *HISTORY_COLUMNS]
         if all_columns:
             columns += [c for c in BALANCE_COLUMNS if c not in columns] + ["site_name"]
         select = []
         for col in columns:
             if col in ("period", "status", "close_id", "closed_utc", "closed_by",
-                       "survey_date", "software_version", "site_name"):
+                       "survey_date", "software_version", "site_name", *self._site_columns):
                 select.append(f"c.{col}")
             elif col in ("reason_code", "reason"):
                 # the pile's journal line of that close (one per adjusted pile)
@@ -690,7 +693,7 @@ def _typed(df: pd.DataFrame) -> pd.DataFrame:
             df[col] = df[col].map(lambda v: None if v is None else bool(v)).astype(object)
         elif col in TEXT_COLUMNS or col in ("period", "status", "closed_utc", "closed_by",
                                              "survey_date", "software_version", "site_name",
-                                             "reason_code", "reason"):
+                                             "site_id", "reason_code", "reason"):
             continue
         elif col == "close_id":
             df[col] = df[col].astype("int64")
