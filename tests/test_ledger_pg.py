@@ -316,3 +316,39 @@ def test_site_toml_and_the_command_line_choose_the_shared_ledger(make_close_resu
         assert not led.is_locked("2026-01")
     with PgLedger(url, "South Yard") as led:
         assert led.is_locked("2026-01")
+
+
+@pytest.mark.slow
+def test_two_sample_sites_close_into_one_shared_ledger(url, sample_site_path, survey_cache, tmp_path, capsys):
+    from inventory.cli import main
+
+    if not (sample_site_path / "site.toml").is_file():
+        pytest.skip("sample_site/ has not been generated yet (inventory sample sample_site)")
+    sites = []
+    for site_id in ("oxbow", "beacon"):
+        site = tmp_path / site_id
+        shutil.copytree(sample_site_path, site, ignore=shutil.ignore_patterns("closes", "ledger.sqlite*"))
+        with open(site / "site.toml", "a", encoding="utf-8") as fh:
+            fh.write(f'\n[ledger]\nurl = "{url}"\nsite_id = "{site_id}"\n')
+        sites.append(site)
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr("inventory.survey.measure.measure_survey", survey_cache)
+        assert main(["close", str(sites[0]), "--period", "2026-09", "--quiet"]) == 0
+        assert main(["close", str(sites[1]), "--period", "2026-09", "--quiet"]) == 0
+        assert main(["close", str(sites[0]), "--period", "2026-10", "--quiet"]) == 0
+        # locked in the shared ledger, not in a file of the site folder
+        assert main(["close", str(sites[0]), "--period", "2026-10", "--quiet"]) == 2
+    capsys.readouterr()
+    assert not (sites[0] / "ledger.sqlite").exists()
+    assert main(["history", "--ledger", url, "--by", "month", "--format", "csv"]) == 0
+    import io
+
+    by = pd.read_csv(io.StringIO(capsys.readouterr().out))
+    assert by["period"].tolist() == ["2026-09", "2026-10", "Total"]
+    assert by["piles"].tolist() == [14, 7, 14]
+    # the two sites' September closes are the same books and the same survey
+    with psycopg.connect(url) as con:
+        rows = con.execute("SELECT site_id, SUM(variance_t) FROM adopted_balances WHERE period = '2026-09' "
+                           "GROUP BY site_id ORDER BY site_id").fetchall()
+    assert [r[0] for r in rows] == ["beacon", "oxbow"] and rows[0][1] == pytest.approx(rows[1][1])
+    assert by.loc[0, "variance_t"] == pytest.approx(2 * rows[0][1])

@@ -116,7 +116,8 @@ def aggregate_history(
             out.append(rec)
         span = span_variance(rows, before, **kw)
         total = {c: np.nan for c in MONTH_TOTAL_COLUMNS}
-        total.update(period=TOTAL_LABEL, piles=int(rows["pile_id"].nunique()),
+        piles = rows[["site_id", "pile_id"]] if sites else rows[["pile_id"]]
+        total.update(period=TOTAL_LABEL, piles=int(len(piles.drop_duplicates())),
                      variance_t=span["variance_t"], variance_sigma_t=span["variance_sigma_t"],
                      adjustment_t=span["adjustment_t"])
         total.update(_counts(rows))
