@@ -149,3 +149,24 @@ def test_history_workbook_has_the_chart_and_the_totals(site, tmp_path, capsys):
     ts = wb["Totals by material"]
     assert [c.value for c in ts[1]][:2] == ["material", "first_period"]
     assert [ts.cell(row=i, column=1).value for i in range(2, 5)] == ["coal", "limestone", "Total"]
+
+
+def test_site_toml_ledger_table_is_checked(good_site, capsys):
+    from inventory.site.load import check_site
+
+    toml = good_site / "site.toml"
+    base = toml.read_text(encoding="utf-8")
+    toml.write_text(base + '\n[ledger]\nurl = "postgresql://ledger@db.example/stock"\nsite_id = "north"\n',
+                    encoding="utf-8")
+    assert check_site(good_site).ok
+    toml.write_text(base + '\n[ledger]\nurl = "mysql://db.example/stock"\n', encoding="utf-8")
+    report = check_site(good_site)
+    assert not report.ok and any("ledger.url" in str(p) for p in report.errors)
+
+
+def test_a_ledger_option_that_is_not_a_postgresql_url_exits_2(site, capsys):
+    root, _ = site
+    assert main(["history", str(root), "--ledger", "mysql://db/stock"]) == 2
+    assert "--ledger: not a PostgreSQL URL" in capsys.readouterr().err
+    assert main(["history"]) == 2
+    assert "name the site folder, or a shared ledger with --ledger URL" in capsys.readouterr().err

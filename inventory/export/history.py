@@ -24,8 +24,9 @@ from inventory.model.texts import SIGN_CONVENTION
 
 __all__ = ["history_table", "history_json", "history_html", "variance_chart_png", "write_text"]
 
-#: Columns shown by the plain-text table of pile rows (the CSV and JSON carry every column).
-TABLE_COLUMNS = ["period", "pile_id", "material", "book_t", "survey_t", "variance_t", "variance_pct",
+#: Columns shown by the plain-text table of pile rows (the CSV and JSON carry every column);
+#: ``site_id`` only on a shared ledger.
+TABLE_COLUMNS = ["site_id", "period", "pile_id", "material", "book_t", "survey_t", "variance_t", "variance_pct",
                  "variance_sigma_t", "significant", "out_of_tolerance", "adjustment_t", "reason_code"]
 
 #: Columns printed with a sign (+ / -) in the table and on the HTML page.
