@@ -35,6 +35,8 @@ _API = {
     "reopen_period": "close",
     "period_history": "close",
     "Ledger": "ledger",
+    "PgLedger": "ledger",
+    "open_ledger": "close",
     "Grid": "model",
     "Surface": "model",
     "CloseResult": "model",

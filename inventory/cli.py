@@ -101,7 +101,7 @@ def _cmd_close(args: argparse.Namespace) -> int:
     from inventory.close import close_period
 
     closed = close_period(args.site, args.period, progress=_progress(args),
-                          workers=args.workers, scheduler=args.scheduler)
+                          workers=args.workers, scheduler=args.scheduler, ledger_url=args.ledger)
     _out(closed.summary())
     return EXIT_OK
 
@@ -110,7 +110,7 @@ def _cmd_close(args: argparse.Namespace) -> int:
 def _cmd_reopen(args: argparse.Namespace) -> int:
     from inventory.close import reopen_period
 
-    reopen_id = reopen_period(args.site, args.period, args.reason)
+    reopen_id = reopen_period(args.site, args.period, args.reason, ledger_url=args.ledger)
     _out(f"reopened {args.period} (reopening {reopen_id}); the reason is kept in the ledger")
     return EXIT_OK
 
@@ -118,35 +118,41 @@ def _cmd_reopen(args: argparse.Namespace) -> int:
 @_command("history")
 def _cmd_history(args: argparse.Namespace) -> int:
     from inventory.close import period_history
+    from inventory.export import history as hx
 
-    frame = period_history(args.site, pile=args.pile, material=args.material, start=args.start, end=args.end)
+    if args.format == "xlsx" and args.output is None:
+        _err("error: --format xlsx needs --output FILE.xlsx (a workbook is written to a file, "
+             "not to the terminal)")
+        return EXIT_BAD_INPUT
+    select = dict(pile=args.pile, material=args.material, start=args.start, end=args.end,
+                  ledger_url=args.ledger, site_id=args.site_id)
+    frame = period_history(args.site, by=args.by, **select)
+    rows = frame
+    if args.by is not None and args.format in ("xlsx", "html"):
+        # the chart and the History sheet draw the pile rows behind the totals
+        rows = period_history(args.site, **select)
+    if args.format == "xlsx":
+        from inventory.export.workbook import write_history_workbook
+
+        write_history_workbook(rows, args.output, totals=frame if args.by else None, by=args.by)
+        _out(f"wrote {len(frame)} rows to {args.output}")
+        return EXIT_OK
     if args.format == "csv":
         from inventory.export.cells import write_csv
 
         # text a spreadsheet would run as a formula (a pile id "=1+1") is neutralised
-        sys.stdout.write(write_csv(frame, index=False))
+        text = write_csv(frame, index=False)
     elif args.format == "json":
-        sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
-    elif args.format == "xlsx":
-        from inventory.export.workbook import write_history_workbook
-
-        if args.output is None:
-            raise InputError("--output", "--format xlsx needs --output FILE.xlsx", field="output")
-        write_history_workbook(frame, args.output)
+        text = hx.history_json(frame)
+    elif args.format == "html":
+        text = hx.history_html(frame, rows, title="Variance history" + (f": {args.site.name}" if args.site else ""))
+    else:
+        text = hx.history_table(frame) + "\n"
+    if args.output is not None:
+        hx.write_text(text, args.output)
         _out(f"wrote {len(frame)} rows to {args.output}")
     else:
-        if frame.empty:
-            _out("no closes in the ledger for that selection")
-            return EXIT_OK
-        cols = ["period", "pile_id", "material", "book_t", "survey_t", "variance_t", "variance_pct",
-                "variance_sigma_t", "significant", "out_of_tolerance", "adjustment_t"]
-        shown = frame[cols].copy()
-        for c in ("book_t", "survey_t", "variance_t", "variance_sigma_t", "adjustment_t"):
-            shown[c] = shown[c].map(lambda v: "" if v != v else f"{v:,.1f}")
-        shown["variance_pct"] = shown["variance_pct"].map(lambda v: "" if v != v else f"{v:+.2f}")
-        for c in ("significant", "out_of_tolerance"):
-            shown[c] = shown[c].map(lambda v: "" if v is None or v != v else ("yes" if v else "no"))
-        _out(shown.to_string(index=False))
+        sys.stdout.write(text)
     return EXIT_OK
 
 
@@ -201,26 +207,38 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, default=None, metavar="DIR",
                    help="output folder (default SITE/surveys-processed/DATE; with several surveys DIR/DATE)")
 
-    p = sub.add_parser("close", parents=[common, parallel], help="close one month: volumes, book, variance, outputs, ledger",
+    shared = argparse.ArgumentParser(add_help=False)
+    shared.add_argument("--ledger", default=None, metavar="URL",
+                        help="a ledger shared by several sites on PostgreSQL (postgresql://user@host/db) "
+                             "instead of [ledger] url in site.toml or SITE/ledger.sqlite")
+
+    p = sub.add_parser("close", parents=[common, parallel, shared], help="close one month: volumes, book, variance, outputs, ledger",
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM", help="the month to close")
 
-    p = sub.add_parser("reopen", parents=[common], help="unlock a closed month (reason kept for good)",
+    p = sub.add_parser("reopen", parents=[common, shared], help="unlock a closed month (reason kept for good)",
                        description="Unlock a closed period so that it can be closed again. The reason is kept in the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM")
     p.add_argument("--reason", required=True, help="why the period is reopened")
 
-    p = sub.add_parser("history", parents=[common], help="variance by pile and month from the ledger",
-                       description="Variance by pile and month from the ledger, for finance.")
-    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p = sub.add_parser("history", parents=[common, shared], help="variance by pile and month from the ledger",
+                       description="Variance by pile and month from the ledger, for finance. On a shared "
+                                   "ledger: every site, unless --site-id names one.")
+    p.add_argument("site", type=Path, metavar="SITE", nargs="?", default=None,
+                   help="site folder (may be left out with --ledger)")
+    p.add_argument("--site-id", default=None, help="on a shared ledger: only this site")
     p.add_argument("--pile", default=None, help="only this pile id")
     p.add_argument("--material", default=None, help="only this material")
     p.add_argument("--from", dest="start", default=None, type=_period, metavar="YYYY-MM", help="first period")
     p.add_argument("--to", dest="end", default=None, type=_period, metavar="YYYY-MM", help="last period")
-    p.add_argument("--format", choices=("table", "csv", "json", "xlsx"), default="table")
-    p.add_argument("--output", type=Path, default=None, metavar="FILE", help="file for --format xlsx")
+    p.add_argument("--by", choices=("pile", "material", "month"), default=None,
+                   help="one row per pile, material or month over the selection, with a total row")
+    p.add_argument("--format", choices=("table", "csv", "json", "html", "xlsx"), default="table",
+                   help="html: a page with a chart of variance per pile by month")
+    p.add_argument("--output", type=Path, default=None, metavar="FILE",
+                   help="write to FILE instead of the terminal (needed for xlsx)")
     return parser
 
 

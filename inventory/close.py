@@ -49,7 +49,7 @@ if TYPE_CHECKING:
     from inventory.stock.book import BookResult
     from inventory.survey.measure import SurveyResult
 
-__all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "STEPS"]
+__all__ = ["ClosedPeriod", "close_period", "reopen_period", "period_history", "open_ledger", "STEPS"]
 
 #: Months of earlier adopted closes whose belt-scale fit rows are pooled with this month's
 #: (a year: long enough to see a small persistent bias, short enough that a scale has
@@ -385,19 +385,62 @@ def _check_output_names(ledger: Ledger, folder: Path) -> None:
         )
 
 
-def _load(site_path: str | Path, period: str, say: Progress) -> _Loaded:
-    """Load and check the site, find the period's survey, check that the close can write
-    what it will write, open the ledger (left open); then clear what killed closes left."""
+def _toml(root: Path) -> dict:
+    """site.toml read leniently (for history and reopen, which need only a few keys); {}
+    when it cannot be read (``inventory check`` reports why)."""
+    import tomllib
+
+    try:
+        raw = tomllib.loads((root / "site.toml").read_text(encoding="utf-8-sig"))
+    except (OSError, ValueError):
+        return {}
+    return raw if isinstance(raw, dict) else {}
+
+
+def open_ledger(root: Path, raw: dict | None = None, url: str | None = None,
+                site_id: str | None = None, *, every_site: bool = False) -> "Ledger":
+    """The site's ledger, not yet opened: the shared PostgreSQL ledger named by ``url``
+    (``--ledger``) or by ``[ledger] url`` in site.toml, else ``SITE/ledger.sqlite``.
+
+    On a shared ledger the site id is ``site_id``, else ``[ledger] site_id``, else the
+    site's ``name``; ``every_site`` opens it for every site (reading only).
+    """
     from inventory.ledger.store import Ledger
 
+    from inventory.ledger.pg import PgLedger, is_url
+
+    raw = _toml(root) if raw is None else raw
+    table = raw.get("ledger") if isinstance(raw.get("ledger"), dict) else {}
+    if url is not None and not is_url(url):
+        raise InputError("--ledger", "not a PostgreSQL URL (postgresql://user@host:port/database)")
+    url = url or table.get("url")
+    if not url:
+        if site_id is not None:
+            raise InputError("--site-id", "a site id needs a shared ledger (--ledger URL or [ledger] url)")
+        return Ledger(root / "ledger.sqlite")
+    if not is_url(url):
+        raise InputError(root / "site.toml", "not a PostgreSQL URL (postgresql://user@host:port/database)",
+                         field="ledger.url")
+    if every_site and site_id is None:
+        return PgLedger(url, None)
+    site_id = site_id or table.get("site_id") or raw.get("name")
+    if not site_id:
+        raise InputError(root / "site.toml", "a shared ledger needs the site's id: set [ledger] site_id or name",
+                         field="ledger.site_id")
+    return PgLedger(url, str(site_id))
+
+
+def _load(site_path: str | Path, period: str, say: Progress, ledger_url: str | None = None) -> _Loaded:
+    """Load and check the site, find the period's survey, check that the close can write
+    what it will write, open the ledger (left open); then clear what killed closes left."""
     say(f"checking {site_path}")
     site = load_site(site_path, period)  # warns only about this period's movements
     ref = site.survey_for(period)
     if ref is None:
         raise InputError(site.root / "surveys", f"no survey dated in {period} (folders are named YYYY-MM-DD)", field="date")
     _check_writable(site.root, period)
-    ledger_path = site.root / "ledger.sqlite"
-    ledger = Ledger(ledger_path).open()
+    ledger = open_ledger(site.root, site.config.raw, ledger_url).open()
+    ledger_path = ledger.path
     try:
         if ledger.is_locked(period):
             raise PeriodLockedError(
@@ -503,6 +546,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
         tables={
             "Materials": rec.materials,
+            "Site totals": rec.site_totals,
             "Measured change": rec.change,
             "Belt split": book.belt_split,
         },
@@ -646,6 +690,7 @@ def close_period(
     progress: Progress | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
+    ledger_url: str | None = None,
 ) -> ClosedPeriod:
     """Close one period of a site: measure, reconcile, write every output, record the ledger.
 
@@ -660,6 +705,9 @@ def close_period(
     workers, scheduler : optional
         Run the survey step on a local Dask cluster of ``workers`` processes, or on the
         cluster at ``scheduler``.
+    ledger_url : str, optional
+        A shared PostgreSQL ledger (``postgresql://...``) instead of the one site.toml names
+        (``[ledger] url``) or ``SITE/ledger.sqlite``.
 
     Raises
     ------
@@ -681,7 +729,7 @@ def close_period(
         timings[name] = round(time.perf_counter() - t0, 3)
         t0 = time.perf_counter()
 
-    run = _load(site_path, period, say)
+    run = _load(site_path, period, say, ledger_url)
     try:
         done("load")
         with _staging(run.folder) as staged:
@@ -702,10 +750,10 @@ def close_period(
     return ClosedPeriod(result, run.folder, files, close_id, timings)
 
 
-def reopen_period(site_path: str | Path, period: str, reason: str, who: str | None = None) -> int:
-    """Unlock a closed period so it can be closed again; the reason is kept for good."""
-    from inventory.ledger.store import Ledger
-
+def reopen_period(site_path: str | Path, period: str, reason: str, who: str | None = None,
+                  ledger_url: str | None = None) -> int:
+    """Unlock a closed period so it can be closed again; the reason is kept for good (in the
+    site's ledger, or the shared one ``ledger_url`` or site.toml names)."""
     try:
         period = str(Period.parse(period))
     except ValueError as err:
@@ -714,10 +762,13 @@ def reopen_period(site_path: str | Path, period: str, reason: str, who: str | No
         raise InputError("--reason", "a reason is required (it is kept in the ledger for good); say why "
                          "the period is reopened")
     root = Path(site_path)
-    path = root / "ledger.sqlite"
-    if not path.is_file():
+    if not root.is_dir():
+        raise InputError(root, "the site folder does not exist")
+    chosen = open_ledger(root, None, ledger_url)
+    path = chosen.path
+    if isinstance(path, Path) and not path.is_file():
         raise InputError(path, f"no ledger: period {period} was never closed", field="period")
-    with Ledger(path) as ledger:
+    with chosen as ledger:
         if not ledger.is_locked(period):
             raise InputError(path, f"period {period} is not closed; nothing to reopen", field="period")
         later = [p for p in ledger.closed_periods() if p > period]
@@ -727,16 +778,110 @@ def reopen_period(site_path: str | Path, period: str, reason: str, who: str | No
         return ledger.reopen(period, reason, who)
 
 
+def _finance_settings(root: Path) -> tuple[dict[str, float], str]:
+    """The materials' density sd (materials.csv) and ``[reconcile] adjust_to`` (site.toml),
+    read leniently for ``history``: what cannot be read is left at its default (no density
+    part shared, ``survey``); ``inventory check`` reports it."""
+    import tomllib
+
+    density_sd: dict[str, float] = {}
+    try:
+        mats = pd.read_csv(root / "materials.csv", dtype={"material": str})
+        for name, sd in zip(mats["material"], pd.to_numeric(mats["density_sd_t_m3"], errors="coerce")):
+            if isinstance(name, str) and np.isfinite(sd):
+                density_sd[name] = float(sd)
+    except (OSError, ValueError, KeyError):
+        pass
+    adjust_to = "survey"
+    try:
+        raw = tomllib.loads((root / "site.toml").read_text(encoding="utf-8-sig"))
+        value = raw.get("reconcile", {}).get("adjust_to", "survey")
+        adjust_to = value if value in ("survey", "midpoint") else "survey"
+    except (OSError, ValueError, AttributeError):
+        pass
+    return density_sd, adjust_to
+
+
+def _known(path: Path, what: str, value: str, known: list[str]) -> None:
+    """Refuse a pile or material the ledger never had, naming the near miss (case)."""
+    if value in known:
+        return
+    same = [k for k in known if k.casefold() == value.casefold()]
+    if same:
+        hint = f"did you mean '{same[0]}'? ({what}s are matched exactly, case included)"
+    elif known:
+        shown = ", ".join(known[:12]) + (", ..." if len(known) > 12 else "")
+        hint = f"the ledger has {what}s {shown}"
+    else:
+        hint = "the ledger has no closes yet"
+    raise InputError(path, f"no {what} '{value}' in the ledger; {hint}", field={"pile": "pile_id"}.get(what, what))
+
+
 def period_history(
     site_path: str | Path, *, pile: str | None = None, material: str | None = None,
-    start: str | None = None, end: str | None = None,
+    start: str | None = None, end: str | None = None, by: str | None = None,
+    ledger_url: str | None = None, site_id: str | None = None,
 ) -> pd.DataFrame:
-    """Variance by pile and month from the ledger (adopted closes)."""
-    from inventory.ledger.store import HISTORY_COLUMNS, Ledger
+    """Variance by pile and month from the ledger (adopted closes), or aggregated.
 
-    root = Path(site_path)
-    path = root / "ledger.sqlite"
-    if not path.is_file():
-        return pd.DataFrame(columns=HISTORY_COLUMNS)
-    with Ledger(path) as ledger:
-        return ledger.history(pile=pile, material=material, start=start, end=end)
+    On a shared PostgreSQL ledger (``ledger_url``, or ``[ledger] url`` in site.toml) the
+    answer covers every site, each row naming its ``site_id``, unless ``site_id`` names one.
+
+    Parameters
+    ----------
+    site_path : str or Path or None
+        The site folder (its ``ledger.sqlite``, ``materials.csv`` and ``site.toml``); may be
+        None with ``ledger_url``.
+    pile, material : str, optional
+        Only this pile / material (matched exactly; an unknown one is an error naming the
+        near miss).
+    start, end : str, optional
+        First and last period, ``YYYY-MM``, both included.
+    by : {"pile", "material", "month"}, optional
+        Aggregate (:func:`inventory.ledger.history.aggregate_history`): one row per pile,
+        material or month and a total row, each with a sigma that keeps shared errors.
+
+    Raises
+    ------
+    InputError
+        The site folder does not exist, or the pile or material is unknown to the ledger.
+    """
+    from inventory.ledger.history import aggregate_history, by_columns
+    from inventory.ledger.store import HISTORY_COLUMNS
+
+    if site_path is None and ledger_url is None:
+        raise InputError("history", "name the site folder, or a shared ledger with --ledger URL")
+    root = Path(site_path) if site_path is not None else None
+    if root is not None and not root.is_dir():
+        raise InputError(root, "the site folder does not exist")
+    if start is not None and end is not None and str(start) > str(end):
+        raise InputError("--from", f"{start} is after --to {end}", field="period")
+    if root is None:
+        from inventory.ledger.pg import PgLedger, is_url
+
+        if not is_url(ledger_url):
+            raise InputError("--ledger", "not a PostgreSQL URL (postgresql://user@host:port/database)")
+        chosen = PgLedger(str(ledger_url), site_id)
+    else:
+        chosen = open_ledger(root, None, ledger_url, site_id, every_site=True)
+    path = chosen.path
+    if isinstance(path, Path) and not path.is_file():
+        if pile is not None or material is not None:
+            raise InputError(path, "no ledger: the site has no closes yet", field="pile_id" if pile else "material")
+        return pd.DataFrame(columns=HISTORY_COLUMNS if by is None else by_columns(by))
+    with chosen as ledger:
+        if site_id is not None and hasattr(ledger, "site_ids") and site_id not in ledger.site_ids():
+            _known(path, "site", site_id, ledger.site_ids())
+        if pile is not None:
+            _known(path, "pile", pile, ledger.pile_ids())
+        if material is not None:
+            _known(path, "material", material, ledger.materials())
+        rows = ledger.history(pile=pile, material=material, start=start, end=end, all_columns=by is not None)
+        if by is None:
+            return rows
+        before = None
+        if len(rows):
+            prev = str(Period.parse(min(rows["period"])).previous())
+            before = ledger.history(pile=pile, material=material, start=prev, end=prev, all_columns=True)
+    density_sd, adjust_to = _finance_settings(root) if root is not None else ({}, "survey")
+    return aggregate_history(rows, by, before, density_sd=density_sd, adjust_to=adjust_to)

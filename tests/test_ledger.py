@@ -345,6 +345,8 @@ def _as_version_1(path) -> None:
     fit rows), as a file written by the first release would be."""
     con = sqlite3.connect(path)
     con.executescript(
+        "DROP VIEW adopted_balances; DROP VIEW adopted_journal; DROP VIEW variance_by_material_month;"
+        "DROP VIEW close_history;"
         "DROP TRIGGER scale_fit_rows_keep; DROP TRIGGER scale_fit_rows_frozen; DROP TABLE scale_fit_rows;"
         "ALTER TABLE balances DROP COLUMN base_sigma_t; UPDATE schema_version SET version = 1;"
     )
@@ -359,7 +361,7 @@ def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(make_close_re
     _as_version_1(ledger_path)
     before = [r for r in _dump(ledger_path) if r.startswith("INSERT INTO \"balances\"")]
     with Ledger(ledger_path) as led:
-        assert led.schema_version() == SCHEMA_VERSION == 2
+        assert led.schema_version() == SCHEMA_VERSION == 3
         back = led.adopted("2026-01")
         # the old close reads back with every figure; the new column is unknown for it
         _same_frame(res.piles, back, [c for c in PILE_COLUMNS if c != "base_sigma_t"])

@@ -353,6 +353,20 @@ def _registration(result: CloseResult) -> str:
             + _table(["point", "dE (m)", "dN (m)", "dh (m)", "residual (m)"], rows))
 
 
+def _total_sigma_rows(result: CloseResult) -> list[list[str]]:
+    """Headline rows of the site totals' sigmas (shared errors counted once), when the close
+    has them (``tables["Site totals"]``)."""
+    tot = (result.tables or {}).get("Site totals")
+    if tot is None or not len(tot):
+        return []
+    r = tot.iloc[0]
+    return [
+        ["Survey stock, 1 sigma (t)", _num(r["survey_sigma_t"])],
+        ["Book stock, 1 sigma (t)", _num(r["book_sigma_t"])],
+        ["Variance, 1 sigma (t; shared density and floor errors counted once)", _num(r["variance_sigma_t"])],
+    ]
+
+
 def report_html(result: CloseResult) -> str:
     """The report page as a string (see :func:`write_report`)."""
     p = result.piles
@@ -374,7 +388,7 @@ def report_html(result: CloseResult) -> str:
         ["Closing stock (t)", _num(closing)],
         ["Piles out of tolerance", _num(n_oot)],
         ["Piles with a significant variance", _num(n_sig)],
-    ])
+    ] + _total_sigma_rows(result))
     pile_rows, pile_classes = _pile_rows(p)
     piles_table = _table(
         ["pile", "material", "volume (m³)", "survey (t)", "book (t)", "variance (t)",

@@ -663,18 +663,40 @@ def _stamp(result: CloseResult) -> datetime:
 
 # -- history ------------------------------------------------------------------------------------
 
-def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
+def _variance_chart(ws, piles: int, periods: int) -> None:
+    """A line chart of each pile's variance by month, from the ``By month`` cells (one
+    series per pile row), placed below the table."""
+    from openpyxl.chart import LineChart, Reference
+
+    chart = LineChart()
+    chart.title = "Variance per pile by month (t, survey - book)"
+    chart.y_axis.title = "variance (t)"
+    chart.x_axis.title = "period"
+    data = Reference(ws, min_col=1, max_col=1 + periods, min_row=2, max_row=1 + piles)
+    chart.add_data(data, from_rows=True, titles_from_data=True)
+    chart.set_categories(Reference(ws, min_col=2, max_col=1 + periods, min_row=1, max_row=1))
+    chart.width, chart.height = 18, 8
+    ws.add_chart(chart, f"A{piles + 4}")
+
+
+def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFrame | None = None,
+                           by: str | None = None) -> Path:
     """Write ``inventory history`` as a workbook for finance.
 
     Sheets: ``History`` (the rows as given, with number formats, filters and the row marks),
     ``By month`` (variance tonnes, pile x period, with SUM formulas for row and column
-    totals) and ``Notes`` (sign convention, legend).
+    totals, and a line chart of each pile's variance by month), ``Totals by <by>`` when
+    ``totals`` is given, and ``Notes`` (sign convention, legend).
 
     Parameters
     ----------
     df : DataFrame
         As returned by :meth:`inventory.ledger.store.Ledger.history`.
     path : str or Path
+    totals : DataFrame, optional
+        :func:`inventory.ledger.history.aggregate_history` of the same rows.
+    by : str, optional
+        What ``totals`` is grouped by (names its sheet).
 
     Returns
     -------
@@ -716,8 +738,15 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
         pv.freeze_panes = "B2"
         pv.auto_filter.ref = f"A1:{get_column_letter(2 + len(periods))}{1 + n}"
         _fit_columns(pv)
+        _variance_chart(pv, n, len(periods))
     else:
         pv["A1"] = "No closed periods match."
+
+    if totals is not None:
+        ts = wb.create_sheet(f"Totals by {by or 'group'}"[:31])
+        tcols = list(totals.columns)
+        _table(ts, totals, tcols, freeze="B2")
+        _fit_columns(ts)
 
     notes = wb.create_sheet("Notes")
     notes["A1"] = "Variance history from the ledger (adopted closes unless status says otherwise)"

@@ -13,24 +13,25 @@ from inventory.model.results import PILE_COLUMNS
 
 __all__ = [
     "BALANCE_COLUMNS", "BOOL_COLUMNS", "HISTORY_COLUMNS", "MIGRATIONS", "SCALE_FIT_COLUMNS", "SCHEMA",
-    "SCHEMA_VERSION", "TEXT_COLUMNS",
+    "SCHEMA_VERSION", "TEXT_COLUMNS", "VIEWS", "VIEW_NAMES",
 ]
 
 #: Version of the table layout below; bumped on any change, checked on open. A ledger of an
 #: older version is brought up to date on open by :data:`MIGRATIONS`, in one transaction.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 #: Pile columns stored per close, with their SQLite type (every figure of the close).
 TEXT_COLUMNS = {"pile_id", "material", "base_method", "flags"}
 BOOL_COLUMNS = {"significant", "out_of_tolerance"}
 BALANCE_COLUMNS = list(PILE_COLUMNS)
 
-#: Columns of :meth:`Ledger.history`.
+#: Columns of :meth:`Ledger.history` (``reason_code`` and ``reason`` from the close's journal
+#: line of the pile, blank when the pile was not adjusted).
 HISTORY_COLUMNS = [
     "period", "pile_id", "material", "opening_t", "receipts_t", "dispatches_t",
     "transfers_in_t", "transfers_out_t", "book_t", "book_sigma_t", "survey_t",
     "survey_sigma_t", "variance_t", "variance_pct", "variance_sigma_t", "significant",
-    "tolerance_pct", "out_of_tolerance", "adjustment_t", "closing_t", "status",
+    "tolerance_pct", "out_of_tolerance", "adjustment_t", "reason_code", "reason", "closing_t", "status",
     "close_id", "closed_utc", "closed_by", "survey_date", "software_version",
 ]
 
@@ -66,6 +67,47 @@ _SCALE_FIT_TRIGGERS = """CREATE TRIGGER scale_fit_rows_keep BEFORE DELETE ON sca
 CREATE TRIGGER scale_fit_rows_frozen BEFORE UPDATE ON scale_fit_rows
     BEGIN SELECT RAISE(ABORT, 'scale fit rows cannot be edited'); END;
 """
+
+
+#: The views finance queries (schema 3), in SQL that SQLite and PostgreSQL both read. Every
+#: one keeps to adopted closes except ``close_history``, which lists every close with the
+#: reopening that superseded it. ``variance_by_material_month`` sums tonnes only: a sigma of
+#: a total needs the shared terms (density, floor) that are not columns of the ledger; use
+#: ``inventory history --by material`` for totals with their sigma.
+VIEWS = """CREATE VIEW adopted_balances AS
+    SELECT c.period, c.site_name, c.closed_utc, c.closed_by, c.survey_date, b.*
+    FROM balances b JOIN closes c ON c.close_id = b.close_id
+    WHERE c.status = 'adopted';
+CREATE VIEW adopted_journal AS
+    SELECT c.period, c.site_name, j.close_id, j.line, j.pile_id, j.material, j.adjustment_t,
+           j.reason_code, j.reason
+    FROM journal j JOIN closes c ON c.close_id = j.close_id
+    WHERE c.status = 'adopted';
+CREATE VIEW variance_by_material_month AS
+    SELECT c.period, c.site_name, b.material,
+           COUNT(*) AS piles,
+           SUM(b.survey_t) AS survey_t,
+           SUM(CASE WHEN b.survey_t IS NOT NULL THEN b.book_t END) AS book_t,
+           SUM(b.variance_t) AS variance_t,
+           100.0 * SUM(b.variance_t)
+               / NULLIF(SUM(CASE WHEN b.survey_t IS NOT NULL THEN b.book_t END), 0) AS variance_pct,
+           SUM(b.adjustment_t) AS adjustment_t,
+           SUM(CASE WHEN b.out_of_tolerance = 1 THEN 1 ELSE 0 END) AS piles_out_of_tolerance,
+           SUM(CASE WHEN b.significant = 1 THEN 1 ELSE 0 END) AS piles_significant
+    FROM balances b JOIN closes c ON c.close_id = b.close_id
+    WHERE c.status = 'adopted'
+    GROUP BY c.period, c.site_name, b.material;
+CREATE VIEW close_history AS
+    SELECT c.close_id, c.period, c.site_name, c.status, c.closed_utc, c.closed_by,
+           c.survey_date, c.software_version,
+           r.reopen_id, r.reopened_utc, r.reopened_by, r.reason AS reopen_reason,
+           (SELECT MIN(n.close_id) FROM closes n
+             WHERE n.period = c.period AND n.close_id > c.close_id) AS superseded_by_close_id
+    FROM closes c LEFT JOIN reopenings r ON r.close_id = c.close_id;
+"""
+
+#: Names of :data:`VIEWS`, in order.
+VIEW_NAMES = ["adopted_balances", "adopted_journal", "variance_by_material_month", "close_history"]
 
 SCHEMA = f"""
 CREATE TABLE schema_version (
@@ -147,15 +189,17 @@ CREATE TRIGGER inputs_frozen BEFORE UPDATE ON inputs
     BEGIN SELECT RAISE(ABORT, 'reopenings are kept forever'); END;
 CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
     BEGIN SELECT RAISE(ABORT, 'reopenings cannot be edited'); END;
-"""
+""" + VIEWS
 
 
 #: Schema changes, from the version a ledger has to the next one. Each runs in one
 #: transaction with the new version row, so a ledger is either migrated or untouched.
 #: 1 -> 2: ``balances.base_sigma_t`` (the fixed-base part of the survey sigma, NULL for
 #: closes made before: no shared part known) and the belt-scale fit rows of each close.
+#: 2 -> 3: the finance views (:data:`VIEWS`); no table changes.
 MIGRATIONS: dict[int, str] = {
     1: "ALTER TABLE balances ADD COLUMN base_sigma_t REAL;\n" + _SCALE_FIT_TABLE + _SCALE_FIT_TRIGGERS,
+    2: VIEWS,
 }
 
 #: Columns of :meth:`Ledger.scale_fit_history` (as ``inventory.stock.reconcile.BIAS_ROW_COLUMNS``).

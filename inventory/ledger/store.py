@@ -95,6 +95,9 @@ class Ledger:
         When the file is not a ledger, is from a newer version of the tool, or is unreadable.
     """
 
+    #: Columns naming the site of each history row (none in a one-site SQLite ledger).
+    _site_columns: tuple[str, ...] = ()
+
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         self._con: sqlite3.Connection | None = None
@@ -353,6 +356,17 @@ class Ledger:
         ).fetchall()
         return {pid: (float("nan") if t is None else float(t)) for pid, t in rows}
 
+    def pile_ids(self) -> list[str]:
+        """Every pile id the ledger has figures for (any close), sorted."""
+        return [r[0] for r in self._db.execute(
+            "SELECT DISTINCT pile_id FROM balances ORDER BY pile_id").fetchall()]
+
+    def materials(self) -> list[str]:
+        """Every material the ledger has figures for (any close), sorted."""
+        return [r[0] for r in self._db.execute(
+            "SELECT DISTINCT material FROM balances WHERE material IS NOT NULL ORDER BY material"
+        ).fetchall()]
+
     def adopted(self, period: str) -> pd.DataFrame:
         """The adopted pile balances of ``period`` (``BALANCE_COLUMNS``); empty when not closed."""
         _check_period(period)
@@ -405,6 +419,7 @@ class Ledger:
         end: str | None = None,
         *,
         include_superseded: bool = False,
+        all_columns: bool = False,
     ) -> pd.DataFrame:
         """Variance by pile and month, for finance.
 
@@ -416,11 +431,15 @@ class Ledger:
             First and last period (``YYYY-MM``), both included.
         include_superseded : bool
             Also list closes that a reopening replaced (``status`` tells which).
+        all_columns : bool
+            Also every other stored pile column and the site name (what totals with their
+            sigma need: volumes, base parts, movements after the survey).
 
         Returns
         -------
         DataFrame
-            ``HISTORY_COLUMNS``, sorted by period, pile, close.
+            ``HISTORY_COLUMNS`` (then the other ``BALANCE_COLUMNS`` and ``site_name`` with
+            ``all_columns``), sorted by period, pile, close.
         """
         where = ["1 = 1"]
         params: list[Any] = []
@@ -440,11 +459,18 @@ class Ledger:
             params.append(_check_period(end))
         if start is not None and end is not None and start > end:
             raise LedgerError(f"history: start {start} is after end {end}")
+        columns = [*self._site_columns, *HISTORY_COLUMNS]
+        if all_columns:
+            columns += [c for c in BALANCE_COLUMNS if c not in columns] + ["site_name"]
         select = []
-        for col in HISTORY_COLUMNS:
+        for col in columns:
             if col in ("period", "status", "close_id", "closed_utc", "closed_by",
-                       "survey_date", "software_version"):
+                       "survey_date", "software_version", "site_name", *self._site_columns):
                 select.append(f"c.{col}")
+            elif col in ("reason_code", "reason"):
+                # the pile's journal line of that close (one per adjusted pile)
+                select.append(f"(SELECT j.{col} FROM journal j WHERE j.close_id = b.close_id "
+                              f"AND j.pile_id = b.pile_id ORDER BY j.line LIMIT 1)")
             else:
                 select.append(f"b.{col}")
         sql = (
@@ -452,7 +478,7 @@ class Ledger:
             f"WHERE {' AND '.join(where)} ORDER BY c.period, b.pile_id, c.close_id"
         )
         rows = self._db.execute(sql, params).fetchall()
-        return _typed(pd.DataFrame(rows, columns=HISTORY_COLUMNS))
+        return _typed(pd.DataFrame(rows, columns=columns))
 
     def scale_fit_history(self, before: str, months: int = 12) -> pd.DataFrame:
         """The belt-scale fit rows of the adopted closes of up to ``months`` periods before
@@ -666,7 +692,8 @@ def _typed(df: pd.DataFrame) -> pd.DataFrame:
         if col in BOOL_COLUMNS:
             df[col] = df[col].map(lambda v: None if v is None else bool(v)).astype(object)
         elif col in TEXT_COLUMNS or col in ("period", "status", "closed_utc", "closed_by",
-                                             "survey_date", "software_version"):
+                                             "survey_date", "software_version", "site_name",
+                                             "site_id", "reason_code", "reason"):
             continue
         elif col == "close_id":
             df[col] = df[col].astype("int64")

@@ -66,6 +66,27 @@ FIELDS: dict[str, tuple[str, str]] = {
     "survey_date": ("Survey date", "Date of the survey the figures rest on (YYYY-MM-DD)."),
     "close_id": ("Close id", "The ledger's id of the close that wrote this file (run.json close_id)."),
     "closed_utc": ("Closed (UTC)", "When that close was recorded in the ledger: UTC, ISO 8601."),
+
+    # inventory history (ledger rows and their totals)
+    "reason_code": ("Reason code", "Code of the pile's adjustment journal line (see the reason codes)."),
+    "reason": ("Reason", "Why the pile was adjusted, in words."),
+    "first_period": ("First period", "First month of the span (YYYY-MM)."),
+    "last_period": ("Last period", "Last month of the span (YYYY-MM)."),
+    "months": ("Months", "Number of months in the span."),
+    "piles": ("Piles", "Number of piles counted."),
+    "start_t": ("Start stock",
+                "Survey stock at the start of the span (the survey of the month before it; "
+                "the opening balance when there is none)."),
+    "end_t": ("End stock", "Survey stock at the last survey of the span."),
+    "net_movement_t": ("Net movement",
+                       "Every movement booked between the start and the end survey: receipts "
+                       "and transfers in less dispatches and transfers out."),
+    "monthly_variance_t": ("Sum of monthly variances",
+                           ("The months' variances added up; equal to the span's variance when "
+                            "every variance was adjusted to the survey.")),
+    "significant_count": ("Significant", "Number of pile-months with a significant variance."),
+    "out_of_tolerance_count": ("Out of tolerance", "Number of pile-months out of tolerance."),
+    "reason_codes": ("Reason codes", "Reason codes of the adjustments, each with how often it occurs."),
 }
 
 def unit_of(column: str) -> tuple[str, str] | None:

@@ -24,6 +24,7 @@ import pandas as pd
 from inventory.stock.metrology import belt_mpe_fraction
 from inventory.site.load import Material, ReconcileConfig, Scale
 from inventory.stock.book import BookResult
+from inventory.stock.totals import close_sigmas, close_site_totals
 from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
 from inventory.model.texts import REASON_CODES, SIGN_CONVENTION
 
@@ -110,6 +111,8 @@ class Reconciliation:
         adjustment.
     bias_rows : DataFrame
         :data:`BIAS_ROW_COLUMNS` of this month, to be kept and passed back as ``history``.
+    site_totals : DataFrame
+        The site's totals with their sigmas (:func:`inventory.stock.totals.close_site_totals`).
     """
 
     piles: pd.DataFrame
@@ -121,6 +124,9 @@ class Reconciliation:
     settings: ReconcileSettings
     sign_convention: str = SIGN_CONVENTION
     reason_codes: dict = field(default_factory=lambda: dict(REASON_CODES))
+    #: The site's totals (:data:`inventory.stock.totals.SITE_TOTAL_COLUMNS`, one row), their
+    #: sigmas with shared errors counted once.
+    site_totals: pd.DataFrame | None = None
 
 
 def _settings(config: ReconcileSettings | ReconcileConfig | None) -> ReconcileSettings:
@@ -266,10 +272,11 @@ def reconcile(
     journal = p[surveyed & (p["adjustment_t"] != 0)][["pile_id", "material", "adjustment_t", "reason_code", "reason"]]
     journal = journal.reset_index(drop=True)[JOURNAL_COLUMNS]
     materials_out = _per_material(p, book, info, k, factor)
+    site_out = close_site_totals(p, book.scale_load)
     change = None if previous is None else _change(p, previous, k, info)
     return Reconciliation(
         piles=piles_out, materials=materials_out, change=change, scale_diagnostics=diag,
-        journal=journal, bias_rows=bias_rows, settings=cfg,
+        journal=journal, bias_rows=bias_rows, settings=cfg, site_totals=site_out,
     )
 
 
@@ -655,26 +662,17 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
 def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, factor: float) -> pd.DataFrame:  # noqa: C901
     """Totals per material with correlations handled: one scale's error is common to all the
     piles it weighed for (linear within a scale, quadrature across scales); one material's
-    density error is common to all its piles."""
+    density error is common to all its piles; the floor raster's error to all piles on it."""
     sl = book.scale_load.merge(p[["pile_id", "material"]], on="pile_id", how="left")
     rows = []
     for mat, g in p.groupby("material", sort=True, dropna=False):
         sv = g[g["survey_t"].notna()]
-        sigma_S = sv["survey_sigma_t"].astype(float).fillna(0.0)
-        d_S, d_O = sv["_d_survey"], sv["opening_density_sigma_t"]
-        g_S, g_O = sv["_g_survey"], sv["opening_base_sigma_t"]
-        s_ind = float(np.clip(sigma_S ** 2 - d_S ** 2 - g_S ** 2, 0.0, None).sum())
         # density: one error for all piles of the material, in this survey and in any opening
-        # that was an adopted survey; a fixed base: one error per pile, in both
-        s_survey = float(np.sqrt(s_ind + (g_S ** 2).sum() + d_S.sum() ** 2))
-        per_scale = sl[sl["pile_id"].isin(sv["pile_id"])].groupby("scale_id")["sigma_t"].sum()
-        o_ind = float(np.clip(sv["opening_sigma_t"] ** 2 - d_O ** 2 - g_O ** 2, 0.0, None).sum())
-        s_book = float(np.sqrt((per_scale ** 2).sum() + o_ind + (g_O ** 2).sum() + d_O.sum() ** 2))
-        s_v_val = float(np.sqrt(s_ind + (per_scale ** 2).sum() + o_ind + ((g_S - g_O) ** 2).sum()
-                                + (d_S.sum() - d_O.sum()) ** 2))
+        # that was an adopted survey; the floor raster: one error under all its piles, in
+        # both; a level: one error per pile, in both (inventory.stock.totals)
+        s_survey, s_book, s_v = close_sigmas(sv, sl)
         S, Bk = float(sv["survey_t"].sum()), float(sv["book_t"].sum())
         v = S - Bk
-        s_v = s_v_val
         tol = _num(info.get(mat, {}).get("tolerance_pct"))
         tol = tol if np.isfinite(tol) and tol > 0 else float(g["tolerance_pct"].iloc[0])
         rows.append({
