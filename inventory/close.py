@@ -330,6 +330,7 @@ class _Volumes:
     table: pd.DataFrame
     thickness: np.ndarray
     gaps: Any
+    unassigned: Any = None  # inventory.volume.unassigned.Unassigned
 
 
 def _check_writable(root: Path, period: str) -> None:
@@ -413,15 +414,43 @@ def _survey(run: _Loaded, staged: Path, progress: Progress | None, workers: int 
 
 
 def _volumes(site: Site, surface: Surface, say: Progress) -> _Volumes:
-    """Every pile's volume above its base, the thickness raster and the unscanned gaps."""
+    """Every pile's volume above its base, the thickness raster, the unscanned gaps and the
+    stock outside every footprint (a warning for each region and each cut footprint)."""
     from inventory.volume import measure as _vol
+    from inventory.volume.unassigned import find_unassigned
 
     say(f"volumes of {len(site.piles)} piles")
     base = _vol.BaseSurfaces.from_site(site, surface.grid)
     table = _vol.measure_piles(surface, site.piles, site.materials, base)
     _, thickness = _vol.thickness_raster(surface, site.piles, base)
     gaps = _vol.coverage_gaps(surface, site.piles)
-    return _Volumes(table, thickness, gaps)
+    say("stock outside the footprints")
+    cfg = site.config.unassigned
+    unassigned = find_unassigned(surface, site.piles, base, min_thickness_m=cfg.min_thickness_m,
+                                 min_area_m2=cfg.min_area_m2)
+    if len(unassigned.edges):
+        cut = set(unassigned.edges["pile_id"])
+        table["flags"] = [
+            ";".join(dict.fromkeys([f for f in str(fl or "").split(";") if f] + ["edge_cut"])) if pid in cut
+            else fl for pid, fl in zip(table["pile_id"], table["flags"])
+        ]
+    for line in unassigned.messages():
+        warnings.warn(InventoryWarning(line), stacklevel=2)
+    return _Volumes(table, thickness, gaps, unassigned)
+
+
+def unassigned_table(unassigned: Any) -> pd.DataFrame:
+    """The workbook table of stock outside the footprints: one row per region, then one per
+    footprint whose edge cuts through material (``pile_id`` filled, region columns empty)."""
+    regions = pd.DataFrame(unassigned.regions.drop(columns="geometry"))
+    edges = unassigned.edges.copy()
+    if not len(edges):
+        return regions.reset_index(drop=True)
+    edges["flags"] = "edge_cut"
+    frames = [f for f in (regions, edges) if len(f)]
+    out = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0].copy()
+    cols = ["region_id", "pile_id"] + [c for c in out.columns if c not in ("region_id", "pile_id")]
+    return out.reindex(columns=cols)
 
 
 def _book(run: _Loaded, say: Progress) -> BookResult:
@@ -489,7 +518,9 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
             "Materials": rec.materials,
             "Measured change": rec.change,
             "Belt split": book.belt_split,
+            **({"Unassigned stock": unassigned_table(volumes.unassigned)} if volumes.unassigned is not None else {}),
         },
+        unassigned_stock=volumes.unassigned.regions if volumes.unassigned is not None else None,
         reason_codes=dict(rec.reason_codes),
         bias_rows=rec.bias_rows,
         run={
@@ -499,6 +530,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
                 "grid": vars(site.config.grid),
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),
+                "unassigned": vars(site.config.unassigned),
                 "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
             },
             # the close's own timings so far; _write_manifest stores the final copy

@@ -179,6 +179,9 @@ def test_every_feature_carries_period_and_survey_date(gpkg, result):
 
     for name in LAYER_NAMES:
         df = pyogrio.read_dataframe(gpkg, layer=name, read_geometry=False)
+        if name == "unassigned_stock" and result.unassigned_stock is None:
+            assert len(df) == 0  # the fake close did not look: an empty layer
+            continue
         assert len(df) > 0, name
         assert set(df["period"]) == {"2026-01"}, name
         assert set(df["survey_date"]) == {result.survey_date}, name

@@ -1,0 +1,421 @@
+r"""Stock outside every footprint: material the pile register does not hold, found from the surface.
+
+A new pile nobody registered, a spill, a pile that grew past its polygon: material above the
+base outside every footprint in ``piles.gpkg``. It is found, measured and reported, never
+added to a pile's stock (which pile it belongs to is for a person to decide).
+
+How it is found (:func:`find_unassigned`)
+-----------------------------------------
+1. **The base outside the footprints** (for finding). The site's floor raster where it has a
+   value; elsewhere a *ground surface* taken from the survey itself: a grey-scale opening
+   (erosion then dilation with a flat square of :data:`OPENING_WINDOW_M`) of the scanned
+   cells outside every footprint. An opening keeps any plane or trough unchanged and removes
+   every bump narrower than the window, so on a yard of even grade it is the yard with the
+   stock taken off (Serra 1982, *Image analysis and mathematical morphology*; the same
+   operation progressive morphological ground filters are built on).
+2. **Cores.** Scanned cells whose centre lies outside every footprint and whose thickness
+   above that base exceeds ``min_thickness_m`` (site.toml ``[unassigned] min_thickness_m``,
+   default 0.3 m), joined by their 8 neighbours into regions; a region smaller than
+   ``min_area_m2`` (default 4 m2) is dropped as a stray object (a wheel loader's bucket, a
+   person classified as surface).
+3. **Extent.** A core's thickness threshold cuts off the thin skirt of a heap (a cone of
+   height 4 m loses a fifth of its volume below 0.3 m), so each core grows over the connected
+   cells thicker than :data:`LOW_THICKNESS_M` (hysteresis thresholding) and then
+   :data:`EXTENT_PAD_CELLS` cells further, to its toe. Cells shared with a footprint count by
+   the share of the cell outside it (the footprint's exact weights,
+   :func:`inventory.volume.measure.footprint_weights`).
+
+How it is measured
+------------------
+Each region is measured exactly as a pile (:mod:`inventory.volume.measure`): volume is the
+sum of the positive thickness times the cell's outside share and area, and the uncertainty
+has the same four terms (random, correlated, interpolated, base). The base under a region is
+chosen in this order:
+
+``floor``
+    the site's floor raster, when it covers every cell of the region (its stated sigma is
+    the base term, as for a pile on the floor);
+``toe``
+    otherwise a robust plane through a ring of :attr:`BaseSurfaces.toe_ring_m` of scanned
+    cells around the region, other footprints and regions left out (the ``toe`` base of a
+    pile: its fit covariance and roughness are the base term);
+``ground``
+    when the ring is too small for a plane, the opening surface of step 1, with the robust
+    scatter of the outside ground about it taken as a fully correlated base error.
+
+A footprint whose edge cuts through a pile is flagged (``edge_cut``): along the band just
+outside its boundary (:data:`EDGE_BAND_M`, other footprints left out) the scanned surface is
+still thicker than ``min_thickness_m`` over at least :data:`EDGE_MIN_LENGTH_M` of the edge.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pandas as pd
+import shapely
+from scipy import ndimage
+
+from inventory.model.grid import Surface
+from inventory.volume.base import MAD_TO_SIGMA, BaseModel, fill_nearest, fit_plane_robust, toe_base
+from inventory.volume.measure import (
+    Z95,
+    BaseSurfaces,
+    ErrorModel,
+    _footprints,
+    _measure_one,
+    _outline,
+    _PileWork,
+    _subgrid,
+    _typical_sd,
+    footprint_weights,
+)
+
+if TYPE_CHECKING:
+    import geopandas as gpd
+
+__all__ = [
+    "UNASSIGNED_COLUMNS",
+    "EDGE_COLUMNS",
+    "Unassigned",
+    "find_unassigned",
+    "empty_regions",
+    "inside_weights",
+    "DEFAULT_MIN_THICKNESS_M",
+    "DEFAULT_MIN_AREA_M2",
+]
+
+#: Thickness above which material outside every footprint is stock (m); site.toml
+#: ``[unassigned] min_thickness_m``. Engineering judgement: ten times the scan noise of a
+#: terrestrial scanner, well above the unevenness of a paved yard, below the height of a
+#: tipped truck load.
+DEFAULT_MIN_THICKNESS_M = 0.3
+
+#: Smallest core area reported (m2); site.toml ``[unassigned] min_area_m2``. Engineering
+#: judgement: a 2 m x 2 m heap holds about a tonne; smaller objects above 0.3 m are more
+#: likely a machine part or a person the classifier left in the surface.
+DEFAULT_MIN_AREA_M2 = 4.0
+
+#: Width of the flat square of the grey-scale opening that gives the ground outside the
+#: footprints where the site has no floor raster (m). Heaps narrower than this are taken off
+#: the ground; a wider one is missed where there is no floor raster (say so in the docs).
+OPENING_WINDOW_M = 40.0
+
+#: Cells sampled for the robust plane the opening is taken about (LMedS cost grows with it).
+_PLANE_SAMPLE = 20_000
+
+#: Thickness (m) down to which a core grows into its skirt (hysteresis thresholding).
+LOW_THICKNESS_M = 0.05
+
+#: Cells added around the grown region, so that the toe below ``LOW_THICKNESS_M`` is counted.
+EXTENT_PAD_CELLS = 2
+
+#: Width of the band just outside a footprint's edge that is checked for a cut pile (m).
+EDGE_BAND_M = 1.0
+
+#: Length of footprint edge (m) along which the band must be thick before ``edge_cut``.
+EDGE_MIN_LENGTH_M = 2.0
+
+#: Columns of :attr:`Unassigned.regions` (besides the geometry), in order.
+UNASSIGNED_COLUMNS = [
+    "region_id", "area_m2", "max_thickness_m", "base_method", "scanned_fraction",
+    "volume_m3", "volume_tin_m3", "below_base_m3", "volume_sigma_m3", "volume_ci95_m3",
+    "sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3", "sigma_base_m3",
+    "centre_x_m", "centre_y_m", "next_to", "flags",
+]
+
+#: Text columns of :data:`UNASSIGNED_COLUMNS` (the others are numbers).
+_TEXT_COLUMNS = {"region_id", "base_method", "next_to", "flags"}
+
+#: Columns of :attr:`Unassigned.edges`: footprints whose edge cuts through material.
+EDGE_COLUMNS = ["pile_id", "edge_cut_length_m", "edge_max_thickness_m"]
+
+
+@dataclass
+class Unassigned:
+    """What :func:`find_unassigned` found.
+
+    Attributes
+    ----------
+    regions : GeoDataFrame
+        One row per region of stock outside every footprint, columns
+        :data:`UNASSIGNED_COLUMNS` and the region's polygon (the outside part of its cells).
+    edges : DataFrame
+        Footprints whose edge cuts through material, columns :data:`EDGE_COLUMNS`.
+    thickness : ndarray
+        Thickness above the outside base on the survey grid, NaN inside the footprints and
+        where the surface has no value.
+    min_thickness_m, min_area_m2 : float
+        The thresholds used.
+    """
+
+    regions: Any
+    edges: pd.DataFrame
+    thickness: np.ndarray
+    min_thickness_m: float
+    min_area_m2: float
+
+    def messages(self) -> list[str]:
+        """One line per region and per cut footprint, for warnings and summaries."""
+        out = []
+        for r in self.regions.itertuples(index=False):
+            near = f", next to {r.next_to}" if r.next_to else ""
+            out.append(
+                f"stock outside every footprint: {r.region_id} at ({r.centre_x_m:.1f}, {r.centre_y_m:.1f}), "
+                f"{r.volume_m3:,.1f} m3 +/- {r.volume_ci95_m3:,.1f} m3 (95 %), {r.area_m2:,.1f} m2{near}"
+            )
+        for e in self.edges.itertuples(index=False):
+            out.append(
+                f"pile {e.pile_id}: the footprint edge cuts through material over {e.edge_cut_length_m:.1f} m "
+                f"(up to {e.edge_max_thickness_m:.2f} m thick just outside it); redraw the footprint"
+            )
+        return out
+
+
+def empty_regions(crs: Any = None) -> "gpd.GeoDataFrame":
+    """A regions table with no row (:data:`UNASSIGNED_COLUMNS`, typed, and a geometry)."""
+    import geopandas as gpd
+
+    cols = {c: pd.Series(dtype=object if c in _TEXT_COLUMNS else "float64") for c in UNASSIGNED_COLUMNS}
+    return gpd.GeoDataFrame(cols, geometry=gpd.GeoSeries([], crs=crs), crs=crs)
+
+
+def inside_weights(surface: Surface, piles: "gpd.GeoDataFrame") -> np.ndarray:
+    """Share of each grid cell inside any footprint (0 to 1; overlaps counted once at most)."""
+    grid = surface.grid
+    w_in = np.zeros(grid.shape)
+    for _, poly, _ in _footprints(piles):
+        if poly is None:
+            continue
+        (rows, cols), w = footprint_weights(poly, grid)
+        if w.size:
+            w_in[rows, cols] += w
+    return np.clip(w_in, 0.0, 1.0)
+
+
+def _opening_ground(grid, z: np.ndarray, use: np.ndarray, min_thickness_m: float) -> np.ndarray:
+    """Grey-scale opening of ``z`` over the ``use`` cells, raised onto the middle of the
+    ground's scatter (NaN where no ground cell is within the window).
+
+    The opening is taken of the departure from a robust plane through the ``use`` cells
+    (:func:`inventory.volume.base.fit_plane_robust`), then the plane is added back: an
+    opening with a flat window keeps a level surface exactly, also at the border of the grid,
+    where a graded one would be cut down. An opening follows the lowest points of the
+    scatter; the median departure of the ground cells (less than ``min_thickness_m`` above
+    it) is added back.
+    """
+    k = max(3, int(round(OPENING_WINDOW_M / grid.cell)) | 1)
+    known = use & np.isfinite(z)
+    if not known.any():
+        return np.full(z.shape, np.nan)
+    x, y = grid.centers()
+    rr, cc = np.nonzero(known)
+    if rr.size > _PLANE_SAMPLE:
+        pick = np.random.default_rng(0).choice(rr.size, _PLANE_SAMPLE, replace=False)
+        rr, cc = rr[pick], cc[pick]
+    ox, oy = float(np.mean(x[rr, cc])), float(np.mean(y[rr, cc]))
+    if rr.size >= 3:
+        p = fit_plane_robust(x[rr, cc] - ox, y[rr, cc] - oy, z[rr, cc], np.zeros(rr.size))["p"]
+    else:
+        p = np.array([float(np.median(z[rr, cc])), 0.0, 0.0])
+    plane = p[0] + p[1] * (x - ox) + p[2] * (y - oy)
+    src = np.where(known, z - plane, np.inf)
+    ero = ndimage.minimum_filter(src, size=k, mode="nearest")
+    ero = np.where(np.isfinite(ero), ero, -np.inf)
+    out = ndimage.maximum_filter(ero, size=k, mode="nearest")
+    out = np.where(np.isfinite(out), out + plane, np.nan)
+    r = (z - out)[known & np.isfinite(out)]
+    r = r[r < min_thickness_m]
+    return out + (float(np.median(r)) if r.size else 0.0)
+
+
+def _centres(grid, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray]:
+    return _subgrid(grid, rows, cols).centers()
+
+
+def _edges(surface: Surface, foots, thick: np.ndarray, min_thickness_m: float) -> pd.DataFrame:
+    """Footprints along whose edge, just outside, the scanned surface is still thick."""
+    grid = surface.grid
+    band_w = max(EDGE_BAND_M, grid.cell)
+    polys = [(pid, g) for pid, g, _ in foots if g is not None]
+    recs = []
+    for pid, poly in polys:
+        band = poly.buffer(band_w).difference(poly)
+        near = [g for p, g in polys if p != pid and g.intersects(band)]
+        if near:
+            band = band.difference(shapely.union_all(near))
+        if band.is_empty:
+            continue
+        rows, cols = grid.window(*band.bounds)
+        if rows.stop <= rows.start or cols.stop <= cols.start:
+            continue
+        x, y = _centres(grid, rows, cols)
+        sel = shapely.contains_xy(band, x, y) & (surface.count[rows, cols] > 0)
+        t = thick[rows, cols]
+        hot = sel & np.isfinite(t) & (t > min_thickness_m)
+        length = float(hot.sum()) * grid.cell_area / band_w
+        if length >= EDGE_MIN_LENGTH_M:
+            recs.append({"pile_id": pid, "edge_cut_length_m": length,
+                         "edge_max_thickness_m": float(np.max(t[hot]))})
+    return pd.DataFrame(recs, columns=EDGE_COLUMNS)
+
+
+def find_unassigned(
+    surface: Surface,
+    piles: "gpd.GeoDataFrame",
+    base: BaseSurfaces | None = None,
+    *,
+    min_thickness_m: float = DEFAULT_MIN_THICKNESS_M,
+    min_area_m2: float = DEFAULT_MIN_AREA_M2,
+    errors: ErrorModel | None = None,
+) -> Unassigned:
+    """Find and measure the stock lying outside every footprint (see the module docstring).
+
+    Parameters
+    ----------
+    surface : Surface
+        The survey's surface grid.
+    piles : GeoDataFrame
+        The pile register (``pile_id`` and polygon geometry in the grid's CRS).
+    base : BaseSurfaces, optional
+        The site's floor raster (used outside the footprints where it has a value), its
+        sigma and the ring width for a fitted base.
+    min_thickness_m, min_area_m2 : float
+        A region is reported when its cells thicker than ``min_thickness_m`` cover at least
+        ``min_area_m2``.
+    errors : ErrorModel, optional
+        Parameters of the uncertainty model (as for the piles).
+
+    Returns
+    -------
+    Unassigned
+    """
+    import geopandas as gpd
+
+    base = base or BaseSurfaces()
+    errors = errors or ErrorModel()
+    grid = surface.grid
+    a = grid.cell_area
+    noise_sd = _typical_sd(surface, errors)
+    foots = _footprints(piles)
+    w_in = inside_weights(surface, piles)
+    w_out = 1.0 - w_in
+    z = surface.z.astype(float)
+    scanned = (surface.count > 0) & np.isfinite(z)
+    outside = w_in < 0.5  # cell centre (nearly always) outside every footprint
+
+    ground = _opening_ground(grid, z, outside & scanned, min_thickness_m)
+    floor = base.floor if base.floor is not None else np.full(grid.shape, np.nan)
+    base_z = np.where(np.isfinite(floor), floor, ground)
+    thick_all = z - base_z
+    thick = np.where(outside, thick_all, np.nan)
+    edges = _edges(surface, foots, thick_all, min_thickness_m)
+
+    crs = getattr(piles, "crs", None) or (grid.crs or None)
+    empty = empty_regions(crs)
+    core = outside & scanned & (thick_all > min_thickness_m)
+    eight = np.ones((3, 3), bool)
+    lab, n = ndimage.label(core, structure=eight)
+    if n == 0:
+        return Unassigned(empty, edges, thick, min_thickness_m, min_area_m2)
+    sizes = ndimage.sum(np.ones(grid.shape), lab, index=np.arange(1, n + 1)) * a
+    keep = np.zeros(n + 1, bool)
+    keep[1:] = sizes >= min_area_m2
+    cores = keep[lab]
+    if not cores.any():
+        return Unassigned(empty, edges, thick, min_thickness_m, min_area_m2)
+
+    # grow each core into its skirt, then to its toe
+    low = (w_out > 0) & np.isfinite(thick_all) & (thick_all > min(LOW_THICKNESS_M, min_thickness_m))
+    lab_low, _ = ndimage.label(low | cores, structure=eight)
+    grown = np.isin(lab_low, np.unique(lab_low[cores]))
+    grown = ndimage.binary_dilation(grown, structure=eight, iterations=EXTENT_PAD_CELLS)
+    grown &= (w_out > 0) & np.isfinite(z)
+    regions, nreg = ndimage.label(grown, structure=eight)
+
+    # ground scatter about the opening surface, for a region measured on it
+    flat = outside & scanned & np.isfinite(ground) & ~grown
+    r = (z - ground)[flat]
+    ground_sigma = float(MAD_TO_SIGMA * np.median(np.abs(r - np.median(r)))) if r.size else 0.0
+
+    union_foot = shapely.union_all([g for _, g, _ in foots if g is not None]) if foots else shapely.Polygon()
+    polys: dict[int, shapely.Geometry] = {}
+    slices = ndimage.find_objects(regions)
+    for k, sl in enumerate(slices, start=1):
+        if sl is None:
+            continue
+        m = regions[sl] == k
+        cells = _outline(m, _subgrid(grid, sl[0], sl[1]).transform, 0.0, grid.cell)
+        polys[k] = cells
+    others_base = [(pid, g) for pid, g, _ in foots if g is not None]
+
+    recs = []
+    pad = int(math.ceil((base.toe_ring_m + 1.0) / grid.cell))
+    for k, sl in enumerate(slices, start=1):
+        if sl is None or not (cores & (regions == k)).any():
+            continue
+        rows = slice(max(sl[0].start - pad, 0), min(sl[0].stop + pad, grid.nrows))
+        cols = slice(max(sl[1].start - pad, 0), min(sl[1].stop + pad, grid.ncols))
+        sub = _subgrid(grid, rows, cols)
+        mask = regions[rows, cols] == k
+        w = np.where(mask, w_out[rows, cols], 0.0)
+        zw = z[rows, cols]
+        cells = polys[k]
+        flags: list[str] = []
+        fl = floor[rows, cols]
+        if np.isfinite(fl[mask]).all():
+            model = BaseModel(kind="floor", grid=sub, floor=fill_nearest(fl),
+                              floor_sigma_m=base.floor_sigma_m, residual_m=base.floor_sigma_m)
+            method = "floor"
+        else:
+            others = others_base + [(f"region {j}", p) for j, p in polys.items() if j != k]
+            model = toe_base(grid, cells, others, surface.z, surface.count, surface.sd,
+                             surface.filled, base.toe_ring_m, noise_sd)
+            method = "toe"
+            if not model.ok:
+                gw = fill_nearest(ground[rows, cols])
+                model = BaseModel(kind="floor", grid=sub, floor=gw, floor_sigma_m=ground_sigma,
+                                  residual_m=ground_sigma)
+                method = "ground"
+                flags.append("toe_no_ring")
+        if model.kind == "floor":
+            bz = model.floor
+        else:
+            x, y = sub.centers()
+            bz = model.at(x, y)
+        work = _PileWork(rows, cols, sub, w, fill_nearest(zw), bz, (surface.count[rows, cols] > 0) & np.isfinite(zw),
+                         model, flags)
+        geom = cells.difference(union_foot) if not union_foot.is_empty else cells
+        vals = _measure_one(surface, work, geom if not geom.is_empty else cells, errors, noise_sd, None)
+        t = (work.z - bz)[mask]
+        rr, cc = np.nonzero(mask)
+        x, y = sub.centers()
+        wt = w[mask] * np.clip(t, 0, None)
+        cx = float(np.sum(x[mask] * wt) / wt.sum()) if wt.sum() > 0 else float(np.mean(x[mask]))
+        cy = float(np.sum(y[mask] * wt) / wt.sum()) if wt.sum() > 0 else float(np.mean(y[mask]))
+        near = [pid for pid, g in others_base if g.distance(cells) <= grid.cell]
+        if near:
+            flags.append("touches_footprint")
+        if vals["scanned_fraction"] < 0.8:
+            flags.append("low_scan")
+        recs.append({
+            "area_m2": float(np.sum(w) * a), "max_thickness_m": float(np.max(t)),
+            "base_method": method, "scanned_fraction": vals["scanned_fraction"],
+            "volume_m3": vals["volume_m3"], "volume_tin_m3": vals["volume_tin_m3"],
+            "below_base_m3": vals["below_base_m3"],
+            "volume_sigma_m3": vals["volume_sigma_m3"], "volume_ci95_m3": Z95 * vals["volume_sigma_m3"],
+            "sigma_random_m3": vals["sigma_random_m3"], "sigma_correlated_m3": vals["sigma_correlated_m3"],
+            "sigma_interpolated_m3": vals["sigma_interpolated_m3"], "sigma_base_m3": vals["sigma_base_m3"],
+            "centre_x_m": cx, "centre_y_m": cy, "next_to": ", ".join(near),
+            "flags": ";".join(dict.fromkeys(flags)), "geometry": geom,
+        })
+    if not recs:
+        return Unassigned(empty, edges, thick, min_thickness_m, min_area_m2)
+    recs.sort(key=lambda r: -r["volume_m3"])
+    for i, rec in enumerate(recs, start=1):
+        rec["region_id"] = f"U{i}"
+    frame = gpd.GeoDataFrame(recs, geometry="geometry", crs=crs)
+    return Unassigned(frame[UNASSIGNED_COLUMNS + ["geometry"]], edges, thick, min_thickness_m, min_area_m2)
