@@ -440,16 +440,20 @@ def _volumes(site: Site, surface: Surface, say: Progress) -> _Volumes:
 
 
 def unassigned_table(unassigned: Any) -> pd.DataFrame:
-    """The workbook table of stock outside the footprints: one row per region, then one per
-    footprint whose edge cuts through material (``pile_id`` filled, region columns empty)."""
+    """The table of stock outside the footprints for the workbook and CSV: one row per region
+    (``region_id`` set), then one per footprint whose edge cuts through material
+    (``pile_id`` set, flag ``edge_cut``); the same columns whether or not anything was found."""
+    from inventory.volume.unassigned import EDGE_COLUMNS, UNASSIGNED_COLUMNS
+
+    cols = ["region_id", "pile_id"] + [c for c in UNASSIGNED_COLUMNS if c != "region_id"] + EDGE_COLUMNS[1:]
     regions = pd.DataFrame(unassigned.regions.drop(columns="geometry"))
-    edges = unassigned.edges.copy()
-    if not len(edges):
-        return regions.reset_index(drop=True)
-    edges["flags"] = "edge_cut"
+    edges = unassigned.edges.assign(flags="edge_cut")
     frames = [f for f in (regions, edges) if len(f)]
+    if not frames:
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("region_id", "pile_id", "base_method",
+                                                                 "next_to", "flags") else "float64")
+                             for c in cols})
     out = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0].copy()
-    cols = ["region_id", "pile_id"] + [c for c in out.columns if c not in ("region_id", "pile_id")]
     return out.reindex(columns=cols)
 
 

@@ -26,6 +26,7 @@ RANK = {
     "ledger": 5,
     "export": 6,
     "close": 7,
+    "volume_report": 7,  # `inventory volumes`: the close's survey and volumes steps, no books
     "_demo": 8,  # the invented site's generator, behind `inventory sample`
     "cli": 9,
     "__main__": 10, "__init__": 10,
