@@ -72,7 +72,7 @@ def test_the_folder_holds_every_output_and_nothing_else_is_written(report):
     # no books, no ledger, no close, no staging folder left
     assert not (site / "ledger.sqlite").exists() and not (site / "closes").exists()
     assert [p.name for p in (site / "volumes").iterdir()] == [DATE]
-    assert f"volumes of 7 piles" in out and str(folder / f"volumes-{DATE}.csv") in out
+    assert "volumes of 7 piles" in out and str(folder / f"volumes-{DATE}.csv") in out
 
 
 @pytest.mark.slow
