@@ -277,3 +277,60 @@ def test_a_pile_planted_outside_every_footprint_is_reported(good_site, capsys):
 def test_the_close_piles_table_carries_the_sigma_parts():
     i = PILE_COLUMNS.index("volume_sigma_m3")
     assert PILE_COLUMNS[i + 1:i + 5] == VOLUME_SIGMA_COLUMNS
+
+
+# ----------------------------------------------------------------------------- in the close
+@pytest.mark.slow
+def test_a_close_reports_the_stock_beyond_a_footprint_drawn_too_small(sample_copy, survey_cache, monkeypatch):
+    """FE2's footprint redrawn at half its cone's toe radius: the close flags FE2 ``edge_cut``
+    and reports the rest of the cone as unassigned stock in every output."""
+    import geopandas as gpd
+    import pyogrio
+    import shapely
+    from openpyxl import load_workbook
+
+    from inventory.close import close_period
+
+    monkeypatch.setattr("inventory.survey.measure.measure_survey", survey_cache)
+    truth = json.loads((sample_copy / "truth.json").read_text())
+    ox, oy, _ = truth["site"]["local_origin_in_site_crs"]
+    shape = next(s for s in truth["surveys"] if s["date"] == "2026-09-30")["piles"]["FE2"]
+    cx, cy = ox + shape["shape"]["centre_local"][0], oy + shape["shape"]["centre_local"][1]
+    r_toe = shape["shape"]["toe_radius_m"]
+    piles = gpd.read_file(sample_copy / "piles.gpkg", layer="piles")
+    piles.loc[piles["pile_id"] == "FE2", "geometry"] = shapely.Point(cx, cy).buffer(r_toe / 2, quad_segs=32)
+    piles.to_file(sample_copy / "piles.gpkg", layer="piles", engine="pyogrio")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        closed = close_period(sample_copy, "2026-09")
+    res = closed.result
+    regions = res.unassigned_stock
+    assert len(regions) == 1
+    u = regions.iloc[0]
+    assert u["next_to"] == "FE2" and "touches_footprint" in u["flags"]
+    # a cone cut at half its toe radius keeps half its volume outside (V/2: the part inside
+    # is a cylinder r/2 x h/2 and a cone r/2 x h/2, pi r^2 h / 6 together)
+    assert u["volume_m3"] == pytest.approx(shape["volume_m3"] / 2, rel=0.03)
+    assert abs(u["volume_m3"] - shape["volume_m3"] / 2) < 2 * u["volume_ci95_m3"]
+    assert (u["centre_x_m"], u["centre_y_m"]) == pytest.approx((cx, cy), abs=1.0)
+    fe2 = res.piles.set_index("pile_id").loc["FE2"]
+    assert "edge_cut" in fe2["flags"]
+    assert not any("edge_cut" in str(f) for f in res.piles.loc[res.piles["pile_id"] != "FE2", "flags"])
+    shown = [str(w.message) for w in caught]
+    assert any(m.startswith("stock outside every footprint: U1") for m in shown), shown
+    assert any(m.startswith("pile FE2: the footprint edge cuts through material") for m in shown), shown
+    # the layer, the sheet and the report
+    layer = pyogrio.read_dataframe(closed.files["layers"], layer="unassigned_stock")
+    assert layer["region_id"].tolist() == ["U1"] and set(layer["period"]) == {"2026-09"}
+    assert layer.loc[0, "volume_m3"] == pytest.approx(u["volume_m3"], rel=1e-15)
+    piles_layer = pyogrio.read_dataframe(closed.files["layers"], layer="piles", read_geometry=False)
+    for col in VOLUME_SIGMA_COLUMNS:
+        assert piles_layer[col].notna().all() and (piles_layer[col] >= 0).all(), col
+    wb = load_workbook(closed.files["workbook"])
+    rows = list(wb["Unassigned stock"].iter_rows(values_only=True))
+    head = list(rows[0])
+    got = {(r[head.index("region_id")], r[head.index("pile_id")]) for r in rows[1:]}
+    assert got == {("U1", None), (None, "FE2")}
+    assert "sigma_interpolated_m3" in [c.value for c in wb["Piles"][1]]
+    html = closed.files["report"].read_text()
+    assert "<h2>Stock outside the footprints</h2>" in html and ">U1<" in html and ">FE2<" in html
