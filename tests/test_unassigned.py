@@ -125,10 +125,39 @@ def test_a_footprint_drawn_through_a_pile_is_flagged_and_the_rest_reported():
     assert any("P1" in m and "cuts through" in m for m in found.messages())
 
 
+def test_a_crowned_yard_is_ground_not_stock():
+    # a yard crowned along y = 30 m, falling 2.5 % to either side (common practice for
+    # drainage), with a cone on its flank and no floor raster: only the cone is stock
+    surface, _ = _yard([(X0 + 60, Y0 + 40, 6.0, 3.0)])
+    x, y = surface.grid.centers()
+    crown = -0.025 * np.abs(y - (Y0 + 30))
+    surface.z[:] = surface.z + crown
+    piles = _piles(shapely.Point(X0 + 15, Y0 + 15).buffer(5.0))
+    found = find_unassigned(surface, piles, BaseSurfaces())
+    assert len(found.regions) == 1, found.regions.drop(columns="geometry").to_string()
+    assert found.regions.iloc[0].volume_m3 == pytest.approx(cone_volume(6.0, 3.0), rel=0.02)
+
+
+def test_a_wide_low_spill_is_measured_whole():
+    # a flat-topped spill 0.6 m thick on a 30 m x 20 m base with 1:2 edges: its flat middle,
+    # far from any edge, must still count. A prismoid of base 30 x 20, top 27.6 x 17.6,
+    # height 0.6 (prismoidal formula V = h/6 (A1 + 4 Am + A2), exact for a prismoid;
+    # handbook formula, from memory)
+    surface, yard = _yard([])
+    x, y = surface.grid.centers()
+    d = np.minimum.reduce([x - (X0 + 25), (X0 + 55) - x, y - (Y0 + 20), (Y0 + 40) - y])
+    surface.z[:] = surface.z + np.clip(d * 0.5, 0.0, 0.6)
+    piles = _piles(shapely.Point(X0 + 10, Y0 + 10).buffer(4.0))
+    found = find_unassigned(surface, piles, BaseSurfaces())
+    assert len(found.regions) == 1
+    prismoid = 0.6 / 6 * (30 * 20 + 4 * 28.8 * 18.8 + 27.6 * 17.6)
+    assert found.regions.iloc[0].volume_m3 == pytest.approx(prismoid, rel=0.02)
+
+
 def test_thin_layers_and_small_objects_are_not_stock():
     # a 0.2 m high mound (below the 0.3 m threshold) and a 1.2 m x 1.2 m box 1 m high
     # (1.44 m2, below the 4 m2 minimum): nothing to report
-    surface, _ = _yard([(X0 + 60, Y0 + 30, 8.0, 0.2)])
+    surface, yard = _yard([(X0 + 60, Y0 + 30, 8.0, 0.2)])
     g = surface.grid
     x, y = g.centers()
     box = (np.abs(x - (X0 + 20)) < 0.6) & (np.abs(y - (Y0 + 20)) < 0.6)
@@ -137,9 +166,13 @@ def test_thin_layers_and_small_objects_are_not_stock():
     found = find_unassigned(surface, piles, BaseSurfaces())
     assert found.regions.empty and found.edges.empty
     assert DEFAULT_MIN_THICKNESS_M == 0.3 and DEFAULT_MIN_AREA_M2 == 4.0
-    # with the thresholds lowered, both are found
-    found = find_unassigned(surface, piles, BaseSurfaces(), min_thickness_m=0.1, min_area_m2=1.0)
+    # with the thresholds lowered, both are found above the floor raster; without one, the
+    # mound's 2.5 % flanks are as gentle as a graded yard and it is taken for ground
+    found = find_unassigned(surface, piles, BaseSurfaces(floor=yard), min_thickness_m=0.1, min_area_m2=1.0)
     assert len(found.regions) == 2
+    found = find_unassigned(surface, piles, BaseSurfaces(), min_thickness_m=0.1, min_area_m2=1.0)
+    assert len(found.regions) == 1
+    assert found.regions.iloc[0].max_thickness_m == pytest.approx(1.0, abs=0.1)  # the box
 
 
 def test_unscanned_cells_do_not_seed_stock():
