@@ -62,6 +62,7 @@ from scipy import ndimage
 from inventory.model.grid import Surface
 from inventory.volume.base import MAD_TO_SIGMA, BaseModel, fill_nearest, toe_base
 from inventory.volume.measure import (
+    LOW_SCAN_FRACTION,
     Z95,
     BaseSurfaces,
     ErrorModel,
@@ -336,7 +337,7 @@ def find_unassigned(
     # its middle: what a region encloses belongs to it
     grown = ndimage.binary_fill_holes(grown)
     grown &= (w_out > 0) & np.isfinite(z)
-    regions, nreg = ndimage.label(grown, structure=eight)
+    regions, _ = ndimage.label(grown, structure=eight)
 
     # ground scatter about the ground surface, for a region measured on it
     flat = outside & scanned & np.isfinite(ground) & ~grown
@@ -357,7 +358,7 @@ def find_unassigned(
     recs = []
     pad = int(math.ceil((base.toe_ring_m + 1.0) / grid.cell))
     for k, sl in enumerate(slices, start=1):
-        if sl is None or not (cores & (regions == k)).any():
+        if sl is None or not (cores[sl] & (regions[sl] == k)).any():
             continue
         rows = slice(max(sl[0].start - pad, 0), min(sl[0].stop + pad, grid.nrows))
         cols = slice(max(sl[1].start - pad, 0), min(sl[1].stop + pad, grid.ncols))
@@ -393,7 +394,6 @@ def find_unassigned(
         geom = cells.difference(union_foot) if not union_foot.is_empty else cells
         vals = _measure_one(surface, work, geom if not geom.is_empty else cells, errors, noise_sd, None)
         t = (work.z - bz)[mask]
-        rr, cc = np.nonzero(mask)
         x, y = sub.centers()
         wt = w[mask] * np.clip(t, 0, None)
         cx = float(np.sum(x[mask] * wt) / wt.sum()) if wt.sum() > 0 else float(np.mean(x[mask]))
@@ -401,7 +401,7 @@ def find_unassigned(
         near = [pid for pid, g in others_base if g.distance(cells) <= grid.cell]
         if near:
             flags.append("touches_footprint")
-        if vals["scanned_fraction"] < 0.8:
+        if vals["scanned_fraction"] < LOW_SCAN_FRACTION:
             flags.append("low_scan")
         recs.append({
             "area_m2": float(np.sum(w) * a), "max_thickness_m": float(np.max(t)),
