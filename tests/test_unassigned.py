@@ -154,6 +154,18 @@ def test_a_wide_low_spill_is_measured_whole():
     assert found.regions.iloc[0].volume_m3 == pytest.approx(prismoid, rel=0.02)
 
 
+def test_a_region_hemmed_in_by_footprints_stands_on_the_fitted_ground():
+    # a cone in the 1 m gap between a ring-shaped footprint around it: no free ring to fit a
+    # plane through, so the region is measured on the ground surface (flag toe_no_ring)
+    surface, _ = _yard([(X0 + 40, Y0 + 30, 6.0, 3.0)])
+    ring = shapely.Point(X0 + 40, Y0 + 30).buffer(12.0).difference(shapely.Point(X0 + 40, Y0 + 30).buffer(7.0))
+    found = find_unassigned(surface, _piles(ring), BaseSurfaces())
+    r = found.regions.iloc[0]
+    assert r.base_method == "rim" and "toe_no_ring" in r["flags"]
+    assert r.volume_m3 == pytest.approx(cone_volume(6.0, 3.0), rel=0.02)
+    assert r.sigma_base_m3 > 0
+
+
 def test_thin_layers_and_small_objects_are_not_stock():
     # a 0.2 m high mound (below the 0.3 m threshold) and a 1.2 m x 1.2 m box 1 m high
     # (1.44 m2, below the 4 m2 minimum): nothing to report

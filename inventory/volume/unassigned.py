@@ -39,9 +39,14 @@ chosen in this order:
     otherwise a robust plane through a ring of :attr:`BaseSurfaces.toe_ring_m` of scanned
     cells around the region, other footprints and regions left out (the ``toe`` base of a
     pile: its fit covariance and roughness are the base term);
+``rim``
+    when footprints leave too little of that ring free, a plane fitted the same way through
+    the region's own rim (the cells added around it to reach its toe), flag ``toe_no_ring``;
 ``ground``
-    when the ring is too small for a plane, the ground surface of step 1, with the robust
-    scatter of the outside ground about it taken as a fully correlated base error.
+    when even the rim is too small for a plane, the ground surface of step 1, with the
+    robust scatter of the outside ground about it taken as a fully correlated base error
+    (under a heap hemmed in on every side that surface still carries the slope-limited bump
+    of step 1, so the volume is low: the flag says so).
 
 A footprint whose edge cuts through a pile is flagged (``edge_cut``): along the band just
 outside its boundary (:data:`EDGE_BAND_M`, other footprints left out) the scanned surface is
@@ -378,6 +383,15 @@ def find_unassigned(
             model = toe_base(grid, cells, others, surface.z, surface.count, surface.sd,
                              surface.filled, base.toe_ring_m, noise_sd)
             method = "toe"
+            if not model.ok:
+                # no free ring around it: a plane through the region's own rim, the cells
+                # added around it to reach its toe
+                inner = cells.buffer(-EXTENT_PAD_CELLS * grid.cell)
+                if not inner.is_empty:
+                    model = toe_base(grid, inner, others_base, surface.z, surface.count, surface.sd,
+                                     surface.filled, EXTENT_PAD_CELLS * grid.cell, noise_sd)
+                    method = "rim"
+                    flags.append("toe_no_ring")
             if not model.ok:
                 gw = fill_nearest(ground[rows, cols])
                 model = BaseModel(kind="floor", grid=sub, floor=gw, floor_sigma_m=ground_sigma,
