@@ -46,7 +46,7 @@ chosen in this order:
     when even the rim is too small for a plane, the ground surface of step 1, with the
     robust scatter of the outside ground about it taken as a fully correlated base error
     (under a heap hemmed in on every side that surface still carries the slope-limited bump
-    of step 1, so the volume is low: the flag says so).
+    of step 1, so the volume is low; ``base_method`` says so).
 
 A footprint whose edge cuts through a pile is flagged (``edge_cut``): along the band just
 outside its boundary (:data:`EDGE_BAND_M`, other footprints left out) the scanned surface is
