@@ -212,6 +212,19 @@ def test_a_site_without_surveys_is_refused(good_site, capsys):
     assert _nothing_written(good_site)
 
 
+def test_a_survey_folder_without_clouds_is_refused(good_site, capsys):
+    (good_site / "surveys" / DATE / "a.laz").unlink()
+    (good_site / "surveys" / DATE / "stations.csv").unlink()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        code = main(["volumes", str(good_site), "--date", DATE])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert err == [f"error: {good_site.name}/surveys/{DATE}: no point cloud file (.las, .laz, .copc.laz) "
+                   "in the survey folder"], err
+    assert _nothing_written(good_site)
+
+
 def test_an_output_path_that_is_a_file_is_refused(good_site, capsys):
     (good_site / "volumes").mkdir()
     (good_site / "volumes" / DATE).write_text("not a folder")
