@@ -439,24 +439,6 @@ def _volumes(site: Site, surface: Surface, say: Progress) -> _Volumes:
     return _Volumes(table, thickness, gaps, unassigned)
 
 
-def unassigned_table(unassigned: Any) -> pd.DataFrame:
-    """The table of stock outside the footprints for the workbook and CSV: one row per region
-    (``region_id`` set), then one per footprint whose edge cuts through material
-    (``pile_id`` set, flag ``edge_cut``); the same columns whether or not anything was found."""
-    from inventory.volume.unassigned import EDGE_COLUMNS, UNASSIGNED_COLUMNS
-
-    cols = ["region_id", "pile_id"] + [c for c in UNASSIGNED_COLUMNS if c != "region_id"] + EDGE_COLUMNS[1:]
-    regions = pd.DataFrame(unassigned.regions.drop(columns="geometry"))
-    edges = unassigned.edges.assign(flags="edge_cut")
-    frames = [f for f in (regions, edges) if len(f)]
-    if not frames:
-        return pd.DataFrame({c: pd.Series(dtype=object if c in ("region_id", "pile_id", "base_method",
-                                                                 "next_to", "flags") else "float64")
-                             for c in cols})
-    out = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0].copy()
-    return out.reindex(columns=cols)
-
-
 def _book(run: _Loaded, say: Progress) -> BookResult:
     """Book stock rolled from the opening to the survey instant."""
     from inventory.stock import book as _book
@@ -522,7 +504,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
             "Materials": rec.materials,
             "Measured change": rec.change,
             "Belt split": book.belt_split,
-            **({"Unassigned stock": unassigned_table(volumes.unassigned)} if volumes.unassigned is not None else {}),
+            **({"Unassigned stock": volumes.unassigned.table()} if volumes.unassigned is not None else {}),
         },
         unassigned_stock=volumes.unassigned.regions if volumes.unassigned is not None else None,
         reason_codes=dict(rec.reason_codes),

@@ -138,7 +138,7 @@ def report_volumes(
     InputError, InputErrors
         Bad input; nothing is written.
     """
-    from inventory.close import _volumes, unassigned_table
+    from inventory.close import _volumes
     from inventory.export.volumes import write_volume_csv, write_volume_layers, write_volume_workbook
     from inventory.io.rasters import write_raster
     from inventory.survey.measure import measure_survey
@@ -169,14 +169,14 @@ def report_volumes(
                  "layers": f"volumes-{date}.gpkg", "unassigned": f"unassigned-{date}.csv",
                  "thickness": f"thickness-{date}.tif"}
         write_volume_csv(table, staged / names["csv"])
-        write_volume_csv(unassigned_table(found), staged / names["unassigned"])
+        write_volume_csv(found.table(), staged / names["unassigned"])
         about = {"site": site.name, "survey date": date, "CRS": site.crs,
                  "survey": survey.format_summary(), "piles": len(table),
                  "unassigned min thickness (m)": found.min_thickness_m,
                  "unassigned min area (m2)": found.min_area_m2,
                  "software version": __version__,
                  "tonnes": "volume times the pile's density (materials.csv, or the pile's own in piles.gpkg)"}
-        write_volume_workbook(table, unassigned_table(found), about, staged / names["workbook"])
+        write_volume_workbook(table, found.table(), about, staged / names["workbook"])
         foot = site.piles[["pile_id", "geometry"]].merge(table, on="pile_id", how="right")
         write_volume_layers(foot, found.regions, site.crs, date, staged / names["layers"])
         write_raster(staged / names["thickness"], vols.thickness, survey.surface.grid,

@@ -123,6 +123,11 @@ def test_a_footprint_drawn_through_a_pile_is_flagged_and_the_rest_reported():
     inside = math.pi * 9 * 1.5 + cone_volume(3.0, 1.5)
     assert r.volume_m3 == pytest.approx(cone_volume(6.0, 3.0) - inside, rel=0.02)
     assert any("P1" in m and "cuts through" in m for m in found.messages())
+    # one table for the sheet and the CSV: the region, then the cut footprint
+    table = found.table()
+    assert table[["region_id", "pile_id"]].fillna("").values.tolist() == [["U1", ""], ["", "P1"]]
+    assert table.loc[1, "flags"] == "edge_cut" and table.loc[0, "volume_m3"] == r.volume_m3
+    assert table.loc[1, "edge_cut_length_m"] == edges.iloc[0].edge_cut_length_m
 
 
 def test_a_crowned_yard_is_ground_not_stock():

@@ -107,7 +107,7 @@ def write_volume_workbook(
     table : DataFrame
         One row per pile, :data:`VOLUME_REPORT_COLUMNS`.
     unassigned : DataFrame
-        Stock outside the footprints, as ``inventory.close.unassigned_table`` makes it.
+        Stock outside the footprints (:meth:`inventory.volume.unassigned.Unassigned.table`).
     about : mapping
         Facts shown on the About sheet (site, survey date, CRS, ...), in order.
     path : str or Path

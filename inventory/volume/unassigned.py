@@ -162,6 +162,20 @@ class Unassigned:
     min_thickness_m: float
     min_area_m2: float
 
+    def table(self) -> pd.DataFrame:
+        """The regions and the cut footprints as one table (the workbook's ``Unassigned
+        stock`` sheet, ``unassigned-<date>.csv``): one row per region (``region_id`` set),
+        then one per footprint whose edge cuts through material (``pile_id`` set, flag
+        ``edge_cut``); the same columns whether or not anything was found."""
+        cols = ["region_id", "pile_id"] + [c for c in UNASSIGNED_COLUMNS if c != "region_id"] + EDGE_COLUMNS[1:]
+        text = _TEXT_COLUMNS | {"pile_id"}
+        frames = [f for f in (pd.DataFrame(self.regions.drop(columns="geometry")),
+                              self.edges.assign(flags="edge_cut")) if len(f)]
+        if not frames:
+            return pd.DataFrame({c: pd.Series(dtype=object if c in text else "float64") for c in cols})
+        out = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0].copy()
+        return out.reindex(columns=cols)
+
     def messages(self) -> list[str]:
         """One line per region and per cut footprint, for warnings and summaries."""
         out = []
