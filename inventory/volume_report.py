@@ -155,6 +155,7 @@ def report_volumes(
     dest = Path(out) if out is not None else site.root / "volumes" / date
     _check_destination(dest)
     inputs = _inputs(site, date)
+    made = not dest.parent.exists()
     dest.parent.mkdir(parents=True, exist_ok=True)
     staged = Path(tempfile.mkdtemp(prefix=f".{dest.name}.partial-", dir=dest.parent))
     try:
@@ -204,6 +205,11 @@ def report_volumes(
         _publish(staged, dest)
     except BaseException:
         shutil.rmtree(staged, ignore_errors=True)
+        if made:  # the folder this run made for its output, left empty
+            try:
+                dest.parent.rmdir()
+            except OSError:
+                pass
         raise
     return VolumeRun(site.name, date, table, found, dest, {k: dest / n for k, n in names.items()})
 

@@ -212,6 +212,20 @@ def test_a_site_without_surveys_is_refused(good_site, capsys):
     assert _nothing_written(good_site)
 
 
+def test_a_run_that_fails_midway_leaves_nothing(good_site, monkeypatch, capsys):
+    import inventory.survey.measure as sm
+
+    def broken(*args, **kw):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(sm, "measure_survey", broken)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        code = main(["volumes", str(good_site), "--date", DATE])
+    assert code == 1 and "disk full" in capsys.readouterr().err
+    assert _nothing_written(good_site)
+
+
 def test_a_survey_folder_without_clouds_is_refused(good_site, capsys):
     (good_site / "surveys" / DATE / "a.laz").unlink()
     (good_site / "surveys" / DATE / "stations.csv").unlink()
