@@ -143,11 +143,24 @@ def test_geopackage_layers_read_back(report):
     for col in ("volume_m3", "volume_sigma_m3", *VOLUME_SIGMA_COLUMNS, "survey_t"):
         np.testing.assert_allclose(piles[col].to_numpy(), t[col].to_numpy(), rtol=1e-14, err_msg=col)
     assert pyogrio.read_info(gpkg, layer="unassigned_stock")["features"] == 0
+    # every field described with its unit (GeoPackage schema extension, gpkg_data_columns)
+    import sqlite3
+
+    con = sqlite3.connect(gpkg)
+    titles = dict(con.execute("SELECT column_name, title FROM gpkg_data_columns WHERE table_name = 'piles'"))
+    described = {r[0] for r in con.execute("SELECT column_name FROM gpkg_data_columns WHERE table_name = "
+                                           "'unassigned_stock'")}
+    con.close()
+    assert titles["sigma_random_m3"] == "Volume uncertainty, random [m3]"
+    assert titles["survey_t"] == "Survey stock [t]"
+    assert set(VOLUME_REPORT_COLUMNS) <= set(titles)
+    assert {"region_id", "volume_m3", "centre_x_m", "next_to"} <= described
     if shutil.which("ogrinfo") is None:
         pytest.skip("ogrinfo (Debian gdal-bin) not installed")
     # GDAL's own reader: feature count, CRS and real-typed sigma parts
     proc = subprocess.run(["ogrinfo", "-so", str(gpkg), "piles"], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr
+    assert "Warning" not in proc.stderr and "ERROR" not in proc.stderr, proc.stderr
     assert re.search(r"Feature Count: 7\b", proc.stdout)
     assert 'ID["EPSG",25832]' in proc.stdout
     for col in VOLUME_SIGMA_COLUMNS:
