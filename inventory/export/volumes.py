@@ -12,7 +12,8 @@ Three files beside the survey's rasters (see :mod:`inventory.volume_report`):
     :data:`inventory.model.columns.FIELDS`), ``About`` (site, survey, cautions).
 ``volumes-<date>.gpkg``
     Layers ``piles`` (each footprint with its row of the table) and ``unassigned_stock``,
-    in the site CRS, each layer described in ``gpkg_contents``.
+    in the site CRS, each layer described in ``gpkg_contents`` and each field's title,
+    meaning and unit in ``gpkg_data_columns``.
 
 Every file is written beside its destination and renamed into place when complete.
 """
