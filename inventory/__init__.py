@@ -29,6 +29,8 @@ _API = {
     "SurveyResult": "survey",
     "measure_piles": "volume",
     "BaseSurfaces": "volume",
+    "find_unassigned": "volume.unassigned",
+    "report_volumes": "volume_report",
     "book_stock": "stock",
     "reconcile": "stock.reconcile",
     "close_period": "close",

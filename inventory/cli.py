@@ -106,6 +106,16 @@ def _cmd_close(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_command("volumes")
+def _cmd_volumes(args: argparse.Namespace) -> int:
+    from inventory.volume_report import report_volumes
+
+    run = report_volumes(args.site, args.date, out=args.out, progress=_progress(args),
+                         workers=args.workers, scheduler=args.scheduler)
+    _out(run.summary())
+    return EXIT_OK
+
+
 @_command("reopen")
 def _cmd_reopen(args: argparse.Namespace) -> int:
     from inventory.close import reopen_period
@@ -216,6 +226,16 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Close one period: survey, volumes, book stock, reconciliation; writes closes/PERIOD/ and the ledger.")
     p.add_argument("site", type=Path, metavar="SITE", help="site folder")
     p.add_argument("--period", required=True, type=_period, metavar="YYYY-MM", help="the month to close")
+
+    p = sub.add_parser("volumes", parents=[common, parallel], help="every pile's volume of one survey, no books",
+                       description="Measure every pile of one survey: volume, TIN volume, area, scanned fraction, "
+                                   "each part of the uncertainty, 95 %% interval, tonnes at table density, and the "
+                                   "stock outside every footprint. Writes CSV, a workbook, a GeoPackage and the "
+                                   "surface rasters into SITE/volumes/DATE/. Reads no books, writes no ledger.")
+    p.add_argument("site", type=Path, metavar="SITE", help="site folder")
+    p.add_argument("--date", required=True, metavar="YYYY-MM-DD", help="the survey (folder name under surveys/)")
+    p.add_argument("--out", type=Path, default=None, metavar="DIR",
+                   help="output folder (default SITE/volumes/DATE; replaced when the new one is complete)")
 
     p = sub.add_parser("reopen", parents=[common, shared], help="unlock a closed month (reason kept for good)",
                        description="Unlock a closed period so that it can be closed again. The reason is kept in the ledger.")

@@ -313,7 +313,8 @@ def _style_names(names: dict[str, str]) -> dict[str, str]:
     from inventory.export.styles import layer_style_name, raster_style_path
 
     styles = {f"{key}_sld": layer_style_name(names["layers"], layer).name
-              for key, layer in (("piles", "piles"), ("gaps", "coverage_gaps"), ("extent", "survey_extent"))}
+              for key, layer in (("piles", "piles"), ("gaps", "coverage_gaps"), ("extent", "survey_extent"),
+                                      ("unassigned", "unassigned_stock"))}
     for key in ("thickness", "change"):
         if key in names:
             styles[f"{key}_sld"] = raster_style_path(names[key]).name
@@ -346,6 +347,7 @@ class _Volumes:
     table: pd.DataFrame
     thickness: np.ndarray
     gaps: Any
+    unassigned: Any = None  # inventory.volume.unassigned.Unassigned
 
 
 def _check_writable(root: Path, period: str) -> None:
@@ -472,15 +474,29 @@ def _survey(run: _Loaded, staged: Path, progress: Progress | None, workers: int 
 
 
 def _volumes(site: Site, surface: Surface, say: Progress) -> _Volumes:
-    """Every pile's volume above its base, the thickness raster and the unscanned gaps."""
+    """Every pile's volume above its base, the thickness raster, the unscanned gaps and the
+    stock outside every footprint (a warning for each region and each cut footprint)."""
     from inventory.volume import measure as _vol
+    from inventory.volume.unassigned import find_unassigned
 
     say(f"volumes of {len(site.piles)} piles")
     base = _vol.BaseSurfaces.from_site(site, surface.grid)
     table = _vol.measure_piles(surface, site.piles, site.materials, base)
     _, thickness = _vol.thickness_raster(surface, site.piles, base)
     gaps = _vol.coverage_gaps(surface, site.piles)
-    return _Volumes(table, thickness, gaps)
+    say("stock outside the footprints")
+    cfg = site.config.unassigned
+    unassigned = find_unassigned(surface, site.piles, base, min_thickness_m=cfg.min_thickness_m,
+                                 min_area_m2=cfg.min_area_m2)
+    if len(unassigned.edges):
+        cut = set(unassigned.edges["pile_id"])
+        table["flags"] = [
+            ";".join(dict.fromkeys([f for f in str(fl or "").split(";") if f] + ["edge_cut"])) if pid in cut
+            else fl for pid, fl in zip(table["pile_id"], table["flags"])
+        ]
+    for line in unassigned.messages():
+        warnings.warn(InventoryWarning(line), stacklevel=2)
+    return _Volumes(table, thickness, gaps, unassigned)
 
 
 def _book(run: _Loaded, say: Progress) -> BookResult:
@@ -549,7 +565,9 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
             "Site totals": rec.site_totals,
             "Measured change": rec.change,
             "Belt split": book.belt_split,
+            **({"Unassigned stock": volumes.unassigned.table()} if volumes.unassigned is not None else {}),
         },
+        unassigned_stock=volumes.unassigned.regions if volumes.unassigned is not None else None,
         reason_codes=dict(rec.reason_codes),
         bias_rows=rec.bias_rows,
         vertical_reference=site.vertical_reference,
@@ -561,6 +579,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
                 "grid": vars(site.config.grid),
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),
+                "unassigned": vars(site.config.unassigned),
                 "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
             },
             # the close's own timings so far; _write_manifest stores the final copy

@@ -73,7 +73,8 @@ def test_every_output_is_there_and_readable_by_others(closed_site):
                      "classified-2026-10-31.laz", "report-2026-10.html", "run.json",
                      # styles beside the layers and rasters, and their legend
                      "piles-2026-10.piles.sld", "piles-2026-10.coverage_gaps.sld",
-                     "piles-2026-10.survey_extent.sld", "thickness-2026-10-31.sld",
+                     "piles-2026-10.survey_extent.sld", "piles-2026-10.unassigned_stock.sld",
+                     "thickness-2026-10-31.sld",
                      "change-2026-09-30_2026-10-31.sld", "legend-2026-10.png"):
         assert expected in names
     for p in folder.iterdir():

@@ -180,6 +180,9 @@ def test_every_feature_carries_period_and_survey_date(gpkg, result):
 
     for name in LAYER_NAMES:
         df = pyogrio.read_dataframe(gpkg, layer=name, read_geometry=False)
+        if name == "unassigned_stock" and result.unassigned_stock is None:
+            assert len(df) == 0  # the fake close did not look: an empty layer
+            continue
         assert len(df) > 0, name
         assert set(df["period"]) == {"2026-01"}, name
         assert set(df["survey_date"]) == {result.survey_date}, name
@@ -196,6 +199,8 @@ def test_a_recorded_close_puts_its_id_on_every_feature(result, tmp_path):
     for name in LAYER_NAMES:
         df = pyogrio.read_dataframe(path, layer=name, read_geometry=False)
         assert list(df.columns[-4:]) == COMMON_COLUMNS + CLOSE_COLUMNS, name
+        if not len(df):   # unassigned_stock is empty in this close: the columns are there
+            continue
         assert set(df["close_id"]) == {12}, name
         assert set(df["closed_utc"]) == {"2026-02-03T07:00:00+00:00"}, name
     assert list(read_piles_layer(path).columns) == PILE_COLUMNS + COMMON_COLUMNS + CLOSE_COLUMNS

@@ -1,6 +1,6 @@
 """The package's layers import only the layers below them (see DEVELOPERS.md, "The map").
 
-model <- io <- site <- survey, volume, stock <- ledger <- export <- close <- _demo <- cli.
+model <- io <- site <- survey, volume, stock <- ledger <- export <- close <- volume_report, _demo <- cli.
 ``errors``, ``parallel`` and ``_version`` import nothing of the package and are usable
 everywhere; ``make demo``'s script sits on top of the command line. Siblings (survey, volume,
 stock) do not import each other. Imports inside functions count too: a lazy import is still
@@ -26,6 +26,7 @@ RANK = {
     "ledger": 5,
     "export": 6,
     "close": 7,
+    "volume_report": 8,  # `inventory volumes`: the close's survey and volumes steps, no books
     "_demo": 8,  # the invented site's generator, behind `inventory sample`
     "cli": 9,
     "__main__": 10, "__init__": 10,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import sqlite3
 
 import numpy as np
@@ -10,7 +11,7 @@ import pytest
 
 from inventory.errors import LedgerError, PeriodLockedError
 from inventory.ledger.store import BALANCE_COLUMNS, HISTORY_COLUMNS, SCHEMA_VERSION, Ledger
-from inventory.model.results import PILE_COLUMNS
+from inventory.model.results import PILE_COLUMNS, VOLUME_SIGMA_COLUMNS
 
 INPUTS = {"surveys/2026-01-28/scan.laz": "1" * 64, "movements/2026-01/weighbridge.csv": "2" * 64}
 
@@ -340,9 +341,23 @@ def test_period_format_is_checked(make_close_result, ledger_path):
             led.record_close(res, INPUTS, "0.1.0")
 
 
+def _as_version_3(path) -> None:
+    """Turn a ledger into the layout of schema version 3 (before the parts of the volume
+    sigma), as a file written by that release would be."""
+    con = sqlite3.connect(path)
+    con.executescript(
+        "".join(f"ALTER TABLE balances DROP COLUMN {c};" for c in VOLUME_SIGMA_COLUMNS)
+        + "UPDATE schema_version SET version = 3;"
+    )
+    con.commit()
+    con.close()
+
+
 def _as_version_1(path) -> None:
     """Turn a ledger into the layout of schema version 1 (before base_sigma_t and the scale
-    fit rows), as a file written by the first release would be."""
+    fit rows; before the finance views of version 3), as a file written by the first
+    release would be."""
+    _as_version_3(path)
     con = sqlite3.connect(path)
     con.executescript(
         "DROP VIEW adopted_balances; DROP VIEW adopted_journal; DROP VIEW variance_by_material_month;"
@@ -361,11 +376,12 @@ def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(make_close_re
     _as_version_1(ledger_path)
     before = [r for r in _dump(ledger_path) if r.startswith("INSERT INTO \"balances\"")]
     with Ledger(ledger_path) as led:
-        assert led.schema_version() == SCHEMA_VERSION == 3
+        assert led.schema_version() == SCHEMA_VERSION == 4
         back = led.adopted("2026-01")
-        # the old close reads back with every figure; the new column is unknown for it
-        _same_frame(res.piles, back, [c for c in PILE_COLUMNS if c != "base_sigma_t"])
-        assert back["base_sigma_t"].isna().all()
+        # the old close reads back with every figure; the new columns are unknown for it
+        new = ["base_sigma_t", *VOLUME_SIGMA_COLUMNS]
+        _same_frame(res.piles, back, [c for c in PILE_COLUMNS if c not in new])
+        assert back[new].isna().all().all()
         assert led.scale_fit_history("2026-02").empty
         # and the next close keeps its scale fit rows
         nxt = make_close_result("2026-02")
@@ -376,7 +392,25 @@ def test_version_1_ledger_is_upgraded_in_place_keeping_every_close(make_close_re
     assert hist.values.tolist() == [["2026-02", "P1", "BC1", 1200.0, -15.0, 9.0]]
     # the old rows are still there, one more column at the end (NULL)
     after = [r for r in _dump(ledger_path) if r.startswith("INSERT INTO \"balances\"")]
-    assert [a.replace(",NULL)", ")") for a in after[: len(before)]] == before
+    assert [re.sub(r"(,NULL){5}\);$", ");", a) for a in after[: len(before)]] == before
+
+
+def test_version_3_ledger_gets_the_volume_sigma_parts(make_close_result, ledger_path):
+    """3 -> 4 adds the four parts of the volume sigma; old closes keep every figure, NULL parts."""
+    res = make_close_result("2026-01")
+    res.piles["sigma_random_m3"] = 1.5
+    with Ledger(ledger_path) as led:
+        led.record_close(res, INPUTS, "0.1.0")
+    _as_version_3(ledger_path)
+    with Ledger(ledger_path) as led:
+        assert led.schema_version() == 4
+        back = led.adopted("2026-01")
+        _same_frame(res.piles, back, [c for c in PILE_COLUMNS if c not in VOLUME_SIGMA_COLUMNS])
+        assert back[VOLUME_SIGMA_COLUMNS].isna().all().all()
+        nxt = make_close_result("2026-02")
+        nxt.piles["sigma_random_m3"] = 2.25
+        led.record_close(nxt, INPUTS, "0.2.0")
+        assert led.adopted("2026-02")["sigma_random_m3"].tolist() == [2.25] * len(nxt.piles)
 
 
 def test_upgrade_that_cannot_write_leaves_the_file_unchanged(make_close_result, ledger_path, tmp_path):

@@ -271,10 +271,13 @@ def test_an_older_shared_ledger_is_upgraded_and_a_newer_one_refused(make_close_r
     with PgLedger(url, "yard-a") as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
     with psycopg.connect(url, autocommit=True) as con:
+        # back to the layout of schema 2: no finance views (3), no parts of the volume sigma (4)
         con.execute("DROP VIEW adopted_balances, adopted_journal, variance_by_material_month, close_history")
-        con.execute("DELETE FROM schema_version WHERE version = 3")
+        for col in ("sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3", "sigma_base_m3"):
+            con.execute(f"ALTER TABLE balances DROP COLUMN {col}")
+        con.execute("DELETE FROM schema_version WHERE version IN (3, 4)")
     with PgLedger(url, "yard-a") as led:
-        assert led.schema_version() == SCHEMA_VERSION == 3
+        assert led.schema_version() == SCHEMA_VERSION == 4
         assert len(led.adopted("2026-01")) == 3
     with psycopg.connect(url, autocommit=True) as con:
         assert con.execute("SELECT COUNT(*) FROM adopted_balances").fetchone()[0] == 3

@@ -9,6 +9,7 @@ import pytest
 
 from inventory.ledger.schema import VIEW_NAMES
 from inventory.ledger.store import SCHEMA_VERSION, Ledger
+from inventory.model.results import VOLUME_SIGMA_COLUMNS
 
 INPUTS = {"surveys/2026-01-28/scan.laz": "1" * 64}
 
@@ -92,13 +93,15 @@ def test_schema_2_ledger_gets_the_views_on_open(make_close_result, tmp_path):
     with Ledger(path) as led:
         led.record_close(make_close_result("2026-01"), INPUTS, "0.1.0")
     con = sqlite3.connect(path)
+    # the layout of schema 2: no views, no parts of the volume sigma (schema 4)
     con.executescript("".join(f"DROP VIEW {v};" for v in VIEW_NAMES)
+                      + "".join(f"ALTER TABLE balances DROP COLUMN {c};" for c in VOLUME_SIGMA_COLUMNS)
                       + "UPDATE schema_version SET version = 2;")
     con.commit()
     con.close()
     assert not _rows(path, "SELECT name FROM sqlite_master WHERE type = 'view' AND name = 'close_history'")
     with Ledger(path) as led:
-        assert led.schema_version() == SCHEMA_VERSION == 3
+        assert led.schema_version() == SCHEMA_VERSION == 4
     views = {r["name"] for r in _rows(path, "SELECT name FROM sqlite_master WHERE type = 'view'")}
     assert set(VIEW_NAMES) <= views
     assert len(_rows(path, "SELECT * FROM adopted_balances")) == 3

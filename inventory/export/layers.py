@@ -11,6 +11,10 @@ One file ``piles-<period>.gpkg`` (OGC GeoPackage) with three layers in the site 
 ``survey_extent``
     The outline of the survey (survey_date, points), speckle closed and simplified to the
     cell size (``inventory.close._survey_extent``).
+``unassigned_stock``
+    Regions of stock outside every footprint, each with its volume and the parts of its
+    uncertainty (:func:`inventory.volume.unassigned.find_unassigned`); empty when none was
+    found or the close did not look.
 
 Every layer also carries ``period`` and ``survey_date`` on each feature, and, for a close
 recorded in the ledger, ``close_id`` and ``closed_utc`` (:data:`CLOSE_COLUMNS`), so months
@@ -36,7 +40,7 @@ from inventory.model.results import PILE_COLUMNS, CloseResult
 
 __all__ = ["CLOSE_COLUMNS", "COMMON_COLUMNS", "LAYER_NAMES", "read_piles_layer", "write_layers"]
 
-LAYER_NAMES = ("piles", "coverage_gaps", "survey_extent")
+LAYER_NAMES = ("piles", "coverage_gaps", "survey_extent", "unassigned_stock")
 
 #: Columns every layer carries on each feature, after its own.
 COMMON_COLUMNS = ["period", "survey_date"]
@@ -51,6 +55,9 @@ _LAYER_TEXTS = {
                      "{date}: scan speckle narrower than the fill distance merged away; the "
                      "surface there is interpolated or missing.",
     "survey_extent": "Outline of the area the survey of {date} covered (close of {period}).",
+    "unassigned_stock": "Stock outside every pile footprint, survey of {date} (close of {period}): "
+                        "material above the base thicker than the site's threshold, with its "
+                        "volume and uncertainty; it is in no pile's stock.",
 }
 
 #: The schema extension's rows in ``gpkg_extensions`` (OGC GeoPackage 1.3, F.9, table 90).
@@ -139,6 +146,18 @@ def _piles_layer(result: CloseResult):
     return gdf
 
 
+def _unassigned_layer(result: CloseResult):
+    """The ``unassigned_stock`` layer: the close's regions, or an empty layer with their columns."""
+    import geopandas as gpd
+
+    from inventory.volume.unassigned import empty_regions
+
+    frame = getattr(result, "unassigned_stock", None)
+    if frame is None:
+        frame = empty_regions(result.crs)
+    return _as_crs(gpd.GeoDataFrame(frame, geometry="geometry"), result.crs, "unassigned_stock")
+
+
 def _as_crs(gdf, crs: str, what: str):
     """The frame in the site CRS; a frame without a CRS is taken to be in it."""
     if gdf.crs is None:
@@ -178,6 +197,7 @@ def write_layers(result: CloseResult, path: str | Path) -> Path:
         ("piles", piles, "MultiPolygon"),
         ("coverage_gaps", gaps, "MultiPolygon"),
         ("survey_extent", extent, "MultiPolygon"),
+        ("unassigned_stock", _unassigned_layer(result), "MultiPolygon"),
     ]
     with atomic_path(dest) as tmp:
         for name, gdf, geom_type in layers:

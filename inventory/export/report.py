@@ -367,6 +367,37 @@ def _total_sigma_rows(result: CloseResult) -> list[list[str]]:
     ]
 
 
+def _unassigned_section(result: CloseResult) -> str:
+    """Stock outside every footprint and footprints whose edge cuts through material."""
+    esc = html.escape
+    regions = getattr(result, "unassigned_stock", None)
+    if regions is None:
+        return "<p>The close did not look for stock outside the footprints.</p>"
+    parts = []
+    if len(regions):
+        parts.append("<p>Material above the base outside every footprint. It is in no pile's "
+                     "stock: assign it (redraw a footprint or register a pile) or explain it.</p>")
+        parts.append(_table(
+            ["region", "centre E", "centre N", "area (m²)", "greatest thickness (m)", "base",
+             "volume (m³)", "95 % ± (m³)", "next to", "flags"],
+            [[esc(str(r.region_id)), _num(r.centre_x_m, 1), _num(r.centre_y_m, 1), _num(r.area_m2, 1),
+              _num(r.max_thickness_m), esc(str(r.base_method)), _num(r.volume_m3, 1),
+              _num(r.volume_ci95_m3, 1), esc(str(r.next_to or "")), esc(str(r.flags or ""))]
+             for r in regions.itertuples(index=False)]))
+    else:
+        parts.append("<p>No stock found outside the footprints.</p>")
+    table = (result.tables or {}).get("Unassigned stock")
+    if table is not None and "edge_cut_length_m" in table.columns:
+        cut = table[table["pile_id"].notna()] if "pile_id" in table.columns else table.iloc[0:0]
+        if len(cut):
+            parts.append("<p>Footprints whose edge cuts through material (still thick just outside "
+                         "the edge): their volume misses what lies beyond it.</p>")
+            parts.append(_table(["pile", "edge length through material (m)", "thickness at edge (m)"],
+                                [[esc(str(r.pile_id)), _num(r.edge_cut_length_m, 1),
+                                  _num(r.edge_max_thickness_m)] for r in cut.itertuples(index=False)]))
+    return "\n".join(parts)
+
+
 def report_html(result: CloseResult) -> str:
     """The report page as a string (see :func:`write_report`)."""
     p = result.piles
@@ -449,6 +480,8 @@ src="data:image/png;base64,{_bar_figure(result)}">
 <span style="background:{SIGNIFICANT_COLOR}"></span>{esc(ROW_LEGEND["significant"])}</p>
 {piles_table}
 {_registration(result)}
+<h2>Stock outside the footprints</h2>
+{_unassigned_section(result)}
 <h2>Adjustment journal</h2>
 {jt}
 <h2>Scale diagnostics</h2>

@@ -9,7 +9,7 @@ them from there too):
     classes of the close as rules on ``variance_pct`` (OGC Filter Encoding 1.0 comparisons,
     lower bound inclusive, upper exclusive), a grey rule for a pile without a variance, the
     outline thick and solid where ``out_of_tolerance`` is 1, thin and dashed otherwise, and
-    the pile id as label. ``coverage_gaps`` and ``survey_extent``: outlines.
+    the pile id as label. ``coverage_gaps``, ``survey_extent`` and ``unassigned_stock``: outlines.
 ``<raster>.sld``
     Beside ``thickness-<date>.tif`` and ``change-<a>_<b>.tif``: an SLD 1.0.0
     ``RasterSymbolizer`` whose ``ColorMap`` spreads the thickness ramp from 0 to the thickest
@@ -39,6 +39,7 @@ from inventory.model.symbology import (
     OUTLINE_OUT_OF_TOLERANCE,
     PILE_FILL_OPACITY,
     SURVEY_EXTENT_COLOR,
+    UNASSIGNED_STOCK_COLOR,
     THICKNESS_COLORS,
     ColourClass,
     ramp_stops,
@@ -276,7 +277,7 @@ def write_styles(result: CloseResult, gpkg: str | Path, thickness: str | Path | 
     Returns
     -------
     dict
-        Layer or raster name (``piles``, ``coverage_gaps``, ``survey_extent``, ``thickness``,
+        Layer or raster name (``piles``, ``coverage_gaps``, ``survey_extent``, ``unassigned_stock``, ``thickness``,
         ``change``) -> the SLD written.
     """
     written = {
@@ -289,6 +290,10 @@ def write_styles(result: CloseResult, gpkg: str | Path, thickness: str | Path | 
             "survey_extent", f"Survey extent {result.survey_date}",
             "Outline of the area the survey covered.", SURVEY_EXTENT_COLOR, 1.2),
             layer_style_name(gpkg, "survey_extent")),
+        "unassigned_stock": _write_xml(_outline_sld(
+            "unassigned_stock", f"Stock outside the footprints, survey {result.survey_date}",
+            "Outline of material above the base outside every pile footprint: in no pile's stock.",
+            UNASSIGNED_STOCK_COLOR, 2.0), layer_style_name(gpkg, "unassigned_stock")),
     }
     if thickness is not None:
         written["thickness"] = _write_xml(raster_sld(

@@ -34,6 +34,7 @@ import pandas as pd
 
 from inventory.errors import LedgerError
 from inventory.ledger.schema import BALANCE_COLUMNS, BOOL_COLUMNS, SCHEMA_VERSION, TEXT_COLUMNS
+from inventory.model.results import VOLUME_SIGMA_COLUMNS
 from inventory.ledger.store import Ledger, _typed, _utc_now
 
 __all__ = ["PgLedger", "PG_SCHEMA", "PG_MIGRATIONS", "PG_VIEWS", "is_url", "redacted"]
@@ -68,8 +69,10 @@ def _pg_type(col: str) -> str:
     return "DOUBLE PRECISION"  # SQLite's REAL is an 8-byte float
 
 
+# The balances of schema 2 (what PG_SCHEMA makes); later columns come by PG_MIGRATIONS.
 _PG_BALANCE_DDL = ",\n    ".join(
-    f"{c} {_pg_type(c)}" + (" NOT NULL" if c == "pile_id" else "") for c in BALANCE_COLUMNS
+    f"{c} {_pg_type(c)}" + (" NOT NULL" if c == "pile_id" else "")
+    for c in BALANCE_COLUMNS if c not in VOLUME_SIGMA_COLUMNS
 )
 
 
@@ -216,6 +219,10 @@ PG_BASE_VERSION = 2
 #: :data:`inventory.ledger.schema.MIGRATIONS`); each runs in one transaction with its version row.
 PG_MIGRATIONS: dict[int, str] = {
     2: PG_VIEWS,
+    # PostgreSQL expands ``b.*`` when a view is made: adopted_balances is made again to show
+    # the new columns
+    3: "".join(f"ALTER TABLE balances ADD COLUMN {c} DOUBLE PRECISION;\n" for c in VOLUME_SIGMA_COLUMNS)
+       + "DROP VIEW adopted_balances;\n" + PG_VIEWS.split(";\n")[0] + ";\n",
 }
 
 

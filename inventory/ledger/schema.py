@@ -9,7 +9,7 @@ or deletes stored rows.
 
 from __future__ import annotations
 
-from inventory.model.results import PILE_COLUMNS
+from inventory.model.results import PILE_COLUMNS, VOLUME_SIGMA_COLUMNS
 
 __all__ = [
     "BALANCE_COLUMNS", "BOOL_COLUMNS", "HISTORY_COLUMNS", "MIGRATIONS", "SCALE_FIT_COLUMNS", "SCHEMA",
@@ -18,7 +18,7 @@ __all__ = [
 
 #: Version of the table layout below; bumped on any change, checked on open. A ledger of an
 #: older version is brought up to date on open by :data:`MIGRATIONS`, in one transaction.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 #: Pile columns stored per close, with their SQLite type (every figure of the close).
 TEXT_COLUMNS = {"pile_id", "material", "base_method", "flags"}
@@ -197,9 +197,12 @@ CREATE TRIGGER reopenings_frozen BEFORE UPDATE ON reopenings
 #: 1 -> 2: ``balances.base_sigma_t`` (the fixed-base part of the survey sigma, NULL for
 #: closes made before: no shared part known) and the belt-scale fit rows of each close.
 #: 2 -> 3: the finance views (:data:`VIEWS`); no table changes.
+#: 3 -> 4: the parts of the volume sigma (``VOLUME_SIGMA_COLUMNS``: random, correlated,
+#: interpolated, base), NULL for closes made before.
 MIGRATIONS: dict[int, str] = {
     1: "ALTER TABLE balances ADD COLUMN base_sigma_t REAL;\n" + _SCALE_FIT_TABLE + _SCALE_FIT_TRIGGERS,
     2: VIEWS,
+    3: "".join(f"ALTER TABLE balances ADD COLUMN {c} REAL;\n" for c in VOLUME_SIGMA_COLUMNS),
 }
 
 #: Columns of :meth:`Ledger.scale_fit_history` (as ``inventory.stock.reconcile.BIAS_ROW_COLUMNS``).

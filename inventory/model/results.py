@@ -17,12 +17,16 @@ import numpy as np
 from inventory.model.grid import Surface
 from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 
-__all__ = ["PILE_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
+__all__ = ["PILE_COLUMNS", "VOLUME_SIGMA_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
+
+#: The parts of ``volume_sigma_m3`` (added in quadrature; see docs/uncertainty.md), shown
+#: beside it in the Piles sheet and the piles layer. The ledger keeps the total only.
+VOLUME_SIGMA_COLUMNS = ["sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3", "sigma_base_m3"]
 
 #: Columns of ``CloseResult.piles`` (one row per pile), in display order.
 PILE_COLUMNS = [
     "pile_id", "material", "base_method", "area_m2", "scanned_fraction",
-    "volume_m3", "volume_sigma_m3", "volume_tin_m3", "below_base_m3",
+    "volume_m3", "volume_sigma_m3", *VOLUME_SIGMA_COLUMNS, "volume_tin_m3", "below_base_m3",
     "density_t_m3", "survey_t", "survey_dry_t", "survey_sigma_t", "base_sigma_t",
     "opening_t", "receipts_t", "dispatches_t", "transfers_in_t", "transfers_out_t",
     "book_t", "book_sigma_t",
@@ -93,3 +97,6 @@ class CloseResult:
     #: What the survey heights are referred to (``site.toml`` ``vertical_reference``):
     #: written in the raster metadata and the GeoPackage layer descriptions.
     vertical_reference: str = DEFAULT_VERTICAL_REFERENCE
+    #: Stock outside every footprint (``inventory.volume.unassigned.UNASSIGNED_COLUMNS`` and
+    #: the region polygons, a GeoDataFrame); None when the close did not look for it.
+    unassigned_stock: Any = None

@@ -39,6 +39,7 @@ __all__ = [
     "SIGNIFICANT_COLOR",
     "SURVEY_EXTENT_COLOR",
     "THICKNESS_COLORS",
+    "UNASSIGNED_STOCK_COLOR",
     "VARIANCE_COLORS",
     "ColourClass",
     "class_of",
@@ -64,6 +65,8 @@ OUTLINE_OTHER = (0.8, (4.0, 2.0))
 #: Outline of the unscanned areas (coverage gaps) and of the survey extent.
 COVERAGE_GAP_COLOR = "#6a1b9a"
 SURVEY_EXTENT_COLOR = "#3b3b3b"
+#: Outline of stock found outside every footprint (``unassigned_stock``): it needs a decision.
+UNASSIGNED_STOCK_COLOR = "#c0182a"
 #: Sequential ramp for thickness above base, 0 m first.
 THICKNESS_COLORS = ("#f3ecd8", "#dcc591", "#b98f55", "#82592f", "#4a3019")
 #: Diverging ramp for surface change, most removed first (the variance scheme).

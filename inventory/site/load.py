@@ -122,6 +122,14 @@ class BaseConfig:
 
 
 @dataclass(frozen=True)
+class UnassignedConfig:
+    """``[unassigned]``: stock outside every footprint (:mod:`inventory.volume.unassigned`)."""
+
+    min_thickness_m: float = 0.3
+    min_area_m2: float = 4.0
+
+
+@dataclass(frozen=True)
 class ReconcileConfig:
     significance_k: float = 2.0
     default_tolerance_pct: float = 3.0
@@ -137,6 +145,7 @@ class SiteConfig:
     survey: SurveyConfig = SurveyConfig()
     base: BaseConfig = BaseConfig()
     reconcile: ReconcileConfig = ReconcileConfig()
+    unassigned: UnassignedConfig = UnassignedConfig()
     machines: dict = field(default_factory=dict)  # id -> inventory.model.pose.Machine
     raw: dict = field(default_factory=dict, compare=False)
 
@@ -552,6 +561,10 @@ class _Loader:
                 default_tolerance_pct=float(get("reconcile", "default_tolerance_pct", 3.0)),
                 adjust_to=str(get("reconcile", "adjust_to", "survey")),
                 duplicate_window_min=float(get("reconcile", "duplicate_window_min", 10.0)),
+            ),
+            unassigned=UnassignedConfig(
+                min_thickness_m=float(get("unassigned", "min_thickness_m", 0.3)),
+                min_area_m2=float(get("unassigned", "min_area_m2", 4.0)),
             ),
             machines=self._machines(raw) if not any(p[:1] == ("machines",) for p in self.refused) else {},
             raw=raw,

@@ -1,0 +1,227 @@
+"""Outputs of ``inventory volumes``: the pile volumes of one survey, without books.
+
+Three files beside the survey's rasters (see :mod:`inventory.volume_report`):
+
+``volumes-<date>.csv``
+    One row per pile, columns :data:`VOLUME_REPORT_COLUMNS` (UTF-8, comma separated, text a
+    spreadsheet would run as a formula neutralised).
+``volumes-<date>.xlsx``
+    Sheets ``Volumes`` (the same table, with units in the number formats), ``Unassigned
+    stock`` (stock outside every footprint and footprints whose edge cuts through material)
+    and ``Columns`` (every column's title, unit and meaning, from
+    :data:`inventory.model.columns.FIELDS`), ``About`` (site, survey, cautions).
+``volumes-<date>.gpkg``
+    Layers ``piles`` (each footprint with its row of the table) and ``unassigned_stock``,
+    in the site CRS, each layer described in ``gpkg_contents`` and each field's title,
+    meaning and unit in ``gpkg_data_columns``.
+
+Every file is written beside its destination and renamed into place when complete.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+import pandas as pd
+
+from inventory.io.atomic import atomic_path
+from inventory.model.columns import FIELDS, unit_of
+from inventory.model.texts import CAUTIONS
+
+__all__ = ["VOLUME_REPORT_COLUMNS", "write_volume_csv", "write_volume_workbook", "write_volume_layers"]
+
+#: Columns of the volume table, in order.
+VOLUME_REPORT_COLUMNS = [
+    "pile_id", "material", "base_method", "area_m2", "scanned_fraction",
+    "volume_m3", "volume_tin_m3", "below_base_m3",
+    "volume_sigma_m3", "sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3",
+    "sigma_base_m3", "volume_ci95_m3", "volume_low95_m3", "volume_high95_m3",
+    "density_t_m3", "survey_t", "survey_sigma_t", "survey_dry_t", "flags",
+]
+
+#: Excel number formats by unit symbol (the unit comes from the column name).
+_FORMATS = {"m3": '#,##0.0 "m³"', "m2": '#,##0.0 "m²"', "t": '#,##0.0 "t"', "t/m3": '0.000 "t/m³"',
+            "m": '0.00 "m"', "%": '0.0 "%"'}
+
+
+def write_volume_csv(table: pd.DataFrame, path: str | Path) -> Path:
+    """Write a table as CSV (formula-like text neutralised); renamed into place when complete."""
+    from inventory.export.cells import write_csv
+
+    dest = Path(path)
+    with atomic_path(dest) as tmp:
+        tmp.write_text(write_csv(table, index=False), encoding="utf-8")
+    return dest
+
+
+def _value(v: Any) -> Any:
+    if v is None or v is pd.NA:
+        return None
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        return float(v) if np.isfinite(v) else None
+    return str(v)
+
+
+def _sheet(wb, title: str, frame: pd.DataFrame, empty_text: str) -> None:
+    from openpyxl.styles import Font
+    from openpyxl.utils import get_column_letter
+
+    from inventory.export.cells import neutralise
+
+    ws = wb.create_sheet(title)
+    cols = [str(c) for c in frame.columns]
+    for j, col in enumerate(cols, start=1):
+        cell = ws.cell(row=1, column=j, value=col)
+        cell.font = Font(bold=True)
+    for i, row in enumerate(frame.itertuples(index=False, name=None), start=2):
+        for j, (col, v) in enumerate(zip(cols, row), start=1):
+            cell = ws.cell(row=i, column=j, value=neutralise(_value(v)))
+            unit = unit_of(col)
+            if unit is not None and isinstance(cell.value, float):
+                cell.number_format = _FORMATS.get(unit[0], "General")
+            elif col == "scanned_fraction" and isinstance(cell.value, float):
+                cell.number_format = "0.0%"
+    if not len(frame):
+        ws.cell(row=2, column=1, value=empty_text)
+    ws.freeze_panes = "B2"
+    if cols:
+        ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(len(frame) + 1, 1)}"
+    for j, col in enumerate(cols, start=1):
+        shown = [len(col)] + [len(f"{v:,.1f}") if isinstance(v, float) else len(str(v)) for v in frame[col]]
+        ws.column_dimensions[get_column_letter(j)].width = min(max(shown) + 3, 50)
+
+
+def write_volume_workbook(
+    table: pd.DataFrame, unassigned: pd.DataFrame, about: Mapping[str, Any], path: str | Path
+) -> Path:
+    """The small volume workbook (sheets Volumes, Unassigned stock, Columns, About).
+
+    Parameters
+    ----------
+    table : DataFrame
+        One row per pile, :data:`VOLUME_REPORT_COLUMNS`.
+    unassigned : DataFrame
+        Stock outside the footprints (:meth:`inventory.volume.unassigned.Unassigned.table`).
+    about : mapping
+        Facts shown on the About sheet (site, survey date, CRS, ...), in order.
+    path : str or Path
+    """
+    from openpyxl import Workbook
+    from openpyxl.styles import Font
+
+    wb = Workbook()
+    wb.remove(wb.active)
+    _sheet(wb, "Volumes", table, "No piles.")
+    _sheet(wb, "Unassigned stock", unassigned, "No stock found outside the footprints.")
+    cols = list(dict.fromkeys(list(table.columns) + list(unassigned.columns)))
+    meanings = pd.DataFrame(
+        [{"column": c, "title": FIELDS[c][0] if c in FIELDS else c,
+          "unit": (unit_of(c) or ("", ""))[0], "meaning": FIELDS[c][1] if c in FIELDS else ""}
+         for c in cols])
+    _sheet(wb, "Columns", meanings, "")
+    ws = wb.create_sheet("About")
+    row = 1
+    for key, value in about.items():
+        ws.cell(row=row, column=1, value=str(key)).font = Font(bold=True)
+        ws.cell(row=row, column=2, value=_value(value))
+        row += 1
+    row += 1
+    for text in CAUTIONS:
+        ws.cell(row=row, column=1, value=text)
+        row += 1
+    ws.column_dimensions["A"].width = 24
+    ws.column_dimensions["B"].width = 60
+    wb.properties.creator = "inventory"
+    wb.properties.title = f"Pile volumes, survey of {about.get('survey date', '')}"
+    dest = Path(path)
+    with atomic_path(dest) as tmp:
+        wb.save(tmp)
+    return dest
+
+
+_LAYER_TEXTS = {
+    "piles": "Pile footprints with their volume above base, its uncertainty (random, correlated, "
+             "interpolated and base parts, 95 % interval) and tonnes, survey of {date}. No books.",
+    "unassigned_stock": "Stock outside every pile footprint, survey of {date}: material above the "
+                        "base thicker than the site's threshold, with its volume and uncertainty.",
+}
+
+
+def write_volume_layers(
+    piles: Any, unassigned: Any, crs: str, date: str, path: str | Path
+) -> Path:
+    """GeoPackage with the layers ``piles`` and ``unassigned_stock`` (MultiPolygon, site CRS).
+
+    ``piles`` is a GeoDataFrame of footprints with the volume table's columns; ``unassigned``
+    the regions of :func:`inventory.volume.unassigned.find_unassigned`.
+    """
+    import geopandas as gpd
+    import pyogrio
+
+    dest = Path(path)
+    with atomic_path(dest) as tmp:
+        for name, frame in (("piles", piles), ("unassigned_stock", unassigned)):
+            gdf = gpd.GeoDataFrame(frame, geometry="geometry")
+            if gdf.crs is None:
+                gdf = gdf.set_crs(crs)
+            gdf = gdf.reset_index(drop=True)
+            gdf["survey_date"] = date
+            for col in gdf.columns:
+                if col != "geometry" and pd.api.types.is_float_dtype(gdf[col]):
+                    gdf[col] = gdf[col].astype("float64")
+            pyogrio.write_dataframe(
+                gdf, tmp, layer=name, driver="GPKG", geometry_type="MultiPolygon",
+                promote_to_multi=True, append=tmp.exists(),
+                layer_options={"SPATIAL_INDEX": "YES"}, dataset_options={"VERSION": "1.2"},
+            )
+        _describe(tmp, date, crs)
+    return dest
+
+
+def _describe(path: Path, date: str, crs: str) -> None:
+    """Layer descriptions in ``gpkg_contents``; each field's title and meaning, with its
+    unit, in ``gpkg_data_columns`` (OGC GeoPackage 1.3, annex F.9, the schema extension)."""
+    con = sqlite3.connect(path)
+    try:
+        with con:
+            con.execute(
+                "CREATE TABLE IF NOT EXISTS gpkg_data_columns (table_name TEXT NOT NULL, "
+                "column_name TEXT NOT NULL, name TEXT, title TEXT, description TEXT, "
+                "mime_type TEXT, constraint_name TEXT, "
+                "CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name), "
+                "CONSTRAINT gdc_tn UNIQUE (table_name, name))")
+            con.execute(
+                "CREATE TABLE IF NOT EXISTS gpkg_extensions (table_name TEXT, column_name TEXT, "
+                "extension_name TEXT NOT NULL, definition TEXT NOT NULL, scope TEXT NOT NULL, "
+                "CONSTRAINT ge_tce UNIQUE (table_name, column_name, extension_name))")
+            con.execute("INSERT OR IGNORE INTO gpkg_extensions VALUES ('gpkg_data_columns', NULL, "
+                        "'gpkg_schema', 'http://www.geopackage.org/spec/#extension_schema', 'read-write')")
+            for name, text in _LAYER_TEXTS.items():
+                con.execute("UPDATE gpkg_contents SET description = ? WHERE table_name = ?",
+                            (text.format(date=date), name))
+                geom = con.execute("SELECT column_name FROM gpkg_geometry_columns WHERE table_name = ?",
+                                   (name,)).fetchone()[0]
+                for row in con.execute(f'PRAGMA table_info("{name}")').fetchall():
+                    column, pk = row[1], row[5]
+                    if pk:
+                        continue
+                    if column == geom:
+                        title, text_ = "Geometry", f"{name} polygons in the site CRS ({crs})."
+                    elif column in FIELDS:
+                        title, text_ = FIELDS[column]
+                        unit = unit_of(column)
+                        if unit is not None:
+                            title, text_ = f"{title} [{unit[0]}]", f"{text_} Unit: {unit[1]} ({unit[0]})."
+                    else:
+                        continue
+                    con.execute("INSERT OR REPLACE INTO gpkg_data_columns (table_name, column_name, name, "
+                                "title, description) VALUES (?, ?, ?, ?, ?)", (name, column, title, title, text_))
+    finally:
+        con.close()
