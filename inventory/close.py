@@ -482,6 +482,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         survey_date=ref.date, survey_instant=ref.instant, previous_survey_date=run.prev_date,
         piles=_assemble_piles(volumes.table, rec.piles), footprints=site.piles[["pile_id", "geometry"]].copy(),
         movements=movements, journal=rec.journal,
+        posting=_rec.value_lines(rec.lines, site.materials, site.config.journal),
         scale_diagnostics=rec.scale_diagnostics, duplicates=book.duplicates,
         surface=surface, thickness=volumes.thickness, change=change, coverage_gaps=volumes.gaps,
         survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
@@ -499,6 +500,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
                 "grid": vars(site.config.grid),
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),
+                "journal": vars(site.config.journal),
                 "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
             },
             # the close's own timings so far; _write_manifest stores the final copy

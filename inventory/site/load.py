@@ -80,6 +80,8 @@ class Material:
     density_sd_t_m3: float
     moisture_pct: float
     tolerance_pct: float | None = None
+    #: Stock value per tonne in the currency of ``[journal] currency`` (None = not valued).
+    unit_cost: float | None = None
 
 
 @dataclass(frozen=True)
@@ -123,6 +125,19 @@ class ReconcileConfig:
     default_tolerance_pct: float = 3.0
     adjust_to: str = "survey"
     duplicate_window_min: float = 10.0
+    #: Adjustment policy: "all", "significant" (beyond k sigma) or "out_of_tolerance".
+    adjust: str = "all"
+    #: Hold an UNEXPLAINED variance (significant, out of tolerance, no explanation found).
+    hold_unexplained: bool = True
+
+
+@dataclass(frozen=True)
+class JournalConfig:
+    """The ``[journal]`` section of site.toml: codes and currency of the posting journal."""
+
+    currency: str | None = None
+    accounts: dict = field(default_factory=dict)   # material -> stock account code
+    locations: dict = field(default_factory=dict)  # pile id -> storage location code
 
 
 @dataclass(frozen=True)
@@ -133,6 +148,7 @@ class SiteConfig:
     survey: SurveyConfig = SurveyConfig()
     base: BaseConfig = BaseConfig()
     reconcile: ReconcileConfig = ReconcileConfig()
+    journal: JournalConfig = JournalConfig()
     machines: dict = field(default_factory=dict)  # id -> inventory.model.pose.Machine
     raw: dict = field(default_factory=dict, compare=False)
 
@@ -541,6 +557,13 @@ class _Loader:
                 default_tolerance_pct=float(get("reconcile", "default_tolerance_pct", 3.0)),
                 adjust_to=str(get("reconcile", "adjust_to", "survey")),
                 duplicate_window_min=float(get("reconcile", "duplicate_window_min", 10.0)),
+                adjust=str(get("reconcile", "adjust", "all")),
+                hold_unexplained=bool(get("reconcile", "hold_unexplained", True)),
+            ),
+            journal=JournalConfig(
+                currency=get("journal", "currency", None),
+                accounts={str(k): str(v) for k, v in (get("journal", "accounts", None) or {}).items()},
+                locations={str(k): str(v) for k, v in (get("journal", "locations", None) or {}).items()},
             ),
             machines=self._machines(raw) if not any(p[:1] == ("machines",) for p in self.refused) else {},
             raw=raw,
@@ -668,6 +691,7 @@ class _Loader:
                 row.density_sd_t_m3,
                 row.moisture_pct,
                 None if pd.isna(row.tolerance_pct) else float(row.tolerance_pct),
+                None if pd.isna(getattr(row, "unit_cost", None)) else float(row.unit_cost),
             )
             for row in frame.itertuples()
         }
