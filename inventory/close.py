@@ -290,6 +290,7 @@ def _output_names(result: CloseResult, survey: SurveyResult) -> dict[str, str]:
     period, date = result.period, result.survey_date
     names = {
         "workbook": f"variance-{period}.xlsx",
+        "journal": f"journal-{period}.csv",
         "layers": f"piles-{period}.gpkg",
         "thickness": f"thickness-{date}.tif",
         "report": f"report-{period}.html",
@@ -518,10 +519,12 @@ def _write_outputs(result: CloseResult, names: dict[str, str], staged: Path, say
     from inventory.export.layers import write_layers
     from inventory.export.rasters import write_change, write_thickness
     from inventory.export.report import write_report
+    from inventory.export.journal import write_journal_csv
     from inventory.export.workbook import write_workbook
 
     say("writing outputs")
     write_workbook(result, staged / names["workbook"])
+    write_journal_csv(result, staged / names["journal"])
     write_layers(result, staged / names["layers"])
     write_thickness(result, staged / names["thickness"])
     if "change" in names:
@@ -556,9 +559,12 @@ def _unpublish(staged: Path, folder: Path, aside: Path) -> None:
 
 def _mark_superseded(aside: Path, held: int | None, close_id: int, closed_utc: str) -> None:
     """Say in the set-aside folder which close replaced it: a SUPERSEDED.txt beside the
-    outputs, and ``superseded_by_close`` in its run.json."""
+    outputs, ``superseded_by_close`` in its run.json, and a "superseded by close N" mark in
+    the workbook, the report and the journal CSV themselves."""
+    from inventory.export.journal import mark_superseded
     from inventory.io.atomic import atomic_path
 
+    mark_superseded(aside, close_id, closed_utc)
     which = f"close {held}" if held is not None else "an earlier close"
     text = (
         f"The outputs in this folder are those of ledger {which} of {aside.name.split('.')[0]}.\n"

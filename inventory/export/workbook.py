@@ -50,17 +50,14 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from inventory.export.journal import close_status_text, posting_journal
 from inventory.model.columns import FIELDS, unit_of
-from inventory.model.period import Period
-from inventory.model.results import (
-    JOURNAL_COLUMNS, PILE_COLUMNS, POSTING_COLUMNS, SCALE_COLUMNS, CloseResult,
-)
+from inventory.model.results import PILE_COLUMNS, POSTING_COLUMNS, SCALE_COLUMNS, CloseResult
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = [
-    "write_workbook", "write_history_workbook", "posting_journal", "close_status_text",
-    "SHEETS", "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT", "VARIANCE_SIGMA_IN_WORDS",
+    "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT", "VARIANCE_SIGMA_IN_WORDS",
 ]
 
 #: Sheets of a close whose ``tables`` are empty, in order.
@@ -433,54 +430,6 @@ def _total_row(sh: _Sheet, row: int, label: str, sums: Mapping[int, tuple[int, i
         formula = f"=SUM({letter}{first}:{letter}{last})" if last >= first else "=0"
         sh.formula(row, col, formula, value if last >= first else 0, formats.get(col), bold=True,
                    fill=_TOTAL_FILL, total=True)
-
-
-# -- the close's own texts -----------------------------------------------------------------------
-
-def close_status_text(result: CloseResult) -> str:
-    """What every output says about the ledger close it holds (replaced in place by a
-    "superseded by close N" mark when a later close of the period replaces it).
-
-    >>> from types import SimpleNamespace as R
-    >>> close_status_text(R(close_id=3, closed_utc="2026-11-02T08:00:00+00:00", period="2026-10"))
-    'Ledger close 3 of 2026-10, recorded 2026-11-02T08:00:00+00:00'
-    >>> close_status_text(R(close_id=None, closed_utc=None, period="2026-10"))
-    'Not recorded in a ledger (preview)'
-    """
-    if result.close_id is None:
-        return "Not recorded in a ledger (preview)"
-    return f"Ledger close {result.close_id} of {result.period}, recorded {result.closed_utc}"
-
-
-def _posting_date(period: str) -> date | None:
-    try:
-        return Period.parse(period).last_day()
-    except (ValueError, TypeError):
-        return None
-
-
-def posting_journal(result: CloseResult) -> pd.DataFrame:
-    """The posting journal of a close (:data:`POSTING_COLUMNS`): ``result.posting`` with the
-    period, the posting date (the period's last day) and the ledger's close id in front.
-
-    A result without ``posting`` (built by hand, or by an older close) gets one posted line
-    per line of ``result.journal``, without value or codes.
-    """
-    lines = result.posting
-    if lines is None:
-        j = result.journal if result.journal is not None else pd.DataFrame(columns=JOURNAL_COLUMNS)
-        lines = pd.DataFrame({
-            "line": np.arange(1, len(j) + 1), "pile_id": j["pile_id"].to_numpy(), "to_pile_id": None,
-            "material": j["material"].to_numpy(), "quantity_t": j["adjustment_t"].to_numpy(dtype=float),
-            "unit": "t", "unit_cost": np.nan, "value": np.nan, "currency": None, "account": None,
-            "location": None, "to_location": None, "reason_code": j["reason_code"].to_numpy(),
-            "reason": j["reason"].to_numpy(), "status": "post",
-        })
-    out = pd.DataFrame(lines).copy()
-    out["period"] = result.period
-    out["posting_date"] = _posting_date(result.period)
-    out["close_id"] = result.close_id
-    return out.reindex(columns=POSTING_COLUMNS)
 
 
 # -- sheets -------------------------------------------------------------------------------------

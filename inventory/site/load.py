@@ -454,6 +454,7 @@ class _Loader:
         piles = self._piles(material_names, crs)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
+        self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -568,6 +569,16 @@ class _Loader:
             machines=self._machines(raw) if not any(p[:1] == ("machines",) for p in self.refused) else {},
             raw=raw,
         )
+
+    def _journal_codes(self, journal: JournalConfig, materials: Collection[str], piles: Collection[str] | None) -> None:
+        """A code mapped for a material or pile the site does not have is an error (a typo
+        would leave every line of the real one without a code)."""
+        toml = self.root / "site.toml"
+        for name in sorted(set(journal.accounts) - set(materials)):
+            self.error(toml, None, f"journal.accounts.{name}", f"unknown material {name!r} (not in materials.csv)")
+        if piles is not None:
+            for pid in sorted(set(journal.locations) - set(piles)):
+                self.error(toml, None, f"journal.locations.{pid}", f"unknown pile {pid!r} (not in piles.gpkg)")
 
     def _floor_raster(self, text: str | None) -> Path | None:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
