@@ -861,7 +861,9 @@ def write_workbook(result: CloseResult, path: str | Path) -> Path:
     Path
     """
     dest = Path(path)
-    header = _hf(f"{result.site_name}, stock close {result.period}. {close_status_text(result)}")
+    # Excel allows 255 characters in a page header, the superseded mark included
+    site = result.site_name if len(result.site_name) <= 40 else result.site_name[:39] + "…"
+    header = _hf(f"{site}, close {result.period}. {close_status_text(result)}")
     journal = posting_journal(result)
     with atomic_path(dest) as tmp:
         book = _Book(tmp, header)
