@@ -82,6 +82,8 @@ def test_superseded_outputs_say_so(result, tmp_path):
     facts = {r[0]: r[1] for r in after["Summary"].iter_rows(min_row=3, max_row=13, values_only=True)}
     assert facts["Status"] == mark and facts["Ledger close"] == 4
     assert mark in after["Piles"].oddHeader.left.text and after.properties.description == mark
+    header = after["Piles"].oddHeader
+    assert len(header.left.text) + len(header.right.text) + 12 <= 255  # Excel's header limit
     # every other cell, stored formula values included, is as it was
     for ws in before.worksheets:
         for row in ws.iter_rows():
