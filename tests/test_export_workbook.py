@@ -213,10 +213,12 @@ def test_columns_sheet_explains_every_column(book, result):
     ws = wb["Columns"]
     assert [c.value for c in ws[1]] == ["sheet", "column", "unit", "meaning"]
     listed = {(r[0].value, r[1].value): (r[2].value, r[3].value) for r in ws.iter_rows(min_row=2)}
-    for name in ("Piles", "Variance", "Movements", "Journal", "Scales", "Duplicates"):
+    for name in ("Piles", "Variance", "Movements", "Journal", "Scales", "Duplicates", "Run"):
         for c in wb[name][1]:
             unit, meaning = listed[(name, c.value)]
             assert meaning, (name, c.value)
+    assert listed[("Run", "value")] == (None, "Value: Its value: a parameter, a version, a timing in "
+                                              "seconds, or the file's SHA-256.")
     assert listed[("Piles", "book_t")][0] == "t (tonnes)"
     assert listed[("Piles", "variance_pct")][0].startswith("% (stored as a fraction")
     assert listed[("Journal", "value")][0].startswith("currency")

@@ -299,7 +299,7 @@ class _Sheet:
         """Write a value as its own type: text is always text (never run as a formula)."""
         v = _cell_value(value, tz)
         ws, row, col = self.ws, r - 1, c - 1
-        if v is None:
+        if v is None or v == "":  # empty text is an empty cell
             if style:
                 ws.write_blank(row, col, None, self.book.fmt(num, **style))
             return None
@@ -670,15 +670,11 @@ def _duplicates_sheet(book: _Book, result: CloseResult) -> None:
     sh.fit()
 
 
-#: Meanings of the workbook's own columns that are not output columns of the close
-#: (see :data:`inventory.model.columns.FIELDS` for the rest).
-_SHEET_FIELDS: dict[str, str] = {
-    "fact": "What the row states.",
-    "value": "Its value.",
-    "sheet": "Sheet of the workbook.",
-    "column": "Column name, as in the sheet's header row.",
-    "unit": "Unit of the column's figures.",
-    "meaning": "What the column holds.",
+#: Columns of the Run sheet, which are not output columns of the close (see
+#: :data:`inventory.model.columns.FIELDS` for those): column -> (title, meaning).
+_RUN_FIELDS: dict[str, tuple[str, str]] = {
+    "fact": ("Fact", "Name of a fact of the run (dotted: section.key), or an input file."),
+    "value": ("Value", "Its value: a parameter, a version, a timing in seconds, or the file's SHA-256."),
 }
 
 
@@ -700,9 +696,10 @@ def _columns_sheet(book: _Book, tables: list[tuple[str, list[str]]]) -> None:
     cols = ["sheet", "column", "unit", "meaning"]
     rows = []
     for sheet, names in tables:
+        fields = _RUN_FIELDS if sheet == "Run" else FIELDS
         for name in names:
-            title, meaning = FIELDS.get(name, ("", ""))
-            rows.append({"sheet": sheet, "column": name, "unit": _unit_words(name),
+            title, meaning = fields.get(name, ("", ""))
+            rows.append({"sheet": sheet, "column": name, "unit": "" if sheet == "Run" else _unit_words(name),
                          "meaning": f"{title}: {meaning}" if title else meaning})
     _table(sh, pd.DataFrame(rows, columns=cols), cols, wrap={"meaning": 80, "unit": 24})
     sh.fit()
