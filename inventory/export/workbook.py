@@ -271,7 +271,7 @@ class _Book:
         ws.fit_to_pages(1, 0)
         ws.set_margins(left=0.5, right=0.5, top=0.8, bottom=0.6)
         if self.header:
-            ws.set_header(f"&L&8{self.header}&R&8{name}", {"margin": 0.3})
+            ws.set_header(f"&L&8{self.header}&R&8{_hf(name)}", {"margin": 0.3})
         ws.set_footer("&R&8page &P of &N", {"margin": 0.3})
         return _Sheet(self, ws)
 
@@ -780,11 +780,6 @@ def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], jou
     r += 1
     sh.put(r, 1, "Stock bridge (formulas over the Piles sheet)", bold=True)
     r += 1
-    ref = {k: v for k, v in refs.items()}
-
-    def total(name: str) -> tuple[str, float]:
-        return ref[name]
-
     rows: dict[str, int] = {}
 
     def line(key: str, label: str, formula: str, value: Any, fmt: str, bold: bool = False) -> None:
@@ -794,11 +789,11 @@ def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], jou
         rows[key] = r
         r += 1
 
-    book_ref, book_v = total("book_t")
-    adj_ref, adj_v = total("adjustment_t")
-    surv_ref, surv_v = total("survey_t")
-    after_ref, after_v = total("after_survey_net_t")
-    close_ref, close_v = total("closing_t")
+    book_ref, book_v = refs["book_t"]
+    adj_ref, adj_v = refs["adjustment_t"]
+    surv_ref, surv_v = refs["survey_t"]
+    after_ref, after_v = refs["after_survey_net_t"]
+    close_ref, close_v = refs["closing_t"]
     line("book", "Book stock at survey", f"={book_ref}", book_v, _FMT_T)
     line("adj", "+ Adjustments posted", f"={adj_ref}", adj_v, _FMT_T_SIGNED)
     adjusted = book_v + adj_v
@@ -812,12 +807,12 @@ def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], jou
     r += 1
     sh.put(r, 1, "Variance", bold=True)
     r += 1
-    var_ref, var_v = total("variance_t")
-    pct_ref, pct_v = ref["variance_pct"]
+    var_ref, var_v = refs["variance_t"]
+    pct_ref, pct_v = refs["variance_pct"]
     line("var", "Variance (survey - book)", f"={var_ref}", var_v, _FMT_T_SIGNED)
     line("var_pct", "Variance, share of book", f"={pct_ref}", pct_v, _FMT_PCT_SIGNED)
-    oot_ref, oot_n = ref["out_of_tolerance"]
-    sig_ref, sig_n = ref["significant"]
+    oot_ref, oot_n = refs["out_of_tolerance"]
+    sig_ref, sig_n = refs["significant"]
     line("oot", "Piles out of tolerance", f"=COUNTIF({oot_ref},TRUE)", oot_n, _FMT_INT)
     line("sig", "Piles with a significant variance", f"=COUNTIF({sig_ref},TRUE)", sig_n, _FMT_INT)
     held = journal[(journal["status"] == "hold")]
