@@ -361,7 +361,7 @@ def _journal_lines(p: pd.DataFrame, reason: list, partner: dict, cfg: ReconcileS
             sig_r, oot_r = abs(r) > k * sig_q, abs(r) > tol_q
             within = f"within {k:g} sigma ({k * sig_q:.1f} t)" if not sig_r else f"beyond {k:g} sigma ({k * sig_q:.1f} t)"
             add(p.loc[q, "pile_id"], None, p.loc[q, "material"], factor * r, "TRANSFER_RESIDUAL",
-                f"{vq:+.1f} t variance less the proposed transfer of {t:.1f} t leaves {r:+.1f} t, {within}",
+                f"variance {vq:+.1f} t less the proposed transfer of {t:.1f} t leaves {r:+.1f} t, {within}",
                 _admitted(cfg.adjust, sig_r, oot_r), _HELD_WHY.get(cfg.adjust, ""))
     out = pd.DataFrame(rows, columns=[c for c in LINE_COLUMNS if c != "line"])
     out.insert(0, "line", np.arange(1, len(out) + 1))
@@ -762,13 +762,13 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             text[i] = REASON_CODES["NOT_SURVEYED"]
         elif pid in scale_of and abs(residual[i]) <= k * sig[i] and abs(fitted[i]) >= 0.5 * abs(v):
             code[i] = "SCALE_BIAS"
-            text[i] = f"{fitted[i]:+.1f} t of {v:+.1f} t explained by belt scale {', '.join(scale_of[pid])}"
+            text[i] = f"belt scale {', '.join(scale_of[pid])} explains {fitted[i]:+.1f} t of the {v:+.1f} t variance"
             flags[i] = "scale:" + ",".join(scale_of[pid])
         elif i in partner:
             j, t, st = partner[i]
             other = p.loc[j, "pile_id"]
             code[i] = "TRANSFER_SUSPECT"
-            own = f"{v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
+            own = f"variance {v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
             theirs = f"{residual[j]:+.1f} t"
             src, dst = (pid, other) if v < 0 else (other, pid)
             text[i] = (f"{own} mirrors {theirs} on pile {other}: suspected unrecorded transfer of about "
@@ -778,15 +778,16 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             flags[i] = f"pair:{other}"
         elif not p.loc[i, "significant"]:
             code[i] = "WITHIN_SIGMA"
-            text[i] = f"{v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
+            text[i] = f"variance {v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
             if p.loc[i, "out_of_tolerance"]:
                 text[i] += " although out of tolerance: the measurement is too uncertain to judge this pile"
         elif not p.loc[i, "out_of_tolerance"]:
             code[i] = "WITHIN_TOL"
-            text[i] = f"{v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) within the {p.loc[i, 'tolerance_pct']:g} % tolerance"
+            text[i] = (f"variance {v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) within the "
+                       f"{p.loc[i, 'tolerance_pct']:g} % tolerance")
         else:
             code[i] = "UNEXPLAINED"
-            text[i] = (f"{v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) beyond the {p.loc[i, 'tolerance_pct']:g} % "
+            text[i] = (f"variance {v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) beyond the {p.loc[i, 'tolerance_pct']:g} % "
                        f"tolerance and {abs(v) / max(sig[i], 1e-12):.1f} sigma: investigate before posting")
     return code, text, flags, partner
 
