@@ -571,14 +571,16 @@ class _Loader:
         )
 
     def _journal_codes(self, journal: JournalConfig, materials: Collection[str], piles: Collection[str] | None) -> None:
-        """A code mapped for a material or pile the site does not have is an error (a typo
-        would leave every line of the real one without a code)."""
+        """A code mapped for a material or pile the site does not have is a warning: a typo
+        leaves the real one's journal lines without a code, but the figures stand."""
         toml = self.root / "site.toml"
         for name in sorted(set(journal.accounts) - set(materials)):
-            self.error(toml, None, f"journal.accounts.{name}", f"unknown material {name!r} (not in materials.csv)")
+            self.warn(toml, None, f"journal.accounts.{name}",
+                      f"unknown material {name!r} (not in materials.csv): its account code is not used")
         if piles is not None:
             for pid in sorted(set(journal.locations) - set(piles)):
-                self.error(toml, None, f"journal.locations.{pid}", f"unknown pile {pid!r} (not in piles.gpkg)")
+                self.warn(toml, None, f"journal.locations.{pid}",
+                          f"unknown pile {pid!r} (not in piles.gpkg): its location code is not used")
 
     def _floor_raster(self, text: str | None) -> Path | None:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
