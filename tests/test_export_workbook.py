@@ -350,6 +350,16 @@ def test_history_workbook(make_close_result, tmp_path):
     stored = load_workbook(tmp_path / "history.xlsx", data_only=True)["By month"]
     pile = df[df.pile_id == pv["A2"].value]
     assert stored["D2"].value == pytest.approx(pile["variance_t"].sum(), rel=1e-12)
+    # one line per pile in the chart under the table (openpyxl reads the chart back)
+    assert len(pv._charts) == 1 and len(pv._charts[0].series) == df["pile_id"].nunique()
+    totals = pd.DataFrame({"material": ["coal", "lime", "Total"], "variance_t": [1.5, -2.0, -0.5],
+                           "variance_pct": [0.25, -1.0, -0.1]})
+    wb2 = load_workbook(write_history_workbook(df, tmp_path / "h2.xlsx", totals, "material"))
+    assert wb2.sheetnames == ["History", "By month", "Totals by material", "Notes"]
+    ts = wb2["Totals by material"]
+    assert [c.value for c in ts[1]] == ["material", "variance_t", "variance_pct"]
+    assert [ts.cell(row=i, column=1).value for i in (2, 3, 4)] == ["coal", "lime", "Total"]
+    assert ts["C3"].value == -0.01 and ts["C3"].number_format == "+0.00%;-0.00%;0.00%"
     if "variance_pct" in header:   # a percentage as a fraction, like the close workbook
         j = header.index("variance_pct") + 1
         assert ws.cell(row=2, column=j).value == pytest.approx(df["variance_pct"].iloc[0] / 100, rel=1e-15)

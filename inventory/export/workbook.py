@@ -896,18 +896,39 @@ def _stamp(result: CloseResult) -> datetime:
 
 # -- history ------------------------------------------------------------------------------------
 
-def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
+def _variance_chart(book: _Book, sh: _Sheet, piles: int, periods: int) -> None:
+    """A line chart of each pile's variance by month, from the ``By month`` cells (one
+    series per pile row), placed below the table."""
+    chart = book.wb.add_chart({"type": "line"})
+    name = sh.ws.get_name()
+    for i in range(1, piles + 1):
+        chart.add_series({"name": [name, i, 0], "categories": [name, 0, 1, 0, periods],
+                          "values": [name, i, 1, i, periods], "marker": {"type": "circle"}})
+    chart.set_title({"name": "Variance per pile by month (t, survey - book)"})
+    chart.set_y_axis({"name": "variance (t)"})
+    chart.set_x_axis({"name": "period"})
+    chart.set_size({"width": 680, "height": 300})
+    sh.ws.insert_chart(f"A{piles + 4}", chart)
+
+
+def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFrame | None = None,
+                           by: str | None = None) -> Path:
     """Write ``inventory history`` as a workbook for finance.
 
     Sheets: ``History`` (the rows as given, with number formats, filters and the row marks),
     ``By month`` (variance tonnes, pile x period, with SUM formulas and their values for row
-    and column totals) and ``Notes`` (sign convention, legend, the percent convention).
+    and column totals, and a line chart of each pile's variance by month), ``Totals by <by>``
+    when ``totals`` is given, and ``Notes`` (sign convention, legend, the percent convention).
 
     Parameters
     ----------
     df : DataFrame
         As returned by :meth:`inventory.ledger.store.Ledger.history`.
     path : str or Path
+    totals : DataFrame, optional
+        Totals of the same rows by a group (``inventory.ledger.history.aggregate_history``).
+    by : str, optional
+        What ``totals`` is grouped by (names its sheet).
 
     Returns
     -------
@@ -947,8 +968,16 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path) -> Path:
             pv.ws.autofilter(0, 0, n, tcol - 1)
             pv.ws.repeat_rows(0)
             pv.fit()
+            _variance_chart(book, pv, n, len(periods))
         else:
             pv.put(1, 1, "No closed periods match.")
+
+        if totals is not None:
+            ts = book.sheet(f"Totals by {by or 'group'}"[:31])
+            shown = _as_fraction(totals.rename(columns=str))
+            tcols = list(shown.columns)
+            _table(ts, shown, tcols, freeze=(1, 1))
+            ts.fit()
 
         notes = book.sheet("Notes", landscape=False)
         notes.fixed[1], notes.fixed[2] = 14, 90
