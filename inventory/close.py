@@ -292,6 +292,7 @@ def _output_names(result: CloseResult, survey: SurveyResult) -> dict[str, str]:
     period, date = result.period, result.survey_date
     names = {
         "workbook": f"variance-{period}.xlsx",
+        "journal": f"journal-{period}.csv",
         "layers": f"piles-{period}.gpkg",
         "thickness": f"thickness-{date}.tif",
         "report": f"report-{period}.html",
@@ -557,6 +558,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
         survey_date=ref.date, survey_instant=ref.instant, previous_survey_date=run.prev_date,
         piles=_assemble_piles(volumes.table, rec.piles), footprints=site.piles[["pile_id", "geometry"]].copy(),
         movements=movements, journal=rec.journal,
+        posting=_rec.value_lines(rec.lines, site.materials, site.config.journal),
         scale_diagnostics=rec.scale_diagnostics, duplicates=book.duplicates,
         surface=surface, thickness=volumes.thickness, change=change, coverage_gaps=volumes.gaps,
         survey_extent=_survey_extent(site, surface, ref.date, survey.points_read),
@@ -580,6 +582,7 @@ def _reconcile(run: _Loaded, survey: SurveyResult, volumes: _Volumes, book: Book
                 "base": {k: str(v) for k, v in vars(site.config.base).items()},
                 "reconcile": vars(site.config.reconcile),
                 "unassigned": vars(site.config.unassigned),
+                "journal": vars(site.config.journal),
                 "survey": {k: str(v) for k, v in vars(site.config.survey).items()},
             },
             # the close's own timings so far; _write_manifest stores the final copy
@@ -599,11 +602,13 @@ def _write_outputs(result: CloseResult, names: dict[str, str], staged: Path, say
     from inventory.export.layers import write_layers
     from inventory.export.rasters import write_change, write_thickness
     from inventory.export.report import write_report
+    from inventory.export.journal import write_journal_csv
     from inventory.export.styles import write_legend, write_styles
     from inventory.export.workbook import write_workbook
 
     say("writing outputs")
     write_workbook(result, staged / names["workbook"])
+    write_journal_csv(result, staged / names["journal"])
     write_layers(result, staged / names["layers"])
     write_thickness(result, staged / names["thickness"])
     if "change" in names:
@@ -641,9 +646,12 @@ def _unpublish(staged: Path, folder: Path, aside: Path) -> None:
 
 def _mark_superseded(aside: Path, held: int | None, close_id: int, closed_utc: str) -> None:
     """Say in the set-aside folder which close replaced it: a SUPERSEDED.txt beside the
-    outputs, and ``superseded_by_close`` in its run.json."""
+    outputs, ``superseded_by_close`` in its run.json, and a "superseded by close N" mark in
+    the workbook, the report and the journal CSV themselves."""
+    from inventory.export.journal import mark_superseded
     from inventory.io.atomic import atomic_path
 
+    mark_superseded(aside, close_id, closed_utc)
     which = f"close {held}" if held is not None else "an earlier close"
     text = (
         f"The outputs in this folder are those of ledger {which} of {aside.name.split('.')[0]}.\n"
@@ -696,7 +704,7 @@ def _record(run: _Loaded, result: CloseResult, names: dict[str, str], staged: Pa
     if aside.is_dir():
         try:
             _mark_superseded(aside, held, close_id, closed_utc)
-        except OSError as err:  # the close is recorded; only the note is missing
+        except Exception as err:  # noqa: BLE001 - the close is recorded; only the marks are missing
             warnings.warn(InventoryWarning(f"{aside}: cannot mark it superseded: {err}"), stacklevel=2)
     return close_id
 

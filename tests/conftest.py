@@ -488,6 +488,9 @@ class PileRows:
             return v or None
         if col in ("significant", "out_of_tolerance"):
             return bool(v)
+        if col.endswith("_pct"):
+            # the workbook stores a percentage as a fraction (v / 100): compared to 12 digits
+            return float(f"{float(v):.12g}")
         return float(v)
 
     def frame(self, df: pd.DataFrame) -> list[list]:
@@ -499,8 +502,11 @@ class PileRows:
 
         ws = load_workbook(path)["Piles"]
         header = [c.value for c in ws[1]]
-        return [[self.norm(c, ws.cell(row=i, column=header.index(c) + 1).value) for c in PILE_COLUMNS]
-                for i in range(2, 2 + n)]
+        def cell(c: str, i: int):
+            v = ws.cell(row=i, column=header.index(c) + 1).value
+            return v * 100 if c.endswith("_pct") and isinstance(v, (int, float)) else v
+
+        return [[self.norm(c, cell(c, i)) for c in PILE_COLUMNS] for i in range(2, 2 + n)]
 
 
 @pytest.fixture(scope="session")

@@ -224,6 +224,25 @@ def test_interrupted_close_leaves_ledger_and_outputs_as_before(closed_site, surv
     assert f"superseded by ledger close {done.close_id}" in (aside / "SUPERSEDED.txt").read_text()
     assert "superseded_by_close" not in new_run
     assert new_run["closed_utc"] == old_run["superseded_utc"]
+    # the outputs themselves say so: the superseded workbook, report and journal...
+    import pandas as pd
+    from openpyxl import load_workbook
+
+    def facts(path):
+        rows = load_workbook(path)["Summary"].iter_rows(min_row=3, max_row=13, values_only=True)
+        return {r[0]: r[1] for r in rows}
+
+    mark = f"SUPERSEDED by ledger close {done.close_id} (recorded {new_run['closed_utc']})"
+    assert facts(aside / "variance-2026-10.xlsx")["Status"].startswith(mark)
+    assert mark in (aside / "report-2026-10.html").read_text(encoding="utf-8")
+    old_journal = pd.read_csv(aside / "journal-2026-10.csv")
+    assert set(old_journal["status"]) <= {f"superseded by close {done.close_id}"}
+    assert set(old_journal["close_id"]) <= {old_run["close_id"]}
+    # ... while the new close's outputs carry its own id and time
+    new = facts(site / "closes" / "2026-10" / "variance-2026-10.xlsx")
+    assert new["Ledger close"] == done.close_id and new["Closed at (UTC)"] == new_run["closed_utc"]
+    new_journal = pd.read_csv(site / "closes" / "2026-10" / "journal-2026-10.csv")
+    assert set(new_journal["close_id"]) <= {done.close_id} and set(new_journal["status"]) <= {"post", "hold"}
 
 
 @pytest.mark.parametrize("bad", ["2026-13", "2026-1", "26-10", "2026/10", 202610])

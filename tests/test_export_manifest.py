@@ -38,7 +38,7 @@ def test_manifest_content(make_close_result, tmp_path):
     assert doc["versions"]["numpy"] == numpy.__version__
     assert doc["versions"]["GDAL (rasterio)"] == rasterio.__gdal_version__
     for key in ("scipy", "laspy", "lazrs", "rasterio", "geopandas", "pyogrio", "shapely",
-                "pyproj", "openpyxl", "CSF", "dask", "matplotlib", "PROJ", "python",
+                "pyproj", "XlsxWriter", "CSF", "dask", "matplotlib", "PROJ", "python",
                 "inventory"):
         assert key in doc["versions"], key
     assert doc["period"] == "2026-01" and doc["survey_instant_utc"] == "2026-01-28T11:00:00+00:00"

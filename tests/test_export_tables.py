@@ -28,7 +28,7 @@ def test_extra_tables_and_reason_codes_in_the_workbook(make_close_result, tmp_pa
     assert split["B2"].value.isoformat() == "2026-01-11T00:00:00"
     assert split["E3"].value == 90.0
     assert wb["Materials"]["B2"].value == "P1, P2"
-    adj = wb["Adjustments"]
+    adj = wb["Journal"]
     texts = [c.value for row in adj.iter_rows() for c in row if isinstance(c.value, str)]
     assert "WITHIN_SIGMA" in texts and "inside the combined uncertainty" in texts
 

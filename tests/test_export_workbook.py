@@ -1,4 +1,5 @@
-"""The close workbook: same numbers as the ledger, live formulas, formats, LibreOffice reads it."""
+"""The close workbook: same numbers as the ledger, live formulas with stored values, formats,
+the posting journal, the column dictionary, print set-up; LibreOffice recalculates the same."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ import subprocess
 from datetime import datetime
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from inventory.export.workbook import (
@@ -43,14 +45,16 @@ def _pile_rows(ws, n):
     return header, rows
 
 
-def _same(expected, got):
-    """Exact equality; a NaN figure is an empty cell."""
+def _same(expected, got, col=""):
+    """Exact equality; a NaN figure is an empty cell; a percentage is stored as a fraction."""
     if isinstance(expected, (float, np.floating)) and math.isnan(expected):
         return got is None
     if isinstance(expected, (bool, np.bool_)):
         return got is bool(expected)
     if expected == "" and got is None:
         return True
+    if col.endswith("_pct"):
+        return got == float(expected) / 100.0
     return expected == got
 
 
@@ -61,7 +65,7 @@ def test_sheets_and_pile_figures_exactly(book, result):
     assert header == PILE_COLUMNS
     for exp, got in zip(result.piles[PILE_COLUMNS].itertuples(index=False), rows):
         for col, e, g in zip(PILE_COLUMNS, exp, got):
-            assert _same(e, g), (col, e, g)
+            assert _same(e, g, col), (col, e, g)
 
 
 def test_workbook_holds_the_ledger_numbers(result, tmp_path):
@@ -76,7 +80,7 @@ def test_workbook_holds_the_ledger_numbers(result, tmp_path):
         for col, e, g in zip(PILE_COLUMNS, exp, got):
             if e is None:
                 e = float("nan") if col not in ("flags",) else ""
-            assert _same(e, g), (col, e, g)
+            assert _same(e, g, col), (col, e, g)
 
 
 def test_totals_are_live_formulas(book, result):
@@ -94,9 +98,146 @@ def test_totals_are_live_formulas(book, result):
     assert any(v.startswith("=Piles!$") for v in summary)
     assert any(v.startswith("=COUNTIF(Piles!") for v in summary)
     var = wb["Variance"]
-    assert str(var["O2"].value).startswith("=E2-C2")  # survey - book, re-checkable
-    adj = wb["Adjustments"]
-    assert any(str(c.value).startswith("=SUM(C2:C") for row in adj.iter_rows() for c in row)
+    assert str(var["Q2"].value).startswith("=E2-C2")  # survey - book, re-checkable
+    jr = wb["Journal"]
+    assert any(str(c.value).startswith("=SUMIFS(H2:H") for row in jr.iter_rows() for c in row)
+
+
+def test_every_formula_cell_carries_its_value(book, result):
+    """pandas and openpyxl (data_only) read numbers where a spreadsheet has formulas."""
+    from openpyxl import load_workbook
+
+    wb, path = book
+    values = load_workbook(path, data_only=True)
+    n = len(result.piles)
+    formulas = 0
+    for ws in wb.worksheets:
+        for row in ws.iter_rows():
+            for c in row:
+                if isinstance(c.value, str) and c.value.startswith("=") and c.data_type == "f":
+                    formulas += 1
+                    v = values[ws.title][c.coordinate].value
+                    assert v is not None or "IF(" in c.value, (ws.title, c.coordinate, c.value)
+    assert formulas > 3 * n
+    piles = pd.read_excel(path, sheet_name="Piles")
+    total = piles[piles["pile_id"] == "Total"].iloc[0]
+    for col in ("book_t", "survey_t", "variance_t", "adjustment_t", "after_survey_net_t", "closing_t"):
+        assert total[col] == pytest.approx(result.piles[col].sum(), rel=1e-12), col
+    assert total["variance_pct"] == pytest.approx(
+        result.piles.variance_t.sum() / result.piles.book_t.sum(), rel=1e-12)
+    summary = pd.read_excel(path, sheet_name="Summary", header=None, index_col=0)[1]
+    p = result.piles
+    assert summary["Book stock at survey"] == pytest.approx(p.book_t.sum(), rel=1e-12)
+    assert summary["+ Adjustments posted"] == pytest.approx(p.adjustment_t.sum(), rel=1e-12)
+    adjusted = p.book_t.sum() + p.adjustment_t.sum()
+    assert summary["= Book stock after adjustments"] == pytest.approx(adjusted, rel=1e-12)
+    assert summary["Survey stock"] == pytest.approx(p.survey_t.sum(), rel=1e-12)
+    assert summary["Left at book (held lines, midpoint, piles not surveyed)"] == pytest.approx(
+        adjusted - p.survey_t.sum(), rel=1e-9)
+    assert summary["+ Net movements after the survey"] == pytest.approx(p.after_survey_net_t.sum())
+    assert summary["= Closing stock"] == pytest.approx(p.closing_t.sum(), rel=1e-12)
+    assert summary["Closing stock, Piles sheet total (check)"] == pytest.approx(p.closing_t.sum(), rel=1e-12)
+    assert summary["Piles out of tolerance"] == int(p.out_of_tolerance.sum())
+
+
+def test_variance_sigma_is_shown_with_its_parts(make_close_result, tmp_path):
+    from openpyxl import load_workbook
+
+    from inventory.export.workbook import VARIANCE_SIGMA_IN_WORDS
+
+    res = make_close_result("2026-01")
+    # a pile whose opening was a survey: book 41.50 t, survey 27.46 t, variance sigma 15.48 t
+    res.piles.loc[0, ["book_sigma_t", "survey_sigma_t", "variance_sigma_t"]] = [41.50, 27.46, 15.48]
+    path = write_workbook(res, tmp_path / "w.xlsx")
+    ws = load_workbook(path, data_only=True)["Variance"]
+    head = [c.value for c in ws[1]]
+    row = {h: ws.cell(row=2, column=j + 1).value for j, h in enumerate(head)}
+    assert row["quadrature_sigma_t"] == pytest.approx(math.hypot(41.50, 27.46))     # 49.76 t
+    assert row["shared_sigma_t"] == pytest.approx(math.sqrt(41.50 ** 2 + 27.46 ** 2 - 15.48 ** 2))
+    assert row["quadrature_sigma_t"] ** 2 - row["shared_sigma_t"] ** 2 == pytest.approx(15.48 ** 2)
+    assert row["variance_2sigma_t"] == pytest.approx(2 * 15.48)
+    texts = [c.value for r in ws.iter_rows() for c in r if isinstance(c.value, str)]
+    assert VARIANCE_SIGMA_IN_WORDS in texts
+
+
+def test_posting_journal_sheet(make_close_result, tmp_path):
+    from openpyxl import load_workbook
+
+    from inventory.model.results import POSTING_COLUMNS
+
+    res = make_close_result("2026-01")
+    res.close_id, res.closed_utc = 7, "2026-02-03T08:00:00+00:00"
+    res.posting = pd.DataFrame([
+        {"line": 1, "pile_id": "P-COAL-1", "to_pile_id": "P-COAL-2", "material": "coal", "quantity_t": 400.0,
+         "unit": "t", "unit_cost": 80.0, "value": 32000.0, "currency": "EUR", "account": "1400",
+         "location": "Y1", "to_location": "Y2", "reason_code": "TRANSFER", "reason": "=proposed", "status": "post"},
+        {"line": 2, "pile_id": "P-COAL-1", "to_pile_id": None, "material": "coal", "quantity_t": -5.5,
+         "unit": "t", "unit_cost": 80.0, "value": -440.0, "currency": "EUR", "account": "1400",
+         "location": "Y1", "to_location": None, "reason_code": "TRANSFER_RESIDUAL", "reason": "rest",
+         "status": "post"},
+        {"line": 3, "pile_id": "P-LIME-1", "to_pile_id": None, "material": "lime", "quantity_t": 12.0,
+         "unit": "t", "unit_cost": float("nan"), "value": float("nan"), "currency": "EUR", "account": None,
+         "location": None, "to_location": None, "reason_code": "WITHIN_SIGMA", "reason": "noise",
+         "status": "hold"},
+    ])
+    path = write_workbook(res, tmp_path / "w.xlsx")
+    wb = load_workbook(path, data_only=True)
+    ws = wb["Journal"]
+    assert [c.value for c in ws[1]] == POSTING_COLUMNS
+    rows = [[c.value for c in ws[i]] for i in (2, 3, 4)]
+    line = dict(zip(POSTING_COLUMNS, rows[0]))
+    assert line["period"] == "2026-01" and line["close_id"] == 7
+    assert line["posting_date"] == datetime(2026, 1, 31)     # the period's last day
+    assert line["reason"] == "=proposed" and ws["Q2"].data_type == "s"  # text, never a formula
+    assert [r[POSTING_COLUMNS.index("status")] for r in rows] == ["post", "post", "hold"]
+    totals = {r[0].value: r[POSTING_COLUMNS.index("quantity_t")].value for r in ws.iter_rows(min_row=6, max_row=8)}
+    assert totals["Posted to book stock (adjustment and residual lines)"] == -5.5
+    assert totals["Held, not posted (adjustment and residual lines)"] == 12.0
+    assert totals["Transfers proposed and posted (pile to pile, net zero)"] == 400.0
+    facts = {r[0].value: r[1].value for r in wb["Summary"].iter_rows(min_row=3, max_row=13)}
+    assert facts["Ledger close"] == 7 and facts["Closed at (UTC)"] == "2026-02-03T08:00:00+00:00"
+    assert facts["Status"] == "Ledger close 7 of 2026-01, recorded 2026-02-03T08:00:00+00:00"
+    assert "Ledger close 7" in wb["Piles"].oddHeader.left.text
+
+
+def test_journal_from_a_plain_result(book, result):
+    wb, _ = book
+    ws = wb["Journal"]
+    n = len(result.journal)
+    status = [ws.cell(row=i, column=18).value for i in range(2, 2 + n)]
+    assert status == ["post"] * n and ws.cell(row=2, column=3).value is None  # no close id
+
+
+def test_columns_sheet_explains_every_column(book, result):
+    wb, _ = book
+    ws = wb["Columns"]
+    assert [c.value for c in ws[1]] == ["sheet", "column", "unit", "meaning"]
+    listed = {(r[0].value, r[1].value): (r[2].value, r[3].value) for r in ws.iter_rows(min_row=2)}
+    for name in ("Piles", "Variance", "Movements", "Journal", "Scales", "Duplicates", "Run"):
+        for c in wb[name][1]:
+            unit, meaning = listed[(name, c.value)]
+            assert meaning, (name, c.value)
+    assert listed[("Run", "value")] == (None, "Value: Its value: a parameter, a version, a timing in "
+                                              "seconds, or the file's SHA-256.")
+    assert listed[("Piles", "book_t")][0] == "t (tonnes)"
+    assert listed[("Piles", "variance_pct")][0].startswith("% (stored as a fraction")
+    assert listed[("Journal", "value")][0].startswith("currency")
+
+
+def test_print_setup(book):
+    wb, _ = book
+    for ws in wb.worksheets:
+        assert ws.sheet_properties.pageSetUpPr.fitToPage, ws.title
+        assert ws.page_setup.fitToWidth in (None, 1) and ws.page_setup.paperSize in ("9", 9), ws.title
+    for name in ("Piles", "Variance", "Movements", "Journal", "Columns", "Run"):
+        assert wb[name].print_title_rows == "$1:$1", name
+    assert wb["Summary"].page_setup.fitToHeight in (None, 1)
+    assert wb["Summary"].page_setup.orientation == "portrait"
+    # a long note wraps inside the table's width instead of widening a column
+    var = wb["Variance"]
+    assert var.column_dimensions["A"].width <= 50
+    notes = [c for r in var.iter_rows() for c in r if isinstance(c.value, str) and len(c.value) > 200]
+    assert notes and all(c.alignment.wrap_text for c in notes)
 
 
 def test_frozen_headers_filters_and_formats(book, result):
@@ -109,10 +250,10 @@ def test_frozen_headers_filters_and_formats(book, result):
     assert ws.auto_filter.ref == f"A1:{get_column_letter(len(PILE_COLUMNS))}{n + 1}"
     fmt = {h: ws.cell(row=2, column=j + 1).number_format for j, h in enumerate(PILE_COLUMNS)}
     assert '"t"' in fmt["book_t"] and '"m³"' in fmt["volume_m3"]
-    assert fmt["variance_pct"].startswith("+0.00") and '"%"' in fmt["variance_pct"]
+    assert fmt["variance_pct"] == "+0.00%;-0.00%;0.00%" and fmt["tolerance_pct"] == "0.00%"
     assert fmt["scanned_fraction"] == "0.0%"
-    for name in ("Movements", "Variance", "Adjustments", "Scales", "Run"):
-        assert wb[name].freeze_panes in ("A2", "B2"), name
+    for name in ("Movements", "Variance", "Journal", "Scales", "Run"):
+        assert wb[name].freeze_panes in ("A2", "B2", "F2"), name
         assert wb[name].auto_filter.ref, name
     # widths fit the header at least
     for j, h in enumerate(PILE_COLUMNS, start=1):
@@ -168,16 +309,16 @@ def test_nan_and_missing_values_become_empty_cells(make_close_result, tmp_path):
 
 
 def test_write_replaces_atomically(result, tmp_path, monkeypatch):
-    import openpyxl
+    import xlsxwriter
 
     path = tmp_path / "w.xlsx"
     write_workbook(result, path)
     before = path.read_bytes()
 
-    def boom(self, filename):
+    def boom(self):
         raise OSError("disk full")
 
-    monkeypatch.setattr(openpyxl.Workbook, "save", boom)
+    monkeypatch.setattr(xlsxwriter.Workbook, "close", boom)
     with pytest.raises(OSError):
         write_workbook(result, path)
     assert path.read_bytes() == before
@@ -206,6 +347,22 @@ def test_history_workbook(make_close_result, tmp_path):
     assert pv["D2"].value == "=SUM(B2:C2)"
     assert pv.cell(row=2, column=2).value == df[(df.pile_id == pv["A2"].value)
                                                 & (df.period == "2026-01")]["variance_t"].iloc[0]
+    stored = load_workbook(tmp_path / "history.xlsx", data_only=True)["By month"]
+    pile = df[df.pile_id == pv["A2"].value]
+    assert stored["D2"].value == pytest.approx(pile["variance_t"].sum(), rel=1e-12)
+    # one line per pile in the chart under the table (openpyxl reads the chart back)
+    assert len(pv._charts) == 1 and len(pv._charts[0].series) == df["pile_id"].nunique()
+    totals = pd.DataFrame({"material": ["coal", "lime", "Total"], "variance_t": [1.5, -2.0, -0.5],
+                           "variance_pct": [0.25, -1.0, -0.1]})
+    wb2 = load_workbook(write_history_workbook(df, tmp_path / "h2.xlsx", totals, "material"))
+    assert wb2.sheetnames == ["History", "By month", "Totals by material", "Notes"]
+    ts = wb2["Totals by material"]
+    assert [c.value for c in ts[1]] == ["material", "variance_t", "variance_pct"]
+    assert [ts.cell(row=i, column=1).value for i in (2, 3, 4)] == ["coal", "lime", "Total"]
+    assert ts["C3"].value == -0.01 and ts["C3"].number_format == "+0.00%;-0.00%;0.00%"
+    if "variance_pct" in header:   # a percentage as a fraction, like the close workbook
+        j = header.index("variance_pct") + 1
+        assert ws.cell(row=2, column=j).value == pytest.approx(df["variance_pct"].iloc[0] / 100, rel=1e-15)
 
 
 # -- LibreOffice, an independent reader -------------------------------------------------------
@@ -269,7 +426,8 @@ def test_libreoffice_reads_the_same_numbers(result, tmp_path):
                 assert g == "", col
             else:
                 # Calc keeps the full double but writes 15 significant digits
-                assert _lo_number(g) == pytest.approx(float(e), rel=1e-14, abs=1e-13), col
+                e = float(e) / 100 if col.endswith("_pct") else float(e)
+                assert _lo_number(g) == pytest.approx(e, rel=1e-14, abs=1e-13), col
     # the totals row is computed by Calc itself from the formulas
     total = piles[n + 2]
     assert total[0] == "Total"
@@ -285,6 +443,25 @@ def test_libreoffice_reads_the_same_numbers(result, tmp_path):
     sb = var[0].index("survey_minus_book_t")
     for i, r in enumerate(result.piles.itertuples(index=False), start=1):
         assert float(var[i][sb]) == pytest.approx(r.survey_t - r.book_t, rel=1e-12, abs=1e-9)
+    # every value the writer stored beside a formula is what Calc computes from the formula
+    from openpyxl import load_workbook
+
+    formulas, stored = load_workbook(xlsx), load_workbook(xlsx, data_only=True)
+    checked = 0
+    for ws in formulas.worksheets:
+        rows = sheets[ws.title]
+        for row in ws.iter_rows():
+            for c in row:
+                if c.data_type != "f":
+                    continue
+                mine, calc = stored[ws.title][c.coordinate].value, rows[c.row - 1][c.column - 1]
+                if mine in (None, ""):
+                    assert calc == "", (ws.title, c.coordinate)
+                else:
+                    assert _lo_number(calc) == pytest.approx(float(mine), rel=1e-12, abs=1e-9), \
+                        (ws.title, c.coordinate, c.value, mine, calc)
+                checked += 1
+    assert checked > 20
 
 
 def test_quiet_month_and_awkward_text(make_close_result, tmp_path):
@@ -295,6 +472,7 @@ def test_quiet_month_and_awkward_text(make_close_result, tmp_path):
     res = make_close_result("2026-01")
     res.movements = res.movements.iloc[0:0]
     res.journal = res.journal.iloc[0:0]
+    res.posting = None
     res.scale_diagnostics = res.scale_diagnostics.iloc[0:0]
     res.duplicates = pd.DataFrame()
     res.piles.loc[0, "flags"] = "bad\x07byte " + "x" * 40000

@@ -121,7 +121,15 @@ def test_adjustment_closing_and_journal_to_survey_and_to_midpoint():
     # survey 11:00... after the survey the belt delivers 50 t: closing = adopted + 50
     book = book_from({"A": 1000.0, "B": 400.0}, after={"A": 50.0})
     sv = survey_of({"A": 1040.0})                                  # B not surveyed
-    r = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="survey"))
+    # A's +40 t (4 %) is beyond the 3 % tolerance with no explanation: held by default
+    held = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="survey"))
+    h = held.piles.set_index("pile_id")
+    assert h.loc["A", "reason_code"] == "UNEXPLAINED"
+    assert h.loc["A", "adjustment_t"] == 0.0 and h.loc["A", "closing_t"] == pytest.approx(1050.0)
+    assert held.journal.empty
+    assert held.lines[["pile_id", "quantity_t", "status"]].values.tolist() == [["A", 40.0, "hold"]]
+    assert "investigate before posting" in held.lines["reason"].iloc[0]
+    r = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="survey", hold_unexplained=False))
     p = r.piles.set_index("pile_id")
     assert p.loc["A", "after_survey_net_t"] == pytest.approx(50.0)
     assert p.loc["A", "adjustment_t"] == pytest.approx(40.0)
@@ -132,7 +140,8 @@ def test_adjustment_closing_and_journal_to_survey_and_to_midpoint():
     assert r.journal[["pile_id", "adjustment_t"]].values.tolist() == [["A", 40.0]]
     assert r.journal["reason_code"].isin(REASON_CODES).all()
     assert "positive increases" in SIGN_CONVENTION
-    mid = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="midpoint")).piles.set_index("pile_id")
+    mid = reconcile(sv, book, MATERIALS, ReconcileSettings(adjust_to="midpoint", hold_unexplained=False)
+                    ).piles.set_index("pile_id")
     assert mid.loc["A", "adjustment_t"] == pytest.approx(20.0)
     assert mid.loc["A", "closing_t"] == pytest.approx(1070.0)
     with pytest.raises(ValueError, match="adjust_to"):
@@ -263,11 +272,69 @@ def test_a_poorly_scanned_receiver_still_pairs_and_noise_does_not():
     assert p.loc["A", "reason_code"] == p.loc["B", "reason_code"] == "TRANSFER_SUSPECT"
     assert "about 401 t (+/- 30 t) from A to B" in p.loc["B", "reason"]
     assert "alone is within 2 sigma" in p.loc["B", "reason"]
+    # one proposed transfer line A -> B of t, and each pile's residual: A -400 + 400.71 =
+    # +0.71 t, B +450 - 400.71 = +49.29 t; posted together they give back each variance
+    t = (400 / 900 + 450 / 62500) / (1 / 900 + 1 / 62500)
+    lines = r.lines.set_index("line")
+    assert lines["reason_code"].tolist() == ["TRANSFER", "TRANSFER_RESIDUAL", "TRANSFER_RESIDUAL"]
+    assert lines.loc[1, ["pile_id", "to_pile_id"]].tolist() == ["A", "B"]
+    assert lines.loc[1, "quantity_t"] == pytest.approx(t, rel=1e-12)
+    assert lines.loc[2, "quantity_t"] == pytest.approx(t - 400, rel=1e-9)
+    assert lines.loc[3, "quantity_t"] == pytest.approx(450 - t, rel=1e-12)
+    assert (lines["status"] == "post").all()
+    assert p.loc["A", "adjustment_t"] == pytest.approx(-400.0) and p.loc["B", "adjustment_t"] == pytest.approx(450.0)
+    # policy "significant": the transfer (beyond k sigma by construction) is posted, the
+    # residuals (0.71 t within 60 t, 49.29 t within 500 t) are held
+    r = reconcile(survey_of({"A": 4600.0, "B": 5450.0, "C": 5000.0}, sig), book, MATERIALS,
+                  ReconcileSettings(adjust="significant"))
+    assert r.lines["status"].tolist() == ["post", "hold", "hold"]
+    p2 = r.piles.set_index("pile_id")
+    assert p2.loc["A", "adjustment_t"] == pytest.approx(-t) and p2.loc["B", "adjustment_t"] == pytest.approx(t)
+    assert p2.loc["B", "closing_t"] == pytest.approx(5000 + t)
+    assert r.journal.set_index("pile_id")["adjustment_t"].sum() == pytest.approx(0.0, abs=1e-9)
     # C's +20 t on 250 t is noise (0.08 sigma): it does not become A's partner
     r = reconcile(survey_of({"A": 4600.0, "B": 5000.0, "C": 5020.0}, sig), book, MATERIALS)
     p = r.piles.set_index("pile_id")
     assert p.loc["A", "reason_code"] == "UNEXPLAINED"
     assert p.loc["C", "reason_code"] == "WITHIN_SIGMA"
+
+
+def test_adjustment_policies_post_some_lines_and_hold_the_rest():
+    # book 1000 t each, survey sigma 4 t, k = 2 (8 t), coal tolerance 3 % (30 t):
+    # A +5 t (within sigma), B +20 t (significant, within tolerance), C -50 t (unexplained)
+    book = book_from({"A": 1000.0, "B": 1000.0, "C": 1000.0})
+    sv = survey_of({"A": 1005.0, "B": 1020.0, "C": 950.0}, 4.0)
+
+    def run(**kw):
+        r = reconcile(sv, book, MATERIALS, ReconcileSettings(**kw))
+        return dict(zip(r.lines["pile_id"], r.lines["status"])), r.piles.set_index("pile_id")
+
+    status, p = run()
+    assert status == {"A": "post", "B": "post", "C": "hold"}
+    assert p["adjustment_t"].tolist() == [5.0, 20.0, 0.0]
+    status, p = run(adjust="significant")
+    assert status == {"A": "hold", "B": "post", "C": "hold"}
+    assert p["closing_t"].tolist() == [1000.0, 1020.0, 1000.0]
+    status, p = run(adjust="out_of_tolerance", hold_unexplained=False)
+    assert status == {"A": "hold", "B": "hold", "C": "post"}
+    assert p["adjustment_t"].tolist() == [0.0, 0.0, -50.0]
+    with pytest.raises(ValueError, match="adjust must be one of"):
+        run(adjust="some")
+
+
+def test_lines_are_valued_and_coded():
+    from inventory.site.load import JournalConfig
+    from inventory.stock.reconcile import value_lines
+
+    book = book_from({"A": 1000.0, "B": 1000.0}, materials={"A": "coal", "B": "ore"})
+    r = reconcile(survey_of({"A": 1005.0, "B": 990.0}, 4.0), book, MATERIALS)
+    mats = dict(MATERIALS, coal=Material("coal", 1.0, 0.05, 0.0, 3.0, unit_cost=80.0))
+    v = value_lines(r.lines, mats, JournalConfig(currency="EUR", accounts={"coal": "1400"},
+                                                  locations={"A": "Y-A"})).set_index("pile_id")
+    assert v.loc["A", "value"] == 400.0 and v.loc["A", "currency"] == "EUR"     # 5 t x 80
+    assert v.loc["A", "account"] == "1400" and v.loc["A", "location"] == "Y-A"
+    assert math.isnan(v.loc["B", "value"]) and pd.isna(v.loc["B", "account"])    # ore has no cost
+    assert v.loc["B", "unit"] == "t" and v.loc["B", "quantity_t"] == -10.0
 
 
 def test_opposite_variances_of_different_materials_are_not_paired():
@@ -371,6 +438,12 @@ def test_density_error_shared_with_an_adopted_opening_is_not_counted_twice():
     # midpoint: half the survey error and half the book error carried over
     mid = opening_from_close(adopted, mats, "midpoint").iloc[0]
     assert mid.sigma_t == pytest.approx(math.hypot(25.0, 4.5)) and mid.density_sigma_t == pytest.approx(20.0)
+    # a held adjustment (closing = book) carries the book's error only, not the survey's
+    held = adopted.assign(closing_t=[960.0], book_t=[960.0], variance_t=[40.0], adjustment_t=[0.0])
+    o = opening_from_close(held, mats, "survey").iloc[0]
+    assert (o.tonnes, o.sigma_t, o.density_sigma_t) == (960.0, 9.0, 0.0)
+    posted = adopted.assign(book_t=[960.0], variance_t=[40.0], adjustment_t=[40.0])
+    assert opening_from_close(posted, mats, "midpoint").iloc[0].sigma_t == 50.0  # what was done wins
 
 
 def test_floor_base_error_shared_with_an_adopted_opening_cancels():

@@ -225,6 +225,17 @@ def test_unrecorded_transfer_is_a_pair_of_opposite_significant_variances(closes,
     assert c.loc[src, "difference_t"] < 0 < c.loc[dst, "difference_t"]
     # and no other pile is paired
     assert set(p.index[p["reason_code"] == "TRANSFER_SUSPECT"]) == {src, dst}
+    # the journal proposes one transfer of that estimate from src to dst, and each pile's
+    # residual: not two write-offs
+    lines = rec.lines
+    transfer = lines[lines["reason_code"] == "TRANSFER"]
+    assert transfer[["pile_id", "to_pile_id"]].values.tolist() == [[src, dst]]
+    t = float(transfer["quantity_t"].iloc[0])
+    assert round(t) == estimate and abs(t - tonnes) <= 2 * sigma
+    residual = lines[lines["reason_code"] == "TRANSFER_RESIDUAL"].set_index("pile_id")["quantity_t"]
+    assert residual[src] == pytest.approx(p.loc[src, "variance_t"] + t, abs=1e-9)
+    assert residual[dst] == pytest.approx(p.loc[dst, "variance_t"] - t, abs=1e-9)
+    assert abs(residual[src]) < p.loc[src, "variance_sigma_t"] and abs(residual[dst]) < p.loc[dst, "variance_sigma_t"]
 
 
 @slow

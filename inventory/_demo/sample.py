@@ -127,6 +127,13 @@ _GPS_LEAP_S = 18
 
 
 # ----------------------------------------------------------------------------- small writers
+
+#: Stock value per tonne of the sample's materials, EUR: invented round figures, there only so
+#: the sample journal carries values.
+_UNIT_COST = {"coal": 95.0, "iron ore": 110.0, "crushed limestone": 14.0, "rock salt": 60.0}
+#: Stock account codes of the sample's materials (invented).
+_ACCOUNTS = {"coal": "1410", "iron ore": "1420", "crushed limestone": "1430", "rock salt": "1440"}
+
 def _write_text(path: Path, text: str) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     with open(path, "w", encoding="utf-8", newline="\n") as fh:
@@ -374,8 +381,10 @@ def _build(root: Path, seed: int) -> None:
     }
 
     _write_site_toml(root)
-    _csv(root / "materials.csv", ["material", "bulk_density_t_m3", "density_sd_t_m3", "moisture_pct", "tolerance_pct"],
-         [[m.name, f"{m.table_density_t_m3:.3f}", f"{m.density_sd_t_m3:.3f}", f"{m.moisture_pct:.1f}", f"{m.tolerance_pct:.1f}"]
+    _csv(root / "materials.csv", ["material", "bulk_density_t_m3", "density_sd_t_m3", "moisture_pct", "tolerance_pct",
+                                  "unit_cost"],
+         [[m.name, f"{m.table_density_t_m3:.3f}", f"{m.density_sd_t_m3:.3f}", f"{m.moisture_pct:.1f}", f"{m.tolerance_pct:.1f}",
+           f"{_UNIT_COST[m.name]:.2f}"]
           for m in MATERIALS.values()])
     footprints = _footprints(terminals)
     _write_piles(root / "piles.gpkg", footprints)
@@ -570,6 +579,17 @@ def _write_site_toml(root: Path) -> None:
         "default_tolerance_pct = 3.0",
         'adjust_to = "survey"',
         "duplicate_window_min = 10",
+        'adjust = "all"',
+        "hold_unexplained = true",
+        "",
+        "[journal]",
+        'currency = "EUR"',
+        "",
+        "[journal.accounts]",
+        *[f'"{name}" = "{code}"' for name, code in _ACCOUNTS.items()],
+        "",
+        "[journal.locations]",
+        *[f'{p.pile_id} = "YARD-{p.pile_id}"' for p in PILES],
     ]
     wb = _books.WEIGHBRIDGE
     lines += ["", "[[scales]]", f'id = "{wb["id"]}"', 'kind = "weighbridge"', f'accuracy_class = "{wb["accuracy_class"]}"',

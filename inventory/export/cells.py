@@ -5,7 +5,7 @@ A spreadsheet opening a CSV (or reading a cell typed as a formula) runs text tha
 a start; a pile id, ticket or note from an input file could then compute, or call out of the
 spreadsheet (CSV or formula injection; the OWASP page of that name lists these characters).
 
-The workbook stores such text as a text cell (:func:`looks_like_formula` decides which); a
+The workbook stores all text as text cells (XlsxWriter's ``write_string``, never a formula); a
 CSV has no cell types, so :func:`neutralise` puts an apostrophe in front, the usual way to
 say "this is text" to a spreadsheet. Only text is touched: numbers stay numbers, a negative
 one included, and so does text that is a plain number such as ``-12.5``.

@@ -31,7 +31,7 @@ MANIFEST_VERSION = 1
 _DISTRIBUTIONS = {
     "numpy": "numpy", "scipy": "scipy", "pandas": "pandas", "laspy": "laspy",
     "lazrs": "lazrs", "rasterio": "rasterio", "geopandas": "geopandas", "pyogrio": "pyogrio",
-    "shapely": "shapely", "pyproj": "pyproj", "openpyxl": "openpyxl",
+    "shapely": "shapely", "pyproj": "pyproj", "XlsxWriter": "XlsxWriter",
     "cloth-simulation-filter": "CSF", "dask": "dask", "distributed": "distributed",
     "matplotlib": "matplotlib", "jsonschema": "jsonschema",
 }

@@ -1,6 +1,8 @@
 """The one-page close report ``report-<period>.html``: self-contained, images embedded.
 
-Contents: the headline figures, a shaded-relief map of the survey surface with each pile's
+Contents: the ledger close it holds (and, once superseded, by which close), the headline
+figures as a stock bridge (book at survey + adjustments posted = adjusted book; + net movements
+after the survey = closing stock), a shaded-relief map of the survey surface with each pile's
 footprint coloured by its variance class in % of book (five classes of a diverging scheme of
 our own: deficit in slate blue, surplus in rust, near book in pale stone; its legend is the
 colour bar; the classes and colours are :mod:`inventory.model.symbology`'s, which the
@@ -25,6 +27,7 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
+from inventory.export.journal import close_status_text, posting_journal
 from inventory.model.results import CloseResult
 from inventory.stock.reconcile import LOW_SCAN_FLAG
 from inventory.model.symbology import (
@@ -330,6 +333,9 @@ th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:left;vertical-align:to
 td.n{text-align:right;white-space:nowrap}
 th{background:#e8ecf1} td:first-child{white-space:nowrap}
 tr.oot td{background:OOT_COLOR} tr.sig td{background:SIG_COLOR}
+tr.hold td{color:#6b7280;font-style:italic}
+.status{font-weight:bold;margin-top:2px} .status.superseded{color:#8c3b1c;font-size:1.2em;
+border:2px solid #8c3b1c;padding:6px}
 .legend span{display:inline-block;width:14px;height:14px;border:1px solid #777;
 vertical-align:middle;margin:0 4px 0 14px}
 .caution{background:#fff7e0;border-left:4px solid #c98a5a;padding:8px 12px}
@@ -405,21 +411,32 @@ def report_html(result: CloseResult) -> str:
     survey = float(pd.to_numeric(p["survey_t"], errors="coerce").sum())
     var = float(pd.to_numeric(p["variance_t"], errors="coerce").sum())
     adj = float(pd.to_numeric(p["adjustment_t"], errors="coerce").sum())
+    after = float(pd.to_numeric(p["after_survey_net_t"], errors="coerce").sum())
     closing = float(pd.to_numeric(p["closing_t"], errors="coerce").sum())
+    journal = posting_journal(result)
+    held = journal[journal["status"] == "hold"]
     n_oot = sum(_flag(v) for v in p["out_of_tolerance"])
     n_sig = sum(_flag(v) for v in p["significant"])
     pct = 100.0 * var / book if book else float("nan")
     esc = html.escape
     headline = _table(["figure", "value"], [
         ["Book stock at survey (t)", _num(book)],
+        ["+ Adjustments posted (t)", _num(adj, signed=True)],
+        ["= Book stock after adjustments (t)", _num(book + adj)],
         ["Survey stock (t)", _num(survey)],
+        ["Left at book: held lines, midpoint, piles not surveyed (t)", _num(book + adj - survey, signed=True)],
+        ["+ Net movements after the survey (t)", _num(after, signed=True)],
+        ["= Closing stock (t)", _num(book + adj + after)],
         ["Variance, survey - book (t)", _num(var, signed=True)],
         ["Variance, % of book", _num(pct, signed=True)],
-        ["Adjustments (t)", _num(adj, signed=True)],
-        ["Closing stock (t)", _num(closing)],
         ["Piles out of tolerance", _num(n_oot)],
         ["Piles with a significant variance", _num(n_sig)],
+        ["Journal lines held, not posted", _num(len(held))],
     ] + _total_sigma_rows(result))
+    if abs((book + adj + after) - closing) > 1e-6 * max(1.0, abs(closing)):
+        # never expected (closing = book + adjustment + after-survey net per pile): shown, not hidden
+        headline = headline.replace("</tbody>", "<tr class=\"oot\"><td>Closing stock in the pile table "
+                                    f"(does not add up) (t)</td><td class=\"n\">{_num(closing)}</td></tr></tbody>")
     pile_rows, pile_classes = _pile_rows(p)
     piles_table = _table(
         ["pile", "material", "volume (m³)", "survey (t)", "book (t)", "variance (t)",
@@ -448,12 +465,23 @@ def report_html(result: CloseResult) -> str:
                               for v in row] for row in dup.itertuples(index=False, name=None)])
     else:
         dups = "<p>No duplicate records found.</p>"
-    journal = result.journal
-    if journal is not None and len(journal):
-        jt = _table(["pile", "material", "adjustment (t)", "code", "reason"],
-                    [[esc(str(r.pile_id)), esc(str(r.material)), _num(r.adjustment_t, signed=True),
-                      esc(str(r.reason_code)), esc(str(r.reason))]
-                     for r in journal.itertuples(index=False)])
+    if len(journal):
+        def text(v: Any) -> str:
+            return "" if v is None or (isinstance(v, float) and math.isnan(v)) or v is pd.NA else esc(str(v))
+
+        jt = _table(["line", "pile", "to pile", "material", "quantity (t)", "value", "account",
+                     "location", "code", "reason", "status"],
+                    [[_num(r.line), text(r.pile_id), text(r.to_pile_id), text(r.material),
+                      _num(r.quantity_t, signed=True),
+                      (_num(r.value, signed=True) + (f" {esc(str(r.currency))}" if _finite(r.value) and r.currency
+                                                     and not pd.isna(r.currency) else "")),
+                      text(r.account), text(r.location), text(r.reason_code), text(r.reason),
+                      text(r.status)]
+                     for r in journal.itertuples(index=False)],
+                    ["hold" if r.status == "hold" else "" for r in journal.itertuples(index=False)])
+        jt = (f"<p>Posting date {esc(str(journal['posting_date'].iloc[0]))}. Lines with status hold "
+              "are listed, not posted; a transfer line moves its quantity from the pile to the "
+              f"other pile.</p>{jt}")
     else:
         jt = "<p>No adjustments this period.</p>"
     cautions = "".join(f"<li>{esc(c)}</li>" for c in CAUTIONS)
@@ -464,6 +492,7 @@ def report_html(result: CloseResult) -> str:
 <style>{_CSS}</style></head>
 <body>
 <h1>Stock close {esc(result.period)}: {esc(result.site_name)}</h1>
+<p class="status">{esc(close_status_text(result))}</p>
 <p class="facts">Survey {esc(result.survey_date)} (instant {esc(_local_time(result))}),
 previous survey {esc(result.previous_survey_date or "none")}; CRS {esc(result.crs)};
 time zone {esc(result.timezone)}.</p>
@@ -482,7 +511,7 @@ src="data:image/png;base64,{_bar_figure(result)}">
 {_registration(result)}
 <h2>Stock outside the footprints</h2>
 {_unassigned_section(result)}
-<h2>Adjustment journal</h2>
+<h2>Journal</h2>
 {jt}
 <h2>Scale diagnostics</h2>
 {scales}

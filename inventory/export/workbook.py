@@ -1,48 +1,68 @@
-"""The close workbook (``variance-<period>.xlsx``) and the history workbook, with openpyxl.
+"""The close workbook (``variance-<period>.xlsx``) and the history workbook, with XlsxWriter.
 
 Sheets of the close workbook:
 
-Summary      site, period and survey facts; totals as live formulas over the Piles sheet;
-             the sign convention; the legend of row colours; the cautions.
-Piles        one row per pile with every figure of the close (the ledger's columns), a
-             totals row of SUM formulas.
-Variance     book and survey side by side with their sigmas, the variance, 2-sigma, the
-             tolerance in tonnes and a ``survey - book`` formula a controller can re-check.
+Summary      site, period, ledger close id and time; the stock bridge (book at survey +
+             adjustments posted = adjusted book; + net movements after the survey = closing
+             stock) as formulas over the Piles sheet; the sign convention, the legend of row
+             colours and the cautions.
+Piles        one row per pile with every figure of the close (the ledger's columns), a totals
+             row of SUM formulas.
+Variance     book and survey side by side with their sigmas; the variance sigma with its parts
+             (the quadrature sum of book and survey sigma, the shared terms removed) and the
+             formula in words; 2-sigma, the tolerance in tonnes, ``survey - book``.
 Movements    every weighbridge ticket, belt-scale interval and transfer that touched the books.
-Adjustments  the adjustment journal with a SUM formula.
+Journal      the posting journal: period, posting date, close id, pile, material, quantity,
+             unit, value, account and location codes, reason, status post or hold.
 Scales       scale diagnostics.
 Duplicates   exact and suspected duplicate records.
+(further)    one sheet per table of ``CloseResult.tables`` (materials, measured change, ...).
+Columns      every column of every table: sheet, name, unit, meaning.
 Run          inputs with SHA-256, parameters, versions, timings.
 
-Stored values are the float64 figures of the close, unrounded, so the workbook holds the
-numbers the ledger holds; number formats (t, m3, %) only change how they are shown.
+Numbers: stored values are the float64 figures of the close, unrounded and written to the
+last bit, so the workbook holds the numbers the ledger holds; number formats carry the unit
+(t, m³, %) and only change how a number is shown. Every formula cell also stores its
+computed value, so a script (pandas, openpyxl with ``data_only``) or a previewer that does not
+recalculate reads the same number as a spreadsheet program that does.
+
+Percentages: every percentage in the workbook is a spreadsheet percentage, stored as a
+fraction of one and shown with the % format (0.025 shows as 2.5 %), so ``=B2*C2`` gives
+tonnes. The ledger, the GeoPackage and the CSV files keep ``_pct`` columns in percent
+points (2.5 = 2.5 %), as their column dictionary says; the workbook divides by 100.
+
+Print: every sheet is set up for A4, landscape (Summary portrait), fitted to one page
+width, with the header row repeated on each page, and the site, period and ledger close in
+the page header. Notes under a table wrap within the table's width.
+
 Out-of-tolerance rows are filled red, significant rows amber, by conditional formatting.
 """
 
 from __future__ import annotations
 
 import math
-import threading
-from datetime import datetime, timezone
+import re
+from datetime import date, datetime, timezone
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any, Callable, Iterable, Mapping
 from zoneinfo import ZoneInfo
 
 import numpy as np
 import pandas as pd
 
-from inventory.export.cells import looks_like_formula
-from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS, CloseResult
+from inventory.export.journal import close_status_text, posting_journal
+from inventory.model.columns import FIELDS, unit_of
+from inventory.model.results import PILE_COLUMNS, POSTING_COLUMNS, SCALE_COLUMNS, CloseResult
 from inventory.model.texts import CAUTIONS, ROW_LEGEND, SIGN_CONVENTION
 from inventory.io.atomic import atomic_path
 
 __all__ = [
-    "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE",
-    "FILL_SIGNIFICANT",
+    "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT", "VARIANCE_SIGMA_IN_WORDS",
 ]
 
-SHEETS = ("Summary", "Piles", "Variance", "Movements", "Adjustments", "Scales",
-          "Duplicates", "Run")
+#: Sheets of a close whose ``tables`` are empty, in order.
+SHEETS = ("Summary", "Piles", "Variance", "Movements", "Journal", "Scales", "Duplicates",
+          "Columns", "Run")
 
 #: Row fills (ARGB). Our own pair: a muted brick for out of tolerance, a sand for significant.
 FILL_OUT_OF_TOLERANCE = "FFF2C4B8"
@@ -55,21 +75,25 @@ _FMT_T = '#,##0.00 "t"'
 _FMT_T_SIGNED = '+#,##0.00 "t";-#,##0.00 "t";0.00 "t"'
 _FMT_M3 = '#,##0.0 "m³"'
 _FMT_M2 = '#,##0.0 "m²"'
-_FMT_PCT = '0.00 "%"'                      # values already in percent (3.0 = 3 %)
-_FMT_PCT_SIGNED = '+0.00 "%";-0.00 "%";0.00 "%"'
-_FMT_FRACTION = "0.0%"                      # values are fractions (0.97 = 97 %)
+_FMT_M = '#,##0.000 "m"'
+_FMT_PCT = "0.00%"                          # fractions: 0.025 shows as 2.50%
+_FMT_PCT_SIGNED = "+0.00%;-0.00%;0.00%"
+_FMT_FRACTION = "0.0%"
 _FMT_DENSITY = '0.000 "t/m³"'
 _FMT_SECONDS = '0.00 "s"'
 _FMT_DATETIME = "yyyy-mm-dd hh:mm:ss"
+_FMT_DATE = "yyyy-mm-dd"
 _FMT_INT = "0"
+_FMT_MONEY = "#,##0.00"
 
 _PILE_FORMATS = {
-    "area_m2": _FMT_M2, "scanned_fraction": _FMT_FRACTION,
-    "volume_m3": _FMT_M3, "volume_sigma_m3": _FMT_M3, "volume_tin_m3": _FMT_M3,
-    "below_base_m3": _FMT_M3, "density_t_m3": _FMT_DENSITY,
-    "variance_t": _FMT_T_SIGNED, "adjustment_t": _FMT_T_SIGNED,
-    "after_survey_net_t": _FMT_T_SIGNED, "variance_pct": _FMT_PCT_SIGNED,
-    "tolerance_pct": _FMT_PCT,
+    "area_m2": _FMT_M2, "scanned_fraction": _FMT_FRACTION, "density_t_m3": _FMT_DENSITY,
+    "variance_t": _FMT_T_SIGNED, "adjustment_t": _FMT_T_SIGNED, "after_survey_net_t": _FMT_T_SIGNED,
+    "quantity_t": _FMT_T_SIGNED, "survey_minus_book_t": _FMT_T_SIGNED, "tonnes": _FMT_T_SIGNED,
+    "variance_pct": _FMT_PCT_SIGNED, "bias_pct": _FMT_PCT_SIGNED, "history_bias_pct": _FMT_PCT_SIGNED,
+    "history_months": _FMT_INT, "line": _FMT_INT, "close_id": _FMT_INT, "piles": _FMT_INT,
+    "unit_cost": _FMT_MONEY, "value": _FMT_MONEY, "share": _FMT_FRACTION,
+    "posting_date": _FMT_DATE,
 }
 
 #: Pile columns whose total is a plain sum (sigmas and ratios are not additive).
@@ -79,17 +103,40 @@ _ADDITIVE = [
     "variance_t", "adjustment_t", "after_survey_net_t", "closing_t",
 ]
 
-_MAX_WIDTH = 60
+#: How the Variance sheet's sigma columns fit together, in words (also in docs/uncertainty.md).
+VARIANCE_SIGMA_IN_WORDS = (
+    "variance_sigma_t = square root of (book_sigma_t squared + survey_sigma_t squared - "
+    "shared_sigma_t squared). quadrature_sigma_t is the square root of (book_sigma_t squared + "
+    "survey_sigma_t squared), what the sigma would be if book and survey erred independently. "
+    "shared_sigma_t is what the errors common to both take off: when the opening stock was an "
+    "earlier survey, the same table bulk density and the same fixed base (floor raster or level) "
+    "erred in that survey and in this one, so these errors cancel in survey - book instead of "
+    "adding twice (shared_sigma_t squared = 2 x the density part of this survey x that of the "
+    "opening + 2 x the same for the base)."
+)
+
+_MAX_WIDTH = 50
+_NOTE_WIDTH = 110          # characters a wrapped note spans at most
+#: Excel's limit on the characters in one cell (Excel specifications and limits).
+_MAX_CELL_CHARS = 32767
+#: Characters XML 1.0 does not allow in a document (control characters but tab, LF, CR).
+_ILLEGAL_XML = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")
 
 
 def _fmt_for(col: str) -> str | None:
     """Number format by column name: explicit map first, then the unit suffix."""
     if col in _PILE_FORMATS:
         return _PILE_FORMATS[col]
+    if col.endswith("_t_m3"):
+        return _FMT_DENSITY
     if col.endswith("_t"):
         return _FMT_T
     if col.endswith("_m3"):
         return _FMT_M3
+    if col.endswith("_m2"):
+        return _FMT_M2
+    if col.endswith("_m"):
+        return _FMT_M
     if col.endswith("_pct"):
         return _FMT_PCT
     if col.endswith("_s"):
@@ -97,8 +144,18 @@ def _fmt_for(col: str) -> str | None:
     return None
 
 
+def _as_fraction(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with every ``_pct`` column (percent points) divided by 100: a spreadsheet
+    percentage (the module docstring says why)."""
+    out = frame.copy()
+    for col in out.columns:
+        if str(col).endswith("_pct"):
+            out[col] = pd.to_numeric(out[col], errors="coerce") / 100.0
+    return out
+
+
 def _cell_value(value: Any, tz: ZoneInfo | None = None) -> Any:
-    """A value openpyxl writes as a valid cell (no NaN, no tz-aware datetimes)."""
+    """A value a cell can hold (no NaN, no tz-aware datetimes, plain Python types)."""
     if value is None or value is pd.NaT or value is pd.NA:
         return None
     if isinstance(value, (bool, np.bool_)):
@@ -115,61 +172,12 @@ def _cell_value(value: Any, tz: ZoneInfo | None = None) -> Any:
             ts = ts.tz_convert(tz) if tz is not None else ts.tz_convert(timezone.utc)
             ts = ts.tz_localize(None)
         return ts.to_pydatetime()
-    return value
-
-
-#: Excel's limit on the characters in one cell (Excel specifications and limits).
-_MAX_CELL_CHARS = 32767
-
-
-def _put(ws, row: int, col: int, value: Any, fmt: str | None = None, tz: ZoneInfo | None = None):
-    from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
-
-    cell = ws.cell(row=row, column=col)
-    v = _cell_value(value, tz)
-    if isinstance(v, str):
+    if isinstance(value, date):
+        return datetime(value.year, value.month, value.day)
+    if isinstance(value, str):
         # control characters are not allowed in the XML; an over-long cell makes Excel repair
-        v = ILLEGAL_CHARACTERS_RE.sub("\ufffd", v)[:_MAX_CELL_CHARS]
-    cell.value = v
-    if looks_like_formula(v):
-        cell.data_type = "s"  # text from an input file is never a formula
-    if fmt and isinstance(v, (int, float)) and not isinstance(v, bool):
-        cell.number_format = fmt
-    elif isinstance(v, datetime):
-        cell.number_format = _FMT_DATETIME
-    return cell
-
-
-def _formula(ws, row: int, col: int, formula: str, fmt: str | None = None):
-    cell = ws.cell(row=row, column=col)
-    cell.value = formula
-    if fmt:
-        cell.number_format = fmt
-    return cell
-
-
-def _header(ws, row: int, names: Iterable[str]) -> None:
-    from openpyxl.styles import Alignment, Border, Font, PatternFill, Side
-
-    fill = PatternFill("solid", fgColor=_HEADER_FILL)
-    bottom = Border(bottom=Side(style="thin"))
-    for j, name in enumerate(names, start=1):
-        c = ws.cell(row=row, column=j, value=name)
-        c.font = Font(name="Calibri", bold=True, size=11)
-        c.fill = fill
-        c.border = bottom
-        c.alignment = Alignment(vertical="center")
-
-
-def _print_setup(ws, landscape: bool = True, title_rows: str | None = None) -> None:
-    """Print (and PDF export) on pages as wide as the sheet, header row repeated."""
-    ws.page_setup.orientation = "landscape" if landscape else "portrait"
-    ws.page_setup.paperSize = ws.PAPERSIZE_A4
-    ws.sheet_properties.pageSetUpPr.fitToPage = True
-    ws.page_setup.fitToWidth = 1
-    ws.page_setup.fitToHeight = 0
-    if title_rows:
-        ws.print_title_rows = title_rows
+        return _ILLEGAL_XML.sub("\ufffd", value)[:_MAX_CELL_CHARS]
+    return value
 
 
 def _shown_len(value: Any, fmt: str | None) -> int:
@@ -179,166 +187,334 @@ def _shown_len(value: Any, fmt: str | None) -> int:
     if isinstance(value, bool):
         return 5
     if isinstance(value, datetime):
-        return 19
+        return 10 if fmt == _FMT_DATE else 19
     if isinstance(value, (int, float)):
+        if fmt and "%" in fmt:
+            return len(f"{value * 100:+.2f}") + 2
         text = f"{value:,.2f}" if fmt and "0.00" in fmt else f"{value:,.3f}"
         unit = fmt.rsplit('"', 2)[-2] if fmt and fmt.count('"') >= 2 else ""
         return len(text) + len(unit) + 2
-    if isinstance(value, str) and value.startswith("=") and fmt is not None:
-        return 14
-    return len(str(value))
+    return max(len(line) for line in str(value).split("\n"))
 
 
-def _fit_columns(ws, min_width: int = 8) -> None:
-    from openpyxl.utils import get_column_letter
+# -- the writer ---------------------------------------------------------------------------------
 
-    widths: dict[int, int] = {}
-    for row in ws.iter_rows():
-        for c in row:
-            if c.value is None:
-                continue
-            n = _shown_len(c.value, c.number_format if c.number_format != "General" else None)
-            widths[c.column] = max(widths.get(c.column, 0), n)
-    for col, w in widths.items():
-        ws.column_dimensions[get_column_letter(col)].width = min(max(w + 2, min_width), _MAX_WIDTH)
+def _exact_worksheet_class():
+    """An XlsxWriter worksheet that writes every float to the last bit.
+
+    XlsxWriter formats numbers with ``"%.16G"``, which loses the 17th significant digit some
+    doubles need, so the workbook would not hold exactly the ledger's numbers; ``repr`` of a
+    float is the shortest text that reads back as the same double. (Formula results are
+    already written with ``str``, which is the same.)
+    """
+    from xlsxwriter.worksheet import Worksheet
+
+    class ExactWorksheet(Worksheet):
+        def _xml_number_element(self, number, attributes=[]):  # noqa: B006 - XlsxWriter's signature
+            attr = "".join(f' {k}="{self._escape_attributes(v)}"' for k, v in attributes)
+            text = repr(float(number)) if isinstance(number, float) else str(number)
+            self.fh.write(f"<c{attr}><v>{text}</v></c>")
+
+    return ExactWorksheet
 
 
-def _table(ws, df: pd.DataFrame, columns: list[str], *, formats: Mapping[str, str] | None = None,
-           tz: ZoneInfo | None = None, freeze: str = "A2") -> tuple[int, int]:
-    """Header row 1, data from row 2; frozen header, auto-filter. Returns (first, last) data row."""
-    from openpyxl.utils import get_column_letter
+class _Book:
+    """An XlsxWriter workbook with a cache of cell formats and the page header of a close."""
 
+    def __init__(self, path: Path, header: str = "") -> None:
+        import xlsxwriter
+
+        self.wb = xlsxwriter.Workbook(str(path), {"nan_inf_to_errors": False})
+        self._cls = _exact_worksheet_class()
+        self._formats: dict[tuple, Any] = {}
+        self.header = header
+
+    def fmt(self, num: str | None = None, *, bold: bool = False, fill: str | None = None,
+            total: bool = False, wrap: bool = False, left: bool = False, size: int | None = None,
+            bottom: bool = False, valign_top: bool = False):
+        key = (num, bold, fill, total, wrap, left, size, bottom, valign_top)
+        if key not in self._formats:
+            props: dict[str, Any] = {"font_name": "Calibri", "font_size": size or 11}
+            if num:
+                props["num_format"] = num
+            if bold:
+                props["bold"] = True
+            if fill:
+                props.update(pattern=1, fg_color="#" + fill[2:])
+            if total:
+                props.update(top=1, bottom=6)
+            if bottom:
+                props["bottom"] = 1
+            if wrap:
+                props["text_wrap"] = True
+            if wrap or valign_top:
+                props["valign"] = "top"
+            if left:
+                props["align"] = "left"
+            self._formats[key] = self.wb.add_format(props)
+        return self._formats[key]
+
+    def row_fill(self, argb: str):
+        """A conditional-format fill (a differential format: background only)."""
+        key = ("cf", argb)
+        if key not in self._formats:
+            self._formats[key] = self.wb.add_format({"bg_color": "#" + argb[2:]})
+        return self._formats[key]
+
+    def sheet(self, name: str, *, landscape: bool = True) -> _Sheet:
+        ws = self.wb.add_worksheet(name[:31], worksheet_class=self._cls)
+        ws.set_paper(9)  # A4
+        if landscape:
+            ws.set_landscape()
+        else:
+            ws.set_portrait()
+        ws.fit_to_pages(1, 0)
+        ws.set_margins(left=0.5, right=0.5, top=0.8, bottom=0.6)
+        if self.header:
+            ws.set_header(f"&L&8{self.header}&R&8{_hf(name)}", {"margin": 0.3})
+        ws.set_footer("&R&8page &P of &N", {"margin": 0.3})
+        return _Sheet(self, ws)
+
+
+def _hf(text: str) -> str:
+    """Text for a page header: ``&`` is a control character there."""
+    return str(text).replace("&", "&&")
+
+
+class _Sheet:
+    """One worksheet, addressed with 1-based rows and columns like a spreadsheet's A1."""
+
+    def __init__(self, book: _Book, ws) -> None:
+        self.book, self.ws = book, ws
+        self.widths: dict[int, int] = {}
+        self.fixed: dict[int, int] = {}
+
+    def _track(self, c: int, value: Any, fmt: str | None) -> None:
+        n = _shown_len(value, fmt)
+        if n > self.widths.get(c, 0):
+            self.widths[c] = n
+
+    def put(self, r: int, c: int, value: Any, num: str | None = None, tz: ZoneInfo | None = None,
+            **style) -> Any:
+        """Write a value as its own type: text is always text (never run as a formula)."""
+        v = _cell_value(value, tz)
+        ws, row, col = self.ws, r - 1, c - 1
+        if v is None or v == "":  # empty text is an empty cell
+            if style:
+                ws.write_blank(row, col, None, self.book.fmt(num, **style))
+            return None
+        if isinstance(v, bool):
+            ws.write_boolean(row, col, v, self.book.fmt(None, **style) if style else None)
+        elif isinstance(v, (int, float)):
+            ws.write_number(row, col, v, self.book.fmt(num, **style) if (num or style) else None)
+        elif isinstance(v, datetime):
+            num = num if num in (_FMT_DATE, _FMT_DATETIME) else _FMT_DATETIME
+            ws.write_datetime(row, col, v, self.book.fmt(num, **style))
+        else:
+            v = str(v)
+            # write_string never reads "=..." as a formula: text from an input file stays text
+            ws.write_string(row, col, v, self.book.fmt(None, **style) if style else None)
+        self._track(c, v, num)
+        return v
+
+    def formula(self, r: int, c: int, formula: str, value: Any, num: str | None = None, **style) -> None:
+        """A formula with its computed value stored beside it (read by pandas and openpyxl
+        with ``data_only``; a spreadsheet program recalculates it)."""
+        v = _cell_value(value)
+        self.ws.write_formula(r - 1, c - 1, formula, self.book.fmt(num, **style) if (num or style) else None,
+                              "" if v is None else v)
+        self._track(c, v if v is not None else "", num)
+
+    def header(self, r: int, names: Iterable[str]) -> None:
+        f = self.book.fmt(None, bold=True, fill=_HEADER_FILL, bottom=True)
+        for j, name in enumerate(names, start=1):
+            self.ws.write_string(r - 1, j - 1, str(name), f)
+            self._track(j, str(name), None)
+
+    def note(self, r: int, text: str, ncols: int, bold: bool = False, col: int = 1) -> None:
+        """A note over the table's width (at most :data:`_NOTE_WIDTH` characters), wrapped,
+        with a row height for the lines it takes; from column ``col`` on."""
+        cols = max(1, ncols)
+        width = sum(self._width(j) for j in range(col, cols + 1))
+        width = max(min(width, _NOTE_WIDTH), 40)
+        text = _cell_value(text)
+        lines = sum(max(1, math.ceil(len(part) * 1.1 / width)) for part in str(text).split("\n"))
+        f = self.book.fmt(None, wrap=True, bold=bold)
+        last = col
+        while last < cols and sum(self._width(j) for j in range(col, last + 1)) < width:
+            last += 1
+        if last > col:
+            self.ws.merge_range(r - 1, col - 1, r - 1, last - 1, text, f)
+        else:
+            self.ws.write_string(r - 1, col - 1, text, f)
+        self.ws.set_row(r - 1, 15 * lines)
+
+    def _width(self, c: int) -> int:
+        if c in self.fixed:
+            return self.fixed[c]
+        return min(max(self.widths.get(c, 0) + 2, 8), _MAX_WIDTH)
+
+    def fit(self) -> None:
+        for c in sorted(set(self.widths) | set(self.fixed)):
+            self.ws.set_column(c - 1, c - 1, self._width(c))
+
+
+def _col(c: int) -> str:
+    from xlsxwriter.utility import xl_col_to_name
+
+    return xl_col_to_name(c - 1)
+
+
+def _num(v: Any) -> float | None:
+    v = _cell_value(v)
+    return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else None
+
+
+def _sum(values: Iterable[Any]) -> float:
+    """What a spreadsheet's SUM gives: numbers added, text, booleans and blanks left out."""
+    return float(sum(x for x in (_num(v) for v in values) if x is not None))
+
+
+def _table(sh: _Sheet, df: pd.DataFrame, columns: list[str], *, formats: Mapping[str, str] | None = None,
+           tz: ZoneInfo | None = None, freeze: tuple[int, int] = (1, 0),
+           computed: Mapping[str, Callable[[int, dict], tuple[str, Any]]] | None = None,
+           wrap: Mapping[str, int] | None = None) -> tuple[int, int]:
+    """Header row 1, data from row 2; frozen header, auto-filter, header repeated on print.
+
+    ``computed`` maps a column to ``f(row, values) -> (formula, value)`` for formula columns;
+    ``wrap`` maps a text column to the width it wraps at. Returns (first, last) data row.
+    """
     formats = dict(formats or {})
-    _header(ws, 1, columns)
-    data = df[columns] if len(df.columns) else pd.DataFrame(columns=columns)
+    computed = dict(computed or {})
+    wrap = dict(wrap or {})
+    for col, width in wrap.items():
+        if col in columns:
+            sh.fixed[columns.index(col) + 1] = width
+    sh.header(1, columns)
+    data = df.reindex(columns=columns) if len(df.columns) else pd.DataFrame(columns=columns)
     for i, row in enumerate(data.itertuples(index=False, name=None), start=2):
-        for j, (col, v) in enumerate(zip(columns, row), start=1):
-            _put(ws, i, j, v, formats.get(col, _fmt_for(col)), tz)
+        values = dict(zip(columns, row))
+        for j, col in enumerate(columns, start=1):
+            if col in computed:
+                formula, value = computed[col](i, values)
+                sh.formula(i, j, formula, value, formats.get(col, _fmt_for(col)))
+            elif col in wrap:
+                sh.put(i, j, values[col], formats.get(col, _fmt_for(col)), tz, wrap=True)
+            else:
+                sh.put(i, j, values[col], formats.get(col, _fmt_for(col)), tz)
     last = 1 + len(data)
-    ws.freeze_panes = freeze
-    ws.auto_filter.ref = f"A1:{get_column_letter(len(columns))}{max(last, 1)}"
-    _print_setup(ws, title_rows="1:1")
+    sh.ws.freeze_panes(*freeze)
+    sh.ws.autofilter(0, 0, max(last, 1) - 1, len(columns) - 1)
+    sh.ws.repeat_rows(0)
     return 2, last
 
 
-def _mark_rows(ws, first: int, last: int, ncols: int, oot_col: int | None, sig_col: int | None):
+def _mark_rows(sh: _Sheet, first: int, last: int, ncols: int, oot_col: int | None, sig_col: int | None):
     """Fill out-of-tolerance rows red and significant rows amber (live conditional rules)."""
-    from openpyxl.formatting.rule import FormulaRule
-    from openpyxl.styles import PatternFill
-    from openpyxl.utils import get_column_letter
-
     if last < first:
         return
-    rng = f"A{first}:{get_column_letter(ncols)}{last}"
-    if oot_col is not None:
-        letter = get_column_letter(oot_col)
-        ws.conditional_formatting.add(rng, FormulaRule(
-            formula=[f"${letter}{first}=TRUE"], stopIfTrue=True,
-            fill=PatternFill("solid", start_color=FILL_OUT_OF_TOLERANCE,
-                             end_color=FILL_OUT_OF_TOLERANCE, bgColor=FILL_OUT_OF_TOLERANCE)))
-    if sig_col is not None:
-        letter = get_column_letter(sig_col)
-        ws.conditional_formatting.add(rng, FormulaRule(
-            formula=[f"${letter}{first}=TRUE"], stopIfTrue=True,
-            fill=PatternFill("solid", start_color=FILL_SIGNIFICANT,
-                             end_color=FILL_SIGNIFICANT, bgColor=FILL_SIGNIFICANT)))
+    for col, fill in ((oot_col, FILL_OUT_OF_TOLERANCE), (sig_col, FILL_SIGNIFICANT)):
+        if col is None:
+            continue
+        sh.ws.conditional_format(first - 1, 0, last - 1, ncols - 1, {
+            "type": "formula", "criteria": f"=${_col(col)}{first}=TRUE",
+            "format": sh.book.row_fill(fill), "stop_if_true": True})
 
 
-def _total_row(ws, row: int, label_col: int, label: str, sums: Mapping[int, tuple[int, int]],
+def _total_row(sh: _Sheet, row: int, label: str, sums: Mapping[int, tuple[int, int, float]],
                formats: Mapping[int, str | None]) -> None:
-    from openpyxl.styles import Border, Font, PatternFill, Side
-    from openpyxl.utils import get_column_letter
-
-    fill = PatternFill("solid", fgColor=_TOTAL_FILL)
-    top = Border(top=Side(style="thin"), bottom=Side(style="double"))
-    c = ws.cell(row=row, column=label_col, value=label)
-    c.font = Font(name="Calibri", bold=True, size=11)
-    for col, (first, last) in sums.items():
-        letter = get_column_letter(col)
-        cell = _formula(ws, row, col, f"=SUM({letter}{first}:{letter}{max(last, first)})"
-                        if last >= first else "=0", formats.get(col))
-        cell.font = Font(name="Calibri", bold=True, size=11)
-        cell.fill = fill
-        cell.border = top
+    """A totals row: ``sums`` maps a column to (first row, last row, the computed sum)."""
+    sh.put(row, 1, label, bold=True)
+    for col, (first, last, value) in sums.items():
+        letter = _col(col)
+        formula = f"=SUM({letter}{first}:{letter}{last})" if last >= first else "=0"
+        sh.formula(row, col, formula, value if last >= first else 0, formats.get(col), bold=True,
+                   fill=_TOTAL_FILL, total=True)
 
 
 # -- sheets -------------------------------------------------------------------------------------
 
-def _piles_sheet(wb, result: CloseResult) -> dict[str, str]:
-    """Returns column name -> absolute reference of its total cell (for the Summary)."""
-    from openpyxl.utils import get_column_letter
-
-    ws = wb.create_sheet("Piles")
+def _piles_sheet(book: _Book, result: CloseResult) -> dict[str, Any]:
+    """Returns, by column name, (absolute reference of its total cell, its value) for Summary."""
+    sh = book.sheet("Piles")
     cols = list(PILE_COLUMNS)
-    piles = result.piles
-    first, last = _table(ws, piles, cols, freeze="B2")
-    _mark_rows(ws, first, last, len(cols), cols.index("out_of_tolerance") + 1,
-               cols.index("significant") + 1)
+    piles = _as_fraction(result.piles.reindex(columns=cols))
+    first, last = _table(sh, piles, cols, freeze=(1, 1), wrap={"flags": 40})
+    _mark_rows(sh, first, last, len(cols), cols.index("out_of_tolerance") + 1, cols.index("significant") + 1)
     total_row = last + 2
-    sums = {cols.index(c) + 1: (first, last) for c in _ADDITIVE}
-    _total_row(ws, total_row, 1, "Total", sums, {k: _fmt_for(cols[k - 1]) for k in sums})
-    # the total variance in % of total book, as a formula over the two totals
-    vcol = get_column_letter(cols.index("variance_t") + 1)
-    bcol = get_column_letter(cols.index("book_t") + 1)
-    _formula(ws, total_row, cols.index("variance_pct") + 1,
-             f"=IF({bcol}{total_row}=0,\"\",100*{vcol}{total_row}/{bcol}{total_row})",
-             _FMT_PCT_SIGNED)
-    _fit_columns(ws)
-    refs = {c: f"Piles!${get_column_letter(cols.index(c) + 1)}${total_row}" for c in _ADDITIVE}
-    refs["variance_pct"] = f"Piles!${get_column_letter(cols.index('variance_pct') + 1)}${total_row}"
-    letter_oot = get_column_letter(cols.index("out_of_tolerance") + 1)
-    letter_sig = get_column_letter(cols.index("significant") + 1)
-    refs["_oot_range"] = f"Piles!${letter_oot}${first}:${letter_oot}${max(last, first)}"
-    refs["_sig_range"] = f"Piles!${letter_sig}${first}:${letter_sig}${max(last, first)}"
+    sums = {cols.index(c) + 1: (first, last, _sum(piles[c])) for c in _ADDITIVE}
+    _total_row(sh, total_row, "Total", sums, {k: _fmt_for(cols[k - 1]) for k in sums})
+    # the total variance as a share of total book, as a formula over the two totals
+    v, b = _col(cols.index("variance_t") + 1), _col(cols.index("book_t") + 1)
+    tv, tb = _sum(piles["variance_t"]), _sum(piles["book_t"])
+    pct = tv / tb if tb != 0 else ""
+    sh.formula(total_row, cols.index("variance_pct") + 1,
+               f'=IF({b}{total_row}=0,"",{v}{total_row}/{b}{total_row})', pct, _FMT_PCT_SIGNED,
+               bold=True, fill=_TOTAL_FILL, total=True)
+    sh.fit()
+    refs: dict[str, Any] = {
+        c: (f"Piles!${_col(cols.index(c) + 1)}${total_row}", _sum(piles[c])) for c in _ADDITIVE}
+    refs["variance_pct"] = (f"Piles!${_col(cols.index('variance_pct') + 1)}${total_row}", pct)
+    for flag in ("out_of_tolerance", "significant"):
+        L = _col(cols.index(flag) + 1)
+        refs[flag] = (f"Piles!${L}${first}:${L}${max(last, first)}",
+                      int(sum(1 for x in piles[flag] if _cell_value(x) is True)))
     return refs
 
 
 _VARIANCE_COLUMNS = [
     "pile_id", "material", "book_t", "book_sigma_t", "survey_t", "survey_sigma_t",
-    "variance_t", "variance_sigma_t", "variance_2sigma_t", "variance_pct", "tolerance_pct",
-    "tolerance_t", "significant", "out_of_tolerance", "survey_minus_book_t",
-    "scanned_fraction", "flags",
+    "variance_t", "quadrature_sigma_t", "shared_sigma_t", "variance_sigma_t", "variance_2sigma_t",
+    "variance_pct", "tolerance_pct", "tolerance_t", "significant", "out_of_tolerance",
+    "survey_minus_book_t", "scanned_fraction", "flags",
 ]
 
 
-def _variance_sheet(wb, result: CloseResult) -> None:
-    from openpyxl.utils import get_column_letter
-
-    ws = wb.create_sheet("Variance")
+def _variance_sheet(book: _Book, result: CloseResult) -> None:
+    sh = book.sheet("Variance")
     cols = _VARIANCE_COLUMNS
-    p = result.piles
-    n = len(p)
-    L = {c: get_column_letter(i + 1) for i, c in enumerate(cols)}
-    _header(ws, 1, cols)
-    for i, row in enumerate(p.itertuples(index=False), start=2):
-        r = row._asdict()
-        for c in cols:
-            j = cols.index(c) + 1
-            if c == "variance_2sigma_t":
-                _formula(ws, i, j, f"=2*{L['variance_sigma_t']}{i}", _FMT_T)
-            elif c == "tolerance_t":
-                _formula(ws, i, j, f"=ABS({L['book_t']}{i})*{L['tolerance_pct']}{i}/100", _FMT_T)
-            elif c == "survey_minus_book_t":
-                _formula(ws, i, j, f"={L['survey_t']}{i}-{L['book_t']}{i}", _FMT_T_SIGNED)
-            else:
-                _put(ws, i, j, r[c], _fmt_for(c))
-    first, last = 2, 1 + n
-    ws.freeze_panes = "B2"
-    ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(last, 1)}"
-    _print_setup(ws, title_rows="1:1")
-    _mark_rows(ws, first, last, len(cols), cols.index("out_of_tolerance") + 1,
-               cols.index("significant") + 1)
-    sums = {cols.index(c) + 1: (first, last)
-            for c in ("book_t", "survey_t", "variance_t", "survey_minus_book_t")}
-    _total_row(ws, last + 2, 1, "Total", sums, {k: _fmt_for(cols[k - 1]) for k in sums})
-    _formula(ws, last + 2, cols.index("survey_minus_book_t") + 1,
-             f"={L['survey_t']}{last + 2}-{L['book_t']}{last + 2}", _FMT_T_SIGNED)
-    ws.cell(row=last + 4, column=1, value=SIGN_CONVENTION)
-    ws.cell(row=last + 5, column=1, value=(
-        "variance_2sigma_t, tolerance_t and survey_minus_book_t are formulas; "
-        "significant: |variance| > k x sigma; out_of_tolerance: |variance %| > tolerance %."))
-    _fit_columns(ws)
-    ws.column_dimensions["A"].width = max(ws.column_dimensions["A"].width or 8, 12)
+    L = {c: _col(i + 1) for i, c in enumerate(cols)}
+    p = _as_fraction(result.piles.reindex(columns=PILE_COLUMNS))
+
+    def f(v: dict, c: str) -> float | None:
+        return _num(v.get(c))
+
+    def quad(i, v):
+        b, s = f(v, "book_sigma_t") or 0.0, f(v, "survey_sigma_t") or 0.0
+        return (f"=SQRT({L['book_sigma_t']}{i}^2+{L['survey_sigma_t']}{i}^2)", math.sqrt(b * b + s * s))
+
+    def shared(i, v):
+        b, s, sv = f(v, "book_sigma_t") or 0.0, f(v, "survey_sigma_t") or 0.0, f(v, "variance_sigma_t") or 0.0
+        return (f"=SQRT(MAX(0,{L['book_sigma_t']}{i}^2+{L['survey_sigma_t']}{i}^2-{L['variance_sigma_t']}{i}^2))",
+                math.sqrt(max(0.0, b * b + s * s - sv * sv)))
+
+    def two_sigma(i, v):
+        return f"=2*{L['variance_sigma_t']}{i}", 2 * (f(v, "variance_sigma_t") or 0.0)
+
+    def tol_t(i, v):
+        return (f"=ABS({L['book_t']}{i})*{L['tolerance_pct']}{i}",
+                abs(f(v, "book_t") or 0.0) * (f(v, "tolerance_pct") or 0.0))
+
+    def s_minus_b(i, v):
+        return f"={L['survey_t']}{i}-{L['book_t']}{i}", (f(v, "survey_t") or 0.0) - (f(v, "book_t") or 0.0)
+
+    first, last = _table(sh, p, cols, freeze=(1, 1), wrap={"flags": 40}, computed={
+        "quadrature_sigma_t": quad, "shared_sigma_t": shared, "variance_2sigma_t": two_sigma,
+        "tolerance_t": tol_t, "survey_minus_book_t": s_minus_b})
+    _mark_rows(sh, first, last, len(cols), cols.index("out_of_tolerance") + 1, cols.index("significant") + 1)
+    tr = last + 2
+    sums = {cols.index(c) + 1: (first, last, _sum(p[c])) for c in ("book_t", "survey_t", "variance_t")}
+    _total_row(sh, tr, "Total", sums, {k: _fmt_for(cols[k - 1]) for k in sums})
+    sh.formula(tr, cols.index("survey_minus_book_t") + 1, f"={L['survey_t']}{tr}-{L['book_t']}{tr}",
+               _sum(p["survey_t"]) - _sum(p["book_t"]), _FMT_T_SIGNED, bold=True, fill=_TOTAL_FILL, total=True)
+    sh.fixed[1] = max(sh._width(1), 12)
+    sh.fit()
+    ncols = len(cols)
+    sh.note(tr + 2, SIGN_CONVENTION, ncols)
+    sh.note(tr + 3, VARIANCE_SIGMA_IN_WORDS, ncols)
+    sh.note(tr + 4, ("quadrature_sigma_t, shared_sigma_t, variance_2sigma_t, tolerance_t and "
+                     "survey_minus_book_t are formulas; significant: |variance| > k x variance_sigma_t; "
+                     "out_of_tolerance: |variance| > tolerance_t (tolerance_pct x |book|)."), ncols)
 
 
 _MOVEMENT_SHEET_COLUMNS = [
@@ -347,10 +523,8 @@ _MOVEMENT_SHEET_COLUMNS = [
 ]
 
 
-def _movements_sheet(wb, result: CloseResult) -> None:
-    from openpyxl.utils import get_column_letter
-
-    ws = wb.create_sheet("Movements")
+def _movements_sheet(book: _Book, result: CloseResult) -> None:
+    sh = book.sheet("Movements")
     mv = result.movements.copy() if result.movements is not None else pd.DataFrame()
     for c in ("kind", "reference", "time", "pile_id", "tonnes", "scale_id", "counted",
               "before_survey", "note", "source", "line"):
@@ -361,103 +535,174 @@ def _movements_sheet(wb, result: CloseResult) -> None:
     mv["time_utc"] = times
     mv["time_local"] = times.dt.tz_convert(tz) if tz is not None else times
     cols = _MOVEMENT_SHEET_COLUMNS
-    _header(ws, 1, cols)
+    sh.header(1, cols)
     for i, row in enumerate(mv[cols].itertuples(index=False, name=None), start=2):
         for j, (c, v) in enumerate(zip(cols, row), start=1):
-            zone = tz if c == "time_local" else None
-            fmt = _FMT_T_SIGNED if c == "tonnes" else (_FMT_INT if c == "line" else None)
-            _put(ws, i, j, v, fmt, zone)
+            sh.put(i, j, v, _fmt_for(c), tz if c == "time_local" else None)
     first, last = 2, 1 + len(mv)
-    ws.freeze_panes = "A2"
-    _print_setup(ws, title_rows="1:1")
-    ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(last, 1)}"
-    t = get_column_letter(cols.index("tonnes") + 1)
-    k = get_column_letter(cols.index("counted") + 1)
-    b = get_column_letter(cols.index("before_survey") + 1)
+    sh.ws.freeze_panes(1, 0)
+    sh.ws.autofilter(0, 0, max(last, 1) - 1, len(cols) - 1)
+    sh.ws.repeat_rows(0)
+    t, k, b = (_col(cols.index(c) + 1) for c in ("tonnes", "counted", "before_survey"))
+    lo, hi = first, max(last, first)
+    counted = [_cell_value(x) is True for x in mv["counted"]]
+    before = [_cell_value(x) is True for x in mv["before_survey"]]
+    tonnes = [_num(x) or 0.0 for x in mv["tonnes"]]
     r = last + 2
-    ws.cell(row=r, column=1, value="Net counted (t)")
-    _formula(ws, r, cols.index("tonnes") + 1,
-             f"=SUMIFS({t}{first}:{t}{max(last, first)},{k}{first}:{k}{max(last, first)},TRUE)",
-             _FMT_T_SIGNED)
-    ws.cell(row=r + 1, column=1, value="Net counted up to the survey (t)")
-    _formula(ws, r + 1, cols.index("tonnes") + 1,
-             f"=SUMIFS({t}{first}:{t}{max(last, first)},{k}{first}:{k}{max(last, first)},TRUE,"
-             f"{b}{first}:{b}{max(last, first)},TRUE)", _FMT_T_SIGNED)
-    ws.cell(row=r + 2, column=1, value=(
-        f"Times: time_utc in UTC, time_local in {result.timezone}. "
-        "tonnes: + into the pile, - out of it."))
-    _fit_columns(ws)
-    ws.column_dimensions["A"].width = max(ws.column_dimensions["A"].width or 8, 12)
+    tcol = cols.index("tonnes") + 1
+    sh.put(r, 1, "Net counted (t)", bold=True)
+    sh.formula(r, tcol, f"=SUMIFS({t}{lo}:{t}{hi},{k}{lo}:{k}{hi},TRUE)",
+               float(sum(x for x, c in zip(tonnes, counted) if c)), _FMT_T_SIGNED, bold=True)
+    sh.put(r + 1, 1, "Net counted up to the survey (t)", bold=True)
+    sh.formula(r + 1, tcol, f"=SUMIFS({t}{lo}:{t}{hi},{k}{lo}:{k}{hi},TRUE,{b}{lo}:{b}{hi},TRUE)",
+               float(sum(x for x, c, bb in zip(tonnes, counted, before) if c and bb)), _FMT_T_SIGNED, bold=True)
+    sh.fixed[1] = max(sh._width(1), 12)
+    sh.fit()
+    sh.note(r + 3, f"Times: time_utc in UTC, time_local in {result.timezone}. "
+                   "tonnes: + into the pile, - out of it.", len(cols))
 
 
-def _journal_sheet(wb, result: CloseResult) -> None:
-    ws = wb.create_sheet("Adjustments")
-    j = result.journal if result.journal is not None else pd.DataFrame(columns=JOURNAL_COLUMNS)
-    first, last = _table(ws, j, JOURNAL_COLUMNS)
-    col = JOURNAL_COLUMNS.index("adjustment_t") + 1
-    _total_row(ws, last + 2, 1, "Total", {col: (first, last)}, {col: _FMT_T_SIGNED})
-    ws.cell(row=last + 4, column=1, value=(
-        "A positive adjustment increases book stock (book + adjustment = adopted figure)."))
-    from openpyxl.styles import Font
-
-    r = last + 6
+def _journal_sheet(book: _Book, result: CloseResult) -> None:
+    sh = book.sheet("Journal")
+    j = posting_journal(result)
+    cols = list(POSTING_COLUMNS)
+    first, last = _table(sh, j, cols, freeze=(1, 5), wrap={"reason": 60})
+    q, v, s, code = (_col(cols.index(c) + 1) for c in ("quantity_t", "value", "status", "reason_code"))
+    lo, hi = first, max(last, first)
+    not_transfer = j["reason_code"] != "TRANSFER"
+    rows = [
+        ("Posted to book stock (adjustment and residual lines)", "post", _FMT_T_SIGNED),
+        ("Held, not posted (adjustment and residual lines)", "hold", _FMT_T_SIGNED),
+    ]
+    r = last + 2
+    qcol, vcol = cols.index("quantity_t") + 1, cols.index("value") + 1
+    for label, status, fmt in rows:
+        sel = (j["status"] == status) & not_transfer
+        sh.put(r, 1, label, bold=True)
+        crit = f'{s}{lo}:{s}{hi},"{status}",{code}{lo}:{code}{hi},"<>TRANSFER"'
+        sh.formula(r, qcol, f"=SUMIFS({q}{lo}:{q}{hi},{crit})", _sum(j.loc[sel, "quantity_t"]), fmt, bold=True)
+        sh.formula(r, vcol, f"=SUMIFS({v}{lo}:{v}{hi},{crit})", _sum(j.loc[sel, "value"]), _FMT_MONEY, bold=True)
+        r += 1
+    sel = (j["status"] == "post") & ~not_transfer
+    sh.put(r, 1, "Transfers proposed and posted (pile to pile, net zero)", bold=True)
+    sh.formula(r, qcol, f'=SUMIFS({q}{lo}:{q}{hi},{s}{lo}:{s}{hi},"post",{code}{lo}:{code}{hi},"TRANSFER")',
+               _sum(j.loc[sel, "quantity_t"]), _FMT_T, bold=True)
+    sh.fixed[1] = max(sh._width(1), 10)
+    sh.fit()
+    ncols = len(cols)
+    r += 2
+    for text in (
+        "quantity_t: + increases the pile's book stock, - decreases it; a TRANSFER line moves "
+        "quantity_t from pile_id to to_pile_id. Lines with status hold are listed, not posted: "
+        "the policy (site.toml [reconcile] adjust, hold_unexplained) does not post them.",
+        "value = quantity_t x unit_cost (materials.csv unit_cost, in currency); account and location "
+        "codes from site.toml [journal]. posting_date is the last day of the period.",
+    ):
+        sh.note(r, text, ncols)
+        r += 1
     if result.reason_codes:
-        ws.cell(row=r, column=1, value="Reason codes").font = Font(name="Calibri", bold=True, size=11)
-        for code, meaning in result.reason_codes.items():
+        r += 1
+        sh.put(r, 1, "Reason codes", bold=True)
+        for c, meaning in result.reason_codes.items():
             r += 1
-            ws.cell(row=r, column=1, value=code)
-            ws.cell(row=r, column=2, value=meaning)
-    _fit_columns(ws)
+            sh.put(r, 1, c)
+            sh.put(r, 2, meaning)
 
 
 _LISTS = (list, tuple, set, np.ndarray)
 
 
-def _extra_sheets(wb, result: CloseResult) -> None:
-    """One sheet per further table of the close (belt split, measured change, materials)."""
+def _extra_sheets(book: _Book, result: CloseResult) -> dict[str, list[str]]:
+    """One sheet per further table of the close (belt split, measured change, materials);
+    returns their columns by sheet title (for the Columns sheet)."""
+    out: dict[str, list[str]] = {}
     for title, frame in (result.tables or {}).items():
         if frame is None:
             continue
-        ws = wb.create_sheet(str(title)[:31])
+        sh = book.sheet(str(title)[:31])
         if not len(frame.columns):
-            ws["A1"] = "Nothing this period."
+            sh.put(1, 1, "Nothing this period.")
             continue
-        shown = frame.rename(columns=str).copy()
+        shown = _as_fraction(frame.rename(columns=str))
         for col in shown.columns:  # lists and sets (e.g. pile ids) as plain text
             # a plain loop: Series.any() refuses an empty (or any) datetime column
             if any(isinstance(v, _LISTS) for v in shown[col]):
                 shown[col] = shown[col].map(lambda v: ", ".join(map(str, v)) if isinstance(v, _LISTS) else v)
-        _table(ws, shown, list(shown.columns), tz=ZoneInfo(result.timezone) if result.timezone else None)
-        _fit_columns(ws)
+        cols = list(shown.columns)
+        first, last = _table(sh, shown, cols, tz=ZoneInfo(result.timezone) if result.timezone else None)
+        _mark_rows(sh, first, last, len(cols),
+                   cols.index("out_of_tolerance") + 1 if "out_of_tolerance" in cols else None,
+                   cols.index("significant") + 1 if "significant" in cols else None)
+        sh.fit()
+        out[str(title)[:31]] = cols
+    return out
 
 
-def _scales_sheet(wb, result: CloseResult) -> None:
-    ws = wb.create_sheet("Scales")
+def _scales_sheet(book: _Book, result: CloseResult) -> None:
+    sh = book.sheet("Scales")
     sd = result.scale_diagnostics
     if sd is None:
         sd = pd.DataFrame(columns=SCALE_COLUMNS)
-    sd = sd.copy()
-    if "piles" in sd.columns:
-        sd["piles"] = sd["piles"].map(
-            lambda v: ", ".join(map(str, v)) if isinstance(v, (list, tuple, set, np.ndarray))
-            else v)
-    _table(ws, sd, SCALE_COLUMNS, formats={"bias_pct": _FMT_PCT_SIGNED, "bias_sigma_pct": _FMT_PCT,
-                                           "history_bias_pct": _FMT_PCT_SIGNED,
-                                           "history_bias_sigma_pct": _FMT_PCT,
-                                           "history_months": _FMT_INT})
-    _mark_rows(ws, 2, 1 + len(sd), len(SCALE_COLUMNS), SCALE_COLUMNS.index("flagged") + 1, None)
-    _fit_columns(ws)
+    sd = _as_fraction(sd.reindex(columns=SCALE_COLUMNS))
+    sd["piles"] = sd["piles"].map(lambda v: ", ".join(map(str, v)) if isinstance(v, _LISTS) else v)
+    _table(sh, sd, SCALE_COLUMNS, formats={"piles": None}, wrap={"message": 60, "piles": 24})
+    _mark_rows(sh, 2, 1 + len(sd), len(SCALE_COLUMNS), SCALE_COLUMNS.index("flagged") + 1, None)
+    sh.fit()
 
 
-def _duplicates_sheet(wb, result: CloseResult) -> None:
-    ws = wb.create_sheet("Duplicates")
+_DUPLICATE_COLUMNS = ["reference", "kind", "detail"]
+
+
+def _duplicate_columns(result: CloseResult) -> list[str]:
     d = result.duplicates
-    cols = ["reference", "kind", "detail"]
+    if d is None or not len(d.columns):
+        return list(_DUPLICATE_COLUMNS)
+    return [c for c in _DUPLICATE_COLUMNS if c in d.columns] + [c for c in d.columns if c not in _DUPLICATE_COLUMNS]
+
+
+def _duplicates_sheet(book: _Book, result: CloseResult) -> None:
+    sh = book.sheet("Duplicates")
+    d = result.duplicates
+    cols = _duplicate_columns(result)
     if d is None or not len(d.columns):
         d = pd.DataFrame(columns=cols)
-    cols = [c for c in cols if c in d.columns] + [c for c in d.columns if c not in cols]
-    _table(ws, d, cols)
-    _fit_columns(ws)
+    _table(sh, d, cols, wrap={"detail": 60})
+    sh.fit()
+
+
+#: Columns of the Run sheet, which are not output columns of the close (see
+#: :data:`inventory.model.columns.FIELDS` for those): column -> (title, meaning).
+_RUN_FIELDS: dict[str, tuple[str, str]] = {
+    "fact": ("Fact", "Name of a fact of the run (dotted: section.key), or an input file."),
+    "value": ("Value", "Its value: a parameter, a version, a timing in seconds, or the file's SHA-256."),
+}
+
+
+def _unit_words(col: str) -> str:
+    if col.endswith("_pct") or col in ("scanned_fraction", "share"):
+        return "% (stored as a fraction: 0.025 shows as 2.5 %)"
+    if col in ("unit_cost",):
+        return "currency per tonne"
+    if col == "value":
+        return "currency (column currency)"
+    if col.endswith("_s"):
+        return "s (seconds)"
+    u = unit_of(col)
+    return f"{u[0]} ({u[1]})" if u else ""
+
+
+def _columns_sheet(book: _Book, tables: list[tuple[str, list[str]]]) -> None:
+    sh = book.sheet("Columns")
+    cols = ["sheet", "column", "unit", "meaning"]
+    rows = []
+    for sheet, names in tables:
+        fields = _RUN_FIELDS if sheet == "Run" else FIELDS
+        for name in names:
+            title, meaning = fields.get(name, ("", ""))
+            rows.append({"sheet": sheet, "column": name, "unit": "" if sheet == "Run" else _unit_words(name),
+                         "meaning": f"{title}: {meaning}" if title else meaning})
+    _table(sh, pd.DataFrame(rows, columns=cols), cols, wrap={"meaning": 80, "unit": 24})
+    sh.fit()
 
 
 def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
@@ -471,45 +716,48 @@ def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
                     else str(value)))
 
 
-def _run_sheet(wb, result: CloseResult) -> None:
+def _run_sheet(book: _Book, result: CloseResult) -> None:
     from inventory.export.manifest import manifest_dict
 
-    ws = wb.create_sheet("Run")
+    sh = book.sheet("Run", landscape=False)
     facts = manifest_dict(result)
     inputs = facts.pop("inputs", {})
-    _header(ws, 1, ["fact", "value"])
+    sh.header(1, ["fact", "value"])
     rows: list[tuple[str, Any]] = []
     _flatten("", facts, rows)
+    wrap = book.fmt(None, wrap=True, left=True)
     r = 2
     for key, value in rows:
-        fmt = _FMT_SECONDS if key.startswith("timings_s.") else None
-        ws.cell(row=r, column=1, value=key)
-        _put(ws, r, 2, value, fmt)
+        sh.put(r, 1, key, valign_top=True)
+        if isinstance(value, str):
+            sh.put(r, 2, value, wrap=True, left=True)
+        else:
+            sh.put(r, 2, value, _FMT_SECONDS if key.startswith("timings_s.") else None, left=True)
         r += 1
+    last_fact = r - 1
     r += 1
-    _header_at(ws, r, ["input file", "sha256"])
+    sh.put(r, 1, "input file", bold=True)
+    sh.put(r, 2, "sha256", bold=True)
     for path, digest in inputs.items():
         r += 1
-        _put(ws, r, 1, path)
-        _put(ws, r, 2, digest)
-    ws.freeze_panes = "A2"
-    ws.auto_filter.ref = f"A1:B{1 + len(rows)}"
-    _fit_columns(ws)
+        sh.put(r, 1, path, valign_top=True)
+        sh.put(r, 2, digest, wrap=True, left=True)
+    sh.ws.freeze_panes(1, 0)
+    sh.ws.autofilter(0, 0, last_fact - 1, 1)
+    sh.ws.repeat_rows(0)
+    # names and values side by side on one page width: the value column wraps
+    sh.fixed[1] = min(max(sh._width(1), 12), 40)
+    sh.fixed[2] = 70
+    sh.fit()
+    sh.ws.set_column(1, 1, 70, wrap)
 
 
-def _header_at(ws, row: int, names: list[str]) -> None:
-    from openpyxl.styles import Font
-
-    for j, name in enumerate(names, start=1):
-        ws.cell(row=row, column=j, value=name).font = Font(name="Calibri", bold=True, size=11)
-
-
-def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
-    from openpyxl.styles import Alignment, Font, PatternFill
-
-    ws.title = "Summary"
-    ws["A1"] = f"Stock close {result.period}: {result.site_name}"
-    ws["A1"].font = Font(name="Calibri", bold=True, size=14)
+def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], journal: pd.DataFrame) -> None:
+    """The Summary, into the sheet made first (so it is the first tab) and written last (it
+    refers to the other sheets' totals)."""
+    ws = sh.ws
+    ws.fit_to_pages(1, 1)
+    sh.put(1, 1, f"Stock close {result.period}: {result.site_name}", bold=True, size=14)
     instant = _cell_value(result.survey_instant)
     facts: list[tuple[str, Any, str | None]] = [
         ("Site", result.site_name, None),
@@ -520,57 +768,75 @@ def _summary_sheet(ws, result: CloseResult, refs: Mapping[str, str]) -> None:
         ("Coordinate reference system", result.crs, None),
         ("Time zone", result.timezone, None),
         ("Piles", int(len(result.piles)), _FMT_INT),
+        ("Ledger close", result.close_id if result.close_id is not None else "not recorded", _FMT_INT),
+        ("Closed at (UTC)", result.closed_utc or "not recorded", None),
+        ("Status", close_status_text(result), None),
     ]
     r = 3
     for label, value, fmt in facts:
-        ws.cell(row=r, column=1, value=label).font = Font(name="Calibri", bold=True, size=11)
-        _put(ws, r, 2, value, fmt)
+        sh.put(r, 1, label, bold=True)
+        sh.put(r, 2, value, fmt, left=True)
         r += 1
     r += 1
-    ws.cell(row=r, column=1, value="Totals (formulas over the Piles sheet)").font = Font(name="Calibri", bold=True, size=11)
+    sh.put(r, 1, "Stock bridge (formulas over the Piles sheet)", bold=True)
     r += 1
-    totals = [
-        ("Opening", f"={refs['opening_t']}", _FMT_T),
-        ("Receipts", f"={refs['receipts_t']}", _FMT_T),
-        ("Dispatches", f"={refs['dispatches_t']}", _FMT_T),
-        ("Book stock at survey", f"={refs['book_t']}", _FMT_T),
-        ("Survey stock", f"={refs['survey_t']}", _FMT_T),
-        ("Variance (survey - book)", f"={refs['variance_t']}", _FMT_T_SIGNED),
-        ("Variance % of book", f"={refs['variance_pct']}", _FMT_PCT_SIGNED),
-        ("Adjustments", f"={refs['adjustment_t']}", _FMT_T_SIGNED),
-        ("Closing stock", f"={refs['closing_t']}", _FMT_T),
-        ("Piles out of tolerance", f"=COUNTIF({refs['_oot_range']},TRUE)", _FMT_INT),
-        ("Piles with a significant variance", f"=COUNTIF({refs['_sig_range']},TRUE)", _FMT_INT),
-    ]
-    for label, formula, fmt in totals:
-        ws.cell(row=r, column=1, value=label)
-        _formula(ws, r, 2, formula, fmt)
+    rows: dict[str, int] = {}
+
+    def line(key: str, label: str, formula: str, value: Any, fmt: str, bold: bool = False) -> None:
+        nonlocal r
+        sh.put(r, 1, label, bold=bold)
+        sh.formula(r, 2, formula, value, fmt, bold=bold, left=True)
+        rows[key] = r
         r += 1
+
+    book_ref, book_v = refs["book_t"]
+    adj_ref, adj_v = refs["adjustment_t"]
+    surv_ref, surv_v = refs["survey_t"]
+    after_ref, after_v = refs["after_survey_net_t"]
+    close_ref, close_v = refs["closing_t"]
+    line("book", "Book stock at survey", f"={book_ref}", book_v, _FMT_T)
+    line("adj", "+ Adjustments posted", f"={adj_ref}", adj_v, _FMT_T_SIGNED)
+    adjusted = book_v + adj_v
+    line("adjusted", "= Book stock after adjustments", f"=B{rows['book']}+B{rows['adj']}", adjusted, _FMT_T, True)
+    line("survey", "Survey stock", f"={surv_ref}", surv_v, _FMT_T)
+    line("left", "Left at book (held lines, midpoint, piles not surveyed)",
+         f"=B{rows['adjusted']}-B{rows['survey']}", adjusted - surv_v, _FMT_T_SIGNED)
+    line("after", "+ Net movements after the survey", f"={after_ref}", after_v, _FMT_T_SIGNED)
+    line("closing", "= Closing stock", f"=B{rows['adjusted']}+B{rows['after']}", adjusted + after_v, _FMT_T, True)
+    line("closing_piles", "Closing stock, Piles sheet total (check)", f"={close_ref}", close_v, _FMT_T)
     r += 1
-    ws.cell(row=r, column=1, value="Sign convention").font = Font(name="Calibri", bold=True, size=11)
-    # long texts are left to run on into the empty cells to their right (no wrapping, so
-    # no row-height guessing); figures stay in a column of their own width
-    ws.cell(row=r, column=2, value=SIGN_CONVENTION.removeprefix("Sign convention: "))
+    sh.put(r, 1, "Variance", bold=True)
+    r += 1
+    var_ref, var_v = refs["variance_t"]
+    pct_ref, pct_v = refs["variance_pct"]
+    line("var", "Variance (survey - book)", f"={var_ref}", var_v, _FMT_T_SIGNED)
+    line("var_pct", "Variance, share of book", f"={pct_ref}", pct_v, _FMT_PCT_SIGNED)
+    oot_ref, oot_n = refs["out_of_tolerance"]
+    sig_ref, sig_n = refs["significant"]
+    line("oot", "Piles out of tolerance", f"=COUNTIF({oot_ref},TRUE)", oot_n, _FMT_INT)
+    line("sig", "Piles with a significant variance", f"=COUNTIF({sig_ref},TRUE)", sig_n, _FMT_INT)
+    held = journal[(journal["status"] == "hold")]
+    line("held", "Journal lines held, not posted", f'=COUNTIF(Journal!${_col(POSTING_COLUMNS.index("status") + 1)}:'
+         f'${_col(POSTING_COLUMNS.index("status") + 1)},"hold")', int(len(held)), _FMT_INT)
+    r += 1
+    sh.fixed[1], sh.fixed[2], sh.fixed[3], sh.fixed[4] = 44, 22, 22, 22
+    sh.fit()
+    sh.put(r, 1, "Sign convention", bold=True, valign_top=True)
+    sh.note(r, SIGN_CONVENTION.removeprefix("Sign convention: "), 4, col=2)
     r += 2
-    ws.cell(row=r, column=1, value="Legend").font = Font(name="Calibri", bold=True, size=11)
+    sh.put(r, 1, "Legend", bold=True)
     r += 1
     for fill, text in ((FILL_OUT_OF_TOLERANCE, ROW_LEGEND["out_of_tolerance"]),
                        (FILL_SIGNIFICANT, ROW_LEGEND["significant"])):
-        ws.cell(row=r, column=1, value="row colour").fill = PatternFill("solid", fgColor=fill)
-        ws.cell(row=r, column=2, value=text)
+        sh.put(r, 1, "row colour", fill=fill)
+        sh.put(r, 2, text)
         r += 1
     r += 1
-    ws.cell(row=r, column=1, value="Cautions").font = Font(name="Calibri", bold=True, size=11)
+    sh.put(r, 1, "Cautions", bold=True, valign_top=True)
     for text in CAUTIONS:
-        ws.cell(row=r, column=2, value=text)
+        sh.note(r, text, 4, col=2)
         r += 1
-    ws.column_dimensions["A"].width = 36
-    ws.column_dimensions["B"].width = 22
-    for row in ws.iter_rows(min_row=3, min_col=2, max_col=2):
-        for c in row:
-            c.alignment = Alignment(horizontal="left")
-    ws.page_setup.orientation = "portrait"
-    ws.page_setup.paperSize = ws.PAPERSIZE_A4
+    ws.activate()
 
 
 def write_workbook(result: CloseResult, path: str | Path) -> Path:
@@ -586,70 +852,37 @@ def write_workbook(result: CloseResult, path: str | Path) -> Path:
     -------
     Path
     """
-    from openpyxl import Workbook
-
-    wb = Workbook()
-    summary = wb.active
-    refs = _piles_sheet(wb, result)
-    _variance_sheet(wb, result)
-    _movements_sheet(wb, result)
-    _journal_sheet(wb, result)
-    _scales_sheet(wb, result)
-    _duplicates_sheet(wb, result)
-    _extra_sheets(wb, result)
-    _run_sheet(wb, result)
-    _summary_sheet(summary, result, refs)
-    wb.properties.title = f"Stock close {result.period}"
-    wb.properties.subject = result.site_name
-    wb.properties.creator = "inventory"
-    # fixed stamps: the same close gives the same workbook content
-    stamp = _stamp(result)
-    wb.properties.created = stamp
-    wb.properties.modified = stamp
     dest = Path(path)
+    # Excel allows 255 characters in a page header, the superseded mark included
+    site = result.site_name if len(result.site_name) <= 40 else result.site_name[:39] + "…"
+    header = _hf(f"{site}, close {result.period}. {close_status_text(result)}")
+    journal = posting_journal(result)
     with atomic_path(dest) as tmp:
-        _save(wb, tmp)
+        book = _Book(tmp, header)
+        # Summary first in the tab order, written last (it refers to the others' totals)
+        summary_ws = book.sheet("Summary", landscape=False)
+        refs = _piles_sheet(book, result)
+        _variance_sheet(book, result)
+        _movements_sheet(book, result)
+        _journal_sheet(book, result)
+        _scales_sheet(book, result)
+        _duplicates_sheet(book, result)
+        extra = _extra_sheets(book, result)
+        tables = [("Piles", list(PILE_COLUMNS)), ("Variance", list(_VARIANCE_COLUMNS)),
+                  ("Movements", list(_MOVEMENT_SHEET_COLUMNS)), ("Journal", list(POSTING_COLUMNS)),
+                  ("Scales", list(SCALE_COLUMNS)), ("Duplicates", _duplicate_columns(result)),
+                  *extra.items(), ("Run", ["fact", "value"])]
+        _columns_sheet(book, tables)
+        _run_sheet(book, result)
+        _summary_sheet(summary_ws, result, refs, journal)
+        book.wb.set_properties({
+            "title": f"Stock close {result.period}", "subject": result.site_name,
+            "author": "inventory", "comments": close_status_text(result),
+            # fixed stamp: the same close gives the same workbook content
+            "created": _stamp(result),
+        })
+        book.wb.close()
     return dest
-
-
-_SAVE_LOCK = threading.Lock()
-
-
-def _exact_number_text(value: Any) -> str:
-    """openpyxl's number text, but round-trip exact: repr() of a float (17 digits at most)."""
-    if isinstance(value, float) and math.isfinite(value):
-        return repr(value)
-    return _openpyxl_safe_string(value)
-
-
-def _openpyxl_safe_string(value: Any) -> str:
-    from openpyxl.compat.strings import safe_string
-
-    return safe_string(value)
-
-
-def _save(wb, path: Path) -> None:
-    """Save with every float written to the last bit.
-
-    openpyxl formats numbers with ``"%.16g"``, which loses the 17th significant digit some
-    doubles need, so the workbook would not hold exactly the ledger's numbers. Excel itself
-    writes up to 17 digits; we swap in ``repr`` for the duration of the save only.
-    """
-    try:
-        from openpyxl.cell import _writer
-    except ImportError:  # pragma: no cover - openpyxl layout changed; tests will notice
-        wb.save(path)
-        return
-    with _SAVE_LOCK:
-        original = getattr(_writer, "safe_string", None)
-        if original is None:  # pragma: no cover
-            wb.save(path)
-            return
-        _writer.safe_string = _exact_number_text
-        try:
-            wb.save(path)
-        finally:
-            _writer.safe_string = original
 
 
 def _stamp(result: CloseResult) -> datetime:
@@ -663,20 +896,19 @@ def _stamp(result: CloseResult) -> datetime:
 
 # -- history ------------------------------------------------------------------------------------
 
-def _variance_chart(ws, piles: int, periods: int) -> None:
+def _variance_chart(book: _Book, sh: _Sheet, piles: int, periods: int) -> None:
     """A line chart of each pile's variance by month, from the ``By month`` cells (one
     series per pile row), placed below the table."""
-    from openpyxl.chart import LineChart, Reference
-
-    chart = LineChart()
-    chart.title = "Variance per pile by month (t, survey - book)"
-    chart.y_axis.title = "variance (t)"
-    chart.x_axis.title = "period"
-    data = Reference(ws, min_col=1, max_col=1 + periods, min_row=2, max_row=1 + piles)
-    chart.add_data(data, from_rows=True, titles_from_data=True)
-    chart.set_categories(Reference(ws, min_col=2, max_col=1 + periods, min_row=1, max_row=1))
-    chart.width, chart.height = 18, 8
-    ws.add_chart(chart, f"A{piles + 4}")
+    chart = book.wb.add_chart({"type": "line"})
+    name = sh.ws.get_name()
+    for i in range(1, piles + 1):
+        chart.add_series({"name": [name, i, 0], "categories": [name, 0, 1, 0, periods],
+                          "values": [name, i, 1, i, periods], "marker": {"type": "circle"}})
+    chart.set_title({"name": "Variance per pile by month (t, survey - book)"})
+    chart.set_y_axis({"name": "variance (t)"})
+    chart.set_x_axis({"name": "period"})
+    chart.set_size({"width": 680, "height": 300})
+    sh.ws.insert_chart(f"A{piles + 4}", chart)
 
 
 def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFrame | None = None,
@@ -684,9 +916,9 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFr
     """Write ``inventory history`` as a workbook for finance.
 
     Sheets: ``History`` (the rows as given, with number formats, filters and the row marks),
-    ``By month`` (variance tonnes, pile x period, with SUM formulas for row and column
-    totals, and a line chart of each pile's variance by month), ``Totals by <by>`` when
-    ``totals`` is given, and ``Notes`` (sign convention, legend).
+    ``By month`` (variance tonnes, pile x period, with SUM formulas and their values for row
+    and column totals, and a line chart of each pile's variance by month), ``Totals by <by>``
+    when ``totals`` is given, and ``Notes`` (sign convention, legend, the percent convention).
 
     Parameters
     ----------
@@ -694,7 +926,7 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFr
         As returned by :meth:`inventory.ledger.store.Ledger.history`.
     path : str or Path
     totals : DataFrame, optional
-        :func:`inventory.ledger.history.aggregate_history` of the same rows.
+        Totals of the same rows by a group (``inventory.ledger.history.aggregate_history``).
     by : str, optional
         What ``totals`` is grouped by (names its sheet).
 
@@ -702,67 +934,65 @@ def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFr
     -------
     Path
     """
-    from openpyxl import Workbook
-    from openpyxl.styles import Font, PatternFill
-    from openpyxl.utils import get_column_letter
-
-    wb = Workbook()
-    ws = wb.active
-    ws.title = "History"
-    cols = list(df.columns)
-    first, last = _table(ws, df, cols, freeze="C2" if "pile_id" in cols else "A2")
-    _mark_rows(ws, first, last, len(cols),
-               cols.index("out_of_tolerance") + 1 if "out_of_tolerance" in cols else None,
-               cols.index("significant") + 1 if "significant" in cols else None)
-    _fit_columns(ws)
-
-    pv = wb.create_sheet("By month")
-    if {"period", "pile_id", "variance_t"} <= set(cols) and len(df):
-        if "status" in cols:
-            adopted = df[df["status"] == "adopted"]
-        else:
-            adopted = df
-        table = adopted.pivot_table(index="pile_id", columns="period", values="variance_t",
-                                    aggfunc="sum", sort=True)
-        periods = list(table.columns)
-        _header(pv, 1, ["pile_id", *periods, "Total"])
-        n = len(table)
-        for i, (pile, row) in enumerate(table.iterrows(), start=2):
-            _put(pv, i, 1, pile)
-            for j, per in enumerate(periods, start=2):
-                _put(pv, i, j, row[per], _FMT_T_SIGNED)
-            lc = get_column_letter(1 + len(periods))
-            _formula(pv, i, 2 + len(periods), f"=SUM(B{i}:{lc}{i})", _FMT_T_SIGNED)
-        sums = {j: (2, 1 + n) for j in range(2, 3 + len(periods))}
-        _total_row(pv, n + 2, 1, "Total", sums, {j: _FMT_T_SIGNED for j in sums})
-        pv.freeze_panes = "B2"
-        pv.auto_filter.ref = f"A1:{get_column_letter(2 + len(periods))}{1 + n}"
-        _fit_columns(pv)
-        _variance_chart(pv, n, len(periods))
-    else:
-        pv["A1"] = "No closed periods match."
-
-    if totals is not None:
-        ts = wb.create_sheet(f"Totals by {by or 'group'}"[:31])
-        tcols = list(totals.columns)
-        _table(ts, totals, tcols, freeze="B2")
-        _fit_columns(ts)
-
-    notes = wb.create_sheet("Notes")
-    notes["A1"] = "Variance history from the ledger (adopted closes unless status says otherwise)"
-    notes["A1"].font = Font(name="Calibri", bold=True, size=11)
-    notes["A3"] = SIGN_CONVENTION
-    notes["A5"] = "Legend"
-    notes["A5"].font = Font(name="Calibri", bold=True, size=11)
-    notes["A6"].fill = PatternFill("solid", fgColor=FILL_OUT_OF_TOLERANCE)
-    notes["B6"] = ROW_LEGEND["out_of_tolerance"]
-    notes["A7"].fill = PatternFill("solid", fgColor=FILL_SIGNIFICANT)
-    notes["B7"] = ROW_LEGEND["significant"]
-    for i, text in enumerate(CAUTIONS, start=9):
-        notes.cell(row=i, column=1, value=text)
-    notes.column_dimensions["A"].width = 14
-    notes.column_dimensions["B"].width = 40
     dest = Path(path)
+    cols = [str(c) for c in df.columns]
+    frame = _as_fraction(df.rename(columns=str))
     with atomic_path(dest) as tmp:
-        _save(wb, tmp)
+        book = _Book(tmp, "Stock history from the ledger")
+        sh = book.sheet("History")
+        first, last = _table(sh, frame, cols, freeze=(1, 2) if "pile_id" in cols else (1, 0))
+        _mark_rows(sh, first, last, len(cols),
+                   cols.index("out_of_tolerance") + 1 if "out_of_tolerance" in cols else None,
+                   cols.index("significant") + 1 if "significant" in cols else None)
+        sh.fit()
+
+        pv = book.sheet("By month")
+        if {"period", "pile_id", "variance_t"} <= set(cols) and len(df):
+            adopted = df[df["status"] == "adopted"] if "status" in cols else df
+            table = adopted.pivot_table(index="pile_id", columns="period", values="variance_t",
+                                        aggfunc="sum", sort=True)
+            periods = list(table.columns)
+            pv.header(1, ["pile_id", *periods, "Total"])
+            n = len(table)
+            tcol = 2 + len(periods)
+            for i, (pile, row) in enumerate(table.iterrows(), start=2):
+                pv.put(i, 1, pile)
+                for j, per in enumerate(periods, start=2):
+                    pv.put(i, j, row[per], _FMT_T_SIGNED)
+                pv.formula(i, tcol, f"=SUM(B{i}:{_col(tcol - 1)}{i})", _sum(row[p] for p in periods),
+                           _FMT_T_SIGNED)
+            sums = {j: (2, 1 + n, _sum(table[periods[j - 2]])) for j in range(2, tcol)}
+            sums[tcol] = (2, 1 + n, _sum(_sum(row[p] for p in periods) for _, row in table.iterrows()))
+            _total_row(pv, n + 2, "Total", sums, {j: _FMT_T_SIGNED for j in sums})
+            pv.ws.freeze_panes(1, 1)
+            pv.ws.autofilter(0, 0, n, tcol - 1)
+            pv.ws.repeat_rows(0)
+            pv.fit()
+            _variance_chart(book, pv, n, len(periods))
+        else:
+            pv.put(1, 1, "No closed periods match.")
+
+        if totals is not None:
+            ts = book.sheet(f"Totals by {by or 'group'}"[:31])
+            shown = _as_fraction(totals.rename(columns=str))
+            tcols = list(shown.columns)
+            _table(ts, shown, tcols, freeze=(1, 1))
+            ts.fit()
+
+        notes = book.sheet("Notes", landscape=False)
+        notes.fixed[1], notes.fixed[2] = 14, 90
+        notes.fit()
+        notes.put(1, 1, "Variance history from the ledger (adopted closes unless status says otherwise)",
+                  bold=True)
+        notes.note(3, SIGN_CONVENTION, 2)
+        notes.note(4, "Percentages (_pct columns) are stored as fractions and shown with the % format: "
+                      "0.025 shows as 2.5 %. The ledger keeps them in percent points.", 2)
+        notes.put(5, 1, "Legend", bold=True)
+        notes.put(6, 1, "row colour", fill=FILL_OUT_OF_TOLERANCE)
+        notes.put(6, 2, ROW_LEGEND["out_of_tolerance"])
+        notes.put(7, 1, "row colour", fill=FILL_SIGNIFICANT)
+        notes.put(7, 2, ROW_LEGEND["significant"])
+        for i, text in enumerate(CAUTIONS, start=9):
+            notes.note(i, text, 2)
+        book.wb.close()
     return dest

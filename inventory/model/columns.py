@@ -94,29 +94,90 @@ FIELDS: dict[str, tuple[str, str]] = {
                              "Greatest thickness just outside the footprint edge."),
     "period": ("Period", "The month closed (YYYY-MM)."),
     "survey_date": ("Survey date", "Date of the survey the figures rest on (YYYY-MM-DD)."),
-    "close_id": ("Close id", "The ledger's id of the close that wrote this file (run.json close_id)."),
+    "close_id": ("Ledger close", "The ledger's id of the close that wrote this row or file (run.json close_id; empty when not recorded)."),
     "closed_utc": ("Closed (UTC)", "When that close was recorded in the ledger: UTC, ISO 8601."),
 
     # inventory history (ledger rows and their totals)
-    "reason_code": ("Reason code", "Code of the pile's adjustment journal line (see the reason codes)."),
-    "reason": ("Reason", "Why the pile was adjusted, in words."),
     "first_period": ("First period", "First month of the span (YYYY-MM)."),
     "last_period": ("Last period", "Last month of the span (YYYY-MM)."),
     "months": ("Months", "Number of months in the span."),
-    "piles": ("Piles", "Number of piles counted."),
     "start_t": ("Start stock",
                 "Survey stock at the start of the span (the survey of the month before it; "
                 "the opening balance when there is none)."),
     "end_t": ("End stock", "Survey stock at the last survey of the span."),
-    "net_movement_t": ("Net movement",
-                       "Every movement booked between the start and the end survey: receipts "
-                       "and transfers in less dispatches and transfers out."),
     "monthly_variance_t": ("Sum of monthly variances",
                            ("The months' variances added up; equal to the span's variance when "
                             "every variance was adjusted to the survey.")),
     "significant_count": ("Significant", "Number of pile-months with a significant variance."),
     "out_of_tolerance_count": ("Out of tolerance", "Number of pile-months out of tolerance."),
     "reason_codes": ("Reason codes", "Reason codes of the adjustments, each with how often it occurs."),
+    # the Variance sheet's own columns (formulas over the pile figures)
+    "quadrature_sigma_t": ("Independent sigma",
+                           "Square root of book sigma squared plus survey sigma squared: the "
+                           "variance sigma if book and survey erred independently."),
+    "shared_sigma_t": ("Shared terms removed",
+                       ("What the errors common to survey and opening (same bulk density, same "
+                        "fixed base) take off: variance sigma squared = book sigma squared + "
+                        "survey sigma squared - this squared.")),
+    "variance_2sigma_t": ("Variance 2 sigma", "Twice the variance uncertainty."),
+    "tolerance_t": ("Tolerance in tonnes", "The tolerance times the absolute book stock."),
+    "survey_minus_book_t": ("Survey minus book", "Survey stock minus book stock, recomputed by formula."),
+    # movements
+    "kind": ("Kind", "Kind of record: weighbridge, belt or transfer; for duplicates exact or suspected."),
+    "reference": ("Reference", "Ticket id, belt scale and interval, or transfer reference."),
+    "time_utc": ("Time (UTC)", "When the movement happened, in UTC (a belt interval's end)."),
+    "time_local": ("Time (local)", "The same time in the site's time zone."),
+    "tonnes": ("Tonnes", "Tonnes of the record: for a movement + into the pile, - out of it."),
+    "scale_id": ("Scale", "Weighing instrument that weighed it (site.toml [[scales]])."),
+    "counted": ("Counted", "TRUE when the record counts in the books (FALSE: a dropped duplicate)."),
+    "before_survey": ("Before survey", "TRUE when it falls at or before the survey instant."),
+    "note": ("Note", "Note from the input file or the checks."),
+    "source": ("Source file", "Input file the record came from."),
+    "line": ("Line", "Line number in the source file, or the journal line number."),
+    # the posting journal
+    "posting_date": ("Posting date", "Date to post the line on: the last day of the period."),
+    "to_pile_id": ("To pile", "For a transfer line, the pile the quantity moves to."),
+    "quantity_t": ("Quantity",
+                   ("Tonnes of the line: an adjustment + increases the pile's book stock, - "
+                    "decreases it; a transfer moves it from the pile to the other pile.")),
+    "unit": ("Unit", "Unit of the quantity (t, metric tonnes)."),
+    "unit_cost": ("Unit cost", "Stock value per tonne of the material (materials.csv unit_cost)."),
+    "value": ("Value", "Quantity times unit cost, in the journal's currency."),
+    "currency": ("Currency", "Currency of the unit cost and the value (site.toml [journal] currency)."),
+    "account": ("Account", "Stock account code of the material (site.toml [journal.accounts])."),
+    "location": ("Location", "Storage location code of the pile (site.toml [journal.locations])."),
+    "to_location": ("To location", "Storage location code of the pile a transfer moves to."),
+    "reason_code": ("Reason code", "Why the line is proposed (see the reason codes under the journal)."),
+    "reason": ("Reason", "The reason in a sentence, with the figures behind it."),
+    "status": ("Status",
+               ("post: posted to book stock by this close; hold: listed, not posted (the "
+                "adjustment policy or an unexplained variance).")),
+    # scale diagnostics
+    "piles": ("Piles", ("The piles concerned: in Scales the piles the scale fed; in Materials "
+                        "and the history totals how many piles were counted.")),
+    "bias_pct": ("Scale bias", "Estimated reading error of the scale this month (+ reads high)."),
+    "bias_sigma_pct": ("Scale bias uncertainty", "Standard uncertainty (1 sigma) of the bias."),
+    "history_bias_pct": ("Scale bias over months", "Bias estimated over this and earlier months pooled."),
+    "history_bias_sigma_pct": ("Pooled bias uncertainty", "Standard uncertainty (1 sigma) of the pooled bias."),
+    "history_months": ("Months pooled", "Number of months in the pooled fit."),
+    "flagged": ("Flagged", "TRUE when the scale should be checked: bias beyond k sigma and beyond its MPE."),
+    "message": ("Message", "The diagnosis in a sentence."),
+    "detail": ("Detail", "Why the record is taken for a duplicate."),
+    # measured change between surveys
+    "previous_survey_t": ("Previous survey stock", "Survey stock of the previous survey."),
+    "measured_change_t": ("Measured change", "This survey's stock minus the previous survey's."),
+    "net_movement_t": ("Net movement",
+                       ("Every movement booked between the two surveys: receipts and transfers "
+                        "in less dispatches and transfers out.")),
+    "difference_t": ("Difference", "Measured change minus net movement."),
+    "difference_sigma_t": ("Difference uncertainty", "Standard uncertainty (1 sigma) of the difference."),
+    "opening_gap_t": ("Opening gap", "Variance minus difference: the opening balance's own error."),
+    # belt split
+    "interval": ("Interval", "Belt-scale reading interval (start/end)."),
+    "interval_t": ("Interval tonnes", "Tonnes the belt scale read over the whole interval."),
+    "start": ("Start", "Start of the part of the interval (UTC)."),
+    "end": ("End", "End of the part of the interval (UTC)."),
+    "share": ("Share", "Part of the interval's tonnes given to this row (0 to 1)."),
 }
 
 def unit_of(column: str) -> tuple[str, str] | None:

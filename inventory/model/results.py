@@ -17,10 +17,11 @@ import numpy as np
 from inventory.model.grid import Surface
 from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 
-__all__ = ["PILE_COLUMNS", "VOLUME_SIGMA_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
+__all__ = ["PILE_COLUMNS", "VOLUME_SIGMA_COLUMNS", "MOVEMENT_COLUMNS", "JOURNAL_COLUMNS", "LINE_COLUMNS",
+           "POSTING_COLUMNS", "SCALE_COLUMNS", "CloseResult"]
 
 #: The parts of ``volume_sigma_m3`` (added in quadrature; see docs/uncertainty.md), shown
-#: beside it in the Piles sheet and the piles layer. The ledger keeps the total only.
+#: beside it in the Piles sheet and the piles layer.
 VOLUME_SIGMA_COLUMNS = ["sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3", "sigma_base_m3"]
 
 #: Columns of ``CloseResult.piles`` (one row per pile), in display order.
@@ -49,8 +50,23 @@ MOVEMENT_COLUMNS = [
     "line",        # its line in that file
 ]
 
-#: Columns of ``CloseResult.journal`` (one line per pile adjusted).
+#: Columns of ``CloseResult.journal`` (one line per pile adjusted): the posted adjustment per
+#: pile, as the ledger keeps it.
 JOURNAL_COLUMNS = ["pile_id", "material", "adjustment_t", "reason_code", "reason"]
+
+#: Columns of the journal as lines to post or hold (``Reconciliation.lines``): an adjustment
+#: line per pile, or for a suspected transfer one transfer line (``quantity_t`` from
+#: ``pile_id`` to ``to_pile_id``) plus a residual line per pile. ``quantity_t`` of an
+#: adjustment is signed like the adjustment (+ increases book stock). status: post | hold.
+LINE_COLUMNS = ["line", "pile_id", "to_pile_id", "material", "quantity_t", "reason_code", "reason",
+                "status"]
+
+#: Columns of the posting journal (workbook sheet "Journal", ``journal-<period>.csv``):
+#: the lines with the period, posting date (the period's last day), the ledger's close id,
+#: unit, value (quantity x the material's unit cost), account and location codes.
+POSTING_COLUMNS = ["period", "posting_date", "close_id", "line", "pile_id", "to_pile_id", "material",
+                   "quantity_t", "unit", "unit_cost", "value", "currency", "account", "location",
+                   "to_location", "reason_code", "reason", "status"]
 
 #: Columns of ``CloseResult.scale_diagnostics``.
 SCALE_COLUMNS = ["scale_id", "piles", "tonnes", "bias_pct", "bias_sigma_pct", "history_bias_pct",
@@ -100,3 +116,6 @@ class CloseResult:
     #: Stock outside every footprint (``inventory.volume.unassigned.UNASSIGNED_COLUMNS`` and
     #: the region polygons, a GeoDataFrame); None when the close did not look for it.
     unassigned_stock: Any = None
+    #: The journal as lines to post or hold, valued and coded (:data:`POSTING_COLUMNS` less
+    #: period, posting_date and close_id); None = derived from ``journal`` (every line posted).
+    posting: Any = None

@@ -40,6 +40,10 @@ REASON_CODES: dict[str, str] = {
     "WITHIN_SIGMA": "variance within k sigma of zero: inside the combined uncertainty of survey and book",
     "WITHIN_TOL": "significant but within the material's tolerance: routine stock adjustment",
     "UNEXPLAINED": "significant and out of tolerance with no explanation found: investigate before posting",
+    # codes of journal lines, not of piles
+    "TRANSFER": "proposed transfer line of a suspected unrecorded transfer, from the pile short to the "
+                "pile over: book it as a transfer once confirmed",
+    "TRANSFER_RESIDUAL": "what is left of a pile's variance once the proposed transfer is taken off",
 }
 
 #: Legend of the row colours, by the flag column that sets them (an out-of-tolerance row

@@ -82,6 +82,8 @@ class Material:
     density_sd_t_m3: float
     moisture_pct: float
     tolerance_pct: float | None = None
+    #: Stock value per tonne in the currency of ``[journal] currency`` (None = not valued).
+    unit_cost: float | None = None
 
 
 @dataclass(frozen=True)
@@ -135,6 +137,19 @@ class ReconcileConfig:
     default_tolerance_pct: float = 3.0
     adjust_to: str = "survey"
     duplicate_window_min: float = 10.0
+    #: Adjustment policy: "all", "significant" (beyond k sigma) or "out_of_tolerance".
+    adjust: str = "all"
+    #: Hold an UNEXPLAINED variance (significant, out of tolerance, no explanation found).
+    hold_unexplained: bool = True
+
+
+@dataclass(frozen=True)
+class JournalConfig:
+    """The ``[journal]`` section of site.toml: codes and currency of the posting journal."""
+
+    currency: str | None = None
+    accounts: dict = field(default_factory=dict)   # material -> stock account code
+    locations: dict = field(default_factory=dict)  # pile id -> storage location code
 
 
 @dataclass(frozen=True)
@@ -146,6 +161,7 @@ class SiteConfig:
     base: BaseConfig = BaseConfig()
     reconcile: ReconcileConfig = ReconcileConfig()
     unassigned: UnassignedConfig = UnassignedConfig()
+    journal: JournalConfig = JournalConfig()
     machines: dict = field(default_factory=dict)  # id -> inventory.model.pose.Machine
     raw: dict = field(default_factory=dict, compare=False)
 
@@ -455,6 +471,7 @@ class _Loader:
         piles = self._piles(material_names, crs)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
+        self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -561,6 +578,13 @@ class _Loader:
                 default_tolerance_pct=float(get("reconcile", "default_tolerance_pct", 3.0)),
                 adjust_to=str(get("reconcile", "adjust_to", "survey")),
                 duplicate_window_min=float(get("reconcile", "duplicate_window_min", 10.0)),
+                adjust=str(get("reconcile", "adjust", "all")),
+                hold_unexplained=bool(get("reconcile", "hold_unexplained", True)),
+            ),
+            journal=JournalConfig(
+                currency=get("journal", "currency", None),
+                accounts={str(k): str(v) for k, v in (get("journal", "accounts", None) or {}).items()},
+                locations={str(k): str(v) for k, v in (get("journal", "locations", None) or {}).items()},
             ),
             unassigned=UnassignedConfig(
                 min_thickness_m=float(get("unassigned", "min_thickness_m", 0.3)),
@@ -569,6 +593,18 @@ class _Loader:
             machines=self._machines(raw) if not any(p[:1] == ("machines",) for p in self.refused) else {},
             raw=raw,
         )
+
+    def _journal_codes(self, journal: JournalConfig, materials: Collection[str], piles: Collection[str] | None) -> None:
+        """A code mapped for a material or pile the site does not have is a warning: a typo
+        leaves the real one's journal lines without a code, but the figures stand."""
+        toml = self.root / "site.toml"
+        for name in sorted(set(journal.accounts) - set(materials)):
+            self.warn(toml, None, f"journal.accounts.{name}",
+                      f"unknown material {name!r} (not in materials.csv): its account code is not used")
+        if piles is not None:
+            for pid in sorted(set(journal.locations) - set(piles)):
+                self.warn(toml, None, f"journal.locations.{pid}",
+                          f"unknown pile {pid!r} (not in piles.gpkg): its location code is not used")
 
     def _floor_raster(self, text: str | None) -> Path | None:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
@@ -722,6 +758,7 @@ class _Loader:
                 row.density_sd_t_m3,
                 row.moisture_pct,
                 None if pd.isna(row.tolerance_pct) else float(row.tolerance_pct),
+                None if pd.isna(getattr(row, "unit_cost", None)) else float(row.unit_cost),
             )
             for row in frame.itertuples()
         }

@@ -125,7 +125,9 @@ def opening_from_close(
     the part due to a fixed base (a surveyed floor or a level, the same surface every month:
     the previous close's ``base_sigma_t``) - reconcile subtracts each of these from this
     month's instead of adding them. With ``adjust_to = "midpoint"`` the closing was
-    (survey + book) / 2, so half the survey error and half the book error carry over.
+    (survey + book) / 2, so half the survey error and half the book error carry over. A pile
+    whose adjustment was held (closing = book) carries its book error only: the share of the
+    variance posted is read from ``adjustment_t / variance_t`` when both columns are there.
 
     Parameters
     ----------
@@ -143,8 +145,13 @@ def opening_from_close(
         ``pile_id``, ``tonnes``, ``sigma_t``, ``density_sigma_t``, ``base_sigma_t``.
     """
     a = pd.DataFrame(adopted).copy()
-    f = 1.0 if adjust_to == "survey" else 0.5
     col = lambda c: pd.to_numeric(a[c], errors="coerce") if c in a else pd.Series(np.nan, index=a.index)  # noqa: E731
+    # the share of the variance that was posted: 1 (to survey), 1/2 (midpoint), 0 for a held
+    # line, in between when only part of a transfer pair was posted; from adjustment / variance
+    # when both are known, else from adjust_to
+    f = pd.Series(1.0 if adjust_to == "survey" else 0.5, index=a.index)
+    share = col("adjustment_t") / col("variance_t").where(col("variance_t") != 0)
+    f = share.clip(0.0, 1.0).where(share.notna(), f).to_numpy()
     surveyed = col("survey_t").notna()
     s_sig, b_sig = col("survey_sigma_t").fillna(0.0), col("book_sigma_t").fillna(0.0)
     sd = pd.Series(np.nan, index=a.index)

@@ -22,10 +22,10 @@ import numpy as np
 import pandas as pd
 
 from inventory.stock.metrology import belt_mpe_fraction
-from inventory.site.load import Material, ReconcileConfig, Scale
+from inventory.site.load import JournalConfig, Material, ReconcileConfig, Scale
 from inventory.stock.book import BookResult
 from inventory.stock.totals import close_sigmas, close_site_totals
-from inventory.model.results import JOURNAL_COLUMNS, PILE_COLUMNS, SCALE_COLUMNS
+from inventory.model.results import JOURNAL_COLUMNS, LINE_COLUMNS, PILE_COLUMNS, POSTING_COLUMNS, SCALE_COLUMNS
 from inventory.model.texts import REASON_CODES, SIGN_CONVENTION
 
 __all__ = [
@@ -37,7 +37,13 @@ __all__ = [
     "Reconciliation",
     "ReconcileSettings",
     "reconcile",
+    "value_lines",
+    "ADJUST_POLICIES",
 ]
+
+#: Adjustment policies (site.toml ``[reconcile] adjust``): which piles' adjustments are
+#: posted; the others are listed in the journal with status "hold".
+ADJUST_POLICIES = ("all", "significant", "out_of_tolerance")
 
 #: Per-material table.
 MATERIAL_COLUMNS = [
@@ -89,6 +95,8 @@ class ReconcileSettings:
     significance_k: float = 2.0
     default_tolerance_pct: float = 3.0
     adjust_to: str = "survey"
+    adjust: str = "all"
+    hold_unexplained: bool = True
 
 
 @dataclass
@@ -108,7 +116,11 @@ class Reconciliation:
         :data:`inventory.model.results.SCALE_COLUMNS`.
     journal : DataFrame
         :data:`inventory.model.results.JOURNAL_COLUMNS`, one line per surveyed pile with a non-zero
-        adjustment.
+        posted adjustment (what the ledger keeps).
+    lines : DataFrame
+        :data:`inventory.model.results.LINE_COLUMNS`: the journal as lines to post or hold
+        (adjustments, proposed transfers and their residuals), before values and codes
+        (:func:`value_lines`).
     bias_rows : DataFrame
         :data:`BIAS_ROW_COLUMNS` of this month, to be kept and passed back as ``history``.
     site_totals : DataFrame
@@ -122,6 +134,7 @@ class Reconciliation:
     journal: pd.DataFrame
     bias_rows: pd.DataFrame
     settings: ReconcileSettings
+    lines: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=LINE_COLUMNS))
     sign_convention: str = SIGN_CONVENTION
     reason_codes: dict = field(default_factory=lambda: dict(REASON_CODES))
     #: The site's totals (:data:`inventory.stock.totals.SITE_TOTAL_COLUMNS`, one row), their
@@ -137,9 +150,13 @@ def _settings(config: ReconcileSettings | ReconcileConfig | None) -> ReconcileSe
             significance_k=float(config.significance_k),
             default_tolerance_pct=float(config.default_tolerance_pct),
             adjust_to=str(config.adjust_to),
+            adjust=str(getattr(config, "adjust", "all")),
+            hold_unexplained=bool(getattr(config, "hold_unexplained", True)),
         )
     if s.adjust_to not in ("survey", "midpoint"):
         raise ValueError(f"adjust_to must be 'survey' or 'midpoint', not {s.adjust_to!r}")
+    if s.adjust not in ADJUST_POLICIES:
+        raise ValueError(f"adjust must be one of {', '.join(ADJUST_POLICIES)}, not {s.adjust!r}")
     if not s.significance_k > 0:
         raise ValueError("significance_k must be > 0")
     return s
@@ -238,10 +255,7 @@ def reconcile(
     p["out_of_tolerance"] = surveyed & (p["variance_t"].abs() > p["tolerance_pct"] / 100.0 * B.abs())
 
     diag, fitted, bias_rows = _scale_diagnostics(p, book, scales, history, k, period)
-    reason, detail, flags = _reasons(p, fitted, diag, k)
-    factor = 1.0 if cfg.adjust_to == "survey" else 0.5
-    p["adjustment_t"] = np.where(surveyed, factor * p["variance_t"].fillna(0.0), 0.0)
-    p["closing_t"] = B + p["adjustment_t"] + p["after_survey_net_t"]
+    reason, detail, flags, partner = _reasons(p, fitted, diag, k)
     # the volume step's flags (low_scan, unfilled_gap, below_base, ...) are kept after
     # reconciliation's own
     survey_flags = [_flag_list(v) for v in p["flags"]] if "flags" in p else [[] for _ in range(len(p))]
@@ -250,6 +264,10 @@ def reconcile(
             detail[i] += _low_scan_note(p.loc[i, "scanned_fraction"] if "scanned_fraction" in p else np.nan)
     p["reason_code"] = reason
     p["reason"] = detail
+    factor = 1.0 if cfg.adjust_to == "survey" else 0.5
+    lines = _journal_lines(p, reason, partner, cfg, factor)
+    p["adjustment_t"] = _posted(p, lines)
+    p["closing_t"] = B + p["adjustment_t"] + p["after_survey_net_t"]
     for c in PILE_COLUMNS:
         if c not in p:
             p[c] = np.nan
@@ -276,8 +294,131 @@ def reconcile(
     change = None if previous is None else _change(p, previous, k, info)
     return Reconciliation(
         piles=piles_out, materials=materials_out, change=change, scale_diagnostics=diag,
-        journal=journal, bias_rows=bias_rows, settings=cfg, site_totals=site_out,
+        journal=journal, bias_rows=bias_rows, settings=cfg, site_totals=site_out, lines=lines,
     )
+
+
+# ----------------------------------------------------------------------------- journal lines
+
+
+def _admitted(policy: str, significant: bool, out_of_tolerance: bool) -> bool:
+    """Whether the adjustment policy posts a line of this significance and tolerance."""
+    if policy == "significant":
+        return bool(significant)
+    if policy == "out_of_tolerance":
+        return bool(out_of_tolerance)
+    return True
+
+
+_HELD_WHY = {
+    "significant": "held: within k sigma, and the policy posts only variances beyond k sigma",
+    "out_of_tolerance": "held: within tolerance, and the policy posts only variances beyond tolerance",
+}
+
+
+def _journal_lines(p: pd.DataFrame, reason: list, partner: dict, cfg: ReconcileSettings,
+                   factor: float) -> pd.DataFrame:
+    """The journal as lines (:data:`LINE_COLUMNS`), each with status "post" or "hold".
+
+    One adjustment line per surveyed pile with a variance; a suspected transfer pair instead
+    gives one proposed transfer line (from the pile short to the pile over, the pair's
+    transfer estimate) plus one residual line per pile (its variance less the transfer).
+    Quantities are ``factor`` x the variance (1 to survey, 1/2 to the midpoint). A line is
+    held when the policy (``cfg.adjust``) does not post it, or when it is UNEXPLAINED and
+    ``cfg.hold_unexplained``.
+    """
+    k = cfg.significance_k
+    rows: list[dict] = []
+    done: set[int] = set()
+
+    def add(pile, to_pile, material, qty, code, text, post, why):
+        if not np.isfinite(qty) or qty == 0:
+            return
+        rows.append({"pile_id": pile, "to_pile_id": to_pile, "material": material, "quantity_t": float(qty),
+                     "reason_code": code, "reason": text if post else f"{text}; {why}",
+                     "status": "post" if post else "hold"})
+
+    for i in range(len(p)):
+        if i in done or not np.isfinite(p.loc[i, "survey_t"]):
+            continue
+        pid, mat, v = p.loc[i, "pile_id"], p.loc[i, "material"], float(p.loc[i, "variance_t"])
+        if i not in partner:
+            code = reason[i]
+            if code == "UNEXPLAINED" and cfg.hold_unexplained:
+                post, why = False, "held: investigate before posting (hold_unexplained)"
+            else:
+                post = _admitted(cfg.adjust, p.loc[i, "significant"], p.loc[i, "out_of_tolerance"])
+                why = _HELD_WHY.get(cfg.adjust, "")
+            add(pid, None, mat, factor * v, code, p.loc[i, "reason"], post, why)
+            continue
+        j, t, st = partner[i]
+        done |= {i, j}
+        src, dst = (i, j) if v < 0 else (j, i)
+        s_id, d_id = p.loc[src, "pile_id"], p.loc[dst, "pile_id"]
+        oot = bool(p.loc[src, "out_of_tolerance"] or p.loc[dst, "out_of_tolerance"])
+        add(s_id, d_id, mat, factor * t, "TRANSFER",
+            f"proposed transfer of {t:.1f} t (+/- {st:.1f} t) from {s_id} to {d_id}: the two variances "
+            "mirror each other; book it as a transfer once confirmed",
+            _admitted(cfg.adjust, True, oot), _HELD_WHY.get(cfg.adjust, ""))
+        for q, sign in ((src, 1.0), (dst, -1.0)):
+            vq = float(p.loc[q, "variance_t"])
+            r = vq + sign * t
+            sig_q = float(p.loc[q, "variance_sigma_t"])
+            tol_q = p.loc[q, "tolerance_pct"] / 100.0 * abs(p.loc[q, "book_t"])
+            sig_r, oot_r = abs(r) > k * sig_q, abs(r) > tol_q
+            within = f"within {k:g} sigma ({k * sig_q:.1f} t)" if not sig_r else f"beyond {k:g} sigma ({k * sig_q:.1f} t)"
+            add(p.loc[q, "pile_id"], None, p.loc[q, "material"], factor * r, "TRANSFER_RESIDUAL",
+                f"variance {vq:+.1f} t less the proposed transfer of {t:.1f} t leaves {r:+.1f} t, {within}",
+                _admitted(cfg.adjust, sig_r, oot_r), _HELD_WHY.get(cfg.adjust, ""))
+    out = pd.DataFrame(rows, columns=[c for c in LINE_COLUMNS if c != "line"])
+    out.insert(0, "line", np.arange(1, len(out) + 1))
+    return out[LINE_COLUMNS]
+
+
+def _posted(p: pd.DataFrame, lines: pd.DataFrame) -> pd.Series:
+    """Each pile's posted adjustment, tonnes: the sum of its posted lines (a transfer line
+    takes its quantity off ``pile_id`` and puts it on ``to_pile_id``)."""
+    adj = pd.Series(0.0, index=p["pile_id"].to_numpy())
+    for r in lines[lines["status"] == "post"].itertuples():
+        if r.to_pile_id is not None and not pd.isna(r.to_pile_id):
+            adj[r.pile_id] -= r.quantity_t
+            adj[r.to_pile_id] += r.quantity_t
+        else:
+            adj[r.pile_id] += r.quantity_t
+    return pd.Series(adj.to_numpy(), index=p.index)
+
+
+def value_lines(lines: pd.DataFrame, materials: Mapping[str, Material] | None = None,
+                journal: JournalConfig | None = None) -> pd.DataFrame:
+    """The journal lines with unit, value, currency, account and location codes.
+
+    Parameters
+    ----------
+    lines : DataFrame
+        :data:`LINE_COLUMNS` (``Reconciliation.lines``).
+    materials : mapping of str to Material, optional
+        ``unit_cost`` per material (value = quantity x unit cost; empty when unknown).
+    journal : JournalConfig, optional
+        site.toml ``[journal]``: currency, account code by material, location code by pile.
+
+    Returns
+    -------
+    DataFrame
+        :data:`POSTING_COLUMNS` less ``period``, ``posting_date`` and ``close_id``, which the
+        exporter adds once the ledger has reserved the close.
+    """
+    cfg = journal or JournalConfig()
+    out = pd.DataFrame(lines).copy()
+    cost = {str(k): (np.nan if m.unit_cost is None else float(m.unit_cost)) for k, m in (materials or {}).items()}
+    out["unit"] = "t"
+    out["unit_cost"] = out["material"].map(lambda m: cost.get(str(m), np.nan)).astype(float)
+    out["value"] = out["quantity_t"].astype(float) * out["unit_cost"]
+    out["currency"] = cfg.currency
+    out["account"] = out["material"].map(lambda m: cfg.accounts.get(str(m)))
+    out["location"] = out["pile_id"].map(lambda x: cfg.locations.get(str(x)))
+    out["to_location"] = out["to_pile_id"].map(
+        lambda x: None if x is None or pd.isna(x) else cfg.locations.get(str(x)))
+    return out[[c for c in POSTING_COLUMNS if c not in ("period", "posting_date", "close_id")]]
 
 
 # ----------------------------------------------------------------------------- diagnostics
@@ -580,8 +721,9 @@ def _low_scan_note(scanned_fraction: Any) -> str:
             "unscanned part: check the survey's coverage before posting")
 
 
-def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -> tuple[list, list, list]:
-    """Reason code, reason text and extra flags per pile, in REASON_CODES order."""
+def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -> tuple[list, list, list, dict]:
+    """Reason code, reason text and extra flags per pile, in REASON_CODES order, and the
+    suspected transfer pairs (row -> (partner row, transfer estimate t, its sigma))."""
     n = len(p)
     code = [""] * n
     text = [""] * n
@@ -627,13 +769,13 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             text[i] = REASON_CODES["NOT_SURVEYED"]
         elif pid in scale_of and abs(residual[i]) <= k * sig[i] and abs(fitted[i]) >= 0.5 * abs(v):
             code[i] = "SCALE_BIAS"
-            text[i] = f"{fitted[i]:+.1f} t of {v:+.1f} t explained by belt scale {', '.join(scale_of[pid])}"
+            text[i] = f"belt scale {', '.join(scale_of[pid])} explains {fitted[i]:+.1f} t of the {v:+.1f} t variance"
             flags[i] = "scale:" + ",".join(scale_of[pid])
         elif i in partner:
             j, t, st = partner[i]
             other = p.loc[j, "pile_id"]
             code[i] = "TRANSFER_SUSPECT"
-            own = f"{v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
+            own = f"variance {v:+.1f} t" + (f" ({residual[i]:+.1f} t net of scale bias)" if fitted[i] != 0 else "")
             theirs = f"{residual[j]:+.1f} t"
             src, dst = (pid, other) if v < 0 else (other, pid)
             text[i] = (f"{own} mirrors {theirs} on pile {other}: suspected unrecorded transfer of about "
@@ -643,17 +785,18 @@ def _reasons(p: pd.DataFrame, fitted: pd.Series, diag: pd.DataFrame, k: float) -
             flags[i] = f"pair:{other}"
         elif not p.loc[i, "significant"]:
             code[i] = "WITHIN_SIGMA"
-            text[i] = f"{v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
+            text[i] = f"variance {v:+.1f} t is within {k:g} sigma ({k * sig[i]:.1f} t)"
             if p.loc[i, "out_of_tolerance"]:
                 text[i] += " although out of tolerance: the measurement is too uncertain to judge this pile"
         elif not p.loc[i, "out_of_tolerance"]:
             code[i] = "WITHIN_TOL"
-            text[i] = f"{v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) within the {p.loc[i, 'tolerance_pct']:g} % tolerance"
+            text[i] = (f"variance {v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) within the "
+                       f"{p.loc[i, 'tolerance_pct']:g} % tolerance")
         else:
             code[i] = "UNEXPLAINED"
-            text[i] = (f"{v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) beyond the {p.loc[i, 'tolerance_pct']:g} % "
+            text[i] = (f"variance {v:+.1f} t ({p.loc[i, 'variance_pct']:+.2f} %) beyond the {p.loc[i, 'tolerance_pct']:g} % "
                        f"tolerance and {abs(v) / max(sig[i], 1e-12):.1f} sigma: investigate before posting")
-    return code, text, flags
+    return code, text, flags, partner
 
 
 # ----------------------------------------------------------------------------- aggregates
@@ -679,7 +822,8 @@ def _per_material(p: pd.DataFrame, book: BookResult, info: dict, k: float, facto
             "material": mat, "piles": len(g), "survey_t": S, "survey_sigma_t": s_survey, "book_t": Bk,
             "book_sigma_t": s_book, "variance_t": v, "variance_pct": 100 * v / Bk if Bk > 0 else np.nan,
             "variance_sigma_t": s_v, "significant": bool(abs(v) > k * s_v), "tolerance_pct": tol,
-            "out_of_tolerance": bool(abs(v) > tol / 100 * abs(Bk)), "adjustment_t": factor * v,
+            "out_of_tolerance": bool(abs(v) > tol / 100 * abs(Bk)),
+            "adjustment_t": float(sv["adjustment_t"].sum()),
         })
     return pd.DataFrame(rows, columns=MATERIAL_COLUMNS)
 
