@@ -206,7 +206,7 @@ def test_a_recorded_close_puts_its_id_on_every_feature(result, tmp_path):
     assert list(read_piles_layer(path).columns) == PILE_COLUMNS + COMMON_COLUMNS + CLOSE_COLUMNS
     described = _sql(path, "SELECT column_name, title FROM gpkg_data_columns WHERE table_name = "
                            "'survey_extent' AND column_name IN ('close_id', 'closed_utc') ORDER BY 1")
-    assert described == [("close_id", "Close id"), ("closed_utc", "Closed (UTC)")]
+    assert described == [("close_id", "Ledger close"), ("closed_utc", "Closed (UTC)")]
     for name, text in _sql(path, "SELECT table_name, description FROM gpkg_contents"):
         assert text.endswith("Heights: DHHN2016 (NHN), metres. Ledger close 12, recorded "
                              "2026-02-03T07:00:00+00:00."), (name, text)

@@ -247,7 +247,7 @@ def test_a_survey_folder_without_clouds_is_refused(good_site, capsys):
         code = main(["volumes", str(good_site), "--date", DATE])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
-    assert err == [f"error: {good_site.name}/surveys/{DATE}: no point cloud file (.las, .laz, .copc.laz) "
+    assert err == [f"error: {good_site.name}/surveys/{DATE}: no point cloud file (.las, .laz, .copc.laz, .e57, .ply, .xyz, .txt) "
                    "in the survey folder"], err
     assert _nothing_written(good_site)
 
