@@ -297,6 +297,15 @@ def spherical_correlation_sum(weights: np.ndarray, cell: float, length_m: float)
     return float(max(np.sum(weights * conv), 0.0))
 
 
+def _rasterise(values: np.ndarray, x: np.ndarray, y: np.ndarray, cell: float) -> np.ndarray:
+    """Values at cell centres ``x, y`` summed onto their own small raster."""
+    c = np.rint((x - x.min()) / cell).astype(int)
+    r = np.rint((y.max() - y) / cell).astype(int)
+    out = np.zeros((r.max() + 1, c.max() + 1))
+    np.add.at(out, (r, c), values)
+    return out
+
+
 # ----------------------------------------------------------------------------- one pile
 @dataclass
 class _PileWork:
@@ -613,12 +622,25 @@ def _measure_one(
     se = s_i / np.sqrt(np.maximum(cnt, 1.0))
     sel = inside & work.scanned
     sig_rand = float(np.sqrt(np.sum((w[sel] * a * se[sel]) ** 2)))
-    sig_corr = errors.correlated_sigma_m * a * math.sqrt(
-        spherical_correlation_sum(w, grid.cell, errors.correlation_length_m)
-    )
-    sig_gap = _gap_sigma(work, a, grid.cell, noise_sd, errors)
     pos = inside & (t > 0)
     x, y = work.sub.centers()
+    hat = work.model.ring_weights((w * a)[pos], x[pos], y[pos])
+    if hat is None:
+        sig_corr = errors.correlated_sigma_m * a * math.sqrt(
+            spherical_correlation_sum(w, grid.cell, errors.correlation_length_m)
+        )
+    else:
+        # A toe plane is fitted to the same scan: a registration error that lifts the pile
+        # lifts its ring too, and the plane takes most of it away. The volume changes by
+        # sum w a f - sum h_k f_k (h: the ring cells' weights in the plane's volume).
+        assert work.model.ring_xy is not None
+        vals = np.concatenate([(w * a)[inside], -hat])
+        px = np.concatenate([x[inside], work.model.ring_xy[:, 0]])
+        py = np.concatenate([y[inside], work.model.ring_xy[:, 1]])
+        sig_corr = errors.correlated_sigma_m * math.sqrt(
+            spherical_correlation_sum(_rasterise(vals, px, py, grid.cell), grid.cell, errors.correlation_length_m)
+        )
+    sig_gap = _gap_sigma(work, a, grid.cell, noise_sd, errors)
     sig_base = work.model.volume_sigma((w * a)[pos], x[pos], y[pos])
     sigma = math.sqrt(sig_rand**2 + sig_corr**2 + sig_gap**2 + sig_base**2)
     tin_fill, tin_cut = _tin(work, poly, points)
