@@ -160,7 +160,7 @@ def _flank_point(kind, sh, rng, pad_t):
     return (x0 + x1) / 2, (y0 + y1) / 2
 
 
-def make_case(rng, kind, shadow, base_kind, ground, density_x, noise):
+def make_case(rng, kind, shadow, base_kind, ground, density_x, noise, errors=None):
     sh = _shape(kind, rng)
     foot = sh.outline().buffer(1.0) if kind != "bay" else sh.outline()
     x0, y0, x1, y1 = foot.bounds
@@ -247,7 +247,7 @@ def make_case(rng, kind, shadow, base_kind, ground, density_x, noise):
     mats = {"m": Material("m", bulk_density_t_m3=1.6, density_sd_t_m3=0.0, moisture_pct=0.0)}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
-        table = measure_piles(surf, piles, mats, base)
+        table = measure_piles(surf, piles, mats, base, errors=errors)
         bz, th = thickness_raster(surf, piles, base)
     row = table.iloc[0]
     truth = sh.volume()
@@ -295,7 +295,7 @@ def _bases(kind):
     return ("floor", "level") if kind == "bay" else ("toe", "floor", "level", "toe")
 
 
-def run(seeds: int, densities=(1, 10)):
+def run(seeds: int, densities=(1, 10), errors=None):
     out = []
     for seed in range(seeds):
         for i, kind in enumerate(KINDS):
@@ -307,7 +307,7 @@ def run(seeds: int, densities=(1, 10)):
             noise = float(rng0.uniform(0.005, 0.03))
             for d in densities:
                 rng = np.random.default_rng([seed, i, d])
-                out.append(make_case(rng, kind, shadow, base_kind, ground, d, noise))
+                out.append(make_case(rng, kind, shadow, base_kind, ground, d, noise, errors))
     return out
 
 
@@ -380,9 +380,16 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", type=int, default=10)
     ap.add_argument("--cases", action="store_true")
+    ap.add_argument("--interp-k", type=float, default=None,
+                    help="interpolation slope factor to try (default: the module's INTERP_SLOPE_FACTOR)")
     args = ap.parse_args(argv)
     t0 = time.perf_counter()
-    rows = run(args.seeds)
+    errors = None
+    if args.interp_k is not None:
+        from inventory.volume.measure import ErrorModel
+
+        errors = ErrorModel(interp_slope_factor=args.interp_k)
+    rows = run(args.seeds, errors=errors)
     report(rows, args.cases)
     print(f"({time.perf_counter() - t0:.0f} s)")
 
