@@ -15,7 +15,8 @@ above a convex one, so the linear fill itself tells which case a cell is in:
 Each gap cell looks at the nearest rim cell in each of eight directions; a rim cell's plane
 is the least-squares plane through the scanned cells within two cells of it (a 5 x 5 cell
 window, scanned cells only, so the gap does not bend it); the scanned cells on the gap's very
-edge, often scanned in part only, are left out of both. A plane may not leave the linear
+edge, often scanned in part only, are left out of both, and so are planes whose window
+straddles the slope break (their residual gives them away). A plane may not leave the linear
 fill faster than :data:`MAX_RISE` per metre of distance from the rim (a guard against a
 plane from a few noisy cells; steeper than any angle of repose).
 """
@@ -46,8 +47,16 @@ _SECTORS = 8
 MIN_GAP_CELLS = 9
 
 #: How many standard errors of its plane's prediction the envelope must clear the linear
-#: fill by (two: about 95 % one-sided against planes that differ by noise only).
+#: fill by (two: about 98 % one-sided against planes that differ by noise only).
 SIGNIFICANCE = 2.0
+
+#: A rim plane whose residual sd exceeds this many times the median of the rim's is taken
+#: to straddle a slope break and is not used (three: beyond the spread of residual sds of
+#: windows of 10-25 cells of the same noise; engineering judgement).
+BREAK_RESIDUAL = 3.0
+
+#: Floor of that median (m), so that noise-free rims do not reject planes for micrometres.
+MIN_RESIDUAL_M = 0.005
 
 #: Fewest scanned cells for a rim cell's plane.
 _MIN_PLANE_CELLS = 6
@@ -126,6 +135,14 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
     pl = _local_planes(z, support, cell)
     near_gap = ndimage.binary_dilation(big, structure=np.ones((3, 3)), iterations=_RIM_REACH + 1)
     rim = support & near_gap & np.isfinite(pl["gx"])
+    if rim.sum() < 2:
+        return out
+    # A window that straddles the slope break itself (the rim of a shadow over a ridge runs
+    # across the ridge) fits both flanks badly and gives a plane flatter than either: it
+    # is no flank. Such planes stand out by their residual, which the kink makes far
+    # larger than the scan noise of a flank's window.
+    rs = np.sqrt(pl["s2"][rim])
+    rim[rim] = rs <= BREAK_RESIDUAL * max(float(np.median(rs)), MIN_RESIDUAL_M)
     if rim.sum() < 2:
         return out
     dist = ndimage.distance_transform_edt(gap) * cell

@@ -674,9 +674,7 @@ def _measure_one(
 
     cnt = surface.count[work.rows, work.cols].astype(float)
     sd = surface.sd[work.rows, work.cols]
-    var = _local_point_variance(cnt, sd, noise_sd) / np.maximum(cnt, 1.0)
-    var += _edge_variance(work.z, work.scanned, grid.cell)
-    se = np.sqrt(var)
+    se = np.sqrt(_local_point_variance(cnt, sd, noise_sd) / np.maximum(cnt, 1.0))
     sel = inside & work.scanned
     sig_rand = float(np.sqrt(np.sum((w[sel] * a * se[sel]) ** 2)))
     pos = inside & (t > 0)
@@ -698,6 +696,10 @@ def _measure_one(
             spherical_correlation_sum(_rasterise(vals, px, py, grid.cell), grid.cell, errors.correlation_length_m)
         )
     sig_gap = _gap_sigma(work, a, grid.cell, noise_sd, errors)
+    # scanned cells cut by a gap's edge: part of the interpolation's error (the gap's), each
+    # cell on its own
+    edge = _edge_variance(work.z, work.scanned, grid.cell)
+    sig_gap = math.sqrt(sig_gap**2 + float(np.sum(((w * a) ** 2 * edge)[sel])))
     sig_base = work.model.volume_sigma((w * a)[pos], x[pos], y[pos])
     sigma = math.sqrt(sig_rand**2 + sig_corr**2 + sig_gap**2 + sig_base**2)
     tin_fill, tin_cut = _tin(work, poly, points)
