@@ -344,13 +344,15 @@ def toe_base(
     cnt = count[rows, cols][use].astype(float)
     sdv = sd[rows, cols][use]
     # Each ring cell's own measurement variance: the ring's pooled point variance (cells
-    # of two or more points, population sd turned unbiased) over the cell's count. The
-    # survey's typical scatter is used only when no ring cell has two points.
+    # of two or more points, population sd turned unbiased) over the cell's count. Never
+    # the survey's typical scatter: dense points on steep flanks raise that and would
+    # cancel the ground's roughness. A ring of single-point cells cannot tell its noise
+    # from its roughness, and all of its scatter is taken as roughness (the larger term).
     multi = (cnt >= 2) & np.isfinite(sdv)
     if multi.any():
         pooled = float(np.sum(sdv[multi] ** 2 * cnt[multi]) / np.sum(cnt[multi] - 1.0))
     else:
-        pooled = noise_sd_m**2
+        pooled = 0.0
     se = np.sqrt(pooled / np.maximum(cnt, 1.0))
     ux, uy = xx[use] - ox, yy[use] - oy
     fit = fit_plane_robust(ux, uy, zz[use], se)
