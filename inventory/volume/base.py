@@ -67,8 +67,15 @@ class BaseModel:
     """The base of one pile, resolved.
 
     ``kind`` is ``floor``, ``level`` or ``toe``. ``plane`` is (z0, dz/dx, dz/dy) about
-    ``origin`` for level and toe. ``cov`` is the plane's parameter covariance (toe only).
-    ``residual_m`` is the fit residual (toe), the floor sigma (floor) or 0 (level).
+    ``origin`` for level and toe. ``cov`` is the plane's parameter covariance (toe only:
+    the sandwich covariance under the ring residuals' own correlation, see
+    :func:`toe_base`). ``residual_m`` is the fit residual (toe), the floor sigma (floor) or
+    0 (level). For a toe plane, ``rough_sigma_m`` and ``rough_length_m`` are the sd and
+    exponential correlation length of the ring residuals' correlated part (the ground's
+    undulation), ``rough_white_m`` the sd of their white part less the cells' measurement
+    noise, ``ring_cells`` the inlier ring cells and ``ring_independent`` the number of
+    independent cells they amount to; ``ring_xy`` and ``ring_hat`` the inlier cells' centres
+    and the plane's parameters as weights on their elevations, ``(X^T X)^-1 X^T``.
     """
 
     kind: str
