@@ -223,12 +223,14 @@ def make_case(rng, kind, shadow, base_kind, ground, density_x, noise, errors=Non
     x, y, t = x[keep], y[keep], t[keep]
     z = pad(x, y) + t + reg_f(x, y) + rng.normal(0.0, noise, len(x))
     if ring_machine is not None:
-        # the machine's roof replaces the ground under it, outside the footprint only
+        # the machine's roof replaces the ground under it, in the ring only (not in a cell
+        # the footprint touches: a surface cell under a roof is emptied by the survey step)
         mx, my = ring_machine
-        under = (np.abs(x - mx) < 1.5) & (np.abs(y - my) < 1.5) & ~shapely.contains_xy(foot, x, y)
+        clear = foot.buffer(0.75)
+        under = (np.abs(x - mx) < 1.5) & (np.abs(y - my) < 1.5) & ~shapely.contains_xy(clear, x, y)
         m = rng.poisson(dens * 9)
         px, py = mx + rng.uniform(-1.5, 1.5, m), my + rng.uniform(-1.5, 1.5, m)
-        out_ = ~shapely.contains_xy(foot, px, py)
+        out_ = ~shapely.contains_xy(clear, px, py)
         px, py = px[out_], py[out_]
         x = np.concatenate([x[~under], px])
         y = np.concatenate([y[~under], py])
