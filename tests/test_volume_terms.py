@@ -201,3 +201,35 @@ def test_fill_keeps_the_linear_value_on_a_plane_and_on_a_noisy_flank():
     noisy = z + np.random.default_rng(0).normal(0.0, 0.05, z.shape)
     out = fill_slope_breaks(np.where(known, noisy, np.nan), linear, known, ~known, g.cell)
     assert np.abs(out - z)[~known].mean() < 0.02
+
+
+# ----------------------------------------------------------------------------- correlated term
+def test_toe_correlated_term_is_the_fields_departure_from_the_ring_plane():
+    # With a toe base, a registration error field f moves the volume by
+    # sum w a f - sum h_k f_k (h: the ring cells' weights in the plane's volume). Its
+    # variance under the spherical model, summed directly over every pair of cells, is what
+    # the volume table reports; and a field that is nearly one shift over pile and ring
+    # (range 200 m) is mostly taken away by the plane, unlike over a level base.
+    s, _ = _rough_plane(0.01, seed=4)
+    poly = shapely.Point(0, 0).buffer(7.0, quad_segs=64)
+    em = vm.ErrorModel(correlation_length_m=200.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        toe = vm.measure_piles(s, _piles(poly, "toe"), MATS, vm.BaseSurfaces(), errors=em).iloc[0]
+        level = vm.measure_piles(s, _piles(poly, "level:10"), MATS, vm.BaseSurfaces(), errors=em).iloc[0]
+    model = toe_base(s.grid, poly, [], s.z, s.count, s.sd, s.filled, 3.0, 0.01)
+    (rows, cols), w = vm.footprint_weights(poly, s.grid)
+    x, y = s.grid.centers()
+    x, y = x[rows, cols], y[rows, cols]
+    a = s.grid.cell_area
+    _, th = vm.thickness_raster(s, _piles(poly, "toe"))
+    pos = (w > 0) & (th[rows, cols] > 0)   # the cells whose volume the base moves
+    h = model.ring_weights((w * a)[pos], x[pos], y[pos])
+    vals = np.concatenate([(w * a)[w > 0], -h])
+    px = np.concatenate([x[w > 0], model.ring_xy[:, 0]])
+    py = np.concatenate([y[w > 0], model.ring_xy[:, 1]])
+    d = np.hypot(px[:, None] - px[None, :], py[:, None] - py[None, :]) / 200.0
+    rho = np.where(d < 1, 1 - 1.5 * d + 0.5 * d**3, 0.0)   # spherical model (Rolstad et al. 2009)
+    direct = 0.01 * math.sqrt(vals @ rho @ vals)
+    assert toe.sigma_correlated_m3 == pytest.approx(direct, rel=0.02)
+    assert toe.sigma_correlated_m3 < 0.5 * level.sigma_correlated_m3
