@@ -123,14 +123,19 @@ def test_simulated_surveys_interval_covers_truth():
 
 def test_doubling_range_noise_increases_sigma():
     # Honesty: the same scan with twice the scanner's range noise (same rays, same seeds)
-    # must report a larger random term for every pile. (The total is dominated by the
-    # interpolation term, which depends on which cells the noisier returns happen to hit:
-    # FE1's fell from 62 to 56 m3 here with 0.1 % more of it scanned; the controlled
-    # comparison of the total is the next test.)
+    # must report a larger random term. The random term holds the range noise and the
+    # spread of the points' positions across a sloping cell (about 0.7 x 0.5 m / sqrt(12)
+    # = 10 cm a point on a 35 degree flank at 0.5 m cells), so doubling a 1-2.5 cm range
+    # noise raises it by a few percent, and the noisier returns land in other cells: pile
+    # by pile it can move either way by about as much (L1: 0.788 -> 0.783 m3 here). Over
+    # the survey it must rise, and on most piles; with the points held in their cells
+    # every pile's must rise (next test). (The total is dominated by the interpolation
+    # term, which depends on which cells the noisier returns happen to hit.)
     _need_sample()
     t1 = _table(1, 1)[0]
     t2 = _table(1, 1, 2.0)[0]
-    assert (t2.sigma_random_m3.values > t1.sigma_random_m3.values).all()
+    assert np.sum(t2.sigma_random_m3.values**2) > np.sum(t1.sigma_random_m3.values**2)
+    assert np.mean(t2.sigma_random_m3.values > t1.sigma_random_m3.values) >= 0.7
 
 
 def test_more_noise_on_the_same_cells_increases_every_sigma():

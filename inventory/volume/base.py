@@ -9,9 +9,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+import math
+
 import numpy as np
 import shapely
 from scipy import ndimage
+from scipy.signal import fftconvolve
 
 from inventory.model.grid import Grid
 
@@ -64,8 +67,15 @@ class BaseModel:
     """The base of one pile, resolved.
 
     ``kind`` is ``floor``, ``level`` or ``toe``. ``plane`` is (z0, dz/dx, dz/dy) about
-    ``origin`` for level and toe. ``cov`` is the plane's parameter covariance (toe only).
-    ``residual_m`` is the fit residual (toe), the floor sigma (floor) or 0 (level).
+    ``origin`` for level and toe. ``cov`` is the plane's parameter covariance (toe only:
+    the sandwich covariance under the ring residuals' own correlation, see
+    :func:`toe_base`). ``residual_m`` is the fit residual (toe), the floor sigma (floor) or
+    0 (level). For a toe plane, ``rough_sigma_m`` and ``rough_length_m`` are the sd and
+    exponential correlation length of the ring residuals' correlated part (the ground's
+    undulation), ``rough_white_m`` the sd of their white part less the cells' measurement
+    noise, ``ring_cells`` the inlier ring cells and ``ring_independent`` the number of
+    independent cells they amount to; ``ring_xy`` and ``ring_hat`` the inlier cells' centres
+    and the plane's parameters as weights on their elevations, ``(X^T X)^-1 X^T``.
     """
 
     kind: str
@@ -76,6 +86,12 @@ class BaseModel:
     origin: tuple[float, float] = (0.0, 0.0)
     cov: np.ndarray | None = None
     rough_sigma_m: float = 0.0
+    rough_white_m: float = 0.0
+    rough_length_m: float = 0.0
+    ring_cells: int = 0
+    ring_independent: float = 0.0
+    ring_xy: np.ndarray | None = None
+    ring_hat: np.ndarray | None = None
     residual_m: float = 0.0
     note: str = ""
     flags: list[str] = field(default_factory=list)
@@ -116,15 +132,113 @@ class BaseModel:
             # registration offset of the floor survey): sigma_V = A * sigma_floor
             # (Anderson 2019, systematic term n L^2 sigma_sys).
             return a_pos * self.floor_sigma_m
-        # Toe plane: parameter error propagated to the volume, g^T C g, plus the ground's
-        # departure from a plane (roughness not explained by scan noise) taken as fully
-        # correlated under the pile.
+        # Toe plane: the plane's parameter error propagated to the volume, g^T C g (C from
+        # the ring's own residuals and their correlation, see toe_base), plus the ground's
+        # departure from a plane under the pile: its correlated part with the correlation
+        # measured on the ring, its white part cell by cell.
         g = np.array(
             [a_pos, np.sum(w_area * (x - self.origin[0])), np.sum(w_area * (y - self.origin[1]))]
         )
         var = float(g @ (self.cov if self.cov is not None else np.zeros((3, 3))) @ g)
-        var += (a_pos * self.rough_sigma_m) ** 2
+        var += self.rough_white_m**2 * float(np.sum(w_area**2))
+        if self.rough_sigma_m > 0:
+            var += self.rough_sigma_m**2 * _exp_double_sum(
+                w_area, x, y, self.grid.cell, self.rough_length_m
+            )
         return float(np.sqrt(max(var, 0.0)))
+
+    def ring_weights(self, w_area: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray | None:
+        """Weight of each inlier ring cell's elevation in the volume, for a toe plane.
+
+        The volume above the plane is ``sum w_area (z - plane)``; the plane is a linear
+        function of the ring's elevations, so an error field ``f`` on the ground changes the
+        volume by ``sum w_area f - sum h_k f_k`` with these ``h``. None for other bases.
+        """
+        if self.kind != "toe" or self.ring_hat is None:
+            return None
+        g = np.array(
+            [np.sum(w_area), np.sum(w_area * (x - self.origin[0])), np.sum(w_area * (y - self.origin[1]))]
+        )
+        return g @ self.ring_hat
+
+
+#: Lags (in cells) at which the ring residuals' correlation is measured, and the share of
+#: the largest below which a lag's correlation is taken as none (noise in the estimate).
+_LAGS = np.array([1, 2, 3, 4, 6, 8, 12, 16])
+_MIN_RHO = 0.05
+
+
+def _exp_kernel(cell: float, length_m: float, reach: int) -> np.ndarray:
+    k = np.arange(-reach, reach + 1) * cell
+    return np.exp(-np.hypot(k[:, None], k[None, :]) / length_m)
+
+
+def _exp_double_sum(s: np.ndarray, x: np.ndarray, y: np.ndarray, cell: float, length_m: float,
+                    t: np.ndarray | None = None) -> float:
+    r""":math:`\sum_i\sum_j s_i t_j \exp(-d_{ij}/L)` over cells at centres ``x, y``
+    (FFT convolution on the cells' own raster; ``t`` defaults to ``s``)."""
+    if s.size == 0:
+        return 0.0
+    t = s if t is None else t
+    c = np.rint((x - x.min()) / cell).astype(int)
+    r = np.rint((y.max() - y) / cell).astype(int)
+    shape = (r.max() + 1, c.max() + 1)
+    S = np.zeros(shape)
+    T = np.zeros(shape)
+    np.add.at(S, (r, c), s)
+    np.add.at(T, (r, c), t)
+    reach = max(shape) if not math.isfinite(length_m) else int(min(max(shape), math.ceil(8 * length_m / cell)))
+    conv = fftconvolve(T, _exp_kernel(cell, length_m, reach), mode="same")
+    return float(np.sum(S * conv))
+
+
+def residual_correlation(res: np.ndarray, cell: float) -> tuple[float, float]:
+    """Correlated share and correlation length of a raster of residuals (NaN = no cell).
+
+    The autocorrelation is measured at the lags :data:`_LAGS` along rows and columns over
+    every pair of cells that both have a residual, and an exponential model with a nugget,
+    ``rho(d) = c exp(-d / L)`` for ``d > 0``, is fitted to the lags whose correlation is
+    above :data:`_MIN_RHO` (log-linear least squares, weights the numbers of pairs). A
+    white field gives ``c = 0``. Returns ``(c, L)`` in (share, metres).
+    """
+    ok = np.isfinite(res)
+    r0 = np.where(ok, res, 0.0)
+    var = float(np.sum(r0**2) / max(ok.sum(), 1))
+    if var <= 0:
+        return 0.0, 0.0
+    d, rho, npair = [], [], []
+    for k in _LAGS:
+        num, n = 0.0, 0
+        for a, b, m, q in ((r0[:, k:], r0[:, :-k], ok[:, k:], ok[:, :-k]),
+                           (r0[k:, :], r0[:-k, :], ok[k:, :], ok[:-k, :])):
+            if a.size == 0:
+                continue
+            both = m & q
+            num += float(np.sum((a * b)[both]))
+            n += int(both.sum())
+        if n >= 10:
+            d.append(k * cell)
+            rho.append(num / n / var)
+            npair.append(n)
+    d, rho, npair = np.array(d), np.array(rho), np.array(npair, float)
+    use = rho > _MIN_RHO
+    # only the run of correlated lags from the first one: beyond it the estimate is noise
+    if use.size == 0 or not use[0]:
+        return 0.0, 0.0
+    stop = int(np.argmin(use)) if not use.all() else use.size
+    d, rho, npair = d[:stop], rho[:stop], npair[:stop]
+    if len(d) == 1:
+        # one lag: the nugget cannot be told from the length; take c = 1 (conservative)
+        return 1.0, float(-d[0] / math.log(min(rho[0], 0.999)))
+    A = np.column_stack([np.ones_like(d), -d])
+    W = np.sqrt(npair)
+    coef, *_ = np.linalg.lstsq(A * W[:, None], np.log(np.minimum(rho, 0.999)) * W, rcond=None)
+    c = float(min(math.exp(coef[0]), 1.0))
+    inv_l = float(coef[1])
+    if inv_l <= 0:
+        # no decay within the lags measured: correlated over the whole ring
+        return c, float("inf")
+    return c, 1.0 / inv_l
 
 
 def _plane_lmeds(x: np.ndarray, y: np.ndarray, z: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -179,7 +293,8 @@ def fit_plane_robust(
     se_in = se[inl]
     noise2 = float(np.nanmean(se_in**2)) if np.isfinite(se_in).any() else 0.0
     rough = float(np.sqrt(max(s2 - noise2, 0.0)))
-    return {"p": p, "cov": cov, "rms": float(np.sqrt(s2)), "rough": rough, "inliers": inl}
+    return {"p": p, "cov": cov, "rms": float(np.sqrt(s2)), "rough": rough, "inliers": inl, "resid": r,
+            "XtX": XtX, "s2": s2}
 
 
 def toe_base(
@@ -235,15 +350,59 @@ def toe_base(
         return model
     cnt = count[rows, cols][use].astype(float)
     sdv = sd[rows, cols][use]
-    # Standard error of each ring cell's mean elevation; single-point cells take the
-    # survey's typical point scatter.
-    se = np.where(np.isfinite(sdv), sdv, noise_sd_m) / np.sqrt(np.maximum(cnt, 1.0))
-    fit = fit_plane_robust(xx[use] - ox, yy[use] - oy, zz[use], se)
+    # Each ring cell's own measurement variance: the ring's pooled point variance (cells
+    # of two or more points, population sd turned unbiased) over the cell's count. Never
+    # the survey's typical scatter: dense points on steep flanks raise that and would
+    # cancel the ground's roughness. A ring of single-point cells cannot tell its noise
+    # from its roughness, and all of its scatter is taken as roughness (the larger term).
+    multi = (cnt >= 2) & np.isfinite(sdv)
+    if multi.any():
+        pooled = float(np.sum(sdv[multi] ** 2 * cnt[multi]) / np.sum(cnt[multi] - 1.0))
+    else:
+        pooled = 0.0
+    se = np.sqrt(pooled / np.maximum(cnt, 1.0))
+    ux, uy = xx[use] - ox, yy[use] - oy
+    fit = fit_plane_robust(ux, uy, zz[use], se)
+    inl = fit["inliers"]
+    # The residuals' correlation along the ring: correlated ground (undulations, ruts)
+    # makes the ring's cells fewer independent samples than cells, and moves the ground
+    # under the pile together.
+    res = np.full(zz.shape, np.nan)
+    idx = np.flatnonzero(use.ravel())[inl]
+    res.ravel()[idx] = fit["resid"][inl]
+    c, length = residual_correlation(res, grid.cell)
+    s2 = fit["s2"]
+    try:
+        inv = np.linalg.inv(fit["XtX"])
+    except np.linalg.LinAlgError:
+        inv = np.full((3, 3), np.inf)
+    X = np.column_stack([np.ones(int(inl.sum())), ux[inl], uy[inl]])
+    meat = (1.0 - c) * (X.T @ X)
+    if c > 0:
+        # X^T R X with R_ij = exp(-d_ij / L): the sandwich covariance of least squares
+        # under correlated residuals (generalised least squares' textbook result for an
+        # OLS fit: (X^T X)^-1 X^T Sigma X (X^T X)^-1).
+        xr, yr = xx[use][inl], yy[use][inl]
+        meat += c * np.array([[_exp_double_sum(X[:, i], xr, yr, grid.cell, length, X[:, j])
+                               for j in range(3)] for i in range(3)])
+    cov = s2 * inv @ meat @ inv
+    n_in = int(inl.sum())
+    # independent cells: N / (the variance of the mean over that of N independent cells)
+    n_eff = n_in * n_in / max(float(meat[0, 0]), 1e-12) if n_in else 0.0
+    noise2 = float(np.mean(se[inl] ** 2))
     model.plane = tuple(float(v) for v in fit["p"])  # type: ignore[assignment]
-    model.cov = fit["cov"]
+    model.cov = cov
     model.residual_m = fit["rms"]
-    model.rough_sigma_m = fit["rough"]
+    model.rough_sigma_m = float(math.sqrt(c * s2))
+    model.rough_white_m = float(math.sqrt(max((1.0 - c) * s2 - noise2, 0.0)))
+    model.rough_length_m = float(length)
+    model.ring_cells = n_in
+    # (X^T X)^-1 X^T of the inlier ring cells: the plane's parameters as weights on the
+    # ring's elevations (a field that moves the ring moves the plane by these)
+    model.ring_xy = np.column_stack([xx[use][inl], yy[use][inl]])
+    model.ring_hat = inv @ X.T
+    model.ring_independent = float(n_eff)
     rejected = 1.0 - fit["inliers"].mean()
-    extra = f"toe plane through {int(fit['inliers'].sum())} ring cells, {rejected * 100:.0f} % rejected"
+    extra = (f"toe plane through {n_in} ring cells ({n_eff:.0f} independent), {rejected * 100:.0f} % rejected")
     model.note = (model.note + "; " if model.note else "") + extra
     return model

@@ -49,6 +49,7 @@ from inventory.io.rasters import read_raster
 from inventory.model.grid import Grid, Surface, lone_patches
 from inventory.site.load import Material, parse_base
 from inventory.volume.base import BaseModel, bilinear, fill_nearest, toe_base
+from inventory.volume.gapfill import fill_slope_breaks
 from inventory.volume.tin import tin_volume
 
 if TYPE_CHECKING:
@@ -84,14 +85,16 @@ CORRELATED_SIGMA_M = 0.01
 CORRELATION_LENGTH_M = 15.0
 
 #: Interpolation error per metre of distance to the nearest scanned cell, per unit of
-#: slope mismatch (the change of slope the interpolating surface makes against the scanned
-#: rim, :func:`_slope_mismatch`). Interpolating across a hole over an apex or ridge whose
-#: flanks have slope s gives a flat top at rim height: the mismatch is s and the surface is
-#: missed by s d at distance d from the rim (geometry of a cone), so 1.0 is geometry, not a
-#: fitted number. Checked against holes hidden over the apex, a flank and an end of
-#: handbook solids in tests/test_volume.py and against the demo simulator's truth in
-#: tests/test_volume_site.py.
-INTERP_SLOPE_FACTOR = 1.0
+#: slope mismatch (the change of slope the filled surface makes against the scanned rim,
+#: :func:`_slope_mismatch`). A flat fill over an apex whose flanks have slope s misses the
+#: surface by s d at distance d from the rim (a cone), which made 1.0 the geometric bound
+#: for linear filling; where a gap hides a crest or a toe the fill now extends the flanks'
+#: planes (:mod:`inventory.volume.gapfill`), which removes most of that miss. The factor is
+#: calibrated on the study of bench/bench_calibration.py (cones, frustums, windrows,
+#: reclaim faces and bays with shadows over crests, flanks, backs and machines, at 1x and
+#: 10x point density): 0.5 puts the standard deviation of error / sigma of the whole
+#: interval between 0.7 and 1.3 at both densities (numbers in CHANGELOG.md).
+INTERP_SLOPE_FACTOR = 0.5
 
 #: Correlation length of interpolation errors as a multiple of the local gap width (the
 #: diameter of the largest unscanned disc covering the cell, :func:`_local_gap_width`):
@@ -297,6 +300,60 @@ def spherical_correlation_sum(weights: np.ndarray, cell: float, length_m: float)
     return float(max(np.sum(weights * conv), 0.0))
 
 
+#: Half width (cells) of the window over which the point variance of a cell is pooled.
+_POOL_HALF = 2
+
+
+def _local_point_variance(cnt: np.ndarray, sd: np.ndarray, noise_sd: float) -> np.ndarray:
+    """Each cell's point variance about its mean, pooled over the cells of two or more
+    points in a (2 x :data:`_POOL_HALF` + 1)^2 window around it.
+
+    The surface keeps the population sd of each cell's points; sum(n sd^2) / sum(n - 1) over
+    the window is the pooled unbiased variance (one degree of freedom per cell spent on its
+    mean). It holds the range noise and the spread of the points' positions across a
+    sloping cell (a cell's mean sits at its points' mean position, not at its centre), so
+    a single-point cell on a flank gets its flank's variance, not the survey's typical
+    scatter, which is used only where no cell nearby has two points.
+    """
+    multi = (cnt >= 2) & np.isfinite(sd)
+    num = ndimage.uniform_filter(np.where(multi, cnt * np.nan_to_num(sd) ** 2, 0.0), 2 * _POOL_HALF + 1,
+                                 mode="constant")
+    den = ndimage.uniform_filter(np.where(multi, cnt - 1.0, 0.0), 2 * _POOL_HALF + 1, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = num / den
+    return np.where(den > 1e-9, var, noise_sd**2)
+
+
+#: Gaps of at least this many cells have edges that cut scanned cells (a shadow's edge).
+_EDGE_GAP_CELLS = 4
+
+
+def _edge_variance(z: np.ndarray, scanned: np.ndarray, cell: float) -> np.ndarray:
+    """Extra variance of the scanned cells on the edge of a gap of :data:`_EDGE_GAP_CELLS`
+    or more cells: a shadow's edge cuts them, so their points cover part of the cell and
+    their mean sits off the cell's centre, by an offset taken as uniform across the cell
+    (variance cell^2 / 12) times the slope there."""
+    gap = ~scanned
+    lab, n = ndimage.label(gap)
+    if n == 0:
+        return np.zeros(z.shape)
+    sizes = np.bincount(lab.ravel(), minlength=n + 1)
+    big = (sizes >= _EDGE_GAP_CELLS)[lab] & gap
+    edge = scanned & ndimage.binary_dilation(big, structure=np.ones((3, 3)))
+    zf = fill_nearest(z)
+    gr, gc = np.gradient(np.where(np.isfinite(zf), zf, 0.0), cell)
+    return np.where(edge, (gr**2 + gc**2) * cell**2 / 12.0, 0.0)
+
+
+def _rasterise(values: np.ndarray, x: np.ndarray, y: np.ndarray, cell: float) -> np.ndarray:
+    """Values at cell centres ``x, y`` summed onto their own small raster."""
+    c = np.rint((x - x.min()) / cell).astype(int)
+    r = np.rint((y.max() - y) / cell).astype(int)
+    out = np.zeros((r.max() + 1, c.max() + 1))
+    np.add.at(out, (r, c), values)
+    return out
+
+
 # ----------------------------------------------------------------------------- one pile
 @dataclass
 class _PileWork:
@@ -340,6 +397,7 @@ def _prepare(
     base: BaseSurfaces,
     others: list[tuple[str, shapely.Geometry]],
     noise_sd: float,
+    slope_fill: bool = True,
 ) -> _PileWork | None:
     """Weights, surface (gaps filled), and base for one pile; None when nothing to measure."""
     grid = surface.grid
@@ -395,6 +453,7 @@ def _prepare(
     if not model.ok:
         return _PileWork(rows, cols, sub, w, z, np.full(w.shape, np.nan), scanned, model, flags)
     bz = model.floor if model.kind == "floor" else _plane_on(model, sub)
+    ground = np.zeros(w.shape, bool)
     if missing.any():
         flags.append("unfilled_gap")
         # Footprints enclose their piles, so unscanned ground outside every footprint is
@@ -409,6 +468,12 @@ def _prepare(
                 ground &= _window_weights(g, grid, rows, cols) <= 0
         z = np.where(ground, bz, z)
         z = _fill_gaps(z, inside, lone_patches(scanned))
+    targets = inside & ~scanned
+    if slope_fill and targets.any():
+        # Every unscanned footprint cell, filled by the survey or above: where its gap hides
+        # a crest or a toe, the flanks' planes replace the linear chord (gapfill module).
+        known = (scanned & ~lone_patches(scanned)) | ground
+        z = fill_slope_breaks(z, z, known, targets, grid.cell)
     return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags)
 
 
@@ -609,16 +674,32 @@ def _measure_one(
 
     cnt = surface.count[work.rows, work.cols].astype(float)
     sd = surface.sd[work.rows, work.cols]
-    s_i = np.where((cnt >= 2) & np.isfinite(sd), sd, noise_sd)
-    se = s_i / np.sqrt(np.maximum(cnt, 1.0))
+    se = np.sqrt(_local_point_variance(cnt, sd, noise_sd) / np.maximum(cnt, 1.0))
     sel = inside & work.scanned
     sig_rand = float(np.sqrt(np.sum((w[sel] * a * se[sel]) ** 2)))
-    sig_corr = errors.correlated_sigma_m * a * math.sqrt(
-        spherical_correlation_sum(w, grid.cell, errors.correlation_length_m)
-    )
-    sig_gap = _gap_sigma(work, a, grid.cell, noise_sd, errors)
     pos = inside & (t > 0)
     x, y = work.sub.centers()
+    hat = work.model.ring_weights((w * a)[pos], x[pos], y[pos])
+    if hat is None:
+        sig_corr = errors.correlated_sigma_m * a * math.sqrt(
+            spherical_correlation_sum(w, grid.cell, errors.correlation_length_m)
+        )
+    else:
+        # A toe plane is fitted to the same scan: a registration error that lifts the pile
+        # lifts its ring too, and the plane takes most of it away. The volume changes by
+        # sum w a f - sum h_k f_k (h: the ring cells' weights in the plane's volume).
+        assert work.model.ring_xy is not None
+        vals = np.concatenate([(w * a)[inside], -hat])
+        px = np.concatenate([x[inside], work.model.ring_xy[:, 0]])
+        py = np.concatenate([y[inside], work.model.ring_xy[:, 1]])
+        sig_corr = errors.correlated_sigma_m * math.sqrt(
+            spherical_correlation_sum(_rasterise(vals, px, py, grid.cell), grid.cell, errors.correlation_length_m)
+        )
+    sig_gap = _gap_sigma(work, a, grid.cell, noise_sd, errors)
+    # scanned cells cut by a gap's edge: part of the interpolation's error (the gap's), each
+    # cell on its own
+    edge = _edge_variance(work.z, work.scanned, grid.cell)
+    sig_gap = math.sqrt(sig_gap**2 + float(np.sum(((w * a) ** 2 * edge)[sel])))
     sig_base = work.model.volume_sigma((w * a)[pos], x[pos], y[pos])
     sigma = math.sqrt(sig_rand**2 + sig_corr**2 + sig_gap**2 + sig_base**2)
     tin_fill, tin_cut = _tin(work, poly, points)
