@@ -81,8 +81,9 @@ class ClosedPeriod:
             f"survey {piles['survey_t'].sum():,.0f} t vs book {piles['book_t'].sum():,.0f} t, "
             f"{sig} significant, {oot} out of tolerance (ledger close {self.close_id})",
         ]
+        width = max((len(key) for key in self.files), default=0) + 1
         for key, path in self.files.items():
-            lines.append(f"  {key:<11} {path}")
+            lines.append(f"  {key:<{width}} {path}")
         return "\n".join(lines)
 
 
