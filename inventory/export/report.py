@@ -328,7 +328,7 @@ max-width:1100px}
 h1{font-size:1.5em;margin-bottom:0} h2{font-size:1.15em;margin-top:1.6em;
 border-bottom:1px solid #c9ced6}
 .facts{color:#4b5563;margin-top:4px}
-table{border-collapse:collapse;font-size:0.85em;margin:8px 0}
+table{border-collapse:collapse;font-size:0.85em;margin:8px 0;display:block;overflow-x:auto;max-width:100%}
 th,td{border:1px solid #d5d9df;padding:3px 7px;text-align:left;vertical-align:top}
 td.n{text-align:right;white-space:nowrap}
 th{background:#e8ecf1} td:first-child{white-space:nowrap}
