@@ -22,7 +22,6 @@ import re
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial import cKDTree
 
 from inventory.errors import PipelineError
 
@@ -168,18 +167,16 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
     multiplier : float
         Standard deviations above the mean distance that make an outlier (PDAL default 2.0).
     """
-    from inventory.parallel import job_threads
+    from inventory.survey.kernels import CellIndex, knn3_mean
 
     n = len(xyz)
     if n <= mean_k:
         return np.zeros(n, bool)
     order = spatial_order(xyz[:, 0], xyz[:, 1])
-    near = np.ascontiguousarray(xyz[order])
-    tree = cKDTree(near, balanced_tree=False, compact_nodes=False)
-    # k + 1 because the query point itself comes back first at distance 0 (as in PDAL).
-    d, _ = tree.query(near, k=mean_k + 1, workers=job_threads())
+    x, y, z = (np.ascontiguousarray(xyz[:, i], dtype=np.float64) for i in range(3))
+    # the point itself is left out (PDAL asks for k + 1 and drops the first, itself)
     mean_d = np.empty(n)
-    mean_d[order] = d[:, 1:].mean(axis=1)   # back in input order: the sums below as before
+    mean_d[order] = knn3_mean(CellIndex(x, y, k=mean_k), x, y, z, order, mean_k)   # back in input order
     threshold = mean_d.mean() + multiplier * mean_d.std(ddof=1)
     return mean_d >= threshold
 
