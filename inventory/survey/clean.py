@@ -14,6 +14,8 @@ so that a pipeline gives the same answer with PDAL or with our runner:
 * :func:`elm_low_points`: ``filters.elm``, the Extended Local Minimum of Chen et al. 2012
   (ISPRS J. 72:121) as PDAL applies it: within each cell, walk up from the lowest point and
   mark a point as noise while the gap to the next point above is at least ``threshold``.
+* :func:`voxel_thin` (ours, stage ``inventory.voxel_thin``): at most ``max_points`` points
+  per voxel, the lowest and the highest always among them.
 """
 
 from __future__ import annotations
@@ -26,7 +28,7 @@ import numpy as np
 from inventory.errors import PipelineError
 
 __all__ = ["DimRange", "parse_limits", "limits_mask", "statistical_outliers", "elm_low_points",
-           "find_dimension", "spatial_order"]
+           "find_dimension", "spatial_order", "voxel_thin"]
 
 _RANGE_RE = re.compile(
     r"^\s*(?P<name>[A-Za-z_][A-Za-z0-9_]*)\s*(?P<neg>!)?\s*(?P<lo_br>[\[(])\s*(?P<lo>[^:\s]*)\s*:"
@@ -208,3 +210,50 @@ def elm_low_points(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 10
     noise_sorted = (cs - before) == 0
     out[order] = noise_sorted
     return out
+
+
+def voxel_thin(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 0.05, max_points: int = 4) -> np.ndarray:
+    """Mask of the points kept by voxel thinning: at most ``max_points`` per voxel.
+
+    Voxels are cubes of ``cell`` on a lattice anchored at the coordinate origin, so a
+    voxel is thinned the same way whichever tile or job sees it. In a voxel of m >
+    ``max_points`` points, those at the evenly spaced ranks ``round(j (m - 1) /
+    (max_points - 1))``, j = 0 .. max_points - 1, of the voxel's points ordered by height
+    (then x, y) are kept: the lowest and the highest always (the surface and the top of
+    what stands on it), and which points are kept does not depend on their order in the
+    input.
+
+    Examples
+    --------
+    >>> z = np.array([0.01, 0.02, 0.03, 0.04, 0.0, 0.3])
+    >>> voxel_thin(np.full(6, 0.01), np.full(6, 0.01), z, cell=0.05, max_points=2).tolist()
+    [False, False, False, True, True, True]
+    """
+    n = len(z)
+    if max_points < 2:
+        raise PipelineError(f"inventory.voxel_thin: max_points must be at least 2, got {max_points}")
+    if not cell > 0:
+        raise PipelineError(f"inventory.voxel_thin: cell must be positive, got {cell}")
+    keep = np.ones(n, bool)
+    if n <= max_points:
+        return keep
+    ix, iy, iz = (np.floor(v / cell).astype(np.int64) for v in (x, y, z))
+    ix -= ix.min()
+    iy -= iy.min()
+    iz -= iz.min()
+    key = (ix * (int(iy.max()) + 1) + iy) * (int(iz.max()) + 1) + iz
+    order = np.lexsort((y, x, z, key))
+    ks = key[order]
+    start = np.ones(n, bool)
+    start[1:] = ks[1:] != ks[:-1]
+    first = np.flatnonzero(start)
+    size = np.diff(np.append(first, n))
+    m = np.repeat(size, size)                       # points in each point's voxel
+    rank = np.arange(n) - np.repeat(first, size)    # its rank in the voxel by height
+    # kept ranks j (m - 1) / (max_points - 1), rounded: rank r is one when the nearest
+    # multiple of the step lands on it
+    k = max_points - 1
+    j = np.rint(rank * k / np.maximum(m - 1, 1))
+    hit = np.rint(j * (m - 1) / k) == rank
+    keep[order] = (m <= max_points) | hit
+    return keep

@@ -169,10 +169,10 @@ def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, 
 
 def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None"):
     n = len(qx)
-    d = np.full((n, k), np.inf)
-    nb = np.full((n, k), -1, np.int64)
     if n == 0 or k == 0 or index.n == 0:
-        return d, nb
+        return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
+    d = np.empty((n, k))                # every row is written by _knn_rows
+    nb = np.empty((n, k), np.int64)
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
     use_z = z is not None
