@@ -178,7 +178,7 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
     x, y, z = (np.ascontiguousarray(xyz[:, i], dtype=np.float64) for i in range(3))
     # the point itself is left out (PDAL asks for k + 1 and drops the first, itself)
     mean_d = np.empty(n)
-    mean_d[order] = knn3_mean(CellIndex(x, y, k=mean_k), x, y, z, order, mean_k)   # back in input order
+    mean_d[order] = knn3_mean(CellIndex(x, y, k=2 * mean_k), x, y, z, order, mean_k)   # back in input order
     threshold = mean_d.mean() + multiplier * mean_d.std(ddof=1)
     return mean_d >= threshold
 

@@ -22,7 +22,8 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import CellIndex, below_tests, knn3_mean, min_envelope, plan_knn, plan_knn3
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, min_envelope,
+                                      plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -83,11 +84,9 @@ class _EnvelopeGrid:
         col = ((x - x0) // c).astype(np.int64)
         row = ((y - y0) // c).astype(np.int64)
         key = row * ncol + col
-        order = np.lexsort((z, key))
-        first = np.ones(len(order), bool)
-        first[1:] = key[order][1:] != key[order][:-1]
-        seeds = order[first]
-        skey = key[seeds]
+        low = cell_lowest(key, np.ascontiguousarray(z, dtype=np.float64), nrow * ncol)
+        skey = np.flatnonzero(low >= 0)
+        seeds = low[skey]
 
         g = np.full(nrow * ncol, np.inf)
         g[skey] = z[seeds]
@@ -108,14 +107,7 @@ class _EnvelopeGrid:
         if len(qx) and qcol.min() >= 1 and qcol.max() <= ncol - 2 and qrow.min() >= 1 and qrow.max() <= nrow - 2:
             # every 3 x 3 block inside the grid (always so for the seeds' own points: the
             # grid has a border of one cell)
-            base = qrow * ncol + qcol
-            for off in (-ncol - 1, -ncol, -ncol + 1, -1, 0, 1, ncol - 1, ncol, ncol + 1):
-                k = base + off
-                cand = np.hypot(qx - ax[k], qy - ay[k])
-                cand *= t
-                cand += gf[k]
-                np.minimum(e, cand, out=e)
-            return e
+            return envelope_at(qx, qy, self.x0, self.y0, c, ncol, gf, ax, ay, t)
         for dr in (-1, 0, 1):
             for dc in (-1, 0, 1):
                 r, cc = qrow + dr, qcol + dc
@@ -510,7 +502,7 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         return out
     xyz = np.column_stack([x[idx], y[idx], z[idx]])
     if near is None or len(near["idx"]) < 2:
-        d1 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=4), xyz[:, 0], xyz[:, 1], xyz[:, 2], np.arange(len(idx)), 1)
+        d1 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], np.arange(len(idx)), 1)
         out[idx[d1 > ISOLATION_M]] = True
         return out
     sup, d, nb, zs = near["idx"], near["d"], near["nb"], near["z"]
@@ -526,7 +518,7 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         rest = rest[~ok]
     if len(rest):
         short = (np.cumsum(member) - 1)[rest]    # positions in idx
-        d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=4), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
+        d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
         out[idx[short[d2 > ISOLATION_M]]] = True
     return out
 
@@ -571,7 +563,7 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # asked only for the points that pass the plan tests (a few per cent).
     cand = np.flatnonzero(plan | deep)
     if len(cand):
-        d4, _ = plan_knn3(CellIndex(xs, ys, k=4), xs, ys, zs, cand, 4)
+        d4, _ = plan_knn3(CellIndex(xs, ys, k=8), xs, ys, zs, cand, 4)
         d4 = d4[:, -1]
         deep[cand] &= d4 > 1.0
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
