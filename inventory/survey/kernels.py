@@ -24,6 +24,7 @@ not depend on how the rows were split.
 from __future__ import annotations
 
 import math
+import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import Callable
 
@@ -46,7 +47,10 @@ def run_rows(fn: Callable[[int, int], None], n: int) -> None:
     result is the same however many threads run.
     """
     pieces = [(a, min(a + _PIECE, n)) for a in range(0, n, _PIECE)]
-    threads = min(job_threads(), len(pieces))
+    threads = job_threads()
+    if threads < 1:     # -1: every core (SciPy's workers=-1)
+        threads = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    threads = min(threads, len(pieces))
     if threads <= 1:
         for a, b in pieces:
             fn(a, b)
