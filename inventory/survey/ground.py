@@ -22,8 +22,8 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, min_envelope,
-                                      plan_knn, plan_knn3)
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, member_rows,
+                                      min_envelope, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -172,14 +172,14 @@ class _PlanNeighbours:
             if rows is None:
                 return self.d[:, :k], self.nb[:, :k]
             return np.take(self.d[:, :k], sel, axis=0), np.take(self.nb[:, :k], sel, axis=0)
-        # np.take: row gathers twice as fast as fancy indexing
-        dd = np.take(self.d[:, :k], sel, axis=0)
-        nn = np.take(self.nb[:, :k], sel, axis=0)
-        mixed = np.flatnonzero(np.take(~members, nn).any(axis=1))
+        # rows whose k nearest are all members are answered; the others asked again
+        dd, nn, mixed = member_rows(self.d, self.nb, sel, members, pos, k)
+        mixed = np.flatnonzero(mixed)
         if len(mixed):
             q = sel[mixed]
-            dd[mixed], nn[mixed] = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k)
-        return dd, np.take(pos, nn)
+            d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k)
+            dd[mixed], nn[mixed] = d, np.take(pos, nb)
+        return dd, nn
 
 
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:

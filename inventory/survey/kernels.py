@@ -33,7 +33,7 @@ from numba import njit
 
 from inventory.parallel import job_threads
 
-__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "below_tests", "min_envelope", "lattice_triangles",
+__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "lattice_triangles",
            "run_rows"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
@@ -387,3 +387,36 @@ def envelope_at(qx, qy, x0, y0, c, ncol, gf, ax, ay, t):
 
     run_rows(piece, len(qx))
     return out
+
+
+@njit(cache=True, nogil=True)
+def _member_rows(a, b, d, nb, sel, members, pos, k, dd, nn, mixed):
+    for i in range(a, b):
+        r = sel[i]
+        m = False
+        for j in range(k):
+            q = nb[r, j]
+            dd[i, j] = d[r, j]
+            if q < 0 or not members[q]:
+                m = True
+                nn[i, j] = -1
+            else:
+                nn[i, j] = pos[q]
+        mixed[i] = m
+
+
+def member_rows(d: np.ndarray, nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.ndarray, k: int
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rows ``sel`` of a k-nearest answer (``d``, ``nb`` numbered among all points), first
+    ``k`` columns, neighbours renumbered by ``pos`` (their number among the members); and
+    which rows hold a neighbour that is not a member (its number is then -1)."""
+    n = len(sel)
+    dd = np.empty((n, k))
+    nn = np.empty((n, k), np.int64)
+    mixed = np.empty(n, np.bool_)
+
+    def piece(a: int, b: int) -> None:
+        _member_rows(a, b, d, nb, sel, members, pos, k, dd, nn, mixed)
+
+    run_rows(piece, n)
+    return dd, nn, mixed
