@@ -2,8 +2,12 @@
 
 Usage::
 
-    python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points
+    python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points,
+                                                       # uniform and terrestrial profiles
     python bench/bench_survey.py --sizes 1 10          # millions of points
+    python bench/bench_survey.py --profile terrestrial # one profile only
+    python bench/bench_survey.py --profile terrestrial \
+        --pipeline inventory/survey/pipelines/stockpile-thin.json   # with voxel thinning
     python bench/bench_survey.py --huge                # also 200 M points
     python bench/bench_survey.py --workers 0 1 2       # serial, a Dask cluster of 1 worker, of 2
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
@@ -11,14 +15,23 @@ Usage::
                                                        # and classifier (its floor)
 
 Synthetic surveys are stockyards (``inventory._demo.synthetic.make_yard``, piles, machines,
-a gallery, noise) laid side by side, 120 m apart, at 100 points/m2 on piles and machines,
-and written to one LAZ file yard by yard, so that generating 200 million points needs
-the memory of one yard. For each survey it prints, measured in the same run:
+a gallery, noise) laid side by side, 120 m apart, and written to one LAZ file yard by yard,
+so that generating 200 million points needs the memory of one yard. Two profiles of the same
+number of points per yard:
+
+* uniform: 100 points/m2 on piles and machines, a sixth of that on the pad;
+* terrestrial: five static set-ups per yard, the density falling with the square of the
+  range from the nearest one, as a scanner at a fixed angular step places them
+  (:func:`terrestrial_yard`: about 500 points/m2 at 3-5 m, 80 at 10-15 m; the shape of a
+  static scan, not its near-range density, which would take far more points per yard).
+  ``StationRange`` is not stored in the LAZ, so the range gates keep every point.
+
+For each survey it prints, measured in the same run:
 
 * the bare decode: ``laspy`` (lazrs backend) reading the file chunk by chunk, points/s;
 * the survey step: ``measure_survey`` end to end (read, place, tile, clean, classify,
   grid, fill, write the GeoTIFFs and the classified LAZ), points/s and its steps;
-* their ratio (issue 8 target: at most 3, aim 2);
+* their ratio (issue 17 target: at most 10, aim 3);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
 * with ``--workers``: 0 is a serial run in this process (neighbour queries on every core,
