@@ -131,7 +131,7 @@ def limits_mask(points: np.ndarray, ranges: list[DimRange]) -> np.ndarray:
 def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray:
     """Permutation listing points block by block along a Z-order (Morton) curve of ``cell`` blocks.
 
-    Neighbour queries (SciPy ``cKDTree``) run faster on points that are near in memory when
+    Neighbour queries run faster on points that are near in memory when
     they are near in space (timings in CHANGELOG.md).
 
     Examples

@@ -125,7 +125,6 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
     The grid envelope only sees the lowest point of each cell; on a wall, the points just
     below a point in plan are what show it is a wall.
     """
-
     n = len(z)
     if n < 2:
         return np.full(n, np.inf)
@@ -167,7 +166,7 @@ class _PlanNeighbours:
         pos = (np.cumsum(members) - 1).astype(np.int64)
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
             d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[sel], self.y[sel], max(k, 1))
-            return d, np.take(pos, nb)
+            return d, np.where(nb >= 0, np.take(pos, nb), -1)   # -1: fewer members than asked
         if len(idx) == len(members):
             if rows is None:
                 return self.d[:, :k], self.nb[:, :k]
