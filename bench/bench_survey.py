@@ -2,8 +2,12 @@
 
 Usage::
 
-    python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points
+    python bench/bench_survey.py                      # synthetic surveys of 1, 10 and 50 M points,
+                                                       # uniform and terrestrial profiles
     python bench/bench_survey.py --sizes 1 10          # millions of points
+    python bench/bench_survey.py --profile terrestrial # one profile only
+    python bench/bench_survey.py --profile terrestrial \
+        --pipeline inventory/survey/pipelines/stockpile-thin.json   # with voxel thinning
     python bench/bench_survey.py --huge                # also 200 M points
     python bench/bench_survey.py --workers 0 1 2       # serial, a Dask cluster of 1 worker, of 2
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
@@ -11,14 +15,23 @@ Usage::
                                                        # and classifier (its floor)
 
 Synthetic surveys are stockyards (``inventory._demo.synthetic.make_yard``, piles, machines,
-a gallery, noise) laid side by side, 120 m apart, at 100 points/m2 on piles and machines,
-and written to one LAZ file yard by yard, so that generating 200 million points needs
-the memory of one yard. For each survey it prints, measured in the same run:
+a gallery, noise) laid side by side, 120 m apart, and written to one LAZ file yard by yard,
+so that generating 200 million points needs the memory of one yard. Two profiles of the same
+number of points per yard:
+
+* uniform: 100 points/m2 on piles and machines, a sixth of that on the pad;
+* terrestrial: five static set-ups per yard, the density falling with the square of the
+  range from the nearest one, as a scanner at a fixed angular step places them
+  (:func:`terrestrial_yard`: about 500 points/m2 at 3-5 m, 80 at 10-15 m; the shape of a
+  static scan, not its near-range density, which would take far more points per yard).
+  ``StationRange`` is not stored in the LAZ, so the range gates keep every point.
+
+For each survey it prints, measured in the same run:
 
 * the bare decode: ``laspy`` (lazrs backend) reading the file chunk by chunk, points/s;
 * the survey step: ``measure_survey`` end to end (read, place, tile, clean, classify,
   grid, fill, write the GeoTIFFs and the classified LAZ), points/s and its steps;
-* their ratio (issue 8 target: at most 3, aim 2);
+* their ratio (issue 17 target: at most 10, aim 3);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
 * with ``--workers``: 0 is a serial run in this process (neighbour queries on every core,
@@ -37,6 +50,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import resource
 import subprocess
@@ -60,8 +74,13 @@ def _peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
-def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
-    """Write about ``n_points`` synthetic stockyard points to one LAZ, a yard at a time."""
+def write_survey(path: Path, n_points: int, density: float = DENSITY, profile: str = "uniform") -> int:
+    """Write about ``n_points`` synthetic stockyard points to one LAZ, a yard at a time.
+
+    ``profile`` "uniform": ``density`` points/m2 on piles and machines everywhere;
+    "terrestrial": the same number of points per yard as static scans place them
+    (:func:`terrestrial_yard`).
+    """
     import numpy as np
 
     from inventory.io.clouds import CloudWriter
@@ -76,7 +95,10 @@ def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
     written = 0
     try:
         for i in range(n_yards):
-            pts = first.points if i == 0 else make_yard(density=density, seed=i, pad_density=density / 6).points
+            if profile == "terrestrial":
+                pts = terrestrial_yard(i, per_yard, density)[0]
+            else:
+                pts = first.points if i == 0 else make_yard(density=density, seed=i, pad_density=density / 6).points
             pts = pts[: n_points - written]
             r, c = divmod(i, cols)
             pts["X"] += c * PITCH_M
@@ -88,6 +110,47 @@ def write_survey(path: Path, n_points: int, density: float = DENSITY) -> int:
         raise
     writer.close()
     return written
+
+
+#: Scanner set-ups of a yard for the terrestrial profile (metres from the yard's corner).
+STATIONS = ((22.0, 18.0), (88.0, 18.0), (22.0, 62.0), (88.0, 62.0), (55.0, 40.0))
+#: Range (m) at which the terrestrial profile has the uniform profile's density.
+REF_RANGE_M = 15.0
+
+
+def terrestrial_yard(seed: int, n_target: int, density: float = DENSITY):
+    """A yard of about ``n_target`` points as static scans see it: the uniform yard's
+    points, each repeated or thinned by ``(REF_RANGE_M / r)^2`` for its range r from the
+    nearest station (density falls with the square of range, as for a static scanner at
+    a fixed angular step), scaled to the wanted count. Copies are spread over the
+    original point's spacing; surface copies take the true surface height there.
+    ``StationRange`` holds the range from the station."""
+    import numpy as np
+
+    from inventory._demo.synthetic import LABELS, make_yard
+
+    yard = make_yard(density=density, seed=seed, pad_density=density / 6)
+    pts, labels = yard.points, yard.labels
+    rng = np.random.default_rng(1000 + seed)
+    x0, y0 = yard.origin
+    sx = np.array([x0 + a for a, _ in STATIONS])
+    sy = np.array([y0 + b for _, b in STATIONS])
+    d2 = (pts["X"][:, None] - sx[None, :]) ** 2 + (pts["Y"][:, None] - sy[None, :]) ** 2
+    r2 = np.maximum(d2.min(axis=1), 0.25)
+    w = REF_RANGE_M ** 2 / r2
+    copies = np.minimum(rng.poisson(w * n_target / w.sum()), 5000)
+    idx = np.repeat(np.arange(len(pts)), copies)
+    out = pts[idx]
+    half = 0.5 / math.sqrt(density)
+    jitter = copies[idx] > 1
+    out["X"][jitter] += rng.uniform(-half, half, int(jitter.sum()))
+    out["Y"][jitter] += rng.uniform(-half, half, int(jitter.sum()))
+    surf = np.isin(labels[idx], (LABELS["pad"], LABELS["pile"])) & jitter
+    out["Z"][surf] = yard.surface(out["X"][surf], out["Y"][surf])
+    near = np.argmin((out["X"][:, None] - sx[None, :]) ** 2 + (out["Y"][:, None] - sy[None, :]) ** 2, axis=1)
+    out["StationRange"] = np.sqrt((out["X"] - sx[near]) ** 2 + (out["Y"] - sy[near]) ** 2
+                                  + (out["Z"] - yard.surface(sx[near], sy[near]) - 1.6) ** 2)
+    return out, yard.origin
 
 
 def _decode(files: list[Path]) -> tuple[int, float, str]:
@@ -243,6 +306,9 @@ def main(argv: list[str] | None = None) -> int:
                          "processes (e.g. --workers 0 1 2)")
     ap.add_argument("--pipeline", help="a survey pipeline JSON instead of the site's (or the packaged "
                     "default); e.g. bench/surface-only.json measures the step without cleaning or classifier")
+    ap.add_argument("--profile", nargs="+", choices=("uniform", "terrestrial"), default=["uniform", "terrestrial"],
+                    help="synthetic surveys: uniform density, or static stations whose density falls with "
+                         "the square of range (both by default)")
     ap.add_argument("--keep", help="folder where the generated LAZ files are written and kept, and "
                     "reused by later runs (default: a temporary folder, removed)")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
@@ -262,18 +328,20 @@ def main(argv: list[str] | None = None) -> int:
         keep.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory() as tmp:
         for m in sizes:
-            n = int(m * 1_000_000)
-            path = (keep or Path(tmp)) / f"survey-{m:g}M.laz"
-            if keep is not None and path.is_file():
-                print(f"reusing {path} ({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
-            else:
-                t0 = time.perf_counter()
-                written = write_survey(path, n)
-                print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
-                      f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
-            _report(f"synthetic survey {m:g} M", ["--file", str(path)] + pipe, args.workers)
-            if keep is None:
-                path.unlink()
+            for profile in args.profile:
+                n = int(m * 1_000_000)
+                tag = "" if profile == "uniform" else f"-{profile}"
+                path = (keep or Path(tmp)) / f"survey-{m:g}M{tag}.laz"
+                if keep is not None and path.is_file():
+                    print(f"reusing {path} ({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
+                else:
+                    t0 = time.perf_counter()
+                    written = write_survey(path, n, profile=profile)
+                    print(f"generated {written:,} points in {time.perf_counter() - t0:.0f} s "
+                          f"({path.stat().st_size / 1e6:,.0f} MB LAZ)", flush=True)
+                _report(f"synthetic survey {m:g} M, {profile}", ["--file", str(path)] + pipe, args.workers)
+                if keep is None:
+                    path.unlink()
     return 0
 
 

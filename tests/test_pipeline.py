@@ -195,3 +195,38 @@ def test_engine_pdal_without_pdal_is_clear():
         pytest.skip("PDAL is installed here")
     with pytest.raises(PipelineError, match="PDAL's Python bindings"):
         Pipeline.from_json('[{"type": "filters.range", "limits": "Z[0:1]"}]').run(_pts(), engine="pdal")
+
+
+def test_voxel_thin_keeps_lowest_highest_and_caps_each_voxel():
+    rng = np.random.default_rng(8)
+    p = empty_points(3000)
+    # a dense 0.3 m x 0.3 m patch: 36 voxels of 5 cm a side over 0.2 m of height
+    p["X"], p["Y"] = 100.0 + rng.random(3000) * 0.3, 200.0 + rng.random(3000) * 0.3
+    p["Z"] = 10.0 + rng.random(3000) * 0.2
+    out = run([{"type": "inventory.voxel_thin", "cell": 0.05, "max_points": 3}], p)
+    key = lambda a: (np.floor(a["X"] / 0.05) * 1e6 + np.floor(a["Y"] / 0.05) * 1e3  # noqa: E731
+                     + np.floor(a["Z"] / 0.05))
+    k_in, k_out = key(p), key(out)
+    voxels, n_in = np.unique(k_in, return_counts=True)
+    _, n_out = np.unique(k_out, return_counts=True)
+    assert set(np.unique(k_out)) == set(voxels)             # no voxel emptied
+    np.testing.assert_array_equal(n_out, np.minimum(n_in, 3))
+    for v in voxels[:20]:
+        assert out["Z"][k_out == v].min() == p["Z"][k_in == v].min()
+        assert out["Z"][k_out == v].max() == p["Z"][k_in == v].max()
+    # which points are kept does not depend on their order
+    perm = rng.permutation(len(p))
+    again = run([{"type": "inventory.voxel_thin", "cell": 0.05, "max_points": 3}], p[perm])
+    assert sorted(again["Z"].tolist()) == sorted(out["Z"].tolist())
+    with pytest.raises(PipelineError, match="max_points must be at least 2"):
+        run([{"type": "inventory.voxel_thin", "max_points": 1}], p)
+
+
+def test_thinned_points_are_reported_by_the_run():
+    p = empty_points(50)
+    p["X"], p["Y"], p["Z"] = 1.01, 2.01, np.linspace(3.0, 3.04, 50)   # one voxel
+    stats: dict = {}
+    out, _ = Pipeline.from_json('[{"type": "inventory.voxel_thin"}]').run(p, "EPSG:25832", engine="builtin",
+                                                                          stats=stats)
+    assert len(out) == 4 and stats["thinned_xy"].shape == (46, 2)
+    assert out["Z"].min() == 3.0 and out["Z"].max() == 3.04

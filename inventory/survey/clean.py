@@ -14,6 +14,8 @@ so that a pipeline gives the same answer with PDAL or with our runner:
 * :func:`elm_low_points`: ``filters.elm``, the Extended Local Minimum of Chen et al. 2012
   (ISPRS J. 72:121) as PDAL applies it: within each cell, walk up from the lowest point and
   mark a point as noise while the gap to the next point above is at least ``threshold``.
+* :func:`voxel_thin` (ours, stage ``inventory.voxel_thin``): at most ``max_points`` points
+  per voxel, the lowest and the highest always among them.
 """
 
 from __future__ import annotations
@@ -22,12 +24,11 @@ import re
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial import cKDTree
 
 from inventory.errors import PipelineError
 
 __all__ = ["DimRange", "parse_limits", "limits_mask", "statistical_outliers", "elm_low_points",
-           "find_dimension", "spatial_order"]
+           "find_dimension", "spatial_order", "voxel_thin"]
 
 _RANGE_RE = re.compile(
     r"^\s*(?P<name>[A-Za-z_][A-Za-z0-9_]*)\s*(?P<neg>!)?\s*(?P<lo_br>[\[(])\s*(?P<lo>[^:\s]*)\s*:"
@@ -130,7 +131,7 @@ def limits_mask(points: np.ndarray, ranges: list[DimRange]) -> np.ndarray:
 def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray:
     """Permutation listing points block by block along a Z-order (Morton) curve of ``cell`` blocks.
 
-    Neighbour queries (SciPy ``cKDTree``) run faster on points that are near in memory when
+    Neighbour queries run faster on points that are near in memory when
     they are near in space (timings in CHANGELOG.md).
 
     Examples
@@ -168,18 +169,16 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
     multiplier : float
         Standard deviations above the mean distance that make an outlier (PDAL default 2.0).
     """
-    from inventory.parallel import job_threads
+    from inventory.survey.kernels import CellIndex, knn3_mean
 
     n = len(xyz)
     if n <= mean_k:
         return np.zeros(n, bool)
     order = spatial_order(xyz[:, 0], xyz[:, 1])
-    near = np.ascontiguousarray(xyz[order])
-    tree = cKDTree(near, balanced_tree=False, compact_nodes=False)
-    # k + 1 because the query point itself comes back first at distance 0 (as in PDAL).
-    d, _ = tree.query(near, k=mean_k + 1, workers=job_threads())
+    x, y, z = (np.ascontiguousarray(xyz[:, i], dtype=np.float64) for i in range(3))
+    # the point itself is left out (PDAL asks for k + 1 and drops the first, itself)
     mean_d = np.empty(n)
-    mean_d[order] = d[:, 1:].mean(axis=1)   # back in input order: the sums below as before
+    mean_d[order] = knn3_mean(CellIndex(x, y, k=2 * mean_k), x, y, z, order, mean_k)   # back in input order
     threshold = mean_d.mean() + multiplier * mean_d.std(ddof=1)
     return mean_d >= threshold
 
@@ -211,3 +210,50 @@ def elm_low_points(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 10
     noise_sorted = (cs - before) == 0
     out[order] = noise_sorted
     return out
+
+
+def voxel_thin(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 0.05, max_points: int = 4) -> np.ndarray:
+    """Mask of the points kept by voxel thinning: at most ``max_points`` per voxel.
+
+    Voxels are cubes of ``cell`` on a lattice anchored at the coordinate origin, so a
+    voxel is thinned the same way whichever tile or job sees it. In a voxel of m >
+    ``max_points`` points, those at the evenly spaced ranks ``round(j (m - 1) /
+    (max_points - 1))``, j = 0 .. max_points - 1, of the voxel's points ordered by height
+    (then x, y) are kept: the lowest and the highest always (the surface and the top of
+    what stands on it), and which points are kept does not depend on their order in the
+    input.
+
+    Examples
+    --------
+    >>> z = np.array([0.01, 0.02, 0.03, 0.04, 0.0, 0.3])
+    >>> voxel_thin(np.full(6, 0.01), np.full(6, 0.01), z, cell=0.05, max_points=2).tolist()
+    [False, False, False, True, True, True]
+    """
+    n = len(z)
+    if max_points < 2:
+        raise PipelineError(f"inventory.voxel_thin: max_points must be at least 2, got {max_points}")
+    if not cell > 0:
+        raise PipelineError(f"inventory.voxel_thin: cell must be positive, got {cell}")
+    keep = np.ones(n, bool)
+    if n <= max_points:
+        return keep
+    ix, iy, iz = (np.floor(v / cell).astype(np.int64) for v in (x, y, z))
+    ix -= ix.min()
+    iy -= iy.min()
+    iz -= iz.min()
+    key = (ix * (int(iy.max()) + 1) + iy) * (int(iz.max()) + 1) + iz
+    order = np.lexsort((y, x, z, key))
+    ks = key[order]
+    start = np.ones(n, bool)
+    start[1:] = ks[1:] != ks[:-1]
+    first = np.flatnonzero(start)
+    size = np.diff(np.append(first, n))
+    m = np.repeat(size, size)                       # points in each point's voxel
+    rank = np.arange(n) - np.repeat(first, size)    # its rank in the voxel by height
+    # kept ranks j (m - 1) / (max_points - 1), rounded: rank r is one when the nearest
+    # multiple of the step lands on it
+    k = max_points - 1
+    j = np.rint(rank * k / np.maximum(m - 1, 1))
+    hit = np.rint(j * (m - 1) / k) == rank
+    keep[order] = (m <= max_points) | hit
+    return keep

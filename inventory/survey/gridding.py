@@ -348,15 +348,14 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
     big = np.flatnonzero(nbox > _SMALL_TRIANGLE)
     rest = np.flatnonzero((found < 0).ravel() & target.ravel())
     if len(big) and len(rest):
+        # each target left is tested against the large triangles whose bounding boxes
+        # overlap its block of the lattice (compiled); on an edge shared by two of them
+        # it takes the later one
+        from inventory.survey.kernels import lattice_triangles
+
         rr, rc = np.divmod(rest, ncol)
-        step = max(1, 2_000_000 // len(big))
-        for i in range(0, len(rest), step):
-            pu = np.repeat(rc[i:i + step], len(big))
-            pv = -np.repeat(rr[i:i + step], len(big))
-            t = np.tile(big, len(rc[i:i + step]))
-            box = np.flatnonzero((pu >= umin[t]) & (pu <= umax[t]) & (pv >= vmin[t]) & (pv <= vmax[t]))
-            j = box[inside(t[box], pu[box], pv[box])]
-            found[-pv[j], pu[j]] = t[j]
+        lattice_triangles(big, u, v, area2, umin, umax, vmin, vmax, rc.astype(np.int64), -rr.astype(np.int64),
+                          found, 32)
     s = found[target]
     out = np.full(len(s), np.nan)
     ok = s >= 0

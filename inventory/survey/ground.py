@@ -21,8 +21,9 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from inventory.errors import PipelineError
-from inventory.parallel import job_threads
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, member_rows,
+                                      min_envelope, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -83,11 +84,9 @@ class _EnvelopeGrid:
         col = ((x - x0) // c).astype(np.int64)
         row = ((y - y0) // c).astype(np.int64)
         key = row * ncol + col
-        order = np.lexsort((z, key))
-        first = np.ones(len(order), bool)
-        first[1:] = key[order][1:] != key[order][:-1]
-        seeds = order[first]
-        skey = key[seeds]
+        low = cell_lowest(key, np.ascontiguousarray(z, dtype=np.float64), nrow * ncol)
+        skey = np.flatnonzero(low >= 0)
+        seeds = low[skey]
 
         g = np.full(nrow * ncol, np.inf)
         g[skey] = z[seeds]
@@ -108,14 +107,7 @@ class _EnvelopeGrid:
         if len(qx) and qcol.min() >= 1 and qcol.max() <= ncol - 2 and qrow.min() >= 1 and qrow.max() <= nrow - 2:
             # every 3 x 3 block inside the grid (always so for the seeds' own points: the
             # grid has a border of one cell)
-            base = qrow * ncol + qcol
-            for off in (-ncol - 1, -ncol, -ncol + 1, -1, 0, 1, ncol - 1, ncol, ncol + 1):
-                k = base + off
-                cand = np.hypot(qx - ax[k], qy - ay[k])
-                cand *= t
-                cand += gf[k]
-                np.minimum(e, cand, out=e)
-            return e
+            return envelope_at(qx, qy, self.x0, self.y0, c, ncol, gf, ax, ay, t)
         for dr in (-1, 0, 1):
             for dc in (-1, 0, 1):
                 r, cc = qrow + dr, qcol + dc
@@ -133,19 +125,14 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
     The grid envelope only sees the lowest point of each cell; on a wall, the points just
     below a point in plan are what show it is a wall.
     """
-    from scipy.spatial import cKDTree
-
     n = len(z)
     if n < 2:
         return np.full(n, np.inf)
     if knn is None:
-        xy = np.column_stack([x, y])
-        knn = cKDTree(xy).query(xy, k=min(k + 1, n), workers=job_threads())
+        knn = plan_knn(CellIndex(x, y, k=k + 1), x, y, min(k + 1, n))
     d, nb = knn
     t = math.tan(math.radians(params.max_slope_deg))
-    e = np.multiply(d, t)
-    e += np.take(z, nb)
-    return e.min(axis=1)
+    return min_envelope(d, nb, np.ascontiguousarray(z, dtype=np.float64), t)
 
 
 class _PlanNeighbours:
@@ -154,21 +141,18 @@ class _PlanNeighbours:
     One query of the ``K`` nearest points of the whole cloud answers "the k nearest
     members of a subset" (k <= K) for a subset member whenever its first k neighbours are
     all members, which is nearly every point (the subsets leave out a few noise points);
-    the others are asked again of the same tree for more neighbours, of which the members
-    are kept. Saves a tree and a query per subset.
+    the others are asked again, of the subset's own cell index. Saves a query per subset.
+    Queries run on a grid of cells (:class:`~inventory.survey.kernels.CellIndex`).
     """
 
     K = 17
 
     def __init__(self, x: np.ndarray, y: np.ndarray) -> None:
-        from scipy.spatial import cKDTree
-
-        self.xy = np.column_stack([x, y])
+        self.x, self.y = x, y
         n = len(x)
-        self.d = self.nb = self.tree = None
+        self.d = self.nb = None
         if n >= 2:
-            self.tree = cKDTree(self.xy)
-            self.d, self.nb = self.tree.query(self.xy, k=min(self.K, n), workers=job_threads())
+            self.d, self.nb = plan_knn(CellIndex(x, y, k=self.K), x, y, min(self.K, n))
 
     def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None
                ) -> tuple[np.ndarray, np.ndarray]:
@@ -176,41 +160,25 @@ class _PlanNeighbours:
 
         ``rows`` (a mask, members only) limits the answer to those members' rows.
         """
-        from scipy.spatial import cKDTree
-
         idx = np.flatnonzero(members)
         sel = idx if rows is None else np.flatnonzero(rows & members)
         k = min(k, len(idx))
+        pos = (np.cumsum(members) - 1).astype(np.int64)
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
-            sub = self.xy[idx]
-            d, nb = cKDTree(sub).query(self.xy[sel], k=max(k, 1), workers=job_threads())
-            return d.reshape(len(sel), -1), nb.reshape(len(sel), -1)
+            d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[sel], self.y[sel], max(k, 1))
+            return d, np.where(nb >= 0, np.take(pos, nb), -1)   # -1: fewer members than asked
         if len(idx) == len(members):
             if rows is None:
                 return self.d[:, :k], self.nb[:, :k]
             return np.take(self.d[:, :k], sel, axis=0), np.take(self.nb[:, :k], sel, axis=0)
-        # np.take: row gathers twice as fast as fancy indexing
-        pos = (np.cumsum(members) - 1).astype(np.int32 if len(members) < 2**31 else np.int64)
-        dd = np.take(self.d[:, :k], sel, axis=0)
-        nn = np.take(self.nb[:, :k], sel, axis=0)
-        mixed = np.flatnonzero(np.take(~members, nn).any(axis=1))
-        m = 2 * k
-        while len(mixed):
-            # more neighbours from the same tree; members first, in distance order: the
-            # j-th member of a row goes to column j
-            d, nb = self.tree.query(self.xy[sel[mixed]], k=min(m, len(members)), workers=job_threads())
-            d, nb = d.reshape(len(mixed), -1), nb.reshape(len(mixed), -1)
-            vm = members[np.minimum(nb, len(members) - 1)] & np.isfinite(d)
-            rank = np.cumsum(vm, axis=1)
-            full = rank[:, -1] >= k
-            r, c = np.nonzero(vm & (rank <= k) & full[:, None])
-            dd[mixed[r], rank[r, c] - 1] = d[r, c]
-            nn[mixed[r], rank[r, c] - 1] = nb[r, c]
-            mixed = mixed[~full]
-            if m >= len(members):
-                break
-            m *= 4
-        return dd, np.take(pos, nn)
+        # rows whose k nearest are all members are answered; the others asked again
+        dd, nn, mixed = member_rows(self.d, self.nb, sel, members, pos, k)
+        mixed = np.flatnonzero(mixed)
+        if len(mixed):
+            q = sel[mixed]
+            d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k)
+            dd[mixed], nn[mixed] = d, np.take(pos, nb)
+        return dd, nn
 
 
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
@@ -522,12 +490,10 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
     """Points with no other point within :data:`ISOLATION_M` in 3D.
 
     ``near`` may hold the nearest points in plan of a superset of ``use`` (``idx``, ``d``,
-    ``nb``, ``dz`` from :func:`_below_neighbours`): a point with a member of ``use`` among
+    ``nb``, ``z`` from :func:`_below_neighbours`): a point with a member of ``use`` among
     them closer than :data:`ISOLATION_M` in 3D is not isolated; only the others are
     queried in 3D.
     """
-    from scipy.spatial import cKDTree
-
     out = np.zeros(len(z), bool)
     idx = np.flatnonzero(use)
     if len(idx) < 2:
@@ -535,10 +501,10 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         return out
     xyz = np.column_stack([x[idx], y[idx], z[idx]])
     if near is None or len(near["idx"]) < 2:
-        d, _ = cKDTree(xyz).query(xyz, k=2, workers=job_threads())
-        out[idx[d[:, 1] > ISOLATION_M]] = True
+        d1 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], np.arange(len(idx)), 1)
+        out[idx[d1 > ISOLATION_M]] = True
         return out
-    sup, d, nb, dz = near["idx"], near["d"], near["nb"], near["dz"]
+    sup, d, nb, zs = near["idx"], near["d"], near["nb"], near["z"]
     member = use[sup]
     # column by column over the rows still without a close member (most find one in the first)
     rest = np.flatnonzero(member)
@@ -546,11 +512,12 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         if not len(rest):
             break
         nj = nb[rest, j]
-        ok = member[nj] & (d[rest, j] ** 2 + dz[rest, j] ** 2 <= ISOLATION_M ** 2)
+        dz = zs[nj] - zs[rest]
+        ok = member[nj] & (d[rest, j] ** 2 + dz ** 2 <= ISOLATION_M ** 2)
         rest = rest[~ok]
     if len(rest):
         short = (np.cumsum(member) - 1)[rest]    # positions in idx
-        d2 = cKDTree(xyz).query(xyz[short], k=2, workers=job_threads())[0][:, 1]
+        d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
         out[idx[short[d2 > ISOLATION_M]]] = True
     return out
 
@@ -571,44 +538,32 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
       the point's own level). Catches deeper points; ground under a boom or a gallery
       passes because the ground beside it is within 1 m.
     """
-    from scipy.spatial import cKDTree
-
     idx = np.flatnonzero(use)
     out = np.zeros(len(z), bool)
     k2 = 16
     if len(idx) <= k2:
         return out
     t = math.tan(math.radians(params.max_slope_deg))
-    xs, ys, zs = x[idx], y[idx], z[idx]
+    xs, ys, zs = x[idx], y[idx], np.ascontiguousarray(z[idx], dtype=np.float64)
 
     if plan is None:
         plan = _PlanNeighbours(x, y)
     d, nb = plan.within(use, k2 + 1)
     d, nb = d[:, 1:], nb[:, 1:]
-    dz = np.take(zs, nb)
-    dz -= zs[:, None]
-    reach = t * d
-    reach += params.tolerance
-    close = d <= 1.0
-    above = dz > reach
-    above &= close
-    near = dz <= reach + params.overhead_gap
-    near &= close
-    n_near = np.count_nonzero(near, axis=1)
-    plan = (n_near >= 4) & (np.count_nonzero(near & above, axis=1) >= 0.9 * n_near)
+    # the plan test and the first half of the isolation test, point by point
+    plan, deep = below_tests(d, nb, zs, np.arange(len(idx)), t, params.tolerance, params.overhead_gap, k2)
 
     # Deeper points: above-reach neighbours in plan (any height) and almost no points
     # within 1 m in 3D, i.e. no surface at the point's own level.
-    deep = 2 * np.count_nonzero(above, axis=1) >= k2
     if near3 is not None:   # handed on to _isolated
-        near3.update(idx=idx, d=d, nb=nb, dz=dz)
+        near3.update(idx=idx, d=d, nb=nb, z=zs)
     # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
     # point itself included, is farther than r": one 4-nearest query answers both radii,
     # asked only for the points that pass the plan tests (a few per cent).
     cand = np.flatnonzero(plan | deep)
     if len(cand):
-        xyz = np.column_stack([xs, ys, zs])
-        d4 = cKDTree(xyz).query(xyz[cand], k=4, workers=job_threads())[0][:, -1]
+        d4, _ = plan_knn3(CellIndex(xs, ys, k=8), xs, ys, zs, cand, 4)
+        d4 = d4[:, -1]
         deep[cand] &= d4 > 1.0
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
         # is part of something, not a stray return.

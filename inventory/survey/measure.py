@@ -104,21 +104,24 @@ class SurveyResult:
     points_in_gap: int = 0
     #: The survey's fit to its control points (control.csv), when it has them.
     registration: Registration | None = None
+    #: Points dropped by voxel thinning (stage ``inventory.voxel_thin``), not in points_kept.
+    points_thinned: int = 0
 
     @property
     def written(self) -> list[Path]:
         return [p for p in (self.surface_path, self.coverage_path, self.classified_path) if p is not None]
 
     def format_summary(self) -> str:
-        """One line: points read, kept, per class, cells and coverage, and the control-point
-        fit when the survey was registered by one."""
+        """One line: points read, thinned (when a pipeline thins), kept, per class, cells and
+        coverage, and the control-point fit when the survey was registered by one."""
         s = self.surface
         cells = s.grid.nrows * s.grid.ncols
         scanned = int(s.scanned.sum())
         order = (GROUND, UNCLASSIFIED, OVERHEAD_STRUCTURE, LOW_NOISE, HIGH_NOISE)
         parts = [f"{CLASS_NAMES.get(c, c)} {self.class_counts.get(c, 0):,}" for c in order]
         parts += [f"class {c} {n:,}" for c, n in sorted(self.class_counts.items()) if c not in order]
-        return (f"survey {self.date}: {self.points_read:,} points read, {self.points_kept:,} kept "
+        thinned = f"{self.points_thinned:,} thinned, " if self.points_thinned else ""
+        return (f"survey {self.date}: {self.points_read:,} points read, {thinned}{self.points_kept:,} kept "
                 f"({', '.join(parts)}); {cells:,} cells of {s.grid.cell:g} m, "
                 f"{scanned / cells:.1%} scanned, {self.fill.filled_cells:,} filled, "
                 f"{self.fill.gap_area_m2:,.1f} m2 of enclosed gaps left empty"
@@ -183,6 +186,16 @@ class _Read:
     colour: bool = False
 
 
+def _rate(done: int, total: int, seconds: float) -> str:
+    """Progress text: points done of the total, share, and points per second over ``seconds``.
+
+    >>> _rate(500, 2000, 2.0)
+    '500 of 2,000 points (25%), 250 points/s'
+    """
+    rate = f", {done / seconds:,.0f} points/s" if seconds > 0 else ""
+    return f"{done:,} of {total:,} points ({done / max(total, 1):.0%}){rate}"
+
+
 def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: int, say: Progress) -> _Read:
     """Read every file in chunks, place each chunk in the site CRS and spill it by tiles;
     every point keeps the dimensions it was read with (colour, point source id, scan angle,
@@ -193,6 +206,7 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
         with p.open() as cloud:
             total += cloud.count
     read = _Read()
+    t0 = time.perf_counter()
     for p in placements:
         with p.open(chunk_size) as cloud:
             read.colour = read.colour or cloud.has_colour
@@ -201,7 +215,7 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
                 chunk = p.place(chunk)
                 read.outside += spill.add(chunk)
                 read.points += n_chunk
-                say(f"reading {p.path.name}: {read.points:,} of {total:,} points ({read.points / max(total, 1):.0%})")
+                say(f"reading {p.path.name}: {_rate(read.points, total, time.perf_counter() - t0)}")
         unplaced = p.warning()
         if unplaced is not None:
             warnings.warn(unplaced, stacklevel=3)   # attributed to the caller of measure_survey
@@ -219,6 +233,7 @@ class _Classified:
     kept: int
     ground_box: list[float]
     cell_files: list[Path]
+    thinned: int = 0
 
 
 def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipeline, site_crs: CRS, engine: str,
@@ -235,9 +250,13 @@ def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipel
                              offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
                              point_format=7 if colour else 6)
     tiles = sorted(spill.counts)
+    total = sum(spill.counts.values())
+    done = 0
+    t0 = time.perf_counter()
     try:
-        for i, (result, cells) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, engine,
-                                                      statistic)):
+        for i, (result, cells, thinned) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, engine,
+                                                               statistic)):
+            out.thinned += thinned
             cls = result["Classification"]
             for c, n in zip(*np.unique(cls, return_counts=True)):
                 out.counts[int(c)] = out.counts.get(int(c), 0) + int(n)
@@ -251,7 +270,8 @@ def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipel
                 out.cell_files.append(cells.save(spill.folder / f"cells_{tiles[i]}.npz"))
             if writer is not None:
                 writer.write(result)
-            say(f"classifying: tile {i + 1} of {len(tiles)}")
+            done += spill.counts[tiles[i]]
+            say(f"classifying: tile {i + 1} of {len(tiles)}, {_rate(done, total, time.perf_counter() - t0)}")
     except BaseException:
         if writer is not None:
             writer.close(ok=False)
@@ -379,7 +399,8 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
     return SurveyResult(date, surface, classified_path, surface_path, coverage_path, classified.counts, read.points,
                         classified.kept, read.outside, fill, [p.path for p in placements], used_engine, timings,
                         read.outside_span, read.in_gap,
-                        next((p.registration for p in placements if isinstance(p, ControlPlacement)), None))
+                        registration=next((p.registration for p in placements if isinstance(p, ControlPlacement)), None),
+                        points_thinned=classified.thinned)
 
 
 def _survey_job(site: Site, date: str, out_dir: "str | Path | None",

@@ -42,8 +42,14 @@ A stage function ``_stage(stage, pts, ctx)`` returns the points after the stage;
 Every stage also takes PDAL's ``tag`` and ``user_data``; ``inputs`` may only name the
 stage just before (pipelines here are linear).
 
-Our own stage (not a PDAL stage)
+Our own stages (not PDAL stages)
 --------------------------------
+``inventory.voxel_thin``
+    cell 0.05, max_points 4: at most ``max_points`` points per voxel of ``cell`` metres,
+    the lowest and the highest always kept (:func:`~inventory.survey.clean.voxel_thin`);
+    the points dropped leave the cloud and are counted in the survey's summary line. Off
+    unless a pipeline names it (``pipelines/stockpile-thin.json``); see
+    docs/classifier.md for when to use it.
 ``inventory.slope_ground``
     The stockyard ground classifier of :mod:`inventory.survey.ground`; options
     max_slope_deg 50, tolerance 0.1, cell 0.25, window 12, overhead_gap 2.0,
@@ -74,6 +80,7 @@ from inventory.survey.clean import (
     limits_mask,
     parse_limits,
     statistical_outliers,
+    voxel_thin,
 )
 from inventory.io.crs import TransformerCache, parse_crs
 from inventory.survey.ground import SlopeGroundParams, csf_ground, slope_ground
@@ -99,6 +106,8 @@ def pdal_available() -> bool:
 class _Context:
     crs: CRS | None
     transformers: TransformerCache = field(default_factory=TransformerCache)
+    #: x and y of the points each ``inventory.voxel_thin`` stage dropped
+    thinned: list[np.ndarray] = field(default_factory=list)
 
 
 @dataclass(frozen=True)
@@ -386,6 +395,15 @@ def _slope_ground(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     return pts
 
 
+def _voxel_thin(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
+    o = stage.options
+    keep = voxel_thin(pts["X"], pts["Y"], pts["Z"], _as_float(o["cell"], "cell"), _as_int(o["max_points"], "max_points"))
+    if keep.all():
+        return pts
+    ctx.thinned.append(np.column_stack([pts["X"][~keep], pts["Y"][~keep]]))
+    return pts[keep]
+
+
 _READER_OPTS = {"filename": _REQUIRED, "override_srs": "", "default_srs": "", "spatialreference": ""}
 
 #: Every stage the built-in runner knows, with its options and their defaults.
@@ -414,6 +432,7 @@ STAGES: dict[str, _Spec] = {
                                                "max_top_area": 400.0,
                                                "ignore": "Classification[7:7],Classification[18:18]"},
                                     _slope_ground),
+    "inventory.voxel_thin": _Spec("filter", {"cell": 0.05, "max_points": 4}, _voxel_thin),
 }
 
 
@@ -502,7 +521,7 @@ class Pipeline:
         return all(s.kind == "filter" for s in self.stages)
 
     def run(self, points: np.ndarray | None = None, crs: "CRS | str | None" = None, *,
-            engine: str = "auto") -> tuple[np.ndarray, CRS | None]:
+            engine: str = "auto", stats: "dict | None" = None) -> tuple[np.ndarray, CRS | None]:
         """Run the stages on ``points`` (after any readers) and return points and CRS.
 
         Parameters
@@ -510,6 +529,9 @@ class Pipeline:
         points : structured array of :data:`~inventory.io.clouds.POINT_DTYPE`, optional
         crs : CRS of ``points``
         engine : "auto" | "pdal" | "builtin"
+        stats : dict, optional
+            Filled with ``thinned_xy``: an (n, 2) array of x and y of the points that
+            ``inventory.voxel_thin`` stages dropped.
         """
         if engine not in ("auto", "pdal", "builtin"):
             raise PipelineError(f"engine must be 'auto', 'pdal' or 'builtin', got {engine!r}")
@@ -535,6 +557,8 @@ class Pipeline:
             except PipelineError as err:
                 raise PipelineError(f"{self.source}: stage {s.index + 1} ({s.type}): {err}") from err
             i += 1
+        if stats is not None:
+            stats["thinned_xy"] = np.concatenate(ctx.thinned) if ctx.thinned else np.zeros((0, 2))
         return pts, ctx.crs
 
 

@@ -109,14 +109,17 @@ def tile_job(spill: TileSpill, tile: int, buffer_m: float) -> np.ndarray:
 
 
 def classify_tile(spill: TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
-                  engine: str, statistic: str) -> tuple[np.ndarray, TileCells | None]:
-    """A tile's own points, classified with its neighbours' points around it, and its cells
-    gridded (:func:`grid_tile`)."""
+                  engine: str, statistic: str) -> tuple[np.ndarray, TileCells | None, int]:
+    """A tile's own points, classified with its neighbours' points around it, its cells
+    gridded (:func:`grid_tile`), and how many of its own points voxel thinning dropped."""
     pts = tile_job(spill, tile, buffer_m)
-    out, _ = pipeline.run(pts, crs, engine=engine)
+    stats: dict = {}
+    out, _ = pipeline.run(pts, crs, engine=engine, stats=stats)
     own, _ = spill.tile_of(out["X"], out["Y"])
     out = out[own == tile]
-    return out, grid_tile(spill.grid, out, statistic)
+    txy = stats.get("thinned_xy")
+    thinned = int((spill.tile_of(txy[:, 0], txy[:, 1])[0] == tile).sum()) if txy is not None and len(txy) else 0
+    return out, grid_tile(spill.grid, out, statistic), thinned
 
 
 @dataclass
@@ -175,7 +178,7 @@ def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
 
 
 def run_tiles(ex: Executor, spill: TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: CRS,
-              engine: str, statistic: str) -> Iterator[tuple[np.ndarray, TileCells | None]]:
+              engine: str, statistic: str) -> Iterator[tuple[np.ndarray, TileCells | None, int]]:
     """Classified tiles and their cells (:func:`classify_tile`) in the order of ``tiles``,
     however ``ex`` (an :class:`~inventory.parallel.Executor`) runs them (so that every
     way writes the same classified cloud)."""
@@ -186,11 +189,12 @@ def run_tiles(ex: Executor, spill: TileSpill, tiles: list[int], buffer_m: float,
     # name and its cells only: no tile of points is pickled through the scheduler. A CRS
     # travels as WKT. The results are that small, so more tiles may wait finished than
     # there are workers: a large tile then holds up neither worker.
-    for path, cells in ex.map(classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine, statistic)
-                                                      for t in tiles), window=TILES_IN_FLIGHT * ex.workers):
+    for path, cells, thinned in ex.map(classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine,
+                                                                statistic) for t in tiles),
+                                       window=TILES_IN_FLIGHT * ex.workers):
         pts = _load(path)
         path.unlink()
-        yield pts, cells
+        yield pts, cells, thinned
 
 
 #: Tiles submitted to each Dask worker and not yet taken back (see :func:`run_tiles`).
@@ -198,13 +202,13 @@ TILES_IN_FLIGHT = 4
 
 
 def classify_tile_to_file(spill: TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
-                          engine: str, statistic: str) -> tuple[Path, TileCells | None]:
+                          engine: str, statistic: str) -> tuple[Path, TileCells | None, int]:
     """:func:`classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
-    in the spill folder, whose path is returned with the tile's cells."""
-    out, cells = classify_tile(spill, tile, buffer_m, pipeline, crs, engine, statistic)
+    in the spill folder, whose path is returned with the tile's cells and thinned count."""
+    out, cells, thinned = classify_tile(spill, tile, buffer_m, pipeline, crs, engine, statistic)
     path = spill.folder / f"classified_{tile}.bin"
     out.tofile(path)
-    return path, cells
+    return path, cells, thinned
 
 
 def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, date: str) -> Surface:

@@ -1,0 +1,93 @@
+"""The survey's compiled kernels (inventory.survey.kernels) against SciPy and brute force."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.spatial import Delaunay, cKDTree
+
+from inventory.survey.gridding import _linear_on_lattice
+from inventory.survey.kernels import CellIndex, below_tests, knn3_mean, min_envelope, plan_knn
+
+
+def _cloud(n=4000, seed=2):
+    rng = np.random.default_rng(seed)
+    # clustered: a dense patch, a sparse field, a vertical wall, and repeated coordinates
+    x = np.r_[rng.random(n // 2) * 3, rng.random(n // 4) * 60, np.full(n // 8, 20.0), np.round(rng.random(n // 8), 1)]
+    y = np.r_[rng.random(n // 2) * 3, rng.random(n // 4) * 40, rng.random(n // 8) * 5, np.round(rng.random(n // 8), 1)]
+    z = np.r_[rng.random(n // 2), rng.random(n // 4) * 2, rng.random(n // 8) * 4, np.zeros(n // 8)]
+    return x, y, z
+
+
+def test_plan_knn_matches_a_kd_tree():
+    # scipy.spatial.cKDTree gives the exact k nearest: the same distances, nearest first
+    x, y, z = _cloud()
+    d, nb = plan_knn(CellIndex(x, y, k=17), x, y, 17)
+    dd, _ = cKDTree(np.column_stack([x, y])).query(np.column_stack([x, y]), k=17)
+    np.testing.assert_array_equal(d, dd)
+    np.testing.assert_allclose(np.hypot(x[nb] - x[:, None], y[nb] - y[:, None]), d)
+    # among the members of a subset only, asked from points outside it too
+    members = np.random.default_rng(0).random(len(x)) < 0.3
+    d, nb = plan_knn(CellIndex(x, y, members, k=5), x, y, 5)
+    dd, _ = cKDTree(np.column_stack([x, y])[members]).query(np.column_stack([x, y]), k=5)
+    np.testing.assert_array_equal(d, dd)
+    assert members[nb].all()
+
+
+def test_fewer_members_than_asked_give_inf():
+    x, y = np.array([0.0, 1.0, 5.0]), np.array([0.0, 0.0, 0.0])
+    d, nb = plan_knn(CellIndex(x, y), x, y, 4)
+    assert d[0].tolist() == [0.0, 1.0, 5.0, np.inf] and nb[0].tolist() == [0, 1, 2, -1]
+
+
+def test_knn3_mean_matches_brute_force():
+    x, y, z = _cloud(1200, seed=4)
+    xyz = np.column_stack([x, y, z])
+    d = np.sqrt(((xyz[:, None, :] - xyz[None, :, :]) ** 2).sum(-1))
+    np.fill_diagonal(d, np.inf)   # the point itself is left out
+    d.sort(axis=1)
+    rows = np.arange(0, len(x), 3)
+    got = knn3_mean(CellIndex(x, y, k=8), x, y, z, rows, 8)
+    np.testing.assert_allclose(got, d[rows, :8].mean(axis=1), rtol=1e-12)
+
+
+def test_point_tests_match_their_array_form():
+    # the array form is how inventory.survey.ground computed them before the kernels
+    x, y, z = _cloud(3000, seed=6)
+    d, nb = plan_knn(CellIndex(x, y, k=17), x, y, 17)
+    d, nb = d[:, 1:], nb[:, 1:]
+    t, tol, gap = np.tan(np.radians(50.0)), 0.1, 2.0
+    dz = z[nb] - z[:, None]
+    reach = t * d + tol
+    close = d <= 1.0
+    above = (dz > reach) & close
+    near = (dz <= reach + gap) & close
+    n_near = near.sum(1)
+    plan_ref = (n_near >= 4) & ((near & above).sum(1) >= 0.9 * n_near)
+    deep_ref = 2 * above.sum(1) >= 16
+    plan, deep = below_tests(d, nb, z, np.arange(len(z)), t, tol, gap, 16)
+    np.testing.assert_array_equal(plan, plan_ref)
+    np.testing.assert_array_equal(deep, deep_ref)
+    assert plan.any() and deep.any()
+    np.testing.assert_array_equal(min_envelope(d, nb, z, t), (z[nb] + t * d).min(1))
+
+
+def test_lattice_fill_matches_scipy_griddata_form():
+    # scipy.interpolate.griddata(method="linear") is the barycentric value in the Delaunay
+    # triangle holding the target; long triangles (across a wide gap) take the kernel path
+    rng = np.random.default_rng(1)
+    near = rng.random((60, 80)) < 0.08
+    near[20:45, 10:70] = False
+    target = ~near
+    z = rng.random(near.shape)
+    got = _linear_on_lattice(near, target, z)
+    vr, vc = np.nonzero(near)
+    tri = Delaunay(np.column_stack([vc, -vr]).astype(float))
+    tr, tc = np.nonzero(target)
+    p = np.column_stack([tc, -tr]).astype(float)
+    s = tri.find_simplex(p)
+    inside = s >= 0
+    assert np.isnan(got[~inside]).all()
+    b = np.einsum("ijk,ik->ij", tri.transform[s[inside], :2], p[inside] - tri.transform[s[inside], 2])
+    bary = np.column_stack([b, 1 - b.sum(1)])
+    ref = (z[near][tri.simplices[s[inside]]] * bary).sum(1)
+    np.testing.assert_allclose(got[inside], ref, atol=1e-9)
