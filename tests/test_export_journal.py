@@ -98,3 +98,28 @@ def test_superseded_outputs_say_so(result, tmp_path):
     back = pd.read_csv(journal)
     assert back["status"].tolist() == ["superseded by close 6"] * 2 and back["close_id"].tolist() == [4, 4]
     assert mark_superseded(folder, 6, "2026-02-10T09:00:00+00:00") == [journal]  # nothing left to mark but the CSV
+
+
+def test_superseded_geopackage_says_so_in_every_layer_description(result, tmp_path):
+    import sqlite3
+
+    import pyogrio
+
+    from inventory.export.layers import LAYER_NAMES, write_layers
+
+    folder = tmp_path / "2026-01.superseded-close-4"
+    gpkg = write_layers(result, folder / "piles-2026-01.gpkg")
+    before = {name: pyogrio.read_dataframe(gpkg, layer=name) for name in LAYER_NAMES}
+    assert mark_superseded(folder, 6, "2026-02-10T09:00:00+00:00") == [gpkg]
+    con = sqlite3.connect(gpkg)
+    rows = dict(con.execute("SELECT table_name, description FROM gpkg_contents").fetchall())
+    con.close()
+    assert set(LAYER_NAMES) <= set(rows)
+    for name in LAYER_NAMES:
+        assert rows[name].startswith("SUPERSEDED by ledger close 6 (recorded 2026-02-10T09:00:00+00:00)"), name
+        assert "Ledger close 4" in rows[name], name     # the layer's own description follows
+        # the features are untouched (OGC GeoPackage: gpkg_contents is metadata only)
+        after = pyogrio.read_dataframe(gpkg, layer=name)
+        pd.testing.assert_frame_equal(after.drop(columns="geometry"), before[name].drop(columns="geometry"))
+    # marked once: a second pass changes nothing
+    assert mark_superseded(folder, 7, "2026-03-01T09:00:00+00:00") == []

@@ -14,6 +14,8 @@ from __future__ import annotations
 import csv
 import io
 import re
+import shutil
+import sqlite3
 import zipfile
 from datetime import date
 from pathlib import Path
@@ -159,7 +161,11 @@ def mark_superseded(folder: str | Path, by_close: int, by_utc: str) -> list[Path
 
     The workbook's and the report's status line ("Ledger close M of <period>, recorded ...")
     becomes :func:`superseded_text`; the journal CSV's status column says ``superseded by
-    close N``. Files are rewritten atomically; a file that cannot be read is left as it is.
+    close N``; each GeoPackage layer's description (``gpkg_contents``) starts with
+    "SUPERSEDED by ledger close N". Files are rewritten atomically; a file that cannot be
+    read is left as it is. (The GeoTIFFs keep their tags: rewriting a Cloud Optimized
+    GeoTIFF's tags in place would break its layout; the folder's SUPERSEDED.txt and run.json
+    say it for them.)
 
     Returns
     -------
@@ -190,4 +196,28 @@ def mark_superseded(folder: str | Path, by_close: int, by_utc: str) -> list[Path
                 done.append(path)
         except (OSError, UnicodeDecodeError, csv.Error):
             continue
+    for path in sorted(folder.glob("*.gpkg")):
+        try:
+            if _mark_gpkg(path, by_close, by_utc):
+                done.append(path)
+        except (OSError, sqlite3.Error):
+            continue
     return done
+
+
+def _mark_gpkg(path: Path, by_close: int, by_utc: str) -> bool:
+    """Prefix every layer description in ``gpkg_contents`` with the superseded mark, on a copy
+    renamed over the file."""
+    mark = f"SUPERSEDED by ledger close {by_close} (recorded {by_utc}); do not use these figures. "
+    with atomic_path(path) as tmp:
+        shutil.copyfile(path, tmp)
+        con = sqlite3.connect(tmp)
+        try:
+            with con:
+                cur = con.execute(
+                    "UPDATE gpkg_contents SET description = ? || COALESCE(description, '') "
+                    "WHERE COALESCE(description, '') NOT LIKE 'SUPERSEDED%'", (mark,))
+                changed = cur.rowcount > 0
+        finally:
+            con.close()
+    return changed
