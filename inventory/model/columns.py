@@ -64,6 +64,9 @@ FIELDS: dict[str, tuple[str, str]] = {
     "variance_pct": ("Variance share", "Variance as a percentage of the book stock."),
     "variance_sigma_t": ("Variance uncertainty",
                          "Standard uncertainty (1 sigma) of the variance, survey and book combined."),
+    "variance_z": ("Variance in sigmas",
+                   "The variance divided by its standard uncertainty (z): how many sigmas it lies from "
+                   "zero; beyond k (site.toml [reconcile] significance_k) it is significant."),
     "significant": ("Significant",
                     "1 when the variance exceeds k sigma, 0 when not, empty when undecided."),
     "tolerance_pct": ("Tolerance", "The material's variance tolerance."),
