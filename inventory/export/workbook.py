@@ -4,8 +4,11 @@ Sheets of the close workbook:
 
 Summary      site, period, ledger close id and time; the stock bridge (book at survey +
              adjustments posted = adjusted book; + net movements after the survey = closing
-             stock) as formulas over the Piles sheet; the sign convention, the legend of row
-             colours and the cautions.
+             stock) as formulas over the Piles sheet; the variance; the 1 sigma of the survey,
+             book and variance totals (shared density, floor and scale errors counted once)
+             and the variance in sigmas, as formulas over the ``Site totals`` sheet, beside the
+             piles' variance sigmas in quadrature and :data:`TOTAL_SIGMA_IN_WORDS`; the sign
+             convention, the legend of row colours and the cautions.
 Piles        one row per pile with every figure of the close (the ledger's columns), a totals
              row of SUM formulas.
 Variance     book and survey side by side with their sigmas; the variance sigma with its parts
@@ -16,7 +19,9 @@ Journal      the posting journal: period, posting date, close id, pile, material
              unit, value, account and location codes, reason, status post or hold.
 Scales       scale diagnostics.
 Duplicates   exact and suspected duplicate records.
-(further)    one sheet per table of ``CloseResult.tables`` (materials, measured change, ...).
+(further)    one sheet per table of ``CloseResult.tables`` (materials, measured change, ...);
+             ``Site totals`` and ``Materials`` with a ``variance_z`` formula column (variance /
+             its 1 sigma) and the note :data:`TOTAL_SIGMA_IN_WORDS`.
 Columns      every column of every table: sheet, name, unit, meaning.
 Run          inputs with SHA-256, parameters, versions, timings.
 
