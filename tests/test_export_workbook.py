@@ -605,7 +605,7 @@ def test_summary_shows_the_site_total_sigmas(result, tmp_path):
     assert quad == pytest.approx(float(np.sqrt((p["survey_sigma_t"] ** 2).sum() + (p["book_sigma_t"] ** 2).sum())))
     q_label = "Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)"
     assert summary[q_label] == pytest.approx(quad, rel=1e-14)
-    assert wf.cell(rows[q_label], 2).value.startswith("=SQRT(SUMSQ(Piles!$")
+    assert wf.cell(rows[q_label], 2).value.startswith("=SQRT(SUMPRODUCT(ISNUMBER(Piles!$")
     coal = p[p["material"] == "coal"]
     # the excess is the two coal piles' density cross term and the instruments' cross terms
     cross = 2 * coal["_d_survey"].prod()
@@ -656,6 +656,26 @@ def test_materials_sheet_has_sigmas_and_z(result, tmp_path):
     listed = {(r[0].value, r[1].value): (r[2].value, r[3].value) for r in wb["Columns"].iter_rows(min_row=2)}
     assert listed[("Materials", "variance_z")][0].startswith("sigma")
     assert listed[("Site totals", "variance_z")][1].startswith("Variance in sigmas")
+
+
+def test_a_pile_not_surveyed_is_in_neither_sigma(make_close_result, tmp_path):
+    """The Site totals cover the surveyed piles; so does the quadrature line beside them."""
+    res = make_close_result("2026-01")
+    p = res.piles
+    p.loc[2, ["survey_t", "survey_sigma_t", "variance_t", "variance_pct", "volume_m3"]] = np.nan
+    p.loc[2, "variance_sigma_t"] = p.loc[2, "book_sigma_t"]  # as reconcile leaves it
+    res, parts, scale_load = _with_totals(res)
+    path = write_workbook(res, tmp_path / "variance-2026-01.xlsx")
+    summary = pd.read_excel(path, sheet_name="Summary", header=None, index_col=0)[1]
+    tot = res.tables["Site totals"].iloc[0]
+    assert tot["piles"] == 2
+    assert summary["Variance, 1 sigma (shared density, floor and scale errors counted once)"] == tot["variance_sigma_t"]
+    quad = float(np.sqrt((p.loc[:1, "variance_sigma_t"] ** 2).sum()))
+    assert summary["Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)"] == \
+        pytest.approx(quad, rel=1e-14)
+    two = scale_load[scale_load["pile_id"].isin(p.loc[:1, "pile_id"])]
+    assert tot["variance_sigma_t"] == pytest.approx(_by_hand(parts, two, piles=list(p.loc[:1, "pile_id"]))[2],
+                                                    rel=1e-12)
 
 
 def test_summary_without_site_totals_says_so(book):

@@ -481,11 +481,14 @@ def _piles_sheet(book: _Book, result: CloseResult) -> dict[str, Any]:
         L = _col(cols.index(flag) + 1)
         refs[flag] = (f"Piles!${L}${first}:${L}${max(last, first)}",
                       int(sum(1 for x in piles[flag] if _cell_value(x) is True)))
-    # the piles' variance sigmas in quadrature (what SQRT(SUMSQ(...)) gives: blanks left out)
-    L = _col(cols.index("variance_sigma_t") + 1)
-    sigmas = [x for x in (_num(v) for v in piles["variance_sigma_t"]) if x is not None]
-    refs["variance_sigma_quadrature"] = (f"Piles!${L}${first}:${L}${max(last, first)}",
-                                         math.sqrt(sum(x * x for x in sigmas)))
+    # the surveyed piles' variance sigmas in quadrature (as the Site totals: surveyed piles
+    # only; a blank sigma counts 0, as in the spreadsheet)
+    L, S = _col(cols.index("variance_sigma_t") + 1), _col(cols.index("survey_t") + 1)
+    hi = max(last, first)
+    sigmas = [_num(x) or 0.0 for x, sv in zip(piles["variance_sigma_t"], piles["survey_t"]) if _num(sv) is not None]
+    refs["variance_sigma_quadrature"] = (
+        f"=SQRT(SUMPRODUCT(ISNUMBER(Piles!${S}${first}:${S}${hi})*Piles!${L}${first}:${L}${hi}^2))",
+        math.sqrt(sum(x * x for x in sigmas)))
     return refs
 
 
@@ -895,9 +898,9 @@ def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], jou
              ref("variance_sigma_t"), t0["variance_sigma_t"], _FMT_T)
         line("var_z", "Variance in sigmas (z = variance / its 1 sigma)", ref("variance_z"),
              _z_value(t0["variance_t"], t0["variance_sigma_t"]), _FMT_Z)
-        q_ref, q_v = refs["variance_sigma_quadrature"]
+        q_formula, q_v = refs["variance_sigma_quadrature"]
         line("var_quad", "Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)",
-             f"=SQRT(SUMSQ({q_ref}))", q_v, _FMT_T)
+             q_formula, q_v, _FMT_T)
         sh.note(r, TOTAL_SIGMA_IN_WORDS, 4, col=1)
     else:
         sh.put(r, 1, "1 sigma of the totals")

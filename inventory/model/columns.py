@@ -160,7 +160,7 @@ FIELDS: dict[str, tuple[str, str]] = {
                 "adjustment policy or an unexplained variance).")),
     # scale diagnostics
     "piles": ("Piles", ("The piles concerned: in Scales the piles the scale fed; in Materials "
-                        "and the history totals, and in Totals, how many piles were counted.")),
+                        "and other totals how many piles were counted.")),
     "bias_pct": ("Scale bias", "Estimated reading error of the scale this month (+ reads high)."),
     "bias_sigma_pct": ("Scale bias uncertainty", "Standard uncertainty (1 sigma) of the bias."),
     "history_bias_pct": ("Scale bias over months", "Bias estimated over this and earlier months pooled."),

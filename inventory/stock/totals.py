@@ -397,7 +397,7 @@ def survey_totals(table: pd.DataFrame) -> pd.DataFrame:
     piles' survey sigmas in quadrature, as if nothing were shared. Piles without a volume
     are left out; a pile without tonnes (no density) counts in the volumes only.
     """
-    t = table[_col(table, "volume_m3").notna()]
+    t = table[_col(table, "volume_m3").notna()].reset_index(drop=True)
     vol, v_sig = _col(t, "volume_m3"), _col(t, "volume_sigma_m3").fillna(0.0).abs()
     rho, rho_sd = _col(t, "density_t_m3"), _col(t, "density_sd_t_m3").fillna(0.0).abs()
     s_t, s_sig = _col(t, "survey_t"), _col(t, "survey_sigma_t").fillna(0.0).abs()
