@@ -498,3 +498,213 @@ def test_history_workbook_without_closes(tmp_path):
     assert wb["History"].max_row == 1
     assert wb["By month"]["A1"].value == "No closed periods match."
     assert not (tmp_path / "ledger.sqlite").exists()  # reading never creates a ledger
+
+
+# ----------------------------------------------------------------------------- totals' sigmas
+
+#: Weighing instruments of the fixture close, as a share of each pile's book sigma: the
+#: weighbridge WB1 weighed for all three piles, the belt scale BS-IN for the two coal piles.
+_SCALE_SHARE = {"WB1": 0.3, "BS-IN": 0.5}
+
+
+def _with_totals(result):
+    """The fixture close with its ``Site totals`` and ``Materials`` tables, made by the close's
+    own functions from a split of each pile's sigma: the fixture's survey sigma is
+    hypot(volume sigma x density, volume x 1 % of the density), so its density part is
+    ``volume x 0.01 x density``; the level bases are exact (base part 0); each pile's book
+    sigma is its weighings (``_SCALE_SHARE``) and an opening part, in quadrature. Returns the
+    close, the split per pile and the scale load."""
+    import dataclasses
+    from types import SimpleNamespace
+
+    from inventory.stock.reconcile import _per_material
+    from inventory.stock.totals import close_site_totals
+
+    p = result.piles.copy()
+    p["_d_survey"] = p["volume_m3"] * 0.01 * p["density_t_m3"]
+    p["_g_survey"] = 0.0
+    load = []
+    for pid, mat, b in zip(p["pile_id"], p["material"], p["book_sigma_t"]):
+        load.append({"pile_id": pid, "scale_id": "WB1", "sigma_t": _SCALE_SHARE["WB1"] * b})
+        if mat == "coal":
+            load.append({"pile_id": pid, "scale_id": "BS-IN", "sigma_t": _SCALE_SHARE["BS-IN"] * b})
+    scale_load = pd.DataFrame(load)
+    own = scale_load.groupby("pile_id")["sigma_t"].apply(lambda s: float((s ** 2).sum()))
+    p["opening_sigma_t"] = np.sqrt(p["book_sigma_t"] ** 2 - p["pile_id"].map(own))
+    p["opening_density_sigma_t"] = 0.0
+    p["opening_base_sigma_t"] = 0.0
+    site = close_site_totals(p, scale_load)
+    materials = _per_material(p, SimpleNamespace(scale_load=scale_load), {}, 2.0, 1.0)
+    tables = {**result.tables, "Materials": materials, "Site totals": site}
+    return dataclasses.replace(result, tables=tables), p, scale_load
+
+
+def _by_hand(p, scale_load, piles=None):
+    """Sigmas of the survey, book and variance totals from the piles' covariance matrices,
+    built term by term (JCGM 100:2008, GUM 5.2: var(sum) = 1' C 1; correlation 1 within a
+    shared error, 0 otherwise): no code of the close is used."""
+    p = p if piles is None else p[p["pile_id"].isin(piles)]
+    ids, mats = list(p["pile_id"]), list(p["material"])
+    s, d = p["survey_sigma_t"].to_numpy(), p["_d_survey"].to_numpy()
+    o = p["opening_sigma_t"].to_numpy()
+    n = len(ids)
+    cs = np.zeros((n, n))
+    cb = np.zeros((n, n))
+    for i in range(n):
+        cs[i, i] += s[i] ** 2 - d[i] ** 2          # the pile's own survey error
+        cb[i, i] += o[i] ** 2                      # its opening
+        for j in range(n):
+            if mats[i] == mats[j]:                 # one table density per material
+                cs[i, j] += d[i] * d[j]
+            for sid in _SCALE_SHARE:               # one error per instrument
+                wi = scale_load[(scale_load.pile_id == ids[i]) & (scale_load.scale_id == sid)]["sigma_t"].sum()
+                wj = scale_load[(scale_load.pile_id == ids[j]) & (scale_load.scale_id == sid)]["sigma_t"].sum()
+                cb[i, j] += wi * wj
+    one = np.ones(n)
+    # variance = survey - book; survey and book errors independent here (openings not surveys)
+    return (float(np.sqrt(one @ cs @ one)), float(np.sqrt(one @ cb @ one)),
+            float(np.sqrt(one @ (cs + cb) @ one)))
+
+
+def test_summary_shows_the_site_total_sigmas(result, tmp_path):
+    """The Summary's sigma lines are the Site totals table's figures to the last bit, read by
+    pandas and by openpyxl (stored values), with units in their formats; they equal the
+    covariance worked by hand and differ from the piles' sigmas in quadrature (two piles
+    share the coal density and the belt scale, all three the weighbridge)."""
+    from openpyxl import load_workbook
+
+    res, p, scale_load = _with_totals(result)
+    path = write_workbook(res, tmp_path / "variance-2026-01.xlsx")
+    tot = res.tables["Site totals"].iloc[0]
+    labels = {
+        "Survey stock, 1 sigma": tot["survey_sigma_t"],
+        "Book stock, 1 sigma": tot["book_sigma_t"],
+        "Variance, 1 sigma (shared density, floor and scale errors counted once)": tot["variance_sigma_t"],
+        "Variance in sigmas (z = variance / its 1 sigma)": tot["variance_t"] / tot["variance_sigma_t"],
+    }
+    summary = pd.read_excel(path, sheet_name="Summary", header=None, index_col=0)[1]
+    for label, want in labels.items():
+        assert summary[label] == want, label           # exactly: the same double
+    ws = load_workbook(path, data_only=True)["Summary"]
+    wf = load_workbook(path)["Summary"]
+    rows = {c.value: c.row for c in ws["A"] if c.value}
+    for label, want in labels.items():
+        assert ws.cell(rows[label], 2).value == want, label
+    # live formulas over the Site totals sheet, with the unit in the number format
+    assert wf.cell(rows["Survey stock, 1 sigma"], 2).value.startswith("='Site totals'!$")
+    for label in list(labels)[:3]:
+        assert wf.cell(rows[label], 2).number_format == '#,##0.00 "t"', label
+    assert '"sigma"' in wf.cell(rows["Variance in sigmas (z = variance / its 1 sigma)"], 2).number_format
+    # the covariance by hand
+    s_sv, s_bk, s_var = _by_hand(p, scale_load)
+    assert tot["survey_sigma_t"] == pytest.approx(s_sv, rel=1e-12)
+    assert tot["book_sigma_t"] == pytest.approx(s_bk, rel=1e-12)
+    assert tot["variance_sigma_t"] == pytest.approx(s_var, rel=1e-12)
+    # not the piles' variance sigmas in quadrature: the shared parts add before squaring
+    quad = float(np.sqrt((p["variance_sigma_t"] ** 2).sum()))
+    assert quad == pytest.approx(float(np.sqrt((p["survey_sigma_t"] ** 2).sum() + (p["book_sigma_t"] ** 2).sum())))
+    q_label = "Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)"
+    assert summary[q_label] == pytest.approx(quad, rel=1e-14)
+    assert wf.cell(rows[q_label], 2).value.startswith("=SQRT(SUMPRODUCT(ISNUMBER(Piles!$")
+    coal = p[p["material"] == "coal"]
+    # the excess is the two coal piles' density cross term and the instruments' cross terms
+    cross = 2 * coal["_d_survey"].prod()
+    sl = scale_load.pivot(index="pile_id", columns="scale_id", values="sigma_t").fillna(0.0)
+    for sid in sl.columns:
+        w = sl[sid].to_numpy()
+        cross += w.sum() ** 2 - (w ** 2).sum()
+    assert tot["variance_sigma_t"] ** 2 - quad ** 2 == pytest.approx(cross, rel=1e-9)
+    assert tot["variance_sigma_t"] > quad * 1.05
+    # the sentence saying how and why
+    text = " ".join(str(c.value) for c in wf["A"] if c.value)
+    assert "not the piles' sigmas added in quadrature" in text and "counted once" in text
+
+
+def test_materials_sheet_has_sigmas_and_z(result, tmp_path):
+    """Per material: survey, book and variance sigma equal the Materials table exactly, the
+    variance in sigmas is a formula with its value, the coal sigma equals the covariance by
+    hand for its two piles, and the sheet says why it is not the quadrature sum."""
+    from openpyxl import load_workbook
+
+    res, p, scale_load = _with_totals(result)
+    path = write_workbook(res, tmp_path / "variance-2026-01.xlsx")
+    mats = res.tables["Materials"].set_index("material")
+    sheet = pd.read_excel(path, sheet_name="Materials")
+    sheet = sheet[sheet["material"].isin(mats.index)].set_index("material")
+    cols = list(pd.read_excel(path, sheet_name="Materials").columns)
+    assert cols.index("variance_z") == cols.index("variance_sigma_t") + 1
+    for m in mats.index:
+        for c in ("survey_t", "survey_sigma_t", "book_sigma_t", "variance_t", "variance_sigma_t"):
+            assert sheet.at[m, c] == mats.at[m, c], (m, c)
+        assert sheet.at[m, "variance_z"] == mats.at[m, "variance_t"] / mats.at[m, "variance_sigma_t"]
+    # by hand: the coal piles with the belt scale that fed only them and the weighbridge
+    s_sv, s_bk, s_var = _by_hand(p, scale_load, piles=["P-COAL-1", "P-COAL-2"])
+    assert mats.at["coal", "survey_sigma_t"] == pytest.approx(s_sv, rel=1e-12)
+    assert mats.at["coal", "variance_sigma_t"] == pytest.approx(s_var, rel=1e-12)
+    coal = p[p["material"] == "coal"]
+    assert mats.at["coal", "variance_sigma_t"] > float(np.sqrt((coal["variance_sigma_t"] ** 2).sum())) * 1.05
+    wb, values = load_workbook(path), load_workbook(path, data_only=True)
+    ws = wb["Materials"]
+    j = cols.index("variance_z") + 1
+    assert str(ws.cell(2, j).value).startswith("=IF(AND(ISNUMBER(")
+    assert values["Materials"].cell(2, j).value == sheet["variance_z"].iloc[0]
+    assert '"sigma"' in ws.cell(2, j).number_format
+    assert '"t"' in ws.cell(2, cols.index("variance_sigma_t") + 1).number_format
+    text = " ".join(str(c.value) for row in ws.iter_rows() for c in row if isinstance(c.value, str))
+    assert "not the piles' sigmas added in quadrature" in text
+    # the Columns sheet gives z its unit and meaning
+    listed = {(r[0].value, r[1].value): (r[2].value, r[3].value) for r in wb["Columns"].iter_rows(min_row=2)}
+    assert listed[("Materials", "variance_z")][0].startswith("sigma")
+    assert listed[("Site totals", "variance_z")][1].startswith("Variance in sigmas")
+
+
+def test_a_pile_not_surveyed_is_in_neither_sigma(make_close_result, tmp_path):
+    """The Site totals cover the surveyed piles; so does the quadrature line beside them."""
+    res = make_close_result("2026-01")
+    p = res.piles
+    p.loc[2, ["survey_t", "survey_sigma_t", "variance_t", "variance_pct", "volume_m3"]] = np.nan
+    p.loc[2, "variance_sigma_t"] = p.loc[2, "book_sigma_t"]  # as reconcile leaves it
+    res, parts, scale_load = _with_totals(res)
+    path = write_workbook(res, tmp_path / "variance-2026-01.xlsx")
+    summary = pd.read_excel(path, sheet_name="Summary", header=None, index_col=0)[1]
+    tot = res.tables["Site totals"].iloc[0]
+    assert tot["piles"] == 2
+    assert summary["Variance, 1 sigma (shared density, floor and scale errors counted once)"] == tot["variance_sigma_t"]
+    quad = float(np.sqrt((p.loc[:1, "variance_sigma_t"] ** 2).sum()))
+    assert summary["Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)"] == \
+        pytest.approx(quad, rel=1e-14)
+    two = scale_load[scale_load["pile_id"].isin(p.loc[:1, "pile_id"])]
+    assert tot["variance_sigma_t"] == pytest.approx(_by_hand(parts, two, piles=list(p.loc[:1, "pile_id"]))[2],
+                                                    rel=1e-12)
+
+
+def test_summary_without_site_totals_says_so(book):
+    wb, _ = book
+    text = [str(c.value) for row in wb["Summary"].iter_rows() for c in row if c.value]
+    assert "not computed for this close (no Site totals table)" in text
+
+
+@pytest.mark.tools
+def test_libreoffice_recalculates_the_sigma_lines(result, tmp_path):
+    if not _soffice():
+        pytest.skip("LibreOffice (soffice) not installed; `make tools` installs "
+                    "libreoffice-calc-nogui when root with apt-get")
+    res, _, _ = _with_totals(result)
+    xlsx = write_workbook(res, tmp_path / "variance-2026-01.xlsx")
+    sheets = _to_csv(xlsx, tmp_path)
+    summary = {r[0]: r[1] for r in sheets["Summary"] if len(r) >= 2 and r[0]}
+    tot = res.tables["Site totals"].iloc[0]
+    # Calc writes 15 significant digits
+    assert _lo_number(summary["Variance, 1 sigma (shared density, floor and scale errors counted once)"]) \
+        == pytest.approx(tot["variance_sigma_t"], rel=1e-13)
+    assert _lo_number(summary["Variance in sigmas (z = variance / its 1 sigma)"]) == pytest.approx(
+        tot["variance_t"] / tot["variance_sigma_t"], rel=1e-13)
+    quad = float(np.sqrt((res.piles["variance_sigma_t"] ** 2).sum()))
+    assert _lo_number(summary["Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)"]) \
+        == pytest.approx(quad, rel=1e-13)
+    with open(tmp_path / f"{xlsx.stem}-Materials.csv", newline="", encoding="utf-8") as fh:
+        mats = list(csv.reader(fh))
+    z = mats[0].index("variance_z")
+    t = res.tables["Materials"]
+    for i, r in enumerate(t.itertuples(index=False), start=1):
+        assert _lo_number(mats[i][z]) == pytest.approx(r.variance_t / r.variance_sigma_t, rel=1e-13)

@@ -218,3 +218,39 @@ def test_report_headline_shows_the_site_total_sigmas(close_result):
     want = np.sqrt(3056 + 2500 + 144 + 900 + 75)
     assert "Variance, 1 sigma (t; shared density and floor errors counted once)" in page
     assert f"{want:,.2f}" in page
+
+
+def test_survey_totals_share_density_and_floor_errors():
+    """The volumes command's totals, worked by hand. Survey sigma of a pile:
+    sqrt((density x volume sigma)^2 + (volume x density sd)^2), as the volume step forms it.
+    A (coal, floor): 1000 m3 +/- 10 (base 6), 1.0 +/- 0.02 t/m3: sigma^2 = 100 + 400, own part
+    500 - 20^2 - 6^2 = 64. B (coal, floor): 500 m3 +/- 5 (base 3): 25 + 100, own 125 - 100 - 9 = 16.
+    C (ore, level): 200 m3 +/- 4, 2.0 +/- 0.05 t/m3: 64 + 100, own 64 (a level is the pile's own)."""
+    from inventory.stock.totals import survey_totals
+
+    table = pd.DataFrame({
+        "pile_id": ["A", "B", "C"], "material": ["coal", "coal", "ore"],
+        "base_method": ["floor", "floor", "level:100.0"],
+        "volume_m3": [1000.0, 500.0, 200.0], "volume_sigma_m3": [10.0, 5.0, 4.0],
+        "sigma_base_m3": [6.0, 3.0, 1.0], "density_t_m3": [1.0, 1.0, 2.0],
+        "density_sd_t_m3": [0.02, 0.02, 0.05],
+    })
+    table["survey_t"] = table["volume_m3"] * table["density_t_m3"]
+    table["survey_sigma_t"] = np.hypot(table["density_t_m3"] * table["volume_sigma_m3"],
+                                       table["volume_m3"] * table["density_sd_t_m3"])
+    got = survey_totals(table).set_index("material")
+    assert list(got.index) == ["coal", "ore", ""]
+    # coal: own 64 + 16, density (20 + 10)^2, floor (6 + 3)^2
+    assert got.at["coal", "survey_sigma_t"] == pytest.approx(np.sqrt(64 + 16 + 900 + 81), rel=1e-12)
+    assert got.at["coal", "volume_sigma_m3"] == pytest.approx(np.sqrt(64 + 16 + 81), rel=1e-12)
+    assert got.at["ore", "survey_sigma_t"] == pytest.approx(np.sqrt(164), rel=1e-12)
+    # site: 64 + 16 + 64 + coal 900 + ore 100 + floor 81 = 1225
+    assert got.at["", "survey_sigma_t"] == pytest.approx(35.0, rel=1e-12)
+    assert got.at["", "volume_sigma_m3"] == pytest.approx(np.sqrt(64 + 16 + 16 + 81), rel=1e-12)
+    assert got.at["", "survey_sigma_quadrature_t"] == pytest.approx(np.sqrt(500 + 125 + 164), rel=1e-12)
+    assert got.at["", "survey_t"] == 1900.0 and got.at["", "volume_m3"] == 1700.0 and got.at["", "piles"] == 3
+    # a pile with no density counts in the volumes only
+    table.loc[2, ["survey_t", "survey_sigma_t"]] = np.nan
+    got = survey_totals(table).set_index("material")
+    assert got.at["", "survey_t"] == 1500.0 and np.isnan(got.at["ore", "survey_t"])
+    assert got.at["", "survey_sigma_t"] == pytest.approx(np.sqrt(64 + 16 + 900 + 81), rel=1e-12)

@@ -109,7 +109,7 @@ def test_workbook_reads_back_the_csv(report):
     _, folder, _ = report
     t = pd.read_csv(folder / f"volumes-{DATE}.csv")
     wb = load_workbook(folder / f"volumes-{DATE}.xlsx")
-    assert wb.sheetnames == ["Volumes", "Unassigned stock", "Columns", "About"]
+    assert wb.sheetnames == ["Volumes", "Totals", "Unassigned stock", "Columns", "About"]
     rows = list(wb["Volumes"].iter_rows(values_only=True))
     assert list(rows[0]) == VOLUME_REPORT_COLUMNS
     assert len(rows) == 1 + len(t)
@@ -127,6 +127,39 @@ def test_workbook_reads_back_the_csv(report):
     assert meaning["sigma_interpolated_m3"][2] == "m3" and "interpolat" in meaning["sigma_interpolated_m3"][3]
     about = {r[0]: r[1] for r in wb["About"].iter_rows(values_only=True) if r[0]}
     assert about["survey date"] == DATE
+
+
+@pytest.mark.slow
+def test_workbook_totals_count_shared_errors_once(report):
+    """The Totals sheet's site row against the piles' covariance matrix built from the CSV
+    (JCGM 100:2008, GUM 5.2: var(sum) = 1' C 1): one material's density part
+    (volume x density sd) and the floor raster's part (sigma_base_m3 x density) are one error
+    over their piles, correlation 1; the rest of each pile's sigma is its own."""
+    from openpyxl import load_workbook
+
+    _, folder, _ = report
+    t = pd.read_csv(folder / f"volumes-{DATE}.csv")
+    t = t[t["survey_t"].notna()].reset_index(drop=True)
+    ws = load_workbook(folder / f"volumes-{DATE}.xlsx")["Totals"]
+    rows = list(ws.iter_rows(values_only=True))
+    header = list(rows[0])
+    site = dict(zip(header, next(r for r in rows[1:] if r[0] == "site (all materials)")))
+    d = (t["volume_m3"] * t["density_sd_t_m3"]).to_numpy()
+    floor = t["base_method"].str.startswith("floor").to_numpy()
+    g = np.where(floor, t["sigma_base_m3"] * t["density_t_m3"], 0.0)
+    s = t["survey_sigma_t"].to_numpy()
+    mats = t["material"].to_numpy()
+    cov = np.diag(s ** 2 - d ** 2 - g ** 2)
+    cov += np.where(mats[:, None] == mats[None, :], np.outer(d, d), 0.0)
+    cov += np.outer(g, g)
+    n = np.ones(len(t))
+    assert site["survey_sigma_t"] == pytest.approx(float(np.sqrt(n @ cov @ n)), rel=1e-9)
+    assert site["survey_t"] == pytest.approx(t["survey_t"].sum(), rel=1e-12)
+    quad = float(np.sqrt((s ** 2).sum()))
+    assert site["survey_sigma_quadrature_t"] == pytest.approx(quad, rel=1e-12)
+    assert site["survey_sigma_t"] > quad  # piles of one material share its density error
+    assert ws.cell(row=2, column=header.index("survey_sigma_t") + 1).number_format.endswith('"t"')
+    assert any(isinstance(r[0], str) and r[0].startswith("A total's 1 sigma is not") for r in rows)
 
 
 @pytest.mark.slow

@@ -6,7 +6,10 @@ Three files beside the survey's rasters (see :mod:`inventory.volume_report`):
     One row per pile, columns :data:`VOLUME_REPORT_COLUMNS` (UTF-8, comma separated, text a
     spreadsheet would run as a formula neutralised).
 ``volumes-<date>.xlsx``
-    Sheets ``Volumes`` (the same table, with units in the number formats), ``Unassigned
+    Sheets ``Volumes`` (the same table, with units in the number formats), ``Totals`` (volume
+    and tonnes per material and for the site with their 1 sigma, shared density and floor
+    errors counted once, beside the piles' sigmas in quadrature:
+    :func:`inventory.stock.totals.survey_totals`), ``Unassigned
     stock`` (stock outside every footprint and footprints whose edge cuts through material)
     and ``Columns`` (every column's title, unit and meaning, from
     :data:`inventory.model.columns.FIELDS`), ``About`` (site, survey, cautions).
@@ -30,6 +33,7 @@ import pandas as pd
 from inventory.io.atomic import atomic_path
 from inventory.model.columns import FIELDS, unit_of
 from inventory.model.texts import CAUTIONS
+from inventory.stock.totals import SURVEY_TOTAL_COLUMNS, survey_totals
 
 __all__ = ["VOLUME_REPORT_COLUMNS", "write_volume_csv", "write_volume_workbook", "write_volume_layers"]
 
@@ -39,8 +43,21 @@ VOLUME_REPORT_COLUMNS = [
     "volume_m3", "volume_tin_m3", "below_base_m3",
     "volume_sigma_m3", "sigma_random_m3", "sigma_correlated_m3", "sigma_interpolated_m3",
     "sigma_base_m3", "volume_ci95_m3", "volume_low95_m3", "volume_high95_m3",
-    "density_t_m3", "survey_t", "survey_sigma_t", "survey_dry_t", "flags",
+    "density_t_m3", "density_sd_t_m3", "survey_t", "survey_sigma_t", "survey_dry_t", "flags",
 ]
+
+#: Under the Totals sheet: how a total's sigma differs from the piles' sigmas in quadrature.
+TOTALS_IN_WORDS = (
+    "A total's 1 sigma is not the piles' sigmas added in quadrature (survey_sigma_quadrature_t): "
+    "the error of one material's table bulk density is one error in all its piles and the "
+    "surveyed floor raster's error one error under every pile on it, so their parts are added "
+    "before squaring and counted once, while the rest of each pile's error (scan noise, filled "
+    "gaps, a toe plane fitted to its own ring, its own level base) adds in quadrature; the shared "
+    "errors push the piles the same way, so the total's sigma is the larger."
+)
+
+#: Title of the site's row in the Totals sheet (its ``material`` is empty in the table).
+SITE_ROW = "site (all materials)"
 
 #: Excel number formats by unit symbol (the unit comes from the column name).
 _FORMATS = {"m3": '#,##0.0 "m³"', "m2": '#,##0.0 "m²"', "t": '#,##0.0 "t"', "t/m3": '0.000 "t/m³"',
@@ -101,7 +118,7 @@ def _sheet(wb, title: str, frame: pd.DataFrame, empty_text: str) -> None:
 def write_volume_workbook(
     table: pd.DataFrame, unassigned: pd.DataFrame, about: Mapping[str, Any], path: str | Path
 ) -> Path:
-    """The small volume workbook (sheets Volumes, Unassigned stock, Columns, About).
+    """The small volume workbook (sheets Volumes, Totals, Unassigned stock, Columns, About).
 
     Parameters
     ----------
@@ -119,8 +136,13 @@ def write_volume_workbook(
     wb = Workbook()
     wb.remove(wb.active)
     _sheet(wb, "Volumes", table, "No piles.")
+    totals = survey_totals(table) if len(table) else pd.DataFrame(columns=SURVEY_TOTAL_COLUMNS)
+    totals["material"] = totals["material"].where(totals["material"] != "", SITE_ROW)
+    _sheet(wb, "Totals", totals, "No piles.")
+    ws = wb["Totals"]
+    ws.cell(row=len(totals) + 3, column=1, value=TOTALS_IN_WORDS)
     _sheet(wb, "Unassigned stock", unassigned, "No stock found outside the footprints.")
-    cols = list(dict.fromkeys(list(table.columns) + list(unassigned.columns)))
+    cols = list(dict.fromkeys(list(table.columns) + list(totals.columns) + list(unassigned.columns)))
     meanings = pd.DataFrame(
         [{"column": c, "title": FIELDS[c][0] if c in FIELDS else c,
           "unit": (unit_of(c) or ("", ""))[0], "meaning": FIELDS[c][1] if c in FIELDS else ""}

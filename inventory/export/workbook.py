@@ -4,8 +4,11 @@ Sheets of the close workbook:
 
 Summary      site, period, ledger close id and time; the stock bridge (book at survey +
              adjustments posted = adjusted book; + net movements after the survey = closing
-             stock) as formulas over the Piles sheet; the sign convention, the legend of row
-             colours and the cautions.
+             stock) as formulas over the Piles sheet; the variance; the 1 sigma of the survey,
+             book and variance totals (shared density, floor and scale errors counted once)
+             and the variance in sigmas, as formulas over the ``Site totals`` sheet, beside the
+             piles' variance sigmas in quadrature and :data:`TOTAL_SIGMA_IN_WORDS`; the sign
+             convention, the legend of row colours and the cautions.
 Piles        one row per pile with every figure of the close (the ledger's columns), a totals
              row of SUM formulas.
 Variance     book and survey side by side with their sigmas; the variance sigma with its parts
@@ -16,7 +19,9 @@ Journal      the posting journal: period, posting date, close id, pile, material
              unit, value, account and location codes, reason, status post or hold.
 Scales       scale diagnostics.
 Duplicates   exact and suspected duplicate records.
-(further)    one sheet per table of ``CloseResult.tables`` (materials, measured change, ...).
+(further)    one sheet per table of ``CloseResult.tables`` (materials, measured change, ...);
+             ``Site totals`` and ``Materials`` with a ``variance_z`` formula column (variance /
+             its 1 sigma) and the note :data:`TOTAL_SIGMA_IN_WORDS`.
 Columns      every column of every table: sheet, name, unit, meaning.
 Run          inputs with SHA-256, parameters, versions, timings.
 
@@ -58,6 +63,7 @@ from inventory.io.atomic import atomic_path
 
 __all__ = [
     "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT", "VARIANCE_SIGMA_IN_WORDS",
+    "TOTAL_SIGMA_IN_WORDS",
 ]
 
 #: Sheets of a close whose ``tables`` are empty, in order.
@@ -85,6 +91,7 @@ _FMT_DATETIME = "yyyy-mm-dd hh:mm:ss"
 _FMT_DATE = "yyyy-mm-dd"
 _FMT_INT = "0"
 _FMT_MONEY = "#,##0.00"
+_FMT_Z = '+0.00 "sigma";-0.00 "sigma";0.00 "sigma"'   # a variance in sigmas (z)
 
 _PILE_FORMATS = {
     "area_m2": _FMT_M2, "scanned_fraction": _FMT_FRACTION, "density_t_m3": _FMT_DENSITY,
@@ -115,6 +122,19 @@ VARIANCE_SIGMA_IN_WORDS = (
     "opening + 2 x the same for the base)."
 )
 
+#: How a total's sigma (Summary, Site totals and Materials sheets) differs from the piles'
+#: sigmas added in quadrature, and why (also in docs/ledger.md).
+TOTAL_SIGMA_IN_WORDS = (
+    "A total's 1 sigma is not the piles' sigmas added in quadrature: an error common to several "
+    "piles (one material's table bulk density in all its piles, the surveyed floor raster under "
+    "every pile on it, one weighbridge's or belt scale's error in every pile it weighed for) is "
+    "one error, so its parts are added before squaring and it is counted once, while the rest of "
+    "each pile's error (scan noise, filled gaps, a toe plane fitted anew, its own level base) is "
+    "its own and adds in quadrature; shared errors push every pile the same way, so the total's "
+    "sigma is larger than the quadrature sum, except where a shared density or floor error of "
+    "this survey cancels against the same error in an opening that was an earlier survey."
+)
+
 _MAX_WIDTH = 50
 _NOTE_WIDTH = 110          # characters a wrapped note spans at most
 #: Excel's limit on the characters in one cell (Excel specifications and limits).
@@ -141,6 +161,8 @@ def _fmt_for(col: str) -> str | None:
         return _FMT_PCT
     if col.endswith("_s"):
         return _FMT_SECONDS
+    if col.endswith("_z"):
+        return _FMT_Z
     return None
 
 
@@ -459,6 +481,14 @@ def _piles_sheet(book: _Book, result: CloseResult) -> dict[str, Any]:
         L = _col(cols.index(flag) + 1)
         refs[flag] = (f"Piles!${L}${first}:${L}${max(last, first)}",
                       int(sum(1 for x in piles[flag] if _cell_value(x) is True)))
+    # the surveyed piles' variance sigmas in quadrature (as the Site totals: surveyed piles
+    # only; a blank sigma counts 0, as in the spreadsheet)
+    L, S = _col(cols.index("variance_sigma_t") + 1), _col(cols.index("survey_t") + 1)
+    hi = max(last, first)
+    sigmas = [_num(x) or 0.0 for x, sv in zip(piles["variance_sigma_t"], piles["survey_t"]) if _num(sv) is not None]
+    refs["variance_sigma_quadrature"] = (
+        f"=SQRT(SUMPRODUCT(ISNUMBER(Piles!${S}${first}:${S}${hi})*Piles!${L}${first}:${L}${hi}^2))",
+        math.sqrt(sum(x * x for x in sigmas)))
     return refs
 
 
@@ -611,6 +641,19 @@ def _journal_sheet(book: _Book, result: CloseResult) -> None:
 
 _LISTS = (list, tuple, set, np.ndarray)
 
+#: Tables of totals whose sheet gets a ``variance_z`` formula column after ``variance_sigma_t``
+#: and the note :data:`TOTAL_SIGMA_IN_WORDS` under the table.
+_TOTALS_TABLES = ("Site totals", "Materials")
+
+
+def _z_value(var: Any, sigma: Any) -> float | None:
+    """``var / sigma`` as the sheet's formula gives it: None (a blank) when either is not a
+    number or the sigma is 0."""
+    v, s = _num(var), _num(sigma)
+    if v is None or s is None or s == 0:
+        return None
+    return v / s
+
 
 def _extra_sheets(book: _Book, result: CloseResult) -> dict[str, list[str]]:
     """One sheet per further table of the close (belt split, measured change, materials);
@@ -629,11 +672,23 @@ def _extra_sheets(book: _Book, result: CloseResult) -> dict[str, list[str]]:
             if any(isinstance(v, _LISTS) for v in shown[col]):
                 shown[col] = shown[col].map(lambda v: ", ".join(map(str, v)) if isinstance(v, _LISTS) else v)
         cols = list(shown.columns)
-        first, last = _table(sh, shown, cols, tz=ZoneInfo(result.timezone) if result.timezone else None)
+        computed = {}
+        totals = str(title) in _TOTALS_TABLES and {"variance_t", "variance_sigma_t"} <= set(cols)
+        if totals and "variance_z" not in cols:
+            # the variance in sigmas, as a formula beside its two figures
+            cols.insert(cols.index("variance_sigma_t") + 1, "variance_z")
+            lv, ls = _col(cols.index("variance_t") + 1), _col(cols.index("variance_sigma_t") + 1)
+            computed["variance_z"] = lambda i, v, lv=lv, ls=ls: (
+                f'=IF(AND(ISNUMBER({lv}{i}),ISNUMBER({ls}{i})),IF({ls}{i}=0,"",{lv}{i}/{ls}{i}),"")',
+                _z_value(v.get("variance_t"), v.get("variance_sigma_t")))
+        first, last = _table(sh, shown, cols, tz=ZoneInfo(result.timezone) if result.timezone else None,
+                             computed=computed)
         _mark_rows(sh, first, last, len(cols),
                    cols.index("out_of_tolerance") + 1 if "out_of_tolerance" in cols else None,
                    cols.index("significant") + 1 if "significant" in cols else None)
         sh.fit()
+        if totals:
+            sh.note(last + 2, TOTAL_SIGMA_IN_WORDS, len(cols))
         out[str(title)[:31]] = cols
     return out
 
@@ -687,6 +742,8 @@ def _unit_words(col: str) -> str:
         return "currency (column currency)"
     if col.endswith("_s"):
         return "s (seconds)"
+    if col.endswith("_z"):
+        return "sigma (the variance divided by its 1 sigma)"
     u = unit_of(col)
     return f"{u[0]} ({u[1]})" if u else ""
 
@@ -752,11 +809,14 @@ def _run_sheet(book: _Book, result: CloseResult) -> None:
     sh.ws.set_column(1, 1, 70, wrap)
 
 
-def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], journal: pd.DataFrame) -> None:
+def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], journal: pd.DataFrame,
+                   extra: Mapping[str, list[str]] | None = None) -> None:
     """The Summary, into the sheet made first (so it is the first tab) and written last (it
-    refers to the other sheets' totals)."""
+    refers to the other sheets' totals). ``extra``: the columns of the further sheets (the
+    sigma lines refer to the ``Site totals`` sheet's cells)."""
     ws = sh.ws
     ws.fit_to_pages(1, 1)
+    sh.fixed[1], sh.fixed[2], sh.fixed[3], sh.fixed[4] = 44, 22, 22, 22
     sh.put(1, 1, f"Stock close {result.period}: {result.site_name}", bold=True, size=14)
     instant = _cell_value(result.survey_instant)
     facts: list[tuple[str, Any, str | None]] = [
@@ -819,7 +879,33 @@ def _summary_sheet(sh: _Sheet, result: CloseResult, refs: Mapping[str, Any], jou
     line("held", "Journal lines held, not posted", f'=COUNTIF(Journal!${_col(POSTING_COLUMNS.index("status") + 1)}:'
          f'${_col(POSTING_COLUMNS.index("status") + 1)},"hold")', int(len(held)), _FMT_INT)
     r += 1
-    sh.fixed[1], sh.fixed[2], sh.fixed[3], sh.fixed[4] = 44, 22, 22, 22
+    # the totals' 1 sigma, shared errors counted once (inventory.stock.totals.close_sigmas), as
+    # formulas over the Site totals sheet; the piles' sigmas in quadrature beside them
+    sh.put(r, 1, "Uncertainty of the totals (surveyed piles)", bold=True)
+    r += 1
+    tot = (result.tables or {}).get("Site totals")
+    tcols = (extra or {}).get("Site totals") or []
+    if tot is not None and len(tot) and {"survey_sigma_t", "book_sigma_t", "variance_t",
+                                         "variance_sigma_t", "variance_z"} <= set(tcols):
+        t0 = tot.iloc[0]
+
+        def ref(c: str) -> str:
+            return f"='Site totals'!${_col(tcols.index(c) + 1)}$2"
+
+        line("survey_sigma", "Survey stock, 1 sigma", ref("survey_sigma_t"), t0["survey_sigma_t"], _FMT_T)
+        line("book_sigma", "Book stock, 1 sigma", ref("book_sigma_t"), t0["book_sigma_t"], _FMT_T)
+        line("var_sigma", "Variance, 1 sigma (shared density, floor and scale errors counted once)",
+             ref("variance_sigma_t"), t0["variance_sigma_t"], _FMT_T)
+        line("var_z", "Variance in sigmas (z = variance / its 1 sigma)", ref("variance_z"),
+             _z_value(t0["variance_t"], t0["variance_sigma_t"]), _FMT_Z)
+        q_formula, q_v = refs["variance_sigma_quadrature"]
+        line("var_quad", "Variance, 1 sigma if every pile erred on its own (pile sigmas in quadrature)",
+             q_formula, q_v, _FMT_T)
+        sh.note(r, TOTAL_SIGMA_IN_WORDS, 4, col=1)
+    else:
+        sh.put(r, 1, "1 sigma of the totals")
+        sh.put(r, 2, "not computed for this close (no Site totals table)", left=True)
+    r += 2
     sh.fit()
     sh.put(r, 1, "Sign convention", bold=True, valign_top=True)
     sh.note(r, SIGN_CONVENTION.removeprefix("Sign convention: "), 4, col=2)
@@ -874,7 +960,7 @@ def write_workbook(result: CloseResult, path: str | Path) -> Path:
                   *extra.items(), ("Run", ["fact", "value"])]
         _columns_sheet(book, tables)
         _run_sheet(book, result)
-        _summary_sheet(summary_ws, result, refs, journal)
+        _summary_sheet(summary_ws, result, refs, journal, extra)
         book.wb.set_properties({
             "title": f"Stock close {result.period}", "subject": result.site_name,
             "author": "inventory", "comments": close_status_text(result),

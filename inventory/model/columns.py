@@ -52,6 +52,9 @@ FIELDS: dict[str, tuple[str, str]] = {
     "survey_t": ("Survey stock", "Stock measured by the survey (volume times density)."),
     "survey_dry_t": ("Survey stock, dry", "Survey stock less the material's moisture."),
     "survey_sigma_t": ("Survey uncertainty", "Standard uncertainty (1 sigma) of the survey stock."),
+    "survey_sigma_quadrature_t": ("Survey uncertainty, piles in quadrature",
+                                  "The piles' survey uncertainties added in quadrature, as if no error "
+                                  "were shared between piles: for comparison with survey_sigma_t of a total."),
     "base_sigma_t": ("Base uncertainty", "Part of the survey uncertainty due to the base surface."),
     "opening_t": ("Opening stock", "Book stock at the start of the period."),
     "receipts_t": ("Receipts", "Tonnes received into the pile up to the survey instant."),
@@ -64,6 +67,9 @@ FIELDS: dict[str, tuple[str, str]] = {
     "variance_pct": ("Variance share", "Variance as a percentage of the book stock."),
     "variance_sigma_t": ("Variance uncertainty",
                          "Standard uncertainty (1 sigma) of the variance, survey and book combined."),
+    "variance_z": ("Variance in sigmas",
+                   "The variance divided by its standard uncertainty (z): how many sigmas it lies from "
+                   "zero; beyond k (site.toml [reconcile] significance_k) it is significant."),
     "significant": ("Significant",
                     "1 when the variance exceeds k sigma, 0 when not, empty when undecided."),
     "tolerance_pct": ("Tolerance", "The material's variance tolerance."),
@@ -154,7 +160,7 @@ FIELDS: dict[str, tuple[str, str]] = {
                 "adjustment policy or an unexplained variance).")),
     # scale diagnostics
     "piles": ("Piles", ("The piles concerned: in Scales the piles the scale fed; in Materials "
-                        "and the history totals how many piles were counted.")),
+                        "and other totals how many piles were counted.")),
     "bias_pct": ("Scale bias", "Estimated reading error of the scale this month (+ reads high)."),
     "bias_sigma_pct": ("Scale bias uncertainty", "Standard uncertainty (1 sigma) of the bias."),
     "history_bias_pct": ("Scale bias over months", "Bias estimated over this and earlier months pooled."),

@@ -40,6 +40,7 @@ import pandas as pd
 __all__ = [
     "SPAN_COLUMNS", "MONTH_TOTAL_COLUMNS", "budget_sigma", "pile_error_parts", "month_totals",
     "span_variance", "opening_parts", "SITE_TOTAL_COLUMNS", "close_sigmas", "close_site_totals",
+    "SURVEY_TOTAL_COLUMNS", "survey_totals",
 ]
 
 #: Columns of :func:`span_variance`.
@@ -373,3 +374,58 @@ def close_site_totals(p: pd.DataFrame, scale_load: pd.DataFrame | None) -> pd.Da
         "variance_sigma_t": s_var, "adjustment_t": float(pd.to_numeric(sv["adjustment_t"], errors="coerce").sum())
         if "adjustment_t" in sv else np.nan,
     }], columns=SITE_TOTAL_COLUMNS)
+
+
+#: Columns of :func:`survey_totals`: one row per material, then the site (``material`` empty).
+SURVEY_TOTAL_COLUMNS = [
+    "material", "piles", "volume_m3", "volume_sigma_m3", "survey_t", "survey_sigma_t",
+    "survey_sigma_quadrature_t",
+]
+
+
+def survey_totals(table: pd.DataFrame) -> pd.DataFrame:
+    """Volume and tonnes of one survey per material and for the site, with their sigmas,
+    shared errors counted once (no books: the ``volumes`` command).
+
+    ``table`` is a volume table (:data:`inventory.volume.measure.VOLUME_COLUMNS`):
+    ``volume_m3``, ``volume_sigma_m3``, ``sigma_base_m3``, ``base_method``, ``material``,
+    ``density_t_m3``, ``density_sd_t_m3``, ``survey_t``, ``survey_sigma_t``. A pile's survey
+    sigma is ``sqrt((density x volume sigma)^2 + (volume x density sd)^2)``; its density part
+    ``volume x density sd`` is one error over all piles of the material, and the floor
+    raster's part (``sigma_base_m3``, times the density in tonnes) one error over every pile
+    with a ``floor`` base; the rest is the pile's own. ``survey_sigma_quadrature_t`` is the
+    piles' survey sigmas in quadrature, as if nothing were shared. Piles without a volume
+    are left out; a pile without tonnes (no density) counts in the volumes only.
+    """
+    t = table[_col(table, "volume_m3").notna()].reset_index(drop=True)
+    vol, v_sig = _col(t, "volume_m3"), _col(t, "volume_sigma_m3").fillna(0.0).abs()
+    rho, rho_sd = _col(t, "density_t_m3"), _col(t, "density_sd_t_m3").fillna(0.0).abs()
+    s_t, s_sig = _col(t, "survey_t"), _col(t, "survey_sigma_t").fillna(0.0).abs()
+    floor = t["base_method"].astype(str).str.split(":").str[0].eq("floor") if "base_method" in t \
+        else pd.Series(False, index=t.index)
+    gv = np.minimum(_col(t, "sigma_base_m3").fillna(0.0).abs(), v_sig).where(floor, 0.0)
+    d = np.minimum((vol * rho_sd).abs(), s_sig).where(s_t.notna(), 0.0)
+    g = np.minimum(gv * rho.fillna(0.0), s_sig).where(s_t.notna(), 0.0)
+    ind_v = np.sqrt(np.clip(v_sig ** 2 - gv ** 2, 0.0, None))
+    ind_t = np.sqrt(np.clip(s_sig ** 2 - d ** 2 - g ** 2, 0.0, None)).where(s_t.notna(), 0.0)
+    material = t["material"].astype(str) if "material" in t else pd.Series("", index=t.index)
+
+    def row(name: str, idx: pd.Index) -> dict[str, Any]:
+        v_parts: list[tuple[Hashable | None, float]] = []
+        t_parts: list[tuple[Hashable | None, float]] = []
+        for i in idx:
+            v_parts += [(None, float(ind_v[i])), (("floor",), float(gv[i]))]
+            t_parts += [(None, float(ind_t[i])), (("density", material[i]), float(d[i])),
+                        (("floor",), float(g[i]))]
+        tonnes = s_t[idx]
+        return {
+            "material": name, "piles": int(len(idx)), "volume_m3": float(vol[idx].sum()),
+            "volume_sigma_m3": budget_sigma(v_parts), "survey_t": float(tonnes.sum()) if tonnes.notna().any()
+            else np.nan, "survey_sigma_t": budget_sigma(t_parts) if tonnes.notna().any() else np.nan,
+            "survey_sigma_quadrature_t": float(np.sqrt((s_sig[idx][tonnes.notna()] ** 2).sum()))
+            if tonnes.notna().any() else np.nan,
+        }
+
+    rows = [row(m, g_.index) for m, g_ in t.groupby(material, sort=True)]
+    rows.append(row("", t.index))
+    return pd.DataFrame(rows, columns=SURVEY_TOTAL_COLUMNS)
