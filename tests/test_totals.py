@@ -216,7 +216,7 @@ def test_report_headline_shows_the_site_total_sigmas(close_result):
                                                     "Site totals": close_site_totals(frame, None)})
     page = report_html(res)
     want = np.sqrt(3056 + 2500 + 144 + 900 + 75)
-    assert "Variance, 1 sigma (t; shared density and floor errors counted once)" in page
+    assert "Variance, 1 sigma (t; shared density, floor and scale errors counted once)" in page
     assert f"{want:,.2f}" in page
 
 

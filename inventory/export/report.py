@@ -369,7 +369,7 @@ def _total_sigma_rows(result: CloseResult) -> list[list[str]]:
     return [
         ["Survey stock, 1 sigma (t)", _num(r["survey_sigma_t"])],
         ["Book stock, 1 sigma (t)", _num(r["book_sigma_t"])],
-        ["Variance, 1 sigma (t; shared density and floor errors counted once)", _num(r["variance_sigma_t"])],
+        ["Variance, 1 sigma (t; shared density, floor and scale errors counted once)", _num(r["variance_sigma_t"])],
     ]
 
 
