@@ -84,7 +84,7 @@ from inventory.survey.clean import (
 )
 from inventory.io.crs import TransformerCache, parse_crs
 from inventory.survey.ground import SlopeGroundParams, csf_ground, slope_ground
-from inventory.io.clouds import POINT_DTYPE, empty_points, read_cloud, write_cloud
+from inventory.io.clouds import empty_points, read_cloud, write_cloud
 
 __all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "OUR_PREFIX"]
 
@@ -578,8 +578,10 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
         arr = p.arrays[0]
     except RuntimeError as err:
         raise PipelineError(f"PDAL failed: {err}") from err
-    out = empty_points(len(arr))
-    for name in POINT_DTYPE.names:
+    # the points' own columns (with any extra bytes dimensions) come back as they went in
+    out = np.zeros(len(arr), dtype=pts.dtype)
+    out["StationRange"] = np.nan
+    for name in pts.dtype.names:
         if name in arr.dtype.names:
             out[name] = arr[name]
     for s in stages:
