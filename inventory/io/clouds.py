@@ -7,7 +7,9 @@ laspy (here), E57 (:mod:`inventory.io.e57`), PLY (:mod:`inventory.io.ply`) and d
 
 Points travel between steps as numpy structured arrays with PDAL's dimension names
 (:data:`POINT_DTYPE`), so the same arrays can be handed to PDAL's Python bindings or to our
-own pipeline runner. A reader never holds more than one chunk of a file in memory.
+own pipeline runner. A LAS/LAZ file's extra bytes dimensions (:class:`ExtraDim`) follow as
+further columns of its chunks (:func:`points_dtype`), which :class:`CloudWriter` writes back.
+A reader never holds more than one chunk of a file in memory.
 
 COPC files are LAZ 1.4 files with an octree index; read sequentially they are plain LAZ,
 which is all the survey step needs (COPC 1.0 specification, section 1).
