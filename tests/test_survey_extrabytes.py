@@ -212,3 +212,24 @@ def test_merge_keeps_first_appearance_order_and_fills():
     assert both["Deviation"].tolist() == [1.5, -2.5] and both["Amplitude"].tolist() == [65535, 65535]
     # 58 bytes of POINT_DTYPE, then 4 + 2 for the two extra dimensions
     assert both.dtype.itemsize == 58 + dev.nbytes + amp.nbytes == 64
+
+
+def test_pipeline_stages_keep_and_filter_on_extra_columns():
+    from inventory.io.clouds import ExtraDim, empty_points
+    from inventory.survey.pipeline import Pipeline
+
+    dims = (ExtraDim("Deviation", "u2"), ExtraDim("Echo", "i1", 3))
+    pts = empty_points(6, dims)
+    pts["X"], pts["Y"], pts["Z"] = np.arange(6.0), np.arange(6.0), 1.0
+    pts["Deviation"] = [0, 3, 9, 4, 12, 1]
+    pts["Echo"] = np.arange(18).reshape(6, 3)
+    pipe = Pipeline.from_json('[{"type": "filters.range", "limits": "Deviation[0:5]"},'
+                              ' {"type": "filters.crop", "bounds": "([0.5, 10], [0.5, 10])"},'
+                              ' {"type": "filters.assign", "assignment": "Classification[:]=2"}]')
+    out, _ = pipe.run(pts, "EPSG:25832", engine="builtin")
+    assert out.dtype == pts.dtype
+    # Deviation 0, 3, 4, 1 pass the range; the crop then drops the point at x = 0
+    assert out["X"].tolist() == [1.0, 3.0, 5.0]
+    assert out["Deviation"].tolist() == [3, 4, 1]
+    assert out["Echo"].tolist() == [[3, 4, 5], [9, 10, 11], [15, 16, 17]]
+    assert (out["Classification"] == 2).all()
