@@ -7,7 +7,9 @@ laspy (here), E57 (:mod:`inventory.io.e57`), PLY (:mod:`inventory.io.ply`) and d
 
 Points travel between steps as numpy structured arrays with PDAL's dimension names
 (:data:`POINT_DTYPE`), so the same arrays can be handed to PDAL's Python bindings or to our
-own pipeline runner. A reader never holds more than one chunk of a file in memory.
+own pipeline runner. A LAS/LAZ file's extra bytes dimensions (:class:`ExtraDim`) follow as
+further columns of its chunks (:func:`points_dtype`), which :class:`CloudWriter` writes back.
+A reader never holds more than one chunk of a file in memory.
 
 COPC files are LAZ 1.4 files with an octree index; read sequentially they are plain LAZ,
 which is all the survey step needs (COPC 1.0 specification, section 1).
@@ -26,6 +28,7 @@ Examples
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterator
 
@@ -39,7 +42,8 @@ from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
 
-__all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter", "open_cloud",
+__all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter",
+           "ExtraDim", "extra_dims_of", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
            "read_cloud", "write_cloud", "read_crs", "empty_points", "has_colour", "sidecar_crs"]
 
 #: File endings of LAS, LAZ and COPC (which ends in .copc.laz) files.
@@ -50,7 +54,8 @@ CLOUD_SUFFIXES = LAS_SUFFIXES + (".e57", ".ply", ".xyz", ".txt")
 #: (WKT or an authority code such as ``EPSG:25832``).
 CRS_SIDECAR = "crs.prj"
 
-#: Points per chunk when streaming: 58 MB of POINT_DTYPE (58 bytes a point).
+#: Points per chunk when streaming: 58 MB of POINT_DTYPE (58 bytes a point, more by the
+#: bytes of a file's extra dimensions, :class:`ExtraDim`).
 DEFAULT_CHUNK = 1_000_000
 
 #: One point as it travels through the survey step. Names are PDAL's dimension names
@@ -108,11 +113,184 @@ GENERATING_SOFTWARE = f"inventory {__version__}"[:32]
 SYSTEM_IDENTIFIER = "OTHER"
 
 
-def empty_points(n: int = 0) -> np.ndarray:
-    """A zeroed structured array of ``n`` points with NaN StationRange."""
-    pts = np.zeros(n, dtype=POINT_DTYPE)
+@dataclass(frozen=True)
+class ExtraDim:
+    """One extra bytes dimension of a LAS 1.4 file (its Extra Bytes VLR record, LAS 1.4 R15
+    section 2.5, Table 24), carried as a column of the points beside :data:`POINT_DTYPE`.
+
+    Values travel as they are stored (the raw integers of a scaled dimension), so they are
+    written back bit for bit with the same scale and offset; a pipeline's range on such a
+    dimension compares stored values, with the built-in runner and with PDAL alike.
+
+    Attributes
+    ----------
+    name : str
+        The name in the file (at most 32 characters).
+    type : str
+        Numpy type of one element as stored (``"u2"``, ``"f4"``, ``"i1"``, ...).
+    count : int
+        Elements per point (1; 2 or 3 for the array types).
+    description : str
+    scales, offsets : tuple of float or None
+        Per element, when the record declares them.
+    no_data : tuple or None
+        The stored value that means "no data", per element, when declared.
+    column : str
+        The points' field name: ``name``, unless that is already a dimension of
+        :data:`POINT_DTYPE` (case-insensitive, as pipelines look dimensions up), then
+        ``"Extra" + name`` (laspy's ``extrabytes.las`` has an extra ``Intensity``).
+    """
+
+    name: str
+    type: str
+    count: int = 1
+    description: str = ""
+    scales: "tuple[float, ...] | None" = None
+    offsets: "tuple[float, ...] | None" = None
+    no_data: "tuple[float, ...] | None" = None
+    column: str = ""
+
+    def __post_init__(self) -> None:
+        if not self.column:
+            taken = {n.lower() for n in POINT_DTYPE.names}
+            column = self.name if self.name.lower() not in taken else "Extra" + self.name
+            object.__setattr__(self, "column", column)
+
+    @property
+    def field(self) -> tuple:
+        """The numpy field of this dimension in a points array."""
+        return (self.column, self.type) if self.count == 1 else (self.column, self.type, (self.count,))
+
+    @property
+    def definition(self) -> tuple:
+        """What must agree for two files' dimensions of one name to be the same dimension."""
+        return (self.name, np.dtype(self.type).str, self.count, self.scales, self.offsets)
+
+    @property
+    def fill(self) -> np.ndarray:
+        """The value given to points of a file that lacks this dimension: the declared
+        no-data value, else 0 (one value per element)."""
+        values = self.no_data if self.no_data is not None else (0,) * self.count
+        return np.asarray(values, dtype=self.type)
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes per point."""
+        return np.dtype(self.type).itemsize * self.count
+
+    def params(self) -> laspy.ExtraBytesParams:
+        """laspy's description of this dimension, to add to a header."""
+        kind = self.type if self.count == 1 else f"{self.count}{self.type}"
+        return laspy.ExtraBytesParams(self.name, kind, self.description,
+                                      offsets=None if self.offsets is None else np.asarray(self.offsets),
+                                      scales=None if self.scales is None else np.asarray(self.scales),
+                                      no_data=None if self.no_data is None else np.asarray(self.no_data))
+
+
+def _as_tuple(values: Any) -> "tuple | None":
+    if values is None:
+        return None
+    return tuple(v.item() if hasattr(v, "item") else v for v in np.atleast_1d(np.asarray(values)))
+
+
+def extra_dims_of(header: laspy.LasHeader) -> tuple[ExtraDim, ...]:
+    """The extra bytes dimensions a LAS header declares, in record order.
+
+    Bytes past the point format that no Extra Bytes VLR describes (LAS 1.4 R15 data type 0,
+    "undocumented extra bytes") have no name or type and are not returned.
+    """
+    # laspy (2.7) leaves the no-data value out of the dimensions it reads from a file: take
+    # it from the Extra Bytes VLR's own records
+    no_data: dict[str, Any] = {}
+    for vlr in header.vlrs:
+        if isinstance(vlr, laspy.vlrs.known.ExtraBytesVlr):
+            for rec in vlr.extra_bytes_structs:
+                if rec.data_type != 0:
+                    no_data[rec.name.rstrip(b"\0").decode("ascii", "replace")] = rec.no_data
+    out = []
+    for d in header.point_format.extra_dimensions:
+        if d.dtype is None:
+            continue
+        nd = d.no_data if d.no_data is not None else no_data.get(d.name)
+        out.append(ExtraDim(d.name, d.dtype.base.str.lstrip("<>|="), int(d.num_elements), str(d.description or ""),
+                            _as_tuple(d.scales), _as_tuple(d.offsets), _as_tuple(nd)))
+    return tuple(out)
+
+
+def merge_extra_dims(files: "list[tuple[Any, tuple[ExtraDim, ...]]]") -> tuple[tuple[ExtraDim, ...], list[str]]:
+    """The union of several files' extra dimensions, in order of first appearance, and the
+    problems found (one text each).
+
+    A name whose files disagree on type, element count, scale or offset is dropped (its
+    stored values cannot share one column), and so is one whose column name would repeat
+    another's; a file lacking a kept dimension is named too (its points get
+    :attr:`ExtraDim.fill`).
+
+    Parameters
+    ----------
+    files : list of (path, dims)
+    """
+    first: dict[str, ExtraDim] = {}
+    clash: dict[str, list[str]] = {}
+    for path, dims in files:
+        for d in dims:
+            if d.name not in first:
+                first[d.name] = d
+            elif first[d.name].definition != d.definition:
+                clash.setdefault(d.name, []).append(str(path))
+    problems = [f"extra dimension {name!r} is stored differently in {', '.join(where)} than in the first "
+                f"file that has it (type, elements, scale or offset): not carried" for name, where in clash.items()]
+    kept: list[ExtraDim] = []
+    columns = {n.lower() for n in POINT_DTYPE.names}
+    for name, d in first.items():
+        if name in clash:
+            continue
+        if d.column.lower() in columns:
+            problems.append(f"extra dimension {name!r} would be carried as {d.column!r}, which another "
+                            f"dimension already is: not carried")
+            continue
+        columns.add(d.column.lower())
+        kept.append(d)
+    for path, dims in files:
+        names = {d.name for d in dims}
+        missing = [d for d in kept if d.name not in names]
+        if missing and len(files) > 1:
+            problems.append(f"{path} has no extra dimension " + ", ".join(
+                f"{d.name!r} (its points get {'the no-data value ' if d.no_data is not None else ''}"
+                f"{', '.join(str(v) for v in d.fill.tolist())})" for d in missing))
+    return tuple(kept), problems
+
+
+def points_dtype(extra: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> np.dtype:
+    """:data:`POINT_DTYPE` followed by a column for each extra dimension."""
+    if not extra:
+        return POINT_DTYPE
+    return np.dtype(POINT_DTYPE.descr + [d.field for d in extra])
+
+
+def empty_points(n: int = 0, extra: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> np.ndarray:
+    """A zeroed structured array of ``n`` points with NaN StationRange (and a column for
+    each of the ``extra`` dimensions, holding its :attr:`ExtraDim.fill`)."""
+    pts = np.zeros(n, dtype=points_dtype(extra))
     pts["StationRange"] = np.nan
+    for d in extra:
+        if d.fill.any():
+            pts[d.column] = d.fill if d.count > 1 else d.fill[0]
     return pts
+
+
+def conform_points(points: np.ndarray, extra: "tuple[ExtraDim, ...] | list[ExtraDim]") -> np.ndarray:
+    """``points`` with exactly the columns of :func:`points_dtype` ``(extra)``: columns it
+    lacks get their dimension's fill value, columns not asked for are left out. The same
+    array when it has them already."""
+    dtype = points_dtype(extra)
+    if points.dtype == dtype:
+        return points
+    out = empty_points(len(points), extra)
+    for name in dtype.names:
+        if name in (points.dtype.names or ()):
+            out[name] = points[name]
+    return out
 
 
 def read_crs(header: laspy.LasHeader, path: "str | Path" = "") -> tuple[CRS | None, str | None]:
@@ -150,6 +328,8 @@ class CloudReader:
         ``"wkt"``, ``"geotiff"``, ``"default"`` or ``None``.
     mins, maxs : ndarray
         Header bounds (x, y, z) in file units.
+    extra_dims : tuple of ExtraDim
+        The file's extra bytes dimensions; each is a column of the chunks.
     """
 
     def __init__(self, path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,
@@ -172,6 +352,7 @@ class CloudReader:
             self._reader.close()
             raise InputError(self.path, problem)
         self.has_colour = has_colour(self.header.point_format)
+        self.extra_dims = extra_dims_of(self.header)
         self.mins = np.asarray(self.header.mins, float)
         self.maxs = np.asarray(self.header.maxs, float)
         crs, source = read_crs(self.header, self.path)
@@ -190,12 +371,15 @@ class CloudReader:
         self._reader.close()
 
     def chunks(self) -> Iterator[np.ndarray]:
-        """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``."""
+        """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``, with a
+        column for each of :attr:`extra_dims` (the stored values)."""
         names = set(self.header.point_format.dimension_names)
         try:
             for rec in self._reader.chunk_iterator(self.chunk_size):
                 n = len(rec)
-                out = empty_points(n)
+                out = empty_points(n, self.extra_dims)
+                for d in self.extra_dims:
+                    out[d.column] = rec.array[d.name]
                 out["X"], out["Y"], out["Z"] = rec.x, rec.y, rec.z
                 for dim, attr in _LAS_FIELDS.items():
                     if attr in names:
@@ -265,15 +449,18 @@ def open_cloud(path: "str | Path", *, chunk_size: int = DEFAULT_CHUNK,
 
 
 def read_cloud(path: "str | Path", **kw: object) -> tuple[np.ndarray, CRS | None]:
-    """Read a whole file into one array (for small files and tests)."""
+    """Read a whole file into one array (for small files and tests); a LAS/LAZ file's extra
+    dimensions are columns of it (the reader's ``extra_dims``)."""
     with open_cloud(path, **kw) as cloud:  # type: ignore[arg-type]
         parts = list(cloud.chunks())
-        return (np.concatenate(parts) if parts else empty_points()), cloud.crs
+        return (np.concatenate(parts) if parts else empty_points(0, getattr(cloud, "extra_dims", ()))), cloud.crs
 
 
 class CloudWriter:
     """Write points to a LAZ (or LAS) file chunk by chunk, LAS 1.4 point format 6 (7 to keep
-    colour). Extra bytes dimensions of the input are not carried.
+    colour), with the ``extra_dims`` given as extra bytes dimensions (their columns of the
+    points are written as stored values under the dimensions' own names, types,
+    descriptions, scales, offsets and no-data values).
 
     The file appears under its name only when the writer closes without error (temporary
     file + rename). ``offset`` fixes the integer origin; pass the survey grid's lower-left
@@ -281,8 +468,10 @@ class CloudWriter:
     """
 
     def __init__(self, path: "str | Path", *, crs: "CRS | str | None", offset: tuple[float, float, float],
-                 scale: float = WRITE_SCALE, point_format: int = 6) -> None:
+                 scale: float = WRITE_SCALE, point_format: int = 6,
+                 extra_dims: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> None:
         self.path = Path(path)
+        self.extra_dims = tuple(extra_dims)
         self.path.parent.mkdir(parents=True, exist_ok=True)
         header = laspy.LasHeader(point_format=point_format, version="1.4")
         header.scales = np.array([scale] * 3)
@@ -291,6 +480,8 @@ class CloudWriter:
         header.system_identifier = SYSTEM_IDENTIFIER
         if crs is not None:
             header.add_crs(parse_crs(crs))
+        if self.extra_dims:
+            header.add_extra_dims([d.params() for d in self.extra_dims])
         self.header = header
         compress = self.path.suffix.lower() == ".laz"
         # The file is written chunk by chunk across calls, so the atomic_path block is
@@ -321,6 +512,11 @@ class CloudWriter:
                 rec["scan_angle"] = np.round(angle / SCAN_ANGLE_STEP).astype(np.int16)
             elif "scan_angle_rank" in names:
                 rec["scan_angle_rank"] = np.round(angle).astype(np.int8)
+        for d in self.extra_dims:
+            if d.column in points.dtype.names:
+                rec.array[d.name] = points[d.column]
+            elif d.fill.any():
+                rec.array[d.name] = d.fill if d.count > 1 else d.fill[0]
         self._writer.write_points(rec)
         self.written += len(points)
 
@@ -345,9 +541,11 @@ class CloudWriter:
 
 
 def write_cloud(path: "str | Path", points: np.ndarray, crs: "CRS | str | None" = None,
-                offset: tuple[float, float, float] | None = None, point_format: int | None = None) -> Path:
+                offset: tuple[float, float, float] | None = None, point_format: int | None = None,
+                extra_dims: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> Path:
     """Write one array of points to ``path`` (LAZ when the name ends in ``.laz``); point
-    format 7 when any point has a colour, else 6, unless ``point_format`` is given."""
+    format 7 when any point has a colour, else 6, unless ``point_format`` is given; the
+    ``extra_dims`` as extra bytes dimensions (see :class:`CloudWriter`)."""
     if offset is None:
         if len(points):
             offset = tuple(np.floor(np.array([points["X"].min(), points["Y"].min(),
@@ -358,6 +556,6 @@ def write_cloud(path: "str | Path", points: np.ndarray, crs: "CRS | str | None" 
         coloured = len(points) and all(c in points.dtype.names for c in COLOUR) and \
             any(points[c].any() for c in COLOUR)
         point_format = 7 if coloured else 6
-    with CloudWriter(path, crs=crs, offset=offset, point_format=point_format) as w:
+    with CloudWriter(path, crs=crs, offset=offset, point_format=point_format, extra_dims=extra_dims) as w:
         w.write(points)
     return Path(path)

@@ -29,10 +29,11 @@ from inventory.errors import (
     CoverageWarning,
     CRSError,
     InputError,
+    InputWarning,
     PipelineError,
     RunError,
 )
-from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter
+from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, ExtraDim, conform_points, merge_extra_dims, points_dtype
 from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from inventory.io.rasters import write_coverage, write_surface
 from inventory.model.classes import (
@@ -184,6 +185,8 @@ class _Read:
     in_gap: int = 0
     #: Some file stores colour (the classified cloud then keeps it: point format 7).
     colour: bool = False
+    #: The extra bytes dimensions carried (the union over the files, :func:`merge_extra_dims`).
+    extra_dims: tuple[ExtraDim, ...] = ()
 
 
 def _rate(done: int, total: int, seconds: float) -> str:
@@ -199,20 +202,28 @@ def _rate(done: int, total: int, seconds: float) -> str:
 def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: int, say: Progress) -> _Read:
     """Read every file in chunks, place each chunk in the site CRS and spill it by tiles;
     every point keeps the dimensions it was read with (colour, point source id, scan angle,
-    user data, ...). A file with points not placed is reported in one
-    :class:`~inventory.errors.InputWarning`."""
+    user data, ...), and the extra bytes dimensions of the files (their union: a file
+    lacking one gives its points the dimension's no-data value, else 0) become columns of
+    the spilled points (``spill.dtype``). A file with points not placed, and every extra
+    dimension lacking or not carried, is reported in an :class:`~inventory.errors.InputWarning`."""
     total = 0
+    files = []
     for p in placements:
         with p.open() as cloud:
             total += cloud.count
+            files.append((p.path, tuple(getattr(cloud, "extra_dims", ()))))
     read = _Read()
+    read.extra_dims, problems = merge_extra_dims(files)
+    for problem in problems:
+        warnings.warn(InputWarning(problem), stacklevel=3)
+    spill.dtype = points_dtype(read.extra_dims)
     t0 = time.perf_counter()
     for p in placements:
         with p.open(chunk_size) as cloud:
             read.colour = read.colour or cloud.has_colour
             for chunk in cloud.chunks():
                 n_chunk = len(chunk)
-                chunk = p.place(chunk)
+                chunk = conform_points(p.place(chunk), read.extra_dims)
                 read.outside += spill.add(chunk)
                 read.points += n_chunk
                 say(f"reading {p.path.name}: {_rate(read.points, total, time.perf_counter() - t0)}")
@@ -238,17 +249,18 @@ class _Classified:
 
 def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipeline, site_crs: CRS, engine: str,
                     statistic: str, classified_path: Path | None, say: Progress,
-                    colour: bool = False) -> _Classified:
+                    colour: bool = False, extra_dims: tuple[ExtraDim, ...] = ()) -> _Classified:
     """Classify and grid every tile (:func:`~inventory.survey.tiles.run_tiles`), in tile
     order, writing the classified cloud to ``classified_path`` when given (LAS 1.4 point
-    format 7 when ``colour``, else 6); the tiles' cells are saved in the spill folder."""
+    format 7 when ``colour``, else 6, with the ``extra_dims`` as extra bytes dimensions);
+    the tiles' cells are saved in the spill folder."""
     out = _Classified({}, 0, [math.inf, math.inf, -math.inf, -math.inf], [])
     writer = None
     if classified_path is not None:
         grid = spill.grid
         writer = CloudWriter(classified_path, crs=site_crs,
                              offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
-                             point_format=7 if colour else 6)
+                             point_format=7 if colour else 6, extra_dims=extra_dims)
     tiles = sorted(spill.counts)
     total = sum(spill.counts.values())
     done = 0
@@ -375,7 +387,7 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
 
             t0 = time.perf_counter()
             classified = _classify_tiles(ex, spill, buffer_m, pipe, site_crs, used_engine, grid_cfg.statistic,
-                                         classified_path, say, colour=read.colour)
+                                         classified_path, say, colour=read.colour, extra_dims=read.extra_dims)
             timings["classify"] = time.perf_counter() - t0
 
             t0 = time.perf_counter()

@@ -9,7 +9,9 @@ PDAL's option names and semantics. An unknown stage or option is a
 Stages of the built-in runner (options; PDAL defaults unless noted)
 -------------------------------------------------------------------
 ``readers.las``, ``readers.copc``
-    filename (required), override_srs, default_srs, spatialreference (= override_srs).
+    filename (required), override_srs, default_srs, spatialreference (= override_srs); the
+    standard dimensions only (extra bytes dimensions are carried by the survey step's own
+    reading, not by a pipeline's reader).
 ``filters.range``
     limits (required): ``"Z[0:50],Classification![7:7]"``; OR within a dimension, AND
     across dimensions; ``StationRange`` (ours) is the distance from the scanner in metres,
@@ -34,7 +36,7 @@ Stages of the built-in runner (options; PDAL defaults unless noted)
     out_srs (required), in_srs (default the cloud's CRS).
 ``writers.las``
     filename (required), a_srs, minor_version 4, dataformat_id 6, compression,
-    scale_x/y/z (0.001 here, not PDAL's 0.01), offset_x/y/z.
+    scale_x/y/z (0.001 here, not PDAL's 0.01), offset_x/y/z; the standard dimensions only.
 
 A stage function ``_stage(stage, pts, ctx)`` returns the points after the stage; it may change
 ``pts`` in place (:meth:`Pipeline.run` works on its own copy of the caller's points).
@@ -84,7 +86,7 @@ from inventory.survey.clean import (
 )
 from inventory.io.crs import TransformerCache, parse_crs
 from inventory.survey.ground import SlopeGroundParams, csf_ground, slope_ground
-from inventory.io.clouds import POINT_DTYPE, empty_points, read_cloud, write_cloud
+from inventory.io.clouds import conform_points, empty_points, read_cloud, write_cloud
 
 __all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "OUR_PREFIX"]
 
@@ -191,6 +193,7 @@ def _read_las(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     o = stage.options
     override = o["override_srs"] or o["spatialreference"]
     data, crs = read_cloud(o["filename"], default_crs=o["default_srs"] or None)
+    data = conform_points(data, ())    # the standard dimensions: files may differ in extra ones
     if override:
         crs = parse_crs(override, where=o["filename"], field="override_srs")
     if ctx.crs is None:
@@ -578,8 +581,10 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
         arr = p.arrays[0]
     except RuntimeError as err:
         raise PipelineError(f"PDAL failed: {err}") from err
-    out = empty_points(len(arr))
-    for name in POINT_DTYPE.names:
+    # the points' own columns (with any extra bytes dimensions) come back as they went in
+    out = np.zeros(len(arr), dtype=pts.dtype)
+    out["StationRange"] = np.nan
+    for name in pts.dtype.names:
         if name in arr.dtype.names:
             out[name] = arr[name]
     for s in stages:

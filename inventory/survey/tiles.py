@@ -30,10 +30,15 @@ __all__ = ["TILES_IN_FLIGHT", "TileCells", "TileSpill", "classify_tile", "classi
 
 
 class TileSpill:
-    """Points spilled to one raw file per tile of the grid."""
+    """Points spilled to one raw file per tile of the grid.
 
-    def __init__(self, grid: Grid, tile_cells: int, folder: Path) -> None:
+    Every record is of :attr:`dtype`: :data:`~inventory.io.clouds.POINT_DTYPE`, followed by a
+    column for each extra bytes dimension the survey carries (set before the first
+    :meth:`add`; a survey without extra dimensions spills POINT_DTYPE alone)."""
+
+    def __init__(self, grid: Grid, tile_cells: int, folder: Path, dtype: np.dtype = POINT_DTYPE) -> None:
         self.grid = grid
+        self.dtype = np.dtype(dtype)
         self.tc = tile_cells
         self.nty = math.ceil(grid.nrows / tile_cells)
         self.ntx = math.ceil(grid.ncols / tile_cells)
@@ -49,7 +54,9 @@ class TileSpill:
         return self.folder / f"tile_{tile}.bin"
 
     def add(self, pts: np.ndarray) -> int:
-        """Spill points; returns how many fell outside the grid."""
+        """Spill points (of :attr:`dtype`); returns how many fell outside the grid."""
+        if pts.dtype != self.dtype:
+            raise ValueError(f"points of dtype {pts.dtype} spilled to tiles of dtype {self.dtype}")
         tile, inside = self.tile_of(pts["X"], pts["Y"])
         pts, tile = pts[inside], tile[inside]
         if len(pts):
@@ -79,11 +86,12 @@ class TileSpill:
                 and ((ty + dy) * self.ntx + tx + dx) in self.counts]
 
 
-def _load(path: Path) -> np.ndarray:
-    return np.fromfile(path, dtype=POINT_DTYPE)
+def _load(path: Path, dtype: np.dtype = POINT_DTYPE) -> np.ndarray:
+    return np.fromfile(path, dtype=dtype)
 
 
-#: Points read at a time from a neighbouring tile's spill file (about 60 MB).
+#: Points read at a time from a neighbouring tile's spill file (about 60 MB without extra
+#: dimensions).
 _BLOCK = 1_000_000
 
 
@@ -93,13 +101,13 @@ def tile_job(spill: TileSpill, tile: int, buffer_m: float) -> np.ndarray:
     Neighbouring files are read in blocks of :data:`_BLOCK` points, so a tile never holds
     its neighbours whole (eight of them inside a large survey).
     """
-    core = _load(spill.path(tile))
+    core = _load(spill.path(tile), spill.dtype)
     x0, y0, x1, y1 = spill.box(tile)
     extra = []
     for nb in spill.neighbours(tile):
         with open(spill.path(nb), "rb") as f:
             while True:
-                pts = np.fromfile(f, dtype=POINT_DTYPE, count=_BLOCK)
+                pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
                 if not len(pts):
                     break
                 m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
@@ -192,7 +200,7 @@ def run_tiles(ex: Executor, spill: TileSpill, tiles: list[int], buffer_m: float,
     for path, cells, thinned in ex.map(classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine,
                                                                 statistic) for t in tiles),
                                        window=TILES_IN_FLIGHT * ex.workers):
-        pts = _load(path)
+        pts = _load(path, spill.dtype)
         path.unlink()
         yield pts, cells, thinned
 
