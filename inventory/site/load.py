@@ -1034,7 +1034,11 @@ class _Loader:
                 info = inspect_cloud(path)
             if info.error:
                 why = f"unreadable point cloud ({info.error})" if path.suffix.lower() in (".las", ".laz") else info.error
-                self.error(path, None, None, why)
+                found = info.problem
+                if found is not None:   # the reader's own file (a .prj beside it), line and field
+                    self.error(Path(found.path).absolute(), found.where, found.field, why)
+                else:
+                    self.error(path, None, None, why)
                 continue
             readable.append(path)
             points += info.point_count
