@@ -1046,7 +1046,9 @@ class _Loader:
             row = posed.get(path.name) if not is_e57 else None
             moving = None if is_e57 or path.name in posed else (
                 trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None))
-            if control is not None:
+            if control_path.is_file():
+                if control is None:
+                    continue   # control.csv's own error says why the files cannot be placed
                 # every file lands in the survey's own frame first, then moves by the control fit
                 if row is not None:
                     box, z = _posed_extent(info.bounds, row), (row.z - 1.0, row.z + 1.0)
