@@ -19,6 +19,7 @@ True
 from __future__ import annotations
 
 import json
+import math
 import re
 import warnings
 from collections.abc import Collection, Mapping
@@ -535,8 +536,17 @@ class _Loader:
                 extra = re.findall(r"'([^']+)'", err.message)
                 name = ".".join(filter(None, [where, extra[0] if extra else None]))
                 self.error(path, None, name, "unknown key")
+            elif err.validator == "pattern" and isinstance(err.schema, dict) and err.schema.get("errorMessage"):
+                # the schema's own words instead of a regular expression
+                self.error(path, None, where, f"{err.instance!r} {err.schema['errorMessage']}")
             else:
                 self.error(path, None, where, err.message)
+            bad = True
+        for keys, value in _non_finite(raw):
+            # TOML allows nan and inf; no setting of the site means either (the schema's bounds
+            # cannot catch them: every comparison with nan is false)
+            self.refused.add(keys)
+            self.error(path, None, ".".join(map(str, keys)), f"{value} is not a finite number")
             bad = True
         return None if bad and any(k not in raw for k in ("name", "crs", "timezone")) else raw
 
@@ -1193,6 +1203,17 @@ def _nesting(value: Any) -> tuple[int, str | None]:
             deepest, key = depth, top
         stack.extend((v, depth + 1, t) for v, t in children)
     return deepest, key
+
+
+def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
+    """``(key path, value)`` of every NaN or infinite float in parsed TOML."""
+    if isinstance(value, float):
+        return [] if math.isfinite(value) else [(keys, value)]
+    if isinstance(value, dict):
+        return [hit for k, v in value.items() for hit in _non_finite(v, keys + (k,))]
+    if isinstance(value, list):
+        return [hit for i, v in enumerate(value) for hit in _non_finite(v, keys + (i,))]
+    return []
 
 
 def _is_file(path: Path) -> bool:
