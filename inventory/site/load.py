@@ -1142,13 +1142,30 @@ class _Loader:
         except Exception as err:  # inventory.errors.InputError: the reader names what is wrong
             return CloudInfo(path, error=getattr(err, "why", str(err))), False, None
         poses = {}
+        given_on: dict[int, int] = {}
+        given_on_text: dict[int, str] = {}
         for row, idx in found:
             if idx is None:
                 what = f"no scan {str(row.scan)!r}" if row is not file_row else f"{count} scans: give each pose a scan"
                 self.error(station_path, row.line, "scan", f"{path.name} has {what} (numbers 1-{count} or names)")
                 return None
+            if idx in given_on:   # one scan named twice, by number and by name
+                if str(row.scan) == given_on_text[idx]:
+                    return None   # the same text twice: the row rules said so already
+                self.error(station_path, row.line, "scan", f"{str(row.scan)!r} is scan {idx + 1} of {path.name}, "
+                           f"already given on line {given_on[idx]}")
+                return None
+            given_on[idx], given_on_text[idx] = int(row.line), str(row.scan)
+            values = np.array([row.x, row.y, row.z, row.roll_deg, row.pitch_deg, row.yaw_deg], dtype=float)
+            if not np.all(np.isfinite(values)):
+                continue   # a blank pose: the scan keeps its own pose (one is needed, checked below)
             poses[idx] = (rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg), np.array([row.x, row.y, row.z]))
-        return inspect_cloud(path, poses=poses), len(poses) == count, acquired
+        info = inspect_cloud(path, poses=poses)
+        found_problem = info.problem
+        if (info.error and found_problem is not None and found_problem.field == "pose"
+                and self.errors_in(station_path)):
+            return None   # a pose row stations.csv refused is the cause; its own error says so
+        return info, len(poses) == count, acquired
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
