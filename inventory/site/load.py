@@ -524,7 +524,10 @@ class _Loader:
 
         validator = jsonschema.Draft202012Validator(_site_schema())
         bad = False
+        non_finite = _non_finite(raw)
         for err in sorted(validator.iter_errors(raw), key=lambda e: [str(p) for p in e.absolute_path]):
+            if tuple(err.absolute_path) in {keys for keys, _ in non_finite}:
+                continue   # reported once below, as not finite
             where = ".".join(str(p) for p in err.absolute_path) or None
             if err.validator not in ("required", "additionalProperties"):
                 self.refused.add(tuple(err.absolute_path))
@@ -542,7 +545,7 @@ class _Loader:
             else:
                 self.error(path, None, where, err.message)
             bad = True
-        for keys, value in _non_finite(raw):
+        for keys, value in non_finite:
             # TOML allows nan and inf; no setting of the site means either (the schema's bounds
             # cannot catch them: every comparison with nan is false)
             self.refused.add(keys)
