@@ -51,55 +51,57 @@ def prepend(site: Path, text: str) -> None:
 
 
 # ----------------------------------------------------------------------------- site.toml sections
+# the small site's site.toml has 18 lines; a section appended after a blank line has its
+# header on line 20 and its first key on line 21
 SECTIONS = {
     "control-model-unknown": ('[survey]\ncontrol_model = "helmert"',
-                              f"{T}: survey.control_model: 'helmert' is not one of ['7-parameter', '4+1']"),
+                              f"{T} line 21: survey.control_model: 'helmert' is not one of ['7-parameter', '4+1']"),
     "control-rms-text": ('[survey]\ncontrol_rms_max_m = "abc"',
-                         f"{T}: survey.control_rms_max_m: 'abc' is not of type 'number'"),
+                         f"{T} line 21: survey.control_rms_max_m: 'abc' is not of type 'number'"),
     "control-rms-negative": ("[survey]\ncontrol_rms_max_m = -1",
-                             f"{T}: survey.control_rms_max_m: -1 is less than or equal to the minimum of 0"),
-    "control-rms-nan": ("[survey]\ncontrol_rms_max_m = nan", f"{T}: survey.control_rms_max_m: nan is not a finite number"),
-    "control-rms-inf": ("[survey]\ncontrol_rms_max_m = inf", f"{T}: survey.control_rms_max_m: inf is not a finite number"),
+                             f"{T} line 21: survey.control_rms_max_m: -1 is less than or equal to the minimum of 0"),
+    "control-rms-nan": ("[survey]\ncontrol_rms_max_m = nan", f"{T} line 21: survey.control_rms_max_m: nan is not a finite number"),
+    "control-rms-inf": ("[survey]\ncontrol_rms_max_m = inf", f"{T} line 21: survey.control_rms_max_m: inf is not a finite number"),
     "adjust-unknown": ('[reconcile]\nadjust = "some"',
-                       f"{T}: reconcile.adjust: 'some' is not one of ['all', 'significant', 'out_of_tolerance']"),
+                       f"{T} line 21: reconcile.adjust: 'some' is not one of ['all', 'significant', 'out_of_tolerance']"),
     "hold-as-text": ('[reconcile]\nhold_unexplained = "yes"',
-                     f"{T}: reconcile.hold_unexplained: 'yes' is not of type 'boolean'"),
-    "hold-as-number": ("[reconcile]\nhold_unexplained = 1", f"{T}: reconcile.hold_unexplained: 1 is not of type 'boolean'"),
-    "currency-two-letters": ('[journal]\ncurrency = "EU"', f"{T}: journal.currency: 'EU' is not a currency code: three "
+                     f"{T} line 21: reconcile.hold_unexplained: 'yes' is not of type 'boolean'"),
+    "hold-as-number": ("[reconcile]\nhold_unexplained = 1", f"{T} line 21: reconcile.hold_unexplained: 1 is not of type 'boolean'"),
+    "currency-two-letters": ('[journal]\ncurrency = "EU"', f"{T} line 21: journal.currency: 'EU' is not a currency code: three "
                                                           "capital letters of ISO 4217, e.g. EUR, USD"),
-    "currency-lower-case": ('[journal]\ncurrency = "eur"', f"{T}: journal.currency: 'eur' is not a currency code: three "
+    "currency-lower-case": ('[journal]\ncurrency = "eur"', f"{T} line 21: journal.currency: 'eur' is not a currency code: three "
                                                            "capital letters of ISO 4217, e.g. EUR, USD"),
-    "currency-word": ('[journal]\ncurrency = "EURO"', f"{T}: journal.currency: 'EURO' is not a currency code: three "
+    "currency-word": ('[journal]\ncurrency = "EURO"', f"{T} line 21: journal.currency: 'EURO' is not a currency code: three "
                                                       "capital letters of ISO 4217, e.g. EUR, USD"),
-    "currency-number": ("[journal]\ncurrency = 978", f"{T}: journal.currency: 978 is not of type 'string'"),
+    "currency-number": ("[journal]\ncurrency = 978", f"{T} line 21: journal.currency: 978 is not of type 'string'"),
     "account-number": ("[journal]\naccounts = { coal = 1400 }",
-                       f"{T}: journal.accounts.coal: 1400 is not of type 'string'"),
+                       f"{T} line 21: journal.accounts.coal: 1400 is not of type 'string'"),
     "account-table": ("[journal]\naccounts = { coal = { a = 1 } }",
-                      f"{T}: journal.accounts.coal: {{'a': 1}} is not of type 'string'"),
-    "account-blank": ('[journal]\naccounts = { coal = "" }', f"{T}: journal.accounts.coal: '' should be non-empty"),
-    "accounts-list": ('[journal]\naccounts = ["a"]', f"{T}: journal.accounts: ['a'] is not of type 'object'"),
+                      f"{T} line 21: journal.accounts.coal: {{'a': 1}} is not of type 'string'"),
+    "account-blank": ('[journal]\naccounts = { coal = "" }', f"{T} line 21: journal.accounts.coal: '' should be non-empty"),
+    "accounts-list": ('[journal]\naccounts = ["a"]', f"{T} line 21: journal.accounts: ['a'] is not of type 'object'"),
     "location-bool": ("[journal]\nlocations = { A = true }",
-                      f"{T}: journal.locations.A: True is not of type 'string'"),
+                      f"{T} line 21: journal.locations.A: True is not of type 'string'"),
     "min-thickness-text": ('[unassigned]\nmin_thickness_m = "x"',
-                           f"{T}: unassigned.min_thickness_m: 'x' is not of type 'number'"),
+                           f"{T} line 21: unassigned.min_thickness_m: 'x' is not of type 'number'"),
     "min-thickness-zero": ("[unassigned]\nmin_thickness_m = 0",
-                           f"{T}: unassigned.min_thickness_m: 0 is less than or equal to the minimum of 0"),
+                           f"{T} line 21: unassigned.min_thickness_m: 0 is less than or equal to the minimum of 0"),
     "min-thickness-nan": ("[unassigned]\nmin_thickness_m = nan",
-                          f"{T}: unassigned.min_thickness_m: nan is not a finite number"),
+                          f"{T} line 21: unassigned.min_thickness_m: nan is not a finite number"),
     "min-thickness-inf": ("[unassigned]\nmin_thickness_m = inf",
-                          f"{T}: unassigned.min_thickness_m: inf is not a finite number"),
-    "min-area-negative": ("[unassigned]\nmin_area_m2 = -4", f"{T}: unassigned.min_area_m2: -4 is less than the minimum of 0"),
-    "min-area-nan": ("[unassigned]\nmin_area_m2 = nan", f"{T}: unassigned.min_area_m2: nan is not a finite number"),
-    "min-area-minus-inf": ("[unassigned]\nmin_area_m2 = -inf", f"{T}: unassigned.min_area_m2: -inf is not a finite number"),
-    "unassigned-unknown-key": ("[unassigned]\nmin_volume = 3", f"{T}: unassigned.min_volume: unknown key"),
+                          f"{T} line 21: unassigned.min_thickness_m: inf is not a finite number"),
+    "min-area-negative": ("[unassigned]\nmin_area_m2 = -4", f"{T} line 21: unassigned.min_area_m2: -4 is less than the minimum of 0"),
+    "min-area-nan": ("[unassigned]\nmin_area_m2 = nan", f"{T} line 21: unassigned.min_area_m2: nan is not a finite number"),
+    "min-area-minus-inf": ("[unassigned]\nmin_area_m2 = -inf", f"{T} line 21: unassigned.min_area_m2: -inf is not a finite number"),
+    "unassigned-unknown-key": ("[unassigned]\nmin_volume = 3", f"{T} line 21: unassigned.min_volume: unknown key"),
     "ledger-url-words": ('[ledger]\nurl = "not a url"',
-                         f"{T}: ledger.url: 'not a url' is not a PostgreSQL URL: postgresql://user@host:port/database"),
+                         f"{T} line 21: ledger.url: 'not a url' is not a PostgreSQL URL: postgresql://user@host:port/database"),
     "ledger-url-other-database": ('[ledger]\nurl = "mysql://u@h/db"',
-                                  f"{T}: ledger.url: 'mysql://u@h/db' is not a PostgreSQL URL: "
+                                  f"{T} line 21: ledger.url: 'mysql://u@h/db' is not a PostgreSQL URL: "
                                   "postgresql://user@host:port/database"),
-    "ledger-url-number": ("[ledger]\nurl = 5", f"{T}: ledger.url: 5 is not of type 'string'"),
-    "ledger-site-id-blank": ('[ledger]\nsite_id = ""', f"{T}: ledger.site_id: '' should be non-empty"),
-    "ledger-site-id-number": ("[ledger]\nsite_id = 3", f"{T}: ledger.site_id: 3 is not of type 'string'"),
+    "ledger-url-number": ("[ledger]\nurl = 5", f"{T} line 21: ledger.url: 5 is not of type 'string'"),
+    "ledger-site-id-blank": ('[ledger]\nsite_id = ""', f"{T} line 21: ledger.site_id: '' should be non-empty"),
+    "ledger-site-id-number": ("[ledger]\nsite_id = 3", f"{T} line 21: ledger.site_id: 3 is not of type 'string'"),
     "key-given-twice": ('[journal]\ncurrency = "EUR"\ncurrency = "USD"',
                         "error: site/site.toml line 22: not valid TOML: Cannot overwrite a value (at line 22, column 17)"),
 }
@@ -112,20 +114,20 @@ def test_damaged_site_toml_sections(good_site, capsys, text, expected):
 
 
 TOP = {
-    "vertical-reference-number": ("vertical_reference = 5", f"{T}: vertical_reference: 5 is not of type 'string'"),
-    "vertical-reference-blank": ('vertical_reference = ""', f"{T}: vertical_reference: '' should be non-empty"),
+    "vertical-reference-number": ("vertical_reference = 5", f"{T} line 1: vertical_reference: 5 is not of type 'string'"),
+    "vertical-reference-blank": ('vertical_reference = ""', f"{T} line 1: vertical_reference: '' should be non-empty"),
     "vertical-crs-unknown": ('vertical_crs = "EPSG:99999999"',
-                             f"{T}: vertical_crs: unknown CRS 'EPSG:99999999' (Invalid projection: EPSG:99999999: "
+                             f"{T} line 1: vertical_crs: unknown CRS 'EPSG:99999999' (Invalid projection: EPSG:99999999: "
                              "(Internal Proj Error: proj_create: crs not found: EPSG:99999999))"),
     "vertical-crs-horizontal": ('vertical_crs = "EPSG:25832"',
-                                f"{T}: vertical_crs: EPSG:25832 (ETRS89 / UTM zone 32N) is not a vertical CRS"),
+                                f"{T} line 1: vertical_crs: EPSG:25832 (ETRS89 / UTM zone 32N) is not a vertical CRS"),
     # EPSG:6360 is NAVD88 height in US survey feet (EPSG registry)
     "vertical-crs-in-feet": ('vertical_crs = "EPSG:6360"',
-                             f"{T}: vertical_crs: EPSG:6360 (NAVD88 height (ftUS)) has heights in US survey foot; use "
+                             f"{T} line 1: vertical_crs: EPSG:6360 (NAVD88 height (ftUS)) has heights in US survey foot; use "
                              "a vertical CRS in metres"),
     "vertical-crs-proj-string": ('vertical_crs = "+proj=foo"',
-                                 f"{T}: vertical_crs: '+proj=foo' is not an EPSG code: EPSG:<number>, e.g. EPSG:25832"),
-    "vertical-crs-number": ("vertical_crs = 5703", f"{T}: vertical_crs: 5703 is not of type 'string'"),
+                                 f"{T} line 1: vertical_crs: '+proj=foo' is not an EPSG code: EPSG:<number>, e.g. EPSG:25832"),
+    "vertical-crs-number": ("vertical_crs = 5703", f"{T} line 1: vertical_crs: 5703 is not of type 'string'"),
 }
 
 
@@ -150,7 +152,7 @@ def test_site_toml_with_bom_and_crlf_is_read(good_site, capsys):
 def test_a_close_refuses_nan_settings_before_writing(good_site, capsys):
     append(good_site, "[unassigned]\nmin_thickness_m = nan")
     line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
-    assert line == f"{T}: unassigned.min_thickness_m: nan is not a finite number"
+    assert line == f"{T} line 21: unassigned.min_thickness_m: nan is not a finite number"
 
 
 # ----------------------------------------------------------------------------- materials.csv unit_cost

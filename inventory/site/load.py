@@ -410,6 +410,7 @@ class _Loader:
         self.problems: list[Problem] = []
         self.allow_outside = False
         self.refused: set[tuple] = set()  # site.toml keys the schema refused
+        self.toml_text: str | None = None  # site.toml as read, to find a key's line
         self.by_period: dict[str, list[Problem]] = {}
 
     # -- helpers
@@ -432,7 +433,15 @@ class _Loader:
 
     def error(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
-        self.problems.append(Problem(shown, where, fieldname, why))
+        self.problems.append(Problem(shown, self._toml_where(path, where, fieldname), fieldname, why))
+
+    def _toml_where(self, path: Path | str, where: Any, fieldname: str | None) -> Any:
+        """The line of a site.toml key named by ``fieldname`` when no line is given."""
+        if where is not None or not fieldname or not self.toml_text:
+            return where
+        if not isinstance(path, Path) or path.absolute() != self.root / "site.toml":
+            return where
+        return _toml_line(self.toml_text, fieldname)
 
     def errors_in(self, path: Path, fieldname: str | None = None) -> list[Problem]:
         """The errors reported so far on ``path`` (on its ``fieldname`` when given)."""
@@ -442,7 +451,7 @@ class _Loader:
 
     def warn(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
-        self.problems.append(Problem(shown, where, fieldname, why, "warning"))
+        self.problems.append(Problem(shown, self._toml_where(path, where, fieldname), fieldname, why, "warning"))
 
     def table(self, path: Path, name: str, *, empty_ok: bool = False) -> pd.DataFrame:
         schema = table_schema(name)
@@ -502,7 +511,9 @@ class _Loader:
             self.error(path, None, None, "file not found")
             return None
         try:
-            raw = tomllib.loads(path.read_bytes().decode("utf-8-sig"))
+            text = path.read_bytes().decode("utf-8-sig")
+            raw = tomllib.loads(text)
+            self.toml_text = text
         except UnicodeDecodeError:
             self.error(path, None, None, "not UTF-8 text")
             return None
@@ -1223,6 +1234,48 @@ def _nesting(value: Any) -> tuple[int, str | None]:
             deepest, key = depth, top
         stack.extend((v, depth + 1, t) for v, t in children)
     return deepest, key
+
+
+_TOML_HEADER = re.compile(r"^\s*(\[\[?)\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
+_TOML_KEY = re.compile(r"^\s*((?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*')(?:\s*\.\s*(?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*'))*)\s*=")
+
+
+def _toml_parts(dotted: str) -> tuple:
+    parts = re.findall(r"\"[^\"]*\"|'[^']*'|[^.\s]+", dotted)
+    return tuple(p[1:-1] if p[:1] in "\"'" else p for p in parts)
+
+
+def _toml_line(text: str, fieldname: str) -> int | None:
+    """The line of site.toml that sets ``fieldname`` (a dotted key as in messages:
+    ``journal.accounts.coal``, ``scales.0.id``), or the nearest line that holds it (the inline
+    table it is in, its table's header); ``None`` when the key is nowhere in the file.
+
+    A line-by-line reading of TOML's tables and keys (enough for messages; the file has been
+    parsed already): keys inside multi-line strings or arrays are not looked into.
+    """
+    want = tuple(str(p) for p in _toml_parts(fieldname))
+    best: tuple[int, int] | None = None   # (matched length, line)
+    table: tuple = ()
+    arrays: dict[tuple, int] = {}
+    for number, line in enumerate(text.splitlines(), start=1):
+        head = _TOML_HEADER.match(line)
+        key = None if head else _TOML_KEY.match(line)
+        if head:
+            names = _toml_parts(head.group(2))
+            if head.group(1) == "[[":
+                arrays[names] = arrays.get(names, -1) + 1
+                table = names + (str(arrays[names]),)
+            else:
+                table = names
+            full = table
+        elif key:
+            full = table + _toml_parts(key.group(1))
+        else:
+            continue
+        full = tuple(str(p) for p in full)
+        if full == want[:len(full)] and (best is None or len(full) > best[0]):
+            best = (len(full), number)
+    return None if best is None else best[1]
 
 
 def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
