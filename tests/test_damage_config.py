@@ -256,3 +256,36 @@ def test_history_xlsx_needs_an_output(good_site, capsys):
     line = refused_once(good_site, capsys, ["history", str(good_site), "--format", "xlsx"])
     assert line == ("error: --format xlsx needs --output FILE.xlsx (a workbook is written to a file, not to the "
                     "terminal)")
+
+
+def test_history_output_that_is_a_folder(good_site, tmp_path, capsys):
+    folder = tmp_path / "reports"
+    folder.mkdir()
+    for fmt in ("csv", "xlsx"):
+        line = refused_once(good_site, capsys, ["history", str(good_site), "--format", fmt, "--output", str(folder)])
+        assert line == f"error: --output: {folder} is a folder; give a file name, e.g. {folder / 'history.csv'}"
+    assert list(folder.iterdir()) == [] and sorted(p.name for p in tmp_path.iterdir()) == ["reports", "site"]
+
+
+def test_history_output_under_a_file(good_site, tmp_path, capsys):
+    blocker = tmp_path / "notes.txt"
+    blocker.write_text("a file where a folder is expected")
+    line = refused_once(good_site, capsys, ["history", str(good_site), "--format", "csv",
+                                            "--output", str(blocker / "sub" / "h.csv")])
+    assert line == f"error: --output: {blocker / 'sub' / 'h.csv'}: {blocker} is a file, not a folder"
+    assert blocker.read_text() == "a file where a folder is expected"
+
+
+@pytest.mark.parametrize("option, value, choices", [
+    ("--by", "year", "'pile', 'material', 'month'"),
+    ("--format", "pdf", "'table', 'csv', 'json', 'html', 'xlsx'"),
+])
+def test_history_choice_not_offered(good_site, capsys, option, value, choices):
+    # argparse answers an unknown choice itself: usage, one error line, exit 2
+    before = snapshot(good_site)
+    with pytest.raises(SystemExit) as stop:
+        main(["history", str(good_site), option, value])
+    assert stop.value.code == 2
+    last = capsys.readouterr().err.strip().splitlines()[-1]
+    assert last == f"inventory history: error: argument {option}: invalid choice: '{value}' (choose from {choices})"
+    assert snapshot(good_site) == before
