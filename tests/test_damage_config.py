@@ -60,13 +60,16 @@ SECTIONS = {
                          f"{T} line 21: survey.control_rms_max_m: 'abc' is not of type 'number'"),
     "control-rms-negative": ("[survey]\ncontrol_rms_max_m = -1",
                              f"{T} line 21: survey.control_rms_max_m: -1 is less than or equal to the minimum of 0"),
-    "control-rms-nan": ("[survey]\ncontrol_rms_max_m = nan", f"{T} line 21: survey.control_rms_max_m: nan is not a finite number"),
-    "control-rms-inf": ("[survey]\ncontrol_rms_max_m = inf", f"{T} line 21: survey.control_rms_max_m: inf is not a finite number"),
+    "control-rms-nan": ("[survey]\ncontrol_rms_max_m = nan",
+                        f"{T} line 21: survey.control_rms_max_m: nan is not a finite number"),
+    "control-rms-inf": ("[survey]\ncontrol_rms_max_m = inf",
+                        f"{T} line 21: survey.control_rms_max_m: inf is not a finite number"),
     "adjust-unknown": ('[reconcile]\nadjust = "some"',
                        f"{T} line 21: reconcile.adjust: 'some' is not one of ['all', 'significant', 'out_of_tolerance']"),
     "hold-as-text": ('[reconcile]\nhold_unexplained = "yes"',
                      f"{T} line 21: reconcile.hold_unexplained: 'yes' is not of type 'boolean'"),
-    "hold-as-number": ("[reconcile]\nhold_unexplained = 1", f"{T} line 21: reconcile.hold_unexplained: 1 is not of type 'boolean'"),
+    "hold-as-number": ("[reconcile]\nhold_unexplained = 1",
+                       f"{T} line 21: reconcile.hold_unexplained: 1 is not of type 'boolean'"),
     "currency-two-letters": ('[journal]\ncurrency = "EU"', f"{T} line 21: journal.currency: 'EU' is not a currency code: three "
                                                           "capital letters of ISO 4217, e.g. EUR, USD"),
     "currency-lower-case": ('[journal]\ncurrency = "eur"', f"{T} line 21: journal.currency: 'eur' is not a currency code: three "
@@ -90,9 +93,12 @@ SECTIONS = {
                           f"{T} line 21: unassigned.min_thickness_m: nan is not a finite number"),
     "min-thickness-inf": ("[unassigned]\nmin_thickness_m = inf",
                           f"{T} line 21: unassigned.min_thickness_m: inf is not a finite number"),
-    "min-area-negative": ("[unassigned]\nmin_area_m2 = -4", f"{T} line 21: unassigned.min_area_m2: -4 is less than the minimum of 0"),
-    "min-area-nan": ("[unassigned]\nmin_area_m2 = nan", f"{T} line 21: unassigned.min_area_m2: nan is not a finite number"),
-    "min-area-minus-inf": ("[unassigned]\nmin_area_m2 = -inf", f"{T} line 21: unassigned.min_area_m2: -inf is not a finite number"),
+    "min-area-negative": ("[unassigned]\nmin_area_m2 = -4",
+                          f"{T} line 21: unassigned.min_area_m2: -4 is less than the minimum of 0"),
+    "min-area-nan": ("[unassigned]\nmin_area_m2 = nan",
+                     f"{T} line 21: unassigned.min_area_m2: nan is not a finite number"),
+    "min-area-minus-inf": ("[unassigned]\nmin_area_m2 = -inf",
+                           f"{T} line 21: unassigned.min_area_m2: -inf is not a finite number"),
     "unassigned-unknown-key": ("[unassigned]\nmin_volume = 3", f"{T} line 21: unassigned.min_volume: unknown key"),
     "ledger-url-words": ('[ledger]\nurl = "not a url"',
                          f"{T} line 21: ledger.url: 'not a url' is not a PostgreSQL URL: postgresql://user@host:port/database"),
@@ -114,7 +120,8 @@ def test_damaged_site_toml_sections(good_site, capsys, text, expected):
 
 
 TOP = {
-    "vertical-reference-number": ("vertical_reference = 5", f"{T} line 1: vertical_reference: 5 is not of type 'string'"),
+    "vertical-reference-number": ("vertical_reference = 5",
+                                  f"{T} line 1: vertical_reference: 5 is not of type 'string'"),
     "vertical-reference-blank": ('vertical_reference = ""', f"{T} line 1: vertical_reference: '' should be non-empty"),
     "vertical-crs-unknown": ('vertical_crs = "EPSG:99999999"',
                              f"{T} line 1: vertical_crs: unknown CRS 'EPSG:99999999' (Invalid projection: EPSG:99999999: "
