@@ -216,6 +216,21 @@ def test_e57_with_one_byte_flipped(good_site, capsys, e57_bytes):
         f"error: {S}/b.e57: not a readable E57 file, truncated or damaged ({E57_WHY['checksum']})")
 
 
+@pytest.mark.parametrize("scan, expected", [
+    ({"xyz": np.zeros((0, 3))}, "no point in the file"),
+    ({"xyz": POINTS, "invalid": np.full(N, 2)}, f"no valid point in the file ({N} point(s), each flagged invalid or "
+                                                "not a finite number)"),
+    ({"xyz": POINTS, "pose": ((0, 0, 0, 0), (0, 0, 0))},
+     "damaged E57 structure (scan 1: its pose is not a rotation quaternion and a translation ([0.0, 0.0, 0.0, 0.0], "
+     "[0.0, 0.0, 0.0]))"),
+], ids=["no-point", "every-point-invalid", "zero-quaternion"])
+def test_e57_without_usable_points_or_pose(good_site, capsys, write_e57, tmp_path, scan, expected):
+    path = write_e57(tmp_path / "b.e57", [{"pose": ((1, 0, 0, 0), (0, 0, 0)), **scan}],
+                     coordinate_metadata=pyproj.CRS("EPSG:25832").to_wkt())
+    deliver(good_site, "b.e57", path.read_bytes(), prj=None)
+    assert refused_once(good_site, capsys) == f"error: {S}/b.e57: {expected}"
+
+
 # ----------------------------------------------------------------------------- stations.csv scan rows
 @pytest.fixture(scope="module")
 def two_scans(write_e57, tmp_path_factory) -> bytes:
