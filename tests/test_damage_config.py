@@ -296,3 +296,14 @@ def test_history_choice_not_offered(good_site, capsys, option, value, choices):
     last = capsys.readouterr().err.strip().splitlines()[-1]
     assert last == f"inventory history: error: argument {option}: invalid choice: '{value}' (choose from {choices})"
     assert snapshot(good_site) == before
+
+
+def test_unit_cost_without_a_currency_is_a_warning(good_site, capsys):
+    (good_site / "materials.csv").write_text(MATERIAL_HEAD + "coal,0.85,0.03,8,3,80\nsalt,1.25,0.04,2,2,\n")
+    assert main(["check", str(good_site)]) == 0
+    warnings = [line for line in capsys.readouterr().err.splitlines() if line.startswith("warning: ")]
+    assert warnings == ["warning: site/materials.csv line 1: unit_cost: 1 material(s) have a unit cost but site.toml "
+                        "has no [journal] currency: the journal's values carry no currency"]
+    append(good_site, '[journal]\ncurrency = "EUR"')
+    assert main(["check", str(good_site)]) == 0
+    assert "warning:" not in capsys.readouterr().err

@@ -482,6 +482,12 @@ class _Loader:
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
         self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
+        if config.journal.currency is None and materials:
+            costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
+            if costed:
+                self.warn(self.root / "materials.csv", 1, "unit_cost",
+                          f"{len(costed)} material(s) have a unit cost but site.toml has no [journal] currency: "
+                          "the journal's values carry no currency")
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
