@@ -113,6 +113,8 @@ CLOUDS = {
     "ply-binary-cut-mid-vertex": ("b.ply", ply(binary=True)[:-3], None,
                                   f"error: {S}/b.ply: truncated: the header says {N} vertices but the file has "
                                   f"room for {N - 1}"),
+    "ply-short-line": ("b.ply", ply(count=N + 1) + b"1 2\n", None,
+                       f"error: {S}/b.ply line 68: columns: expected 3 values, found 2"),
     "ply-nan": ("b.ply", ply(with_point(POINTS, np.nan)), None,
                 f"error: {S}/b.ply line 68: x: a coordinate is not a finite number"),
     "ply-binary-inf": ("b.ply", ply(with_point(POINTS, np.inf), binary=True), None,

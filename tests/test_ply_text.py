@@ -79,7 +79,7 @@ def test_truncated_and_broken_ply(tmp_path):
                      b"property float z\nend_header\n1 2 3\n3 4\n")
     with pytest.raises(InputError) as err:
         read_cloud(path)
-    assert str(err.value) == f"{path} line 9: expected 3 values, found 2"
+    assert str(err.value) == f"{path} line 9: columns: expected 3 values, found 2"
 
 
 def test_text_clouds(tmp_path):

@@ -211,7 +211,8 @@ class PlyReader:
                                                     f"ends after {self.count - left + len(rows):,}", line=line)
                     words = raw.split()
                     if len(words) != width:
-                        raise InputError(self.path, f"expected {width} values, found {len(words)}", line=line)
+                        raise InputError(self.path, f"expected {width} values, found {len(words)}", line=line,
+                                         field="columns")
                     rows.append(words)
                 try:
                     values = np.array(rows, dtype=float)
