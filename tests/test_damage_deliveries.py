@@ -341,6 +341,9 @@ CONTROLS = {
         "0.050 m ([survey] control_rms_max_m); largest residual at B: 0.500 m"),
     "text-number": (control().replace("40.0,0.0,10.0,", "forty,0.0,10.0,", 1), f"error: {C} line 3: x: 'forty' is not a number"),
     "nan": (control().replace("40.0,0.0,10.0,", "nan,0.0,10.0,", 1), f"error: {C} line 3: x: 'nan' is not a finite number"),
+    # 1e10 is beyond any coordinate on the Earth, even in millimetres (mixed units meet the scale check)
+    "huge": (control().replace("40.0,0.0,10.0,", "1e300,0.0,10.0,", 1), f"error: {C} line 3: x: 1e+300 is above the "
+                                                                         "maximum 1e+10"),
     "missing-column": (control(head="point_id,x,y,z,e,n,hh"), f"error: {C} line 1: h: required column is missing"),
     "sigma-zero-on-one": (control(head="point_id,x,y,z,e,n,h,sigma_m", extra=",0.01").replace(",0.01\n", ",0\n", 1),
                           f"error: {C} line 2: sigma_m: 0 must be greater than 0"),
