@@ -134,6 +134,8 @@ def _cmd_history(args: argparse.Namespace) -> int:
         _err("error: --format xlsx needs --output FILE.xlsx (a workbook is written to a file, "
              "not to the terminal)")
         return EXIT_BAD_INPUT
+    if args.output is not None:
+        _output_file(args.output)
     select = dict(pile=args.pile, material=args.material, start=args.start, end=args.end,
                   ledger_url=args.ledger, site_id=args.site_id)
     frame = period_history(args.site, by=args.by, **select)
@@ -164,6 +166,17 @@ def _cmd_history(args: argparse.Namespace) -> int:
     else:
         sys.stdout.write(text)
     return EXIT_OK
+
+
+def _output_file(path: Path) -> None:
+    """Refuse, before any work, an ``--output`` that names a folder or lies under a file."""
+    if path.is_dir():
+        raise InputError("--output", f"{path} is a folder; give a file name, e.g. {path / 'history.csv'}")
+    parent = path.parent
+    while not parent.exists() and parent != parent.parent:
+        parent = parent.parent
+    if not parent.is_dir():
+        raise InputError("--output", f"{path}: {parent} is a file, not a folder")
 
 
 # ----------------------------------------------------------------------------- parser

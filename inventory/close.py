@@ -417,6 +417,7 @@ def open_ledger(root: Path, raw: dict | None = None, url: str | None = None,
     table = raw.get("ledger") if isinstance(raw.get("ledger"), dict) else {}
     if url is not None and not is_url(url):
         raise InputError("--ledger", "not a PostgreSQL URL (postgresql://user@host:port/database)")
+    given = url
     url = url or table.get("url")
     if not url:
         if site_id is not None:
@@ -425,13 +426,14 @@ def open_ledger(root: Path, raw: dict | None = None, url: str | None = None,
     if not is_url(url):
         raise InputError(root / "site.toml", "not a PostgreSQL URL (postgresql://user@host:port/database)",
                          field="ledger.url")
+    source = ("--ledger", None) if url == given else (str(root / "site.toml"), "ledger.url")
     if every_site and site_id is None:
-        return PgLedger(url, None)
+        return PgLedger(url, None, source=source)
     site_id = site_id or table.get("site_id") or raw.get("name")
     if not site_id:
         raise InputError(root / "site.toml", "a shared ledger needs the site's id: set [ledger] site_id or name",
                          field="ledger.site_id")
-    return PgLedger(url, str(site_id))
+    return PgLedger(url, str(site_id), source=source)
 
 
 def _load(site_path: str | Path, period: str, say: Progress, ledger_url: str | None = None) -> _Loaded:

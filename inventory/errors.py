@@ -24,6 +24,7 @@ __all__ = [
     "PipelineError",
     "LedgerError",
     "PeriodLockedError",
+    "LedgerInputError",
     "RunError",
     "InventoryWarning",
     "CoverageWarning",
@@ -126,6 +127,12 @@ class PeriodLockedError(LedgerError):
     """Raised when a closed period would be closed again without being reopened."""
 
     exit_code = EXIT_BAD_INPUT
+
+
+class LedgerInputError(InputError, LedgerError):
+    """Raised when the ledger the input names cannot be used: a ledger file that is not a
+    SQLite database, a shared ledger's URL whose server cannot be reached. Bad input (exit
+    2, naming where the ledger was given) that ``except LedgerError`` still catches."""
 
 
 class RunError(InventoryError, RuntimeError):

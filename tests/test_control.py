@@ -126,7 +126,9 @@ def test_disagreeing_control_points_are_refused(good_site):
     errors = [str(e) for e in report.errors]
     assert len(errors) == 1
     line = errors[0]
-    assert line.startswith("site/surveys/2026-10-31/control.csv: control points disagree: 7-parameter fit RMS ")
+    # the line and the coordinates of the worst point (CP3, the third data row)
+    assert line.startswith("site/surveys/2026-10-31/control.csv line 4: e, n, h: control points disagree: "
+                           "7-parameter fit RMS ")
     assert "exceeds the tolerance 0.050 m" in line and "\n" not in line
     with pytest.raises(InputErrors):
         load_site(good_site)
@@ -277,5 +279,5 @@ def test_a_close_with_disagreeing_control_writes_nothing(good_site):
     before = sorted(x.relative_to(good_site) for x in good_site.rglob("*"))
     with pytest.raises(InputErrors) as err:
         close_period(good_site, "2026-10")
-    assert "site/surveys/2026-10-31/control.csv: control points disagree" in str(err.value)
+    assert "site/surveys/2026-10-31/control.csv line 4: e, n, h: control points disagree" in str(err.value)
     assert sorted(x.relative_to(good_site) for x in good_site.rglob("*")) == before

@@ -134,7 +134,7 @@ def test_stations_csv_gives_a_scan_its_pose(good_site, write_e57):
     stations = folder / "stations.csv"
     # no pose for scan 'south' in the file: refused, naming it
     errors = [str(e) for e in check_site(good_site).errors]
-    assert errors == ["site/surveys/2026-10-31/two.e57: scan 2 'south' has no pose (ASTM E2807 data3D pose); "
+    assert errors == ["site/surveys/2026-10-31/two.e57: pose: scan 2 'south' has no pose (ASTM E2807 data3D pose); "
                       "give it one in stations.csv (file two.e57, scan 2)"]
     with open(stations, "a") as f:
         f.write("two.e57,S2,2026-10-31T15:00:00+01:00,500030,5700002,10.5,0,0,90\n")
@@ -163,7 +163,7 @@ def test_e57_without_pose_is_refused_and_nothing_written(good_site, write_e57, t
     write_e57(folder / "loose.e57", [dict(xyz=np.random.default_rng(1).uniform(0, 5, (100, 3)), pose=None)],
               "EPSG:25832")
     errors = [str(e) for e in check_site(good_site).errors]
-    assert errors == ["site/surveys/2026-10-31/loose.e57: scan 1 'scan1' has no pose (ASTM E2807 data3D pose); "
+    assert errors == ["site/surveys/2026-10-31/loose.e57: pose: scan 1 'scan1' has no pose (ASTM E2807 data3D pose); "
                       "give it one in stations.csv (file loose.e57, scan 1)",
                       "site/surveys/2026-10-31: no readable point cloud in the survey folder"]
     with pytest.raises(InputErrors):

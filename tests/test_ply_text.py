@@ -79,7 +79,7 @@ def test_truncated_and_broken_ply(tmp_path):
                      b"property float z\nend_header\n1 2 3\n3 4\n")
     with pytest.raises(InputError) as err:
         read_cloud(path)
-    assert str(err.value) == f"{path} line 9: expected 3 values, found 2"
+    assert str(err.value) == f"{path} line 9: columns: expected 3 values, found 2"
 
 
 def test_text_clouds(tmp_path):
@@ -114,7 +114,7 @@ def test_bad_text_lines_are_named(tmp_path):
     path.write_text("1 2 3\n\n1 2 x\n")
     with pytest.raises(InputError) as err:
         read_cloud(path)
-    assert str(err.value) == f"{path} line 3: not a number: 'x'"
+    assert str(err.value) == f"{path} line 3: z: not a number: 'x'"
     path.write_text("1 2 3 4 5\n")
     with pytest.raises(InputError, match="line 1: 5 columns; expected x y z"):
         open_cloud(path)

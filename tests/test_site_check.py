@@ -178,13 +178,13 @@ def test_unknown_pile_in_opening(good_site):
 def test_unknown_crs(good_site):
     edit(good_site / "site.toml", 'crs = "EPSG:25832"', 'crs = "EPSG:999999"')
     msgs = errors_of(good_site)
-    assert any(m.startswith("site/site.toml: crs: unknown CRS 'EPSG:999999'") for m in msgs), msgs
+    assert any(m.startswith("site/site.toml line 2: crs: unknown CRS 'EPSG:999999'") for m in msgs), msgs
 
 
 def test_geographic_crs_refused_for_volumes(good_site):
     edit(good_site / "site.toml", 'crs = "EPSG:25832"', 'crs = "EPSG:4326"')
     msgs = errors_of(good_site)
-    assert any(m.startswith("site/site.toml: crs: EPSG:4326 (WGS 84) is not a projected CRS") for m in msgs), msgs
+    assert any(m.startswith("site/site.toml line 2: crs: EPSG:4326 (WGS 84) is not a projected CRS") for m in msgs), msgs
 
 
 def test_feet_crs_refused(good_site):
@@ -216,7 +216,7 @@ def test_bad_vertical_reference_is_named(good_site, line, why):
     toml = good_site / "site.toml"
     toml.write_text(line + "\n" + toml.read_text())
     msgs = errors_of(good_site)
-    assert any(m.startswith(f"site/site.toml: {why}") for m in msgs), msgs
+    assert any(m.startswith(f"site/site.toml line 1: {why}") for m in msgs), msgs
 
 
 def test_missing_required_key(good_site):
@@ -226,12 +226,12 @@ def test_missing_required_key(good_site):
 
 def test_unknown_key_in_site_toml(good_site):
     edit(good_site / "site.toml", "[grid]\n", "[grid]\ncell = 1\n")
-    assert "site/site.toml: grid.cell: unknown key" in errors_of(good_site)
+    assert "site/site.toml line 6: grid.cell: unknown key" in errors_of(good_site)
 
 
 def test_unknown_timezone(good_site):
     edit(good_site / "site.toml", "Europe/Berlin", "Europe/Atlantis")
-    assert "site/site.toml: timezone: unknown IANA time zone 'Europe/Atlantis'" in errors_of(good_site)
+    assert "site/site.toml line 3: timezone: unknown IANA time zone 'Europe/Atlantis'" in errors_of(good_site)
 
 
 # --- pile register --------------------------------------------------------------------------

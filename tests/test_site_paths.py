@@ -39,6 +39,7 @@ def refused(site: Path, capsys) -> list[str]:
 
 
 def add_toml(site: Path, text: str) -> None:
+    """Append ``text`` after a blank line: on the small site, its first line is line 20."""
     with open(site / "site.toml", "a") as f:
         f.write("\n" + text)
 
@@ -67,24 +68,27 @@ def test_a_wrong_type_in_site_toml_names_the_key(good_site, capsys, toml, key, w
         text = text.replace('timezone = "Europe/Berlin"\n', 'timezone = "Europe/Berlin"\n' + toml + "\n")
         text = text.split("[[scales]]")[0] if toml.startswith("scales") else text
         toml = ""
-    (good_site / "site.toml").write_text(text + "\n" + toml + "\n")
+    written = text + "\n" + toml + "\n"
+    (good_site / "site.toml").write_text(written)
+    # the message names the line that sets the key
+    line = next(n for n, t in enumerate(written.splitlines(), 1) if t.startswith(key.split(".")[-1] + " ="))
     errors = refused(good_site, capsys)
     named = [e for e in errors if e.startswith("site/site.toml")]
-    assert len(named) == 1 and named[0].startswith(f"site/site.toml: {key}: {why}"), errors
+    assert len(named) == 1 and named[0].startswith(f"site/site.toml line {line}: {key}: {why}"), errors
     if key != "scales":  # without scales, tickets also name their unknown scales
         assert len(errors) == 1, errors
 
 
 def test_a_table_as_a_scale_id_is_reported_not_hashed(good_site, capsys):
     add_toml(good_site, '[[scales]]\nid = { a = 1 }\nkind = "belt"\ndirection = "in"\naccuracy_class = "1"\n')
-    assert refused(good_site, capsys) == ["site/site.toml: scales.2.id: {'a': 1} is not of type 'string'"]
+    assert refused(good_site, capsys) == ["site/site.toml line 21: scales.2.id: {'a': 1} is not of type 'string'"]
 
 
 def test_a_refused_scale_key_does_not_make_its_tickets_unknown(good_site, capsys):
     text = (good_site / "site.toml").read_text().replace("scale_interval_kg = 20", 'scale_interval_kg = "twenty"')
     (good_site / "site.toml").write_text(text)
     assert refused(good_site, capsys) == [
-        "site/site.toml: scales.0.scale_interval_kg: 'twenty' is not of type 'number'"]
+        "site/site.toml line 12: scales.0.scale_interval_kg: 'twenty' is not of type 'number'"]
 
 
 # --- case 2: deep nesting ------------------------------------------------------------------
@@ -109,14 +113,14 @@ def test_nesting_the_schema_uses_is_accepted(good_site):
 def test_a_floor_raster_that_does_not_exist_names_key_and_path(good_site, capsys):
     add_toml(good_site, '[base]\nfloor_raster = "base/flor.tif"\n')
     assert refused(good_site, capsys) == [
-        "site/site.toml: base.floor_raster: no file 'base/flor.tif' (paths are relative to the site folder)"]
+        "site/site.toml line 21: base.floor_raster: no file 'base/flor.tif' (paths are relative to the site folder)"]
 
 
 def test_a_floor_raster_name_too_long_for_the_file_system_is_not_found(good_site, capsys):
     name = "a" * 300 + ".tif"  # longer than a file name may be (255 bytes on common file systems)
     add_toml(good_site, f'[base]\nfloor_raster = "{name}"\n')
     assert refused(good_site, capsys) == [
-        f"site/site.toml: base.floor_raster: no file '{name}' (paths are relative to the site folder)"]
+        f"site/site.toml line 21: base.floor_raster: no file '{name}' (paths are relative to the site folder)"]
 
 
 def test_an_absolute_floor_raster_outside_the_site_is_refused(good_site, tmp_path, capsys):
@@ -124,7 +128,7 @@ def test_an_absolute_floor_raster_outside_the_site_is_refused(good_site, tmp_pat
     elsewhere.write_bytes(b"not read")
     add_toml(good_site, f'[base]\nfloor_raster = "{elsewhere}"\n')
     assert refused(good_site, capsys) == [
-        f"site/site.toml: base.floor_raster: '{elsewhere}' is outside the site folder (refused; {OUTSIDE})"]
+        f"site/site.toml line 21: base.floor_raster: '{elsewhere}' is outside the site folder (refused; {OUTSIDE})"]
 
 
 def test_an_absolute_floor_raster_inside_the_site_is_used(good_site):
@@ -146,14 +150,14 @@ def test_allow_outside_lets_a_floor_raster_outside_be_used(good_site, tmp_path):
 
 def test_allow_outside_must_be_a_boolean(good_site, capsys):
     add_toml(good_site, '[paths]\nallow_outside = "yes"\n')
-    assert refused(good_site, capsys) == ["site/site.toml: paths.allow_outside: 'yes' is not of type 'boolean'"]
+    assert refused(good_site, capsys) == ["site/site.toml line 21: paths.allow_outside: 'yes' is not of type 'boolean'"]
 
 
 def test_a_pipeline_outside_the_site_is_refused(good_site, capsys):
     (good_site.parent / "p.json").write_text("[]")
     add_toml(good_site, '[survey]\npipeline = "../p.json"\n')
     assert refused(good_site, capsys) == [
-        f"site/site.toml: survey.pipeline: '../p.json' is outside the site folder (refused; {OUTSIDE})"]
+        f"site/site.toml line 21: survey.pipeline: '../p.json' is outside the site folder (refused; {OUTSIDE})"]
 
 
 def test_a_station_file_outside_the_site_is_refused(good_site, capsys):

@@ -34,6 +34,9 @@ class CloudInfo:
     version: str = ""
     point_format: int = -1
     error: str | None = None
+    #: The error as a :class:`~inventory.errors.Problem` when the reader gave one: the file it
+    #: is in (a ``.prj`` beside the cloud, say), the line or vertex and the field.
+    problem: Any = None
 
 
 def _las_problem(header: Any, size: int) -> str | None:
@@ -137,7 +140,7 @@ def _inspect_other(path: Path, poses: "dict | None") -> CloudInfo:
                              crs_wkt=crs.to_wkt() if crs is not None else None,
                              version=path.suffix.lower().lstrip("."))
     except InputError as err:
-        return CloudInfo(path, error=err.why)
+        return CloudInfo(path, error=err.why, problem=err.problem)
     except OSError as err:
         return CloudInfo(path, error=str(err) or type(err).__name__)
 

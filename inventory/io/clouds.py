@@ -407,7 +407,10 @@ def sidecar_crs(path: "str | Path") -> tuple[CRS | None, Path | None]:
         if candidate.is_file():
             try:
                 text = candidate.read_text("utf-8-sig").strip()
-            except (OSError, UnicodeDecodeError) as err:
+            except UnicodeDecodeError as err:
+                raise CRSError(candidate, "not UTF-8 text (a .prj file holds the CRS as WKT text)",
+                               field="crs") from err
+            except OSError as err:
                 raise CRSError(candidate, f"cannot be read ({err})", field="crs") from err
             return parse_crs(text, where=str(candidate)), candidate
     return None, None

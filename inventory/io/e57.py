@@ -324,7 +324,10 @@ class E57Reader:
             placed = corners @ rot.T + t
             lo, hi = np.minimum(lo, placed.min(axis=0)), np.maximum(hi, placed.max(axis=0))
         if not np.all(np.isfinite(lo)):
-            lo = hi = np.zeros(3)
+            # a box at 0, 0 would stand for nothing and mislead the survey's extent
+            raise InputError(self.path, "no point in the file" if self.count == 0 else
+                             f"no valid point in the file ({self.count:,} point(s), each flagged invalid or not "
+                             "a finite number)")
         return lo, hi
 
     @property

@@ -74,18 +74,21 @@ def _header(path: Path) -> tuple[str, list[_Element], int]:
                 fmt = words[1]
             elif words[0] == "element" and len(words) == 3:
                 try:
-                    elements.append(_Element(words[1], int(words[2]), []))
+                    count = int(words[2])
                 except ValueError as err:
-                    raise InputError(path, f"header line {n}: bad element count {words[2]!r}") from err
+                    raise InputError(path, f"bad element count {words[2]!r}", line=n, field="element") from err
+                if count < 0:
+                    raise InputError(path, f"negative element count {count}", line=n, field="element")
+                elements.append(_Element(words[1], count, []))
             elif words[0] == "property" and elements:
                 if len(words) == 5 and words[1] == "list":
                     elements[-1].properties.append((words[4], None))
                 elif len(words) == 3 and words[1] in _TYPES:
                     elements[-1].properties.append((words[2], _TYPES[words[1]]))
                 else:
-                    raise InputError(path, f"header line {n}: unknown property {' '.join(words[1:])!r}")
+                    raise InputError(path, f"unknown property {' '.join(words[1:])!r}", line=n, field="property")
             else:
-                raise InputError(path, f"header line {n}: not a PLY header line: {' '.join(words)!r}")
+                raise InputError(path, f"not a PLY header line: {' '.join(words)!r}", line=n)
         else:
             raise InputError(path, "PLY header too long (no end_header)")
         offset = f.tell()
@@ -126,8 +129,12 @@ class PlyReader:
         if any(t is None for _, t in vertex.properties):
             raise InputError(self.path, "PLY vertices with a list property cannot be read as points")
         self.count = vertex.count
+        if self.count == 0:
+            raise InputError(self.path, "no point in the file (the header says 0 vertices)")
         self._props = vertex.properties
         self._before = elements[:at]
+        # nothing may follow the last element: extra data means a wrong count or a damaged file
+        self._last = at == len(elements) - 1
         order = ">" if self.format == "binary_big_endian" else "<"
         self._dtype = np.dtype([(n, order + t) for n, t in vertex.properties])
         self._intensity = next((n for n in _INTENSITY_NAMES if n in props), None)
@@ -151,6 +158,10 @@ class PlyReader:
                 held = max(size - self._data_at, 0) // self._dtype.itemsize
                 raise InputError(self.path, f"truncated: the header says {self.count:,} vertices but the file has "
                                             f"room for {held:,}")
+            if self._last and size > need:
+                extra = size - need
+                raise InputError(self.path, f"the header says {self.count:,} vertices but {extra:,} byte(s) follow "
+                                            "them: the vertex count is wrong or the file is damaged")
         self.read = 0
 
     def __enter__(self) -> "PlyReader":
@@ -173,6 +184,7 @@ class PlyReader:
                     if len(rec) < n:
                         raise InputError(self.path, f"truncated: only {self.read + len(rec):,} of {self.count:,} "
                                                     "vertices could be read")
+                    self._finite(rec, done=self.count - left)
                     left -= n
                     yield rec
             return
@@ -199,7 +211,8 @@ class PlyReader:
                                                     f"ends after {self.count - left + len(rows):,}", line=line)
                     words = raw.split()
                     if len(words) != width:
-                        raise InputError(self.path, f"expected {width} values, found {len(words)}", line=line)
+                        raise InputError(self.path, f"expected {width} values, found {len(words)}", line=line,
+                                         field="columns")
                     rows.append(words)
                 try:
                     values = np.array(rows, dtype=float)
@@ -217,7 +230,27 @@ class PlyReader:
                 for k, (name, _) in enumerate(self._props):
                     rec[name] = values[:, k]
                 left -= n
+                self._finite(rec, done=self.count - left - n, first_line=line - n + 1)
                 yield rec
+            if self._last:
+                for raw in f:
+                    line += 1
+                    if raw.strip():
+                        raise InputError(self.path, f"the header says {self.count:,} vertices but more data "
+                                                    "follows them: the vertex count is wrong or the file is damaged",
+                                         line=line)
+
+    def _finite(self, rec: np.ndarray, *, done: int, first_line: int | None = None) -> None:
+        """Refuse a NaN or infinite coordinate, naming its line (ASCII) or vertex (binary)."""
+        for name in "xyz":
+            bad = ~np.isfinite(rec[name].astype(float))
+            if bad.any():
+                k = int(np.argmax(bad))
+                if first_line is not None:
+                    raise InputError(self.path, "a coordinate is not a finite number", line=first_line + k,
+                                     field=name)
+                raise InputError(self.path, "a coordinate is not a finite number", feature=f"vertex {done + k + 1}",
+                                 field=name)
 
     def chunks(self) -> Iterator[np.ndarray]:
         """Yield the vertices as :data:`~inventory.io.clouds.POINT_DTYPE` arrays."""

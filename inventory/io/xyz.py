@@ -85,6 +85,8 @@ class TextCloudReader:
         self.has_colour = all(c in self._cols for c in "rgb")
         st = self.path.stat()
         self.count = _count(str(self.path.resolve()), st.st_mtime_ns, st.st_size, self._data_from)
+        if self.count == 0:
+            raise InputError(self.path, "no point in the file (a header line alone)", line=number)
         self.read = 0
 
     def __enter__(self) -> "TextCloudReader":
@@ -107,7 +109,8 @@ class TextCloudReader:
                     continue
                 words = [w for w in split.split(line.strip()) if w]
                 if len(words) != self._width:
-                    raise InputError(self.path, f"expected {self._width} values, found {len(words)}", line=number)
+                    raise InputError(self.path, f"expected {self._width} values, found {len(words)}", line=number,
+                                     field="columns")
                 rows.append(words)
                 lines.append(number)
                 if len(rows) >= self.chunk_size:
@@ -123,7 +126,9 @@ class TextCloudReader:
             for words, number in zip(rows, lines):
                 bad = next((w for w in words if not _is_number(w)), None)
                 if bad is not None:
-                    raise InputError(self.path, f"not a number: {bad!r}", line=number) from None
+                    name = [n for n, k in sorted(self._cols.items(), key=lambda c: c[1]) if words[k] == bad]
+                    raise InputError(self.path, f"not a number: {bad!r}", line=number,
+                                     field=name[0] if name else None) from None
             raise
 
     def chunks(self) -> Iterator[np.ndarray]:
@@ -134,8 +139,10 @@ class TextCloudReader:
             out = empty_points(len(values))
             xyz = values[:, [self._cols["x"], self._cols["y"], self._cols["z"]]]
             if not np.all(np.isfinite(xyz)):
+                bad_rows = ~np.all(np.isfinite(xyz), axis=1)
+                column = "xyz"[int(np.argmax(~np.isfinite(xyz[int(np.argmax(bad_rows))])))]
                 raise InputError(self.path, "a coordinate is not a finite number",
-                                 line=self._line_of(~np.all(np.isfinite(xyz), axis=1), last, len(values)))
+                                 line=self._line_of(bad_rows, last, len(values)), field=column)
             out["X"], out["Y"], out["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
             if "intensity" in self._cols:
                 v = values[:, self._cols["intensity"]]

@@ -32,7 +32,7 @@ from typing import Any, Sequence
 
 import pandas as pd
 
-from inventory.errors import LedgerError
+from inventory.errors import LedgerError, LedgerInputError
 from inventory.ledger.schema import BALANCE_COLUMNS, BOOL_COLUMNS, SCHEMA_VERSION, TEXT_COLUMNS
 from inventory.model.results import VOLUME_SIGMA_COLUMNS
 from inventory.ledger.store import Ledger, _typed, _utc_now
@@ -41,6 +41,11 @@ __all__ = ["PgLedger", "PG_SCHEMA", "PG_MIGRATIONS", "PG_VIEWS", "is_url", "reda
 
 #: Advisory lock key (any fixed 64-bit number) held while the tables are created or upgraded.
 _SCHEMA_LOCK = 0x696E76656E746F72  # "inventor"
+
+
+#: Seconds to wait for the ledger's server before giving up (libpq ``connect_timeout``): a
+#: wrong host or a firewall that drops packets fails within this, never hangs a close.
+CONNECT_TIMEOUT_S = 10
 
 
 def is_url(text: Any) -> bool:
@@ -314,8 +319,12 @@ class PgLedger(Ledger):
 
     _site_columns = ("site_id",)
 
-    def __init__(self, url: str, site_id: str | None = None) -> None:
+    def __init__(self, url: str, site_id: str | None = None, *,
+                 source: "tuple[str, str | None]" = ("--ledger", None)) -> None:
         super().__init__(redacted(url))
+        #: Where the URL was given, ``(file or option, field)``: a server that cannot be
+        #: reached is reported there, as bad input.
+        self.source = source
         self.path = redacted(url)  # type: ignore[assignment]  # a URL, named in messages
         self.url = url
         self.site_id = None if site_id is None else str(site_id)
@@ -333,9 +342,11 @@ class PgLedger(Ledger):
         except ImportError as err:  # pragma: no cover - a dependency of the package
             raise LedgerError(f"{self.path}: a PostgreSQL ledger needs psycopg 3 ({err})") from err
         try:
-            conn = psycopg.connect(self.url, autocommit=True, connect_timeout=30)
+            conn = psycopg.connect(self.url, autocommit=True, connect_timeout=CONNECT_TIMEOUT_S)
         except psycopg.Error as err:
-            raise LedgerError(f"{self.path}: cannot connect to the ledger: {_message(err)}") from err
+            where, field = self.source
+            raise LedgerInputError(where, f"cannot connect to the ledger {self.path}: {_message(err)}",
+                             field=field) from err
         self._con = _PgDb(conn, self.path)
         try:
             self._schema = str(self._db.execute("SELECT current_schema()").fetchone()[0])

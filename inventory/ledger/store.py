@@ -31,7 +31,7 @@ from typing import Any, Iterator, Mapping
 import numpy as np
 import pandas as pd
 
-from inventory.errors import LedgerError, PeriodLockedError
+from inventory.errors import LedgerError, LedgerInputError, PeriodLockedError
 from inventory.ledger.schema import (
     BALANCE_COLUMNS,
     BOOL_COLUMNS,
@@ -46,6 +46,9 @@ from inventory.model.period import Period
 from inventory.model.results import JOURNAL_COLUMNS, CloseResult
 
 __all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
+
+#: SQLite's words for a file that is not a database or is corrupt (sqlite3 error texts).
+_DAMAGED = ("file is not a database", "database disk image is malformed")
 
 def _utc_now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
@@ -146,6 +149,9 @@ class Ledger:
             mode = con.execute("PRAGMA journal_mode = WAL").fetchone()[0]
             con.execute("PRAGMA synchronous = FULL")
         except sqlite3.Error as err:
+            if path is not None and str(err) in _DAMAGED:
+                # a damaged file or another file under the ledger's name: bad input, not a failed run
+                raise LedgerInputError(path, f"not a readable SQLite ledger ({err}); restore it from a backup") from err
             raise LedgerError(f"{self.path}: cannot open the ledger: {err}") from err
         if str(mode).lower() != "wal":
             con.close()

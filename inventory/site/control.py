@@ -42,6 +42,13 @@ DEFAULT_CONTROL_RMS_MAX_M = 0.05
 #: Three points fix a similarity transform and leave redundancy to check it (two would fit
 #: exactly and prove nothing).
 MIN_CONTROL_POINTS = 3
+#: Largest departure of the fitted scale from 1 accepted: 1 %. A registration's true scale
+#: differs from 1 by parts per million to a few hundred ppm (instrument and map-projection
+#: scale, common practice); a scale far off says the two sides are in different units
+#: (millimetres, feet) or that points are swapped.
+MAX_SCALE_DEPARTURE = 0.01
+#: Two control points closer than this in the survey frame are one mark entered twice.
+SAME_MARK_M = 0.001
 
 
 @dataclass(frozen=True, eq=False)
@@ -101,12 +108,15 @@ class Registration:
 
 
 def _weights(sigma: np.ndarray) -> np.ndarray:
-    """``1 / sigma^2``; a blank sigma takes the median of the given ones (all equal when none)."""
+    """``1 / sigma^2`` scaled by the median sigma (the fit depends only on the ratios); a
+    blank sigma takes the median of the given ones (all equal when none)."""
     given = np.isfinite(sigma)
     if not given.any():
         return np.ones(len(sigma))
-    s = np.where(given, sigma, np.median(sigma[given]))
-    return 1.0 / s ** 2
+    median = np.median(sigma[given])
+    s = np.where(given, sigma, median)
+    with np.errstate(over="ignore", divide="ignore", under="ignore"):
+        return (median / s) ** 2
 
 
 def read_control(path: "str | Path", *, model: str = "7-parameter",
@@ -146,8 +156,14 @@ def read_control(path: "str | Path", *, model: str = "7-parameter",
     frame = read_table(path, table_schema("control"), own, display=shown)
     errors = [p for p in own if p.severity == "error"]
 
-    def fail(why: str) -> None:
-        err = InputError(shown, why)
+    def fail(why: str, fieldname: str | None = None) -> None:
+        err = InputError(shown, why, field=fieldname)
+        if problems is None:
+            raise err
+        problems.append(err.problem)
+
+    def fail_at(row: int, fieldname: str, why: str) -> None:
+        err = InputError(shown, why, line=int(frame["line"].iloc[row]), field=fieldname)
         if problems is None:
             raise err
         problems.append(err.problem)
@@ -164,17 +180,38 @@ def read_control(path: "str | Path", *, model: str = "7-parameter",
     p = frame[["x", "y", "z"]].to_numpy(float)
     q = frame[["e", "n", "h"]].to_numpy(float)
     sigma = frame["sigma_m"].to_numpy(float) if "sigma_m" in frame else np.full(len(frame), np.nan)
+    for j in range(1, len(p)):
+        same = np.flatnonzero(np.linalg.norm(p[:j] - p[j], axis=1) < SAME_MARK_M)
+        if len(same):
+            i = int(same[0])
+            fail_at(j, "x, y, z", f"{frame['point_id'].iloc[j]} is at the survey-frame position of "
+                                  f"{frame['point_id'].iloc[i]} (line {int(frame['line'].iloc[i])}): one mark "
+                                  "entered twice")
+            return None
+    weights = _weights(sigma)
+    bad = ~(np.isfinite(weights) & (weights > 0))
+    if bad.any():
+        j = int(np.argmax(bad))
+        fail_at(j, "sigma_m", f"{sigma[j]:g} m is too far from the other points' sigma "
+                              f"(median {np.nanmedian(sigma):g} m) to weight the fit")
+        return None
     try:
-        fit = fit_similarity(p, q, _weights(sigma), model)
+        fit = fit_similarity(p, q, weights, model)
     except ValueError as err:
-        fail(f"the control points cannot fix a {model} transform: {err}")
+        fail(f"the control points cannot fix a {model} transform: {err}", "x, y, z")
+        return None
+    if not abs(fit.scale - 1.0) <= MAX_SCALE_DEPARTURE:
+        fail(f"the fitted scale is {fit.scale:.6g}, not near 1 (at most {MAX_SCALE_DEPARTURE:.0%} off): the "
+             "survey-frame x, y, z and the site e, n, h are in different units (millimetres, feet?) or "
+             "columns are swapped", "x, y, z, e, n, h")
         return None
     residuals = q - fit.apply_xyz(p)
     rms = float(np.sqrt((residuals ** 2).sum(axis=1).mean()))
     reg = Registration(path, fit, [str(v) for v in frame["point_id"]], p, q, residuals, rms, float(tolerance_m))
     if not rms <= tolerance_m:
         pid, worst = reg.worst
-        fail(f"control points disagree: {model} fit RMS {rms:.3f} m exceeds the tolerance {tolerance_m:.3f} m "
+        k = int(np.argmax(reg.lengths))
+        fail_at(k, "e, n, h", f"control points disagree: {model} fit RMS {rms:.3f} m exceeds the tolerance {tolerance_m:.3f} m "
              f"([survey] control_rms_max_m); largest residual at {pid}: {worst:.3f} m")
         return None
     return reg

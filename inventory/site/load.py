@@ -19,6 +19,7 @@ True
 from __future__ import annotations
 
 import json
+import math
 import re
 import warnings
 from collections.abc import Collection, Mapping
@@ -409,6 +410,7 @@ class _Loader:
         self.problems: list[Problem] = []
         self.allow_outside = False
         self.refused: set[tuple] = set()  # site.toml keys the schema refused
+        self.toml_text: str | None = None  # site.toml as read, to find a key's line
         self.by_period: dict[str, list[Problem]] = {}
 
     # -- helpers
@@ -431,7 +433,15 @@ class _Loader:
 
     def error(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
-        self.problems.append(Problem(shown, where, fieldname, why))
+        self.problems.append(Problem(shown, self._toml_where(path, where, fieldname), fieldname, why))
+
+    def _toml_where(self, path: Path | str, where: Any, fieldname: str | None) -> Any:
+        """The line of a site.toml key named by ``fieldname`` when no line is given."""
+        if where is not None or not fieldname or not self.toml_text:
+            return where
+        if not isinstance(path, Path) or path.absolute() != self.root / "site.toml":
+            return where
+        return _toml_line(self.toml_text, fieldname)
 
     def errors_in(self, path: Path, fieldname: str | None = None) -> list[Problem]:
         """The errors reported so far on ``path`` (on its ``fieldname`` when given)."""
@@ -441,7 +451,7 @@ class _Loader:
 
     def warn(self, path: Path | str, where: Any, fieldname: str | None, why: str) -> None:
         shown = self.rel(path) if isinstance(path, Path) else path
-        self.problems.append(Problem(shown, where, fieldname, why, "warning"))
+        self.problems.append(Problem(shown, self._toml_where(path, where, fieldname), fieldname, why, "warning"))
 
     def table(self, path: Path, name: str, *, empty_ok: bool = False) -> pd.DataFrame:
         schema = table_schema(name)
@@ -472,6 +482,12 @@ class _Loader:
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
         opening = self._opening(pile_ids)
         self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
+        if config.journal.currency is None and materials:
+            costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
+            if costed:
+                self.warn(self.root / "materials.csv", 1, "unit_cost",
+                          f"{len(costed)} material(s) have a unit cost but site.toml has no [journal] currency: "
+                          "the journal's values carry no currency")
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -501,7 +517,9 @@ class _Loader:
             self.error(path, None, None, "file not found")
             return None
         try:
-            raw = tomllib.loads(path.read_bytes().decode("utf-8-sig"))
+            text = path.read_bytes().decode("utf-8-sig")
+            raw = tomllib.loads(text)
+            self.toml_text = text
         except UnicodeDecodeError:
             self.error(path, None, None, "not UTF-8 text")
             return None
@@ -523,7 +541,10 @@ class _Loader:
 
         validator = jsonschema.Draft202012Validator(_site_schema())
         bad = False
+        non_finite = _non_finite(raw)
         for err in sorted(validator.iter_errors(raw), key=lambda e: [str(p) for p in e.absolute_path]):
+            if tuple(err.absolute_path) in {keys for keys, _ in non_finite}:
+                continue   # reported once below, as not finite
             where = ".".join(str(p) for p in err.absolute_path) or None
             if err.validator not in ("required", "additionalProperties"):
                 self.refused.add(tuple(err.absolute_path))
@@ -535,8 +556,17 @@ class _Loader:
                 extra = re.findall(r"'([^']+)'", err.message)
                 name = ".".join(filter(None, [where, extra[0] if extra else None]))
                 self.error(path, None, name, "unknown key")
+            elif err.validator == "pattern" and isinstance(err.schema, dict) and err.schema.get("errorMessage"):
+                # the schema's own words instead of a regular expression
+                self.error(path, None, where, f"{err.instance!r} {err.schema['errorMessage']}")
             else:
                 self.error(path, None, where, err.message)
+            bad = True
+        for keys, value in non_finite:
+            # TOML allows nan and inf; no setting of the site means either (the schema's bounds
+            # cannot catch them: every comparison with nan is false)
+            self.refused.add(keys)
+            self.error(path, None, ".".join(map(str, keys)), f"{value} is not a finite number")
             bad = True
         return None if bad and any(k not in raw for k in ("name", "crs", "timezone")) else raw
 
@@ -1034,7 +1064,11 @@ class _Loader:
                 info = inspect_cloud(path)
             if info.error:
                 why = f"unreadable point cloud ({info.error})" if path.suffix.lower() in (".las", ".laz") else info.error
-                self.error(path, None, None, why)
+                found = info.problem
+                if found is not None:   # the reader's own file (a .prj beside it), line and field
+                    self.error(Path(found.path).absolute(), found.where, found.field, why)
+                else:
+                    self.error(path, None, None, why)
                 continue
             readable.append(path)
             points += info.point_count
@@ -1042,7 +1076,9 @@ class _Loader:
             row = posed.get(path.name) if not is_e57 else None
             moving = None if is_e57 or path.name in posed else (
                 trajectories.get(path.name) or (trajectories.get(None) if path.name not in station_files else None))
-            if control is not None:
+            if control_path.is_file():
+                if control is None:
+                    continue   # control.csv's own error says why the files cannot be placed
                 # every file lands in the survey's own frame first, then moves by the control fit
                 if row is not None:
                     box, z = _posed_extent(info.bounds, row), (row.z - 1.0, row.z + 1.0)
@@ -1126,13 +1162,30 @@ class _Loader:
         except Exception as err:  # inventory.errors.InputError: the reader names what is wrong
             return CloudInfo(path, error=getattr(err, "why", str(err))), False, None
         poses = {}
+        given_on: dict[int, int] = {}
+        given_on_text: dict[int, str] = {}
         for row, idx in found:
             if idx is None:
                 what = f"no scan {str(row.scan)!r}" if row is not file_row else f"{count} scans: give each pose a scan"
                 self.error(station_path, row.line, "scan", f"{path.name} has {what} (numbers 1-{count} or names)")
                 return None
+            if idx in given_on:   # one scan named twice, by number and by name
+                if str(row.scan) == given_on_text[idx]:
+                    return None   # the same text twice: the row rules said so already
+                self.error(station_path, row.line, "scan", f"{str(row.scan)!r} is scan {idx + 1} of {path.name}, "
+                           f"already given on line {given_on[idx]}")
+                return None
+            given_on[idx], given_on_text[idx] = int(row.line), str(row.scan)
+            values = np.array([row.x, row.y, row.z, row.roll_deg, row.pitch_deg, row.yaw_deg], dtype=float)
+            if not np.all(np.isfinite(values)):
+                continue   # a blank pose: the scan keeps its own pose (one is needed, checked below)
             poses[idx] = (rotation_matrix(row.roll_deg, row.pitch_deg, row.yaw_deg), np.array([row.x, row.y, row.z]))
-        return inspect_cloud(path, poses=poses), len(poses) == count, acquired
+        info = inspect_cloud(path, poses=poses)
+        found_problem = info.problem
+        if (info.error and found_problem is not None and found_problem.field == "pose"
+                and self.errors_in(station_path)):
+            return None   # a pose row stations.csv refused is the cause; its own error says so
+        return info, len(poses) == count, acquired
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
@@ -1187,6 +1240,59 @@ def _nesting(value: Any) -> tuple[int, str | None]:
             deepest, key = depth, top
         stack.extend((v, depth + 1, t) for v, t in children)
     return deepest, key
+
+
+_TOML_HEADER = re.compile(r"^\s*(\[\[?)\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
+_TOML_KEY = re.compile(r"^\s*((?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*')(?:\s*\.\s*(?:[A-Za-z0-9_-]+|\"[^\"]*\"|'[^']*'))*)\s*=")
+
+
+def _toml_parts(dotted: str) -> tuple:
+    parts = re.findall(r"\"[^\"]*\"|'[^']*'|[^.\s]+", dotted)
+    return tuple(p[1:-1] if p[:1] in "\"'" else p for p in parts)
+
+
+def _toml_line(text: str, fieldname: str) -> int | None:
+    """The line of site.toml that sets ``fieldname`` (a dotted key as in messages:
+    ``journal.accounts.coal``, ``scales.0.id``), or the nearest line that holds it (the inline
+    table it is in, its table's header); ``None`` when the key is nowhere in the file.
+
+    A line-by-line reading of TOML's tables and keys (enough for messages; the file has been
+    parsed already): keys inside multi-line strings or arrays are not looked into.
+    """
+    want = tuple(str(p) for p in _toml_parts(fieldname))
+    best: tuple[int, int] | None = None   # (matched length, line)
+    table: tuple = ()
+    arrays: dict[tuple, int] = {}
+    for number, line in enumerate(text.splitlines(), start=1):
+        head = _TOML_HEADER.match(line)
+        key = None if head else _TOML_KEY.match(line)
+        if head:
+            names = _toml_parts(head.group(2))
+            if head.group(1) == "[[":
+                arrays[names] = arrays.get(names, -1) + 1
+                table = names + (str(arrays[names]),)
+            else:
+                table = names
+            full = table
+        elif key:
+            full = table + _toml_parts(key.group(1))
+        else:
+            continue
+        full = tuple(str(p) for p in full)
+        if full == want[:len(full)] and (best is None or len(full) > best[0]):
+            best = (len(full), number)
+    return None if best is None else best[1]
+
+
+def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
+    """``(key path, value)`` of every NaN or infinite float in parsed TOML."""
+    if isinstance(value, float):
+        return [] if math.isfinite(value) else [(keys, value)]
+    if isinstance(value, dict):
+        return [hit for k, v in value.items() for hit in _non_finite(v, keys + (k,))]
+    if isinstance(value, list):
+        return [hit for i, v in enumerate(value) for hit in _non_finite(v, keys + (i,))]
+    return []
 
 
 def _is_file(path: Path) -> bool:
