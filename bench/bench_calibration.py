@@ -293,7 +293,8 @@ def make_case(rng, kind, shadow, base_kind, ground, density_x, noise, errors=Non
         "noise": noise, "truth": truth, "volume": float(row.volume_m3), "sigma": float(row.volume_sigma_m3),
         "s_rand": float(row.sigma_random_m3), "s_corr": float(row.sigma_correlated_m3),
         "s_gap": float(row.sigma_interpolated_m3), "s_base": float(row.sigma_base_m3),
-        "e_rand": e_rand, "e_corr": e_corr, "e_gap": e_gap, "e_base": e_base, "e_edge": e_edge, "e_clip": e_clip, "e_disc": e_disc,
+        "e_rand": e_rand, "e_corr": e_corr, "e_gap": e_gap, "e_base": e_base,
+        "e_edge": e_edge, "e_clip": e_clip, "e_disc": e_disc,
         "scanned": float(row.scanned_fraction), "flags": row["flags"],
     }
 
@@ -355,8 +356,9 @@ def crest_report(rows):
             z = _zs(sub)
             se = rel.std(ddof=1) / math.sqrt(len(rel)) if len(rel) > 1 else float("nan")
             lab = f"{d}x" if d is not None else "all"
+            cov = np.mean(np.abs(z) <= Z95) * 100
             print(f"  {kind:8} {lab:>3} n={len(sub):3d}  mean {rel.mean():+.2f} % (se {se:.2f})  interpolated cells "
-                  f"{gap.mean():+.2f} % (edge cells {edge.mean():+.2f} %)  covered {np.mean(np.abs(z) <= Z95) * 100:5.1f} %  sd z {z.std(ddof=1):.2f}")
+                  f"{gap.mean():+.2f} % (edge cells {edge.mean():+.2f} %)  covered {cov:5.1f} %  sd z {z.std(ddof=1):.2f}")
 
 
 def _zs(rows, e="total", s="sigma"):

@@ -8,21 +8,32 @@ on to the break, so the surface there is the *lower* envelope of the rim's tange
 (at a crest) or their *upper* envelope (at a toe). A chord lies below a concave surface and
 above a convex one, so the linear fill itself tells which case a cell is in:
 
-* every rim plane passes above the linear value: a crest, the fill is the lowest plane;
+* most rim planes (:data:`MAJORITY`) pass above the linear value by two standard errors:
+  a crest, the fill is the lowest plane of those above it (a plane below the chord there is
+  no tangent plane of a concave surface: it straddles a break, or lies beyond a toe);
 * every rim plane passes below it: a toe, the fill would be the highest plane (off, see
   :data:`TOE_BRANCH`);
 * otherwise (planes on both sides: an even flank, a saddle, noise) the linear value stays.
 
 The envelope is used only inside gaps enclosed by their rim (:data:`MIN_SECTORS`).
 
-Each gap cell looks at the nearest rim cell in each of eight directions; a rim cell's plane
-is the least-squares plane through the scanned cells next to it (a 3 x 3 cell window,
-scanned cells only, so the gap does not bend it; a wider window spans a wide arc of a
-cone near its apex and comes out flatter than the flank); the scanned cells on the gap's very
-edge, often scanned in part only, are left out of both, and so are planes whose window
-straddles the slope break (their residual gives them away). A plane may not leave the linear
-fill faster than :data:`MAX_RISE` per metre of distance from the rim (a guard against a
-plane from a few noisy cells; steeper than any angle of repose).
+Rim planes (:data:`SECTOR_PLANES`): the scanned cells two to five cells from a gap are cut
+into 16 angular sectors about the gap's centre, each with its least-squares plane; adjacent
+arcs are merged, best-fitting pair first, while an F test does not tell the merged plane
+from the two (1 % level). A flank that keeps its slope becomes one plane fitted on many
+cells (a cell mean of one or two points on a slope scatters by about a tenth of a metre, and
+the lowest of several noisy planes is biased low), while around a cone, across a ridge or a
+top edge, where the slope turns, the arcs keep planes of their own, each following its own
+part of the flank (a single plane over a wide arc of a cone comes out flatter). Arcs whose
+residual stands out (more than :data:`BREAK_RESIDUAL` times the median) straddle a break and
+carry no plane. Each gap cell looks at the nearest rim cell in each of eight directions and
+takes the plane of its arc. The scanned cells on the gap's very edge, often scanned in part
+only, carry no plane. A plane may not leave the linear fill faster than :data:`MAX_RISE` per
+metre of distance from the rim (a guard against a wild plane; steeper than any angle of
+repose, so that a true crest is never capped: materials need not state their angle of
+repose). With ``SECTOR_PLANES = 0`` each rim cell carries the plane of its own 3 x 3 window
+instead and every plane must clear the chord (the earlier rule, kept for comparison in the
+calibration study).
 """
 
 from __future__ import annotations
