@@ -8,7 +8,9 @@
   formula (cone V = pi r^2 h / 3, frustum V = pi h (R^2 + R r + r^2) / 3, windrow with
   conical ends L w h + pi w^2 h / 3: any engineering-mathematics handbook, from memory),
   where linear filling misses by more; and linear filling is kept where it is exact (a
-  plane).
+  plane). The same holds on scans with realistic noise (points at random positions, 2 cm of
+  noise, gridded as the survey step does) over a cone's apex and a reclaim face's ridge; a
+  shadow centred on the corner where the ridge meets the face stays low (a known shortfall).
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ from scipy import ndimage
 from inventory._demo.shapes import Cone, Windrow
 from inventory.model.grid import Grid, Surface
 from inventory.site.load import Material
+from inventory.survey.gridding import fill_holes, grid_points
 from inventory.volume import measure as vm
 from inventory.volume.base import residual_correlation, toe_base
 from inventory.volume.gapfill import fill_slope_breaks
@@ -186,6 +189,81 @@ def test_shadow_over_a_windrow_ridge(monkeypatch):
     assert _measure(s, poly).volume_m3 == pytest.approx(volume, rel=0.005)
     _linear_only(monkeypatch)
     assert _measure(s, poly).volume_m3 < volume * 0.99   # linear: -1.4 %
+
+
+def _scan(thickness, hidden, seed, density=8.0, noise=0.02):
+    """A scan of a pile on a level pad at 10 m: points at random positions (``density`` a
+    m2 of plan), Gaussian noise, none where ``hidden``; gridded and hole-filled (3 m) as
+    the survey step does."""
+    rng = np.random.default_rng(seed)
+    x0, y1 = GRID.west, GRID.north
+    x1, y0 = x0 + GRID.ncols * GRID.cell, y1 - GRID.nrows * GRID.cell
+    n = rng.poisson(density * (x1 - x0) * (y1 - y0))
+    x, y = rng.uniform(x0, x1, n), rng.uniform(y0, y1, n)
+    seen = ~hidden(x, y)
+    x, y = x[seen], y[seen]
+    z = 10.0 + thickness(x, y) + rng.normal(0.0, noise, x.size)
+    return fill_holes(grid_points(GRID, x, y, z, "mean"), 3.0)[0]
+
+
+@pytest.mark.parametrize("density", [8.0, 40.0])
+def test_noisy_shadow_over_a_cone_apex(density, monkeypatch):
+    # 8 m cone at 35 deg, a 3 m shadow over its apex, 2 cm of noise: within 0.5 % of the
+    # handbook cone V = pi r^2 h / 3 on average over six scans, none off by 1 %; linear
+    # filling is about 5.5 % low. The rim planes are fitted on arcs about the gap, merged
+    # where the flank does not turn, so each follows its own part of the cone.
+    cone = Cone(0.0, 0.0, 8.0, 35.0)
+    volume = math.pi * 8.0**2 * cone.height / 3.0
+    poly = shapely.Point(0, 0).buffer(9.0, quad_segs=64)
+    scans = [_scan(cone.thickness, lambda x, y: np.hypot(x, y) < 3.0, seed, density) for seed in range(6)]
+    err = np.array([_measure(s, poly).volume_m3 / volume - 1.0 for s in scans])
+    assert abs(err.mean()) < 0.005
+    assert np.abs(err).max() < 0.01
+    _linear_only(monkeypatch)
+    assert _measure(scans[0], poly).volume_m3 < volume * 0.96
+
+
+def _reclaim():
+    """A windrow cut by a 60 deg reclaim face, its handbook volume (prism to the top of the
+    face, the slice under the face, one half cone at the far end: w h (s_f - h / tan f) +
+    (2/3) w h^2 / tan f + pi w^2 h / 6, from memory) and the corner where its ridge meets the
+    top of the face (three planes meet there)."""
+    w = Windrow(-10.0, 0.0, 0.0, 18.0, 6.0, 35.0, face_s=15.0, face_deg=60.0)
+    h, tf = w.height, math.tan(math.radians(60.0))
+    volume = 6.0 * h * (15.0 - h / tf) + (2.0 / 3.0) * 6.0 * h * h / tf + math.pi * 36.0 * h / 6.0
+    assert w.volume() == pytest.approx(volume)
+    return w, volume, -10.0 + 15.0 - h / tf
+
+
+@pytest.mark.parametrize("density", [8.0, 40.0])
+def test_noisy_shadow_over_a_reclaim_ridge(density, monkeypatch):
+    # a 2.5 m shadow over the ridge that reaches the top of the face, 2 cm of noise: within
+    # 0.5 % on average over six scans, none off by 1 %; linear filling is about 1.4-1.9 % low
+    w, volume, corner = _reclaim()
+    poly = w.outline().buffer(1.0)
+    scans = [_scan(w.thickness, lambda x, y: np.hypot(x - corner + 2.5, y) < 2.5, seed, density)
+             for seed in range(6)]
+    err = np.array([_measure(s, poly).volume_m3 / volume - 1.0 for s in scans])
+    assert abs(err.mean()) < 0.005
+    assert np.abs(err).max() < 0.01
+    _linear_only(monkeypatch)
+    assert _measure(scans[0], poly).volume_m3 < volume * 0.99
+
+
+def test_noisy_shadow_over_a_reclaim_face_corner(monkeypatch):
+    # Centred on the corner itself, the shadow's rim beyond the face is floor, whose planes
+    # pass below the chord: fewer than three quarters of the directions then show a crest
+    # and much of the gap keeps the chord. Better than linear filling (about -2.8 %), but
+    # still about 1.8 % low: a known shortfall (docs/uncertainty.md), checked so that a
+    # change for the better or the worse is seen.
+    w, volume, corner = _reclaim()
+    poly = w.outline().buffer(1.0)
+    scans = [_scan(w.thickness, lambda x, y: np.hypot(x - corner, y) < 2.5, seed) for seed in range(4)]
+    err = np.array([_measure(s, poly).volume_m3 / volume - 1.0 for s in scans])
+    _linear_only(monkeypatch)
+    lin = np.array([_measure(s, poly).volume_m3 / volume - 1.0 for s in scans])
+    assert lin.mean() < -0.025
+    assert lin.mean() + 0.005 < err.mean() < -0.01
 
 
 def test_fill_keeps_the_linear_value_on_a_plane_and_on_a_noisy_flank():

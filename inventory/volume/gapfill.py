@@ -8,21 +8,32 @@ on to the break, so the surface there is the *lower* envelope of the rim's tange
 (at a crest) or their *upper* envelope (at a toe). A chord lies below a concave surface and
 above a convex one, so the linear fill itself tells which case a cell is in:
 
-* every rim plane passes above the linear value: a crest, the fill is the lowest plane;
+* most rim planes (:data:`MAJORITY`) pass above the linear value by two standard errors:
+  a crest, the fill is the lowest plane of those above it (a plane below the chord there is
+  no tangent plane of a concave surface: it straddles a break, or lies beyond a toe);
 * every rim plane passes below it: a toe, the fill would be the highest plane (off, see
   :data:`TOE_BRANCH`);
 * otherwise (planes on both sides: an even flank, a saddle, noise) the linear value stays.
 
 The envelope is used only inside gaps enclosed by their rim (:data:`MIN_SECTORS`).
 
-Each gap cell looks at the nearest rim cell in each of eight directions; a rim cell's plane
-is the least-squares plane through the scanned cells next to it (a 3 x 3 cell window,
-scanned cells only, so the gap does not bend it; a wider window spans a wide arc of a
-cone near its apex and comes out flatter than the flank); the scanned cells on the gap's very
-edge, often scanned in part only, are left out of both, and so are planes whose window
-straddles the slope break (their residual gives them away). A plane may not leave the linear
-fill faster than :data:`MAX_RISE` per metre of distance from the rim (a guard against a
-plane from a few noisy cells; steeper than any angle of repose).
+Rim planes (:data:`SECTOR_PLANES`): the scanned cells two to five cells from a gap are cut
+into 16 angular sectors about the gap's centre, each with its least-squares plane; adjacent
+arcs are merged, best-fitting pair first, while an F test does not tell the merged plane
+from the two (1 % level). A flank that keeps its slope becomes one plane fitted on many
+cells (a cell mean of one or two points on a slope scatters by about a tenth of a metre, and
+the lowest of several noisy planes is biased low), while around a cone, across a ridge or a
+top edge, where the slope turns, the arcs keep planes of their own, each following its own
+part of the flank (a single plane over a wide arc of a cone comes out flatter). Arcs whose
+residual stands out (more than :data:`BREAK_RESIDUAL` times the median) straddle a break and
+carry no plane. Each gap cell looks at the nearest rim cell in each of eight directions and
+takes the plane of its arc. The scanned cells on the gap's very edge, often scanned in part
+only, carry no plane. A plane may not leave the linear fill faster than :data:`MAX_RISE` per
+metre of distance from the rim (a guard against a wild plane; steeper than any angle of
+repose, so that a true crest is never capped: materials need not state their angle of
+repose). With ``SECTOR_PLANES = 0`` each rim cell carries the plane of its own 3 x 3 window
+instead and every plane must clear the chord (the earlier rule, kept for comparison in the
+calibration study).
 """
 
 from __future__ import annotations
@@ -80,6 +91,91 @@ MIN_RESIDUAL_M = 0.005
 
 #: Fewest scanned cells for a rim cell's plane.
 _MIN_PLANE_CELLS = 6
+
+#: Planes per gap: one per angular sector of the rim about the gap's centre (0: one plane
+#: per rim cell from its 3 x 3 window instead).
+SECTOR_PLANES = 16
+
+#: With sector planes, the share of a gap's planes that must clear the chord by
+#: :data:`SIGNIFICANCE` standard errors at a cell for it to be taken as a crest.
+MAJORITY = 0.75
+
+#: Rings of rim cells (cells from the gap, chessboard distance) that carry the sector planes.
+_SECTOR_RINGS = (2, 5)
+
+
+def _plane_fit(x: np.ndarray, y: np.ndarray, z: np.ndarray):
+    """Least-squares plane z = b0 + b1 x + b2 y: coefficients, (A'A)^-1 and residual sum of
+    squares, or None when the cells do not fix a plane."""
+    a = np.column_stack([np.ones(x.size), x, y])
+    ata = a.T @ a
+    if x.size < _MIN_PLANE_CELLS or np.linalg.cond(ata) > 1e8:
+        return None
+    inv = np.linalg.inv(ata)
+    b = inv @ (a.T @ z)
+    return b, inv, float(np.sum((z - a @ b) ** 2))
+
+
+def _sector_planes(z: np.ndarray, cells: tuple[np.ndarray, np.ndarray], centre: tuple[float, float],
+                   cell: float, k_sectors: int):
+    """Planes through the rim ``cells`` of one gap over arcs about ``centre`` (row, col).
+
+    The rim is cut into ``k_sectors`` equal angular sectors; adjacent arcs are then merged,
+    the pair that a single plane fits best first, while the F statistic of the merge (the
+    rise in residual sum of squares per parameter over the residual variance of the two
+    planes) stays under the 1 % point of its distribution: arcs of the same flank become one
+    plane, fitted on many cells, and arcs across which the slope turns (around a cone,
+    across a ridge or a top edge) keep planes of their own. Returns coefficients (value at
+    the centre, east and north gradients), their covariance and residual sds."""
+    from scipy import stats
+
+    rr, cc = cells
+    x = (cc - centre[1]) * cell
+    y = (centre[0] - rr) * cell
+    zz = z[rr, cc]
+    sec = np.floor((np.arctan2(y, x) + np.pi) / (2 * np.pi) * k_sectors).astype(int) % k_sectors
+    arcs = [np.nonzero(sec == k)[0] for k in range(k_sectors)]
+    arcs = [a for a in arcs if a.size]
+    fits = [_plane_fit(x[a], y[a], zz[a]) for a in arcs]
+
+    def merge_cost(i: int) -> float:
+        j = (i + 1) % len(arcs)
+        if fits[i] is None or fits[j] is None:
+            return -1.0          # an arc too small for a plane joins its neighbour first
+        m = np.concatenate([arcs[i], arcs[j]])
+        f = _plane_fit(x[m], y[m], zz[m])
+        if f is None:
+            return -1.0
+        dof = m.size - 6
+        rss = fits[i][2] + fits[j][2]
+        if dof <= 0:
+            return -1.0
+        fstat = (f[2] - rss) / 3.0 / max(rss / dof, 1e-12)
+        return fstat / stats.f.ppf(0.99, 3, dof)
+
+    while len(arcs) > 1:
+        costs = [merge_cost(i) for i in range(len(arcs) if len(arcs) > 2 else 1)]
+        i = int(np.argmin(costs))
+        if costs[i] >= 1.0:
+            break
+        j = (i + 1) % len(arcs)
+        m = np.concatenate([arcs[i], arcs[j]])
+        arcs[i], fits[i] = m, _plane_fit(x[m], y[m], zz[m])
+        del arcs[j], fits[j]
+    coef, cov, res = [], [], []
+    arc_of = np.full(rr.size, -1)
+    for a, f in zip(arcs, fits):
+        if f is None:
+            continue
+        b, inv, rss = f
+        s2 = rss / (a.size - 3)
+        arc_of[a] = len(coef)
+        coef.append(b)
+        cov.append(s2 * inv)
+        res.append(np.sqrt(s2))
+    if not coef:
+        return np.zeros((0, 3)), np.zeros((0, 3, 3)), np.zeros(0), arc_of
+    return np.array(coef), np.array(cov), np.array(res), arc_of
 
 
 def _local_planes(z: np.ndarray, known: np.ndarray, cell: float) -> dict[str, np.ndarray]:
@@ -167,6 +263,11 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
         return out
     dist = ndimage.distance_transform_edt(gap) * cell
     rim_lab = ndimage.grey_dilation(np.where(big, labels, 0), footprint=np.ones((2 * _RIM_REACH + 3,) * 2))
+    if SECTOR_PLANES:
+        r0, r1 = _SECTOR_RINGS
+        sector_rim = known & ~ndimage.binary_dilation(big, structure=np.ones((3, 3)), iterations=r0 - 1)
+        sector_rim &= ndimage.binary_dilation(big, structure=np.ones((3, 3)), iterations=r1)
+        sector_lab = ndimage.grey_dilation(np.where(big, labels, 0), footprint=np.ones((2 * r1 + 1,) * 2))
     for lab in np.unique(labels[targets & big]):
         tr, tc = np.nonzero(targets & (labels == lab))
         rr, rc = np.nonzero(rim & (rim_lab == lab))
@@ -176,6 +277,16 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
         tr, tc = tr[ok_t], tc[ok_t]
         if tr.size == 0:
             continue
+        if SECTOR_PLANES:
+            gr, gc = np.nonzero(labels == lab)
+            centre = (float(gr.mean()), float(gc.mean()))
+            rr, rc = np.nonzero(sector_rim & (sector_lab == lab))
+            coef, cov, res, arc_of = _sector_planes(z, (rr, rc), centre, cell, SECTOR_PLANES)
+            if res.size < 2:
+                continue
+            # an arc whose residual stands out straddles a slope break: no plane of its own
+            keep = res <= BREAK_RESIDUAL * max(float(np.median(res)), MIN_RESIDUAL_M)
+            arc_of = np.where(arc_of >= 0, np.where(keep[np.maximum(arc_of, 0)], arc_of, -1), -1)
         zr = pl["z0"][rr, rc]
         gxr, gyr = pl["gx"][rr, rc], pl["gy"][rr, rc]
         s2r, nr, sur = pl["s2"][rr, rc], pl["n"][rr, rc], pl["suu"][rr, rc] * cell**2
@@ -190,7 +301,8 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
             pred = zr[None, :] + gxr[None, :] * dx + gyr[None, :] * dy
             # standard error of each plane's prediction at the target (straight-line fit:
             # s^2 (1/n + d^2 / sum of squared offsets), the two axes pooled)
-            pse = np.sqrt(s2r[None, :] * (1.0 / nr[None, :] + 2.0 * d2 / sur[None, :]))
+            with np.errstate(divide="ignore", invalid="ignore"):   # rim cells without a 3 x 3 plane
+                pse = np.sqrt(s2r[None, :] * (1.0 / nr[None, :] + 2.0 * d2 / sur[None, :]))
             lo = np.full(r_t.size, np.inf)
             hi = np.full(r_t.size, -np.inf)
             lo_se = np.zeros(r_t.size)
@@ -210,12 +322,39 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
                 hi = np.where(new_hi, p, hi)
                 hi_se = np.where(new_hi, e, hi_se)
                 cnt += has
+            if SECTOR_PLANES:
+                # the arcs of the nearest rim cell in each direction: their planes' envelope
+                xt = (c_t - centre[1]) * cell
+                yt = (centre[0] - r_t) * cell
+                at = np.column_stack([np.ones(r_t.size), xt, yt])
+                spred = at @ coef.T                                       # (targets x arcs)
+                sse = np.sqrt(np.maximum(np.einsum("ti,pij,tj->tp", at, cov, at), 0.0))
+                lin_ = linear[r_t, c_t]
+                lo = np.full(r_t.size, np.inf)
+                n_pl = np.zeros(r_t.size, int)
+                n_sig = np.zeros(r_t.size, int)
+                for k in range(_SECTORS):
+                    dk = np.where(sector == k, d2, np.inf)
+                    j = np.argmin(dk, axis=1)
+                    a = arc_of[j]
+                    has = np.isfinite(dk[rows, j]) & (a >= 0)
+                    p = np.where(has, spred[rows, np.maximum(a, 0)], np.nan)
+                    e = sse[rows, np.maximum(a, 0)]
+                    n_pl += has
+                    n_sig += has & (p > lin_ + SIGNIFICANCE * e)
+                    # a plane below the chord is no tangent plane of a concave surface
+                    # (it straddles a break, or the cell is no crest): left out
+                    lo = np.where(has & (p > lin_), np.minimum(lo, p), lo)
+                sector_crest = (n_sig >= 2) & (n_sig >= MAJORITY * n_pl)
             lin = linear[r_t, c_t]
             cap = MAX_RISE * dist[r_t, c_t]
             enough = cnt >= MIN_SECTORS
             # the envelope must clear the chord by more than its own noise (two standard
             # errors): planes from noisy rims all on one side by chance are no slope break
-            crest = enough & (lo > lin + SIGNIFICANCE * lo_se)
+            if SECTOR_PLANES:
+                crest = enough & sector_crest & np.isfinite(lo)
+            else:
+                crest = enough & (lo > lin + SIGNIFICANCE * lo_se)
             toe = enough & (hi < lin - SIGNIFICANCE * hi_se) & TOE_BRANCH
             val = lin.copy()
             val[crest] = np.minimum(lo[crest], lin[crest] + cap[crest])
