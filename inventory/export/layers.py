@@ -27,7 +27,6 @@ GeoPackage 1.3, annex F.9), written with SQLite once GDAL has written the layers
 
 from __future__ import annotations
 
-import sqlite3
 from pathlib import Path
 
 import pandas as pd
@@ -35,7 +34,7 @@ import pandas as pd
 from inventory.errors import CRSError
 from inventory.io.atomic import atomic_path
 from inventory.io.tables import is_blank
-from inventory.model.columns import FIELDS, unit_of
+from inventory.io.gpkg import describe_layers
 from inventory.model.results import PILE_COLUMNS, CloseResult
 
 __all__ = ["CLOSE_COLUMNS", "COMMON_COLUMNS", "LAYER_NAMES", "read_piles_layer", "write_layers"]
@@ -60,72 +59,17 @@ _LAYER_TEXTS = {
                         "volume and uncertainty; it is in no pile's stock.",
 }
 
-#: The schema extension's rows in ``gpkg_extensions`` (OGC GeoPackage 1.3, F.9, table 90).
-_SCHEMA_EXTENSION = "http://www.geopackage.org/spec/#extension_schema"
-
-
-def _field_text(column: str) -> tuple[str, str]:
-    """(title, description) of a field, the unit in both when the name carries one."""
-    title, description = FIELDS[column]
-    unit = unit_of(column)
-    if unit is None:
-        return title, description
-    return f"{title} [{unit[0]}]", f"{description} Unit: {unit[1]} ({unit[0]})."
-
-
 def _describe(path: Path, result: CloseResult) -> None:
-    """Layer descriptions in ``gpkg_contents``; field titles, descriptions and units in
-    ``gpkg_data_columns``, the schema extension registered in ``gpkg_extensions``."""
-    con = sqlite3.connect(path)
-    try:
-        with con:
-            con.execute(
-                "CREATE TABLE IF NOT EXISTS gpkg_data_columns (table_name TEXT NOT NULL, "
-                "column_name TEXT NOT NULL, name TEXT, title TEXT, description TEXT, "
-                "mime_type TEXT, constraint_name TEXT, "
-                "CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name), "
-                "CONSTRAINT gdc_tn UNIQUE (table_name, name))")
-            con.execute(
-                "CREATE TABLE IF NOT EXISTS gpkg_data_column_constraints (constraint_name TEXT "
-                "NOT NULL, constraint_type TEXT NOT NULL, value TEXT, min NUMERIC, "
-                "min_is_inclusive BOOLEAN, max NUMERIC, max_is_inclusive BOOLEAN, "
-                "description TEXT, CONSTRAINT gdcc_ntv UNIQUE (constraint_name, "
-                "constraint_type, value))")
-            con.execute(
-                "CREATE TABLE IF NOT EXISTS gpkg_extensions (table_name TEXT, column_name TEXT, "
-                "extension_name TEXT NOT NULL, definition TEXT NOT NULL, scope TEXT NOT NULL, "
-                "CONSTRAINT ge_tce UNIQUE (table_name, column_name, extension_name))")
-            for table in ("gpkg_data_columns", "gpkg_data_column_constraints"):
-                con.execute(
-                    "DELETE FROM gpkg_extensions WHERE table_name = ? AND column_name IS NULL "
-                    "AND extension_name = 'gpkg_schema'", (table,))
-                con.execute(
-                    "INSERT INTO gpkg_extensions VALUES (?, NULL, 'gpkg_schema', ?, 'read-write')",
-                    (table, _SCHEMA_EXTENSION))
-            for layer in LAYER_NAMES:
-                text = _LAYER_TEXTS[layer].format(period=result.period, date=result.survey_date)
-                text += f" Heights: {result.vertical_reference}."
-                if result.close_id is not None:
-                    text += f" Ledger close {result.close_id}, recorded {result.closed_utc}."
-                con.execute("UPDATE gpkg_contents SET description = ? WHERE table_name = ?",
-                            (text, layer))
-                geom_col = con.execute("SELECT column_name FROM gpkg_geometry_columns "
-                                       "WHERE table_name = ?", (layer,)).fetchone()[0]
-                pk = [r[1] for r in con.execute(f'PRAGMA table_info("{layer}")') if r[5]]
-                for row in con.execute(f'PRAGMA table_info("{layer}")').fetchall():
-                    column = row[1]
-                    if column in pk:
-                        continue
-                    if column == geom_col:
-                        title = "Geometry"
-                        description = f"{layer} polygons in the site CRS ({result.crs})."
-                    else:
-                        title, description = _field_text(column)
-                    con.execute("INSERT OR REPLACE INTO gpkg_data_columns (table_name, "
-                                "column_name, name, title, description) VALUES (?, ?, ?, ?, ?)",
-                                (layer, column, title, title, description))
-    finally:
-        con.close()
+    """Layer descriptions in ``gpkg_contents`` (what, period, survey date, heights, ledger
+    close); field titles, descriptions and units in ``gpkg_data_columns``."""
+    texts = {}
+    for layer in LAYER_NAMES:
+        text = _LAYER_TEXTS[layer].format(period=result.period, date=result.survey_date)
+        text += f" Heights: {result.vertical_reference}."
+        if result.close_id is not None:
+            text += f" Ledger close {result.close_id}, recorded {result.closed_utc}."
+        texts[layer] = text
+    describe_layers(path, texts, result.crs)
 
 
 def _piles_layer(result: CloseResult):

@@ -23,7 +23,6 @@ Every file is written beside its destination and renamed into place when complet
 
 from __future__ import annotations
 
-import sqlite3
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -31,6 +30,7 @@ import numpy as np
 import pandas as pd
 
 from inventory.io.atomic import atomic_path
+from inventory.io.gpkg import describe_layers
 from inventory.model.columns import FIELDS, unit_of
 from inventory.model.texts import CAUTIONS
 from inventory.stock.totals import SURVEY_TOTAL_COLUMNS, survey_totals
@@ -203,47 +203,7 @@ def write_volume_layers(
                 promote_to_multi=True, append=tmp.exists(),
                 layer_options={"SPATIAL_INDEX": "YES"}, dataset_options={"VERSION": "1.2"},
             )
-        _describe(tmp, date, crs)
+        describe_layers(tmp, {name: text.format(date=date) for name, text in _LAYER_TEXTS.items()}, crs)
     return dest
 
 
-def _describe(path: Path, date: str, crs: str) -> None:
-    """Layer descriptions in ``gpkg_contents``; each field's title and meaning, with its
-    unit, in ``gpkg_data_columns`` (OGC GeoPackage 1.3, annex F.9, the schema extension)."""
-    con = sqlite3.connect(path)
-    try:
-        with con:
-            con.execute(
-                "CREATE TABLE IF NOT EXISTS gpkg_data_columns (table_name TEXT NOT NULL, "
-                "column_name TEXT NOT NULL, name TEXT, title TEXT, description TEXT, "
-                "mime_type TEXT, constraint_name TEXT, "
-                "CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name), "
-                "CONSTRAINT gdc_tn UNIQUE (table_name, name))")
-            con.execute(
-                "CREATE TABLE IF NOT EXISTS gpkg_extensions (table_name TEXT, column_name TEXT, "
-                "extension_name TEXT NOT NULL, definition TEXT NOT NULL, scope TEXT NOT NULL, "
-                "CONSTRAINT ge_tce UNIQUE (table_name, column_name, extension_name))")
-            con.execute("INSERT OR IGNORE INTO gpkg_extensions VALUES ('gpkg_data_columns', NULL, "
-                        "'gpkg_schema', 'http://www.geopackage.org/spec/#extension_schema', 'read-write')")
-            for name, text in _LAYER_TEXTS.items():
-                con.execute("UPDATE gpkg_contents SET description = ? WHERE table_name = ?",
-                            (text.format(date=date), name))
-                geom = con.execute("SELECT column_name FROM gpkg_geometry_columns WHERE table_name = ?",
-                                   (name,)).fetchone()[0]
-                for row in con.execute(f'PRAGMA table_info("{name}")').fetchall():
-                    column, pk = row[1], row[5]
-                    if pk:
-                        continue
-                    if column == geom:
-                        title, text_ = "Geometry", f"{name} polygons in the site CRS ({crs})."
-                    elif column in FIELDS:
-                        title, text_ = FIELDS[column]
-                        unit = unit_of(column)
-                        if unit is not None:
-                            title, text_ = f"{title} [{unit[0]}]", f"{text_} Unit: {unit[1]} ({unit[0]})."
-                    else:
-                        continue
-                    con.execute("INSERT OR REPLACE INTO gpkg_data_columns (table_name, column_name, name, "
-                                "title, description) VALUES (?, ?, ?, ?, ?)", (name, column, title, title, text_))
-    finally:
-        con.close()
