@@ -147,6 +147,39 @@ def good_site(tmp_path: Path) -> Path:
     return _build_site(tmp_path / "site")
 
 
+def _file_digests(root: Path) -> dict[str, str]:
+    import hashlib
+
+    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture
+def snapshot():
+    """``snapshot(root)``: every file under ``root`` by relative path, with the SHA-256 of its
+    bytes; compare one taken before and one after to show nothing was written."""
+    return _file_digests
+
+
+@pytest.fixture
+def refused_once():
+    """``refused_once(site, capsys, argv=None)``: run the command (default ``check SITE``);
+    assert exit 2, no traceback, nothing changed under ``site``, and return the one error line."""
+    from inventory.cli import main
+
+    def run(site: Path, capsys, argv: list[str] | None = None) -> str:
+        before = _file_digests(site)
+        assert main(argv or ["check", str(site)]) == 2
+        err = capsys.readouterr().err
+        assert "Traceback" not in err
+        lines = [line for line in err.splitlines() if line.startswith("error: ")]
+        assert len(lines) == 1, lines
+        assert _file_digests(site) == before
+        return lines[0]
+
+    return run
+
+
 @pytest.fixture(scope="session")
 def write_tiny_cloud():
     """``write_tiny_cloud(path, crs="EPSG:25832", n=50)``: the small site's kind of LAS 1.4 cloud."""

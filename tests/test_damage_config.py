@@ -10,7 +10,6 @@ the file (or option) and the field, no traceback, and the site folder byte-ident
 
 from __future__ import annotations
 
-import hashlib
 import socket
 from pathlib import Path
 
@@ -19,25 +18,6 @@ import pytest
 from inventory.cli import main
 
 T = "error: site/site.toml"
-
-
-def snapshot(root: Path) -> dict[str, str]:
-    """Every file under ``root`` by relative path, with the SHA-256 of its bytes."""
-    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(root.rglob("*")) if p.is_file()}
-
-
-def refused_once(site: Path, capsys, argv: list[str] | None = None) -> str:
-    """Run the command (default ``check SITE``); assert exit 2, no traceback, nothing changed,
-    and return the one error line."""
-    before = snapshot(site)
-    assert main(argv or ["check", str(site)]) == 2
-    err = capsys.readouterr().err
-    assert "Traceback" not in err
-    lines = [line for line in err.splitlines() if line.startswith("error: ")]
-    assert len(lines) == 1, lines
-    assert snapshot(site) == before
-    return lines[0]
 
 
 def append(site: Path, text: str) -> None:
@@ -114,7 +94,7 @@ SECTIONS = {
 
 
 @pytest.mark.parametrize("text, expected", SECTIONS.values(), ids=SECTIONS.keys())
-def test_damaged_site_toml_sections(good_site, capsys, text, expected):
+def test_damaged_site_toml_sections(good_site, capsys, text, expected, refused_once):
     append(good_site, text)
     assert refused_once(good_site, capsys) == expected
 
@@ -139,12 +119,12 @@ TOP = {
 
 
 @pytest.mark.parametrize("text, expected", TOP.values(), ids=TOP.keys())
-def test_damaged_top_level_keys(good_site, capsys, text, expected):
+def test_damaged_top_level_keys(good_site, capsys, text, expected, refused_once):
     prepend(good_site, text)
     assert refused_once(good_site, capsys) == expected
 
 
-def test_site_toml_not_utf8(good_site, capsys):
+def test_site_toml_not_utf8(good_site, capsys, refused_once):
     toml = good_site / "site.toml"
     toml.write_bytes(toml.read_bytes().replace(b"Test yard", b"Test \xe9yard"))
     assert refused_once(good_site, capsys) == f"{T}: not UTF-8 text"
@@ -156,7 +136,7 @@ def test_site_toml_with_bom_and_crlf_is_read(good_site, capsys):
     assert main(["check", str(good_site)]) == 0, capsys.readouterr().err
 
 
-def test_a_close_refuses_nan_settings_before_writing(good_site, capsys):
+def test_a_close_refuses_nan_settings_before_writing(good_site, capsys, refused_once):
     append(good_site, "[unassigned]\nmin_thickness_m = nan")
     line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
     assert line == f"{T} line 21: unassigned.min_thickness_m: nan is not a finite number"
@@ -177,12 +157,12 @@ UNIT_COSTS = {
 
 
 @pytest.mark.parametrize("cost, expected", UNIT_COSTS.values(), ids=UNIT_COSTS.keys())
-def test_damaged_unit_cost(good_site, capsys, cost, expected):
+def test_damaged_unit_cost(good_site, capsys, cost, expected, refused_once):
     (good_site / "materials.csv").write_text(MATERIAL_HEAD + f"coal,0.85,0.03,8,3,{cost}\nsalt,1.25,0.04,2,2,5\n")
     assert refused_once(good_site, capsys) == expected
 
 
-def test_unit_cost_column_twice(good_site, capsys):
+def test_unit_cost_column_twice(good_site, capsys, refused_once):
     (good_site / "materials.csv").write_text(MATERIAL_HEAD.replace("unit_cost", "unit_cost,unit_cost")
                                              + "coal,0.85,0.03,8,3,1,2\nsalt,1.25,0.04,2,2,5,5\n")
     assert refused_once(good_site, capsys) == f"{M} line 1: unit_cost: the column appears twice (columns 6 and 7)"
@@ -204,7 +184,7 @@ def _refused_connection(line: str, where: str, port: int) -> None:
 
 @pytest.mark.parametrize("argv", [["close", "--period", "2026-10"], ["history"],
                                   ["reopen", "--period", "2026-10", "--reason", "x"]], ids=["close", "history", "reopen"])
-def test_unreachable_ledger_from_the_command_line(good_site, capsys, closed_port, argv):
+def test_unreachable_ledger_from_the_command_line(good_site, capsys, closed_port, argv, refused_once):
     # a refused connection returns at once; a server that drops packets is bounded by
     # inventory.ledger.pg.CONNECT_TIMEOUT_S
     pytest.importorskip("psycopg")
@@ -214,14 +194,14 @@ def test_unreachable_ledger_from_the_command_line(good_site, capsys, closed_port
 
 
 @pytest.mark.parametrize("argv", [["close", "--period", "2026-10"], ["history"]], ids=["close", "history"])
-def test_unreachable_ledger_from_site_toml(good_site, capsys, closed_port, argv):
+def test_unreachable_ledger_from_site_toml(good_site, capsys, closed_port, argv, refused_once):
     pytest.importorskip("psycopg")
     append(good_site, f'[ledger]\nurl = "postgresql://u@127.0.0.1:{closed_port}/db"')
     line = refused_once(good_site, capsys, [argv[0], str(good_site), *argv[1:]])
     _refused_connection(line, f"{good_site}/site.toml: ledger.url: ", closed_port)
 
 
-def test_ledger_url_with_an_impossible_port(good_site, capsys):
+def test_ledger_url_with_an_impossible_port(good_site, capsys, refused_once):
     pytest.importorskip("psycopg")
     line = refused_once(good_site, capsys, ["history", str(good_site), "--ledger", "postgresql://u@127.0.0.1:99999/db"])
     assert line == ('error: --ledger: cannot connect to the ledger postgresql://u@127.0.0.1:99999/db: connection is bad: '
@@ -229,12 +209,12 @@ def test_ledger_url_with_an_impossible_port(good_site, capsys):
 
 
 @pytest.mark.parametrize("url", ["not a url", "mysql://u@h/db", "", "/tmp/ledger.sqlite"])
-def test_ledger_option_that_is_not_a_url(good_site, capsys, url):
+def test_ledger_option_that_is_not_a_url(good_site, capsys, url, refused_once):
     line = refused_once(good_site, capsys, ["history", str(good_site), "--ledger", url])
     assert line == "error: --ledger: not a PostgreSQL URL (postgresql://user@host:port/database)"
 
 
-def test_ledger_file_that_is_not_a_database(good_site, capsys):
+def test_ledger_file_that_is_not_a_database(good_site, capsys, refused_once):
     (good_site / "ledger.sqlite").write_bytes(b"not sqlite " * 100)
     line = refused_once(good_site, capsys, ["history", str(good_site)])
     assert line == (f"error: {good_site}/ledger.sqlite: not a readable SQLite ledger (file is not a database); "
@@ -243,29 +223,29 @@ def test_ledger_file_that_is_not_a_database(good_site, capsys):
 
 # ----------------------------------------------------------------------------- command options
 @pytest.mark.parametrize("date", ["2026-13-45", "yesterday", "", "../../etc"])
-def test_volumes_date_that_is_not_a_date(good_site, capsys, date):
+def test_volumes_date_that_is_not_a_date(good_site, capsys, date, refused_once):
     line = refused_once(good_site, capsys, ["volumes", str(good_site), "--date", date])
     assert line == f"error: --date: date: {date!r} is not a date YYYY-MM-DD"
 
 
-def test_volumes_date_without_a_survey(good_site, capsys):
+def test_volumes_date_without_a_survey(good_site, capsys, refused_once):
     line = refused_once(good_site, capsys, ["volumes", str(good_site), "--date", "2026-10-30"])
     assert line == (f"error: {good_site}/surveys/2026-10-30: date: no survey dated 2026-10-30 "
                     "(survey folders: 2026-10-31)")
 
 
-def test_history_from_after_to(good_site, capsys):
+def test_history_from_after_to(good_site, capsys, refused_once):
     line = refused_once(good_site, capsys, ["history", str(good_site), "--from", "2026-12", "--to", "2026-01"])
     assert line == "error: --from: period: 2026-12 is after --to 2026-01"
 
 
-def test_history_xlsx_needs_an_output(good_site, capsys):
+def test_history_xlsx_needs_an_output(good_site, capsys, refused_once):
     line = refused_once(good_site, capsys, ["history", str(good_site), "--format", "xlsx"])
     assert line == ("error: --format xlsx needs --output FILE.xlsx (a workbook is written to a file, not to the "
                     "terminal)")
 
 
-def test_history_output_that_is_a_folder(good_site, tmp_path, capsys):
+def test_history_output_that_is_a_folder(good_site, tmp_path, capsys, refused_once):
     folder = tmp_path / "reports"
     folder.mkdir()
     for fmt in ("csv", "xlsx"):
@@ -274,7 +254,7 @@ def test_history_output_that_is_a_folder(good_site, tmp_path, capsys):
     assert list(folder.iterdir()) == [] and sorted(p.name for p in tmp_path.iterdir()) == ["reports", "site"]
 
 
-def test_history_output_under_a_file(good_site, tmp_path, capsys):
+def test_history_output_under_a_file(good_site, tmp_path, capsys, refused_once):
     blocker = tmp_path / "notes.txt"
     blocker.write_text("a file where a folder is expected")
     line = refused_once(good_site, capsys, ["history", str(good_site), "--format", "csv",
@@ -287,7 +267,7 @@ def test_history_output_under_a_file(good_site, tmp_path, capsys):
     ("--by", "year", "'pile', 'material', 'month'"),
     ("--format", "pdf", "'table', 'csv', 'json', 'html', 'xlsx'"),
 ])
-def test_history_choice_not_offered(good_site, capsys, option, value, choices):
+def test_history_choice_not_offered(good_site, capsys, option, value, choices, snapshot):
     # argparse answers an unknown choice itself: usage, one error line, exit 2
     before = snapshot(good_site)
     with pytest.raises(SystemExit) as stop:

@@ -8,7 +8,6 @@ vertex) and the field, no traceback, and the site folder byte-identical afterwar
 
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 
 import laspy
@@ -29,25 +28,6 @@ POINTS = np.c_[499985 + _rng.uniform(0, 60, 60), 5699985 + _rng.uniform(0, 30, 6
 N = len(POINTS)
 XYZ = "".join(f"{x:.3f} {y:.3f} {z:.3f}\n" for x, y, z in POINTS)
 PRJ = pyproj.CRS("EPSG:25832").to_wkt("WKT1_ESRI")
-
-
-def snapshot(root: Path) -> dict[str, str]:
-    """Every file under ``root`` by relative path, with the SHA-256 of its bytes."""
-    return {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(root.rglob("*")) if p.is_file()}
-
-
-def refused_once(site: Path, capsys, argv: list[str] | None = None) -> str:
-    """Run the command (default ``check SITE``); assert exit 2, no traceback, nothing changed,
-    and return the one error line."""
-    before = snapshot(site)
-    assert main(argv or ["check", str(site)]) == 2
-    err = capsys.readouterr().err
-    assert "Traceback" not in err
-    lines = [line for line in err.splitlines() if line.startswith("error: ")]
-    assert len(lines) == 1, lines
-    assert snapshot(site) == before
-    return lines[0]
 
 
 def ply(points=POINTS, *, count: int | None = None, binary: bool = False) -> bytes:
@@ -132,7 +112,7 @@ CLOUDS = {
 
 
 @pytest.mark.parametrize("name, data, _, expected", CLOUDS.values(), ids=CLOUDS.keys())
-def test_damaged_text_and_ply_clouds(good_site, capsys, name, data, _, expected):
+def test_damaged_text_and_ply_clouds(good_site, capsys, name, data, _, expected, refused_once):
     deliver(good_site, name, data)
     assert refused_once(good_site, capsys) == expected
 
@@ -157,26 +137,26 @@ PRJS = {
 
 
 @pytest.mark.parametrize("prj, expected", PRJS.values(), ids=PRJS.keys())
-def test_damaged_crs_files_are_named_themselves(good_site, capsys, prj, expected):
+def test_damaged_crs_files_are_named_themselves(good_site, capsys, prj, expected, refused_once):
     deliver(good_site, "b.xyz", XYZ, prj=prj)
     assert refused_once(good_site, capsys) == expected
 
 
-def test_cut_crs_file(good_site, capsys):
+def test_cut_crs_file(good_site, capsys, refused_once):
     deliver(good_site, "b.xyz", XYZ, prj=PRJ[:40])
     line = refused_once(good_site, capsys)
     assert line.startswith(f"error: {S}/crs.prj: crs: not a known coordinate reference system: "
                            "'PROJCS[\"ETRS_1989_UTM_Zone_32N\",GEOGCS[\"'")
 
 
-def test_text_cloud_without_crs(good_site, capsys):
+def test_text_cloud_without_crs(good_site, capsys, refused_once):
     deliver(good_site, "b.xyz", XYZ, prj=None)
     assert refused_once(good_site, capsys) == (
         f"error: {S}/b.xyz: crs: carries no CRS: give it in b.prj or crs.prj beside it, a pose in stations.csv, "
         "control points in control.csv, or [survey] default_crs in site.toml")
 
 
-def test_a_close_refuses_a_damaged_ply_before_writing(good_site, capsys):
+def test_a_close_refuses_a_damaged_ply_before_writing(good_site, capsys, refused_once):
     deliver(good_site, "b.ply", ply(with_point(POINTS, np.inf), binary=True))
     line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
     assert line == f"error: {S}/b.ply vertex 61: x: a coordinate is not a finite number"
@@ -205,13 +185,13 @@ def test_whole_e57_is_read(good_site, capsys, e57_bytes):
 # cut on the file length the header states
 @pytest.mark.parametrize("fraction, why", [(0.01, "read"), (0.1, "read"), (0.3, "length"), (0.5, "length"),
                                            (0.9, "length"), (0.99, "length")])
-def test_cut_e57(good_site, capsys, e57_bytes, fraction, why):
+def test_cut_e57(good_site, capsys, e57_bytes, fraction, why, refused_once):
     deliver(good_site, "b.e57", e57_bytes[:int(len(e57_bytes) * fraction)], prj=None)
     assert refused_once(good_site, capsys) == (
         f"error: {S}/b.e57: not a readable E57 file, truncated or damaged ({E57_WHY[why]})")
 
 
-def test_e57_with_one_byte_flipped(good_site, capsys, e57_bytes):
+def test_e57_with_one_byte_flipped(good_site, capsys, e57_bytes, refused_once):
     k = len(e57_bytes) // 2
     deliver(good_site, "b.e57", e57_bytes[:k] + bytes([e57_bytes[k] ^ 0xFF]) + e57_bytes[k + 1:], prj=None)
     assert refused_once(good_site, capsys) == (
@@ -226,7 +206,7 @@ def test_e57_with_one_byte_flipped(good_site, capsys, e57_bytes):
      "damaged E57 structure (scan 1: its pose is not a rotation quaternion and a translation ([0.0, 0.0, 0.0, 0.0], "
      "[0.0, 0.0, 0.0]))"),
 ], ids=["no-point", "every-point-invalid", "zero-quaternion"])
-def test_e57_without_usable_points_or_pose(good_site, capsys, write_e57, tmp_path, scan, expected):
+def test_e57_without_usable_points_or_pose(good_site, capsys, write_e57, tmp_path, scan, expected, refused_once):
     path = write_e57(tmp_path / "b.e57", [{"pose": ((1, 0, 0, 0), (0, 0, 0)), **scan}],
                      coordinate_metadata=pyproj.CRS("EPSG:25832").to_wkt())
     deliver(good_site, "b.e57", path.read_bytes(), prj=None)
@@ -278,7 +258,7 @@ SCANS = {
 
 
 @pytest.mark.parametrize("rows, expected", SCANS.values(), ids=SCANS.keys())
-def test_stations_scan_rows(good_site, capsys, two_scans, rows, expected):
+def test_stations_scan_rows(good_site, capsys, two_scans, rows, expected, refused_once):
     (good_site / SURVEY / "two.e57").write_bytes(two_scans)
     (good_site / SURVEY / "stations.csv").write_text(SCAN_HEAD + rows)
     if expected is None:
@@ -359,7 +339,7 @@ CONTROLS = {
 
 
 @pytest.mark.parametrize("text, expected", CONTROLS.values(), ids=CONTROLS.keys())
-def test_damaged_control(good_site, capsys, text, expected):
+def test_damaged_control(good_site, capsys, text, expected, refused_once):
     to_survey_frame(good_site)
     path = good_site / SURVEY / "control.csv"
     if text is None:
@@ -372,7 +352,7 @@ def test_damaged_control(good_site, capsys, text, expected):
         assert refused_once(good_site, capsys) == expected
 
 
-def test_a_close_refuses_control_in_other_units_before_writing(good_site, capsys):
+def test_a_close_refuses_control_in_other_units_before_writing(good_site, capsys, refused_once):
     to_survey_frame(good_site)
     (good_site / SURVEY / "control.csv").write_text(control(survey_scale=1 / 0.3048))
     line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
