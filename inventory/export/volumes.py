@@ -26,13 +26,11 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Mapping
 
-import numpy as np
 import pandas as pd
 
 from inventory.io.atomic import atomic_path
 from inventory.io.gpkg import describe_layers
 from inventory.model.columns import FIELDS, unit_of
-from inventory.model.texts import CAUTIONS
 from inventory.stock.totals import SURVEY_TOTAL_COLUMNS, survey_totals
 
 __all__ = ["VOLUME_REPORT_COLUMNS", "write_volume_csv", "write_volume_workbook", "write_volume_layers"]
@@ -59,11 +57,6 @@ TOTALS_IN_WORDS = (
 #: Title of the site's row in the Totals sheet (its ``material`` is empty in the table).
 SITE_ROW = "site (all materials)"
 
-#: Excel number formats by unit symbol (the unit comes from the column name).
-_FORMATS = {"m3": '#,##0.0 "m³"', "m2": '#,##0.0 "m²"', "t": '#,##0.0 "t"', "t/m3": '0.000 "t/m³"',
-            "m": '0.00 "m"', "%": '0.0 "%"'}
-
-
 def write_volume_csv(table: pd.DataFrame, path: str | Path) -> Path:
     """Write a table as CSV (formula-like text neutralised); renamed into place when complete."""
     from inventory.export.cells import write_csv
@@ -72,47 +65,6 @@ def write_volume_csv(table: pd.DataFrame, path: str | Path) -> Path:
     with atomic_path(dest) as tmp:
         tmp.write_text(write_csv(table, index=False), encoding="utf-8")
     return dest
-
-
-def _value(v: Any) -> Any:
-    if v is None or v is pd.NA:
-        return None
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, np.integer):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        return float(v) if np.isfinite(v) else None
-    return str(v)
-
-
-def _sheet(wb, title: str, frame: pd.DataFrame, empty_text: str) -> None:
-    from openpyxl.styles import Font
-    from openpyxl.utils import get_column_letter
-
-    from inventory.export.cells import neutralise
-
-    ws = wb.create_sheet(title)
-    cols = [str(c) for c in frame.columns]
-    for j, col in enumerate(cols, start=1):
-        cell = ws.cell(row=1, column=j, value=col)
-        cell.font = Font(bold=True)
-    for i, row in enumerate(frame.itertuples(index=False, name=None), start=2):
-        for j, (col, v) in enumerate(zip(cols, row), start=1):
-            cell = ws.cell(row=i, column=j, value=neutralise(_value(v)))
-            unit = unit_of(col)
-            if unit is not None and isinstance(cell.value, float):
-                cell.number_format = _FORMATS.get(unit[0], "General")
-            elif col == "scanned_fraction" and isinstance(cell.value, float):
-                cell.number_format = "0.0%"
-    if not len(frame):
-        ws.cell(row=2, column=1, value=empty_text)
-    ws.freeze_panes = "B2"
-    if cols:
-        ws.auto_filter.ref = f"A1:{get_column_letter(len(cols))}{max(len(frame) + 1, 1)}"
-    for j, col in enumerate(cols, start=1):
-        shown = [len(col)] + [len(f"{v:,.1f}") if isinstance(v, float) else len(str(v)) for v in frame[col]]
-        ws.column_dimensions[get_column_letter(j)].width = min(max(shown) + 3, 50)
 
 
 def write_volume_workbook(
@@ -130,42 +82,21 @@ def write_volume_workbook(
         Facts shown on the About sheet (site, survey date, CRS, ...), in order.
     path : str or Path
     """
-    from openpyxl import Workbook
-    from openpyxl.styles import Font
+    from inventory.export.workbook import write_tables_workbook
 
-    wb = Workbook()
-    wb.remove(wb.active)
-    _sheet(wb, "Volumes", table, "No piles.")
     totals = survey_totals(table) if len(table) else pd.DataFrame(columns=SURVEY_TOTAL_COLUMNS)
     totals["material"] = totals["material"].where(totals["material"] != "", SITE_ROW)
-    _sheet(wb, "Totals", totals, "No piles.")
-    ws = wb["Totals"]
-    ws.cell(row=len(totals) + 3, column=1, value=TOTALS_IN_WORDS)
-    _sheet(wb, "Unassigned stock", unassigned, "No stock found outside the footprints.")
     cols = list(dict.fromkeys(list(table.columns) + list(totals.columns) + list(unassigned.columns)))
     meanings = pd.DataFrame(
         [{"column": c, "title": FIELDS[c][0] if c in FIELDS else c,
           "unit": (unit_of(c) or ("", ""))[0], "meaning": FIELDS[c][1] if c in FIELDS else ""}
          for c in cols])
-    _sheet(wb, "Columns", meanings, "")
-    ws = wb.create_sheet("About")
-    row = 1
-    for key, value in about.items():
-        ws.cell(row=row, column=1, value=str(key)).font = Font(bold=True)
-        ws.cell(row=row, column=2, value=_value(value))
-        row += 1
-    row += 1
-    for text in CAUTIONS:
-        ws.cell(row=row, column=1, value=text)
-        row += 1
-    ws.column_dimensions["A"].width = 24
-    ws.column_dimensions["B"].width = 60
-    wb.properties.creator = "inventory"
-    wb.properties.title = f"Pile volumes, survey of {about.get('survey date', '')}"
-    dest = Path(path)
-    with atomic_path(dest) as tmp:
-        wb.save(tmp)
-    return dest
+    return write_tables_workbook(
+        [("Volumes", table, "No piles.", None),
+         ("Totals", totals, "No piles.", TOTALS_IN_WORDS),
+         ("Unassigned stock", unassigned, "No stock found outside the footprints.", None),
+         ("Columns", meanings, "", None)],
+        about, f"Pile volumes, survey of {about.get('survey date', '')}", path)
 
 
 _LAYER_TEXTS = {

@@ -63,7 +63,7 @@ from inventory.io.atomic import atomic_path
 
 __all__ = [
     "write_workbook", "write_history_workbook", "SHEETS", "FILL_OUT_OF_TOLERANCE", "FILL_SIGNIFICANT", "VARIANCE_SIGMA_IN_WORDS",
-    "TOTAL_SIGMA_IN_WORDS",
+    "TOTAL_SIGMA_IN_WORDS", "write_tables_workbook",
 ]
 
 #: Sheets of a close whose ``tables`` are empty, in order.
@@ -995,6 +995,47 @@ def _variance_chart(book: _Book, sh: _Sheet, piles: int, periods: int) -> None:
     chart.set_x_axis({"name": "period"})
     chart.set_size({"width": 680, "height": 300})
     sh.ws.insert_chart(f"A{piles + 4}", chart)
+
+
+def write_tables_workbook(
+    sheets: Iterable[tuple[str, pd.DataFrame, str, str | None]],
+    about: Mapping[str, Any],
+    title: str,
+    path: str | Path,
+) -> Path:
+    """A plain workbook of tables, then an ``About`` sheet of facts and the cautions.
+
+    Each of ``sheets`` is ``(sheet title, frame, text shown when the frame is empty, note
+    under the table or None)``; a table has its header row frozen and filtered and each
+    number its unit's format (from the column name). Written under a temporary name and
+    renamed when complete.
+    """
+    dest = Path(path)
+    with atomic_path(dest) as tmp:
+        book = _Book(tmp, title)
+        for name, frame, empty_text, note in sheets:
+            sh = book.sheet(name)
+            frame = frame.rename(columns=str)
+            _, last = _table(sh, frame, list(frame.columns), freeze=(1, 1))
+            if not len(frame) and empty_text:
+                sh.put(2, 1, empty_text)
+            if note:
+                sh.put(last + 2, 1, note)
+            sh.fit()
+        ab = book.sheet("About", landscape=False)
+        row = 1
+        for key, value in about.items():
+            ab.put(row, 1, str(key), bold=True)
+            ab.put(row, 2, value)
+            row += 1
+        for text in CAUTIONS:
+            ab.put(row + 1, 1, text)
+            row += 1
+        ab.fixed[1], ab.fixed[2] = 24, 60
+        ab.fit()
+        book.wb.set_properties({"title": title, "author": "inventory"})
+        book.wb.close()
+    return dest
 
 
 def write_history_workbook(df: pd.DataFrame, path: str | Path, totals: pd.DataFrame | None = None,
