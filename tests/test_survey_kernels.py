@@ -6,7 +6,7 @@ import numpy as np
 from scipy.spatial import Delaunay, cKDTree
 
 from inventory.survey.gridding import _linear_on_lattice
-from inventory.survey.kernels import CellIndex, below_tests, knn3_mean, min_envelope, plan_knn
+from inventory.survey.kernels import CellIndex, _knn, below_tests, has_company, knn3_mean, min_envelope, plan_knn
 
 
 def _cloud(n=4000, seed=2):
@@ -50,6 +50,18 @@ def test_knn3_mean_matches_brute_force():
     np.testing.assert_allclose(got, d[rows, :8].mean(axis=1), rtol=1e-12)
 
 
+def test_knn3_mean_sums_as_numpy_does():
+    # the kernel keeps no table of distances; its mean must equal numpy's mean of that
+    # table to the bit (numpy sums a row of 8 or more pairwise, of fewer in order), for
+    # every k the outlier filter may be given
+    x, y, z = _cloud(2000, seed=9)
+    rows = np.arange(len(x))
+    index = CellIndex(x, y, k=16)
+    for k in (1, 3, 7, 8, 9, 15, 16, 17, 24, 31):
+        dd, _ = _knn(index, x, y, z, k, rows.astype(np.int64), z)   # the table, then its mean
+        np.testing.assert_array_equal(knn3_mean(index, x, y, z, rows, k), dd.mean(axis=1), err_msg=f"k={k}")
+
+
 def test_point_tests_match_their_array_form():
     # the array form is how inventory.survey.ground computed them before the kernels
     x, y, z = _cloud(3000, seed=6)
@@ -64,11 +76,22 @@ def test_point_tests_match_their_array_form():
     n_near = near.sum(1)
     plan_ref = (n_near >= 4) & ((near & above).sum(1) >= 0.9 * n_near)
     deep_ref = 2 * above.sum(1) >= 16
-    plan, deep = below_tests(d, nb, z, np.arange(len(z)), t, tol, gap, 16)
+    # the kernels take the neighbours' numbers alone (int32) and work the distances out
+    # again from the coordinates: the same bits as the search's
+    nb32 = plan_knn(CellIndex(x, y, k=17), x, y, 17, dist=False)
+    assert nb32.dtype == np.int32
+    np.testing.assert_array_equal(nb32[:, 1:], nb)
+    rows = np.arange(len(z))
+    plan, deep = below_tests(nb32[:, 1:], rows, x, y, z, t, tol, gap, 16)
     np.testing.assert_array_equal(plan, plan_ref)
     np.testing.assert_array_equal(deep, deep_ref)
     assert plan.any() and deep.any()
-    np.testing.assert_array_equal(min_envelope(d, nb, z, t), (z[nb] + t * d).min(1))
+    np.testing.assert_array_equal(min_envelope(nb32[:, 1:], rows, x, y, z, t), (z[nb] + t * d).min(1))
+    # a member within 2 m in 3D among the neighbours, as the isolation rule asked it
+    member = np.random.default_rng(3).random(len(z)) < 0.5
+    ref = (member[nb] & (d ** 2 + (z[nb] - z[:, None]) ** 2 <= 4.0)).any(1)
+    np.testing.assert_array_equal(has_company(nb32[:, 1:], rows, x, y, z, member, 2.0), ref)
+    assert ref.any() and not ref.all()
 
 
 def test_lattice_fill_matches_scipy_griddata_form():

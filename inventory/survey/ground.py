@@ -22,8 +22,8 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, member_rows,
-                                      min_envelope, plan_knn, plan_knn3)
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, has_company, knn3_mean,
+                                      member_rows, min_envelope, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -123,16 +123,19 @@ def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGr
     """The envelope over each point's ``k`` nearest neighbours in plan, at exact distances.
 
     The grid envelope only sees the lowest point of each cell; on a wall, the points just
-    below a point in plan are what show it is a wall.
+    below a point in plan are what show it is a wall. ``knn``: (neighbours, rows), the
+    ``k`` nearest and the point itself of the points ``rows`` (numbers in x, y, z), as
+    :meth:`_PlanNeighbours.within` gives them; the envelope is then of those rows only.
     """
     n = len(z)
     if n < 2:
-        return np.full(n, np.inf)
+        return np.full(n if knn is None else len(knn[1]), np.inf)
     if knn is None:
-        knn = plan_knn(CellIndex(x, y, k=k + 1), x, y, min(k + 1, n))
-    d, nb = knn
+        knn = plan_knn(CellIndex(x, y, k=k + 1), x, y, min(k + 1, n), dist=False), np.arange(n)
+    nb, rows = knn
     t = math.tan(math.radians(params.max_slope_deg))
-    return min_envelope(d, nb, np.ascontiguousarray(z, dtype=np.float64), t)
+    return min_envelope(nb, rows, np.ascontiguousarray(x, dtype=np.float64), np.ascontiguousarray(y, dtype=np.float64),
+                        np.ascontiguousarray(z, dtype=np.float64), t)
 
 
 class _PlanNeighbours:
@@ -142,7 +145,9 @@ class _PlanNeighbours:
     members of a subset" (k <= K) for a subset member whenever its first k neighbours are
     all members, which is nearly every point (the subsets leave out a few noise points);
     the others are asked again, of the subset's own cell index. Saves a query per subset.
-    Queries run on a grid of cells (:class:`~inventory.survey.kernels.CellIndex`).
+    Queries run on a grid of cells (:class:`~inventory.survey.kernels.CellIndex`). Only
+    the neighbours' numbers are kept (int32); their distances are worked out again from
+    the coordinates where they are used, to the same bits, at a quarter of the memory.
     """
 
     K = 17
@@ -150,13 +155,13 @@ class _PlanNeighbours:
     def __init__(self, x: np.ndarray, y: np.ndarray) -> None:
         self.x, self.y = x, y
         n = len(x)
-        self.d = self.nb = None
+        self.nb = None
         if n >= 2:
-            self.d, self.nb = plan_knn(CellIndex(x, y, k=self.K), x, y, min(self.K, n))
+            self.nb = plan_knn(CellIndex(x, y, k=self.K), x, y, min(self.K, n), dist=False)
 
-    def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None
-               ) -> tuple[np.ndarray, np.ndarray]:
-        """Distances and indices (numbered within the subset) of each member's k nearest members.
+    def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None) -> np.ndarray:
+        """Numbers (within the subset, int32; -1: fewer members than asked) of each
+        member's k nearest members, the member itself among them.
 
         ``rows`` (a mask, members only) limits the answer to those members' rows.
         """
@@ -165,20 +170,20 @@ class _PlanNeighbours:
         k = min(k, len(idx))
         pos = (np.cumsum(members) - 1).astype(np.int64)
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
-            d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[sel], self.y[sel], max(k, 1))
-            return d, np.where(nb >= 0, np.take(pos, nb), -1)   # -1: fewer members than asked
+            nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[sel], self.y[sel], max(k, 1), dist=False)
+            return np.where(nb >= 0, np.take(pos, nb), -1).astype(np.int32)
         if len(idx) == len(members):
             if rows is None:
-                return self.d[:, :k], self.nb[:, :k]
-            return np.take(self.d[:, :k], sel, axis=0), np.take(self.nb[:, :k], sel, axis=0)
+                return self.nb[:, :k]
+            return np.take(self.nb[:, :k], sel, axis=0)
         # rows whose k nearest are all members are answered; the others asked again
-        dd, nn, mixed = member_rows(self.d, self.nb, sel, members, pos, k)
+        nn, mixed = member_rows(self.nb, sel, members, pos, k)
         mixed = np.flatnonzero(mixed)
         if len(mixed):
             q = sel[mixed]
-            d, nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k)
-            dd[mixed], nn[mixed] = d, np.take(pos, nb)
-        return dd, nn
+            nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k, dist=False)
+            nn[mixed] = np.take(pos, nb)
+        return nn
 
 
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
@@ -195,7 +200,7 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     """Points kept only by the steeper ``face_slope_deg`` bound that belong to the surface.
 
     ``knn``: the 16 nearest points in plan (and the point itself) of the points not in
-    ``ground``, in their order, as :meth:`_PlanNeighbours.within` gives them.
+    ``ground``, in their order, as :meth:`_PlanNeighbours.within` gives them (numbers).
 
     Candidates lie on the envelope of ``face_slope_deg`` but not of ``max_slope_deg``:
     reclaim faces cut by a loader and the pile top behind them, but also the middle of a
@@ -213,7 +218,8 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     steep = replace(params, max_slope_deg=params.face_slope_deg)
     other = ~ground     # only these can become candidates: the envelope at them alone
     e = slope_envelope(x, y, z, steep, qx=x[other], qy=y[other])
-    local = _local_envelope(x, y, z, steep)[other] if knn is None else _local_envelope(x, y, z, steep, knn=knn)
+    local = (_local_envelope(x, y, z, steep)[other] if knn is None
+             else _local_envelope(x, y, z, steep, knn=(knn, np.flatnonzero(other))))
     cand = np.zeros(len(z), bool)
     cand[other] = z[other] - np.minimum(e, local) <= params.tolerance
     out = np.zeros(len(z), bool)
@@ -489,9 +495,9 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
               near: "dict | None" = None) -> np.ndarray:
     """Points with no other point within :data:`ISOLATION_M` in 3D.
 
-    ``near`` may hold the nearest points in plan of a superset of ``use`` (``idx``, ``d``,
-    ``nb``, ``z`` from :func:`_below_neighbours`): a point with a member of ``use`` among
-    them closer than :data:`ISOLATION_M` in 3D is not isolated; only the others are
+    ``near`` may hold the nearest points in plan of a superset of ``use`` (``idx``, ``nb``,
+    ``x``, ``y``, ``z`` from :func:`_below_neighbours`): a point with a member of ``use``
+    among them closer than :data:`ISOLATION_M` in 3D is not isolated; only the others are
     queried in 3D.
     """
     out = np.zeros(len(z), bool)
@@ -504,17 +510,10 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
         d1 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], np.arange(len(idx)), 1)
         out[idx[d1 > ISOLATION_M]] = True
         return out
-    sup, d, nb, zs = near["idx"], near["d"], near["nb"], near["z"]
+    sup, nb = near["idx"], near["nb"]
     member = use[sup]
-    # column by column over the rows still without a close member (most find one in the first)
     rest = np.flatnonzero(member)
-    for j in range(nb.shape[1]):
-        if not len(rest):
-            break
-        nj = nb[rest, j]
-        dz = zs[nj] - zs[rest]
-        ok = member[nj] & (d[rest, j] ** 2 + dz ** 2 <= ISOLATION_M ** 2)
-        rest = rest[~ok]
+    rest = rest[~has_company(nb, rest, near["x"], near["y"], near["z"], member, ISOLATION_M)]
     if len(rest):
         short = (np.cumsum(member) - 1)[rest]    # positions in idx
         d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
@@ -544,19 +543,18 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     if len(idx) <= k2:
         return out
     t = math.tan(math.radians(params.max_slope_deg))
-    xs, ys, zs = x[idx], y[idx], np.ascontiguousarray(z[idx], dtype=np.float64)
+    xs, ys, zs = (np.ascontiguousarray(v[idx], dtype=np.float64) for v in (x, y, z))
 
     if plan is None:
         plan = _PlanNeighbours(x, y)
-    d, nb = plan.within(use, k2 + 1)
-    d, nb = d[:, 1:], nb[:, 1:]
+    nb = plan.within(use, k2 + 1)[:, 1:]
     # the plan test and the first half of the isolation test, point by point
-    plan, deep = below_tests(d, nb, zs, np.arange(len(idx)), t, params.tolerance, params.overhead_gap, k2)
+    plan, deep = below_tests(nb, np.arange(len(idx)), xs, ys, zs, t, params.tolerance, params.overhead_gap, k2)
 
     # Deeper points: above-reach neighbours in plan (any height) and almost no points
     # within 1 m in 3D, i.e. no surface at the point's own level.
     if near3 is not None:   # handed on to _isolated
-        near3.update(idx=idx, d=d, nb=nb, z=zs)
+        near3.update(idx=idx, nb=nb, x=xs, y=ys, z=zs)
     # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
     # point itself included, is farther than r": one 4-nearest query answers both radii,
     # asked only for the points that pass the plan tests (a few per cent).
@@ -630,7 +628,8 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
         return out, height
     xu, yu, zu = x[use], y[use], z[use]
     envelope = _EnvelopeGrid(xu, yu, zu, params)   # built once: points and noise query it
-    e = np.minimum(envelope.at(xu, yu), _local_envelope(xu, yu, zu, params, knn=plan.within(use, 17)))
+    e = np.minimum(envelope.at(xu, yu), _local_envelope(xu, yu, zu, params,
+                                                         knn=(plan.within(use, 17), np.arange(len(zu)))))
     height[use] = zu - e
     # Noise points are judged against the envelope of the rest: those on it are surface
     # after all and take part in the region rules below.

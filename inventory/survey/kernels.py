@@ -33,7 +33,7 @@ from numba import njit
 
 from inventory.parallel import job_threads
 
-__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "lattice_triangles",
+__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "has_company", "lattice_triangles",
            "run_rows"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
@@ -121,7 +121,7 @@ class CellIndex:
 
 @njit(cache=True, nogil=True)
 def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, k, skip_self, qid,
-              out_d, out_i):
+              out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
@@ -170,17 +170,69 @@ def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, 
             if bd[k - 1] <= lim * lim or r > rmax:
                 break
             r += 1
+        if mode == 0:       # distances and numbers
+            for m in range(k):
+                out_d[i, m] = math.sqrt(bd[m])
+                out_i[i, m] = bi[m]
+        elif mode == 1:     # numbers only
+            for m in range(k):
+                out_i[i, m] = bi[m]
+        else:               # mean distance only, summed as numpy's mean over a row sums
+            out_d[i, 0] = _row_sum_sqrt(bd, k) / k
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _row_sum_sqrt(bd, k):
+    """Sum of ``sqrt(bd[:k])`` in the order of numpy's pairwise summation of a row of
+    ``k`` <= 128 values (``np.add.reduce``: sequential below 8 values, else eight running
+    sums combined pairwise), so that a mean taken here equals ``d.mean(axis=1)``."""
+    if k < 8:
+        res = 0.0
         for m in range(k):
-            out_d[i, m] = math.sqrt(bd[m])
-            out_i[i, m] = bi[m]
+            res += math.sqrt(bd[m])
+        return res
+    r0 = math.sqrt(bd[0])
+    r1 = math.sqrt(bd[1])
+    r2 = math.sqrt(bd[2])
+    r3 = math.sqrt(bd[3])
+    r4 = math.sqrt(bd[4])
+    r5 = math.sqrt(bd[5])
+    r6 = math.sqrt(bd[6])
+    r7 = math.sqrt(bd[7])
+    m = 8
+    while m < k - (k % 8):
+        r0 += math.sqrt(bd[m])
+        r1 += math.sqrt(bd[m + 1])
+        r2 += math.sqrt(bd[m + 2])
+        r3 += math.sqrt(bd[m + 3])
+        r4 += math.sqrt(bd[m + 4])
+        r5 += math.sqrt(bd[m + 5])
+        r6 += math.sqrt(bd[m + 6])
+        r7 += math.sqrt(bd[m + 7])
+        m += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while m < k:
+        res += math.sqrt(bd[m])
+        m += 1
+    return res
 
 
-def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None"):
+def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None", mode: int = 0):
+    """The k nearest members of ``index`` to each query point. ``mode`` 0: distances and
+    numbers (int64); 1: numbers only (int32, -1 where fewer: a quarter of the memory of
+    mode 0, for callers that work the distances out again from coordinates); 2: the mean
+    distance of each row (an (n, 1) array, the row's values never stored)."""
     n = len(qx)
     if n == 0 or k == 0 or index.n == 0:
+        if mode == 1:
+            return None, np.full((n, k), -1, np.int32)
+        if mode == 2:
+            return np.full((n, 1), np.inf), None
         return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
-    d = np.empty((n, k))                # every row is written by _knn_rows
-    nb = np.empty((n, k), np.int64)
+    if mode == 1 and index.n >= 2**31:   # pragma: no cover - a tile of 2 billion points
+        raise ValueError("more points than 32-bit neighbour numbers hold")
+    d = np.empty((n, 1) if mode == 2 else (n, k) if mode == 0 else (1, 1))   # every row is written
+    nb = np.empty((n, k), np.int32 if mode == 1 else np.int64) if mode != 2 else np.empty((1, 1), np.int64)
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
     use_z = z is not None
@@ -190,19 +242,23 @@ def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np
 
     def piece(a: int, b: int) -> None:
         _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, k, skip is not None, qid, d, nb)
+                  index.cell, index.nrow, index.ncol, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
-    return d, nb
+    return (None if mode == 1 else d), (None if mode == 2 else nb)
 
 
 def plan_knn(index: CellIndex, qx: np.ndarray, qy: np.ndarray, k: int,
-             skip: "np.ndarray | None" = None) -> tuple[np.ndarray, np.ndarray]:
+             skip: "np.ndarray | None" = None, dist: bool = True):
     """Distances in plan and numbers (among all points) of the ``k`` nearest members of
     ``index`` to each query point, nearest first; inf and -1 where there are fewer.
 
     ``skip``: for each query, a point number never returned (the query point itself).
+    ``dist`` False: the numbers alone, as int32 (what a caller that works distances out
+    again from coordinates needs: :func:`min_envelope`, :func:`below_tests`).
     """
+    if not dist:
+        return _knn(index, qx, qy, None, k, skip, None, mode=1)[1]
     return _knn(index, qx, qy, None, k, skip, None)
 
 
@@ -216,23 +272,34 @@ def plan_knn3(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, row
 
 def knn3_mean(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
               k: int) -> np.ndarray:
-    """Mean 3D distance of each point of ``rows`` to its ``k`` nearest other members."""
-    d, _ = _knn(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z)
-    return d.mean(axis=1)
+    """Mean 3D distance of each point of ``rows`` to its ``k`` nearest other members
+    (equal to ``d.mean(axis=1)`` of the distances, which are never stored)."""
+    d, _ = _knn(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z, mode=2)
+    return d[:, 0]
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _plan_dist(x, y, p, q):
+    """Distance in plan between points p and q, worked out as the neighbour search does
+    (so equal, bit for bit, to the distance it found)."""
+    dx = x[q] - x[p]
+    dy = y[q] - y[p]
+    return math.sqrt(dx * dx + dy * dy)
 
 
 @njit(cache=True, nogil=True)
-def _below_rows(a, b, d, nb, z, rows, t, tol, gap, k2, plan_out, deep_out):
+def _below_rows(a, b, nb, rows, x, y, z, t, tol, gap, k2, plan_out, deep_out):
     for i in range(a, b):
-        zp = z[rows[i]]
+        p = rows[i]
+        zp = z[p]
         n_near = 0
         n_near_above = 0
         n_above = 0
-        for j in range(d.shape[1]):
+        for j in range(nb.shape[1]):
             q = nb[i, j]
             if q < 0:
                 continue
-            dj = d[i, j]
+            dj = _plan_dist(x, y, p, q)
             if dj > 1.0:
                 continue
             dz = z[q] - zp
@@ -248,43 +315,77 @@ def _below_rows(a, b, d, nb, z, rows, t, tol, gap, k2, plan_out, deep_out):
         deep_out[i] = 2 * n_above >= k2
 
 
-def below_tests(d: np.ndarray, nb: np.ndarray, z: np.ndarray, rows: np.ndarray, t: float, tol: float,
-                gap: float, k2: int) -> tuple[np.ndarray, np.ndarray]:
+def below_tests(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, t: float,
+                tol: float, gap: float, k2: int) -> tuple[np.ndarray, np.ndarray]:
     """The plan and isolation tests of :func:`inventory.survey.ground._below_neighbours`
-    for the points ``rows`` with neighbours ``nb`` (point numbers) at plan distances ``d``."""
+    for the points ``rows`` with neighbours ``nb`` (point numbers in ``x``, ``y``, ``z``;
+    -1: none); plan distances are worked out from the coordinates."""
     n = len(rows)
     plan = np.zeros(n, bool)
     deep = np.zeros(n, bool)
 
     def piece(a: int, b: int) -> None:
-        _below_rows(a, b, d, nb, z, rows, t, tol, gap, k2, plan, deep)
+        _below_rows(a, b, nb, rows, x, y, z, t, tol, gap, k2, plan, deep)
 
     run_rows(piece, n)
     return plan, deep
 
 
 @njit(cache=True, nogil=True)
-def _envelope_rows(a, b, d, nb, z, t, out):
+def _envelope_rows(a, b, nb, rows, x, y, z, t, out):
     for i in range(a, b):
+        p = rows[i]
         e = np.inf
-        for j in range(d.shape[1]):
+        for j in range(nb.shape[1]):
             q = nb[i, j]
             if q < 0:
                 continue
-            v = z[q] + t * d[i, j]
+            v = z[q] + t * _plan_dist(x, y, p, q)
             if v < e:
                 e = v
         out[i] = e
 
 
-def min_envelope(d: np.ndarray, nb: np.ndarray, z: np.ndarray, t: float) -> np.ndarray:
-    """``min_j z[nb[i, j]] + t * d[i, j]`` for every row (inf for a row without neighbours)."""
-    out = np.empty(len(d))
+def min_envelope(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
+                 t: float) -> np.ndarray:
+    """``min_j z[q] + t * d(p, q)`` over the neighbours q = ``nb[i, j]`` of each point
+    p = ``rows[i]``, d the distance in plan (inf for a row without neighbours)."""
+    out = np.empty(len(nb))
 
     def piece(a: int, b: int) -> None:
-        _envelope_rows(a, b, d, nb, z, t, out)
+        _envelope_rows(a, b, nb, rows, x, y, z, t, out)
 
-    run_rows(piece, len(d))
+    run_rows(piece, len(nb))
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _company_rows(a, b, nb, rows, x, y, z, member, r2, out):
+    for i in range(a, b):
+        p = rows[i]
+        found = False
+        for j in range(nb.shape[1]):
+            q = nb[p, j]
+            if q < 0 or not member[q]:
+                continue
+            d = _plan_dist(x, y, p, q)
+            dz = z[q] - z[p]
+            if d * d + dz * dz <= r2:
+                found = True
+                break
+        out[i] = found
+
+
+def has_company(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
+                member: np.ndarray, radius: float) -> np.ndarray:
+    """For each point p of ``rows``: is one of its neighbours ``nb[p]`` (-1: none) a
+    ``member`` within ``radius`` in 3D (the plan distance as the neighbour search found it)?"""
+    out = np.zeros(len(rows), bool)
+
+    def piece(a: int, b: int) -> None:
+        _company_rows(a, b, nb, rows, x, y, z, member, radius * radius, out)
+
+    run_rows(piece, len(rows))
     return out
 
 
@@ -390,13 +491,12 @@ def envelope_at(qx, qy, x0, y0, c, ncol, gf, ax, ay, t):
 
 
 @njit(cache=True, nogil=True)
-def _member_rows(a, b, d, nb, sel, members, pos, k, dd, nn, mixed):
+def _member_rows(a, b, nb, sel, members, pos, k, nn, mixed):
     for i in range(a, b):
         r = sel[i]
         m = False
         for j in range(k):
             q = nb[r, j]
-            dd[i, j] = d[r, j]
             if q < 0 or not members[q]:
                 m = True
                 nn[i, j] = -1
@@ -405,18 +505,17 @@ def _member_rows(a, b, d, nb, sel, members, pos, k, dd, nn, mixed):
         mixed[i] = m
 
 
-def member_rows(d: np.ndarray, nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.ndarray, k: int
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rows ``sel`` of a k-nearest answer (``d``, ``nb`` numbered among all points), first
-    ``k`` columns, neighbours renumbered by ``pos`` (their number among the members); and
+def member_rows(nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.ndarray, k: int
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Rows ``sel`` of a k-nearest answer ``nb`` (numbered among all points), first ``k``
+    columns, neighbours renumbered by ``pos`` (their number among the members), int32; and
     which rows hold a neighbour that is not a member (its number is then -1)."""
     n = len(sel)
-    dd = np.empty((n, k))
-    nn = np.empty((n, k), np.int64)
+    nn = np.empty((n, k), np.int32)
     mixed = np.empty(n, np.bool_)
 
     def piece(a: int, b: int) -> None:
-        _member_rows(a, b, d, nb, sel, members, pos, k, dd, nn, mixed)
+        _member_rows(a, b, nb, sel, members, pos, k, nn, mixed)
 
     run_rows(piece, n)
-    return dd, nn, mixed
+    return nn, mixed
