@@ -114,3 +114,32 @@ def test_lattice_fill_matches_scipy_griddata_form():
     bary = np.column_stack([b, 1 - b.sum(1)])
     ref = (z[near][tri.simplices[s[inside]]] * bary).sum(1)
     np.testing.assert_allclose(got[inside], ref, atol=1e-9)
+
+
+def test_outlier_means_from_the_plan_table_are_the_searched_ones():
+    # knn3_mean_from_plan answers from a table of the 17 nearest in plan where that table
+    # provably holds the 8 nearest in 3D, and says where it does not: on a wall (points
+    # stacked in plan) the table cannot answer, on flat ground it can
+    from inventory.survey.ground import plan_table
+    from inventory.survey.kernels import knn3_mean_from_plan
+
+    rng = np.random.default_rng(11)
+    # flat ground (10 m x 10 m, 30 points/m2) and a wall standing on it (x = 5, 4 m high)
+    x = np.r_[rng.random(3000) * 10, np.full(600, 5.0) + rng.normal(0, 0.005, 600)]
+    y = np.r_[rng.random(3000) * 10, rng.random(600) * 10]
+    z = np.r_[rng.normal(0, 0.01, 3000), rng.random(600) * 4]
+    tab = plan_table(x, y)
+    o = tab.order
+    xo, yo, zo = x[o], y[o], z[o]
+    got, short = knn3_mean_from_plan(tab.plan.nb, xo, yo, zo, 8)
+    ref = knn3_mean(CellIndex(xo, yo, k=16), xo, yo, zo, np.arange(len(xo)), 8)
+    np.testing.assert_array_equal(got[~short], ref[~short])
+    wall = o >= 3000
+    far = (np.abs(xo - 5.0) > 1.0) & ~wall
+    assert short[wall].mean() > 0.5 and short[far].mean() < 0.05
+    # and the outlier mask is the same whichever way it was found
+    from inventory.survey.clean import statistical_outliers
+
+    xyz = np.column_stack([x, y, z])
+    np.testing.assert_array_equal(statistical_outliers(xyz, 8, 2.0, plan=tab.plan.nb),
+                                  statistical_outliers(xyz, 8, 2.0))

@@ -152,7 +152,8 @@ def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray
     return np.argsort(key, kind="stable")
 
 
-def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2.0) -> np.ndarray:
+def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2.0,
+                         plan: "np.ndarray | None" = None) -> np.ndarray:
     """Mask of outliers by statistical outlier removal (Rusu et al. 2008; PDAL semantics).
 
     The mean distance of each point to its ``mean_k`` nearest neighbours (the point itself
@@ -168,8 +169,15 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
         Neighbours whose mean distance is used (PDAL default 8).
     multiplier : float
         Standard deviations above the mean distance that make an outlier (PDAL default 2.0).
+    plan : ndarray (n, K) of int, optional
+        The K nearest points in plan of each point, points numbered in
+        ``spatial_order(x, y)`` (:func:`~inventory.survey.kernels.plan_knn` with
+        ``dist=False``, as the surface stage asks it): a point's neighbours in 3D are taken
+        from its row where the row holds them all (most points: see
+        :func:`~inventory.survey.kernels.knn3_mean_from_plan`), and searched for the rest.
+        The result is the same, bit for bit.
     """
-    from inventory.survey.kernels import CellIndex, knn3_mean
+    from inventory.survey.kernels import CellIndex, knn3_mean, knn3_mean_from_plan
 
     n = len(xyz)
     if n <= mean_k:
@@ -178,7 +186,15 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
     x, y, z = (np.ascontiguousarray(xyz[:, i], dtype=np.float64) for i in range(3))
     # the point itself is left out (PDAL asks for k + 1 and drops the first, itself)
     mean_d = np.empty(n)
-    mean_d[order] = knn3_mean(CellIndex(x, y, k=2 * mean_k), x, y, z, order, mean_k)   # back in input order
+    if plan is not None and len(plan) == n and plan.shape[1] > mean_k:
+        xo, yo, zo = x[order], y[order], z[order]
+        mo, short = knn3_mean_from_plan(plan, xo, yo, zo, mean_k)
+        rest = np.flatnonzero(short)
+        if len(rest):
+            mo[rest] = knn3_mean(CellIndex(xo, yo, k=2 * mean_k), xo, yo, zo, rest, mean_k)
+        mean_d[order] = mo
+    else:
+        mean_d[order] = knn3_mean(CellIndex(x, y, k=2 * mean_k), x, y, z, order, mean_k)   # back in input order
     threshold = mean_d.mean() + multiplier * mean_d.std(ddof=1)
     return mean_d >= threshold
 

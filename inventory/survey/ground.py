@@ -25,7 +25,7 @@ from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRU
 from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, has_company, knn3_mean,
                                       member_rows, min_envelope, plan_knn, plan_knn3)
 
-__all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
+__all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
 
 # Chamfer steps (row, col) used to propagate the envelope: 8 neighbours plus the 8 knight
 # moves; the largest distance error of this mask is under 3 % (Borgefors 1986, CVGIP 34:344,
@@ -184,6 +184,25 @@ class _PlanNeighbours:
             nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k, dist=False)
             nn[mixed] = np.take(pos, nb)
         return nn
+
+
+@dataclass(frozen=True)
+class PlanTable:
+    """Points in :func:`~inventory.survey.clean.spatial_order` (``order``) and their
+    nearest neighbours in plan in that order (``plan``): what :func:`slope_ground` asks
+    first, made once per job and shared with the outlier filter before it
+    (:func:`~inventory.survey.clean.statistical_outliers`)."""
+
+    order: np.ndarray
+    plan: "_PlanNeighbours"
+
+
+def plan_table(x: np.ndarray, y: np.ndarray) -> PlanTable:
+    """:class:`PlanTable` of the points (x, y)."""
+    from inventory.survey.clean import spatial_order
+
+    order = spatial_order(x, y)
+    return PlanTable(order, _PlanNeighbours(x[order], y[order]))
 
 
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
@@ -571,8 +590,8 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
 
 
 def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np.ndarray,
-                 ignore: np.ndarray, params: SlopeGroundParams = SlopeGroundParams()
-                 ) -> tuple[np.ndarray, np.ndarray]:
+                 ignore: np.ndarray, params: SlopeGroundParams = SlopeGroundParams(),
+                 neighbours: "PlanTable | None" = None) -> tuple[np.ndarray, np.ndarray]:
     """Classify a stockyard cloud (see the module docstring).
 
     Parameters
@@ -583,6 +602,8 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     ignore : ndarray of bool
         Points that are neither seeds nor classified (typically noise, class 7).
     params : SlopeGroundParams
+    neighbours : PlanTable, optional
+        :func:`plan_table` of the same x and y, when an earlier stage made it.
 
     Returns
     -------
@@ -593,10 +614,11 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     """
     # Neighbour queries run faster on points that are near in memory when they are near in
     # space; the stage works in that order and answers in the caller's.
-    from inventory.survey.clean import spatial_order
-
-    order = spatial_order(x, y)
-    cls, height = _slope_ground(x[order], y[order], z[order], classification[order], ignore[order], params)
+    if neighbours is None:
+        neighbours = plan_table(x, y)
+    order = neighbours.order
+    cls, height = _slope_ground(x[order], y[order], z[order], classification[order], ignore[order], params,
+                                neighbours.plan)
     out_cls = np.empty_like(cls)
     out_h = np.empty_like(height)
     out_cls[order] = cls
@@ -605,14 +627,15 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
 
 
 def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np.ndarray,
-                  ignore: np.ndarray, params: SlopeGroundParams) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`slope_ground` on points in :func:`~inventory.survey.clean.spatial_order`."""
+                  ignore: np.ndarray, params: SlopeGroundParams, plan: "_PlanNeighbours"
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`slope_ground` on points in :func:`~inventory.survey.clean.spatial_order`, with
+    their neighbours in plan."""
     out = classification.astype(np.uint8).copy()
     # Points below the slope cone of most of their neighbours cannot be surface (nothing
     # that gravity built is that steep underneath); they join the ignored noise and are
     # judged again below against the envelope of the rest.
-    # One plan-view neighbour query serves the three subsets that need one.
-    plan = _PlanNeighbours(x, y)
+    # One plan-view neighbour query (``plan``) serves the three subsets that need one.
     near: dict = {}
     low = _below_neighbours(x, y, z, ~ignore, params, plan, near)
     out[low] = LOW_NOISE

@@ -33,7 +33,7 @@ from numba import njit
 
 from inventory.parallel import job_threads
 
-__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "has_company", "lattice_triangles",
+__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "has_company", "knn3_mean_from_plan", "lattice_triangles",
            "run_rows"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
@@ -519,3 +519,65 @@ def member_rows(nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.nd
 
     run_rows(piece, n)
     return nn, mixed
+
+
+@njit(cache=True, nogil=True)
+def _mean3_from_plan_rows(a, b, nb, x, y, z, k, out, short):
+    bd = np.empty(k)
+    bi = np.empty(k, np.int64)
+    K = nb.shape[1]
+    for i in range(a, b):
+        for m in range(k):
+            bd[m] = np.inf
+            bi[m] = -1
+        full = True    # the row holds K neighbours (else it holds every point there is)
+        dk = np.inf    # plan distance (squared) of the farthest neighbour in the row
+        for j in range(K):
+            q = nb[i, j]
+            if q < 0:
+                full = False
+                continue
+            dx = x[q] - x[i]
+            dy = y[q] - y[i]
+            p2 = dx * dx + dy * dy
+            if j == K - 1:
+                dk = p2
+            if q == i:
+                continue
+            dz = z[q] - z[i]
+            d2 = dx * dx + dy * dy + dz * dz
+            if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
+                m = k - 1
+                while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                    bd[m] = bd[m - 1]
+                    bi[m] = bi[m - 1]
+                    m -= 1
+                bd[m] = d2
+                bi[m] = q
+        # Every point outside the row lies at least the row's last plan distance away, in
+        # 3D as well: the k nearest in 3D are in the row when the k-th is nearer than that.
+        if bi[k - 1] >= 0 and (not full or bd[k - 1] < dk):
+            out[i] = _row_sum_sqrt(bd, k) / k
+            short[i] = False
+        else:
+            short[i] = True
+
+
+def knn3_mean_from_plan(nb: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
+                        k: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`knn3_mean` of every point, from a table ``nb`` of its nearest points in plan
+    (:func:`plan_knn` of the same points with ``dist=False``, -1 where fewer), where the
+    table answers it exactly: the k nearest others in 3D are all in a point's row when the
+    k-th of them is nearer than the row's farthest point in plan (or the row holds every
+    point there is). Returns the means (to the bit what :func:`knn3_mean` gives) and the
+    mask of the points the table could not answer (their mean is left unset)."""
+    n = len(nb)
+    out = np.empty(n)
+    short = np.empty(n, np.bool_)
+    xs, ys, zs = (np.ascontiguousarray(v, dtype=np.float64) for v in (x, y, z))
+
+    def piece(a: int, b: int) -> None:
+        _mean3_from_plan_rows(a, b, nb, xs, ys, zs, k, out, short)
+
+    run_rows(piece, n)
+    return out, short

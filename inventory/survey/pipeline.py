@@ -85,7 +85,7 @@ from inventory.survey.clean import (
     voxel_thin,
 )
 from inventory.io.crs import TransformerCache, parse_crs
-from inventory.survey.ground import SlopeGroundParams, csf_ground, slope_ground
+from inventory.survey.ground import PlanTable, SlopeGroundParams, csf_ground, plan_table, slope_ground
 from inventory.io.clouds import conform_points, empty_points, read_cloud, write_cloud
 
 __all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "OUR_PREFIX"]
@@ -110,6 +110,20 @@ class _Context:
     transformers: TransformerCache = field(default_factory=TransformerCache)
     #: x and y of the points each ``inventory.voxel_thin`` stage dropped
     thinned: list[np.ndarray] = field(default_factory=list)
+    #: a later stage is ``inventory.slope_ground`` (an outlier stage then makes its
+    #: neighbour table, :func:`~inventory.survey.ground.plan_table`, and uses it too)
+    surface_later: bool = False
+    #: (x, y, table): that table and the coordinates it was made of
+    plan: "tuple[np.ndarray, np.ndarray, PlanTable] | None" = None
+
+    def plan_for(self, pts: np.ndarray) -> "PlanTable | None":
+        """The neighbour table of an earlier stage, if it was made of these very x and y."""
+        if self.plan is None:
+            return None
+        x, y, table = self.plan
+        if len(x) == len(pts) and np.array_equal(x, pts["X"]) and np.array_equal(y, pts["Y"]):
+            return table
+        return None
 
 
 @dataclass(frozen=True)
@@ -212,7 +226,14 @@ def _outlier(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     method = str(o["method"]).lower()
     xyz = np.column_stack([pts["X"], pts["Y"], pts["Z"]])
     if method == "statistical":
-        bad = statistical_outliers(xyz, _as_int(o["mean_k"], "mean_k"), _as_float(o["multiplier"], "multiplier"))
+        table = None
+        if ctx.surface_later:   # the surface stage's neighbours serve this stage too
+            table = ctx.plan_for(pts)
+            if table is None:
+                table = plan_table(pts["X"], pts["Y"])
+                ctx.plan = (pts["X"].copy(), pts["Y"].copy(), table)
+        bad = statistical_outliers(xyz, _as_int(o["mean_k"], "mean_k"), _as_float(o["multiplier"], "multiplier"),
+                                   plan=table.plan.nb if table is not None else None)
     elif method == "radius":
         from scipy.spatial import cKDTree
 
@@ -393,7 +414,9 @@ def _slope_ground(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
                                   ("max_slope_deg", "tolerance", "cell", "window", "overhead_gap",
                                    "face_slope_deg", "face_attached", "max_top_area")})
     ignore = limits_mask(pts, _ranges(o["ignore"])) if o["ignore"] else np.zeros(len(pts), bool)
-    cls, _ = slope_ground(pts["X"], pts["Y"], pts["Z"], pts["Classification"], ignore, params)
+    cls, _ = slope_ground(pts["X"], pts["Y"], pts["Z"], pts["Classification"], ignore, params,
+                          neighbours=ctx.plan_for(pts))
+    ctx.plan = None
     pts["Classification"] = cls
     return pts
 
@@ -555,6 +578,7 @@ class Pipeline:
                 pts = _run_pdal(self.stages[i:j], pts, ctx)
                 i = j
                 continue
+            ctx.surface_later = any(t.type == "inventory.slope_ground" for t in self.stages[i + 1:])
             try:
                 pts = STAGES[s.type].run(s, pts, ctx)
             except PipelineError as err:
