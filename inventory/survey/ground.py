@@ -22,8 +22,8 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, knn3_mean, member_rows,
-                                      min_envelope, plan_knn, plan_knn3)
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, chamfer_passes, envelope_at, knn3_mean,
+                                      member_rows, min_envelope, overhead_layers, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -394,28 +394,7 @@ def _chamfer_min(g: np.ndarray, weight: float) -> np.ndarray:
     nrow, ncol = g.shape
     if nrow == 0 or ncol == 0:
         return g
-    w1, w2, w5 = weight, weight * math.sqrt(2.0), weight * math.sqrt(5.0)
-    ramp = weight * np.arange(ncol, dtype=float)
-    tmp = np.empty(ncol)
-    for rows in (range(nrow), range(nrow - 1, -1, -1)):
-        p1 = p2 = None
-        for r in rows:
-            cur = g[r]
-            if p1 is not None:
-                np.minimum(cur, np.add(p1, w1, out=tmp), out=cur)
-                np.minimum(cur[1:], np.add(p1[:-1], w2, out=tmp[1:]), out=cur[1:])
-                np.minimum(cur[:-1], np.add(p1[1:], w2, out=tmp[:-1]), out=cur[:-1])
-                np.minimum(cur[2:], np.add(p1[:-2], w5, out=tmp[2:]), out=cur[2:])
-                np.minimum(cur[:-2], np.add(p1[2:], w5, out=tmp[:-2]), out=cur[:-2])
-            if p2 is not None:
-                np.minimum(cur[1:], np.add(p2[:-1], w5, out=tmp[1:]), out=cur[1:])
-                np.minimum(cur[:-1], np.add(p2[1:], w5, out=tmp[:-1]), out=cur[:-1])
-            left = np.minimum.accumulate(np.subtract(cur, ramp, out=tmp))
-            left += ramp
-            right = np.minimum.accumulate((cur + ramp)[::-1])[::-1]
-            right -= ramp
-            np.minimum(left, right, out=cur)
-            p2, p1 = p1, cur
+    chamfer_passes(g, float(weight))   # compiled, the operations of the numpy form in its order
     return g
 
 
@@ -456,29 +435,18 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
 
 def _overhead(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, cell: float,
               gap: float) -> np.ndarray:
-    """Points in a layer of their column with at least ``gap`` of empty space below it."""
-    n = len(z)
-    if n == 0:
+    """Points in a layer of their column with at least ``gap`` of empty space below it.
+
+    Columns are cells of ``cell`` (from the lowest x and y), their points ordered by height;
+    a layer starts at a gap of at least ``gap`` to the point below. Space below the bottom
+    of a layer: the gap to the layer beneath, or for the lowest layer of a column its height
+    ``h`` above the ground envelope (nothing seen below it). Compiled:
+    :func:`inventory.survey.kernels.overhead_layers`.
+    """
+    if len(z) == 0:
         return np.zeros(0, bool)
-    col = np.floor((x - x.min()) / cell).astype(np.int64)
-    row = np.floor((y - y.min()) / cell).astype(np.int64)
-    key = row * (col.max() + 1) + col
-    order = np.lexsort((z, key))
-    ks, zs, hs = key[order], z[order], h[order]
-    new_col = np.ones(n, bool)
-    new_col[1:] = ks[1:] != ks[:-1]
-    dz = np.empty(n)
-    dz[0] = np.inf
-    dz[1:] = zs[1:] - zs[:-1]
-    # Space below the bottom of a layer: the gap to the layer beneath, or for the lowest
-    # layer of a column its height above the ground envelope (nothing seen below it).
-    clearance = np.where(new_col, hs, dz)
-    layer_start = new_col | (dz >= gap)
-    idx = np.where(layer_start, np.arange(n), 0)
-    idx = np.maximum.accumulate(idx)
-    out = np.zeros(n, bool)
-    out[order] = clearance[idx] >= gap
-    return out
+    return overhead_layers(*(np.ascontiguousarray(v, dtype=np.float64) for v in (x, y, z, h)), float(cell),
+                           float(gap))
 
 
 #: Distance (m) within which a return must have another to be judged at all.

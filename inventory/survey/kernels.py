@@ -19,6 +19,16 @@ not depend on how the rows were split.
   envelope at query points (:class:`inventory.survey.ground._EnvelopeGrid`).
 * :func:`lattice_triangles`: the lattice cells inside large triangles of the hole fill
   (:func:`inventory.survey.gridding._linear_on_lattice`).
+* :func:`morton_order`, :func:`cell_z_order`: the stable order of the points' Morton keys
+  (:func:`inventory.survey.clean.spatial_order`) and ``np.lexsort((z, cell))``, by a radix
+  sort of the keys and a sort of each cell's heights; :func:`elm_noise` and
+  :func:`overhead_layers` walk the cells in that order
+  (:func:`inventory.survey.clean.elm_low_points`, :func:`inventory.survey.ground._overhead`).
+* :func:`chamfer_passes`: the two raster passes of
+  :func:`inventory.survey.ground._chamfer_min`, with the same floating-point operations.
+
+The kernels below the neighbour queries give results bit-identical to the numpy code they
+replaced (tests/test_survey_kernels_small.py holds that code as the reference).
 """
 
 from __future__ import annotations
@@ -34,7 +44,7 @@ from numba import njit
 from inventory.parallel import job_threads
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "lattice_triangles",
-           "run_rows"]
+           "run_rows", "morton_order", "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
 _PIECE = 65536
@@ -420,3 +430,268 @@ def member_rows(d: np.ndarray, nb: np.ndarray, sel: np.ndarray, members: np.ndar
 
     run_rows(piece, n)
     return dd, nn, mixed
+
+
+@njit(cache=True, nogil=True)
+def _stable_radix_order(key, maxkey):
+    """Indices that sort the non-negative int64 ``key`` (all at most ``maxkey``), equal keys in
+    index order: ``np.argsort(key, kind="stable")``, by a least significant digit radix sort
+    (one pass per digit of at most 16 bits)."""
+    n = len(key)
+    order = np.arange(n)
+    bits = 0
+    while bits < 63 and (maxkey >> bits) > 0:
+        bits += 1
+    if n < 2 or bits == 0:
+        return order
+    dmax = 8
+    while dmax < 16 and (1 << dmax) < n:    # no more buckets than points (or 256)
+        dmax += 1
+    passes = (bits + dmax - 1) // dmax
+    d = (bits + passes - 1) // passes
+    nb = 1 << d
+    mask = nb - 1
+    ks = key.copy()
+    ko = np.empty(n, np.int64)
+    oo = np.empty(n, np.int64)
+    count = np.empty(nb + 1, np.int64)
+    for p in range(passes):
+        shift = p * d
+        count[:] = 0
+        for i in range(n):
+            count[((ks[i] >> shift) & mask) + 1] += 1
+        for j in range(nb):
+            count[j + 1] += count[j]
+        for i in range(n):
+            b = (ks[i] >> shift) & mask
+            m = count[b]
+            count[b] = m + 1
+            ko[m] = ks[i]
+            oo[m] = order[i]
+        ks, ko = ko, ks
+        order, oo = oo, order
+    return order
+
+
+@njit(cache=True, nogil=True)
+def morton_order(x, y, cell):
+    """:func:`inventory.survey.clean.spatial_order`: the stable order of the Morton keys of the
+    ``cell`` blocks of the points (block numbers from the lowest x and y, their lowest 21
+    bits interleaved, x in the even bits)."""
+    n = len(x)
+    if n == 0:
+        return np.zeros(0, np.int64)
+    x0 = x.min()
+    y0 = y.min()
+    key = np.empty(n, np.int64)
+    top = 0
+    for i in range(n):
+        k = 0
+        for j in range(2):
+            v = np.int64(math.floor(((x[i] - x0) if j == 0 else (y[i] - y0)) / cell)) & 0x1FFFFF
+            v = (v | (v << 16)) & 0x0000FFFF0000FFFF
+            v = (v | (v << 8)) & 0x00FF00FF00FF00FF
+            v = (v | (v << 4)) & 0x0F0F0F0F0F0F0F0F
+            v = (v | (v << 2)) & 0x3333333333333333
+            v = (v | (v << 1)) & 0x5555555555555555
+            k |= v << j
+        key[i] = k
+        if k > top:
+            top = k
+    return _stable_radix_order(key, top)
+
+
+@njit(cache=True, nogil=True)
+def _z_less(a, b):
+    # numpy's sort order of floats: NaN after everything
+    return a < b or (b != b and a == a)
+
+
+@njit(cache=True, nogil=True)
+def _sort_run_by_z(order, lo, hi, z, buf):
+    """Stable sort of ``order[lo:hi]`` by ``z`` (insertion sort for short runs, else a merge
+    sort through ``buf``)."""
+    m = hi - lo
+    if m < 2:
+        return
+    run = 16
+    for a in range(lo, hi, run):
+        b = min(a + run, hi)
+        for i in range(a + 1, b):
+            o = order[i]
+            v = z[o]
+            j = i
+            while j > a and _z_less(v, z[order[j - 1]]):
+                order[j] = order[j - 1]
+                j -= 1
+            order[j] = o
+    width = run
+    while width < m:
+        for a in range(lo, hi, 2 * width):
+            mid = min(a + width, hi)
+            b = min(a + 2 * width, hi)
+            if mid >= b or not _z_less(z[order[mid]], z[order[mid - 1]]):
+                continue    # already in order
+            for i in range(a, mid):
+                buf[i - lo] = order[i]
+            i, j, t = a, mid, a
+            while i < mid and j < b:
+                if _z_less(z[order[j]], z[buf[i - lo]]):
+                    order[t] = order[j]
+                    j += 1
+                else:
+                    order[t] = buf[i - lo]
+                    i += 1
+                t += 1
+            while i < mid:
+                order[t] = buf[i - lo]
+                i += 1
+                t += 1
+        width *= 2
+
+
+@njit(cache=True, nogil=True)
+def cell_z_order(key, z, maxkey):
+    """``np.lexsort((z, key))`` for non-negative int64 cell numbers ``key`` (at most
+    ``maxkey``): points cell by cell, each cell's by height (NaN last), equal heights in index
+    order. A radix sort of the cells, then a sort of each cell's heights."""
+    order = _stable_radix_order(key, maxkey)
+    n = len(key)
+    buf = np.empty(n, np.int64)
+    a = 0
+    while a < n:
+        k = key[order[a]]
+        b = a + 1
+        while b < n and key[order[b]] == k:
+            b += 1
+        _sort_run_by_z(order, a, b, z, buf)
+        a = b
+    return order
+
+
+@njit(cache=True, nogil=True)
+def _plan_cells(x, y, cell):
+    # row * (largest column + 1) + column of floor((v - lowest) / cell): the cells of
+    # clean.elm_low_points and ground._overhead
+    n = len(x)
+    x0 = x.min()
+    y0 = y.min()
+    col = np.empty(n, np.int64)
+    row = np.empty(n, np.int64)
+    cmax = 0
+    for i in range(n):
+        col[i] = np.int64(math.floor((x[i] - x0) / cell))
+        row[i] = np.int64(math.floor((y[i] - y0) / cell))
+        if col[i] > cmax:
+            cmax = col[i]
+    top = 0
+    for i in range(n):
+        row[i] = row[i] * (cmax + 1) + col[i]
+        if row[i] > top:
+            top = row[i]
+    return row, top
+
+
+@njit(cache=True, nogil=True)
+def elm_noise(x, y, z, cell, threshold):
+    """:func:`inventory.survey.clean.elm_low_points` for two points or more: in each cell, the
+    points from the lowest up while the gap to the next point above is at least
+    ``threshold`` (the cell's top point never)."""
+    key, top = _plan_cells(x, y, cell)
+    order = cell_z_order(key, z, top)
+    n = len(z)
+    out = np.zeros(n, np.bool_)
+    a = 0
+    while a < n:
+        k = key[order[a]]
+        b = a + 1
+        while b < n and key[order[b]] == k:
+            b += 1
+        for i in range(a, b - 1):
+            if z[order[i + 1]] - z[order[i]] >= threshold:
+                out[order[i]] = True
+            else:
+                break
+        a = b
+    return out
+
+
+@njit(cache=True, nogil=True)
+def overhead_layers(x, y, z, h, cell, gap):
+    """:func:`inventory.survey.ground._overhead` for one point or more: the points of each
+    column of ``cell`` by height split into layers where the gap to the point below is at
+    least ``gap``; a point is marked when its layer's clearance (that gap, or ``h`` of the
+    column's lowest point) is at least ``gap``."""
+    key, top = _plan_cells(x, y, cell)
+    order = cell_z_order(key, z, top)
+    n = len(z)
+    out = np.zeros(n, np.bool_)
+    clear = 0.0
+    for i in range(n):
+        o = order[i]
+        if i == 0 or key[o] != key[order[i - 1]]:
+            clear = h[o]
+        else:
+            dz = z[o] - z[order[i - 1]]
+            if dz >= gap:
+                clear = dz
+        out[o] = clear >= gap
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _np_min(a, b):
+    # np.minimum: NaN when either is
+    if a != a:
+        return a
+    if b != b:
+        return b
+    return b if b < a else a
+
+
+@njit(cache=True, nogil=True)
+def chamfer_passes(g, weight):
+    """:func:`inventory.survey.ground._chamfer_min` in place on a float64 grid of at least one
+    row and column, with the same floating-point operations in the same order."""
+    nrow, ncol = g.shape
+    w1 = weight
+    w2 = weight * math.sqrt(2.0)
+    w5 = weight * math.sqrt(5.0)
+    ramp = np.empty(ncol)
+    for j in range(ncol):
+        ramp[j] = weight * np.float64(j)
+    left = np.empty(ncol)
+    right = np.empty(ncol)
+    for down in (True, False):
+        for s in range(nrow):
+            r = s if down else nrow - 1 - s
+            r1 = r - 1 if down else r + 1
+            r2 = r - 2 if down else r + 2
+            if s >= 1:
+                for j in range(ncol):
+                    v = _np_min(g[r, j], g[r1, j] + w1)
+                    if j >= 1:
+                        v = _np_min(v, g[r1, j - 1] + w2)
+                    if j + 1 < ncol:
+                        v = _np_min(v, g[r1, j + 1] + w2)
+                    if j >= 2:
+                        v = _np_min(v, g[r1, j - 2] + w5)
+                    if j + 2 < ncol:
+                        v = _np_min(v, g[r1, j + 2] + w5)
+                    if s >= 2:
+                        if j >= 1:
+                            v = _np_min(v, g[r2, j - 1] + w5)
+                        if j + 1 < ncol:
+                            v = _np_min(v, g[r2, j + 1] + w5)
+                    g[r, j] = v
+            m = 0.0
+            for j in range(ncol):
+                v = g[r, j] - ramp[j]
+                m = v if j == 0 else _np_min(m, v)
+                left[j] = m
+            for j in range(ncol - 1, -1, -1):
+                v = g[r, j] + ramp[j]
+                m = v if j == ncol - 1 else _np_min(m, v)
+                right[j] = m
+            for j in range(ncol):
+                g[r, j] = _np_min(left[j] + ramp[j], right[j] - ramp[j])
