@@ -40,7 +40,8 @@ def _ref_elm(x, y, z, cell=10.0, threshold=1.0):
     same_next = np.zeros(n, bool)
     same_next[:-1] = ks[1:] == ks[:-1]
     gap_big = np.zeros(n, bool)
-    gap_big[:-1] = (zs[1:] - zs[:-1]) >= threshold
+    with np.errstate(invalid="ignore"):     # inf - inf
+        gap_big[:-1] = (zs[1:] - zs[:-1]) >= threshold
     gap_big &= same_next
     small = (~gap_big).astype(np.int64)
     cs = np.cumsum(small)
@@ -65,7 +66,8 @@ def _ref_overhead(x, y, z, h, cell, gap):
     new_col[1:] = ks[1:] != ks[:-1]
     dz = np.empty(n)
     dz[0] = np.inf
-    dz[1:] = zs[1:] - zs[:-1]
+    with np.errstate(invalid="ignore"):
+        dz[1:] = zs[1:] - zs[:-1]
     clearance = np.where(new_col, hs, dz)
     layer_start = new_col | (dz >= gap)
     idx = np.maximum.accumulate(np.where(layer_start, np.arange(n), 0))
@@ -122,6 +124,14 @@ def _clouds():
             z[2 * k:2 * k + 10] = z[2 * k]
             z[rng.random(n) < 0.05] -= 3.0                   # low points below gaps
         out.append((x, y, z))
+    # heights numpy sorts last or first: NaN, +-inf, and -0.0 beside 0.0, in few cells
+    x, y, z = (v.copy() for v in out[4])
+    z[::9] = np.nan
+    z[1::23] = np.inf
+    z[2::29] = -np.inf
+    z[3::31] = -0.0
+    z[4::31] = 0.0
+    out.append((x, y, z))
     return out
 
 

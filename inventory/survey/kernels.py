@@ -433,17 +433,18 @@ def member_rows(d: np.ndarray, nb: np.ndarray, sel: np.ndarray, members: np.ndar
 
 
 @njit(cache=True, nogil=True)
-def _stable_radix_order(key, maxkey):
+def _radix_sorted(key, maxkey):
     """Indices that sort the non-negative int64 ``key`` (all at most ``maxkey``), equal keys in
-    index order: ``np.argsort(key, kind="stable")``, by a least significant digit radix sort
-    (one pass per digit of at most 16 bits)."""
+    index order (``np.argsort(key, kind="stable")``), and the sorted keys: a least
+    significant digit radix sort, one pass per digit of at most 16 bits."""
     n = len(key)
     order = np.arange(n)
+    ks = key.copy()
     bits = 0
     while bits < 63 and (maxkey >> bits) > 0:
         bits += 1
     if n < 2 or bits == 0:
-        return order
+        return order, ks
     dmax = 8
     while dmax < 16 and (1 << dmax) < n:    # no more buckets than points (or 256)
         dmax += 1
@@ -451,7 +452,6 @@ def _stable_radix_order(key, maxkey):
     d = (bits + passes - 1) // passes
     nb = 1 << d
     mask = nb - 1
-    ks = key.copy()
     ko = np.empty(n, np.int64)
     oo = np.empty(n, np.int64)
     count = np.empty(nb + 1, np.int64)
@@ -470,7 +470,12 @@ def _stable_radix_order(key, maxkey):
             oo[m] = order[i]
         ks, ko = ko, ks
         order, oo = oo, order
-    return order
+    return order, ks
+
+
+@njit(cache=True, nogil=True)
+def _stable_radix_order(key, maxkey):
+    return _radix_sorted(key, maxkey)[0]
 
 
 @njit(cache=True, nogil=True)
@@ -508,9 +513,9 @@ def _z_less(a, b):
 
 
 @njit(cache=True, nogil=True)
-def _sort_run_by_z(order, lo, hi, z, buf):
-    """Stable sort of ``order[lo:hi]`` by ``z`` (insertion sort for short runs, else a merge
-    sort through ``buf``)."""
+def _sort_run_by_z(zs, order, lo, hi, zbuf, obuf):
+    """Stable sort of ``zs[lo:hi]`` (``order`` alongside): insertion sort of runs of 16,
+    then merges through the buffers."""
     m = hi - lo
     if m < 2:
         return
@@ -518,36 +523,76 @@ def _sort_run_by_z(order, lo, hi, z, buf):
     for a in range(lo, hi, run):
         b = min(a + run, hi)
         for i in range(a + 1, b):
+            v = zs[i]
             o = order[i]
-            v = z[o]
             j = i
-            while j > a and _z_less(v, z[order[j - 1]]):
+            while j > a and _z_less(v, zs[j - 1]):
+                zs[j] = zs[j - 1]
                 order[j] = order[j - 1]
                 j -= 1
+            zs[j] = v
             order[j] = o
     width = run
     while width < m:
         for a in range(lo, hi, 2 * width):
             mid = min(a + width, hi)
             b = min(a + 2 * width, hi)
-            if mid >= b or not _z_less(z[order[mid]], z[order[mid - 1]]):
+            if mid >= b or not _z_less(zs[mid], zs[mid - 1]):
                 continue    # already in order
             for i in range(a, mid):
-                buf[i - lo] = order[i]
-            i, j, t = a, mid, a
-            while i < mid and j < b:
-                if _z_less(z[order[j]], z[buf[i - lo]]):
+                zbuf[i - a] = zs[i]
+                obuf[i - a] = order[i]
+            i, j, t = 0, mid, a
+            while i < mid - a and j < b:
+                if _z_less(zs[j], zbuf[i]):
+                    zs[t] = zs[j]
                     order[t] = order[j]
                     j += 1
                 else:
-                    order[t] = buf[i - lo]
+                    zs[t] = zbuf[i]
+                    order[t] = obuf[i]
                     i += 1
                 t += 1
-            while i < mid:
-                order[t] = buf[i - lo]
+            while i < mid - a:
+                zs[t] = zbuf[i]
+                order[t] = obuf[i]
                 i += 1
                 t += 1
         width *= 2
+
+
+@njit(cache=True, nogil=True)
+def _cells_gathered(key, z, maxkey):
+    # points cell by cell (in index order within a cell), with their keys and heights
+    order, ks = _radix_sorted(key, maxkey)
+    n = len(key)
+    zs = np.empty(n)
+    for i in range(n):
+        zs[i] = z[order[i]]
+    return order, ks, zs
+
+
+@njit(cache=True, nogil=True)
+def _run_end(ks, a):
+    b = a + 1
+    while b < len(ks) and ks[b] == ks[a]:
+        b += 1
+    return b
+
+
+@njit(cache=True, nogil=True)
+def _cell_z_sorted(key, z, maxkey):
+    # the order of cell_z_order, with the keys and heights in that order
+    order, ks, zs = _cells_gathered(key, z, maxkey)
+    n = len(key)
+    zbuf = np.empty(n)
+    obuf = np.empty(n, np.int64)
+    a = 0
+    while a < n:
+        b = _run_end(ks, a)
+        _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+        a = b
+    return order, ks, zs
 
 
 @njit(cache=True, nogil=True)
@@ -555,18 +600,7 @@ def cell_z_order(key, z, maxkey):
     """``np.lexsort((z, key))`` for non-negative int64 cell numbers ``key`` (at most
     ``maxkey``): points cell by cell, each cell's by height (NaN last), equal heights in index
     order. A radix sort of the cells, then a sort of each cell's heights."""
-    order = _stable_radix_order(key, maxkey)
-    n = len(key)
-    buf = np.empty(n, np.int64)
-    a = 0
-    while a < n:
-        k = key[order[a]]
-        b = a + 1
-        while b < n and key[order[b]] == k:
-            b += 1
-        _sort_run_by_z(order, a, b, z, buf)
-        a = b
-    return order
+    return _cell_z_sorted(key, z, maxkey)[0]
 
 
 @njit(cache=True, nogil=True)
@@ -598,20 +632,34 @@ def elm_noise(x, y, z, cell, threshold):
     points from the lowest up while the gap to the next point above is at least
     ``threshold`` (the cell's top point never)."""
     key, top = _plan_cells(x, y, cell)
-    order = cell_z_order(key, z, top)
+    order, ks, zs = _cells_gathered(key, z, top)
     n = len(z)
     out = np.zeros(n, np.bool_)
+    zbuf = np.empty(n)
+    obuf = np.empty(n, np.int64)
     a = 0
     while a < n:
-        k = key[order[a]]
-        b = a + 1
-        while b < n and key[order[b]] == k:
-            b += 1
-        for i in range(a, b - 1):
-            if z[order[i + 1]] - z[order[i]] >= threshold:
-                out[order[i]] = True
-            else:
-                break
+        b = _run_end(ks, a)
+        # the lowest point is marked only when the second lowest is threshold above it
+        # (NaN sorts last: fewer than two numbers, nothing marked); most cells stop here
+        lo1 = lo2 = np.inf
+        cnt = 0
+        for i in range(a, b):
+            v = zs[i]
+            if v == v:
+                cnt += 1
+                if v < lo1:
+                    lo2 = lo1
+                    lo1 = v
+                elif v < lo2:
+                    lo2 = v
+        if cnt >= 2 and lo2 - lo1 >= threshold:
+            _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+            for i in range(a, b - 1):
+                if zs[i + 1] - zs[i] >= threshold:
+                    out[order[i]] = True
+                else:
+                    break
         a = b
     return out
 
@@ -623,19 +671,41 @@ def overhead_layers(x, y, z, h, cell, gap):
     least ``gap``; a point is marked when its layer's clearance (that gap, or ``h`` of the
     column's lowest point) is at least ``gap``."""
     key, top = _plan_cells(x, y, cell)
-    order = cell_z_order(key, z, top)
+    order, ks, zs = _cells_gathered(key, z, top)
     n = len(z)
     out = np.zeros(n, np.bool_)
-    clear = 0.0
-    for i in range(n):
-        o = order[i]
-        if i == 0 or key[o] != key[order[i - 1]]:
-            clear = h[o]
+    zbuf = np.empty(n)
+    obuf = np.empty(n, np.int64)
+    a = 0
+    while a < n:
+        b = _run_end(ks, a)
+        lo = np.inf
+        hi = -np.inf
+        first = a       # the lowest point, the first in index order of equal heights
+        for i in range(a, b):
+            v = zs[i]
+            if v == v:
+                if v < lo:
+                    lo = v
+                    first = i
+                if v > hi:
+                    hi = v
+        if lo > hi or hi - lo < gap:
+            # no gap of ``gap`` inside the column (rounding is monotone: no difference
+            # of two of its heights exceeds hi - lo): one layer, its clearance h of the lowest
+            ok = h[order[first]] >= gap
+            for i in range(a, b):
+                out[order[i]] = ok
         else:
-            dz = z[o] - z[order[i - 1]]
-            if dz >= gap:
-                clear = dz
-        out[o] = clear >= gap
+            _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+            clear = h[order[a]]
+            out[order[a]] = clear >= gap
+            for i in range(a + 1, b):
+                dz = zs[i] - zs[i - 1]
+                if dz >= gap:
+                    clear = dz
+                out[order[i]] = clear >= gap
+        a = b
     return out
 
 
