@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 from inventory.survey.clean import elm_low_points, spatial_order
-from inventory.survey.ground import _chamfer_min, _overhead
-from inventory.survey.kernels import _stable_radix_order, cell_z_order
+from inventory.survey.ground import _chamfer_min, _overhead, _region_cells
+from inventory.survey.kernels import _stable_radix_order, cell_stats, cell_z_order, floor_cells
 
 
 def _ref_spatial_order(x, y, cell=1.0):
@@ -203,3 +203,48 @@ def test_chamfer_min_is_bit_identical(shape):
     g[2, 3] = 1.0
     got = _chamfer_min(g, 1.0)
     assert got[2, 3] == 1.0 and got[2, 0] == 4.0 and got[0, 4] == pytest.approx(1.0 + math.sqrt(5.0))   # a knight step
+
+
+def test_floor_cells_is_numpy_floor_division():
+    # numpy's float // is the floor of the exact quotient (Python's float_divmod), which
+    # floor(a / b) misses where a / b rounds up to an integer: the kernel must do the same
+    rng = np.random.default_rng(21)
+    for c in (0.5, 0.1, 0.3, 2.0, 1.0 / 3.0):
+        v = np.r_[500000.0 + rng.random(20000) * 300, 500000.0 + np.arange(3000) * c,
+                  np.nextafter(500000.0 + np.arange(3000) * c, 0), 500000.0, 0.0, -0.0]
+        for v0 in (float(v.min()), float(v.min()) - c, 499999.95):
+            np.testing.assert_array_equal(floor_cells(v, v0, c), ((v - v0) // c).astype(np.int64))
+    # a case where the two differ: 0.5 // 0.1 is 4 (0.1 is a little over a tenth)
+    assert floor_cells(np.array([0.5]), 0.0, 0.1).tolist() == [4] and math.floor(0.5 / 0.1) == 5
+
+
+def test_region_cells_match_numpy():
+    for x, y, _ in _clouds():
+        for c in (0.5, 0.1, 1.3):
+            row, col, shape = _region_cells(x, y, c)
+            rc = ((x - x.min()) // c).astype(np.int64)
+            rr = ((y - y.min()) // c).astype(np.int64)
+            np.testing.assert_array_equal(col, rc)
+            np.testing.assert_array_equal(row, rr)
+            assert shape == (int(rr.max()) + 1, int(rc.max()) + 1)
+
+
+def test_cell_stats_match_bincount_and_ufunc_at():
+    rng = np.random.default_rng(8)
+    for n, size in ((0, 1), (1, 3), (50, 7), (30000, 900)):
+        k = rng.integers(0, size, n).astype(np.int64)
+        z = rng.normal(100, 5, n)
+        z[::17] = np.round(z[::17])
+        sel = rng.random(n) < 0.6
+        count, total, lo, hi = cell_stats(k, z, sel, size)
+        np.testing.assert_array_equal(count, np.bincount(k[sel], minlength=size))
+        np.testing.assert_array_equal(total, np.bincount(k[sel], z[sel], minlength=size))   # same additions
+        ref = np.full(size, np.inf)
+        np.minimum.at(ref, k[sel], z[sel])
+        np.testing.assert_array_equal(lo, ref)
+        ref = np.full(size, -np.inf)
+        np.maximum.at(ref, k[sel], z[sel])
+        np.testing.assert_array_equal(hi, ref)
+    # NaN spreads to its cell's extremes as in np.minimum.at
+    count, total, lo, hi = cell_stats(np.array([0, 0, 1]), np.array([1.0, np.nan, 2.0]), np.ones(3, bool), 2)
+    assert np.isnan(lo[0]) and np.isnan(hi[0]) and lo[1] == 2.0 and count.tolist() == [2, 1]

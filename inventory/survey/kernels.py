@@ -26,6 +26,9 @@ not depend on how the rows were split.
   (:func:`inventory.survey.clean.elm_low_points`, :func:`inventory.survey.ground._overhead`).
 * :func:`chamfer_passes`: the two raster passes of
   :func:`inventory.survey.ground._chamfer_min`, with the same floating-point operations.
+* :func:`floor_cells`, :func:`cell_stats`: the cell of each point by floor division, and a
+  cell's count, sum, lowest and highest height in one pass (the region rules'
+  ``np.bincount`` and ``np.minimum.at`` / ``np.maximum.at`` passes).
 
 The kernels below the neighbour queries give results bit-identical to the numpy code they
 replaced (tests/test_survey_kernels_small.py holds that code as the reference).
@@ -44,7 +47,8 @@ from numba import njit
 from inventory.parallel import job_threads
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "lattice_triangles",
-           "run_rows", "morton_order", "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes"]
+           "run_rows", "morton_order", "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes",
+           "floor_cells", "cell_stats"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
 _PIECE = 65536
@@ -765,3 +769,48 @@ def chamfer_passes(g, weight):
                 right[j] = m
             for j in range(ncol):
                 g[r, j] = _np_min(left[j] + ramp[j], right[j] - ramp[j])
+
+
+@njit(cache=True, nogil=True)
+def floor_cells(v, v0, c):
+    """``((v - v0) // c).astype(np.int64)``. numpy's float ``//`` (Python's float divmod) is
+    the floor of the exact quotient of ``a = v - v0`` by ``c``; ``floor(a / c)`` is the
+    same unless ``a / c`` rounds to a whole number (rounding is monotone, so a quotient
+    rounded to a non-integer q has the floor of q), where numba's ``//``, the same
+    algorithm as numpy's, decides."""
+    out = np.empty(len(v), np.int64)
+    for i in range(len(v)):
+        a = v[i] - v0
+        q = a / c
+        f = math.floor(q)
+        out[i] = np.int64(f) if q != f else np.int64(a // c)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _np_max(a, b):
+    # np.maximum: NaN when either is
+    if a != a:
+        return a
+    if b != b:
+        return b
+    return b if b > a else a
+
+
+@njit(cache=True, nogil=True)
+def cell_stats(k, z, sel, size):
+    """Over the points with ``sel``, per cell ``k`` of ``size`` cells: count, sum of ``z``
+    (added in index order, as ``np.bincount`` adds), lowest and highest ``z`` (inf and -inf
+    in cells without such points; NaN propagates as in ``np.minimum.at``)."""
+    count = np.zeros(size, np.int64)
+    total = np.zeros(size)
+    lo = np.full(size, np.inf)
+    hi = np.full(size, -np.inf)
+    for i in range(len(k)):
+        if sel[i]:
+            j = k[i]
+            count[j] += 1
+            total[j] += z[i]
+            lo[j] = _np_min(lo[j], z[i])
+            hi[j] = _np_max(hi[j], z[i])
+    return count, total, lo, hi
