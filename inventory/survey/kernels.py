@@ -585,12 +585,23 @@ def _run_end(ks, a):
 
 
 @njit(cache=True, nogil=True)
+def _run_buffers(ks):
+    # merge buffers for the longest run of equal keys (a merge's left part may be nearly all of it)
+    m = 0
+    a = 0
+    while a < len(ks):
+        b = _run_end(ks, a)
+        m = max(m, b - a)
+        a = b
+    return np.empty(m), np.empty(m, np.int64)
+
+
+@njit(cache=True, nogil=True)
 def _cell_z_sorted(key, z, maxkey):
     # the order of cell_z_order, with the keys and heights in that order
     order, ks, zs = _cells_gathered(key, z, maxkey)
     n = len(key)
-    zbuf = np.empty(n)
-    obuf = np.empty(n, np.int64)
+    zbuf, obuf = _run_buffers(ks)
     a = 0
     while a < n:
         b = _run_end(ks, a)
@@ -639,8 +650,7 @@ def elm_noise(x, y, z, cell, threshold):
     order, ks, zs = _cells_gathered(key, z, top)
     n = len(z)
     out = np.zeros(n, np.bool_)
-    zbuf = np.empty(n)
-    obuf = np.empty(n, np.int64)
+    zbuf, obuf = _run_buffers(ks)
     a = 0
     while a < n:
         b = _run_end(ks, a)
@@ -678,8 +688,7 @@ def overhead_layers(x, y, z, h, cell, gap):
     order, ks, zs = _cells_gathered(key, z, top)
     n = len(z)
     out = np.zeros(n, np.bool_)
-    zbuf = np.empty(n)
-    obuf = np.empty(n, np.int64)
+    zbuf, obuf = _run_buffers(ks)
     a = 0
     while a < n:
         b = _run_end(ks, a)
