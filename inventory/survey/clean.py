@@ -132,24 +132,20 @@ def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray
     """Permutation listing points block by block along a Z-order (Morton) curve of ``cell`` blocks.
 
     Neighbour queries run faster on points that are near in memory when
-    they are near in space (timings in CHANGELOG.md).
+    they are near in space (timings in CHANGELOG.md). Block numbers count from the lowest x
+    and y; the key interleaves their lowest 21 bits (2^21 blocks a side), x in the even
+    bits; equal keys keep the input order (a compiled radix sort,
+    :func:`inventory.survey.kernels.morton_order`).
 
     Examples
     --------
     >>> spatial_order(np.array([1.5, 0.5, 0.5, 1.5]), np.array([1.5, 1.5, 0.5, 0.5])).tolist()
     [2, 3, 1, 0]
     """
-    if len(x) == 0:
-        return np.zeros(0, np.int64)
-    ix = np.floor((x - x.min()) / cell).astype(np.uint64)
-    iy = np.floor((y - y.min()) / cell).astype(np.uint64)
-    key = np.zeros(len(x), np.uint64)
-    one = np.uint64(1)
-    for bit in range(21):   # 2^21 blocks a side
-        b = np.uint64(bit)
-        key |= ((ix >> b) & one) << np.uint64(2 * bit)
-        key |= ((iy >> b) & one) << np.uint64(2 * bit + 1)
-    return np.argsort(key, kind="stable")
+    from inventory.survey.kernels import morton_order
+
+    return morton_order(np.ascontiguousarray(x, dtype=np.float64), np.ascontiguousarray(y, dtype=np.float64),
+                        float(cell))
 
 
 def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2.0,
@@ -201,31 +197,19 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
 
 def elm_low_points(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 10.0,
                    threshold: float = 1.0) -> np.ndarray:
-    """Mask of low points by the Extended Local Minimum (Chen et al. 2012; PDAL semantics)."""
+    """Mask of low points by the Extended Local Minimum (Chen et al. 2012; PDAL semantics).
+
+    Cells of ``cell`` from the lowest x and y; in each, the points ordered by height (equal
+    heights in input order) are marked from the lowest up while the gap to the next is at
+    least ``threshold``; the top point of a cell never is. Compiled:
+    :func:`inventory.survey.kernels.elm_noise`.
+    """
+    from inventory.survey.kernels import elm_noise
+
     n = len(z)
-    out = np.zeros(n, bool)
     if n < 2:
-        return out
-    col = np.floor((x - x.min()) / cell).astype(np.int64)
-    row = np.floor((y - y.min()) / cell).astype(np.int64)
-    key = row * (col.max() + 1) + col
-    order = np.lexsort((z, key))
-    ks, zs = key[order], z[order]
-    same_next = np.zeros(n, bool)
-    same_next[:-1] = ks[1:] == ks[:-1]
-    gap_big = np.zeros(n, bool)
-    gap_big[:-1] = (zs[1:] - zs[:-1]) >= threshold
-    gap_big &= same_next                      # the top point of a cell is never marked
-    # A point is noise while every gap from the bottom of its cell up to it is big.
-    small = (~gap_big).astype(np.int64)
-    cs = np.cumsum(small)
-    start = np.ones(n, bool)
-    start[1:] = ks[1:] != ks[:-1]
-    before = np.where(start, cs - small, 0)
-    before = np.maximum.accumulate(np.where(start, before, -1))
-    noise_sorted = (cs - before) == 0
-    out[order] = noise_sorted
-    return out
+        return np.zeros(n, bool)
+    return elm_noise(*(np.ascontiguousarray(v, dtype=np.float64) for v in (x, y, z)), float(cell), float(threshold))
 
 
 def voxel_thin(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 0.05, max_points: int = 4) -> np.ndarray:

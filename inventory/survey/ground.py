@@ -22,8 +22,9 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, envelope_at, has_company, knn3_mean,
-                                      member_rows, min_envelope, plan_knn, plan_knn3)
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes, envelope_at,
+                                      floor_cells, has_company, knn3_mean, member_rows, min_envelope, overhead_layers,
+                                      plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -81,8 +82,8 @@ class _EnvelopeGrid:
         x0, y0 = self.x0, self.y0 = x.min() - c, y.min() - c
         ncol = self.ncol = int((x.max() - x0) // c) + 2
         nrow = self.nrow = int((y.max() - y0) // c) + 2
-        col = ((x - x0) // c).astype(np.int64)
-        row = ((y - y0) // c).astype(np.int64)
+        col = floor_cells(np.ascontiguousarray(x, dtype=np.float64), float(x0), float(c))
+        row = floor_cells(np.ascontiguousarray(y, dtype=np.float64), float(y0), float(c))
         key = row * ncol + col
         low = cell_lowest(key, np.ascontiguousarray(z, dtype=np.float64), nrow * ncol)
         skey = np.flatnonzero(low >= 0)
@@ -208,8 +209,10 @@ def plan_table(x: np.ndarray, y: np.ndarray) -> PlanTable:
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
     """Row and column of each point on the region rules' grid of cell ``c`` (origin at the
     points' lowest x and y), and the grid's shape."""
-    col = ((x - x.min()) // c).astype(np.int64)
-    row = ((y - y.min()) // c).astype(np.int64)
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    y = np.ascontiguousarray(y, dtype=np.float64)
+    col = floor_cells(x, float(x.min()), float(c))   # (x - x.min()) // c
+    row = floor_cells(y, float(y.min()), float(c))
     return row, col, (int(row.max()) + 1, int(col.max()) + 1)
 
 
@@ -248,21 +251,21 @@ def _attached_faces(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndar
     row, col, shape = _region_cells(x, y, c)
 
     size = shape[0] * shape[1]
+    k = row * shape[1] + col
+    z64 = np.ascontiguousarray(z, dtype=np.float64)
 
-    def extreme_grid(sel: np.ndarray, fn: np.ufunc, fill: float) -> np.ndarray:
-        g = np.full(size, fill)
-        fn.at(g, row[sel] * shape[1] + col[sel], z[sel])
-        return np.where(np.isinf(g), np.nan, g).reshape(shape)
+    def extremes(sel: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        # lowest and highest z of the points ``sel`` per cell, NaN in cells without one
+        _, _, lo, hi = cell_stats(k, z64, sel, size)
+        return tuple(np.where(np.isinf(g), np.nan, g).reshape(shape) for g in (lo, hi))
 
     # A patch continues the surface where its lowest points meet the highest surface
     # points of the cell beside it: the foot of a reclaim face meets the pad, the edge of
     # the cut top meets the flank. The underside of a truck body or a roof does not.
-    zc = extreme_grid(cand, np.minimum, np.inf)
-    zc_top = extreme_grid(cand, np.maximum, -np.inf)
-    zg_lo = extreme_grid(ground, np.minimum, np.inf)
-    zg_hi = extreme_grid(ground, np.maximum, -np.inf)
+    zc, zc_top = extremes(cand)
+    zg_lo, zg_hi = extremes(ground)
     has_g = np.isfinite(zg_lo)
-    occupied = (np.bincount(row * shape[1] + col, minlength=size) > 0).reshape(shape)
+    occupied = (np.bincount(k, minlength=size) > 0).reshape(shape)
     labels, n = _continuous_patches(zc, params.tolerance + math.tan(math.radians(params.face_slope_deg)) * c)
     reach = params.tolerance + math.tan(math.radians(params.max_slope_deg)) * c
     accepted = np.zeros(n + 1, bool)
@@ -354,22 +357,17 @@ def _walled_tops(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray
     row, col, shape = _region_cells(x, y, c)
     k = row * shape[1] + col
     size = shape[0] * shape[1]
-    has_g = (np.bincount(k[ground], minlength=size) > 0).reshape(shape)
-    has_o = (np.bincount(k[~ground], minlength=size) > 0).reshape(shape) & ~has_g
-    zg = np.full(size, np.nan)
+    # per cell: the surface points' count, sum and lowest; the other points' count and range
+    z64 = np.ascontiguousarray(z, dtype=np.float64)
+    n_g, sum_g, lo_g, _ = cell_stats(k, z64, ground, size)
+    n_o, _, o_lo, o_hi = cell_stats(k, z64, ~ground, size)
+    has_g = (n_g > 0).reshape(shape)
+    has_o = (n_o > 0).reshape(shape) & ~has_g
     with np.errstate(invalid="ignore", divide="ignore"):
-        zg = (np.bincount(k[ground], z[ground], minlength=size) /
-              np.bincount(k[ground], minlength=size)).reshape(shape)
-    zlow = np.full(size, np.inf)
-    np.minimum.at(zlow, k, z)
-    zlow = zlow.reshape(shape)
+        zg = (sum_g / n_g).reshape(shape)    # mean height of the surface points (NaN: none)
+    zlow = np.minimum(lo_g, o_lo).reshape(shape)    # the lowest point of the cell
     margin = int(math.ceil(params.window / c))
     step = params.tolerance + math.tan(math.radians(max(params.face_slope_deg, params.max_slope_deg))) * c
-    other = ~ground
-    o_lo = np.full(size, np.inf)
-    np.minimum.at(o_lo, k[other], z[other])
-    o_hi = np.full(size, -np.inf)
-    np.maximum.at(o_hi, k[other], z[other])
     faces = (o_lo.reshape(shape), o_hi.reshape(shape), params.tolerance)
     labels, n = _continuous_patches(np.where(has_g, zg, np.nan), step, faces)
     if n < 2:
@@ -419,28 +417,7 @@ def _chamfer_min(g: np.ndarray, weight: float) -> np.ndarray:
     nrow, ncol = g.shape
     if nrow == 0 or ncol == 0:
         return g
-    w1, w2, w5 = weight, weight * math.sqrt(2.0), weight * math.sqrt(5.0)
-    ramp = weight * np.arange(ncol, dtype=float)
-    tmp = np.empty(ncol)
-    for rows in (range(nrow), range(nrow - 1, -1, -1)):
-        p1 = p2 = None
-        for r in rows:
-            cur = g[r]
-            if p1 is not None:
-                np.minimum(cur, np.add(p1, w1, out=tmp), out=cur)
-                np.minimum(cur[1:], np.add(p1[:-1], w2, out=tmp[1:]), out=cur[1:])
-                np.minimum(cur[:-1], np.add(p1[1:], w2, out=tmp[:-1]), out=cur[:-1])
-                np.minimum(cur[2:], np.add(p1[:-2], w5, out=tmp[2:]), out=cur[2:])
-                np.minimum(cur[:-2], np.add(p1[2:], w5, out=tmp[:-2]), out=cur[:-2])
-            if p2 is not None:
-                np.minimum(cur[1:], np.add(p2[:-1], w5, out=tmp[1:]), out=cur[1:])
-                np.minimum(cur[:-1], np.add(p2[1:], w5, out=tmp[:-1]), out=cur[:-1])
-            left = np.minimum.accumulate(np.subtract(cur, ramp, out=tmp))
-            left += ramp
-            right = np.minimum.accumulate((cur + ramp)[::-1])[::-1]
-            right -= ramp
-            np.minimum(left, right, out=cur)
-            p2, p1 = p1, cur
+    chamfer_passes(g, float(weight))   # compiled, the operations of the numpy form in its order
     return g
 
 
@@ -462,9 +439,9 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
     row, col, shape = _region_cells(x, y, c)
     k = row * shape[1] + col
     size = shape[0] * shape[1]
-    n = np.bincount(k[ground], minlength=size)
+    n, total, _, _ = cell_stats(k, np.ascontiguousarray(z, dtype=np.float64), ground, size)
     with np.errstate(invalid="ignore", divide="ignore"):
-        zm = (np.bincount(k[ground], z[ground], minlength=size) / n).reshape(shape)
+        zm = (total / n).reshape(shape)
     zf = np.where(np.isfinite(zm), zm, np.inf)
     env = _chamfer_min(zf, t * c)
     # the envelope from the neighbours alone: one more step from each neighbour
@@ -481,29 +458,18 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
 
 def _overhead(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, cell: float,
               gap: float) -> np.ndarray:
-    """Points in a layer of their column with at least ``gap`` of empty space below it."""
-    n = len(z)
-    if n == 0:
+    """Points in a layer of their column with at least ``gap`` of empty space below it.
+
+    Columns are cells of ``cell`` (from the lowest x and y), their points ordered by height;
+    a layer starts at a gap of at least ``gap`` to the point below. Space below the bottom
+    of a layer: the gap to the layer beneath, or for the lowest layer of a column its height
+    ``h`` above the ground envelope (nothing seen below it). Compiled:
+    :func:`inventory.survey.kernels.overhead_layers`.
+    """
+    if len(z) == 0:
         return np.zeros(0, bool)
-    col = np.floor((x - x.min()) / cell).astype(np.int64)
-    row = np.floor((y - y.min()) / cell).astype(np.int64)
-    key = row * (col.max() + 1) + col
-    order = np.lexsort((z, key))
-    ks, zs, hs = key[order], z[order], h[order]
-    new_col = np.ones(n, bool)
-    new_col[1:] = ks[1:] != ks[:-1]
-    dz = np.empty(n)
-    dz[0] = np.inf
-    dz[1:] = zs[1:] - zs[:-1]
-    # Space below the bottom of a layer: the gap to the layer beneath, or for the lowest
-    # layer of a column its height above the ground envelope (nothing seen below it).
-    clearance = np.where(new_col, hs, dz)
-    layer_start = new_col | (dz >= gap)
-    idx = np.where(layer_start, np.arange(n), 0)
-    idx = np.maximum.accumulate(idx)
-    out = np.zeros(n, bool)
-    out[order] = clearance[idx] >= gap
-    return out
+    return overhead_layers(*(np.ascontiguousarray(v, dtype=np.float64) for v in (x, y, z, h)), float(cell),
+                           float(gap))
 
 
 #: Distance (m) within which a return must have another to be judged at all.

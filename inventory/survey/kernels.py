@@ -19,6 +19,19 @@ not depend on how the rows were split.
   envelope at query points (:class:`inventory.survey.ground._EnvelopeGrid`).
 * :func:`lattice_triangles`: the lattice cells inside large triangles of the hole fill
   (:func:`inventory.survey.gridding._linear_on_lattice`).
+* :func:`morton_order`, :func:`cell_z_order`: the stable order of the points' Morton keys
+  (:func:`inventory.survey.clean.spatial_order`) and ``np.lexsort((z, cell))``, by a radix
+  sort of the keys and a sort of each cell's heights; :func:`elm_noise` and
+  :func:`overhead_layers` walk the cells in that order
+  (:func:`inventory.survey.clean.elm_low_points`, :func:`inventory.survey.ground._overhead`).
+* :func:`chamfer_passes`: the two raster passes of
+  :func:`inventory.survey.ground._chamfer_min`, with the same floating-point operations.
+* :func:`floor_cells`, :func:`cell_stats`: the cell of each point by floor division, and a
+  cell's count, sum, lowest and highest height in one pass (the region rules'
+  ``np.bincount`` and ``np.minimum.at`` / ``np.maximum.at`` passes).
+
+The kernels below the neighbour queries give results bit-identical to the numpy code they
+replaced (tests/test_survey_kernels_small.py holds that code as the reference).
 """
 
 from __future__ import annotations
@@ -33,8 +46,9 @@ from numba import njit
 
 from inventory.parallel import job_threads
 
-__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests", "min_envelope", "has_company", "knn3_mean_from_plan", "lattice_triangles",
-           "run_rows"]
+__all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
+           "min_envelope", "has_company", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
+           "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "floor_cells", "cell_stats"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
 _PIECE = 65536
@@ -581,3 +595,392 @@ def knn3_mean_from_plan(nb: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndar
 
     run_rows(piece, n)
     return out, short
+
+
+@njit(cache=True, nogil=True)
+def _radix_sorted(key, maxkey):
+    """Indices that sort the non-negative int64 ``key`` (all at most ``maxkey``), equal keys in
+    index order (``np.argsort(key, kind="stable")``), and the sorted keys: a least
+    significant digit radix sort, one pass per digit of at most 16 bits."""
+    n = len(key)
+    order = np.arange(n)
+    ks = key.copy()
+    bits = 0
+    while bits < 63 and (maxkey >> bits) > 0:
+        bits += 1
+    if n < 2 or bits == 0:
+        return order, ks
+    dmax = 8
+    while dmax < 16 and (1 << dmax) < n:    # no more buckets than points (or 256)
+        dmax += 1
+    passes = (bits + dmax - 1) // dmax
+    d = (bits + passes - 1) // passes
+    nb = 1 << d
+    mask = nb - 1
+    ko = np.empty(n, np.int64)
+    oo = np.empty(n, np.int64)
+    count = np.empty(nb + 1, np.int64)
+    for p in range(passes):
+        shift = p * d
+        count[:] = 0
+        for i in range(n):
+            count[((ks[i] >> shift) & mask) + 1] += 1
+        for j in range(nb):
+            count[j + 1] += count[j]
+        for i in range(n):
+            b = (ks[i] >> shift) & mask
+            m = count[b]
+            count[b] = m + 1
+            ko[m] = ks[i]
+            oo[m] = order[i]
+        ks, ko = ko, ks
+        order, oo = oo, order
+    return order, ks
+
+
+@njit(cache=True, nogil=True)
+def _stable_radix_order(key, maxkey):
+    return _radix_sorted(key, maxkey)[0]
+
+
+@njit(cache=True, nogil=True)
+def morton_order(x, y, cell):
+    """:func:`inventory.survey.clean.spatial_order`: the stable order of the Morton keys of the
+    ``cell`` blocks of the points (block numbers from the lowest x and y, their lowest 21
+    bits interleaved, x in the even bits)."""
+    n = len(x)
+    if n == 0:
+        return np.zeros(0, np.int64)
+    x0 = x.min()
+    y0 = y.min()
+    key = np.empty(n, np.int64)
+    top = 0
+    for i in range(n):
+        k = 0
+        for j in range(2):
+            v = np.int64(math.floor(((x[i] - x0) if j == 0 else (y[i] - y0)) / cell)) & 0x1FFFFF
+            v = (v | (v << 16)) & 0x0000FFFF0000FFFF
+            v = (v | (v << 8)) & 0x00FF00FF00FF00FF
+            v = (v | (v << 4)) & 0x0F0F0F0F0F0F0F0F
+            v = (v | (v << 2)) & 0x3333333333333333
+            v = (v | (v << 1)) & 0x5555555555555555
+            k |= v << j
+        key[i] = k
+        if k > top:
+            top = k
+    return _stable_radix_order(key, top)
+
+
+@njit(cache=True, nogil=True)
+def _z_less(a, b):
+    # numpy's sort order of floats: NaN after everything
+    return a < b or (b != b and a == a)
+
+
+@njit(cache=True, nogil=True)
+def _sort_run_by_z(zs, order, lo, hi, zbuf, obuf):
+    """Stable sort of ``zs[lo:hi]`` (``order`` alongside): insertion sort of runs of 16,
+    then merges through the buffers."""
+    m = hi - lo
+    if m < 2:
+        return
+    run = 16
+    for a in range(lo, hi, run):
+        b = min(a + run, hi)
+        for i in range(a + 1, b):
+            v = zs[i]
+            o = order[i]
+            j = i
+            while j > a and _z_less(v, zs[j - 1]):
+                zs[j] = zs[j - 1]
+                order[j] = order[j - 1]
+                j -= 1
+            zs[j] = v
+            order[j] = o
+    width = run
+    while width < m:
+        for a in range(lo, hi, 2 * width):
+            mid = min(a + width, hi)
+            b = min(a + 2 * width, hi)
+            if mid >= b or not _z_less(zs[mid], zs[mid - 1]):
+                continue    # already in order
+            for i in range(a, mid):
+                zbuf[i - a] = zs[i]
+                obuf[i - a] = order[i]
+            i, j, t = 0, mid, a
+            while i < mid - a and j < b:
+                if _z_less(zs[j], zbuf[i]):
+                    zs[t] = zs[j]
+                    order[t] = order[j]
+                    j += 1
+                else:
+                    zs[t] = zbuf[i]
+                    order[t] = obuf[i]
+                    i += 1
+                t += 1
+            while i < mid - a:
+                zs[t] = zbuf[i]
+                order[t] = obuf[i]
+                i += 1
+                t += 1
+        width *= 2
+
+
+@njit(cache=True, nogil=True)
+def _cells_gathered(key, z, maxkey):
+    # points cell by cell (in index order within a cell), with their keys and heights
+    order, ks = _radix_sorted(key, maxkey)
+    n = len(key)
+    zs = np.empty(n)
+    for i in range(n):
+        zs[i] = z[order[i]]
+    return order, ks, zs
+
+
+@njit(cache=True, nogil=True)
+def _run_end(ks, a):
+    b = a + 1
+    while b < len(ks) and ks[b] == ks[a]:
+        b += 1
+    return b
+
+
+@njit(cache=True, nogil=True)
+def _run_buffers(ks):
+    # merge buffers for the longest run of equal keys (a merge's left part may be nearly all of it)
+    m = 0
+    a = 0
+    while a < len(ks):
+        b = _run_end(ks, a)
+        m = max(m, b - a)
+        a = b
+    return np.empty(m), np.empty(m, np.int64)
+
+
+@njit(cache=True, nogil=True)
+def _cell_z_sorted(key, z, maxkey):
+    # the order of cell_z_order, with the keys and heights in that order
+    order, ks, zs = _cells_gathered(key, z, maxkey)
+    n = len(key)
+    zbuf, obuf = _run_buffers(ks)
+    a = 0
+    while a < n:
+        b = _run_end(ks, a)
+        _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+        a = b
+    return order, ks, zs
+
+
+@njit(cache=True, nogil=True)
+def cell_z_order(key, z, maxkey):
+    """``np.lexsort((z, key))`` for non-negative int64 cell numbers ``key`` (at most
+    ``maxkey``): points cell by cell, each cell's by height (NaN last), equal heights in index
+    order. A radix sort of the cells, then a sort of each cell's heights."""
+    return _cell_z_sorted(key, z, maxkey)[0]
+
+
+@njit(cache=True, nogil=True)
+def _plan_cells(x, y, cell):
+    # row * (largest column + 1) + column of floor((v - lowest) / cell): the cells of
+    # clean.elm_low_points and ground._overhead
+    n = len(x)
+    x0 = x.min()
+    y0 = y.min()
+    col = np.empty(n, np.int64)
+    row = np.empty(n, np.int64)
+    cmax = 0
+    for i in range(n):
+        col[i] = np.int64(math.floor((x[i] - x0) / cell))
+        row[i] = np.int64(math.floor((y[i] - y0) / cell))
+        if col[i] > cmax:
+            cmax = col[i]
+    top = 0
+    for i in range(n):
+        row[i] = row[i] * (cmax + 1) + col[i]
+        if row[i] > top:
+            top = row[i]
+    return row, top
+
+
+@njit(cache=True, nogil=True)
+def elm_noise(x, y, z, cell, threshold):
+    """:func:`inventory.survey.clean.elm_low_points` for two points or more: in each cell, the
+    points from the lowest up while the gap to the next point above is at least
+    ``threshold`` (the cell's top point never)."""
+    key, top = _plan_cells(x, y, cell)
+    order, ks, zs = _cells_gathered(key, z, top)
+    n = len(z)
+    out = np.zeros(n, np.bool_)
+    zbuf, obuf = _run_buffers(ks)
+    a = 0
+    while a < n:
+        b = _run_end(ks, a)
+        # the lowest point is marked only when the second lowest is threshold above it
+        # (NaN sorts last: fewer than two numbers, nothing marked); most cells stop here
+        lo1 = lo2 = np.inf
+        cnt = 0
+        for i in range(a, b):
+            v = zs[i]
+            if v == v:
+                cnt += 1
+                if v < lo1:
+                    lo2 = lo1
+                    lo1 = v
+                elif v < lo2:
+                    lo2 = v
+        if cnt >= 2 and lo2 - lo1 >= threshold:
+            _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+            for i in range(a, b - 1):
+                if zs[i + 1] - zs[i] >= threshold:
+                    out[order[i]] = True
+                else:
+                    break
+        a = b
+    return out
+
+
+@njit(cache=True, nogil=True)
+def overhead_layers(x, y, z, h, cell, gap):
+    """:func:`inventory.survey.ground._overhead` for one point or more: the points of each
+    column of ``cell`` by height split into layers where the gap to the point below is at
+    least ``gap``; a point is marked when its layer's clearance (that gap, or ``h`` of the
+    column's lowest point) is at least ``gap``."""
+    key, top = _plan_cells(x, y, cell)
+    order, ks, zs = _cells_gathered(key, z, top)
+    n = len(z)
+    out = np.zeros(n, np.bool_)
+    zbuf, obuf = _run_buffers(ks)
+    a = 0
+    while a < n:
+        b = _run_end(ks, a)
+        lo = np.inf
+        hi = -np.inf
+        first = a       # the lowest point, the first in index order of equal heights
+        for i in range(a, b):
+            v = zs[i]
+            if v == v:
+                if v < lo:
+                    lo = v
+                    first = i
+                if v > hi:
+                    hi = v
+        if lo > hi or hi - lo < gap:
+            # no gap of ``gap`` inside the column (rounding is monotone: no difference
+            # of two of its heights exceeds hi - lo): one layer, its clearance h of the lowest
+            ok = h[order[first]] >= gap
+            for i in range(a, b):
+                out[order[i]] = ok
+        else:
+            _sort_run_by_z(zs, order, a, b, zbuf, obuf)
+            clear = h[order[a]]
+            out[order[a]] = clear >= gap
+            for i in range(a + 1, b):
+                dz = zs[i] - zs[i - 1]
+                if dz >= gap:
+                    clear = dz
+                out[order[i]] = clear >= gap
+        a = b
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _np_min(a, b):
+    # np.minimum: NaN when either is
+    if a != a:
+        return a
+    if b != b:
+        return b
+    return b if b < a else a
+
+
+@njit(cache=True, nogil=True)
+def chamfer_passes(g, weight):
+    """:func:`inventory.survey.ground._chamfer_min` in place on a float64 grid of at least one
+    row and column, with the same floating-point operations in the same order."""
+    nrow, ncol = g.shape
+    w1 = weight
+    w2 = weight * math.sqrt(2.0)
+    w5 = weight * math.sqrt(5.0)
+    ramp = np.empty(ncol)
+    for j in range(ncol):
+        ramp[j] = weight * np.float64(j)
+    left = np.empty(ncol)
+    right = np.empty(ncol)
+    for down in (True, False):
+        for s in range(nrow):
+            r = s if down else nrow - 1 - s
+            r1 = r - 1 if down else r + 1
+            r2 = r - 2 if down else r + 2
+            if s >= 1:
+                for j in range(ncol):
+                    v = _np_min(g[r, j], g[r1, j] + w1)
+                    if j >= 1:
+                        v = _np_min(v, g[r1, j - 1] + w2)
+                    if j + 1 < ncol:
+                        v = _np_min(v, g[r1, j + 1] + w2)
+                    if j >= 2:
+                        v = _np_min(v, g[r1, j - 2] + w5)
+                    if j + 2 < ncol:
+                        v = _np_min(v, g[r1, j + 2] + w5)
+                    if s >= 2:
+                        if j >= 1:
+                            v = _np_min(v, g[r2, j - 1] + w5)
+                        if j + 1 < ncol:
+                            v = _np_min(v, g[r2, j + 1] + w5)
+                    g[r, j] = v
+            m = 0.0
+            for j in range(ncol):
+                v = g[r, j] - ramp[j]
+                m = v if j == 0 else _np_min(m, v)
+                left[j] = m
+            for j in range(ncol - 1, -1, -1):
+                v = g[r, j] + ramp[j]
+                m = v if j == ncol - 1 else _np_min(m, v)
+                right[j] = m
+            for j in range(ncol):
+                g[r, j] = _np_min(left[j] + ramp[j], right[j] - ramp[j])
+
+
+@njit(cache=True, nogil=True)
+def floor_cells(v, v0, c):
+    """``((v - v0) // c).astype(np.int64)``. numpy's float ``//`` (Python's float divmod) is
+    the floor of the exact quotient of ``a = v - v0`` by ``c``; ``floor(a / c)`` is the
+    same unless ``a / c`` rounds to a whole number (rounding is monotone, so a quotient
+    rounded to a non-integer q has the floor of q), where numba's ``//``, the same
+    algorithm as numpy's, decides."""
+    out = np.empty(len(v), np.int64)
+    for i in range(len(v)):
+        a = v[i] - v0
+        q = a / c
+        f = math.floor(q)
+        out[i] = np.int64(f) if q != f else np.int64(a // c)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _np_max(a, b):
+    # np.maximum: NaN when either is
+    if a != a:
+        return a
+    if b != b:
+        return b
+    return b if b > a else a
+
+
+@njit(cache=True, nogil=True)
+def cell_stats(k, z, sel, size):
+    """Over the points with ``sel``, per cell ``k`` of ``size`` cells: count, sum of ``z``
+    (added in index order, as ``np.bincount`` adds), lowest and highest ``z`` (inf and -inf
+    in cells without such points; NaN propagates as in ``np.minimum.at``)."""
+    count = np.zeros(size, np.int64)
+    total = np.zeros(size)
+    lo = np.full(size, np.inf)
+    hi = np.full(size, -np.inf)
+    for i in range(len(k)):
+        if sel[i]:
+            j = k[i]
+            count[j] += 1
+            total[j] += z[i]
+            lo[j] = _np_min(lo[j], z[i])
+            hi[j] = _np_max(hi[j], z[i])
+    return count, total, lo, hi

@@ -1,0 +1,250 @@
+"""Compiled kernels of the survey's sorting and raster passes against the numpy code they
+replaced (kept here as the reference): equal arrays, ties and edge cases included."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from inventory.survey.clean import elm_low_points, spatial_order
+from inventory.survey.ground import _chamfer_min, _overhead, _region_cells
+from inventory.survey.kernels import _stable_radix_order, cell_stats, cell_z_order, floor_cells
+
+
+def _ref_spatial_order(x, y, cell=1.0):
+    if len(x) == 0:
+        return np.zeros(0, np.int64)
+    ix = np.floor((x - x.min()) / cell).astype(np.uint64)
+    iy = np.floor((y - y.min()) / cell).astype(np.uint64)
+    key = np.zeros(len(x), np.uint64)
+    one = np.uint64(1)
+    for bit in range(21):
+        b = np.uint64(bit)
+        key |= ((ix >> b) & one) << np.uint64(2 * bit)
+        key |= ((iy >> b) & one) << np.uint64(2 * bit + 1)
+    return np.argsort(key, kind="stable")
+
+
+def _ref_elm(x, y, z, cell=10.0, threshold=1.0):
+    n = len(z)
+    out = np.zeros(n, bool)
+    if n < 2:
+        return out
+    col = np.floor((x - x.min()) / cell).astype(np.int64)
+    row = np.floor((y - y.min()) / cell).astype(np.int64)
+    key = row * (col.max() + 1) + col
+    order = np.lexsort((z, key))
+    ks, zs = key[order], z[order]
+    same_next = np.zeros(n, bool)
+    same_next[:-1] = ks[1:] == ks[:-1]
+    gap_big = np.zeros(n, bool)
+    with np.errstate(invalid="ignore"):     # inf - inf
+        gap_big[:-1] = (zs[1:] - zs[:-1]) >= threshold
+    gap_big &= same_next
+    small = (~gap_big).astype(np.int64)
+    cs = np.cumsum(small)
+    start = np.ones(n, bool)
+    start[1:] = ks[1:] != ks[:-1]
+    before = np.where(start, cs - small, 0)
+    before = np.maximum.accumulate(np.where(start, before, -1))
+    out[order] = (cs - before) == 0
+    return out
+
+
+def _ref_overhead(x, y, z, h, cell, gap):
+    n = len(z)
+    if n == 0:
+        return np.zeros(0, bool)
+    col = np.floor((x - x.min()) / cell).astype(np.int64)
+    row = np.floor((y - y.min()) / cell).astype(np.int64)
+    key = row * (col.max() + 1) + col
+    order = np.lexsort((z, key))
+    ks, zs, hs = key[order], z[order], h[order]
+    new_col = np.ones(n, bool)
+    new_col[1:] = ks[1:] != ks[:-1]
+    dz = np.empty(n)
+    dz[0] = np.inf
+    with np.errstate(invalid="ignore"):
+        dz[1:] = zs[1:] - zs[:-1]
+    clearance = np.where(new_col, hs, dz)
+    layer_start = new_col | (dz >= gap)
+    idx = np.maximum.accumulate(np.where(layer_start, np.arange(n), 0))
+    out = np.zeros(n, bool)
+    out[order] = clearance[idx] >= gap
+    return out
+
+
+def _ref_chamfer(g, weight):
+    g = np.array(g, dtype=float)
+    nrow, ncol = g.shape
+    if nrow == 0 or ncol == 0:
+        return g
+    w1, w2, w5 = weight, weight * math.sqrt(2.0), weight * math.sqrt(5.0)
+    ramp = weight * np.arange(ncol, dtype=float)
+    tmp = np.empty(ncol)
+    for rows in (range(nrow), range(nrow - 1, -1, -1)):
+        p1 = p2 = None
+        for r in rows:
+            cur = g[r]
+            if p1 is not None:
+                np.minimum(cur, np.add(p1, w1, out=tmp), out=cur)
+                np.minimum(cur[1:], np.add(p1[:-1], w2, out=tmp[1:]), out=cur[1:])
+                np.minimum(cur[:-1], np.add(p1[1:], w2, out=tmp[:-1]), out=cur[:-1])
+                np.minimum(cur[2:], np.add(p1[:-2], w5, out=tmp[2:]), out=cur[2:])
+                np.minimum(cur[:-2], np.add(p1[2:], w5, out=tmp[:-2]), out=cur[:-2])
+            if p2 is not None:
+                np.minimum(cur[1:], np.add(p2[:-1], w5, out=tmp[1:]), out=cur[1:])
+                np.minimum(cur[:-1], np.add(p2[1:], w5, out=tmp[:-1]), out=cur[:-1])
+            left = np.minimum.accumulate(np.subtract(cur, ramp, out=tmp))
+            left += ramp
+            right = np.minimum.accumulate((cur + ramp)[::-1])[::-1]
+            right -= ramp
+            np.minimum(left, right, out=cur)
+            p2, p1 = p1, cur
+    return g
+
+
+def _clouds():
+    """Seeded clouds with equal heights, repeated positions, points on cell edges, one and
+    two points, wide and narrow extents."""
+    rng = np.random.default_rng(17)
+    out = []
+    for n, span in [(1, 5.0), (2, 5.0), (3, 0.0), (50, 3.0), (2000, 40.0), (20000, 150.0), (5000, 3000.0)]:
+        x = 500000.0 + rng.random(n) * span
+        y = 5700000.0 + rng.random(n) * span * 0.7
+        z = 100.0 + np.round(rng.random(n) * 6, 1)          # many equal heights
+        if n >= 50:
+            k = n // 5
+            x[:k] = np.round(x[:k])                          # on cell edges
+            y[:k] = np.round(y[:k])
+            x[k:2 * k] = x[0]                                # one position, many heights
+            y[k:2 * k] = y[0]
+            z[2 * k:2 * k + 10] = z[2 * k]
+            z[rng.random(n) < 0.05] -= 3.0                   # low points below gaps
+        out.append((x, y, z))
+    # heights numpy sorts last or first: NaN, +-inf, and -0.0 beside 0.0, in few cells
+    x, y, z = (v.copy() for v in out[4])
+    z[::9] = np.nan
+    z[1::23] = np.inf
+    z[2::29] = -np.inf
+    z[3::31] = -0.0
+    z[4::31] = 0.0
+    out.append((x, y, z))
+    return out
+
+
+def test_radix_order_is_a_stable_argsort():
+    rng = np.random.default_rng(3)
+    for n, top in [(0, 0), (1, 5), (7, 0), (1000, 3), (5000, 70000), (30000, 2 ** 40), (3000, 2 ** 62)]:
+        key = rng.integers(0, top + 1, n).astype(np.int64)
+        np.testing.assert_array_equal(_stable_radix_order(key, int(key.max()) if n else 0),
+                                      np.argsort(key, kind="stable"))
+
+
+def test_cell_z_order_is_lexsort():
+    rng = np.random.default_rng(5)
+    for n in (0, 1, 2, 40, 3000, 40000):
+        key = rng.integers(0, max(n // 30, 1), n).astype(np.int64)
+        z = np.round(rng.normal(size=n), 1)
+        if n > 10:
+            z[::7] = np.nan                        # numpy sorts NaN last
+            z[3::11] = -0.0
+            z[5::11] = 0.0
+        got = cell_z_order(key, z, int(key.max()) if n else 0)
+        np.testing.assert_array_equal(got, np.lexsort((z, key)))
+
+
+def test_spatial_order_matches_the_numpy_morton_keys():
+    for x, y, _ in _clouds():
+        for cell in (1.0, 0.3, 7.0):
+            np.testing.assert_array_equal(spatial_order(x, y, cell), _ref_spatial_order(x, y, cell))
+    assert spatial_order(np.zeros(0), np.zeros(0)).tolist() == []
+
+
+def test_elm_matches_the_numpy_walk():
+    for x, y, z in _clouds():
+        for cell, thr in ((2.0, 1.0), (10.0, 0.5), (1.0, 0.0), (3.0, -1.0)):
+            got = elm_low_points(x, y, z, cell, thr)
+            np.testing.assert_array_equal(got, _ref_elm(x, y, z, cell, thr))
+    x, y, z = _clouds()[4]
+    assert _ref_elm(x, y, z, 2.0, 1.0).sum() > 10     # the clouds do have low points
+
+
+def test_overhead_matches_the_numpy_layers():
+    rng = np.random.default_rng(9)
+    for x, y, z in _clouds():
+        h = np.round(rng.random(len(z)) * 4 - 1, 1)
+        h[::13] = -np.inf
+        for cell, gap in ((0.5, 2.0), (2.0, 1.0), (0.5, 0.0)):
+            np.testing.assert_array_equal(_overhead(x, y, z, h, cell, gap), _ref_overhead(x, y, z, h, cell, gap))
+    # a column: ground at 0 and 0.1 m, a beam at 3.0 and 3.1 m (2.9 m of space below it),
+    # and a second column of one point 1 m above the envelope
+    x, y = np.array([0.1, 0.2, 0.3, 0.2, 0.9]), np.array([0.1, 0.2, 0.1, 0.3, 0.1])
+    z, h = np.array([3.1, 0.0, 3.0, 0.1, 1.0]), np.array([3.1, 0.0, 3.0, 0.1, 1.0])
+    assert _overhead(x, y, z, h, 0.5, 2.0).tolist() == [True, False, True, False, False]
+    assert _overhead(np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0), 0.5, 2.0).tolist() == []
+
+
+@pytest.mark.parametrize("shape", [(0, 0), (0, 4), (1, 1), (1, 9), (9, 1), (2, 3), (37, 53), (120, 80)])
+def test_chamfer_min_is_bit_identical(shape):
+    rng = np.random.default_rng(shape[0] * 1000 + shape[1])
+    for inf_share in (0.0, 0.7, 0.98, 1.0):
+        g = rng.random(shape) * 20 + 95
+        g[rng.random(shape) < inf_share] = np.inf
+        g[rng.random(shape) < 0.05] = 101.5                  # equal values
+        for w in (0.5 * math.tan(math.radians(50.0)), 1.0 * math.tan(math.radians(70.0)), 0.3):
+            got, ref = _chamfer_min(g, w), _ref_chamfer(g, w)
+            assert got.dtype == ref.dtype and got.shape == ref.shape
+            assert np.array_equal(got, ref)
+            assert np.array_equal(np.signbit(got), np.signbit(ref))
+    g = np.full((5, 6), np.inf)
+    g[2, 3] = 1.0
+    got = _chamfer_min(g, 1.0)
+    assert got[2, 3] == 1.0 and got[2, 0] == 4.0 and got[0, 4] == pytest.approx(1.0 + math.sqrt(5.0))   # a knight step
+
+
+def test_floor_cells_is_numpy_floor_division():
+    # numpy's float // is the floor of the exact quotient (Python's float_divmod), which
+    # floor(a / b) misses where a / b rounds up to an integer: the kernel must do the same
+    rng = np.random.default_rng(21)
+    for c in (0.5, 0.1, 0.3, 2.0, 1.0 / 3.0):
+        v = np.r_[500000.0 + rng.random(20000) * 300, 500000.0 + np.arange(3000) * c,
+                  np.nextafter(500000.0 + np.arange(3000) * c, 0), 500000.0, 0.0, -0.0]
+        for v0 in (float(v.min()), float(v.min()) - c, 499999.95):
+            np.testing.assert_array_equal(floor_cells(v, v0, c), ((v - v0) // c).astype(np.int64))
+    # a case where the two differ: 0.5 // 0.1 is 4 (0.1 is a little over a tenth)
+    assert floor_cells(np.array([0.5]), 0.0, 0.1).tolist() == [4] and math.floor(0.5 / 0.1) == 5
+
+
+def test_region_cells_match_numpy():
+    for x, y, _ in _clouds():
+        for c in (0.5, 0.1, 1.3):
+            row, col, shape = _region_cells(x, y, c)
+            rc = ((x - x.min()) // c).astype(np.int64)
+            rr = ((y - y.min()) // c).astype(np.int64)
+            np.testing.assert_array_equal(col, rc)
+            np.testing.assert_array_equal(row, rr)
+            assert shape == (int(rr.max()) + 1, int(rc.max()) + 1)
+
+
+def test_cell_stats_match_bincount_and_ufunc_at():
+    rng = np.random.default_rng(8)
+    for n, size in ((0, 1), (1, 3), (50, 7), (30000, 900)):
+        k = rng.integers(0, size, n).astype(np.int64)
+        z = rng.normal(100, 5, n)
+        z[::17] = np.round(z[::17])
+        sel = rng.random(n) < 0.6
+        count, total, lo, hi = cell_stats(k, z, sel, size)
+        np.testing.assert_array_equal(count, np.bincount(k[sel], minlength=size))
+        np.testing.assert_array_equal(total, np.bincount(k[sel], z[sel], minlength=size))   # same additions
+        ref = np.full(size, np.inf)
+        np.minimum.at(ref, k[sel], z[sel])
+        np.testing.assert_array_equal(lo, ref)
+        ref = np.full(size, -np.inf)
+        np.maximum.at(ref, k[sel], z[sel])
+        np.testing.assert_array_equal(hi, ref)
+    # NaN spreads to its cell's extremes as in np.minimum.at
+    count, total, lo, hi = cell_stats(np.array([0, 0, 1]), np.array([1.0, np.nan, 2.0]), np.ones(3, bool), 2)
+    assert np.isnan(lo[0]) and np.isnan(hi[0]) and lo[1] == 2.0 and count.tolist() == [2, 1]
