@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
+from scipy import ndimage
 from scipy.spatial import Delaunay, cKDTree
 
-from inventory.survey.gridding import _linear_on_lattice
+from inventory.survey.gridding import _lattice_triangle_at, _linear_on_lattice, lattice_rim
 from inventory.survey.kernels import CellIndex, below_tests, knn3_mean, min_envelope, plan_knn
 
 
@@ -91,3 +93,94 @@ def test_lattice_fill_matches_scipy_griddata_form():
     bary = np.column_stack([b, 1 - b.sum(1)])
     ref = (z[near][tri.simplices[s[inside]]] * bary).sum(1)
     np.testing.assert_allclose(got[inside], ref, atol=1e-9)
+
+
+def test_lattice_rim_cells():
+    near = np.zeros((7, 8), bool)
+    near[1:6, 1:7] = True         # a 5 x 6 block
+    near[3, 4] = False            # a one-cell hole
+    near[0:3, 7] = True           # cells on the grid border
+    rim = lattice_rim(near)
+    # a cell with all 4 edge neighbours in near is inside; its diagonal ones do not count
+    assert not rim[2, 3] and not rim[4, 5] and not rim[2, 2]
+    assert rim[3, 3] and rim[2, 4] and not rim[2, 5] and rim[1, 1] and rim[0, 7] and rim[3, 6]
+    assert not rim[2, 6]          # (2, 7) beside it is in near
+    rng = np.random.default_rng(3)
+    for _ in range(5):
+        near = rng.random((20, 30)) < 0.8
+        expect = np.zeros_like(near)
+        for r, c in zip(*np.nonzero(near)):
+            expect[r, c] = any(not (0 <= r + dr < 20 and 0 <= c + dc < 30 and near[r + dr, c + dc])
+                               for dr, dc in ((1, 0), (-1, 0), (0, 1), (0, -1)))
+        np.testing.assert_array_equal(lattice_rim(near), expect)
+
+
+def _lattice_case(seed: int, size: int = 56) -> tuple[np.ndarray, np.ndarray]:
+    """``near`` and ``target`` as fill_holes builds them (fill distance 6 cells) on a
+    random scan: ragged shadows, a wide gap, a gap on the grid border, one-cell holes,
+    short dropouts."""
+    rng = np.random.default_rng(seed)
+    scanned = ndimage.gaussian_filter(rng.random((size, size)), 2.5) < 0.54
+    r, c = rng.integers(8, size - 24, 2)
+    scanned[r:r + rng.integers(6, 20), c:c + rng.integers(6, 20)] = False
+    scanned[: rng.integers(2, 8), rng.integers(0, size - 12):][:, :12] = False
+    scanned[rng.random((size, size)) < 0.04] = False
+    for _ in range(6):
+        r, c = rng.integers(0, size - 4, 2)
+        scanned[r, c:c + rng.integers(1, 5)] = False
+    dist = ndimage.distance_transform_edt(~scanned)
+    target = ~scanned & (dist <= 6)
+    near = ndimage.binary_dilation(target, iterations=8) & scanned
+    return near, target
+
+
+def _incircle(tri: np.ndarray, px: np.ndarray, py: np.ndarray, ncol: int) -> np.ndarray:
+    """Exact (integer) in-circle determinant of points (px, py) against the circumcircle of
+    the cells ``tri`` (flat indices): > 0 strictly inside, 0 on it."""
+    r, c = np.divmod(tri, ncol)
+    x, y = c.astype(np.int64), -r.astype(np.int64)
+    if (x[1] - x[0]) * (y[2] - y[0]) - (y[1] - y[0]) * (x[2] - x[0]) < 0:
+        x, y = x[[0, 2, 1]], y[[0, 2, 1]]
+    ax, ay, bx, by, cx, cy = x[0] - px, y[0] - py, x[1] - px, y[1] - py, x[2] - px, y[2] - py
+    return ((ax * ax + ay * ay) * (bx * cy - by * cx) - (bx * bx + by * by) * (ax * cy - ay * cx)
+            + (cx * cx + cy * cy) * (ax * by - ay * bx))
+
+
+def test_rim_triangulation_holds_the_same_delaunay_triangles():
+    # The fill triangulates only the rim of the near cells (lattice_rim). Checked here with
+    # exact integer predicates against the Delaunay triangulation of every near cell
+    # (Qhull through scipy.spatial.Delaunay): the corners of every triangle holding a target
+    # are rim cells; each triangle the rim gives holds its target and has no near cell
+    # strictly inside its circumcircle (Delaunay for all near cells); and where the
+    # triangle of all near cells is the only Delaunay one (no fourth cell on its circle,
+    # target not on an edge) both give the same triangle and value.
+    unique = 0
+    for seed in range(6):
+        near, target = _lattice_case(seed)
+        ncol = near.shape[1]
+        rim = lattice_rim(near)
+        assert rim.sum() < 0.6 * near.sum()
+        full = _lattice_triangle_at(near, target)
+        part = _lattice_triangle_at(rim, target)
+        np.testing.assert_array_equal(full[:, 0] < 0, part[:, 0] < 0)
+        ok = full[:, 0] >= 0
+        assert ok.mean() > 0.9
+        assert rim.ravel()[full[ok]].all()
+        nr, nc = np.nonzero(near)
+        tr, tc = np.divmod(np.flatnonzero(target.ravel()), ncol)
+        z = np.random.default_rng(seed).random(near.shape)
+        got = _linear_on_lattice(near, target, z)
+        for i in np.flatnonzero(ok):
+            r, c = np.divmod(part[i], ncol)
+            x, y = c.astype(np.int64), -r.astype(np.int64)
+            cross = [(x[(e + 1) % 3] - x[e]) * (-tr[i] - y[e]) - (y[(e + 1) % 3] - y[e]) * (tc[i] - x[e])
+                     for e in range(3)]
+            assert min(cross) >= 0 or max(cross) <= 0            # holds its target
+            assert (_incircle(part[i], nc, -nr, ncol) <= 0).all()   # Delaunay among all near cells
+            if (_incircle(full[i], nc, -nr, ncol) == 0).sum() == 3 and 0 not in cross:
+                unique += 1
+                assert sorted(part[i]) == sorted(full[i])
+                r, c = np.divmod(full[i], ncol)
+                w = np.linalg.solve(np.array([c, -r, np.ones(3)], float), [tc[i], -tr[i], 1.0])
+                assert got[i] == pytest.approx(w @ z.ravel()[full[i]], abs=1e-9)
+    assert unique > 1000

@@ -299,9 +299,58 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
 _SMALL_TRIANGLE = 64
 
 
+def lattice_rim(near: np.ndarray) -> np.ndarray:
+    """The cells of ``near`` with at least one of their 4 edge neighbours not in ``near``
+    or off the grid: the only cells that can be corners of a Delaunay triangle of
+    ``near`` holding a lattice point outside it (see :func:`_linear_on_lattice`)."""
+    from scipy import ndimage
+
+    return near & ~ndimage.binary_erosion(near, border_value=0)
+
+
 def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
     """Linear interpolation of ``z`` at the ``target`` cells over a Delaunay triangulation
-    of the ``near`` cells, as ``scipy.interpolate.griddata(method="linear")``.
+    of the ``near`` cells, as ``scipy.interpolate.griddata(method="linear")``; ``target``
+    and ``near`` share no cell. Targets outside every triangle get NaN, as from griddata.
+
+    Only the rim of ``near`` (:func:`lattice_rim`) is triangulated: the triangles holding
+    a target are the same. Cells are points of the integer lattice. A lattice triangle
+    holding a further lattice point (inside or on an edge) has circumradius R >= 1: four
+    lattice points in a closed disc of radius < 1 are the corners of one unit square, and
+    no three of them hold the fourth. Let v be a corner of such a Delaunay triangle, c
+    its circumcentre, and d the one of v's 4 unit steps within 45 degrees of c - v:
+    |v + d - c|^2 - R^2 = 1 - 2 d.(c - v) <= 1 - sqrt(2) R < 0, so v + d lies strictly
+    inside the circumcircle and cannot be in ``near`` (the empty-circle property): v is a
+    rim cell. Such a triangle, empty of ``near``, is empty of the rim too and Delaunay
+    there. What can differ is the choice among equally Delaunay triangles of cocircular
+    cells (the lattice is full of them, e.g. the two diagonals of a one-cell hole between
+    four scanned neighbours, or the corners of a rectangular gap): Qhull's choice depends
+    on every input point, so a target on such a tie may take the other triangle, as it
+    may between fill windows (:func:`~inventory.survey.fill.fill_windows`).
+    """
+    nrow, ncol = near.shape
+    corners = _lattice_triangle_at(lattice_rim(near), target)
+    out = np.full(len(corners), np.nan)
+    ok = corners[:, 0] >= 0
+    tr, tc = np.divmod(np.flatnonzero(target.ravel())[ok], ncol)
+    vr, vc = np.divmod(corners[ok], ncol)
+    px, py = tc.astype(float), -tr.astype(float)
+    vx, vy = vc.astype(float), -vr.astype(float)
+    a, b = vx[:, 0] - vx[:, 2], vx[:, 1] - vx[:, 2]
+    c, d = vy[:, 0] - vy[:, 2], vy[:, 1] - vy[:, 2]
+    det = a * d - b * c
+    dx, dy = px - vx[:, 2], py - vy[:, 2]
+    c0 = (d * dx - b * dy) / det
+    c1 = (a * dy - c * dx) / det
+    zv = z.ravel()[corners[ok]]
+    out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
+    return out
+
+
+def _lattice_triangle_at(cells: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """The corners (flat cell indices, one row per ``target`` cell in row-major order;
+    -1 where none) of the triangle of a Delaunay triangulation of the ``cells`` that holds
+    each target.
 
     Cells are points of the integer lattice (column, -row). Triangulating there, not at
     projected coordinates of 10^5-10^6 m, matters: Qhull then loses no cell as
@@ -309,21 +358,20 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
     without scipy's walk, whose set-up inverts every triangle's matrix (slow; timings in
     CHANGELOG.md): each triangle lists the lattice points of its
     bounding box and keeps the targets inside it by exact integer orientation tests
-    (edges included: the value on a shared edge is the same from both sides). The value
-    is the barycentric sum in the triangle found; targets outside every triangle get NaN,
-    as from griddata.
+    (edges included: the value on a shared edge is the same from both sides).
     """
     from scipy.spatial import Delaunay
 
-    nrow, ncol = near.shape
-    vr, vc = np.divmod(np.flatnonzero(near.ravel()), ncol)
+    nrow, ncol = cells.shape
+    flat = np.flatnonzero(cells.ravel())
+    vr, vc = np.divmod(flat, ncol)
     tri = Delaunay(np.column_stack([vc, -vr]).astype(float))
     simp = tri.simplices
     u, v = vc[simp].astype(np.int64), -vr[simp].astype(np.int64)
     area2 = (u[:, 1] - u[:, 0]) * (v[:, 2] - v[:, 0]) - (v[:, 1] - v[:, 0]) * (u[:, 2] - u[:, 0])
     umin, umax, vmin, vmax = u.min(1), u.max(1), v.min(1), v.max(1)
     nbox = (umax - umin + 1) * (vmax - vmin + 1)
-    found = np.full(near.shape, -1, np.int64)
+    found = np.full(cells.shape, -1, np.int64)
 
     def inside(t: np.ndarray, pu: np.ndarray, pv: np.ndarray) -> np.ndarray:
         sign = np.sign(area2[t])
@@ -357,17 +405,6 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
         lattice_triangles(big, u, v, area2, umin, umax, vmin, vmax, rc.astype(np.int64), -rr.astype(np.int64),
                           found, 32)
     s = found[target]
-    out = np.full(len(s), np.nan)
-    ok = s >= 0
-    tr, tc = np.divmod(np.flatnonzero(target.ravel()), ncol)
-    px, py = tc[ok].astype(float), -tr[ok].astype(float)
-    vx, vy = u[s[ok]].astype(float), v[s[ok]].astype(float)
-    a, b = vx[:, 0] - vx[:, 2], vx[:, 1] - vx[:, 2]
-    c, d = vy[:, 0] - vy[:, 2], vy[:, 1] - vy[:, 2]
-    det = a * d - b * c
-    dx, dy = px - vx[:, 2], py - vy[:, 2]
-    c0 = (d * dx - b * dy) / det
-    c1 = (a * dy - c * dx) / det
-    zv = z[near][simp[s[ok]]]
-    out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
+    out = np.full((len(s), 3), -1, np.int64)
+    out[s >= 0] = flat[simp[s[s >= 0]]]
     return out
