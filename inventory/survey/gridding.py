@@ -328,7 +328,7 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
     on every input point, so a target on such a tie may take the other triangle, as it
     may between fill windows (:func:`~inventory.survey.fill.fill_windows`).
     """
-    nrow, ncol = near.shape
+    ncol = near.shape[1]
     corners = _lattice_triangle_at(lattice_rim(near), target)
     out = np.full(len(corners), np.nan)
     ok = corners[:, 0] >= 0
