@@ -20,9 +20,10 @@ For each it prints, measured in the same run (best of ``--repeat`` runs, alterna
 wall time of ``fill_windows`` triangulating every near cell (the method before the rim, by
 replacing ``lattice_rim`` with the identity) and the rim only, the points triangulated, and
 how the two filled surfaces differ (cells filled, cells whose value differs by more than
-1e-9 m, the largest difference: choices among cocircular cells). ``--windows`` also times
-the rim fill with other window sizes, against the first. The machine may be shared:
-compare runs of one invocation. Numbers only; nothing is asserted.
+1e-9 m, the largest difference, the net volume of the differences: choices among
+cocircular cells). ``--windows`` also times the rim fill with other window sizes, against
+the first. The machine may be shared: compare runs of one invocation. Numbers only;
+nothing is asserted.
 """
 
 from __future__ import annotations
@@ -125,11 +126,12 @@ def _fill(surface: Surface, distance: float, rim: bool, window: int) -> tuple[Su
 
 def _differ(a: Surface, b: Surface) -> str:
     both = a.filled & b.filled
+    net = float((b.z[both] - a.z[both]).sum()) * a.grid.cell_area
     dz = np.abs(a.z[both] - b.z[both])
     return (f"filled cells {int(a.filled.sum()):,} / {int(b.filled.sum()):,} (same cells: "
             f"{np.array_equal(a.filled, b.filled)}), differing > 1e-9 m: {int((dz > 1e-9).sum()):,}, "
             f"> 1 mm: {int((dz > 1e-3).sum()):,}, > 1 cm: {int((dz > 1e-2).sum()):,}, "
-            f"max |dz| {dz.max() if dz.size else 0.0:.4f} m")
+            f"max |dz| {dz.max() if dz.size else 0.0:.4f} m, net {net:+.2f} m3")
 
 
 def report(label: str, surface: Surface, distance: float, repeat: int, windows: list[int]) -> None:
