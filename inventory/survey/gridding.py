@@ -251,11 +251,12 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     """Fill unscanned cells whose nearest scanned cell is at most ``max_distance_m`` away.
 
     Linear interpolation over the Delaunay triangulation of scanned cell centres (scipy
-    ``griddata``); cells outside that triangulation are not extrapolated. Lone patches of
-    scanned cells (:func:`lone_patches`) keep their own elevation but are neither corners
-    of the triangulation nor count as data for the distance: a gap's value comes from its
-    rim. Gaps that stay empty and are enclosed by data (not connected to the grid edge)
-    are reported.
+    ``griddata``; only the rim of the scanned cells near a hole is triangulated, which holds
+    the same triangles: :func:`_linear_on_lattice`); cells outside that triangulation are
+    not extrapolated. Lone patches of scanned cells (:func:`lone_patches`) keep their own
+    elevation but are neither corners of the triangulation nor count as data for the
+    distance: a gap's value comes from its rim. Gaps that stay empty and are enclosed by
+    data (not connected to the grid edge) are reported.
     """
     from scipy import ndimage
 
