@@ -1,4 +1,4 @@
-"""Time of hole filling (``fill_windows``): every near cell triangulated against the rim only.
+"""Time of hole filling (``fill_windows``): every near cell triangulated against the rim cells only.
 
 Usage::
 
@@ -10,20 +10,21 @@ Usage::
 
 Surfaces to fill, on a 0.5 m grid (``--cell``), filled up to 3 m (``--distance``):
 
-* ``--laz``: every point of the file gridded (``grid_points``, cell mean): few gaps;
+* ``--laz``: every point of the file gridded (``grid_points``, cell mean), machines and
+  structures included;
 * ``--survey``: the unfilled surface the survey step (``measure_survey``, default pipeline)
   hands to the fill, of a LAZ such as ``bench/bench_survey.py --keep`` writes; ``--cache``
   keeps it in an ``.npz`` file and reuses it;
 * ``--site``: the same for each survey of a site folder (or ``--date``).
 
 For each it prints, measured in the same run (best of ``--repeat`` runs, alternating): the
-wall time of ``fill_windows`` triangulating every near cell (the method before the rim, by
-replacing ``lattice_rim`` with the identity) and the rim only, the points triangulated, and
-how the two filled surfaces differ (cells filled, cells whose value differs by more than
-1e-9 m, the largest difference, the net volume of the differences: choices among
-cocircular cells). ``--windows`` also times the rim fill with other window sizes, against
-the first. The machine may be shared: compare runs of one invocation. Numbers only;
-nothing is asserted.
+wall time of ``fill_windows`` triangulating every near cell (the method before, by making
+``fill_corners`` return every near cell) and only the rim cells ``fill_corners`` gives, the
+points triangulated, and how the two filled surfaces differ (cells filled, cells whose value
+differs by more than 1e-9 m, the largest difference, the net volume of the differences:
+choices among cocircular cells). ``--windows`` also times the rim fill with other window
+sizes, against the first. The machine may be shared: compare runs of one invocation. Numbers
+only; nothing is asserted.
 """
 
 from __future__ import annotations
@@ -105,7 +106,7 @@ def _from_survey(path: Path, cell: float, cache: Path | None) -> Surface:
 
 def _fill(surface: Surface, distance: float, rim: bool, window: int) -> tuple[Surface, float, int]:
     """Filled surface, wall seconds, and points triangulated."""
-    real_rim, real_at = gridding.lattice_rim, gridding._lattice_triangle_at
+    real_corners, real_at = gridding.fill_corners, gridding._lattice_triangle_at
     points = [0]
 
     def counted(cells, target):
@@ -113,14 +114,14 @@ def _fill(surface: Surface, distance: float, rim: bool, window: int) -> tuple[Su
         return real_at(cells, target)
 
     if not rim:
-        gridding.lattice_rim = lambda near: near
+        gridding.fill_corners = lambda seeds, near: near
     gridding._lattice_triangle_at = counted
     try:
         t0 = time.perf_counter()
         out, _ = fill_windows(dataclasses.replace(surface, z=surface.z.copy()), distance, window=window)
         dt = time.perf_counter() - t0
     finally:
-        gridding.lattice_rim, gridding._lattice_triangle_at = real_rim, real_at
+        gridding.fill_corners, gridding._lattice_triangle_at = real_corners, real_at
     return out, dt, points[0]
 
 

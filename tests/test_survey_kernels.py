@@ -7,7 +7,8 @@ import pytest
 from scipy import ndimage
 from scipy.spatial import Delaunay, cKDTree
 
-from inventory.survey.gridding import _lattice_triangle_at, _linear_on_lattice, lattice_rim
+from inventory.model.grid import Grid, Surface, lone_patches
+from inventory.survey.gridding import _lattice_triangle_at, _linear_on_lattice, fill_corners, fill_holes, lattice_rim
 from inventory.survey.kernels import CellIndex, below_tests, knn3_mean, min_envelope, plan_knn
 
 
@@ -115,23 +116,24 @@ def test_lattice_rim_cells():
         np.testing.assert_array_equal(lattice_rim(near), expect)
 
 
-def _lattice_case(seed: int, size: int = 56) -> tuple[np.ndarray, np.ndarray]:
-    """``near`` and ``target`` as fill_holes builds them (fill distance 6 cells) on a
-    random scan: ragged shadows, a wide gap, a gap on the grid border, one-cell holes,
-    short dropouts."""
+def _lattice_case(seed: int, size: int = 56) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``scanned``, ``seeds``, ``target`` and ``near`` as fill_holes builds them (cells of
+    1 m, fill distance 6 m) on a random scan: ragged shadows, a wide gap with a lone cell
+    in it, a gap on the grid border, one-cell holes, short dropouts."""
     rng = np.random.default_rng(seed)
     scanned = ndimage.gaussian_filter(rng.random((size, size)), 2.5) < 0.54
     r, c = rng.integers(8, size - 24, 2)
     scanned[r:r + rng.integers(6, 20), c:c + rng.integers(6, 20)] = False
+    scanned[r + 3, c + 3] = True
     scanned[: rng.integers(2, 8), rng.integers(0, size - 12):][:, :12] = False
     scanned[rng.random((size, size)) < 0.04] = False
     for _ in range(6):
         r, c = rng.integers(0, size - 4, 2)
         scanned[r, c:c + rng.integers(1, 5)] = False
-    dist = ndimage.distance_transform_edt(~scanned)
-    target = ~scanned & (dist <= 6)
-    near = ndimage.binary_dilation(target, iterations=8) & scanned
-    return near, target
+    seeds = scanned & ~lone_patches(scanned)
+    target = ~scanned & (ndimage.distance_transform_edt(~seeds) <= 6)
+    near = ndimage.binary_dilation(target, iterations=8) & seeds
+    return scanned, seeds, target, near
 
 
 def _incircle(tri: np.ndarray, px: np.ndarray, py: np.ndarray, ncol: int) -> np.ndarray:
@@ -146,31 +148,40 @@ def _incircle(tri: np.ndarray, px: np.ndarray, py: np.ndarray, ncol: int) -> np.
             + (cx * cx + cy * cy) * (ax * by - ay * bx))
 
 
-def test_rim_triangulation_holds_the_same_delaunay_triangles():
-    # The fill triangulates only the rim of the near cells (lattice_rim). Checked here with
-    # exact integer predicates against the Delaunay triangulation of every near cell
-    # (Qhull through scipy.spatial.Delaunay): the corners of every triangle holding a target
-    # are rim cells; each triangle the rim gives holds its target and has no near cell
-    # strictly inside its circumcircle (Delaunay for all near cells); and where the
-    # triangle of all near cells is the only Delaunay one (no fourth cell on its circle,
-    # target not on an edge) both give the same triangle and value.
+def test_fill_corners_hold_the_same_delaunay_triangles():
+    # The fill triangulates only the near cells on the rim of the seeds (fill_corners).
+    # Checked with exact integer predicates against the Delaunay triangulation of every
+    # near cell (Qhull through scipy.spatial.Delaunay), the way the fill did before: no seed
+    # lies strictly inside the circumcircle of a triangle holding a target, and its corners
+    # are among fill_corners; each triangle of fill_corners holding a target holds it and
+    # has no near cell strictly inside its circumcircle (it is Delaunay for all of them);
+    # the same targets are left outside every triangle; and where the triangle of all near
+    # cells is the only Delaunay one (no fourth cell on its circle, target not on an edge),
+    # fill_holes gives its barycentric value.
     unique = 0
     for seed in range(6):
-        near, target = _lattice_case(seed)
+        scanned, seeds, target, near = _lattice_case(seed)
+        assert lone_patches(scanned).any()
         ncol = near.shape[1]
-        rim = lattice_rim(near)
-        assert rim.sum() < 0.6 * near.sum()
+        corners = fill_corners(seeds, near)
+        assert corners.sum() < 0.5 * near.sum()
         full = _lattice_triangle_at(near, target)
-        part = _lattice_triangle_at(rim, target)
+        part = _lattice_triangle_at(corners, target)
         np.testing.assert_array_equal(full[:, 0] < 0, part[:, 0] < 0)
         ok = full[:, 0] >= 0
         assert ok.mean() > 0.9
-        assert rim.ravel()[full[ok]].all()
+        assert corners.ravel()[full[ok]].all()
         nr, nc = np.nonzero(near)
+        sr, sc = np.nonzero(seeds)
         tr, tc = np.divmod(np.flatnonzero(target.ravel()), ncol)
         z = np.random.default_rng(seed).random(near.shape)
-        got = _linear_on_lattice(near, target, z)
+        g = Grid(0.0, float(near.shape[0]), 1.0, near.shape[0], ncol, "EPSG:25832")
+        filled, _ = fill_holes(Surface(g, np.where(scanned, z, np.nan), scanned.astype(np.int32),
+                                       np.full(g.shape, np.nan), np.zeros(g.shape, bool)), 6.0)
+        np.testing.assert_array_equal(filled.filled[target], ok)
+        got = filled.z[target]
         for i in np.flatnonzero(ok):
+            assert (_incircle(full[i], sc, -sr, ncol) <= 0).all()   # no seed inside
             r, c = np.divmod(part[i], ncol)
             x, y = c.astype(np.int64), -r.astype(np.int64)
             cross = [(x[(e + 1) % 3] - x[e]) * (-tr[i] - y[e]) - (y[(e + 1) % 3] - y[e]) * (tc[i] - x[e])

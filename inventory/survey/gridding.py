@@ -251,9 +251,9 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     """Fill unscanned cells whose nearest scanned cell is at most ``max_distance_m`` away.
 
     Linear interpolation over the Delaunay triangulation of scanned cell centres (scipy
-    ``griddata``; only the rim of the scanned cells near a hole is triangulated, which holds
-    the same triangles: :func:`_linear_on_lattice`); cells outside that triangulation are
-    not extrapolated. Lone patches of scanned cells (:func:`lone_patches`) keep their own
+    ``griddata``; only the scanned cells that can be corners of a triangle holding a hole's
+    cell are triangulated, which holds the same triangles: :func:`fill_corners`); cells
+    outside that triangulation are not extrapolated. Lone patches of scanned cells (:func:`lone_patches`) keep their own
     elevation but are neither corners of the triangulation nor count as data for the
     distance: a gap's value comes from its rim. Gaps that stay empty and are enclosed by
     data (not connected to the grid edge) are reported.
@@ -274,7 +274,7 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
             near = ndimage.binary_dilation(target, iterations=reach) & seeds
             if near.sum() >= 3:
                 try:
-                    zt = _linear_on_lattice(near, target, surface.z)
+                    zt = _linear_on_lattice(fill_corners(seeds, near), target, surface.z)
                 except Exception:  # QhullError: all source cells on one line
                     zt = np.full(int(target.sum()), np.nan)
                 ok = np.isfinite(zt)
@@ -300,37 +300,51 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
 _SMALL_TRIANGLE = 64
 
 
-def lattice_rim(near: np.ndarray) -> np.ndarray:
-    """The cells of ``near`` with at least one of their 4 edge neighbours not in ``near``
-    or off the grid: the only cells that can be corners of a Delaunay triangle of
-    ``near`` holding a lattice point outside it (see :func:`_linear_on_lattice`)."""
+def lattice_rim(cells: np.ndarray) -> np.ndarray:
+    """The ``cells`` with at least one of their 4 edge neighbours not among them or off the
+    grid."""
     from scipy import ndimage
 
-    return near & ~ndimage.binary_erosion(near, border_value=0)
+    return cells & ~ndimage.binary_erosion(cells, border_value=0)
 
 
-def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """Linear interpolation of ``z`` at the ``target`` cells over a Delaunay triangulation
-    of the ``near`` cells, as ``scipy.interpolate.griddata(method="linear")``; ``target``
-    and ``near`` share no cell. Targets outside every triangle get NaN, as from griddata.
+def fill_corners(seeds: np.ndarray, near: np.ndarray) -> np.ndarray:
+    """The cells of ``near`` that can be corners of a Delaunay triangle of ``near`` holding
+    a target of :func:`fill_holes`: those on the rim of the seeds (:func:`lattice_rim`), a
+    fraction of them. A triangulation of these holds the same triangles around the targets.
 
-    Only the rim of ``near`` (:func:`lattice_rim`) is triangulated: the triangles holding
-    a target are the same. Cells are points of the integer lattice. A lattice triangle
-    holding a further lattice point (inside or on an edge) has circumradius R >= 1: four
-    lattice points in a closed disc of radius < 1 are the corners of one unit square, and
-    no three of them hold the fourth. Let v be a corner of such a Delaunay triangle, c
-    its circumcentre, and d the one of v's 4 unit steps within 45 degrees of c - v:
-    |v + d - c|^2 - R^2 = 1 - 2 d.(c - v) <= 1 - sqrt(2) R < 0, so v + d lies strictly
-    inside the circumcircle and cannot be in ``near`` (the empty-circle property): v is a
-    rim cell. Such a triangle, empty of ``near``, is empty of the rim too and Delaunay
-    there. What can differ is the choice among equally Delaunay triangles of cocircular
-    cells (the lattice is full of them, e.g. the two diagonals of a one-cell hole between
-    four scanned neighbours, or the corners of a rectangular gap): Qhull's choice depends
-    on every input point, so a target on such a tie may take the other triangle, as it
-    may between fill windows (:func:`~inventory.survey.fill.fill_windows`).
+    Cells are points of the integer lattice; the targets are the unscanned cells within the
+    fill distance (at least one cell) of a seed, and ``near`` the seeds within ``reach`` (at
+    least one) steps of a target. Let T be a Delaunay triangle of ``near`` holding a target
+    t (inside or on an edge, so strictly inside T's circumcircle). (1) The open circumdisc
+    holds no seed: the grid's lattice points inside an open disc are joined by 4-neighbour
+    paths inside it and the grid (its rows are intervals, nested towards its centre row),
+    and on a path from t to a seed, the cell before the first seed is unscanned (a lone
+    patch touches no seed) and one cell from a seed, hence a target, which puts that seed in
+    ``near``, strictly inside the circumcircle. (2) T has circumradius R >= 1: four lattice
+    points in a closed disc of radius < 1 are the corners of one unit square, and no three
+    of them hold the fourth. (3) From a corner v, the unit step d within 45 degrees of the
+    direction to the circumcentre c ends strictly inside the circle,
+    |v+d-c|^2 - R^2 = 1 - 2 d.(c-v) <= 1 - sqrt(2) R < 0, so v+d is off the grid or no seed
+    by (1): v is a rim cell of the seeds. T, empty of ``near``, is empty of this subset too
+    and Delaunay there, and a target outside every triangle of ``near`` is outside the
+    subset's hull too.
+
+    What can differ is the choice among equally Delaunay triangles of cocircular cells (the
+    lattice is full of them: the two diagonals of a one-cell hole between four scanned
+    neighbours, the corners of a rectangular gap): Qhull makes it from every input point, so
+    a target on such a tie may take the other triangle, as it may between fill windows
+    (:func:`~inventory.survey.fill.fill_windows`).
     """
-    ncol = near.shape[1]
-    corners = _lattice_triangle_at(lattice_rim(near), target)
+    return near & lattice_rim(seeds)
+
+
+def _linear_on_lattice(cells: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Linear interpolation of ``z`` at the ``target`` cells over a Delaunay triangulation
+    of the ``cells``, as ``scipy.interpolate.griddata(method="linear")``; targets outside
+    every triangle get NaN, as from griddata (:func:`_lattice_triangle_at`)."""
+    ncol = cells.shape[1]
+    corners = _lattice_triangle_at(cells, target)
     out = np.full(len(corners), np.nan)
     ok = corners[:, 0] >= 0
     tr, tc = np.divmod(np.flatnonzero(target.ravel())[ok], ncol)
