@@ -116,6 +116,27 @@ def test_lattice_rim_cells():
         np.testing.assert_array_equal(lattice_rim(near), expect)
 
 
+def test_one_cell_hole_takes_either_diagonal():
+    # A one-cell hole between four scanned edge neighbours is the centre of their circle:
+    # both diagonals are Delaunay and the hole lies on either, so its value is the mean of
+    # north and south or of west and east (a cocircular tie), never anything else. Only the
+    # four neighbours and the grid border are triangulated (fill_corners).
+    rng = np.random.default_rng(5)
+    g = Grid(0.0, 9.0, 1.0, 9, 9, "EPSG:25832")
+    for _ in range(5):
+        z = rng.random(g.shape) * 10
+        count = np.ones(g.shape, np.int32)
+        z[4, 4], count[4, 4] = np.nan, 0
+        out, rep = fill_holes(Surface(g, z, count, np.full(g.shape, np.nan), np.zeros(g.shape, bool)), 2.0)
+        assert rep.filled_cells == 1 and out.filled[4, 4]
+        ns, we = (z[3, 4] + z[5, 4]) / 2, (z[4, 3] + z[4, 5]) / 2
+        assert min(abs(out.z[4, 4] - ns), abs(out.z[4, 4] - we)) < 1e-12
+    seeds = count > 0
+    corners = fill_corners(seeds, seeds)
+    inner = corners[1:-1, 1:-1]
+    assert inner.sum() == 4 and inner[2, 3] and inner[4, 3] and inner[3, 2] and inner[3, 4]
+
+
 def _lattice_case(seed: int, size: int = 56) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """``scanned``, ``seeds``, ``target`` and ``near`` as fill_holes builds them (cells of
     1 m, fill distance 6 m) on a random scan: ragged shadows, a wide gap with a lone cell

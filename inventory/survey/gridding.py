@@ -26,6 +26,8 @@ __all__ = [
     "SurfaceAccumulator",
     "FillReport",
     "fill_holes",
+    "fill_corners",
+    "lattice_rim",
     "object_cells",
     "grid_points",
 ]
