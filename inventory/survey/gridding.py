@@ -255,10 +255,11 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     Linear interpolation over the Delaunay triangulation of scanned cell centres (scipy
     ``griddata``; only the scanned cells that can be corners of a triangle holding a hole's
     cell are triangulated, which holds the same triangles: :func:`fill_corners`); cells
-    outside that triangulation are not extrapolated. Lone patches of scanned cells (:func:`lone_patches`) keep their own
-    elevation but are neither corners of the triangulation nor count as data for the
-    distance: a gap's value comes from its rim. Gaps that stay empty and are enclosed by
-    data (not connected to the grid edge) are reported.
+    outside that triangulation are not extrapolated. Lone patches of scanned cells
+    (:func:`lone_patches`) keep their own elevation but are neither corners of the
+    triangulation nor count as data for the distance: a gap's value comes from its rim.
+    Gaps that stay empty and are enclosed by data (not connected to the grid edge) are
+    reported.
     """
     from scipy import ndimage
 
@@ -277,7 +278,7 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
             if near.sum() >= 3:
                 try:
                     zt = _linear_on_lattice(fill_corners(seeds, near), target, surface.z)
-                except Exception:  # QhullError: all source cells on one line
+                except Exception:  # QhullError, ValueError: the corners on one line, or fewer than 3
                     zt = np.full(int(target.sum()), np.nan)
                 ok = np.isfinite(zt)
                 idx = np.flatnonzero(target.ravel())[ok]
