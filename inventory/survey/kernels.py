@@ -18,7 +18,7 @@ not depend on how the rows were split.
 * :func:`cell_lowest`, :func:`envelope_at`: the seeds of the slope envelope's grid and the
   envelope at query points (:class:`inventory.survey.ground._EnvelopeGrid`).
 * :func:`lattice_triangles`: the lattice cells inside large triangles of the hole fill
-  (:func:`inventory.survey.gridding._lattice_triangle_at`).
+  (:func:`inventory.survey.gridding._linear_on_lattice`).
 """
 
 from __future__ import annotations
