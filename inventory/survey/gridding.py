@@ -26,6 +26,8 @@ __all__ = [
     "SurfaceAccumulator",
     "FillReport",
     "fill_holes",
+    "fill_corners",
+    "lattice_rim",
     "object_cells",
     "grid_points",
 ]
@@ -251,11 +253,13 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
     """Fill unscanned cells whose nearest scanned cell is at most ``max_distance_m`` away.
 
     Linear interpolation over the Delaunay triangulation of scanned cell centres (scipy
-    ``griddata``); cells outside that triangulation are not extrapolated. Lone patches of
-    scanned cells (:func:`lone_patches`) keep their own elevation but are neither corners
-    of the triangulation nor count as data for the distance: a gap's value comes from its
-    rim. Gaps that stay empty and are enclosed by data (not connected to the grid edge)
-    are reported.
+    ``griddata``; only the scanned cells that can be corners of a triangle holding a hole's
+    cell are triangulated, which holds the same triangles: :func:`fill_corners`); cells
+    outside that triangulation are not extrapolated. Lone patches of scanned cells
+    (:func:`lone_patches`) keep their own elevation but are neither corners of the
+    triangulation nor count as data for the distance: a gap's value comes from its rim.
+    Gaps that stay empty and are enclosed by data (not connected to the grid edge) are
+    reported.
     """
     from scipy import ndimage
 
@@ -273,8 +277,8 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
             near = ndimage.binary_dilation(target, iterations=reach) & seeds
             if near.sum() >= 3:
                 try:
-                    zt = _linear_on_lattice(near, target, surface.z)
-                except Exception:  # QhullError: all source cells on one line
+                    zt = _linear_on_lattice(fill_corners(seeds, near), target, surface.z)
+                except Exception:  # QhullError, ValueError: the corners on one line, or fewer than 3
                     zt = np.full(int(target.sum()), np.nan)
                 ok = np.isfinite(zt)
                 idx = np.flatnonzero(target.ravel())[ok]
@@ -299,9 +303,72 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
 _SMALL_TRIANGLE = 64
 
 
-def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
+def lattice_rim(cells: np.ndarray) -> np.ndarray:
+    """The ``cells`` with at least one of their 4 edge neighbours not among them or off the
+    grid."""
+    from scipy import ndimage
+
+    return cells & ~ndimage.binary_erosion(cells, border_value=0)
+
+
+def fill_corners(seeds: np.ndarray, near: np.ndarray) -> np.ndarray:
+    """The cells of ``near`` that can be corners of a Delaunay triangle of ``near`` holding
+    a target of :func:`fill_holes`: those on the rim of the seeds (:func:`lattice_rim`), a
+    fraction of them. A triangulation of these holds the same triangles around the targets.
+
+    Cells are points of the integer lattice; the targets are the unscanned cells within the
+    fill distance (at least one cell) of a seed, and ``near`` the seeds within ``reach`` (at
+    least one) steps of a target. Let T be a Delaunay triangle of ``near`` holding a target
+    t (inside or on an edge, so strictly inside T's circumcircle). (1) The open circumdisc
+    holds no seed: the grid's lattice points inside an open disc are joined by 4-neighbour
+    paths inside it and the grid (its rows are intervals, nested towards its centre row),
+    and on a path from t to a seed, the cell before the first seed is unscanned (a lone
+    patch touches no seed) and one cell from a seed, hence a target, which puts that seed in
+    ``near``, strictly inside the circumcircle. (2) T has circumradius R >= 1: four lattice
+    points in a closed disc of radius < 1 are the corners of one unit square, and no three
+    of them hold the fourth. (3) From a corner v, the unit step d within 45 degrees of the
+    direction to the circumcentre c ends strictly inside the circle,
+    |v+d-c|^2 - R^2 = 1 - 2 d.(c-v) <= 1 - sqrt(2) R < 0, so v+d is off the grid or no seed
+    by (1): v is a rim cell of the seeds. T, empty of ``near``, is empty of this subset too
+    and Delaunay there, and a target outside every triangle of ``near`` is outside the
+    subset's hull too.
+
+    What can differ is the choice among equally Delaunay triangles of cocircular cells (the
+    lattice is full of them: the two diagonals of a one-cell hole between four scanned
+    neighbours, the corners of a rectangular gap): Qhull makes it from every input point, so
+    a target on such a tie may take the other triangle, as it may between fill windows
+    (:func:`~inventory.survey.fill.fill_windows`).
+    """
+    return near & lattice_rim(seeds)
+
+
+def _linear_on_lattice(cells: np.ndarray, target: np.ndarray, z: np.ndarray) -> np.ndarray:
     """Linear interpolation of ``z`` at the ``target`` cells over a Delaunay triangulation
-    of the ``near`` cells, as ``scipy.interpolate.griddata(method="linear")``.
+    of the ``cells``, as ``scipy.interpolate.griddata(method="linear")``; targets outside
+    every triangle get NaN, as from griddata (:func:`_lattice_triangle_at`)."""
+    ncol = cells.shape[1]
+    corners = _lattice_triangle_at(cells, target)
+    out = np.full(len(corners), np.nan)
+    ok = corners[:, 0] >= 0
+    tr, tc = np.divmod(np.flatnonzero(target.ravel())[ok], ncol)
+    vr, vc = np.divmod(corners[ok], ncol)
+    px, py = tc.astype(float), -tr.astype(float)
+    vx, vy = vc.astype(float), -vr.astype(float)
+    a, b = vx[:, 0] - vx[:, 2], vx[:, 1] - vx[:, 2]
+    c, d = vy[:, 0] - vy[:, 2], vy[:, 1] - vy[:, 2]
+    det = a * d - b * c
+    dx, dy = px - vx[:, 2], py - vy[:, 2]
+    c0 = (d * dx - b * dy) / det
+    c1 = (a * dy - c * dx) / det
+    zv = z.ravel()[corners[ok]]
+    out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
+    return out
+
+
+def _lattice_triangle_at(cells: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """The corners (flat cell indices, one row per ``target`` cell in row-major order;
+    -1 where none) of the triangle of a Delaunay triangulation of the ``cells`` that holds
+    each target.
 
     Cells are points of the integer lattice (column, -row). Triangulating there, not at
     projected coordinates of 10^5-10^6 m, matters: Qhull then loses no cell as
@@ -309,21 +376,20 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
     without scipy's walk, whose set-up inverts every triangle's matrix (slow; timings in
     CHANGELOG.md): each triangle lists the lattice points of its
     bounding box and keeps the targets inside it by exact integer orientation tests
-    (edges included: the value on a shared edge is the same from both sides). The value
-    is the barycentric sum in the triangle found; targets outside every triangle get NaN,
-    as from griddata.
+    (edges included: the value on a shared edge is the same from both sides).
     """
     from scipy.spatial import Delaunay
 
-    nrow, ncol = near.shape
-    vr, vc = np.divmod(np.flatnonzero(near.ravel()), ncol)
+    nrow, ncol = cells.shape
+    flat = np.flatnonzero(cells.ravel())
+    vr, vc = np.divmod(flat, ncol)
     tri = Delaunay(np.column_stack([vc, -vr]).astype(float))
     simp = tri.simplices
     u, v = vc[simp].astype(np.int64), -vr[simp].astype(np.int64)
     area2 = (u[:, 1] - u[:, 0]) * (v[:, 2] - v[:, 0]) - (v[:, 1] - v[:, 0]) * (u[:, 2] - u[:, 0])
     umin, umax, vmin, vmax = u.min(1), u.max(1), v.min(1), v.max(1)
     nbox = (umax - umin + 1) * (vmax - vmin + 1)
-    found = np.full(near.shape, -1, np.int64)
+    found = np.full(cells.shape, -1, np.int64)
 
     def inside(t: np.ndarray, pu: np.ndarray, pv: np.ndarray) -> np.ndarray:
         sign = np.sign(area2[t])
@@ -357,17 +423,6 @@ def _linear_on_lattice(near: np.ndarray, target: np.ndarray, z: np.ndarray) -> n
         lattice_triangles(big, u, v, area2, umin, umax, vmin, vmax, rc.astype(np.int64), -rr.astype(np.int64),
                           found, 32)
     s = found[target]
-    out = np.full(len(s), np.nan)
-    ok = s >= 0
-    tr, tc = np.divmod(np.flatnonzero(target.ravel()), ncol)
-    px, py = tc[ok].astype(float), -tr[ok].astype(float)
-    vx, vy = u[s[ok]].astype(float), v[s[ok]].astype(float)
-    a, b = vx[:, 0] - vx[:, 2], vx[:, 1] - vx[:, 2]
-    c, d = vy[:, 0] - vy[:, 2], vy[:, 1] - vy[:, 2]
-    det = a * d - b * c
-    dx, dy = px - vx[:, 2], py - vy[:, 2]
-    c0 = (d * dx - b * dy) / det
-    c1 = (a * dy - c * dx) / det
-    zv = z[near][simp[s[ok]]]
-    out[ok] = c0 * zv[:, 0] + c1 * zv[:, 1] + (1.0 - c0 - c1) * zv[:, 2]
+    out = np.full((len(s), 3), -1, np.int64)
+    out[s >= 0] = flat[simp[s[s >= 0]]]
     return out
