@@ -218,7 +218,8 @@ def _read_las(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
 
 
 def _range(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
-    return pts[limits_mask(pts, _ranges(stage.options["limits"]))]
+    keep = limits_mask(pts, _ranges(stage.options["limits"]))
+    return pts if keep.all() else pts[keep]   # no copy of the points when the gate drops none
 
 
 def _outlier(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
