@@ -23,6 +23,8 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
+from typing import Any
+
 import numpy as np
 
 from inventory.errors import PipelineError
@@ -149,7 +151,7 @@ def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray
 
 
 def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2.0,
-                         plan: "np.ndarray | None" = None) -> np.ndarray:
+                         plan: "np.ndarray | None" = None, plan_index: "Any | None" = None) -> np.ndarray:
     """Mask of outliers by statistical outlier removal (Rusu et al. 2008; PDAL semantics).
 
     The mean distance of each point to its ``mean_k`` nearest neighbours (the point itself
@@ -172,6 +174,9 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
         from its row where the row holds them all (most points: see
         :func:`~inventory.survey.kernels.knn3_mean_from_plan`), and searched for the rest.
         The result is the same, bit for bit.
+    plan_index : CellIndex, optional
+        The cell index the table was searched on (its points in that order): the rest are
+        searched on it.
     """
     from inventory.survey.kernels import CellIndex, knn3_mean, knn3_mean_from_plan
 
@@ -187,7 +192,8 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
         mo, short = knn3_mean_from_plan(plan, xo, yo, zo, mean_k)
         rest = np.flatnonzero(short)
         if len(rest):
-            mo[rest] = knn3_mean(CellIndex(xo, yo, k=2 * mean_k), xo, yo, zo, rest, mean_k)
+            index = plan_index if plan_index is not None else CellIndex(xo, yo, k=2 * mean_k)
+            mo[rest] = knn3_mean(index, xo, yo, zo, rest, mean_k)
         mean_d[order] = mo
     else:
         mean_d[order] = knn3_mean(CellIndex(x, y, k=2 * mean_k), x, y, z, order, mean_k)   # back in input order

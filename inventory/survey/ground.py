@@ -157,8 +157,10 @@ class _PlanNeighbours:
         self.x, self.y = x, y
         n = len(x)
         self.nb = None
+        #: the cell index of every point, kept: the subsets' indexes are cut from it
+        self.index = CellIndex(x, y, k=self.K)
         if n >= 2:
-            self.nb = plan_knn(CellIndex(x, y, k=self.K), x, y, min(self.K, n), dist=False)
+            self.nb = plan_knn(self.index, x, y, min(self.K, n), dist=False)
 
     def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None) -> np.ndarray:
         """Numbers (within the subset, int32; -1: fewer members than asked) of each
@@ -171,7 +173,7 @@ class _PlanNeighbours:
         k = min(k, len(idx))
         pos = (np.cumsum(members) - 1).astype(np.int64)
         if k < 2 or self.nb is None or k > self.nb.shape[1]:
-            nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[sel], self.y[sel], max(k, 1), dist=False)
+            nb = plan_knn(self.index.subset(members), self.x[sel], self.y[sel], max(k, 1), dist=False)
             return np.where(nb >= 0, np.take(pos, nb), -1).astype(np.int32)
         if len(idx) == len(members):
             if rows is None:
@@ -182,7 +184,7 @@ class _PlanNeighbours:
         mixed = np.flatnonzero(mixed)
         if len(mixed):
             q = sel[mixed]
-            nb = plan_knn(CellIndex(self.x, self.y, members, k=k), self.x[q], self.y[q], k, dist=False)
+            nb = plan_knn(self.index.subset(members), self.x[q], self.y[q], k, dist=False)
             nn[mixed] = np.take(pos, nb)
         return nn
 
@@ -532,6 +534,7 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
 
     if plan is None:
         plan = _PlanNeighbours(x, y)
+    index = plan.index
     nb = plan.within(use, k2 + 1)[:, 1:]
     # the plan test and the first half of the isolation test, point by point
     plan, deep = below_tests(nb, np.arange(len(idx)), xs, ys, zs, t, params.tolerance, params.overhead_gap, k2)
@@ -545,7 +548,8 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # asked only for the points that pass the plan tests (a few per cent).
     cand = np.flatnonzero(plan | deep)
     if len(cand):
-        d4, _ = plan_knn3(CellIndex(xs, ys, k=8), xs, ys, zs, cand, 4)
+        zf = np.ascontiguousarray(z, dtype=np.float64)
+        d4, _ = plan_knn3(index.subset(use), x, y, zf, idx[cand], 4)
         d4 = d4[:, -1]
         deep[cand] &= d4 > 1.0
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
