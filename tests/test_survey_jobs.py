@@ -11,7 +11,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from inventory._demo.synthetic import make_yard
 from inventory.io.clouds import POINT_DTYPE
+from inventory.model.classes import GROUND
 from inventory.model.grid import Grid
 from inventory.survey.tiles import TileSpill, block_cells_for, job_points, plan_jobs
 
@@ -148,3 +150,28 @@ def test_a_spill_sent_to_a_worker_leaves_its_counts_behind(tmp_path, clustered):
     np.testing.assert_array_equal(job_points(copy, job, 6.0), job_points(spill, job, 6.0))
     with pytest.raises(ValueError, match="block counts"):
         plan_jobs(copy, 6.0, 3000)
+
+
+def test_a_points_class_does_not_depend_on_the_extent_of_its_job():
+    # A job's points start wherever its rectangle and buffer do. The ELM cells and the
+    # classifier's grids lie on whole multiples of their cell, so a few points added 40 m
+    # south-west (beyond every stage's reach, moving the lowest x and y by a fraction of
+    # every cell) change no class of the others.
+    from inventory.survey.clean import elm_low_points
+    from inventory.survey.ground import slope_ground
+
+    yard = make_yard(density=8.0, pad_density=2.0, seed=3)
+    p = yard.points
+    x, y, z = p["X"], p["Y"], p["Z"]
+    far = (np.array([x.min() - 40.37, x.min() - 41.11]), np.array([y.min() - 40.21, y.min() - 40.93]),
+           np.full(2, np.median(z)))
+
+    def classes(x, y, z):
+        low = elm_low_points(x, y, z, 2.0, 1.0)
+        cls = np.where(low, 7, 1).astype(np.uint8)
+        return slope_ground(x, y, z, cls, low)[0]
+
+    alone = classes(x, y, z)
+    with_far = classes(np.r_[x, far[0]], np.r_[y, far[1]], np.r_[z, far[2]])
+    assert (alone == GROUND).sum() > 0.5 * len(z)
+    np.testing.assert_array_equal(with_far[:len(z)], alone)
