@@ -40,10 +40,11 @@ __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileS
 
 #: Points a classification job may hold, its own and its buffer's (estimated from the
 #: counts per block): the unit of memory of the survey step. The classifier needs about
-#: 1 KB per point of a job, so a job of this many points takes about 1 GB while it runs
+#: 1 KB per point of a job, so a job of this many points takes about 0.5 GB while it runs
 #: (one per worker). Larger jobs read fewer points twice (a buffer is a smaller share of
-#: a larger job); a single block is a job whatever its count.
-JOB_POINTS = 1_000_000
+#: a larger job) but cost more per point (larger neighbour grids and sorts), so larger
+#: budgets save little time; a single block is a job whatever its count.
+JOB_POINTS = 500_000
 
 #: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
 #: points are counted per block while they are spilled, and jobs are made of whole blocks.
