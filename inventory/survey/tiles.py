@@ -42,8 +42,8 @@ __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileS
 #: counts per block): the unit of memory of the survey step. The classifier needs about
 #: 1 KB per point of a job, so a job of this many points takes about 0.5 GB while it runs
 #: (one per worker). Larger jobs read fewer points twice (a buffer is a smaller share of
-#: a larger job) but cost more per point (larger neighbour grids and sorts), so larger
-#: budgets save little time; a single block is a job whatever its count.
+#: a larger job), but the classifier takes longer per point in larger jobs, so larger
+#: budgets save little time (CHANGELOG); a single block is a job whatever its count.
 JOB_POINTS = 500_000
 
 #: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
@@ -94,10 +94,6 @@ class TileSpill:
         state["blocks"] = None      # the plan is made where the points were spilled; jobs need no counts
         return state
 
-    def tile_of(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        row, col, inside = self.grid.index(x, y)
-        return (row // self.tc) * self.ntx + (col // self.tc), inside
-
     def path(self, tile: int) -> Path:
         return self.folder / f"tile_{tile}.bin"
 
@@ -126,12 +122,6 @@ class TileSpill:
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int((~inside).sum())
 
-    def box(self, tile: int) -> tuple[float, float, float, float]:
-        ty, tx = divmod(tile, self.ntx)
-        c = self.grid.cell
-        west = self.grid.west + tx * self.tc * c
-        north = self.grid.north - ty * self.tc * c
-        return west, north - self.tc * c, west + self.tc * c, north
 
 
 @dataclass(frozen=True)
