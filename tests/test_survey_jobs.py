@@ -11,9 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from inventory._demo.synthetic import make_yard
 from inventory.io.clouds import POINT_DTYPE
-from inventory.model.classes import GROUND
 from inventory.model.grid import Grid
 from inventory.survey.tiles import TileSpill, block_cells_for, job_points, plan_jobs
 
@@ -86,10 +84,14 @@ def test_plan_covers_every_point_once_within_the_budget(tmp_path, clustered):
     in_heap = [a for (r, c), a in areas.items() if r < 40 and c < 80]
     elsewhere = [a for (r, c), a in areas.items() if r >= 40 or c >= 80]
     assert max(in_heap) < max(elsewhere)
-    # a larger budget makes fewer jobs; no budget makes one job per block holding points
+    # a larger budget makes fewer jobs; no budget makes one job per block holding points;
+    # a budget every tile fits makes the tiles the jobs, each with the tile's whole rectangle
     assert len(plan_jobs(spill, 6.0, 10 * budget)) < len(jobs)
     assert len(plan_jobs(spill, 6.0, 0)) == int((spill.blocks > 0).sum())
-    assert len(plan_jobs(spill, 6.0, len(pts) * 10)) == 1
+    whole = plan_jobs(spill, 6.0, len(pts) * 10)
+    assert [(j.r0 // 40) * spill.ntx + j.c0 // 40 for j in whole] == sorted(spill.counts)
+    assert all(j.r1 - j.r0 == 40 and j.c1 - j.c0 == 40 for j in whole)
+    assert [j.points for j in whole] == [spill.counts[t] for t in sorted(spill.counts)]
 
 
 def test_plan_depends_on_the_counts_alone(tmp_path, clustered):
@@ -151,27 +153,3 @@ def test_a_spill_sent_to_a_worker_leaves_its_counts_behind(tmp_path, clustered):
     with pytest.raises(ValueError, match="block counts"):
         plan_jobs(copy, 6.0, 3000)
 
-
-def test_a_points_class_does_not_depend_on_the_extent_of_its_job():
-    # A job's points start wherever its rectangle and buffer do. The ELM cells and the
-    # classifier's grids lie on whole multiples of their cell, so a few points added 40 m
-    # south-west (beyond every stage's reach, moving the lowest x and y by a fraction of
-    # every cell) change no class of the others.
-    from inventory.survey.clean import elm_low_points
-    from inventory.survey.ground import slope_ground
-
-    yard = make_yard(density=8.0, pad_density=2.0, seed=3)
-    p = yard.points
-    x, y, z = p["X"], p["Y"], p["Z"]
-    far = (np.array([x.min() - 40.37, x.min() - 41.11]), np.array([y.min() - 40.21, y.min() - 40.93]),
-           np.full(2, np.median(z)))
-
-    def classes(x, y, z):
-        low = elm_low_points(x, y, z, 2.0, 1.0)
-        cls = np.where(low, 7, 1).astype(np.uint8)
-        return slope_ground(x, y, z, cls, low)[0]
-
-    alone = classes(x, y, z)
-    with_far = classes(np.r_[x, far[0]], np.r_[y, far[1]], np.r_[z, far[2]])
-    assert (alone == GROUND).sum() > 0.5 * len(z)
-    np.testing.assert_array_equal(with_far[:len(z)], alone)

@@ -185,17 +185,13 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
 
 def elm_low_points(x: np.ndarray, y: np.ndarray, z: np.ndarray, cell: float = 10.0,
                    threshold: float = 1.0) -> np.ndarray:
-    """Mask of low points by the Extended Local Minimum (Chen et al. 2012; PDAL semantics).
-
-    Cell edges lie on whole multiples of ``cell`` (PDAL starts its cells at the points'
-    lowest corner), so that a point's cell does not depend on the points it is given with
-    (a survey job's extent)."""
+    """Mask of low points by the Extended Local Minimum (Chen et al. 2012; PDAL semantics)."""
     n = len(z)
     out = np.zeros(n, bool)
     if n < 2:
         return out
-    col = (np.floor(x / cell) - np.floor(x.min() / cell)).astype(np.int64)
-    row = (np.floor(y / cell) - np.floor(y.min() / cell)).astype(np.int64)
+    col = np.floor((x - x.min()) / cell).astype(np.int64)
+    row = np.floor((y - y.min()) / cell).astype(np.int64)
     key = row * (col.max() + 1) + col
     order = np.lexsort((z, key))
     ks, zs = key[order], z[order]

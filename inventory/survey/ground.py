@@ -78,9 +78,7 @@ class _EnvelopeGrid:
     def __init__(self, x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGroundParams) -> None:
         t = self.t = math.tan(math.radians(params.max_slope_deg))
         c = self.c = params.cell
-        # cell edges on whole multiples of c (a border of one cell), so that the cells do not
-        # depend on the extent of the points given (a survey job's)
-        x0, y0 = self.x0, self.y0 = (math.floor(x.min() / c) - 1) * c, (math.floor(y.min() / c) - 1) * c
+        x0, y0 = self.x0, self.y0 = x.min() - c, y.min() - c
         ncol = self.ncol = int((x.max() - x0) // c) + 2
         nrow = self.nrow = int((y.max() - y0) // c) + 2
         col = ((x - x0) // c).astype(np.int64)
@@ -184,13 +182,10 @@ class _PlanNeighbours:
 
 
 def _region_cells(x: np.ndarray, y: np.ndarray, c: float) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
-    """Row and column of each point on the region rules' grid of cell ``c`` (cell edges on
-    whole multiples of ``c``, numbered from the points' lowest x and y), and the grid's shape.
-
-    Edges on multiples of ``c``, not at the points' lowest corner, keep a point's cell the
-    same whatever points it is classified with (a survey job's extent)."""
-    col = (np.floor(x / c) - math.floor(x.min() / c)).astype(np.int64)
-    row = (np.floor(y / c) - math.floor(y.min() / c)).astype(np.int64)
+    """Row and column of each point on the region rules' grid of cell ``c`` (origin at the
+    points' lowest x and y), and the grid's shape."""
+    col = ((x - x.min()) // c).astype(np.int64)
+    row = ((y - y.min()) // c).astype(np.int64)
     return row, col, (int(row.max()) + 1, int(col.max()) + 1)
 
 
@@ -465,9 +460,8 @@ def _overhead(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, cell: 
     n = len(z)
     if n == 0:
         return np.zeros(0, bool)
-    # columns on whole multiples of cell, as in _region_cells
-    col = (np.floor(x / cell) - math.floor(x.min() / cell)).astype(np.int64)
-    row = (np.floor(y / cell) - math.floor(y.min() / cell)).astype(np.int64)
+    col = np.floor((x - x.min()) / cell).astype(np.int64)
+    row = np.floor((y - y.min()) / cell).astype(np.int64)
     key = row * (col.max() + 1) + col
     order = np.lexsort((z, key))
     ks, zs, hs = key[order], z[order], h[order]

@@ -2,8 +2,8 @@
 
 ``measure_survey(site, date)`` is what ``inventory survey SITE --date D`` runs: it reads and
 places every cloud file of ``surveys/<date>/``, spills the points to disk by tiles of the
-site grid counting them per block, plans classification jobs of whole blocks by those
-counts, cleans and classifies each job with a buffer of neighbouring points through the
+site grid counting them per block, makes each tile a classification job (a tile with
+too many points is cut into jobs of whole blocks by those counts), cleans and classifies each job with a buffer of neighbouring points through the
 pipeline (serially, on threads or on Dask: :mod:`inventory.parallel`), grids each job's
 surface inside the job, takes out surface cells lying on objects, fills holes window by
 window and writes ``surface-<date>.tif``, ``coverage-<date>.tif`` and
@@ -257,8 +257,8 @@ class _Classified:
 def _classify_jobs(ex: Executor, spill: TileSpill, buffer_m: float, job_points: int, pipe: Pipeline,
                    site_crs: CRS, engine: str, statistic: str, classified_path: Path | None, say: Progress,
                    colour: bool = False, extra_dims: tuple[ExtraDim, ...] = ()) -> _Classified:
-    """Plan the jobs (:func:`~inventory.survey.tiles.plan_jobs`, at most ``job_points``
-    points each with their buffer, a single block excepted), classify and grid them
+    """Plan the jobs (:func:`~inventory.survey.tiles.plan_jobs`: the tiles, cut to at most
+    ``job_points`` points each with their buffer, a single block excepted), classify and grid them
     (:func:`~inventory.survey.tiles.run_jobs`) in plan order, writing the classified cloud
     to ``classified_path`` when given (LAS 1.4 point format 7 when ``colour``, else 6, with
     the ``extra_dims`` as extra bytes dimensions); the jobs' cells are saved in the spill
@@ -353,18 +353,17 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
         Overrides ``[survey] pipeline`` and the packaged default.
     engine : "auto" | "pdal" | "builtin"
     tile_size_m : float
-        Edge of the tiles the points are spilled to disk by (one file each). Points are
-        counted per block, the divisor of a tile nearest
-        :data:`~inventory.survey.tiles.BLOCK_M` (a block is a tile when the tile is
-        smaller), and jobs are rectangles of whole blocks.
+        Edge of the tiles the points are spilled to disk by (one file each); each tile is
+        a classification job unless it holds more than ``job_points``. Points are counted
+        per block, the divisor of a tile nearest :data:`~inventory.survey.tiles.BLOCK_M`
+        (a block is a tile when the tile is smaller); a tile is cut into whole blocks.
     buffer_m : float
         The neighbouring points each job sees around its own: points within this distance
         of its rectangle.
     job_points : int
         Points a job may hold with its buffer (:data:`~inventory.survey.tiles.JOB_POINTS`);
-        a block alone is a job whatever its count, so 0 makes every block with points a
-        job. The memory of a running job follows it, the share of points read twice (the
-        buffers) falls as it grows.
+        a tile over it is cut into smaller jobs, a block alone is a job whatever its count,
+        so 0 makes every block with points a job. The memory of a running job follows it.
     chunk_size : int
         Points per read chunk.
     workers, scheduler, threads : optional

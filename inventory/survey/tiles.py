@@ -2,10 +2,10 @@
 
 :class:`TileSpill` keeps one raw file of points per square tile of the grid (edges on cell
 edges) and counts the points of every block (a square of cells, a divisor of the tile)
-as they are spilled. :func:`plan_jobs` cuts the grid into jobs by those counts: a job is a
-rectangle of whole blocks whose points and buffer of neighbouring points fit a budget
-(:data:`JOB_POINTS`), so sparse surveys run a few large jobs (little buffer read twice) and
-dense ones many small jobs (bounded memory). A job (:func:`classify_job`) reads its own
+as they are spilled. :func:`plan_jobs` makes each tile a job, and cuts a tile whose points
+and buffer of neighbouring points exceed a budget (:data:`JOB_POINTS`) into rectangles of
+whole blocks that fit it, so that a dense tile (tens of millions of points of a terrestrial
+scan) does not make one job of unbounded memory. A job (:func:`classify_job`) reads its own
 points and the points within a buffer around it from the tiles it overlaps
 (:func:`job_points`), runs the pipeline, keeps its own points and grids them on its own
 cells (:func:`grid_tile`: a cell lies in one job). :func:`run_jobs` runs the jobs on an
@@ -40,11 +40,10 @@ __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileS
 
 #: Points a classification job may hold, its own and its buffer's (estimated from the
 #: counts per block): the unit of memory of the survey step. The classifier needs about
-#: 1 KB per point of a job, so a job of this many points takes about 0.5 GB while it runs
-#: (one per worker). Larger jobs read fewer points twice (a buffer is a smaller share of
-#: a larger job), but the classifier takes longer per point in larger jobs, so larger
-#: budgets save little time (CHANGELOG); a single block is a job whatever its count.
-JOB_POINTS = 500_000
+#: 1 KB per point of a job, so a job of this many points takes about 1 GB while it runs
+#: (one per worker). A tile over it is cut into smaller jobs; a single block is a job
+#: whatever its count.
+JOB_POINTS = 1_000_000
 
 #: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
 #: points are counted per block while they are spilled, and jobs are made of whole blocks.
@@ -160,13 +159,14 @@ def _ring_weights(lo: int, hi: int, n: int, reach: float) -> tuple[int, int, np.
 def plan_jobs(spill: TileSpill, buffer_m: float, budget: int = JOB_POINTS) -> list[Job]:
     """Cut the spill grid into jobs of whole blocks by the points counted per block.
 
-    Starting from the box of the blocks holding points, a rectangle becomes a job when its
-    points and the points of its buffer (``buffer_m`` around it, counted from the blocks
-    it overlaps, a partly overlapped block pro rata) are at most ``budget``, or when it is
-    one block; otherwise it is shrunk to its blocks holding points, cut across its longer
-    side in the middle and each half judged the same way. Jobs come in the order of that
-    cutting (west before east, north before south at every cut): near jobs follow each
-    other. The plan depends on the counts alone.
+    Each tile holding points, in tile order, is one job when its points and the points of
+    its buffer (``buffer_m`` around it, counted from the blocks it overlaps, a partly
+    overlapped block pro rata) are at most ``budget``. A tile over the budget is cut: a
+    rectangle of blocks is shrunk to its blocks holding points, becomes a job when it fits
+    the budget or is one block, and is otherwise cut across its longer side in the middle,
+    each half judged the same way (west before east, north before south). The plan depends
+    on the counts alone. Tiles are not merged into larger jobs: the classifier takes
+    longer per point in larger jobs, which ate the time saved on buffers (CHANGELOG).
     """
     counts = spill.blocks
     if counts is None:
@@ -178,12 +178,13 @@ def plan_jobs(spill: TileSpill, buffer_m: float, budget: int = JOB_POINTS) -> li
     cum[1:, 1:] = counts.cumsum(0).cumsum(1)
     jobs: list[Job] = []
 
-    def visit(r0: int, c0: int, r1: int, c1: int) -> None:
-        sub = counts[r0:r1, c0:c1]
-        rows, cols = np.flatnonzero(sub.any(axis=1)), np.flatnonzero(sub.any(axis=0))
-        if not len(rows):
-            return
-        r0, r1, c0, c1 = r0 + rows[0], r0 + rows[-1] + 1, c0 + cols[0], c0 + cols[-1] + 1
+    def visit(r0: int, c0: int, r1: int, c1: int, shrink: bool = True) -> None:
+        if shrink:
+            sub = counts[r0:r1, c0:c1]
+            rows, cols = np.flatnonzero(sub.any(axis=1)), np.flatnonzero(sub.any(axis=0))
+            if not len(rows):
+                return
+            r0, r1, c0, c1 = r0 + rows[0], r0 + rows[-1] + 1, c0 + cols[0], c0 + cols[-1] + 1
         own = int(cum[r1, c1] - cum[r0, c1] - cum[r1, c0] + cum[r0, c0])
         a, b, wr = _ring_weights(r0, r1, nby, reach)
         c, d, wc = _ring_weights(c0, c1, nbx, reach)
@@ -200,7 +201,11 @@ def plan_jobs(spill: TileSpill, buffer_m: float, budget: int = JOB_POINTS) -> li
             visit(r0, c0, m, c1)
             visit(m, c0, r1, c1)
 
-    visit(0, 0, nby, nbx)
+    k = spill.tc // bc          # blocks along a tile
+    for tile in sorted(spill.counts):
+        ty, tx = divmod(tile, spill.ntx)
+        # a whole tile that fits is its own job, rectangle and buffer as the tile's
+        visit(ty * k, tx * k, min((ty + 1) * k, nby), min((tx + 1) * k, nbx), shrink=False)
     return jobs
 
 
