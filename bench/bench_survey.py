@@ -13,6 +13,7 @@ Usage::
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
     python bench/bench_survey.py --pipeline bench/surface-only.json   # the step without cleaning
                                                        # and classifier (its floor)
+    python bench/bench_survey.py --job-points 2000000  # classification jobs of another size
 
 Synthetic surveys are stockyards (``inventory._demo.synthetic.make_yard``, piles, machines,
 a gallery, noise) laid side by side, 120 m apart, and written to one LAZ file yard by yard,
@@ -29,8 +30,10 @@ number of points per yard:
 For each survey it prints, measured in the same run:
 
 * the bare decode: ``laspy`` (lazrs backend) reading the file chunk by chunk, points/s;
-* the survey step: ``measure_survey`` end to end (read, place, tile, clean, classify,
-  grid, fill, write the GeoTIFFs and the classified LAZ), points/s and its steps;
+* the survey step: ``measure_survey`` end to end (read, place, tile, plan jobs, clean,
+  classify, grid, fill, write the GeoTIFFs and the classified LAZ), points/s, its steps and
+  the number of classification jobs (``--job-points``: their budget, default
+  ``inventory.survey.tiles.JOB_POINTS``);
 * their ratio (issue 17 target: at most 10, aim 3);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
@@ -225,6 +228,7 @@ def _child(args: argparse.Namespace) -> int:
         n, dt, backend = _decode(files)
         out.update(points=n, seconds=dt, backend=backend)
     else:
+        jobs = {"job_points": args.job_points} if args.job_points is not None else {}
         watch = _WorkerMemory()
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -238,16 +242,16 @@ def _child(args: argparse.Namespace) -> int:
                 t0 = time.perf_counter()
                 try:
                     r = measure_survey(site, date, out_dir=tmp, scheduler=cluster.scheduler_address,
-                                       pipeline=args.pipeline)
+                                       pipeline=args.pipeline, **jobs)
                     dt = time.perf_counter() - t0
                 finally:
                     cluster.close()
             else:
                 t0 = time.perf_counter()
-                r = measure_survey(site, date, out_dir=tmp, pipeline=args.pipeline)
+                r = measure_survey(site, date, out_dir=tmp, pipeline=args.pipeline, **jobs)
                 dt = time.perf_counter() - t0
         out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary(),
-                   children_rss_mb=watch.stop())
+                   children_rss_mb=watch.stop(), jobs=getattr(r, "jobs", 0))
     me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
     out.update(rss_mb=_peak_rss_mb(), cpu_s=me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime)
     print("RESULT " + json.dumps(out), flush=True)
@@ -264,6 +268,8 @@ def _measure(extra: list[str]) -> dict:
 
 
 def _report(label: str, src: list[str], workers: list[int]) -> None:
+    """Decode, then one survey run per entry of ``workers``, each in a fresh process; ``src``
+    names the survey and carries the options every run shares."""
     dec = _measure(["decode", *src])
     n = dec["points"]
     rate_dec = n / dec["seconds"]
@@ -277,7 +283,8 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
         rate = n / run["seconds"]
         steps = ", ".join(f"{k} {v:.1f} s" for k, v in run["timings"].items())
         who = {0: "serial", 1: "1 Dask worker"}.get(w, f"{w} Dask workers")
-        line = (f"  survey step, {who:18s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps})\n"
+        line = (f"  survey step, {who:18s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps}; "
+                f"{run['jobs']} jobs)\n"
                 f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB"
                 f"   CPU {run['cpu_s']:.0f} s")
         if w >= 1:
@@ -311,6 +318,8 @@ def main(argv: list[str] | None = None) -> int:
                          "the square of range (both by default)")
     ap.add_argument("--keep", help="folder where the generated LAZ files are written and kept, and "
                     "reused by later runs (default: a temporary folder, removed)")
+    ap.add_argument("--job-points", type=int, default=None,
+                    help="points a classification job may hold with its buffer (default: the package's JOB_POINTS)")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)
     args, rest = ap.parse_known_args(argv)
@@ -318,6 +327,8 @@ def main(argv: list[str] | None = None) -> int:
         args.workers = args.workers[0]
         return _child(args)
     pipe = ["--pipeline", os.path.abspath(args.pipeline)] if args.pipeline else []
+    if args.job_points is not None:
+        pipe += ["--job-points", str(args.job_points)]
     if args.site:
         src = ["--site", args.site] + (["--date", args.date] if args.date else []) + pipe
         _report(f"{args.site} {args.date or 'latest'}", src, args.workers)

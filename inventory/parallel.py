@@ -1,12 +1,12 @@
-"""Independent jobs (survey tiles, surveys) run serially, on threads, or on a Dask cluster.
+"""Independent jobs (parts of a survey, surveys) run serially, on threads, or on a Dask cluster.
 
-The survey step cuts a survey into tiles that are classified alone
+The survey step cuts a survey into jobs that are classified alone
 (:mod:`inventory.survey.measure`); a month close of many sites runs surveys that share nothing.
 :func:`executor` turns the ``--workers N`` / ``--scheduler ADDRESS`` options into one
 object with a single method, :meth:`Executor.map`, that yields results **in the order of
 the inputs** whatever order they finish in, with at most ``window`` jobs in flight. Equal
 order is what makes serial, threaded and distributed runs write identical files (the
-classified cloud lists points tile by tile, the surface sums are added in the same order);
+classified cloud lists points job by job, the surface sums are added in the same order);
 the window is what bounds memory (finished results wait on the workers only until the
 ones before them are taken).
 
@@ -18,7 +18,7 @@ ones before them are taken).
   with one BLAS/OpenMP thread (``distributed.nanny.pre-spawn-environ``), and each job's
   own parallel loops get the machine's cores shared among the workers (:func:`job_threads`).
 * ``scheduler=ADDRESS``: an existing Dask cluster (``tcp://host:8786``). Jobs and their
-  arguments are pickled to the workers; tile jobs read their points from the spill folder,
+  arguments are pickled to the workers; survey jobs read their points from the spill folder,
   so the workers must see it (same machine, or a shared ``spill_dir``).
 """
 

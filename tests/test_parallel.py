@@ -1,8 +1,8 @@
 """Serial, threaded and distributed survey runs give identical rasters, clouds and volumes.
 
-Issue 8: tiles are classified alone and stitched on the global grid, so how they are run
+Issue 8: jobs are classified alone and stitched on the global grid, so how they are run
 must not change a single number. The distributed run is a real ``dask.distributed``
-LocalCluster of two worker processes (the tiles and the pipeline are pickled to them).
+LocalCluster of two worker processes (the jobs and the pipeline are pickled to them).
 """
 
 from __future__ import annotations
@@ -57,8 +57,9 @@ def small_site(tmp_path_factory):
 def _run(site, out, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        # 40 m tiles: six tiles, so that the runs really split the work
-        return measure_survey(site, DATE, out_dir=out, tile_size_m=40.0, buffer_m=15.0, **kw)
+        # 40 m tiles (20 m blocks), six of them, and jobs of at most 15,000 points with their
+        # buffer, so that the runs really split the work and a tile is cut
+        return measure_survey(site, DATE, out_dir=out, tile_size_m=40.0, buffer_m=15.0, job_points=15_000, **kw)
 
 
 def _volume(result, yard):
@@ -81,7 +82,9 @@ def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
     messages: list[str] = []
     distributed = _run(site, tmp_path / "dask", workers=2, progress=messages.append)
     assert any(m.startswith("reading yard.laz") for m in messages)
-    assert any(m.startswith("classifying: tile 6 of 6") for m in messages)
+    # six tiles, at least one of them over the budget and cut
+    assert serial.jobs == threaded.jobs == distributed.jobs > 6
+    assert any(m.startswith(f"classifying: job {serial.jobs} of {serial.jobs}") for m in messages)
     ref_las = laspy.read(serial.classified_path)
     v0 = _volume(serial, yard)
     assert v0.volume_m3 > 0
@@ -143,8 +146,10 @@ def test_two_surveys_side_by_side_on_two_worker_processes(tmp_path):
     site, dates = _two_survey_site(tmp_path / "site")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        serial = measure_surveys(site, dates, [tmp_path / "serial" / d for d in dates], tile_size_m=40.0)
-        both = measure_surveys(site, dates, [tmp_path / "dask" / d for d in dates], workers=2, tile_size_m=40.0)
+        serial = measure_surveys(site, dates, [tmp_path / "serial" / d for d in dates], tile_size_m=40.0,
+                                 job_points=15_000)
+        both = measure_surveys(site, dates, [tmp_path / "dask" / d for d in dates], workers=2, tile_size_m=40.0,
+                               job_points=15_000)
     assert [r.date for r in both] == dates
     assert not np.array_equal(serial[0].surface.count, serial[1].surface.count)   # two different surveys
     for a, b in zip(serial, both):

@@ -85,7 +85,8 @@ def synthetic(tmp_path_factory):
     out = root / "out"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
-        result = measure_survey(site, DATE, out_dir=out, tile_size_m=40.0, buffer_m=15.0)
+        # 40 m tiles (nine), 20 m blocks, jobs of at most 40,000 points with their buffer
+        result = measure_survey(site, DATE, out_dir=out, tile_size_m=40.0, buffer_m=15.0, job_points=40_000)
     return yard, site, result, out
 
 
@@ -153,6 +154,7 @@ def test_tiling_does_not_change_the_surface(synthetic, tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CoverageWarning)
         one = measure_survey(site, DATE, out_dir=None, tile_size_m=500.0, buffer_m=15.0)
+    assert one.jobs == 1 and result.jobs > 9
     a, b = one.surface, result.surface
     assert a.grid == b.grid
     both = a.scanned & b.scanned

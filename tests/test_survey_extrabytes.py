@@ -157,11 +157,12 @@ def test_serial_threaded_and_dask_runs_write_the_same_extra_dimensions(good_site
     folder = good_site / "surveys" / DATE
     _cloud(folder / "a.laz", [AMPLITUDE, ECHO], seed=3)
     _cloud(folder / "b.laz", [DEVIATION], seed=5, x0=30.0)
-    runs = [_measure(good_site, tmp_path / name, tile_size_m=10.0, buffer_m=5.0, **kw)[0]
+    # 10 m tiles, each a block, and no job budget: one job per tile holding points
+    runs = [_measure(good_site, tmp_path / name, tile_size_m=10.0, buffer_m=5.0, job_points=0, **kw)[0]
             for name, kw in (("serial", {}), ("threads", {"workers": 2, "threads": True}),
                              ("dask", {"workers": 2}))]
     ref = laspy.read(runs[0].classified_path)
-    assert len(ref.points) > 1000
+    assert len(ref.points) > 1000 and runs[0].jobs > 4
     for other in runs[1:]:
         las = laspy.read(other.classified_path)
         assert las.points.array.dtype == ref.points.array.dtype

@@ -2,13 +2,14 @@
 
 ``measure_survey(site, date)`` is what ``inventory survey SITE --date D`` runs: it reads and
 places every cloud file of ``surveys/<date>/``, spills the points to disk by tiles of the
-site grid, cleans and classifies each tile with a buffer of neighbouring points through the
-pipeline (serially, on threads or on Dask: :mod:`inventory.parallel`), grids each tile's
-surface inside its job, takes out surface cells lying on objects, fills holes window by
+site grid counting them per block, makes each tile a classification job (a tile with
+too many points is cut into jobs of whole blocks by those counts), cleans and classifies each job with a buffer of neighbouring points through the
+pipeline (serially, on threads or on Dask: :mod:`inventory.parallel`), grids each job's
+surface inside the job, takes out surface cells lying on objects, fills holes window by
 window and writes ``surface-<date>.tif``, ``coverage-<date>.tif`` and
 ``classified-<date>.laz``.
 
-The steps, tiling, memory and hole filling: docs/surveys.md.
+The steps, tiles and jobs, memory and hole filling: docs/surveys.md.
 """
 
 from __future__ import annotations
@@ -53,13 +54,15 @@ from inventory.survey.gridding import FillReport
 from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
 from inventory.site.control import Registration
 from inventory.survey.placement import ControlPlacement, Placement, survey_placements
-from inventory.survey.tiles import TileSpill, grid_tiles, run_tiles
+from inventory.survey.tiles import JOB_POINTS, TileSpill, block_cells_for, grid_tiles, plan_jobs, run_jobs
 
-__all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M"]
+__all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M", "JOB_POINTS"]
 
-#: Tile edge in metres: 100 m x 100 m holds about 10-50 million scanner points at most.
+#: Edge in metres of the tiles the points are spilled by (one file each); a job reads the
+#: tiles its rectangle and buffer overlap, and blocks (the unit of the job plan, about
+#: :data:`~inventory.survey.tiles.BLOCK_M`) divide a tile.
 DEFAULT_TILE_M = 100.0
-#: Neighbouring points around a tile: wider than the reach of every stage of the default
+#: Neighbouring points around a job: wider than the reach of every stage of the default
 #: pipeline (slope envelope window 12 m, outlier neighbourhoods well under 1 m).
 DEFAULT_BUFFER_M = 15.0
 
@@ -107,6 +110,8 @@ class SurveyResult:
     registration: Registration | None = None
     #: Points dropped by voxel thinning (stage ``inventory.voxel_thin``), not in points_kept.
     points_thinned: int = 0
+    #: Classification jobs the survey was cut into (:func:`~inventory.survey.tiles.plan_jobs`).
+    jobs: int = 0
 
     @property
     def written(self) -> list[Path]:
@@ -237,23 +242,27 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
 
 @dataclass
 class _Classified:
-    """What :func:`_classify_tiles` gave: points per class, points kept, the box of the
-    surface points, and each tile's cells (:class:`~inventory.survey.tiles.TileCells`) in a file."""
+    """What :func:`_classify_jobs` gave: points per class, points kept, the box of the
+    surface points, each job's cells (:class:`~inventory.survey.tiles.TileCells`) in a
+    file, points thinned and the number of jobs."""
 
     counts: dict[int, int]
     kept: int
     ground_box: list[float]
     cell_files: list[Path]
     thinned: int = 0
+    jobs: int = 0
 
 
-def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipeline, site_crs: CRS, engine: str,
-                    statistic: str, classified_path: Path | None, say: Progress,
-                    colour: bool = False, extra_dims: tuple[ExtraDim, ...] = ()) -> _Classified:
-    """Classify and grid every tile (:func:`~inventory.survey.tiles.run_tiles`), in tile
-    order, writing the classified cloud to ``classified_path`` when given (LAS 1.4 point
-    format 7 when ``colour``, else 6, with the ``extra_dims`` as extra bytes dimensions);
-    the tiles' cells are saved in the spill folder."""
+def _classify_jobs(ex: Executor, spill: TileSpill, buffer_m: float, job_points: int, pipe: Pipeline,
+                   site_crs: CRS, engine: str, statistic: str, classified_path: Path | None, say: Progress,
+                   colour: bool = False, extra_dims: tuple[ExtraDim, ...] = ()) -> _Classified:
+    """Plan the jobs (:func:`~inventory.survey.tiles.plan_jobs`: the tiles, cut to at most
+    ``job_points`` points each with their buffer, a single block excepted), classify and grid them
+    (:func:`~inventory.survey.tiles.run_jobs`) in plan order, writing the classified cloud
+    to ``classified_path`` when given (LAS 1.4 point format 7 when ``colour``, else 6, with
+    the ``extra_dims`` as extra bytes dimensions); the jobs' cells are saved in the spill
+    folder."""
     out = _Classified({}, 0, [math.inf, math.inf, -math.inf, -math.inf], [])
     writer = None
     if classified_path is not None:
@@ -261,13 +270,14 @@ def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipel
         writer = CloudWriter(classified_path, crs=site_crs,
                              offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
                              point_format=7 if colour else 6, extra_dims=extra_dims)
-    tiles = sorted(spill.counts)
+    jobs = plan_jobs(spill, buffer_m, job_points)
+    out.jobs = len(jobs)
     total = sum(spill.counts.values())
     done = 0
     t0 = time.perf_counter()
     try:
-        for i, (result, cells, thinned) in enumerate(run_tiles(ex, spill, tiles, buffer_m, pipe, site_crs, engine,
-                                                               statistic)):
+        for i, (result, cells, thinned) in enumerate(run_jobs(ex, spill, jobs, buffer_m, pipe, site_crs, engine,
+                                                              statistic)):
             out.thinned += thinned
             cls = result["Classification"]
             for c, n in zip(*np.unique(cls, return_counts=True)):
@@ -279,11 +289,11 @@ def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipel
                 out.ground_box = [min(box[0], g["X"].min()), min(box[1], g["Y"].min()),
                                   max(box[2], g["X"].max()), max(box[3], g["Y"].max())]
             if cells is not None:
-                out.cell_files.append(cells.save(spill.folder / f"cells_{tiles[i]}.npz"))
+                out.cell_files.append(cells.save(spill.folder / f"cells_{jobs[i].name}.npz"))
             if writer is not None:
                 writer.write(result)
-            done += spill.counts[tiles[i]]
-            say(f"classifying: tile {i + 1} of {len(tiles)}, {_rate(done, total, time.perf_counter() - t0)}")
+            done += jobs[i].points
+            say(f"classifying: job {i + 1} of {len(jobs)}, {_rate(done, total, time.perf_counter() - t0)}")
     except BaseException:
         if writer is not None:
             writer.close(ok=False)
@@ -294,11 +304,11 @@ def _classify_tiles(ex: Executor, spill: TileSpill, buffer_m: float, pipe: Pipel
 
 
 def _grid_surface(spill: TileSpill, classified: _Classified, site: Site, date: str) -> Surface:
-    """The surface grid, unfilled, put together from the tiles' cells.
+    """The surface grid, unfilled, put together from the jobs' cells.
 
     The surface grid covers the surface points only: far returns (ghosts, distant
     buildings) widen the files' header boxes but not the grid. Its origin is snapped to the
-    cell size, so it lines up with every other survey of the site, and its tiles' edges fall
+    cell size, so it lines up with every other survey of the site, and its jobs' edges fall
     on cell edges (what the median statistic needs).
     """
     box = classified.ground_box
@@ -320,7 +330,8 @@ def _write_rasters(surface: Surface, out_dir: "str | Path | None", date: str) ->
 def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
                    progress: Progress | None = None, *, pipeline: "Pipeline | str | Path | None" = None,
                    engine: str = "auto", tile_size_m: float = DEFAULT_TILE_M,
-                   buffer_m: float = DEFAULT_BUFFER_M, chunk_size: int = DEFAULT_CHUNK,
+                   buffer_m: float = DEFAULT_BUFFER_M, job_points: int = JOB_POINTS,
+                   chunk_size: int = DEFAULT_CHUNK,
                    workers: int | None = None, scheduler: str | None = None, threads: bool = False,
                    write_classified: bool = True) -> SurveyResult:
     """Turn one survey's point clouds into a classified cloud and a surface grid.
@@ -341,12 +352,22 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
     pipeline : Pipeline or path, optional
         Overrides ``[survey] pipeline`` and the packaged default.
     engine : "auto" | "pdal" | "builtin"
-    tile_size_m, buffer_m : float
-        Processing tiles and the neighbouring points each tile sees.
+    tile_size_m : float
+        Edge of the tiles the points are spilled to disk by (one file each); each tile is
+        a classification job unless it holds more than ``job_points``. Points are counted
+        per block, the divisor of a tile nearest :data:`~inventory.survey.tiles.BLOCK_M`
+        (a block is a tile when the tile is smaller); a tile is cut into whole blocks.
+    buffer_m : float
+        The neighbouring points each job sees around its own: points within this distance
+        of its rectangle.
+    job_points : int
+        Points a job may hold with its buffer (:data:`~inventory.survey.tiles.JOB_POINTS`);
+        a tile over it is cut into smaller jobs, a block alone is a job whatever its count,
+        so 0 makes every block with points a job. The memory of a running job follows it.
     chunk_size : int
         Points per read chunk.
     workers, scheduler, threads : optional
-        Classify tiles on a local Dask cluster of ``workers`` processes (a pool of
+        Classify jobs on a local Dask cluster of ``workers`` processes (a pool of
         ``workers`` threads with ``threads=True``) or on the Dask cluster at ``scheduler``
         (its workers must see this machine's temporary folder); see
         :mod:`inventory.parallel`. Every way gives the same files.
@@ -373,21 +394,24 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
         raise InputError(ref.folder, too_large, field="extent")
     grid = Grid.snapped(*extent, cell=cell, crs=site.crs)
     tile_cells = max(1, int(round(tile_size_m / cell)))
-    if buffer_m > tile_size_m:
-        raise ValueError("buffer_m must not exceed tile_size_m (only neighbouring tiles are read)")
+    if not buffer_m >= 0:
+        raise ValueError(f"buffer_m must be 0 or more, got {buffer_m}")
+    if job_points < 0:
+        raise ValueError(f"job_points must be 0 or more, got {job_points}")
     classified_path = Path(out_dir) / f"classified-{date}.laz" if out_dir is not None and write_classified else None
 
-    # One executor for the tiles and the fill windows (a local cluster starts while reading).
+    # One executor for the jobs and the fill windows (a local cluster starts while reading).
     with executor(workers, scheduler, threads=threads) as ex:
         tmp = Path(tempfile.mkdtemp(prefix=f"survey-{date}-"))
         try:
-            spill = TileSpill(grid, tile_cells, tmp)
+            spill = TileSpill(grid, tile_cells, tmp, block_cells=block_cells_for(tile_cells, cell))
             read = _read_into_spill(placements, spill, chunk_size, say)
             timings["read"] = time.perf_counter() - t_start
 
             t0 = time.perf_counter()
-            classified = _classify_tiles(ex, spill, buffer_m, pipe, site_crs, used_engine, grid_cfg.statistic,
-                                         classified_path, say, colour=read.colour, extra_dims=read.extra_dims)
+            classified = _classify_jobs(ex, spill, buffer_m, job_points, pipe, site_crs, used_engine,
+                                        grid_cfg.statistic, classified_path, say, colour=read.colour,
+                                        extra_dims=read.extra_dims)
             timings["classify"] = time.perf_counter() - t0
 
             t0 = time.perf_counter()
@@ -412,7 +436,7 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
                         classified.kept, read.outside, fill, [p.path for p in placements], used_engine, timings,
                         read.outside_span, read.in_gap,
                         registration=next((p.registration for p in placements if isinstance(p, ControlPlacement)), None),
-                        points_thinned=classified.thinned)
+                        points_thinned=classified.thinned, jobs=classified.jobs)
 
 
 def _survey_job(site: Site, date: str, out_dir: "str | Path | None",
@@ -432,8 +456,8 @@ def measure_surveys(site: Site, dates: "list[str]", out_dirs: "list[str | Path |
     """Several surveys of a site, each as :func:`measure_survey`, in the order of ``dates``.
 
     Surveys share nothing, so with ``workers`` or ``scheduler`` they run side by side (one
-    survey per worker, its tiles serially within it) on an executor of
-    :mod:`inventory.parallel`; a single survey runs its tiles on the workers instead.
+    survey per worker, its jobs serially within it) on an executor of
+    :mod:`inventory.parallel`; a single survey runs its jobs on the workers instead.
     Either way the files and results are those of serial runs. Warnings raised by a survey
     are raised again here, in the order of ``dates``.
 
@@ -451,7 +475,7 @@ def measure_surveys(site: Site, dates: "list[str]", out_dirs: "list[str | Path |
         As for :func:`measure_survey`.
     **kw
         Other keyword arguments of :func:`measure_survey` (``pipeline``, ``engine``,
-        ``tile_size_m``, ...).
+        ``tile_size_m``, ``job_points``, ...).
     """
     dates = list(dates)
     if len(set(dates)) != len(dates):

@@ -1,11 +1,20 @@
-"""A survey's points spilled by tiles of the site grid, and the job that classifies and grids one tile.
+"""A survey's points spilled by tiles of the site grid, and the jobs that classify and grid them.
 
 :class:`TileSpill` keeps one raw file of points per square tile of the grid (edges on cell
-edges). A tile's job (:func:`classify_tile`) reads the tile and its neighbours' points within
-a buffer (:func:`tile_job`), runs the pipeline, keeps the tile's own points and grids them
-on the tile's own cells (:func:`grid_tile`: a cell lies in one tile). :func:`run_tiles` runs
-the jobs on an :class:`~inventory.parallel.Executor` and gives them back in tile order, and
-:func:`grid_tiles` pastes the tiles' cells into the surface grid.
+edges) and counts the points of every block (a square of cells, a divisor of the tile)
+as they are spilled. :func:`plan_jobs` makes each tile a job, and cuts a tile whose points
+and buffer of neighbouring points exceed a budget (:data:`JOB_POINTS`) into rectangles of
+whole blocks that fit it, so that a dense tile (tens of millions of points of a terrestrial
+scan) does not make one job of unbounded memory. A job (:func:`classify_job`) reads its own
+points and the points within a buffer around it from the tiles it overlaps
+(:func:`job_points`), runs the pipeline, keeps its own points and grids them on its own
+cells (:func:`grid_tile`: a cell lies in one job). :func:`run_jobs` runs the jobs on an
+:class:`~inventory.parallel.Executor` and gives them back in plan order, and
+:func:`grid_tiles` pastes the jobs' cells into the surface grid.
+
+The plan depends on the points alone (their counts per block), never on how the jobs run,
+so serial, threaded and Dask runs classify the same points together and write the same
+files.
 """
 
 from __future__ import annotations
@@ -25,45 +34,85 @@ from inventory.parallel import Executor
 from inventory.survey.gridding import SurfaceAccumulator, object_cells
 from inventory.survey.pipeline import Pipeline
 
-__all__ = ["TILES_IN_FLIGHT", "TileCells", "TileSpill", "classify_tile", "classify_tile_to_file", "grid_tile",
-           "grid_tiles", "run_tiles", "tile_job"]
+__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileSpill", "block_cells_for",
+           "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
+           "run_jobs"]
+
+#: Points a classification job may hold, its own and its buffer's (estimated from the
+#: counts per block): the unit of memory of the survey step. The classifier needs about
+#: 1 KB per point of a job, so a job of this many points takes about 1 GB while it runs
+#: (one per worker). A tile over it is cut into smaller jobs; a single block is a job
+#: whatever its count.
+JOB_POINTS = 1_000_000
+
+#: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
+#: points are counted per block while they are spilled, and jobs are made of whole blocks.
+BLOCK_M = 25.0
+
+
+def block_cells_for(tile_cells: int, cell: float, block_m: float = BLOCK_M) -> int:
+    """Cells along a block's edge: the divisor of ``tile_cells`` nearest ``block_m`` metres
+    (by ratio), so that a block lies in one tile.
+
+    >>> block_cells_for(200, 0.5), block_cells_for(80, 0.5), block_cells_for(101, 0.5)
+    (50, 40, 101)
+    """
+    want = max(block_m / cell, 1.0)
+    divisors = [d for d in range(1, tile_cells + 1) if tile_cells % d == 0]
+    return min(divisors, key=lambda d: (abs(math.log(d / want)), -d))
 
 
 class TileSpill:
-    """Points spilled to one raw file per tile of the grid.
+    """Points spilled to one raw file per tile of the grid, counted per block.
 
     Every record is of :attr:`dtype`: :data:`~inventory.io.clouds.POINT_DTYPE`, followed by a
     column for each extra bytes dimension the survey carries (set before the first
-    :meth:`add`; a survey without extra dimensions spills POINT_DTYPE alone)."""
+    :meth:`add`; a survey without extra dimensions spills POINT_DTYPE alone).
+    :attr:`blocks` holds the points of every block of ``block_cells`` x ``block_cells``
+    cells (default a tile), the input of :func:`plan_jobs`; it stays in the process that
+    spills (a spill sent to a worker leaves it behind)."""
 
-    def __init__(self, grid: Grid, tile_cells: int, folder: Path, dtype: np.dtype = POINT_DTYPE) -> None:
+    def __init__(self, grid: Grid, tile_cells: int, folder: Path, dtype: np.dtype = POINT_DTYPE,
+                 block_cells: int | None = None) -> None:
         self.grid = grid
         self.dtype = np.dtype(dtype)
         self.tc = tile_cells
         self.nty = math.ceil(grid.nrows / tile_cells)
         self.ntx = math.ceil(grid.ncols / tile_cells)
+        self.bc = block_cells or tile_cells
+        if tile_cells % self.bc:
+            raise ValueError(f"a block of {self.bc} cells does not divide a tile of {tile_cells} cells")
+        self.blocks: np.ndarray | None = np.zeros((math.ceil(grid.nrows / self.bc), math.ceil(grid.ncols / self.bc)),
+                                                  np.int64)
         self.folder = folder
         self.counts: dict[int, int] = {}
         self.zmin = math.inf
 
-    def tile_of(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        row, col, inside = self.grid.index(x, y)
-        return (row // self.tc) * self.ntx + (col // self.tc), inside
+    def __getstate__(self) -> dict:
+        state = self.__dict__.copy()
+        state["blocks"] = None      # the plan is made where the points were spilled; jobs need no counts
+        return state
 
     def path(self, tile: int) -> Path:
         return self.folder / f"tile_{tile}.bin"
 
     def add(self, pts: np.ndarray) -> int:
-        """Spill points (of :attr:`dtype`); returns how many fell outside the grid."""
+        """Spill points (of :attr:`dtype`) and count them per block; returns how many fell
+        outside the grid."""
         if pts.dtype != self.dtype:
             raise ValueError(f"points of dtype {pts.dtype} spilled to tiles of dtype {self.dtype}")
-        tile, inside = self.tile_of(pts["X"], pts["Y"])
-        pts, tile = pts[inside], tile[inside]
-        if len(pts):
-            self.zmin = min(self.zmin, float(pts["Z"].min()))
+        row, col, inside = self.grid.index(pts["X"], pts["Y"])
+        pts, row, col = pts[inside], row[inside], col[inside]
+        if not len(pts):
+            return int((~inside).sum())
+        self.zmin = min(self.zmin, float(pts["Z"].min()))
+        nbx = self.blocks.shape[1]
+        self.blocks += np.bincount((row // self.bc) * nbx + col // self.bc,
+                                   minlength=self.blocks.size).reshape(self.blocks.shape)
+        tile = (row // self.tc) * self.ntx + (col // self.tc)
         order = np.argsort(tile, kind="stable")
         pts, tile = pts[order], tile[order]
-        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]]) if len(tile) else np.array([], int)
+        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]])
         ends = np.r_[starts[1:], len(tile)]
         for a, b in zip(starts, ends):
             t = int(tile[a])
@@ -72,68 +121,162 @@ class TileSpill:
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int((~inside).sum())
 
-    def box(self, tile: int) -> tuple[float, float, float, float]:
-        ty, tx = divmod(tile, self.ntx)
-        c = self.grid.cell
-        west = self.grid.west + tx * self.tc * c
-        north = self.grid.north - ty * self.tc * c
-        return west, north - self.tc * c, west + self.tc * c, north
 
-    def neighbours(self, tile: int) -> list[int]:
-        ty, tx = divmod(tile, self.ntx)
-        return [(ty + dy) * self.ntx + tx + dx for dy in (-1, 0, 1) for dx in (-1, 0, 1)
-                if (dy or dx) and 0 <= ty + dy < self.nty and 0 <= tx + dx < self.ntx
-                and ((ty + dy) * self.ntx + tx + dx) in self.counts]
+
+@dataclass(frozen=True)
+class Job:
+    """One classification job: rows ``r0:r1`` and columns ``c0:c1`` of the spill grid (whole
+    blocks, clipped to the grid), the points in those cells (its own) and the estimate of
+    the points in its buffer that :func:`plan_jobs` judged it by."""
+
+    r0: int
+    c0: int
+    r1: int
+    c1: int
+    points: int
+    buffer_points: int
+
+    @property
+    def name(self) -> str:
+        """``<r0>_<c0>``: jobs never overlap, so this names a job's files in the spill folder."""
+        return f"{self.r0}_{self.c0}"
+
+    def holds(self, row: np.ndarray, col: np.ndarray) -> np.ndarray:
+        """Which cells (rows, columns of the spill grid) are the job's own."""
+        return (row >= self.r0) & (row < self.r1) & (col >= self.c0) & (col < self.c1)
+
+
+def _ring_weights(lo: int, hi: int, n: int, reach: float) -> tuple[int, int, np.ndarray]:
+    """Blocks ``a:b`` of an axis of ``n`` blocks around blocks ``lo:hi``, with the share of
+    each within ``reach`` blocks of them (1 inside, the overlap outside)."""
+    w = math.ceil(reach)
+    a, b = max(lo - w, 0), min(hi + w, n)
+    idx = np.arange(a, b)
+    d = np.maximum(lo - idx, idx - (hi - 1))        # blocks away from lo:hi; <= 0 inside
+    return a, b, np.clip(reach - (d - 1), 0.0, 1.0)
+
+
+def plan_jobs(spill: TileSpill, buffer_m: float, budget: int = JOB_POINTS) -> list[Job]:
+    """Cut the spill grid into jobs of whole blocks by the points counted per block.
+
+    Each tile holding points, in tile order, is one job when its points and the points of
+    its buffer (``buffer_m`` around it, counted from the blocks it overlaps, a partly
+    overlapped block pro rata) are at most ``budget``. A tile over the budget is cut: a
+    rectangle of blocks is shrunk to its blocks holding points, becomes a job when it fits
+    the budget or is one block, and is otherwise cut across its longer side in the middle,
+    each half judged the same way (west before east, north before south). The plan depends
+    on the counts alone. Tiles are not merged into larger jobs: the classifier takes
+    longer per point in larger jobs, which ate the time saved on buffers (CHANGELOG).
+    """
+    counts = spill.blocks
+    if counts is None:
+        raise ValueError("plan_jobs needs the spill's block counts (a spill sent to a worker has none)")
+    g, bc = spill.grid, spill.bc
+    reach = buffer_m / (bc * g.cell)
+    nby, nbx = counts.shape
+    cum = np.zeros((nby + 1, nbx + 1), np.int64)
+    cum[1:, 1:] = counts.cumsum(0).cumsum(1)
+    jobs: list[Job] = []
+
+    def visit(r0: int, c0: int, r1: int, c1: int, shrink: bool = True) -> None:
+        if shrink:
+            sub = counts[r0:r1, c0:c1]
+            rows, cols = np.flatnonzero(sub.any(axis=1)), np.flatnonzero(sub.any(axis=0))
+            if not len(rows):
+                return
+            r0, r1, c0, c1 = r0 + rows[0], r0 + rows[-1] + 1, c0 + cols[0], c0 + cols[-1] + 1
+        own = int(cum[r1, c1] - cum[r0, c1] - cum[r1, c0] + cum[r0, c0])
+        a, b, wr = _ring_weights(r0, r1, nby, reach)
+        c, d, wc = _ring_weights(c0, c1, nbx, reach)
+        ring = round(float(wr @ counts[a:b, c:d] @ wc)) - own
+        if own + ring <= budget or (r1 - r0 == 1 and c1 - c0 == 1):
+            jobs.append(Job(int(r0) * bc, int(c0) * bc, min(int(r1) * bc, g.nrows), min(int(c1) * bc, g.ncols),
+                            own, ring))
+        elif c1 - c0 >= r1 - r0:
+            m = c0 + (c1 - c0) // 2
+            visit(r0, c0, r1, m)
+            visit(r0, m, r1, c1)
+        else:
+            m = r0 + (r1 - r0) // 2
+            visit(r0, c0, m, c1)
+            visit(m, c0, r1, c1)
+
+    k = spill.tc // bc          # blocks along a tile
+    for tile in sorted(spill.counts):
+        ty, tx = divmod(tile, spill.ntx)
+        # a whole tile that fits is its own job, rectangle and buffer as the tile's
+        visit(ty * k, tx * k, min((ty + 1) * k, nby), min((tx + 1) * k, nbx), shrink=False)
+    return jobs
 
 
 def _load(path: Path, dtype: np.dtype = POINT_DTYPE) -> np.ndarray:
     return np.fromfile(path, dtype=dtype)
 
 
-#: Points read at a time from a neighbouring tile's spill file (about 60 MB without extra
-#: dimensions).
+#: Points read at a time from a tile's spill file (about 60 MB without extra dimensions).
 _BLOCK = 1_000_000
 
 
-def tile_job(spill: TileSpill, tile: int, buffer_m: float) -> np.ndarray:
-    """A tile's points followed by its neighbours' points within ``buffer_m`` of it.
+def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
+    """A job's own points (those in its cells) followed by the points within ``buffer_m``
+    of its rectangle, each part tile by tile in tile order and in spill order within a tile.
 
-    Neighbouring files are read in blocks of :data:`_BLOCK` points, so a tile never holds
-    its neighbours whole (eight of them inside a large survey).
+    Tile files are read in chunks of :data:`_BLOCK` points, so a job holds its own and its
+    buffer's points and one chunk, never the whole tiles it overlaps.
     """
-    core = _load(spill.path(tile), spill.dtype)
-    x0, y0, x1, y1 = spill.box(tile)
-    extra = []
-    for nb in spill.neighbours(tile):
-        with open(spill.path(nb), "rb") as f:
-            while True:
-                pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
-                if not len(pts):
-                    break
-                m = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
-                    (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
-                extra.append(pts[m])
-    return np.concatenate([core] + extra) if extra else core
+    g, tc = spill.grid, spill.tc
+    c = g.cell
+    x0, x1 = g.west + job.c0 * c, g.west + job.c1 * c
+    y0, y1 = g.north - job.r1 * c, g.north - job.r0 * c
+    rows, cols = g.window(x0 - buffer_m, y0 - buffer_m, x1 + buffer_m, y1 + buffer_m)
+    own, extra = [], []
+    for ty in range(rows.start // tc, (rows.stop - 1) // tc + 1):
+        for tx in range(cols.start // tc, (cols.stop - 1) // tc + 1):
+            tile = ty * spill.ntx + tx
+            if tile not in spill.counts:
+                continue
+            tr0, tc0 = ty * tc, tx * tc
+            inside = job.r0 <= tr0 and tr0 + tc <= job.r1 and job.c0 <= tc0 and tc0 + tc <= job.c1
+            apart = tr0 >= job.r1 or tr0 + tc <= job.r0 or tc0 >= job.c1 or tc0 + tc <= job.c0
+            with open(spill.path(tile), "rb") as f:
+                while True:
+                    pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
+                    if not len(pts):
+                        break
+                    if inside:
+                        own.append(pts)
+                        continue
+                    near = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
+                        (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
+                    if not apart:
+                        mine = job.holds(*g.index(pts["X"], pts["Y"])[:2])
+                        own.append(pts[mine])
+                        near &= ~mine
+                    extra.append(pts[near])
+    parts = own + extra
+    return np.concatenate(parts) if parts else np.zeros(0, spill.dtype)
 
 
-def classify_tile(spill: TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
-                  engine: str, statistic: str) -> tuple[np.ndarray, TileCells | None, int]:
-    """A tile's own points, classified with its neighbours' points around it, its cells
+def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
+                 engine: str, statistic: str) -> tuple[np.ndarray, TileCells | None, int]:
+    """A job's own points, classified with the points of its buffer around them, its cells
     gridded (:func:`grid_tile`), and how many of its own points voxel thinning dropped."""
-    pts = tile_job(spill, tile, buffer_m)
+    pts = job_points(spill, job, buffer_m)
     stats: dict = {}
     out, _ = pipeline.run(pts, crs, engine=engine, stats=stats)
-    own, _ = spill.tile_of(out["X"], out["Y"])
-    out = out[own == tile]
+    row, col, _ = spill.grid.index(out["X"], out["Y"])
+    out = out[job.holds(row, col)]
     txy = stats.get("thinned_xy")
-    thinned = int((spill.tile_of(txy[:, 0], txy[:, 1])[0] == tile).sum()) if txy is not None and len(txy) else 0
+    thinned = 0
+    if txy is not None and len(txy):
+        thinned = int(job.holds(*spill.grid.index(txy[:, 0], txy[:, 1])[:2]).sum())
     return out, grid_tile(spill.grid, out, statistic), thinned
 
 
 @dataclass
 class TileCells:
-    """One tile's cells, rows ``r0:r0 + shape[0]`` and columns ``c0:c0 + shape[1]`` of the
-    spill grid: the surface statistic, count and spread of its surface points (no cell
+    """One job's cells (a tile's, as they once were), rows ``r0:r0 + shape[0]`` and columns
+    ``c0:c0 + shape[1]`` of the spill grid: the surface statistic, count and spread of its surface points (no cell
     taken out for objects), and per cell the highest and lowest surface point and the
     lowest object return (what :func:`~inventory.survey.gridding.object_cells` needs)."""
 
@@ -159,11 +302,11 @@ class TileCells:
 
 
 def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
-    """Grid one classified tile's surface points and object returns (not surface, not
+    """Grid one classified job's own surface points and object returns (not surface, not
     noise) on its cells of the spill grid ``g``; ``None`` when it has neither.
 
-    A cell belongs to one tile (tile edges are cell edges), so a tile's cells are
-    complete: this runs inside the tile's job, on the workers when there are any.
+    A cell belongs to one job (a job is a rectangle of cells), so a job's cells are
+    complete: this runs inside the job, on the workers when there are any.
     """
     cls = pts["Classification"]
     ground = cls == GROUND
@@ -173,7 +316,7 @@ def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
     row, col, _ = g.index(pts["X"], pts["Y"])
     r0, c0 = int(row.min()), int(col.min())
     r1, c1 = int(row.max()) + 1, int(col.max()) + 1
-    # The tile's cells on a grid of unit cells at the origin: cell centres land in the
+    # The job's cells on a grid of unit cells at the origin: cell centres land in the
     # cells already found, whatever the rounding of projected coordinates.
     acc = SurfaceAccumulator(Grid(0.0, 0.0, 1.0, r1 - r0, c1 - c0, g.crs), statistic)
     if ground.any():
@@ -185,51 +328,51 @@ def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
     return TileCells(r0, c0, part.z, part.count, part.sd, top, bottom, low_object)
 
 
-def run_tiles(ex: Executor, spill: TileSpill, tiles: list[int], buffer_m: float, pipe: Pipeline, crs: CRS,
-              engine: str, statistic: str) -> Iterator[tuple[np.ndarray, TileCells | None, int]]:
-    """Classified tiles and their cells (:func:`classify_tile`) in the order of ``tiles``,
+def run_jobs(ex: Executor, spill: TileSpill, jobs: list[Job], buffer_m: float, pipe: Pipeline, crs: CRS,
+             engine: str, statistic: str) -> Iterator[tuple[np.ndarray, TileCells | None, int]]:
+    """Classified jobs and their cells (:func:`classify_job`) in the order of ``jobs``,
     however ``ex`` (an :class:`~inventory.parallel.Executor`) runs them (so that every
     way writes the same classified cloud)."""
     if ex.kind != "dask":
-        yield from ex.map(classify_tile, ((spill, t, buffer_m, pipe, crs, engine, statistic) for t in tiles))
+        yield from ex.map(classify_job, ((spill, j, buffer_m, pipe, crs, engine, statistic) for j in jobs))
         return
-    # Worker processes leave each classified tile in the spill folder and send back its
-    # name and its cells only: no tile of points is pickled through the scheduler. A CRS
-    # travels as WKT. The results are that small, so more tiles may wait finished than
-    # there are workers: a large tile then holds up neither worker.
-    for path, cells, thinned in ex.map(classify_tile_to_file, ((spill, t, buffer_m, pipe, crs.to_wkt(), engine,
-                                                                statistic) for t in tiles),
-                                       window=TILES_IN_FLIGHT * ex.workers):
+    # Worker processes leave each classified job in the spill folder and send back its
+    # name and its cells only: no job's points are pickled through the scheduler. A CRS
+    # travels as WKT. The results are that small, so more jobs may wait finished than
+    # there are workers: a large job then holds up neither worker.
+    for path, cells, thinned in ex.map(classify_job_to_file, ((spill, j, buffer_m, pipe, crs.to_wkt(), engine,
+                                                               statistic) for j in jobs),
+                                       window=JOBS_IN_FLIGHT * ex.workers):
         pts = _load(path, spill.dtype)
         path.unlink()
         yield pts, cells, thinned
 
 
-#: Tiles submitted to each Dask worker and not yet taken back (see :func:`run_tiles`).
-TILES_IN_FLIGHT = 4
+#: Jobs submitted to each Dask worker and not yet taken back (see :func:`run_jobs`).
+JOBS_IN_FLIGHT = 4
 
 
-def classify_tile_to_file(spill: TileSpill, tile: int, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
-                          engine: str, statistic: str) -> tuple[Path, TileCells | None, int]:
-    """:func:`classify_tile` for a worker process: the points go to ``classified_<tile>.bin``
-    in the spill folder, whose path is returned with the tile's cells and thinned count."""
-    out, cells, thinned = classify_tile(spill, tile, buffer_m, pipeline, crs, engine, statistic)
-    path = spill.folder / f"classified_{tile}.bin"
+def classify_job_to_file(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
+                         engine: str, statistic: str) -> tuple[Path, TileCells | None, int]:
+    """:func:`classify_job` for a worker process: the points go to ``classified_<job name>.bin``
+    in the spill folder, whose path is returned with the job's cells and thinned count."""
+    out, cells, thinned = classify_job(spill, job, buffer_m, pipeline, crs, engine, statistic)
+    path = spill.folder / f"classified_{job.name}.bin"
     out.tofile(path)
     return path, cells, thinned
 
 
 def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, date: str) -> Surface:
-    """The surface grid ``sgrid`` put together from the tiles' cells (:class:`TileCells`
-    saved in ``cell_files``, gridded on the spill grid ``g`` by each tile's job).
+    """The surface grid ``sgrid`` put together from the jobs' cells (:class:`TileCells`
+    saved in ``cell_files``, gridded on the spill grid ``g`` by each job).
 
-    ``sgrid`` is ``g`` shifted by whole cells; each tile's block is shifted into it and
+    ``sgrid`` is ``g`` shifted by whole cells; each job's block is shifted into it and
     clipped (object returns beyond the surface's extent have no cell to judge). Memory is
-    the output grid plus one tile's cells, never per-cell sums of the whole survey. The
+    the output grid plus one job's cells, never per-cell sums of the whole survey. The
     highest and lowest surface point and the lowest object return of every cell are kept
     for the whole grid (three grids more), and :func:`~inventory.survey.gridding.object_cells`
     takes out the surface cells that lie on an object over the whole grid at once, so a
-    vehicle or a wall on a tile edge is judged as it would be in one piece.
+    vehicle or a wall on a job's edge is judged as it would be in one piece.
     """
     roff = int(round((g.north - sgrid.north) / g.cell))
     coff = int(round((sgrid.west - g.west) / g.cell))
@@ -254,7 +397,7 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
         z[dst][have] = t.z[src][have]
         count[dst][have] = t.count[src][have]
         sd[dst][have] = t.sd[src][have]
-        # tiles' cell blocks never overlap (tile edges are cell edges)
+        # jobs' cell blocks never overlap (jobs are rectangles of cells that never overlap)
         top[dst], bottom[dst], low_object[dst] = t.top[src], t.bottom[src], t.low_object[src]
     covered = object_cells(count > 0, top, bottom, low_object, sgrid.cell_area)
     del top, bottom, low_object
