@@ -195,3 +195,29 @@ def test_surface_patch_on_an_object_is_emptied():
     acc2 = SurfaceAccumulator(g, "mean")
     acc2.add(np.r_[x[keep], rx], np.r_[y[keep], ry], np.r_[z[keep], np.full(300, 3.0)])
     assert (acc2.result().count[on_roof] > 0).all() and not acc2.object_cells().any()
+
+
+def test_object_cells_in_bands_are_those_of_the_whole_grid():
+    # object_cells judges a large grid in bands of rows with a margin wider than any object
+    # top can reach; the answer must be that of the whole grid at once, also for patches
+    # crossing bands and tops next to a band's edge (a margin of one row fails this)
+    from inventory.survey.gridding import OBJECT_TOP_MAX_M2, object_cells
+
+    rng = np.random.default_rng(5)
+    shape = (400, 90)
+    has = rng.random(shape) < 0.55
+    z = rng.random(shape) * 0.3 + 2.0
+    top, bottom = z + 0.05, z - 0.05
+    low = np.full(shape, np.inf)
+    walls = rng.random(shape) < 0.04
+    low[walls] = rng.choice([0.5, 2.2, 3.0], walls.sum())
+    # a long patch crossing bands, fenced by object returns far below it: too large for a
+    # top, as long as a band's margin holds enough of it
+    has[148:262, 8:14] = False
+    has[150:260, 10:12] = True
+    low[148:262, 8:14] = np.where(has[148:262, 8:14], np.inf, 0.5)
+    area = OBJECT_TOP_MAX_M2 / 6.5               # tops of up to 6 cells: small bands test the margins
+    whole = object_cells(has, top, bottom, low, area, band_rows=10_000)
+    assert whole.sum() > 50 and (whole & ~has).sum() == 0
+    for rows in (7, 16, 33):
+        np.testing.assert_array_equal(object_cells(has, top, bottom, low, area, band_rows=rows), whole)

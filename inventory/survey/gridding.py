@@ -171,7 +171,7 @@ class SurfaceAccumulator:
 
 
 def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
-                 cell_area_m2: float) -> np.ndarray:
+                 cell_area_m2: float, band_rows: int = 1024) -> np.ndarray:
     """Cells whose surface points lie on an object, by the object returns around them.
 
     A laser return cannot come from below an opaque ground surface. So:
@@ -198,11 +198,34 @@ def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_objec
     low_object : float array
         Lowest object return of each cell (+inf where none).
     cell_area_m2 : float
+    band_rows : int
+        The grid is judged in bands of this many rows, each with a margin of rows around
+        it wider than any patch of :data:`OBJECT_TOP_MAX_M2` and its ring can reach (a patch
+        of n cells spans at most n rows), so that the temporary arrays are those of one band,
+        not of the whole grid. A patch that meets both the band and the edge of its margin
+        has more cells in the band than a top may have, so it is judged large, as on the
+        whole grid: the answer is the one of the whole grid at once.
 
     Returns
     -------
     bool array, the shape of ``has``.
     """
+    nrow = has.shape[0]
+    reach = int(OBJECT_TOP_MAX_M2 // cell_area_m2) + 2   # rows a small patch and its ring span
+    if nrow <= band_rows + 2 * reach:
+        return _object_cells(has, top, bottom, low_object, cell_area_m2)
+    out = np.zeros(has.shape, bool)
+    for r0 in range(0, nrow, band_rows):
+        r1 = min(r0 + band_rows, nrow)
+        a, b = max(r0 - reach, 0), min(r1 + reach, nrow)
+        part = _object_cells(has[a:b], top[a:b], bottom[a:b], low_object[a:b], cell_area_m2)
+        out[r0:r1] = part[r0 - a:r1 - a]
+    return out
+
+
+def _object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
+                  cell_area_m2: float) -> np.ndarray:
+    """:func:`object_cells` of one band of rows (or of the whole grid)."""
     from scipy import ndimage
 
     covered = has & (low_object < top + OBJECT_CLEARANCE_M)
