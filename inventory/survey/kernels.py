@@ -900,12 +900,14 @@ def overhead_layers(x, y, z, h, cell, gap):
 
 
 @njit(cache=True, nogil=True)
-def _np_min(a, b):
-    # np.minimum: NaN when either is
+def _np_extreme(a, b, larger):
+    # np.minimum, or np.maximum when ``larger``: NaN when either is
     if a != a:
         return a
     if b != b:
         return b
+    if larger:
+        return b if b > a else a
     return b if b < a else a
 
 
@@ -929,32 +931,32 @@ def chamfer_passes(g, weight):
             r2 = r - 2 if down else r + 2
             if s >= 1:
                 for j in range(ncol):
-                    v = _np_min(g[r, j], g[r1, j] + w1)
+                    v = _np_extreme(g[r, j], g[r1, j] + w1, False)
                     if j >= 1:
-                        v = _np_min(v, g[r1, j - 1] + w2)
+                        v = _np_extreme(v, g[r1, j - 1] + w2, False)
                     if j + 1 < ncol:
-                        v = _np_min(v, g[r1, j + 1] + w2)
+                        v = _np_extreme(v, g[r1, j + 1] + w2, False)
                     if j >= 2:
-                        v = _np_min(v, g[r1, j - 2] + w5)
+                        v = _np_extreme(v, g[r1, j - 2] + w5, False)
                     if j + 2 < ncol:
-                        v = _np_min(v, g[r1, j + 2] + w5)
+                        v = _np_extreme(v, g[r1, j + 2] + w5, False)
                     if s >= 2:
                         if j >= 1:
-                            v = _np_min(v, g[r2, j - 1] + w5)
+                            v = _np_extreme(v, g[r2, j - 1] + w5, False)
                         if j + 1 < ncol:
-                            v = _np_min(v, g[r2, j + 1] + w5)
+                            v = _np_extreme(v, g[r2, j + 1] + w5, False)
                     g[r, j] = v
             m = 0.0
             for j in range(ncol):
                 v = g[r, j] - ramp[j]
-                m = v if j == 0 else _np_min(m, v)
+                m = v if j == 0 else _np_extreme(m, v, False)
                 left[j] = m
             for j in range(ncol - 1, -1, -1):
                 v = g[r, j] + ramp[j]
-                m = v if j == ncol - 1 else _np_min(m, v)
+                m = v if j == ncol - 1 else _np_extreme(m, v, False)
                 right[j] = m
             for j in range(ncol):
-                g[r, j] = _np_min(left[j] + ramp[j], right[j] - ramp[j])
+                g[r, j] = _np_extreme(left[j] + ramp[j], right[j] - ramp[j], False)
 
 
 @njit(cache=True, nogil=True)
@@ -974,16 +976,6 @@ def floor_cells(v, v0, c):
 
 
 @njit(cache=True, nogil=True)
-def _np_max(a, b):
-    # np.maximum: NaN when either is
-    if a != a:
-        return a
-    if b != b:
-        return b
-    return b if b > a else a
-
-
-@njit(cache=True, nogil=True)
 def cell_stats(k, z, sel, size):
     """Over the points with ``sel``, per cell ``k`` of ``size`` cells: count, sum of ``z``
     (added in index order, as ``np.bincount`` adds), lowest and highest ``z`` (inf and -inf
@@ -997,6 +989,6 @@ def cell_stats(k, z, sel, size):
             j = k[i]
             count[j] += 1
             total[j] += z[i]
-            lo[j] = _np_min(lo[j], z[i])
-            hi[j] = _np_max(hi[j], z[i])
+            lo[j] = _np_extreme(lo[j], z[i], False)
+            hi[j] = _np_extreme(hi[j], z[i], True)
     return count, total, lo, hi
