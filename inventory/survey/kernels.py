@@ -576,6 +576,8 @@ def _mean3_from_plan_rows(a, b, nb, x, y, z, k, out, short):
                 continue
             dz = z[q] - z[i]
             d2 = dx * dx + dy * dy + dz * dz
+            # the k nearest so far, as in _knn_rows (written out: a shared helper, even
+            # inlined by numba, made the search more than twice as slow)
             if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
                 m = k - 1
                 while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
