@@ -170,8 +170,9 @@ class SurfaceAccumulator:
                        {"statistic": self.statistic, "object_cells": int(covered.sum())})
 
 
-def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
-                 cell_area_m2: float, band_rows: int = 1024) -> np.ndarray:
+def object_cells(has: np.ndarray, top: "np.ndarray | None", bottom: np.ndarray, low_object: np.ndarray,
+                 cell_area_m2: float, band_rows: int = 1024, near_object: "np.ndarray | None" = None
+                 ) -> np.ndarray:
     """Cells whose surface points lie on an object, by the object returns around them.
 
     A laser return cannot come from below an opaque ground surface. So:
@@ -194,7 +195,8 @@ def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_objec
     has : bool array
         Cells with surface points.
     top, bottom : float arrays
-        Highest and lowest surface point of each cell.
+        Highest and lowest surface point of each cell (``top`` may be None when
+        ``near_object`` is given).
     low_object : float array
         Lowest object return of each cell (+inf where none).
     cell_area_m2 : float
@@ -205,6 +207,9 @@ def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_objec
         not of the whole grid. A patch that meets both the band and the edge of its margin
         has more cells in the band than a top may have, so it is judged large, as on the
         whole grid: the answer is the one of the whole grid at once.
+    near_object : bool array, optional
+        ``low_object < top + OBJECT_CLEARANCE_M`` worked out beforehand (piece by piece, so
+        that the whole grid of ``top`` need not be held).
 
     Returns
     -------
@@ -212,23 +217,26 @@ def object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_objec
     """
     nrow = has.shape[0]
     reach = int(OBJECT_TOP_MAX_M2 // cell_area_m2) + 2   # rows a small patch and its ring span
+    if near_object is None:
+        with np.errstate(invalid="ignore"):
+            near_object = low_object < top + OBJECT_CLEARANCE_M
     if nrow <= band_rows + 2 * reach:
-        return _object_cells(has, top, bottom, low_object, cell_area_m2)
+        return _object_cells(has, near_object, bottom, low_object, cell_area_m2)
     out = np.zeros(has.shape, bool)
     for r0 in range(0, nrow, band_rows):
         r1 = min(r0 + band_rows, nrow)
         a, b = max(r0 - reach, 0), min(r1 + reach, nrow)
-        part = _object_cells(has[a:b], top[a:b], bottom[a:b], low_object[a:b], cell_area_m2)
+        part = _object_cells(has[a:b], near_object[a:b], bottom[a:b], low_object[a:b], cell_area_m2)
         out[r0:r1] = part[r0 - a:r1 - a]
     return out
 
 
-def _object_cells(has: np.ndarray, top: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
+def _object_cells(has: np.ndarray, near_object: np.ndarray, bottom: np.ndarray, low_object: np.ndarray,
                   cell_area_m2: float) -> np.ndarray:
     """:func:`object_cells` of one band of rows (or of the whole grid)."""
     from scipy import ndimage
 
-    covered = has & (low_object < top + OBJECT_CLEARANCE_M)
+    covered = has & near_object
     if not np.isfinite(low_object).any():
         return covered
     labels, n = ndimage.label(has & ~covered, structure=np.ones((3, 3), bool))

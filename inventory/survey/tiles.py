@@ -31,7 +31,7 @@ from inventory.io.clouds import POINT_DTYPE
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
-from inventory.survey.gridding import SurfaceAccumulator, object_cells
+from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, object_cells
 from inventory.survey.pipeline import Pipeline
 
 __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileSpill", "block_cells_for",
@@ -369,17 +369,20 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
     ``sgrid`` is ``g`` shifted by whole cells; each job's block is shifted into it and
     clipped (object returns beyond the surface's extent have no cell to judge). Memory is
     the output grid plus one job's cells, never per-cell sums of the whole survey. The
-    highest and lowest surface point and the lowest object return of every cell are kept
-    for the whole grid (three grids more), and :func:`~inventory.survey.gridding.object_cells`
-    takes out the surface cells that lie on an object over the whole grid at once, so a
-    vehicle or a wall on a job's edge is judged as it would be in one piece.
+    lowest surface point and the lowest object return of every cell are kept for the whole
+    grid (two grids more; the first object rule, an object return less than
+    ``OBJECT_CLEARANCE_M`` above a cell's highest surface point, is judged job by job, cell
+    by cell), and :func:`~inventory.survey.gridding.object_cells` takes out the surface cells
+    that lie on an object over the whole grid, so a vehicle or a wall on a job's edge is
+    judged as it would be in one piece.
     """
     roff = int(round((g.north - sgrid.north) / g.cell))
     coff = int(round((sgrid.west - g.west) / g.cell))
     z = np.full(sgrid.shape, np.nan)
     count = np.zeros(sgrid.shape, np.int32)
     sd = np.full(sgrid.shape, np.nan)
-    top = np.full(sgrid.shape, -np.inf)
+    # the first object rule is judged job by job: no grid of highest points is held
+    near_object = np.zeros(sgrid.shape, bool)
     bottom = np.full(sgrid.shape, np.inf)
     low_object = np.full(sgrid.shape, np.inf)
     for path in cell_files:
@@ -398,9 +401,10 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
         count[dst][have] = t.count[src][have]
         sd[dst][have] = t.sd[src][have]
         # jobs' cell blocks never overlap (jobs are rectangles of cells that never overlap)
-        top[dst], bottom[dst], low_object[dst] = t.top[src], t.bottom[src], t.low_object[src]
-    covered = object_cells(count > 0, top, bottom, low_object, sgrid.cell_area)
-    del top, bottom, low_object
+        bottom[dst], low_object[dst] = t.bottom[src], t.low_object[src]
+        near_object[dst] = t.low_object[src] < t.top[src] + OBJECT_CLEARANCE_M
+    covered = object_cells(count > 0, None, bottom, low_object, sgrid.cell_area, near_object=near_object)
+    del near_object, bottom, low_object
     z[covered] = np.nan
     count[covered] = 0
     sd[covered] = np.nan
