@@ -42,6 +42,7 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.errors import InputError
+from inventory.io._bounds import BoxFromBounds
 from inventory.io.crs import parse_crs
 from inventory.model.pose import ADJUSTED_GPS_OFFSET_S, utc_from_adjusted_gps
 
@@ -197,7 +198,7 @@ def _scale16(values: np.ndarray, limits: tuple[float, float] | None) -> np.ndarr
     return np.clip(out, 0, LAS_16BIT_MAX).astype(np.uint16)
 
 
-class E57Reader:
+class E57Reader(BoxFromBounds):
     """An E57 file open for streaming; use through :func:`inventory.io.clouds.open_cloud`.
 
     Attributes
@@ -329,14 +330,6 @@ class E57Reader:
                              f"no valid point in the file ({self.count:,} point(s), each flagged invalid or not "
                              "a finite number)")
         return lo, hi
-
-    @property
-    def mins(self) -> np.ndarray:
-        return self.bounds[0]
-
-    @property
-    def maxs(self) -> np.ndarray:
-        return self.bounds[1]
 
     # -- points
     def __enter__(self) -> "E57Reader":

@@ -24,6 +24,7 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.errors import InputError
+from inventory.io._bounds import BoxFromBounds
 
 __all__ = ["PlyReader", "PLY_SUFFIXES"]
 
@@ -97,7 +98,7 @@ def _header(path: Path) -> tuple[str, list[_Element], int]:
     return fmt, elements, offset
 
 
-class PlyReader:
+class PlyReader(BoxFromBounds):
     """A PLY file open for streaming; use through :func:`inventory.io.clouds.open_cloud`.
 
     Attributes
@@ -271,14 +272,6 @@ class PlyReader:
     def bounds(self) -> tuple[np.ndarray, np.ndarray]:
         st = self.path.stat()
         return _bounds(str(self.path.resolve()), st.st_mtime_ns, st.st_size, self.chunk_size)
-
-    @property
-    def mins(self) -> np.ndarray:
-        return self.bounds[0]
-
-    @property
-    def maxs(self) -> np.ndarray:
-        return self.bounds[1]
 
 
 def _header_lines(path: Path, offset: int) -> int:

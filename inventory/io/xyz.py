@@ -23,6 +23,7 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.errors import InputError
+from inventory.io._bounds import BoxFromBounds
 
 __all__ = ["TextCloudReader", "TEXT_SUFFIXES"]
 
@@ -42,7 +43,7 @@ def _skip(line: str) -> bool:
     return not s or s.startswith("#") or s.startswith("//")
 
 
-class TextCloudReader:
+class TextCloudReader(BoxFromBounds):
     """A delimited text cloud open for streaming; use through
     :func:`inventory.io.clouds.open_cloud`."""
 
@@ -181,14 +182,6 @@ class TextCloudReader:
     def bounds(self) -> tuple[np.ndarray, np.ndarray]:
         st = self.path.stat()
         return _bounds(str(self.path.resolve()), st.st_mtime_ns, st.st_size, self.chunk_size)
-
-    @property
-    def mins(self) -> np.ndarray:
-        return self.bounds[0]
-
-    @property
-    def maxs(self) -> np.ndarray:
-        return self.bounds[1]
 
 
 def _is_number(word: str) -> bool:
