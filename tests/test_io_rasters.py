@@ -307,3 +307,31 @@ def test_layout_and_units_as_written(tmp_path):
         assert ds.descriptions == ("thickness",)
         assert ds.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG"
 
+
+
+def test_strips_write_every_value_and_refuse_nodata_in_a_late_strip(tmp_path):
+    """Bands are written a strip of TILE rows at a time: every cell of every strip, the
+    last one short, comes back; NaN and inf become nodata; a nodata value in the last strip
+    is refused and no file is left (nothing half-written)."""
+    nrows = 2 * TILE + 37
+    g = Grid(500000.0, 5701000.0, 0.5, nrows, 300, "EPSG:25832")
+    rng = np.random.default_rng(7)
+    z = 100.0 + rng.random(g.shape)
+    z[rng.random(g.shape) < 0.1] = np.nan
+    z[-1, -1] = np.inf
+    path = write_raster(tmp_path / "z.tif", z, g)
+    with rasterio.open(path) as src:
+        back = src.read(1, masked=True)
+    assert np.array_equal(back.mask, ~np.isfinite(z))
+    assert np.array_equal(back.filled(0), np.where(np.isfinite(z), z.astype(np.float32), 0))
+    bad = z.copy()
+    bad[-3, 5] = NODATA
+    with pytest.raises(ValueError, match="nodata value"):
+        write_raster(tmp_path / "bad.tif", bad, g)
+    count = rng.integers(0, 50, g.shape).astype(np.int32)
+    filled = rng.random(g.shape) < 0.2
+    s = Surface(g, z, count, np.full(g.shape, 0.01), filled, "2026-10-31")
+    with rasterio.open(write_coverage(s, tmp_path / "c.tif")) as src:
+        assert src.dtypes == ("int32", "int32")
+        assert np.array_equal(src.read(1), count) and np.array_equal(src.read(2), filled.astype(np.int32))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c.tif", "z.tif"]

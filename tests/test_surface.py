@@ -221,3 +221,23 @@ def test_object_cells_in_bands_are_those_of_the_whole_grid():
     assert whole.sum() > 50 and (whole & ~has).sum() == 0
     for rows in (7, 16, 33):
         np.testing.assert_array_equal(object_cells(has, top, bottom, low, area, band_rows=rows), whole)
+
+
+def test_enclosed_gaps_counts_patches_clear_of_the_edge(monkeypatch):
+    """Empty patches touching the grid's edge are open ground, not gaps; the others are
+    counted (4-connected, as ``scipy.ndimage.label`` joins them by default), in pieces
+    of any size."""
+    from inventory.survey import gridding
+    from inventory.survey.gridding import enclosed_gaps
+
+    empty = np.zeros((12, 15), bool)
+    empty[2:5, 2:6] = True       # 12 cells, enclosed
+    empty[8, 8] = True           # 1 cell, enclosed
+    empty[9, 9] = True           # diagonal to it: a patch of its own, enclosed
+    empty[0:3, 12:15] = True     # touches the edge: not a gap
+    empty[6:11, 0] = True        # on the edge
+    assert enclosed_gaps(empty) == (12 + 1 + 1, 12)
+    monkeypatch.setattr(gridding, "_COUNT_PIECE", 7)
+    assert enclosed_gaps(empty) == (14, 12)
+    assert enclosed_gaps(np.zeros((4, 4), bool)) == (0, 0)
+    assert enclosed_gaps(np.ones((4, 4), bool)) == (0, 0)

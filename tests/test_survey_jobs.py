@@ -153,3 +153,49 @@ def test_a_spill_sent_to_a_worker_leaves_its_counts_behind(tmp_path, clustered):
     with pytest.raises(ValueError, match="block counts"):
         plan_jobs(copy, 6.0, 3000)
 
+
+
+def test_cells_of_several_jobs_make_the_surface_of_one(tmp_path):
+    """``grid_tiles`` reads the jobs' cells twice (object rules, then the surface grid):
+    the surface of two jobs split through a vehicle equals the surface of one job holding
+    every point (heights and counts to the bit), and the vehicle's roof and the ring at its foot are taken out
+    (their surface points lie on an object)."""
+    from inventory.model.classes import GROUND, UNCLASSIFIED
+    from inventory.survey.tiles import grid_tile, grid_tiles
+
+    rng = np.random.default_rng(3)
+    grid = Grid(1000.0, 2030.0, CELL, 60, 80, "EPSG:25832")       # 40 m x 30 m
+    n = 60000
+    pts = np.zeros(n, POINT_DTYPE)
+    pts["X"], pts["Y"] = rng.uniform(1000, 1040, n), rng.uniform(2000, 2030, n)
+    pts["Z"] = 100.0 + 0.02 * rng.standard_normal(n)
+    pts["Classification"] = GROUND
+    # a vehicle 2 m x 4 m across the jobs' edge (x = 1020): its roof 3 m up classed surface
+    box = (np.abs(pts["X"] - 1020.0) < 1.0) & (np.abs(pts["Y"] - 2015.0) < 2.0)
+    pts["Z"][box] = 103.0 + 0.02 * rng.standard_normal(int(box.sum()))
+    # object returns of its sides, and off them (mirrors, steps) at its foot: a ring 0.6 m
+    # wide around the body, from 0.3 m up
+    sx, sy = rng.uniform(1018.4, 1021.6, 20000), rng.uniform(2012.4, 2017.6, 20000)
+    ring = ~((np.abs(sx - 1020.0) < 1.0) & (np.abs(sy - 2015.0) < 2.0))
+    side = np.zeros(int(ring.sum()), POINT_DTYPE)
+    side["X"], side["Y"] = sx[ring], sy[ring]
+    side["Z"] = rng.uniform(100.3, 102.9, len(side))
+    side["Classification"] = UNCLASSIFIED
+    pts = np.concatenate([pts, side])
+    col = grid.index(pts["X"], pts["Y"])[1]
+
+    def save(parts, folder):
+        folder.mkdir()
+        return [grid_tile(grid, p, "mean").save(folder / f"cells_{i}.npz") for i, p in enumerate(parts)]
+
+    one = grid_tiles(grid, save([pts], tmp_path / "one"), grid, "mean", "2026-10-31")
+    two = grid_tiles(grid, save([pts[col < 40], pts[col >= 40]], tmp_path / "two"), grid, "mean", "2026-10-31")
+    assert np.array_equal(one.z, two.z, equal_nan=True) and np.array_equal(one.count, two.count)
+    # the spread is summed about each job's own reference height: equal to rounding
+    np.testing.assert_allclose(one.sd, two.sd, rtol=1e-9, atol=1e-12)
+    assert one.meta["object_cells"] == two.meta["object_cells"]
+    # the roof (the 2 x 6 cells clear of its sides) and the foot ring are out; the pad is not
+    roof = (np.abs(grid.centers()[0] - 1020.0) < 0.75) & (np.abs(grid.centers()[1] - 2015.0) < 1.75)
+    assert roof.sum() == 12 and (one.count[roof] == 0).all()
+    assert one.meta["object_cells"] >= roof.sum() + 20
+    assert (one.count > 0).sum() >= grid.nrows * grid.ncols - 120

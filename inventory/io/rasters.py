@@ -33,6 +33,9 @@ NODATA = -9999.0
 COVERAGE_NODATA = -1
 #: Tile edge of written GeoTIFFs (OGC COG 21-026 asks for multiples of 16; 256 is usual).
 TILE = 256
+#: GDAL block cache (MB) while a raster is written: a strip of tiles at a time needs little,
+#: and GDAL's default (5 % of the machine's memory) would hold a whole large raster.
+_CACHE_MB = 64
 
 
 def write_raster(
@@ -88,7 +91,7 @@ def write_raster(
     from rasterio.errors import CRSError as RioCRSError
 
     path = Path(path)
-    arrays = [np.asarray(bands)] if isinstance(bands, np.ndarray) and np.ndim(bands) == 2 else list(bands)
+    arrays = [bands] if isinstance(bands, np.ndarray) and np.ndim(bands) == 2 else list(bands)
     if not grid.crs:
         raise CRSError(str(path), "the grid has no CRS; a GeoTIFF without one is not written")
     try:
@@ -96,30 +99,37 @@ def write_raster(
     except RioCRSError as err:
         raise CRSError(str(path), f"unknown CRS {grid.crs!r}: {err}") from err
     floating = np.dtype(dtype).kind == "f"
-    out = []
     for band in arrays:
-        arr = np.asarray(band)
-        if arr.shape != grid.shape:
-            raise ValueError(f"array shape {arr.shape} does not match grid {grid.shape}")
-        data = np.isfinite(arr) if floating else np.ones(arr.shape, bool)
-        written = (np.where(data, arr, nodata) if floating else arr).astype(dtype)
-        if np.any(data & (written == np.dtype(dtype).type(nodata))):
-            raise ValueError(f"{path}: data contain the nodata value {nodata}; choose another")
-        out.append(written)
+        if np.shape(band) != grid.shape:
+            raise ValueError(f"array shape {np.shape(band)} does not match grid {grid.shape}")
+    from rasterio.env import Env
     from rasterio.io import MemoryFile
     from rasterio.shutil import copy as copy_dataset
+    from rasterio.windows import Window
 
-    profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(out), dtype=dtype,
-                   crs=grid.crs, transform=grid.transform, nodata=nodata)
+    # Tiled and lightly compressed in memory, written a strip of tiles at a time with a
+    # small block cache: memory is a strip's, not a copy of every band in the file's type.
+    profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(arrays), dtype=dtype,
+                   crs=grid.crs, transform=grid.transform, nodata=nodata, tiled=True, blockxsize=TILE,
+                   blockysize=TILE, compress="DEFLATE", zlevel=1)
     # GDAL's COG driver only copies a finished dataset: build it in memory, then copy it into
     # the layout the COG specification asks for (OGC 21-026).
-    with MemoryFile() as mem:
+    with Env(GDAL_CACHEMAX=_CACHE_MB), MemoryFile() as mem:
         with mem.open(**profile) as ds:
             items = {str(k): str(v) for k, v in (tags or {}).items() if v is not None}
             if items:
                 ds.update_tags(**items)
-            for i, arr in enumerate(out, start=1):
-                ds.write(arr, i)
+            for i, band in enumerate(arrays, start=1):
+                for r0 in range(0, grid.nrows, TILE):
+                    arr = np.asarray(band[r0:r0 + TILE])
+                    data = np.isfinite(arr) if floating else None
+                    written = (np.where(data, arr, nodata) if floating else arr).astype(dtype, copy=False)
+                    bad = written == np.dtype(dtype).type(nodata)
+                    if data is not None:
+                        bad &= data
+                    if bad.any():
+                        raise ValueError(f"{path}: data contain the nodata value {nodata}; choose another")
+                    ds.write(written, i, window=Window(0, r0, grid.ncols, written.shape[0]))
                 if i - 1 < len(descriptions):
                     ds.set_band_description(i, descriptions[i - 1])
                 if i - 1 < len(units) and units[i - 1]:
@@ -150,7 +160,7 @@ def write_coverage(surface: Surface, path: str | Path) -> Path:
 
     Both bands are int32 with nodata :data:`COVERAGE_NODATA`; metadata item ``SURVEY_DATE``.
     """
-    return write_raster(path, [surface.count.astype(np.int32), surface.filled.astype(np.int32)],
+    return write_raster(path, [surface.count, surface.filled],   # int32 a strip at a time
                         surface.grid, nodata=COVERAGE_NODATA, dtype="int32",
                         descriptions=["surface points per cell", "interpolated cell (1) or not (0)"],
                         tags={"SURVEY_DATE": surface.date or None})

@@ -9,7 +9,7 @@ import numpy as np
 
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
-from inventory.survey.gridding import FillReport, fill_holes
+from inventory.survey.gridding import FillReport, enclosed_gaps, fill_holes
 
 __all__ = ["FILL_WINDOW_CELLS", "fill_windows"]
 
@@ -80,12 +80,14 @@ def fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WIN
             surface.z.ravel()[idx] = values
             filled.ravel()[idx] = True
         del fills
-    # Enclosed gaps left empty, on the whole grid: cells with a value count as covered.
-    covered = surface.count.copy()
-    covered[filled] = 1
-    _, gaps = fill_holes(Surface(g, surface.z, covered, surface.sd, filled, surface.date), 0.0)
-    del covered
+    # Enclosed gaps left empty, on the whole grid (as fill_holes finds them, without its
+    # copies of the grid): a cell is empty when it was neither scanned nor filled.
+    empty = ~filled
+    empty &= ~scanned | ~np.isfinite(surface.z)
+    del scanned
+    gap_cells, largest = enclosed_gaps(empty)
+    del empty
     out = Surface(g, surface.z, surface.count, surface.sd, filled, surface.date,
                   dict(surface.meta, max_fill_distance_m=max_distance_m))
-    return out, FillReport(int(filled.sum()), gaps.gap_cells, gaps.gap_area_m2, gaps.largest_gap_m2)
+    return out, FillReport(int(filled.sum()), gap_cells, gap_cells * g.cell_area, largest * g.cell_area)
 

@@ -26,6 +26,7 @@ __all__ = [
     "SurfaceAccumulator",
     "FillReport",
     "fill_holes",
+    "enclosed_gaps",
     "fill_corners",
     "lattice_rim",
     "object_cells",
@@ -315,19 +316,33 @@ def fill_holes(surface: Surface, max_distance_m: float) -> tuple[Surface, FillRe
                 idx = np.flatnonzero(target.ravel())[ok]
                 z.ravel()[idx] = zt[ok]
                 filled.ravel()[idx] = True
-    empty = ~scanned & ~filled
-    labels, n = ndimage.label(empty)
-    gap_cells, largest = 0, 0
-    if n:
-        edge = np.unique(np.r_[labels[0], labels[-1], labels[:, 0], labels[:, -1]])
-        sizes = np.bincount(labels.ravel(), minlength=n + 1)
-        enclosed = np.setdiff1d(np.arange(1, n + 1), edge)
-        if enclosed.size:
-            gap_cells = int(sizes[enclosed].sum())
-            largest = int(sizes[enclosed].max())
+    gap_cells, largest = enclosed_gaps(~scanned & ~filled)
     out = Surface(g, z, surface.count, surface.sd, filled, surface.date,
                   dict(surface.meta, max_fill_distance_m=max_distance_m))
     return out, FillReport(int(filled.sum()), gap_cells, gap_cells * g.cell_area, largest * g.cell_area)
+
+
+#: Cells counted at a time by :func:`enclosed_gaps`.
+_COUNT_PIECE = 1 << 22
+
+
+def enclosed_gaps(empty: np.ndarray) -> tuple[int, int]:
+    """Cells of the ``empty`` patches (4-connected) that do not touch the grid's edge, in all
+    and in the largest such patch: the enclosed gaps of :class:`FillReport`."""
+    from scipy import ndimage
+
+    labels, n = ndimage.label(empty)
+    if not n:
+        return 0, 0
+    edge = np.unique(np.r_[labels[0], labels[-1], labels[:, 0], labels[:, -1]])
+    flat = labels.ravel()
+    sizes = np.zeros(n + 1, np.int64)
+    for a in range(0, len(flat), _COUNT_PIECE):   # bincount takes a 64-bit copy of what it counts
+        sizes += np.bincount(flat[a:a + _COUNT_PIECE], minlength=n + 1)
+    enclosed = np.setdiff1d(np.arange(1, n + 1), edge)
+    if not enclosed.size:
+        return 0, 0
+    return int(sizes[enclosed].sum()), int(sizes[enclosed].max())
 
 
 #: Triangles whose bounding box holds at most this many lattice points list them all.

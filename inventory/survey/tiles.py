@@ -369,45 +369,51 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
     ``sgrid`` is ``g`` shifted by whole cells; each job's block is shifted into it and
     clipped (object returns beyond the surface's extent have no cell to judge). Memory is
     the output grid plus one job's cells, never per-cell sums of the whole survey. The
-    lowest surface point and the lowest object return of every cell are kept for the whole
-    grid (two grids more; the first object rule, an object return less than
-    ``OBJECT_CLEARANCE_M`` above a cell's highest surface point, is judged job by job, cell
-    by cell), and :func:`~inventory.survey.gridding.object_cells` takes out the surface cells
-    that lie on an object over the whole grid, so a vehicle or a wall on a job's edge is
-    judged as it would be in one piece.
+    cells are read twice: first what :func:`~inventory.survey.gridding.object_cells` needs
+    over the whole grid (the lowest surface point and the lowest object return of every
+    cell; the first object rule, an object return less than ``OBJECT_CLEARANCE_M`` above a
+    cell's highest surface point, is judged job by job, cell by cell), so that a vehicle or
+    a wall on a job's edge is judged as it would be in one piece; then, with those grids
+    let go, the surface statistic, count and spread, the cells on objects left empty. The
+    grids of the two reads are never held at once.
     """
     roff = int(round((g.north - sgrid.north) / g.cell))
     coff = int(round((sgrid.west - g.west) / g.cell))
-    z = np.full(sgrid.shape, np.nan)
-    count = np.zeros(sgrid.shape, np.int32)
-    sd = np.full(sgrid.shape, np.nan)
-    # the first object rule is judged job by job: no grid of highest points is held
+
+    def blocks(names: tuple[str, ...]) -> Iterator[tuple[tuple[slice, slice], dict[str, np.ndarray]]]:
+        # each job's block clipped to sgrid: where it goes, and the named arrays of it
+        for path in cell_files:
+            with np.load(path) as f:
+                r0, c0 = int(f["r0"]) - roff, int(f["c0"]) - coff
+                count = f["count"]
+                r1, c1 = r0 + count.shape[0], c0 + count.shape[1]
+                R0, C0 = max(r0, 0), max(c0, 0)
+                R1, C1 = min(r1, sgrid.nrows), min(c1, sgrid.ncols)
+                if R0 >= R1 or C0 >= C1:
+                    continue
+                src = (slice(R0 - r0, R1 - r0), slice(C0 - c0, C1 - c0))
+                yield (slice(R0, R1), slice(C0, C1)), {n: (count if n == "count" else f[n])[src] for n in names}
+
+    # jobs' cell blocks never overlap (jobs are rectangles of cells that never overlap)
+    has = np.zeros(sgrid.shape, bool)
     near_object = np.zeros(sgrid.shape, bool)
     bottom = np.full(sgrid.shape, np.inf)
     low_object = np.full(sgrid.shape, np.inf)
-    for path in cell_files:
-        t = TileCells.load(path)
-        # the block's rows and columns in sgrid, clipped to it
-        r0, c0 = t.r0 - roff, t.c0 - coff
-        r1, c1 = r0 + t.z.shape[0], c0 + t.z.shape[1]
-        R0, C0 = max(r0, 0), max(c0, 0)
-        R1, C1 = min(r1, sgrid.nrows), min(c1, sgrid.ncols)
-        if R0 >= R1 or C0 >= C1:
-            continue
-        src = (slice(R0 - r0, R1 - r0), slice(C0 - c0, C1 - c0))
-        dst = (slice(R0, R1), slice(C0, C1))
-        have = t.count[src] > 0
-        z[dst][have] = t.z[src][have]
-        count[dst][have] = t.count[src][have]
-        sd[dst][have] = t.sd[src][have]
-        # jobs' cell blocks never overlap (jobs are rectangles of cells that never overlap)
-        bottom[dst], low_object[dst] = t.bottom[src], t.low_object[src]
-        near_object[dst] = t.low_object[src] < t.top[src] + OBJECT_CLEARANCE_M
-    covered = object_cells(count > 0, None, bottom, low_object, sgrid.cell_area, near_object=near_object)
-    del near_object, bottom, low_object
-    z[covered] = np.nan
-    count[covered] = 0
-    sd[covered] = np.nan
+    for dst, t in blocks(("count", "top", "bottom", "low_object")):
+        has[dst] = t["count"] > 0
+        bottom[dst], low_object[dst] = t["bottom"], t["low_object"]
+        near_object[dst] = t["low_object"] < t["top"] + OBJECT_CLEARANCE_M
+    covered = object_cells(has, None, bottom, low_object, sgrid.cell_area, near_object=near_object)
+    del has, near_object, bottom, low_object
+
+    z = np.full(sgrid.shape, np.nan)
+    count = np.zeros(sgrid.shape, np.int32)
+    sd = np.full(sgrid.shape, np.nan)
+    for dst, t in blocks(("z", "count", "sd")):
+        have = (t["count"] > 0) & ~covered[dst]
+        z[dst][have] = t["z"][have]
+        count[dst][have] = t["count"][have]
+        sd[dst][have] = t["sd"][have]
     return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date,
                    {"statistic": statistic, "object_cells": int(covered.sum())})
 
