@@ -157,7 +157,8 @@ def encode_part(points: np.ndarray, layout: LasLayout, path: "str | Path",
     compressor.done()
     # the compressor's stream: the offset to its chunk table, the chunks, the table
     buf.seek(0)
-    table = [(int(p), int(b)) for p, b in lazrs.read_chunk_table(buf, vlr)]
+    # (the sequential compressor's done() lists an empty chunk after the last: left out)
+    table = [(int(p), int(b)) for p, b in lazrs.read_chunk_table(buf, vlr) if p or b]
     data = buf.getbuffer()
     total = sum(b for _, b in table)
     path = Path(path)
