@@ -8,9 +8,12 @@ whole blocks that fit it, so that a dense tile (tens of millions of points of a 
 scan) does not make one job of unbounded memory. A job (:func:`classify_job`) reads its own
 points and the points within a buffer around it from the tiles it overlaps
 (:func:`job_points`), runs the pipeline, keeps its own points and grids them on its own
-cells (:func:`grid_tile`: a cell lies in one job). :func:`run_jobs` runs the jobs on an
-:class:`~inventory.parallel.Executor` and gives them back in plan order, and
-:func:`grid_tiles` pastes the jobs' cells into the surface grid.
+cells (:func:`grid_tile`: a cell lies in one job). :func:`classify_job_to_file` finishes a
+job where it runs (its classes counted, its surface box, its cells saved and its points
+compressed into LAZ chunks in the spill folder) and sends back a small :class:`JobResult`;
+:func:`run_jobs` runs the jobs on an :class:`~inventory.parallel.Executor` and gives their
+results back in plan order, and :func:`grid_tiles` pastes the jobs' cells into the surface
+grid.
 
 The plan depends on the points alone (their counts per block), never on how the jobs run,
 so serial, threaded and Dask runs classify the same points together and write the same
