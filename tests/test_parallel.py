@@ -95,6 +95,8 @@ def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
         np.testing.assert_array_equal(a.count, b.count)
         np.testing.assert_array_equal(a.filled, b.filled)
         assert other.class_counts == serial.class_counts and other.points_kept == serial.points_kept
+        # every way appends the jobs' own LAZ chunks in plan order: the same file, byte for byte
+        assert other.classified_path.read_bytes() == serial.classified_path.read_bytes()
         las = laspy.read(other.classified_path)
         for dim in ("X", "Y", "Z", "classification"):
             np.testing.assert_array_equal(np.asarray(las[dim]), np.asarray(ref_las[dim]))

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from pyproj import CRS
 
 from inventory.io.clouds import POINT_DTYPE
 from inventory.model.grid import Grid
@@ -154,7 +155,6 @@ def test_a_spill_sent_to_a_worker_leaves_its_counts_behind(tmp_path, clustered):
         plan_jobs(copy, 6.0, 3000)
 
 
-
 def test_cells_of_several_jobs_make_the_surface_of_one(tmp_path):
     """``grid_tiles`` reads the jobs' cells twice (object rules, then the surface grid):
     the surface of two jobs split through a vehicle equals the surface of one job holding
@@ -199,3 +199,57 @@ def test_cells_of_several_jobs_make_the_surface_of_one(tmp_path):
     assert roof.sum() == 12 and (one.count[roof] == 0).all()
     assert one.meta["object_cells"] >= roof.sum() + 20
     assert (one.count > 0).sum() >= grid.nrows * grid.ncols - 120
+
+
+def test_jobs_compress_their_own_points_into_the_cloud_the_main_process_once_wrote(tmp_path, clustered):
+    """Each job compresses its points into LAZ chunks where it runs and sends back only its
+    counts, surface box and cells (run_jobs); the file put together from the jobs' chunks
+    holds the points, in plan order, that writing every job's classified points in the main
+    process with CloudWriter gave (as the survey step did before)."""
+    import laspy
+
+    from inventory.io.clouds import CloudWriter
+    from inventory.io.lazparts import LasLayout, LazPartWriter
+    from inventory.model.classes import GROUND
+    from inventory.parallel import executor
+    from inventory.survey.pipeline import load_pipeline
+    from inventory.survey.tiles import classify_job, run_jobs
+
+    grid, heap = clustered
+    rng = np.random.default_rng(3)
+    pts = np.r_[_points(rng.uniform(1000, 1100, 30000), rng.uniform(2000, 2060, 30000)), heap]
+    pts["Z"] = 100.0 + rng.normal(0.0, 0.02, len(pts))      # a flat pad, 5 points a square metre and more
+    pts["StationRange"] = np.nan                            # no scanner station: no range gate
+    spill = _spill(tmp_path, pts, grid, tile_cells=40, block_cells=10)
+    jobs = plan_jobs(spill, 6.0, 8000)
+    assert len(jobs) > 3
+    pipe, crs = load_pipeline(None), "EPSG:25832"
+    layout = LasLayout(6, (grid.west, grid.south, 99.0))
+    with executor() as ex, LazPartWriter(tmp_path / "new.laz", crs=crs, layout=layout) as w:
+        results = list(run_jobs(ex, spill, jobs, 6.0, pipe, CRS(crs), "builtin", "mean", layout))
+        for res in results:
+            w.append(res.part)
+    with CloudWriter(tmp_path / "old.laz", crs=crs, offset=layout.offset) as old:
+        for job, res in zip(jobs, results):
+            out, cells, thinned = classify_job(spill, job, 6.0, pipe, crs, "builtin", "mean")
+            old.write(out)
+            cls = out["Classification"]
+            assert res.kept == len(out) and res.thinned == thinned
+            assert res.counts == {int(c): int(n) for c, n in zip(*np.unique(cls, return_counts=True))}
+            g = out[cls == GROUND]
+            if len(g):
+                assert res.ground_box == (g["X"].min(), g["Y"].min(), g["X"].max(), g["Y"].max())
+            else:
+                assert res.ground_box is None
+            if cells is None:
+                assert res.cells is None
+            else:
+                np.testing.assert_array_equal(np.load(res.cells)["z"], cells.z)
+            assert res.part.path.name == f"classified_{job.name}.bin"
+            assert all(n <= 50_000 for n, _ in res.part.chunks)
+    assert sum(r.ground_box is not None for r in results) >= len(jobs) - 1
+    a, b = laspy.read(tmp_path / "old.laz"), laspy.read(tmp_path / "new.laz")
+    assert len(b.points) == sum(r.kept for r in results) == len(pts)    # a flat pad: nothing dropped
+    np.testing.assert_array_equal(a.points.array, b.points.array)
+    np.testing.assert_array_equal(a.header.mins, b.header.mins)
+    np.testing.assert_array_equal(a.header.maxs, b.header.maxs)

@@ -43,7 +43,7 @@ from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter",
-           "ExtraDim", "extra_dims_of", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
+           "ExtraDim", "extra_dims_of", "las_header", "las_record", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
            "read_cloud", "write_cloud", "read_crs", "empty_points", "has_colour", "sidecar_crs"]
 
 #: File endings of LAS, LAZ and COPC (which ends in .copc.laz) files.
@@ -459,6 +459,51 @@ def read_cloud(path: "str | Path", **kw: object) -> tuple[np.ndarray, CRS | None
         return (np.concatenate(parts) if parts else empty_points(0, getattr(cloud, "extra_dims", ()))), cloud.crs
 
 
+def las_header(*, crs: "CRS | str | None", offset: tuple[float, float, float], scale: float = WRITE_SCALE,
+               point_format: int = 6, extra_dims: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> laspy.LasHeader:
+    """The LAS 1.4 header the classified cloud and :class:`CloudWriter` write: point format
+    ``point_format``, coordinates stored at ``scale`` from ``offset``, our generating software
+    and system identifier, the CRS as a record (when given) and the ``extra_dims`` as extra
+    bytes dimensions."""
+    header = laspy.LasHeader(point_format=point_format, version="1.4")
+    header.scales = np.array([scale] * 3)
+    header.offsets = np.asarray(offset, float)
+    header.generating_software = GENERATING_SOFTWARE
+    header.system_identifier = SYSTEM_IDENTIFIER
+    if crs is not None:
+        header.add_crs(parse_crs(crs))
+    if extra_dims:
+        header.add_extra_dims([d.params() for d in extra_dims])
+    return header
+
+
+def las_record(points: np.ndarray, header: laspy.LasHeader,
+               extra_dims: "tuple[ExtraDim, ...] | list[ExtraDim]" = ()) -> laspy.ScaleAwarePointRecord:
+    """Points (:data:`POINT_DTYPE` and the columns of ``extra_dims``) as a laspy record of
+    ``header``'s point format, scales and offsets: the dimensions of :data:`_LAS_FIELDS` as
+    they are, the scan angle in steps of :data:`SCAN_ANGLE_STEP` (format 6 and up) or whole
+    degrees, and each extra dimension's column as stored (its fill value where the points
+    lack the column)."""
+    rec = laspy.ScaleAwarePointRecord.zeros(len(points), header=header)
+    rec.x, rec.y, rec.z = points["X"], points["Y"], points["Z"]
+    names = set(header.point_format.dimension_names)
+    for dim, attr in _LAS_FIELDS.items():
+        if dim in points.dtype.names and attr in names:
+            rec[attr] = points[dim]
+    if "ScanAngleRank" in points.dtype.names:
+        angle = points["ScanAngleRank"].astype(np.float64)
+        if "scan_angle" in names:
+            rec["scan_angle"] = np.round(angle / SCAN_ANGLE_STEP).astype(np.int16)
+        elif "scan_angle_rank" in names:
+            rec["scan_angle_rank"] = np.round(angle).astype(np.int8)
+    for d in extra_dims:
+        if d.column in points.dtype.names:
+            rec.array[d.name] = points[d.column]
+        elif d.fill.any():
+            rec.array[d.name] = d.fill if d.count > 1 else d.fill[0]
+    return rec
+
+
 class CloudWriter:
     """Write points to a LAZ (or LAS) file chunk by chunk, LAS 1.4 point format 6 (7 to keep
     colour), with the ``extra_dims`` given as extra bytes dimensions (their columns of the
@@ -476,16 +521,8 @@ class CloudWriter:
         self.path = Path(path)
         self.extra_dims = tuple(extra_dims)
         self.path.parent.mkdir(parents=True, exist_ok=True)
-        header = laspy.LasHeader(point_format=point_format, version="1.4")
-        header.scales = np.array([scale] * 3)
-        header.offsets = np.asarray(offset, float)
-        header.generating_software = GENERATING_SOFTWARE
-        header.system_identifier = SYSTEM_IDENTIFIER
-        if crs is not None:
-            header.add_crs(parse_crs(crs))
-        if self.extra_dims:
-            header.add_extra_dims([d.params() for d in self.extra_dims])
-        self.header = header
+        self.header = las_header(crs=crs, offset=offset, scale=scale, point_format=point_format,
+                                 extra_dims=self.extra_dims)
         compress = self.path.suffix.lower() == ".laz"
         # The file is written chunk by chunk across calls, so the atomic_path block is
         # entered here and left in close(): leaving it cleanly renames the file into place,
@@ -493,7 +530,7 @@ class CloudWriter:
         self._target = atomic_path(self.path)
         self._tmp = self._target.__enter__()
         try:
-            self._writer = laspy.open(self._tmp, mode="w", header=header, do_compress=compress)
+            self._writer = laspy.open(self._tmp, mode="w", header=self.header, do_compress=compress)
         except BaseException as err:
             self._target.__exit__(type(err), err, err.__traceback__)
             raise
@@ -503,23 +540,7 @@ class CloudWriter:
         """Append a :data:`POINT_DTYPE` array."""
         if len(points) == 0:
             return
-        rec = laspy.ScaleAwarePointRecord.zeros(len(points), header=self.header)
-        rec.x, rec.y, rec.z = points["X"], points["Y"], points["Z"]
-        names = set(self.header.point_format.dimension_names)
-        for dim, attr in _LAS_FIELDS.items():
-            if dim in points.dtype.names and attr in names:
-                rec[attr] = points[dim]
-        if "ScanAngleRank" in points.dtype.names:
-            angle = points["ScanAngleRank"].astype(np.float64)
-            if "scan_angle" in names:
-                rec["scan_angle"] = np.round(angle / SCAN_ANGLE_STEP).astype(np.int16)
-            elif "scan_angle_rank" in names:
-                rec["scan_angle_rank"] = np.round(angle).astype(np.int8)
-        for d in self.extra_dims:
-            if d.column in points.dtype.names:
-                rec.array[d.name] = points[d.column]
-            elif d.fill.any():
-                rec.array[d.name] = d.fill if d.count > 1 else d.fill[0]
+        rec = las_record(points, self.header, self.extra_dims)
         self._writer.write_points(rec)
         self.written += len(points)
 

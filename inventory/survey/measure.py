@@ -34,7 +34,8 @@ from inventory.errors import (
     PipelineError,
     RunError,
 )
-from inventory.io.clouds import DEFAULT_CHUNK, CloudWriter, ExtraDim, conform_points, merge_extra_dims, points_dtype
+from inventory.io.clouds import DEFAULT_CHUNK, ExtraDim, conform_points, merge_extra_dims, points_dtype
+from inventory.io.lazparts import LasLayout, LazPartWriter
 from inventory.io.crs import TransformerCache, horizontal_unit_factor, parse_crs
 from inventory.io.rasters import write_coverage, write_surface
 from inventory.model.classes import (
@@ -261,37 +262,41 @@ def _classify_jobs(ex: Executor, spill: TileSpill, buffer_m: float, job_points: 
     ``job_points`` points each with their buffer, a single block excepted), classify and grid them
     (:func:`~inventory.survey.tiles.run_jobs`) in plan order, writing the classified cloud
     to ``classified_path`` when given (LAS 1.4 point format 7 when ``colour``, else 6, with
-    the ``extra_dims`` as extra bytes dimensions); the jobs' cells are saved in the spill
-    folder."""
+    the ``extra_dims`` as extra bytes dimensions).
+
+    Each job counts its classes, takes its surface box, saves its cells and compresses its
+    points into LAZ chunks where it runs (on the workers when there are any); this process
+    adds up the counts and appends each job's chunks to the file
+    (:class:`~inventory.io.lazparts.LazPartWriter`), in plan order."""
     out = _Classified({}, 0, [math.inf, math.inf, -math.inf, -math.inf], [])
-    writer = None
+    writer = layout = None
     if classified_path is not None:
         grid = spill.grid
-        writer = CloudWriter(classified_path, crs=site_crs,
-                             offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
-                             point_format=7 if colour else 6, extra_dims=extra_dims)
+        layout = LasLayout(point_format=7 if colour else 6,
+                           offset=(grid.west, grid.south, math.floor(spill.zmin) if spill.counts else 0.0),
+                           extra_dims=tuple(extra_dims))
+        writer = LazPartWriter(classified_path, crs=site_crs, layout=layout)
     jobs = plan_jobs(spill, buffer_m, job_points)
     out.jobs = len(jobs)
     total = sum(spill.counts.values())
     done = 0
     t0 = time.perf_counter()
     try:
-        for i, (result, cells, thinned) in enumerate(run_jobs(ex, spill, jobs, buffer_m, pipe, site_crs, engine,
-                                                              statistic)):
-            out.thinned += thinned
-            cls = result["Classification"]
-            for c, n in zip(*np.unique(cls, return_counts=True)):
-                out.counts[int(c)] = out.counts.get(int(c), 0) + int(n)
-            out.kept += len(result)
-            g = result[cls == GROUND]
-            if len(g):
-                box = out.ground_box
-                out.ground_box = [min(box[0], g["X"].min()), min(box[1], g["Y"].min()),
-                                  max(box[2], g["X"].max()), max(box[3], g["Y"].max())]
-            if cells is not None:
-                out.cell_files.append(cells.save(spill.folder / f"cells_{jobs[i].name}.npz"))
-            if writer is not None:
-                writer.write(result)
+        for i, res in enumerate(run_jobs(ex, spill, jobs, buffer_m, pipe, site_crs, engine, statistic, layout)):
+            out.thinned += res.thinned
+            for c, n in res.counts.items():
+                out.counts[c] = out.counts.get(c, 0) + n
+            out.kept += res.kept
+            if res.ground_box is not None:
+                box, g = out.ground_box, res.ground_box
+                out.ground_box = [min(box[0], g[0]), min(box[1], g[1]), max(box[2], g[2]), max(box[3], g[3])]
+            if res.cells is not None:
+                out.cell_files.append(res.cells)
+            if res.part is not None:
+                if writer is not None:
+                    writer.append(res.part)
+                if res.part.path is not None:
+                    res.part.path.unlink()
             done += jobs[i].points
             say(f"classifying: job {i + 1} of {len(jobs)}, {_rate(done, total, time.perf_counter() - t0)}")
     except BaseException:

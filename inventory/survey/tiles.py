@@ -8,9 +8,12 @@ whole blocks that fit it, so that a dense tile (tens of millions of points of a 
 scan) does not make one job of unbounded memory. A job (:func:`classify_job`) reads its own
 points and the points within a buffer around it from the tiles it overlaps
 (:func:`job_points`), runs the pipeline, keeps its own points and grids them on its own
-cells (:func:`grid_tile`: a cell lies in one job). :func:`run_jobs` runs the jobs on an
-:class:`~inventory.parallel.Executor` and gives them back in plan order, and
-:func:`grid_tiles` pastes the jobs' cells into the surface grid.
+cells (:func:`grid_tile`: a cell lies in one job). :func:`classify_job_to_file` finishes a
+job where it runs (its classes counted, its surface box, its cells saved and its points
+compressed into LAZ chunks in the spill folder) and sends back a small :class:`JobResult`;
+:func:`run_jobs` runs the jobs on an :class:`~inventory.parallel.Executor` and gives their
+results back in plan order, and :func:`grid_tiles` pastes the jobs' cells into the surface
+grid.
 
 The plan depends on the points alone (their counts per block), never on how the jobs run,
 so serial, threaded and Dask runs classify the same points together and write the same
@@ -28,13 +31,14 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.io.clouds import POINT_DTYPE
+from inventory.io.lazparts import LasLayout, LazPart, encode_part
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
 from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, object_cells
 from inventory.survey.pipeline import Pipeline
 
-__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileSpill", "block_cells_for",
+__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "TileCells", "TileSpill", "block_cells_for",
            "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
            "run_jobs"]
 
@@ -209,10 +213,6 @@ def plan_jobs(spill: TileSpill, buffer_m: float, budget: int = JOB_POINTS) -> li
     return jobs
 
 
-def _load(path: Path, dtype: np.dtype = POINT_DTYPE) -> np.ndarray:
-    return np.fromfile(path, dtype=dtype)
-
-
 #: Points read at a time from a tile's spill file (about 60 MB without extra dimensions).
 _BLOCK = 1_000_000
 
@@ -328,38 +328,78 @@ def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
     return TileCells(r0, c0, part.z, part.count, part.sd, top, bottom, low_object)
 
 
+@dataclass
+class JobResult:
+    """What a classified job (:func:`classify_job_to_file`) sends back: small things only.
+
+    Attributes
+    ----------
+    kept : int
+        The job's own points after the pipeline.
+    counts : dict[int, int]
+        Its points per ASPRS class.
+    ground_box : tuple of float or None
+        x min, y min, x max, y max of its surface points (``None`` when it has none).
+    cells : Path or None
+        Its cells (:class:`TileCells`) saved in the spill folder, ``None`` when it has
+        neither surface points nor object returns.
+    thinned : int
+        Its own points voxel thinning dropped.
+    part : LazPart or None
+        Its points compressed into complete LAZ chunks in the spill folder, with the header
+        statistics of them (:func:`~inventory.io.lazparts.encode_part`), when a classified
+        cloud is written.
+    """
+
+    kept: int
+    counts: dict[int, int]
+    ground_box: tuple[float, float, float, float] | None
+    cells: Path | None
+    thinned: int
+    part: LazPart | None = None
+
+
 def run_jobs(ex: Executor, spill: TileSpill, jobs: list[Job], buffer_m: float, pipe: Pipeline, crs: CRS,
-             engine: str, statistic: str) -> Iterator[tuple[np.ndarray, TileCells | None, int]]:
-    """Classified jobs and their cells (:func:`classify_job`) in the order of ``jobs``,
-    however ``ex`` (an :class:`~inventory.parallel.Executor`) runs them (so that every
-    way writes the same classified cloud)."""
-    if ex.kind != "dask":
-        yield from ex.map(classify_job, ((spill, j, buffer_m, pipe, crs, engine, statistic) for j in jobs))
-        return
-    # Worker processes leave each classified job in the spill folder and send back its
-    # name and its cells only: no job's points are pickled through the scheduler. A CRS
-    # travels as WKT. The results are that small, so more jobs may wait finished than
-    # there are workers: a large job then holds up neither worker.
-    for path, cells, thinned in ex.map(classify_job_to_file, ((spill, j, buffer_m, pipe, crs.to_wkt(), engine,
-                                                               statistic) for j in jobs),
-                                       window=JOBS_IN_FLIGHT * ex.workers):
-        pts = _load(path, spill.dtype)
-        path.unlink()
-        yield pts, cells, thinned
+             engine: str, statistic: str, layout: LasLayout | None = None) -> Iterator[JobResult]:
+    """Classified jobs (:func:`classify_job_to_file`) in the order of ``jobs``, however
+    ``ex`` (an :class:`~inventory.parallel.Executor`) runs them.
+
+    Every way runs the same job function, which leaves the job's cells and, with a
+    ``layout``, its points compressed in LAZ chunks in the spill folder and sends back a
+    :class:`JobResult`: no job's points travel back, and the process that writes the
+    classified cloud only appends the chunks in plan order (so that every way writes the
+    same file). A CRS travels to worker processes as WKT. The results are that small, so
+    more jobs may wait finished than there are workers: a large job then holds up neither
+    worker.
+    """
+    wkt = crs.to_wkt() if ex.kind == "dask" else crs
+    yield from ex.map(classify_job_to_file, ((spill, j, buffer_m, pipe, wkt, engine, statistic, layout)
+                                             for j in jobs), window=JOBS_IN_FLIGHT * max(ex.workers, 1))
 
 
-#: Jobs submitted to each Dask worker and not yet taken back (see :func:`run_jobs`).
+#: Jobs submitted to each worker and not yet taken back (see :func:`run_jobs`).
 JOBS_IN_FLIGHT = 4
 
 
 def classify_job_to_file(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
-                         engine: str, statistic: str) -> tuple[Path, TileCells | None, int]:
-    """:func:`classify_job` for a worker process: the points go to ``classified_<job name>.bin``
-    in the spill folder, whose path is returned with the job's cells and thinned count."""
+                         engine: str, statistic: str, layout: LasLayout | None = None) -> JobResult:
+    """:func:`classify_job`, finished where it runs: the points counted per class, the box of
+    the surface points taken, the cells saved to ``cells_<job name>.npz`` and, with a
+    ``layout``, the points compressed to ``classified_<job name>.bin`` (complete LAZ chunks,
+    :func:`~inventory.io.lazparts.encode_part`), all in the spill folder."""
     out, cells, thinned = classify_job(spill, job, buffer_m, pipeline, crs, engine, statistic)
-    path = spill.folder / f"classified_{job.name}.bin"
-    out.tofile(path)
-    return path, cells, thinned
+    cls = out["Classification"]
+    counts = {int(c): int(n) for c, n in zip(*np.unique(cls, return_counts=True))}
+    g = out[cls == GROUND]
+    box = None
+    if len(g):
+        box = (float(g["X"].min()), float(g["Y"].min()), float(g["X"].max()), float(g["Y"].max()))
+    del g
+    cells_path = cells.save(spill.folder / f"cells_{job.name}.npz") if cells is not None else None
+    part = None
+    if layout is not None:
+        part = encode_part(out, layout, spill.folder / f"classified_{job.name}.bin")
+    return JobResult(len(out), counts, box, cells_path, thinned, part)
 
 
 def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, date: str) -> Surface:
