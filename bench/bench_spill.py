@@ -25,15 +25,15 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_survey import DATE, _site  # noqa: E402
+from bench_survey import DATE, _site
 
-from inventory.io.crs import TransformerCache  # noqa: E402
-from inventory.model.grid import Grid  # noqa: E402
-from inventory.site.extent import grid_size_problem  # noqa: E402
-from inventory.survey.measure import (DEFAULT_BUFFER_M, DEFAULT_TILE_M, _extent, _read_into_spill,  # noqa: E402
+from inventory.io.crs import TransformerCache
+from inventory.model.grid import Grid
+from inventory.site.extent import grid_size_problem
+from inventory.survey.measure import (DEFAULT_BUFFER_M, DEFAULT_TILE_M, _extent, _read_into_spill,
                                       _site_crs)
-from inventory.survey.placement import survey_placements  # noqa: E402
-from inventory.survey.tiles import JOB_POINTS, TileSpill, block_cells_for, job_points, plan_jobs  # noqa: E402
+from inventory.survey.placement import survey_placements
+from inventory.survey.tiles import JOB_POINTS, TileSpill, block_cells_for, job_points, plan_jobs
 
 
 def one_run(path: Path, digest: bool) -> dict:

@@ -33,6 +33,7 @@ from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
 from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, object_cells
 from inventory.survey.pipeline import Pipeline
+from inventory.survey.spillkernels import scatter_rows, split_rows, tile_keys
 
 __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "TileCells", "TileSpill", "block_cells_for",
            "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
@@ -98,29 +99,40 @@ class TileSpill:
 
     def add(self, pts: np.ndarray) -> int:
         """Spill points (of :attr:`dtype`) and count them per block; returns how many fell
-        outside the grid."""
+        outside the grid.
+
+        Each tile's points are appended to its file in their order in ``pts``; the records
+        are grouped by a compiled counting sort of their tiles that moves each as one row of
+        bytes (:mod:`inventory.survey.spillkernels`)."""
         if pts.dtype != self.dtype:
             raise ValueError(f"points of dtype {pts.dtype} spilled to tiles of dtype {self.dtype}")
-        row, col, inside = self.grid.index(pts["X"], pts["Y"])
-        pts, row, col = pts[inside], row[inside], col[inside]
-        if not len(pts):
-            return int((~inside).sum())
-        self.zmin = min(self.zmin, float(pts["Z"].min()))
-        nbx = self.blocks.shape[1]
-        self.blocks += np.bincount((row // self.bc) * nbx + col // self.bc,
-                                   minlength=self.blocks.size).reshape(self.blocks.shape)
-        tile = (row // self.tc) * self.ntx + (col // self.tc)
-        order = np.argsort(tile, kind="stable")
-        pts, tile = pts[order], tile[order]
-        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]])
-        ends = np.r_[starts[1:], len(tile)]
-        for a, b in zip(starts, ends):
-            t = int(tile[a])
+        g = self.grid
+        tile_counts = np.zeros(self.nty * self.ntx, np.int64)
+        key, outside = tile_keys(pts["X"], pts["Y"], float(g.west), float(g.north), float(g.cell), g.nrows, g.ncols,
+                                 self.tc, self.ntx, self.bc, self.blocks.shape[1], tile_counts,
+                                 self.blocks.reshape(-1))
+        if outside == len(pts):
+            return int(outside)
+        z = pts["Z"] if not outside else pts["Z"][key >= 0]
+        self.zmin = min(self.zmin, float(z.min()))
+        starts = np.zeros_like(tile_counts)
+        np.cumsum(tile_counts[:-1], out=starts[1:])
+        rows = _byte_rows(pts)
+        out = np.empty((len(pts) - outside, rows.shape[1]), np.uint8)
+        scatter_rows(rows, key, starts, out)
+        for t in np.flatnonzero(tile_counts):
+            a, b = starts[t], starts[t] + tile_counts[t]
+            t = int(t)
             with open(self.path(t), "ab") as f:
-                pts[a:b].tofile(f)
+                out[a:b].tofile(f)
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
-        return int((~inside).sum())
+        return int(outside)
 
+
+def _byte_rows(pts: np.ndarray) -> np.ndarray:
+    """The records of ``pts`` as rows of bytes (a view when ``pts`` is contiguous)."""
+    pts = np.ascontiguousarray(pts)
+    return pts.view(np.uint8).reshape(len(pts), pts.dtype.itemsize)
 
 
 @dataclass(frozen=True)
@@ -222,13 +234,17 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
     of its rectangle, each part tile by tile in tile order and in spill order within a tile.
 
     Tile files are read in chunks of :data:`_BLOCK` points, so a job holds its own and its
-    buffer's points and one chunk, never the whole tiles it overlaps.
+    buffer's points and one chunk, never the whole tiles it overlaps. A chunk's own and
+    buffer points are picked out in one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`)
+    and copied as whole records (one ``void`` item a point), not field by field.
     """
     g, tc = spill.grid, spill.tc
     c = g.cell
     x0, x1 = g.west + job.c0 * c, g.west + job.c1 * c
     y0, y1 = g.north - job.r1 * c, g.north - job.r0 * c
-    rows, cols = g.window(x0 - buffer_m, y0 - buffer_m, x1 + buffer_m, y1 + buffer_m)
+    bx0, bx1, by0, by1 = x0 - buffer_m, x1 + buffer_m, y0 - buffer_m, y1 + buffer_m
+    rows, cols = g.window(bx0, by0, bx1, by1)
+    record = np.dtype((np.void, spill.dtype.itemsize))
     own, extra = [], []
     for ty in range(rows.start // tc, (rows.stop - 1) // tc + 1):
         for tx in range(cols.start // tc, (cols.stop - 1) // tc + 1):
@@ -243,18 +259,19 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
                     pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
                     if not len(pts):
                         break
+                    raw = pts.view(record)
                     if inside:
-                        own.append(pts)
+                        own.append(raw)
                         continue
-                    near = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
-                        (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
-                    if not apart:
-                        mine = job.holds(*g.index(pts["X"], pts["Y"])[:2])
-                        own.append(pts[mine])
-                        near &= ~mine
-                    extra.append(pts[near])
+                    mine, near = split_rows(pts["X"], pts["Y"], not apart, float(g.west), float(g.north), float(c),
+                                            job.r0, job.r1, job.c0, job.c1, float(bx0), float(bx1), float(by0),
+                                            float(by1))
+                    if len(mine):
+                        own.append(raw if len(mine) == len(raw) else raw.take(mine))
+                    if len(near):
+                        extra.append(raw if len(near) == len(raw) else raw.take(near))
     parts = own + extra
-    return np.concatenate(parts) if parts else np.zeros(0, spill.dtype)
+    return np.concatenate(parts).view(spill.dtype) if parts else np.zeros(0, spill.dtype)
 
 
 def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
