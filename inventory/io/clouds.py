@@ -41,6 +41,7 @@ from inventory.errors import CRSError, InputError, RunError
 from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
+from inventory.io.records import RecordFill
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter",
            "ExtraDim", "extra_dims_of", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
@@ -286,11 +287,10 @@ def conform_points(points: np.ndarray, extra: "tuple[ExtraDim, ...] | list[Extra
     dtype = points_dtype(extra)
     if points.dtype == dtype:
         return points
-    out = empty_points(len(points), extra)
-    for name in dtype.names:
-        if name in (points.dtype.names or ()):
-            out[name] = points[name]
-    return out
+    have = set(points.dtype.names or ())
+    # one compiled pass: fill values, then the columns of the same type copied as bytes
+    fill = RecordFill(points.dtype, dtype, empty_points(1, extra), {n: n for n in dtype.names if n in have}, {}, {})
+    return fill(points)
 
 
 def read_crs(header: laspy.LasHeader, path: "str | Path" = "") -> tuple[CRS | None, str | None]:
@@ -370,20 +370,43 @@ class CloudReader:
     def close(self) -> None:
         self._reader.close()
 
+    def _record_fill(self, rec: Any, names: set) -> tuple[RecordFill, list[tuple[str, str]]]:
+        """How the chunks are filled from laspy's records (of ``rec``'s point format): the
+        compiled pass of :class:`~inventory.io.records.RecordFill` (coordinates scaled as
+        laspy scales them, dimensions stored as they travel copied, bit fields unpacked),
+        and the dimensions left for laspy to give (none for the LAS point formats)."""
+        src = rec.array.dtype
+        subs = getattr(rec, "sub_fields_dict", {})
+        fields = {d.column: d.name for d in self.extra_dims}
+        bit_fields: dict[str, tuple[str, int]] = {}
+        rest = []
+        for dim, attr in _LAS_FIELDS.items():
+            if attr not in names:
+                continue
+            if attr in subs:
+                composed, sub = subs[attr]
+                bit_fields[dim] = (composed, int(sub.mask))
+            elif attr in src.names:
+                fields[dim] = attr
+            else:
+                rest.append((dim, attr))
+        coords = {c: (c, float(rec.scales[i]), float(rec.offsets[i])) for i, c in enumerate("XYZ")}
+        return RecordFill(src, points_dtype(self.extra_dims), empty_points(1, self.extra_dims), fields, bit_fields,
+                          coords), rest
+
     def chunks(self) -> Iterator[np.ndarray]:
         """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``, with a
         column for each of :attr:`extra_dims` (the stored values)."""
         names = set(self.header.point_format.dimension_names)
+        fill = None
         try:
             for rec in self._reader.chunk_iterator(self.chunk_size):
                 n = len(rec)
-                out = empty_points(n, self.extra_dims)
-                for d in self.extra_dims:
-                    out[d.column] = rec.array[d.name]
-                out["X"], out["Y"], out["Z"] = rec.x, rec.y, rec.z
-                for dim, attr in _LAS_FIELDS.items():
-                    if attr in names:
-                        out[dim] = np.asarray(rec[attr])
+                if fill is None:
+                    fill, rest = self._record_fill(rec, names)
+                out = fill(rec.array)
+                for dim, attr in rest:
+                    out[dim] = np.asarray(rec[attr])
                 if "scan_angle" in names:
                     out["ScanAngleRank"] = np.asarray(rec["scan_angle"]) * SCAN_ANGLE_STEP
                 elif "scan_angle_rank" in names:
