@@ -1,6 +1,7 @@
-"""Points moved as whole records (issue 17): the compiled fill of a reader's chunks from
-laspy's records, and ``select`` / ``concat`` / ``conform_points``, against the numpy code
-they replaced (kept here as the reference): the same bytes out.
+"""Points moved as whole records (issue 17): a reader's chunks filled from laspy's records
+with compiled loops (coordinates scaled, bit fields unpacked), and ``select`` / ``concat``,
+against the numpy and laspy code they replaced (kept here as the reference): the same bytes
+out.
 """
 
 from __future__ import annotations
@@ -9,8 +10,7 @@ import laspy
 import numpy as np
 import pytest
 
-from inventory.io.clouds import (_LAS_FIELDS, POINT_DTYPE, SCAN_ANGLE_STEP, ExtraDim, conform_points, empty_points,
-                                 open_cloud, points_dtype)
+from inventory.io.clouds import _LAS_FIELDS, SCAN_ANGLE_STEP, ExtraDim, empty_points, open_cloud, points_dtype
 from inventory.io.records import concat, select
 
 EXTRA = [
@@ -95,33 +95,3 @@ def test_select_and_concat_are_numpy_s():
     parts = [pts[:10], pts[10:10], pts[500:]]
     assert concat(parts, dtype).tobytes() == np.concatenate(parts).tobytes()
     assert concat([], dtype).dtype == dtype and len(concat([], dtype)) == 0
-
-
-def reference_conform(points, extra):
-    """``conform_points`` as it was: fill values, then the columns copied one by one."""
-    dtype = points_dtype(extra)
-    if points.dtype == dtype:
-        return points
-    out = empty_points(len(points), extra)
-    for name in dtype.names:
-        if name in (points.dtype.names or ()):
-            out[name] = points[name]
-    return out
-
-
-def test_conform_points_is_the_reference_s():
-    rng = np.random.default_rng(9)
-    a = (ExtraDim("Deviation", "u2", 3, no_data=(1, 2, 3)), ExtraDim("Reflectance", "f4"))
-    b = (ExtraDim("Reflectance", "f4"), ExtraDim("Width", "u1", no_data=(255,)))
-    src = rng.integers(0, 256, 777 * points_dtype(a).itemsize, dtype=np.uint8).view(points_dtype(a))
-    src["Reflectance"] = rng.uniform(-1000, 1000, len(src))
-    # a column of another type of the same size is converted, not copied as bytes
-    for extra in (b, (), a[:1], a[::-1], (ExtraDim("Reflectance", "i4"),)):
-        got, want = conform_points(src, extra), reference_conform(src, extra)
-        assert got.dtype == want.dtype == points_dtype(extra)
-        assert got.tobytes() == want.tobytes()
-    assert conform_points(src, a) is src
-    plain = rng.integers(0, 256, 50 * POINT_DTYPE.itemsize, dtype=np.uint8).view(POINT_DTYPE)
-    got = conform_points(plain, b)
-    assert got.tobytes() == reference_conform(plain, b).tobytes()
-    assert (got["Width"] == 255).all()

@@ -41,7 +41,7 @@ from inventory.errors import CRSError, InputError, RunError
 from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
-from inventory.io.records import RecordFill
+from inventory.io.records import scale_into, unpack_bits_into
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter",
            "ExtraDim", "extra_dims_of", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
@@ -287,10 +287,11 @@ def conform_points(points: np.ndarray, extra: "tuple[ExtraDim, ...] | list[Extra
     dtype = points_dtype(extra)
     if points.dtype == dtype:
         return points
-    have = set(points.dtype.names or ())
-    # one compiled pass: fill values, then the columns of the same type copied as bytes
-    fill = RecordFill(points.dtype, dtype, empty_points(1, extra), {n: n for n in dtype.names if n in have}, {}, {})
-    return fill(points)
+    out = empty_points(len(points), extra)
+    for name in dtype.names:
+        if name in (points.dtype.names or ()):
+            out[name] = points[name]
+    return out
 
 
 def read_crs(header: laspy.LasHeader, path: "str | Path" = "") -> tuple[CRS | None, str | None]:
@@ -370,41 +371,45 @@ class CloudReader:
     def close(self) -> None:
         self._reader.close()
 
-    def _record_fill(self, rec: Any, names: set) -> tuple[RecordFill, list[tuple[str, str]]]:
-        """How the chunks are filled from laspy's records (of ``rec``'s point format): the
-        compiled pass of :class:`~inventory.io.records.RecordFill` (coordinates scaled as
-        laspy scales them, dimensions stored as they travel copied, bit fields unpacked),
-        and the dimensions left for laspy to give (none for the LAS point formats)."""
-        src = rec.array.dtype
+    def _fill_plan(self, rec: Any, names: set) -> tuple[list, list, list]:
+        """How a chunk is filled from laspy's records (of ``rec``'s point format): the
+        columns copied from a record field, the bit fields unpacked (column, field, mask)
+        and the dimensions left to laspy (none for the LAS point formats)."""
+        src = rec.array.dtype.names
         subs = getattr(rec, "sub_fields_dict", {})
-        fields = {d.column: d.name for d in self.extra_dims}
-        bit_fields: dict[str, tuple[str, int]] = {}
-        rest = []
+        copies = [(d.column, d.name) for d in self.extra_dims]
+        bits, rest = [], []
         for dim, attr in _LAS_FIELDS.items():
             if attr not in names:
                 continue
-            if attr in subs:
+            if attr in subs and rec.array.dtype[subs[attr][0]].kind == "u" and POINT_DTYPE[dim] == np.uint8:
                 composed, sub = subs[attr]
-                bit_fields[dim] = (composed, int(sub.mask))
-            elif attr in src.names:
-                fields[dim] = attr
+                bits.append((dim, composed, int(sub.mask)))
+            elif attr in src:
+                copies.append((dim, attr))
             else:
                 rest.append((dim, attr))
-        coords = {c: (c, float(rec.scales[i]), float(rec.offsets[i])) for i, c in enumerate("XYZ")}
-        return RecordFill(src, points_dtype(self.extra_dims), empty_points(1, self.extra_dims), fields, bit_fields,
-                          coords), rest
+        return copies, bits, rest
 
     def chunks(self) -> Iterator[np.ndarray]:
         """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``, with a
         column for each of :attr:`extra_dims` (the stored values)."""
         names = set(self.header.point_format.dimension_names)
-        fill = None
+        plan = None
         try:
             for rec in self._reader.chunk_iterator(self.chunk_size):
                 n = len(rec)
-                if fill is None:
-                    fill, rest = self._record_fill(rec, names)
-                out = fill(rec.array)
+                if plan is None:
+                    plan = self._fill_plan(rec, names)
+                copies, bits, rest = plan
+                arr = rec.array
+                out = empty_points(n, self.extra_dims)
+                for i, c in enumerate("XYZ"):       # laspy's rec.x, without its temporaries
+                    scale_into(arr[c], float(rec.scales[i]), float(rec.offsets[i]), out[c])
+                for column, field in copies:
+                    out[column] = arr[field]
+                for column, field, mask in bits:
+                    unpack_bits_into(arr[field], mask, out[column])
                 for dim, attr in rest:
                     out[dim] = np.asarray(rec[attr])
                 if "scan_angle" in names:

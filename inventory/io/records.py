@@ -1,14 +1,13 @@
-"""Points moved as whole records: structured arrays filled, picked and joined byte for byte.
+"""Points moved as whole records, and the compiled loops that fill a reader's chunks.
 
-numpy copies a structured array (``pts[mask]``, ``pts[index]``, ``np.concatenate``, a
-column assignment) field by field; the same records viewed as one ``void`` item each are
-copied whole, several times faster, into the same bytes. :func:`select` and
-:func:`concat` do that. :class:`RecordFill` fills an array of points from a LAS record
-array in one compiled pass (numba): every point starts as a template record (the fill
-values of :func:`~inventory.io.clouds.empty_points`), the dimensions stored as they travel
-are copied as bytes, the bit fields unpacked (``(byte & mask) >> shift``, as laspy does),
-and the coordinates scaled (``stored * scale + offset``, laspy's arithmetic, so the same
-float64 values).
+numpy copies a structured array (``pts[mask]``, ``pts[index]``, ``np.concatenate``)
+field by field; the same records viewed as one ``void`` item each are copied whole, several
+times faster, into the same bytes. :func:`select` and :func:`concat` do that.
+
+:func:`scale_into` and :func:`unpack_bits_into` (numba) write a LAS record's scaled
+coordinates and bit fields straight into a column of the points, with laspy's arithmetic
+(``stored * scale + offset``; ``(byte & mask) >> lowest set bit``) and without the
+temporary arrays of laspy's views.
 """
 
 from __future__ import annotations
@@ -16,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["RecordFill", "byte_rows", "concat", "records", "select"]
+__all__ = ["byte_rows", "concat", "records", "scale_into", "select", "unpack_bits_into"]
 
 
 def records(pts: np.ndarray) -> np.ndarray:
@@ -45,79 +44,19 @@ def concat(parts: "list[np.ndarray]", dtype: np.dtype) -> np.ndarray:
 
 
 @njit(cache=True, nogil=True)
-def _fill(src, out, template, copies, bits):  # pragma: no cover - compiled
-    n, w = out.shape
-    for i in range(n):
-        for k in range(w):
-            out[i, k] = template[k]
-        for j in range(copies.shape[0]):
-            s = copies[j, 0]
-            d = copies[j, 1]
-            for b in range(copies[j, 2]):
-                out[i, d + b] = src[i, s + b]
-        for j in range(bits.shape[0]):
-            out[i, bits[j, 3]] = (src[i, bits[j, 0]] & bits[j, 1]) >> bits[j, 2]
-
-
-@njit(cache=True, nogil=True)
-def _scale(stored, scale, offset, out):  # pragma: no cover - compiled
+def scale_into(stored, scale, offset, out):  # pragma: no cover - compiled
+    """``out[:] = stored * scale + offset`` (float64 arithmetic, as numpy and laspy do it)."""
     for i in range(stored.size):
         out[i] = stored[i] * scale + offset
 
 
-class RecordFill:
-    """A plan to fill points of dtype ``dtype`` from LAS records of dtype ``src``.
+@njit(cache=True, nogil=True)
+def _unpack(src, mask, shift, out):  # pragma: no cover - compiled
+    for i in range(src.size):
+        out[i] = (src[i] & mask) >> shift
 
-    Parameters
-    ----------
-    src : numpy dtype
-        The LAS records' dtype (laspy's ``rec.array.dtype``).
-    dtype : numpy dtype
-        The points' dtype.
-    template : ndarray
-        One record of ``dtype``: the value of every field not filled.
-    fields : dict
-        Points' field -> record field stored as it travels (copied when the two dtypes
-        agree, else assigned by numpy after the pass).
-    bit_fields : dict
-        Points' field -> (record field of one byte, mask): ``(byte & mask) >> lowest bit``.
-    coords : dict
-        Points' float64 field -> (record field, scale, offset).
-    """
 
-    def __init__(self, src: np.dtype, dtype: np.dtype, template: np.ndarray, fields: "dict[str, str]",
-                 bit_fields: "dict[str, tuple[str, int]]", coords: "dict[str, tuple[str, float, float]]") -> None:
-        self.dtype = np.dtype(dtype)
-        self.template = byte_rows(np.asarray(template, self.dtype).reshape(1))[0].copy()
-        copies, bits, self.assign = [], [], []
-        for dst, name in fields.items():
-            s_dt, s_off = src.fields[name][:2]
-            d_dt, d_off = self.dtype.fields[dst][:2]
-            if s_dt == d_dt:
-                copies.append((s_off, d_off, d_dt.itemsize))
-            else:
-                self.assign.append((dst, name))
-        for dst, (name, mask) in bit_fields.items():
-            s_dt, s_off = src.fields[name][:2]
-            d_dt, d_off = self.dtype.fields[dst][:2]
-            if s_dt.itemsize == 1 and s_dt.kind == "u" and d_dt == np.dtype("u1") and 0 < mask < 256:
-                bits.append((s_off, mask, (mask & -mask).bit_length() - 1, d_off))
-            else:
-                self.assign.append((dst, (name, mask)))
-        self.copies = np.array(copies, np.int64).reshape(-1, 3)
-        self.bits = np.array(bits, np.int64).reshape(-1, 4)
-        self.coords = coords
-
-    def __call__(self, rec: np.ndarray) -> np.ndarray:
-        """Points of :attr:`dtype` from the LAS record array ``rec``."""
-        out = np.empty(len(rec), self.dtype)
-        _fill(byte_rows(rec), byte_rows(out), self.template, self.copies, self.bits)
-        for dst, (name, scale, offset) in self.coords.items():
-            _scale(rec[name], float(scale), float(offset), out[dst])
-        for dst, name in self.assign:
-            if isinstance(name, tuple):
-                field, mask = name
-                out[dst] = (rec[field] & rec.dtype[field].type(mask)) >> ((mask & -mask).bit_length() - 1)
-            else:
-                out[dst] = rec[name]
-        return out
+def unpack_bits_into(src: np.ndarray, mask: int, out: np.ndarray) -> None:
+    """``out[:] = (src & mask) >> s``, ``s`` the lowest bit set in ``mask``: a bit field of
+    the unsigned integers ``src`` (laspy's sub-fields of a LAS record)."""
+    _unpack(src, mask, (mask & -mask).bit_length() - 1, out)

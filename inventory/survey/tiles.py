@@ -28,6 +28,7 @@ import numpy as np
 from pyproj import CRS
 
 from inventory.io.clouds import POINT_DTYPE
+from inventory.io.records import byte_rows, concat, select
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
@@ -117,7 +118,7 @@ class TileSpill:
         self.zmin = min(self.zmin, float(z.min()))
         starts = np.zeros_like(tile_counts)
         np.cumsum(tile_counts[:-1], out=starts[1:])
-        rows = _byte_rows(pts)
+        rows = byte_rows(pts)
         out = np.empty((len(pts) - outside, rows.shape[1]), np.uint8)
         scatter_rows(rows, key, starts, out)
         for t in np.flatnonzero(tile_counts):
@@ -127,12 +128,6 @@ class TileSpill:
                 out[a:b].tofile(f)
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int(outside)
-
-
-def _byte_rows(pts: np.ndarray) -> np.ndarray:
-    """The records of ``pts`` as rows of bytes (a view when ``pts`` is contiguous)."""
-    pts = np.ascontiguousarray(pts)
-    return pts.view(np.uint8).reshape(len(pts), pts.dtype.itemsize)
 
 
 @dataclass(frozen=True)
@@ -236,7 +231,7 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
     Tile files are read in chunks of :data:`_BLOCK` points, so a job holds its own and its
     buffer's points and one chunk, never the whole tiles it overlaps. A chunk's own and
     buffer points are picked out in one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`)
-    and copied as whole records (one ``void`` item a point), not field by field.
+    and copied as whole records (:func:`~inventory.io.records.select`), not field by field.
     """
     g, tc = spill.grid, spill.tc
     c = g.cell
@@ -244,7 +239,6 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
     y0, y1 = g.north - job.r1 * c, g.north - job.r0 * c
     bx0, bx1, by0, by1 = x0 - buffer_m, x1 + buffer_m, y0 - buffer_m, y1 + buffer_m
     rows, cols = g.window(bx0, by0, bx1, by1)
-    record = np.dtype((np.void, spill.dtype.itemsize))
     own, extra = [], []
     for ty in range(rows.start // tc, (rows.stop - 1) // tc + 1):
         for tx in range(cols.start // tc, (cols.stop - 1) // tc + 1):
@@ -259,19 +253,17 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
                     pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
                     if not len(pts):
                         break
-                    raw = pts.view(record)
                     if inside:
-                        own.append(raw)
+                        own.append(pts)
                         continue
                     mine, near = split_rows(pts["X"], pts["Y"], not apart, float(g.west), float(g.north), float(c),
                                             job.r0, job.r1, job.c0, job.c1, float(bx0), float(bx1), float(by0),
                                             float(by1))
                     if len(mine):
-                        own.append(raw if len(mine) == len(raw) else raw.take(mine))
+                        own.append(pts if len(mine) == len(pts) else select(pts, mine))
                     if len(near):
-                        extra.append(raw if len(near) == len(raw) else raw.take(near))
-    parts = own + extra
-    return np.concatenate(parts).view(spill.dtype) if parts else np.zeros(0, spill.dtype)
+                        extra.append(pts if len(near) == len(pts) else select(pts, near))
+    return concat(own + extra, spill.dtype)
 
 
 def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
@@ -282,7 +274,7 @@ def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline
     stats: dict = {}
     out, _ = pipeline.run(pts, crs, engine=engine, stats=stats)
     row, col, _ = spill.grid.index(out["X"], out["Y"])
-    out = out[job.holds(row, col)]
+    out = select(out, job.holds(row, col))
     txy = stats.get("thinned_xy")
     thinned = 0
     if txy is not None and len(txy):
