@@ -20,6 +20,8 @@ files.
 from __future__ import annotations
 
 import math
+import mmap
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -228,8 +230,9 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
     """A job's own points (those in its cells) followed by the points within ``buffer_m``
     of its rectangle, each part tile by tile in tile order and in spill order within a tile.
 
-    Tile files are read in chunks of :data:`_BLOCK` points, so a job holds its own and its
-    buffer's points and one chunk, never the whole tiles it overlaps. A chunk's own and
+    Tile files are read in chunks of :data:`_BLOCK` points, each mapped in memory (no copy
+    of the file's bytes), so a job holds its own and its buffer's points and one chunk,
+    never the whole tiles it overlaps. A chunk's own and
     buffer points are picked out in one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`)
     and copied as whole records (:func:`~inventory.io.records.select`), not field by field.
     """
@@ -248,22 +251,35 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
             tr0, tc0 = ty * tc, tx * tc
             inside = job.r0 <= tr0 and tr0 + tc <= job.r1 and job.c0 <= tc0 and tc0 + tc <= job.c1
             apart = tr0 >= job.r1 or tr0 + tc <= job.r0 or tc0 >= job.c1 or tc0 + tc <= job.c0
-            with open(spill.path(tile), "rb") as f:
-                while True:
-                    pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
-                    if not len(pts):
-                        break
-                    if inside:
-                        own.append(pts)
-                        continue
-                    mine, near = split_rows(pts["X"], pts["Y"], not apart, float(g.west), float(g.north), float(c),
-                                            job.r0, job.r1, job.c0, job.c1, float(bx0), float(bx1), float(by0),
-                                            float(by1))
-                    if len(mine):
-                        own.append(pts if len(mine) == len(pts) else select(pts, mine))
-                    if len(near):
-                        extra.append(pts if len(near) == len(pts) else select(pts, near))
+            for pts in _mapped_chunks(spill.path(tile), spill.dtype):
+                if inside:
+                    own.append(pts)
+                    continue
+                mine, near = split_rows(pts["X"], pts["Y"], not apart, float(g.west), float(g.north), float(c),
+                                        job.r0, job.r1, job.c0, job.c1, float(bx0), float(bx1), float(by0),
+                                        float(by1))
+                if len(mine):
+                    own.append(pts if len(mine) == len(pts) else select(pts, mine))
+                if len(near):
+                    extra.append(pts if len(near) == len(pts) else select(pts, near))
+                del pts, mine, near         # a chunk's mapping goes as soon as nothing holds it
     return concat(own + extra, spill.dtype)
+
+
+def _mapped_chunks(path: Path, dtype: np.dtype) -> Iterator[np.ndarray]:
+    """The records of a spill file, :data:`_BLOCK` at a time, as read-only arrays on a
+    memory map of their bytes (no copy; a chunk's mapping goes with the last array on it)."""
+    with open(path, "rb") as f:
+        n = os.fstat(f.fileno()).st_size // dtype.itemsize
+        for start in range(0, n, _BLOCK):
+            count = min(_BLOCK, n - start)
+            a = start * dtype.itemsize
+            base = a - a % mmap.ALLOCATIONGRANULARITY
+            mm = mmap.mmap(f.fileno(), a + count * dtype.itemsize - base, offset=base, access=mmap.ACCESS_READ)
+            chunk = np.frombuffer(mm, dtype, count, offset=a - base)
+            del mm
+            yield chunk
+            del chunk
 
 
 def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
