@@ -28,12 +28,12 @@ __all__ = ["scatter_rows", "split_rows", "tile_keys"]
 
 
 @njit(cache=True, nogil=True)
-def tile_keys(x, y, west, north, cell, nrows, ncols, tile_cells, ntx, block_cells, nbx,
+def tile_keys(x, y, west, north, cell, nrows, ncols, tile_cells, ntx, block_cells,
               tile_counts, block_counts):  # pragma: no cover - compiled
     """Tile number of each point (row of tiles times ``ntx`` plus column of tiles), -1 for a
     point outside the grid; adds each inside point to ``tile_counts[tile]`` and to
-    ``block_counts[block]`` (blocks numbered row by row, ``nbx`` to a row). Returns the keys
-    and the number of points outside."""
+    ``block_counts[row of blocks, column of blocks]``. Returns the keys and the number of
+    points outside."""
     n = x.size
     key = np.empty(n, np.int64)
     outside = 0
@@ -46,7 +46,7 @@ def tile_keys(x, y, west, north, cell, nrows, ncols, tile_cells, ntx, block_cell
             t = (ri // tile_cells) * ntx + ci // tile_cells
             key[i] = t
             tile_counts[t] += 1
-            block_counts[(ri // block_cells) * nbx + ci // block_cells] += 1
+            block_counts[ri // block_cells, ci // block_cells] += 1
         else:
             key[i] = -1
             outside += 1

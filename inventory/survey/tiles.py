@@ -112,8 +112,7 @@ class TileSpill:
         g = self.grid
         tile_counts = np.zeros(self.nty * self.ntx, np.int64)
         key, outside = tile_keys(pts["X"], pts["Y"], float(g.west), float(g.north), float(g.cell), g.nrows, g.ncols,
-                                 self.tc, self.ntx, self.bc, self.blocks.shape[1], tile_counts,
-                                 self.blocks.reshape(-1))
+                                 self.tc, self.ntx, self.bc, tile_counts, self.blocks)
         if outside == len(pts):
             return int(outside)
         z = pts["Z"] if not outside else pts["Z"][key >= 0]
