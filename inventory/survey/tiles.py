@@ -231,9 +231,9 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
 
     Tile files are read in chunks of :data:`_BLOCK` points, each mapped in memory (no copy
     of the file's bytes), so a job holds its own and its buffer's points and one chunk,
-    never the whole tiles it overlaps. A chunk's own and
-    buffer points are picked out in one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`)
-    and copied as whole records (:func:`~inventory.io.records.select`), not field by field.
+    never the whole tiles it overlaps. A chunk's own and buffer points are picked out in
+    one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`) and copied as
+    whole records (:func:`~inventory.io.records.select`), not field by field.
     """
     g, tc = spill.grid, spill.tc
     c = g.cell
