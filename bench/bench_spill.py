@@ -3,7 +3,8 @@
 Runs what :func:`inventory.survey.measure.measure_survey` runs before classifying (the
 placements, the spill grid, ``_read_into_spill``), then gathers every planned job's points
 (:func:`inventory.survey.tiles.job_points`) without classifying them, several times, and
-prints the best wall time and CPU seconds of each phase and the CPU seconds of the whole run. ``--digest``
+prints the best wall time and CPU seconds of each phase, beside a bare LAZ decode of the
+file, and the CPU seconds of the whole run. ``--digest``
 also prints a SHA-256 of the spill files and of every job's points, to compare two versions
 of the code on the same file (they must agree).
 
@@ -25,7 +26,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_survey import DATE, _site
+from bench_survey import DATE, _decode, _site
 
 from inventory.io.crs import TransformerCache
 from inventory.model.grid import Grid
@@ -85,6 +86,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--runs", type=int, default=3)
     ap.add_argument("--digest", action="store_true")
     args = ap.parse_args(argv)
+    c0 = time.process_time()
+    n, dt, backend = _decode([args.file])
+    print(f"bare LAZ decode: {dt:.2f} s (CPU {time.process_time() - c0:.2f} s; {n:,} points, {backend or 'laspy'})",
+          flush=True)
     runs = []
     for i in range(args.runs):
         r = one_run(args.file, args.digest and i == 0)
