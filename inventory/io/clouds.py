@@ -41,6 +41,7 @@ from inventory.errors import CRSError, InputError, RunError
 from inventory.io.atomic import atomic_path
 from inventory.io.cloudcheck import size_problem
 from inventory.io.crs import parse_crs
+from inventory.io.records import scale_into, unpack_bits_into
 
 __all__ = ["POINT_DTYPE", "DEFAULT_CHUNK", "CLOUD_SUFFIXES", "LAS_SUFFIXES", "CRS_SIDECAR", "CloudReader", "CloudWriter",
            "ExtraDim", "extra_dims_of", "las_header", "las_record", "merge_extra_dims", "points_dtype", "conform_points", "open_cloud",
@@ -370,20 +371,47 @@ class CloudReader:
     def close(self) -> None:
         self._reader.close()
 
+    def _fill_plan(self, rec: Any, names: set) -> tuple[list, list, list]:
+        """How a chunk is filled from laspy's records (of ``rec``'s point format): the
+        columns copied from a record field, the bit fields unpacked (column, field, mask)
+        and the dimensions left to laspy (none for the LAS point formats)."""
+        src = rec.array.dtype.names
+        subs = getattr(rec, "sub_fields_dict", {})
+        copies = [(d.column, d.name) for d in self.extra_dims]
+        bits, rest = [], []
+        for dim, attr in _LAS_FIELDS.items():
+            if attr not in names:
+                continue
+            if attr in subs and rec.array.dtype[subs[attr][0]].kind == "u" and POINT_DTYPE[dim] == np.uint8:
+                composed, sub = subs[attr]
+                bits.append((dim, composed, int(sub.mask)))
+            elif attr in src:
+                copies.append((dim, attr))
+            else:
+                rest.append((dim, attr))
+        return copies, bits, rest
+
     def chunks(self) -> Iterator[np.ndarray]:
         """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``, with a
         column for each of :attr:`extra_dims` (the stored values)."""
         names = set(self.header.point_format.dimension_names)
+        plan = None
         try:
             for rec in self._reader.chunk_iterator(self.chunk_size):
                 n = len(rec)
+                if plan is None:
+                    plan = self._fill_plan(rec, names)
+                copies, bits, rest = plan
+                arr = rec.array
                 out = empty_points(n, self.extra_dims)
-                for d in self.extra_dims:
-                    out[d.column] = rec.array[d.name]
-                out["X"], out["Y"], out["Z"] = rec.x, rec.y, rec.z
-                for dim, attr in _LAS_FIELDS.items():
-                    if attr in names:
-                        out[dim] = np.asarray(rec[attr])
+                for i, c in enumerate("XYZ"):       # laspy's rec.x, without its temporaries
+                    scale_into(arr[c], float(rec.scales[i]), float(rec.offsets[i]), out[c])
+                for column, field in copies:
+                    out[column] = arr[field]
+                for column, field, mask in bits:
+                    unpack_bits_into(arr[field], mask, out[column])
+                for dim, attr in rest:
+                    out[dim] = np.asarray(rec[attr])
                 if "scan_angle" in names:
                     out["ScanAngleRank"] = np.asarray(rec["scan_angle"]) * SCAN_ANGLE_STEP
                 elif "scan_angle_rank" in names:

@@ -33,6 +33,7 @@ from pyproj import CRS
 from inventory.errors import CRSError, InputError, InputWarning
 from inventory.io.clouds import CRS_SIDECAR, DEFAULT_CHUNK, open_cloud
 from inventory.io.crs import Reprojector, TransformerCache, parse_crs
+from inventory.io.records import select
 from inventory.io.tables import is_blank
 from inventory.model.pose import (
     DEFAULT_MAX_GAP_S,
@@ -362,7 +363,8 @@ class TrajectoryPlacement(Placement):
         self.kept += c["kept"]
         self.outside_span += c["outside_span"]
         self.in_gap += c["in_gap"]
-        chunk = chunk[keep]
+        if not keep.all():
+            chunk = select(chunk, keep)     # whole records, not field by field
         chunk["StationRange"] = np.sqrt((own[keep] ** 2).sum(axis=1))
         chunk["X"], chunk["Y"], chunk["Z"] = xyz[:, 0], xyz[:, 1], xyz[:, 2]
         return chunk

@@ -23,6 +23,8 @@ files.
 from __future__ import annotations
 
 import math
+import mmap
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -32,11 +34,13 @@ from pyproj import CRS
 
 from inventory.io.clouds import POINT_DTYPE
 from inventory.io.lazparts import LasLayout, LazPart, encode_part
+from inventory.io.records import byte_rows, concat, select
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE
 from inventory.model.grid import Grid, Surface
 from inventory.parallel import Executor
 from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, object_cells
 from inventory.survey.pipeline import Pipeline
+from inventory.survey.spillkernels import scatter_rows, split_rows, tile_keys
 
 __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "TileCells", "TileSpill", "block_cells_for",
            "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
@@ -102,29 +106,33 @@ class TileSpill:
 
     def add(self, pts: np.ndarray) -> int:
         """Spill points (of :attr:`dtype`) and count them per block; returns how many fell
-        outside the grid."""
+        outside the grid.
+
+        Each tile's points are appended to its file in their order in ``pts``; the records
+        are grouped by a compiled counting sort of their tiles that moves each as one row of
+        bytes (:mod:`inventory.survey.spillkernels`)."""
         if pts.dtype != self.dtype:
             raise ValueError(f"points of dtype {pts.dtype} spilled to tiles of dtype {self.dtype}")
-        row, col, inside = self.grid.index(pts["X"], pts["Y"])
-        pts, row, col = pts[inside], row[inside], col[inside]
-        if not len(pts):
-            return int((~inside).sum())
-        self.zmin = min(self.zmin, float(pts["Z"].min()))
-        nbx = self.blocks.shape[1]
-        self.blocks += np.bincount((row // self.bc) * nbx + col // self.bc,
-                                   minlength=self.blocks.size).reshape(self.blocks.shape)
-        tile = (row // self.tc) * self.ntx + (col // self.tc)
-        order = np.argsort(tile, kind="stable")
-        pts, tile = pts[order], tile[order]
-        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]])
-        ends = np.r_[starts[1:], len(tile)]
-        for a, b in zip(starts, ends):
-            t = int(tile[a])
+        g = self.grid
+        tile_counts = np.zeros(self.nty * self.ntx, np.int64)
+        key, outside = tile_keys(pts["X"], pts["Y"], float(g.west), float(g.north), float(g.cell), g.nrows, g.ncols,
+                                 self.tc, self.ntx, self.bc, tile_counts, self.blocks)
+        if outside == len(pts):
+            return int(outside)
+        z = pts["Z"] if not outside else pts["Z"][key >= 0]
+        self.zmin = min(self.zmin, float(z.min()))
+        starts = np.zeros_like(tile_counts)
+        np.cumsum(tile_counts[:-1], out=starts[1:])
+        rows = byte_rows(pts)
+        out = np.empty((len(pts) - outside, rows.shape[1]), np.uint8)
+        scatter_rows(rows, key, starts, out)
+        for t in np.flatnonzero(tile_counts):
+            a, b = starts[t], starts[t] + tile_counts[t]
+            t = int(t)
             with open(self.path(t), "ab") as f:
-                pts[a:b].tofile(f)
+                out[a:b].tofile(f)
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
-        return int((~inside).sum())
-
+        return int(outside)
 
 
 @dataclass(frozen=True)
@@ -221,14 +229,18 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
     """A job's own points (those in its cells) followed by the points within ``buffer_m``
     of its rectangle, each part tile by tile in tile order and in spill order within a tile.
 
-    Tile files are read in chunks of :data:`_BLOCK` points, so a job holds its own and its
-    buffer's points and one chunk, never the whole tiles it overlaps.
+    Tile files are read in chunks of :data:`_BLOCK` points, each mapped in memory (no copy
+    of the file's bytes), so a job holds its own and its buffer's points and one chunk,
+    never the whole tiles it overlaps. A chunk's own and buffer points are picked out in
+    one compiled pass (:func:`~inventory.survey.spillkernels.split_rows`) and copied as
+    whole records (:func:`~inventory.io.records.select`), not field by field.
     """
     g, tc = spill.grid, spill.tc
     c = g.cell
     x0, x1 = g.west + job.c0 * c, g.west + job.c1 * c
     y0, y1 = g.north - job.r1 * c, g.north - job.r0 * c
-    rows, cols = g.window(x0 - buffer_m, y0 - buffer_m, x1 + buffer_m, y1 + buffer_m)
+    bx0, bx1, by0, by1 = x0 - buffer_m, x1 + buffer_m, y0 - buffer_m, y1 + buffer_m
+    rows, cols = g.window(bx0, by0, bx1, by1)
     own, extra = [], []
     for ty in range(rows.start // tc, (rows.stop - 1) // tc + 1):
         for tx in range(cols.start // tc, (cols.stop - 1) // tc + 1):
@@ -238,23 +250,35 @@ def job_points(spill: TileSpill, job: Job, buffer_m: float) -> np.ndarray:
             tr0, tc0 = ty * tc, tx * tc
             inside = job.r0 <= tr0 and tr0 + tc <= job.r1 and job.c0 <= tc0 and tc0 + tc <= job.c1
             apart = tr0 >= job.r1 or tr0 + tc <= job.r0 or tc0 >= job.c1 or tc0 + tc <= job.c0
-            with open(spill.path(tile), "rb") as f:
-                while True:
-                    pts = np.fromfile(f, dtype=spill.dtype, count=_BLOCK)
-                    if not len(pts):
-                        break
-                    if inside:
-                        own.append(pts)
-                        continue
-                    near = (pts["X"] >= x0 - buffer_m) & (pts["X"] < x1 + buffer_m) & \
-                        (pts["Y"] >= y0 - buffer_m) & (pts["Y"] < y1 + buffer_m)
-                    if not apart:
-                        mine = job.holds(*g.index(pts["X"], pts["Y"])[:2])
-                        own.append(pts[mine])
-                        near &= ~mine
-                    extra.append(pts[near])
-    parts = own + extra
-    return np.concatenate(parts) if parts else np.zeros(0, spill.dtype)
+            for pts in _mapped_chunks(spill.path(tile), spill.dtype):
+                if inside:
+                    own.append(pts)
+                    continue
+                mine, near = split_rows(pts["X"], pts["Y"], not apart, float(g.west), float(g.north), float(c),
+                                        job.r0, job.r1, job.c0, job.c1, float(bx0), float(bx1), float(by0),
+                                        float(by1))
+                if len(mine):
+                    own.append(pts if len(mine) == len(pts) else select(pts, mine))
+                if len(near):
+                    extra.append(pts if len(near) == len(pts) else select(pts, near))
+                del pts, mine, near         # a chunk's mapping goes as soon as nothing holds it
+    return concat(own + extra, spill.dtype)
+
+
+def _mapped_chunks(path: Path, dtype: np.dtype) -> Iterator[np.ndarray]:
+    """The records of a spill file, :data:`_BLOCK` at a time, as read-only arrays on a
+    memory map of their bytes (no copy; a chunk's mapping goes with the last array on it)."""
+    with open(path, "rb") as f:
+        n = os.fstat(f.fileno()).st_size // dtype.itemsize
+        for start in range(0, n, _BLOCK):
+            count = min(_BLOCK, n - start)
+            a = start * dtype.itemsize
+            base = a - a % mmap.ALLOCATIONGRANULARITY
+            mm = mmap.mmap(f.fileno(), a + count * dtype.itemsize - base, offset=base, access=mmap.ACCESS_READ)
+            chunk = np.frombuffer(mm, dtype, count, offset=a - base)
+            del mm
+            yield chunk
+            del chunk
 
 
 def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline, crs: CRS | str,
@@ -265,7 +289,7 @@ def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline
     stats: dict = {}
     out, _ = pipeline.run(pts, crs, engine=engine, stats=stats)
     row, col, _ = spill.grid.index(out["X"], out["Y"])
-    out = out[job.holds(row, col)]
+    out = select(out, job.holds(row, col))
     txy = stats.get("thinned_xy")
     thinned = 0
     if txy is not None and len(txy):
