@@ -150,12 +150,11 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, k, skip_self, qid,
-              out_d, out_i, mode):
+def _knn_rows(qx, qy, a, b, sx, sy, sid, start, x0, y0, c, nrow, ncol, k, skip_self, qid, out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
-        px, py, pz = qx[i], qy[i], qz[i]
+        px, py = qx[i], qy[i]
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
@@ -181,9 +180,6 @@ def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, 
                             dx = sx[j] - px
                             dy = sy[j] - py
                             d2 = dx * dx + dy * dy
-                            if use_z:
-                                dz = sz[j] - pz
-                                d2 += dz * dz
                             if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
                                 m = k - 1
                                 while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
@@ -204,11 +200,9 @@ def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, 
             for m in range(k):
                 out_d[i, m] = math.sqrt(bd[m])
                 out_i[i, m] = bi[m]
-        elif mode == 1:     # numbers only
+        else:               # numbers only
             for m in range(k):
                 out_i[i, m] = bi[m]
-        else:               # mean distance only, summed as numpy's mean over a row sums
-            out_d[i, 0] = _row_sum_sqrt(bd, k) / k
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -247,35 +241,221 @@ def _row_sum_sqrt(bd, k):
     return res
 
 
-def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None", mode: int = 0):
-    """The k nearest members of ``index`` to each query point. ``mode`` 0: distances and
+def _knn(index: CellIndex, qx, qy, k: int, skip: "np.ndarray | None", mode: int = 0):
+    """The k nearest members of ``index`` in plan to each query point. ``mode`` 0: distances and
     numbers (int64); 1: numbers only (int32, -1 where fewer: a quarter of the memory of
-    mode 0, for callers that work the distances out again from coordinates); 2: the mean
-    distance of each row (an (n, 1) array, the row's values never stored)."""
+    mode 0, for callers that work the distances out again from coordinates)."""
     n = len(qx)
     if n == 0 or k == 0 or index.n == 0:
         if mode == 1:
             return None, np.full((n, k), -1, np.int32)
-        if mode == 2:
-            return np.full((n, 1), np.inf), None
         return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
     if mode == 1 and index.n >= 2**31:   # pragma: no cover - a tile of 2 billion points
         raise ValueError("more points than 32-bit neighbour numbers hold")
-    d = np.empty((n, 1) if mode == 2 else (n, k) if mode == 0 else (1, 1))   # every row is written
-    nb = np.empty((n, k), np.int32 if mode == 1 else np.int64) if mode != 2 else np.empty((1, 1), np.int64)
+    d = np.empty((n, k) if mode == 0 else (1, 1))   # every row is written
+    nb = np.empty((n, k), np.int32 if mode == 1 else np.int64)
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
-    use_z = z is not None
-    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
-    sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
     qid = skip if skip is not None else np.zeros(1, np.int64)
 
     def piece(a: int, b: int) -> None:
-        _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, k, skip is not None, qid, d, nb, mode)
+        _knn_rows(qx, qy, a, b, index.sx, index.sy, index.sid, index.start, index.x0, index.y0, index.cell,
+                  index.nrow, index.ncol, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
-    return (None if mode == 1 else d), (None if mode == 2 else nb)
+    return (None if mode == 1 else d), nb
+
+
+@njit(cache=True, nogil=True)
+def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
+    """The members of a :class:`CellIndex` (cell by cell) on columns of ``f`` x ``f`` of its
+    cells, each split into layers of ``cz`` in height from the column's lowest point up;
+    points without a finite height (never anyone's neighbour in 3D) are left out. Returns
+    the coordinates and numbers voxel by voxel, the start of each voxel, each column's
+    first voxel and its lowest height."""
+    nrow2 = (nrow + f - 1) // f
+    ncol2 = (ncol + f - 1) // f
+    ncell = nrow2 * ncol2
+    zlo = np.full(ncell, np.inf)
+    zhi = np.full(ncell, -np.inf)
+    col = np.empty(len(sz), np.int64)
+    for c in range(nrow * ncol):
+        cell = (c // ncol) // f * ncol2 + (c % ncol) // f
+        for j in range(start[c], start[c + 1]):
+            col[j] = cell
+            v = sz[j]
+            if v - v == 0.0:        # finite
+                zlo[cell] = min(zlo[cell], v)
+                zhi[cell] = max(zhi[cell], v)
+    first = np.empty(ncell + 1, np.int64)
+    first[0] = 0
+    for c in range(ncell):
+        first[c + 1] = first[c] + (int((zhi[c] - zlo[c]) // cz) + 1 if zlo[c] <= zhi[c] else 0)
+    nvox = first[ncell]
+    key = np.empty(len(sz), np.int64)
+    count = np.zeros(nvox + 1, np.int64)
+    for j in range(len(sz)):
+        v = sz[j]
+        if v - v == 0.0:
+            c = col[j]
+            key[j] = first[c] + int((v - zlo[c]) // cz)
+            count[key[j] + 1] += 1
+        else:
+            key[j] = -1
+    for j in range(nvox):
+        count[j + 1] += count[j]
+    m = count[nvox]
+    vx = np.empty(m)
+    vy = np.empty(m)
+    vz = np.empty(m)
+    vid = np.empty(m, np.int64)
+    fill = count[:-1].copy()
+    for j in range(len(sz)):
+        if key[j] >= 0:
+            t = fill[key[j]]
+            fill[key[j]] += 1
+            vx[t] = sx[j]
+            vy[t] = sy[j]
+            vz[t] = sz[j]
+            vid[t] = sid[j]
+    return vx, vy, vz, vid, count, first, zlo
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _gap(p, lo, hi, tol):
+    # how far p lies outside [lo, hi], less tol (a lower bound of |v - p| as worked out
+    # for any v that the bucketing put between lo and hi)
+    g = max(lo - p, p - hi) - tol
+    return g if g > 0.0 else 0.0
+
+
+@njit(cache=True, nogil=True)
+def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, x0, y0, c, cz, nrow, ncol, tol, k, skip_self,
+               qid, out_d, out_i, mode):
+    bd = np.empty(k)
+    bi = np.empty(k, np.int64)
+    for i in range(a, b):
+        px, py, pz = qx[i], qy[i], qz[i]
+        for m in range(k):
+            bd[m] = np.inf
+            bi[m] = -1
+        me = qid[i] if skip_self else -1
+        cc = int(math.floor((px - x0) / c))
+        cr = int(math.floor((py - y0) / c))
+        r = 0
+        rmax = max(nrow, ncol) + abs(cc) + abs(cr) + 1
+        while pz - pz == 0.0:     # a query without a finite height has no neighbours in 3D
+            for rr in range(cr - r, cr + r + 1):
+                if rr < 0 or rr >= nrow:
+                    continue
+                edge = rr == cr - r or rr == cr + r
+                step = 1 if (edge or r == 0) else 2 * r
+                gy = _gap(py, y0 + rr * c, y0 + (rr + 1) * c, tol)
+                col = cc - r
+                while col <= cc + r:
+                    if col >= 0 and col < ncol:
+                        cell = rr * ncol + col
+                        f0 = first[cell]
+                        nl = first[cell + 1] - f0
+                        gx = _gap(px, x0 + col * c, x0 + (col + 1) * c, tol)
+                        p2 = gx * gx + gy * gy
+                        if nl > 0 and not p2 > bd[k - 1]:
+                            zl = zlo[cell]
+                            up = min(max(int(math.floor((pz - zl) / cz)), 0), nl - 1)
+                            dn = up - 1
+                            # the layers of the column in order of their least distance
+                            while up < nl or dn >= 0:
+                                eu = _gap(pz, zl + up * cz, zl + (up + 1) * cz, tol) if up < nl else np.inf
+                                ed = _gap(pz, zl + dn * cz, zl + (dn + 1) * cz, tol) if dn >= 0 else np.inf
+                                if eu <= ed:
+                                    lay = up
+                                    e = eu
+                                    up += 1
+                                else:
+                                    lay = dn
+                                    e = ed
+                                    dn -= 1
+                                if p2 + e * e > bd[k - 1]:
+                                    break       # and every layer farther out
+                                v = f0 + lay
+                                for j in range(vstart[v], vstart[v + 1]):
+                                    q = vid[j]
+                                    if q == me:
+                                        continue
+                                    dx = vx[j] - px
+                                    dy = vy[j] - py
+                                    d2 = dx * dx + dy * dy
+                                    dz = vz[j] - pz
+                                    d2 += dz * dz
+                                    if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
+                                        m = k - 1
+                                        while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                                            bd[m] = bd[m - 1]
+                                            bi[m] = bi[m - 1]
+                                            m -= 1
+                                        bd[m] = d2
+                                        bi[m] = q
+                    col += step
+            # a point of a cell outside the rings searched is farther in plan than the
+            # edge of the square they cover, less tol (strictly: a tie there could be a
+            # lower point number)
+            lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
+                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
+                break
+            r += 1
+        if mode == 0:
+            for m in range(k):
+                out_d[i, m] = math.sqrt(bd[m])
+                out_i[i, m] = bi[m]
+        else:
+            out_d[i, 0] = _row_sum_sqrt(bd, k) / k
+
+
+#: Members per column of the 3D search's voxels, on average over the index's bounds, and
+#: layers per column width (the fastest on the bench yard's tiles; see :func:`_knn3`).
+_COLUMN_POINTS = 8.0
+_LAYERS = 4.0
+
+
+def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np.ndarray, mode: int = 0,
+          column_points: float = _COLUMN_POINTS, layers: float = _LAYERS):
+    """The k nearest members of ``index`` in 3D to each query point (``z``: the heights of
+    all points), on voxels: columns of f x f of the index's cells, f such that a column
+    holds about ``column_points`` members on average, split in height into ``layers``
+    layers per column width. ``mode`` 0: distances and numbers; 2: the mean distance of
+    each row (an (n, 1) array)."""
+    n = len(qx)
+    if n == 0 or k == 0 or index.n == 0:
+        if mode == 2:
+            return np.full((n, 1), np.inf), None
+        return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
+    qx, qy, qz = (np.ascontiguousarray(v, dtype=np.float64) for v in (qx, qy, qz))
+    sz = np.ascontiguousarray(z[index.sid], dtype=np.float64)
+    f = max(1, int(round(math.sqrt(column_points * index.nrow * index.ncol / index.n))))
+    f = min(f, max(index.nrow, index.ncol))
+    c = index.cell * f
+    cz = c / layers
+    nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
+    vx, vy, vz, vid, vstart, first, zlo = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
+                                                  index.ncol, f, cz)
+    # rounding slack of the cells' bounds: far more than the few units in the last place
+    # of the largest coordinate that working out a bound or a distance may lose
+    with np.errstate(invalid="ignore"):
+        scale = max(abs(index.x0), abs(index.y0), abs(index.x0 + ncol * c), abs(index.y0 + nrow * c),
+                    float(np.max(np.abs(vz), initial=0.0)), float(np.max(np.abs(qx))), float(np.max(np.abs(qy))),
+                    float(np.max(np.abs(qz), initial=0.0, where=np.isfinite(qz))))
+    tol = scale * 2.0 ** -40
+    d = np.empty((n, 1) if mode == 2 else (n, k))
+    nb = np.empty((n, k), np.int64) if mode == 0 else np.empty((1, 1), np.int64)
+    qid = skip if skip is not None else np.zeros(1, np.int64)
+
+    def piece(a: int, b: int) -> None:
+        _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, index.x0, index.y0, c, cz, nrow, ncol,
+                   tol, k, skip is not None, qid, d, nb, mode)
+
+    run_rows(piece, n)
+    return d, (None if mode == 2 else nb)
 
 
 def plan_knn(index: CellIndex, qx: np.ndarray, qy: np.ndarray, k: int,
@@ -288,8 +468,8 @@ def plan_knn(index: CellIndex, qx: np.ndarray, qy: np.ndarray, k: int,
     again from coordinates needs: :func:`min_envelope`, :func:`below_tests`).
     """
     if not dist:
-        return _knn(index, qx, qy, None, k, skip, None, mode=1)[1]
-    return _knn(index, qx, qy, None, k, skip, None)
+        return _knn(index, qx, qy, k, skip, mode=1)[1]
+    return _knn(index, qx, qy, k, skip)
 
 
 def plan_knn3(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
@@ -297,14 +477,14 @@ def plan_knn3(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, row
     """3D distances and numbers of the ``k`` nearest members to the points ``rows`` of
     (x, y, z) (the point itself included when it is a member), nearest first; ``z``
     holds the heights of all points (members included)."""
-    return _knn(index, x[rows], y[rows], z[rows], k, None, z)
+    return _knn3(index, x[rows], y[rows], z[rows], k, None, z)
 
 
 def knn3_mean(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
               k: int) -> np.ndarray:
     """Mean 3D distance of each point of ``rows`` to its ``k`` nearest other members
     (equal to ``d.mean(axis=1)`` of the distances, which are never stored)."""
-    d, _ = _knn(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z, mode=2)
+    d, _ = _knn3(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z, mode=2)
     return d[:, 0]
 
 
