@@ -269,15 +269,18 @@ def _knn(index: CellIndex, qx, qy, k: int, skip: "np.ndarray | None", mode: int 
 @njit(cache=True, nogil=True)
 def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
     """The members of a :class:`CellIndex` (cell by cell) on columns of ``f`` x ``f`` of its
-    cells, each split into layers of ``cz`` in height from the column's lowest point up;
-    points without a finite height (never anyone's neighbour in 3D) are left out. Returns
-    the coordinates and numbers voxel by voxel, the start of each voxel, each column's
-    first voxel and its lowest height."""
+    cells, each split into layers of ``cz`` in height from the column's lowest point up
+    (of more where that would make over four layers per point: a stray point far above
+    or below costs no more than its share); points without a finite height (never
+    anyone's neighbour in 3D) are left out. Returns the coordinates and numbers voxel by
+    voxel, the start of each voxel, each column's first voxel, lowest height and layer
+    height."""
     nrow2 = (nrow + f - 1) // f
     ncol2 = (ncol + f - 1) // f
     ncell = nrow2 * ncol2
     zlo = np.full(ncell, np.inf)
     zhi = np.full(ncell, -np.inf)
+    npt = np.zeros(ncell, np.int64)
     col = np.empty(len(sz), np.int64)
     for c in range(nrow * ncol):
         cell = (c // ncol) // f * ncol2 + (c % ncol) // f
@@ -287,10 +290,18 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
             if v - v == 0.0:        # finite
                 zlo[cell] = min(zlo[cell], v)
                 zhi[cell] = max(zhi[cell], v)
+                npt[cell] += 1
     first = np.empty(ncell + 1, np.int64)
     first[0] = 0
+    hz = np.full(ncell, cz)
     for c in range(ncell):
-        first[c + 1] = first[c] + (int((zhi[c] - zlo[c]) // cz) + 1 if zlo[c] <= zhi[c] else 0)
+        nl = 0
+        if npt[c]:
+            span = zhi[c] - zlo[c]
+            if span > 4.0 * npt[c] * cz:
+                hz[c] = span / (4.0 * npt[c])
+            nl = int(span // hz[c]) + 1
+        first[c + 1] = first[c] + nl
     nvox = first[ncell]
     key = np.empty(len(sz), np.int64)
     count = np.zeros(nvox + 1, np.int64)
@@ -298,7 +309,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
         v = sz[j]
         if v - v == 0.0:
             c = col[j]
-            key[j] = first[c] + int((v - zlo[c]) // cz)
+            key[j] = first[c] + int((v - zlo[c]) // hz[c])
             count[key[j] + 1] += 1
         else:
             key[j] = -1
@@ -318,7 +329,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
             vy[t] = sy[j]
             vz[t] = sz[j]
             vid[t] = sid[j]
-    return vx, vy, vz, vid, count, first, zlo
+    return vx, vy, vz, vid, count, first, zlo, hz
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -330,7 +341,7 @@ def _gap(p, lo, hi, tol):
 
 
 @njit(cache=True, nogil=True)
-def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, x0, y0, c, cz, nrow, ncol, tol, k, skip_self,
+def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, tol, k, skip_self,
                qid, out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
@@ -361,6 +372,7 @@ def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, x0, y0, c,
                         p2 = gx * gx + gy * gy
                         if nl > 0 and not p2 > bd[k - 1]:
                             zl = zlo[cell]
+                            cz = hz[cell]
                             up = min(max(int(math.floor((pz - zl) / cz)), 0), nl - 1)
                             dn = up - 1
                             # the layers of the column in order of their least distance
@@ -437,7 +449,7 @@ def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np
     c = index.cell * f
     cz = c / layers
     nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
-    vx, vy, vz, vid, vstart, first, zlo = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
+    vx, vy, vz, vid, vstart, first, zlo, hz = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
                                                   index.ncol, f, cz)
     # rounding slack of the cells' bounds: far more than the few units in the last place
     # of the largest coordinate that working out a bound or a distance may lose
@@ -451,7 +463,7 @@ def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np
     qid = skip if skip is not None else np.zeros(1, np.int64)
 
     def piece(a: int, b: int) -> None:
-        _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, index.x0, index.y0, c, cz, nrow, ncol,
+        _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, index.x0, index.y0, c, nrow, ncol,
                    tol, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
