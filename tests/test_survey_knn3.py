@@ -161,3 +161,28 @@ def test_heights_that_are_not_numbers_are_never_neighbours(bad):
     np.testing.assert_array_equal(nb, ref_nb)
     np.testing.assert_array_equal(d, ref_d)
     assert (nb[rows == 3] == -1).all()
+
+
+def test_ties_across_a_cell_edge_go_by_point_number():
+    # a lattice of 0.5 m on cells of 1 m from the origin: the query (0.5, 0.5, 0) has four
+    # neighbours at 0.5 m, two in its own cell and two exactly on the edges of the next
+    # ones, and those two carry the lowest numbers: a search that stops when the k-th
+    # distance reaches the edge (rather than when it is nearer) returns the wrong two
+    g = np.arange(5) * 0.5
+    x, y = (v.ravel() for v in np.meshgrid(g, g))
+    z = np.zeros(len(x))
+    first = [np.flatnonzero((x == 1.0) & (y == 0.5))[0], np.flatnonzero((x == 0.5) & (y == 1.0))[0]]
+    order = np.r_[first, np.setdiff1d(np.arange(len(x)), first)]
+    x, y, z = x[order], y[order], z[order]
+    q = np.flatnonzero((x == 0.5) & (y == 0.5))
+    index = CellIndex(x, y, cell=1.0)
+    assert index.x0 == 0.0 and index.y0 == 0.0
+    # voxel columns of one cell (else the query's column would hold all four)
+    d, nb = _knn3(index, x[q], y[q], z[q], 3, None, z, column_points=1.0)
+    assert nb[0].tolist() == [q[0], 0, 1] and d[0].tolist() == [0.0, 0.5, 0.5]
+    # and in height: a column of points 0.25 m apart, ties above and below
+    zc = np.arange(9) * 0.25
+    xc, yc = np.zeros(9), np.zeros(9)
+    rev = np.arange(9)[::-1].copy()          # the upper points carry the lower numbers
+    d, nb = plan_knn3(CellIndex(xc, yc, cell=1.0), xc, yc, zc[rev], np.array([4]), 3)
+    assert nb[0].tolist() == [4, 3, 5] and d[0].tolist() == [0.0, 0.25, 0.25]
