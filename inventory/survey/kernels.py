@@ -150,11 +150,12 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, a, b, sx, sy, sid, start, x0, y0, c, nrow, ncol, k, skip_self, qid, out_d, out_i, mode):
+def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, tol, k, skip_self, qid,
+              out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
-        px, py = qx[i], qy[i]
+        px, py, pz = qx[i], qy[i], qz[i]
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
@@ -180,6 +181,9 @@ def _knn_rows(qx, qy, a, b, sx, sy, sid, start, x0, y0, c, nrow, ncol, k, skip_s
                             dx = sx[j] - px
                             dy = sy[j] - py
                             d2 = dx * dx + dy * dy
+                            if use_z:
+                                dz = sz[j] - pz
+                                d2 += dz * dz
                             if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
                                 m = k - 1
                                 while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
@@ -190,19 +194,22 @@ def _knn_rows(qx, qy, a, b, sx, sy, sid, start, x0, y0, c, nrow, ncol, k, skip_s
                                 bi[m] = q
                     col += step
             # every point of a cell outside the rings searched is farther in plan than
-            # the edge of the square they cover
+            # the edge of the square they cover, less tol; strictly (a point at the
+            # k-th distance there may have the lower number)
             lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
-                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py)
-            if bd[k - 1] <= lim * lim or r > rmax:
+                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
                 break
             r += 1
         if mode == 0:       # distances and numbers
             for m in range(k):
                 out_d[i, m] = math.sqrt(bd[m])
                 out_i[i, m] = bi[m]
-        else:               # numbers only
+        elif mode == 1:     # numbers only
             for m in range(k):
                 out_i[i, m] = bi[m]
+        else:               # mean distance only, summed as numpy's mean over a row sums
+            out_d[i, 0] = _row_sum_sqrt(bd, k) / k
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -241,29 +248,49 @@ def _row_sum_sqrt(bd, k):
     return res
 
 
-def _knn(index: CellIndex, qx, qy, k: int, skip: "np.ndarray | None", mode: int = 0):
-    """The k nearest members of ``index`` in plan to each query point. ``mode`` 0: distances and
+def _slack(*values) -> float:
+    """How much less than the true distance from a point to a cell's edge the searches
+    take it to be: far more than the few units in the last place of the largest
+    coordinate (of ``values``: numbers and arrays) that working out an edge, a bound or a
+    distance may lose, so that no point is left unread that could be among the k
+    nearest, nor one at the k-th distance with a lower number."""
+    scale = 0.0
+    for v in values:
+        if np.size(v):
+            scale = max(scale, float(np.max(np.abs(v))))
+    return scale * 2.0 ** -40
+
+
+def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None", mode: int = 0):
+    """The k nearest members of ``index`` to each query point. ``mode`` 0: distances and
     numbers (int64); 1: numbers only (int32, -1 where fewer: a quarter of the memory of
-    mode 0, for callers that work the distances out again from coordinates)."""
+    mode 0, for callers that work the distances out again from coordinates); 2: the mean
+    distance of each row (an (n, 1) array, the row's values never stored)."""
     n = len(qx)
     if n == 0 or k == 0 or index.n == 0:
         if mode == 1:
             return None, np.full((n, k), -1, np.int32)
+        if mode == 2:
+            return np.full((n, 1), np.inf), None
         return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
     if mode == 1 and index.n >= 2**31:   # pragma: no cover - a tile of 2 billion points
         raise ValueError("more points than 32-bit neighbour numbers hold")
-    d = np.empty((n, k) if mode == 0 else (1, 1))   # every row is written
-    nb = np.empty((n, k), np.int32 if mode == 1 else np.int64)
+    d = np.empty((n, 1) if mode == 2 else (n, k) if mode == 0 else (1, 1))   # every row is written
+    nb = np.empty((n, k), np.int32 if mode == 1 else np.int64) if mode != 2 else np.empty((1, 1), np.int64)
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
+    use_z = z is not None
+    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
+    sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
     qid = skip if skip is not None else np.zeros(1, np.int64)
+    tol = _slack(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell, qx, qy)
 
     def piece(a: int, b: int) -> None:
-        _knn_rows(qx, qy, a, b, index.sx, index.sy, index.sid, index.start, index.x0, index.y0, index.cell,
-                  index.nrow, index.ncol, k, skip is not None, qid, d, nb, mode)
+        _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
+                  index.cell, index.nrow, index.ncol, tol, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
-    return (None if mode == 1 else d), nb
+    return (None if mode == 1 else d), (None if mode == 2 else nb)
 
 
 @njit(cache=True, nogil=True)
@@ -279,56 +306,73 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
     ncol2 = (ncol + f - 1) // f
     ncell = nrow2 * ncol2
     zlo = np.full(ncell, np.inf)
-    zhi = np.full(ncell, -np.inf)
-    npt = np.zeros(ncell, np.int64)
-    col = np.empty(len(sz), np.int64)
-    for c in range(nrow * ncol):
-        cell = (c // ncol) // f * ncol2 + (c % ncol) // f
-        for j in range(start[c], start[c + 1]):
-            col[j] = cell
-            v = sz[j]
-            if v - v == 0.0:        # finite
-                zlo[cell] = min(zlo[cell], v)
-                zhi[cell] = max(zhi[cell], v)
-                npt[cell] += 1
-    first = np.empty(ncell + 1, np.int64)
-    first[0] = 0
     hz = np.full(ncell, cz)
-    for c in range(ncell):
+    first = np.zeros(ncell + 1, np.int64)
+    # each column's lowest point, layer height and layers (the finite heights only)
+    m = 0
+    for cell in range(ncell):
+        r0 = (cell // ncol2) * f
+        c0 = (cell % ncol2) * f
+        lo = np.inf
+        hi = -np.inf
+        npt = 0
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    lo = min(lo, v)
+                    hi = max(hi, v)
+                    npt += 1
         nl = 0
-        if npt[c]:
-            span = zhi[c] - zlo[c]
-            if span > 4.0 * npt[c] * cz:
-                hz[c] = span / (4.0 * npt[c])
-            nl = int(span // hz[c]) + 1
-        first[c + 1] = first[c] + nl
+        if npt:
+            span = hi - lo
+            if span > 4.0 * npt * cz:
+                hz[cell] = span / (4.0 * npt)
+            nl = int(span / hz[cell]) + 1
+            zlo[cell] = lo
+        first[cell + 1] = first[cell] + nl
+        m += npt
     nvox = first[ncell]
-    key = np.empty(len(sz), np.int64)
     count = np.zeros(nvox + 1, np.int64)
-    for j in range(len(sz)):
-        v = sz[j]
-        if v - v == 0.0:
-            c = col[j]
-            key[j] = first[c] + int((v - zlo[c]) // hz[c])
-            count[key[j] + 1] += 1
-        else:
-            key[j] = -1
-    for j in range(nvox):
-        count[j + 1] += count[j]
-    m = count[nvox]
     vx = np.empty(m)
     vy = np.empty(m)
     vz = np.empty(m)
     vid = np.empty(m, np.int64)
-    fill = count[:-1].copy()
-    for j in range(len(sz)):
-        if key[j] >= 0:
-            t = fill[key[j]]
-            fill[key[j]] += 1
-            vx[t] = sx[j]
-            vy[t] = sy[j]
-            vz[t] = sz[j]
-            vid[t] = sid[j]
+    # a counting sort of each column's points by layer, into the column's own stretch
+    at = 0
+    for cell in range(ncell):
+        if first[cell + 1] == first[cell]:
+            continue
+        r0 = (cell // ncol2) * f
+        c0 = (cell % ncol2) * f
+        zl = zlo[cell]
+        h = hz[cell]
+        f0 = first[cell]
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    count[f0 + int((v - zl) / h) + 1] += 1
+        count[f0] = at
+        for u in range(f0, first[cell + 1]):
+            count[u + 1] += count[u]
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    t = f0 + int((v - zl) / h)
+                    w = count[t]
+                    count[t] = w + 1
+                    vx[w] = sx[j]
+                    vy[w] = sy[j]
+                    vz[w] = v
+                    vid[w] = sid[j]
+        # count[f0 .. f0 + nl - 1] now hold each layer's end: shift them back to starts
+        for u in range(first[cell + 1] - 1, f0, -1):
+            count[u] = count[u - 1]
+        count[f0] = at
+        at = count[first[cell + 1]]
+    count[nvox] = at
     return vx, vy, vz, vid, count, first, zlo, hz
 
 
@@ -428,21 +472,51 @@ def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, x0, y0
 #: layers per column width (the fastest on the bench yard's tiles; see :func:`_knn3`).
 _COLUMN_POINTS = 8.0
 _LAYERS = 4.0
+#: The voxels are built when the queries' own cells hold at least this many members per
+#: member, over k: on the bench yard's tiles the columns' scan then costs more than the
+#: voxels' counting sort (see :func:`_knn3`).
+_VOXEL_LOAD = 16.0
+
+
+@njit(cache=True, nogil=True)
+def _column_load(qx, qy, start, x0, y0, c, nrow, ncol):
+    # members in the query points' own cells, summed: what a scan of whole columns reads first
+    s = 0
+    for i in range(len(qx)):
+        cc = int(math.floor((qx[i] - x0) / c))
+        cr = int(math.floor((qy[i] - y0) / c))
+        if 0 <= cc < ncol and 0 <= cr < nrow:
+            s += start[cr * ncol + cc + 1] - start[cr * ncol + cc]
+    return s
 
 
 def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np.ndarray, mode: int = 0,
-          column_points: float = _COLUMN_POINTS, layers: float = _LAYERS):
+          voxels: "bool | None" = None, column_points: float = _COLUMN_POINTS, layers: float = _LAYERS):
     """The k nearest members of ``index`` in 3D to each query point (``z``: the heights of
-    all points), on voxels: columns of f x f of the index's cells, f such that a column
-    holds about ``column_points`` members on average, split in height into ``layers``
-    layers per column width. ``mode`` 0: distances and numbers; 2: the mean distance of
-    each row (an (n, 1) array)."""
+    all points). ``mode`` 0: distances and numbers; 2: the mean distance of each row (an
+    (n, 1) array).
+
+    Two searches give the same answers. On voxels (``voxels`` True): columns of f x f of
+    the index's cells, f such that a column holds about ``column_points`` members on
+    average, split in height into ``layers`` layers per column width (a counting sort of
+    every member); the columns around a point are searched ring by ring, the layers of
+    each outward from the point's height, skipping any voxel farther than the k-th
+    nearest so far. Or on the index's cells as they are (False), every point of each
+    cell read: cheaper for a few queries, dear where points stand in stacks (walls,
+    machines). None: voxels when ``k`` times the members in the queries' own cells is
+    at least :data:`_VOXEL_LOAD` times the members.
+    """
     n = len(qx)
     if n == 0 or k == 0 or index.n == 0:
         if mode == 2:
             return np.full((n, 1), np.inf), None
         return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
     qx, qy, qz = (np.ascontiguousarray(v, dtype=np.float64) for v in (qx, qy, qz))
+    if voxels is None:
+        load = _column_load(qx, qy, index.start, index.x0, index.y0, index.cell, index.nrow, index.ncol)
+        voxels = k * load >= _VOXEL_LOAD * index.n
+    if not voxels:
+        return _knn(index, qx, qy, qz, k, skip, z, mode)
     sz = np.ascontiguousarray(z[index.sid], dtype=np.float64)
     f = max(1, int(round(math.sqrt(column_points * index.nrow * index.ncol / index.n))))
     f = min(f, max(index.nrow, index.ncol))
@@ -451,13 +525,8 @@ def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np
     nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
     vx, vy, vz, vid, vstart, first, zlo, hz = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
                                                   index.ncol, f, cz)
-    # rounding slack of the cells' bounds: far more than the few units in the last place
-    # of the largest coordinate that working out a bound or a distance may lose
-    with np.errstate(invalid="ignore"):
-        scale = max(abs(index.x0), abs(index.y0), abs(index.x0 + ncol * c), abs(index.y0 + nrow * c),
-                    float(np.max(np.abs(vz), initial=0.0)), float(np.max(np.abs(qx))), float(np.max(np.abs(qy))),
-                    float(np.max(np.abs(qz), initial=0.0, where=np.isfinite(qz))))
-    tol = scale * 2.0 ** -40
+    tol = _slack(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, qx, qy, vz,
+                 qz[np.isfinite(qz)])
     d = np.empty((n, 1) if mode == 2 else (n, k))
     nb = np.empty((n, k), np.int64) if mode == 0 else np.empty((1, 1), np.int64)
     qid = skip if skip is not None else np.zeros(1, np.int64)
@@ -480,8 +549,8 @@ def plan_knn(index: CellIndex, qx: np.ndarray, qy: np.ndarray, k: int,
     again from coordinates needs: :func:`min_envelope`, :func:`below_tests`).
     """
     if not dist:
-        return _knn(index, qx, qy, k, skip, mode=1)[1]
-    return _knn(index, qx, qy, k, skip)
+        return _knn(index, qx, qy, None, k, skip, None, mode=1)[1]
+    return _knn(index, qx, qy, None, k, skip, None)
 
 
 def plan_knn3(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
