@@ -8,10 +8,15 @@ not depend on how the rows were split.
 
 * :class:`CellIndex` / :func:`plan_knn`: the k nearest points in plan (optionally among
   the members of a subset) of any rows, from a grid of cells: the cells around a point
-  are searched ring by ring until no cell left can hold a nearer point. Exact, like a
-  k-d tree query; equal distances are ordered by point index. The same search answers
-  the k nearest in 3D (:func:`knn3_mean`): a cell ring r cells out lies at least
-  ``r * cell`` away in plan, so in 3D as well.
+  are searched ring by ring until no cell left can hold a point as near as the k-th.
+  Exact, like a k-d tree query; equal distances are ordered by point index.
+* :func:`knn3_mean`, :func:`plan_knn3`: the k nearest in 3D, exact in the same way, by
+  one of two searches of the same answers: the plan search reading every point of each
+  cell (a cell ring r cells out lies at least ``r * cell`` away in plan, so in 3D as
+  well), or, where the queries' cells are deep (walls, machines: points stacked in
+  plan), on voxels: the index's cells grouped into columns and split in height by a
+  counting sort, the layers of each column read outward from the point's height and
+  any voxel skipped that lies farther than the k-th nearest so far.
 * :func:`below_tests`, :func:`min_envelope`: the per-point tests of
   :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
   temporary arrays of points by neighbours.
