@@ -339,9 +339,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
         m += npt
     nvox = first[ncell]
     count = np.zeros(nvox + 1, np.int64)
-    vx = np.empty(m)
-    vy = np.empty(m)
-    vz = np.empty(m)
+    vp = np.empty((m, 3))     # x, y, z side by side: a voxel's points on few cache lines
     vid = np.empty(m, np.int64)
     # a counting sort of each column's points by layer, into the column's own stretch
     at = 0
@@ -368,9 +366,9 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
                     t = f0 + int((v - zl) / h)
                     w = count[t]
                     count[t] = w + 1
-                    vx[w] = sx[j]
-                    vy[w] = sy[j]
-                    vz[w] = v
+                    vp[w, 0] = sx[j]
+                    vp[w, 1] = sy[j]
+                    vp[w, 2] = v
                     vid[w] = sid[j]
         # count[f0 .. f0 + nl - 1] now hold each layer's end: shift them back to starts
         for u in range(first[cell + 1] - 1, f0, -1):
@@ -378,7 +376,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
         count[f0] = at
         at = count[first[cell + 1]]
     count[nvox] = at
-    return vx, vy, vz, vid, count, first, zlo, hz
+    return vp, vid, count, first, zlo, hz
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -390,7 +388,7 @@ def _gap(p, lo, hi, tol):
 
 
 @njit(cache=True, nogil=True)
-def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, tol, k, skip_self,
+def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, tol, k, skip_self,
                qid, out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
@@ -440,15 +438,17 @@ def _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, x0, y0
                                     break       # and every layer farther out
                                 v = f0 + lay
                                 for j in range(vstart[v], vstart[v + 1]):
-                                    q = vid[j]
+                                    dx = vp[j, 0] - px
+                                    dy = vp[j, 1] - py
+                                    d2 = dx * dx + dy * dy
+                                    dz = vp[j, 2] - pz
+                                    d2 += dz * dz
+                                    if d2 > bd[k - 1]:
+                                        continue
+                                    q = vid[j]      # read only for a point that may enter
                                     if q == me:
                                         continue
-                                    dx = vx[j] - px
-                                    dy = vy[j] - py
-                                    d2 = dx * dx + dy * dy
-                                    dz = vz[j] - pz
-                                    d2 += dz * dz
-                                    if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
+                                    if d2 < bd[k - 1] or q < bi[k - 1]:
                                         m = k - 1
                                         while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
                                             bd[m] = bd[m - 1]
@@ -528,16 +528,16 @@ def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np
     c = index.cell * f
     cz = c / layers
     nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
-    vx, vy, vz, vid, vstart, first, zlo, hz = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
+    vp, vid, vstart, first, zlo, hz = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
                                                   index.ncol, f, cz)
-    tol = _slack(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, qx, qy, vz,
+    tol = _slack(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, qx, qy, vp[:, 2],
                  qz[np.isfinite(qz)])
     d = np.empty((n, 1) if mode == 2 else (n, k))
     nb = np.empty((n, k), np.int64) if mode == 0 else np.empty((1, 1), np.int64)
     qid = skip if skip is not None else np.zeros(1, np.int64)
 
     def piece(a: int, b: int) -> None:
-        _knn3_rows(qx, qy, qz, a, b, vx, vy, vz, vid, vstart, first, zlo, hz, index.x0, index.y0, c, nrow, ncol,
+        _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, index.x0, index.y0, c, nrow, ncol,
                    tol, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
