@@ -155,12 +155,13 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, tol, k, skip_self, qid,
+def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, skip_self, qid,
               out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
         px, py, pz = qx[i], qy[i], qz[i]
+        tol = max(scale, abs(px), abs(py)) * _SLACK
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
@@ -253,17 +254,17 @@ def _row_sum_sqrt(bd, k):
     return res
 
 
-def _slack(*values) -> float:
-    """How much less than the true distance from a point to a cell's edge the searches
-    take it to be: far more than the few units in the last place of the largest
-    coordinate (of ``values``: numbers and arrays) that working out an edge, a bound or a
-    distance may lose, so that no point is left unread that could be among the k
-    nearest, nor one at the k-th distance with a lower number."""
-    scale = 0.0
-    for v in values:
-        if np.size(v):
-            scale = max(scale, float(np.max(np.abs(v))))
-    return scale * 2.0 ** -40
+#: How much less than the true distance from a point to a cell's edge the searches take
+#: it to be, per unit of the largest coordinate magnitude at hand (the grid's, the query
+#: point's): far more than the few units in the last place that working out an edge, a
+#: bound or a distance may lose (2**-52 each), so that no point is left unread that could
+#: be among the k nearest, nor one at the k-th distance with a lower number.
+_SLACK = 2.0 ** -40
+
+
+def _grid_scale(*values: float) -> float:
+    # the largest magnitude of a grid's corners (and of its members' heights)
+    return max(abs(v) for v in values)
 
 
 def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None", mode: int = 0):
@@ -288,11 +289,11 @@ def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np
     qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
     sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
     qid = skip if skip is not None else np.zeros(1, np.int64)
-    tol = _slack(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell, qx, qy)
+    scale = _grid_scale(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell)
 
     def piece(a: int, b: int) -> None:
         _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, tol, k, skip is not None, qid, d, nb, mode)
+                  index.cell, index.nrow, index.ncol, scale, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
     return (None if mode == 1 else d), (None if mode == 2 else nb)
@@ -306,7 +307,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
     or below costs no more than its share); points without a finite height (never
     anyone's neighbour in 3D) are left out. Returns the coordinates and numbers voxel by
     voxel, the start of each voxel, each column's first voxel, lowest height and layer
-    height."""
+    height, and the largest magnitude of a height."""
     nrow2 = (nrow + f - 1) // f
     ncol2 = (ncol + f - 1) // f
     ncell = nrow2 * ncol2
@@ -315,6 +316,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
     first = np.zeros(ncell + 1, np.int64)
     # each column's lowest point, layer height and layers (the finite heights only)
     m = 0
+    zabs = 0.0
     for cell in range(ncell):
         r0 = (cell // ncol2) * f
         c0 = (cell % ncol2) * f
@@ -330,6 +332,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
                     npt += 1
         nl = 0
         if npt:
+            zabs = max(zabs, -lo, hi)
             span = hi - lo
             if span > 4.0 * npt * cz:
                 hz[cell] = span / (4.0 * npt)
@@ -376,7 +379,7 @@ def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
         count[f0] = at
         at = count[first[cell + 1]]
     count[nvox] = at
-    return vp, vid, count, first, zlo, hz
+    return vp, vid, count, first, zlo, hz, zabs
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -388,7 +391,7 @@ def _gap(p, lo, hi, tol):
 
 
 @njit(cache=True, nogil=True)
-def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, tol, k, skip_self,
+def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, scale, k, skip_self,
                qid, out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
@@ -398,6 +401,7 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
             bd[m] = np.inf
             bi[m] = -1
         me = qid[i] if skip_self else -1
+        tol = max(scale, abs(px), abs(py), abs(pz)) * _SLACK
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         r = 0
@@ -528,17 +532,16 @@ def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np
     c = index.cell * f
     cz = c / layers
     nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
-    vp, vid, vstart, first, zlo, hz = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
-                                                  index.ncol, f, cz)
-    tol = _slack(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, qx, qy, vp[:, 2],
-                 qz[np.isfinite(qz)])
+    vp, vid, vstart, first, zlo, hz, zabs = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
+                                                    index.ncol, f, cz)
+    scale = _grid_scale(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, zabs)
     d = np.empty((n, 1) if mode == 2 else (n, k))
     nb = np.empty((n, k), np.int64) if mode == 0 else np.empty((1, 1), np.int64)
     qid = skip if skip is not None else np.zeros(1, np.int64)
 
     def piece(a: int, b: int) -> None:
         _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, index.x0, index.y0, c, nrow, ncol,
-                   tol, k, skip is not None, qid, d, nb, mode)
+                   scale, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
     return d, (None if mode == 2 else nb)
