@@ -481,9 +481,9 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
 #: layers per column width (the fastest on the bench yard's tiles; see :func:`_knn3`).
 _COLUMN_POINTS = 8.0
 _LAYERS = 4.0
-#: The voxels are built when the queries' own cells hold at least this many members per
-#: member, over k: on the bench yard's tiles the columns' scan then costs more than the
-#: voxels' counting sort (see :func:`_knn3`).
+#: The voxels are built when k times the members in the queries' own cells is at least
+#: this many times the index's members: on the bench yard's tiles the scan of whole
+#: columns then costs more than the voxels' counting sort (see :func:`_knn3`).
 _VOXEL_LOAD = 16.0
 
 
