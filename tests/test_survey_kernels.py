@@ -6,7 +6,7 @@ import numpy as np
 from scipy.spatial import Delaunay, cKDTree
 
 from inventory.survey.gridding import _linear_on_lattice
-from inventory.survey.kernels import CellIndex, _knn, below_tests, has_company, knn3_mean, min_envelope, plan_knn
+from inventory.survey.kernels import CellIndex, _knn3, below_tests, has_company, knn3_mean, min_envelope, plan_knn
 
 
 def _cloud(n=4000, seed=2):
@@ -58,7 +58,7 @@ def test_knn3_mean_sums_as_numpy_does():
     rows = np.arange(len(x))
     index = CellIndex(x, y, k=16)
     for k in (1, 3, 7, 8, 9, 15, 16, 17, 24, 31):
-        dd, _ = _knn(index, x, y, z, k, rows.astype(np.int64), z)   # the table, then its mean
+        dd, _ = _knn3(index, x, y, z, k, rows.astype(np.int64), z)   # the table, then its mean
         np.testing.assert_array_equal(knn3_mean(index, x, y, z, rows, k), dd.mean(axis=1), err_msg=f"k={k}")
 
 

@@ -8,10 +8,15 @@ not depend on how the rows were split.
 
 * :class:`CellIndex` / :func:`plan_knn`: the k nearest points in plan (optionally among
   the members of a subset) of any rows, from a grid of cells: the cells around a point
-  are searched ring by ring until no cell left can hold a nearer point. Exact, like a
-  k-d tree query; equal distances are ordered by point index. The same search answers
-  the k nearest in 3D (:func:`knn3_mean`): a cell ring r cells out lies at least
-  ``r * cell`` away in plan, so in 3D as well.
+  are searched ring by ring until no cell left can hold a point as near as the k-th.
+  Exact, like a k-d tree query; equal distances are ordered by point index.
+* :func:`knn3_mean`, :func:`plan_knn3`: the k nearest in 3D, exact in the same way, by
+  one of two searches of the same answers: the plan search reading every point of each
+  cell (a cell ring r cells out lies at least ``r * cell`` away in plan, so in 3D as
+  well), or, where the queries' cells are deep (walls, machines: points stacked in
+  plan), on voxels: the index's cells grouped into columns and split in height by a
+  counting sort, the layers of each column read outward from the point's height and
+  any voxel skipped that lies farther than the k-th nearest so far.
 * :func:`below_tests`, :func:`min_envelope`: the per-point tests of
   :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
   temporary arrays of points by neighbours.
@@ -150,12 +155,13 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, k, skip_self, qid,
+def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, skip_self, qid,
               out_d, out_i, mode):
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
         px, py, pz = qx[i], qy[i], qz[i]
+        tol = max(scale, abs(px), abs(py)) * _SLACK
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
@@ -194,10 +200,11 @@ def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, 
                                 bi[m] = q
                     col += step
             # every point of a cell outside the rings searched is farther in plan than
-            # the edge of the square they cover
+            # the edge of the square they cover, less tol; strictly (a point at the
+            # k-th distance there may have the lower number)
             lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
-                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py)
-            if bd[k - 1] <= lim * lim or r > rmax:
+                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
                 break
             r += 1
         if mode == 0:       # distances and numbers
@@ -247,6 +254,19 @@ def _row_sum_sqrt(bd, k):
     return res
 
 
+#: How much less than the true distance from a point to a cell's edge the searches take
+#: it to be, per unit of the largest coordinate magnitude at hand (the grid's, the query
+#: point's): far more than the few units in the last place that working out an edge, a
+#: bound or a distance may lose (2**-52 each), so that no point is left unread that could
+#: be among the k nearest, nor one at the k-th distance with a lower number.
+_SLACK = 2.0 ** -40
+
+
+def _grid_scale(*values: float) -> float:
+    # the largest magnitude of a grid's corners (and of its members' heights)
+    return max(abs(v) for v in values)
+
+
 def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np.ndarray | None", mode: int = 0):
     """The k nearest members of ``index`` to each query point. ``mode`` 0: distances and
     numbers (int64); 1: numbers only (int32, -1 where fewer: a quarter of the memory of
@@ -269,13 +289,262 @@ def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np
     qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
     sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
     qid = skip if skip is not None else np.zeros(1, np.int64)
+    scale = _grid_scale(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell)
 
     def piece(a: int, b: int) -> None:
         _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, k, skip is not None, qid, d, nb, mode)
+                  index.cell, index.nrow, index.ncol, scale, k, skip is not None, qid, d, nb, mode)
 
     run_rows(piece, n)
     return (None if mode == 1 else d), (None if mode == 2 else nb)
+
+
+@njit(cache=True, nogil=True)
+def _voxels(sx, sy, sz, sid, start, nrow, ncol, f, cz):
+    """The members of a :class:`CellIndex` (cell by cell) on columns of ``f`` x ``f`` of its
+    cells, each split into layers of ``cz`` in height from the column's lowest point up
+    (of more where that would make over four layers per point: a stray point far above
+    or below costs no more than its share); points without a finite height (never
+    anyone's neighbour in 3D) are left out. Returns the coordinates and numbers voxel by
+    voxel, the start of each voxel, each column's first voxel, lowest height and layer
+    height, and the largest magnitude of a height."""
+    nrow2 = (nrow + f - 1) // f
+    ncol2 = (ncol + f - 1) // f
+    ncell = nrow2 * ncol2
+    zlo = np.full(ncell, np.inf)
+    hz = np.full(ncell, cz)
+    first = np.zeros(ncell + 1, np.int64)
+    # each column's lowest point, layer height and layers (the finite heights only)
+    m = 0
+    zabs = 0.0
+    for cell in range(ncell):
+        r0 = (cell // ncol2) * f
+        c0 = (cell % ncol2) * f
+        lo = np.inf
+        hi = -np.inf
+        npt = 0
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    lo = min(lo, v)
+                    hi = max(hi, v)
+                    npt += 1
+        nl = 0
+        if npt:
+            zabs = max(zabs, -lo, hi)
+            span = hi - lo
+            if span > 4.0 * npt * cz:
+                hz[cell] = span / (4.0 * npt)
+            nl = int(span / hz[cell]) + 1
+            zlo[cell] = lo
+        first[cell + 1] = first[cell] + nl
+        m += npt
+    nvox = first[ncell]
+    count = np.zeros(nvox + 1, np.int64)
+    vp = np.empty((m, 3))     # x, y, z side by side: a voxel's points on few cache lines
+    vid = np.empty(m, np.int64)
+    # a counting sort of each column's points by layer, into the column's own stretch
+    at = 0
+    for cell in range(ncell):
+        if first[cell + 1] == first[cell]:
+            continue
+        r0 = (cell // ncol2) * f
+        c0 = (cell % ncol2) * f
+        zl = zlo[cell]
+        h = hz[cell]
+        f0 = first[cell]
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    count[f0 + int((v - zl) / h) + 1] += 1
+        count[f0] = at
+        for u in range(f0, first[cell + 1]):
+            count[u + 1] += count[u]
+        for rr in range(r0, min(r0 + f, nrow)):
+            for j in range(start[rr * ncol + c0], start[rr * ncol + min(c0 + f, ncol)]):
+                v = sz[j]
+                if v - v == 0.0:
+                    t = f0 + int((v - zl) / h)
+                    w = count[t]
+                    count[t] = w + 1
+                    vp[w, 0] = sx[j]
+                    vp[w, 1] = sy[j]
+                    vp[w, 2] = v
+                    vid[w] = sid[j]
+        # count[f0 .. f0 + nl - 1] now hold each layer's end: shift them back to starts
+        for u in range(first[cell + 1] - 1, f0, -1):
+            count[u] = count[u - 1]
+        count[f0] = at
+        at = count[first[cell + 1]]
+    count[nvox] = at
+    return vp, vid, count, first, zlo, hz, zabs
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _gap(p, lo, hi, tol):
+    # how far p lies outside [lo, hi], less tol (a lower bound of |v - p| as worked out
+    # for any v that the bucketing put between lo and hi)
+    g = max(lo - p, p - hi) - tol
+    return g if g > 0.0 else 0.0
+
+
+@njit(cache=True, nogil=True)
+def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nrow, ncol, scale, k, skip_self,
+               qid, out_d, out_i, mode):
+    bd = np.empty(k)
+    bi = np.empty(k, np.int64)
+    for i in range(a, b):
+        px, py, pz = qx[i], qy[i], qz[i]
+        for m in range(k):
+            bd[m] = np.inf
+            bi[m] = -1
+        me = qid[i] if skip_self else -1
+        tol = max(scale, abs(px), abs(py), abs(pz)) * _SLACK
+        cc = int(math.floor((px - x0) / c))
+        cr = int(math.floor((py - y0) / c))
+        r = 0
+        rmax = max(nrow, ncol) + abs(cc) + abs(cr) + 1
+        while pz - pz == 0.0:     # a query without a finite height has no neighbours in 3D
+            for rr in range(cr - r, cr + r + 1):
+                if rr < 0 or rr >= nrow:
+                    continue
+                edge = rr == cr - r or rr == cr + r
+                step = 1 if (edge or r == 0) else 2 * r
+                gy = _gap(py, y0 + rr * c, y0 + (rr + 1) * c, tol)
+                col = cc - r
+                while col <= cc + r:
+                    if col >= 0 and col < ncol:
+                        cell = rr * ncol + col
+                        f0 = first[cell]
+                        nl = first[cell + 1] - f0
+                        gx = _gap(px, x0 + col * c, x0 + (col + 1) * c, tol)
+                        p2 = gx * gx + gy * gy
+                        if nl > 0 and not p2 > bd[k - 1]:
+                            zl = zlo[cell]
+                            cz = hz[cell]
+                            up = min(max(int(math.floor((pz - zl) / cz)), 0), nl - 1)
+                            dn = up - 1
+                            # the layers of the column in order of their least distance
+                            while up < nl or dn >= 0:
+                                eu = _gap(pz, zl + up * cz, zl + (up + 1) * cz, tol) if up < nl else np.inf
+                                ed = _gap(pz, zl + dn * cz, zl + (dn + 1) * cz, tol) if dn >= 0 else np.inf
+                                if eu <= ed:
+                                    lay = up
+                                    e = eu
+                                    up += 1
+                                else:
+                                    lay = dn
+                                    e = ed
+                                    dn -= 1
+                                if p2 + e * e > bd[k - 1]:
+                                    break       # and every layer farther out
+                                v = f0 + lay
+                                for j in range(vstart[v], vstart[v + 1]):
+                                    dx = vp[j, 0] - px
+                                    dy = vp[j, 1] - py
+                                    d2 = dx * dx + dy * dy
+                                    dz = vp[j, 2] - pz
+                                    d2 += dz * dz
+                                    if d2 > bd[k - 1]:
+                                        continue
+                                    q = vid[j]      # read only for a point that may enter
+                                    if q == me:
+                                        continue
+                                    if d2 < bd[k - 1] or q < bi[k - 1]:
+                                        m = k - 1
+                                        while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                                            bd[m] = bd[m - 1]
+                                            bi[m] = bi[m - 1]
+                                            m -= 1
+                                        bd[m] = d2
+                                        bi[m] = q
+                    col += step
+            # a point of a cell outside the rings searched is farther in plan than the
+            # edge of the square they cover, less tol (strictly: a tie there could be a
+            # lower point number)
+            lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
+                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
+                break
+            r += 1
+        if mode == 0:
+            for m in range(k):
+                out_d[i, m] = math.sqrt(bd[m])
+                out_i[i, m] = bi[m]
+        else:
+            out_d[i, 0] = _row_sum_sqrt(bd, k) / k
+
+
+#: Members per column of the 3D search's voxels, on average over the index's bounds, and
+#: layers per column width (the fastest on the bench yard's tiles; see :func:`_knn3`).
+_COLUMN_POINTS = 8.0
+_LAYERS = 4.0
+#: The voxels are built when k times the members in the queries' own cells is at least
+#: this many times the index's members: on the bench yard's tiles the scan of whole
+#: columns then costs more than the voxels' counting sort (see :func:`_knn3`).
+_VOXEL_LOAD = 16.0
+
+
+@njit(cache=True, nogil=True)
+def _column_load(qx, qy, start, x0, y0, c, nrow, ncol):
+    # members in the query points' own cells, summed: what a scan of whole columns reads first
+    s = 0
+    for i in range(len(qx)):
+        cc = int(math.floor((qx[i] - x0) / c))
+        cr = int(math.floor((qy[i] - y0) / c))
+        if 0 <= cc < ncol and 0 <= cr < nrow:
+            s += start[cr * ncol + cc + 1] - start[cr * ncol + cc]
+    return s
+
+
+def _knn3(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: np.ndarray, mode: int = 0,
+          voxels: "bool | None" = None, column_points: float = _COLUMN_POINTS, layers: float = _LAYERS):
+    """The k nearest members of ``index`` in 3D to each query point (``z``: the heights of
+    all points). ``mode`` 0: distances and numbers; 2: the mean distance of each row (an
+    (n, 1) array).
+
+    Two searches give the same answers. On voxels (``voxels`` True): columns of f x f of
+    the index's cells, f such that a column holds about ``column_points`` members on
+    average, split in height into ``layers`` layers per column width (a counting sort of
+    every member); the columns around a point are searched ring by ring, the layers of
+    each outward from the point's height, skipping any voxel farther than the k-th
+    nearest so far. Or on the index's cells as they are (False), every point of each
+    cell read: cheaper for a few queries, dear where points stand in stacks (walls,
+    machines). None: voxels when ``k`` times the members in the queries' own cells is
+    at least :data:`_VOXEL_LOAD` times the members.
+    """
+    n = len(qx)
+    if n == 0 or k == 0 or index.n == 0:
+        if mode == 2:
+            return np.full((n, 1), np.inf), None
+        return np.full((n, k), np.inf), np.full((n, k), -1, np.int64)
+    qx, qy, qz = (np.ascontiguousarray(v, dtype=np.float64) for v in (qx, qy, qz))
+    if voxels is None:
+        load = _column_load(qx, qy, index.start, index.x0, index.y0, index.cell, index.nrow, index.ncol)
+        voxels = k * load >= _VOXEL_LOAD * index.n
+    if not voxels:
+        return _knn(index, qx, qy, qz, k, skip, z, mode)
+    sz = np.ascontiguousarray(z[index.sid], dtype=np.float64)
+    f = max(1, int(round(math.sqrt(column_points * index.nrow * index.ncol / index.n))))
+    f = min(f, max(index.nrow, index.ncol))
+    c = index.cell * f
+    cz = c / layers
+    nrow, ncol = (index.nrow + f - 1) // f, (index.ncol + f - 1) // f
+    vp, vid, vstart, first, zlo, hz, zabs = _voxels(index.sx, index.sy, sz, index.sid, index.start, index.nrow,
+                                                    index.ncol, f, cz)
+    scale = _grid_scale(index.x0, index.y0, index.x0 + ncol * c, index.y0 + nrow * c, zabs)
+    d = np.empty((n, 1) if mode == 2 else (n, k))
+    nb = np.empty((n, k), np.int64) if mode == 0 else np.empty((1, 1), np.int64)
+    qid = skip if skip is not None else np.zeros(1, np.int64)
+
+    def piece(a: int, b: int) -> None:
+        _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, index.x0, index.y0, c, nrow, ncol,
+                   scale, k, skip is not None, qid, d, nb, mode)
+
+    run_rows(piece, n)
+    return d, (None if mode == 2 else nb)
 
 
 def plan_knn(index: CellIndex, qx: np.ndarray, qy: np.ndarray, k: int,
@@ -297,14 +566,14 @@ def plan_knn3(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, row
     """3D distances and numbers of the ``k`` nearest members to the points ``rows`` of
     (x, y, z) (the point itself included when it is a member), nearest first; ``z``
     holds the heights of all points (members included)."""
-    return _knn(index, x[rows], y[rows], z[rows], k, None, z)
+    return _knn3(index, x[rows], y[rows], z[rows], k, None, z)
 
 
 def knn3_mean(index: CellIndex, x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
               k: int) -> np.ndarray:
     """Mean 3D distance of each point of ``rows`` to its ``k`` nearest other members
     (equal to ``d.mean(axis=1)`` of the distances, which are never stored)."""
-    d, _ = _knn(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z, mode=2)
+    d, _ = _knn3(index, x[rows], y[rows], z[rows], k, rows.astype(np.int64), z, mode=2)
     return d[:, 0]
 
 
