@@ -84,7 +84,6 @@ def fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WIN
     # copies of the grid): a cell is empty when it was neither scanned nor filled.
     empty = ~filled
     empty &= ~scanned | ~np.isfinite(surface.z)
-    del scanned
     gap_cells, largest = enclosed_gaps(empty)
     del empty
     out = Surface(g, surface.z, surface.count, surface.sd, filled, surface.date,

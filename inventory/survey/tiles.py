@@ -318,12 +318,6 @@ class TileCells:
                  bottom=self.bottom, low_object=self.low_object)
         return path
 
-    @classmethod
-    def load(cls, path: Path) -> "TileCells":
-        with np.load(path) as f:
-            return cls(int(f["r0"]), int(f["c0"]), f["z"], f["count"], f["sd"], f["top"], f["bottom"],
-                       f["low_object"])
-
 
 def grid_tile(g: Grid, pts: np.ndarray, statistic: str) -> TileCells | None:
     """Grid one classified job's own surface points and object returns (not surface, not
