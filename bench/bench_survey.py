@@ -9,7 +9,8 @@ Usage::
     python bench/bench_survey.py --profile terrestrial \
         --pipeline inventory/survey/pipelines/stockpile-thin.json   # with voxel thinning
     python bench/bench_survey.py --huge                # also 200 M points
-    python bench/bench_survey.py --workers 0 1 2       # serial, a Dask cluster of 1 worker, of 2
+    python bench/bench_survey.py --workers 0 1 2       # this process, a Dask cluster of 1 worker, of 2
+    python bench/bench_survey.py --one-job-at-a-time   # this process, jobs one after the other
     python bench/bench_survey.py --site sample_site    # a real site's latest survey
     python bench/bench_survey.py --pipeline bench/surface-only.json   # the step without cleaning
                                                        # and classifier (its floor)
@@ -37,8 +38,10 @@ For each survey it prints, measured in the same run:
 * their ratio (issue 17 target: at most 10, aim 3);
 * the peak resident memory of the process that ran it (``getrusage``), and of the
   largest Dask process when workers ran (sampled with psutil if installed);
-* with ``--workers``: 0 is a serial run in this process (neighbour queries on every core,
-  what ``--workers`` 0 or 1 does), N >= 1 a local Dask cluster of N single-threaded worker
+* with ``--workers``: 0 is a run in this process as ``measure_survey`` does it by default
+  (jobs side by side, a thread per core; with ``--one-job-at-a-time`` one job after the
+  other, each job's neighbour queries on every core, what the library's ``workers=1``
+  does), N >= 1 a local Dask cluster of N single-threaded worker
   processes, started before the clock starts (its start-up is printed apart) and used
   through ``scheduler=`` as an existing cluster would be; the speed-up of each run over the
   one-worker run (else the first run), and the CPU seconds of the run and its worker
@@ -247,8 +250,9 @@ def _child(args: argparse.Namespace) -> int:
                 finally:
                     cluster.close()
             else:
+                here = {"workers": 1} if args.one_job_at_a_time else {}
                 t0 = time.perf_counter()
-                r = measure_survey(site, date, out_dir=tmp, pipeline=args.pipeline, **jobs)
+                r = measure_survey(site, date, out_dir=tmp, pipeline=args.pipeline, **jobs, **here)
                 dt = time.perf_counter() - t0
         out.update(points=r.points_read, seconds=dt, timings=r.timings, summary=r.format_summary(),
                    children_rss_mb=watch.stop(), jobs=getattr(r, "jobs", 0))
@@ -282,7 +286,8 @@ def _report(label: str, src: list[str], workers: list[int]) -> None:
         run = _measure(["survey", *src, "--workers", str(w)])
         rate = n / run["seconds"]
         steps = ", ".join(f"{k} {v:.1f} s" for k, v in run["timings"].items())
-        who = {0: "serial", 1: "1 Dask worker"}.get(w, f"{w} Dask workers")
+        who = {0: "one job at a time" if "--one-job-at-a-time" in src else "in this process",
+               1: "1 Dask worker"}.get(w, f"{w} Dask workers")
         line = (f"  survey step, {who:18s} {rate:12,.0f} points/s  ({run['seconds']:.1f} s: {steps}; "
                 f"{run['jobs']} jobs)\n"
                 f"    ratio to decode {rate_dec / rate:6.1f}x   peak RSS {run['rss_mb']:,.0f} MB"
@@ -309,7 +314,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sizes", type=float, nargs="+", default=[1, 10, 50], help="millions of points")
     ap.add_argument("--huge", action="store_true", help="also 200 million points")
     ap.add_argument("--workers", type=int, nargs="+", default=[0],
-                    help="runs to time: 0 serial, N>=1 a local Dask cluster of N single-threaded "
+                    help="runs to time: 0 in this process, N>=1 a local Dask cluster of N single-threaded "
                          "processes (e.g. --workers 0 1 2)")
     ap.add_argument("--pipeline", help="a survey pipeline JSON instead of the site's (or the packaged "
                     "default); e.g. bench/surface-only.json measures the step without cleaning or classifier")
@@ -320,6 +325,8 @@ def main(argv: list[str] | None = None) -> int:
                     "reused by later runs (default: a temporary folder, removed)")
     ap.add_argument("--job-points", type=int, default=None,
                     help="points a classification job may hold with its buffer (default: the package's JOB_POINTS)")
+    ap.add_argument("--one-job-at-a-time", action="store_true",
+                    help="the in-process run (--workers 0) classifies one job at a time instead of one per core")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)
     args, rest = ap.parse_known_args(argv)
@@ -329,6 +336,8 @@ def main(argv: list[str] | None = None) -> int:
     pipe = ["--pipeline", os.path.abspath(args.pipeline)] if args.pipeline else []
     if args.job_points is not None:
         pipe += ["--job-points", str(args.job_points)]
+    if args.one_job_at_a_time:
+        pipe += ["--one-job-at-a-time"]
     if args.site:
         src = ["--site", args.site] + (["--date", args.date] if args.date else []) + pipe
         _report(f"{args.site} {args.date or 'latest'}", src, args.workers)

@@ -214,7 +214,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     parallel = argparse.ArgumentParser(add_help=False)
     parallel.add_argument("--workers", type=int, default=None, metavar="N",
-                           help="run on a local Dask cluster of N worker processes")
+                           help="run on a local Dask cluster of N worker processes (default: in this process, "
+                                "jobs side by side on every core; 1: one job at a time)")
     parallel.add_argument("--scheduler", default=None, metavar="ADDRESS",
                            help="run on an existing Dask cluster (e.g. tcp://host:8786)")
     parallel.add_argument("-q", "--quiet", action="store_true", help="no progress lines")

@@ -10,7 +10,12 @@ classified cloud lists points job by job, the surface sums are added in the same
 the window is what bounds memory (finished results wait on the workers only until the
 ones before them are taken).
 
-* ``workers=None, scheduler=None``: serial, in this process.
+* ``workers=None`` or ``0``, no scheduler: in this process, jobs side by side on threads, one
+  per core (:func:`cores`), each job's own parallel loops on its share of the cores; a
+  single job runs alone on every core. The jobs release the GIL for nearly all their work
+  (compiled kernels, NumPy, the LAZ codec), so this keeps the cores busy where one job at a
+  time leaves them idle during its NumPy passes.
+* ``workers=1``: in this process, one job at a time (its parallel loops on every core).
 * ``workers=N, threads=True``: a pool of N threads in this process. NumPy, SciPy's
   KD-tree and the LAZ codec release the GIL for most of the work.
 * ``workers=N``: a local Dask distributed cluster of N worker processes, one thread each
@@ -26,11 +31,12 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import itertools
 import os
 import threading
 from typing import Any, Callable, Iterable, Iterator
 
-__all__ = ["Executor", "executor", "job_threads"]
+__all__ = ["Executor", "executor", "job_threads", "cores"]
 
 _local = threading.local()
 
@@ -44,6 +50,17 @@ def job_threads() -> int:
     N x cores threads.
     """
     return getattr(_local, "threads", -1)
+
+
+def cores() -> int:
+    """Cores this process may use: the share of a job (:func:`job_threads`) when it runs
+    inside one, else the CPUs it is allowed to run on (``os.sched_getaffinity``)."""
+    threads = job_threads()
+    if threads >= 1:
+        return threads
+    if hasattr(os, "sched_getaffinity"):
+        return max(1, len(os.sched_getaffinity(0)))
+    return os.cpu_count() or 1
 
 
 def _in_job(threads: int, fn: Callable[..., Any], *args: Any) -> Any:
@@ -61,9 +78,11 @@ class Executor:
 
     def __init__(self, kind: str, workers: int, submit: Callable[..., Any], result: Callable[[Any], Any],
                  close: Callable[[], None] = lambda: None, address: str | None = None,
-                 job_threads: int = -1) -> None:
+                 job_threads: int = -1, side_by_side: bool = False) -> None:
         self.kind = kind          # "serial" | "threads" | "dask"
         self.workers = workers
+        #: serial only: run the jobs of each :meth:`map` on a thread per core
+        self.side_by_side = side_by_side
         self.job_threads = job_threads
         self.address = address
         self._submit, self._result, self._close = submit, result, close
@@ -74,17 +93,29 @@ class Executor:
         At most ``window`` jobs (default twice the workers) are submitted and not yet taken.
         """
         if self.kind == "serial":
-            for job in jobs:
+            yield from self._map_here(fn, jobs, window)
+            return
+        yield from _windowed(self._submit, self._result, self.job_threads, fn, jobs,
+                             max(1, window or 2 * self.workers))
+
+    def _map_here(self, fn: Callable[..., Any], jobs: Iterable[tuple], window: int | None) -> Iterator[Any]:
+        # Serial: one job at a time, or side by side on a thread per core. A lone job runs
+        # here on every core: threads would only take its cores away.
+        n = cores() if self.side_by_side else 1
+        it = iter(jobs)
+        first = list(itertools.islice(it, 2))
+        if n <= 1 or len(first) < 2:
+            for job in itertools.chain(first, it):
                 yield fn(*job)
             return
-        window = max(1, window or 2 * self.workers)
-        pending: collections.deque = collections.deque()
-        for job in jobs:
-            pending.append(self._submit(_in_job, self.job_threads, fn, *job))
-            if len(pending) >= window:
-                yield self._result(pending.popleft())
-        while pending:
-            yield self._result(pending.popleft())
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=n, thread_name_prefix="inventory-job") as pool:
+            try:
+                yield from _windowed(pool.submit, lambda fut: fut.result(), max(1, cores() // n), fn,
+                                     itertools.chain(first, it), max(1, window or 2 * n))
+            finally:
+                pool.shutdown(wait=True, cancel_futures=True)
 
     def close(self) -> None:
         self._close()
@@ -100,6 +131,19 @@ class Executor:
         return f"Executor({self.kind}, {self.workers} workers{where})"
 
 
+def _windowed(submit: Callable[..., Any], result: Callable[[Any], Any], threads: int, fn: Callable[..., Any],
+              jobs: Iterable[tuple], window: int) -> Iterator[Any]:
+    """Results of ``fn(*job)`` in the order of ``jobs``, with at most ``window`` submitted and
+    not yet taken; each job runs with :func:`job_threads` ``threads``."""
+    pending: collections.deque = collections.deque()
+    for job in jobs:
+        pending.append(submit(_in_job, threads, fn, *job))
+        if len(pending) >= window:
+            yield result(pending.popleft())
+    while pending:
+        yield result(pending.popleft())
+
+
 def executor(workers: int | None = None, scheduler: str | None = None, *, threads: bool = False) -> Executor:
     """An :class:`Executor` for the ``--workers`` / ``--scheduler`` options.
 
@@ -107,7 +151,8 @@ def executor(workers: int | None = None, scheduler: str | None = None, *, thread
     ----------
     workers : int, optional
         Local parallelism: worker processes of a Dask ``LocalCluster`` (or threads with
-        ``threads=True``). ``None``, 0 or 1 without a scheduler runs serially.
+        ``threads=True``). Without a scheduler, ``None`` or 0 runs in this process with the
+        jobs side by side on the cores, 1 in this process one job at a time.
     scheduler : str, optional
         Address of a running Dask scheduler; wins over ``workers``.
     threads : bool
@@ -124,7 +169,7 @@ def executor(workers: int | None = None, scheduler: str | None = None, *, thread
                         lambda fut: fut.result(), client.close, address=scheduler, job_threads=1)
     n = int(workers or 0)
     if n <= 1:
-        return Executor("serial", 1, None, None)  # type: ignore[arg-type]
+        return Executor("serial", 1, None, None, side_by_side=n == 0)  # type: ignore[arg-type]
     share = max(1, (os.cpu_count() or 1) // n)   # cores per worker
     if threads:
         from concurrent.futures import ThreadPoolExecutor

@@ -8,6 +8,7 @@ LocalCluster of two worker processes (the jobs and the pipeline are pickled to t
 from __future__ import annotations
 
 import dataclasses
+import threading
 import types
 import warnings
 
@@ -19,7 +20,7 @@ from shapely.geometry import box
 
 from inventory.io.clouds import write_cloud
 from inventory._demo.synthetic import make_yard
-from inventory.parallel import executor
+from inventory.parallel import executor, job_threads
 from inventory.survey.measure import measure_survey
 from inventory.volume.measure import measure_piles
 
@@ -37,6 +38,38 @@ def test_executor_keeps_input_order_in_every_mode():
             assert list(ex.map(_square, ((i,) for i in range(7)), window=2)) == [i * i for i in range(7)]
     with pytest.raises(ValueError, match="workers must be 0 or more"):
         executor(-1)
+
+
+def _where(i):
+    return i, threading.current_thread().name, job_threads()
+
+
+def _fail_at_three(i):
+    if i == 3:
+        raise ValueError(f"job {i} failed")
+    return i
+
+
+def test_default_executor_runs_jobs_side_by_side_on_the_cores(monkeypatch):
+    import inventory.parallel as par
+
+    monkeypatch.setattr(par, "cores", lambda: 4)
+    with executor() as ex:
+        out = list(ex.map(_where, ((i,) for i in range(9))))
+    assert [i for i, _, _ in out] == list(range(9))          # in the order of the inputs
+    names = {name for _, name, _ in out}
+    assert all(n.startswith("inventory-job") for n in names) and 1 < len(names) <= 4
+    assert {t for _, _, t in out} == {1}                      # 4 cores shared by 4 jobs
+    # a lone job runs here, its own loops on every core
+    with executor(0) as ex:
+        assert list(ex.map(_where, [(7,)])) == [(7, threading.current_thread().name, -1)]
+    # --workers 1: one job at a time, here
+    with executor(1) as ex:
+        assert {name for _, name, _ in ex.map(_where, ((i,) for i in range(3)))} == {threading.current_thread().name}
+    before = set(threading.enumerate())
+    with executor() as ex, pytest.raises(ValueError, match="job 3 failed"):
+        list(ex.map(_fail_at_three, ((i,) for i in range(12))))
+    assert not [t for t in set(threading.enumerate()) - before if t.name.startswith("inventory-job")]
 
 
 @pytest.fixture(scope="module")
@@ -77,7 +110,8 @@ def _volume(result, yard):
 @pytest.mark.slow
 def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
     yard, site, root = small_site
-    serial = _run(site, tmp_path / "serial")
+    serial = _run(site, tmp_path / "serial", workers=1)          # one job at a time
+    side_by_side = _run(site, tmp_path / "default")               # the default: jobs on every core
     threaded = _run(site, tmp_path / "threads", workers=2, threads=True)
     messages: list[str] = []
     distributed = _run(site, tmp_path / "dask", workers=2, progress=messages.append)
@@ -88,7 +122,7 @@ def test_serial_threads_and_two_worker_processes_agree(small_site, tmp_path):
     ref_las = laspy.read(serial.classified_path)
     v0 = _volume(serial, yard)
     assert v0.volume_m3 > 0
-    for other in (threaded, distributed):
+    for other in (side_by_side, threaded, distributed):
         a, b = serial.surface, other.surface
         assert a.grid == b.grid
         np.testing.assert_array_equal(a.z, b.z)

@@ -42,14 +42,13 @@ replaced (tests/test_survey_kernels_small.py holds that code as the reference).
 from __future__ import annotations
 
 import math
-import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import Callable
 
 import numpy as np
 from numba import njit
 
-from inventory.parallel import job_threads
+from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
            "min_envelope", "has_company", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
@@ -66,10 +65,7 @@ def run_rows(fn: Callable[[int, int], None], n: int) -> None:
     result is the same however many threads run.
     """
     pieces = [(a, min(a + _PIECE, n)) for a in range(0, n, _PIECE)]
-    threads = job_threads()
-    if threads < 1:     # -1: every core (SciPy's workers=-1)
-        threads = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    threads = min(threads, len(pieces))
+    threads = min(cores(), len(pieces))   # job_threads(), or every core outside a job
     if threads <= 1:
         for a, b in pieces:
             fn(a, b)
