@@ -151,50 +151,64 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, skip_self, qid,
-              out_d, out_i, mode):
+def _knn_rows(qx, qy, qz, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, qid, out_d, out_i, mode):
+    # qz None: in plan; qid None: no point skipped (each case compiled on its own,
+    # without the other's tests in the inner loop)
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
-        px, py, pz = qx[i], qy[i], qz[i]
+        px, py = qx[i], qy[i]
+        pz = 0.0
+        if qz is not None:
+            pz = qz[i]
+        me = -1
+        if qid is not None:
+            me = qid[i]
         tol = max(scale, abs(px), abs(py)) * _SLACK
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
             bd[m] = np.inf
             bi[m] = -1
-        me = qid[i] if skip_self else -1
         r = 0
         rmax = max(nrow, ncol) + abs(cc) + abs(cr) + 1
         while True:
-            for rr in range(cr - r, cr + r + 1):
-                if rr < 0 or rr >= nrow:
-                    continue
-                edge = rr == cr - r or rr == cr + r
-                step = 1 if (edge or r == 0) else 2 * r
-                col = cc - r
-                while col <= cc + r:
-                    if col >= 0 and col < ncol:
-                        cell = rr * ncol + col
-                        for j in range(start[cell], start[cell + 1]):
-                            q = sid[j]
-                            if q == me:
-                                continue
-                            dx = sx[j] - px
-                            dy = sy[j] - py
-                            d2 = dx * dx + dy * dy
-                            if use_z:
-                                dz = sz[j] - pz
-                                d2 += dz * dz
-                            if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
-                                m = k - 1
-                                while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
-                                    bd[m] = bd[m - 1]
-                                    bi[m] = bi[m - 1]
-                                    m -= 1
-                                bd[m] = d2
-                                bi[m] = q
-                    col += step
+            # ring r: its bottom and top rows, each one run of members (the cells of a
+            # row are consecutive), then the cells at its two ends of each row between
+            c0, c1 = max(cc - r, 0), min(cc + r, ncol - 1)
+            rlo, rhi = max(cr - r + 1, 0), min(cr + r - 1, nrow - 1)
+            nmid = rhi - rlo + 1 if r > 0 and rhi >= rlo else 0
+            for t in range(2 + 2 * nmid):
+                if t < 2:
+                    rr = cr - r if t == 0 else cr + r
+                    if (t == 1 and r == 0) or rr < 0 or rr >= nrow or c0 > c1:
+                        continue
+                    j0 = start[rr * ncol + c0]
+                    j1 = start[rr * ncol + c1 + 1]
+                else:
+                    rr = rlo + ((t - 2) >> 1)
+                    col = cc - r if (t & 1) == 0 else cc + r
+                    if col < 0 or col >= ncol:
+                        continue
+                    j0 = start[rr * ncol + col]
+                    j1 = start[rr * ncol + col + 1]
+                for j in range(j0, j1):
+                    dx = sx[j] - px
+                    dy = sy[j] - py
+                    d2 = dx * dx + dy * dy
+                    if qz is not None:
+                        dz = sz[j] - pz
+                        d2 += dz * dz
+                    if d2 <= bd[k - 1]:
+                        q = sid[j]
+                        if (d2 < bd[k - 1] or q < bi[k - 1]) and (qid is None or q != me):
+                            m = k - 1
+                            while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                                bd[m] = bd[m - 1]
+                                bi[m] = bi[m - 1]
+                                m -= 1
+                            bd[m] = d2
+                            bi[m] = q
             # every point of a cell outside the rings searched is farther in plan than
             # the edge of the square they cover, less tol; strictly (a point at the
             # k-th distance there may have the lower number)
@@ -282,14 +296,14 @@ def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
     use_z = z is not None
-    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
+    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else None
     sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
-    qid = skip if skip is not None else np.zeros(1, np.int64)
+    qid = None if skip is None else np.ascontiguousarray(skip, dtype=np.int64)
     scale = _grid_scale(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell)
 
     def piece(a: int, b: int) -> None:
-        _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, scale, k, skip is not None, qid, d, nb, mode)
+        _knn_rows(qx, qy, qz, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
+                  index.cell, index.nrow, index.ncol, scale, k, qid, d, nb, mode)
 
     run_rows(piece, n)
     return (None if mode == 1 else d), (None if mode == 2 else nb)
