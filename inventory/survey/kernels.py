@@ -170,6 +170,7 @@ def _knn_rows(qx, qy, qz, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, s
         for m in range(k):
             bd[m] = np.inf
             bi[m] = -1
+        held = 0
         r = 0
         rmax = max(nrow, ncol) + abs(cc) + abs(cr) + 1
         while True:
@@ -202,7 +203,10 @@ def _knn_rows(qx, qy, qz, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, s
                     if d2 <= bd[k - 1]:
                         q = sid[j]
                         if (d2 < bd[k - 1] or q < bi[k - 1]) and (qid is None or q != me):
-                            m = k - 1
+                            # into the list, from its last entry held (not past empty ones)
+                            m = held
+                            if held < k - 1:
+                                held += 1
                             while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
                                 bd[m] = bd[m - 1]
                                 bi[m] = bi[m - 1]
@@ -410,6 +414,7 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
         for m in range(k):
             bd[m] = np.inf
             bi[m] = -1
+        held = 0            # entries of the list taken (the list's end while fewer than k)
         me = qid[i] if skip_self else -1
         tol = max(scale, abs(px), abs(py), abs(pz)) * _SLACK
         cc = int(math.floor((px - x0) / c))
@@ -463,7 +468,9 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
                                     if q == me:
                                         continue
                                     if d2 < bd[k - 1] or q < bi[k - 1]:
-                                        m = k - 1
+                                        m = held
+                                        if held < k - 1:
+                                            held += 1
                                         while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
                                             bd[m] = bd[m - 1]
                                             bi[m] = bi[m - 1]
