@@ -8,8 +8,10 @@ not depend on how the rows were split.
 
 * :class:`CellIndex` / :func:`plan_knn`: the k nearest points in plan (optionally among
   the members of a subset) of any rows, from a grid of cells: the cells around a point
-  are searched ring by ring until no cell left can hold a point as near as the k-th.
-  Exact, like a k-d tree query; equal distances are ordered by point index.
+  are searched ring by ring until no cell left can hold a point as near as the k-th
+  (the cells are bucketed row by row, so a ring's bottom and top rows are each read as
+  one run of members). Exact, like a k-d tree query; equal distances are ordered by
+  point index.
 * :func:`knn3_mean`, :func:`plan_knn3`: the k nearest in 3D, exact in the same way, by
   one of two searches of the same answers: the plan search reading every point of each
   cell (a cell ring r cells out lies at least ``r * cell`` away in plan, so in 3D as
