@@ -220,9 +220,67 @@ def _knn_rows(qx, qy, qz, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, s
             # k-th distance there may have the lower number)
             lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
                       py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
-            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax or bd[k - 1] < np.inf:
                 break
             r += 1
+        if bd[k - 1] < np.inf and not (lim > 0.0 and bd[k - 1] < lim * lim):
+            # k held but the square read does not settle them: rather than whole rings
+            # more, the cells of the box of the k-th distance so far about the point
+            # (which holds the k nearest: that distance only falls), less the square
+            # read; rows nearest first, a row skipped when its gap to the point, less
+            # tol, is strictly beyond the k-th distance by then (the same rule as the
+            # stop above). The insertion is written out again here: a helper function
+            # costs more than it saves in numba's inner loop
+            rho = math.sqrt(bd[k - 1]) + tol
+            fa = (px - rho - x0) / c
+            fb = (px + rho - x0) / c
+            ga = (py - rho - y0) / c
+            gb = (py + rho - y0) / c
+            ca = 0 if fa < 0.0 else (ncol - 1 if fa >= ncol else int(fa))
+            cb = 0 if fb < 0.0 else (ncol - 1 if fb >= ncol else int(fb))
+            ra = 0 if ga < 0.0 else (nrow - 1 if ga >= nrow else int(ga))
+            rb = 0 if gb < 0.0 else (nrow - 1 if gb >= nrow else int(gb))
+            reach = max(abs(cr - ra), abs(rb - cr))
+            for u in range(2 * reach + 1):
+                dd = (u + 1) >> 1           # rows cr, cr + 1, cr - 1, cr + 2, ...
+                rr = cr + dd if (u & 1) == 1 else cr - dd
+                if rr < ra or rr > rb:
+                    continue
+                if rr != cr:
+                    g = (py - (y0 + (rr + 1) * c) if rr < cr else y0 + rr * c - py) - tol
+                    if g > 0.0 and bd[k - 1] < g * g:
+                        continue
+                for part in range(2):
+                    if cr - r <= rr <= cr + r:      # a row of the square: beside it
+                        if part == 0:
+                            a0, a1 = ca, min(cb, cc - r - 1)
+                        else:
+                            a0, a1 = max(ca, cc + r + 1), cb
+                    elif part == 0:
+                        a0, a1 = ca, cb
+                    else:
+                        continue
+                    if a0 > a1:
+                        continue
+                    for j in range(start[rr * ncol + a0], start[rr * ncol + a1 + 1]):
+                        dx = sx[j] - px
+                        dy = sy[j] - py
+                        d2 = dx * dx + dy * dy
+                        if qz is not None:
+                            dz = sz[j] - pz
+                            d2 += dz * dz
+                        if d2 <= bd[k - 1]:
+                            q = sid[j]
+                            if (d2 < bd[k - 1] or q < bi[k - 1]) and (qid is None or q != me):
+                                m = held
+                                if held < k - 1:
+                                    held += 1
+                                while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                                    bd[m] = bd[m - 1]
+                                    bi[m] = bi[m - 1]
+                                    m -= 1
+                                bd[m] = d2
+                                bi[m] = q
         if mode == 0:       # distances and numbers
             for m in range(k):
                 out_d[i, m] = math.sqrt(bd[m])
