@@ -8,8 +8,10 @@ not depend on how the rows were split.
 
 * :class:`CellIndex` / :func:`plan_knn`: the k nearest points in plan (optionally among
   the members of a subset) of any rows, from a grid of cells: the cells around a point
-  are searched ring by ring until no cell left can hold a point as near as the k-th.
-  Exact, like a k-d tree query; equal distances are ordered by point index.
+  are searched ring by ring until no cell left can hold a point as near as the k-th
+  (the cells are bucketed row by row, so a ring's bottom and top rows are each read as
+  one run of members). Exact, like a k-d tree query; equal distances are ordered by
+  point index.
 * :func:`knn3_mean`, :func:`plan_knn3`: the k nearest in 3D, exact in the same way, by
   one of two searches of the same answers: the plan search reading every point of each
   cell (a cell ring r cells out lies at least ``r * cell`` away in plan, so in 3D as
@@ -151,58 +153,134 @@ class CellIndex:
 
 
 @njit(cache=True, nogil=True)
-def _knn_rows(qx, qy, qz, use_z, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, skip_self, qid,
-              out_d, out_i, mode):
+def _knn_rows(qx, qy, qz, a, b, sx, sy, sz, sid, start, x0, y0, c, nrow, ncol, scale, k, qid, out_d, out_i, mode):
+    # qz None: in plan; qid None: no point skipped (each case compiled on its own,
+    # without the other's tests in the inner loop)
     bd = np.empty(k)
     bi = np.empty(k, np.int64)
     for i in range(a, b):
-        px, py, pz = qx[i], qy[i], qz[i]
+        px, py = qx[i], qy[i]
+        pz = 0.0
+        if qz is not None:
+            pz = qz[i]
+        me = -1
+        if qid is not None:
+            me = qid[i]
         tol = max(scale, abs(px), abs(py)) * _SLACK
         cc = int(math.floor((px - x0) / c))
         cr = int(math.floor((py - y0) / c))
         for m in range(k):
             bd[m] = np.inf
             bi[m] = -1
-        me = qid[i] if skip_self else -1
+        held = 0
         r = 0
         rmax = max(nrow, ncol) + abs(cc) + abs(cr) + 1
         while True:
-            for rr in range(cr - r, cr + r + 1):
-                if rr < 0 or rr >= nrow:
+            # ring r: its bottom and top rows, each one run of members (the cells of a
+            # row are consecutive), then the cells at its two ends of each row between
+            c0, c1 = max(cc - r, 0), min(cc + r, ncol - 1)
+            rlo, rhi = max(cr - r + 1, 0), min(cr + r - 1, nrow - 1)
+            nmid = rhi - rlo + 1 if r > 0 and rhi >= rlo else 0
+            for t in range(2 + 2 * nmid):
+                if t < 2:
+                    rr = cr - r if t == 0 else cr + r
+                    if (t == 1 and r == 0) or rr < 0 or rr >= nrow or c0 > c1:
+                        continue
+                    j0 = start[rr * ncol + c0]
+                    j1 = start[rr * ncol + c1 + 1]
+                else:
+                    rr = rlo + ((t - 2) >> 1)
+                    col = cc - r if (t & 1) == 0 else cc + r
+                    if col < 0 or col >= ncol:
+                        continue
+                    j0 = start[rr * ncol + col]
+                    j1 = start[rr * ncol + col + 1]
+                for j in range(j0, j1):
+                    dx = sx[j] - px
+                    dy = sy[j] - py
+                    d2 = dx * dx + dy * dy
+                    if qz is not None:
+                        dz = sz[j] - pz
+                        d2 += dz * dz
+                    if d2 <= bd[k - 1]:
+                        q = sid[j]
+                        if (d2 < bd[k - 1] or q < bi[k - 1]) and (qid is None or q != me):
+                            # into the list, from its last entry held (not past empty ones)
+                            m = held
+                            if held < k - 1:
+                                held += 1
+                            while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
+                                bd[m] = bd[m - 1]
+                                bi[m] = bi[m - 1]
+                                m -= 1
+                            bd[m] = d2
+                            bi[m] = q
+            # every point of a cell outside the rings searched is farther in plan than
+            # the edge of the square they cover, less tol; strictly (a point at the
+            # k-th distance there may have the lower number)
+            lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
+                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
+            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax or bd[k - 1] < np.inf:
+                break
+            r += 1
+        if bd[k - 1] < np.inf and not (lim > 0.0 and bd[k - 1] < lim * lim):
+            # k held but the square read does not settle them: rather than whole rings
+            # more, the cells of the box of the k-th distance so far about the point
+            # (which holds the k nearest: that distance only falls), less the square
+            # read; rows nearest first, a row skipped when its gap to the point, less
+            # tol, is strictly beyond the k-th distance by then (the same rule as the
+            # stop above). The insertion is written out again here: a helper function
+            # costs more than it saves in numba's inner loop
+            rho = math.sqrt(bd[k - 1]) + tol
+            fa = (px - rho - x0) / c
+            fb = (px + rho - x0) / c
+            ga = (py - rho - y0) / c
+            gb = (py + rho - y0) / c
+            ca = 0 if fa < 0.0 else (ncol - 1 if fa >= ncol else int(fa))
+            cb = 0 if fb < 0.0 else (ncol - 1 if fb >= ncol else int(fb))
+            ra = 0 if ga < 0.0 else (nrow - 1 if ga >= nrow else int(ga))
+            rb = 0 if gb < 0.0 else (nrow - 1 if gb >= nrow else int(gb))
+            reach = max(abs(cr - ra), abs(rb - cr))
+            for u in range(2 * reach + 1):
+                dd = (u + 1) >> 1           # rows cr, cr + 1, cr - 1, cr + 2, ...
+                rr = cr + dd if (u & 1) == 1 else cr - dd
+                if rr < ra or rr > rb:
                     continue
-                edge = rr == cr - r or rr == cr + r
-                step = 1 if (edge or r == 0) else 2 * r
-                col = cc - r
-                while col <= cc + r:
-                    if col >= 0 and col < ncol:
-                        cell = rr * ncol + col
-                        for j in range(start[cell], start[cell + 1]):
+                if rr != cr:
+                    g = (py - (y0 + (rr + 1) * c) if rr < cr else y0 + rr * c - py) - tol
+                    if g > 0.0 and bd[k - 1] < g * g:
+                        continue
+                for part in range(2):
+                    if cr - r <= rr <= cr + r:      # a row of the square: beside it
+                        if part == 0:
+                            a0, a1 = ca, min(cb, cc - r - 1)
+                        else:
+                            a0, a1 = max(ca, cc + r + 1), cb
+                    elif part == 0:
+                        a0, a1 = ca, cb
+                    else:
+                        continue
+                    if a0 > a1:
+                        continue
+                    for j in range(start[rr * ncol + a0], start[rr * ncol + a1 + 1]):
+                        dx = sx[j] - px
+                        dy = sy[j] - py
+                        d2 = dx * dx + dy * dy
+                        if qz is not None:
+                            dz = sz[j] - pz
+                            d2 += dz * dz
+                        if d2 <= bd[k - 1]:
                             q = sid[j]
-                            if q == me:
-                                continue
-                            dx = sx[j] - px
-                            dy = sy[j] - py
-                            d2 = dx * dx + dy * dy
-                            if use_z:
-                                dz = sz[j] - pz
-                                d2 += dz * dz
-                            if d2 < bd[k - 1] or (d2 == bd[k - 1] and q < bi[k - 1]):
-                                m = k - 1
+                            if (d2 < bd[k - 1] or q < bi[k - 1]) and (qid is None or q != me):
+                                m = held
+                                if held < k - 1:
+                                    held += 1
                                 while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
                                     bd[m] = bd[m - 1]
                                     bi[m] = bi[m - 1]
                                     m -= 1
                                 bd[m] = d2
                                 bi[m] = q
-                    col += step
-            # every point of a cell outside the rings searched is farther in plan than
-            # the edge of the square they cover, less tol; strictly (a point at the
-            # k-th distance there may have the lower number)
-            lim = min(px - (x0 + (cc - r) * c), x0 + (cc + r + 1) * c - px,
-                      py - (y0 + (cr - r) * c), y0 + (cr + r + 1) * c - py) - tol
-            if (lim > 0.0 and bd[k - 1] < lim * lim) or r > rmax:
-                break
-            r += 1
         if mode == 0:       # distances and numbers
             for m in range(k):
                 out_d[i, m] = math.sqrt(bd[m])
@@ -282,14 +360,14 @@ def _knn(index: CellIndex, qx, qy, qz, k: int, skip: "np.ndarray | None", z: "np
     qx = np.ascontiguousarray(qx, dtype=np.float64)
     qy = np.ascontiguousarray(qy, dtype=np.float64)
     use_z = z is not None
-    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else qx
+    qz = np.ascontiguousarray(qz, dtype=np.float64) if use_z else None
     sz = np.ascontiguousarray(z[index.sid], dtype=np.float64) if use_z else index.sx
-    qid = skip if skip is not None else np.zeros(1, np.int64)
+    qid = None if skip is None else np.ascontiguousarray(skip, dtype=np.int64)
     scale = _grid_scale(index.x0, index.y0, index.x0 + index.ncol * index.cell, index.y0 + index.nrow * index.cell)
 
     def piece(a: int, b: int) -> None:
-        _knn_rows(qx, qy, qz, use_z, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
-                  index.cell, index.nrow, index.ncol, scale, k, skip is not None, qid, d, nb, mode)
+        _knn_rows(qx, qy, qz, a, b, index.sx, index.sy, sz, index.sid, index.start, index.x0, index.y0,
+                  index.cell, index.nrow, index.ncol, scale, k, qid, d, nb, mode)
 
     run_rows(piece, n)
     return (None if mode == 1 else d), (None if mode == 2 else nb)
@@ -396,6 +474,7 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
         for m in range(k):
             bd[m] = np.inf
             bi[m] = -1
+        held = 0            # entries of the list taken (the list's end while fewer than k)
         me = qid[i] if skip_self else -1
         tol = max(scale, abs(px), abs(py), abs(pz)) * _SLACK
         cc = int(math.floor((px - x0) / c))
@@ -449,7 +528,9 @@ def _knn3_rows(qx, qy, qz, a, b, vp, vid, vstart, first, zlo, hz, x0, y0, c, nro
                                     if q == me:
                                         continue
                                     if d2 < bd[k - 1] or q < bi[k - 1]:
-                                        m = k - 1
+                                        m = held
+                                        if held < k - 1:
+                                            held += 1
                                         while m > 0 and (bd[m - 1] > d2 or (bd[m - 1] == d2 and bi[m - 1] > q)):
                                             bd[m] = bd[m - 1]
                                             bi[m] = bi[m - 1]
