@@ -40,7 +40,9 @@ def test_executor_keeps_input_order_in_every_mode():
         executor(-1)
 
 
-def _where(i):
+def _where(i, meet=None):
+    if meet is not None:
+        meet.wait()     # returns only when another job waits too: two jobs run at once
     return i, threading.current_thread().name, job_threads()
 
 
@@ -54,8 +56,9 @@ def test_default_executor_runs_jobs_side_by_side_on_the_cores(monkeypatch):
     import inventory.parallel as par
 
     monkeypatch.setattr(par, "cores", lambda: 4)
+    meet = threading.Barrier(2, timeout=30)
     with executor() as ex:
-        out = list(ex.map(_where, ((i,) for i in range(9))))
+        out = list(ex.map(_where, ((i, meet if i < 2 else None) for i in range(9))))
     assert [i for i, _, _ in out] == list(range(9))          # in the order of the inputs
     names = {name for _, name, _ in out}
     assert all(n.startswith("inventory-job") for n in names) and 1 < len(names) <= 4
