@@ -8,6 +8,7 @@ LocalCluster of two worker processes (the jobs and the pipeline are pickled to t
 from __future__ import annotations
 
 import dataclasses
+import platform
 import threading
 import types
 import warnings
@@ -283,3 +284,31 @@ def test_fill_windows_on_two_worker_processes_match_serial():
     assert r1 == r2 and r1.filled_cells > 1000
     np.testing.assert_array_equal(serial.z, both.z)
     np.testing.assert_array_equal(serial.filled, both.filled)
+
+
+@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="malloc_trim is glibc's")
+def test_memory_freed_on_job_threads_is_handed_back_on_glibc():
+    import inventory.parallel as par
+
+    pins = []
+
+    def job():
+        # many small blocks (under the mmap threshold: they come from this thread's arena),
+        # then one that stays alive above them, as a job's result does: the arena cannot
+        # shrink from its top, so the freed blocks stay in the process
+        blocks = [bytearray(4096) for _ in range(50_000)]
+        pins.append(bytearray(4096))
+        del blocks
+
+    def rss_mb():
+        with open("/proc/self/status") as f:
+            return next(int(line.split()[1]) for line in f if line.startswith("VmRSS")) / 1024
+
+    t = threading.Thread(target=job)
+    t.start()
+    t.join()
+    kept = rss_mb()
+    par.release_free_memory()
+    assert callable(par._trim)            # glibc's malloc_trim found
+    # about 200 MB were freed in the thread's arena; they go back (glibc malloc_trim(3))
+    assert rss_mb() < kept - 100

@@ -47,7 +47,7 @@ from inventory.model.classes import (
     UNCLASSIFIED,
 )
 from inventory.model.grid import Grid, Surface
-from inventory.parallel import Executor, executor
+from inventory.parallel import Executor, executor, release_free_memory
 from inventory.site.extent import grid_size_problem
 from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
@@ -418,6 +418,7 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
                                         grid_cfg.statistic, classified_path, say, colour=read.colour,
                                         extra_dims=read.extra_dims)
             timings["classify"] = time.perf_counter() - t0
+            release_free_memory()   # what the jobs' threads freed, before the surface grid
 
             t0 = time.perf_counter()
             say("gridding the surface and filling holes")
