@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 import mmap
 import os
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -42,7 +43,8 @@ from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, ob
 from inventory.survey.pipeline import Pipeline
 from inventory.survey.spillkernels import scatter_rows, split_rows, tile_keys
 
-__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "TileCells", "TileSpill", "block_cells_for",
+__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "SpillThread", "TileCells", "TileSpill",
+           "block_cells_for",
            "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
            "run_jobs"]
 
@@ -133,6 +135,100 @@ class TileSpill:
                 out[a:b].tofile(f)
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int(outside)
+
+
+class SpillThread:
+    """:meth:`TileSpill.add` on a thread of its own, one chunk behind the caller, so that the
+    next chunk is read and placed while the last one is spilled.
+
+    The chunks are spilled one at a time in the order given, by one thread, so the spill
+    files are those of calling :meth:`TileSpill.add` in a loop. :meth:`add` hands a chunk
+    over and returns at once, after waiting for the chunk before it to be spilled (at most
+    one chunk is spilling while the caller holds the next). The chunk must not change after
+    it is handed over (the readers give a new array for every chunk). An error of the
+    spill is raised again in the caller's thread, unchanged, by the next :meth:`add` or by
+    :meth:`close`; after an error the thread spills nothing more. Use as a context manager:
+    leaving the block waits for the thread to end, whatever happened, and :attr:`outside`
+    then holds the points outside the grid. The spill's own attributes (``counts``,
+    ``blocks``, ``zmin``) are complete once :meth:`close` has returned.
+
+    The compiled kernels of :meth:`TileSpill.add` run without holding the interpreter lock
+    and the file writes release it, so the spilling overlaps the reading in earnest.
+    """
+
+    def __init__(self, spill: TileSpill) -> None:
+        self.spill = spill
+        self.outside = 0
+        self._error: BaseException | None = None
+        self._chunk: np.ndarray | None = None
+        self._done = True                       # no chunk waiting or spilling
+        self._closing = False
+        self._cond = threading.Condition()
+        self._thread = threading.Thread(target=self._run, name="tile-spill", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while True:
+            with self._cond:
+                while self._chunk is None and not self._closing:
+                    self._cond.wait()
+                if self._chunk is None:         # closing and nothing left
+                    return
+                pts = self._chunk
+                self._chunk = None
+            try:
+                if self._error is None:
+                    self.outside += self.spill.add(pts)
+            except BaseException as err:        # raised again in the caller's thread
+                self._error = err
+            finally:
+                del pts
+                with self._cond:
+                    self._done = True
+                    self._cond.notify_all()
+
+    def _wait(self) -> None:
+        """Until the chunk handed over last is spilled; raise the spill's error, if any."""
+        with self._cond:
+            while not self._done:
+                self._cond.wait()
+        if self._error is not None:
+            raise self._error
+
+    def add(self, pts: np.ndarray) -> None:
+        """Hand a chunk over to be spilled, once the chunk before it is."""
+        self._wait()
+        if self._closing:
+            raise ValueError("points added to a closed SpillThread")
+        with self._cond:
+            self._chunk = pts
+            self._done = False
+            self._cond.notify_all()
+
+    def close(self) -> int:
+        """Wait for every chunk to be spilled and the thread to end; raise the spill's error,
+        if any. Returns how many points fell outside the grid."""
+        self._stop()
+        if self._error is not None:
+            raise self._error
+        return self.outside
+
+    def _stop(self) -> None:
+        with self._cond:
+            self._closing = True
+            self._cond.notify_all()
+        self._thread.join()
+
+    def __enter__(self) -> "SpillThread":
+        return self
+
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        if exc_type is None:
+            self.close()
+        else:                                   # the caller's error wins; the thread still ends
+            with self._cond:
+                self._chunk = None              # a chunk not yet taken is not spilled
+            self._stop()
 
 
 @dataclass(frozen=True)
