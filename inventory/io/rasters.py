@@ -4,7 +4,9 @@
 256 x 256, DEFLATE, internal overviews, the main image's directory first) with CRS, nodata,
 band descriptions and units, dataset metadata items (tags), through :func:`inventory.io.atomic.atomic_path` (the file
 appears only when complete). The bytes depend only on the arrays, the grid and the options,
-so writing the same data twice gives identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
+so writing the same data twice gives identical files (GDAL compresses tiles and builds
+overviews on several threads, :func:`_gdal_threads`, and writes the tiles in order: the
+bytes do not depend on the threads). :func:`write_surface` and :func:`write_coverage` are a surface's two
 rasters written with it.
 
 :func:`read_raster` reads one band with NaN for nodata, with its grid, or resampled onto
