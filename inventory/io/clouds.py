@@ -60,9 +60,10 @@ CRS_SIDECAR = "crs.prj"
 DEFAULT_CHUNK = 1_000_000
 
 #: Points a LAS/LAZ reader decodes in one call (:meth:`CloudReader.chunks` fills a chunk in
-#: calls of this many): about a LAZ chunk's worth (50,000 points by default), short
-#: enough that a thread waiting for the interpreter lock is not held up for long.
-DECODE_STEP = 65_536
+#: calls of this many): the LAZ decoder holds the interpreter lock for a call, a few
+#: milliseconds at this size, which is how long another thread waiting for the lock is held
+#: up; the calls cost no more in all than one call per chunk.
+DECODE_STEP = 16_384
 
 #: One point as it travels through the survey step. Names are PDAL's dimension names
 #: (PDAL Dimension.json); ``StationRange`` is ours: metres from the scanner origin for
