@@ -60,10 +60,13 @@ CRS_SIDECAR = "crs.prj"
 DEFAULT_CHUNK = 1_000_000
 
 #: Points a LAS/LAZ reader decodes in one call (:meth:`CloudReader.chunks` fills a chunk in
-#: calls of this many): the LAZ decoder holds the interpreter lock for a call, a few
-#: milliseconds at this size, which is how long another thread waiting for the lock is held
-#: up; the calls cost no more in all than one call per chunk.
-DECODE_STEP = 16_384
+#: calls of this many). laspy's parallel LAZ decoder (lazrs) decodes the LAZ chunks of one
+#: call (50,000 points each by default) side by side and holds the interpreter lock until
+#: the call returns: four LAZ chunks a call keep two cores busy and hold the lock for tens
+#: of milliseconds, not for a whole chunk of :data:`DEFAULT_CHUNK` points, so that another
+#: thread waiting for it (the survey step's spill) goes on between calls. Measured on the
+#: issue 17 bench file (CHANGELOG): 16,384 points a call lose the parallel decoding.
+DECODE_STEP = 200_000
 
 #: One point as it travels through the survey step. Names are PDAL's dimension names
 #: (PDAL Dimension.json); ``StationRange`` is ours: metres from the scanner origin for
@@ -419,7 +422,7 @@ class CloudReader:
         column for each of :attr:`extra_dims` (the stored values).
 
         Each chunk is decoded :data:`DECODE_STEP` points at a time into its array: the LAZ
-        decoder holds the interpreter lock while it runs, so short calls let another thread
+        decoder holds the interpreter lock while it runs, so shorter calls let another thread
         (the survey step's spill, :class:`~inventory.survey.tiles.SpillThread`) go on between
         them. The chunks are the same whatever the step."""
         names = set(self.header.point_format.dimension_names)
