@@ -215,3 +215,28 @@ def test_spill_thread_outside_count_and_use_after_close(tmp_path):
     with pytest.raises(ValueError, match="closed SpillThread"):
         behind.add(pts)
     assert spill_threads() == []
+
+
+def test_tile_files_kept_open_hold_the_bytes_of_files_opened_each_time(tmp_path, two_files):
+    """Within ``kept_open`` the spill keeps at most ``most`` tile files open (the least
+    recently written closed first) and writes the same bytes; all are closed after."""
+    import os
+
+    def chunks():
+        with open_cloud(two_files[1], chunk_size=1_500) as c:
+            yield from c.chunks()
+
+    ref = spill_for(tmp_path / "ref")
+    for pts in chunks():
+        ref.add(pts)
+    spill = spill_for(tmp_path / "kept")
+    before = len(os.listdir("/proc/self/fd")) if Path("/proc/self/fd").is_dir() else None
+    with spill.kept_open(most=3):
+        for pts in chunks():
+            spill.add(pts)
+            assert 1 <= len(spill._open) <= 3
+        assert len(ref.counts) > 3                  # more tiles than files kept open
+    assert spill._open is None
+    if before is not None:
+        assert len(os.listdir("/proc/self/fd")) == before
+    assert spill_state(spill)[0] == spill_state(ref)[0] and spill.counts == ref.counts

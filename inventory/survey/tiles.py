@@ -26,6 +26,8 @@ import math
 import mmap
 import os
 import threading
+from collections import OrderedDict
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -54,6 +56,10 @@ __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "Spill
 #: (one per worker). A tile over it is cut into smaller jobs; a single block is a job
 #: whatever its count.
 JOB_POINTS = 1_000_000
+
+#: Tile files a spill keeps open at most within :meth:`TileSpill.kept_open` (well under the
+#: usual limits of open files per process: 256 on macOS, 1,024 on Linux).
+OPEN_TILES = 64
 
 #: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
 #: points are counted per block while they are spilled, and jobs are made of whole blocks.
@@ -97,11 +103,29 @@ class TileSpill:
         self.folder = folder
         self.counts: dict[int, int] = {}
         self.zmin = math.inf
+        #: Tile files kept open between calls of :meth:`add` inside :meth:`kept_open`.
+        self._open: "OrderedDict[int, int] | None" = None
 
     def __getstate__(self) -> dict:
         state = self.__dict__.copy()
         state["blocks"] = None      # the plan is made where the points were spilled; jobs need no counts
+        state["_open"] = None
         return state
+
+    @contextmanager
+    def kept_open(self, most: int = OPEN_TILES) -> Iterator[None]:
+        """Within the block, :meth:`add` keeps up to ``most`` tile files open between calls
+        (those written last) instead of opening and closing a file for every tile of every
+        chunk: the bytes are the same, and a spill on a thread of its own
+        (:class:`SpillThread`) waits for the interpreter lock once a tile, for the write,
+        not three times. Every file is closed when the block is left."""
+        self._open, self._most = OrderedDict(), max(1, most)
+        try:
+            yield
+        finally:
+            fds, self._open = self._open, None
+            for fd in fds.values():
+                os.close(fd)
 
     def path(self, tile: int) -> Path:
         return self.folder / f"tile_{tile}.bin"
@@ -131,9 +155,24 @@ class TileSpill:
         for t in np.flatnonzero(tile_counts):
             a, b = starts[t], starts[t] + tile_counts[t]
             t = int(t)
-            _append(self.path(t), out[a:b])
+            if self._open is None:
+                _append(self.path(t), out[a:b])
+            else:
+                _write_all(self._fd(t), out[a:b])
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int(outside)
+
+    def _fd(self, tile: int) -> int:
+        """The open file of ``tile`` (within :meth:`kept_open`), the least recently written
+        one closed when more than the limit would be open."""
+        fds = self._open
+        fd = fds.pop(tile, None)
+        if fd is None:
+            if len(fds) >= self._most:
+                os.close(fds.pop(next(iter(fds))))
+            fd = os.open(self.path(tile), _APPEND, 0o666)
+        fds[tile] = fd
+        return fd
 
 
 #: Flags of a tile file opened for appending (binary on Windows).
@@ -146,13 +185,18 @@ def _append(path: Path, rows: np.ndarray) -> None:
     Three system calls (open, write, close), each releasing the interpreter lock, where a
     Python file and ``ndarray.tofile`` make more than a dozen: a spill running beside the
     reader (:class:`SpillThread`) waits for the lock once for each."""
-    view = memoryview(rows).cast("B")
     fd = os.open(path, _APPEND, 0o666)
     try:
-        while view:
-            view = view[os.write(fd, view):]
+        _write_all(fd, rows)
     finally:
         os.close(fd)
+
+
+def _write_all(fd: int, rows: np.ndarray) -> None:
+    """Write ``rows`` (C-contiguous bytes) to ``fd``, whatever each write takes."""
+    view = memoryview(rows).cast("B")
+    while view:
+        view = view[os.write(fd, view):]
 
 
 class SpillThread:
@@ -171,7 +215,9 @@ class SpillThread:
     ``blocks``, ``zmin``) are complete once :meth:`close` has returned.
 
     The compiled kernels of :meth:`TileSpill.add` run without holding the interpreter lock
-    and the file writes release it, so the spilling overlaps the reading in earnest.
+    and the file writes release it, so the spilling overlaps the reading in earnest; the
+    thread keeps the tile files open while it runs (:meth:`TileSpill.kept_open`), so that
+    it waits for the lock once a tile and chunk.
     """
 
     def __init__(self, spill: TileSpill) -> None:
@@ -186,6 +232,14 @@ class SpillThread:
         self._thread.start()
 
     def _run(self) -> None:
+        try:
+            with self.spill.kept_open():        # closed before the thread ends
+                self._loop()
+        except BaseException as err:            # closing a tile file failed
+            if self._error is None:
+                self._error = err
+
+    def _loop(self) -> None:
         while True:
             with self._cond:
                 while self._chunk is None and not self._closing:
