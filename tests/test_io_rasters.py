@@ -81,6 +81,29 @@ def test_rerun_gives_identical_bytes(tmp_path):
     assert a.read_bytes() == b.read_bytes()
 
 
+def test_threaded_compression_gives_the_bytes_of_one_thread(tmp_path, monkeypatch):
+    """GDAL compresses tiles and builds overviews on several threads (``NUM_THREADS``); the
+    tiles are still written in order, so the files are those of one thread."""
+    from inventory.io import rasters
+    from inventory.parallel import _in_job
+
+    g = Grid(500000.0, 5701000.0, 0.5, 900, 1100, "EPSG:25832")    # 4 x 5 tiles, two overviews
+    rng = np.random.default_rng(5)
+    z = 100.0 + np.cumsum(rng.normal(0, 0.01, g.shape), axis=1)
+    z[:60, :90] = np.nan
+    count = np.where(np.isfinite(z), rng.integers(0, 9, g.shape), 0).astype(np.int32)
+    s = Surface(g, z, count, np.zeros(g.shape), rng.random(g.shape) < 0.05, date="2026-10-31")
+    files = {}
+    for threads in ("1", "4", "ALL_CPUS"):
+        monkeypatch.setattr(rasters, "_gdal_threads", lambda: threads)
+        files[threads] = (write_surface(s, tmp_path / f"s{threads}.tif").read_bytes(),
+                          write_coverage(s, tmp_path / f"c{threads}.tif").read_bytes())
+    assert files["4"] == files["1"] and files["ALL_CPUS"] == files["1"]
+    monkeypatch.undo()
+    assert rasters._gdal_threads() == "ALL_CPUS"               # a serial run: every core
+    assert _in_job(1, rasters._gdal_threads) == "1"            # a job's share of them
+
+
 def test_refusals_leave_nothing(surface, tmp_path):
     g = surface.grid
     with pytest.raises(ValueError, match="does not match grid"):

@@ -312,3 +312,30 @@ def test_memory_freed_on_job_threads_is_handed_back_on_glibc():
     assert callable(par._trim)            # glibc's malloc_trim found
     # about 200 MB were freed in the thread's arena; they go back (glibc malloc_trim(3))
     assert rss_mb() < kept - 100
+
+
+def test_fill_windows_on_threads_of_this_process_match_one_thread():
+    # Without workers the windows run on threads of this process (Qhull and scipy.ndimage
+    # release the interpreter lock); the fills are put in place in window order, so the
+    # surface is the one of a single thread, cell for cell.
+    from inventory.model.grid import Grid, Surface
+    from inventory.survey.fill import fill_windows
+
+    rng = np.random.default_rng(9)
+    g = Grid(500000.0, 6000300.0, 0.5, 260, 250, CRS)
+    rows, cols = np.mgrid[0:260, 0:250]
+    z = 100.0 + np.sin(cols / 11.0) + np.cos(rows / 5.0)
+    count = (rng.random(g.shape) > 0.2).astype(np.int32)
+    count[120:150, 30:90] = 0
+
+    def surface():
+        return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
+                       np.zeros(g.shape, bool), DATE, {})
+
+    one, r1 = fill_windows(surface(), 2.0, window=64, threads=1)
+    with executor(None) as ex:
+        assert ex.kind == "serial"
+        many, r3 = fill_windows(surface(), 2.0, window=64, ex=ex, threads=3)
+    assert r1 == r3 and r1.filled_cells > 1000 and r1.gap_cells > 0
+    np.testing.assert_array_equal(one.z, many.z)
+    np.testing.assert_array_equal(one.filled, many.filled)

@@ -59,6 +59,15 @@ CRS_SIDECAR = "crs.prj"
 #: bytes of a file's extra dimensions, :class:`ExtraDim`).
 DEFAULT_CHUNK = 1_000_000
 
+#: Points a LAS/LAZ reader decodes in one call (:meth:`CloudReader.chunks` fills a chunk in
+#: calls of this many). laspy's parallel LAZ decoder (lazrs) decodes the LAZ chunks of one
+#: call (50,000 points each by default) side by side and holds the interpreter lock until
+#: the call returns: four LAZ chunks a call keep two cores busy and hold the lock for tens
+#: of milliseconds, not for a whole chunk of :data:`DEFAULT_CHUNK` points, so that another
+#: thread waiting for it (the survey step's spill) goes on between calls. Measured on the
+#: issue 17 bench file (CHANGELOG): 16,384 points a call lose the parallel decoding.
+DECODE_STEP = 200_000
+
 #: One point as it travels through the survey step. Names are PDAL's dimension names
 #: (PDAL Dimension.json); ``StationRange`` is ours: metres from the scanner origin for
 #: clouds given in a scanner's own frame, NaN where the station is unknown.
@@ -391,33 +400,56 @@ class CloudReader:
                 rest.append((dim, attr))
         return copies, bits, rest
 
+    def _fill(self, rec: Any, plan: tuple[list, list, list], names: set, out: np.ndarray) -> None:
+        """Fill ``out`` (as many points as ``rec``) from laspy's records by ``plan``."""
+        copies, bits, rest = plan
+        arr = rec.array
+        for i, c in enumerate("XYZ"):       # laspy's rec.x, without its temporaries
+            scale_into(arr[c], float(rec.scales[i]), float(rec.offsets[i]), out[c])
+        for column, field in copies:
+            out[column] = arr[field]
+        for column, field, mask in bits:
+            unpack_bits_into(arr[field], mask, out[column])
+        for dim, attr in rest:
+            out[dim] = np.asarray(rec[attr])
+        if "scan_angle" in names:
+            out["ScanAngleRank"] = np.asarray(rec["scan_angle"]) * SCAN_ANGLE_STEP
+        elif "scan_angle_rank" in names:
+            out["ScanAngleRank"] = np.asarray(rec["scan_angle_rank"])
+
     def chunks(self) -> Iterator[np.ndarray]:
         """Yield the points as :data:`POINT_DTYPE` arrays of at most ``chunk_size``, with a
-        column for each of :attr:`extra_dims` (the stored values)."""
+        column for each of :attr:`extra_dims` (the stored values).
+
+        Each chunk is decoded :data:`DECODE_STEP` points at a time into its array: the LAZ
+        decoder holds the interpreter lock while it runs, so shorter calls let another thread
+        (the survey step's spill, :class:`~inventory.survey.tiles.SpillThread`) go on between
+        them. The chunks are the same whatever the step."""
         names = set(self.header.point_format.dimension_names)
         plan = None
+        step = max(1, min(self.chunk_size, DECODE_STEP))
         try:
-            for rec in self._reader.chunk_iterator(self.chunk_size):
-                n = len(rec)
-                if plan is None:
-                    plan = self._fill_plan(rec, names)
-                copies, bits, rest = plan
-                arr = rec.array
-                out = empty_points(n, self.extra_dims)
-                for i, c in enumerate("XYZ"):       # laspy's rec.x, without its temporaries
-                    scale_into(arr[c], float(rec.scales[i]), float(rec.offsets[i]), out[c])
-                for column, field in copies:
-                    out[column] = arr[field]
-                for column, field, mask in bits:
-                    unpack_bits_into(arr[field], mask, out[column])
-                for dim, attr in rest:
-                    out[dim] = np.asarray(rec[attr])
-                if "scan_angle" in names:
-                    out["ScanAngleRank"] = np.asarray(rec["scan_angle"]) * SCAN_ANGLE_STEP
-                elif "scan_angle_rank" in names:
-                    out["ScanAngleRank"] = np.asarray(rec["scan_angle_rank"])
-                self.read += n
-                yield out
+            while True:
+                size = min(self.chunk_size, self.count - self.read)
+                if size <= 0:
+                    break
+                out = empty_points(size, self.extra_dims)
+                filled = 0
+                while filled < size:
+                    rec = self._reader.read_points(min(step, size - filled))
+                    n = len(rec)
+                    if n == 0:
+                        break
+                    if plan is None:
+                        plan = self._fill_plan(rec, names)
+                    self._fill(rec, plan, names, out[filled:filled + n])
+                    filled += n
+                if filled == 0:
+                    break
+                self.read += filled
+                yield out if filled == size else out[:filled]
+                if filled < size:
+                    break
         except (laspy.errors.LaspyException, OSError, ValueError, RuntimeError) as err:
             # RuntimeError: the LAZ decoder's own errors (lazrs.LazrsError) on damaged data
             raise InputError(self.path, f"truncated or damaged: decoding failed after {self.read:,} of "

@@ -4,7 +4,9 @@
 256 x 256, DEFLATE, internal overviews, the main image's directory first) with CRS, nodata,
 band descriptions and units, dataset metadata items (tags), through :func:`inventory.io.atomic.atomic_path` (the file
 appears only when complete). The bytes depend only on the arrays, the grid and the options,
-so writing the same data twice gives identical files. :func:`write_surface` and :func:`write_coverage` are a surface's two
+so writing the same data twice gives identical files (GDAL compresses tiles and builds
+overviews on several threads, :func:`_gdal_threads`, and writes the tiles in order: the
+bytes do not depend on the threads). :func:`write_surface` and :func:`write_coverage` are a surface's two
 rasters written with it.
 
 :func:`read_raster` reads one band with NaN for nodata, with its grid, or resampled onto
@@ -23,6 +25,7 @@ from inventory.errors import CRSError, InputWarning, RunError
 from inventory.io.atomic import atomic_path
 from inventory.model.grid import Grid, Surface
 from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
+from inventory.parallel import job_threads
 
 __all__ = ["COVERAGE_NODATA", "NODATA", "TILE", "read_raster", "write_coverage", "write_raster", "write_surface"]
 
@@ -36,6 +39,13 @@ TILE = 256
 #: GDAL block cache (MB) while a raster is written: a strip of tiles at a time needs little,
 #: and GDAL's default (5 % of the machine's memory) would hold a whole large raster.
 _CACHE_MB = 64
+
+
+def _gdal_threads() -> str:
+    """GDAL's ``NUM_THREADS`` for compressing tiles and building overviews: every core in a
+    serial run, a job's share of them inside a job (:func:`inventory.parallel.job_threads`)."""
+    n = job_threads()
+    return "ALL_CPUS" if n < 0 else str(max(n, 1))
 
 
 def write_raster(
@@ -107,14 +117,15 @@ def write_raster(
     from rasterio.shutil import copy as copy_dataset
     from rasterio.windows import Window
 
+    threads = _gdal_threads()
     # Tiled and lightly compressed in memory, written a strip of tiles at a time with a
     # small block cache: memory is a strip's, not a copy of every band in the file's type.
     profile = dict(driver="GTiff", width=grid.ncols, height=grid.nrows, count=len(arrays), dtype=dtype,
                    crs=grid.crs, transform=grid.transform, nodata=nodata, tiled=True, blockxsize=TILE,
-                   blockysize=TILE, compress="DEFLATE", zlevel=1)
+                   blockysize=TILE, compress="DEFLATE", zlevel=1, num_threads=threads)
     # GDAL's COG driver only copies a finished dataset: build it in memory, then copy it into
     # the layout the COG specification asks for (OGC 21-026).
-    with Env(GDAL_CACHEMAX=_CACHE_MB), MemoryFile() as mem:
+    with Env(GDAL_CACHEMAX=_CACHE_MB, GDAL_NUM_THREADS=threads), MemoryFile() as mem:
         with mem.open(**profile) as ds:
             items = {str(k): str(v) for k, v in (tags or {}).items() if v is not None}
             if items:
@@ -137,7 +148,8 @@ def write_raster(
         with mem.open() as src, atomic_path(path) as tmp:
             copy_dataset(src, tmp, driver="COG", BLOCKSIZE=TILE, COMPRESS="DEFLATE",
                          PREDICTOR="FLOATING_POINT" if floating else "STANDARD",
-                         OVERVIEW_RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER")
+                         OVERVIEW_RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
+                         NUM_THREADS=threads)
     return path
 
 

@@ -8,7 +8,7 @@ import math
 import numpy as np
 
 from inventory.model.grid import Grid, Surface
-from inventory.parallel import Executor
+from inventory.parallel import Executor, cores, executor
 from inventory.survey.gridding import FillReport, enclosed_gaps, fill_holes
 
 __all__ = ["FILL_WINDOW_CELLS", "fill_windows"]
@@ -29,7 +29,8 @@ def _fill_window(sub: Surface, max_distance_m: float, core: tuple[slice, slice],
 
 
 def fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WINDOW_CELLS,
-                 margin_reach: int = 4, ex: Executor | None = None) -> tuple[Surface, FillReport]:
+                 margin_reach: int = 4, ex: Executor | None = None,
+                 threads: int | None = None) -> tuple[Surface, FillReport]:
     """:func:`~inventory.survey.gridding.fill_holes` window by window, with a margin.
 
     A grid of at most ``window`` x ``window`` cells is filled whole, exactly as
@@ -37,7 +38,10 @@ def fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WIN
     filled from itself and a margin of ``margin_reach`` times the reach of the fill (the
     distance plus two cells) around it, keeping its own cells: memory is that of one
     window, not of a Delaunay triangulation of the whole survey; windows run on ``ex`` (an
-    :class:`~inventory.parallel.Executor`) when given. A cell's fill then comes
+    :class:`~inventory.parallel.Executor`) when it has workers, else on ``threads`` threads
+    of this process (default :func:`~inventory.parallel.cores`; 1 runs them one after the other): the
+    triangulation (Qhull), the distance transform and the labelling release the interpreter
+    lock, and at most ``threads`` windows are in memory at once. A cell's fill then comes
     from the scanned cells within the margin around its window. Against one triangulation
     of the whole grid, what differs is the choice among equally Delaunay diagonals of
     cocircular cells (the lattice is full of them, and Qhull's choice depends on every
@@ -73,9 +77,14 @@ def fill_windows(surface: Surface, max_distance_m: float, window: int = FILL_WIN
                                    surface.sd[R0:R1, C0:C1], np.zeros(sub.shape, bool), surface.date),
                            max_distance_m, (slice(r0 - R0, r1 - R0), slice(c0 - C0, c1 - C0)), r0, c0, g.ncols)
 
-        # (flat index, value) of each window: z changes only after every window has read it
-        runs = ex.map(_fill_window, jobs()) if ex is not None else (_fill_window(*job) for job in jobs())
-        fills = [f for f in runs if len(f[0])]
+        # (flat index, value) of each window, in window order: z changes only after every
+        # window has read it
+        if ex is not None and ex.kind != "serial":
+            fills = [f for f in ex.map(_fill_window, jobs()) if len(f[0])]
+        else:
+            n = max(1, threads if threads is not None else cores())
+            with executor(n, threads=True) as pool:
+                fills = [f for f in pool.map(_fill_window, jobs(), window=n) if len(f[0])]
         for idx, values in fills:
             surface.z.ravel()[idx] = values
             filled.ravel()[idx] = True

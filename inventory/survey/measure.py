@@ -55,7 +55,8 @@ from inventory.survey.gridding import FillReport
 from inventory.survey.pipeline import Pipeline, load_pipeline, pdal_available
 from inventory.site.control import Registration
 from inventory.survey.placement import ControlPlacement, Placement, survey_placements
-from inventory.survey.tiles import JOB_POINTS, TileSpill, block_cells_for, grid_tiles, plan_jobs, run_jobs
+from inventory.survey.tiles import (JOB_POINTS, SpillThread, TileSpill, block_cells_for, grid_tiles, plan_jobs,
+                                    run_jobs)
 
 __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M", "DEFAULT_BUFFER_M", "JOB_POINTS"]
 
@@ -211,7 +212,12 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
     user data, ...), and the extra bytes dimensions of the files (their union: a file
     lacking one gives its points the dimension's no-data value, else 0) become columns of
     the spilled points (``spill.dtype``). A file with points not placed, and every extra
-    dimension lacking or not carried, is reported in an :class:`~inventory.errors.InputWarning`."""
+    dimension lacking or not carried, is reported in an :class:`~inventory.errors.InputWarning`.
+
+    The reading, placing and warnings happen in this thread; each chunk is spilled on a
+    thread of its own (:class:`~inventory.survey.tiles.SpillThread`) while the next one is
+    read, in order, so the spill files are those of spilling chunk after chunk here. An
+    error of either is raised here as it was raised, once the spill thread has ended."""
     total = 0
     files = []
     for p in placements:
@@ -224,20 +230,22 @@ def _read_into_spill(placements: list[Placement], spill: TileSpill, chunk_size: 
         warnings.warn(InputWarning(problem), stacklevel=3)
     spill.dtype = points_dtype(read.extra_dims)
     t0 = time.perf_counter()
-    for p in placements:
-        with p.open(chunk_size) as cloud:
-            read.colour = read.colour or cloud.has_colour
-            for chunk in cloud.chunks():
-                n_chunk = len(chunk)
-                chunk = conform_points(p.place(chunk), read.extra_dims)
-                read.outside += spill.add(chunk)
-                read.points += n_chunk
-                say(f"reading {p.path.name}: {_rate(read.points, total, time.perf_counter() - t0)}")
-        unplaced = p.warning()
-        if unplaced is not None:
-            warnings.warn(unplaced, stacklevel=3)   # attributed to the caller of measure_survey
-        read.outside_span += p.outside_span
-        read.in_gap += p.in_gap
+    with SpillThread(spill) as behind:
+        for p in placements:
+            with p.open(chunk_size) as cloud:
+                read.colour = read.colour or cloud.has_colour
+                for chunk in cloud.chunks():
+                    n_chunk = len(chunk)
+                    behind.add(conform_points(p.place(chunk), read.extra_dims))
+                    del chunk
+                    read.points += n_chunk
+                    say(f"reading {p.path.name}: {_rate(read.points, total, time.perf_counter() - t0)}")
+            unplaced = p.warning()
+            if unplaced is not None:
+                warnings.warn(unplaced, stacklevel=3)   # attributed to the caller of measure_survey
+            read.outside_span += p.outside_span
+            read.in_gap += p.in_gap
+        read.outside = behind.close()
     return read
 
 

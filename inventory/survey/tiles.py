@@ -25,6 +25,9 @@ from __future__ import annotations
 import math
 import mmap
 import os
+import threading
+from collections import OrderedDict
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator
@@ -42,7 +45,8 @@ from inventory.survey.gridding import OBJECT_CLEARANCE_M, SurfaceAccumulator, ob
 from inventory.survey.pipeline import Pipeline
 from inventory.survey.spillkernels import scatter_rows, split_rows, tile_keys
 
-__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "TileCells", "TileSpill", "block_cells_for",
+__all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "SpillThread", "TileCells", "TileSpill",
+           "block_cells_for",
            "classify_job", "classify_job_to_file", "grid_tile", "grid_tiles", "job_points", "plan_jobs",
            "run_jobs"]
 
@@ -52,6 +56,10 @@ __all__ = ["BLOCK_M", "JOBS_IN_FLIGHT", "JOB_POINTS", "Job", "JobResult", "TileC
 #: (one per worker). A tile over it is cut into smaller jobs; a single block is a job
 #: whatever its count.
 JOB_POINTS = 1_000_000
+
+#: Tile files a spill keeps open at most within :meth:`TileSpill.kept_open` (well under the
+#: usual limits of open files per process: 256 on macOS, 1,024 on Linux).
+OPEN_TILES = 64
 
 #: Edge of a block in metres (rounded to a divisor of the tile; :func:`block_cells_for`):
 #: points are counted per block while they are spilled, and jobs are made of whole blocks.
@@ -95,11 +103,29 @@ class TileSpill:
         self.folder = folder
         self.counts: dict[int, int] = {}
         self.zmin = math.inf
+        #: Tile files kept open between calls of :meth:`add` inside :meth:`kept_open`.
+        self._open: "OrderedDict[int, int] | None" = None
 
     def __getstate__(self) -> dict:
         state = self.__dict__.copy()
         state["blocks"] = None      # the plan is made where the points were spilled; jobs need no counts
+        state["_open"] = None
         return state
+
+    @contextmanager
+    def kept_open(self, most: int = OPEN_TILES) -> Iterator[None]:
+        """Within the block, :meth:`add` keeps up to ``most`` tile files open between calls
+        (those written last) instead of opening and closing a file for every tile of every
+        chunk: the bytes are the same, and a spill on a thread of its own
+        (:class:`SpillThread`) waits for the interpreter lock once a tile, for the write,
+        not three times. Every file is closed when the block is left."""
+        self._open, self._most = OrderedDict(), max(1, most)
+        try:
+            yield
+        finally:
+            fds, self._open = self._open, None
+            for fd in fds.values():
+                os.close(fd)
 
     def path(self, tile: int) -> Path:
         return self.folder / f"tile_{tile}.bin"
@@ -129,10 +155,152 @@ class TileSpill:
         for t in np.flatnonzero(tile_counts):
             a, b = starts[t], starts[t] + tile_counts[t]
             t = int(t)
-            with open(self.path(t), "ab") as f:
-                out[a:b].tofile(f)
+            if self._open is None:
+                _append(self.path(t), out[a:b])
+            else:
+                _write_all(self._fd(t), out[a:b])
             self.counts[t] = self.counts.get(t, 0) + int(b - a)
         return int(outside)
+
+    def _fd(self, tile: int) -> int:
+        """The open file of ``tile`` (within :meth:`kept_open`), the least recently written
+        one closed when more than the limit would be open."""
+        fds = self._open
+        fd = fds.pop(tile, None)
+        if fd is None:
+            if len(fds) >= self._most:
+                os.close(fds.pop(next(iter(fds))))
+            fd = os.open(self.path(tile), _APPEND, 0o666)
+        fds[tile] = fd
+        return fd
+
+
+#: Flags of a tile file opened for appending (binary on Windows).
+_APPEND = os.O_WRONLY | os.O_APPEND | os.O_CREAT | getattr(os, "O_BINARY", 0)
+
+
+def _append(path: Path, rows: np.ndarray) -> None:
+    """Append ``rows`` (C-contiguous bytes) to the file at ``path``, created if need be.
+
+    Three system calls (open, write, close), each releasing the interpreter lock, where a
+    Python file and ``ndarray.tofile`` make more than a dozen: a spill running beside the
+    reader (:class:`SpillThread`) waits for the lock once for each."""
+    fd = os.open(path, _APPEND, 0o666)
+    try:
+        _write_all(fd, rows)
+    finally:
+        os.close(fd)
+
+
+def _write_all(fd: int, rows: np.ndarray) -> None:
+    """Write ``rows`` (C-contiguous bytes) to ``fd``, whatever each write takes."""
+    view = memoryview(rows).cast("B")
+    while view:
+        view = view[os.write(fd, view):]
+
+
+class SpillThread:
+    """:meth:`TileSpill.add` on a thread of its own, one chunk behind the caller, so that the
+    next chunk is read and placed while the last one is spilled.
+
+    The chunks are spilled one at a time in the order given, by one thread, so the spill
+    files are those of calling :meth:`TileSpill.add` in a loop. :meth:`add` hands a chunk
+    over and returns at once, after waiting for the chunk before it to be spilled (at most
+    one chunk is spilling while the caller holds the next). The chunk must not change after
+    it is handed over (the readers give a new array for every chunk). An error of the
+    spill is raised again in the caller's thread, unchanged, by the next :meth:`add` or by
+    :meth:`close`; after an error the thread spills nothing more. Use as a context manager:
+    leaving the block waits for the thread to end, whatever happened, and :attr:`outside`
+    then holds the points outside the grid. The spill's own attributes (``counts``,
+    ``blocks``, ``zmin``) are complete once :meth:`close` has returned.
+
+    The compiled kernels of :meth:`TileSpill.add` run without holding the interpreter lock
+    and the file writes release it, so the spilling overlaps the reading in earnest; the
+    thread keeps the tile files open while it runs (:meth:`TileSpill.kept_open`), so that
+    it waits for the lock once a tile and chunk.
+    """
+
+    def __init__(self, spill: TileSpill) -> None:
+        self.spill = spill
+        self.outside = 0
+        self._error: BaseException | None = None
+        self._chunk: np.ndarray | None = None
+        self._done = True                       # no chunk waiting or spilling
+        self._closing = False
+        self._cond = threading.Condition()
+        self._thread = threading.Thread(target=self._run, name="tile-spill", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        try:
+            with self.spill.kept_open():        # closed before the thread ends
+                self._loop()
+        except BaseException as err:            # closing a tile file failed
+            if self._error is None:
+                self._error = err
+
+    def _loop(self) -> None:
+        while True:
+            with self._cond:
+                while self._chunk is None and not self._closing:
+                    self._cond.wait()
+                if self._chunk is None:         # closing and nothing left
+                    return
+                pts = self._chunk
+                self._chunk = None
+            try:
+                if self._error is None:
+                    self.outside += self.spill.add(pts)
+            except BaseException as err:        # raised again in the caller's thread
+                self._error = err
+            finally:
+                del pts
+                with self._cond:
+                    self._done = True
+                    self._cond.notify_all()
+
+    def _wait(self) -> None:
+        """Until the chunk handed over last is spilled; raise the spill's error, if any."""
+        with self._cond:
+            while not self._done:
+                self._cond.wait()
+        if self._error is not None:
+            raise self._error
+
+    def add(self, pts: np.ndarray) -> None:
+        """Hand a chunk over to be spilled, once the chunk before it is."""
+        self._wait()
+        if self._closing:
+            raise ValueError("points added to a closed SpillThread")
+        with self._cond:
+            self._chunk = pts
+            self._done = False
+            self._cond.notify_all()
+
+    def close(self) -> int:
+        """Wait for every chunk to be spilled and the thread to end; raise the spill's error,
+        if any. Returns how many points fell outside the grid."""
+        self._stop()
+        if self._error is not None:
+            raise self._error
+        return self.outside
+
+    def _stop(self) -> None:
+        with self._cond:
+            self._closing = True
+            self._cond.notify_all()
+        self._thread.join()
+
+    def __enter__(self) -> "SpillThread":
+        return self
+
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        if exc_type is None:
+            self.close()
+        else:                                   # the caller's error wins; the thread still ends
+            with self._cond:
+                self._chunk = None              # a chunk not yet taken is not spilled
+            self._stop()
 
 
 @dataclass(frozen=True)
