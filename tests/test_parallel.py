@@ -260,22 +260,30 @@ def test_cli_survey_takes_several_dates_or_all(tmp_path, monkeypatch, capsys):
         assert (tmp_path / "out" / d / f"classified-{d}.laz").is_file()
 
 
-def test_fill_windows_on_two_worker_processes_match_serial():
-    # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
-    # the serial answer cell for cell.
+def _holey_surface(seed, shape, waves, unscanned, hole):
+    """A maker of fresh wavy surface grids with ``unscanned`` of the cells empty at random
+    and the block ``hole`` empty (fill_windows consumes its surface)."""
     from inventory.model.grid import Grid, Surface
-    from inventory.survey.fill import fill_windows
 
-    rng = np.random.default_rng(8)
-    g = Grid(500000.0, 6000300.0, 0.5, 200, 230, CRS)
-    rows, cols = np.mgrid[0:200, 0:230]
-    z = 100.0 + np.sin(cols / 9.0) + np.cos(rows / 7.0)
-    count = (rng.random(g.shape) > 0.15).astype(np.int32)
-    count[50:70, 100:140] = 0
+    rng = np.random.default_rng(seed)
+    g = Grid(500000.0, 6000300.0, 0.5, shape[0], shape[1], CRS)
+    rows, cols = np.mgrid[0:shape[0], 0:shape[1]]
+    z = 100.0 + np.sin(cols / waves[0]) + np.cos(rows / waves[1])
+    count = (rng.random(g.shape) > unscanned).astype(np.int32)
+    count[hole] = 0
 
     def surface():
         return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
                        np.zeros(g.shape, bool), DATE, {})
+    return surface
+
+
+def test_fill_windows_on_two_worker_processes_match_serial():
+    # The fill windows of a large grid run as jobs; on a two-process LocalCluster they give
+    # the serial answer cell for cell.
+    from inventory.survey.fill import fill_windows
+
+    surface = _holey_surface(8, (200, 230), (9.0, 7.0), 0.15, (slice(50, 70), slice(100, 140)))
 
     serial, r1 = fill_windows(surface(), 2.0, window=64)
     with executor(2) as ex:
@@ -318,19 +326,9 @@ def test_fill_windows_on_threads_of_this_process_match_one_thread():
     # Without workers the windows run on threads of this process (Qhull and scipy.ndimage
     # release the interpreter lock); the fills are put in place in window order, so the
     # surface is the one of a single thread, cell for cell.
-    from inventory.model.grid import Grid, Surface
     from inventory.survey.fill import fill_windows
 
-    rng = np.random.default_rng(9)
-    g = Grid(500000.0, 6000300.0, 0.5, 260, 250, CRS)
-    rows, cols = np.mgrid[0:260, 0:250]
-    z = 100.0 + np.sin(cols / 11.0) + np.cos(rows / 5.0)
-    count = (rng.random(g.shape) > 0.2).astype(np.int32)
-    count[120:150, 30:90] = 0
-
-    def surface():
-        return Surface(g, np.where(count > 0, z, np.nan), count.copy(), np.full(g.shape, np.nan),
-                       np.zeros(g.shape, bool), DATE, {})
+    surface = _holey_surface(9, (260, 250), (11.0, 5.0), 0.2, (slice(120, 150), slice(30, 90)))
 
     one, r1 = fill_windows(surface(), 2.0, window=64, threads=1)
     with executor(None) as ex:
