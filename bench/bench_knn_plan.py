@@ -28,6 +28,7 @@ import numpy as np
 from numba import njit
 
 import inventory.parallel
+from bench_knn3 import _cloud   # the same tile or yard (this folder is on the path when run)
 from inventory.survey.kernels import _SLACK, CellIndex, _grid_scale, plan_knn
 
 
@@ -85,15 +86,6 @@ def _ring(index: CellIndex, x, y, k):
     _ring_rows(x, y, index.sx, index.sy, index.sid, index.start, index.x0, index.y0, index.cell, index.nrow,
                index.ncol, scale, k, out)
     return out
-
-
-def _cloud(path: "str | None") -> np.ndarray:
-    if path:
-        return np.load(path)
-    from inventory._demo.synthetic import make_yard
-
-    p = make_yard(density=100.0, seed=0, pad_density=100.0 / 6).points
-    return np.column_stack([p["X"], p["Y"], p["Z"]]).astype(float)
 
 
 def _best(fn, repeat: int):

@@ -139,7 +139,6 @@ class Executor:
                                      itertools.chain(first, it), max(1, window or 2 * n))
             finally:
                 pool.shutdown(wait=True, cancel_futures=True)
-                release_free_memory()
 
     def close(self) -> None:
         self._close()
