@@ -232,6 +232,8 @@ def _child(args: argparse.Namespace) -> int:
         out.update(points=n, seconds=dt, backend=backend)
     else:
         jobs = {"job_points": args.job_points} if args.job_points is not None else {}
+        if args.tile_m is not None:
+            jobs["tile_size_m"] = args.tile_m
         watch = _WorkerMemory()
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -325,6 +327,8 @@ def main(argv: list[str] | None = None) -> int:
                     "reused by later runs (default: a temporary folder, removed)")
     ap.add_argument("--job-points", type=int, default=None,
                     help="points a classification job may hold with its buffer (default: the package's JOB_POINTS)")
+    ap.add_argument("--tile-m", type=float, default=None,
+                    help="tile edge in metres (default: the package's DEFAULT_TILE_M)")
     ap.add_argument("--one-job-at-a-time", action="store_true",
                     help="the in-process run (--workers 0) classifies one job at a time instead of one per core")
     ap.add_argument("--child", nargs="?", const="survey", dest="what", help=argparse.SUPPRESS)
@@ -336,6 +340,8 @@ def main(argv: list[str] | None = None) -> int:
     pipe = ["--pipeline", os.path.abspath(args.pipeline)] if args.pipeline else []
     if args.job_points is not None:
         pipe += ["--job-points", str(args.job_points)]
+    if args.tile_m is not None:
+        pipe += ["--tile-m", str(args.tile_m)]
     if args.one_job_at_a_time:
         pipe += ["--one-job-at-a-time"]
     if args.site:
