@@ -612,6 +612,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # A return with no other return within ISOLATION_M is nobody's surface (range
     # ambiguity ghosts, birds far out); alone it would be its own envelope.
     alone = _isolated(x, y, z, ~ignore & ~low, near or None)
+    near.clear()    # its table of neighbours (4 bytes x 16 a point) is not needed again
     out[alone] = HIGH_NOISE
     classification = out.copy()
     ignore = ignore | low | alone
