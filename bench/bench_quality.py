@@ -4,6 +4,9 @@ Usage::
 
     python bench/bench_quality.py                    # the repository's sample_site
     python bench/bench_quality.py --site SITE        # another site written by the demo
+    python bench/bench_quality.py --seed 7           # the sample site drawn with another seed
+                                                     # (same yard, other scan noise, dust and
+                                                     # birds), written to a temporary folder
     python bench/bench_quality.py --workers 2        # the survey step on a Dask cluster
 
 For each month-end survey with truth labels (``truth/labels-<date>.npz``) it prints, from
@@ -30,15 +33,26 @@ ROOT = Path(__file__).resolve().parents[1]
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--site", default=str(ROOT / "sample_site"), help="a site written by the demo (with truth)")
+    ap.add_argument("--seed", type=int, default=None,
+                    help="write the sample site with this seed to a temporary folder and measure that instead")
     ap.add_argument("--workers", type=int, default=None, help="Dask worker processes for the survey step")
     args = ap.parse_args(argv)
+    if args.seed is not None:
+        from inventory._demo.sample import write_sample_site
 
+        with tempfile.TemporaryDirectory() as tmp:
+            site = write_sample_site(Path(tmp) / "site", seed=args.seed)
+            print(f"sample site drawn with seed {args.seed}", flush=True)
+            return _measure(site, args.workers)
+    return _measure(Path(args.site), args.workers)
+
+
+def _measure(root: Path, workers: int | None) -> int:
     from inventory._demo.quality import survey_quality, truth_of
     from inventory.site.load import load_site
     from inventory.survey.measure import measure_survey
     from inventory.volume_report import report_volumes
 
-    root = Path(args.site)
     truth = truth_of(root)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -50,11 +64,11 @@ def main(argv: list[str] | None = None) -> int:
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t0 = time.perf_counter()
-            result = measure_survey(site, date, out_dir=tmp, workers=args.workers)
+            result = measure_survey(site, date, out_dir=tmp, workers=workers)
             dt = time.perf_counter() - t0
             print(f"survey {date} ({result.points_read:,} points, survey step {dt:.1f} s)", flush=True)
             print(f"  {survey_quality(site, date, result)}", flush=True)
-            run = report_volumes(root, date, out=Path(tmp) / "volumes", workers=args.workers)
+            run = report_volumes(root, date, out=Path(tmp) / "volumes", workers=workers)
         for _, row in run.table.iterrows():
             true = true_volumes.get(date, {}).get(row["pile_id"])
             if true is None:
