@@ -36,7 +36,7 @@ import os
 import threading
 from typing import Any, Callable, Iterable, Iterator
 
-__all__ = ["Executor", "executor", "job_threads", "cores", "release_free_memory", "freed_memory_kept"]
+__all__ = ["Executor", "executor", "job_threads", "cores", "release_free_memory"]
 
 _local = threading.local()
 
@@ -63,32 +63,7 @@ def cores() -> int:
     return os.cpu_count() or 1
 
 
-# glibc's <malloc.h> parameters for mallopt()
-_M_TRIM_THRESHOLD = -1
-_M_MMAP_THRESHOLD = -3
-#: While jobs run (:func:`freed_memory_kept`): blocks up to this size come from the heap
-#: rather than from mmap, and freed memory is kept for the next ones.
-KEPT_BLOCK_BYTES = 256 * 2**20
-# After: the ceilings glibc's own sliding thresholds reach on 64-bit systems (32 MiB for
-# mmap, twice that to trim the heap's top).
-_MMAP_AFTER, _TRIM_AFTER = 32 * 2**20, 64 * 2**20
-_libc: Any = None
-_kept = 0
-_kept_lock = threading.Lock()
-
-
-def _malloc_calls() -> Any:
-    """glibc's ``(mallopt, malloc_trim)``, or False where the C library has none."""
-    global _libc
-    if _libc is None:
-        import ctypes
-
-        try:
-            lib = ctypes.CDLL(None)
-            _libc = (lib.mallopt, lib.malloc_trim)
-        except (OSError, AttributeError, TypeError):
-            _libc = False
-    return _libc
+_trim: Any = None
 
 
 def release_free_memory() -> None:
@@ -99,41 +74,16 @@ def release_free_memory() -> None:
     memory would stay in the process through the next step (the surface grid).
     ``malloc_trim(0)`` returns the free pages of every arena. A no-op where there is no
     ``malloc_trim`` (not glibc)."""
-    lib = _malloc_calls()
-    if lib:
-        lib[1](0)
+    global _trim
+    if _trim is None:
+        import ctypes
 
-
-@contextlib.contextmanager
-def freed_memory_kept() -> Iterator[None]:
-    """While inside, memory the process frees is kept for its next allocations (glibc).
-
-    By default glibc serves each block over a sliding threshold (at most 32 MiB) by a
-    fresh ``mmap`` and hands it back on ``free``, and hands back the heap's free top over
-    twice that: a job's arrays of every point (a million points make 68 MB of neighbour
-    numbers alone) then come as fresh pages, each zeroed by the kernel on first touch,
-    again for every array and every job. Inside, blocks up to :data:`KEPT_BLOCK_BYTES` come
-    from the heap and freed ones are reused (``mallopt`` ``M_MMAP_THRESHOLD`` and
-    ``M_TRIM_THRESHOLD``); the survey's jobs run inside (timings in CHANGELOG.md). On the
-    way out of the outermost of any nested or concurrent uses, the thresholds are set to
-    glibc's own ceilings and :func:`release_free_memory` returns what is free. A no-op
-    where the C library has no ``mallopt`` (not glibc)."""
-    global _kept
-    lib = _malloc_calls()
-    with _kept_lock:
-        _kept += 1
-        if _kept == 1 and lib:
-            lib[0](_M_MMAP_THRESHOLD, KEPT_BLOCK_BYTES)
-            lib[0](_M_TRIM_THRESHOLD, 2 * KEPT_BLOCK_BYTES)
-    try:
-        yield
-    finally:
-        with _kept_lock:
-            _kept -= 1
-            if _kept == 0 and lib:
-                lib[0](_M_MMAP_THRESHOLD, _MMAP_AFTER)
-                lib[0](_M_TRIM_THRESHOLD, _TRIM_AFTER)
-                lib[1](0)
+        try:
+            _trim = ctypes.CDLL(None).malloc_trim
+        except (OSError, AttributeError, TypeError):
+            _trim = False
+    if _trim:
+        _trim(0)
 
 
 def _in_job(threads: int, fn: Callable[..., Any], *args: Any) -> Any:
@@ -141,8 +91,7 @@ def _in_job(threads: int, fn: Callable[..., Any], *args: Any) -> Any:
     before = getattr(_local, "threads", -1)
     _local.threads = threads
     try:
-        with freed_memory_kept():   # on a worker, for the job; here, inside the caller's
-            return fn(*args)
+        return fn(*args)
     finally:
         _local.threads = before
 

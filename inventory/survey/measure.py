@@ -47,7 +47,7 @@ from inventory.model.classes import (
     UNCLASSIFIED,
 )
 from inventory.model.grid import Grid, Surface
-from inventory.parallel import Executor, executor, freed_memory_kept
+from inventory.parallel import Executor, executor, release_free_memory
 from inventory.site.extent import grid_size_problem
 from inventory.site.load import Site, SurveyRef
 from inventory.survey.fill import fill_windows
@@ -422,13 +422,11 @@ def measure_survey(site: Site, date: str, out_dir: "str | Path | None" = None,
             timings["read"] = time.perf_counter() - t_start
 
             t0 = time.perf_counter()
-            # freed memory reused while the jobs run here; on the way out, what is free goes
-            # back (the jobs' threads' arenas too) before the surface grid
-            with freed_memory_kept():
-                classified = _classify_jobs(ex, spill, buffer_m, job_points, pipe, site_crs, used_engine,
-                                            grid_cfg.statistic, classified_path, say, colour=read.colour,
-                                            extra_dims=read.extra_dims)
+            classified = _classify_jobs(ex, spill, buffer_m, job_points, pipe, site_crs, used_engine,
+                                        grid_cfg.statistic, classified_path, say, colour=read.colour,
+                                        extra_dims=read.extra_dims)
             timings["classify"] = time.perf_counter() - t0
+            release_free_memory()   # what the jobs' threads freed, before the surface grid
 
             t0 = time.perf_counter()
             say("gridding the surface and filling holes")
