@@ -36,7 +36,7 @@ import pandas as pd
 import tomllib
 
 from inventory.errors import InputErrors, InputWarning, Problem
-from inventory.io.tables import read_table, table_schema
+from inventory.io.tables import is_blank, read_table, table_schema
 from inventory.model.period import Period
 from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 from inventory.site.extent import survey_extent_problems
@@ -382,7 +382,9 @@ def parse_base(text: str) -> tuple[str, float | None]:
     >>> parse_base("toe")
     ('toe', None)
     """
-    value = (text or "").strip()
+    if not isinstance(text, str):
+        raise ValueError(f"{text!r} is not floor, toe or level:<z in metres>")
+    value = text.strip()
     if value in ("floor", "toe"):
         return value, None
     match = _LEVEL_BASE.match(value)
@@ -480,8 +482,13 @@ class _Loader:
         materials, material_names = self._materials()
         piles = self._piles(material_names, crs)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
+        ids_known = piles is not None and not self.errors_in(self.root / "piles.gpkg", "pile_id")
+        if not ids_known:
+            # an id refused there (missing, a number) would make every row naming it 'unknown':
+            # the tables' pile ids are checked once the register is right
+            pile_ids = set()
         opening = self._opening(pile_ids)
-        self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
+        self._journal_codes(config.journal, material_names, pile_ids if ids_known else None)
         if config.journal.currency is None and materials:
             costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
             if costed:
@@ -522,6 +529,9 @@ class _Loader:
             self.toml_text = text
         except UnicodeDecodeError:
             self.error(path, None, None, "not UTF-8 text")
+            return None
+        except OSError as err:  # no read permission, a read error of the disk
+            self.error(path, None, None, f"cannot be read ({err.strerror or err})")
             return None
         except RecursionError:
             self.error(path, None, None, f"tables or arrays nested too deeply to read (at most {MAX_TOML_DEPTH} levels)")
@@ -639,9 +649,39 @@ class _Loader:
     def _floor_raster(self, text: str | None) -> Path | None:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
         if text is not None:
-            return self._config_path(text, "base.floor_raster")
-        default = "base/floor.tif"
-        return self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
+            path = self._config_path(text, "base.floor_raster")
+        else:
+            default = "base/floor.tif"
+            path = self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
+        if path is not None and not self._raster_readable(path, "floor_raster"):
+            return None
+        return path
+
+    def _raster_readable(self, path: Path, fieldname: str) -> bool:
+        """Whether every block of the raster's first band reads (reports why not): a raster
+        cut short opens, and fails only where its missing tiles are read."""
+        import rasterio
+        from rasterio.errors import RasterioError
+
+        where = None
+        try:
+            with rasterio.open(path) as src:
+                if src.count < 1:
+                    self.error(path, None, fieldname, "the raster has no band")
+                    return False
+                for (row, col), window in src.block_windows(1):
+                    where = f"block {row},{col} (rows {window.row_off}-{window.row_off + window.height - 1})"
+                    src.read(1, window=window)
+        except (RasterioError, OSError) as err:
+            cause = err.__cause__ or err.__context__
+            detail = str(cause if where is not None and cause is not None else err)
+            detail = detail.replace(str(path), path.name)
+            if where is None:
+                self.error(path, None, fieldname, f"cannot be opened as a GeoTIFF ({detail})")
+            else:
+                self.error(path, where, fieldname, f"cut short or damaged: cannot be read ({detail})")
+            return False
+        return True
 
     def _config_path(self, text: str | None, key: str) -> Path | None:
         """A file named in site.toml, relative to the site folder (or absolute): it must exist,
@@ -815,6 +855,13 @@ class _Loader:
             self.error(path, None, None, f"no layer 'piles' (found: {', '.join(layers) or 'none'})")
             return None
         frame = gpd.read_file(path, layer="piles", engine="pyogrio", fid_as_index=True)
+        has_z = shapely.has_z(frame.geometry.values)
+        if has_z.any():
+            # a footprint is drawn on the map: the heights of its corners measure nothing (a
+            # pile's base is its 'base' field); without them every step sees the same polygon
+            frame = frame.set_geometry(shapely.force_2d(frame.geometry.values), crs=frame.crs)
+            self.warn(path, "layer piles", "geometry",
+                      f"{int(has_z.sum())} footprint(s) carry heights (Z); only their x and y are used")
         for column in ("pile_id", "material", "base"):
             if column not in frame.columns:
                 self.error(path, "layer piles", column, "required field is missing")
@@ -834,23 +881,47 @@ class _Loader:
         for i, (fid, row) in enumerate(frame.iterrows()):
             pid = row["pile_id"]
             where = f"feature {fid}" + (f" (pile {pid})" if isinstance(pid, str) and pid else "")
-            if not isinstance(pid, str) or not pid.strip():
+            if is_blank(pid):
                 self.error(display, where, "pile_id", "value is missing")
                 good[i] = False
                 continue
+            if not isinstance(pid, str):
+                # the tables hold pile ids as text: a number here would never match them
+                self.error(display, where, "pile_id",
+                           f"{pid} is a number; the field must be text (String), as the tables' pile ids are")
+                good[i] = False
+                continue
+            if pid != pid.strip():
+                # the tables' cells are read without their surrounding spaces: so is the pile id
+                self.warn(display, where, "pile_id", f"pile id {pid!r} has spaces around it; read as {pid.strip()!r}")
+                pid = pid.strip()
+                frame.at[fid, "pile_id"] = pid
             if pid in seen:
                 self.error(display, where, "pile_id", f"pile id {pid!r} repeats feature {seen[pid]}")
                 good[i] = False
             seen.setdefault(pid, fid)
-            if row["material"] not in materials and materials:
+            if is_blank(row["material"]):
+                self.error(display, where, "material", "value is missing")
+            elif row["material"] not in materials and materials:
                 self.error(display, where, "material", f"unknown material {row['material']!r} (not in materials.csv)")
-            try:
-                parse_base(row["base"])
-            except ValueError as err:
-                self.error(display, where, "base", str(err))
+            if is_blank(row["base"]):
+                self.error(display, where, "base", "value is missing (floor, toe or level:<z in metres>)")
+            else:
+                try:
+                    parse_base(row["base"])
+                except ValueError as err:
+                    self.error(display, where, "base", str(err))
             density = row["density_t_m3"]
-            if density is not None and not pd.isna(density) and not float(density) > 0:
-                self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
+            if not is_blank(density):
+                try:
+                    value = float(density)
+                except (TypeError, ValueError):
+                    self.error(display, where, "density_t_m3", f"{density!r} is not a number")
+                else:
+                    if not math.isfinite(value):
+                        self.error(display, where, "density_t_m3", f"{density} is not a finite number")
+                    elif not value > 0:
+                        self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
             geom = row.geometry
             if geom is None or geom.is_empty:
                 self.error(display, where, "geometry", "empty geometry")
@@ -912,7 +983,7 @@ class _Loader:
 
     def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
-        if not path.is_file():
+        if not path.exists():   # a folder of its name is read, and refused as one
             return None
         frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
         self.problems += problems
@@ -942,7 +1013,8 @@ class _Loader:
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
             # a header alone is a table with no records this month
-            tables[name] = self.table(path, name, empty_ok=True) if path.is_file() else None
+            # a folder of the table's name is read, and refused as one: never taken for no records
+            tables[name] = self.table(path, name, empty_ok=True) if path.exists() else None
         for extra in sorted(folder.glob("*.csv")):
             if extra.stem not in MOVEMENT_TABLES:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
@@ -1140,7 +1212,11 @@ class _Loader:
         if local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
         extent = None
-        if extents:
+        # a stations.csv or trajectory.csv refused whole (unreadable, empty) leaves its files
+        # where their own coordinates put them: an extent from those would add a false alarm
+        unplaced = ((station_path.is_file() and (stations is None or stations.empty) and self.errors_in(station_path))
+                    or (trajectory_path.is_file() and not trajectories and self.errors_in(trajectory_path)))
+        if extents and not unplaced:
             arr = np.asarray(extents)
             extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
         return SurveyRef(folder.name, folder, readable, stations, instant, extent, points, control)

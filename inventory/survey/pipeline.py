@@ -73,7 +73,7 @@ from typing import Any, Callable
 import numpy as np
 from pyproj import CRS
 
-from inventory.errors import PipelineError
+from inventory.errors import PipelineError, Problem
 from inventory.model.classes import GROUND, LOW_NOISE, UNCLASSIFIED
 from inventory.survey.clean import (
     DimRange,
@@ -88,7 +88,7 @@ from inventory.io.crs import TransformerCache, parse_crs
 from inventory.survey.ground import PlanTable, SlopeGroundParams, csf_ground, plan_table, slope_ground
 from inventory.io.clouds import conform_points, empty_points, read_cloud, write_cloud
 
-__all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "OUR_PREFIX"]
+__all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "pipeline_problems", "OUR_PREFIX"]
 
 #: Stages whose type starts with this are ours and never handed to PDAL.
 OUR_PREFIX = "inventory."
@@ -523,7 +523,8 @@ class Pipeline:
             try:
                 doc = json.loads(text)
             except json.JSONDecodeError as err:
-                raise PipelineError(f"{source}: not valid JSON at line {err.lineno}: {err.msg}") from err
+                raise PipelineError(f"{source}: not valid JSON at line {err.lineno}, column {err.colno}: "
+                                    f"{err.msg}") from err
         else:
             doc = text
         if isinstance(doc, dict):
@@ -617,6 +618,18 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
         if s.type == "filters.reprojection":
             ctx.crs = parse_crs(s.options["out_srs"])
     return out
+
+
+def pipeline_problems(path: "str | Path", display: str) -> list[Problem]:
+    """What ``inventory check`` reports of a pipeline file, shown as ``display``: a file that
+    cannot be read, is not JSON, or names an unknown stage or option or misses a required one
+    (an empty list when it parses). Option values are checked when the stages run."""
+    try:
+        Pipeline.from_file(path)
+    except PipelineError as err:
+        text, prefix = str(err), f"{Path(path)}: "
+        return [Problem(display, None, None, text[len(prefix):] if text.startswith(prefix) else text)]
+    return []
 
 
 def load_pipeline(path: "str | Path | None" = None) -> Pipeline:

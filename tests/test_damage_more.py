@@ -1,0 +1,262 @@
+"""More damaged inputs, as a user of the command line meets them: pile register fields of the
+wrong kind (a number as pile id, no base, text as density, heights on the footprints, spaces
+around an id), a site.toml that cannot be read, a floor raster that is empty, not a raster or
+cut short, a processing pipeline that is not JSON or names an unknown stage, a movement table
+that is a folder, a stations.csv refused whole, and a ``survey --out`` that cannot be written.
+
+Each refused case runs through :func:`inventory.cli.main`: exit 2, one ``error:`` line naming
+the file (or option), the feature, line or block, and the field, no traceback, and the site
+folder byte-identical.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import geopandas as gpd
+import numpy as np
+import pytest
+import shapely
+from shapely.geometry import Point
+
+from inventory.cli import main
+
+P = "error: site/piles.gpkg"
+
+
+def rewrite_piles(site: Path, **columns) -> None:
+    """The small site's two piles with some columns replaced (lists of two values)."""
+    data = {"pile_id": ["A", "B"], "material": ["coal", "salt"], "base": ["toe", "level:10"],
+            "density_t_m3": [np.nan, np.nan]}
+    data.update(columns)
+    geometry = data.pop("geometry", [Point(500000, 5700000).buffer(10), Point(500030, 5700000).buffer(10)])
+    frame = gpd.GeoDataFrame(data, geometry=geometry, crs="EPSG:25832")
+    (site / "piles.gpkg").unlink()
+    frame.to_file(site / "piles.gpkg", layer="piles", engine="pyogrio")
+
+
+def errors(err: str) -> list[str]:
+    return [line for line in err.splitlines() if line.startswith("error: ")]
+
+
+# ----------------------------------------------------------------------------- piles.gpkg fields
+@pytest.mark.parametrize("columns, expected", [
+    # a NULL base used to stop the check with an AttributeError
+    ({"base": [None, "level:10"]},
+     f"{P} feature 1 (pile A): base: value is missing (floor, toe or level:<z in metres>)"),
+    # a text density used to stop the check with a ValueError
+    ({"density_t_m3": ["1,2", None]}, f"{P} feature 1 (pile A): density_t_m3: '1,2' is not a number"),
+    ({"density_t_m3": [math.inf, np.nan]}, f"{P} feature 1 (pile A): density_t_m3: inf is not a finite number"),
+    ({"material": ["coal", None]}, f"{P} feature 2 (pile B): material: value is missing"),
+])
+def test_pile_fields_of_the_wrong_kind(good_site, capsys, refused_once, columns, expected):
+    rewrite_piles(good_site, **columns)
+    assert refused_once(good_site, capsys) == expected
+
+
+def test_numeric_pile_ids_are_named_once_each_not_in_every_table(good_site, capsys):
+    """An Integer pile_id field: each feature is named, and the tables' rows are not all
+    reported again as naming unknown piles (before: 'value is missing' on each feature and
+    an 'unknown pile' error on every ticket)."""
+    rewrite_piles(good_site, pile_id=[1, 2])
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert errors(err) == [
+        f"{P} feature 1: pile_id: 1 is a number; the field must be text (String), as the tables' pile ids are",
+        f"{P} feature 2: pile_id: 2 is a number; the field must be text (String), as the tables' pile ids are",
+    ]
+
+
+def test_spaces_around_a_pile_id_are_dropped_with_a_warning(good_site, capsys):
+    rewrite_piles(good_site, pile_id=["A ", "B"])
+    assert main(["check", str(good_site)]) == 0
+    err = capsys.readouterr().err
+    assert ("warning: site/piles.gpkg feature 1 (pile A ): pile_id: pile id 'A ' has spaces around it; read as 'A'"
+            in err.splitlines())
+    assert "unknown pile" not in err
+
+
+def test_footprints_with_heights_close_like_flat_ones(good_site, capsys):
+    """Footprints drawn with Z (PolygonZ): a warning, and the close runs (before: the check
+    passed and the close failed writing the report's map, after the whole survey)."""
+    flat = [Point(500000, 5700000).buffer(10), Point(500030, 5700000).buffer(10)]
+    rewrite_piles(good_site, geometry=list(shapely.force_3d(flat, 12.5)))
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/piles.gpkg layer piles: geometry: 2 footprint(s) carry heights (Z); only their x and y "
+            "are used") in capsys.readouterr().err.splitlines()
+    assert main(["close", str(good_site), "--period", "2026-10", "-q"]) == 0
+    assert "Traceback" not in capsys.readouterr().err
+    assert (good_site / "closes" / "2026-10" / "report-2026-10.html").is_file()
+
+
+# ----------------------------------------------------------------------------- site.toml unreadable
+def test_site_toml_that_cannot_be_read(good_site, capsys, monkeypatch):
+    """No read permission (simulated: the tests may run as root, who reads every file)."""
+    real = Path.read_bytes
+
+    def denied(self):
+        if self.name == "site.toml":
+            raise PermissionError(13, "Permission denied", str(self))
+        return real(self)
+
+    monkeypatch.setattr(Path, "read_bytes", denied)
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and "the run failed" not in err
+    assert errors(err) == ["error: site/site.toml: cannot be read (Permission denied)"]
+
+
+# ----------------------------------------------------------------------------- base/floor.tif
+@pytest.fixture
+def floor(good_site) -> Path:
+    """A valid floor raster under the small site: 256 rows x 512 columns of 0.2 m, two
+    256 x 256 tiles, uncompressed (so that cutting the file removes the second tile)."""
+    import rasterio
+    from rasterio.transform import from_origin
+
+    path = good_site / "base" / "floor.tif"
+    path.parent.mkdir()
+    with rasterio.open(path, "w", driver="GTiff", width=512, height=256, count=1, dtype="float32",
+                       crs="EPSG:25832", transform=from_origin(499980.0, 5700020.0, 0.2, 0.2),
+                       tiled=True, blockxsize=256, blockysize=256) as dst:
+        dst.write(np.full((256, 512), 9.5, dtype="float32"), 1)
+    return path
+
+
+def test_intact_floor_raster_passes(good_site, floor, capsys):
+    assert main(["check", str(good_site)]) == 0
+
+
+@pytest.mark.parametrize("damage, expected", [
+    (b"", "error: site/base/floor.tif: floor_raster: cannot be opened as a GeoTIFF ('floor.tif' not recognized "
+          "as being in a supported file format.)"),
+    (b"not a raster\n", "error: site/base/floor.tif: floor_raster: cannot be opened as a GeoTIFF ('floor.tif' not "
+                        "recognized as being in a supported file format.)"),
+])
+def test_floor_raster_that_is_not_one(good_site, floor, capsys, refused_once, damage, expected):
+    """Before: the check passed, and the close refused the file only after the survey."""
+    floor.write_bytes(damage)
+    assert refused_once(good_site, capsys) == expected
+
+
+def test_floor_raster_cut_short_names_the_block(good_site, floor, capsys, refused_once):
+    data = floor.read_bytes()
+    floor.write_bytes(data[: len(data) - 200_000])   # the second tile's 262,144 bytes cut short
+    line = refused_once(good_site, capsys)
+    assert line.startswith("error: site/base/floor.tif block 0,1 (rows 0-255): floor_raster: cut short or "
+                           "damaged: cannot be read (floor.tif, band 1: "), line
+
+
+def test_close_refuses_a_damaged_floor_before_the_survey(good_site, floor, capsys, refused_once, monkeypatch):
+    from inventory import close
+
+    surveyed = []
+    monkeypatch.setattr(close, "_survey", lambda *a, **k: surveyed.append(a))
+    floor.write_bytes(b"")
+    line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
+    assert line.startswith("error: site/base/floor.tif: floor_raster: cannot be opened as a GeoTIFF"), line
+    assert surveyed == []
+
+
+# ----------------------------------------------------------------------------- pipeline JSON
+def with_pipeline(site: Path, text: str) -> Path:
+    (site / "pipe.json").write_text(text)
+    toml = site / "site.toml"
+    toml.write_text(toml.read_text() + '\n[survey]\npipeline = "pipe.json"\n')
+    return site / "pipe.json"
+
+
+def test_check_passes_a_valid_pipeline(good_site, capsys):
+    with_pipeline(good_site, '[{"type": "filters.range", "limits": "Z[0:100]"}, {"type": "inventory.slope_ground"}]')
+    assert main(["check", str(good_site)]) == 0
+
+
+@pytest.mark.parametrize("text, why", [
+    ('{"pipeline": [ {"type": "filters.range", "limits": "Z[0:9]"}, ]}',
+     "not valid JSON at line 1, column 63: Expecting value"),
+    ("", "not valid JSON at line 1, column 1: Expecting value"),
+    ("42", "the pipeline must be a non-empty list of stages"),
+    ('[{"type": "filters.outlyer"}]', "stage 1: unknown stage type 'filters.outlyer'; this runner knows: "
+     "filters.assign, filters.crop, filters.csf, filters.elm, filters.outlier, filters.range, "
+     "filters.reprojection, inventory.slope_ground, inventory.voxel_thin, readers.copc, readers.las, writers.las"),
+    ('[{"type": "filters.range", "limit": "Z[0:9]"}]',
+     "stage 1 (filters.range): unknown option(s) limit; known: limits"),
+])
+def test_check_refuses_a_broken_pipeline(good_site, capsys, refused_once, text, why):
+    """Before: the check said ok and only the survey step refused the file."""
+    pipe = with_pipeline(good_site, text)
+    assert refused_once(good_site, capsys) == f"error: {pipe}: {why}"
+
+
+# ----------------------------------------------------------------------------- tables
+def test_movement_table_that_is_a_folder(good_site, capsys, refused_once):
+    """Before: a folder named weighbridge.csv was taken for a month without tickets."""
+    table = good_site / "movements" / "2026-10" / "weighbridge.csv"
+    table.unlink()
+    table.mkdir()
+    assert refused_once(good_site, capsys) == (
+        "error: site/movements/2026-10/weighbridge.csv: cannot be read (Is a directory)")
+
+
+def test_opening_that_is_a_folder(good_site, capsys, refused_once):
+    (good_site / "opening.csv").unlink()
+    (good_site / "opening.csv").mkdir()
+    assert refused_once(good_site, capsys) == "error: site/opening.csv: cannot be read (Is a directory)"
+
+
+def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_once):
+    """A cloud in the scanner's own frame, placed by its stations.csv pose; stations.csv then
+    emptied. Before: a second error followed, about the survey's extent computed from the
+    cloud's own coordinates (taken in [survey] default_crs) as if they were the site's."""
+    import laspy
+
+    survey = good_site / "surveys" / "2026-10-31"
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.scales, header.offsets = [0.001] * 3, [0.0, 0.0, 0.0]
+    las = laspy.LasData(header)
+    rng = np.random.default_rng(3)
+    las.x, las.y, las.z = rng.uniform(-15, 45, 50), rng.uniform(-15, 15, 50), rng.uniform(0, 5, 50)
+    las.write(survey / "a.laz")
+    (survey / "stations.csv").write_text(
+        "file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg\n"
+        "a.laz,S1,2026-10-31T15:00:00+01:00,500000,5700000,10,0,0,0\n")
+    toml = good_site / "site.toml"
+    toml.write_text(toml.read_text() + '\n[survey]\ndefault_crs = "EPSG:25832"\n')
+    assert main(["check", str(good_site)]) == 0   # placed by its pose, the cloud covers the piles
+    capsys.readouterr()
+    (survey / "stations.csv").write_bytes(b"")
+    assert refused_once(good_site, capsys) == (
+        "error: site/surveys/2026-10-31/stations.csv line 1: the file is empty (expected a header line)")
+
+
+# ----------------------------------------------------------------------------- survey --out
+def test_survey_out_that_is_a_file(good_site, capsys, refused_once):
+    target = good_site / "afile"
+    target.write_text("x")
+    argv = ["survey", str(good_site), "--date", "2026-10-31", "--out", str(target)]
+    assert refused_once(good_site, capsys, argv) == (
+        f"error: {target}: --out: is a file, not a folder; the survey's outputs go into a folder of this name")
+
+
+def test_survey_out_under_a_file(good_site, capsys, refused_once):
+    target = good_site / "afile"
+    target.write_text("x")
+    argv = ["survey", str(good_site), "--date", "2026-10-31", "--out", str(target / "x")]
+    assert refused_once(good_site, capsys, argv) == (
+        f"error: {target}: --out: is a file, not a folder; {target / 'x'} cannot be made under it")
+
+
+def test_survey_out_in_a_folder_without_write_permission(good_site, tmp_path, capsys, refused_once, monkeypatch):
+    """(Simulated: the tests may run as root, who writes everywhere.)"""
+    import os
+
+    locked = tmp_path / "locked"
+    locked.mkdir()
+    real = os.access
+    monkeypatch.setattr(os, "access", lambda path, mode, **kw: Path(path) != locked and real(path, mode, **kw))
+    argv = ["survey", str(good_site), "--date", "2026-10-31", "--out", str(locked / "out")]
+    assert refused_once(good_site, capsys, argv) == (
+        f"error: {locked}: --out: is not a writable folder; the survey's outputs cannot be written there")
+    assert list(locked.iterdir()) == []
