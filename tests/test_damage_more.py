@@ -12,15 +12,18 @@ folder byte-identical.
 from __future__ import annotations
 
 import math
+import warnings
 from pathlib import Path
 
 import geopandas as gpd
 import numpy as np
+import pyproj
 import pytest
 import shapely
 from shapely.geometry import Point
 
 from inventory.cli import main
+from inventory.site.load import load_site
 
 P = "error: site/piles.gpkg"
 
@@ -89,6 +92,25 @@ def test_footprints_with_heights_close_like_flat_ones(good_site, capsys):
     assert main(["close", str(good_site), "--period", "2026-10", "-q"]) == 0
     assert "Traceback" not in capsys.readouterr().err
     assert (good_site / "closes" / "2026-10" / "report-2026-10.html").is_file()
+
+
+def test_null_footprint(good_site, capsys, refused_once):
+    """A NULL geometry stopped the check with an AttributeError (an empty one was named)."""
+    rewrite_piles(good_site, geometry=[None, Point(500030, 5700000).buffer(10)])
+    assert refused_once(good_site, capsys) == f"{P} feature 1 (pile A): geometry: no geometry (NULL)"
+
+
+def test_piles_layer_without_geometry(good_site, capsys, refused_once):
+    """An attribute table named 'piles' stopped the check with an AttributeError."""
+    import pandas as pd
+    import pyogrio
+
+    (good_site / "piles.gpkg").unlink()
+    pyogrio.write_dataframe(pd.DataFrame({"pile_id": ["A", "B"], "material": ["coal", "salt"],
+                                          "base": ["toe", "level:10"]}),
+                            good_site / "piles.gpkg", layer="piles", driver="GPKG")
+    assert refused_once(good_site, capsys) == (
+        f"{P} layer piles: geometry: the layer has no geometry column (footprints are polygons)")
 
 
 # ----------------------------------------------------------------------------- site.toml unreadable
@@ -229,6 +251,56 @@ def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_onc
     (survey / "stations.csv").write_bytes(b"")
     assert refused_once(good_site, capsys) == (
         "error: site/surveys/2026-10-31/stations.csv line 1: the file is empty (expected a header line)")
+
+
+def test_stations_pose_refused_is_the_only_error(good_site, capsys, refused_once):
+    """A pose value refused on its cell: before, a second error followed about the extent."""
+    import laspy
+
+    survey = good_site / "surveys" / "2026-10-31"
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.scales, header.offsets = [0.001] * 3, [0.0, 0.0, 0.0]
+    las = laspy.LasData(header)
+    rng = np.random.default_rng(3)
+    las.x, las.y, las.z = rng.uniform(-15, 45, 50), rng.uniform(-15, 15, 50), rng.uniform(0, 5, 50)
+    las.write(survey / "a.laz")
+    (survey / "stations.csv").write_text(
+        "file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg\n"
+        "a.laz,S1,2026-10-31T15:00:00+01:00,inf,5700000,10,0,0,0\n")
+    toml = good_site / "site.toml"
+    toml.write_text(toml.read_text() + '\n[survey]\ndefault_crs = "EPSG:25832"\n')
+    assert refused_once(good_site, capsys) == (
+        "error: site/surveys/2026-10-31/stations.csv line 2: x: 'inf' is not a finite number")
+
+
+# ----------------------------------------------------------------------------- clouds without points
+def empty_cloud(path: Path) -> None:
+    import laspy
+
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.add_crs(pyproj.CRS("EPSG:25832"))
+    laspy.LasData(header).write(path)
+
+
+def test_cloud_without_points_beside_others_is_left_out(good_site, capsys):
+    """Before: its header's empty box at 0,0 stretched the survey to a grid of about a
+    million GB, refused by check and close."""
+    empty_cloud(good_site / "surveys" / "2026-10-31" / "b.laz")
+    assert main(["check", str(good_site)]) == 0
+    err = capsys.readouterr().err
+    assert "warning: site/surveys/2026-10-31/b.laz: holds no point: left out of the survey" in err.splitlines()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        site = load_site(good_site)
+    assert [p.name for p in site.surveys["2026-10-31"].files] == ["a.laz"]
+
+
+def test_survey_whose_only_cloud_has_no_points(good_site, capsys, refused_once):
+    survey = good_site / "surveys" / "2026-10-31"
+    (survey / "a.laz").unlink()
+    empty_cloud(survey / "a.laz")
+    assert refused_once(good_site, capsys) == (
+        "error: site/surveys/2026-10-31: no point in any point cloud file of the survey folder")
 
 
 # ----------------------------------------------------------------------------- survey --out

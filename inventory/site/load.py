@@ -855,6 +855,9 @@ class _Loader:
             self.error(path, None, None, f"no layer 'piles' (found: {', '.join(layers) or 'none'})")
             return None
         frame = gpd.read_file(path, layer="piles", engine="pyogrio", fid_as_index=True)
+        if not isinstance(frame, gpd.GeoDataFrame):   # an attribute table without geometry
+            self.error(path, "layer piles", "geometry", "the layer has no geometry column (footprints are polygons)")
+            return None
         has_z = shapely.has_z(frame.geometry.values)
         if has_z.any():
             # a footprint is drawn on the map: the heights of its corners measure nothing (a
@@ -923,7 +926,10 @@ class _Loader:
                     elif not value > 0:
                         self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
             geom = row.geometry
-            if geom is None or geom.is_empty:
+            if not isinstance(geom, shapely.Geometry):   # NULL: a row reads it as NaN
+                self.error(display, where, "geometry", "no geometry (NULL)")
+                good[i] = False
+            elif geom.is_empty:
                 self.error(display, where, "geometry", "empty geometry")
                 good[i] = False
             elif geom.geom_type not in ("Polygon", "MultiPolygon"):
@@ -1120,6 +1126,7 @@ class _Loader:
         e57_all_posed: set[str] = set()   # E57 files whose every scan has its pose from stations.csv
         e57_times: list[datetime] = []     # when E57 files say their scans ended
         readable = []
+        empty = []   # files that hold no point
         extents = []
         points = 0
         for path in files:
@@ -1141,6 +1148,12 @@ class _Loader:
                     self.error(Path(found.path).absolute(), found.where, found.field, why)
                 else:
                     self.error(path, None, None, why)
+                continue
+            if info.point_count == 0:
+                # a scan that recorded nothing: left out, or its header's empty box at 0,0 would
+                # stretch the survey's grid from there
+                self.warn(path, None, None, "holds no point: left out of the survey")
+                empty.append(path)
                 continue
             readable.append(path)
             points += info.point_count
@@ -1190,7 +1203,9 @@ class _Loader:
                 continue
             extents.append(bounds)
         if not readable:
-            if files:
+            if files and len(empty) == len(files):
+                self.error(folder, None, None, "no point in any point cloud file of the survey folder")
+            elif files:
                 self.error(folder, None, None, "no readable point cloud in the survey folder")
             return None
         if stations is not None and stations["time"].notna().any():
@@ -1212,10 +1227,10 @@ class _Loader:
         if local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
         extent = None
-        # a stations.csv or trajectory.csv refused whole (unreadable, empty) leaves its files
-        # where their own coordinates put them: an extent from those would add a false alarm
-        unplaced = ((station_path.is_file() and (stations is None or stations.empty) and self.errors_in(station_path))
-                    or (trajectory_path.is_file() and not trajectories and self.errors_in(trajectory_path)))
+        # a stations.csv or trajectory.csv with refused rows (or refused whole) leaves files
+        # where their own coordinates put them: an extent from those would add a false alarm;
+        # it is checked once the poses are right
+        unplaced = any(q.is_file() and self.errors_in(q) for q in (station_path, trajectory_path))
         if extents and not unplaced:
             arr = np.asarray(extents)
             extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
@@ -1265,6 +1280,7 @@ class _Loader:
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
+        from shapely.geometry.base import BaseGeometry
 
         boxes = [box(*ref.extent) for ref in surveys.values() if ref.extent is not None]
         if not boxes:
@@ -1272,7 +1288,7 @@ class _Loader:
         display = self.rel(self.root / "piles.gpkg")
         for i, row in piles.iterrows():
             geom = row.geometry
-            if geom is None or geom.is_empty:
+            if not isinstance(geom, BaseGeometry) or geom.is_empty:   # NULL reads as NaN; reported
                 continue
             if not any(b.intersects(geom) for b in boxes):
                 self.warn(display, f"pile {row['pile_id']}", "geometry", "lies outside every survey's extent")
