@@ -228,6 +228,43 @@ def test_opening_that_is_a_folder(good_site, capsys, refused_once):
     assert refused_once(good_site, capsys) == "error: site/opening.csv: cannot be read (Is a directory)"
 
 
+def as_workbook(csv_path: Path, name: str) -> None:
+    import pandas as pd
+
+    pd.read_csv(csv_path, dtype=str).to_excel(csv_path.with_name(name), index=False)
+
+
+@pytest.mark.parametrize("table, saved_as", [
+    ("movements/2026-10/weighbridge.csv", "weighbridge.xlsx"),
+    ("movements/2026-10/belt_scales.csv", "belt_scales.xlsx"),
+    ("opening.csv", "opening.xlsx"),
+])
+def test_table_saved_as_a_workbook_instead_of_csv(good_site, capsys, refused_once, table, saved_as):
+    """Before: the check passed with the month's tickets (or the opening balances) missing."""
+    path = good_site / table
+    as_workbook(path, saved_as)
+    path.unlink()
+    shown = str(Path("site") / table).replace(path.name, saved_as)
+    assert refused_once(good_site, capsys) == (
+        f"error: {shown}: not read: the tool reads {path.name} (comma-separated text, that name in lower case); "
+        f"save or rename it as {path.name}")
+
+
+def test_table_named_in_capitals(good_site, capsys, refused_once):
+    folder = good_site / "movements" / "2026-10"
+    (folder / "weighbridge.csv").rename(folder / "Weighbridge.CSV")
+    assert refused_once(good_site, capsys) == (
+        "error: site/movements/2026-10/Weighbridge.CSV: not read: the tool reads weighbridge.csv (comma-separated "
+        "text, that name in lower case); save or rename it as weighbridge.csv")
+
+
+def test_workbook_beside_its_csv_is_a_warning(good_site, capsys):
+    as_workbook(good_site / "movements" / "2026-10" / "weighbridge.csv", "weighbridge.xlsx")
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/movements/2026-10/weighbridge.xlsx: ignored: the tool reads weighbridge.csv in this "
+            "folder") in capsys.readouterr().err.splitlines()
+
+
 def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_once):
     """A cloud in the scanner's own frame, placed by its stations.csv pose; stations.csv then
     emptied. Before: a second error followed, about the survey's extent computed from the

@@ -987,8 +987,26 @@ class _Loader:
                   f"footprints are in {src_name!r}, not the site CRS {site_crs} ({dst.name}); reprojected to {site_crs}")
         return moved
 
+    def _look_alikes(self, folder: Path, name: str) -> set[Path]:
+        """Files in ``folder`` that look meant as the table ``name`` but are not read: the
+        name in other letter case, or another format (``weighbridge.xlsx``). Refused when
+        ``name`` itself is absent (the table's records would silently be missing), a warning
+        beside it. Returns them."""
+        stem = name.rsplit(".", 1)[0].lower()
+        found = {other for other in folder.iterdir()
+                 if other.name != name and other.is_file() and other.stem.lower() == stem}
+        present = (folder / name).exists()
+        for other in sorted(found):
+            if present:
+                self.warn(other, None, None, f"ignored: the tool reads {name} in this folder")
+            else:
+                self.error(other, None, None, f"not read: the tool reads {name} (comma-separated text, that "
+                           f"name in lower case); save or rename it as {name}")
+        return found
+
     def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
+        self._look_alikes(self.root, "opening.csv")
         if not path.exists():   # a folder of its name is read, and refused as one
             return None
         frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
@@ -1016,13 +1034,15 @@ class _Loader:
     def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale],
                    tz: ZoneInfo | None) -> Movements:
         tables: dict[str, pd.DataFrame | None] = {}
+        look_alikes: set[Path] = set()
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
+            look_alikes |= self._look_alikes(folder, path.name)
             # a header alone is a table with no records this month
             # a folder of the table's name is read, and refused as one: never taken for no records
             tables[name] = self.table(path, name, empty_ok=True) if path.exists() else None
         for extra in sorted(folder.glob("*.csv")):
-            if extra.stem not in MOVEMENT_TABLES:
+            if extra.stem not in MOVEMENT_TABLES and extra not in look_alikes:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
         # an empty register failed to load and is reported on its own: do not also name every row
         frames, problems = check_movements(
