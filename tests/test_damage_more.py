@@ -228,6 +228,44 @@ def test_opening_that_is_a_folder(good_site, capsys, refused_once):
     assert refused_once(good_site, capsys) == "error: site/opening.csv: cannot be read (Is a directory)"
 
 
+def test_belt_total_given_twice(good_site, capsys, refused_once):
+    """Before: both copies were booked (500 t counted as 1,000 t) without a word."""
+    belts = good_site / "movements" / "2026-10" / "belt_scales.csv"
+    belts.write_text(belts.read_text() + "B1,2026-10-01T00:00:00+02:00,2026-10-02T00:00:00+02:00,500\n")
+    assert refused_once(good_site, capsys) == (
+        "error: site/movements/2026-10/belt_scales.csv line 3: start: interval of belt 'B1' overlaps line 2: it "
+        "starts at 2026-09-30T22:00:00+00:00, before that interval ends at 2026-10-01T22:00:00+00:00 (its tonnes "
+        "would be counted twice)")
+
+
+def test_belt_intervals_end_to_end_are_accepted(good_site, capsys):
+    belts = good_site / "movements" / "2026-10" / "belt_scales.csv"
+    belts.write_text(belts.read_text() + "B1,2026-10-02T00:00:00+02:00,2026-10-03T00:00:00+02:00,450\n")
+    assert main(["check", str(good_site)]) == 0
+
+
+def test_transfer_entered_twice(good_site, capsys, refused_once):
+    """Before: the pasted copy moved the 30 t a second time."""
+    transfers = good_site / "movements" / "2026-10" / "transfers.csv"
+    transfers.write_text(transfers.read_text() + "A,B,2026-10-10T10:00:00+02:00,30,WO-1\n")
+    assert refused_once(good_site, capsys) == (
+        "error: site/movements/2026-10/transfers.csv line 3: time: the transfer repeats line 2 (same piles, time, "
+        "tonnes and reference): it would be counted twice")
+
+
+def test_two_loads_of_one_work_order_are_accepted(good_site, capsys):
+    transfers = good_site / "movements" / "2026-10" / "transfers.csv"
+    transfers.write_text(transfers.read_text() + "A,B,2026-10-10T11:00:00+02:00,30,WO-1\n")
+    assert main(["check", str(good_site)]) == 0
+
+
+def test_equal_transfers_without_reference_are_accepted(good_site, capsys):
+    """Times given by date and no reference: two equal loads on one day may both be real."""
+    transfers = good_site / "movements" / "2026-10" / "transfers.csv"
+    transfers.write_text("from_pile,to_pile,time,tonnes,reference\n" + "A,B,2026-10-10T00:00:00+02:00,30,\n" * 2)
+    assert main(["check", str(good_site)]) == 0
+
+
 def as_workbook(csv_path: Path, name: str) -> None:
     import pandas as pd
 
