@@ -387,7 +387,6 @@ def check_routing(
 ) -> tuple[pd.DataFrame, list[Problem]]:
     """Check belt routing windows; return them normalised (UTC times) and the problems."""
     t = _Rows(frame, "routing", path, table_schema("routing").required)
-    df = t.df
     t.text("scale_id")
     t.text("pile_id")
     t.times("start")
