@@ -407,3 +407,13 @@ def test_survey_out_in_a_folder_without_write_permission(good_site, tmp_path, ca
     assert refused_once(good_site, capsys, argv) == (
         f"error: {locked}: --out: is not a writable folder; the survey's outputs cannot be written there")
     assert list(locked.iterdir()) == []
+
+
+# ----------------------------------------------------------------------------- ledger
+def test_ledger_name_taken_by_a_folder(good_site, capsys, refused_once):
+    """Before: exit 1, 'cannot open the ledger: unable to open database file'."""
+    (good_site / "ledger.sqlite").mkdir()
+    line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
+    assert line == (f"error: {good_site / 'ledger.sqlite'}: is a folder, not a ledger file; move it away (a close "
+                    "creates the file)")
+    assert not (good_site / "closes" / "2026-10").exists()
