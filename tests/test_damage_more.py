@@ -113,6 +113,17 @@ def test_piles_layer_without_geometry(good_site, capsys, refused_once):
         f"{P} layer piles: geometry: the layer has no geometry column (footprints are polygons)")
 
 
+def test_footprint_smaller_than_a_grid_cell_is_a_warning(good_site, capsys):
+    """A 10 m circle drawn in kilometres (radius 0.01): before, nothing was said and the close
+    found about -100 % of the pile's book stock."""
+    rewrite_piles(good_site, geometry=[Point(500000, 5700000).buffer(0.01), Point(500030, 5700000).buffer(10)])
+    assert main(["check", str(good_site)]) == 0
+    area = Point(500000, 5700000).buffer(0.01).area   # shapely's 32-gon, a little under pi r2
+    assert (f"warning: site/piles.gpkg pile A: geometry: footprint of {area:.3g} m2 is smaller than one grid cell "
+            "(0.25 m2 at [grid] cell_size_m = 0.5): its volume is next to nothing (drawn in other units?)"
+            ) in capsys.readouterr().err.splitlines()
+
+
 # ----------------------------------------------------------------------------- site.toml unreadable
 def test_site_toml_that_cannot_be_read(good_site, capsys, monkeypatch):
     """No read permission (simulated: the tests may run as root, who reads every file)."""

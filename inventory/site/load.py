@@ -495,6 +495,8 @@ class _Loader:
                 self.warn(self.root / "materials.csv", 1, "unit_cost",
                           f"{len(costed)} material(s) have a unit cost but site.toml has no [journal] currency: "
                           "the journal's values carry no currency")
+        if piles is not None:
+            self._small_footprints(piles, config.grid.cell_size_m)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -958,6 +960,21 @@ class _Loader:
                     )
         frame = frame.reset_index(drop=True)
         return frame[["pile_id", "material", "base", "density_t_m3", "geometry"]]
+
+    def _small_footprints(self, piles, cell: float) -> None:
+        """Warn of a footprint smaller than one grid cell: its volume (its share of the cells
+        it covers) is next to nothing, and its variance about -100 % (a footprint drawn in the
+        wrong units, say)."""
+        import shapely
+
+        if not (isinstance(cell, (int, float)) and math.isfinite(cell) and cell > 0):
+            return   # the schema's error, reported on its own
+        display = self.rel(self.root / "piles.gpkg")
+        for pid, geom in zip(piles["pile_id"], piles.geometry):
+            if isinstance(geom, shapely.Geometry) and not geom.is_empty and geom.area < cell * cell:
+                self.warn(display, f"pile {pid}", "geometry",
+                          f"footprint of {geom.area:.3g} m2 is smaller than one grid cell ({cell * cell:g} m2 at "
+                          f"[grid] cell_size_m = {cell:g}): its volume is next to nothing (drawn in other units?)")
 
     def _piles_in_site_crs(self, frame, path: Path, site_crs: str):
         """The footprints in the site CRS: drawn in another CRS, they are reprojected (the
