@@ -216,6 +216,18 @@ def test_check_passes_a_valid_pipeline(good_site, capsys):
      "filters.reprojection, inventory.slope_ground, inventory.voxel_thin, readers.copc, readers.las, writers.las"),
     ('[{"type": "filters.range", "limit": "Z[0:9]"}]',
      "stage 1 (filters.range): unknown option(s) limit; known: limits"),
+    # option values: before, found only when the stage ran, after every cloud was read
+    ('[{"type": "filters.outlier", "mean_k": "eight"}]',
+     "stage 1 (filters.outlier): option 'mean_k' must be a number, got 'eight'"),
+    ('[{"type": "filters.outlier", "mean_k": 8.5}]', "stage 1 (filters.outlier): option 'mean_k' must be a whole "
+     "number, got 8.5"),
+    ('[{"type": "filters.csf", "smooth": "yes"}]', "stage 1 (filters.csf): option 'smooth' must be true or false, "
+     "got 'yes'"),
+    ('[{"type": "filters.elm", "class": 300}]', "stage 1 (filters.elm): option 'class' must be a class 0-255, got 300"),
+    ('[{"type": "filters.range", "limits": "Z[0:"}]', "stage 1 (filters.range): range 'Z[0:' is not of the form "
+     "Name[lower:upper] (brackets [ ] inclusive, ( ) exclusive, ! negates)"),
+    ('[{"type": "inventory.slope_ground", "max_slope_deg": null}]', "stage 1 (inventory.slope_ground): option "
+     "'max_slope_deg' must be a number, got None"),
 ])
 def test_check_refuses_a_broken_pipeline(good_site, capsys, refused_once, text, why):
     """Before: the check said ok and only the survey step refused the file."""

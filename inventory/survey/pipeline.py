@@ -464,6 +464,29 @@ STAGES: dict[str, _Spec] = {
 }
 
 
+#: Options whose stage takes a value of any kind (PDAL's thread count, accepted and unused
+#: here) or a word beside a number (``"auto"`` scales): their defaults say nothing of them.
+_UNTYPED = frozenset({"threads", "scale_x", "scale_y", "scale_z"})
+#: Options holding dimension ranges, read by :func:`parse_limits`.
+_RANGES = frozenset({"limits", "ignore", "condition"})
+
+
+def _check_value(name: str, default: Any, value: Any) -> None:
+    """Refuse, when the pipeline is read, a value its stage would refuse when it runs: of
+    the kind of the option's default (true/false, whole number, class, number), or ranges."""
+    if name in _RANGES:
+        if value or name == "limits":   # the stages skip an empty 'ignore' or 'condition'
+            _ranges(value)
+    elif name in _UNTYPED or default is _REQUIRED:
+        return
+    elif isinstance(default, bool):
+        _as_bool(value, name)
+    elif isinstance(default, int):
+        (_class if name.endswith("class") else _as_int)(value, name)
+    elif isinstance(default, float):
+        _as_float(value, name)
+
+
 def _stage_from_raw(raw: Any, index: int, n: int, where: str) -> Stage:
     if isinstance(raw, str):  # PDAL infers reader/writer from a bare file name
         raw = {"type": "readers.las" if index == 0 else "writers.las", "filename": raw}
@@ -486,6 +509,10 @@ def _stage_from_raw(raw: Any, index: int, n: int, where: str) -> Stage:
     opts = {}
     for k, default in spec.options.items():
         if k in raw:
+            try:
+                _check_value(k, default, raw[k])
+            except PipelineError as err:
+                raise PipelineError(f"{where}: stage {index + 1} ({typ}): {err}") from err
             opts[k] = raw[k]
         elif default is _REQUIRED:
             raise PipelineError(f"{where}: stage {index + 1} ({typ}): option {k!r} is required")
@@ -622,8 +649,8 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
 
 def pipeline_problems(path: "str | Path", display: str) -> list[Problem]:
     """What ``inventory check`` reports of a pipeline file, shown as ``display``: a file that
-    cannot be read, is not JSON, or names an unknown stage or option or misses a required one
-    (an empty list when it parses). Option values are checked when the stages run."""
+    cannot be read, is not JSON, names an unknown stage or option, misses a required one, or
+    gives an option a value of the wrong kind (an empty list when it parses)."""
     try:
         Pipeline.from_file(path)
     except PipelineError as err:
