@@ -319,6 +319,23 @@ def test_table_named_in_capitals(good_site, capsys, refused_once):
         "text, that name in lower case); save or rename it as weighbridge.csv")
 
 
+@pytest.mark.parametrize("name, expected", [
+    ("Stations.csv", "stations.csv"),
+    ("control.xlsx", "control.csv"),   # not opened: the name alone is refused
+    ("trajectory.CSV", "trajectory.csv"),
+])
+def test_survey_table_under_another_name(good_site, capsys, refused_once, name, expected):
+    """Before: not read, the survey's files placed without their poses or control."""
+    survey = good_site / "surveys" / "2026-10-31"
+    if expected == "stations.csv":
+        (survey / "stations.csv").rename(survey / name)
+    else:
+        (survey / name).write_text("x")
+    assert refused_once(good_site, capsys) == (
+        f"error: site/surveys/2026-10-31/{name}: not read: the tool reads {expected} (comma-separated text, that "
+        f"name in lower case); save or rename it as {expected}")
+
+
 def test_workbook_beside_its_csv_is_a_warning(good_site, capsys):
     as_workbook(good_site / "movements" / "2026-10" / "weighbridge.csv", "weighbridge.xlsx")
     assert main(["check", str(good_site)]) == 0

@@ -1011,7 +1011,8 @@ class _Loader:
         beside it. Returns them."""
         stem = name.rsplit(".", 1)[0].lower()
         found = {other for other in folder.iterdir()
-                 if other.name != name and other.is_file() and other.stem.lower() == stem}
+                 if other.name != name and other.is_file() and other.stem.lower() == stem
+                 and other.suffix.lower() not in POINT_CLOUD_SUFFIXES}   # a cloud is read as one
         present = (folder / name).exists()
         for other in sorted(found):
             if present:
@@ -1098,6 +1099,9 @@ class _Loader:
         for path in [p for p in files if self.outside(p)]:
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
             files.remove(path)
+        # a poses table saved under another name leaves the files unplaced (refused)
+        misnamed = [name for name in ("stations.csv", "trajectory.csv", "control.csv")
+                    if self._look_alikes(folder, name) and not (folder / name).exists()]
         stations = None
         station_path = folder / "stations.csv"
         if station_path.is_file():
@@ -1267,7 +1271,7 @@ class _Loader:
         # a stations.csv or trajectory.csv with refused rows (or refused whole) leaves files
         # where their own coordinates put them: an extent from those would add a false alarm;
         # it is checked once the poses are right
-        unplaced = any(q.is_file() and self.errors_in(q) for q in (station_path, trajectory_path))
+        unplaced = misnamed or any(q.is_file() and self.errors_in(q) for q in (station_path, trajectory_path))
         if extents and not unplaced:
             arr = np.asarray(extents)
             extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
