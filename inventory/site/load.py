@@ -971,7 +971,8 @@ class _Loader:
             return   # the schema's error, reported on its own
         display = self.rel(self.root / "piles.gpkg")
         for pid, geom in zip(piles["pile_id"], piles.geometry):
-            if isinstance(geom, shapely.Geometry) and not geom.is_empty and geom.area < cell * cell:
+            if (isinstance(geom, shapely.Geometry) and geom.geom_type in ("Polygon", "MultiPolygon")
+                    and geom.is_valid and not geom.is_empty and geom.area < cell * cell):   # others are refused
                 self.warn(display, f"pile {pid}", "geometry",
                           f"footprint of {geom.area:.3g} m2 is smaller than one grid cell ({cell * cell:g} m2 at "
                           f"[grid] cell_size_m = {cell:g}): its volume is next to nothing (drawn in other units?)")
