@@ -7,6 +7,7 @@ feature, and field). ``--verbose`` shows tracebacks.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -42,6 +43,14 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from inventory.site.load import check_site
 
     report = check_site(args.site)
+    pipeline = report.site.config.survey.pipeline if report.site is not None else None
+    if pipeline is not None:
+        # parsed here, not by the site loader: the stages are the survey step's
+        from inventory.survey.pipeline import pipeline_problems
+
+        inside = pipeline.is_relative_to(report.site.root)   # outside only with [paths] allow_outside
+        shown = args.site / pipeline.relative_to(report.site.root) if inside else pipeline
+        report.problems += pipeline_problems(pipeline, str(shown))
     for problem in report.warnings:
         _err(f"warning: {problem}")
     if not report.ok:
@@ -87,6 +96,8 @@ def _cmd_survey(args: argparse.Namespace) -> int:
         out_dirs = [args.out] if len(dates) == 1 else [args.out / d for d in dates]
     else:
         out_dirs = [site.root / "surveys-processed" / d for d in dates]
+    for out_dir in out_dirs:
+        _output_folder(out_dir, "--out" if args.out is not None else None)
     results = measure_surveys(site, dates, out_dirs, progress=_progress(args),
                               workers=args.workers, scheduler=args.scheduler)
     for result in results:
@@ -166,6 +177,22 @@ def _cmd_history(args: argparse.Namespace) -> int:
     else:
         sys.stdout.write(text)
     return EXIT_OK
+
+
+def _output_folder(path: Path, option: str | None) -> None:
+    """Refuse, before any work, an output folder the run could not create or write: a file
+    of its name, or a parent that is a file or not writable."""
+    if (path.exists() or path.is_symlink()) and not path.is_dir():
+        raise InputError(path, "is a file, not a folder; the survey's outputs go into a folder of this name",
+                         field=option)
+    probe = path
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise InputError(probe, f"is a file, not a folder; {path} cannot be made under it", field=option)
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise InputError(probe, "is not a writable folder; the survey's outputs cannot be written there",
+                         field=option)
 
 
 def _output_file(path: Path) -> None:

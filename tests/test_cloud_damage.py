@@ -1,5 +1,6 @@
 """Damaged point cloud files: a LAZ or LAS cut at some byte, a header whose point count
-disagrees with the points the file holds. ``inventory check`` names the file from its header,
+disagrees with the points the file holds, header scale factors, offsets or bounds that cannot
+place the points. ``inventory check`` names the file from its header,
 chunk table and size alone; the survey step turns a decoding failure into the same input
 error; nothing is written."""
 
@@ -182,3 +183,49 @@ def test_intact_files_pass(tmp_path, laspy_data):
     for name in names:
         info = inspect_cloud(laspy_data / name)
         assert info.error is None, (name, info.error)
+
+
+# ----------------------------------------------------------------------------- header numbers
+# Byte offsets in the LAS public header block (ASPRS LAS 1.4 R15, table 3): X, Y, Z scale
+# factors at 131, 139, 147; offsets at 155, 163, 171; then Max X, Min X, Max Y, Min Y, Max Z,
+# Min Z as doubles from 179.
+def patch_header(path: Path, at: int, fmt: str, *values) -> None:
+    data = bytearray(path.read_bytes())
+    data[at:at + struct.calcsize(fmt)] = struct.pack(fmt, *values)
+    path.write_bytes(bytes(data))
+
+
+A = "error: site/surveys/2026-10-31/a.laz"
+
+
+@pytest.mark.parametrize("at, fmt, values, expected", [
+    # before: checked and surveyed without a word, every point of the file at x = 500000
+    (131, "<d", (0.0,), f"{A}: x_scale_factor: unreadable point cloud (scale factor 0.0 in the header: every x would "
+                        "be 500000.0)"),
+    # before: every point of the file NaN, dropped without a word by the survey
+    (163, "<d", (float("nan"),), f"{A}: y_offset: unreadable point cloud (offset nan in the header: every y would "
+                                 "be NaN)"),
+    (147, "<d", (float("inf"),), f"{A}: z_scale_factor: unreadable point cloud (scale factor inf in the header: "
+                                 "every z would be NaN)"),
+    # before: a survey grid from 0,0 to the site (about a million GB), refused naming the folder only
+    (179, "<6d", (0.0,) * 6, f"{A}: min_x: unreadable point cloud (the header's bounds are all 0 although it holds "
+                             "50 points (its writer did not fill them in): rewrite the file with its bounds)"),
+])
+def test_header_numbers_that_cannot_place_the_points(good_site, capsys, refused_once, write_tiny_cloud,
+                                                     at, fmt, values, expected):
+    write_tiny_cloud(good_site / SURVEY / "b.laz")   # an intact file beside: the survey stays readable
+    patch_header(good_site / SURVEY / "a.laz", at, fmt, *values)
+    assert refused_once(good_site, capsys) == expected
+    argv = ["survey", str(good_site), "--date", "2026-10-31", "--out", str(good_site.parent / "out")]
+    assert refused_once(good_site, capsys, argv) == expected
+    assert not (good_site.parent / "out").exists()
+
+
+def test_header_minimum_above_maximum(good_site, capsys, refused_once, write_tiny_cloud):
+    write_tiny_cloud(good_site / SURVEY / "b.laz")
+    path = good_site / SURVEY / "a.laz"
+    header = header_of(path)
+    patch_header(path, 179, "<2d", header.mins[0], header.maxs[0])   # max x and min x swapped
+    assert refused_once(good_site, capsys) == (
+        f"{A}: min_x: unreadable point cloud (minimum {float(header.maxs[0])} in the header is above the maximum "
+        f"{float(header.mins[0])})")

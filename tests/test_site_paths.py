@@ -10,6 +10,7 @@ import os
 from pathlib import Path
 
 import geopandas as gpd
+import numpy as np
 import pytest
 
 from inventory.cli import main
@@ -110,6 +111,16 @@ def test_nesting_the_schema_uses_is_accepted(good_site):
 
 
 # --- case 3: files named in site.toml, and paths outside the site folder -------------------
+def write_floor(path: Path) -> None:
+    """A small valid floor GeoTIFF (the check reads every block of it)."""
+    import rasterio
+    from rasterio.transform import from_origin
+
+    with rasterio.open(path, "w", driver="GTiff", width=8, height=8, count=1, dtype="float32",
+                       crs="EPSG:25832", transform=from_origin(499980.0, 5700020.0, 10.0, 10.0)) as dst:
+        dst.write(np.full((8, 8), 9.5, dtype="float32"), 1)
+
+
 def test_a_floor_raster_that_does_not_exist_names_key_and_path(good_site, capsys):
     add_toml(good_site, '[base]\nfloor_raster = "base/flor.tif"\n')
     assert refused(good_site, capsys) == [
@@ -133,7 +144,7 @@ def test_an_absolute_floor_raster_outside_the_site_is_refused(good_site, tmp_pat
 
 def test_an_absolute_floor_raster_inside_the_site_is_used(good_site):
     (good_site / "base").mkdir()
-    (good_site / "base" / "floor.tif").write_bytes(b"checked when the close reads it")
+    write_floor(good_site / "base" / "floor.tif")
     add_toml(good_site, f'[base]\nfloor_raster = "{good_site / "base" / "floor.tif"}"\n')
     site = load_site(good_site)
     assert site.config.base.floor_raster == site.root / "base" / "floor.tif"
@@ -142,7 +153,7 @@ def test_an_absolute_floor_raster_inside_the_site_is_used(good_site):
 def test_allow_outside_lets_a_floor_raster_outside_be_used(good_site, tmp_path):
     elsewhere = tmp_path / "site_survey_office" / "floor.tif"
     elsewhere.parent.mkdir()
-    elsewhere.write_bytes(b"checked when the close reads it")
+    write_floor(elsewhere)
     add_toml(good_site, '[paths]\nallow_outside = true\n\n[base]\nfloor_raster = "../site_survey_office/floor.tif"\n')
     site = load_site(good_site)
     assert site.config.base.floor_raster.resolve() == elsewhere.resolve()

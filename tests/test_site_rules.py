@@ -107,7 +107,9 @@ CASES = {
                      (BELTS, 2, "scale_id", "unknown belt scale 'B7' (not in site.toml [[scales]])")),
     "weighbridge as belt": ("belt_scales", [belt(scale_id="WB1")], None,
                             (BELTS, 2, "scale_id", "'WB1' is a weighbridge in site.toml [[scales]], not a belt scale")),
-    "belt direction": ("belt_scales", [belt(scale_id="B0"), belt(scale_id="B0")], None,
+    "belt direction": ("belt_scales", [belt(scale_id="B0"),
+                                       belt(scale_id="B0", start=T("2026-10-05T11:00Z"), end=T("2026-10-05T12:00Z"))],
+                       None,
                        (BELTS, 2, "scale_id", "belt scale 'B0' has no direction (in|out) in site.toml; "
                                               "its 2 interval(s) cannot be booked")),
     "interval order": ("belt_scales", [belt(end=T("2026-10-05T10:00Z"))], None,

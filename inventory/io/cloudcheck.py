@@ -8,16 +8,20 @@ half-way through a survey: for LAS, the point records between the start of point
 the file's end (or its first extended VLR); for LAZ, the chunk table that the compressor
 writes after the points (LAZ specification 1.4 R1, "chunk table"), whose offset is the first
 8 bytes of the point data and whose entries give every chunk's compressed size.
+:func:`header_problem` refuses scale factors, offsets and bounds that cannot place the points.
 """
 
 from __future__ import annotations
 
+import math
 import struct
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["CloudInfo", "inspect_cloud", "size_problem"]
+from inventory.errors import Problem
+
+__all__ = ["CloudInfo", "header_problem", "inspect_cloud", "size_problem"]
 
 #: ``chunk_size`` of a LAZ file whose chunks hold varying numbers of points (LAZ 1.4 R1).
 _VARIABLE_CHUNKS = 0xFFFFFFFF
@@ -124,6 +128,30 @@ def size_problem(path: str | Path, header: Any) -> str | None:
     return _las_problem(header, size)
 
 
+def header_problem(header: Any) -> tuple[str, str] | None:
+    """``(field, why)`` when a LAS header's scale factors, offsets or bounds could not place
+    its points, or ``None``. Coordinates are ``stored * scale + offset`` (ASPRS LAS 1.4 R15,
+    public header block): a scale of 0 puts every point on the offset, a non-finite scale or
+    offset makes every coordinate NaN, and the survey's grid is sized from the bounds."""
+    for axis, scale, offset in zip("xyz", header.scales, header.offsets):
+        scale, offset = float(scale), float(offset)
+        if not math.isfinite(scale) or scale == 0:
+            return f"{axis}_scale_factor", f"scale factor {scale} in the header: every {axis} would be " + (
+                f"{offset}" if scale == 0 else "NaN")
+        if not math.isfinite(offset):
+            return f"{axis}_offset", f"offset {offset} in the header: every {axis} would be NaN"
+    for axis, low, high in zip("xyz", header.mins, header.maxs):
+        low, high = float(low), float(high)
+        if not (math.isfinite(low) and math.isfinite(high)):
+            return f"min_{axis}", f"bounds {low}..{high} in the header are not finite"
+        if low > high:
+            return f"min_{axis}", f"minimum {low} in the header is above the maximum {high}"
+    if int(header.point_count) > 0 and not any(map(float, [*header.mins, *header.maxs])):
+        return "min_x", (f"the header's bounds are all 0 although it holds {int(header.point_count):,} points "
+                         "(its writer did not fill them in): rewrite the file with its bounds")
+    return None
+
+
 def _inspect_other(path: Path, poses: "dict | None") -> CloudInfo:
     """E57, PLY and text files: their reader's count, CRS and bounds. E57 bounds are the
     scans' boxes through their poses (``poses`` replacing the file's), PLY and text bounds
@@ -167,6 +195,10 @@ def inspect_cloud(path: str | Path, poses: "dict | None" = None) -> CloudInfo:
             problem = size_problem(path, header)
             if problem is not None:
                 return CloudInfo(path, point_count=int(header.point_count), error=problem)
+            bad = header_problem(header)
+            if bad is not None:
+                return CloudInfo(path, point_count=int(header.point_count), error=bad[1],
+                                 problem=Problem(str(path), None, bad[0], bad[1]))
             return CloudInfo(
                 path,
                 point_count=int(header.point_count),

@@ -123,6 +123,8 @@ class Ledger:
         """
         if self._con is not None:
             return self
+        if self.path.exists() and not self.path.is_file():
+            raise LedgerInputError(self.path, "is a folder, not a ledger file; move it away (a close creates the file)")
         if self.path.exists() and self.path.stat().st_size > 0:
             self._con = self._connect(self.path)
             self._pending_create = False

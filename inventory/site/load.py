@@ -36,7 +36,7 @@ import pandas as pd
 import tomllib
 
 from inventory.errors import InputErrors, InputWarning, Problem
-from inventory.io.tables import read_table, table_schema
+from inventory.io.tables import is_blank, read_table, table_schema
 from inventory.model.period import Period
 from inventory.model.texts import DEFAULT_VERTICAL_REFERENCE
 from inventory.site.extent import survey_extent_problems
@@ -382,7 +382,9 @@ def parse_base(text: str) -> tuple[str, float | None]:
     >>> parse_base("toe")
     ('toe', None)
     """
-    value = (text or "").strip()
+    if not isinstance(text, str):
+        raise ValueError(f"{text!r} is not floor, toe or level:<z in metres>")
+    value = text.strip()
     if value in ("floor", "toe"):
         return value, None
     match = _LEVEL_BASE.match(value)
@@ -480,14 +482,21 @@ class _Loader:
         materials, material_names = self._materials()
         piles = self._piles(material_names, crs)
         pile_ids = set(piles["pile_id"]) if piles is not None else set()
+        ids_known = piles is not None and not self.errors_in(self.root / "piles.gpkg", "pile_id")
+        if not ids_known:
+            # an id refused there (missing, a number) would make every row naming it 'unknown':
+            # the tables' pile ids are checked once the register is right
+            pile_ids = set()
         opening = self._opening(pile_ids)
-        self._journal_codes(config.journal, material_names, pile_ids if piles is not None else None)
+        self._journal_codes(config.journal, material_names, pile_ids if ids_known else None)
         if config.journal.currency is None and materials:
             costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
             if costed:
                 self.warn(self.root / "materials.csv", 1, "unit_cost",
                           f"{len(costed)} material(s) have a unit cost but site.toml has no [journal] currency: "
                           "the journal's values carry no currency")
+        if piles is not None:
+            self._small_footprints(piles, config.grid.cell_size_m)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -522,6 +531,9 @@ class _Loader:
             self.toml_text = text
         except UnicodeDecodeError:
             self.error(path, None, None, "not UTF-8 text")
+            return None
+        except OSError as err:  # no read permission, a read error of the disk
+            self.error(path, None, None, f"cannot be read ({err.strerror or err})")
             return None
         except RecursionError:
             self.error(path, None, None, f"tables or arrays nested too deeply to read (at most {MAX_TOML_DEPTH} levels)")
@@ -639,9 +651,39 @@ class _Loader:
     def _floor_raster(self, text: str | None) -> Path | None:
         """The floor raster site.toml names (it must exist), else ``base/floor.tif`` if present."""
         if text is not None:
-            return self._config_path(text, "base.floor_raster")
-        default = "base/floor.tif"
-        return self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
+            path = self._config_path(text, "base.floor_raster")
+        else:
+            default = "base/floor.tif"
+            path = self._config_path(default, "base.floor_raster") if (self.root / default).is_file() else None
+        if path is not None and not self._raster_readable(path, "floor_raster"):
+            return None
+        return path
+
+    def _raster_readable(self, path: Path, fieldname: str) -> bool:
+        """Whether every block of the raster's first band reads (reports why not): a raster
+        cut short opens, and fails only where its missing tiles are read."""
+        import rasterio
+        from rasterio.errors import RasterioError
+
+        where = None
+        try:
+            with rasterio.open(path) as src:
+                if src.count < 1:
+                    self.error(path, None, fieldname, "the raster has no band")
+                    return False
+                for (row, col), window in src.block_windows(1):
+                    where = f"block {row},{col} (rows {window.row_off}-{window.row_off + window.height - 1})"
+                    src.read(1, window=window)
+        except (RasterioError, OSError) as err:
+            cause = err.__cause__ or err.__context__
+            detail = str(cause if where is not None and cause is not None else err)
+            detail = detail.replace(str(path), path.name)
+            if where is None:
+                self.error(path, None, fieldname, f"cannot be opened as a GeoTIFF ({detail})")
+            else:
+                self.error(path, where, fieldname, f"cut short or damaged: cannot be read ({detail})")
+            return False
+        return True
 
     def _config_path(self, text: str | None, key: str) -> Path | None:
         """A file named in site.toml, relative to the site folder (or absolute): it must exist,
@@ -815,6 +857,16 @@ class _Loader:
             self.error(path, None, None, f"no layer 'piles' (found: {', '.join(layers) or 'none'})")
             return None
         frame = gpd.read_file(path, layer="piles", engine="pyogrio", fid_as_index=True)
+        if not isinstance(frame, gpd.GeoDataFrame):   # an attribute table without geometry
+            self.error(path, "layer piles", "geometry", "the layer has no geometry column (footprints are polygons)")
+            return None
+        has_z = shapely.has_z(frame.geometry.values)
+        if has_z.any():
+            # a footprint is drawn on the map: the heights of its corners measure nothing (a
+            # pile's base is its 'base' field); without them every step sees the same polygon
+            frame = frame.set_geometry(shapely.force_2d(frame.geometry.values), crs=frame.crs)
+            self.warn(path, "layer piles", "geometry",
+                      f"{int(has_z.sum())} footprint(s) carry heights (Z); only their x and y are used")
         for column in ("pile_id", "material", "base"):
             if column not in frame.columns:
                 self.error(path, "layer piles", column, "required field is missing")
@@ -834,25 +886,52 @@ class _Loader:
         for i, (fid, row) in enumerate(frame.iterrows()):
             pid = row["pile_id"]
             where = f"feature {fid}" + (f" (pile {pid})" if isinstance(pid, str) and pid else "")
-            if not isinstance(pid, str) or not pid.strip():
+            if is_blank(pid):
                 self.error(display, where, "pile_id", "value is missing")
                 good[i] = False
                 continue
+            if not isinstance(pid, str):
+                # the tables hold pile ids as text: a number here would never match them
+                self.error(display, where, "pile_id",
+                           f"{pid} is a number; the field must be text (String), as the tables' pile ids are")
+                good[i] = False
+                continue
+            if pid != pid.strip():
+                # the tables' cells are read without their surrounding spaces: so is the pile id
+                self.warn(display, where, "pile_id", f"pile id {pid!r} has spaces around it; read as {pid.strip()!r}")
+                pid = pid.strip()
+                frame.at[fid, "pile_id"] = pid
             if pid in seen:
                 self.error(display, where, "pile_id", f"pile id {pid!r} repeats feature {seen[pid]}")
                 good[i] = False
             seen.setdefault(pid, fid)
-            if row["material"] not in materials and materials:
+            if is_blank(row["material"]):
+                self.error(display, where, "material", "value is missing")
+            elif row["material"] not in materials and materials:
                 self.error(display, where, "material", f"unknown material {row['material']!r} (not in materials.csv)")
-            try:
-                parse_base(row["base"])
-            except ValueError as err:
-                self.error(display, where, "base", str(err))
+            if is_blank(row["base"]):
+                self.error(display, where, "base", "value is missing (floor, toe or level:<z in metres>)")
+            else:
+                try:
+                    parse_base(row["base"])
+                except ValueError as err:
+                    self.error(display, where, "base", str(err))
             density = row["density_t_m3"]
-            if density is not None and not pd.isna(density) and not float(density) > 0:
-                self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
+            if not is_blank(density):
+                try:
+                    value = float(density)
+                except (TypeError, ValueError):
+                    self.error(display, where, "density_t_m3", f"{density!r} is not a number")
+                else:
+                    if not math.isfinite(value):
+                        self.error(display, where, "density_t_m3", f"{density} is not a finite number")
+                    elif not value > 0:
+                        self.error(display, where, "density_t_m3", f"{density} must be greater than 0")
             geom = row.geometry
-            if geom is None or geom.is_empty:
+            if not isinstance(geom, shapely.Geometry):   # NULL: a row reads it as NaN
+                self.error(display, where, "geometry", "no geometry (NULL)")
+                good[i] = False
+            elif geom.is_empty:
                 self.error(display, where, "geometry", "empty geometry")
                 good[i] = False
             elif geom.geom_type not in ("Polygon", "MultiPolygon"):
@@ -882,6 +961,22 @@ class _Loader:
         frame = frame.reset_index(drop=True)
         return frame[["pile_id", "material", "base", "density_t_m3", "geometry"]]
 
+    def _small_footprints(self, piles, cell: float) -> None:
+        """Warn of a footprint smaller than one grid cell: its volume (its share of the cells
+        it covers) is next to nothing, and its variance about -100 % (a footprint drawn in the
+        wrong units, say)."""
+        import shapely
+
+        if not (isinstance(cell, (int, float)) and math.isfinite(cell) and cell > 0):
+            return   # the schema's error, reported on its own
+        display = self.rel(self.root / "piles.gpkg")
+        for pid, geom in zip(piles["pile_id"], piles.geometry):
+            if (isinstance(geom, shapely.Geometry) and geom.geom_type in ("Polygon", "MultiPolygon")
+                    and geom.is_valid and not geom.is_empty and geom.area < cell * cell):   # others are refused
+                self.warn(display, f"pile {pid}", "geometry",
+                          f"footprint of {geom.area:.3g} m2 is smaller than one grid cell ({cell * cell:g} m2 at "
+                          f"[grid] cell_size_m = {cell:g}): its volume is next to nothing (drawn in other units?)")
+
     def _piles_in_site_crs(self, frame, path: Path, site_crs: str):
         """The footprints in the site CRS: drawn in another CRS, they are reprojected (the
         GeoPackage states its CRS, so the transform is not a guess) with a warning; without a
@@ -910,9 +1005,28 @@ class _Loader:
                   f"footprints are in {src_name!r}, not the site CRS {site_crs} ({dst.name}); reprojected to {site_crs}")
         return moved
 
+    def _look_alikes(self, folder: Path, name: str) -> set[Path]:
+        """Files in ``folder`` that look meant as the table ``name`` but are not read: the
+        name in other letter case, or another format (``weighbridge.xlsx``). Refused when
+        ``name`` itself is absent (the table's records would silently be missing), a warning
+        beside it. Returns them."""
+        stem = name.rsplit(".", 1)[0].lower()
+        found = {other for other in folder.iterdir()
+                 if other.name != name and other.is_file() and other.stem.lower() == stem
+                 and other.suffix.lower() not in POINT_CLOUD_SUFFIXES}   # a cloud is read as one
+        present = (folder / name).exists()
+        for other in sorted(found):
+            if present:
+                self.warn(other, None, None, f"ignored: the tool reads {name} in this folder")
+            else:
+                self.error(other, None, None, f"not read: the tool reads {name} (comma-separated text, that "
+                           f"name in lower case); save or rename it as {name}")
+        return found
+
     def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
-        if not path.is_file():
+        self._look_alikes(self.root, "opening.csv")
+        if not path.exists():   # a folder of its name is read, and refused as one
             return None
         frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
         self.problems += problems
@@ -939,12 +1053,15 @@ class _Loader:
     def _movements(self, folder: Path, piles: set[str], materials: set[str], scales: dict[str, Scale],
                    tz: ZoneInfo | None) -> Movements:
         tables: dict[str, pd.DataFrame | None] = {}
+        look_alikes: set[Path] = set()
         for name in MOVEMENT_TABLES:
             path = folder / f"{name}.csv"
+            look_alikes |= self._look_alikes(folder, path.name)
             # a header alone is a table with no records this month
-            tables[name] = self.table(path, name, empty_ok=True) if path.is_file() else None
+            # a folder of the table's name is read, and refused as one: never taken for no records
+            tables[name] = self.table(path, name, empty_ok=True) if path.exists() else None
         for extra in sorted(folder.glob("*.csv")):
-            if extra.stem not in MOVEMENT_TABLES:
+            if extra.stem not in MOVEMENT_TABLES and extra not in look_alikes:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
         # an empty register failed to load and is reported on its own: do not also name every row
         frames, problems = check_movements(
@@ -983,6 +1100,9 @@ class _Loader:
         for path in [p for p in files if self.outside(p)]:
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
             files.remove(path)
+        # a poses table saved under another name leaves the files unplaced (refused)
+        misnamed = [name for name in ("stations.csv", "trajectory.csv", "control.csv")
+                    if self._look_alikes(folder, name) and not (folder / name).exists()]
         stations = None
         station_path = folder / "stations.csv"
         if station_path.is_file():
@@ -1048,6 +1168,7 @@ class _Loader:
         e57_all_posed: set[str] = set()   # E57 files whose every scan has its pose from stations.csv
         e57_times: list[datetime] = []     # when E57 files say their scans ended
         readable = []
+        empty = []   # files that hold no point
         extents = []
         points = 0
         for path in files:
@@ -1069,6 +1190,12 @@ class _Loader:
                     self.error(Path(found.path).absolute(), found.where, found.field, why)
                 else:
                     self.error(path, None, None, why)
+                continue
+            if info.point_count == 0:
+                # a scan that recorded nothing: left out, or its header's empty box at 0,0 would
+                # stretch the survey's grid from there
+                self.warn(path, None, None, "holds no point: left out of the survey")
+                empty.append(path)
                 continue
             readable.append(path)
             points += info.point_count
@@ -1118,7 +1245,9 @@ class _Loader:
                 continue
             extents.append(bounds)
         if not readable:
-            if files:
+            if files and len(empty) == len(files):
+                self.error(folder, None, None, "no point in any point cloud file of the survey folder")
+            elif files:
                 self.error(folder, None, None, "no readable point cloud in the survey folder")
             return None
         if stations is not None and stations["time"].notna().any():
@@ -1140,7 +1269,11 @@ class _Loader:
         if local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
         extent = None
-        if extents:
+        # a stations.csv or trajectory.csv with refused rows (or refused whole) leaves files
+        # where their own coordinates put them: an extent from those would add a false alarm;
+        # it is checked once the poses are right
+        unplaced = misnamed or any(q.is_file() and self.errors_in(q) for q in (station_path, trajectory_path))
+        if extents and not unplaced:
             arr = np.asarray(extents)
             extent = (arr[:, 0].min(), arr[:, 1].min(), arr[:, 2].max(), arr[:, 3].max())
         return SurveyRef(folder.name, folder, readable, stations, instant, extent, points, control)
@@ -1189,6 +1322,7 @@ class _Loader:
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         from shapely.geometry import box
+        from shapely.geometry.base import BaseGeometry
 
         boxes = [box(*ref.extent) for ref in surveys.values() if ref.extent is not None]
         if not boxes:
@@ -1196,7 +1330,7 @@ class _Loader:
         display = self.rel(self.root / "piles.gpkg")
         for i, row in piles.iterrows():
             geom = row.geometry
-            if geom is None or geom.is_empty:
+            if not isinstance(geom, BaseGeometry) or geom.is_empty:   # NULL reads as NaN; reported
                 continue
             if not any(b.intersects(geom) for b in boxes):
                 self.warn(display, f"pile {row['pile_id']}", "geometry", "lies outside every survey's extent")

@@ -22,12 +22,14 @@ weighbridge
     a repeated ticket id with the same content is a warning (counted once), with other content
     an error.
 belt_scales
-    a known belt scale with a direction; the interval ends after it starts; tonnes >= 0.
+    a known belt scale with a direction; the interval ends after it starts; the intervals of
+    one belt do not overlap (a total would be counted twice); tonnes >= 0.
 routing
     a known belt scale; a known pile; the window ends after it starts; the windows of one belt
     do not overlap (a belt feeds one pile at a time).
 transfers
-    known piles; not from a pile to itself; tonnes > 0.
+    known piles; not from a pile to itself; tonnes > 0; no row with a reference repeats
+    another (same piles, time, tonnes and reference).
 opening
     a known pile; tonnes a number; at most one balance per pile.
 every table
@@ -205,6 +207,22 @@ class _Rows:
         self.flag(df["start"].notna() & df["end"].notna() & (df["end"] <= df["start"]), "end",
                   lambda r: f"{what} ends ({r.end.isoformat()}) at or before it starts ({r.start.isoformat()})")
 
+    def no_overlap(self, what: str, why: str) -> None:
+        """Within one belt (``scale_id``), a row that starts before an earlier row has ended
+        overlaps it (compared with the longest-running earlier row); flagged on ``start``."""
+        df = self.df
+        timed = df[df["start"].notna() & df["end"].notna() & self.given("scale_id")]
+        for sid, group in timed.groupby("scale_id", sort=True):
+            prev = None
+            for r in group.sort_values(["start", "end", "line"], kind="mergesort").itertuples():
+                if prev is not None and r.start < prev.end:
+                    self.flag(df.index == r.Index, "start",
+                              lambda r, sid=sid, prev=prev: f"{what} of belt {sid!r} overlaps line {prev.line}: it "
+                              f"starts at {r.start.isoformat()}, before that {what} ends at {prev.end.isoformat()} "
+                              f"({why})")
+                if prev is None or r.end > prev.end:
+                    prev = r
+
     def belt_scale(self, scales: Mapping[str, Scale]) -> None:
         s = self.df["scale_id"]
         kind = s.map(lambda v: scales[v].kind if v in scales else None)
@@ -351,6 +369,9 @@ def check_belt_scales(
            lambda r: f"belt scale {r.scale_id!r} has no direction (in|out) in site.toml; "
                      f"its {count[r.scale_id]} interval(s) cannot be booked")
     t.end_after_start("interval")
+    # a total exported twice, or shift totals beside hourly ones, would book the same
+    # tonnes twice
+    t.no_overlap("interval", "its tonnes would be counted twice")
     bad = t.number("tonnes")
     t.flag(~bad & (df["tonnes"] < 0), "tonnes",
            lambda r: f"{r.tonnes:g} t is below the minimum 0 (a belt total cannot be negative)")
@@ -366,7 +387,6 @@ def check_routing(
 ) -> tuple[pd.DataFrame, list[Problem]]:
     """Check belt routing windows; return them normalised (UTC times) and the problems."""
     t = _Rows(frame, "routing", path, table_schema("routing").required)
-    df = t.df
     t.text("scale_id")
     t.text("pile_id")
     t.times("start")
@@ -374,19 +394,7 @@ def check_routing(
     t.belt_scale(scales)
     t.known("pile_id", _ids(pile_ids), "pile", "piles.gpkg")
     t.end_after_start("window")
-    # One belt feeds one pile at a time: a window that starts before an earlier window of
-    # the same belt has ended overlaps it (compared with the longest-running earlier window).
-    timed = df[df["start"].notna() & df["end"].notna() & t.given("scale_id")]
-    for sid, group in timed.groupby("scale_id", sort=True):
-        prev = None
-        for r in group.sort_values(["start", "end", "line"], kind="mergesort").itertuples():
-            if prev is not None and r.start < prev.end:
-                t.flag(df.index == r.Index, "start",
-                       lambda r, sid=sid, prev=prev: f"window of belt {sid!r} overlaps line {prev.line}: it starts at "
-                       f"{r.start.isoformat()}, before that window ends at {prev.end.isoformat()} "
-                       "(a belt feeds one pile at a time)")
-            if prev is None or r.end > prev.end:
-                prev = r
+    t.no_overlap("window", "a belt feeds one pile at a time")
     return t.result()
 
 
@@ -409,6 +417,14 @@ def check_transfers(
            lambda r: f"transfer from pile {r.from_pile!r} to itself")
     bad = t.number("tonnes")
     t.flag(~bad & (df["tonnes"] <= 0), "tonnes", lambda r: f"{r.tonnes:g} must be greater than 0 (a transfer moves stock)")
+    # the same transfer entered twice (a pasted row) would move the tonnes twice; without a
+    # reference two equal transfers on one day (times given by date) may both be real
+    key = ["from_pile", "to_pile", "time", "tonnes", "reference"]
+    copies = df.duplicated(key, keep="first") & df["time"].notna() & ~bad & ~_blank(df["reference"])
+    if copies.any():
+        first = df.groupby(key, dropna=False, sort=False)["line"].transform("min")
+        t.flag(copies, "time", lambda r: f"the transfer repeats line {first[r.Index]} "
+                                         "(same piles, time, tonnes and reference): it would be counted twice")
     return t.result()
 
 

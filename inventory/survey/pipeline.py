@@ -73,7 +73,7 @@ from typing import Any, Callable
 import numpy as np
 from pyproj import CRS
 
-from inventory.errors import PipelineError
+from inventory.errors import PipelineError, Problem
 from inventory.model.classes import GROUND, LOW_NOISE, UNCLASSIFIED
 from inventory.survey.clean import (
     DimRange,
@@ -88,7 +88,7 @@ from inventory.io.crs import TransformerCache, parse_crs
 from inventory.survey.ground import PlanTable, SlopeGroundParams, csf_ground, plan_table, slope_ground
 from inventory.io.clouds import conform_points, empty_points, read_cloud, write_cloud
 
-__all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "OUR_PREFIX"]
+__all__ = ["Pipeline", "Stage", "STAGES", "load_pipeline", "pdal_available", "pipeline_problems", "OUR_PREFIX"]
 
 #: Stages whose type starts with this are ours and never handed to PDAL.
 OUR_PREFIX = "inventory."
@@ -464,6 +464,29 @@ STAGES: dict[str, _Spec] = {
 }
 
 
+#: Options whose stage takes a value of any kind (PDAL's thread count, accepted and unused
+#: here) or a word beside a number (``"auto"`` scales): their defaults say nothing of them.
+_UNTYPED = frozenset({"threads", "scale_x", "scale_y", "scale_z"})
+#: Options holding dimension ranges, read by :func:`parse_limits`.
+_RANGES = frozenset({"limits", "ignore", "condition"})
+
+
+def _check_value(name: str, default: Any, value: Any) -> None:
+    """Refuse, when the pipeline is read, a value its stage would refuse when it runs: of
+    the kind of the option's default (true/false, whole number, class, number), or ranges."""
+    if name in _RANGES:
+        if value or name == "limits":   # the stages skip an empty 'ignore' or 'condition'
+            _ranges(value)
+    elif name in _UNTYPED or default is _REQUIRED:
+        return
+    elif isinstance(default, bool):
+        _as_bool(value, name)
+    elif isinstance(default, int):
+        (_class if name.endswith("class") else _as_int)(value, name)
+    elif isinstance(default, float):
+        _as_float(value, name)
+
+
 def _stage_from_raw(raw: Any, index: int, n: int, where: str) -> Stage:
     if isinstance(raw, str):  # PDAL infers reader/writer from a bare file name
         raw = {"type": "readers.las" if index == 0 else "writers.las", "filename": raw}
@@ -486,6 +509,10 @@ def _stage_from_raw(raw: Any, index: int, n: int, where: str) -> Stage:
     opts = {}
     for k, default in spec.options.items():
         if k in raw:
+            try:
+                _check_value(k, default, raw[k])
+            except PipelineError as err:
+                raise PipelineError(f"{where}: stage {index + 1} ({typ}): {err}") from err
             opts[k] = raw[k]
         elif default is _REQUIRED:
             raise PipelineError(f"{where}: stage {index + 1} ({typ}): option {k!r} is required")
@@ -523,7 +550,8 @@ class Pipeline:
             try:
                 doc = json.loads(text)
             except json.JSONDecodeError as err:
-                raise PipelineError(f"{source}: not valid JSON at line {err.lineno}: {err.msg}") from err
+                raise PipelineError(f"{source}: not valid JSON at line {err.lineno}, column {err.colno}: "
+                                    f"{err.msg}") from err
         else:
             doc = text
         if isinstance(doc, dict):
@@ -617,6 +645,18 @@ def _run_pdal(stages: list[Stage], pts: np.ndarray, ctx: _Context) -> np.ndarray
         if s.type == "filters.reprojection":
             ctx.crs = parse_crs(s.options["out_srs"])
     return out
+
+
+def pipeline_problems(path: "str | Path", display: str) -> list[Problem]:
+    """What ``inventory check`` reports of a pipeline file, shown as ``display``: a file that
+    cannot be read, is not JSON, names an unknown stage or option, misses a required one, or
+    gives an option a value of the wrong kind (an empty list when it parses)."""
+    try:
+        Pipeline.from_file(path)
+    except PipelineError as err:
+        text, prefix = str(err), f"{Path(path)}: "
+        return [Problem(display, None, None, text[len(prefix):] if text.startswith(prefix) else text)]
+    return []
 
 
 def load_pipeline(path: "str | Path | None" = None) -> Pipeline:
