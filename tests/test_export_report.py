@@ -133,6 +133,24 @@ def test_quiet_month_and_a_pile_without_book(make_close_result, tmp_path):
     assert cells and not any("nan" in c.lower() for c in cells)  # a missing figure is blank
 
 
+@pytest.mark.parametrize("shape", [(1, 1), (1, 7), (6, 1)])
+def test_a_surface_one_cell_high_or_wide_is_drawn(make_close_result, tmp_path, shape):
+    # A tiny survey can keep a single surface cell (its surface box one cell high or wide);
+    # numpy.gradient, under matplotlib's hill-shading, needs two cells along each axis.
+    import numpy as np
+
+    from inventory.model.grid import Grid, Surface
+
+    res = make_close_result("2026-01")
+    g = res.surface.grid
+    x0, y0, x1, y1 = res.footprints.total_bounds
+    sub = Grid((x0 + x1) / 2, (y0 + y1) / 2, g.cell, shape[0], shape[1], g.crs)
+    z = np.arange(shape[0] * shape[1], dtype=float).reshape(shape) + 3.0
+    res.surface = Surface(sub, z, np.ones(shape, np.int32), np.zeros(shape), np.zeros(shape, bool), res.period)
+    text = write_report(res, tmp_path / "r.html").read_text(encoding="utf-8")
+    assert text.count("data:image/png;base64,") >= 1
+
+
 @pytest.mark.parametrize("pile_id", ["$x^2$", r"$\alpha$", "C$1", r"$\frac{a}{$"])
 def test_pile_ids_are_drawn_as_typed_not_as_mathtext(make_close_result, monkeypatch, pile_id):
     """A pile id matplotlib could read as mathtext is drawn literally (``$x^2$`` used to stop

@@ -135,7 +135,12 @@ def _map_figure(result: CloseResult) -> str:
     if valid.any():
         zf = np.where(valid, z, np.nanmin(z))
         ls = LightSource(azdeg=_AZIMUTH_DEG, altdeg=_ALTITUDE_DEG)
-        shade = ls.hillshade(zf, vert_exag=2.0, dx=grid.cell, dy=grid.cell)
+        # hill-shading takes slopes by differences along rows and columns: a surface one
+        # cell high or wide (a survey that kept a single surface cell) has none, so its edge
+        # is repeated to two cells for them (a flat shade) and cut off again
+        pad = ((0, max(0, 2 - zf.shape[0])), (0, max(0, 2 - zf.shape[1])))
+        shade = ls.hillshade(np.pad(zf, pad, mode="edge"), vert_exag=2.0, dx=grid.cell,
+                             dy=grid.cell)[:zf.shape[0], :zf.shape[1]]
         shade = np.ma.masked_where(~valid, shade)
         ax.imshow(shade, cmap="gray", extent=extent, origin="upper", vmin=0, vmax=1,
                   interpolation="nearest")
