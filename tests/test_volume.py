@@ -472,6 +472,25 @@ def test_hidden_part_increases_sigma_and_interval_covers_truth(case, cell=0.5):
     assert abs(full.volume_m3 - V) <= full.volume_ci95_m3
 
 
+def test_cells_of_zero_spread_keep_the_sigma_finite():
+    # Heights quantised by a LAS file's scale (0.01 ft on the laspy sample autzen_trim.laz)
+    # give two-point cells of spread exactly 0 on a flat pad. The pooled variance's running
+    # sums then came out about -1e-17 beside cells of real scatter, and the pile's whole
+    # sigma and 95 % interval were NaN (found on airborne data gridded at 0.5 m).
+    h, V, poly = cone()
+    grid = make_grid(poly, 0.5)
+    x, y = grid.centers()
+    rng = np.random.default_rng(3)
+    sd = np.abs(rng.normal(0.0, 0.03, grid.shape))
+    sd[:, grid.shape[1] // 2:] = 0.0
+    s = Surface(grid, base_plane(x, y) + h(x, y), np.full(grid.shape, 2, np.int32), sd, np.zeros(grid.shape, bool))
+    row = measure(s, [poly], ["toe"]).iloc[0]
+    for col in ("sigma_random_m3", "volume_sigma_m3", "volume_ci95_m3"):
+        assert np.isfinite(row[col]), col
+    assert row.sigma_random_m3 > 0
+    assert abs(row.volume_m3 - V) <= row.volume_ci95_m3
+
+
 # ----------------------------------------------------------------------------- toe ring
 def test_toe_ring_rejects_a_machine():
     # A 3 m tall machine parked in a quarter of the toe ring must not lift the base.

@@ -316,13 +316,19 @@ def _local_point_variance(cnt: np.ndarray, sd: np.ndarray, noise_sd: float) -> n
     sloping cell (a cell's mean sits at its points' mean position, not at its centre), so
     a single-point cell on a flank gets its flank's variance, not the survey's typical
     scatter, which is used only where no cell nearby has two points.
+
+    The window sums are running sums (``scipy.ndimage.uniform_filter``): where every cell of
+    two or more points in a window has a spread of exactly 0 (heights quantised by the file's
+    scale, e.g. 0.01 ft, on a flat pad) the sum carries the rounding left by larger values
+    passed earlier, about -1e-17, and is clipped to 0 (a negative variance made the pile's
+    whole sigma NaN).
     """
     multi = (cnt >= 2) & np.isfinite(sd)
     num = ndimage.uniform_filter(np.where(multi, cnt * np.nan_to_num(sd) ** 2, 0.0), 2 * _POOL_HALF + 1,
                                  mode="constant")
     den = ndimage.uniform_filter(np.where(multi, cnt - 1.0, 0.0), 2 * _POOL_HALF + 1, mode="constant")
     with np.errstate(invalid="ignore", divide="ignore"):
-        var = num / den
+        var = np.maximum(num / den, 0.0)
     return np.where(den > 1e-9, var, noise_sd**2)
 
 
