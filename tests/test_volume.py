@@ -472,6 +472,35 @@ def test_hidden_part_increases_sigma_and_interval_covers_truth(case, cell=0.5):
     assert abs(full.volume_m3 - V) <= full.volume_ci95_m3
 
 
+def test_local_gap_width_equals_the_disc_dilation():
+    # The gap width by distance transforms equals the local thickness by binary dilations
+    # with discs x^2 + y^2 <= k^2 (scipy.ndimage.binary_dilation, the reference here), on
+    # random gaps, a wide gap along the border and one scanned cell in a sea of gaps.
+    from inventory.volume.measure import _local_gap_width
+
+    def by_dilation(unscanned, dist, cell):
+        radius = np.where(unscanned, dist, 0.0)
+        for k in np.unique(np.round(dist[unscanned] / cell)).astype(int):
+            if k < 2:
+                continue
+            yy, xx = np.mgrid[-k:k + 1, -k:k + 1]
+            centres = unscanned & (dist >= k * cell - 1e-9)
+            covered = ndimage.binary_dilation(centres, structure=xx**2 + yy**2 <= k * k) & unscanned
+            radius = np.where(covered, np.maximum(radius, k * cell), radius)
+        return 2.0 * np.maximum(radius, 0.5 * cell)
+
+    rng = np.random.default_rng(8)
+    for case in range(6):
+        cell = (0.25, 0.5, 1.0)[case % 3]
+        m = ndimage.binary_dilation(rng.random((40, 50)) < 0.06, iterations=1 + case % 2)
+        m[:, : 3 * case] = True
+        if case == 5:
+            m = np.ones((16, 20), bool)
+            m[7, 13] = False
+        dist = ndimage.distance_transform_edt(m) * cell
+        np.testing.assert_array_equal(_local_gap_width(m, dist, cell), by_dilation(m, dist, cell))
+
+
 def test_cells_of_zero_spread_keep_the_sigma_finite():
     # Heights quantised by a LAS file's scale (0.01 ft on the laspy sample autzen_trim.laz)
     # give two-point cells of spread exactly 0 on a flat pad. The pooled variance's running
