@@ -92,8 +92,8 @@ def main() -> None:
                     inside = shapely.contains_xy(toe, cx, cy)
                     ground = float(np.mean(cls[inside] == 2)) if inside.any() else float("nan")
                     on = shapely.contains_xy(toe.buffer(-1.0), gx, gy) & (cov > 0) & np.isfinite(surf)
-                    plane = planted_mod._lot_plane(toe.buffer(2 * planted_mod.FOOTPRINT_MARGIN_M), cx, cy, cz,
-                                                   np.ones(len(cx), bool))
+                    ring = toe.buffer(2 * planted_mod.FOOTPRINT_MARGIN_M).difference(toe)  # the lot around it
+                    plane = planted_mod._lot_plane(ring, cx, cy, cz, np.ones(len(cx), bool))
                     model = plane(gx[on], gy[on]) + p.thickness(gx[on], gy[on], x0, y0)
                     rms = float(np.sqrt(np.mean((surf[on] - model) ** 2)))
                     held = row.volume_low95_m3 <= truth <= row.volume_high95_m3

@@ -377,6 +377,27 @@ def test_default_pipeline_measures_the_planted_piles(planted):
 
 
 @pytest.mark.slow
+def test_survey_command_writes_the_classified_cloud_in_metres(planted, tmp_path):
+    # `inventory survey`: the classified cloud in the site CRS, heights in metres, and the
+    # planted piles' returns kept as surface (class 2) by the default pipeline
+    out = tmp_path / "out"
+    with warnings.catch_warnings(), contextlib.redirect_stdout(io.StringIO()):
+        warnings.simplefilter("ignore")
+        assert main(["survey", str(planted.site), "--date", DATE, "--out", str(out), "-q"]) == 0
+    las = laspy.read(next(out.rglob(f"classified-{DATE}.laz")))
+    assert las.header.parse_crs().equals(CRS(SITE_CRS))
+    z = np.asarray(las.z)
+    # autzen_trim's header z range is 406.26-520.51 ft (laspy); in metres x 0.3048
+    assert float(z.min()) == pytest.approx(406.26 * 0.3048, abs=0.05)
+    assert float(z.max()) < 520.51 * 0.3048 + 0.05
+    x, y, cls = np.asarray(las.x), np.asarray(las.y), np.asarray(las.classification)
+    for p in PILES:
+        inside = shapely.contains_xy(p.toe(*planted.origin), x, y)
+        assert inside.sum() == planted.planted[p.pile_id]
+        assert np.mean(cls[inside] == 2) > 0.99
+
+
+@pytest.mark.slow
 def test_default_site_settings_measure_the_planted_piles(planted, tmp_path):
     # no [grid] and no [survey] in site.toml: 0.5 m cells, most of them without a return at
     # this density (interpolated, flag low_scan); the volumes hold and the sigma is a number
