@@ -421,3 +421,4 @@ def test_bare_earth_pipelines_strip_the_piles_and_say_so(planted, tmp_path, name
         row = table.loc[p.pile_id]
         assert row.volume_m3 < 0.5 * p.volume()
         assert "low_scan" in str(row["flags"])
+        assert row.volume_high95_m3 < p.volume()
