@@ -4,23 +4,24 @@ The cloud is ``autzen_trim.laz`` from the laspy source distribution (the ``laspy
 fixture of tests/conftest.py): 110,000 airborne returns, provider classes 1 and 2, NAD83(HARN)
 Oregon GIC Lambert in international feet (EPSG:2994, the file's own WKT). On its flat open
 lot (found with the provider's ground class: no return more than 0.5 m above the class-2
-surface within 18 m of a pile's toe) three piles of known volume are planted, as an outside
+surface within 6 m of a pile's toe) three piles of known volume are planted, as an outside
 evaluator would:
 
 * the real returns inside each pile's base are taken out;
 * the pile's surface is sampled at the real cloud's own density and scan pattern: every last
   return that fell inside the base keeps its plan position (an airborne pulse from above) and
-  gets the height of the ground under it (the provider's class-2 TIN) plus the pile's
-  analytic height plus Gaussian noise of the lot's own scatter (measured below, about 2 cm);
+  gets the height of the ground under it (the least-squares plane of the lot's returns over
+  the base and 6 m around it) plus the pile's analytic height plus Gaussian noise of the
+  lot's own scatter (measured below, about 2 cm);
 * the rest of the cloud (trees, buildings, roads, the lot) is kept as it is, and the file is
   written as LAZ in the file's own CRS and units (feet, horizontally and vertically).
 
 The site folder is a user's: ``site.toml`` in the metric twin of the file's CRS (EPSG:2993,
 the same Lambert projection in metres: the site CRS must be metric), ``piles.gpkg`` with
 footprints drawn 3 m outside each toe in the site CRS, ``materials.csv`` and the survey
-folder with the LAZ alone (no stations: airborne). ``inventory volumes`` is then run through
-the command line with the default pipeline and with the packaged alternatives, and each
-pile's volume is compared with its handbook volume.
+folder with the LAZ alone (no stations: airborne). ``inventory volumes`` and ``inventory
+survey`` are then run through the command line with the default pipeline and with the
+packaged alternatives, and each pile's volume is compared with its handbook volume.
 """
 
 from __future__ import annotations
@@ -154,7 +155,7 @@ class Planted:
     lot_objects: int
 
 
-def _lot_noise(x, y, z, ground, piles, origin) -> float:
+def _lot_noise(x, y, z, piles, origin) -> float:
     """RMS of the returns about planes fitted on 10 m blocks of the open lot around the
     piles (the real cloud's own scatter: ranging noise plus the pavement's texture)."""
     resid = []
@@ -214,10 +215,10 @@ def build_planted_site(src: Path, root: Path, piles=PILES, *, cell: float | None
     ground = LinearNDInterpolator(np.column_stack([x[provider_ground], y[provider_ground]]), z[provider_ground])
     above = z - ground(x, y)
     lot_objects = 0
-    for p in piles:  # the premise: open ground, nothing standing within 18 m of the toe
+    for p in piles:  # the premise: open ground, nothing standing within 6 m of the toe
         near = shapely.contains_xy(p.toe(x0, y0, 2 * FOOTPRINT_MARGIN_M), x, y)
         lot_objects += int(np.sum(near & (np.abs(above) > 0.5)))
-    noise = _lot_noise(x, y, z, ground, piles, origin)
+    noise = _lot_noise(x, y, z, piles, origin)
 
     rng = np.random.default_rng(NOISE_SEED)
     last = np.asarray(las.return_number) >= np.asarray(las.number_of_returns)
