@@ -501,6 +501,24 @@ def test_local_gap_width_equals_the_disc_dilation():
         np.testing.assert_array_equal(_local_gap_width(m, dist, cell), by_dilation(m, dist, cell))
 
 
+def test_gap_correlation_sum_equals_the_direct_double_sum():
+    # The pair sum by length classes equals sum_i sum_j s_i s_j rho_ij over every pair
+    # (numpy, no cut-off; Paciorek and Schervish 2006 correlation), with a few wide gaps
+    # among many narrow ones spread over 40 m to 340 m.
+    from inventory.volume.measure import _gap_correlation_sum
+
+    rng = np.random.default_rng(1)
+    for span in (40.0, 140.0, 340.0):
+        n = 900
+        xy = rng.uniform(0.0, span, (n, 2)).round(1)
+        length = np.where(rng.random(n) < 0.1, rng.uniform(5.0, 40.0, n), rng.uniform(0.5, 3.0, n))
+        s = rng.uniform(0.01, 0.2, n)
+        h2 = ((xy[:, None, :] - xy[None, :, :]) ** 2).sum(axis=-1)
+        l2 = length[:, None] ** 2 + length[None, :] ** 2
+        direct = float(s @ ((2.0 * length[:, None] * length[None, :] / l2) * np.exp(-2.0 * h2 / l2)) @ s)
+        assert _gap_correlation_sum(xy, s, length) == pytest.approx(direct, rel=1e-12)
+
+
 def test_cells_of_zero_spread_keep_the_sigma_finite():
     # Heights quantised by a LAS file's scale (0.01 ft on the laspy sample autzen_trim.laz)
     # give two-point cells of spread exactly 0 on a flat pad. The pooled variance's running
