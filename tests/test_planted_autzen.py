@@ -423,3 +423,22 @@ def test_bare_earth_pipelines_strip_the_piles_and_say_so(planted, tmp_path, name
         assert row.volume_m3 < 0.5 * p.volume()
         assert "low_scan" in str(row["flags"])
         assert row.volume_high95_m3 < p.volume()
+
+
+@pytest.mark.slow
+def test_footprints_drawn_in_the_files_feet_crs_are_moved_to_the_site_crs(planted, tmp_path, capsys):
+    # A GIS analyst draws the footprints over the provider's data, in its Oregon Lambert
+    # feet (EPSG:2994); the site loader moves them into the metric site CRS with a warning,
+    # and every pile comes out as from footprints drawn in metres: areas in m2 (pi (R + 3)^2),
+    # the same volumes.
+    metric, _ = run_volumes(planted.site)
+    site = _variant(planted, tmp_path, cell=CELL_M)
+    piles = gpd.read_file(site / "piles.gpkg", layer="piles")
+    piles.to_crs("EPSG:2994").to_file(site / "piles.gpkg", layer="piles", engine="pyogrio")
+    assert main(["check", str(site)]) == 0
+    shown = capsys.readouterr()
+    assert "reprojected to EPSG:2993" in shown.out + shown.err
+    feet, _ = run_volumes(site)
+    for p in PILES:
+        assert feet.loc[p.pile_id, "area_m2"] == pytest.approx(metric.loc[p.pile_id, "area_m2"], rel=1e-6)
+        assert feet.loc[p.pile_id, "volume_m3"] == pytest.approx(metric.loc[p.pile_id, "volume_m3"], rel=1e-4)
