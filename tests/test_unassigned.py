@@ -130,6 +130,29 @@ def test_a_footprint_drawn_through_a_pile_is_flagged_and_the_rest_reported():
     assert table.loc[1, "edge_cut_length_m"] == edges.iloc[0].edge_cut_length_m
 
 
+def test_a_pad_above_a_bank_does_not_cut_a_footprint_drawn_outside_its_toe():
+    # A flat pad at 10 m (y > 30 m) above a bank falling 25 % to a flat at 6 m (y < 14 m),
+    # as beside a river; a cone r 5 m on the pad, its footprint 3 m outside the toe, on a toe
+    # base. The outside ground (10 % grade from the foot of the bank) lies up to 2 m under
+    # the pad, so the band outside the footprint is "thick" above it; above the pile's own
+    # toe plane (fitted on the pad) it is not, and the footprint cuts through nothing.
+    surface, _ = _yard([(X0 + 40, Y0 + 42, 5.0, 3.0)], height=60.0)
+    x, y = surface.grid.centers()
+    surface.z[:] = surface.z - np.clip((Y0 + 30 - y) * 0.25, 0.0, 4.0)
+    foot = shapely.Point(X0 + 40, Y0 + 42).buffer(8.0, quad_segs=32)
+    found = find_unassigned(surface, _piles(foot), BaseSurfaces())
+    assert found.edges.empty, found.edges.to_string()
+    # the same band above the outside ground alone is thick: what flagged it before
+    band = foot.buffer(1.0).difference(foot)
+    inside = shapely.contains_xy(band, x, y)
+    assert np.nanmax(found.thickness[inside]) > 1.5
+    # and a footprint drawn through the cone (r 3 m) on the same toe base is still flagged
+    cut = shapely.Point(X0 + 40, Y0 + 42).buffer(3.0, quad_segs=32)
+    edges = find_unassigned(surface, _piles(cut), BaseSurfaces()).edges
+    assert edges["pile_id"].tolist() == ["P1"]
+    assert edges.iloc[0].edge_cut_length_m == pytest.approx(2 * math.pi * 3.5, rel=0.25)
+
+
 def test_a_crowned_yard_is_ground_not_stock():
     # a yard crowned along y = 30 m, falling 2.5 % to either side (common practice for
     # drainage), with a cone on its flank and no floor raster: only the cone is stock

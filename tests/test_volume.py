@@ -472,6 +472,72 @@ def test_hidden_part_increases_sigma_and_interval_covers_truth(case, cell=0.5):
     assert abs(full.volume_m3 - V) <= full.volume_ci95_m3
 
 
+def test_local_gap_width_equals_the_disc_dilation():
+    # The gap width by distance transforms equals the local thickness by binary dilations
+    # with discs x^2 + y^2 <= k^2 (scipy.ndimage.binary_dilation, the reference here), on
+    # random gaps, a wide gap along the border and one scanned cell in a sea of gaps.
+    from inventory.volume.measure import _local_gap_width
+
+    def by_dilation(unscanned, dist, cell):
+        radius = np.where(unscanned, dist, 0.0)
+        for k in np.unique(np.round(dist[unscanned] / cell)).astype(int):
+            if k < 2:
+                continue
+            yy, xx = np.mgrid[-k:k + 1, -k:k + 1]
+            centres = unscanned & (dist >= k * cell - 1e-9)
+            covered = ndimage.binary_dilation(centres, structure=xx**2 + yy**2 <= k * k) & unscanned
+            radius = np.where(covered, np.maximum(radius, k * cell), radius)
+        return 2.0 * np.maximum(radius, 0.5 * cell)
+
+    rng = np.random.default_rng(8)
+    for case in range(6):
+        cell = (0.25, 0.5, 1.0)[case % 3]
+        m = ndimage.binary_dilation(rng.random((40, 50)) < 0.06, iterations=1 + case % 2)
+        m[:, : 3 * case] = True
+        if case == 5:
+            m = np.ones((16, 20), bool)
+            m[7, 13] = False
+        dist = ndimage.distance_transform_edt(m) * cell
+        np.testing.assert_array_equal(_local_gap_width(m, dist, cell), by_dilation(m, dist, cell))
+
+
+def test_gap_correlation_sum_equals_the_direct_double_sum():
+    # The pair sum by length classes equals sum_i sum_j s_i s_j rho_ij over every pair
+    # (numpy, no cut-off; Paciorek and Schervish 2006 correlation), with a few wide gaps
+    # among many narrow ones spread over 40 m to 340 m.
+    from inventory.volume.measure import _gap_correlation_sum
+
+    rng = np.random.default_rng(1)
+    for span in (40.0, 140.0, 340.0):
+        n = 900
+        xy = rng.uniform(0.0, span, (n, 2)).round(1)
+        length = np.where(rng.random(n) < 0.1, rng.uniform(5.0, 40.0, n), rng.uniform(0.5, 3.0, n))
+        s = rng.uniform(0.01, 0.2, n)
+        h2 = ((xy[:, None, :] - xy[None, :, :]) ** 2).sum(axis=-1)
+        l2 = length[:, None] ** 2 + length[None, :] ** 2
+        direct = float(s @ ((2.0 * length[:, None] * length[None, :] / l2) * np.exp(-2.0 * h2 / l2)) @ s)
+        assert _gap_correlation_sum(xy, s, length) == pytest.approx(direct, rel=1e-12)
+
+
+def test_cells_of_zero_spread_keep_the_sigma_finite():
+    # Heights quantised by a LAS file's scale (0.01 ft on the laspy sample autzen_trim.laz)
+    # give two-point cells of spread exactly 0 on a flat pad. The pooled variance's running
+    # sums then came out about -1e-17 beside cells of real scatter, and the pile's whole
+    # sigma and 95 % interval were NaN (found on airborne data gridded at 0.5 m).
+    h, V, poly = cone()
+    grid = make_grid(poly, 0.5)
+    x, y = grid.centers()
+    rng = np.random.default_rng(3)
+    sd = np.abs(rng.normal(0.0, 0.03, grid.shape))
+    sd[:, grid.shape[1] // 2:] = 0.0
+    s = Surface(grid, base_plane(x, y) + h(x, y), np.full(grid.shape, 2, np.int32), sd, np.zeros(grid.shape, bool))
+    row = measure(s, [poly], ["toe"]).iloc[0]
+    for col in ("sigma_random_m3", "volume_sigma_m3", "volume_ci95_m3"):
+        assert np.isfinite(row[col]), col
+    assert row.sigma_random_m3 > 0
+    assert abs(row.volume_m3 - V) <= row.volume_ci95_m3
+
+
 # ----------------------------------------------------------------------------- toe ring
 def test_toe_ring_rejects_a_machine():
     # A 3 m tall machine parked in a quarter of the toe ring must not lift the base.
