@@ -343,10 +343,10 @@ def test_workbook_beside_its_csv_is_a_warning(good_site, capsys):
             "folder") in capsys.readouterr().err.splitlines()
 
 
-def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_once):
-    """A cloud in the scanner's own frame, placed by its stations.csv pose; stations.csv then
-    emptied. Before: a second error followed, about the survey's extent computed from the
-    cloud's own coordinates (taken in [survey] default_crs) as if they were the site's."""
+def station_cloud(good_site: Path, x: str) -> Path:
+    """A cloud of 50 points in the scanner's own frame in the October survey, placed by a
+    stations.csv pose at ``x`` (text as written), with [survey] default_crs set; returns
+    the survey folder."""
     import laspy
 
     survey = good_site / "surveys" / "2026-10-31"
@@ -358,9 +358,17 @@ def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_onc
     las.write(survey / "a.laz")
     (survey / "stations.csv").write_text(
         "file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg\n"
-        "a.laz,S1,2026-10-31T15:00:00+01:00,500000,5700000,10,0,0,0\n")
+        f"a.laz,S1,2026-10-31T15:00:00+01:00,{x},5700000,10,0,0,0\n")
     toml = good_site / "site.toml"
     toml.write_text(toml.read_text() + '\n[survey]\ndefault_crs = "EPSG:25832"\n')
+    return survey
+
+
+def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_once):
+    """A cloud in the scanner's own frame, placed by its stations.csv pose; stations.csv then
+    emptied. Before: a second error followed, about the survey's extent computed from the
+    cloud's own coordinates (taken in [survey] default_crs) as if they were the site's."""
+    survey = station_cloud(good_site, "500000")
     assert main(["check", str(good_site)]) == 0   # placed by its pose, the cloud covers the piles
     capsys.readouterr()
     (survey / "stations.csv").write_bytes(b"")
@@ -370,20 +378,7 @@ def test_stations_refused_whole_is_the_only_error(good_site, capsys, refused_onc
 
 def test_stations_pose_refused_is_the_only_error(good_site, capsys, refused_once):
     """A pose value refused on its cell: before, a second error followed about the extent."""
-    import laspy
-
-    survey = good_site / "surveys" / "2026-10-31"
-    header = laspy.LasHeader(point_format=6, version="1.4")
-    header.scales, header.offsets = [0.001] * 3, [0.0, 0.0, 0.0]
-    las = laspy.LasData(header)
-    rng = np.random.default_rng(3)
-    las.x, las.y, las.z = rng.uniform(-15, 45, 50), rng.uniform(-15, 15, 50), rng.uniform(0, 5, 50)
-    las.write(survey / "a.laz")
-    (survey / "stations.csv").write_text(
-        "file,station_id,time,x,y,z,roll_deg,pitch_deg,yaw_deg\n"
-        "a.laz,S1,2026-10-31T15:00:00+01:00,inf,5700000,10,0,0,0\n")
-    toml = good_site / "site.toml"
-    toml.write_text(toml.read_text() + '\n[survey]\ndefault_crs = "EPSG:25832"\n')
+    station_cloud(good_site, "inf")
     assert refused_once(good_site, capsys) == (
         "error: site/surveys/2026-10-31/stations.csv line 2: x: 'inf' is not a finite number")
 
