@@ -187,16 +187,19 @@ def _bay_wall(width, seed=0):
     return X, Y, Z, K
 
 
-@pytest.mark.parametrize("width", [0.3, 0.8])
+@pytest.mark.parametrize("width", [0.3, 0.5, 0.8])
 def test_bay_wall_top_is_not_surface(width):
     # The top of a wall only 0.6 m above the pile leaning on it passes the envelope once it
     # is wider than a few points: it is a flat region cut off from the pile by the wall's
     # face (points that are not surface between the two heights) with nothing as high
     # beside it. Before that rule about half of a 0.8 m top was surface (the test can fail).
+    # Where a region cell holds both the pile's edge and the top, the region rule cannot cut
+    # them apart; the top's points it leaves are outvoted by the top's other points at their
+    # height (15 of 300 points of the 0.5 m top were surface without that, 2 with it).
     X, Y, Z, K = _bay_wall(width)
     cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
     ground = cls == GROUND
-    assert ground[K == 3].mean() <= 0.05
+    assert ground[K == 3].mean() <= 0.01
     assert ground[K == 1].mean() >= 0.999      # the pile flank up to the wall
     assert ground[K == 0].mean() >= 0.999
     # the surface class creeps up the face by about tan(50 deg) x spacing + tolerance

@@ -248,3 +248,29 @@ def test_cell_stats_match_bincount_and_ufunc_at():
     # NaN spreads to its cell's extremes as in np.minimum.at
     count, total, lo, hi = cell_stats(np.array([0, 0, 1]), np.array([1.0, np.nan, 2.0]), np.ones(3, bool), 2)
     assert np.isnan(lo[0]) and np.isnan(hi[0]) and lo[1] == 2.0 and count.tolist() == [2, 1]
+
+
+def test_outvoted_matches_its_numpy_form():
+    # kernels.outvoted against the same count written with numpy: neighbours within tol of a
+    # point's height, itself and missing neighbours (-1) left out, objects against surface.
+    from inventory.survey.kernels import outvoted
+
+    rng = np.random.default_rng(5)
+    n, k = 400, 17
+    z = rng.normal(0, 0.2, n)
+    cls = rng.choice(np.array([1, 2, 7, 19], np.uint8), n)
+    nb = rng.integers(-1, n, (n, k)).astype(np.int32)
+    nb[:, 0] = np.arange(n)                                   # the point itself first
+    objects = np.zeros(256, np.bool_)
+    objects[[1, 19]] = True
+    rows = np.flatnonzero(cls == 2)
+    got = outvoted(nb, rows, z, cls, 2, objects, 0.1, 3, 1.5)
+    q = nb[rows]
+    ok = (q >= 0) & (q != rows[:, None])
+    same = ok & (np.abs(z[np.where(ok, q, 0)] - z[rows][:, None]) <= 0.1)
+    c = cls[np.where(ok, q, 0)]
+    n_obj = (same & objects[c]).sum(1)
+    n_gnd = (same & (c == 2)).sum(1)
+    want = (n_obj >= 3) & (n_obj >= 1.5 * (n_gnd + 1))
+    assert 0 < want.sum() < len(rows)       # both answers occur
+    np.testing.assert_array_equal(got, want)

@@ -23,8 +23,8 @@ import numpy as np
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
 from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes, envelope_at,
-                                      floor_cells, has_company, knn3_mean, member_rows, min_envelope, overhead_layers,
-                                      plan_knn, plan_knn3)
+                                      floor_cells, has_company, knn3_mean, member_rows, min_envelope, outvoted,
+                                      overhead_layers, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -652,7 +652,39 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # rescued points are surface or, if a region rule took them out, stay noise
     cls[rescued[judged] & ~ground] = LOW_NOISE
     out[judged] = cls
+    out[_outvoted(z, out, plan, params)] = UNCLASSIFIED
     return out, height
+
+
+#: Classes of the objects' returns in :func:`_outvoted`.
+_OBJECTS = np.zeros(256, np.bool_)
+_OBJECTS[[UNCLASSIFIED, OVERHEAD_STRUCTURE]] = True
+#: An outvoted surface point has at least this many objects' returns at its height among its
+#: 16 nearest in plan ...
+OUTVOTED_LEAST = 4
+#: ... and this many times one more than surface points there.
+OUTVOTED_RATIO = 2.0
+
+
+def _outvoted(z: np.ndarray, cls: np.ndarray, plan: "_PlanNeighbours", params: SlopeGroundParams) -> np.ndarray:
+    """Surface points whose neighbours at their own height are mostly objects' returns.
+
+    Of a point's 16 nearest in plan, those within ``tolerance`` of its height lie on the
+    same surface as it. Where at least :data:`OUTVOTED_LEAST` of them are objects' returns
+    (other, overhead) and they outnumber the surface points among them by
+    :data:`OUTVOTED_RATIO` to one more, the point is an object's return too: a lone return
+    on a wall's top or a machine's roof that the envelope let through (beside a pile heaped
+    against a wall, the wall's top stands within the slope limit of the pile's edge), which
+    alone would give its cell the object's height. A point on a pad or a pile has surface
+    points around it at its height; one at an object's foot has the pad.
+    """
+    out = np.zeros(len(z), bool)
+    if plan.nb is None:
+        return out
+    rows = np.flatnonzero(cls == GROUND)
+    out[rows[outvoted(plan.nb, rows, z, cls, GROUND, _OBJECTS, params.tolerance, OUTVOTED_LEAST,
+                      OUTVOTED_RATIO)]] = True
+    return out
 
 
 @contextlib.contextmanager

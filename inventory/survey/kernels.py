@@ -19,7 +19,7 @@ not depend on how the rows were split.
   plan), on voxels: the index's cells grouped into columns and split in height by a
   counting sort, the layers of each column read outward from the point's height and
   any voxel skipped that lies farther than the k-th nearest so far.
-* :func:`below_tests`, :func:`min_envelope`: the per-point tests of
+* :func:`below_tests`, :func:`min_envelope`, :func:`outvoted`: the per-point tests of
   :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
   temporary arrays of points by neighbours.
 * :func:`cell_lowest`, :func:`envelope_at`: the seeds of the slope envelope's grid and the
@@ -53,7 +53,7 @@ from numba import njit
 from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
-           "min_envelope", "has_company", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
+           "min_envelope", "has_company", "outvoted", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
            "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "floor_cells", "cell_stats"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
@@ -760,6 +760,42 @@ def has_company(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, 
 
     def piece(a: int, b: int) -> None:
         _company_rows(a, b, nb, rows, x, y, z, member, radius * radius, out)
+
+    run_rows(piece, len(rows))
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _outvoted_rows(a, b, nb, rows, z, cls, ground, objects, tol, least, ratio, out):
+    for i in range(a, b):
+        p = rows[i]
+        zp = z[p]
+        n_obj = 0
+        n_gnd = 0
+        for j in range(nb.shape[1]):
+            q = nb[p, j]
+            if q < 0 or q == p:
+                continue
+            if abs(z[q] - zp) <= tol:
+                c = cls[q]
+                if c == ground:
+                    n_gnd += 1
+                elif objects[c]:
+                    n_obj += 1
+        out[i] = n_obj >= least and n_obj >= ratio * (n_gnd + 1)
+
+
+def outvoted(nb: np.ndarray, rows: np.ndarray, z: np.ndarray, cls: np.ndarray, ground: int,
+             objects: np.ndarray, tol: float, least: int, ratio: float) -> np.ndarray:
+    """For each point p of ``rows``: among its neighbours ``nb[p]`` (-1: none; p itself left
+    out) within ``tol`` of its height, are there at least ``least`` of a class marked in
+    ``objects`` (a mask over the 256 classes), and at least ``ratio`` times one more than
+    those of class ``ground``?"""
+    out = np.zeros(len(rows), bool)
+    zf = np.ascontiguousarray(z, dtype=np.float64)
+
+    def piece(a: int, b: int) -> None:
+        _outvoted_rows(a, b, nb, rows, zf, cls, ground, objects, tol, least, ratio, out)
 
     run_rows(piece, len(rows))
     return out
