@@ -154,6 +154,38 @@ def _file_digests(root: Path) -> dict[str, str]:
             for p in sorted(root.rglob("*")) if p.is_file()}
 
 
+def _brute_knn(x, y, z, members, qx, qy, qz, k, skip=None):
+    idx = np.flatnonzero(members)
+    d = np.full((len(qx), k), np.inf)
+    nb = np.full((len(qx), k), -1, np.int64)
+    for i in range(len(qx)):
+        dx = x[idx] - qx[i]
+        dy = y[idx] - qy[i]
+        d2 = dx * dx + dy * dy
+        if z is not None:
+            dz = z[idx] - qz[i]
+            d2 += dz * dz
+        ok = np.isfinite(d2)
+        if skip is not None:
+            ok &= idx != skip[i]
+        d2, q = d2[ok], idx[ok]
+        o = np.lexsort((q, d2))[:k]
+        d[i, :len(o)] = np.sqrt(d2[o])
+        nb[i, :len(o)] = q[o]
+    return d, nb
+
+
+@pytest.fixture(scope="session")
+def brute_knn():
+    """``brute_knn(x, y, z, members, qx, qy, qz, k, skip=None)``: distances and numbers of
+    the k nearest ``members`` of each query point, by the squared distance worked out with
+    the neighbour kernels' operations (dx*dx + dy*dy, then + dz*dz when ``z`` is given),
+    equal ones by point number, ``skip[i]`` (the query's own number) left out: the one exact
+    answer of inventory.survey.kernels' searches. Members without a finite height are never
+    found in 3D, nor is anything for a query without one (the distance is not a number)."""
+    return _brute_knn
+
+
 @pytest.fixture
 def snapshot():
     """``snapshot(root)``: every file under ``root`` by relative path, with the SHA-256 of its

@@ -13,30 +13,6 @@ from scipy.spatial import cKDTree
 from inventory.survey.kernels import CellIndex, _knn3, knn3_mean, plan_knn, plan_knn3
 
 
-def _brute(x, y, z, members, qx, qy, qz, k, skip=None):
-    """The k nearest members of each query, by the squared distance worked out with the
-    kernel's operations (dx*dx + dy*dy, then + dz*dz), equal ones by point number: the
-    exact answer the search must give. Members without a finite height are never found,
-    nor is anything for a query without one (the distance is not a number)."""
-    idx = np.flatnonzero(members)
-    d = np.full((len(qx), k), np.inf)
-    nb = np.full((len(qx), k), -1, np.int64)
-    for i in range(len(qx)):
-        dx = x[idx] - qx[i]
-        dy = y[idx] - qy[i]
-        dz = z[idx] - qz[i]
-        d2 = dx * dx + dy * dy
-        d2 += dz * dz
-        ok = np.isfinite(d2)
-        if skip is not None:
-            ok &= idx != skip[i]
-        d2, q = d2[ok], idx[ok]
-        o = np.lexsort((q, d2))[:k]
-        d[i, :len(o)] = np.sqrt(d2[o])
-        nb[i, :len(o)] = q[o]
-    return d, nb
-
-
 @st.composite
 def _clouds(draw):
     """Clouds as the yards give them and worse: scattered points, columns of points at one
@@ -69,7 +45,7 @@ def _clouds(draw):
 
 @settings(max_examples=80, deadline=None)
 @given(_clouds(), st.integers(1, 40), st.sampled_from([2, 8, 17, 40]), st.sampled_from([1.0, 8.0, 50.0]))
-def test_plan_knn3_is_the_brute_force_answer(cloud, k, kcell, column_points):
+def test_plan_knn3_is_the_brute_force_answer(brute_knn, cloud, k, kcell, column_points):
     xyz, seed = cloud
     x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
     n = len(x)
@@ -80,7 +56,7 @@ def test_plan_knn3_is_the_brute_force_answer(cloud, k, kcell, column_points):
     qx = np.r_[x[rows], x.min() - 3.0, x.max() + 0.7]
     qy = np.r_[y[rows], y.max() + 2.0, y.min()]
     qz = np.r_[z[rows], z.mean(), z.max() + 10.0]
-    ref_d, ref_nb = _brute(x, y, z, members, qx, qy, qz, k)
+    ref_d, ref_nb = brute_knn(x, y, z, members, qx, qy, qz, k)
     index = CellIndex(x, y, members, k=kcell)
     for voxels in (True, False):
         d, nb = _knn3(index, qx, qy, qz, k, None, z, voxels=voxels, column_points=column_points)
@@ -94,11 +70,11 @@ def test_plan_knn3_is_the_brute_force_answer(cloud, k, kcell, column_points):
 
 @settings(max_examples=80, deadline=None)
 @given(_clouds(), st.integers(1, 33))
-def test_knn3_mean_is_numpys_mean_of_the_brute_force_row(cloud, k):
+def test_knn3_mean_is_numpys_mean_of_the_brute_force_row(brute_knn, cloud, k):
     xyz, seed = cloud
     x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
     rows = np.arange(len(x))[::2]
-    ref_d, _ = _brute(x, y, z, np.ones(len(x), bool), x[rows], y[rows], z[rows], k, skip=rows)
+    ref_d, _ = brute_knn(x, y, z, np.ones(len(x), bool), x[rows], y[rows], z[rows], k, skip=rows)
     # to the bit: the kernels sum a row as numpy's mean does
     index = CellIndex(x, y, k=16)
     np.testing.assert_array_equal(knn3_mean(index, x, y, z, rows, k), ref_d.mean(axis=1))
@@ -145,7 +121,7 @@ def test_more_neighbours_asked_than_there_are():
         assert m[0, 0] == np.inf
 
 
-def test_a_stray_point_far_above_costs_no_layers():
+def test_a_stray_point_far_above_costs_no_layers(brute_knn):
     # a column spanning 1e9 m (a stray return) is split into a few layers per point, not
     # into layers of the plan cell's size, and the answers stay exact
     rng = np.random.default_rng(5)
@@ -155,20 +131,20 @@ def test_a_stray_point_far_above_costs_no_layers():
     x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
     rows = np.r_[17, 18, np.arange(0, 3000, 50)]
     d, nb = _knn3(CellIndex(x, y, k=17), x[rows], y[rows], z[rows], 5, None, z, voxels=True)
-    ref_d, ref_nb = _brute(x, y, z, np.ones(3000, bool), x[rows], y[rows], z[rows], 5)
+    ref_d, ref_nb = brute_knn(x, y, z, np.ones(3000, bool), x[rows], y[rows], z[rows], 5)
     np.testing.assert_array_equal(nb, ref_nb)
     np.testing.assert_array_equal(d, ref_d)
 
 
 @pytest.mark.parametrize("bad", [np.nan, np.inf])
-def test_heights_that_are_not_numbers_are_never_neighbours(bad):
+def test_heights_that_are_not_numbers_are_never_neighbours(brute_knn, bad):
     # as before the voxels: such a distance never compares smaller than another
     rng = np.random.default_rng(8)
     xyz = rng.random((400, 3))
     xyz[[3, 40], 2] = bad
     x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
     rows = np.arange(0, 400, 3)
-    ref_d, ref_nb = _brute(x, y, z, np.ones(400, bool), x[rows], y[rows], z[rows], 6)
+    ref_d, ref_nb = brute_knn(x, y, z, np.ones(400, bool), x[rows], y[rows], z[rows], 6)
     for voxels in (True, False):
         d, nb = _knn3(CellIndex(x, y), x[rows], y[rows], z[rows], 6, None, z, voxels=voxels)
         np.testing.assert_array_equal(nb, ref_nb)

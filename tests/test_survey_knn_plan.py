@@ -12,27 +12,6 @@ from hypothesis import strategies as st
 from inventory.survey.kernels import CellIndex, _knn, plan_knn
 
 
-def _brute(x, y, z, members, qx, qy, qz, k, skip=None):
-    """The k nearest members of each query by the squared distance worked out with the
-    kernel's operations (dx*dx + dy*dy, then + dz*dz when z is given), equal ones by point
-    number: the one exact answer."""
-    idx = np.flatnonzero(members)
-    d = np.full((len(qx), k), np.inf)
-    nb = np.full((len(qx), k), -1, np.int64)
-    for i in range(len(qx)):
-        dx = x[idx] - qx[i]
-        dy = y[idx] - qy[i]
-        d2 = dx * dx + dy * dy
-        if z is not None:
-            dz = z[idx] - qz[i]
-            d2 += dz * dz
-        ok = np.ones(len(idx), bool) if skip is None else idx != skip[i]
-        o = np.lexsort((idx[ok], d2[ok]))[:k]
-        d[i, :len(o)] = np.sqrt(d2[ok][o])
-        nb[i, :len(o)] = idx[ok][o]
-    return d, nb
-
-
 @st.composite
 def _clouds(draw):
     """Scattered points of one density or two (a dense patch in a sparse field), points
@@ -67,7 +46,7 @@ def _clouds(draw):
 @settings(max_examples=150, deadline=None)
 @given(_clouds(), st.integers(1, 20), st.sampled_from([None, 0.25, 0.5, 1.0]), st.sampled_from([1, 4, 17]),
        st.booleans())
-def test_plan_and_3d_searches_are_the_brute_force_answer(cloud, k, cell, kcell, in3d):
+def test_plan_and_3d_searches_are_the_brute_force_answer(brute_knn, cloud, k, cell, kcell, in3d):
     xyz, rng = cloud
     x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
     n = len(x)
@@ -79,7 +58,7 @@ def test_plan_and_3d_searches_are_the_brute_force_answer(cloud, k, cell, kcell, 
     qx = np.r_[x, x.min() - 3.0, x.max() + 0.7, x.mean()]
     qy = np.r_[y, y.max() + 2.0, y.min(), y.max() + 40.0]
     qz = np.r_[z, z.mean(), z.max() + 10.0, z.min()]
-    ref_d, ref_nb = _brute(x, y, zz, every, qx, qy, qz, k)
+    ref_d, ref_nb = brute_knn(x, y, zz, every, qx, qy, qz, k)
     d, nb = _knn(index, qx, qy, qz if in3d else None, k, None, zz)
     np.testing.assert_array_equal(nb, ref_nb)
     np.testing.assert_array_equal(d, ref_d)
@@ -88,20 +67,20 @@ def test_plan_and_3d_searches_are_the_brute_force_answer(cloud, k, cell, kcell, 
         np.testing.assert_array_equal(plan_knn(index, qx, qy, k, dist=False), ref_nb)
     # each point's own number skipped
     rows = np.arange(n)
-    ref_d, ref_nb = _brute(x, y, zz, every, x, y, z, k, skip=rows)
+    ref_d, ref_nb = brute_knn(x, y, zz, every, x, y, z, k, skip=rows)
     d, nb = _knn(index, x, y, z if in3d else None, k, rows, zz)
     np.testing.assert_array_equal(nb, ref_nb)
     np.testing.assert_array_equal(d, ref_d)
     # among a subset's members, cut from the index of every point and built on its own
     members = rng.random(n) < rng.choice([0.1, 0.5, 0.9])
-    ref_d, ref_nb = _brute(x, y, zz, members, qx, qy, qz, k)
+    ref_d, ref_nb = brute_knn(x, y, zz, members, qx, qy, qz, k)
     for sub in (index.subset(members), CellIndex(x, y, members, k=kcell, cell=cell)):
         d, nb = _knn(sub, qx, qy, qz if in3d else None, k, None, zz)
         np.testing.assert_array_equal(nb, ref_nb)
         np.testing.assert_array_equal(d, ref_d)
 
 
-def test_ties_on_a_cell_edge_beyond_the_first_ring():
+def test_ties_on_a_cell_edge_beyond_the_first_ring(brute_knn):
     # a lattice of 1 m on cells of 1 m: the query (0.5, 0.5) has its four nearest at
     # 0.707 m, then eight at 1.58 m, four of them in the second ring of cells and on
     # its inner edges' far side: the point numbers decide which of the eight come first
@@ -113,7 +92,7 @@ def test_ties_on_a_cell_edge_beyond_the_first_ring():
     index = CellIndex(x, y, cell=1.0)
     qx, qy = np.array([0.5]), np.array([0.5])
     for k in (4, 6, 9, 12):
-        ref_d, ref_nb = _brute(x, y, None, np.ones(len(x), bool), qx, qy, None, k)
+        ref_d, ref_nb = brute_knn(x, y, None, np.ones(len(x), bool), qx, qy, None, k)
         d, nb = plan_knn(index, qx, qy, k)
         assert nb.tolist() == ref_nb.tolist() and d.tolist() == ref_d.tolist()
         if k > 4:

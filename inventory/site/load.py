@@ -1321,8 +1321,8 @@ class _Loader:
         return info, len(poses) == count, acquired
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
+        import shapely
         from shapely.geometry import box
-        from shapely.geometry.base import BaseGeometry
 
         boxes = [box(*ref.extent) for ref in surveys.values() if ref.extent is not None]
         if not boxes:
@@ -1330,7 +1330,7 @@ class _Loader:
         display = self.rel(self.root / "piles.gpkg")
         for i, row in piles.iterrows():
             geom = row.geometry
-            if not isinstance(geom, BaseGeometry) or geom.is_empty:   # NULL reads as NaN; reported
+            if not isinstance(geom, shapely.Geometry) or geom.is_empty:   # NULL reads as NaN; reported
                 continue
             if not any(b.intersects(geom) for b in boxes):
                 self.warn(display, f"pile {row['pile_id']}", "geometry", "lies outside every survey's extent")
