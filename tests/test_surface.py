@@ -197,6 +197,41 @@ def test_surface_patch_on_an_object_is_emptied():
     assert (acc2.result().count[on_roof] > 0).all() and not acc2.object_cells().any()
 
 
+def test_roof_set_back_from_the_body_sides_is_emptied():
+    # A machine on a slope: its cab roof (3.5 m up, 1.8 m wide) stands back 0.4 m from the
+    # body's sides, so the returns in the cells right around the roof are the cab's upper
+    # edges (3.2-3.4 m); the body's sides, down to its feet, lie a cell further out. The
+    # roof was called surface: it is emptied for the sides a metre away. Real pad cells
+    # 1 m from a truck whose lowest returns are 0.6 m up stay.
+    from inventory.survey.gridding import OBJECT_SIDE_REACH_M
+
+    assert OBJECT_SIDE_REACH_M == 1.0
+    rng = np.random.default_rng(11)
+    g = Grid(0.0, 20.0, 0.5, 40, 40)
+    x, y = rng.random(40000) * 20, rng.random(40000) * 20
+    machine = (x > 3) & (x < 10) & (y > 4) & (y < 10)      # the machine and its shadow
+    roof = (x > 5.5) & (x < 8.5) & (y > 6.5) & (y < 8.0)
+    z = np.zeros_like(x)
+    ex = np.r_[rng.random(300) * 4 + 5, np.full(150, 5.25), np.full(150, 8.75)]   # cab edges
+    ey = np.r_[np.where(rng.random(300) < 0.5, 6.25, 8.25), rng.random(300) * 2.0 + 6.25]
+    ez = rng.random(600) * 0.2 + 3.2
+    sx = np.r_[rng.random(400) * 5 + 4.5, np.full(200, 4.75), np.full(200, 9.25)]   # body sides
+    sy = np.r_[np.where(rng.random(400) < 0.5, 5.75, 8.75), rng.random(400) * 3 + 5.75]
+    sz = rng.random(800) * 2.5 + 0.1
+    tx, ty = np.full(200, 14.25), rng.random(200) * 3 + 14          # a truck's side, 0.6 m up
+    tz = rng.random(200) * 2.0 + 0.6
+    acc = SurfaceAccumulator(g, "mean")
+    acc.add(np.r_[x[~machine], x[roof]], np.r_[y[~machine], y[roof]], np.r_[z[~machine], np.full(roof.sum(), 3.5)])
+    acc.add_objects(np.r_[ex, sx, tx], np.r_[ey, sy, ty], np.r_[ez, sz, tz])
+    s = acc.result()
+    cx, cy = g.centers()
+    on_roof = (cx > 5.5) & (cx < 8.5) & (cy > 6.5) & (cy < 8.0)
+    assert on_roof.sum() == 18 and (s.count[on_roof] == 0).all()
+    assert np.nanmax(s.z) < 0.01
+    beside_truck = (cx > 15.0) & (cx < 15.5) & (cy > 14.0) & (cy < 17.0)
+    assert (s.count[beside_truck] > 0).all()
+
+
 def test_object_cells_in_bands_are_those_of_the_whole_grid():
     # object_cells judges a large grid in bands of rows with a margin wider than any object
     # top can reach; the answer must be that of the whole grid at once, also for patches

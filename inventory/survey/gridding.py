@@ -44,6 +44,17 @@ OBJECT_CLEARANCE_M = 0.5
 #: Largest patch of surface cells taken as the top of an object: a road vehicle's plan
 #: area, 2.55 m x 16.5 m (EU Directive 96/53/EC maximum width and articulated length).
 OBJECT_TOP_MAX_M2 = 2.55 * 16.5
+#: How far around a patch of surface cells (metres in plan, at least one cell) the object
+#: returns below it are looked for when judging whether it is an object's top: a machine's
+#: cab or roof stands back from, or overhangs, the sides of the body under it by up to about
+#: a metre (the cab of a wheel loader or a truck is narrower than its body; common
+#: practice), so the returns of its sides may lie a cell or two beside the roof's cells.
+OBJECT_SIDE_REACH_M = 1.0
+
+
+def _side_reach_cells(cell_area_m2: float) -> int:
+    """:data:`OBJECT_SIDE_REACH_M` in whole cells of a grid, at least one."""
+    return max(1, int(math.ceil(OBJECT_SIDE_REACH_M / math.sqrt(cell_area_m2) - 1e-9)))
 
 
 
@@ -184,9 +195,10 @@ def object_cells(has: np.ndarray, top: "np.ndarray | None", bottom: np.ndarray, 
       classifier's split is least reliable;
     * a patch of scanned cells cut off from the rest of the surface (8-neighbours,
       once the cells of the first rule are taken out), of at most :data:`OBJECT_TOP_MAX_M2`,
-      with object returns in the cells around it more than :data:`OBJECT_CLEARANCE_M` below
-      its lowest surface point, is the top of the object those returns come from (the
-      roof of a loader whose sides were scanned down to the ground).
+      with object returns within :data:`OBJECT_SIDE_REACH_M` around it (in whole cells, at
+      least one) more than :data:`OBJECT_CLEARANCE_M` below its lowest surface point, is
+      the top of the object those returns come from (the roof of a loader whose sides were
+      scanned down to the ground; its cab may stand back from the body's sides).
 
     Overhead structure well above the ground (a gallery, a stacker boom) leaves the
     cells under it alone.
@@ -217,7 +229,8 @@ def object_cells(has: np.ndarray, top: "np.ndarray | None", bottom: np.ndarray, 
     bool array, the shape of ``has``.
     """
     nrow = has.shape[0]
-    reach = int(OBJECT_TOP_MAX_M2 // cell_area_m2) + 2   # rows a small patch and its ring span
+    # rows a small patch and its ring span
+    reach = int(OBJECT_TOP_MAX_M2 // cell_area_m2) + 1 + _side_reach_cells(cell_area_m2)
     if near_object is None:
         with np.errstate(invalid="ignore"):
             near_object = low_object < top + OBJECT_CLEARANCE_M
@@ -247,7 +260,8 @@ def _object_cells(has: np.ndarray, near_object: np.ndarray, bottom: np.ndarray, 
     sizes = np.bincount(labels.ravel(), minlength=n + 1)[1:]
     small = ids[sizes * cell_area_m2 <= OBJECT_TOP_MAX_M2]
     if small.size:
-        around = ndimage.minimum_filter(low_object, size=3, mode="constant", cval=np.inf)
+        side = 2 * _side_reach_cells(cell_area_m2) + 1
+        around = ndimage.minimum_filter(low_object, size=side, mode="constant", cval=np.inf)
         lowest = ndimage.minimum(bottom, labels, small)
         below = ndimage.minimum(around, labels, small)
         on_top = small[np.asarray(below) < np.asarray(lowest) - OBJECT_CLEARANCE_M]
