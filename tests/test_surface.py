@@ -232,6 +232,33 @@ def test_roof_set_back_from_the_body_sides_is_emptied():
     assert (s.count[beside_truck] > 0).all()
 
 
+def test_lone_surface_cell_among_object_returns_at_its_level_is_emptied():
+    # Under a gallery (underside 6.5 m up) whose floor no station saw: the underside's
+    # returns were called object, one of them surface, the others nearest it 0.9 m away. Alone among object returns at its
+    # own height it is emptied. A lone pad cell 0.8 m from a truck whose lowest returns are
+    # 0.6 m up stays, and so does a lone pad cell with no object near it.
+    rng = np.random.default_rng(2)
+    g = Grid(0.0, 20.0, 0.5, 40, 40)
+    x, y = rng.random(20000) * 20, rng.random(20000) * 4 + 16       # pad, north strip only
+    ux, uy = rng.random(400) * 2.5 + 3.0, rng.random(400) * 10 + 2.0   # underside returns
+    uz = 6.5 + rng.random(400) * 0.05
+    far = np.hypot(ux - 4.1, uy - 6.2) > 0.9          # none in the lone return's cell or the next
+    ux, uy, uz = ux[far], uy[far], uz[far]
+    tx, ty = np.full(100, 12.25), rng.random(100) * 2 + 4.0          # a truck's side
+    tz = 0.6 + rng.random(100) * 2.0
+    lone_x = np.array([4.1, 13.1, 16.3])
+    lone_y = np.array([6.2, 4.7, 8.2])
+    lone_z = np.array([6.52, 0.0, 0.0])
+    acc = SurfaceAccumulator(g, "mean")
+    acc.add(np.r_[x, lone_x], np.r_[y, lone_y], np.r_[np.zeros_like(x), lone_z])
+    acc.add_objects(np.r_[ux, tx], np.r_[uy, ty], np.r_[uz, tz])
+    s = acc.result()
+    r, c = g.index(lone_x, lone_y)[:2]
+    assert s.count[r[0], c[0]] == 0                    # the underside's return
+    assert s.count[r[1], c[1]] == 1 and s.count[r[2], c[2]] == 1
+    assert np.nanmax(s.z) < 0.01
+
+
 def test_object_cells_in_bands_are_those_of_the_whole_grid():
     # object_cells judges a large grid in bands of rows with a margin wider than any object
     # top can reach; the answer must be that of the whole grid at once, also for patches

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from inventory.errors import RunError
-from inventory.model.grid import Grid, Surface, lone_patches
+from inventory.model.grid import LONE_PATCH_CELLS, Grid, Surface, lone_patches
 
 __all__ = [
     "STATISTICS",
@@ -198,7 +198,12 @@ def object_cells(has: np.ndarray, top: "np.ndarray | None", bottom: np.ndarray, 
       with object returns within :data:`OBJECT_SIDE_REACH_M` around it (in whole cells, at
       least one) more than :data:`OBJECT_CLEARANCE_M` below its lowest surface point, is
       the top of the object those returns come from (the roof of a loader whose sides were
-      scanned down to the ground; its cab may stand back from the body's sides).
+      scanned down to the ground; its cab may stand back from the body's sides);
+    * a lone patch (at most :data:`~inventory.model.grid.LONE_PATCH_CELLS` cells, touching
+      no other surface cell once the cells of the first rule are taken out) with an object
+      return within that reach lower than :data:`OBJECT_CLEARANCE_M` above its lowest
+      surface point is a piece of that object (a return on a gallery's underside whose
+      neighbours at the same height were called object, with no ground seen below it).
 
     Overhead structure well above the ground (a gallery, a stacker boom) leaves the
     cells under it alone.
@@ -264,7 +269,10 @@ def _object_cells(has: np.ndarray, near_object: np.ndarray, bottom: np.ndarray, 
         around = ndimage.minimum_filter(low_object, size=side, mode="constant", cval=np.inf)
         lowest = ndimage.minimum(bottom, labels, small)
         below = ndimage.minimum(around, labels, small)
-        on_top = small[np.asarray(below) < np.asarray(lowest) - OBJECT_CLEARANCE_M]
+        lowest, below = np.asarray(lowest), np.asarray(below)
+        # a lone patch among object returns at its own level is a piece of that object
+        lone = sizes[small - 1] <= LONE_PATCH_CELLS
+        on_top = small[(below < lowest - OBJECT_CLEARANCE_M) | (lone & (below < lowest + OBJECT_CLEARANCE_M))]
         if on_top.size:
             covered |= np.isin(labels, on_top)
     return covered
