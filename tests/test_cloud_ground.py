@@ -228,3 +228,38 @@ def test_underside_of_a_machine_over_a_shadow_is_not_surface(seed):
     cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
     assert (cls[len(x):] != GROUND).all()
     assert (cls[:len(x)] == GROUND).all()
+
+
+def test_pile_leaning_on_a_wall_is_surface_with_the_pad_behind_the_wall_scanned():
+    # A 0.6 m bay wall, 4.5 m high; on its east side a pile heaped against it, flat at
+    # 4.0 m for 3 m and then falling at 38 degrees to the pad; on its west side the pad is
+    # scanned to the wall's foot, and the wall's west face from the foot up. The slope
+    # envelope of the pad behind the wall would cut the pile within (4.0 / tan 50) = 3.4 m
+    # of the wall; the wall (cells whose points span over a metre) stops that envelope.
+    # Before, three in four of the pile points within 3.4 m of the wall were not surface.
+    rng = np.random.default_rng(4)
+    length, xw, width, top, pile_top = 24.0, 20.0, 0.6, 4.5, 4.0
+    n = 60 * 40 * int(length)
+    x, y = xw + width + rng.random(n) * 14, rng.random(n) * length
+    z = np.clip(pile_top - np.maximum(x - (xw + width + 3.0), 0) * math.tan(math.radians(38)), 0, None)
+    m = 60 * 20 * int(length)
+    px, py = rng.random(m) * xw, rng.random(m) * length                 # the pad behind the wall
+    f = int(200 * top * length)
+    fx, fy, fz = np.full(f, xw), rng.random(f) * length, rng.random(f) * top        # west face
+    e = int(200 * (top - pile_top) * length)
+    ex, ey, ez = np.full(e, xw + width), rng.random(e) * length, pile_top + rng.random(e) * (top - pile_top)
+    t = int(60 * width * length)
+    tx, ty = xw + rng.random(t) * width, rng.random(t) * length
+    X = np.r_[x, px, fx, ex, tx]
+    Y = np.r_[y, py, fy, ey, ty]
+    Z = np.r_[z, np.zeros(m), fz, ez, np.full(t, top)] + rng.normal(0, 0.005, n + m + f + e + t)
+    K = np.r_[np.where(z > 0, 1, 0), np.zeros(m, int), np.full(f + e, 2), np.full(t, 3)]
+    cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
+    ground = cls == GROUND
+    # (around the wall's ends, 5 m off, the pad's envelope reaches the pile for real)
+    near = (K == 1) & (X < xw + width + 3.4) & (Y > 5) & (Y < length - 5)
+    assert near.sum() > 2000
+    assert ground[near].mean() >= 0.999
+    assert ground[K == 1].mean() >= 0.999 and ground[K == 0].mean() >= 0.999
+    assert not ground[K == 3].any()                                    # the wall's top
+    assert not ground[(K == 2) & (Z > 0.5) & (Z < pile_top - 0.5)].any()   # its west face

@@ -22,7 +22,8 @@ import numpy as np
 
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
-from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes, envelope_at,
+from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes,
+                                      chamfer_passes_blocked, envelope_at,
                                       floor_cells, has_company, knn3_mean, member_rows, min_envelope, outvoted,
                                       overhead_layers, plan_knn, plan_knn3)
 
@@ -84,7 +85,7 @@ class _EnvelopeGrid:
         nrow = self.nrow = int((y.max() - y0) // c) + 2
         col = floor_cells(np.ascontiguousarray(x, dtype=np.float64), float(x0), float(c))
         row = floor_cells(np.ascontiguousarray(y, dtype=np.float64), float(y0), float(c))
-        key = row * ncol + col
+        key = self.key = row * ncol + col
         low = cell_lowest(key, np.ascontiguousarray(z, dtype=np.float64), nrow * ncol)
         skey = np.flatnonzero(low >= 0)
         seeds = low[skey]
@@ -97,11 +98,21 @@ class _EnvelopeGrid:
         ay = (y0 + (np.arange(nrow) + 0.5) * c)[:, None].repeat(ncol, 1).ravel()
         ax[skey], ay[skey] = x[seeds], y[seeds]
         self.ax, self.ay = ax, ay
+        self.seeds = g        # the lowest point of each cell (inf where none), unpropagated
         self.g = _chamfer_min(g, t * c).ravel()
 
-    def at(self, qx: np.ndarray, qy: np.ndarray) -> np.ndarray:
-        """The envelope at query points: the seeds of the 3 x 3 cells around each, exactly."""
-        gf, ax, ay, t, c, nrow, ncol = self.g, self.ax, self.ay, self.t, self.c, self.nrow, self.ncol
+    def blocked(self, block: np.ndarray) -> np.ndarray:
+        """The seeds propagated on paths that never enter a ``block`` cell (a flat grid
+        for :meth:`at`'s ``gf``)."""
+        g = self.seeds.copy()
+        chamfer_passes_blocked(g, float(self.t * self.c), np.ascontiguousarray(block.reshape(g.shape)))
+        return g.ravel()
+
+    def at(self, qx: np.ndarray, qy: np.ndarray, gf: "np.ndarray | None" = None) -> np.ndarray:
+        """The envelope at query points: the seeds of the 3 x 3 cells around each, exactly
+        (of the propagated grid ``gf``, default the whole grid's)."""
+        gf = self.g if gf is None else gf
+        ax, ay, t, c, nrow, ncol = self.ax, self.ay, self.t, self.c, self.nrow, self.ncol
         qcol = np.floor((qx - self.x0) / c).astype(np.int64)
         qrow = np.floor((qy - self.y0) / c).astype(np.int64)
         e = np.full(len(qx), np.inf)
@@ -117,6 +128,68 @@ class _EnvelopeGrid:
                 cand = gf[k] + t * np.hypot(qx[ok] - ax[k], qy[ok] - ay[k])
                 e[ok] = np.minimum(e[ok], cand)
         return e
+
+
+#: How far from a wall (m) a surface point may be held above the envelope by the ground
+#: beyond that wall (:func:`_behind_walls`): a pile leaning on a wall is clipped by the
+#: pad behind it out to its height above that pad over tan(max_slope), 3.8 m for 4.5 m
+#: at 50 degrees; bay and bunker walls stand up to about 6 m (common practice).
+WALL_REACH_M = 5.0
+#: A point held up by a wall lies at least this far below the wall's top (m; well over
+#: ``tolerance`` and ranging noise): a flat top level with a wall's is the wall's top, or
+#: a roof level with its own sides'.
+WALL_CLEARANCE_M = 0.25
+
+
+def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_local: np.ndarray,
+                  env: _EnvelopeGrid, params: SlopeGroundParams) -> tuple[np.ndarray, np.ndarray]:
+    """Points above the envelope only because of lower ground beyond a wall that stands
+    above them (a pile heaped against a bay wall, the pad behind the wall scanned to its
+    foot): their numbers among the points of ``env``, their envelope without the wall,
+    and which points of ``env`` lie in the wall's cells.
+
+    A wall is a cell of the envelope's grid whose points span more than
+    ``overhead_gap / 2`` in height (no pile surface rises that much within one cell, even
+    a reclaim face at ``face_slope_deg``), widened by a cell so that no chamfer step jumps
+    it. The seeds are propagated again on paths that never enter a wall; a point outside
+    the wall's cells, above the envelope by more than ``tolerance``, is surface after all
+    when it lies on this second envelope (and on its nearest points' envelope, as before)
+    and at least :data:`WALL_CLEARANCE_M` below the top of a wall within
+    :data:`WALL_REACH_M`. A machine's roof is the top of its own sides and stays above the
+    envelope, the low edge of its side lies in its wall's cells; what else the second
+    envelope lets through is left to the region rules, as any flat top is.
+    """
+    from scipy import ndimage
+
+    none = np.zeros(0, np.int64), np.zeros(0), np.zeros(len(z), bool)
+    cand = np.isfinite(h) & (h > params.tolerance)
+    if not cand.any():
+        return none
+    shape = (env.nrow, env.ncol)
+    z64 = np.ascontiguousarray(z, dtype=np.float64)
+    n, _, lo, hi = cell_stats(env.key, z64, np.ones(len(z), bool), shape[0] * shape[1])
+    tall = ((n > 1) & (hi - lo > params.overhead_gap / 2)).reshape(shape)
+    if not tall.any():
+        return none
+    in_wall = tall.ravel()[env.key]
+    reach = int(math.ceil(WALL_REACH_M / env.c))
+    wall_top = ndimage.maximum_filter(np.where(tall, hi.reshape(shape), -np.inf), size=2 * reach + 1,
+                                      mode="constant", cval=-np.inf).ravel()
+    cand &= z64 <= wall_top[env.key] - WALL_CLEARANCE_M
+    if not cand.any():
+        return none[0], none[1], in_wall
+    block = ndimage.binary_dilation(tall, structure=np.ones((3, 3), bool)).ravel()
+    # a point in the wall's cells or beside them is the wall's own (a machine's side down
+    # to its lowest edge) and is left to the first envelope
+    cand &= ~block[env.key]
+    if not cand.any():
+        return none[0], none[1], in_wall
+    gf = env.blocked(block)
+    gf[block] = np.inf          # the wall's cells pass nothing on, not even their own seed
+    rows = np.flatnonzero(cand)
+    e2 = np.minimum(env.at(x[rows], y[rows], gf), e_local[rows])
+    ok = z64[rows] - e2 <= params.tolerance
+    return rows[ok], e2[ok], in_wall
 
 
 def _local_envelope(x: np.ndarray, y: np.ndarray, z: np.ndarray, params: SlopeGroundParams,
@@ -424,7 +497,7 @@ def _chamfer_min(g: np.ndarray, weight: float) -> np.ndarray:
 
 
 def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
-            params: SlopeGroundParams) -> np.ndarray:
+            params: SlopeGroundParams, walls: "np.ndarray | None" = None) -> np.ndarray:
     """Surface points in cells that stand above other surface more than a face could.
 
     On cells of ``2 * cell`` holding surface points (their mean height), a cell is a spike
@@ -432,6 +505,10 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
     another surface cell n at chamfer distance d: no reclaim face, let alone a flank,
     rises that fast. Sparse returns from wall tops, gallery roofs, machine decks and the
     platform a scanner stands on, which got through the point rules, end here.
+
+    ``walls`` (points of walls, :func:`_behind_walls`): the cells holding them, widened by
+    a cell, pass nothing on and count as no one's neighbour, so that the pad behind a wall
+    does not make spikes of the pile leaning on it.
     """
     out = np.zeros(len(z), bool)
     if not ground.any():
@@ -445,7 +522,16 @@ def _spikes(x: np.ndarray, y: np.ndarray, z: np.ndarray, ground: np.ndarray,
     with np.errstate(invalid="ignore", divide="ignore"):
         zm = (total / n).reshape(shape)
     zf = np.where(np.isfinite(zm), zm, np.inf)
-    env = _chamfer_min(zf, t * c)
+    if walls is not None and walls.any():
+        from scipy import ndimage
+
+        block = np.bincount(k[walls], minlength=size).reshape(shape) > 0
+        block = ndimage.binary_dilation(block, structure=np.ones((3, 3), bool))
+        env = zf.copy()
+        chamfer_passes_blocked(env, float(t * c), block)
+        env[block] = np.inf     # no one's neighbour
+    else:
+        env = _chamfer_min(zf, t * c)
     # the envelope from the neighbours alone: one more step from each neighbour
     low = np.full(shape, np.inf)
     for dr, dc, w in [(dr, dc, t * c * math.hypot(dr, dc)) for dr, dc in _STEPS]:
@@ -622,9 +708,15 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
         return out, height
     xu, yu, zu = x[use], y[use], z[use]
     envelope = _EnvelopeGrid(xu, yu, zu, params)   # built once: points and noise query it
-    e = np.minimum(envelope.at(xu, yu), _local_envelope(xu, yu, zu, params,
-                                                         knn=(plan.within(use, 17), np.arange(len(zu)))))
+    e_local = _local_envelope(xu, yu, zu, params, knn=(plan.within(use, 17), np.arange(len(zu))))
+    e = np.minimum(envelope.at(xu, yu), e_local)
+    walled, e_walled, in_wall = _behind_walls(xu, yu, zu, zu - e, e_local, envelope, params)
+    e[walled] = e_walled
     height[use] = zu - e
+    behind = np.zeros(len(z), bool)
+    behind[np.flatnonzero(use)[walled]] = True
+    walls = np.zeros(len(z), bool)
+    walls[np.flatnonzero(use)[in_wall]] = True
     # Noise points are judged against the envelope of the rest: those on it are surface
     # after all and take part in the region rules below.
     noise = ignore & (classification == LOW_NOISE)
@@ -640,13 +732,17 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
         rescued[np.flatnonzero(noise)[np.isfinite(hn) & (np.abs(hn) <= params.tolerance)]] = True
     judged = use | rescued
     xs, ys, zs, hs = x[judged], y[judged], z[judged], height[judged]
-    ground = (hs <= params.tolerance) | rescued[judged]
+    ground = (hs <= params.tolerance) | rescued[judged] | behind[judged]
     ground &= ~_walled_tops(xs, ys, zs, ground, params)
     if params.face_slope_deg > params.max_slope_deg:
         rows = judged.copy()
         rows[judged] = ~ground
         ground |= _attached_faces(xs, ys, zs, ground, params, knn=plan.within(judged, 17, rows))
-    ground &= ~_spikes(xs, ys, zs, ground, params)
+    spikes = _spikes(xs, ys, zs, ground, params)
+    if behind.any():
+        # a point held up by a wall is judged without the surface behind that wall
+        spikes &= ~(behind[judged] & ~_spikes(xs, ys, zs, ground, params, walls=walls[judged]))
+    ground &= ~spikes
     over = _overhead(xs, ys, zs, hs, params.cell * 2, params.overhead_gap)
     cls = np.where(ground, GROUND, np.where(over, OVERHEAD_STRUCTURE, UNCLASSIFIED)).astype(np.uint8)
     # rescued points are surface or, if a region rule took them out, stay noise

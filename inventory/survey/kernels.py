@@ -32,7 +32,9 @@ not depend on how the rows were split.
   :func:`overhead_layers` walk the cells in that order
   (:func:`inventory.survey.clean.elm_low_points`, :func:`inventory.survey.ground._overhead`).
 * :func:`chamfer_passes`: the two raster passes of
-  :func:`inventory.survey.ground._chamfer_min`, with the same floating-point operations.
+  :func:`inventory.survey.ground._chamfer_min`, with the same floating-point operations;
+  :func:`chamfer_passes_blocked` the same around blocked cells (walls), repeated until
+  nothing changes.
 * :func:`floor_cells`, :func:`cell_stats`: the cell of each point by floor division, and a
   cell's count, sum, lowest and highest height in one pass (the region rules'
   ``np.bincount`` and ``np.minimum.at`` / ``np.maximum.at`` passes).
@@ -54,7 +56,8 @@ from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
            "min_envelope", "has_company", "outvoted", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
-           "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "floor_cells", "cell_stats"]
+           "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "chamfer_passes_blocked", "floor_cells",
+           "cell_stats"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
 _PIECE = 65536
@@ -1341,6 +1344,72 @@ def chamfer_passes(g, weight):
                 right[j] = m
             for j in range(ncol):
                 g[r, j] = _np_extreme(left[j] + ramp[j], right[j] - ramp[j], False)
+
+
+@njit(cache=True, nogil=True)
+def chamfer_passes_blocked(g, weight, block):
+    """:func:`chamfer_passes` on paths that never enter a ``block`` cell: a blocked cell
+    keeps its own value and passes nothing on. Paths around a blocked line may turn back
+    across rows, which one pair of passes does not follow: the pair is repeated until no
+    cell changes (at most ``nrow + ncol`` times). Steps are the 16 chamfer steps, so a
+    blocked line must be at least two cells thick to stop the knight steps (the caller
+    dilates it)."""
+    nrow, ncol = g.shape
+    w1 = weight
+    w2 = weight * math.sqrt(2.0)
+    w5 = weight * math.sqrt(5.0)
+    inf = np.inf
+    for _ in range(nrow + ncol):
+        changed = False
+        for down in (True, False):
+            for s in range(nrow):
+                r = s if down else nrow - 1 - s
+                r1 = r - 1 if down else r + 1
+                r2 = r - 2 if down else r + 2
+                if s >= 1:
+                    for j in range(ncol):
+                        if block[r, j]:
+                            continue
+                        v = g[r, j]
+                        if not block[r1, j] and g[r1, j] + w1 < v:
+                            v = g[r1, j] + w1
+                        if j >= 1 and not block[r1, j - 1] and g[r1, j - 1] + w2 < v:
+                            v = g[r1, j - 1] + w2
+                        if j + 1 < ncol and not block[r1, j + 1] and g[r1, j + 1] + w2 < v:
+                            v = g[r1, j + 1] + w2
+                        if j >= 2 and not block[r1, j - 2] and g[r1, j - 2] + w5 < v:
+                            v = g[r1, j - 2] + w5
+                        if j + 2 < ncol and not block[r1, j + 2] and g[r1, j + 2] + w5 < v:
+                            v = g[r1, j + 2] + w5
+                        if s >= 2:
+                            if j >= 1 and not block[r2, j - 1] and g[r2, j - 1] + w5 < v:
+                                v = g[r2, j - 1] + w5
+                            if j + 1 < ncol and not block[r2, j + 1] and g[r2, j + 1] + w5 < v:
+                                v = g[r2, j + 1] + w5
+                        if v < g[r, j]:
+                            g[r, j] = v
+                            changed = True
+                # along the row, both ways, the run of free cells between blocked ones
+                m = inf
+                for j in range(ncol):
+                    if block[r, j]:
+                        m = inf
+                        continue
+                    m = m + w1 if m + w1 < g[r, j] else g[r, j]
+                    if m < g[r, j]:
+                        g[r, j] = m
+                        changed = True
+                m = inf
+                for j in range(ncol - 1, -1, -1):
+                    if block[r, j]:
+                        m = inf
+                        continue
+                    m = m + w1 if m + w1 < g[r, j] else g[r, j]
+                    if m < g[r, j]:
+                        g[r, j] = m
+                        changed = True
+        if not changed:
+            break
 
 
 @njit(cache=True, nogil=True)
