@@ -14,6 +14,7 @@ import math
 import numpy as np
 import pytest
 
+from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE
 from inventory.survey.ground import SlopeGroundParams, slope_ground
 from inventory.survey.pipeline import load_pipeline
@@ -263,3 +264,9 @@ def test_pile_leaning_on_a_wall_is_surface_with_the_pad_behind_the_wall_scanned(
     assert ground[K == 1].mean() >= 0.999 and ground[K == 0].mean() >= 0.999
     assert not ground[K == 3].any()                                    # the wall's top
     assert not ground[(K == 2) & (Z > 0.5) & (Z < pile_top - 0.5)].any()   # its west face
+    # wall_reach 0 (the bare-earth pipeline's setting) is the envelope alone
+    off, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool),
+                          SlopeGroundParams(wall_reach=0.0))
+    assert (off[near] == GROUND).mean() < 0.3
+    with pytest.raises(PipelineError, match="wall_reach"):
+        SlopeGroundParams(wall_reach=-1.0)

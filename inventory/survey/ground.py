@@ -48,12 +48,19 @@ class SlopeGroundParams:
     face_slope_deg: float = 70.0  # reclaim faces cut by loaders stand up to about this (common practice)
     face_attached: float = 0.5    # share of a steep patch's surroundings that must continue it
     max_top_area: float = 400.0   # m2; walled flat tops up to this size are objects, not ground
+    # m; how far from a wall a point may be held above the envelope by the ground beyond
+    # that wall (_behind_walls): a pile leaning on a wall is cut by the pad behind it out
+    # to its height above that pad over tan(max_slope), 3.8 m for 4.5 m at 50 degrees;
+    # bay and bunker walls stand up to about 6 m (common practice). 0: no wall rule.
+    wall_reach: float = 5.0
 
     def __post_init__(self) -> None:
         if not 0 < self.max_slope_deg < 90:
             raise PipelineError(f"max_slope_deg must be between 0 and 90, got {self.max_slope_deg}")
         if not 0 < self.face_slope_deg < 90:
             raise PipelineError(f"face_slope_deg must be between 0 and 90, got {self.face_slope_deg}")
+        if not self.wall_reach >= 0:
+            raise PipelineError(f"wall_reach must be 0 or more, got {self.wall_reach}")
         if not 0 <= self.face_attached <= 1:
             raise PipelineError(f"face_attached must be between 0 and 1, got {self.face_attached}")
         for name in ("tolerance", "cell", "window", "overhead_gap"):
@@ -130,11 +137,6 @@ class _EnvelopeGrid:
         return e
 
 
-#: How far from a wall (m) a surface point may be held above the envelope by the ground
-#: beyond that wall (:func:`_behind_walls`): a pile leaning on a wall is clipped by the
-#: pad behind it out to its height above that pad over tan(max_slope), 3.8 m for 4.5 m
-#: at 50 degrees; bay and bunker walls stand up to about 6 m (common practice).
-WALL_REACH_M = 5.0
 #: A point held up by a wall lies at least this far below the wall's top (m; well over
 #: ``tolerance`` and ranging noise): a flat top level with a wall's is the wall's top, or
 #: a roof level with its own sides'.
@@ -154,8 +156,9 @@ def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_
     it. The seeds are propagated again on paths that never enter a wall; a point outside
     the wall's cells, above the envelope by more than ``tolerance``, is surface after all
     when it lies on this second envelope (and on its nearest points' envelope, as before)
-    and at least :data:`WALL_CLEARANCE_M` below the top of a wall within
-    :data:`WALL_REACH_M`. A machine's roof is the top of its own sides and stays above the
+    and at least :data:`WALL_CLEARANCE_M` below the top of a wall within ``wall_reach``
+    (0: no such rule; the bare-earth pipeline ``terrain.json`` has none, as a bare-earth
+    filter must not keep a low roof beside a taller building). A machine's roof is the top of its own sides and stays above the
     envelope, the low edge of its side lies in its wall's cells; what else the second
     envelope lets through is left to the region rules, as any flat top is.
     """
@@ -163,7 +166,7 @@ def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_
 
     none = np.zeros(0, np.int64), np.zeros(0), np.zeros(len(z), bool)
     cand = np.isfinite(h) & (h > params.tolerance)
-    if not cand.any():
+    if params.wall_reach <= 0 or not cand.any():
         return none
     shape = (env.nrow, env.ncol)
     z64 = np.ascontiguousarray(z, dtype=np.float64)
@@ -172,7 +175,7 @@ def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_
     if not tall.any():
         return none
     in_wall = tall.ravel()[env.key]
-    reach = int(math.ceil(WALL_REACH_M / env.c))
+    reach = int(math.ceil(params.wall_reach / env.c))
     wall_top = ndimage.maximum_filter(np.where(tall, hi.reshape(shape), -np.inf), size=2 * reach + 1,
                                       mode="constant", cval=-np.inf).ravel()
     cand &= z64 <= wall_top[env.key] - WALL_CLEARANCE_M

@@ -55,7 +55,8 @@ Our own stages (not PDAL stages)
 ``inventory.slope_ground``
     The stockyard ground classifier of :mod:`inventory.survey.ground`; options
     max_slope_deg 50, tolerance 0.1, cell 0.25, window 12, overhead_gap 2.0,
-    face_slope_deg 70, face_attached 0.5, max_top_area 400, ignore ``"Classification[7:7],Classification[18:18]"``. Its ``inventory.`` prefix
+    face_slope_deg 70, face_attached 0.5, max_top_area 400, wall_reach 5 (0: no wall
+    rule), ignore ``"Classification[7:7],Classification[18:18]"``. Its ``inventory.`` prefix
     marks it as ours: with the PDAL engine the pipeline is cut around it, the PDAL stages
     run in PDAL and this one in our runner.
 """
@@ -414,7 +415,7 @@ def _slope_ground(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
     o = stage.options
     params = SlopeGroundParams(**{k: _as_float(o[k], k) for k in
                                   ("max_slope_deg", "tolerance", "cell", "window", "overhead_gap",
-                                   "face_slope_deg", "face_attached", "max_top_area")})
+                                   "face_slope_deg", "face_attached", "max_top_area", "wall_reach")})
     ignore = limits_mask(pts, _ranges(o["ignore"])) if o["ignore"] else np.zeros(len(pts), bool)
     cls, _ = slope_ground(pts["X"], pts["Y"], pts["Z"], pts["Classification"], ignore, params,
                           neighbours=ctx.plan_for(pts))
@@ -457,7 +458,7 @@ STAGES: dict[str, _Spec] = {
     "inventory.slope_ground": _Spec("filter", {"max_slope_deg": 50.0, "tolerance": 0.1, "cell": 0.25,
                                                "window": 12.0, "overhead_gap": 2.0,
                                                "face_slope_deg": 70.0, "face_attached": 0.5,
-                                               "max_top_area": 400.0,
+                                               "max_top_area": 400.0, "wall_reach": 5.0,
                                                "ignore": "Classification[7:7],Classification[18:18]"},
                                     _slope_ground),
     "inventory.voxel_thin": _Spec("filter", {"cell": 0.05, "max_points": 4}, _voxel_thin),
