@@ -7,6 +7,10 @@ Usage::
     python bench/bench_quality.py --seed 7           # the sample site drawn with another seed
                                                      # (same yard, other scan noise, dust and
                                                      # birds), written to a temporary folder
+    python bench/bench_quality.py --yard2            # the second invented yard (undulating
+                                                     # ground, other piles and machines;
+                                                     # inventory._demo.yard2), temporary folder
+    python bench/bench_quality.py --yard2 --seed 7   # that yard drawn with another seed
     python bench/bench_quality.py --workers 2        # the survey step on a Dask cluster
 
 For each month-end survey with truth labels (``truth/labels-<date>.npz``) it prints, from
@@ -35,8 +39,18 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--site", default=str(ROOT / "sample_site"), help="a site written by the demo (with truth)")
     ap.add_argument("--seed", type=int, default=None,
                     help="write the sample site with this seed to a temporary folder and measure that instead")
+    ap.add_argument("--yard2", action="store_true",
+                    help="write the second invented yard (inventory._demo.yard2) to a temporary folder and measure it")
     ap.add_argument("--workers", type=int, default=None, help="Dask worker processes for the survey step")
     args = ap.parse_args(argv)
+    if args.yard2:
+        from inventory._demo.yard2 import YARD2_SEED, write_yard2_site
+
+        seed = YARD2_SEED if args.seed is None else args.seed
+        with tempfile.TemporaryDirectory() as tmp:
+            site = write_yard2_site(Path(tmp) / "yard2", seed=seed)
+            print(f"second yard drawn with seed {seed}", flush=True)
+            return _measure(site, args.workers)
     if args.seed is not None:
         from inventory._demo.sample import write_sample_site
 
