@@ -231,7 +231,8 @@ class Yard:
         self.objects.append({"id": oid, "name": name, "kind": KIND_NAMES[kind]})
         for s in solids:
             if isinstance(s, Box):
-                self.solids.append(Box(s.center, s.half, s.rotation, kind=kind, object_id=oid, reflectivity=s.reflectivity))
+                self.solids.append(Box(s.center, s.half, s.rotation, kind=kind, object_id=oid,
+                                       reflectivity=s.reflectivity))
             else:
                 self.solids.append(Cylinder(s.center, s.radius, s.half_length, s.rotation, kind=kind, object_id=oid,
                                             reflectivity=s.reflectivity))
@@ -311,7 +312,8 @@ def yard_at(k: int, rng: np.random.Generator) -> Yard:
     barriers = []
     for yb in np.arange(100.0, 140.0, 4.0):
         zb = float(ground_height(96.0, yb + 1.9))
-        barriers.append(Box.standing(96.0, yb + 1.9, zb - 0.05, (3.8, 0.6, 0.85), 90.0, reflectivity=CONCRETE_REFLECTIVITY))
+        barriers.append(Box.standing(96.0, yb + 1.9, zb - 0.05, (3.8, 0.6, 0.85), 90.0,
+                                     reflectivity=CONCRETE_REFLECTIVITY))
     y.add("barrier line", KIND_STRUCTURE, barriers)
 
     # The retaining wall behind B1: top level, 3 m above the highest ground along it.
@@ -319,7 +321,8 @@ def yard_at(k: int, rng: np.random.Generator) -> Yard:
     g = ground_height(np.full_like(ys, _WALL_X), ys)
     bottom, top = float(g.min()) - 0.3, float(g.max()) + _WALL_H
     y.add("retaining wall", KIND_STRUCTURE, [
-        Box.standing(_WALL_X + _WALL_T / 2, (_WALL_Y0 + _WALL_Y1) / 2, bottom, (_WALL_T, _WALL_Y1 - _WALL_Y0, top - bottom),
+        Box.standing(_WALL_X + _WALL_T / 2, (_WALL_Y0 + _WALL_Y1) / 2, bottom,
+                     (_WALL_T, _WALL_Y1 - _WALL_Y0, top - bottom),
                      0.0, reflectivity=CONCRETE_REFLECTIVITY),
     ])
 
@@ -468,8 +471,8 @@ def _build(root: Path, seed: int) -> None:
             files[name] = {"station_id": st.station_id, "points": int(len(res)), "georeferenced": geo,
                            "origin_site": [st.x + SITE_ORIGIN[0], st.y + SITE_ORIGIN[1], st.z],
                            "counts": {KIND_NAMES[c]: int(n) for c, n in enumerate(counts)}}
-            pose = [None] * 6 if geo else [f"{st.x + SITE_ORIGIN[0]:.3f}", f"{st.y + SITE_ORIGIN[1]:.3f}", f"{st.z:.3f}",
-                                           f"{st.roll_deg:g}", f"{st.pitch_deg:g}", f"{st.yaw_deg:g}"]
+            pose = [None] * 6 if geo else [f"{st.x + SITE_ORIGIN[0]:.3f}", f"{st.y + SITE_ORIGIN[1]:.3f}",
+                                           f"{st.z:.3f}", f"{st.roll_deg:g}", f"{st.pitch_deg:g}", f"{st.yaw_deg:g}"]
             rows.append([name, st.station_id, _iso(start, tz), *pose])
         _csv(folder / "stations.csv", ["file", "station_id", "time", "x", "y", "z", "roll_deg", "pitch_deg", "yaw_deg"],
              rows)
@@ -481,7 +484,8 @@ def _build(root: Path, seed: int) -> None:
             shape = yard.shapes[p.pile_id]
             v = shape.volume()
             piles[p.pile_id] = {"volume_m3": round(v, 4), "volume_fine_m3": round(float(vf), 4),
-                                "tonnes": round(v * MATERIALS[p.material].density_t_m3, 4), "shape": _shape_truth(shape)}
+                                "tonnes": round(v * MATERIALS[p.material].density_t_m3, 4),
+                                "shape": _shape_truth(shape)}
         surveys.append({
             "date": spec.date, "instant": _iso(start, tz), "piles": piles, "files": files,
             "counts": {KIND_NAMES[c]: int(n) for c, n in enumerate(totals)},
