@@ -137,7 +137,7 @@ def test_yard2_vehicles_out_as_on_the_sample_site(yard2_measured):
 
 # Bars each pile meets today (measured: CHANGELOG.md). R1 is dark asphalt planings that the
 # scanner reaches only to about 33 m: its far flanks are interpolated, hence the loose bar.
-_HOLDS = {"W1": 0.05, "K1": 0.03, "C3": 0.07, "R1": 0.20}
+_HOLDS = {"W1": 0.05, "K1": 0.03, "C3": 0.07, "R1": 0.25}
 
 
 @pytest.mark.slow
