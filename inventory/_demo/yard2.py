@@ -228,7 +228,7 @@ class Yard:
 
     def add(self, name: str, kind: int, solids: list) -> None:
         oid = len(self.objects) + 1
-        self.objects.append({"id": oid, "name": name, "kind": KIND_NAMES[kind]})
+        self.objects.append({"id": oid, "name": name, "kind": kind})
         for s in solids:
             if isinstance(s, Box):
                 self.solids.append(Box(s.center, s.half, s.rotation, kind=kind, object_id=oid,
