@@ -125,6 +125,14 @@ def test_yard2_classification_and_surface_hold_their_bars(yard2_measured):
         assert q.pile_dropped <= 0.002, date
         assert q.surface_rms_m <= 0.025, date
         assert q.cells >= 50_000, date
+        # the yard has vehicles and structures but no machines: the vehicles' own counts
+        # make up the objects-out share
+        vehicles = [o for o in q.objects if o.kind == "vehicle"]
+        assert {o.name for o in vehicles} == {"haul truck", "dozer", "car"}
+        assert 1 - sum(o.surface for o in vehicles) / sum(o.points for o in vehicles) == pytest.approx(q.objects_out)
+        # the dozer standing on F1's top: 0 of about 550 points surface today
+        dozer = next(o for o in vehicles if o.name == "dozer")
+        assert dozer.points >= 300 and dozer.surface <= 0.01 * dozer.points, date
 
 
 @pytest.mark.slow
