@@ -7,7 +7,13 @@ Usage::
     python bench/bench_quality.py --seed 7           # the sample site drawn with another seed
                                                      # (same yard, other scan noise, dust and
                                                      # birds), written to a temporary folder
+    python bench/bench_quality.py --yard2            # the second invented yard (undulating
+                                                     # ground, other piles and machines;
+                                                     # inventory._demo.yard2), temporary folder
+    python bench/bench_quality.py --yard2 --seed 7   # that yard drawn with another seed
     python bench/bench_quality.py --workers 2        # the survey step on a Dask cluster
+    python bench/bench_quality.py --objects          # also each machine, vehicle and
+                                                     # structure: points classed surface
 
 For each month-end survey with truth labels (``truth/labels-<date>.npz``) it prints, from
 :mod:`inventory._demo.quality`: the share of machine and vehicle points kept out of the
@@ -35,19 +41,31 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--site", default=str(ROOT / "sample_site"), help="a site written by the demo (with truth)")
     ap.add_argument("--seed", type=int, default=None,
                     help="write the sample site with this seed to a temporary folder and measure that instead")
+    ap.add_argument("--yard2", action="store_true",
+                    help="write the second invented yard (inventory._demo.yard2) to a temporary folder and measure it")
+    ap.add_argument("--objects", action="store_true",
+                    help="also print, per machine, vehicle and structure, how many of its points were classed surface")
     ap.add_argument("--workers", type=int, default=None, help="Dask worker processes for the survey step")
     args = ap.parse_args(argv)
+    if args.yard2:
+        from inventory._demo.yard2 import YARD2_SEED, write_yard2_site
+
+        seed = YARD2_SEED if args.seed is None else args.seed
+        with tempfile.TemporaryDirectory() as tmp:
+            site = write_yard2_site(Path(tmp) / "yard2", seed=seed)
+            print(f"second yard drawn with seed {seed}", flush=True)
+            return _measure(site, args.workers, args.objects)
     if args.seed is not None:
         from inventory._demo.sample import write_sample_site
 
         with tempfile.TemporaryDirectory() as tmp:
             site = write_sample_site(Path(tmp) / "site", seed=args.seed)
             print(f"sample site drawn with seed {args.seed}", flush=True)
-            return _measure(site, args.workers)
-    return _measure(Path(args.site), args.workers)
+            return _measure(site, args.workers, args.objects)
+    return _measure(Path(args.site), args.workers, args.objects)
 
 
-def _measure(root: Path, workers: int | None) -> int:
+def _measure(root: Path, workers: int | None, objects: bool = False) -> int:
     from inventory._demo.quality import survey_quality, truth_of
     from inventory.site.load import load_site
     from inventory.survey.measure import measure_survey
@@ -67,7 +85,10 @@ def _measure(root: Path, workers: int | None) -> int:
             result = measure_survey(site, date, out_dir=tmp, workers=workers)
             dt = time.perf_counter() - t0
             print(f"survey {date} ({result.points_read:,} points, survey step {dt:.1f} s)", flush=True)
-            print(f"  {survey_quality(site, date, result)}", flush=True)
+            quality = survey_quality(site, date, result)
+            print(f"  {quality}", flush=True)
+            for o in quality.objects if objects else ():
+                print(f"    {o}", flush=True)
             run = report_volumes(root, date, out=Path(tmp) / "volumes", workers=workers)
         for _, row in run.table.iterrows():
             true = true_volumes.get(date, {}).get(row["pile_id"])

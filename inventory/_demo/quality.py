@@ -11,7 +11,7 @@ truth.
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +19,7 @@ import numpy as np
 
 from inventory.model.classes import GROUND
 
-__all__ = ["SurveyQuality", "sample_labels", "surface_rms", "survey_quality", "truth_of"]
+__all__ = ["ObjectQuality", "SurveyQuality", "sample_labels", "surface_rms", "survey_quality", "truth_of"]
 
 #: Code of a point dropped by a range gate (not in the classified cloud).
 DROPPED = 255
@@ -37,6 +37,14 @@ def sample_labels(site: Any, date: str, classified_path: "str | Path") -> tuple[
     Points are matched file by file: each sample file has its own point source id, and a
     point is found again within 2 mm in 3D after its station pose is applied.
     """
+    labels, classes = _labelled(site, date, classified_path, ("kind",))
+    return labels["kind"], classes
+
+
+def _labelled(site: Any, date: str, classified_path: "str | Path",
+              fields: tuple[str, ...]) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """The truth arrays ``fields`` (``kind``, ``pile``, ``object``) of every input point of
+    survey ``date`` and the class each got, as in :func:`sample_labels`."""
     import laspy
     from scipy.spatial import cKDTree
 
@@ -51,15 +59,19 @@ def sample_labels(site: Any, date: str, classified_path: "str | Path") -> tuple[
     out_xyz = np.column_stack([las.x, las.y, las.z])
     out_src = np.asarray(las.point_source_id)
     out_cls = np.asarray(las.classification)
-    kinds, classes = [], []
+    labels: dict[str, list] = {f: [] for f in fields}
+    classes = []
     for path in ref.files:
         pts, _ = read_cloud(path, default_crs=site.config.survey.default_crs)
         pose = poses.get(path.name)
         if pose is not None:
             pts["X"], pts["Y"], pts["Z"], _ = pose.apply(pts["X"], pts["Y"], pts["Z"])
-        kind = npz[f"{ids.get(path.name, path.stem)}_kind"]
-        if len(kind) != len(pts):
-            raise ValueError(f"{path}: {len(pts)} points, truth labels {len(kind)}")
+        sid = ids.get(path.name, path.stem)
+        for f in fields:
+            arr = npz[f"{sid}_{f}"]
+            if len(arr) != len(pts):
+                raise ValueError(f"{path}: {len(pts)} points, truth labels {len(arr)}")
+            labels[f].append(arr)
         mine = np.isin(out_src, np.unique(pts["PointSourceId"]))
         got = np.full(len(pts), DROPPED, np.uint8)
         if mine.any():
@@ -67,9 +79,8 @@ def sample_labels(site: Any, date: str, classified_path: "str | Path") -> tuple[
                                                                                  distance_upper_bound=0.002)
             ok = np.isfinite(d)
             got[j[ok]] = out_cls[mine][ok]
-        kinds.append(kind)
         classes.append(got)
-    return np.concatenate(kinds), np.concatenate(classes)
+    return {f: np.concatenate(v) for f, v in labels.items()}, np.concatenate(classes)
 
 
 def surface_rms(site_root: "str | Path", date: str, surface: Any) -> tuple[float, int, int]:
@@ -105,6 +116,21 @@ def surface_rms(site_root: "str | Path", date: str, surface: Any) -> tuple[float
 
 
 @dataclass
+class ObjectQuality:
+    """One solid object of a survey (a machine, vehicle or structure of the truth's
+    ``objects``): its points and how many of them were classed surface."""
+
+    name: str
+    kind: str
+    points: int
+    surface: int
+
+    def __str__(self) -> str:
+        share = 100 * self.surface / self.points if self.points else 0.0
+        return f"{self.name} ({self.kind}): {self.surface} of {self.points} points classed surface ({share:.1f} %)"
+
+
+@dataclass
 class SurveyQuality:
     """Classification and surface of one sample survey against the truth."""
 
@@ -114,6 +140,7 @@ class SurveyQuality:
     surface_rms_m: float
     cells: int
     cells_left_out: int
+    objects: list[ObjectQuality] = field(default_factory=list)  # per solid object
 
     def __str__(self) -> str:
         return (f"{self.date}: machines and vehicles out of the surface class {100 * self.objects_out:.2f} %, "
@@ -127,9 +154,16 @@ def survey_quality(site: Any, date: str, result: Any) -> SurveyQuality:
     (with its classified cloud written) of the sample site."""
     truth = truth_of(site.root)
     codes = {v: int(k) for k, v in truth["label_codes"]["kind"].items()}
-    kind, cls = sample_labels(site, date, result.classified_path)
+    labels, cls = _labelled(site, date, result.classified_path, ("kind", "object"))
+    kind, oid = labels["kind"], labels["object"]
     objects = np.isin(kind, [codes["machine"], codes["vehicle"]])
     pile = kind == codes["pile"]
     rms, cells, left = surface_rms(site.root, date, result.surface)
+    solid = np.isin(kind, [codes["structure"], codes["machine"], codes["vehicle"]])
+    per_object = []
+    for o in next((s.get("objects", []) for s in truth["surveys"] if s["date"] == date), []):
+        mine = solid & (oid == o["id"])
+        per_object.append(ObjectQuality(o["name"], truth["label_codes"]["kind"][str(o["kind"])], int(mine.sum()),
+                                        int((cls[mine] == GROUND).sum())))
     return SurveyQuality(date, float((cls[objects] != GROUND).mean()), float((cls[pile] != GROUND).mean()),
-                         rms, cells, left)
+                         rms, cells, left, per_object)

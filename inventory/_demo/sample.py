@@ -168,13 +168,13 @@ def _write_npz(path: Path, arrays: dict[str, np.ndarray]) -> None:
             zf.writestr(info, buf.getvalue())
 
 
-def _write_tif(path: Path, z: np.ndarray, west: float, north: float, cell: float) -> None:
+def _write_tif(path: Path, z: np.ndarray, west: float, north: float, cell: float, crs: str = SITE_CRS) -> None:
     import rasterio
     from affine import Affine
 
     path.parent.mkdir(parents=True, exist_ok=True)
     profile = dict(
-        driver="GTiff", width=z.shape[1], height=z.shape[0], count=1, dtype="float32", crs=SITE_CRS,
+        driver="GTiff", width=z.shape[1], height=z.shape[0], count=1, dtype="float32", crs=crs,
         transform=Affine(cell, 0.0, west, 0.0, -cell, north), nodata=-9999.0, compress="deflate", predictor=3,
         tiled=True, blockxsize=256, blockysize=256,
     )
@@ -184,7 +184,8 @@ def _write_tif(path: Path, z: np.ndarray, west: float, north: float, cell: float
 
 
 def _write_laz(path: Path, xyz: np.ndarray, res: ScanResult, gps0: float, station_no: int,
-               georeferenced: bool, survey_day: date) -> None:
+               georeferenced: bool, survey_day: date, crs: str = SITE_CRS,
+               origin: tuple[float, float, float] = SITE_ORIGIN) -> None:
     import laspy
 
     header = laspy.LasHeader(point_format=6, version="1.4")
@@ -194,10 +195,10 @@ def _write_laz(path: Path, xyz: np.ndarray, res: ScanResult, gps0: float, statio
     header.global_encoding.gps_time_type = laspy.header.GpsTimeType.STANDARD
     header.scales = np.array([0.001, 0.001, 0.001])
     if georeferenced:
-        header.offsets = np.array([math.floor(SITE_ORIGIN[0] / 1000) * 1000.0, math.floor(SITE_ORIGIN[1] / 1000) * 1000.0, 0.0])
+        header.offsets = np.array([math.floor(origin[0] / 1000) * 1000.0, math.floor(origin[1] / 1000) * 1000.0, 0.0])
         from pyproj import CRS
 
-        header.add_crs(CRS.from_user_input(SITE_CRS))
+        header.add_crs(CRS.from_user_input(crs))
     else:
         header.offsets = np.array([0.0, 0.0, 0.0])
     las = laspy.LasData(header)
@@ -225,20 +226,29 @@ def _fine_integrals(terminal: Terminal) -> tuple[np.ndarray, dict[str, float]]:
 
     Midpoint rule on cells ten times finer than the tool's default cell (the issue's bar).
     """
-    west, north, nrows, ncols = _truth_grid()
+    zmean, vol = _cell_means(terminal.thicknesses, pad_height, len(PILES), *_truth_grid())
+    return zmean, {p.pile_id: float(v) for p, v in zip(PILES, vol)}
+
+
+def _cell_means(thicknesses, ground, n_piles: int, west: float, north: float, nrows: int,
+                ncols: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cell-mean true surface ``ground + sum(thicknesses)`` on a tool grid of ``TOOL_CELL_M``
+    cells (outer corner ``west``, ``north``) and the volume of each of ``n_piles`` piles, by the
+    midpoint rule on ``FINE_CELL_M`` sub-cells; ``thicknesses(x, y)`` gives shape
+    ``(n_piles, *x.shape)``."""
     zmean = np.empty((nrows, ncols))
-    vol = np.zeros(len(PILES))
+    vol = np.zeros(n_piles)
     xs = west + (np.arange(ncols * _SUB) + 0.5) * FINE_CELL_M
     rows_per = 10
     for r0 in range(0, nrows, rows_per):
         r1 = min(r0 + rows_per, nrows)
         ys = north - (np.arange(r0 * _SUB, r1 * _SUB) + 0.5) * FINE_CELL_M
         X, Y = np.meshgrid(xs, ys)
-        t = terminal.thicknesses(X, Y)
+        t = thicknesses(X, Y)
         vol += t.sum(axis=(1, 2)) * FINE_CELL_M**2
-        z = pad_height(X, Y) + t.sum(axis=0)
+        z = ground(X, Y) + t.sum(axis=0)
         zmean[r0:r1] = z.reshape(r1 - r0, _SUB, ncols, _SUB).mean(axis=(1, 3))
-    return zmean, {p.pile_id: float(v) for p, v in zip(PILES, vol)}
+    return zmean, vol
 
 
 def _shape_record(shape) -> dict:
@@ -276,12 +286,6 @@ def _footprints(terminals: list[Terminal]):
     out["L1"] = out["L1"].intersection(box(-1e3, -1e3, 100.0, 1e3))
     out["L2"] = out["L2"].intersection(box(100.0, -1e3, 1e3, 1e3))
     return out
-
-
-def _to_site(geom):
-    from shapely import affinity
-
-    return affinity.translate(geom, SITE_ORIGIN[0], SITE_ORIGIN[1])
 
 
 def _round_geom(geom, decimals: int = 3):
@@ -600,15 +604,19 @@ def _write_site_toml(root: Path) -> None:
     _write_text(root / "site.toml", "# The invented demo site written by `inventory sample`.\n" + "\n".join(lines) + "\n")
 
 
-def _write_piles(path: Path, footprints: dict) -> None:
+def _write_piles(path: Path, footprints: dict, piles=PILES, crs: str = SITE_CRS,
+                 origin: tuple[float, float, float] = SITE_ORIGIN) -> None:
+    """``piles.gpkg``: one row per pile of ``piles`` (``pile_id``, ``material``, ``base``) with
+    its local footprint moved by ``origin`` into ``crs``."""
     import geopandas as gpd
     import pyogrio
+    from shapely import affinity
 
-    geoms = [_round_geom(_to_site(footprints[p.pile_id])) for p in PILES]
+    geoms = [_round_geom(affinity.translate(footprints[p.pile_id], origin[0], origin[1])) for p in piles]
     frame = gpd.GeoDataFrame(
-        {"pile_id": [p.pile_id for p in PILES], "material": [p.material for p in PILES],
-         "base": [p.base for p in PILES], "density_t_m3": [None] * len(PILES)},
-        geometry=geoms, crs=SITE_CRS,
+        {"pile_id": [p.pile_id for p in piles], "material": [p.material for p in piles],
+         "base": [p.base for p in piles], "density_t_m3": [None] * len(piles)},
+        geometry=geoms, crs=crs,
     )
     frame["density_t_m3"] = frame["density_t_m3"].astype("float64")
     old = pyogrio.get_gdal_config_option("OGR_CURRENT_DATE")

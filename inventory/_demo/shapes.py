@@ -3,8 +3,10 @@
 Every shape gives its thickness ``t(x, y) >= 0`` above the pad it stands on (a pile on a gently
 sloping pad is the same solid as on a level one, sheared by the pad; its volume above the pad is
 the integral of ``t``). The volume formulas are the handbook ones for cone, windrow with conical
-ends, a windrow whose end was cut by a steep reclaim face, and a pile pushed into a three-walled
-bay. Each formula is checked in the tests against midpoint integration of ``t`` on a grid at
+ends, a windrow whose end was cut by a steep reclaim face, a pile pushed into a three-walled
+bay, and a flat-topped pile on a rounded-rectangle plan (whole, or halved by a retaining wall);
+a pile of irregular plan (overlapping cones, :class:`ConeGroup`) has no closed formula and is
+integrated numerically. Each formula is checked in the tests against midpoint integration of ``t`` on a grid at
 least ten times finer than the tool's default cell.
 
 Coordinates are local metres of the demo site (x east, y north).
@@ -17,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Cone", "Windrow", "BayPile", "Shape"]
+__all__ = ["Cone", "Windrow", "BayPile", "ConeGroup", "Plateau", "Shape"]
 
 
 def _tan(deg: float) -> float:
@@ -178,4 +180,124 @@ class BayPile:
         return box(*self.bbox())
 
 
-Shape = Cone | Windrow | BayPile
+@dataclass(frozen=True)
+class ConeGroup:
+    """A pile of irregular plan: overlapping cones of one material, the surface their maximum.
+
+    What a loader leaves after tipping several heaps side by side. The volume has no closed
+    form (the cones' intersections are hyperbolic curves); :meth:`volume` integrates the
+    thickness by the midpoint rule on a ``step`` metre grid over the bounding box.
+    """
+
+    cones: tuple[Cone, ...]
+
+    @property
+    def repose_deg(self) -> float:
+        return self.cones[0].repose_deg
+
+    @property
+    def height(self) -> float:
+        return max(c.height for c in self.cones)
+
+    def thickness(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        t = self.cones[0].thickness(x, y)
+        for c in self.cones[1:]:
+            t = np.maximum(t, c.thickness(x, y))
+        return t
+
+    def volume(self, step: float = 0.01) -> float:
+        x0, y0, x1, y1 = self.bbox()
+        xs = x0 + (np.arange(int(math.ceil((x1 - x0) / step))) + 0.5) * step
+        total = 0.0
+        for y in y0 + (np.arange(int(math.ceil((y1 - y0) / step))) + 0.5) * step:
+            total += float(self.thickness(xs, np.full_like(xs, y)).sum())
+        return total * step * step
+
+    def bbox(self) -> tuple[float, float, float, float]:
+        b = np.array([c.bbox() for c in self.cones])
+        return (float(b[:, 0].min()), float(b[:, 1].min()), float(b[:, 2].max()), float(b[:, 3].max()))
+
+    def outline(self):
+        from shapely.ops import unary_union
+
+        return unary_union([c.outline() for c in self.cones])
+
+
+@dataclass(frozen=True)
+class Plateau:
+    """A flat-topped pile on a rounded-rectangle plan, optionally halved by a retaining wall.
+
+    The core rectangle (``length`` along ``azimuth_deg`` by ``breadth``, centred on
+    ``(cx, cy)``) is grown by ``reach`` metres to the toe; the sides rise at the angle of repose
+    from the toe and are cut off at ``top`` metres. With ``k = tan(repose)`` and ``s`` the
+    distance outside the core, the thickness is ``min(top, k (reach - s))``; the area within
+    ``s`` of a rectangle is ``L B + 2 (L + B) s + pi s^2`` (Steiner's formula for a convex
+    set), so integrating layer by layer from ``s1 = reach - top / k`` to ``reach``::
+
+        V = k [L B (reach - s1) + (L + B) (reach^2 - s1^2) + pi (reach^3 - s1^3) / 3]
+
+    ``wall=True`` keeps only the left half (``n >= 0`` across the long axis, looking along the
+    azimuth): a pile pushed against a wall on the long axis, of volume ``V / 2``.
+    """
+
+    cx: float
+    cy: float
+    azimuth_deg: float
+    length: float
+    breadth: float
+    reach: float
+    top: float
+    repose_deg: float
+    wall: bool = False
+
+    @property
+    def height(self) -> float:
+        return self.top
+
+    def _local(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        a = math.radians(self.azimuth_deg)
+        dx = np.asarray(x) - self.cx
+        dy = np.asarray(y) - self.cy
+        return dx * math.cos(a) + dy * math.sin(a), -dx * math.sin(a) + dy * math.cos(a)
+
+    def thickness(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        s, n = self._local(x, y)
+        ds = np.clip(np.abs(s) - self.length / 2.0, 0.0, None)
+        dn = np.clip(np.abs(n) - self.breadth / 2.0, 0.0, None)
+        t = np.clip(np.minimum(self.top, _tan(self.repose_deg) * (self.reach - np.hypot(ds, dn))), 0.0, None)
+        return np.where(n >= 0.0, t, 0.0) if self.wall else t
+
+    def volume(self) -> float:
+        k = _tan(self.repose_deg)
+        r, s1 = self.reach, self.reach - self.top / k
+        if s1 < 0.0:
+            raise ValueError("plateau too low a reach for its top height")
+        L, B = self.length, self.breadth
+        v = k * (L * B * (r - s1) + (L + B) * (r**2 - s1**2) + math.pi * (r**3 - s1**3) / 3.0)
+        return v / 2.0 if self.wall else v
+
+    def _corners(self) -> np.ndarray:
+        a = math.radians(self.azimuth_deg)
+        u = np.array([math.cos(a), math.sin(a)])
+        v = np.array([-math.sin(a), math.cos(a)])
+        hs, hn = self.length / 2.0 + self.reach, self.breadth / 2.0 + self.reach
+        n0 = 0.0 if self.wall else -hn
+        return np.array([[self.cx, self.cy] + s * u + n * v for s, n in ((-hs, n0), (hs, n0), (hs, hn), (-hs, hn))])
+
+    def bbox(self) -> tuple[float, float, float, float]:
+        c = self._corners()
+        return (float(c[:, 0].min()), float(c[:, 1].min()), float(c[:, 0].max()), float(c[:, 1].max()))
+
+    def outline(self):
+        from shapely import affinity
+        from shapely.geometry import Polygon, box
+
+        core = box(-self.length / 2.0, -self.breadth / 2.0, self.length / 2.0, self.breadth / 2.0)
+        shape = core.buffer(self.reach, quad_segs=64)
+        if self.wall:
+            shape = shape.intersection(box(-1e4, 0.0, 1e4, 1e4))
+        shape = affinity.rotate(shape, self.azimuth_deg, origin=(0, 0))
+        return affinity.translate(shape, self.cx, self.cy) if isinstance(shape, Polygon) else shape
+
+
+Shape = Cone | Windrow | BayPile | ConeGroup | Plateau
