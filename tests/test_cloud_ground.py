@@ -270,3 +270,28 @@ def test_pile_leaning_on_a_wall_is_surface_with_the_pad_behind_the_wall_scanned(
     assert (off[near] == GROUND).mean() < 0.3
     with pytest.raises(PipelineError, match="wall_reach"):
         SlopeGroundParams(wall_reach=-1.0)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_low_side_of_a_car_over_hidden_ground_is_not_surface(seed):
+    # A car (4.5 m x 1.8 m, its side seen from 0.25 m up to 1.5 m, the pad under it and
+    # behind it hidden) on a far, sparse pad (rows 0.4 m apart, as from 40 m): the pad in
+    # front is 0.3-0.5 m from the side's lowest row, so the 50 degree envelope lets that
+    # row through (21-25 of its 23 points were surface before). The side rises over it, the
+    # pad in front is lower and no surface rises beside it: a face's foot, not the ground.
+    rng = np.random.default_rng(seed)
+    gx, gy = np.meshgrid(np.arange(0, 20, 0.25), np.arange(0, 20, 0.4))
+    gx, gy = gx.ravel() + rng.normal(0, 0.02, gx.size), gy.ravel() + rng.normal(0, 0.02, gy.size)
+    hidden = (gx > 7.6) & (gx < 12.4) & (gy > 8.9) & (gy < 12.6)
+    gx, gy = gx[~hidden], gy[~hidden]
+    fx, fz = (a.ravel() for a in np.meshgrid(np.arange(7.75, 12.25, 0.2), np.arange(0.25, 1.5, 0.18)))
+    ends = np.arange(0.25, 1.5, 0.18)
+    rx, ry = rng.random(120) * 4.5 + 7.75, rng.random(120) * 1.8 + 9.1
+    cx = np.r_[fx, np.full(len(ends), 7.75), np.full(len(ends), 12.25), rx]
+    cy = np.r_[np.full(len(fx), 9.1), np.full(2 * len(ends), 9.5), ry]
+    cz = np.r_[fz, ends, ends, np.full(120, 1.5)]
+    X, Y = np.r_[gx, cx], np.r_[gy, cy]
+    Z = 0.01 * X + np.r_[np.zeros(len(gx)), cz] + rng.normal(0, 0.005, len(X))
+    cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
+    assert (cls[len(gx):] != GROUND).all()
+    assert (cls[:len(gx)] == GROUND).all()

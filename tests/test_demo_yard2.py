@@ -118,10 +118,11 @@ def _holds(measured, date, pid) -> bool:
 
 @pytest.mark.slow
 def test_yard2_classification_and_surface_hold_their_bars(yard2_measured):
-    # measured (seeds default, 7, 11): objects out 95.8-96.6 %, pile points dropped
-    # 0.02-0.06 %, RMS 1.7-2.2 cm (CHANGELOG.md)
+    # measured (seeds default, 7): objects out 98.0-98.9 % (95.8-96.6 % before the rule on
+    # the feet of vehicles' sides), pile points dropped 0.02-0.06 %, RMS 1.6-1.9 cm
+    # (CHANGELOG.md)
     for date, (q, _, _) in yard2_measured.items():
-        assert q.objects_out >= 0.94, date
+        assert q.objects_out >= 0.975, date
         assert q.pile_dropped <= 0.002, date
         assert q.surface_rms_m <= 0.025, date
         assert q.cells >= 50_000, date
@@ -136,8 +137,8 @@ def test_yard2_classification_and_surface_hold_their_bars(yard2_measured):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="the low sides of the truck (0.35 m) and the car (0.2-0.6 m) "
-                   "pass the slope envelope; see CHANGELOG.md")
+@pytest.mark.xfail(strict=True, reason="the truck's chassis edge (0.35 m) over ground no station saw "
+                   "within 1 m, and some of the car's lowest returns, pass the slope envelope; see CHANGELOG.md")
 def test_yard2_vehicles_out_as_on_the_sample_site(yard2_measured):
     for date, (q, _, _) in yard2_measured.items():
         assert q.objects_out >= 0.99, date

@@ -43,8 +43,9 @@ def sample_labels(site: Any, date: str, classified_path: "str | Path") -> tuple[
 
 def _labelled(site: Any, date: str, classified_path: "str | Path",
               fields: tuple[str, ...]) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """The truth arrays ``fields`` (``kind``, ``pile``, ``object``) of every input point of
-    survey ``date`` and the class each got, as in :func:`sample_labels`."""
+    """The truth arrays ``fields`` (``kind``, ``pile``, ``object``; ``xyz``: the points'
+    coordinates in the site CRS) of every input point of survey ``date`` and the class each
+    got, as in :func:`sample_labels`."""
     import laspy
     from scipy.spatial import cKDTree
 
@@ -61,13 +62,18 @@ def _labelled(site: Any, date: str, classified_path: "str | Path",
     out_cls = np.asarray(las.classification)
     labels: dict[str, list] = {f: [] for f in fields}
     classes = []
+    xyz = []
     for path in ref.files:
         pts, _ = read_cloud(path, default_crs=site.config.survey.default_crs)
         pose = poses.get(path.name)
         if pose is not None:
             pts["X"], pts["Y"], pts["Z"], _ = pose.apply(pts["X"], pts["Y"], pts["Z"])
         sid = ids.get(path.name, path.stem)
+        if "xyz" in fields:
+            xyz.append(np.column_stack([pts["X"], pts["Y"], pts["Z"]]))
         for f in fields:
+            if f == "xyz":
+                continue
             arr = npz[f"{sid}_{f}"]
             if len(arr) != len(pts):
                 raise ValueError(f"{path}: {len(pts)} points, truth labels {len(arr)}")
@@ -80,7 +86,10 @@ def _labelled(site: Any, date: str, classified_path: "str | Path",
             ok = np.isfinite(d)
             got[j[ok]] = out_cls[mine][ok]
         classes.append(got)
-    return {f: np.concatenate(v) for f, v in labels.items()}, np.concatenate(classes)
+    out = {f: np.concatenate(v) for f, v in labels.items() if f != "xyz"}
+    if "xyz" in fields:
+        out["xyz"] = np.concatenate(xyz)
+    return out, np.concatenate(classes)
 
 
 def surface_rms(site_root: "str | Path", date: str, surface: Any) -> tuple[float, int, int]:
@@ -115,6 +124,12 @@ def surface_rms(site_root: "str | Path", date: str, surface: Any) -> tuple[float
     return rms, int(covered.sum()), left_out
 
 
+#: Height above the true surface (m) within which a machine's or vehicle's return classed
+#: surface is counted "at the ground" in :class:`SurveyQuality`: the classifier's
+#: ``tolerance`` (0.1 m) and a margin for the true raster's 0.5 m cells on a gentle slope.
+AT_GROUND_M = 0.15
+
+
 @dataclass
 class ObjectQuality:
     """One solid object of a survey (a machine, vehicle or structure of the truth's
@@ -141,9 +156,15 @@ class SurveyQuality:
     cells: int
     cells_left_out: int
     objects: list[ObjectQuality] = field(default_factory=list)  # per solid object
+    #: share of machine and vehicle points classed surface that lie within
+    #: :data:`AT_GROUND_M` of the true surface (the foot of a face: no height can tell them
+    #: from the ground, and they do not lift the surface)
+    objects_at_ground: float = float("nan")
 
     def __str__(self) -> str:
-        return (f"{self.date}: machines and vehicles out of the surface class {100 * self.objects_out:.2f} %, "
+        return (f"{self.date}: machines and vehicles out of the surface class {100 * self.objects_out:.2f} % "
+                f"({100 * self.objects_at_ground:.0f} % of those in it within {100 * AT_GROUND_M:.0f} cm of the "
+                f"true surface), "
                 f"pile points not surface {100 * self.pile_dropped:.3f} %, surface RMS "
                 f"{100 * self.surface_rms_m:.2f} cm on {self.cells:,} cells ({self.cells_left_out} beside true "
                 f"steps left out)")
@@ -154,7 +175,7 @@ def survey_quality(site: Any, date: str, result: Any) -> SurveyQuality:
     (with its classified cloud written) of the sample site."""
     truth = truth_of(site.root)
     codes = {v: int(k) for k, v in truth["label_codes"]["kind"].items()}
-    labels, cls = _labelled(site, date, result.classified_path, ("kind", "object"))
+    labels, cls = _labelled(site, date, result.classified_path, ("kind", "object", "xyz"))
     kind, oid = labels["kind"], labels["object"]
     objects = np.isin(kind, [codes["machine"], codes["vehicle"]])
     pile = kind == codes["pile"]
@@ -165,5 +186,16 @@ def survey_quality(site: Any, date: str, result: Any) -> SurveyQuality:
         mine = solid & (oid == o["id"])
         per_object.append(ObjectQuality(o["name"], truth["label_codes"]["kind"][str(o["kind"])], int(mine.sum()),
                                         int((cls[mine] == GROUND).sum())))
+    leaked = objects & (cls == GROUND)
+    at_ground = float("nan")
+    if leaked.any():
+        from inventory.io.rasters import read_raster
+
+        true_z, tg = read_raster(Path(site.root) / "truth" / f"surface-{date}.tif")
+        p = labels["xyz"][leaked]
+        r, c, inside = tg.index(p[:, 0], p[:, 1])
+        above = np.full(len(p), np.inf)
+        above[inside] = p[inside, 2] - true_z[r[inside], c[inside]]
+        at_ground = float((above <= AT_GROUND_M).mean())
     return SurveyQuality(date, float((cls[objects] != GROUND).mean()), float((cls[pile] != GROUND).mean()),
-                         rms, cells, left, per_object)
+                         rms, cells, left, per_object, at_ground)

@@ -752,6 +752,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     cls[rescued[judged] & ~ground] = LOW_NOISE
     out[judged] = cls
     out[_outvoted(z, out, plan, params)] = UNCLASSIFIED
+    out[_face_feet(x, y, z, out, plan, params)] = UNCLASSIFIED
     return out, height
 
 
@@ -783,6 +784,102 @@ def _outvoted(z: np.ndarray, cls: np.ndarray, plan: "_PlanNeighbours", params: S
     rows = np.flatnonzero(cls == GROUND)
     out[rows[outvoted(plan.nb, rows, z, cls, GROUND, _OBJECTS, params.tolerance, OUTVOTED_LEAST,
                       OUTVOTED_RATIO)]] = True
+    return out
+
+
+#: Plan distances (m) of :func:`_face_feet`: objects' returns over a point within the
+#: first, surface below or above it within the second.
+FACE_OVER_M = 0.5
+FACE_AROUND_M = 1.0
+#: Objects' returns over a point that make it a face's foot (:func:`_face_feet`) ...
+FACE_OVER_LEAST = 2
+#: ... and the most cells around it (within FACE_AROUND_M) with surface higher than it.
+FACE_HIGHER_MOST = 2
+#: Objects' returns over a point at most this far (m, mean plan offset) are its own face's.
+FACE_PLANE_M = 0.1
+
+
+def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, plan: "_PlanNeighbours",
+               params: SlopeGroundParams) -> np.ndarray:
+    """Surface points on the low part of an object's side, above the ground in front of it.
+
+    Among a surface point's 16 nearest in plan, at least :data:`FACE_OVER_LEAST` objects'
+    returns (1, 19) within :data:`FACE_OVER_M` rise over it (more than ``tolerance`` and
+    less than ``overhead_gap`` higher: a face going up from it, not a boom high above);
+    on cells of ``cell`` within :data:`FACE_AROUND_M` of its cell, surface lies lower than
+    it by more than ``tolerance`` on the side away from those returns (the pad in front of
+    the side, not the pad behind a wall that a pile leans on; any side when they stand
+    within :data:`FACE_PLANE_M` of it, on its own plane), and at most :data:`FACE_HIGHER_MOST` cells hold surface
+    higher than it (other lowest returns of the same vehicle's sides, not a flank). Such a point is the lowest return of a vehicle's side or a chassis edge
+    over ground hidden under it: the pad in front is lower, the object rises over it, and
+    no surface continues upward from it. The slope envelope lets it through when the pad
+    in front is farther than its height over ``tan(max_slope)``. A pile's toe has its
+    flank rising beside it, a pad point at a wall's foot has no lower pad around it, a
+    crest under a stacker boom has the boom more than ``overhead_gap`` above it.
+    """
+    out = np.zeros(len(z), bool)
+    nb = plan.nb
+    if nb is None:
+        return out
+    ground = cls == GROUND
+    obj = _OBJECTS[cls]
+    rows = np.flatnonzero(ground)
+    if not len(rows) or not obj.any():
+        return out
+    nbr = nb[rows]
+    valid = (nbr >= 0) & (nbr != rows[:, None])
+    j = np.where(valid, nbr, 0)
+    near_obj = (obj[j] & valid).any(axis=1)
+    rows, j, valid = rows[near_obj], j[near_obj], valid[near_obj]
+    if not len(rows):
+        return out
+    d = np.hypot(x[j] - x[rows, None], y[j] - y[rows, None])
+    dz = z[j] - z[rows, None]
+    tol = params.tolerance
+    over = valid & obj[j] & (d <= FACE_OVER_M) & (dz > tol) & (dz < params.overhead_gap)
+    n_over = over.sum(axis=1)
+    faced = n_over >= FACE_OVER_LEAST
+    # the way to the face: the mean plan offset of the objects' returns over the point
+    fx = (np.where(over, x[j] - x[rows, None], 0.0).sum(axis=1) / np.maximum(n_over, 1))[faced]
+    fy = (np.where(over, y[j] - y[rows, None], 0.0).sum(axis=1) / np.maximum(n_over, 1))[faced]
+    rows = rows[faced]
+    if not len(rows):
+        return out
+    # the surface around, on cells of ``cell`` (a face's own returns fill a point's nearest
+    # in plan, so the pad in front is looked for on a grid): lowest and highest within
+    # FACE_AROUND_M
+    from scipy import ndimage
+
+    row, col, shape = _region_cells(x, y, params.cell)
+    k = row * shape[1] + col
+    _, _, lo, hi = cell_stats(k, np.ascontiguousarray(z, dtype=np.float64), ground, shape[0] * shape[1])
+    reach = int(math.ceil(FACE_AROUND_M / params.cell))
+    lowest = ndimage.minimum_filter(lo.reshape(shape), size=2 * reach + 1, mode="constant", cval=np.inf).ravel()
+    zr = z[rows]
+    low = lowest[k[rows]] < zr - tol
+    rows, zr, fx, fy = rows[low], zr[low], fx[low], fy[low]
+    # around the point: the lower surface must lie away from the face (the pad in front of
+    # a vehicle's side, not the pad behind a wall the point's pile leans on); cells holding
+    # surface higher than the point: a flank rising beside it fills many, other lowest
+    # returns of the same vehicle's sides a few
+    lo2 = np.pad(lo.reshape(shape), reach, constant_values=np.inf)
+    hi2 = np.pad(hi.reshape(shape), reach, constant_values=-np.inf)
+    offs = np.arange(2 * reach + 1)
+    vx, vy = (offs[None, :] - reach)[None] * 1.0, (offs[:, None] - reach)[None] * 1.0
+    fn = np.hypot(fx, fy)[:, None, None]
+    # a face right over the point (its side's own plane) has no way to it: any side will do
+    away = ((vx * fx[:, None, None] + vy * fy[:, None, None] < 0.25 * np.hypot(vx, vy) * fn)
+            | (fn < FACE_PLANE_M))
+    feet = np.zeros(len(rows), bool)
+    for a in range(0, len(rows), 4096):
+        b = slice(a, a + 4096)
+        r, c = row[rows[b]], col[rows[b]]
+        win = (r[:, None, None] + offs[:, None], c[:, None, None] + offs[None, :])
+        zb = zr[b, None, None]
+        lower_away = ((lo2[win] < zb - tol) & away[b]).any(axis=(1, 2))
+        higher = (hi2[win] > zb + tol).sum(axis=(1, 2))
+        feet[b] = lower_away & (higher <= FACE_HIGHER_MOST)
+    out[rows[feet]] = True
     return out
 
 
