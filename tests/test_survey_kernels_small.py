@@ -318,3 +318,31 @@ def test_chamfer_around_blocked_cells_is_the_shortest_path(seed):
     assert np.array_equal(got[block], g[block])
     # the walls matter: without them the envelope is lower in places
     assert (got[free] > _chamfer_min(g, w)[free] + 1e-6).any()
+
+
+def test_faces_over_counts_and_offsets_like_numpy():
+    # faces_over against the same sums in numpy over the neighbour table (-1 entries and
+    # the point itself left out; objects by class mask; plan reach and height band)
+    from inventory.survey.kernels import faces_over
+
+    rng = np.random.default_rng(9)
+    n = 3000
+    x, y, z = rng.random(n) * 10, rng.random(n) * 10, rng.random(n) * 3
+    cls = rng.choice(np.array([1, 2, 7, 19], np.uint8), n)
+    nb = rng.integers(-1, n, (n, 17)).astype(np.int32)
+    nb[:, 0] = np.arange(n)
+    objects = np.zeros(256, np.bool_)
+    objects[[1, 19]] = True
+    rows = np.flatnonzero(cls == 2)
+    got_n, got_fx, got_fy = faces_over(nb, rows, x, y, z, cls, objects, 4.0, 0.1, 2.0)
+    j = nb[rows].astype(np.int64)
+    valid = (j >= 0) & (j != rows[:, None])
+    q = np.where(valid, j, 0)
+    dx, dy, dz = x[q] - x[rows, None], y[q] - y[rows, None], z[q] - z[rows, None]
+    over = valid & objects[cls[q]] & (dx * dx + dy * dy <= 16.0) & (dz > 0.1) & (dz < 2.0)
+    k = over.sum(axis=1)
+    assert k.max() >= 3 and (k == 0).any()
+    np.testing.assert_array_equal(got_n, k)
+    with np.errstate(invalid="ignore"):
+        np.testing.assert_allclose(got_fx, np.where(k > 0, (dx * over).sum(axis=1) / np.maximum(k, 1), 0.0), atol=1e-12)
+        np.testing.assert_allclose(got_fy, np.where(k > 0, (dy * over).sum(axis=1) / np.maximum(k, 1), 0.0), atol=1e-12)

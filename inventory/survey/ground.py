@@ -24,7 +24,8 @@ from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
 from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes,
                                       chamfer_passes_blocked, envelope_at,
-                                      floor_cells, has_company, knn3_mean, member_rows, min_envelope, outvoted,
+                                      faces_over, floor_cells, has_company, knn3_mean, member_rows, min_envelope,
+                                      outvoted,
                                       overhead_layers, plan_knn, plan_knn3)
 
 __all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
@@ -822,27 +823,14 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
     if nb is None:
         return out
     ground = cls == GROUND
-    obj = _OBJECTS[cls]
     rows = np.flatnonzero(ground)
-    if not len(rows) or not obj.any():
+    if not len(rows) or not _OBJECTS[cls].any():
         return out
-    nbr = nb[rows]
-    valid = (nbr >= 0) & (nbr != rows[:, None])
-    j = np.where(valid, nbr, 0)
-    near_obj = (obj[j] & valid).any(axis=1)
-    rows, j, valid = rows[near_obj], j[near_obj], valid[near_obj]
-    if not len(rows):
-        return out
-    d = np.hypot(x[j] - x[rows, None], y[j] - y[rows, None])
-    dz = z[j] - z[rows, None]
     tol = params.tolerance
-    over = valid & obj[j] & (d <= FACE_OVER_M) & (dz > tol) & (dz < params.overhead_gap)
-    n_over = over.sum(axis=1)
+    # objects' returns over each point, and the way to them (their mean plan offset)
+    n_over, fx, fy = faces_over(nb, rows, x, y, z, cls, _OBJECTS, FACE_OVER_M, tol, params.overhead_gap)
     faced = n_over >= FACE_OVER_LEAST
-    # the way to the face: the mean plan offset of the objects' returns over the point
-    fx = (np.where(over, x[j] - x[rows, None], 0.0).sum(axis=1) / np.maximum(n_over, 1))[faced]
-    fy = (np.where(over, y[j] - y[rows, None], 0.0).sum(axis=1) / np.maximum(n_over, 1))[faced]
-    rows = rows[faced]
+    rows, fx, fy = rows[faced], fx[faced], fy[faced]
     if not len(rows):
         return out
     # the surface around, on cells of ``cell`` (a face's own returns fill a point's nearest

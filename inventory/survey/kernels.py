@@ -19,7 +19,7 @@ not depend on how the rows were split.
   plan), on voxels: the index's cells grouped into columns and split in height by a
   counting sort, the layers of each column read outward from the point's height and
   any voxel skipped that lies farther than the k-th nearest so far.
-* :func:`below_tests`, :func:`min_envelope`, :func:`outvoted`: the per-point tests of
+* :func:`below_tests`, :func:`min_envelope`, :func:`outvoted`, :func:`faces_over`: the per-point tests of
   :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
   temporary arrays of points by neighbours.
 * :func:`cell_lowest`, :func:`envelope_at`: the seeds of the slope envelope's grid and the
@@ -55,7 +55,7 @@ from numba import njit
 from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
-           "min_envelope", "has_company", "outvoted", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
+           "min_envelope", "has_company", "outvoted", "faces_over", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
            "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "chamfer_passes_blocked", "floor_cells",
            "cell_stats"]
 
@@ -786,6 +786,50 @@ def _outvoted_rows(a, b, nb, rows, z, cls, ground, objects, tol, least, ratio, o
                 elif objects[c]:
                     n_obj += 1
         out[i] = n_obj >= least and n_obj >= ratio * (n_gnd + 1)
+
+
+@njit(cache=True, nogil=True)
+def _faces_over_rows(a, b, nb, rows, x, y, z, cls, objects, reach, low, high, n, fx, fy):
+    for i in range(a, b):
+        p = rows[i]
+        k = 0
+        sx = 0.0
+        sy = 0.0
+        for j in range(nb.shape[1]):
+            q = nb[p, j]
+            if q < 0 or q == p or not objects[cls[q]]:
+                continue
+            dz = z[q] - z[p]
+            if dz <= low or dz >= high:
+                continue
+            dx = x[q] - x[p]
+            dy = y[q] - y[p]
+            if dx * dx + dy * dy <= reach * reach:
+                k += 1
+                sx += dx
+                sy += dy
+        n[i] = k
+        fx[i] = sx / k if k else 0.0
+        fy[i] = sy / k if k else 0.0
+
+
+def faces_over(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray,
+               objects: np.ndarray, reach: float, low: float, high: float
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each point p of ``rows``: of its neighbours ``nb[p]`` (-1: none; p itself left
+    out) of a class marked in ``objects``, those within ``reach`` in plan and higher than
+    p by more than ``low`` and less than ``high``: their number and mean plan offset
+    (x, y) from p (0 where none)."""
+    n = np.zeros(len(rows), np.int64)
+    fx = np.zeros(len(rows))
+    fy = np.zeros(len(rows))
+    xf, yf, zf = (np.ascontiguousarray(v, dtype=np.float64) for v in (x, y, z))
+
+    def piece(a: int, b: int) -> None:
+        _faces_over_rows(a, b, nb, rows, xf, yf, zf, cls, objects, reach, low, high, n, fx, fy)
+
+    run_rows(piece, len(rows))
+    return n, fx, fy
 
 
 def outvoted(nb: np.ndarray, rows: np.ndarray, z: np.ndarray, cls: np.ndarray, ground: int,
