@@ -34,6 +34,13 @@ repose, so that a true crest is never capped: materials need not state their ang
 repose). With ``SECTOR_PLANES = 0`` each rim cell carries the plane of its own 3 x 3 window
 instead and every plane must clear the chord (the earlier rule, kept for comparison in the
 calibration study).
+
+The flanks cannot tell a hidden apex from a hidden flat top: both are concave, and a concave
+surface lies between the chord and the lowest tangent plane above it. For each target cell
+of an enclosed gap where at least two planes clear the chord, that plane (capped as above)
+is returned as an upper bound (``upper``) whether or not the crest branch was taken; the
+volume step counts the volume between the chord and the bound in the pile's interval
+(:func:`inventory.volume.measure._hidden_top`).
 """
 
 from __future__ import annotations
