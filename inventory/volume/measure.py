@@ -892,8 +892,9 @@ def _hidden_top(work: _PileWork, a: float) -> tuple[float, float]:
     r"""Sigma of what the flanks cannot tell over hidden crests, and the volume at stake (m3).
 
     Over a gap that may hide a crest the surface, if it is concave there (a pile's top:
-    an apex, a ridge, a flat top and its edges), lies above the chord (the linear fill,
-    :attr:`_PileWork.chord`) and below every tangent plane of its flanks
+    an apex, a ridge, a flat top and its edges), lies above the chord (the fill before the
+    slope-break fill, :attr:`_PileWork.chord`: linear, or level against a wall, see
+    :func:`_fill_against_objects`) and below every tangent plane of its flanks
     (:attr:`_PileWork.upper`, from :func:`inventory.volume.gapfill.fill_slope_breaks`). A
     hidden apex fills the bound, a hidden flat top at the rim's height the chord; the
     flanks alone cannot tell them apart. For each gap (4-connected unscanned cells) the
