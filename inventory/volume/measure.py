@@ -477,7 +477,7 @@ def _prepare(
     ground = np.zeros(w.shape, bool)
     # An object standing at the footprint's edge (a wall the pile is pushed against): the
     # pile's gaps that reach it are filled from the pile's side only (_behind_objects).
-    behind, redo = _behind_objects(surface, rows, cols, w, scanned, grid.cell)
+    behind, redo, _ = _behind_objects(surface, rows, cols, w, scanned, grid.cell)
     if missing.any():
         flags.append("unfilled_gap")
     if missing.any() or redo.any():
@@ -515,53 +515,70 @@ def _prepare(
 
 
 def _behind_objects(surface: Surface, rows: slice, cols: slice, w: np.ndarray, scanned: np.ndarray,
-                    cell: float) -> tuple[np.ndarray, np.ndarray]:
+                    cell: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Cells of a pile's window cut off from the footprint by an object at its edge, and the
     unscanned cells to fill again because their gap reaches that object.
 
     The survey marks the cells that hold object returns (``surface.meta["object_seen"]``,
     :func:`inventory.survey.tiles.grid_tiles`). Such cells without a surface point, not
     wholly inside the footprint and within :data:`_GROUND_CLEARANCE_M` of it, in groups
-    at least :data:`OBJECT_EDGE_MIN_M` long (a wall, a vehicle at the toe; not a lone dust
-    return or bird), stand at the footprint's edge. A cell outside the footprint whose
-    straight line to the nearest footprint cell crosses one lies behind the object: it is
-    neither floor nor a corner of the interpolation, scanned or not, so a gap over the
-    pile's top is not interpolated across the wall down to the floor behind it. The
-    survey's own fill of a gap that reaches the object ran across it too (it knows no
-    footprints): those cells are filled again. Both masks are empty when the survey gave
-    no object cells (other gridding paths, or a surface read back from rasters).
+    (8-connected) of at least :data:`OBJECT_EDGE_MIN_M` / cell cells (a wall, a vehicle at
+    the toe; not a lone dust return or bird), stand at the footprint's edge. A cell outside
+    the footprint (within twice :data:`_PAD_M` of it) whose straight line to the nearest
+    footprint cell crosses one lies behind the object: it is neither floor nor a corner of
+    the interpolation, scanned or not, so a gap over the pile's top is not interpolated
+    across the wall down to the floor behind it. The survey's own fill of a gap that
+    reaches the object ran across it too (it knows no footprints): those cells are filled
+    again.
+
+    Returns
+    -------
+    behind, redo, wall : ndarray of bool
+        The barrier (the object cells and the cells behind them), the unscanned cells to
+        fill again, and the object cells alone. All empty when the survey gave no object
+        cells (other gridding paths, or a surface read back from rasters).
     """
     empty = np.zeros(w.shape, bool)
     seen = (surface.meta or {}).get("object_seen")
     if not isinstance(seen, np.ndarray) or seen.shape != surface.grid.shape:
-        return empty, empty
+        return empty, empty, empty
     inside = w > 0
     if inside.all() or not inside.any():
-        return empty, empty
+        return empty, empty, empty
     dist, (ir, ic) = ndimage.distance_transform_edt(~inside, return_indices=True)
     obj = seen[rows, cols] & ~scanned & (w < 1.0) & (dist * cell < _GROUND_CLEARANCE_M)
     if not obj.any():
-        return empty, empty
+        return empty, empty, empty
     lab, n = ndimage.label(obj, structure=np.ones((3, 3), bool))
     sizes = np.bincount(lab.ravel(), minlength=n + 1)
     sizes[0] = 0
     obj = (sizes >= max(2, math.ceil(OBJECT_EDGE_MIN_M / cell)))[lab]
     if not obj.any():
-        return empty, empty
-    rr, cc = np.nonzero(~inside & ~obj)
+        return empty, empty, empty
+    # the band the window's pad spans, corners included (beyond it, in the far parts of the
+    # window of a footprint of irregular plan, no cell is taken to lie behind an object)
+    rr, cc = np.nonzero(~inside & ~obj & (dist * cell <= 2.0 * _PAD_M))
     behind = empty.copy()
-    if rr.size:
-        # sample each cell's line to its nearest footprint cell at a third of a cell
-        d = dist[rr, cc]
-        k = int(np.ceil(d.max() * 3)) + 1
+    d = dist[rr, cc]
+    order = np.argsort(d, kind="stable")
+    rr, cc, d = rr[order], cc[order], d[order]
+    s0 = 0
+    while s0 < rr.size:
+        # sample each cell's line to its nearest footprint cell at a third of a cell, cells
+        # of like distance together, about a million samples at a time
+        k = int(np.ceil(d[min(s0 + 4096, rr.size) - 1] * 3)) + 1
+        s1 = min(rr.size, s0 + max(1, 1_000_000 // k), s0 + 4096)
+        k = int(np.ceil(d[s1 - 1] * 3)) + 1
+        r, c = rr[s0:s1], cc[s0:s1]
         t = np.linspace(0.0, 1.0, k)[None, :]
-        sr = np.rint(rr[:, None] + (ir[rr, cc] - rr)[:, None] * t).astype(int)
-        sc = np.rint(cc[:, None] + (ic[rr, cc] - cc)[:, None] * t).astype(int)
-        behind[rr, cc] = obj[sr, sc].any(axis=1)
+        sr = np.rint(r[:, None] + (ir[r, c] - r)[:, None] * t).astype(int)
+        sc = np.rint(c[:, None] + (ic[r, c] - c)[:, None] * t).astype(int)
+        behind[r, c] = obj[sr, sc].any(axis=1)
+        s0 = s1
     gaps, _ = ndimage.label(~scanned)
     touched = np.unique(gaps[obj])
     redo = np.isin(gaps, touched[touched > 0]) & ~scanned & ~behind
-    return behind | obj, redo
+    return behind | obj, redo, obj
 
 
 def _fill_against_objects(z: np.ndarray, cells: np.ndarray, barrier: np.ndarray,
