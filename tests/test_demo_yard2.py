@@ -160,23 +160,45 @@ def test_yard2_piles_within_their_bars_and_inside_the_interval(yard2_measured, p
 
 @pytest.mark.slow
 def test_yard2_wall_pile_first_survey(yard2_measured):
-    # B1 against the wall: its top is hidden; in the first survey the crest planes and the
-    # chord to the floor behind the wall roughly cancel (-2.7 %)
+    # B1 against the wall: its top is hidden and filled against the wall (measured -3.2 %;
+    # -5.0 / -5.3 % with seeds 7 / 11; before, the crest planes and the chord to the floor
+    # behind the wall roughly cancelled, -1.2 to -2.6 %)
     date = min(yard2_measured)
     assert abs(_err(yard2_measured, date, "B1")) <= 0.05
     assert _holds(yard2_measured, date, "B1")
 
 
 @pytest.mark.slow
+def test_yard2_hidden_flat_top_inside_its_interval_and_flagged(yard2_measured):
+    # F1's flat top is above every tripod: from the flanks it may be a flat top or an apex.
+    # The fill takes the flanks' envelope (+21 % / +31 %), and the interval counts the
+    # volume between it and the chord (measured: +/-25 % / +/-35 %, CHANGELOG.md)
+    for date, (_, table, _) in yard2_measured.items():
+        assert _holds(yard2_measured, date, "F1"), date
+        assert "hidden_top" in str(table.loc["F1", "flags"]).split(";"), date
+
+
+@pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="F1's flat top is hidden from every tripod; the gap fill extends "
-                   "the flanks into a hip roof over it (+21 % / +31 %); see CHANGELOG.md")
+                   "the flanks into a hip roof over it (+21 % / +31 %, inside the interval that counts "
+                   "the hidden top); see CHANGELOG.md")
 def test_yard2_flat_topped_pile_within_five_percent(yard2_measured):
     for date in yard2_measured:
         assert abs(_err(yard2_measured, date, "F1")) <= 0.05, date
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="B1's hidden top is interpolated down to the floor behind the "
-                   "wall in the second survey (-22 %); see CHANGELOG.md")
+def test_yard2_wall_pile_second_survey_not_filled_behind_the_wall(yard2_measured):
+    # B1's hidden top is filled against the wall (the survey's object cells), no longer down
+    # to the floor behind it (-22 % before; measured -5.1 to -5.3 % on three seeds)
+    date = max(yard2_measured)
+    assert abs(_err(yard2_measured, date, "B1")) <= 0.08
+    assert _holds(yard2_measured, date, "B1")
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="B1's hidden top, filled level with the crest cells against the "
+                   "wall, comes out 5.1-5.3 % low in the second survey: the crest cells sit on the shadow's "
+                   "edge and the fill sags toward the pile's ends; see CHANGELOG.md")
 def test_yard2_wall_pile_second_survey_within_five_percent(yard2_measured):
     assert abs(_err(yard2_measured, max(yard2_measured), "B1")) <= 0.05

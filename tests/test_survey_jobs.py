@@ -199,6 +199,14 @@ def test_cells_of_several_jobs_make_the_surface_of_one(tmp_path):
     assert roof.sum() == 12 and (one.count[roof] == 0).all()
     assert one.meta["object_cells"] >= roof.sum() + 20
     assert (one.count > 0).sum() >= grid.nrows * grid.ncols - 120
+    # the cells that hold object returns (for the volume step's gap filling): the ring of the
+    # vehicle's sides, 3.2 m x 5.2 m less its 2 m x 4 m body, whatever the job plan
+    seen = one.meta["object_seen"]
+    assert np.array_equal(seen, two.meta["object_seen"])
+    x, y = grid.centers()
+    outer = (np.abs(x - 1020.0) < 1.6) & (np.abs(y - 2015.0) < 2.6)
+    assert seen[outer & ~((np.abs(x - 1020.0) < 0.9) & (np.abs(y - 2015.0) < 1.9))].all()
+    assert not seen[~((np.abs(x - 1020.0) < 2.0) & (np.abs(y - 2015.0) < 3.0))].any()
 
 
 def test_jobs_compress_their_own_points_into_the_cloud_the_main_process_once_wrote(tmp_path, clustered):

@@ -146,7 +146,7 @@ GRID = Grid(-20.0, 20.0, 0.5, 80, 80)
 
 
 def _linear_only(monkeypatch):
-    monkeypatch.setattr(vm, "fill_slope_breaks", lambda z, linear, *a: linear)
+    monkeypatch.setattr(vm, "fill_slope_breaks", lambda z, linear, *a, **k: linear)
 
 
 @pytest.mark.parametrize("R, r, shadow", [(10.0, 4.0, 3.0), (9.0, 3.0, 3.0), (10.0, 4.0, 2.0)])

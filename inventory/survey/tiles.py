@@ -630,6 +630,9 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
         bottom[dst], low_object[dst] = t["bottom"], t["low_object"]
         near_object[dst] = t["low_object"] < t["top"] + OBJECT_CLEARANCE_M
     covered = object_cells(has, None, bottom, low_object, sgrid.cell_area, near_object=near_object)
+    # cells an object stands in (a wall, a vehicle): the volume step does not fill a pile's
+    # gap across them (inventory.volume.measure, OBJECT_SEEN)
+    seen = np.isfinite(low_object)
     del has, near_object, bottom, low_object
 
     z = np.full(sgrid.shape, np.nan)
@@ -641,5 +644,5 @@ def grid_tiles(g: Grid, cell_files: list[Path], sgrid: Grid, statistic: str, dat
         count[dst][have] = t["count"][have]
         sd[dst][have] = t["sd"][have]
     return Surface(sgrid, z, count, sd, np.zeros(sgrid.shape, bool), date,
-                   {"statistic": statistic, "object_cells": int(covered.sum())})
+                   {"statistic": statistic, "object_cells": int(covered.sum()), "object_seen": seen})
 

@@ -34,6 +34,13 @@ repose, so that a true crest is never capped: materials need not state their ang
 repose). With ``SECTOR_PLANES = 0`` each rim cell carries the plane of its own 3 x 3 window
 instead and every plane must clear the chord (the earlier rule, kept for comparison in the
 calibration study).
+
+The flanks cannot tell a hidden apex from a hidden flat top: both are concave, and a concave
+surface lies between the chord and the lowest tangent plane above it. For each target cell
+of an enclosed gap where at least two planes clear the chord, that plane (capped as above)
+is returned as an upper bound (``upper``) whether or not the crest branch was taken; the
+volume step counts the volume between the chord and the bound in the pile's interval
+(:func:`inventory.volume.measure._hidden_top`).
 """
 
 from __future__ import annotations
@@ -216,7 +223,7 @@ def _local_planes(z: np.ndarray, known: np.ndarray, cell: float) -> dict[str, np
 
 
 def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targets: np.ndarray,
-                      cell: float) -> np.ndarray:
+                      cell: float, upper: np.ndarray | None = None) -> np.ndarray:
     """``linear`` with each ``targets`` cell replaced by the rim planes' envelope where the
     gap hides a crest or a toe (module docstring).
 
@@ -232,6 +239,19 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
         Cells to fill (unscanned cells of interest).
     cell : float
         Cell size (m).
+    upper : ndarray, optional
+        Filled in place, at the target cells of enclosed gaps that may hide a crest (at
+        least two rim planes pass above the linear fill by :data:`SIGNIFICANCE` standard
+        errors, whether or not the crest branch was taken there), with the highest the
+        surface can be there if it is concave: the lowest rim plane above the linear fill,
+        capped by :data:`MAX_RISE` (a concave surface lies below each of its tangent planes
+        and above each chord, so it lies between ``linear`` and this bound). Left as it is
+        elsewhere (the caller passes the filled value, so that it is no bound there).
+
+    Returns
+    -------
+    ndarray
+        The filled window.
     """
     out = linear.copy()
     if not targets.any() or known.sum() < _MIN_PLANE_CELLS:
@@ -360,4 +380,9 @@ def fill_slope_breaks(z: np.ndarray, linear: np.ndarray, known: np.ndarray, targ
             val[crest] = np.minimum(lo[crest], lin[crest] + cap[crest])
             val[toe] = np.maximum(hi[toe], lin[toe] - cap[toe])
             out[r_t, c_t] = val
+            if upper is not None and SECTOR_PLANES:
+                # cells that may hide a crest: the concave surface's bound above the chord
+                maybe = enough & (n_sig >= 2) & np.isfinite(lo)
+                bound = np.where(maybe, np.minimum(lo, lin + cap), val)
+                upper[r_t, c_t] = np.maximum(bound, val)
     return out

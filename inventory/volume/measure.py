@@ -128,6 +128,12 @@ DEFAULT_TOE_RING_M = 3.0
 #: a fifth of a pile interpolated, the interpolation term usually dominates the sigma).
 LOW_SCAN_FRACTION = 0.8
 
+#: Piles whose hidden crests leave more than this share of the volume to the shape of a top
+#: no station saw (:func:`_hidden_top`: the volume between the chord and the flanks' planes)
+#: are flagged ``hidden_top``. One percent: the accuracy a stock count is expected to reach
+#: (common practice for terrestrial-scan stockpile surveys).
+HIDDEN_TOP_FLAG_FRACTION = 0.05
+
 #: Material below base beyond this share of the volume is flagged ``below_base``; a few
 #: tenths of a percent come from scan noise on the floor around the pile.
 BELOW_BASE_FLAG_FRACTION = 0.01
@@ -143,6 +149,11 @@ _PAD_M = 6.0
 #: Unscanned cells at least this far outside every footprint are taken as floor at the
 #: pile's base when a gap is interpolated (metres; about a bay wall's thickness).
 _GROUND_CLEARANCE_M = 1.0
+
+#: Shortest group of object cells at a footprint's edge (m across its cells) that stops the
+#: gap filling (:func:`_behind_objects`): a wall or a vehicle, not a lone dust return or a
+#: bird (engineering judgement).
+OBJECT_EDGE_MIN_M = 2.0
 
 #: Output columns of :func:`measure_piles`, in order.
 VOLUME_COLUMNS = [
@@ -376,6 +387,8 @@ class _PileWork:
     scanned: np.ndarray
     model: BaseModel
     flags: list[str]
+    chord: np.ndarray | None = None   # the linear fill before the slope-break fill
+    upper: np.ndarray | None = None   # highest a concave surface can be in each gap cell
 
 
 def _material(materials: Mapping[str, Material], name: object) -> Material | None:
@@ -462,27 +475,166 @@ def _prepare(
         return _PileWork(rows, cols, sub, w, z, np.full(w.shape, np.nan), scanned, model, flags)
     bz = model.floor if model.kind == "floor" else _plane_on(model, sub)
     ground = np.zeros(w.shape, bool)
+    # An object standing at the footprint's edge (a wall the pile is pushed against): the
+    # pile's gaps that reach it are filled from the pile's side only (_behind_objects).
+    behind, redo, _ = _behind_objects(surface, rows, cols, w, scanned, grid.cell)
     if missing.any():
         flags.append("unfilled_gap")
+    if missing.any() or redo.any():
+        z_seen = z
+        z = np.where(behind | redo, np.nan, z)
         # Footprints enclose their piles, so unscanned ground outside every footprint is
         # floor: it takes the base elevation, which closes a shadow that runs off the
         # pile instead of letting the interpolation run free beyond the toe.
         # Cells right at the footprint edge stay free: a pile pushed against a wall has no
-        # floor there.
+        # floor there; nor has the ground behind an object standing at the edge.
         clear = ndimage.distance_transform_edt(~inside) * grid.cell >= _GROUND_CLEARANCE_M
-        ground = ~np.isfinite(z) & clear
+        ground = ~np.isfinite(z) & clear & ~behind
         for _, g in others:
             if ground.any() and g.intersects(shapely.box(*sub.bounds)):
                 ground &= _window_weights(g, grid, rows, cols) <= 0
         z = np.where(ground, bz, z)
+        if redo.any():
+            z = _fill_against_objects(z, redo & ~ground, behind, lone_patches(scanned))
         z = _fill_gaps(z, inside, lone_patches(scanned))
+        z = np.where(behind & scanned, z_seen, z)
     targets = inside & ~scanned
+    chord = upper = None
     if slope_fill and targets.any():
         # Every unscanned footprint cell, filled by the survey or above: where its gap hides
         # a crest or a toe, the flanks' planes replace the linear chord (gapfill module).
-        known = (scanned & ~lone_patches(scanned)) | ground
-        z = fill_slope_breaks(z, z, known, targets, grid.cell)
-    return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags)
+        known = (scanned & ~lone_patches(scanned) & ~behind) | ground
+        chord, upper = z, z.copy()
+        z = fill_slope_breaks(z, z, known, targets, grid.cell, upper=upper)
+        upper = np.maximum(upper, z)
+        # A gap that reaches an object at the edge keeps the fill made against it (level
+        # across the wall): its rim is open on the wall's side, and a wall-top return kept
+        # as surface would close it. The flanks' envelope there only bounds the hidden top.
+        z = np.where(redo, chord, z)
+    return _PileWork(rows, cols, sub, w, z, bz, scanned, model, flags, chord, upper)
+
+
+def _behind_objects(surface: Surface, rows: slice, cols: slice, w: np.ndarray, scanned: np.ndarray,
+                    cell: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Cells of a pile's window cut off from the footprint by an object at its edge, and the
+    unscanned cells to fill again because their gap reaches that object.
+
+    The survey marks the cells that hold object returns (``surface.meta["object_seen"]``,
+    :func:`inventory.survey.tiles.grid_tiles`). Such cells without a surface point, not
+    wholly inside the footprint and within :data:`_GROUND_CLEARANCE_M` of it, in groups
+    (8-connected) of at least :data:`OBJECT_EDGE_MIN_M` / cell cells (a wall, a vehicle at
+    the toe; not a lone dust return or bird), stand at the footprint's edge. A cell outside
+    the footprint (within twice :data:`_PAD_M` of it) whose straight line to the nearest
+    footprint cell crosses one lies behind the object: it is neither floor nor a corner of
+    the interpolation, scanned or not, so a gap over the pile's top is not interpolated
+    across the wall down to the floor behind it. The survey's own fill of a gap that
+    reaches the object ran across it too (it knows no footprints): those cells are filled
+    again.
+
+    Returns
+    -------
+    behind, redo, wall : ndarray of bool
+        The barrier (the object cells and the cells behind them), the unscanned cells to
+        fill again, and the object cells alone. All empty when the survey gave no object
+        cells (other gridding paths, or a surface read back from rasters).
+    """
+    empty = np.zeros(w.shape, bool)
+    seen = (surface.meta or {}).get("object_seen")
+    if not isinstance(seen, np.ndarray) or seen.shape != surface.grid.shape:
+        return empty, empty, empty
+    inside = w > 0
+    if inside.all() or not inside.any():
+        return empty, empty, empty
+    dist, (ir, ic) = ndimage.distance_transform_edt(~inside, return_indices=True)
+    obj = seen[rows, cols] & ~scanned & (w < 1.0) & (dist * cell < _GROUND_CLEARANCE_M)
+    if not obj.any():
+        return empty, empty, empty
+    lab, n = ndimage.label(obj, structure=np.ones((3, 3), bool))
+    sizes = np.bincount(lab.ravel(), minlength=n + 1)
+    sizes[0] = 0
+    obj = (sizes >= max(2, math.ceil(OBJECT_EDGE_MIN_M / cell)))[lab]
+    if not obj.any():
+        return empty, empty, empty
+    # the band the window's pad spans, corners included (beyond it, in the far parts of the
+    # window of a footprint of irregular plan, no cell is taken to lie behind an object)
+    rr, cc = np.nonzero(~inside & ~obj & (dist * cell <= 2.0 * _PAD_M))
+    behind = empty.copy()
+    d = dist[rr, cc]
+    order = np.argsort(d, kind="stable")
+    rr, cc, d = rr[order], cc[order], d[order]
+    s0 = 0
+    while s0 < rr.size:
+        # sample each cell's line to its nearest footprint cell at a third of a cell, cells
+        # of like distance together, about a million samples at a time
+        k = int(np.ceil(d[min(s0 + 4096, rr.size) - 1] * 3)) + 1
+        s1 = min(rr.size, s0 + max(1, 1_000_000 // k), s0 + 4096)
+        k = int(np.ceil(d[s1 - 1] * 3)) + 1
+        r, c = rr[s0:s1], cc[s0:s1]
+        t = np.linspace(0.0, 1.0, k)[None, :]
+        sr = np.rint(r[:, None] + (ir[r, c] - r)[:, None] * t).astype(int)
+        sc = np.rint(c[:, None] + (ic[r, c] - c)[:, None] * t).astype(int)
+        behind[r, c] = obj[sr, sc].any(axis=1)
+        s0 = s1
+    gaps, _ = ndimage.label(~scanned)
+    touched = np.unique(gaps[obj])
+    redo = np.isin(gaps, touched[touched > 0]) & ~scanned & ~behind
+    return behind | obj, redo, obj
+
+
+def _fill_against_objects(z: np.ndarray, cells: np.ndarray, barrier: np.ndarray,
+                          lone: np.ndarray) -> np.ndarray:
+    r"""Fill ``cells`` by the discrete Laplace equation, with no flow across ``barrier``.
+
+    Each cell to fill takes the mean of its four neighbours that are not barrier (nor
+    outside the window): known cells (finite ``z``, not ``lone`` patches) hold their value,
+    the other cells to fill are solved for together (a sparse linear system). Along a wall
+    the surface so meets the wall level (zero slope across it, the mirror image of the pile
+    beyond the wall), instead of running on across it as a linear fill does: a hidden top
+    between a scanned crest and the wall keeps the crest's height, a flank the flank's
+    trend. Cells of a group with no known neighbour stay NaN (for :func:`_fill_gaps`).
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.linalg import spsolve
+
+    known = np.isfinite(z) & ~cells & ~barrier & ~lone
+    todo = cells & ~barrier
+    n = int(todo.sum())
+    if n == 0:
+        return z
+    idx = np.full(z.shape, -1)
+    idx[todo] = np.arange(n)
+    rr, cc = np.nonzero(todo)
+    rows, cols = [], []
+    rhs = np.zeros(n)
+    deg = np.zeros(n)
+    nk = np.zeros(n)
+    for dr, dc in ((1, 0), (-1, 0), (0, 1), (0, -1)):
+        r2, c2 = rr + dr, cc + dc
+        ok = (r2 >= 0) & (r2 < z.shape[0]) & (c2 >= 0) & (c2 < z.shape[1])
+        i = np.nonzero(ok)[0]
+        r2, c2 = r2[ok], c2[ok]
+        kn = known[r2, c2]
+        np.add.at(rhs, i[kn], z[r2[kn], c2[kn]])
+        np.add.at(nk, i[kn], 1.0)
+        un = todo[r2, c2]
+        rows.append(i[un])
+        cols.append(idx[r2[un], c2[un]])
+        np.add.at(deg, i[un], 1.0)
+    deg += nk
+    # a group of cells to fill that touches no known cell has no solution: left NaN
+    lab, _ = ndimage.label(todo)
+    anchored = np.zeros(int(lab.max()) + 1, bool)
+    anchored[np.unique(lab[rr[nk > 0], cc[nk > 0]])] = True
+    keep = anchored[lab[rr, cc]]
+    ri, ci = np.concatenate(rows), np.concatenate(cols)
+    link = keep[ri]
+    a = coo_matrix((np.concatenate([np.full(int(link.sum()), -1.0), np.where(keep, deg, 1.0)]),
+                    (np.concatenate([ri[link], np.arange(n)]), np.concatenate([ci[link], np.arange(n)]))),
+                   shape=(n, n)).tocsr()
+    sol = spsolve(a, np.where(keep, rhs, 0.0))
+    out = z.copy()
+    out[rr, cc] = np.where(keep, sol, np.nan)
+    return out
 
 
 def _fill_gaps(z: np.ndarray, inside: np.ndarray, lone: np.ndarray | None = None) -> np.ndarray:
@@ -737,6 +889,8 @@ def _measure_one(
     # cell on its own
     edge = _edge_variance(work.z, work.scanned, grid.cell)
     sig_gap = math.sqrt(sig_gap**2 + float(np.sum(((w * a) ** 2 * edge)[sel])))
+    sig_hidden, hidden_m3 = _hidden_top(work, a)
+    sig_gap = math.sqrt(sig_gap**2 + sig_hidden**2)
     sig_base = work.model.volume_sigma((w * a)[pos], x[pos], y[pos])
     sigma = math.sqrt(sig_rand**2 + sig_corr**2 + sig_gap**2 + sig_base**2)
     tin_fill, tin_cut = _tin(work, poly, points)
@@ -747,7 +901,53 @@ def _measure_one(
         "volume_tin_m3": tin_fill, "tin_below_base_m3": tin_cut,
         "sigma_random_m3": sig_rand, "sigma_correlated_m3": sig_corr,
         "sigma_interpolated_m3": sig_gap, "sigma_base_m3": sig_base,
+        "_hidden_top_m3": hidden_m3,
     }
+
+
+def _hidden_top(work: _PileWork, a: float) -> tuple[float, float]:
+    r"""Sigma of what the flanks cannot tell over hidden crests, and the volume at stake (m3).
+
+    Over a gap that may hide a crest the surface, if it is concave there (a pile's top:
+    an apex, a ridge, a flat top and its edges), lies above the chord (the fill before the
+    slope-break fill, :attr:`_PileWork.chord`: linear, or level against a wall, see
+    :func:`_fill_against_objects`) and below every tangent plane of its flanks
+    (:attr:`_PileWork.upper`, from :func:`inventory.volume.gapfill.fill_slope_breaks`). A
+    hidden apex fills the bound, a hidden flat top at the rim's height the chord; the
+    flanks alone cannot tell them apart. For each gap (4-connected unscanned cells) the
+    volumes :math:`V_L` (chord), :math:`V` (the fill) and :math:`V_U` (bound) are summed
+    over its footprint cells; with the truth equally likely anywhere in
+    :math:`[V_L, V_U]` the root mean square error of :math:`V` is
+
+    :math:`\sigma_g^2 = \frac{(V_U - V)^3 + (V - V_L)^3}{3 (V_U - V_L)}`
+
+    (:math:`W/\sqrt{3}` at either end of a range :math:`W`, :math:`W/\sqrt{12}` at its
+    middle), so the 95 % interval (1.96 sigma) holds the whole range. One gap's cells share
+    one shape and add linearly; different gaps are independent and add in quadrature.
+    Returns the sigma and :math:`\sum_g W_g`.
+    """
+    if work.chord is None or work.upper is None:
+        return 0.0, 0.0
+    inside = work.w > 0
+    gaps = ~work.scanned
+    labels, n = ndimage.label(gaps)
+    sel = inside & gaps & (work.upper > work.chord + 1e-9)
+    if n == 0 or not sel.any():
+        return 0.0, 0.0
+    wa = work.w * a
+    lab = labels[sel]
+
+    def vol(surf: np.ndarray) -> np.ndarray:
+        t = np.clip(np.nan_to_num(surf[sel] - work.base[sel], nan=0.0), 0.0, None)
+        return np.bincount(lab, weights=wa[sel] * t, minlength=n + 1)
+
+    v_lo, v, v_hi = vol(work.chord), vol(work.z), vol(work.upper)
+    width = np.maximum(v_hi - v_lo, 0.0)
+    v = np.clip(v, v_lo, v_hi)
+    ok = width > 0
+    var = np.zeros(width.shape)
+    var[ok] = ((v_hi - v)[ok] ** 3 + (v - v_lo)[ok] ** 3) / (3.0 * width[ok])
+    return float(np.sqrt(var.sum())), float(width.sum())
 
 
 # ----------------------------------------------------------------------------- public
@@ -814,9 +1014,13 @@ def measure_piles(
         (no footprint, off the grid, no base) has NaN numbers and says why in ``flags``
         and ``base_note``; the other piles are still measured. ``flags`` is a
         semicolon-separated list of: ``below_base``, ``low_scan``, ``tin_mismatch``,
-        ``unfilled_gap``, ``no_data``, ``floor_gap``, ``no_floor``, ``toe_shared``, ``toe_no_ring``,
-        ``toe_fit``, ``off_grid``, ``off_grid_part``, ``bad_geometry``,
-        ``geometry_repaired``, ``bad_base``, ``no_density``, ``density_sd_unknown``.
+        ``unfilled_gap``, ``hidden_top``, ``no_data``, ``floor_gap``, ``no_floor``,
+        ``toe_shared``, ``toe_no_ring``, ``toe_fit``, ``off_grid``, ``off_grid_part``,
+        ``bad_geometry``, ``geometry_repaired``, ``bad_base``, ``no_density``,
+        ``density_sd_unknown``. ``hidden_top``: the shape of a top no station saw (a crest
+        or a flat top, which the flanks cannot tell apart) leaves more than
+        :data:`HIDDEN_TOP_FLAG_FRACTION` of the volume open (:func:`_hidden_top`; the
+        interval counts it).
     """
     base = base or BaseSurfaces()
     errors = errors or ErrorModel()
@@ -834,6 +1038,7 @@ def measure_piles(
         flags = list(gflags)
         others = [(p, g) for j, (p, g, _) in enumerate(foots) if j != i and g is not None]
         work = None
+        hidden = 0.0
         if poly is not None:
             row["area_m2"] = float(poly.area)
             try:
@@ -851,7 +1056,10 @@ def measure_piles(
             row["base_residual_m"] = work.model.residual_m if work.model.ok else np.nan
             if work.model.ok:
                 row.update(_measure_one(surface, work, poly, errors, noise_sd, pts))
+                hidden = row.pop("_hidden_top_m3")
                 v, s = row["volume_m3"], row["volume_sigma_m3"]
+                if hidden > HIDDEN_TOP_FLAG_FRACTION * max(v, 0.0):
+                    flags.append("hidden_top")
                 if row["below_base_m3"] > BELOW_BASE_FLAG_FRACTION * max(v, 0.0) and row["below_base_m3"] > s:
                     flags.append("below_base")
                 if row["scanned_fraction"] < LOW_SCAN_FRACTION:
@@ -866,6 +1074,11 @@ def measure_piles(
         if {"low_scan", "unfilled_gap"} & set(flags):
             warnings.warn(CoverageWarning(
                 f"pile {pid}: {row['scanned_fraction'] * 100:.0f} % of the footprint scanned"
+            ))
+        if "hidden_top" in flags:
+            warnings.warn(CoverageWarning(
+                f"pile {pid}: its top was not seen; its shape there (a crest or a flat top) leaves "
+                f"{hidden:.0f} m3 open, counted in the interval (+/- {row['volume_ci95_m3']:.0f} m3)"
             ))
         rows.append(row)
     return pd.DataFrame(rows, columns=VOLUME_COLUMNS)
