@@ -130,8 +130,9 @@ LOW_SCAN_FRACTION = 0.8
 
 #: Piles whose hidden crests leave more than this share of the volume to the shape of a top
 #: no station saw (:func:`_hidden_top`: the volume between the chord and the flanks' planes)
-#: are flagged ``hidden_top``. One percent: the accuracy a stock count is expected to reach
-#: (common practice for terrestrial-scan stockpile surveys).
+#: are flagged ``hidden_top``. Five percent (engineering judgement): the small hidden crests
+#: of an ordinary terrestrial survey stay well under it (none of the sample site's piles
+#: reaches it), a top no station saw (the second yard's flat-topped pile: 25-35 %) is far over.
 HIDDEN_TOP_FLAG_FRACTION = 0.05
 
 #: Material below base beyond this share of the volume is flagged ``below_base``; a few
