@@ -64,6 +64,7 @@ import os
 import shutil
 import tempfile
 import zipfile
+from collections.abc import Callable
 from datetime import date, datetime, timedelta, timezone
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -318,16 +319,23 @@ def write_sample_site(dest: str | os.PathLike, seed: int = DEFAULT_SEED, *, over
     InputError
         When ``dest`` is a file, or a non-empty folder and ``overwrite`` is false.
     """
+    return _write_folder(dest, lambda tmp: _build(tmp, seed), "the sample site", ".sample-", overwrite)
+
+
+def _write_folder(dest: str | os.PathLike, build: Callable[[Path], None], what: str, prefix: str,
+                  overwrite: bool) -> Path:
+    """Build a site with ``build`` in a temporary folder beside ``dest`` and rename it into
+    place (``what`` names it in the errors of :func:`write_sample_site`)."""
     dest = Path(dest)
     if dest.exists() and not dest.is_dir():
-        raise InputError(dest, "is a file; the sample site needs a new folder")
+        raise InputError(dest, f"is a file; {what} needs a new folder")
     if dest.exists() and any(dest.iterdir()) and not overwrite:
         raise InputError(dest, "folder exists and is not empty; choose a new folder (nothing was written)")
     parent = dest.resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=".sample-", dir=parent))
+    tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
     try:
-        _build(tmp, seed)
+        build(tmp)
         publishable(tmp)
         if dest.exists():
             shutil.rmtree(dest)

@@ -45,8 +45,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import shutil
-import tempfile
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
 from pathlib import Path
@@ -64,6 +62,7 @@ from inventory._demo.sample import (
     _csv,
     _iso,
     _shape_record,
+    _write_folder,
     _write_laz,
     _write_npz,
     _write_piles,
@@ -88,8 +87,6 @@ from inventory._demo.simulate import (
     station_rotation,
     to_station_frame,
 )
-from inventory.errors import InputError
-from inventory.io.atomic import publishable
 
 __all__ = ["YARD2_SEED", "SITE_NAME", "PILES", "SURVEYS", "ground_height", "Yard", "yard_at", "write_yard2_site"]
 
@@ -386,24 +383,7 @@ def write_yard2_site(dest: "str | os.PathLike", seed: int = YARD2_SEED, *, overw
     Path
         ``dest``.
     """
-    dest = Path(dest)
-    if dest.exists() and not dest.is_dir():
-        raise InputError(dest, "is a file; the yard needs a new folder")
-    if dest.exists() and any(dest.iterdir()) and not overwrite:
-        raise InputError(dest, "folder exists and is not empty; choose a new folder (nothing was written)")
-    parent = dest.resolve().parent
-    parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=".yard2-", dir=parent))
-    try:
-        _build(tmp, seed)
-        publishable(tmp)
-        if dest.exists():
-            shutil.rmtree(dest)
-        os.replace(tmp, dest)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return dest
+    return _write_folder(dest, lambda tmp: _build(tmp, seed), "the yard", ".yard2-", overwrite)
 
 
 def _build(root: Path, seed: int) -> None:
