@@ -145,7 +145,7 @@ WALL_CLEARANCE_M = 0.25
 
 
 def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_local: np.ndarray,
-                  env: _EnvelopeGrid, params: SlopeGroundParams) -> tuple[np.ndarray, np.ndarray]:
+                  env: _EnvelopeGrid, params: SlopeGroundParams) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Points above the envelope only because of lower ground beyond a wall that stands
     above them (a pile heaped against a bay wall, the pad behind the wall scanned to its
     foot): their numbers among the points of ``env``, their envelope without the wall,
@@ -158,9 +158,10 @@ def _behind_walls(x: np.ndarray, y: np.ndarray, z: np.ndarray, h: np.ndarray, e_
     the wall's cells, above the envelope by more than ``tolerance``, is surface after all
     when it lies on this second envelope (and on its nearest points' envelope, as before)
     and at least :data:`WALL_CLEARANCE_M` below the top of a wall within ``wall_reach``
-    (0: no such rule; the bare-earth pipeline ``terrain.json`` has none, as a bare-earth
-    filter must not keep a low roof beside a taller building). A machine's roof is the top of its own sides and stays above the
-    envelope, the low edge of its side lies in its wall's cells; what else the second
+    (0: no such rule; the bare-earth pipeline ``terrain.json`` has none: the cells of
+    trees and buildings span more than a metre too, and a bare-earth filter must not keep
+    what stands beside them). A machine's roof is the top of its own sides and stays above
+    the envelope, the low edge of its side lies in its wall's cells; what else the second
     envelope lets through is left to the region rules, as any flat top is.
     """
     from scipy import ndimage
