@@ -1079,7 +1079,8 @@ def measure_piles(
         if "hidden_top" in flags:
             warnings.warn(CoverageWarning(
                 f"pile {pid}: its top was not seen; its shape there (a crest or a flat top) leaves "
-                f"{hidden:.0f} m3 open, counted in the interval (+/- {row['volume_ci95_m3']:.0f} m3)"
+                f"{hidden:.0f} m3 open, counted in the interval (+/- {row['volume_ci95_m3']:.0f} m3); "
+                "a scan from a raised station settles it (never from the pile)"
             ))
         rows.append(row)
     return pd.DataFrame(rows, columns=VOLUME_COLUMNS)
