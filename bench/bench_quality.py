@@ -101,7 +101,9 @@ def _measure(root: Path, workers: int | None, objects: bool = False) -> int:
             covered += bool(inside)
             print(f"    {row['pile_id']:4s} {row['volume_m3']:10.1f} m3, true {true:10.1f} m3, error "
                   f"{100 * err:+6.2f} %, 95 % interval +/- {row['volume_ci95_m3']:7.1f} m3 "
-                  f"{'holds' if inside else 'MISSES'} the truth", flush=True)
+                  f"{'holds' if inside else 'MISSES'} the truth"
+                  + (f"; flags {row['flags']}" if isinstance(row.get("flags"), str) and row["flags"] else ""),
+                  flush=True)
     print(f"pile-surveys within 1 %: {within} of {total}; truth inside the 95 % interval: {covered} of {total}")
     return 0
 
