@@ -23,10 +23,9 @@ import numpy as np
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
 from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes,
-                                      chamfer_passes_blocked, envelope_at,
-                                      faces_over, floor_cells, has_company, knn3_mean, member_rows, min_envelope,
-                                      outvoted,
-                                      overhead_layers, plan_knn, plan_knn3)
+                                      chamfer_passes_blocked, envelope_at, faces_over, floor_cells, has_company,
+                                      knn3_mean, member_rows, min_envelope, outvoted, overhead_layers, plan_knn,
+                                      plan_knn3)
 
 __all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -811,9 +810,10 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
     on cells of ``cell`` within :data:`FACE_AROUND_M` of its cell, surface lies lower than
     it by more than ``tolerance`` on the side away from those returns (the pad in front of
     the side, not the pad behind a wall that a pile leans on; any side when they stand
-    within :data:`FACE_PLANE_M` of it, on its own plane), and at most :data:`FACE_HIGHER_MOST` cells hold surface
-    higher than it (other lowest returns of the same vehicle's sides, not a flank). Such a point is the lowest return of a vehicle's side or a chassis edge
-    over ground hidden under it: the pad in front is lower, the object rises over it, and
+    within :data:`FACE_PLANE_M` of it, on its own plane), and at most
+    :data:`FACE_HIGHER_MOST` cells hold surface higher than it (other lowest returns of the
+    same vehicle's sides, not a flank). Such a point is the lowest return of a vehicle's
+    side or a chassis edge over ground hidden under it: the pad in front is lower, the object rises over it, and
     no surface continues upward from it. The slope envelope lets it through when the pad
     in front is farther than its height over ``tan(max_slope)``. A pile's toe has its
     flank rising beside it, a pad point at a wall's foot has no lower pad around it, a

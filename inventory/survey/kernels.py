@@ -19,8 +19,8 @@ not depend on how the rows were split.
   plan), on voxels: the index's cells grouped into columns and split in height by a
   counting sort, the layers of each column read outward from the point's height and
   any voxel skipped that lies farther than the k-th nearest so far.
-* :func:`below_tests`, :func:`min_envelope`, :func:`outvoted`, :func:`faces_over`: the per-point tests of
-  :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
+* :func:`below_tests`, :func:`min_envelope`, :func:`outvoted`, :func:`faces_over`: the
+  per-point tests of :mod:`inventory.survey.ground` over those neighbours, one pass per point with no
   temporary arrays of points by neighbours.
 * :func:`cell_lowest`, :func:`envelope_at`: the seeds of the slope envelope's grid and the
   envelope at query points (:class:`inventory.survey.ground._EnvelopeGrid`).
@@ -55,8 +55,8 @@ from numba import njit
 from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
-           "min_envelope", "has_company", "outvoted", "faces_over", "knn3_mean_from_plan", "lattice_triangles", "run_rows", "morton_order",
-           "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "chamfer_passes_blocked", "floor_cells",
+           "min_envelope", "has_company", "outvoted", "faces_over", "knn3_mean_from_plan", "lattice_triangles",
+           "run_rows", "morton_order", "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "chamfer_passes_blocked", "floor_cells",
            "cell_stats"]
 
 #: Rows per piece when the rows of a job are split over threads (load balance).
@@ -1434,24 +1434,17 @@ def chamfer_passes_blocked(g, weight, block):
                             g[r, j] = v
                             changed = True
                 # along the row, both ways, the run of free cells between blocked ones
-                m = inf
-                for j in range(ncol):
-                    if block[r, j]:
-                        m = inf
-                        continue
-                    m = m + w1 if m + w1 < g[r, j] else g[r, j]
-                    if m < g[r, j]:
-                        g[r, j] = m
-                        changed = True
-                m = inf
-                for j in range(ncol - 1, -1, -1):
-                    if block[r, j]:
-                        m = inf
-                        continue
-                    m = m + w1 if m + w1 < g[r, j] else g[r, j]
-                    if m < g[r, j]:
-                        g[r, j] = m
-                        changed = True
+                for j0, j1, dj in ((0, ncol, 1), (ncol - 1, -1, -1)):
+                    m = inf
+                    for j in range(j0, j1, dj):
+                        if block[r, j]:
+                            m = inf
+                        elif m + w1 < g[r, j]:
+                            m += w1
+                            g[r, j] = m
+                            changed = True
+                        else:
+                            m = g[r, j]
         if not changed:
             break
 
