@@ -295,3 +295,28 @@ def test_low_side_of_a_car_over_hidden_ground_is_not_surface(seed):
     cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
     assert (cls[len(gx):] != GROUND).all()
     assert (cls[:len(gx)] == GROUND).all()
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_chassis_edge_over_ground_no_scanner_saw_is_not_surface(seed):
+    # A truck (8 m x 2.5 m, its side seen from the chassis edge 0.35 m up to 2.5 m) whose
+    # pad was not returned within 3 m of it (too grazing from a far station, or hidden by
+    # other stock): the side's lowest row is the lowest return for metres around, and the
+    # 50 degree envelope from the pad 3 m off lets it through (before the "nothing scanned
+    # straight away" test, all 32 of its points were surface, each seed). The side rises
+    # over the row and no surface lies beyond it: the foot of a face over hidden ground.
+    rng = np.random.default_rng(seed)
+    gx, gy = np.meshgrid(np.arange(0, 24, 0.25), np.arange(0, 20, 0.3))
+    gx, gy = gx.ravel() + rng.normal(0, 0.02, gx.size), gy.ravel() + rng.normal(0, 0.02, gy.size)
+    hidden = (gx > 5.0) & (gx < 19.0) & (gy > 5.0) & (gy < 13.5)
+    gx, gy = gx[~hidden], gy[~hidden]
+    fx, fz = (a.ravel() for a in np.meshgrid(np.arange(8.0, 16.0, 0.25), np.arange(0.35, 2.5, 0.2)))
+    rx, ry = rng.random(200) * 8.0 + 8.0, rng.random(200) * 2.5 + 8.0
+    cx = np.r_[fx, rx]
+    cy = np.r_[np.full(len(fx), 8.0), ry]
+    cz = np.r_[fz, np.full(200, 2.5)]
+    X, Y = np.r_[gx, cx], np.r_[gy, cy]
+    Z = 0.01 * X + np.r_[np.zeros(len(gx)), cz] + rng.normal(0, 0.005, len(X))
+    cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
+    assert (cls[len(gx):] != GROUND).all()
+    assert (cls[:len(gx)] == GROUND).all()

@@ -11,6 +11,7 @@ truth.
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -162,9 +163,11 @@ class SurveyQuality:
     objects_at_ground: float = float("nan")
 
     def __str__(self) -> str:
+        at = ("none in it" if math.isnan(self.objects_at_ground) else
+              f"{100 * self.objects_at_ground:.0f} % of those in it within {100 * AT_GROUND_M:.0f} cm of the "
+              "true surface")
         return (f"{self.date}: machines and vehicles out of the surface class {100 * self.objects_out:.2f} % "
-                f"({100 * self.objects_at_ground:.0f} % of those in it within {100 * AT_GROUND_M:.0f} cm of the "
-                f"true surface), "
+                f"({at}), "
                 f"pile points not surface {100 * self.pile_dropped:.3f} %, surface RMS "
                 f"{100 * self.surface_rms_m:.2f} cm on {self.cells:,} cells ({self.cells_left_out} beside true "
                 f"steps left out)")

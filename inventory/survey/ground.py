@@ -810,14 +810,20 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
     on cells of ``cell`` within :data:`FACE_AROUND_M` of its cell, surface lies lower than
     it by more than ``tolerance`` on the side away from those returns (the pad in front of
     the side, not the pad behind a wall that a pile leans on; any side when they stand
-    within :data:`FACE_PLANE_M` of it, on its own plane), and at most
+    within :data:`FACE_PLANE_M` of it, on its own plane), or no surface at all lies
+    straight away from them (within 60 degrees of the way away; surface points with such
+    returns over them, the same face's other feet, do not count: the pad in front was not
+    returned, too grazing from a far station or hidden); and at most
     :data:`FACE_HIGHER_MOST` cells hold surface higher than it (other lowest returns of the
     same vehicle's sides, not a flank). Such a point is the lowest return of a vehicle's
-    side or a chassis edge over ground hidden under it: the pad in front is lower, the object rises over it, and
-    no surface continues upward from it. The slope envelope lets it through when the pad
-    in front is farther than its height over ``tan(max_slope)``. A pile's toe has its
-    flank rising beside it, a pad point at a wall's foot has no lower pad around it, a
-    crest under a stacker boom has the boom more than ``overhead_gap`` above it.
+    side or a chassis edge over ground hidden under it: the pad in front is lower or
+    unseen, the object rises over it, and no surface continues upward from it. The slope
+    envelope lets it through when the pad in front is farther than its height over
+    ``tan(max_slope)``. A pile's toe has its flank rising beside it, a pad point at a
+    wall's foot has the pad in front of it at its own height (where nothing was returned
+    in front of it, it leaves the surface class: a point of pad lost, no object's height
+    given to the grid), a crest under a stacker boom has the boom more than
+    ``overhead_gap`` above it.
     """
     out = np.zeros(len(z), bool)
     nb = plan.nb
@@ -835,30 +841,37 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
     if not len(rows):
         return out
     # the surface around, on cells of ``cell`` (a face's own returns fill a point's nearest
-    # in plan, so the pad in front is looked for on a grid): lowest and highest within
-    # FACE_AROUND_M
-    from scipy import ndimage
-
+    # in plan, so the pad in front is looked for on a grid): the lowest and highest surface
+    # within FACE_AROUND_M, and where surface with no face over it lies (not the returns of
+    # the object's own feet)
     row, col, shape = _region_cells(x, y, params.cell)
     k = row * shape[1] + col
-    _, _, lo, hi = cell_stats(k, np.ascontiguousarray(z, dtype=np.float64), ground, shape[0] * shape[1])
+    zf = np.ascontiguousarray(z, dtype=np.float64)
+    _, _, lo, hi = cell_stats(k, zf, ground, shape[0] * shape[1])
+    plain = ground.copy()
+    plain[rows] = False
+    cnt, _, _, _ = cell_stats(k, zf, plain, shape[0] * shape[1])
     reach = int(math.ceil(FACE_AROUND_M / params.cell))
-    lowest = ndimage.minimum_filter(lo.reshape(shape), size=2 * reach + 1, mode="constant", cval=np.inf).ravel()
     zr = z[rows]
-    low = lowest[k[rows]] < zr - tol
-    rows, zr, fx, fy = rows[low], zr[low], fx[low], fy[low]
     # around the point: the lower surface must lie away from the face (the pad in front of
-    # a vehicle's side, not the pad behind a wall the point's pile leans on); cells holding
-    # surface higher than the point: a flank rising beside it fills many, other lowest
-    # returns of the same vehicle's sides a few
+    # a vehicle's side, not the pad behind a wall the point's pile leans on), or nothing
+    # be scanned straight away from it (the pad in front hidden or out of the scanners'
+    # reach: the point ends the scan there, under an object); cells holding surface higher
+    # than the point: a flank rising beside it fills many, other lowest returns of the same
+    # vehicle's sides a few
     lo2 = np.pad(lo.reshape(shape), reach, constant_values=np.inf)
     hi2 = np.pad(hi.reshape(shape), reach, constant_values=-np.inf)
+    has2 = np.pad(cnt.reshape(shape) > 0, reach, constant_values=False)
     offs = np.arange(2 * reach + 1)
     vx, vy = (offs[None, :] - reach)[None] * 1.0, (offs[:, None] - reach)[None] * 1.0
+    vn = np.hypot(vx, vy)
     fn = np.hypot(fx, fy)[:, None, None]
+    dot = vx * fx[:, None, None] + vy * fy[:, None, None]
+    ring = vn * params.cell <= FACE_AROUND_M
     # a face right over the point (its side's own plane) has no way to it: any side will do
-    away = ((vx * fx[:, None, None] + vy * fy[:, None, None] < 0.25 * np.hypot(vx, vy) * fn)
-            | (fn < FACE_PLANE_M))
+    plane = fn < FACE_PLANE_M
+    away = (dot < 0.25 * vn * fn) | plane
+    straight = ((dot < -0.5 * vn * fn) | plane) & (vn > 0) & ring
     feet = np.zeros(len(rows), bool)
     for a in range(0, len(rows), 4096):
         b = slice(a, a + 4096)
@@ -866,8 +879,9 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
         win = (r[:, None, None] + offs[:, None], c[:, None, None] + offs[None, :])
         zb = zr[b, None, None]
         lower_away = ((lo2[win] < zb - tol) & away[b]).any(axis=(1, 2))
+        bare = ~(has2[win] & straight[b]).any(axis=(1, 2))
         higher = (hi2[win] > zb + tol).sum(axis=(1, 2))
-        feet[b] = lower_away & (higher <= FACE_HIGHER_MOST)
+        feet[b] = (lower_away | bare) & (higher <= FACE_HIGHER_MOST)
     out[rows[feet]] = True
     return out
 

@@ -49,7 +49,8 @@ chosen in this order:
     of step 1, so the volume is low; ``base_method`` says so).
 
 A footprint whose edge cuts through a pile is flagged (``edge_cut``): along the band just
-outside its boundary (:data:`EDGE_BAND_M`, other footprints left out) the scanned surface is
+outside its boundary (:data:`EDGE_BAND_M`, other footprints left out; cells touching the
+footprint do not count, so a wall's face on the edge line does not) the scanned surface is
 still thicker than ``min_thickness_m`` over at least :data:`EDGE_MIN_LENGTH_M` of the edge,
 above the outside base and above the pile's own base (its toe plane, level or floor).
 """
@@ -291,7 +292,12 @@ def _edges(surface: Surface, foots, thick: np.ndarray, min_thickness_m: float,
     the pile's toe plane is fitted to that very pad.
     """
     grid = surface.grid
-    band_w = max(EDGE_BAND_M, grid.cell)
+    # Only cells clear of the footprint count (centres more than half a cell's diagonal
+    # outside it): a cell touching the edge holds what stands on the edge line, such as the
+    # returns of a wall's face just above the material heaped against it, and material
+    # that the edge cuts goes on beyond that first row.
+    clear = grid.cell / math.sqrt(2.0)
+    band_w = max(EDGE_BAND_M, clear + grid.cell)
     polys = [(pid, g) for pid, g, _ in foots if g is not None]
     spec_of = {pid: sp for (pid, _, _), sp in zip(foots, specs)} if specs is not None else {}
     recs = []
@@ -307,6 +313,7 @@ def _edges(surface: Surface, foots, thick: np.ndarray, min_thickness_m: float,
             continue
         x, y = _centres(grid, rows, cols)
         sel = shapely.contains_xy(band, x, y) & (surface.count[rows, cols] > 0)
+        away = shapely.distance(poly, shapely.points(x, y)) > clear
         t = thick[rows, cols]
         if pid in spec_of:
             own = _own_base(surface, pid, poly, spec_of[pid], base or BaseSurfaces(), polys, noise_sd, rows, cols)
@@ -314,7 +321,7 @@ def _edges(surface: Surface, foots, thick: np.ndarray, min_thickness_m: float,
                 t_own = surface.z[rows, cols] - own
                 t = np.where(np.isfinite(t_own), np.minimum(t, t_own), t)
         hot = sel & np.isfinite(t) & (t > min_thickness_m)
-        length = float(hot.sum()) * grid.cell_area / band_w
+        length = float((hot & away).sum()) * grid.cell_area / (band_w - clear)
         if length >= EDGE_MIN_LENGTH_M:
             recs.append({"pile_id": pid, "edge_cut_length_m": length,
                          "edge_max_thickness_m": float(np.max(t[hot]))})
