@@ -28,6 +28,7 @@ from inventory._demo.shapes import Cone, Windrow
 from inventory.model.grid import Grid, Surface
 from inventory.site.load import Material
 from inventory.survey.gridding import fill_holes, grid_points
+from inventory.volume import base as vb
 from inventory.volume import measure as vm
 from inventory.volume.base import residual_correlation, toe_base
 from inventory.volume.gapfill import fill_slope_breaks
@@ -311,3 +312,56 @@ def test_toe_correlated_term_is_the_fields_departure_from_the_ring_plane():
     direct = 0.01 * math.sqrt(vals @ rho @ vals)
     assert toe.sigma_correlated_m3 == pytest.approx(direct, rel=0.02)
     assert toe.sigma_correlated_m3 < 0.5 * level.sigma_correlated_m3
+
+
+# -------------------------------------------------------- toe plane probed on open ground
+def _rolling(amp, wavelength=50.0, size=160.0):
+    """Ground rolling in both directions (``amp`` m, ``wavelength`` m) with a cone (r 6 m,
+    35 degrees) on a crest at the centre; every cell scanned."""
+    g = Grid(-size / 2, size / 2, 0.5, int(size / 0.5), int(size / 0.5))
+    x, y = g.centers()
+    k = 2 * math.pi / wavelength
+    ground = 10.0 + amp * np.cos(k * x) * np.cos(k * y)
+    cone = Cone(0.0, 0.0, 6.0, 35.0)
+    z = ground + cone.thickness(x, y)
+    count = np.full(g.shape, 4, np.int32)
+    return Surface(g, z, count, np.zeros(g.shape), np.zeros(g.shape, bool)), cone, ground
+
+
+def test_toe_plane_probes_see_the_crest_the_ring_cannot():
+    # A cone on the crest of rolling ground (15 cm, 50 m waves): the ground under it stands
+    # above the plane through its ring all round, which the ring's residuals cannot show
+    # (the rise is nearly the same all round the ring). Copies of the footprint and ring on
+    # the open ground around find the plane off by centimetres, and the interval holds.
+    s, cone, ground = _rolling(0.15)
+    poly = shapely.Point(0, 0).buffer(7.0, quad_segs=64)
+    a = s.grid.cell_area
+    x, y = s.grid.centers()
+    row = _measure(s, poly, "toe")
+    err = row.volume_m3 - cone.volume()        # cone: pi r^2 h / 3 (Shapes.Cone.volume)
+    assert err > 5.0                            # the plane lies under the crest: +7.5 m3 of 158
+    sig, n = vb.toe_probe_sigma(s.grid, s.z, vb.open_ground(s.z, s.count, s.filled, s.grid, [poly], 3.0),
+                                poly, 3.0)
+    assert n >= vb.PROBE_LEAST
+    # the copies' errors, on crests, troughs and the slopes between: a few centimetres
+    assert 0.01 < sig < 0.06
+    # the base term is that error over the cells that carry volume (the cone's and the
+    # crest's above the plane: between the cone's base and the footprint)
+    assert sig * np.pi * 36 <= row.sigma_base_m3 <= sig * np.pi * 49 * 1.05
+    assert abs(err) <= row.volume_ci95_m3
+    # the ring's own term alone (no copies) gives an interval that misses
+    model = toe_base(s.grid, poly, [], s.z, s.count, s.sd, s.filled, 3.0, 0.0)
+    pos = shapely.contains_xy(poly, x, y) & (s.z - model.at(x, y) > 0)
+    assert 1.96 * model.volume_sigma(np.full(int(pos.sum()), a), x[pos], y[pos]) < abs(err)
+
+
+def test_toe_plane_probes_on_a_plane_change_nothing():
+    # Flat open ground: every copy's plane fits exactly, and the ring's own term stands.
+    s, cone, _ = _rolling(0.0)
+    poly = shapely.Point(0, 0).buffer(7.0, quad_segs=64)
+    sig, n = vm.toe_probe_sigma(s.grid, s.z, vm.open_ground(s.z, s.count, s.filled, s.grid, [poly], 3.0),
+                                poly, 3.0)
+    assert n == vb.PROBE_MOST and sig < 1e-9
+    row = _measure(s, poly, "toe")
+    assert row.volume_m3 == pytest.approx(cone.volume(), rel=0.02)
+    assert row.sigma_base_m3 < 0.05

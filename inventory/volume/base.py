@@ -76,6 +76,9 @@ class BaseModel:
     noise, ``ring_cells`` the inlier ring cells and ``ring_independent`` the number of
     independent cells they amount to; ``ring_xy`` and ``ring_hat`` the inlier cells' centres
     and the plane's parameters as weights on their elevations, ``(X^T X)^-1 X^T``.
+    ``probe_sigma_m`` and ``probe_count``: the toe plane's mean departure from the ground
+    under the footprint as measured by copies of the footprint and its ring on open ground
+    of the same survey (:func:`toe_probe_sigma`; 0 and 0 when not probed).
     """
 
     kind: str
@@ -96,6 +99,8 @@ class BaseModel:
     note: str = ""
     flags: list[str] = field(default_factory=list)
     ok: bool = True
+    probe_sigma_m: float = 0.0
+    probe_count: int = 0
 
     def at(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
         """Base elevation at points."""
@@ -145,6 +150,14 @@ class BaseModel:
             var += self.rough_sigma_m**2 * _exp_double_sum(
                 w_area, x, y, self.grid.cell, self.rough_length_m
             )
+        # The ring cannot see every shape of the ground under the pile (a dome or a dip
+        # whose rise is the same all round the ring moves the plane's height, not its
+        # residuals). Where copies of the footprint on open ground of the same survey found
+        # the plane off by more than this model says, their spread is taken instead.
+        probe = self.probe_sigma_m * a_pos
+        if self.probe_count >= PROBE_LEAST and probe > math.sqrt(max(var, 0.0)) * (
+                1.0 + 2.0 / math.sqrt(2.0 * self.probe_count)):
+            var = probe**2
         return float(np.sqrt(max(var, 0.0)))
 
     def ring_weights(self, w_area: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray | None:
@@ -406,3 +419,96 @@ def toe_base(
     extra = (f"toe plane through {n_in} ring cells ({n_eff:.0f} independent), {rejected * 100:.0f} % rejected")
     model.note = (model.note + "; " if model.note else "") + extra
     return model
+
+
+#: Copies of a footprint and its toe ring on open ground (:func:`toe_probe_sigma`): at
+#: most this many, the nearest to the pile first ...
+PROBE_MOST = 48
+#: ... at least this many, or no probe term ...
+PROBE_LEAST = 8
+#: ... within this distance (m) of the footprint's own place (the ground nearby) ...
+PROBE_REACH_M = 150.0
+#: ... each with at least this share of its footprint's and of its ring's cells on open
+#: ground.
+PROBE_OPEN_SHARE = 0.9
+#: Open ground lies at least this far (m) beyond the toe ring of every footprint.
+PROBE_CLEAR_M = 2.0
+#: Median of a chi-square variable of one degree of freedom: for normal b of sd sigma,
+#: median(b^2) = 0.45494 sigma^2 (from memory; scipy.stats.chi2(1).median()).
+_CHI2_1_MEDIAN = 0.45494
+
+
+def open_ground(z: np.ndarray, count: np.ndarray, filled: np.ndarray, grid: Grid,
+                footprints: list[shapely.Geometry], ring_m: float) -> np.ndarray:
+    """Cells of scanned surface (not filled) farther than ``ring_m`` + :data:`PROBE_CLEAR_M`
+    from every footprint: ground no pile stands on, as far as the site's footprints say."""
+    out = (count > 0) & ~filled & np.isfinite(z)
+    if footprints and out.any():
+        block = shapely.union_all([g.buffer(ring_m + PROBE_CLEAR_M) for g in footprints])
+        rows, cols = grid.window(*block.bounds)
+        if rows.stop > rows.start and cols.stop > cols.start:
+            xs = grid.west + (np.arange(cols.start, cols.stop) + 0.5) * grid.cell
+            ys = grid.north - (np.arange(rows.start, rows.stop) + 0.5) * grid.cell
+            xx, yy = np.meshgrid(xs, ys)
+            out[rows, cols] &= ~shapely.contains_xy(block, xx, yy)
+    return out
+
+
+def toe_probe_sigma(grid: Grid, z: np.ndarray, open_: np.ndarray, polygon: shapely.Geometry,
+                    ring_m: float) -> tuple[float, int]:
+    """How far a toe plane misses the ground under a footprint, measured on open ground.
+
+    The footprint and its ring (``ring_m`` wide) are copied, by whole cells, to places near
+    the pile (within :data:`PROBE_REACH_M`) where both lie on ``open_`` ground
+    (:func:`open_ground`; at least :data:`PROBE_OPEN_SHARE` of each), at most one copy per
+    square of half the copy's size, the nearest :data:`PROBE_MOST`. At each, a plane is
+    fitted through the ring's cells as :func:`toe_base` fits it, and the mean of the
+    ground's departure from it over the footprint's cells is that copy's base error. The
+    result is a robust root mean square of those errors (from their median square) and the
+    number of copies; (0, n) with fewer than :data:`PROBE_LEAST` copies.
+    """
+    outer = polygon.buffer(ring_m)
+    rows, cols = grid.window(*outer.bounds)
+    h, w = rows.stop - rows.start, cols.stop - cols.start
+    if h <= 0 or w <= 0:
+        return 0.0, 0
+    xs = (np.arange(w) + 0.5) * grid.cell
+    ys = -(np.arange(h) + 0.5) * grid.cell
+    xx, yy = np.meshgrid(xs + grid.west + cols.start * grid.cell, ys + grid.north - rows.start * grid.cell)
+    fm = shapely.contains_xy(polygon, xx, yy)
+    rm = shapely.contains_xy(outer, xx, yy) & ~fm
+    nf, nr = int(fm.sum()), int(rm.sum())
+    if nf == 0 or nr < MIN_RING_CELLS:
+        return 0.0, 0
+    reach = int(math.ceil(PROBE_REACH_M / grid.cell))
+    r0, r1 = max(rows.start - reach, 0), min(rows.stop + reach, grid.nrows)
+    c0, c1 = max(cols.start - reach, 0), min(cols.stop + reach, grid.ncols)
+    o = open_[r0:r1, c0:c1]
+    if o.shape[0] < h or o.shape[1] < w or not o.any():
+        return 0.0, 0
+    of = o.astype(float)
+    cover_f = fftconvolve(of, fm[::-1, ::-1].astype(float), mode="valid")
+    cover_r = fftconvolve(of, rm[::-1, ::-1].astype(float), mode="valid")
+    ii, jj = np.nonzero((cover_f >= PROBE_OPEN_SHARE * nf - 0.5) & (cover_r >= PROBE_OPEN_SHARE * nr - 0.5))
+    if len(ii) < PROBE_LEAST:
+        return 0.0, len(ii)
+    # one copy per square of half the copy's size, the nearest to the pile's own place
+    step = max(1, min(h, w) // 2)
+    d = np.hypot(ii - (rows.start - r0), jj - (cols.start - c0))
+    order = np.lexsort((jj, ii, d))
+    ii, jj = ii[order], jj[order]
+    _, first = np.unique((ii // step) * (o.shape[1] // step + 1) + jj // step, return_index=True)
+    first = np.sort(first)[:PROBE_MOST]
+    if len(first) < PROBE_LEAST:
+        return 0.0, len(first)
+    ux, uy = xs[None, :] - xs.mean() + 0 * ys[:, None], ys[:, None] - ys.mean() + 0 * xs[None, :]
+    errs = []
+    for i, j in zip(ii[first], jj[first]):
+        zz = z[r0 + i:r0 + i + h, c0 + j:c0 + j + w]
+        ow = o[i:i + h, j:j + w]
+        ring, foot = rm & ow, fm & ow
+        fit = fit_plane_robust(ux[ring], uy[ring], zz[ring], np.zeros(int(ring.sum())))
+        p = fit["p"]
+        errs.append(float(np.mean(zz[foot] - (p[0] + p[1] * ux[foot] + p[2] * uy[foot]))))
+    e2 = np.square(errs)
+    return float(math.sqrt(np.median(e2) / _CHI2_1_MEDIAN)), len(errs)

@@ -48,7 +48,8 @@ from inventory.errors import CoverageWarning, CRSError, InputError, InputWarning
 from inventory.io.rasters import read_raster
 from inventory.model.grid import Grid, Surface, lone_patches
 from inventory.site.load import Material, parse_base
-from inventory.volume.base import BaseModel, bilinear, fill_nearest, toe_base
+from inventory.volume.base import (PROBE_LEAST, BaseModel, bilinear, fill_nearest, open_ground, toe_base,
+                                   toe_probe_sigma)
 from inventory.volume.gapfill import fill_slope_breaks
 from inventory.volume.tin import tin_volume
 
@@ -1030,6 +1031,7 @@ def measure_piles(
     foots = _footprints(piles)
     pts = None if points is None else np.asarray(points, dtype=float).reshape(-1, 3)
     rows: list[dict[str, Any]] = []
+    ground: np.ndarray | None = None   # open ground for the toe planes' probes, made once
     for i, (pid, poly, gflags) in enumerate(foots):
         rec = piles.iloc[i]
         spec = str(rec["base"])
@@ -1053,6 +1055,15 @@ def measure_piles(
                     flags.append("off_grid")
         if work is not None:
             flags.extend(work.flags)
+            if work.model.kind == "toe" and work.model.ok:
+                if ground is None:
+                    ground = open_ground(surface.z, surface.count, surface.filled, surface.grid,
+                                         [g for _, g, _ in foots if g is not None], base.toe_ring_m)
+                sig, n = toe_probe_sigma(surface.grid, surface.z, ground, poly, base.toe_ring_m)
+                work.model.probe_sigma_m, work.model.probe_count = sig, n
+                if n >= PROBE_LEAST:
+                    work.model.note += (f"; on {n} copies of the footprint on open ground nearby the "
+                                        f"toe plane was off by {100 * sig:.1f} cm rms")
             row["base_note"] = work.model.note
             row["base_residual_m"] = work.model.residual_m if work.model.ok else np.nan
             if work.model.ok:
