@@ -800,7 +800,7 @@ def _gap_correlation_sum(xy: np.ndarray, s: np.ndarray, length: np.ndarray) -> f
 
 def _pair_sum(xy: np.ndarray, s: np.ndarray, length: np.ndarray, ia: np.ndarray, ib: np.ndarray,
               reach: float) -> float:
-    """:math:`\sum_{i \in ia} \sum_{j \in ib} s_i s_j \rho_{ij}` over the pairs within
+    r""":math:`\sum_{i \in ia} \sum_{j \in ib} s_i s_j \rho_{ij}` over the pairs within
     ``reach`` in x (both index sets in increasing x)."""
     xa, xb = xy[ia], xy[ib]
     sa, sb, la, lb = s[ia], s[ib], length[ia], length[ib]
