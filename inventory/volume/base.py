@@ -426,8 +426,11 @@ def toe_base(
 PROBE_MOST = 48
 #: ... at least this many, or no probe term ...
 PROBE_LEAST = 8
-#: ... within this distance (m) of the footprint's own place (the ground nearby) ...
+#: ... within this distance (m) of the footprint's own place (the ground nearby), and
+#: within this many cells (on fine grids the search, an FFT over that window, stays
+#: small) ...
 PROBE_REACH_M = 150.0
+PROBE_REACH_CELLS = 400
 #: ... each with at least this share of its footprint's and of its ring's cells on open
 #: ground.
 PROBE_OPEN_SHARE = 0.9
@@ -459,7 +462,8 @@ def toe_probe_sigma(grid: Grid, z: np.ndarray, open_: np.ndarray, polygon: shape
     """How far a toe plane misses the ground under a footprint, measured on open ground.
 
     The footprint and its ring (``ring_m`` wide) are copied, by whole cells, to places near
-    the pile (within :data:`PROBE_REACH_M`) where both lie on ``open_`` ground
+    the pile (within :data:`PROBE_REACH_M` and :data:`PROBE_REACH_CELLS`) where both lie on
+    ``open_`` ground
     (:func:`open_ground`; at least :data:`PROBE_OPEN_SHARE` of each), at most one copy per
     square of half the copy's size, the nearest :data:`PROBE_MOST`. At each, a plane is
     fitted through the ring's cells as :func:`toe_base` fits it, and the mean of the
@@ -480,7 +484,7 @@ def toe_probe_sigma(grid: Grid, z: np.ndarray, open_: np.ndarray, polygon: shape
     nf, nr = int(fm.sum()), int(rm.sum())
     if nf == 0 or nr < MIN_RING_CELLS:
         return 0.0, 0
-    reach = int(math.ceil(PROBE_REACH_M / grid.cell))
+    reach = min(int(math.ceil(PROBE_REACH_M / grid.cell)), PROBE_REACH_CELLS)
     r0, r1 = max(rows.start - reach, 0), min(rows.stop + reach, grid.nrows)
     c0, c1 = max(cols.start - reach, 0), min(cols.stop + reach, grid.ncols)
     o = open_[r0:r1, c0:c1]
