@@ -865,21 +865,22 @@ def _face_feet(x: np.ndarray, y: np.ndarray, z: np.ndarray, cls: np.ndarray, pla
     offs = np.arange(2 * reach + 1)
     vx, vy = (offs[None, :] - reach)[None] * 1.0, (offs[:, None] - reach)[None] * 1.0
     vn = np.hypot(vx, vy)
-    fn = np.hypot(fx, fy)[:, None, None]
-    dot = vx * fx[:, None, None] + vy * fy[:, None, None]
-    ring = vn * params.cell <= FACE_AROUND_M
-    # a face right over the point (its side's own plane) has no way to it: any side will do
-    plane = fn < FACE_PLANE_M
-    away = (dot < 0.25 * vn * fn) | plane
-    straight = ((dot < -0.5 * vn * fn) | plane) & (vn > 0) & ring
+    ring = (vn * params.cell <= FACE_AROUND_M) & (vn > 0)
     feet = np.zeros(len(rows), bool)
     for a in range(0, len(rows), 4096):
         b = slice(a, a + 4096)
         r, c = row[rows[b]], col[rows[b]]
         win = (r[:, None, None] + offs[:, None], c[:, None, None] + offs[None, :])
         zb = zr[b, None, None]
-        lower_away = ((lo2[win] < zb - tol) & away[b]).any(axis=(1, 2))
-        bare = ~(has2[win] & straight[b]).any(axis=(1, 2))
+        fn = np.hypot(fx[b], fy[b])[:, None, None]
+        dot = vx * fx[b, None, None] + vy * fy[b, None, None]
+        # a face right over the point (its side's own plane) has no way to it: any side
+        # will do; straight away: within 60 degrees of the way away from the face
+        plane = fn < FACE_PLANE_M
+        away = (dot < 0.25 * vn * fn) | plane
+        straight = ((dot < -0.5 * vn * fn) | plane) & ring
+        lower_away = ((lo2[win] < zb - tol) & away).any(axis=(1, 2))
+        bare = ~(has2[win] & straight).any(axis=(1, 2))
         higher = (hi2[win] > zb + tol).sum(axis=(1, 2))
         feet[b] = (lower_away | bare) & (higher <= FACE_HIGHER_MOST)
     out[rows[feet]] = True
