@@ -784,7 +784,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # after all and take part in the region rules below.
     noise = ignore & (classification == LOW_NOISE)
     rescued = np.zeros(len(z), bool)
-    late = np.zeros(len(z), bool)
+    under = np.zeros(0, np.int64)
     if noise.any():
         en = envelope.at(x[noise], y[noise])
         hn = z[noise] - en
@@ -794,22 +794,8 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
         sub[high] = HIGH_NOISE
         out[noise] = sub
         rescued[np.flatnonzero(noise)[np.isfinite(hn) & (np.abs(hn) <= params.tolerance)]] = True
-        # deeper under the envelope: surface where the surface around continues through
-        # them; they join after the region rules (they lie under the surface, no object's
-        # top), so that they change none of those rules' islands and patches
-        # Judged again with those rescued among the surface (a sparse flank whose lowest
-        # returns were taken for noise wholesale), while any is.
+        # deeper under the envelope: judged after the region rules (below)
         under = np.flatnonzero(noise)[np.isfinite(hn) & (hn < -params.tolerance)]
-        top = np.flatnonzero(use)[zu - e <= params.tolerance]
-        for _ in range(RESCUE_ROUNDS):
-            if not len(under):
-                break
-            ok = _within_surface_cone(x, y, z, top, under, params)
-            if not ok.any():
-                break
-            late[under[ok]] = True
-            top = np.concatenate([top, under[ok]])
-            under = under[~ok]
     judged = use | rescued
     xs, ys, zs, hs = x[judged], y[judged], z[judged], height[judged]
     ground = (hs <= params.tolerance) | rescued[judged] | behind[judged]
@@ -828,7 +814,21 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # rescued points are surface or, if a region rule took them out, stay noise
     cls[rescued[judged] & ~ground] = LOW_NOISE
     out[judged] = cls
-    out[late] = GROUND
+    # Noise points deeper under the envelope are surface where the surface the region
+    # rules left continues through them (they lie under it: no object's top), judged
+    # again with those rescued among the surface (a sparse flank whose lowest returns
+    # were taken for noise wholesale) while any is; after the region rules, so that they
+    # change none of those rules' islands and patches.
+    top = np.flatnonzero(out == GROUND)
+    for _ in range(RESCUE_ROUNDS):
+        if not len(under):
+            break
+        ok = _within_surface_cone(x, y, z, top, under, params)
+        if not ok.any():
+            break
+        out[under[ok]] = GROUND
+        top = np.concatenate([top, under[ok]])
+        under = under[~ok]
     out[_outvoted(z, out, plan, params)] = UNCLASSIFIED
     out[_face_feet(x, y, z, out, plan, params)] = UNCLASSIFIED
     return out, height

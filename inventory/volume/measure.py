@@ -867,7 +867,8 @@ def _measure_one(
     cut = float(np.sum(w * a * np.clip(-t, 0, None), where=inside))
     # of the whole footprint: a part off the survey's grid (beyond the cloud) was not
     # scanned either, and it holds no volume here (flag off_grid_part)
-    scanned_fraction = float(np.sum(w * work.scanned) * a / max(float(np.sum(w)) * a, poly.area))
+    covered = poly.area if "off_grid_part" in work.flags else float(np.sum(w)) * a
+    scanned_fraction = float(np.sum(w * work.scanned) * a / covered)
 
     cnt = surface.count[work.rows, work.cols].astype(float)
     sd = surface.sd[work.rows, work.cols]
