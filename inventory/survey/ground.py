@@ -686,6 +686,67 @@ def slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np
     return out_cls, out_h
 
 
+#: Surface points around a noise point that :func:`_within_surface_cone` fits its plane to.
+RESCUE_NEIGHBOURS = 8
+#: Rounds of :func:`_within_surface_cone` at most, each judging the rest with the points
+#: rescued before it among the surface: where most of a flank's returns were taken for
+#: noise (0.36 returns per m2) each round climbs about one point spacing up it from the
+#: toe; the rounds stop as soon as one rescues nothing (one or two on a dense survey).
+RESCUE_ROUNDS = 16
+
+
+def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.ndarray,
+                         query: np.ndarray, params: SlopeGroundParams) -> np.ndarray:
+    """Which noise points ``query``, lying under the envelope of the rest, are surface all
+    the same: the surface around them continues through them.
+
+    Of the :data:`RESCUE_NEIGHBOURS` nearest surface points in plan (the points
+    ``top``), the nearest lies within
+    :data:`ISOLATION_M`, none stands higher or lower than the point by more than a slope
+    of ``max_slope_deg`` climbs over the distance between them, plus ``tolerance`` (the
+    point would lower the envelope only where the rule lets a surface go, and it lies on
+    the envelope of those neighbours), and the point lies under their least-squares
+    plane by no more than ``tolerance`` and twice their own scatter about it (above it is
+    allowed: a cone's flank curves over its chords).
+
+    Such a point is the lowest return of a flank too sparsely sampled to hold another
+    point below it within the steeper cone: a 35 degree flank scanned from the air at
+    under one return per m2, whose lowest return in a 2 m cell ``filters.elm`` takes for
+    low noise (the next one up lies more than its 1 m threshold higher). A point on a
+    flank lies under the envelope of the others, the deeper the sparser the points. A
+    multipath return or a pit under the surface lies under the slope cone of the surface
+    above it, or under the plane of the surface around it (a shadow's rim), and stays
+    noise.
+    """
+    k = RESCUE_NEIGHBOURS
+    out = np.zeros(len(query), bool)
+    if len(top) < k or not len(query):
+        return out
+    xt, yt, zt = (np.ascontiguousarray(v[top], dtype=np.float64) for v in (x, y, z))
+    qx, qy, qz = x[query], y[query], z[query]
+    nb = plan_knn(CellIndex(xt, yt, k=k), np.ascontiguousarray(qx, dtype=np.float64),
+                  np.ascontiguousarray(qy, dtype=np.float64), k, dist=False)
+    ok = (nb >= 0).all(axis=1)
+    nb = np.where(nb >= 0, nb, 0)
+    dx, dy, dz = xt[nb] - qx[:, None], yt[nb] - qy[:, None], zt[nb] - qz[:, None]
+    t = math.tan(math.radians(params.max_slope_deg))
+    dist = np.hypot(dx, dy)
+    ok &= (np.abs(dz) <= t * dist + params.tolerance).all(axis=1)
+    ok &= dist.min(axis=1) <= ISOLATION_M
+    # the neighbours' plane at the point: least squares in coordinates centred on it
+    a = np.stack([np.ones_like(dx), dx, dy], axis=2)
+    ata = np.einsum("nki,nkj->nij", a, a)
+    atb = np.einsum("nki,nk->ni", a, dz)
+    well = ok & (np.abs(np.linalg.det(ata)) > 1e-9)
+    coef = np.zeros((len(query), 3))
+    if well.any():
+        coef[well] = np.linalg.solve(ata[well], atb[well][:, :, None])[:, :, 0]
+    # the neighbours' own scatter about their plane (a curved flank's, its noise)
+    spread = np.sqrt(np.sum((dz - np.einsum("nki,ni->nk", a, coef)) ** 2, axis=1) / (k - 3))
+    out[well] = coef[well, 0] <= params.tolerance + 2.0 * spread[well]
+    return out
+
+
 def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: np.ndarray,
                   ignore: np.ndarray, params: SlopeGroundParams, plan: "_PlanNeighbours"
                   ) -> tuple[np.ndarray, np.ndarray]:
@@ -725,6 +786,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # after all and take part in the region rules below.
     noise = ignore & (classification == LOW_NOISE)
     rescued = np.zeros(len(z), bool)
+    under = np.zeros(0, np.int64)
     if noise.any():
         en = envelope.at(x[noise], y[noise])
         hn = z[noise] - en
@@ -734,6 +796,8 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
         sub[high] = HIGH_NOISE
         out[noise] = sub
         rescued[np.flatnonzero(noise)[np.isfinite(hn) & (np.abs(hn) <= params.tolerance)]] = True
+        # deeper under the envelope: judged after the region rules (below)
+        under = np.flatnonzero(noise)[np.isfinite(hn) & (hn < -params.tolerance)]
     judged = use | rescued
     xs, ys, zs, hs = x[judged], y[judged], z[judged], height[judged]
     ground = (hs <= params.tolerance) | rescued[judged] | behind[judged]
@@ -752,6 +816,21 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # rescued points are surface or, if a region rule took them out, stay noise
     cls[rescued[judged] & ~ground] = LOW_NOISE
     out[judged] = cls
+    # Noise points deeper under the envelope are surface where the surface the region
+    # rules left continues through them (they lie under it: no object's top), judged
+    # again with those rescued among the surface (a sparse flank whose lowest returns
+    # were taken for noise wholesale) while any is; after the region rules, so that they
+    # change none of those rules' islands and patches.
+    top = np.flatnonzero(out == GROUND)
+    for _ in range(RESCUE_ROUNDS):
+        if not len(under):
+            break
+        ok = _within_surface_cone(x, y, z, top, under, params)
+        if not ok.any():
+            break
+        out[under[ok]] = GROUND
+        top = np.concatenate([top, under[ok]])
+        under = under[~ok]
     out[_outvoted(z, out, plan, params)] = UNCLASSIFIED
     out[_face_feet(x, y, z, out, plan, params)] = UNCLASSIFIED
     return out, height

@@ -316,6 +316,37 @@ def _classify_jobs(ex: Executor, spill: TileSpill, buffer_m: float, job_points: 
     return out
 
 
+#: The surface grid reaches this far beyond a footprint that runs off the surface's box
+#: (m): cells 1 m and more outside every footprint are the pile's floor to the volume
+#: step's interpolation (``inventory.volume.measure``), and one more cell.
+FOOTPRINT_SURROUND_M = 2.0
+
+
+def _reach_footprints(box: list[float], piles: Any) -> list[float]:
+    """``box`` (xmin, ymin, xmax, ymax) widened to every footprint it touches, and
+    :data:`FOOTPRINT_SURROUND_M` around it: a pile at the edge of a survey, the cloud
+    ending on its flank, gets unscanned cells over the rest of its footprint, which the
+    volume step fills and counts as a gap (interpolated, with its uncertainty), instead
+    of a footprint running off the grid, whose part beyond holds nothing. A footprint the
+    box does not touch (a pile another survey covers) leaves it as it is."""
+    if piles is None or not len(piles):
+        return box
+    import shapely
+
+    geoms = np.asarray(piles.geometry.values)
+    ok = np.array([g is not None and not shapely.is_empty(g) for g in geoms], bool)
+    if not ok.any():
+        return box
+    b = shapely.bounds(geoms[ok])
+    touch = (b[:, 0] <= box[2]) & (b[:, 2] >= box[0]) & (b[:, 1] <= box[3]) & (b[:, 3] >= box[1])
+    if not touch.any():
+        return box
+    b = b[touch]
+    m = FOOTPRINT_SURROUND_M
+    return [min(box[0], float(b[:, 0].min()) - m), min(box[1], float(b[:, 1].min()) - m),
+            max(box[2], float(b[:, 2].max()) + m), max(box[3], float(b[:, 3].max()) + m)]
+
+
 def _grid_surface(spill: TileSpill, classified: _Classified, site: Site, date: str) -> Surface:
     """The surface grid, unfilled, put together from the jobs' cells.
 
@@ -327,6 +358,7 @@ def _grid_surface(spill: TileSpill, classified: _Classified, site: Site, date: s
     box = classified.ground_box
     if not math.isfinite(box[0]):
         raise RunError(f"survey {date}: no point was classified as surface")
+    box = _reach_footprints(box, getattr(site, "piles", None))
     grid_cfg = site.config.grid
     sgrid = Grid.snapped(*box, cell=float(grid_cfg.cell_size_m), crs=site.crs)
     return grid_tiles(spill.grid, classified.cell_files, sgrid, grid_cfg.statistic, date)

@@ -839,6 +839,11 @@ def _tin(work: _PileWork, poly: shapely.Geometry, points: np.ndarray | None) -> 
         px, py, pz = x[use], y[use], work.z[use]
     outline = shapely.segmentize(shapely.boundary(poly), sub.cell)
     ox, oy = shapely.get_coordinates(outline).T
+    # not where the footprint runs off the survey's grid: the surface there would be the
+    # grid edge's, carried on (the grid volume has nothing there, flag off_grid_part)
+    west, south, east, north = sub.bounds
+    on = (ox >= west) & (ox <= east) & (oy >= south) & (oy <= north)
+    ox, oy = ox[on], oy[on]
     oz = bilinear(sub, work.z, ox, oy)
     xy = np.concatenate([np.column_stack([px, py]), np.column_stack([ox, oy])])
     zz = np.concatenate([pz, oz])
@@ -861,7 +866,10 @@ def _measure_one(
     t = work.z - work.base
     fill = float(np.sum(w * a * np.clip(t, 0, None), where=inside))
     cut = float(np.sum(w * a * np.clip(-t, 0, None), where=inside))
-    scanned_fraction = float(np.sum(w * work.scanned) / np.sum(w))
+    # of the whole footprint: a part off the survey's grid (beyond the cloud) was not
+    # scanned either, and it holds no volume here (flag off_grid_part)
+    covered = poly.area if "off_grid_part" in work.flags else float(np.sum(w)) * a
+    scanned_fraction = float(np.sum(w * work.scanned) * a / covered)
 
     cnt = surface.count[work.rows, work.cols].astype(float)
     sd = surface.sd[work.rows, work.cols]
