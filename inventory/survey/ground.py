@@ -693,6 +693,9 @@ RESCUE_NEIGHBOURS = 8
 #: noise (0.36 returns per m2) each round climbs about one point spacing up it from the
 #: toe; the rounds stop as soon as one rescues nothing (one or two on a dense survey).
 RESCUE_ROUNDS = 16
+#: How far above its neighbours' plane (times their mean distance in plan) a rescued point
+#: may lie: a convex flank's bulge over its chords.
+RESCUE_BULGE = 0.1
 
 
 def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.ndarray,
@@ -706,8 +709,10 @@ def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.nd
     of ``max_slope_deg`` climbs over the distance between them, plus ``tolerance`` (the
     point would lower the envelope only where the rule lets a surface go, and it lies on
     the envelope of those neighbours), and the point lies under their least-squares
-    plane by no more than ``tolerance`` and twice their own scatter about it (above it is
-    allowed: a cone's flank curves over its chords).
+    plane by no more than ``tolerance`` and twice their own scatter about it, nor above
+    it by more than that and :data:`RESCUE_BULGE` times their mean distance (a cone's
+    flank curves over its chords; a return well above the surface around it is something
+    standing on it, as a loader's return 0.7 m over the pad at a reclaim face was).
 
     Such a point is the lowest return of a flank too sparsely sampled to hold another
     point below it within the steeper cone: a 35 degree flank scanned from the air at
@@ -743,7 +748,11 @@ def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.nd
         coef[well] = np.linalg.solve(ata[well], atb[well][:, :, None])[:, :, 0]
     # the neighbours' own scatter about their plane (a curved flank's, its noise)
     spread = np.sqrt(np.sum((dz - np.einsum("nki,ni->nk", a, coef)) ** 2, axis=1) / (k - 3))
-    out[well] = coef[well, 0] <= params.tolerance + 2.0 * spread[well]
+    # above the plane by no more than a flank's curvature over the chords between its
+    # neighbours (a tenth of their mean distance, a cone of 2 m radius and more) allows: a
+    # return well above the surface around it is something standing on it
+    lift = params.tolerance + 2.0 * spread + RESCUE_BULGE * dist.mean(axis=1)
+    out[well] = (coef[well, 0] <= params.tolerance + 2.0 * spread[well]) & (coef[well, 0] >= -lift[well])
     return out
 
 
