@@ -505,7 +505,7 @@ def toe_probe_sigma(grid: Grid, z: np.ndarray, open_: np.ndarray, polygon: shape
     first = np.sort(first)[:PROBE_MOST]
     if len(first) < PROBE_LEAST:
         return 0.0, len(first)
-    ux, uy = xs[None, :] - xs.mean() + 0 * ys[:, None], ys[:, None] - ys.mean() + 0 * xs[None, :]
+    ux, uy = np.meshgrid(xs - xs.mean(), ys - ys.mean())   # window coordinates, centred
     errs = []
     for i, j in zip(ii[first], jj[first]):
         zz = z[r0 + i:r0 + i + h, c0 + j:c0 + j + w]
