@@ -197,17 +197,23 @@ def _open_quote_line(lines: list[str], start: int, stop: int) -> int | None:
     return opened
 
 
+#: Separators a spreadsheet or database export may use instead of ',', as the message names them.
+_OTHER_SEPARATORS = ((";", "';'"), ("\t", "tabs"), ("|", "'|'"))
+
+
 def _header_problems(
     header: list[str], raw_header: str, schema: TableSchema, display: str, problems: list[Problem]
 ) -> bool:
     """Check the header line; append its problems and return True when the rows can be read."""
     known = set(schema.names)
-    if ";" in raw_header:
-        names = [h.strip() for h in raw_header.split(";")]
+    for sep, shown in _OTHER_SEPARATORS:
+        if sep not in raw_header:
+            continue
+        names = [h.strip() for h in raw_header.split(sep)]
         if set(schema.required) <= set(names) and all(n in known for n in names if n):
             problems.append(Problem(
                 display, 1, None,
-                "the file seems to use ';' between values; the tool needs ',' between values "
+                f"the file seems to use {shown} between values; the tool needs ',' between values "
                 "(and '.' for decimals): save it as comma-separated CSV",
             ))
             return False
