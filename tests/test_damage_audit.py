@@ -77,3 +77,56 @@ def test_tonnes_above_any_stockpile(good_site, capsys, refused_once, table, colu
     line = refused_once(good_site, capsys)
     assert line == (f"error: site/{table} line 2: {column}: 1e+15 t is above 1e+09 t, more than any "
                     "stockpile holds (a keying or unit error?)")
+
+
+def test_density_sigma_as_large_as_the_density(good_site, capsys, refused_once):
+    _cell(good_site / "materials.csv", 1, "density_sd_t_m3", "0.9")   # coal: 0.85 t/m3
+    line = refused_once(good_site, capsys)
+    assert line == ("error: site/materials.csv line 2: density_sd_t_m3: 0.9 t/m3 is not below the bulk density "
+                    "0.85 t/m3 (columns swapped? a density's one-sigma is a few per cent of it)")
+
+
+def test_pile_without_an_opening_balance_is_a_warning(good_site, capsys):
+    from inventory.cli import main
+
+    path = good_site / "opening.csv"
+    path.write_text("".join(line for line in path.read_text().splitlines(True) if not line.startswith("B,")))
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/opening.csv: pile_id: pile 'B' has no opening balance: a close that opens from "
+            "opening.csv opens it at 0 t") in capsys.readouterr().err.splitlines()
+
+
+def test_no_opening_and_no_ledger_is_a_warning(good_site, capsys):
+    from inventory.cli import main
+
+    (good_site / "opening.csv").unlink()
+    assert main(["check", str(good_site)]) == 0
+    warned = ("warning: site/opening.csv: no opening.csv and no ledger.sqlite: the first close has no opening "
+              "balances and will be refused")
+    assert warned in capsys.readouterr().err.splitlines()
+    (good_site / "ledger.sqlite").write_bytes(b"")   # a ledger to open from: nothing to warn of
+    assert main(["check", str(good_site)]) == 0
+    assert warned not in capsys.readouterr().err.splitlines()
+
+
+# ----------------------------------------------------------------------------- survey times
+@pytest.mark.parametrize("time, shown", [("2031-10-02T08:00:00+02:00", "2031-10-02T08:00:00+02:00"),
+                                          ("2026-03-01T15:00:00+01:00", "2026-03-01T15:00:00+01:00")])
+def test_scan_time_far_from_the_folders_date(good_site, capsys, refused_once, time, shown):
+    # before: a warning, and the close cut its books at that instant
+    stations = good_site / "surveys/2026-10-31/stations.csv"
+    stations.write_text(stations.read_text().replace("2026-10-31T15:00:00+01:00", time))
+    line = refused_once(good_site, capsys)
+    assert line == (f"error: site/surveys/2026-10-31/stations.csv line 2: time: {shown} is more than a day from "
+                    "the folder's date 2026-10-31 (a date error? the latest scan time is the survey instant, "
+                    "which decides the movements booked before it)")
+
+
+def test_scan_time_the_day_after_is_a_warning(good_site, capsys):
+    from inventory.cli import main
+
+    stations = good_site / "surveys/2026-10-31/stations.csv"
+    stations.write_text(stations.read_text().replace("2026-10-31T15:00:00+01:00", "2026-11-01T01:00:00+01:00"))
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/surveys/2026-10-31/stations.csv: time: scan times fall on 2026-11-01, not on the "
+            "folder's date 2026-10-31") in capsys.readouterr().err.splitlines()

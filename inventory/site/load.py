@@ -487,7 +487,7 @@ class _Loader:
             # an id refused there (missing, a number) would make every row naming it 'unknown':
             # the tables' pile ids are checked once the register is right
             pile_ids = set()
-        opening = self._opening(pile_ids)
+        opening = self._opening(pile_ids, raw)
         self._journal_codes(config.journal, material_names, pile_ids if ids_known else None)
         if config.journal.currency is None and materials:
             costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
@@ -823,6 +823,14 @@ class _Loader:
         names = set(frame["material"])
         if len(self.errors_in(path)) > errors_before:
             names |= _column_values(path, "material")
+        # a sigma as large as the density itself says the density could be nothing: the
+        # columns swapped, or the sigma keyed in kg/m3
+        wide = frame["density_sd_t_m3"].notna() & (frame["density_sd_t_m3"] >= frame["bulk_density_t_m3"])
+        for row in frame[wide].itertuples():
+            self.error(path, int(row.line), "density_sd_t_m3",
+                       f"{row.density_sd_t_m3:g} t/m3 is not below the bulk density {row.bulk_density_t_m3:g} t/m3 "
+                       "(columns swapped? a density's one-sigma is a few per cent of it)")
+        frame = frame[~wide]
         materials = {
             row.material: Material(
                 row.material,
@@ -1023,14 +1031,27 @@ class _Loader:
                            f"name in lower case); save or rename it as {name}")
         return found
 
-    def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
+    def _opening(self, pile_ids: set[str], raw: dict) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
         self._look_alikes(self.root, "opening.csv")
         if not path.exists():   # a folder of its name is read, and refused as one
+            if not self._ledger_named(raw):
+                self.warn(path, None, None, "no opening.csv and no ledger.sqlite: the first close has no opening "
+                                            "balances and will be refused")
             return None
         frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
         self.problems += problems
+        if pile_ids and not any(q.severity == "error" for q in problems) and len(frame):
+            for pile in sorted(set(pile_ids) - set(frame["pile_id"])):
+                self.warn(path, None, "pile_id", f"pile {pile!r} has no opening balance: a close that opens from "
+                                                 "opening.csv opens it at 0 t")
         return frame
+
+    def _ledger_named(self, raw: dict) -> bool:
+        """Whether the site has a ledger a close could open from: ``ledger.sqlite`` or a shared
+        ledger named in site.toml."""
+        named = isinstance(raw.get("ledger"), dict) and bool(raw["ledger"].get("url"))
+        return named or (self.root / "ledger.sqlite").exists()
 
     # -- movements
     def _all_movements(self, pile_ids: set[str], material_names: set[str], scales: dict[str, Scale],
@@ -1266,7 +1287,24 @@ class _Loader:
                 # a refused station time is reported as such, not again as a missing one
                 self.warn(folder, None, "time", f"no stations.csv times; survey instant taken as {config.survey.default_time} local")
         local_day = instant.astimezone(tz).date() if tz else instant.date()
-        if local_day != day:
+        if abs((local_day - day).days) > _SCAN_DAYS_OFF:
+            # the survey instant is the latest scan time and cuts the books: a scan dated months
+            # or years from its folder's date is a date error, not an overnight survey
+            why = (f"the scans end on {local_day}, more than a day from the folder's date {day} (a date error? "
+                   "the latest scan time is the survey instant, which decides the movements booked before it)")
+            if stations is not None and stations["time"].notna().any():
+                for row in stations[stations["time"].notna()].itertuples():
+                    on = pd.Timestamp(row.time).tz_convert(tz or timezone.utc).date()
+                    if abs((on - day).days) > _SCAN_DAYS_OFF:
+                        self.error(station_path, int(row.line), "time",
+                                   f"{pd.Timestamp(row.time).tz_convert(tz or timezone.utc).isoformat()} is more than "
+                                   f"a day from the folder's date {day} (a date error? the latest scan time is the "
+                                   "survey instant, which decides the movements booked before it)")
+            elif trajectories:
+                self.error(trajectory_path, None, "time", why)
+            else:
+                self.error(folder, None, "time", why)
+        elif local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
         extent = None
         # a stations.csv or trajectory.csv with refused rows (or refused whole) leaves files
@@ -1427,6 +1465,11 @@ def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
     if isinstance(value, list):
         return [hit for i, v in enumerate(value) for hit in _non_finite(v, keys + (i,))]
     return []
+
+
+#: How many days a survey's scan times may fall from its folder's date: a survey over midnight,
+#: or a folder named after the day the data came in (a warning); more is a date error.
+_SCAN_DAYS_OFF = 1
 
 
 def _is_file(path: Path) -> bool:
