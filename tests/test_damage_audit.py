@@ -130,3 +130,73 @@ def test_scan_time_the_day_after_is_a_warning(good_site, capsys):
     assert main(["check", str(good_site)]) == 0
     assert ("warning: site/surveys/2026-10-31/stations.csv: time: scan times fall on 2026-11-01, not on the "
             "folder's date 2026-10-31") in capsys.readouterr().err.splitlines()
+
+
+# ----------------------------------------------------------------------------- point clouds
+CLOUD = "surveys/2026-10-31/a.laz"
+
+
+def _patched(path: Path, at: int, fmt: str, *values) -> None:
+    import struct
+
+    data = bytearray(path.read_bytes())
+    struct.pack_into(fmt, data, at, *values)
+    path.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("at, fmt, values, why", [
+    # offsets of the LAS public header block (ASPRS LAS 1.4 R15, table 3)
+    (100, "<I", (0xFFFFFFFF,), "damaged header: 4,294,967,295 variable-length records cannot fit in the "),
+    (24, "<BB", (23, 203), "damaged header: version 23.203 (LAS files are 1.0 to 1.4)"),
+    (94, "<H", (100,), "damaged header: header size 100 bytes, below the 227 of any LAS header"),
+    (96, "<I", (0xFFFFFF00,), "truncated: the file ends at byte "),
+])
+def test_header_fields_that_cannot_be_real(good_site, capsys, at, fmt, values, why):
+    # before: a header of random bytes had the reader loop over its VLR count, growing past
+    # 2 GB of memory without an end
+    from inventory.cli import main
+
+    _patched(good_site / CLOUD, at, fmt, *values)
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert f"error: site/{CLOUD}: unreadable point cloud ({why}" in err, err
+
+
+def test_random_bytes_after_the_signature(good_site, capsys):
+    import numpy as np
+
+    from inventory.cli import main
+
+    rng = np.random.default_rng(7)
+    (good_site / CLOUD).write_bytes(b"LASF" + rng.bytes(3000))
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert f"error: site/{CLOUD}: unreadable point cloud (damaged header: " in err, err
+
+
+@pytest.mark.parametrize("cut, why", [
+    (0, "the file is empty (0 bytes)"),
+    (100, "truncated: the file has 100 bytes, fewer than the 227 bytes of the smallest LAS header"),
+    (300, "truncated: the file ends at byte 300, inside its header records (the points should start at byte "),
+])
+def test_cloud_cut_inside_its_header(good_site, capsys, cut, why):
+    # before: laspy's "Source is empty", "File is to small to be a valid LAS", or a CRS or
+    # LASzip record "cannot be parsed" with the whole WKT quoted
+    from inventory.cli import main
+
+    path = good_site / CLOUD
+    path.write_bytes(path.read_bytes()[:cut])
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert f"error: site/{CLOUD}: unreadable point cloud ({why}" in err, err
+
+
+def test_a_file_that_is_not_las_under_a_laz_name(good_site, capsys):
+    from inventory.cli import main
+
+    (good_site / CLOUD).write_bytes(b"ply\nformat ascii 1.0\n" + b"0" * 400)
+    assert main(["check", str(good_site)]) == 2
+    err = capsys.readouterr().err
+    assert (f"error: site/{CLOUD}: unreadable point cloud (not a LAS/LAZ file: it starts with b'ply\\n', not the "
+            "signature 'LASF')") in err, err
