@@ -242,6 +242,7 @@ def _clear_stale_staging(root: Path) -> list[Path]:
 
 @contextmanager
 def _staging(folder: Path) -> Iterator[Path]:
+    made = not folder.parent.exists()
     folder.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.partial-{_host()}-{os.getpid()}-", dir=folder.parent))
     try:
@@ -249,6 +250,12 @@ def _staging(folder: Path) -> Iterator[Path]:
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+        if made:
+            # a failed first close leaves no empty closes/ behind (the site as it was)
+            try:
+                folder.parent.rmdir()
+            except OSError:   # it holds the close's outputs, or anything else: kept
+                pass
 
 
 # ----------------------------------------------------------------------------- file names

@@ -200,3 +200,86 @@ def test_a_file_that_is_not_las_under_a_laz_name(good_site, capsys):
     err = capsys.readouterr().err
     assert (f"error: site/{CLOUD}: unreadable point cloud (not a LAS/LAZ file: it starts with b'ply\\n', not the "
             "signature 'LASF')") in err, err
+
+
+def test_survey_of_ten_points_is_bad_input_and_leaves_the_site_as_it_was(good_site, capsys, write_tiny_cloud):
+    # before: exit 1, "the run failed"-style "survey 2026-10-31: no point was classified as
+    # surface" naming no file, and an empty closes/ folder left behind
+    from inventory.cli import main
+
+    write_tiny_cloud(good_site / CLOUD, n=10)
+    before = sorted(p.relative_to(good_site) for p in good_site.rglob("*"))
+    assert main(["close", str(good_site), "--period", "2026-10", "-q"]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    lines = [line for line in err.splitlines() if line.startswith("error: ")]
+    assert len(lines) == 1, lines
+    assert lines[0].startswith(f"error: {good_site / 'surveys/2026-10-31'}: no point of the survey was classified "
+                               "as surface (")
+    assert lines[0].endswith("): too few points, or heights no stockpile surface has; check the clouds")
+    assert sorted(p.relative_to(good_site) for p in good_site.rglob("*")) == before
+
+
+# ----------------------------------------------------------------------------- base/floor.tif
+def _floor_site(site: Path, *, west: float = 499980.0, crs: str | None = "EPSG:25832", nodata=None,
+                fill: float = 9.5, nan_west_of: float | None = None) -> Path:
+    """Pile B on base floor, over a 0.5 m floor raster 100 m x 50 m from ``west``."""
+    import geopandas as gpd
+    import numpy as np
+    import rasterio
+    from rasterio.transform import from_origin
+
+    piles = gpd.read_file(site / "piles.gpkg", layer="piles")
+    piles.loc[piles["pile_id"] == "B", "base"] = "floor"
+    piles.to_file(site / "piles.gpkg", layer="piles", engine="pyogrio")
+    values = np.full((100, 200), fill, dtype="float32")
+    if nan_west_of is not None:
+        values[:, : int((nan_west_of - west) / 0.5)] = np.nan
+    path = site / "base" / "floor.tif"
+    path.parent.mkdir(exist_ok=True)
+    with rasterio.open(path, "w", driver="GTiff", width=200, height=100, count=1, dtype="float32", crs=crs,
+                       transform=from_origin(west, 5700025.0, 0.5, 0.5), nodata=nodata) as dst:
+        dst.write(values, 1)
+    return path
+
+
+def test_floor_under_every_floor_pile_passes(good_site, capsys):
+    from inventory.cli import main
+
+    _floor_site(good_site)
+    assert main(["check", str(good_site)]) == 0, capsys.readouterr().err
+
+
+@pytest.mark.parametrize("kwargs, covers", [
+    # before: each passed the check, and the close left pile B without a volume, out of the
+    # survey total, "0 significant, 0 out of tolerance" (the sample site: 12,283 t of 21,638 t)
+    (dict(west=549980.0), "x 549,980.0..550,080.0, y 5,699,975.0..5,700,025.0 in EPSG:25832"),
+    (dict(fill=-9999.0, nodata=-9999.0), "x 499,980.0..500,080.0, y 5,699,975.0..5,700,025.0 in EPSG:25832"),
+    (dict(crs="EPSG:4326"), "x 499,980.0..500,080.0, y 5,699,975.0..5,700,025.0 in EPSG:4326"),
+], ids=["elsewhere", "all-nodata", "wrong-crs-label"])
+def test_floor_raster_with_no_height_under_a_floor_pile(good_site, capsys, refused_once, kwargs, covers):
+    _floor_site(good_site, **kwargs)
+    line = refused_once(good_site, capsys)
+    assert line == ("error: site/base/floor.tif: floor_raster: no floor height under pile B, whose base is "
+                    f"floor: the raster covers {covers} (nodata there, another place, or a wrong CRS?)")
+
+
+def test_floor_raster_under_part_of_a_pile_is_a_warning(good_site, capsys):
+    from inventory.cli import main
+
+    _floor_site(good_site, nan_west_of=500030.0)   # pile B is a 10 m circle about x 500,030
+    assert main(["check", str(good_site)]) == 0
+    warned = [line for line in capsys.readouterr().err.splitlines() if "floor heights under" in line]
+    assert len(warned) == 1, warned
+    percent = int(warned[0].split("floor heights under ")[1].split(" %")[0])
+    assert 45 <= percent <= 60, warned   # the east half, cells touching the circle counted
+    assert warned[0].endswith(" % of pile B only; the rest is taken from the nearest floor height")
+
+
+def test_floor_raster_without_crs_is_a_warning_of_the_check(good_site, capsys):
+    from inventory.cli import main
+
+    _floor_site(good_site, crs=None)
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/base/floor.tif: floor_raster: the raster has no CRS; taken as the site's EPSG:25832"
+            in capsys.readouterr().err.splitlines())

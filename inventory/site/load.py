@@ -497,6 +497,8 @@ class _Loader:
                           "the journal's values carry no currency")
         if piles is not None:
             self._small_footprints(piles, config.grid.cell_size_m)
+            if config.base.floor_raster is not None and crs is not None:
+                self._floor_under_piles(config.base.floor_raster, piles, crs)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
@@ -1357,6 +1359,63 @@ class _Loader:
                 and self.errors_in(station_path)):
             return None   # a pose row stations.csv refused is the cause; its own error says so
         return info, len(poses) == count, acquired
+
+    def _floor_under_piles(self, path: Path, piles, site_crs: str) -> None:
+        """Each pile whose base is ``floor`` needs floor heights under its footprint: a raster
+        in another place, another CRS wrongly labelled, or all nodata would leave the pile
+        without a volume, and its variance out of every total. No value under a footprint is
+        an error; part of it, or a raster without a CRS (taken as the site's), a warning."""
+        import numpy as np
+        import rasterio
+        import rasterio.mask
+        import shapely
+        from pyproj import CRS
+        from rasterio.features import geometry_mask
+        from rasterio.warp import transform_geom
+        from rasterio.errors import RasterioError
+        from shapely.geometry import mapping
+
+        floor = piles[[parse_base(str(b))[0] == "floor" if isinstance(b, str) else False for b in piles["base"]]]
+        if not len(floor):
+            return
+        try:
+            with rasterio.open(path) as src:
+                if src.crs is None:
+                    self.warn(path, None, "floor_raster", f"the raster has no CRS; taken as the site's {site_crs}")
+                    to_raster = False
+                else:
+                    to_raster = not CRS(src.crs.to_wkt()).equals(CRS(site_crs))
+                for _, row in floor.iterrows():
+                    geom = row.geometry
+                    if not isinstance(geom, shapely.Geometry) or geom.is_empty:   # NULL reads as NaN; reported
+                        continue
+                    shape = mapping(geom)
+                    if to_raster:
+                        shape = transform_geom(site_crs, src.crs, shape)
+                    try:
+                        data, transform = rasterio.mask.mask(src, [shape], crop=True, filled=False, indexes=1,
+                                                             all_touched=True)
+                        inside = ~geometry_mask([shape], out_shape=data.shape, transform=transform, all_touched=True)
+                    except ValueError:   # the footprint does not overlap the raster at all
+                        data, inside = np.ma.masked_all((1, 1)), np.zeros((1, 1), bool)
+                    values = np.ma.filled(data.astype(float), np.nan)
+                    held = int((inside & np.isfinite(values)).sum())
+                    cells = int(inside.sum())
+                    pile = f"pile {row['pile_id']}"
+                    if held == 0:
+                        b = src.bounds
+                        self.error(path, None, "floor_raster",
+                                   f"no floor height under {pile}, whose base is floor: the raster covers x "
+                                   f"{b.left:,.1f}..{b.right:,.1f}, y {b.bottom:,.1f}..{b.top:,.1f}"
+                                   + ("" if src.crs is None else f" in {src.crs.to_string()}")
+                                   + " (nodata there, another place, or a wrong CRS?)")
+                    elif held < cells:
+                        self.warn(path, None, "floor_raster",
+                                  f"floor heights under {100.0 * held / cells:.0f} % of {pile} only; the rest is "
+                                  "taken from the nearest floor height")
+        except (RasterioError, OSError, ValueError) as err:
+            # a raster that opens was read block by block already; what fails here is named
+            self.error(path, None, "floor_raster", f"cannot be compared with the footprints ({err})")
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         import shapely
