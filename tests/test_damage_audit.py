@@ -283,3 +283,12 @@ def test_floor_raster_without_crs_is_a_warning_of_the_check(good_site, capsys):
     assert main(["check", str(good_site)]) == 0
     assert ("warning: site/base/floor.tif: floor_raster: the raster has no CRS; taken as the site's EPSG:25832"
             in capsys.readouterr().err.splitlines())
+
+
+# ----------------------------------------------------------------------------- the site's own files
+@pytest.mark.parametrize("name", ["site.toml", "materials.csv", "piles.gpkg"])
+def test_a_folder_in_place_of_a_site_file(good_site, capsys, refused_once, name):
+    # before: "file not found", although something of that name is there
+    (good_site / name).unlink()
+    (good_site / name).mkdir()
+    assert refused_once(good_site, capsys) == f"error: site/{name}: is a folder, not a file"

@@ -525,7 +525,7 @@ class _Loader:
     def _read_toml(self) -> dict | None:
         path = self.root / "site.toml"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return None
         try:
             text = path.read_bytes().decode("utf-8-sig")
@@ -818,7 +818,7 @@ class _Loader:
         refused row is reported once, not again as an unknown material wherever it is used)."""
         path = self.root / "materials.csv"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return {}, set()
         errors_before = len(self.errors_in(path))
         frame = self.table(path, "materials")
@@ -853,7 +853,7 @@ class _Loader:
 
         path = self.root / "piles.gpkg"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return None
         if self.outside(path):
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
@@ -1529,6 +1529,11 @@ def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
 #: How many days a survey's scan times may fall from its folder's date: a survey over midnight,
 #: or a folder named after the day the data came in (a warning); more is a date error.
 _SCAN_DAYS_OFF = 1
+
+
+def _not_a_file(path: Path) -> str:
+    """Why a file the site needs is not there: missing, or a folder of its name."""
+    return "is a folder, not a file" if path.is_dir() else "file not found"
 
 
 def _is_file(path: Path) -> bool:
