@@ -292,3 +292,19 @@ def test_a_folder_in_place_of_a_site_file(good_site, capsys, refused_once, name)
     (good_site / name).unlink()
     (good_site / name).mkdir()
     assert refused_once(good_site, capsys) == f"error: site/{name}: is a folder, not a file"
+
+
+def test_spreadsheet_separator_hint_above_the_header(good_site, capsys, refused_once):
+    # before: "material: required column is missing", the hint line read as the header
+    path = good_site / "materials.csv"
+    path.write_text("sep=,\n" + path.read_text())
+    assert refused_once(good_site, capsys) == ("error: site/materials.csv line 1: the first line is a spreadsheet's "
+                                               "separator hint ('sep=,'), not the header; delete that line")
+
+
+def test_column_named_in_another_style(good_site, capsys, refused_once):
+    path = good_site / "opening.csv"
+    path.write_text(path.read_text().replace("pile_id,", "Pile ID,", 1))
+    assert refused_once(good_site, capsys) == (
+        "error: site/opening.csv line 1: pile_id: required column is missing (there is a column 'Pile ID': "
+        "column names are lower case, words joined by '_')")

@@ -313,10 +313,17 @@ def read_table(
     raw_header = io.StringIO(text, newline="").readline()
     if not _header_problems(header, raw_header, schema, display, problems):
         return empty
+    if raw_header.strip().lower().startswith("sep="):
+        # a spreadsheet program's hint line above the header (Excel writes "sep=,")
+        problems.append(Problem(display, 1, None, f"the first line is a spreadsheet's separator hint "
+                                                  f"({raw_header.strip()!r}), not the header; delete that line"))
+        return empty
     known = set(schema.names)
     for name in schema.required:
         if name not in header:
-            problems.append(Problem(display, 1, name, "required column is missing"))
+            alike = [h for h in header if h.strip().lower().replace(" ", "_") == name and h != name]
+            hint = f" (there is a column {alike[0]!r}: column names are lower case, words joined by '_')" if alike else ""
+            problems.append(Problem(display, 1, name, "required column is missing" + hint))
     for name in header:
         if name and name not in known:
             problems.append(Problem(display, 1, name, "unknown column (ignored)", "warning"))
