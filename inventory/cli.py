@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
+import threading
 import traceback
 from pathlib import Path
 from typing import Callable, Sequence
@@ -315,6 +317,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             _err(f"warning: {message}")
 
         warnings.showwarning = _show
+    handled, previous = _on_terminate()
     try:
         return _COMMANDS[args.command](args)
     except InputErrors as err:
@@ -329,14 +332,35 @@ def main(argv: Sequence[str] | None = None) -> int:
             traceback.print_exc()
         _err(f"error: {err}")
         return err.exit_code
-    except KeyboardInterrupt:
-        _err("interrupted")
+    except KeyboardInterrupt as err:
+        _err("terminated" if isinstance(err, _Terminated) else "interrupted")
         return EXIT_RUN_FAILED
     except Exception as err:  # a failed run is one line too; --verbose shows where
         if args.verbose:
             traceback.print_exc()
         _err(f"error: the run failed: {type(err).__name__}: {err} (rerun with --verbose for the traceback)")
         return EXIT_RUN_FAILED
+    finally:
+        if handled:
+            signal.signal(signal.SIGTERM, previous if previous is not None else signal.SIG_DFL)
+
+
+class _Terminated(KeyboardInterrupt):
+    """Raised in the main thread when the process is asked to stop (SIGTERM)."""
+
+
+def _on_terminate():
+    """Make SIGTERM (``kill PID``, a job scheduler's stop) unwind like Ctrl-C: the run's
+    ``finally`` blocks remove its staging folders and roll back an open ledger transaction,
+    instead of the process dying where it stands. Returns whether it set the handler (not off
+    the main thread, where none can be set) and the handler it replaced."""
+    if threading.current_thread() is not threading.main_thread():
+        return False, None
+
+    def stop(signum, frame):
+        raise _Terminated()
+
+    return True, signal.signal(signal.SIGTERM, stop)
 
 
 if __name__ == "__main__":  # pragma: no cover

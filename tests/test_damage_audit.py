@@ -308,3 +308,33 @@ def test_column_named_in_another_style(good_site, capsys, refused_once):
     assert refused_once(good_site, capsys) == (
         "error: site/opening.csv line 1: pile_id: required column is missing (there is a column 'Pile ID': "
         "column names are lower case, words joined by '_')")
+
+
+# ----------------------------------------------------------------------------- a stopped close
+@pytest.mark.slow
+def test_close_stopped_by_sigterm_leaves_no_staging_folder(good_site, repo_root):
+    # before: SIGTERM killed the process where it stood, leaving closes/.2026-10.partial-*
+    # with the survey's rasters and cloud in it (cleared, with a warning, by the next close)
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    env = dict(os.environ, PYTHONPATH=str(repo_root))
+    proc = subprocess.Popen([sys.executable, "-m", "inventory", "close", str(good_site), "--period", "2026-10",
+                             "-q"], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    closes = good_site / "closes"
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and proc.poll() is None:
+        if closes.is_dir() and any(p.name.startswith(".2026-10.partial-") for p in closes.iterdir()):
+            break
+        time.sleep(0.02)
+    assert proc.poll() is None, "the close ended before it was stopped"
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 1, err
+    assert err.strip().splitlines()[-1] == "terminated"
+    assert "Traceback" not in err
+    assert not closes.exists()                      # a first close: the site as it was
+    assert not (good_site / "ledger.sqlite").exists()
