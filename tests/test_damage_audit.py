@@ -338,3 +338,34 @@ def test_close_stopped_by_sigterm_leaves_no_staging_folder(good_site, repo_root)
     assert "Traceback" not in err
     assert not closes.exists()                      # a first close: the site as it was
     assert not (good_site / "ledger.sqlite").exists()
+
+
+# ----------------------------------------------------------------------------- the ledger
+def test_ledger_held_by_another_writer_names_the_likely_cause(make_close_result, tmp_path, monkeypatch):
+    # before: "cannot start a transaction: database is locked" and nothing more
+    import sqlite3
+
+    from inventory.errors import LedgerError
+    from inventory.ledger import store
+    from inventory.ledger.store import Ledger
+
+    path = tmp_path / "ledger.sqlite"
+    with Ledger(path) as led:
+        led.record_close(make_close_result("2026-01"), {}, "0.1.0", who="a")
+    before = path.read_bytes()
+    monkeypatch.setattr(store, "BUSY_TIMEOUT_S", 0.2)
+    holder = sqlite3.connect(path, isolation_level=None)
+    holder.execute("BEGIN EXCLUSIVE")
+    try:
+        with Ledger(path) as led, pytest.raises(LedgerError) as caught:
+            led.record_close(make_close_result("2026-02"), {}, "0.1.0", who="b")
+    finally:
+        holder.execute("ROLLBACK")
+        holder.close()
+    assert str(caught.value) == (
+        f"{path}: cannot start a transaction: database is locked (another program has held a write transaction "
+        "on it for over 0.2 s: another close of this site, or a database tool with changes not committed); "
+        "nothing was written, run it again when that ends")
+    assert path.read_bytes() == before
+    with Ledger(path) as led:
+        assert led.closes()["period"].tolist() == ["2026-01"]

@@ -50,6 +50,10 @@ __all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SC
 #: SQLite's words for a file that is not a database or is corrupt (sqlite3 error texts).
 _DAMAGED = ("file is not a database", "database disk image is malformed")
 
+#: How long a writer waits for another's transaction on the ledger to end, seconds (SQLite's
+#: busy timeout); a close holds its write lock only while it records its rows.
+BUSY_TIMEOUT_S = 30.0
+
 def _utc_now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
@@ -143,7 +147,7 @@ class Ledger:
         try:
             # isolation_level=None: we issue BEGIN/COMMIT ourselves, one transaction per close.
             con = sqlite3.connect(
-                ":memory:" if path is None else str(path), timeout=30.0, isolation_level=None
+                ":memory:" if path is None else str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None
             )
             con.execute("PRAGMA foreign_keys = ON")
             if path is None:
@@ -208,6 +212,11 @@ class Ledger:
         try:
             self._db.execute("BEGIN IMMEDIATE")  # the write lock, before any check
         except sqlite3.Error as err:
+            if "locked" in str(err) or "busy" in str(err):
+                raise LedgerError(
+                    f"{self.path}: cannot start a transaction: {err} (another program has held a write "
+                    f"transaction on it for over {BUSY_TIMEOUT_S:g} s: another close of this site, or a database tool with "
+                    "changes not committed); nothing was written, run it again when that ends") from err
             raise LedgerError(f"{self.path}: cannot start a transaction: {err}") from err
         if was_pending:
             try:
