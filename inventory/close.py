@@ -380,6 +380,11 @@ def _check_writable(root: Path, period: str) -> None:
     folder = _close_folder(root, period)
     if (folder.exists() or folder.is_symlink()) and not folder.is_dir():
         refuse(folder, f"is not a folder; the outputs of {period} go into a folder of this name: move it away")
+    if folder.is_dir() and not folder.is_symlink() and not os.access(folder, os.W_OK | os.X_OK):
+        # the earlier outputs are kept aside by renaming this folder, which needs it writable
+        # (else the run fails at the end, after the survey)
+        refuse(folder, f"the earlier outputs of {period} are not writable, so they cannot be kept aside as "
+                       "superseded; give write permission")
 
 
 def _check_output_names(ledger: Ledger, folder: Path) -> None:
