@@ -387,6 +387,29 @@ def _check_writable(root: Path, period: str) -> None:
                        "superseded; give write permission")
 
 
+def _check_ledger_knows_outputs(root: Path, ledger: Ledger) -> None:
+    """Refuse a site ledger with no close while ``closes/`` holds a period's published
+    outputs of a ledger close: the ledger was emptied (a file cut to 0 bytes reads as a new
+    ledger) or replaced, and a close now would start the books again from opening.csv."""
+    if ledger.path != root / "ledger.sqlite" or len(ledger.closes()):
+        return   # a shared ledger (a site moved onto one keeps its old outputs), or closes known
+    closes = root / "closes"
+    if not closes.is_dir():
+        return
+    for folder in sorted(closes.iterdir()):
+        if not Period.is_period(folder.name) or not folder.is_dir():
+            continue   # staging and superseded folders, stray files
+        try:
+            held = json.loads((folder / "run.json").read_text(encoding="utf-8")).get("close_id")
+        except (OSError, ValueError, AttributeError):
+            continue
+        if isinstance(held, int):
+            raise InputError(
+                ledger.path, f"the ledger holds no close, but {closes.name}/{folder.name}/run.json holds the "
+                f"outputs of ledger close {held}: the ledger was emptied or replaced; restore it from a backup "
+                f"(or move {closes.name}/ away to start the books again)")
+
+
 def _check_output_names(ledger: Ledger, folder: Path) -> None:
     """Refuse, before any work, a close whose earlier outputs could not be kept aside under
     ``<period>.superseded-close-<id>`` because something already has that name."""
@@ -465,6 +488,7 @@ def _load(site_path: str | Path, period: str, say: Progress, ledger_url: str | N
                 f"{ledger_path}: period {period} is closed and locked; "
                 f"reopen it first (inventory reopen {site.root} --period {period} --reason \"...\")"
             )
+        _check_ledger_knows_outputs(site.root, ledger)
         opening, opening_source = _opening(site, ledger, period)
         prev_date = _previous_survey(site, ref.date, ledger, period)
         _check_output_names(ledger, _close_folder(site.root, period))

@@ -369,3 +369,24 @@ def test_ledger_held_by_another_writer_names_the_likely_cause(make_close_result,
     assert path.read_bytes() == before
     with Ledger(path) as led:
         assert led.closes()["period"].tolist() == ["2026-01"]
+
+
+@pytest.mark.parametrize("ledger_bytes", [b"", None], ids=["cut-to-0-bytes", "deleted"])
+def test_emptied_ledger_beside_published_outputs_is_refused(good_site, capsys, refused_once, monkeypatch,
+                                                            ledger_bytes):
+    # before: a ledger cut to 0 bytes (or deleted) read as a new one, and the close started
+    # the books again from opening.csv beside the outputs of the closes it had lost
+    from inventory import close
+
+    surveyed = []
+    monkeypatch.setattr(close, "_survey", lambda *a, **k: surveyed.append(a))
+    folder = good_site / "closes" / "2026-09"
+    folder.mkdir(parents=True)
+    (folder / "run.json").write_text('{"close_id": 4}')
+    if ledger_bytes is not None:
+        (good_site / "ledger.sqlite").write_bytes(ledger_bytes)
+    line = refused_once(good_site, capsys, ["close", str(good_site), "--period", "2026-10"])
+    assert line == (f"error: {good_site / 'ledger.sqlite'}: the ledger holds no close, but closes/2026-09/run.json "
+                    "holds the outputs of ledger close 4: the ledger was emptied or replaced; restore it from a "
+                    "backup (or move closes/ away to start the books again)")
+    assert surveyed == []
