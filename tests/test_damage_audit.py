@@ -390,3 +390,26 @@ def test_emptied_ledger_beside_published_outputs_is_refused(good_site, capsys, r
                     "holds the outputs of ledger close 4: the ledger was emptied or replaced; restore it from a "
                     "backup (or move closes/ away to start the books again)")
     assert surveyed == []
+
+
+def test_ledger_with_a_damaged_page_is_named_when_opened(good_site, make_close_result, capsys, refused_once):
+    # before: the first page read, and a later query failed as "the run failed: DatabaseError:
+    # database disk image is malformed", naming no file
+    import sqlite3
+
+    from inventory.ledger.store import Ledger
+
+    path = good_site / "ledger.sqlite"
+    with Ledger(path) as led:
+        led.record_close(make_close_result("2026-09"), {}, "0.1.0", who="a")
+    con = sqlite3.connect(path)
+    con.execute("PRAGMA wal_checkpoint(TRUNCATE)")   # every page in the file itself
+    page = con.execute("PRAGMA page_size").fetchone()[0]
+    con.close()
+    data = bytearray(path.read_bytes())
+    assert len(data) >= 4 * page
+    data[2 * page: 3 * page] = bytes(range(256)) * (page // 256)   # the third page overwritten
+    path.write_bytes(bytes(data))
+    line = refused_once(good_site, capsys, ["history", str(good_site)])
+    assert line == (f"error: {path}: a damaged SQLite ledger (database disk image is malformed); restore it "
+                    "from a backup")

@@ -133,6 +133,7 @@ class Ledger:
             self._con = self._connect(self.path)
             self._pending_create = False
             try:
+                self._check_pages()
                 self._check_schema()
             except BaseException:
                 self.close()
@@ -257,6 +258,19 @@ class Ledger:
         self._db.execute("COMMIT")
         if state[0]:
             self._pending_create = False
+
+    def _check_pages(self) -> None:
+        """Refuse a ledger file with damaged pages (a disk error, a partial copy): its first
+        page reads, so the damage would surface as a failed query half-way through a command.
+        SQLite's ``PRAGMA quick_check`` reads every page once (milliseconds for a ledger of
+        years of closes) and writes nothing."""
+        try:
+            found = [r[0] for r in self._db.execute("PRAGMA quick_check(3)")]
+        except sqlite3.DatabaseError as err:
+            found = [str(err)]
+        if found != ["ok"]:
+            raise LedgerInputError(self.path, f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a "
+                                              "backup")
 
     def _check_schema(self) -> None:
         con = self._db
