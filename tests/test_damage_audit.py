@@ -413,3 +413,17 @@ def test_ledger_with_a_damaged_page_is_named_when_opened(good_site, make_close_r
     line = refused_once(good_site, capsys, ["history", str(good_site)])
     assert line == (f"error: {path}: a damaged SQLite ledger (database disk image is malformed); restore it "
                     "from a backup")
+
+
+@pytest.mark.parametrize("column, value, limit", [("yaw_deg", "1e300", "above the maximum 720"),
+                                                  ("roll_deg", "-400", "below the minimum -180"),
+                                                  ("pitch_deg", "181", "above the maximum 180")])
+def test_station_angle_no_pose_has(good_site, capsys, refused_once, column, value, limit):
+    # before: a yaw of 1e300 degrees was accepted (its remainder of a turn is noise)
+    stations = good_site / "surveys/2026-10-31/stations.csv"
+    pose = {"x": "500000", "y": "5700000", "z": "12", "roll_deg": "0", "pitch_deg": "0", "yaw_deg": "10"}
+    pose[column] = value
+    stations.write_text(stations.read_text().replace(",,,,,,", "," + ",".join(pose.values())))
+    line = refused_once(good_site, capsys)
+    number = f"{float(value):g}"
+    assert line == f"error: site/surveys/2026-10-31/stations.csv line 2: {column}: {number} is {limit}"
