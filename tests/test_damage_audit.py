@@ -427,3 +427,20 @@ def test_station_angle_no_pose_has(good_site, capsys, refused_once, column, valu
     line = refused_once(good_site, capsys)
     number = f"{float(value):g}"
     assert line == f"error: site/surveys/2026-10-31/stations.csv line 2: {column}: {number} is {limit}"
+
+
+def test_movement_table_that_is_a_broken_link(good_site, capsys, refused_once):
+    # before: a link that leads nowhere read as no table: the month's tickets silently none
+    path = good_site / "movements/2026-10/weighbridge.csv"
+    path.unlink()
+    path.symlink_to("weighbridge-export.csv")
+    line = refused_once(good_site, capsys)
+    assert line == "error: site/movements/2026-10/weighbridge.csv: cannot be read (No such file or directory)"
+
+
+def test_site_file_that_is_a_broken_link(good_site, capsys, refused_once):
+    path = good_site / "materials.csv"
+    path.unlink()
+    path.symlink_to("materials-2026.csv")
+    assert refused_once(good_site, capsys) == ("error: site/materials.csv: a link to 'materials-2026.csv', which "
+                                               "leads to no file")

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import re
 import warnings
 from collections.abc import Collection, Mapping
@@ -1036,7 +1037,7 @@ class _Loader:
     def _opening(self, pile_ids: set[str], raw: dict) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
         self._look_alikes(self.root, "opening.csv")
-        if not path.exists():   # a folder of its name is read, and refused as one
+        if not path.exists() and not path.is_symlink():   # a folder of its name is read, and refused as one
             if not self._ledger_named(raw):
                 self.warn(path, None, None, "no opening.csv and no ledger.sqlite: the first close has no opening "
                                             "balances and will be refused")
@@ -1082,7 +1083,8 @@ class _Loader:
             look_alikes |= self._look_alikes(folder, path.name)
             # a header alone is a table with no records this month
             # a folder of the table's name is read, and refused as one: never taken for no records
-            tables[name] = self.table(path, name, empty_ok=True) if path.exists() else None
+            # a link that leads nowhere is read, and refused: never taken for no records either
+            tables[name] = self.table(path, name, empty_ok=True) if path.exists() or path.is_symlink() else None
         for extra in sorted(folder.glob("*.csv")):
             if extra.stem not in MOVEMENT_TABLES and extra not in look_alikes:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
@@ -1532,8 +1534,17 @@ _SCAN_DAYS_OFF = 1
 
 
 def _not_a_file(path: Path) -> str:
-    """Why a file the site needs is not there: missing, or a folder of its name."""
-    return "is a folder, not a file" if path.is_dir() else "file not found"
+    """Why a file the site needs is not there: missing, a folder of its name, or a link that
+    leads to no file."""
+    if path.is_dir():
+        return "is a folder, not a file"
+    if path.is_symlink():
+        try:
+            target = os.readlink(path)
+        except OSError:
+            target = "?"
+        return f"a link to {target!r}, which leads to no file"
+    return "file not found"
 
 
 def _is_file(path: Path) -> bool:
