@@ -444,3 +444,27 @@ def test_site_file_that_is_a_broken_link(good_site, capsys, refused_once):
     path.symlink_to("materials-2026.csv")
     assert refused_once(good_site, capsys) == ("error: site/materials.csv: a link to 'materials-2026.csv', which "
                                                "leads to no file")
+
+
+def test_movements_folder_of_no_real_month(good_site, capsys, refused_once):
+    # before: a warning, and the folder's movements were left out of every close
+    (good_site / "movements/2026-10").rename(good_site / "movements/2026-13")
+    assert refused_once(good_site, capsys) == ("error: site/movements/2026-13: folder name is not a real month "
+                                               "(YYYY-MM, month 01-12)")
+
+
+def test_ticket_of_another_material_than_its_pile_is_a_warning_of_the_check(good_site, capsys):
+    # before: check said nothing; only the close warned
+    import warnings
+
+    from inventory.cli import main
+    from inventory.site.load import load_site
+
+    _cell(good_site / "movements/2026-10/weighbridge.csv", 1, "material", "salt")   # into pile A of coal
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/movements/2026-10/weighbridge.csv line 2: material: ticket T1 carries 'salt' into "
+            "pile A of 'coal'") in capsys.readouterr().err.splitlines()
+    with warnings.catch_warnings(record=True) as caught:   # a close's load leaves it to the book step
+        warnings.simplefilter("always")
+        load_site(good_site, "2026-10")
+    assert not [w for w in caught if "carries 'salt'" in str(w.message)]

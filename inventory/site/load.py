@@ -501,6 +501,8 @@ class _Loader:
             if config.base.floor_raster is not None and crs is not None:
                 self._floor_under_piles(config.base.floor_raster, piles, crs)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
+        if piles is not None and ids_known:
+            self._tickets_against_piles(movements, dict(zip(piles["pile_id"], piles["material"])))
         surveys = self._surveys(crs, config, tz) if crs else {}
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
@@ -1067,7 +1069,12 @@ class _Loader:
             if not sub.is_dir():
                 continue
             if not Period.is_period(sub.name):
-                self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
+                if re.fullmatch(r"\d{4}-\d{2}", sub.name):
+                    # shaped like a month but none (2026-13, 2026-00): a typo that would drop the
+                    # month's movements, as a survey folder of no real date is refused
+                    self.error(sub, None, None, "folder name is not a real month (YYYY-MM, month 01-12)")
+                else:
+                    self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
                 continue
             start = len(self.problems)
             out[sub.name] = self._movements(sub, pile_ids, material_names, scales, tz)
@@ -1095,6 +1102,23 @@ class _Loader:
         )
         self.problems += problems
         return Movements(folder.name, **frames)
+
+    def _tickets_against_piles(self, movements: dict[str, Movements], material_of: dict) -> None:
+        """A ticket whose material is not its pile's is a warning: a keyed pile id, or the
+        wrong product on the truck. The close's book step says so itself, so a load for a
+        close (``load_site(path, period)``) does not issue these: they are filed under a key of
+        no period in ``by_period``."""
+        for month, period in movements.items():
+            wb = period.weighbridge
+            if wb is None or not len(wb) or "material" not in wb:
+                continue
+            pile_material = wb["pile_id"].map(material_of)
+            odd = wb["material"].notna() & pile_material.notna() & (wb["material"] != pile_material)
+            start = len(self.problems)
+            for r in wb[odd].itertuples():
+                self.warn(str(r.source), int(r.line), "material",
+                          f"ticket {r.ticket} carries {r.material!r} into pile {r.pile_id} of {material_of[r.pile_id]!r}")
+            self.by_period.setdefault(f"{month} (book step)", []).extend(self.problems[start:])
 
     # -- surveys
     def _surveys(self, site_crs: str, config: SiteConfig, tz: ZoneInfo | None) -> dict[str, SurveyRef]:
