@@ -468,3 +468,15 @@ def test_ticket_of_another_material_than_its_pile_is_a_warning_of_the_check(good
         warnings.simplefilter("always")
         load_site(good_site, "2026-10")
     assert not [w for w in caught if "carries 'salt'" in str(w.message)]
+
+
+def test_opening_dated_in_a_month_without_a_survey_is_a_warning_of_the_check(good_site, capsys):
+    # before: check passed without a word, and the close refused the line
+    from inventory.cli import main
+
+    path = good_site / "opening.csv"
+    path.write_text(path.read_text().replace("B,500,2026-10-01T00:00:00+02:00", "B,500,2031-10-02T08:00:00+02:00"))
+    assert main(["check", str(good_site)]) == 0
+    assert ("warning: site/opening.csv line 3: as_of: dated in 2031-10, a month without a survey: with no ledger, "
+            "a close opens from opening.csv only in the month its balances are dated (surveyed: 2026-10)"
+            ) in capsys.readouterr().err.splitlines()

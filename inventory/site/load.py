@@ -504,6 +504,8 @@ class _Loader:
         if piles is not None and ids_known:
             self._tickets_against_piles(movements, dict(zip(piles["pile_id"], piles["material"])))
         surveys = self._surveys(crs, config, tz) if crs else {}
+        if opening is not None and tz is not None and surveys and not self._ledger_named(raw):
+            self._opening_months(opening, surveys, tz)
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
             self.problems += survey_extent_problems(surveys, piles, config.grid.cell_size_m, self.rel)
@@ -1051,6 +1053,21 @@ class _Loader:
                 self.warn(path, None, "pile_id", f"pile {pile!r} has no opening balance: a close that opens from "
                                                  "opening.csv opens it at 0 t")
         return frame
+
+    def _opening_months(self, opening: pd.DataFrame, surveys: dict, tz: ZoneInfo) -> None:
+        """Without a ledger, the first close opens from opening.csv only in the month its
+        balances are dated (earlier movements would be skipped): a balance dated in a month
+        without a survey can open no close (a warning: the close refuses it, naming the line)."""
+        surveyed = {d[:7] for d in surveys}
+        for row in opening.itertuples():
+            as_of = getattr(row, "as_of", None)
+            if as_of is None or pd.isna(as_of):
+                continue
+            month = str(Period.of(pd.Timestamp(as_of).tz_convert(tz).date()))
+            if month not in surveyed:
+                self.warn(str(row.source), int(row.line), "as_of",
+                          f"dated in {month}, a month without a survey: with no ledger, a close opens from "
+                          f"opening.csv only in the month its balances are dated (surveyed: {', '.join(sorted(surveyed))})")
 
     def _ledger_named(self, raw: dict) -> bool:
         """Whether the site has a ledger a close could open from: ``ledger.sqlite`` or a shared
