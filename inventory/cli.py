@@ -53,6 +53,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
         inside = pipeline.is_relative_to(report.site.root)   # outside only with [paths] allow_outside
         shown = args.site / pipeline.relative_to(report.site.root) if inside else pipeline
         report.problems += pipeline_problems(pipeline, str(shown))
+    report.problems += _close_target_problems(args.site, report.site.config.raw if report.site is not None else None)
     for problem in report.warnings:
         _err(f"warning: {problem}")
     if not report.ok:
@@ -64,6 +65,30 @@ def _cmd_check(args: argparse.Namespace) -> int:
     _out(report.site.summary())
     _out(f"ok: {len(report.warnings)} warning(s)")
     return EXIT_OK
+
+
+def _close_target_problems(site: Path, raw: dict | None) -> list:
+    """What a close would refuse before any work in what it writes, read without writing: the
+    site's ledger file (unless site.toml names a shared ledger) and ``closes/``."""
+    from inventory.errors import Problem
+    from inventory.ledger.store import ledger_file_problem
+    from inventory.model.period import Period
+
+    problems = []
+    shared = isinstance(raw, dict) and isinstance(raw.get("ledger"), dict) and bool(raw["ledger"].get("url"))
+    why = None if shared else ledger_file_problem(site / "ledger.sqlite")
+    if why:
+        problems.append(Problem(str(site / "ledger.sqlite"), None, None, why))
+    closes = site / "closes"
+    if (closes.exists() or closes.is_symlink()) and not closes.is_dir():
+        problems.append(Problem(str(closes), None, None,
+                                "is not a folder; the close keeps its outputs in the folder closes/"))
+    elif closes.is_dir():
+        for entry in sorted(closes.iterdir()):
+            if Period.is_period(entry.name) and not entry.is_dir():
+                problems.append(Problem(str(entry), None, None, f"is not a folder; the outputs of {entry.name} go "
+                                                                "into a folder of this name: move it away"))
+    return problems
 
 
 def _progress(args: argparse.Namespace):

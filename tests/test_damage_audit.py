@@ -480,3 +480,40 @@ def test_opening_dated_in_a_month_without_a_survey_is_a_warning_of_the_check(goo
     assert ("warning: site/opening.csv line 3: as_of: dated in 2031-10, a month without a survey: with no ledger, "
             "a close opens from opening.csv only in the month its balances are dated (surveyed: 2026-10)"
             ) in capsys.readouterr().err.splitlines()
+
+
+# ----------------------------------------------------------------------------- what a close writes, seen by check
+@pytest.mark.parametrize("damage, expected", [
+    (lambda site: (site / "ledger.sqlite").write_bytes(b"SQLite? no " * 500),
+     "ledger.sqlite: not a readable SQLite ledger (file is not a database); restore it from a backup"),
+    (lambda site: (site / "ledger.sqlite").mkdir(),
+     "ledger.sqlite: is a folder, not a ledger file; move it away (a close creates the file)"),
+    (lambda site: (site / "closes").write_text("x"),
+     "closes: is not a folder; the close keeps its outputs in the folder closes/"),
+    (lambda site: ((site / "closes").mkdir(), (site / "closes" / "2026-10").write_text("x")),
+     "closes/2026-10: is not a folder; the outputs of 2026-10 go into a folder of this name: move it away"),
+], ids=["ledger-not-sqlite", "ledger-folder", "closes-file", "period-file"])
+def test_check_names_what_a_close_would_refuse_to_write_into(good_site, capsys, refused_once, damage, expected):
+    # before: check passed, and the close refused it
+    damage(good_site)
+    assert refused_once(good_site, capsys) == f"error: {good_site}/{expected}"
+
+
+def test_check_reads_a_good_ledger_without_writing_beside_it(good_site, make_close_result, capsys):
+    import sqlite3
+
+    from inventory.cli import main
+    from inventory.ledger.store import Ledger
+
+    path = good_site / "ledger.sqlite"
+    with Ledger(path) as led:
+        led.record_close(make_close_result("2026-09"), {}, "0.1.0", who="a")
+    con = sqlite3.connect(path)
+    con.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    con.close()
+    for side in ("ledger.sqlite-wal", "ledger.sqlite-shm"):
+        (good_site / side).unlink(missing_ok=True)
+    before = path.read_bytes()
+    assert main(["check", str(good_site)]) == 0, capsys.readouterr().err
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in good_site.glob("ledger.sqlite*")) == ["ledger.sqlite"]

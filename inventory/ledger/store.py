@@ -45,7 +45,7 @@ from inventory.ledger.schema import (
 from inventory.model.period import Period
 from inventory.model.results import JOURNAL_COLUMNS, CloseResult
 
-__all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
+__all__ = ["Ledger", "SCHEMA_VERSION", "ledger_file_problem", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
 
 #: SQLite's words for a file that is not a database or is corrupt (sqlite3 error texts).
 _DAMAGED = ("file is not a database", "database disk image is malformed")
@@ -86,6 +86,46 @@ def _instant_text(instant: Any) -> str:
             raise LedgerError(f"survey instant {instant!r} has no time zone; expected UTC")
         return instant.astimezone(timezone.utc).isoformat()
     return str(instant)
+
+
+def ledger_file_problem(path: str | Path) -> str | None:
+    """Why the SQLite ledger file at ``path`` could not be used by a close, or ``None`` (also
+    when there is no file: a close creates it). Reads the file without writing anything, not
+    even SQLite's ``-wal`` and ``-shm`` files (opened read-only and immutable), for
+    ``inventory check``: a folder of its name, a file that is not SQLite, damaged pages, a
+    file without the ledger's tables, a ledger of a newer schema."""
+    path = Path(path)
+    if not path.exists() and not path.is_symlink():
+        return None
+    if path.is_dir():
+        return "is a folder, not a ledger file; move it away (a close creates the file)"
+    if not path.exists():
+        return "a link that leads to no file"
+    if path.stat().st_size == 0:
+        return None   # reads as a new ledger (a close checks it against the outputs in closes/)
+    try:
+        con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro&immutable=1", uri=True)
+    except sqlite3.Error as err:
+        return f"cannot be read ({err})"
+    try:
+        found = [r[0] for r in con.execute("PRAGMA quick_check(3)")]
+        if found != ["ok"]:
+            return f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a backup"
+        tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if "schema_version" not in tables:
+            return "an SQLite file without a schema_version table is not a ledger"
+        version = con.execute("SELECT MAX(version) FROM schema_version").fetchone()[0]
+        if version is None:
+            return "schema_version is empty"
+        if version > SCHEMA_VERSION:
+            return f"ledger schema version {version} is newer than this tool's ({SCHEMA_VERSION}); upgrade the tool"
+    except sqlite3.DatabaseError as err:
+        if str(err) in _DAMAGED:
+            return f"not a readable SQLite ledger ({err}); restore it from a backup"
+        return f"cannot be read ({err})"
+    finally:
+        con.close()
+    return None
 
 
 class Ledger:
