@@ -932,10 +932,15 @@ def period_history(
         chosen = open_ledger(root, None, ledger_url, site_id, every_site=True)
     path = chosen.path
     if isinstance(path, Path) and not path.is_file():
+        if root is not None:
+            with chosen as ledger:   # no file: an empty ledger, unless closes/ says one was lost
+                _check_ledger_knows_outputs(root, ledger)
         if pile is not None or material is not None:
             raise InputError(path, "no ledger: the site has no closes yet", field="pile_id" if pile else "material")
         return pd.DataFrame(columns=HISTORY_COLUMNS if by is None else by_columns(by))
     with chosen as ledger:
+        if root is not None:
+            _check_ledger_knows_outputs(root, ledger)
         if site_id is not None and hasattr(ledger, "site_ids") and site_id not in ledger.site_ids():
             _known(path, "site", site_id, ledger.site_ids())
         if pile is not None:

@@ -517,3 +517,17 @@ def test_check_reads_a_good_ledger_without_writing_beside_it(good_site, make_clo
     assert main(["check", str(good_site)]) == 0, capsys.readouterr().err
     assert path.read_bytes() == before
     assert sorted(p.name for p in good_site.glob("ledger.sqlite*")) == ["ledger.sqlite"]
+
+
+@pytest.mark.parametrize("ledger_bytes", [b"", None], ids=["cut-to-0-bytes", "deleted"])
+def test_history_of_an_emptied_ledger_beside_published_outputs_is_refused(good_site, capsys, refused_once,
+                                                                        ledger_bytes):
+    # before: an empty history, as if the site had never closed a month
+    folder = good_site / "closes" / "2026-09"
+    folder.mkdir(parents=True)
+    (folder / "run.json").write_text('{"close_id": 4}')
+    if ledger_bytes is not None:
+        (good_site / "ledger.sqlite").write_bytes(ledger_bytes)
+    line = refused_once(good_site, capsys, ["history", str(good_site)])
+    assert line.startswith(f"error: {good_site / 'ledger.sqlite'}: the ledger holds no close, but "
+                           "closes/2026-09/run.json holds the outputs of ledger close 4")
