@@ -1042,7 +1042,8 @@ class _Loader:
         path = self.root / "opening.csv"
         self._look_alikes(self.root, "opening.csv")
         if not path.exists() and not path.is_symlink():   # a folder of its name is read, and refused as one
-            if not self._ledger_named(raw):
+            if (self.root / "movements").is_dir() and not self._ledger_named(raw):
+                # books without an opening (a site measured with `volumes` only has no books)
                 self.warn(path, None, None, "no opening.csv and no ledger.sqlite: the first close has no opening "
                                             "balances and will be refused")
             return None
