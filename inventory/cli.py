@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
+import threading
 import traceback
 from pathlib import Path
 from typing import Callable, Sequence
@@ -51,6 +53,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
         inside = pipeline.is_relative_to(report.site.root)   # outside only with [paths] allow_outside
         shown = args.site / pipeline.relative_to(report.site.root) if inside else pipeline
         report.problems += pipeline_problems(pipeline, str(shown))
+    report.problems += _close_target_problems(args.site, report.site.config.raw if report.site is not None else None)
     for problem in report.warnings:
         _err(f"warning: {problem}")
     if not report.ok:
@@ -62,6 +65,30 @@ def _cmd_check(args: argparse.Namespace) -> int:
     _out(report.site.summary())
     _out(f"ok: {len(report.warnings)} warning(s)")
     return EXIT_OK
+
+
+def _close_target_problems(site: Path, raw: dict | None) -> list:
+    """What a close would refuse before any work in what it writes, read without writing: the
+    site's ledger file (unless site.toml names a shared ledger) and ``closes/``."""
+    from inventory.errors import Problem
+    from inventory.ledger.store import ledger_file_problem
+    from inventory.model.period import Period
+
+    problems = []
+    shared = isinstance(raw, dict) and isinstance(raw.get("ledger"), dict) and bool(raw["ledger"].get("url"))
+    why = None if shared else ledger_file_problem(site / "ledger.sqlite")
+    if why:
+        problems.append(Problem(str(site / "ledger.sqlite"), None, None, why))
+    closes = site / "closes"
+    if (closes.exists() or closes.is_symlink()) and not closes.is_dir():
+        problems.append(Problem(str(closes), None, None,
+                                "is not a folder; the close keeps its outputs in the folder closes/"))
+    elif closes.is_dir():
+        for entry in sorted(closes.iterdir()):
+            if Period.is_period(entry.name) and not entry.is_dir():
+                problems.append(Problem(str(entry), None, None, f"is not a folder; the outputs of {entry.name} go "
+                                                                "into a folder of this name: move it away"))
+    return problems
 
 
 def _progress(args: argparse.Namespace):
@@ -315,6 +342,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             _err(f"warning: {message}")
 
         warnings.showwarning = _show
+    handled, previous = _on_terminate()
     try:
         return _COMMANDS[args.command](args)
     except InputErrors as err:
@@ -329,14 +357,35 @@ def main(argv: Sequence[str] | None = None) -> int:
             traceback.print_exc()
         _err(f"error: {err}")
         return err.exit_code
-    except KeyboardInterrupt:
-        _err("interrupted")
+    except KeyboardInterrupt as err:
+        _err("terminated" if isinstance(err, _Terminated) else "interrupted")
         return EXIT_RUN_FAILED
     except Exception as err:  # a failed run is one line too; --verbose shows where
         if args.verbose:
             traceback.print_exc()
         _err(f"error: the run failed: {type(err).__name__}: {err} (rerun with --verbose for the traceback)")
         return EXIT_RUN_FAILED
+    finally:
+        if handled:
+            signal.signal(signal.SIGTERM, previous if previous is not None else signal.SIG_DFL)
+
+
+class _Terminated(KeyboardInterrupt):
+    """Raised in the main thread when the process is asked to stop (SIGTERM)."""
+
+
+def _on_terminate():
+    """Make SIGTERM (``kill PID``, a job scheduler's stop) unwind like Ctrl-C: the run's
+    ``finally`` blocks remove its staging folders and roll back an open ledger transaction,
+    instead of the process dying where it stands. Returns whether it set the handler (not off
+    the main thread, where none can be set) and the handler it replaced."""
+    if threading.current_thread() is not threading.main_thread():
+        return False, None
+
+    def stop(signum, frame):
+        raise _Terminated()
+
+    return True, signal.signal(signal.SIGTERM, stop)
 
 
 if __name__ == "__main__":  # pragma: no cover

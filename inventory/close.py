@@ -242,6 +242,7 @@ def _clear_stale_staging(root: Path) -> list[Path]:
 
 @contextmanager
 def _staging(folder: Path) -> Iterator[Path]:
+    made = not folder.parent.exists()
     folder.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.partial-{_host()}-{os.getpid()}-", dir=folder.parent))
     try:
@@ -249,6 +250,12 @@ def _staging(folder: Path) -> Iterator[Path]:
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+        if made:
+            # a failed first close leaves no empty closes/ behind (the site as it was)
+            try:
+                folder.parent.rmdir()
+            except OSError:   # it holds the close's outputs, or anything else: kept
+                pass
 
 
 # ----------------------------------------------------------------------------- file names
@@ -373,6 +380,34 @@ def _check_writable(root: Path, period: str) -> None:
     folder = _close_folder(root, period)
     if (folder.exists() or folder.is_symlink()) and not folder.is_dir():
         refuse(folder, f"is not a folder; the outputs of {period} go into a folder of this name: move it away")
+    if folder.is_dir() and not folder.is_symlink() and not os.access(folder, os.W_OK | os.X_OK):
+        # the earlier outputs are kept aside by renaming this folder, which needs it writable
+        # (else the run fails at the end, after the survey)
+        refuse(folder, f"the earlier outputs of {period} are not writable, so they cannot be kept aside as "
+                       "superseded; give write permission")
+
+
+def _check_ledger_knows_outputs(root: Path, ledger: Ledger) -> None:
+    """Refuse a site ledger with no close while ``closes/`` holds a period's published
+    outputs of a ledger close: the ledger was emptied (a file cut to 0 bytes reads as a new
+    ledger) or replaced, and a close now would start the books again from opening.csv."""
+    if ledger.path != root / "ledger.sqlite" or len(ledger.closes()):
+        return   # a shared ledger (a site moved onto one keeps its old outputs), or closes known
+    closes = root / "closes"
+    if not closes.is_dir():
+        return
+    for folder in sorted(closes.iterdir()):
+        if not Period.is_period(folder.name) or not folder.is_dir():
+            continue   # staging and superseded folders, stray files
+        try:
+            held = json.loads((folder / "run.json").read_text(encoding="utf-8")).get("close_id")
+        except (OSError, ValueError, AttributeError):
+            continue
+        if isinstance(held, int):
+            raise InputError(
+                ledger.path, f"the ledger holds no close, but {closes.name}/{folder.name}/run.json holds the "
+                f"outputs of ledger close {held}: the ledger was emptied or replaced; restore it from a backup "
+                f"(or move {closes.name}/ away to start the books again)")
 
 
 def _check_output_names(ledger: Ledger, folder: Path) -> None:
@@ -453,6 +488,7 @@ def _load(site_path: str | Path, period: str, say: Progress, ledger_url: str | N
                 f"{ledger_path}: period {period} is closed and locked; "
                 f"reopen it first (inventory reopen {site.root} --period {period} --reason \"...\")"
             )
+        _check_ledger_knows_outputs(site.root, ledger)
         opening, opening_source = _opening(site, ledger, period)
         prev_date = _previous_survey(site, ref.date, ledger, period)
         _check_output_names(ledger, _close_folder(site.root, period))
@@ -896,10 +932,15 @@ def period_history(
         chosen = open_ledger(root, None, ledger_url, site_id, every_site=True)
     path = chosen.path
     if isinstance(path, Path) and not path.is_file():
+        if root is not None:
+            with chosen as ledger:   # no file: an empty ledger, unless closes/ says one was lost
+                _check_ledger_knows_outputs(root, ledger)
         if pile is not None or material is not None:
             raise InputError(path, "no ledger: the site has no closes yet", field="pile_id" if pile else "material")
         return pd.DataFrame(columns=HISTORY_COLUMNS if by is None else by_columns(by))
     with chosen as ledger:
+        if root is not None:
+            _check_ledger_knows_outputs(root, ledger)
         if site_id is not None and hasattr(ledger, "site_ids") and site_id not in ledger.site_ids():
             _known(path, "site", site_id, ledger.site_ids())
         if pile is not None:

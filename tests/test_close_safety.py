@@ -172,6 +172,26 @@ def test_read_only_closes_folder_is_refused(good_site, read_only, capsys):
     assert not (good_site / "ledger.sqlite").exists()
 
 
+def test_read_only_earlier_outputs_are_refused_before_any_work(good_site, read_only, capsys, monkeypatch):
+    """Found by a damage audit: the earlier outputs are kept aside by renaming their folder;
+    one that cannot be renamed failed the close at the end, after the survey, as 'the run
+    failed: PermissionError'."""
+    from inventory import close
+
+    surveyed = []
+    monkeypatch.setattr(close, "_survey", lambda *a, **k: surveyed.append(a))
+    folder = good_site / "closes" / "2026-10"
+    folder.mkdir(parents=True)
+    (folder / "run.json").write_text("{}")
+    read_only(folder)
+    assert main(["close", str(good_site), "--period", "2026-10"]) == 2
+    assert error_lines(capsys.readouterr().err) == [(
+        f"error: {folder}: the earlier outputs of 2026-10 are not writable, so they cannot be kept aside as "
+        "superseded; give write permission")]
+    assert surveyed == []
+    assert not (good_site / "ledger.sqlite").exists()
+
+
 def test_file_in_place_of_the_period_folder_is_refused(good_site, capsys):
     (good_site / "closes").mkdir()
     (good_site / "closes" / "2026-10").write_text("notes\n")

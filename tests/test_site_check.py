@@ -424,7 +424,9 @@ def machine_survey(good_site, write_tiny_cloud):
 def test_trajectory_times_must_increase(good_site, machine_survey):
     machine_survey("boom.laz,1000.0,500000,5700000,20,0,0,0\nboom.laz,999.0,500001,5700000,20,0,0,0\n")
     msgs = errors_of(good_site)
-    assert any(m.startswith("site/surveys/2026-10-31/trajectory.csv line 3: gps_time:") for m in msgs), msgs
+    # plain numbers in the message, not numpy's repr (np.float64(999.0)), which a damage audit found
+    assert ("site/surveys/2026-10-31/trajectory.csv line 3: gps_time: 999.0 is not after 1000.0 on line 2; "
+            "times must strictly increase") in msgs, msgs
 
 
 def test_trajectory_places_a_cloud_without_crs(good_site, machine_survey):

@@ -9,6 +9,10 @@ the file's end (or its first extended VLR); for LAZ, the chunk table that the co
 writes after the points (LAZ specification 1.4 R1, "chunk table"), whose offset is the first
 8 bytes of the point data and whose entries give every chunk's compressed size.
 :func:`header_problem` refuses scale factors, offsets and bounds that cannot place the points.
+Before any reader opens a LAS/LAZ file, the fixed fields of its header (signature, version,
+header size, offset to the points, number of VLRs) are checked against the file's size, so a
+file of random bytes or one cut inside its header is named at once instead of having the
+reader loop over billions of records.
 """
 
 from __future__ import annotations
@@ -173,6 +177,53 @@ def _inspect_other(path: Path, poses: "dict | None") -> CloudInfo:
         return CloudInfo(path, error=str(err) or type(err).__name__)
 
 
+#: Bytes of the smallest LAS public header block (LAS 1.0-1.2; ASPRS LAS 1.4 R15, table 3 has 375).
+_LAS_HEADER_BYTES = 227
+
+#: Bytes of a variable-length record's header (ASPRS LAS 1.4 R15, table 15).
+_VLR_HEADER_BYTES = 54
+
+
+def _raw_header_problem(path: Path, size: int) -> str | None:
+    """Why the fixed part of a LAS header cannot be a real one, read from its bytes before
+    any reader trusts it, or ``None``. A damaged header's VLR count or point-data offset would
+    otherwise have the reader loop over billions of records or allocate gigabytes.
+
+    Fields at their offsets in the public header block (ASPRS LAS 1.4 R15, table 3): the
+    signature "LASF" at 0, version major and minor at 24 and 25, header size at 94 (uint16),
+    offset to point data at 96 (uint32), number of VLRs at 100 (uint32); a VLR header is 54
+    bytes.
+    """
+    with open(path, "rb") as f:
+        raw = f.read(_LAS_HEADER_BYTES)
+    if raw[:4] != b"LASF":
+        return f"not a LAS/LAZ file: it starts with {raw[:4]!r}, not the signature 'LASF'"
+    major, minor = raw[24], raw[25]
+    if major != 1 or minor > 4:
+        return f"damaged header: version {major}.{minor} (LAS files are 1.0 to 1.4)"
+    header_size, = struct.unpack_from("<H", raw, 94)
+    start, vlrs = struct.unpack_from("<II", raw, 96)
+    if header_size < _LAS_HEADER_BYTES:
+        return f"damaged header: header size {header_size} bytes, below the {_LAS_HEADER_BYTES} of any LAS header"
+    if start < header_size:
+        return f"damaged header: the points start at byte {start:,}, inside the {header_size}-byte header"
+    if size < start:
+        return (f"truncated: the file ends at byte {size:,}, inside its header records (the points should "
+                f"start at byte {start:,})")
+    if vlrs * _VLR_HEADER_BYTES > start - header_size:
+        return (f"damaged header: {vlrs:,} variable-length records cannot fit in the {start - header_size:,} "
+                "bytes between the header and the points")
+    return None
+
+
+def _shortened(text: str, keep: int = 240) -> str:
+    """``text`` cut in the middle to about ``keep`` characters (a reader's message may quote a
+    whole WKT definition; its head and its reason at the end are what the user needs)."""
+    if len(text) <= keep:
+        return text
+    return f"{text[: keep // 2]} ... {text[-keep // 2:]}"
+
+
 def inspect_cloud(path: str | Path, poses: "dict | None" = None) -> CloudInfo:
     """Read the header of a LAS/LAZ/COPC file, or look over an E57, PLY or text file.
 
@@ -186,12 +237,27 @@ def inspect_cloud(path: str | Path, poses: "dict | None" = None) -> CloudInfo:
     if path.suffix.lower() not in (".las", ".laz"):
         return _inspect_other(path, poses)
     try:
+        size = path.stat().st_size
+    except OSError as err:
+        return CloudInfo(path, error=str(err) or type(err).__name__)
+    if size < _LAS_HEADER_BYTES:
+        # laspy's own words for these ("Source is empty", "File is to small ...") do not say
+        # that the copy was cut short
+        return CloudInfo(path, error="the file is empty (0 bytes)" if size == 0 else
+                         f"truncated: the file has {size:,} bytes, fewer than the {_LAS_HEADER_BYTES} bytes of "
+                         "the smallest LAS header")
+    # a cut inside the header's records (a CRS or LASzip record read short) is named as the
+    # cut, not as the record it happened to split
+    bad = _raw_header_problem(path, size)
+    if bad is not None:
+        return CloudInfo(path, error=bad)
+    try:
         with laspy.open(path) as reader:
             header = reader.header
             try:
                 crs = header.parse_crs()
             except Exception as err:  # laspy raises several types for broken CRS VLRs
-                return CloudInfo(path, error=f"its CRS record cannot be parsed: {err}")
+                return CloudInfo(path, error=f"its CRS record cannot be parsed: {_shortened(str(err))}")
             problem = size_problem(path, header)
             if problem is not None:
                 return CloudInfo(path, point_count=int(header.point_count), error=problem)

@@ -197,17 +197,23 @@ def _open_quote_line(lines: list[str], start: int, stop: int) -> int | None:
     return opened
 
 
+#: Separators a spreadsheet or database export may use instead of ',', as the message names them.
+_OTHER_SEPARATORS = ((";", "';'"), ("\t", "tabs"), ("|", "'|'"))
+
+
 def _header_problems(
     header: list[str], raw_header: str, schema: TableSchema, display: str, problems: list[Problem]
 ) -> bool:
     """Check the header line; append its problems and return True when the rows can be read."""
     known = set(schema.names)
-    if ";" in raw_header:
-        names = [h.strip() for h in raw_header.split(";")]
+    for sep, shown in _OTHER_SEPARATORS:
+        if sep not in raw_header:
+            continue
+        names = [h.strip() for h in raw_header.split(sep)]
         if set(schema.required) <= set(names) and all(n in known for n in names if n):
             problems.append(Problem(
                 display, 1, None,
-                "the file seems to use ';' between values; the tool needs ',' between values "
+                f"the file seems to use {shown} between values; the tool needs ',' between values "
                 "(and '.' for decimals): save it as comma-separated CSV",
             ))
             return False
@@ -307,10 +313,17 @@ def read_table(
     raw_header = io.StringIO(text, newline="").readline()
     if not _header_problems(header, raw_header, schema, display, problems):
         return empty
+    if raw_header.strip().lower().startswith("sep="):
+        # a spreadsheet program's hint line above the header (Excel writes "sep=,")
+        problems.append(Problem(display, 1, None, f"the first line is a spreadsheet's separator hint "
+                                                  f"({raw_header.strip()!r}), not the header; delete that line"))
+        return empty
     known = set(schema.names)
     for name in schema.required:
         if name not in header:
-            problems.append(Problem(display, 1, name, "required column is missing"))
+            alike = [h for h in header if h.strip().lower().replace(" ", "_") == name and h != name]
+            hint = f" (there is a column {alike[0]!r}: column names are lower case, words joined by '_')" if alike else ""
+            problems.append(Problem(display, 1, name, "required column is missing" + hint))
     for name in header:
         if name and name not in known:
             problems.append(Problem(display, 1, name, "unknown column (ignored)", "warning"))

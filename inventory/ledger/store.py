@@ -45,10 +45,14 @@ from inventory.ledger.schema import (
 from inventory.model.period import Period
 from inventory.model.results import JOURNAL_COLUMNS, CloseResult
 
-__all__ = ["Ledger", "SCHEMA_VERSION", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
+__all__ = ["Ledger", "SCHEMA_VERSION", "ledger_file_problem", "BALANCE_COLUMNS", "HISTORY_COLUMNS", "SCALE_FIT_COLUMNS"]
 
 #: SQLite's words for a file that is not a database or is corrupt (sqlite3 error texts).
 _DAMAGED = ("file is not a database", "database disk image is malformed")
+
+#: How long a writer waits for another's transaction on the ledger to end, seconds (SQLite's
+#: busy timeout); a close holds its write lock only while it records its rows.
+BUSY_TIMEOUT_S = 30.0
 
 def _utc_now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
@@ -82,6 +86,46 @@ def _instant_text(instant: Any) -> str:
             raise LedgerError(f"survey instant {instant!r} has no time zone; expected UTC")
         return instant.astimezone(timezone.utc).isoformat()
     return str(instant)
+
+
+def ledger_file_problem(path: str | Path) -> str | None:
+    """Why the SQLite ledger file at ``path`` could not be used by a close, or ``None`` (also
+    when there is no file: a close creates it). Reads the file without writing anything, not
+    even SQLite's ``-wal`` and ``-shm`` files (opened read-only and immutable), for
+    ``inventory check``: a folder of its name, a file that is not SQLite, damaged pages, a
+    file without the ledger's tables, a ledger of a newer schema."""
+    path = Path(path)
+    if not path.exists() and not path.is_symlink():
+        return None
+    if path.is_dir():
+        return "is a folder, not a ledger file; move it away (a close creates the file)"
+    if not path.exists():
+        return "a link that leads to no file"
+    if path.stat().st_size == 0:
+        return None   # reads as a new ledger (a close checks it against the outputs in closes/)
+    try:
+        con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro&immutable=1", uri=True)
+    except sqlite3.Error as err:
+        return f"cannot be read ({err})"
+    try:
+        found = [r[0] for r in con.execute("PRAGMA quick_check(3)")]
+        if found != ["ok"]:
+            return f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a backup"
+        tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if "schema_version" not in tables:
+            return "an SQLite file without a schema_version table is not a ledger"
+        version = con.execute("SELECT MAX(version) FROM schema_version").fetchone()[0]
+        if version is None:
+            return "schema_version is empty"
+        if version > SCHEMA_VERSION:
+            return f"ledger schema version {version} is newer than this tool's ({SCHEMA_VERSION}); upgrade the tool"
+    except sqlite3.DatabaseError as err:
+        if str(err) in _DAMAGED:
+            return f"not a readable SQLite ledger ({err}); restore it from a backup"
+        return f"cannot be read ({err})"
+    finally:
+        con.close()
+    return None
 
 
 class Ledger:
@@ -129,6 +173,7 @@ class Ledger:
             self._con = self._connect(self.path)
             self._pending_create = False
             try:
+                self._check_pages()
                 self._check_schema()
             except BaseException:
                 self.close()
@@ -143,7 +188,7 @@ class Ledger:
         try:
             # isolation_level=None: we issue BEGIN/COMMIT ourselves, one transaction per close.
             con = sqlite3.connect(
-                ":memory:" if path is None else str(path), timeout=30.0, isolation_level=None
+                ":memory:" if path is None else str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None
             )
             con.execute("PRAGMA foreign_keys = ON")
             if path is None:
@@ -208,6 +253,11 @@ class Ledger:
         try:
             self._db.execute("BEGIN IMMEDIATE")  # the write lock, before any check
         except sqlite3.Error as err:
+            if "locked" in str(err) or "busy" in str(err):
+                raise LedgerError(
+                    f"{self.path}: cannot start a transaction: {err} (another program has held a write "
+                    f"transaction on it for over {BUSY_TIMEOUT_S:g} s: another close of this site, or a database tool with "
+                    "changes not committed); nothing was written, run it again when that ends") from err
             raise LedgerError(f"{self.path}: cannot start a transaction: {err}") from err
         if was_pending:
             try:
@@ -248,6 +298,19 @@ class Ledger:
         self._db.execute("COMMIT")
         if state[0]:
             self._pending_create = False
+
+    def _check_pages(self) -> None:
+        """Refuse a ledger file with damaged pages (a disk error, a partial copy): its first
+        page reads, so the damage would surface as a failed query half-way through a command.
+        SQLite's ``PRAGMA quick_check`` reads every page once (milliseconds for a ledger of
+        years of closes) and writes nothing."""
+        try:
+            found = [r[0] for r in self._db.execute("PRAGMA quick_check(3)")]
+        except sqlite3.DatabaseError as err:
+            found = [str(err)]
+        if found != ["ok"]:
+            raise LedgerInputError(self.path, f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a "
+                                              "backup")
 
     def _check_schema(self) -> None:
         con = self._db

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import re
 import warnings
 from collections.abc import Collection, Mapping
@@ -487,7 +488,7 @@ class _Loader:
             # an id refused there (missing, a number) would make every row naming it 'unknown':
             # the tables' pile ids are checked once the register is right
             pile_ids = set()
-        opening = self._opening(pile_ids)
+        opening = self._opening(pile_ids, raw)
         self._journal_codes(config.journal, material_names, pile_ids if ids_known else None)
         if config.journal.currency is None and materials:
             costed = sorted(m for m, mat in materials.items() if mat.unit_cost is not None)
@@ -497,8 +498,14 @@ class _Loader:
                           "the journal's values carry no currency")
         if piles is not None:
             self._small_footprints(piles, config.grid.cell_size_m)
+            if config.base.floor_raster is not None and crs is not None:
+                self._floor_under_piles(config.base.floor_raster, piles, crs)
         movements = self._all_movements(pile_ids, material_names, scales, tz)
+        if piles is not None and ids_known:
+            self._tickets_against_piles(movements, dict(zip(piles["pile_id"], piles["material"])))
         surveys = self._surveys(crs, config, tz) if crs else {}
+        if opening is not None and tz is not None and surveys and not self._ledger_named(raw):
+            self._opening_months(opening, surveys, tz)
         if piles is not None and surveys:
             self._piles_against_surveys(piles, surveys)
             self.problems += survey_extent_problems(surveys, piles, config.grid.cell_size_m, self.rel)
@@ -523,7 +530,7 @@ class _Loader:
     def _read_toml(self) -> dict | None:
         path = self.root / "site.toml"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return None
         try:
             text = path.read_bytes().decode("utf-8-sig")
@@ -816,13 +823,21 @@ class _Loader:
         refused row is reported once, not again as an unknown material wherever it is used)."""
         path = self.root / "materials.csv"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return {}, set()
         errors_before = len(self.errors_in(path))
         frame = self.table(path, "materials")
         names = set(frame["material"])
         if len(self.errors_in(path)) > errors_before:
             names |= _column_values(path, "material")
+        # a sigma as large as the density itself says the density could be nothing: the
+        # columns swapped, or the sigma keyed in kg/m3
+        wide = frame["density_sd_t_m3"].notna() & (frame["density_sd_t_m3"] >= frame["bulk_density_t_m3"])
+        for row in frame[wide].itertuples():
+            self.error(path, int(row.line), "density_sd_t_m3",
+                       f"{row.density_sd_t_m3:g} t/m3 is not below the bulk density {row.bulk_density_t_m3:g} t/m3 "
+                       "(columns swapped? a density's one-sigma is a few per cent of it)")
+        frame = frame[~wide]
         materials = {
             row.material: Material(
                 row.material,
@@ -843,7 +858,7 @@ class _Loader:
 
         path = self.root / "piles.gpkg"
         if not path.is_file():
-            self.error(path, None, None, "file not found")
+            self.error(path, None, None, _not_a_file(path))
             return None
         if self.outside(path):
             self.error(path, None, None, f"links to a file outside the site folder (refused; {_OUTSIDE_WHY})")
@@ -1023,14 +1038,43 @@ class _Loader:
                            f"name in lower case); save or rename it as {name}")
         return found
 
-    def _opening(self, pile_ids: set[str]) -> pd.DataFrame | None:
+    def _opening(self, pile_ids: set[str], raw: dict) -> pd.DataFrame | None:
         path = self.root / "opening.csv"
         self._look_alikes(self.root, "opening.csv")
-        if not path.exists():   # a folder of its name is read, and refused as one
+        if not path.exists() and not path.is_symlink():   # a folder of its name is read, and refused as one
+            if (self.root / "movements").is_dir() and not self._ledger_named(raw):
+                # books without an opening (a site measured with `volumes` only has no books)
+                self.warn(path, None, None, "no opening.csv and no ledger.sqlite: the first close has no opening "
+                                            "balances and will be refused")
             return None
         frame, problems = check_opening(self.table(path, "opening"), pile_ids=pile_ids or None, path=self.rel(path))
         self.problems += problems
+        if pile_ids and not any(q.severity == "error" for q in problems) and len(frame):
+            for pile in sorted(set(pile_ids) - set(frame["pile_id"])):
+                self.warn(path, None, "pile_id", f"pile {pile!r} has no opening balance: a close that opens from "
+                                                 "opening.csv opens it at 0 t")
         return frame
+
+    def _opening_months(self, opening: pd.DataFrame, surveys: dict, tz: ZoneInfo) -> None:
+        """Without a ledger, the first close opens from opening.csv only in the month its
+        balances are dated (earlier movements would be skipped): a balance dated in a month
+        without a survey can open no close (a warning: the close refuses it, naming the line)."""
+        surveyed = {d[:7] for d in surveys}
+        for row in opening.itertuples():
+            as_of = getattr(row, "as_of", None)
+            if as_of is None or pd.isna(as_of):
+                continue
+            month = str(Period.of(pd.Timestamp(as_of).tz_convert(tz).date()))
+            if month not in surveyed:
+                self.warn(str(row.source), int(row.line), "as_of",
+                          f"dated in {month}, a month without a survey: with no ledger, a close opens from "
+                          f"opening.csv only in the month its balances are dated (surveyed: {', '.join(sorted(surveyed))})")
+
+    def _ledger_named(self, raw: dict) -> bool:
+        """Whether the site has a ledger a close could open from: ``ledger.sqlite`` or a shared
+        ledger named in site.toml."""
+        named = isinstance(raw.get("ledger"), dict) and bool(raw["ledger"].get("url"))
+        return named or (self.root / "ledger.sqlite").exists()
 
     # -- movements
     def _all_movements(self, pile_ids: set[str], material_names: set[str], scales: dict[str, Scale],
@@ -1043,7 +1087,12 @@ class _Loader:
             if not sub.is_dir():
                 continue
             if not Period.is_period(sub.name):
-                self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
+                if re.fullmatch(r"\d{4}-\d{2}", sub.name):
+                    # shaped like a month but none (2026-13, 2026-00): a typo that would drop the
+                    # month's movements, as a survey folder of no real date is refused
+                    self.error(sub, None, None, "folder name is not a real month (YYYY-MM, month 01-12)")
+                else:
+                    self.warn(sub, None, None, "folder name is not a period YYYY-MM (ignored)")
                 continue
             start = len(self.problems)
             out[sub.name] = self._movements(sub, pile_ids, material_names, scales, tz)
@@ -1059,7 +1108,8 @@ class _Loader:
             look_alikes |= self._look_alikes(folder, path.name)
             # a header alone is a table with no records this month
             # a folder of the table's name is read, and refused as one: never taken for no records
-            tables[name] = self.table(path, name, empty_ok=True) if path.exists() else None
+            # a link that leads nowhere is read, and refused: never taken for no records either
+            tables[name] = self.table(path, name, empty_ok=True) if path.exists() or path.is_symlink() else None
         for extra in sorted(folder.glob("*.csv")):
             if extra.stem not in MOVEMENT_TABLES and extra not in look_alikes:
                 self.warn(extra, None, None, "not a movement table this tool reads (ignored)")
@@ -1070,6 +1120,23 @@ class _Loader:
         )
         self.problems += problems
         return Movements(folder.name, **frames)
+
+    def _tickets_against_piles(self, movements: dict[str, Movements], material_of: dict) -> None:
+        """A ticket whose material is not its pile's is a warning: a keyed pile id, or the
+        wrong product on the truck. The close's book step says so itself, so a load for a
+        close (``load_site(path, period)``) does not issue these: they are filed under a key of
+        no period in ``by_period``."""
+        for month, period in movements.items():
+            wb = period.weighbridge
+            if wb is None or not len(wb) or "material" not in wb:
+                continue
+            pile_material = wb["pile_id"].map(material_of)
+            odd = wb["material"].notna() & pile_material.notna() & (wb["material"] != pile_material)
+            start = len(self.problems)
+            for r in wb[odd].itertuples():
+                self.warn(str(r.source), int(r.line), "material",
+                          f"ticket {r.ticket} carries {r.material!r} into pile {r.pile_id} of {material_of[r.pile_id]!r}")
+            self.by_period.setdefault(f"{month} (book step)", []).extend(self.problems[start:])
 
     # -- surveys
     def _surveys(self, site_crs: str, config: SiteConfig, tz: ZoneInfo | None) -> dict[str, SurveyRef]:
@@ -1266,7 +1333,24 @@ class _Loader:
                 # a refused station time is reported as such, not again as a missing one
                 self.warn(folder, None, "time", f"no stations.csv times; survey instant taken as {config.survey.default_time} local")
         local_day = instant.astimezone(tz).date() if tz else instant.date()
-        if local_day != day:
+        if abs((local_day - day).days) > _SCAN_DAYS_OFF:
+            # the survey instant is the latest scan time and cuts the books: a scan dated months
+            # or years from its folder's date is a date error, not an overnight survey
+            why = (f"the scans end on {local_day}, more than a day from the folder's date {day} (a date error? "
+                   "the latest scan time is the survey instant, which decides the movements booked before it)")
+            if stations is not None and stations["time"].notna().any():
+                for row in stations[stations["time"].notna()].itertuples():
+                    on = pd.Timestamp(row.time).tz_convert(tz or timezone.utc).date()
+                    if abs((on - day).days) > _SCAN_DAYS_OFF:
+                        self.error(station_path, int(row.line), "time",
+                                   f"{pd.Timestamp(row.time).tz_convert(tz or timezone.utc).isoformat()} is more than "
+                                   f"a day from the folder's date {day} (a date error? the latest scan time is the "
+                                   "survey instant, which decides the movements booked before it)")
+            elif trajectories:
+                self.error(trajectory_path, None, "time", why)
+            else:
+                self.error(folder, None, "time", why)
+        elif local_day != day:
             self.warn(station_path, None, "time", f"scan times fall on {local_day}, not on the folder's date {day}")
         extent = None
         # a stations.csv or trajectory.csv with refused rows (or refused whole) leaves files
@@ -1319,6 +1403,63 @@ class _Loader:
                 and self.errors_in(station_path)):
             return None   # a pose row stations.csv refused is the cause; its own error says so
         return info, len(poses) == count, acquired
+
+    def _floor_under_piles(self, path: Path, piles, site_crs: str) -> None:
+        """Each pile whose base is ``floor`` needs floor heights under its footprint: a raster
+        in another place, another CRS wrongly labelled, or all nodata would leave the pile
+        without a volume, and its variance out of every total. No value under a footprint is
+        an error; part of it, or a raster without a CRS (taken as the site's), a warning."""
+        import numpy as np
+        import rasterio
+        import rasterio.mask
+        import shapely
+        from pyproj import CRS
+        from rasterio.features import geometry_mask
+        from rasterio.warp import transform_geom
+        from rasterio.errors import RasterioError
+        from shapely.geometry import mapping
+
+        floor = piles[[parse_base(str(b))[0] == "floor" if isinstance(b, str) else False for b in piles["base"]]]
+        if not len(floor):
+            return
+        try:
+            with rasterio.open(path) as src:
+                if src.crs is None:
+                    self.warn(path, None, "floor_raster", f"the raster has no CRS; taken as the site's {site_crs}")
+                    to_raster = False
+                else:
+                    to_raster = not CRS(src.crs.to_wkt()).equals(CRS(site_crs))
+                for _, row in floor.iterrows():
+                    geom = row.geometry
+                    if not isinstance(geom, shapely.Geometry) or geom.is_empty:   # NULL reads as NaN; reported
+                        continue
+                    shape = mapping(geom)
+                    if to_raster:
+                        shape = transform_geom(site_crs, src.crs, shape)
+                    try:
+                        data, transform = rasterio.mask.mask(src, [shape], crop=True, filled=False, indexes=1,
+                                                             all_touched=True)
+                        inside = ~geometry_mask([shape], out_shape=data.shape, transform=transform, all_touched=True)
+                    except ValueError:   # the footprint does not overlap the raster at all
+                        data, inside = np.ma.masked_all((1, 1)), np.zeros((1, 1), bool)
+                    values = np.ma.filled(data.astype(float), np.nan)
+                    held = int((inside & np.isfinite(values)).sum())
+                    cells = int(inside.sum())
+                    pile = f"pile {row['pile_id']}"
+                    if held == 0:
+                        b = src.bounds
+                        self.error(path, None, "floor_raster",
+                                   f"no floor height under {pile}, whose base is floor: the raster covers x "
+                                   f"{b.left:,.1f}..{b.right:,.1f}, y {b.bottom:,.1f}..{b.top:,.1f}"
+                                   + ("" if src.crs is None else f" in {src.crs.to_string()}")
+                                   + " (nodata there, another place, or a wrong CRS?)")
+                    elif held < cells:
+                        self.warn(path, None, "floor_raster",
+                                  f"floor heights under {100.0 * held / cells:.0f} % of {pile} only; the rest is "
+                                  "taken from the nearest floor height")
+        except (RasterioError, OSError, ValueError) as err:
+            # a raster that opens was read block by block already; what fails here is named
+            self.error(path, None, "floor_raster", f"cannot be compared with the footprints ({err})")
 
     def _piles_against_surveys(self, piles, surveys: dict[str, SurveyRef]) -> None:
         import shapely
@@ -1427,6 +1568,25 @@ def _non_finite(value: Any, keys: tuple = ()) -> list[tuple[tuple, float]]:
     if isinstance(value, list):
         return [hit for i, v in enumerate(value) for hit in _non_finite(v, keys + (i,))]
     return []
+
+
+#: How many days a survey's scan times may fall from its folder's date: a survey over midnight,
+#: or a folder named after the day the data came in (a warning); more is a date error.
+_SCAN_DAYS_OFF = 1
+
+
+def _not_a_file(path: Path) -> str:
+    """Why a file the site needs is not there: missing, a folder of its name, or a link that
+    leads to no file."""
+    if path.is_dir():
+        return "is a folder, not a file"
+    if path.is_symlink():
+        try:
+            target = os.readlink(path)
+        except OSError:
+            target = "?"
+        return f"a link to {target!r}, which leads to no file"
+    return "file not found"
 
 
 def _is_file(path: Path) -> bool:

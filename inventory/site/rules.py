@@ -23,19 +23,21 @@ weighbridge
     an error.
 belt_scales
     a known belt scale with a direction; the interval ends after it starts; the intervals of
-    one belt do not overlap (a total would be counted twice); tonnes >= 0.
+    one belt do not overlap (a total would be counted twice); tonnes >= 0 and not more than
+    :data:`MAX_BELT_RATE_T_H` over the interval; with the folder's month named, the interval
+    starts in it and ends at most a day after it.
 routing
     a known belt scale; a known pile; the window ends after it starts; the windows of one belt
     do not overlap (a belt feeds one pile at a time).
 transfers
-    known piles; not from a pile to itself; tonnes > 0; no row with a reference repeats
-    another (same piles, time, tonnes and reference).
+    known piles; not from a pile to itself; tonnes > 0 and not above :data:`MAX_PILE_T`; no
+    row with a reference repeats another (same piles, time, tonnes and reference).
 opening
-    a known pile; tonnes a number; at most one balance per pile.
+    a known pile; tonnes a number, not above :data:`MAX_PILE_T`; at most one balance per pile.
 every table
     required columns and values present; piles and materials known; every time carries a UTC
-    offset; a ticket or transfer falls in the month of its ``movements/<YYYY-MM>/`` folder (in
-    the site's time zone), when the caller names the month.
+    offset; a ticket, transfer or belt interval falls (starts) in the month of its
+    ``movements/<YYYY-MM>/`` folder (in the site's time zone), when the caller names the month.
 """
 
 from __future__ import annotations
@@ -55,6 +57,8 @@ if TYPE_CHECKING:
     from inventory.site.load import Scale
 
 __all__ = [
+    "MAX_BELT_RATE_T_H",
+    "MAX_PILE_T",
     "MAX_TICKET_GROSS_T",
     "MOVEMENT_TABLES",
     "NET_ROUNDING_T",
@@ -80,6 +84,22 @@ NET_ROUNDING_T = 0.01
 #: 200 t; road weighbridges are built for 60 to 100 t (common practice). A site that weighs
 #: more in one ticket (a whole train in motion) states its weighbridge's capacity.
 MAX_TICKET_GROSS_T = 1000.0
+
+#: The highest rate a belt-scale total may stand for, tonnes per hour (its tonnes over its
+#: interval): above it the figure is a keying, unit or date error, not a belt. The largest
+#: overland and mine conveyors carry some 10,000 to 40,000 t/h (from memory: bucket-wheel
+#: excavator and iron-ore port conveyors), so 100,000 t/h is beyond any one belt.
+MAX_BELT_RATE_T_H = 100_000.0
+
+#: The most tonnes one opening balance or one transfer may carry: more than any stockpile
+#: holds (from memory: the largest long-term ore stockpiles hold some hundreds of millions of
+#: tonnes), so a larger figure is a keying or unit error (kilograms for tonnes, a pasted id).
+MAX_PILE_T = 1e9
+
+#: How long after the end of its folder's month a belt-scale interval may end: a shift or a
+#: day's total that runs over midnight at the month's end (common practice: shift and daily
+#: totals), never longer.
+_BELT_OVERRUN = pd.Timedelta(days=1)
 
 #: The movement tables of one period, in the order they are checked and reported.
 MOVEMENT_TABLES = ("weighbridge", "belt_scales", "routing", "transfers")
@@ -232,6 +252,11 @@ class _Rows:
                   lambda r: f"{r.scale_id!r} is a {scales[r.scale_id].kind} in site.toml [[scales]], not a belt scale")
 
 
+def _above_any_pile(tonnes: float) -> str:
+    return (f"{tonnes:g} t is above {MAX_PILE_T:g} t, more than any stockpile holds "
+            "(a keying or unit error?)")
+
+
 def _blank(s: pd.Series) -> pd.Series:
     """True where a value is missing: None, NaN, NaT or a blank string."""
     return pd.Series([is_blank(v) for v in s], index=s.index, dtype=bool)
@@ -351,9 +376,11 @@ def _within_capacity(t: _Rows, scales: Mapping[str, Scale], bridge: pd.Series, u
 
 
 def check_belt_scales(
-    frame: pd.DataFrame | None, *, scales: Mapping[str, Scale], path: str = "belt_scales.csv"
+    frame: pd.DataFrame | None, *, scales: Mapping[str, Scale], path: str = "belt_scales.csv",
+    period: Period | str | None = None, timezone: Any = None,
 ) -> tuple[pd.DataFrame, list[Problem]]:
-    """Check belt-scale interval totals; return them normalised (UTC times) and the problems."""
+    """Check belt-scale interval totals; return them normalised (UTC times) and the problems.
+    ``period`` and ``timezone`` name the month the intervals must start in."""
     t = _Rows(frame, "belt_scales", path, table_schema("belt_scales").required)
     df = t.df
     t.text("scale_id")
@@ -372,9 +399,21 @@ def check_belt_scales(
     # a total exported twice, or shift totals beside hourly ones, would book the same
     # tonnes twice
     t.no_overlap("interval", "its tonnes would be counted twice")
+    t.in_period("start", period, timezone, "interval")
+    if period is not None and timezone is not None:
+        month_end = Period.parse(str(period)).bounds(timezone)[1]
+        late = df["end"].notna() & (df["end"] > month_end + _BELT_OVERRUN)
+        t.flag(late, "end", lambda r: f"{r.end.tz_convert(timezone).isoformat()} is more than a day after the end "
+                                      f"of {period} of its folder (a date error? an interval's total is booked "
+                                      "by the share of its duration, so most of it would be lost)")
     bad = t.number("tonnes")
     t.flag(~bad & (df["tonnes"] < 0), "tonnes",
            lambda r: f"{r.tonnes:g} t is below the minimum 0 (a belt total cannot be negative)")
+    hours = (df["end"] - df["start"]).dt.total_seconds() / 3600.0
+    fast = ~bad & (hours > 0) & (df["tonnes"] > MAX_BELT_RATE_T_H * hours)
+    t.flag(fast, "tonnes", lambda r: f"{r.tonnes:g} t in {hours[r.Index]:g} h is "
+                                     f"{r.tonnes / hours[r.Index]:,.0f} t/h, above {MAX_BELT_RATE_T_H:,.0f} t/h, "
+                                     "more than any belt carries (a keying, unit or date error?)")
     return t.result()
 
 
@@ -417,6 +456,7 @@ def check_transfers(
            lambda r: f"transfer from pile {r.from_pile!r} to itself")
     bad = t.number("tonnes")
     t.flag(~bad & (df["tonnes"] <= 0), "tonnes", lambda r: f"{r.tonnes:g} must be greater than 0 (a transfer moves stock)")
+    t.flag(~bad & (df["tonnes"] > MAX_PILE_T), "tonnes", lambda r: _above_any_pile(r.tonnes))
     # the same transfer entered twice (a pasted row) would move the tonnes twice; without a
     # reference two equal transfers on one day (times given by date) may both be real
     key = ["from_pile", "to_pile", "time", "tonnes", "reference"]
@@ -445,8 +485,8 @@ def check_movements(
 
     A table given as None has no records. ``folder`` names the files of rows without a
     ``source`` column (``<folder>/weighbridge.csv``, ...). With ``period`` (the folder's
-    month) and ``timezone`` (the site's), a ticket or transfer dated in another month is an
-    error naming the month it belongs to.
+    month) and ``timezone`` (the site's), a ticket, transfer or belt interval dated in another
+    month is an error naming the month it belongs to.
     """
     def where(name: str) -> str:
         return f"{folder}/{name}.csv" if folder else f"{name}.csv"
@@ -457,7 +497,8 @@ def check_movements(
     checks = (
         ("weighbridge", lambda: check_weighbridge(weighbridge, scales=scales, pile_ids=piles, materials=mats,
                                                   path=where("weighbridge"), period=period, timezone=timezone)),
-        ("belt_scales", lambda: check_belt_scales(belt_scales, scales=scales, path=where("belt_scales"))),
+        ("belt_scales", lambda: check_belt_scales(belt_scales, scales=scales, path=where("belt_scales"),
+                                                  period=period, timezone=timezone)),
         ("routing", lambda: check_routing(routing, scales=scales, pile_ids=piles, path=where("routing"))),
         ("transfers", lambda: check_transfers(transfers, pile_ids=piles, path=where("transfers"),
                                               period=period, timezone=timezone)),
@@ -481,7 +522,8 @@ def check_opening(
     df = t.df
     t.text("pile_id")
     t.known("pile_id", _ids(pile_ids), "pile", "piles.gpkg")
-    t.number("tonnes")
+    bad = t.number("tonnes")
+    t.flag(~bad & (df["tonnes"] > MAX_PILE_T), "tonnes", lambda r: _above_any_pile(r.tonnes))
     for col in _OPENING_SIGMAS:
         df[col] = pd.to_numeric(df[col], errors="coerce").fillna(0.0).astype(float) if col in df else 0.0
     t.times("as_of")

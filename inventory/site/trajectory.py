@@ -104,7 +104,7 @@ def _group_trajectory(rows: pd.DataFrame, display: str, key: str | None,
     bad = np.nonzero(np.diff(t) <= 0)[0]
     for i in bad[:5]:
         problems.append(Problem(display, int(lines[i + 1]), "gps_time",
-                                f"{t[i + 1]!r} is not after {t[i]!r} on line {int(lines[i])}; "
+                                f"{float(t[i + 1])!r} is not after {float(t[i])!r} on line {int(lines[i])}; "
                                 "times must strictly increase"))
     pose_rows = ~rows[list(POSE_FIELDS)].map(is_blank).astype(bool)
     axes_rows = ~rows[list(AXIS_FIELDS)].map(is_blank).astype(bool)

@@ -32,7 +32,6 @@ from inventory.errors import (
     InputError,
     InputWarning,
     PipelineError,
-    RunError,
 )
 from inventory.io.clouds import DEFAULT_CHUNK, ExtraDim, conform_points, merge_extra_dims, points_dtype
 from inventory.io.lazparts import LasLayout, LazPartWriter
@@ -357,7 +356,13 @@ def _grid_surface(spill: TileSpill, classified: _Classified, site: Site, date: s
     """
     box = classified.ground_box
     if not math.isfinite(box[0]):
-        raise RunError(f"survey {date}: no point was classified as surface")
+        # the clouds gave nothing to measure (a handful of points, heights no surface has):
+        # bad input, named on the survey folder with what the classifier made of its points
+        seen = ", ".join(f"{n:,} {CLASS_NAMES.get(c, f'class {c}')}"
+                         for c, n in sorted(classified.counts.items()) if n) or "none kept"
+        raise InputError(_survey_ref(site, date).folder,
+                         f"no point of the survey was classified as surface ({seen}): too few points, "
+                         "or heights no stockpile surface has; check the clouds")
     box = _reach_footprints(box, getattr(site, "piles", None))
     grid_cfg = site.config.grid
     sgrid = Grid.snapped(*box, cell=float(grid_cfg.cell_size_m), crs=site.crs)
