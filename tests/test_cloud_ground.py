@@ -272,6 +272,34 @@ def test_pile_leaning_on_a_wall_is_surface_with_the_pad_behind_the_wall_scanned(
         SlopeGroundParams(wall_reach=-1.0)
 
 
+def _side_on_pad(rng, pad, hidden, side, roof, ends=None):
+    """A pad of rows (``pad`` = (width, length, spacing along x, spacing along y)) with the
+    box ``hidden`` = (x0, x1, y0, y1) unreturned, a vehicle's side facing -y at
+    ``side`` = (x0, x1, y, z0, z1, x spacing, z spacing) seen in a grid of returns, its ``roof`` = (x0,
+    x1, y0, y1, z, n) of random returns, and optionally returns up its two ends
+    (``ends`` = y); the pad tilted 1 %, 5 mm of noise. Returns X, Y, Z and the number of
+    pad points (first)."""
+    gx, gy = np.meshgrid(np.arange(0, pad[0], pad[2]), np.arange(0, pad[1], pad[3]))
+    gx, gy = gx.ravel() + rng.normal(0, 0.02, gx.size), gy.ravel() + rng.normal(0, 0.02, gy.size)
+    out = (gx > hidden[0]) & (gx < hidden[1]) & (gy > hidden[2]) & (gy < hidden[3])
+    gx, gy = gx[~out], gy[~out]
+    x0, x1, sy, z0, z1, xs, zs = side
+    fx, fz = (a.ravel() for a in np.meshgrid(np.arange(x0, x1, xs), np.arange(z0, z1, zs)))
+    cx, cy, cz = [fx], [np.full(len(fx), sy)], [fz]
+    if ends is not None:
+        e = np.arange(z0, z1, zs)
+        cx += [np.full(len(e), x0), np.full(len(e), x1)]
+        cy += [np.full(2 * len(e), ends)]
+        cz += [e, e]
+    rx0, rx1, ry0, ry1, rz, n = roof
+    cx.append(rng.random(n) * (rx1 - rx0) + rx0)
+    cy.append(rng.random(n) * (ry1 - ry0) + ry0)
+    cz.append(np.full(n, rz))
+    X, Y = np.r_[gx, np.concatenate(cx)], np.r_[gy, np.concatenate(cy)]
+    Z = 0.01 * X + np.r_[np.zeros(len(gx)), np.concatenate(cz)] + rng.normal(0, 0.005, len(X))
+    return X, Y, Z, len(gx)
+
+
 @pytest.mark.parametrize("seed", range(3))
 def test_low_side_of_a_car_over_hidden_ground_is_not_surface(seed):
     # A car (4.5 m x 1.8 m, its side seen from 0.25 m up to 1.5 m, the pad under it and
@@ -279,22 +307,11 @@ def test_low_side_of_a_car_over_hidden_ground_is_not_surface(seed):
     # front is 0.3-0.5 m from the side's lowest row, so the 50 degree envelope lets that
     # row through (21-25 of its 23 points were surface before). The side rises over it, the
     # pad in front is lower and no surface rises beside it: a face's foot, not the ground.
-    rng = np.random.default_rng(seed)
-    gx, gy = np.meshgrid(np.arange(0, 20, 0.25), np.arange(0, 20, 0.4))
-    gx, gy = gx.ravel() + rng.normal(0, 0.02, gx.size), gy.ravel() + rng.normal(0, 0.02, gy.size)
-    hidden = (gx > 7.6) & (gx < 12.4) & (gy > 8.9) & (gy < 12.6)
-    gx, gy = gx[~hidden], gy[~hidden]
-    fx, fz = (a.ravel() for a in np.meshgrid(np.arange(7.75, 12.25, 0.2), np.arange(0.25, 1.5, 0.18)))
-    ends = np.arange(0.25, 1.5, 0.18)
-    rx, ry = rng.random(120) * 4.5 + 7.75, rng.random(120) * 1.8 + 9.1
-    cx = np.r_[fx, np.full(len(ends), 7.75), np.full(len(ends), 12.25), rx]
-    cy = np.r_[np.full(len(fx), 9.1), np.full(2 * len(ends), 9.5), ry]
-    cz = np.r_[fz, ends, ends, np.full(120, 1.5)]
-    X, Y = np.r_[gx, cx], np.r_[gy, cy]
-    Z = 0.01 * X + np.r_[np.zeros(len(gx)), cz] + rng.normal(0, 0.005, len(X))
+    X, Y, Z, n = _side_on_pad(np.random.default_rng(seed), (20, 20, 0.25, 0.4), (7.6, 12.4, 8.9, 12.6),
+                              (7.75, 12.25, 9.1, 0.25, 1.5, 0.2, 0.18), (7.75, 12.25, 9.1, 10.9, 1.5, 120), ends=9.5)
     cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
-    assert (cls[len(gx):] != GROUND).all()
-    assert (cls[:len(gx)] == GROUND).all()
+    assert (cls[n:] != GROUND).all()
+    assert (cls[:n] == GROUND).all()
 
 
 @pytest.mark.parametrize("seed", range(3))
@@ -305,18 +322,8 @@ def test_chassis_edge_over_ground_no_scanner_saw_is_not_surface(seed):
     # 50 degree envelope from the pad 3 m off lets it through (before the "nothing scanned
     # straight away" test, all 32 of its points were surface, each seed). The side rises
     # over the row and no surface lies beyond it: the foot of a face over hidden ground.
-    rng = np.random.default_rng(seed)
-    gx, gy = np.meshgrid(np.arange(0, 24, 0.25), np.arange(0, 20, 0.3))
-    gx, gy = gx.ravel() + rng.normal(0, 0.02, gx.size), gy.ravel() + rng.normal(0, 0.02, gy.size)
-    hidden = (gx > 5.0) & (gx < 19.0) & (gy > 5.0) & (gy < 13.5)
-    gx, gy = gx[~hidden], gy[~hidden]
-    fx, fz = (a.ravel() for a in np.meshgrid(np.arange(8.0, 16.0, 0.25), np.arange(0.35, 2.5, 0.2)))
-    rx, ry = rng.random(200) * 8.0 + 8.0, rng.random(200) * 2.5 + 8.0
-    cx = np.r_[fx, rx]
-    cy = np.r_[np.full(len(fx), 8.0), ry]
-    cz = np.r_[fz, np.full(200, 2.5)]
-    X, Y = np.r_[gx, cx], np.r_[gy, cy]
-    Z = 0.01 * X + np.r_[np.zeros(len(gx)), cz] + rng.normal(0, 0.005, len(X))
+    X, Y, Z, n = _side_on_pad(np.random.default_rng(seed), (24, 20, 0.25, 0.3), (5.0, 19.0, 5.0, 13.5),
+                              (8.0, 16.0, 8.0, 0.35, 2.5, 0.25, 0.2), (8.0, 16.0, 8.0, 10.5, 2.5, 200))
     cls, _ = slope_ground(X, Y, Z, np.ones(len(Z), np.uint8), np.zeros(len(Z), bool))
-    assert (cls[len(gx):] != GROUND).all()
-    assert (cls[:len(gx)] == GROUND).all()
+    assert (cls[n:] != GROUND).all()
+    assert (cls[:n] == GROUND).all()
