@@ -1437,9 +1437,14 @@ class _Loader:
                     if to_raster:
                         shape = transform_geom(site_crs, src.crs, shape)
                     try:
-                        data, transform = rasterio.mask.mask(src, [shape], crop=True, filled=False, indexes=1,
-                                                             all_touched=True)
-                        inside = ~geometry_mask([shape], out_shape=data.shape, transform=transform, all_touched=True)
+                        with warnings.catch_warnings():
+                            # rasterio's own use of affine's '*' (a PendingDeprecationWarning
+                            # per vertex of the footprint), not ours
+                            warnings.simplefilter("ignore", PendingDeprecationWarning)
+                            data, transform = rasterio.mask.mask(src, [shape], crop=True, filled=False, indexes=1,
+                                                                 all_touched=True)
+                            inside = ~geometry_mask([shape], out_shape=data.shape, transform=transform,
+                                                    all_touched=True)
                     except ValueError:   # the footprint does not overlap the raster at all
                         data, inside = np.ma.masked_all((1, 1)), np.zeros((1, 1), bool)
                     values = np.ma.filled(data.astype(float), np.nan)
