@@ -337,3 +337,24 @@ def test_fill_windows_on_threads_of_this_process_match_one_thread():
     assert r1 == r3 and r1.filled_cells > 1000 and r1.gap_cells > 0
     np.testing.assert_array_equal(one.z, many.z)
     np.testing.assert_array_equal(one.filled, many.filled)
+
+
+
+@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="mallopt is glibc's (glibc mallopt(3))")
+def test_dask_workers_tune_their_allocator_and_this_process_does_not():
+    # A Dask worker starts with glibc mapping every block above its mmap threshold afresh
+    # and trimming its heap above 64 KiB, so each job's large arrays came as new zeroed
+    # pages; the executor's workers set mallopt(3) M_MMAP_THRESHOLD, M_TRIM_THRESHOLD and
+    # M_TOP_PAD before their first job (measured on the 10 M bench survey: one worker
+    # 70 -> 43 s, two 42 -> 26 s, CHANGELOG.md; speed is the bench's to show, not a test's)
+    import inventory.parallel as par
+
+    with executor(2) as ex:     # (one worker runs in this process: two are a Dask cluster)
+        assert list(ex.map(_worker_tuned, [(), ()])) == [True, True]
+    assert par._tuned is False   # jobs on this process's threads are left as they were
+
+
+def _worker_tuned():
+    import inventory.parallel
+
+    return inventory.parallel._tuned
