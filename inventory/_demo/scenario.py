@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Callable, ClassVar
 
 import numpy as np
 
@@ -38,6 +39,7 @@ from inventory._demo.simulate import (
     KIND_STRUCTURE,
     KIND_VEHICLE,
     Box,
+    Cylinder,
     DustCloud,
     Scene,
     Sphere,
@@ -57,6 +59,7 @@ __all__ = [
     "SurveySpec",
     "SURVEYS",
     "pad_height",
+    "TrueScene",
     "Terminal",
     "terminal_at",
 ]
@@ -236,8 +239,14 @@ SURVEYS: tuple[SurveySpec, ...] = (
 
 
 @dataclass
-class Terminal:
-    """The whole true scene at one survey."""
+class TrueScene:
+    """The whole true scene of a site at one survey: its piles on the bare ground, and what
+    is not stock (machines, vehicles, structures as solids; dust; birds).
+
+    A site's scene names, as class attributes, its piles (``PILES``), their materials
+    (``MATERIALS``), the bare ground (``ground``, a function of x and y) and the ground's
+    reflectivity (``GROUND_REFLECTIVITY``).
+    """
 
     survey: SurveySpec
     shapes: dict[str, Shape]
@@ -246,16 +255,21 @@ class Terminal:
     dust: list[DustCloud] = field(default_factory=list)
     birds: list[Sphere] = field(default_factory=list)
 
+    PILES: ClassVar[tuple[PileSpec, ...]] = ()
+    MATERIALS: ClassVar[dict[str, MaterialSpec]] = {}
+    GROUND_REFLECTIVITY: ClassVar[float] = 0.0
+    ground: ClassVar[Callable[[np.ndarray, np.ndarray], np.ndarray]]
+
     @property
     def pile_ids(self) -> list[str]:
-        return [p.pile_id for p in PILES]
+        return [p.pile_id for p in self.PILES]
 
     def thicknesses(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """Thickness of every pile above the pad, shape ``(n_piles, *x.shape)``."""
+        """Thickness of every pile above the ground, shape ``(n_piles, *x.shape)``."""
         x = np.asarray(x, float)
         y = np.asarray(y, float)
-        out = np.zeros((len(PILES),) + x.shape)
-        for i, p in enumerate(PILES):
+        out = np.zeros((len(self.PILES),) + x.shape)
+        for i, p in enumerate(self.PILES):
             shape = self.shapes[p.pile_id]
             x0, y0, x1, y1 = shape.bbox()
             near = (x >= x0 - 0.01) & (x <= x1 + 0.01) & (y >= y0 - 0.01) & (y <= y1 + 0.01)
@@ -264,25 +278,39 @@ class Terminal:
         return out
 
     def height(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """The true surface: pad plus piles (piles never overlap, so thicknesses add)."""
-        return pad_height(x, y) + self.thicknesses(x, y).sum(axis=0)
+        """The true surface: ground plus piles (piles never overlap, so thicknesses add)."""
+        return self.ground(x, y) + self.thicknesses(x, y).sum(axis=0)
 
     def surface_info(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         t = self.thicknesses(x, y)
         best = t.argmax(axis=0)
         pile = np.where(t.max(axis=0) > 1e-9, best + 1, 0)
-        refl = np.array([PAD_REFLECTIVITY] + [MATERIALS[p.material].reflectivity for p in PILES])
+        refl = np.array([self.GROUND_REFLECTIVITY] + [self.MATERIALS[p.material].reflectivity for p in self.PILES])
         return pile, refl[pile]
 
     def scene(self) -> Scene:
         return Scene(self.height, self.surface_info, self.solids, self.dust, self.birds)
 
+    def add(self, name: str, kind: int, solids: list) -> None:
+        """An object of ``kind`` made of ``solids`` (boxes, cylinders), numbered in order."""
+        oid = len(self.objects) + 1
+        self.objects.append({"id": oid, "name": name, "kind": kind})
+        for s in solids:
+            if isinstance(s, Box):
+                self.solids.append(Box(s.center, s.half, s.rotation, kind=kind, object_id=oid,
+                                       reflectivity=s.reflectivity))
+            else:
+                self.solids.append(Cylinder(s.center, s.radius, s.half_length, s.rotation, kind=kind, object_id=oid,
+                                            reflectivity=s.reflectivity))
 
-def _add(t: Terminal, name: str, kind: int, boxes: list[Box]) -> None:
-    oid = len(t.objects) + 1
-    t.objects.append({"id": oid, "name": name, "kind": kind})
-    for b in boxes:
-        t.solids.append(Box(b.center, b.half, b.rotation, kind=kind, object_id=oid, reflectivity=b.reflectivity))
+
+class Terminal(TrueScene):
+    """The demo terminal at one survey: its piles on the pad (:func:`pad_height`)."""
+
+    PILES = PILES
+    MATERIALS = MATERIALS
+    GROUND_REFLECTIVITY = PAD_REFLECTIVITY
+    ground = staticmethod(pad_height)
 
 
 def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
@@ -301,7 +329,7 @@ def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
     boom_c = boom_pivot + rot @ np.array([boom_len / 2, 0, 0])
     jib_c = boom_pivot + rot @ np.array([-jib_len / 2, 0, 0.3])
     cw_c = boom_pivot + rot @ np.array([-jib_len + 1.2, 0, -0.6])
-    _add(t, "stacker", KIND_MACHINE, [
+    t.add("stacker", KIND_MACHINE, [
         Box.standing(sx, sy, z0, (9.0, 6.0, 2.6), 0.0, reflectivity=STEEL_REFLECTIVITY),
         Box.standing(sx, sy, z0 + 2.6, (3.0, 3.0, 9.4), 0.0, reflectivity=STEEL_REFLECTIVITY),
         Box(tuple(boom_c), (boom_len / 2, 0.8, 0.7), rot, reflectivity=STEEL_REFLECTIVITY),
@@ -319,7 +347,7 @@ def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
         bottom = float(pad_height(0.5 * (gx0 + gx1), ty))
         boxes.append(Box.standing(0.5 * (gx0 + gx1), ty, bottom, (0.5, gx1 - gx0, gz + _GALLERY_UNDERSIDE - bottom), 90.0,
                                   reflectivity=STEEL_REFLECTIVITY))
-    _add(t, "conveyor gallery", KIND_MACHINE, boxes)
+    t.add("conveyor gallery", KIND_MACHINE, boxes)
 
     # Wheel loader parked on FE1's north flank near the reclaim face, rolled with the slope.
     lx, ly = (156.0, 150.0)[k], 114.0
@@ -331,7 +359,7 @@ def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
         c = np.array([lx, ly, lz]) + lrot @ np.array([dx, 0.0, dz + size[2] / 2])
         return Box(tuple(c), (size[0] / 2, size[1] / 2, size[2] / 2), lrot, reflectivity=LOADER_REFLECTIVITY)
 
-    _add(t, "wheel loader", KIND_VEHICLE, [
+    t.add("wheel loader", KIND_VEHICLE, [
         on_loader(0.0, 0.0, (6.5, 2.6, 2.2)),
         on_loader(-1.6, 2.2, (1.8, 1.8, 1.5)),
         on_loader(4.0, 0.1, (1.3, 3.0, 1.2)),
@@ -342,7 +370,7 @@ def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
     a = math.radians(th)
     fwd = np.array([math.cos(a), math.sin(a)])
     cab = np.array([tx, ty]) + 6.5 * fwd
-    _add(t, "truck", KIND_VEHICLE, [
+    t.add("truck", KIND_VEHICLE, [
         Box.standing(cab[0], cab[1], float(pad_height(*cab)) + 0.4, (5.6, 2.5, 2.9), th, reflectivity=TRUCK_REFLECTIVITY),
         Box.standing(tx, ty, float(pad_height(tx, ty)) + 0.9, (9.5, 2.55, 2.5), th, reflectivity=TRUCK_REFLECTIVITY),
     ])
@@ -354,13 +382,13 @@ def terminal_at(k: int, rng: np.random.Generator) -> Terminal:
                             reflectivity=CONCRETE_WALL_REFLECTIVITY)
 
     bx1 = _BAY_X0 + _BAY_W
-    _add(t, "salt bay walls", KIND_STRUCTURE, [
+    t.add("salt bay walls", KIND_STRUCTURE, [
         wall(_BAY_X0 - _BAY_WALL_T, _BAY_Y0 - _BAY_WALL_T, bx1 + _BAY_WALL_T, _BAY_Y0),
         wall(_BAY_X0 - _BAY_WALL_T, _BAY_Y0, _BAY_X0, _BAY_OPEN_Y),
         wall(bx1, _BAY_Y0, bx1 + _BAY_WALL_T, _BAY_OPEN_Y),
     ])
     mz = float(pad_height(*_MAST))
-    _add(t, "lighting mast platform", KIND_STRUCTURE, [
+    t.add("lighting mast platform", KIND_STRUCTURE, [
         Box.standing(_MAST[0], _MAST[1], mz - 0.3, (_MAST_SIZE, _MAST_SIZE, _MAST_H + 0.3), 0.0,
                      reflectivity=STEEL_REFLECTIVITY),
     ])

@@ -45,7 +45,6 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -69,7 +68,7 @@ from inventory._demo.sample import (
     _write_text,
     _write_tif,
 )
-from inventory._demo.scenario import MaterialSpec, PileSpec, SurveySpec
+from inventory._demo.scenario import MaterialSpec, PileSpec, SurveySpec, TrueScene
 from inventory._demo.shapes import Cone, ConeGroup, Plateau, Shape, Windrow
 from inventory._demo.simulate import (
     KIND_NAMES,
@@ -78,7 +77,6 @@ from inventory._demo.simulate import (
     Box,
     Cylinder,
     DustCloud,
-    Scene,
     ScannerModel,
     Sphere,
     Station,
@@ -187,52 +185,13 @@ SURVEYS: tuple[SurveySpec, ...] = (
 )
 
 
-@dataclass
-class Yard:
-    """The whole true scene at one survey."""
+class Yard(TrueScene):
+    """The second yard at one survey: its piles on the undulating ground (:func:`ground_height`)."""
 
-    survey: SurveySpec
-    shapes: dict[str, Shape]
-    objects: list[dict] = field(default_factory=list)
-    solids: list = field(default_factory=list)
-    dust: list[DustCloud] = field(default_factory=list)
-    birds: list[Sphere] = field(default_factory=list)
-
-    def thicknesses(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """Thickness of every pile above the ground, shape ``(n_piles, *x.shape)``."""
-        x = np.asarray(x, float)
-        y = np.asarray(y, float)
-        out = np.zeros((len(PILES),) + x.shape)
-        for i, p in enumerate(PILES):
-            x0, y0, x1, y1 = self.shapes[p.pile_id].bbox()
-            near = (x >= x0 - 0.01) & (x <= x1 + 0.01) & (y >= y0 - 0.01) & (y <= y1 + 0.01)
-            if near.any():
-                out[i][near] = self.shapes[p.pile_id].thickness(x[near], y[near])
-        return out
-
-    def height(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-        """The true surface: ground plus piles (the piles never overlap)."""
-        return ground_height(x, y) + self.thicknesses(x, y).sum(axis=0)
-
-    def surface_info(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        t = self.thicknesses(x, y)
-        pile = np.where(t.max(axis=0) > 1e-9, t.argmax(axis=0) + 1, 0)
-        refl = np.array([GROUND_REFLECTIVITY] + [MATERIALS[p.material].reflectivity for p in PILES])
-        return pile, refl[pile]
-
-    def scene(self) -> Scene:
-        return Scene(self.height, self.surface_info, self.solids, self.dust, self.birds)
-
-    def add(self, name: str, kind: int, solids: list) -> None:
-        oid = len(self.objects) + 1
-        self.objects.append({"id": oid, "name": name, "kind": kind})
-        for s in solids:
-            if isinstance(s, Box):
-                self.solids.append(Box(s.center, s.half, s.rotation, kind=kind, object_id=oid,
-                                       reflectivity=s.reflectivity))
-            else:
-                self.solids.append(Cylinder(s.center, s.radius, s.half_length, s.rotation, kind=kind, object_id=oid,
-                                            reflectivity=s.reflectivity))
+    PILES = PILES
+    MATERIALS = MATERIALS
+    GROUND_REFLECTIVITY = GROUND_REFLECTIVITY
+    ground = staticmethod(ground_height)
 
 
 def _z(yard: Yard, x: float, y: float) -> float:
