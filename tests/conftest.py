@@ -596,6 +596,25 @@ def plane_points():
     return make
 
 
+@pytest.fixture(scope="session")
+def cell_mean_surface():
+    """Exact cell means (4 x 4 samples a cell) of a pile on a level pad at 10 m, cells of 10
+    points: ``cell_mean_surface(thickness, grid, hidden, objects=None)``. ``hidden`` cells
+    have no points; ``objects`` cells hold object returns (as the survey's gridding marks
+    them, ``meta["object_seen"]``)."""
+    def make(thickness, grid: Grid, hidden, objects=None) -> Surface:
+        x, y = grid.centers()
+        k = (np.arange(4) + 0.5) / 4 - 0.5
+        z = 10.0 + np.mean([thickness(x + a * grid.cell, y + b * grid.cell) for a in k for b in k], axis=0)
+        m = hidden(x, y)
+        z[m] = np.nan
+        count = np.where(m, 0, 10).astype(np.int32)
+        sd = np.where(m, np.nan, 0.005)
+        meta = {} if objects is None else {"object_seen": objects(x, y)}
+        return Surface(grid, z, count, sd, np.zeros(grid.shape, bool), "", meta)
+    return make
+
+
 # ----------------------------------------------------------------------------- E57 files
 
 

@@ -26,7 +26,7 @@ import shapely
 
 from inventory._demo.shapes import Cone, Plateau
 from inventory.errors import CoverageWarning
-from inventory.model.grid import Grid, Surface
+from inventory.model.grid import Grid
 from inventory.site.load import Material
 from inventory.survey.gridding import fill_holes
 from inventory.volume import measure as vm
@@ -47,21 +47,6 @@ def _measure(surface, poly):
         return vm.measure_piles(surface, _piles(poly), MATS, vm.BaseSurfaces()).iloc[0]
 
 
-def _surface_of(thickness, hidden, objects=None):
-    """Exact cell means (4 x 4 samples a cell) of a pile on a level pad at 10 m, cells of
-    10 points; ``hidden`` cells have no points; ``objects`` cells hold object returns (as
-    the survey's gridding marks them, ``meta["object_seen"]``)."""
-    x, y = GRID.centers()
-    k = (np.arange(4) + 0.5) / 4 - 0.5
-    z = 10.0 + np.mean([thickness(x + a * GRID.cell, y + b * GRID.cell) for a in k for b in k], axis=0)
-    m = hidden(x, y)
-    z[m] = np.nan
-    count = np.where(m, 0, 10).astype(np.int32)
-    sd = np.where(m, np.nan, 0.005)
-    meta = {} if objects is None else {"object_seen": objects(x, y)}
-    return Surface(GRID, z, count, sd, np.zeros(GRID.shape, bool), "", meta)
-
-
 # ----------------------------------------------------------------------------- crest or flat top
 R, r_TOP = 10.0, 5.0
 H = (R - r_TOP) * TAN35
@@ -73,10 +58,10 @@ def _frustum(x, y):
     return np.clip(np.minimum(H, (R - np.hypot(x, y)) * TAN35), 0.0, None)
 
 
-def test_hidden_flat_top_interval_holds_the_truth_and_the_pile_is_flagged(monkeypatch):
+def test_hidden_flat_top_interval_holds_the_truth_and_the_pile_is_flagged(monkeypatch, cell_mean_surface):
     # the whole flat top and 0.5 m of the flank below its edge unseen: from the flanks it
     # could be the frustum (641 m3) as well as the full cone (733 m3)
-    s = _surface_of(_frustum, lambda x, y: np.hypot(x, y) < r_TOP + 0.5)
+    s = cell_mean_surface(_frustum, GRID, lambda x, y: np.hypot(x, y) < r_TOP + 0.5)
     poly = shapely.Point(0, 0).buffer(R + 1.0, quad_segs=64)
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
@@ -98,10 +83,10 @@ def test_hidden_flat_top_interval_holds_the_truth_and_the_pile_is_flagged(monkey
     assert any("pile P: its top was not seen" in t for t in texts)
 
 
-def test_hidden_top_range_is_the_volume_between_the_chord_and_the_envelope(monkeypatch):
+def test_hidden_top_range_is_the_volume_between_the_chord_and_the_envelope(monkeypatch, cell_mean_surface):
     # _hidden_top returns the volume between the linear fill and the bound; the value is at
     # the bound's end, so sigma = range / sqrt(3) (one gap)
-    s = _surface_of(_frustum, lambda x, y: np.hypot(x, y) < r_TOP + 0.5)
+    s = cell_mean_surface(_frustum, GRID, lambda x, y: np.hypot(x, y) < r_TOP + 0.5)
     poly = shapely.Point(0, 0).buffer(R + 1.0, quad_segs=64)
     got = []
     orig = vm._hidden_top
@@ -117,9 +102,9 @@ def test_hidden_top_range_is_the_volume_between_the_chord_and_the_envelope(monke
     assert FRUSTUM * 0.93 < linear.volume_m3 < FRUSTUM
 
 
-def test_small_hidden_apex_keeps_its_accuracy_and_is_not_flagged():
+def test_small_hidden_apex_keeps_its_accuracy_and_is_not_flagged(cell_mean_surface):
     cone = Cone(0.0, 0.0, 10.0, 35.0)
-    s = _surface_of(cone.thickness, lambda x, y: np.hypot(x, y) < 2.0)
+    s = cell_mean_surface(cone.thickness, GRID, lambda x, y: np.hypot(x, y) < 2.0)
     poly = shapely.Point(0, 0).buffer(11.0, quad_segs=64)
     row = _measure(s, poly)
     volume = math.pi * 100.0 * cone.height / 3.0
@@ -145,11 +130,11 @@ def _wall(x, y):
 
 
 @pytest.mark.parametrize("survey_fill", [False, True])
-def test_hidden_top_against_a_wall_is_not_filled_down_to_the_floor_behind_it(survey_fill):
+def test_hidden_top_against_a_wall_is_not_filled_down_to_the_floor_behind_it(survey_fill, cell_mean_surface):
     poly = shapely.box(-10.5, -14.5, 0.0, 14.5)
     truth = WALLED.volume()
-    blind = _surface_of(WALLED.thickness, _walled_hidden)
-    walled = _surface_of(WALLED.thickness, _walled_hidden, _wall)
+    blind = cell_mean_surface(WALLED.thickness, GRID, _walled_hidden)
+    walled = cell_mean_surface(WALLED.thickness, GRID, _walled_hidden, _wall)
     if survey_fill:   # the survey's own hole filling first (3 m), as a survey does
         blind, walled = fill_holes(blind, 3.0)[0], fill_holes(walled, 3.0)[0]
         assert "object_seen" in walled.meta
@@ -170,14 +155,14 @@ def test_hidden_top_against_a_wall_is_not_filled_down_to_the_floor_behind_it(sur
     assert np.mean(th_blind[beside]) < (2.0 if survey_fill else 1.0)
 
 
-def test_object_cells_inside_the_footprint_or_far_from_it_change_nothing():
+def test_object_cells_inside_the_footprint_or_far_from_it_change_nothing(cell_mean_surface):
     # a machine standing on the hidden top (inside the footprint) is no wall, and an
     # object 3 m beyond the footprint's edge does not stop the fill either
     poly = shapely.box(-10.5, -14.5, 0.0, 14.5)
-    blind = _measure(_surface_of(WALLED.thickness, _walled_hidden), poly)
-    on_top = _measure(_surface_of(WALLED.thickness, _walled_hidden,
+    blind = _measure(cell_mean_surface(WALLED.thickness, GRID, _walled_hidden), poly)
+    on_top = _measure(cell_mean_surface(WALLED.thickness, GRID, _walled_hidden,
                                   lambda x, y: (np.abs(x + 2.0) < 1.5) & (np.abs(y) < 2.0)), poly)
-    far = _measure(_surface_of(WALLED.thickness, _walled_hidden,
+    far = _measure(cell_mean_surface(WALLED.thickness, GRID, _walled_hidden,
                                lambda x, y: (x > 3.0) & (x < 3.5) & (np.abs(y) < 18.0)), poly)
     assert on_top.volume_m3 == pytest.approx(blind.volume_m3, rel=1e-9)
     assert far.volume_m3 == pytest.approx(blind.volume_m3, rel=1e-9)

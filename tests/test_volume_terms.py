@@ -130,19 +130,6 @@ def test_residual_correlation_of_white_and_correlated_fields():
 
 
 # ----------------------------------------------------------------------------- gap fill
-def _surface_of(thickness, grid, hidden):
-    """Exact cell means (4 x 4 samples a cell) of a pile on a level pad at 10 m, cells of
-    10 points; ``hidden`` cells have no points."""
-    x, y = grid.centers()
-    k = (np.arange(4) + 0.5) / 4 - 0.5
-    z = 10.0 + np.mean([thickness(x + a * grid.cell, y + b * grid.cell) for a in k for b in k], axis=0)
-    m = hidden(x, y)
-    z[m] = np.nan
-    count = np.where(m, 0, 10).astype(np.int32)
-    sd = np.where(m, np.nan, 0.005)
-    return Surface(grid, z, count, sd, np.zeros(grid.shape, bool))
-
-
 GRID = Grid(-20.0, 20.0, 0.5, 80, 80)
 
 
@@ -151,14 +138,14 @@ def _linear_only(monkeypatch):
 
 
 @pytest.mark.parametrize("R, r, shadow", [(10.0, 4.0, 3.0), (9.0, 3.0, 3.0), (10.0, 4.0, 2.0)])
-def test_shadow_over_a_frustum_top_edge(R, r, shadow, monkeypatch):
+def test_shadow_over_a_frustum_top_edge(R, r, shadow, monkeypatch, cell_mean_surface):
     h = (R - r) * TAN35
     volume = math.pi * h * (R * R + R * r + r * r) / 3.0   # handbook frustum of a cone
 
     def thickness(x, y):
         return np.clip(np.minimum(h, (R - np.hypot(x, y)) * TAN35), 0.0, None)
 
-    s = _surface_of(thickness, GRID, lambda x, y: np.hypot(x - r, y) < shadow)
+    s = cell_mean_surface(thickness, GRID, lambda x, y: np.hypot(x - r, y) < shadow)
     poly = shapely.Point(0, 0).buffer(R + 1.0, quad_segs=64)
     row = _measure(s, poly)
     assert row.volume_m3 == pytest.approx(volume, rel=0.005)
@@ -169,9 +156,9 @@ def test_shadow_over_a_frustum_top_edge(R, r, shadow, monkeypatch):
         assert _measure(s, poly).volume_m3 < volume * 0.99
 
 
-def test_shadow_over_a_cone_apex(monkeypatch):
+def test_shadow_over_a_cone_apex(monkeypatch, cell_mean_surface):
     cone = Cone(0.0, 0.0, 10.0, 35.0)   # handbook cone: pi r^2 h / 3
-    s = _surface_of(cone.thickness, GRID, lambda x, y: np.hypot(x, y) < 2.0)
+    s = cell_mean_surface(cone.thickness, GRID, lambda x, y: np.hypot(x, y) < 2.0)
     poly = shapely.Point(0, 0).buffer(11.0, quad_segs=64)
     row = _measure(s, poly)
     assert row.volume_m3 == pytest.approx(math.pi * 100.0 * cone.height / 3.0, rel=0.005)
@@ -179,10 +166,10 @@ def test_shadow_over_a_cone_apex(monkeypatch):
     assert _measure(s, poly).volume_m3 < cone.volume() * 0.9925   # linear: -1.0 %
 
 
-def test_shadow_over_a_windrow_ridge(monkeypatch):
+def test_shadow_over_a_windrow_ridge(monkeypatch, cell_mean_surface):
     w = Windrow(-10.0, 0.0, 20.0, 18.0, 6.0, 35.0)
     cx, cy = -10.0 + 9.0 * math.cos(math.radians(20.0)), 9.0 * math.sin(math.radians(20.0))
-    s = _surface_of(w.thickness, GRID, lambda x, y: np.hypot(x - cx, y - cy) < 2.5)
+    s = cell_mean_surface(w.thickness, GRID, lambda x, y: np.hypot(x - cx, y - cy) < 2.5)
     poly = w.outline().buffer(1.0)
     # handbook: prism L w h plus the two half cones of the ends, pi w^2 h / 3
     volume = 18.0 * 6.0 * w.height + math.pi * 36.0 * w.height / 3.0
