@@ -60,7 +60,10 @@ def site_month(draw):
     for sid in ("B1", "R1"):
         cuts = sorted(draw(st.sets(secs, min_size=2, max_size=6)))
         for a, b in zip(cuts[:-1], cuts[1:]):
-            belt_rows.append({"scale_id": sid, "start": _at(a), "end": _at(b), "tonnes": draw(st.floats(0.0, 500.0))})
+            # at most 2,000 t/h over the interval: the loader rejects rates no belt carries
+            # (inventory.site.rules.MAX_BELT_RATE_T_H), as it should
+            most = min(500.0, 2000.0 * (b - a) / 3600.0)
+            belt_rows.append({"scale_id": sid, "start": _at(a), "end": _at(b), "tonnes": draw(st.floats(0.0, most))})
         # routing covers the whole month, switching piles at random instants
         switch = sorted(draw(st.sets(secs, max_size=4)))
         edges = [0] + switch + [SPAN_S + 3600]
