@@ -14,6 +14,9 @@ Usage::
     python bench/bench_quality.py --workers 2        # the survey step on a Dask cluster
     python bench/bench_quality.py --objects          # also each machine, vehicle and
                                                      # structure: points classed surface
+    python bench/bench_quality.py --tile-m 200       # another job plan (also --job-points,
+                                                     # --buffer-m): how far the results move
+                                                     # when only the cut into jobs changes
 
 For each month-end survey with truth labels (``truth/labels-<date>.npz``) it prints, from
 :mod:`inventory._demo.quality`: the share of machine and vehicle points kept out of the
@@ -46,7 +49,20 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--objects", action="store_true",
                     help="also print, per machine, vehicle and structure, how many of its points were classed surface")
     ap.add_argument("--workers", type=int, default=None, help="Dask worker processes for the survey step")
+    ap.add_argument("--tile-m", type=float, default=None, help="the survey step's tile edge (m; default its own)")
+    ap.add_argument("--job-points", type=int, default=None, help="the survey step's job budget (points)")
+    ap.add_argument("--buffer-m", type=float, default=None, help="the survey step's buffer around a job (m)")
     args = ap.parse_args(argv)
+    plan = {k: v for k, v in (("tile_size_m", args.tile_m), ("job_points", args.job_points),
+                              ("buffer_m", args.buffer_m)) if v is not None}
+    if plan:
+        # every survey step of this run (this bench's and the volume report's) with that plan
+        import functools
+
+        import inventory.survey.measure as measure
+
+        measure.measure_survey = functools.partial(measure.measure_survey, **plan)
+        print("job plan: " + ", ".join(f"{k} {v}" for k, v in plan.items()), flush=True)
     if args.yard2:
         from inventory._demo.yard2 import YARD2_SEED, write_yard2_site
 

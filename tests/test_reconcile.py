@@ -400,6 +400,35 @@ def test_a_bias_new_this_month_is_named_from_this_month_not_diluted_by_history()
     assert (p.loc[["P1", "P2"], "reason_code"] == "SCALE_BIAS").all()
 
 
+def test_a_month_the_history_contradicts_names_no_pooled_bias():
+    # B1 delivers 4000 t to P1 and 2000 t to P2; Q1-Q3 take no belt. Last month every pile
+    # closed near its book (P1 +2 +/- 300 t, P2 -4 +/- 60 t). This month 420 t went from P2
+    # to P1 unrecorded: P1 +420 t, P2 -420 t (survey sigma 80 t and 25 t). No bias of B1
+    # explains opposite variances on two piles it feeds alike: this month's fit sets P1
+    # aside and cannot name B1 from P2 alone. The pooled fit, which assumes one constant
+    # bias over both months, set aside P1 this month and P2 last month and read P2's -420 t
+    # as B1 reading about 26 % high. The earlier month alone reads +0.2 %, 7.7 sigma from
+    # this month's figure: no constant bias, none named, and the pair explains both piles.
+    T_ = {"P1": 4000.0, "P2": 2000.0}
+    opening = {"P1": 6000.0, "P2": 3000.0, "Q1": 1000.0, "Q2": 1000.0, "Q3": 1000.0}
+    book = book_from(opening, belt_t=T_)
+    sv = survey_of({"P1": 10000.0 + 420.0, "P2": 5000.0 - 420.0, "Q1": 1003.0, "Q2": 996.0, "Q3": 1001.0},
+                   {"P1": 80.0, "P2": 25.0, "Q1": 15.0, "Q2": 15.0, "Q3": 15.0})
+    history = pd.DataFrame({
+        "period": ["2026-09"] * 5, "pile_id": ["P1", "P2", "Q1", "Q2", "Q3"],
+        "scale_id": ["B1", "B1", None, None, None], "signed_t": [4000.0, 2000.0, 0.0, 0.0, 0.0],
+        "variance_t": [2.0, -4.0, -3.0, 5.0, 1.0], "noise_sigma_t": [300.0, 60.0, 40.0, 40.0, 40.0],
+    })
+    r = reconcile(sv, book, MATERIALS, scales=SCALES, period="2026-10", history=history)
+    d = r.scale_diagnostics.iloc[0]
+    assert not d.flagged
+    assert "the earlier months alone read +0.17 %" in d.message and "7.7 sigma" in d.message
+    assert "not named" in d.message
+    p = r.piles.set_index("pile_id")
+    assert (p.loc[["P1", "P2"], "reason_code"] == "TRANSFER_SUSPECT").all()
+    assert (p.loc[["Q1", "Q2", "Q3"], "reason_code"] == "WITHIN_SIGMA").all()
+
+
 def test_birge_ratio_inflates_sigma_when_scatter_exceeds_stated_sigmas():
     # Equal T = 1000 t on 4 piles, variances -10 +/- 2 t, stated sigma 1 t (scatter within the
     # 3-sigma outlier limit): b = mean(-v)/1000 = 0.01; residuals (v + 10) = [-2, 2, -2, 2] t;

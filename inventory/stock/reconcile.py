@@ -14,6 +14,7 @@ docs/uncertainty.md.
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import dataclass, field
 from collections.abc import Mapping
 from typing import Any
@@ -541,6 +542,7 @@ def _scale_diagnostics(
         return pd.DataFrame(columns=SCALE_COLUMNS), fitted, now
     month = _BiasFit(now, scale_ids)
     pooled = _BiasFit(pd.concat([past, now], ignore_index=True), scale_ids) if len(past) else None
+    earlier = _BiasFit(past, scale_ids) if len(past) else None
 
     out = []
     for j, sid in enumerate(scale_ids):
@@ -573,9 +575,20 @@ def _scale_diagnostics(
             msg += "; set aside as outliers: " + ", ".join(m["excluded"])
         h = pooled.scale(j, k, mpe) if pooled is not None else None
         flagged = m["flagged"]
+        changed = _changed_this_month(m, earlier.scale(j, k, mpe) if earlier is not None else None, k)
         if h is not None and h["months"] > 1:
             basis = f"{h['n_used']} pile-month(s) over {h['months']} months"
-            if h["flagged"] and not m["flagged"]:
+            if h["flagged"] and not m["flagged"] and changed is not None:
+                # the pooled fit's one constant bias does not hold: this month's rows and the
+                # earlier months' disagree, and this month's alone could not name it
+                e, z = changed
+                h = dict(h, flagged=False)
+                msg += (f". Over the last {h['months']} months the fit reads {100 * h['beta']:+.2f} % "
+                        f"(+/- {100 * h['sigma']:.2f} %), but the earlier months alone read "
+                        f"{100 * e['beta']:+.2f} % (+/- {100 * e['sigma']:.2f} %), {z:.1f} sigma from this "
+                        "month's: no constant bias over the months (a change this month, or an error on "
+                        f"a pile), not named ({basis})")
+            elif h["flagged"] and not m["flagged"]:
                 msg += (f". Over the last {h['months']} months it appears to read {100 * h['beta']:+.2f} % "
                         f"(+/- {100 * h['sigma']:.2f} %), beyond its in-service MPE of {100 * mpe:.2f} %: "
                         f"have it checked and recalibrated ({basis})")
@@ -673,6 +686,19 @@ class _BiasFit:
         """(pile, X) of the latest period's rows that scale ``j`` fed."""
         now = (self.keys["period"] == self.last).to_numpy()
         return [(str(self.keys.loc[i, "pile_id"]), float(self.X[i, j])) for i in np.where(now & (self.X[:, j] != 0))[0]]
+
+
+def _changed_this_month(m: dict, e: "dict | None", k: float) -> "tuple[dict, float] | None":
+    """The earlier months' estimate ``e`` of a scale and how many combined sigmas it lies
+    from this month's ``m``, when more than ``k`` (``None`` otherwise, or when either has
+    no finite sigma): the pooled fit assumes one constant bias, which such a gap refutes."""
+    if e is None:
+        return None
+    s = math.hypot(m["sigma"], e["sigma"])
+    if not (math.isfinite(s) and s > 0):
+        return None
+    z = abs(m["beta"] - e["beta"]) / s
+    return (e, z) if z > k else None
 
 
 def _same_sign_note(p: pd.DataFrame, piles_fed: list[str]) -> str:
