@@ -62,8 +62,7 @@ __all__ = ["SurveyResult", "measure_survey", "measure_surveys", "DEFAULT_TILE_M"
 #: Edge in metres of the tiles the points are spilled by (one file each); a job reads the
 #: tiles its rectangle and buffer overlap, and blocks (the unit of the job plan, about
 #: :data:`~inventory.survey.tiles.BLOCK_M`) divide a tile. 200 m rather than 100 m: fewer
-#: points are classified twice as buffers, about 13 % less time on the bench's surveys at
-#: the same peak memory on 200 million points (CHANGELOG).
+#: points are classified twice as buffers (measured in CHANGELOG.md).
 DEFAULT_TILE_M = 200.0
 #: Neighbouring points around a job: wider than the reach of every stage of the default
 #: pipeline (slope envelope window 12 m, outlier neighbourhoods well under 1 m).
