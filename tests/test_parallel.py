@@ -339,7 +339,6 @@ def test_fill_windows_on_threads_of_this_process_match_one_thread():
     np.testing.assert_array_equal(one.filled, many.filled)
 
 
-
 @pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="mallopt is glibc's (glibc mallopt(3))")
 def test_dask_workers_tune_their_allocator_and_this_process_does_not():
     # A Dask worker starts with glibc mapping every block above its mmap threshold afresh

@@ -88,6 +88,27 @@ def _instant_text(instant: Any) -> str:
     return str(instant)
 
 
+def _damaged_pages(found: list[str]) -> str:
+    """What ``PRAGMA quick_check`` found wrong, as the refusal says it."""
+    return f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a backup"
+
+
+def _schema_problem(con: sqlite3.Connection) -> tuple[str | None, int | None]:
+    """Why the SQLite file on ``con`` is not a ledger this tool can use, or ``None``, and its
+    schema version (``None`` when it has none). Raises :class:`sqlite3.DatabaseError` when
+    its catalogue cannot be read."""
+    tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    if "schema_version" not in tables:
+        return "an SQLite file without a schema_version table is not a ledger", None
+    row = con.execute("SELECT MAX(version) FROM schema_version").fetchone()
+    version = row[0] if row else None
+    if version is None:
+        return "schema_version is empty", None
+    if version > SCHEMA_VERSION:
+        return f"ledger schema version {version} is newer than this tool's ({SCHEMA_VERSION}); upgrade the tool", version
+    return None, version
+
+
 def ledger_file_problem(path: str | Path) -> str | None:
     """Why the SQLite ledger file at ``path`` could not be used by a close, or ``None`` (also
     when there is no file: a close creates it). Reads the file without writing anything, not
@@ -110,15 +131,10 @@ def ledger_file_problem(path: str | Path) -> str | None:
     try:
         found = [r[0] for r in con.execute("PRAGMA quick_check(3)")]
         if found != ["ok"]:
-            return f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a backup"
-        tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
-        if "schema_version" not in tables:
-            return "an SQLite file without a schema_version table is not a ledger"
-        version = con.execute("SELECT MAX(version) FROM schema_version").fetchone()[0]
-        if version is None:
-            return "schema_version is empty"
-        if version > SCHEMA_VERSION:
-            return f"ledger schema version {version} is newer than this tool's ({SCHEMA_VERSION}); upgrade the tool"
+            return _damaged_pages(found)
+        problem, _ = _schema_problem(con)
+        if problem is not None:
+            return problem
     except sqlite3.DatabaseError as err:
         if str(err) in _DAMAGED:
             return f"not a readable SQLite ledger ({err}); restore it from a backup"
@@ -309,28 +325,16 @@ class Ledger:
         except sqlite3.DatabaseError as err:
             found = [str(err)]
         if found != ["ok"]:
-            raise LedgerInputError(self.path, f"a damaged SQLite ledger ({'; '.join(found)}); restore it from a "
-                                              "backup")
+            raise LedgerInputError(self.path, _damaged_pages(found))
 
     def _check_schema(self) -> None:
-        con = self._db
         try:
-            tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+            problem, version = _schema_problem(self._db)
         except sqlite3.DatabaseError as err:
             raise LedgerError(f"{self.path}: not an SQLite ledger: {err}") from err
-        if "schema_version" not in tables:
-            raise LedgerError(
-                f"{self.path}: an SQLite file without a schema_version table is not a ledger"
-            )
-        row = con.execute("SELECT MAX(version) FROM schema_version").fetchone()
-        version = row[0] if row else None
-        if version is None:
-            raise LedgerError(f"{self.path}: schema_version is empty")
-        if version > SCHEMA_VERSION:
-            raise LedgerError(
-                f"{self.path}: ledger schema version {version} is newer than this tool's "
-                f"({SCHEMA_VERSION}); upgrade the tool"
-            )
+        if problem is not None:
+            raise LedgerError(f"{self.path}: {problem}")
+        assert version is not None
         if version < SCHEMA_VERSION:
             self._migrate(int(version))
 

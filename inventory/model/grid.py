@@ -98,8 +98,13 @@ class Grid:
 
     def centers(self) -> tuple[np.ndarray, np.ndarray]:
         """Cell-centre coordinates as two (nrows, ncols) arrays ``(x, y)``."""
-        xs = self.west + (np.arange(self.ncols) + 0.5) * self.cell
-        ys = self.north - (np.arange(self.nrows) + 0.5) * self.cell
+        return self.window_centers(slice(0, self.nrows), slice(0, self.ncols))
+
+    def window_centers(self, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray]:
+        """Cell-centre coordinates of the cells ``rows, cols`` (slices with start and stop)
+        as two arrays ``(x, y)`` of the window's shape."""
+        xs = self.west + (np.arange(cols.start, cols.stop) + 0.5) * self.cell
+        ys = self.north - (np.arange(rows.start, rows.stop) + 0.5) * self.cell
         return np.meshgrid(xs, ys)
 
     def index(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -117,11 +117,7 @@ class BaseModel:
         if self.kind == "floor":
             assert self.floor is not None
             return self.floor[rows, cols].astype(float)
-        g = self.grid
-        xs = g.west + (np.arange(cols.start, cols.stop) + 0.5) * g.cell
-        ys = g.north - (np.arange(rows.start, rows.stop) + 0.5) * g.cell
-        xx, yy = np.meshgrid(xs, ys)
-        return self.at(xx, yy)
+        return self.at(*self.grid.window_centers(rows, cols))
 
     def volume_sigma(self, w_area: np.ndarray, x: np.ndarray, y: np.ndarray) -> float:
         """One-sigma volume error from the base (m3).
@@ -341,9 +337,7 @@ def toe_base(
         flags.append("toe_shared")
 
     rows, cols = grid.window(*free.bounds) if not free.is_empty else (slice(0, 0), slice(0, 0))
-    xs = grid.west + (np.arange(cols.start, cols.stop) + 0.5) * grid.cell
-    ys = grid.north - (np.arange(rows.start, rows.stop) + 0.5) * grid.cell
-    xx, yy = np.meshgrid(xs, ys)
+    xx, yy = grid.window_centers(rows, cols)
     zz = z[rows, cols]
     use = (
         shapely.contains_xy(free, xx, yy)
@@ -450,10 +444,7 @@ def open_ground(z: np.ndarray, count: np.ndarray, filled: np.ndarray, grid: Grid
         block = shapely.union_all([g.buffer(ring_m + PROBE_CLEAR_M) for g in footprints])
         rows, cols = grid.window(*block.bounds)
         if rows.stop > rows.start and cols.stop > cols.start:
-            xs = grid.west + (np.arange(cols.start, cols.stop) + 0.5) * grid.cell
-            ys = grid.north - (np.arange(rows.start, rows.stop) + 0.5) * grid.cell
-            xx, yy = np.meshgrid(xs, ys)
-            out[rows, cols] &= ~shapely.contains_xy(block, xx, yy)
+            out[rows, cols] &= ~shapely.contains_xy(block, *grid.window_centers(rows, cols))
     return out
 
 
