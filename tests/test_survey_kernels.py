@@ -6,7 +6,8 @@ import numpy as np
 from scipy.spatial import Delaunay, cKDTree
 
 from inventory.survey.gridding import _linear_on_lattice
-from inventory.survey.kernels import CellIndex, _knn3, below_tests, has_company, knn3_mean, min_envelope, plan_knn
+from inventory.survey.kernels import (CellIndex, _knn3, below_tests, envelope_at, has_company, knn3_mean, min_envelope,
+                                      plan_knn)
 
 
 def _cloud(n=4000, seed=2):
@@ -143,3 +144,58 @@ def test_outlier_means_from_the_plan_table_are_the_searched_ones():
     xyz = np.column_stack([x, y, z])
     np.testing.assert_array_equal(statistical_outliers(xyz, 8, 2.0, plan=tab.plan.nb),
                                   statistical_outliers(xyz, 8, 2.0))
+
+
+def test_envelope_at_is_the_least_of_the_nine_cells():
+    # the kernel skips a cell whose seed is no lower than the least so far (its cone only
+    # adds); the answer is still the least over the 3 x 3 cells, to the bit
+    rng = np.random.default_rng(11)
+    nrow, ncol, c, t = 30, 40, 0.5, np.tan(np.radians(50.0))
+    gf = rng.random(nrow * ncol) * 3.0
+    gf[rng.random(nrow * ncol) < 0.2] = np.inf            # empty cells
+    ax = (np.arange(ncol) + rng.random((nrow, ncol))).ravel() * c
+    ay = (np.arange(nrow)[:, None] + rng.random((nrow, ncol))).ravel() * c
+    qx = c + rng.random(5000) * (ncol - 2) * c
+    qy = c + rng.random(5000) * (nrow - 2) * c
+    col, row = np.floor(qx / c).astype(int), np.floor(qy / c).astype(int)
+    ref = np.full(len(qx), np.inf)
+    for dr in (-1, 0, 1):
+        for dc in (-1, 0, 1):
+            k = (row + dr) * ncol + col + dc
+            ref = np.minimum(ref, np.hypot(qx - ax[k], qy - ay[k]) * t + gf[k])
+    np.testing.assert_array_equal(envelope_at(qx, qy, 0.0, 0.0, c, ncol, gf, ax, ay, t), ref)
+    assert np.isinf(ref).sum() < len(ref)
+
+
+def test_isolation_and_rescue_give_the_same_on_the_plan_index():
+    # _isolated and _within_surface_cone search the plan table's index cut to their points
+    # instead of an index of their own: the same answers
+    from inventory.survey.ground import SlopeGroundParams, _isolated, _within_surface_cone
+
+    x, y, z = _cloud(4000, seed=9)
+    rng = np.random.default_rng(9)
+    # strays: far above, and a few alone far out
+    x = np.r_[x, rng.random(30) * 30.0, 60.0, 66.0]
+    y = np.r_[y, rng.random(30) * 30.0, 60.0, 60.0]
+    z = np.r_[z, 5.0 + rng.random(30) * 10.0, 0.0, 0.0]
+    index = CellIndex(x, y, k=17)
+    use = rng.random(len(z)) < 0.9
+    use[-32:] = True
+    nb = plan_knn(index, x, y, 17, dist=False)[:, 1:]
+    idx = np.flatnonzero(use | (rng.random(len(z)) < 0.5))
+    near = {"idx": idx, "nb": nb[idx], "x": x[idx], "y": y[idx], "z": z[idx]}
+    # the table's rows hold numbers among all points, as _below_neighbours hands them on
+    near["nb"] = np.where(nb[idx] >= 0, np.searchsorted(idx, nb[idx]), -1)
+    near["nb"][~np.isin(nb[idx], idx)] = -1
+    ref = _isolated(x, y, z, use, near)
+    got = _isolated(x, y, z, use, near, index)
+    np.testing.assert_array_equal(got, ref)
+    assert got[-2:].all() and got.sum() < 100   # the two far out, some of the sparse field
+    params = SlopeGroundParams()
+    top = np.flatnonzero(use & (z < 2.0))
+    query = np.flatnonzero(~use)
+    rng.shuffle(top)                # the order of `top` does not matter
+    ref = _within_surface_cone(x, y, z, top, query, params)
+    got = _within_surface_cone(x, y, z, top, query, params, index)
+    np.testing.assert_array_equal(got, ref)
+    assert got.any() and not got.all()

@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.spatial import cKDTree
 
-from inventory.survey.kernels import CellIndex, _knn3, knn3_mean, plan_knn, plan_knn3
+from inventory.survey.kernels import CellIndex, _knn3, fewer_within, knn3_mean, plan_knn, plan_knn3
 
 
 @st.composite
@@ -181,3 +181,22 @@ def test_ties_across_a_cell_edge_go_by_point_number():
     rev = np.arange(9)[::-1].copy()          # the upper points carry the lower numbers
     d, nb = _knn3(CellIndex(xc, yc, cell=1.0), xc[4:5], yc[4:5], zc[rev][4:5], 3, None, zc[rev], voxels=True)
     assert nb[0].tolist() == [4, 3, 5] and d[0].tolist() == [0.0, 0.25, 0.25]
+
+
+@settings(max_examples=80, deadline=None)
+@given(_clouds(), st.integers(1, 6), st.sampled_from([(0.5, 1.0), (0.25, 0.25), (0.1, 3.0)]),
+       st.sampled_from([2, 17, 40]))
+def test_fewer_within_reads_the_kth_distance_of_the_3d_search(cloud, need, radii, kcell):
+    # fewer than `need` members within r, the point itself counted, is the `need`-th
+    # nearest (plan_knn3, exact: tested against brute force above) lying beyond r; the
+    # lattice clouds put members at exactly r (0.25, 0.5, 1.0 m apart)
+    xyz, seed = cloud
+    x, y, z = (np.ascontiguousarray(xyz[:, i]) for i in range(3))
+    rng = np.random.default_rng(seed)
+    members = rng.random(len(x)) < 0.8
+    rows = np.flatnonzero(rng.random(len(x)) < 0.6)
+    index = CellIndex(x, y, members, k=kcell)
+    small, big = fewer_within(index, x, y, z, rows, need, *radii)
+    d, _ = plan_knn3(index, x, y, z, rows, need)
+    np.testing.assert_array_equal(small, d[:, -1] > radii[0])
+    np.testing.assert_array_equal(big, d[:, -1] > radii[1])

@@ -23,9 +23,9 @@ import numpy as np
 from inventory.errors import PipelineError
 from inventory.model.classes import GROUND, HIGH_NOISE, LOW_NOISE, OVERHEAD_STRUCTURE, UNCLASSIFIED
 from inventory.survey.kernels import (CellIndex, below_tests, cell_lowest, cell_stats, chamfer_passes,
-                                      chamfer_passes_blocked, envelope_at, faces_over, floor_cells, has_company,
-                                      knn3_mean, member_rows, min_envelope, outvoted, overhead_layers, plan_knn,
-                                      plan_knn3)
+                                      chamfer_passes_blocked, envelope_at, faces_over, fewer_within, floor_cells,
+                                      has_company, knn3_mean, member_rows, min_envelope, outvoted, overhead_layers,
+                                      plan_knn)
 
 __all__ = ["SlopeGroundParams", "PlanTable", "plan_table", "slope_ground", "slope_envelope", "csf_ground"]
 
@@ -569,13 +569,14 @@ ISOLATION_M = 2.0
 
 
 def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
-              near: "dict | None" = None) -> np.ndarray:
+              near: "dict | None" = None, index: "CellIndex | None" = None) -> np.ndarray:
     """Points with no other point within :data:`ISOLATION_M` in 3D.
 
     ``near`` may hold the nearest points in plan of a superset of ``use`` (``idx``, ``nb``,
     ``x``, ``y``, ``z`` from :func:`_below_neighbours`): a point with a member of ``use``
     among them closer than :data:`ISOLATION_M` in 3D is not isolated; only the others are
-    queried in 3D.
+    queried in 3D, on ``index`` (a cell index of all the points (x, y), cut to ``use``
+    without sorting again) when given, else on an index of ``use`` built here.
     """
     out = np.zeros(len(z), bool)
     idx = np.flatnonzero(use)
@@ -593,7 +594,12 @@ def _isolated(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarray,
     rest = rest[~has_company(nb, rest, near["x"], near["y"], near["z"], member, ISOLATION_M)]
     if len(rest):
         short = (np.cumsum(member) - 1)[rest]    # positions in idx
-        d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
+        if index is not None and index.n == len(z):
+            # the same nearest distance, the search on the cells already sorted
+            q = idx[short]
+            d2 = knn3_mean(index.subset(use), x, y, np.ascontiguousarray(z, dtype=np.float64), q, 1)
+        else:
+            d2 = knn3_mean(CellIndex(xyz[:, 0], xyz[:, 1], k=8), xyz[:, 0], xyz[:, 1], xyz[:, 2], short, 1)
         out[idx[short[d2 > ISOLATION_M]]] = True
     return out
 
@@ -638,13 +644,11 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # asked only for the points that pass the plan tests (a few per cent).
     cand = np.flatnonzero(plan | deep)
     if len(cand):
-        zf = np.ascontiguousarray(z, dtype=np.float64)
-        d4, _ = plan_knn3(index.subset(use), x, y, zf, idx[cand], 4)
-        d4 = d4[:, -1]
-        deep[cand] &= d4 > 1.0
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
         # is part of something, not a stray return.
-        plan[cand] &= d4 > 0.5
+        alone_half, alone_1m = fewer_within(index.subset(use), x, y, z, idx[cand], 4, 0.5, 1.0)
+        deep[cand] &= alone_1m
+        plan[cand] &= alone_half
     out[idx[plan | deep]] = True
     return out
 
@@ -699,7 +703,8 @@ RESCUE_BULGE = 0.1
 
 
 def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.ndarray,
-                         query: np.ndarray, params: SlopeGroundParams) -> np.ndarray:
+                         query: np.ndarray, params: SlopeGroundParams, index: "CellIndex | None" = None
+                         ) -> np.ndarray:
     """Which noise points ``query``, lying under the envelope of the rest, are surface all
     the same: the surface around them continues through them.
 
@@ -722,15 +727,27 @@ def _within_surface_cone(x: np.ndarray, y: np.ndarray, z: np.ndarray, top: np.nd
     multipath return or a pit under the surface lies under the slope cone of the surface
     above it, or under the plane of the surface around it (a shadow's rim), and stays
     noise.
+
+    ``index``: a cell index of all the points (x, y), cut here to ``top`` without sorting
+    again (else an index of ``top`` is built). Neighbours at equal distances are taken in
+    the order of their point numbers.
     """
     k = RESCUE_NEIGHBOURS
     out = np.zeros(len(query), bool)
     if len(top) < k or not len(query):
         return out
-    xt, yt, zt = (np.ascontiguousarray(v[top], dtype=np.float64) for v in (x, y, z))
     qx, qy, qz = x[query], y[query], z[query]
-    nb = plan_knn(CellIndex(xt, yt, k=k), np.ascontiguousarray(qx, dtype=np.float64),
-                  np.ascontiguousarray(qy, dtype=np.float64), k, dist=False)
+    qxc, qyc = np.ascontiguousarray(qx, dtype=np.float64), np.ascontiguousarray(qy, dtype=np.float64)
+    if index is not None and index.n == len(x):
+        member = np.zeros(len(x), bool)
+        member[top] = True
+        xt, yt, zt = x, y, z      # the neighbours' numbers are the points' own
+        nb = plan_knn(index.subset(member), qxc, qyc, k, dist=False)
+    else:
+        # in the order of the point numbers, so that ties fall as with an index of all
+        top = np.sort(top)
+        xt, yt, zt = (np.ascontiguousarray(v[top], dtype=np.float64) for v in (x, y, z))
+        nb = plan_knn(CellIndex(xt, yt, k=k), qxc, qyc, k, dist=False)
     ok = (nb >= 0).all(axis=1)
     nb = np.where(nb >= 0, nb, 0)
     dx, dy, dz = xt[nb] - qx[:, None], yt[nb] - qy[:, None], zt[nb] - qz[:, None]
@@ -771,7 +788,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     out[low] = LOW_NOISE
     # A return with no other return within ISOLATION_M is nobody's surface (range
     # ambiguity ghosts, birds far out); alone it would be its own envelope.
-    alone = _isolated(x, y, z, ~ignore & ~low, near or None)
+    alone = _isolated(x, y, z, ~ignore & ~low, near or None, plan.index)
     near.clear()    # its table of neighbours (4 bytes x 16 a point) is not needed again
     out[alone] = HIGH_NOISE
     classification = out.copy()
@@ -834,7 +851,7 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     for _ in range(RESCUE_ROUNDS):
         if not len(under):
             break
-        ok = _within_surface_cone(x, y, z, top, under, params)
+        ok = _within_surface_cone(x, y, z, top, under, params, plan.index)
         if not ok.any():
             break
         out[under[ok]] = GROUND

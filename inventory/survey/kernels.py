@@ -55,7 +55,7 @@ from numba import njit
 from inventory.parallel import cores
 
 __all__ = ["CellIndex", "plan_knn", "plan_knn3", "knn3_mean", "cell_lowest", "envelope_at", "member_rows", "below_tests",
-           "min_envelope", "has_company", "outvoted", "faces_over", "knn3_mean_from_plan", "lattice_triangles",
+           "min_envelope", "has_company", "fewer_within", "outvoted", "faces_over", "knn3_mean_from_plan", "lattice_triangles",
            "run_rows", "morton_order", "cell_z_order", "elm_noise", "overhead_layers", "chamfer_passes", "chamfer_passes_blocked", "floor_cells",
            "cell_stats"]
 
@@ -755,6 +755,73 @@ def _company_rows(a, b, nb, rows, x, y, z, member, r2, out):
         out[i] = found
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _count_within(px, py, pz, sx, sy, sz, start, x0, y0, c, nrow, ncol, r, need):
+    # members within r of (px, py, pz) in 3D, counted up to need: the square of r about the
+    # point, rows nearest first, one cell more each way than the edges' cells (rounding)
+    cr = int(math.floor((py - y0) / c))
+    ca = max(int(math.floor((px - r - x0) / c)) - 1, 0)
+    cb = min(int(math.floor((px + r - x0) / c)) + 1, ncol - 1)
+    ra = max(int(math.floor((py - r - y0) / c)) - 1, 0)
+    rb = min(int(math.floor((py + r - y0) / c)) + 1, nrow - 1)
+    reach = max(cr - ra, rb - cr, 0)
+    n = 0
+    if ca > cb:
+        return n
+    for u in range(2 * reach + 1):
+        dd = (u + 1) >> 1           # rows cr, cr + 1, cr - 1, cr + 2, ...
+        rr = cr + dd if (u & 1) == 1 else cr - dd
+        if rr < ra or rr > rb:
+            continue
+        for j in range(start[rr * ncol + ca], start[rr * ncol + cb + 1]):
+            dx = sx[j] - px
+            dy = sy[j] - py
+            d2 = dx * dx + dy * dy
+            dz = sz[j] - pz
+            d2 += dz * dz
+            if math.sqrt(d2) <= r:
+                n += 1
+                if n >= need:
+                    return n
+    return n
+
+
+@njit(cache=True, nogil=True)
+def _fewer_within_rows(a, b, qx, qy, qz, sx, sy, sz, start, x0, y0, c, nrow, ncol, r_small, r_big, need,
+                       few_small, few_big):
+    for i in range(a, b):
+        px, py, pz = qx[i], qy[i], qz[i]
+        # the small radius first: enough there answers both
+        small = _count_within(px, py, pz, sx, sy, sz, start, x0, y0, c, nrow, ncol, r_small, need) < need
+        few_small[i] = small
+        few_big[i] = small and _count_within(px, py, pz, sx, sy, sz, start, x0, y0, c, nrow, ncol, r_big,
+                                             need) < need
+
+
+def fewer_within(index: "CellIndex", x: np.ndarray, y: np.ndarray, z: np.ndarray, rows: np.ndarray,
+                 need: int, r_small: float, r_big: float) -> tuple[np.ndarray, np.ndarray]:
+    """For each point of ``rows`` of (x, y, z): are fewer than ``need`` members of ``index``
+    within ``r_small``, and within ``r_big`` (>= ``r_small``), in 3D, the point itself
+    counted when it is a member? The same as the ``need``-th distance of
+    :func:`plan_knn3` being beyond each radius (the distances worked out alike), without
+    ordering the neighbours: the members within ``r_big`` in plan are counted, and the count
+    stops once ``need`` lie within ``r_small``. ``z`` holds the heights of all points."""
+    n = len(rows)
+    few_small, few_big = np.ones(n, bool), np.ones(n, bool)
+    if n == 0 or index.n == 0:
+        return few_small, few_big
+    qx, qy, qz = (np.ascontiguousarray(v[rows], dtype=np.float64) for v in (x, y, z))
+    sz = np.ascontiguousarray(z[index.sid], dtype=np.float64)
+
+    def piece(a: int, b: int) -> None:
+        _fewer_within_rows(a, b, qx, qy, qz, index.sx, index.sy, sz, index.start, index.x0, index.y0,
+                           index.cell, index.nrow, index.ncol, float(r_small), float(r_big), int(need),
+                           few_small, few_big)
+
+    run_rows(piece, n)
+    return few_small, few_big
+
+
 def has_company(nb: np.ndarray, rows: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
                 member: np.ndarray, radius: float) -> np.ndarray:
     """For each point p of ``rows``: is one of its neighbours ``nb[p]`` (-1: none) a
@@ -925,10 +992,14 @@ def _grid_envelope_rows(a, b, qx, qy, x0, y0, c, ncol, gf, ax, ay, t, out):
     for i in range(a, b):
         px, py = qx[i], qy[i]
         base = np.int64(math.floor((py - y0) / c)) * ncol + np.int64(math.floor((px - x0) / c))
-        e = np.inf
+        # the point's own cell first (mostly the least); a cell whose seed is no lower
+        # than the least so far cannot give less (t * distance >= 0), and is not measured
+        e = math.hypot(px - ax[base], py - ay[base]) * t + gf[base]
         for dr in (-ncol, 0, ncol):
             for dc in (-1, 0, 1):
                 k = base + dr + dc
+                if gf[k] >= e or k == base:
+                    continue
                 v = math.hypot(px - ax[k], py - ay[k]) * t + gf[k]
                 if v < e:
                     e = v
