@@ -230,3 +230,18 @@ def test_thinned_points_are_reported_by_the_run():
                                                                           stats=stats)
     assert len(out) == 4 and stats["thinned_xy"].shape == (46, 2)
     assert out["Z"].min() == 3.0 and out["Z"].max() == 3.04
+
+
+def test_run_leaves_the_callers_points_unless_given_away():
+    rng = np.random.default_rng(4)
+    pts = empty_points(2000)
+    pts["X"], pts["Y"], pts["Z"] = rng.random(2000) * 20, rng.random(2000) * 20, rng.random(2000) * 0.05
+    pts["Classification"] = 5
+    before = pts.copy()
+    pipe = load_pipeline()
+    out, _ = pipe.run(pts, "EPSG:25832", engine="builtin")
+    assert pts.tobytes() == before.tobytes()              # a copy was classified
+    assert (out["Classification"] == 2).mean() > 0.95      # a flat pad: surface (ASPRS class 2)
+    got, _ = pipe.run(pts, "EPSG:25832", engine="builtin", consume=True)
+    assert got.tobytes() == out.tobytes()                  # the same answer ...
+    assert np.shares_memory(got, pts)                      # ... on the array given away

@@ -578,7 +578,8 @@ class Pipeline:
         return all(s.kind == "filter" for s in self.stages)
 
     def run(self, points: np.ndarray | None = None, crs: "CRS | str | None" = None, *,
-            engine: str = "auto", stats: "dict | None" = None) -> tuple[np.ndarray, CRS | None]:
+            engine: str = "auto", stats: "dict | None" = None, consume: bool = False
+            ) -> tuple[np.ndarray, CRS | None]:
         """Run the stages on ``points`` (after any readers) and return points and CRS.
 
         Parameters
@@ -589,6 +590,10 @@ class Pipeline:
         stats : dict, optional
             Filled with ``thinned_xy``: an (n, 2) array of x and y of the points that
             ``inventory.voxel_thin`` stages dropped.
+        consume : bool
+            The caller gives ``points`` away: the stages work on that array itself (its
+            classes and coordinates change) instead of on a copy. Default False: the
+            caller's array is never changed.
         """
         if engine not in ("auto", "pdal", "builtin"):
             raise PipelineError(f"engine must be 'auto', 'pdal' or 'builtin', got {engine!r}")
@@ -596,9 +601,9 @@ class Pipeline:
         if engine == "pdal" and not pdal_available():
             raise PipelineError("engine 'pdal' asked for, but PDAL's Python bindings do not import")
         ctx = _Context(parse_crs(crs) if crs is not None else None)
-        # One copy for the whole run: stages change the points they are given in place
-        # (classes, coordinates) and never the caller's array.
-        pts = empty_points() if points is None else points.copy()
+        # One copy for the whole run (none when the caller gives its array away): stages
+        # change the points they are given in place (classes, coordinates).
+        pts = empty_points() if points is None else points if consume else points.copy()
         i = 0
         while i < len(self.stages):
             s = self.stages[i]

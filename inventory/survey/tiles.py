@@ -455,7 +455,8 @@ def classify_job(spill: TileSpill, job: Job, buffer_m: float, pipeline: Pipeline
     gridded (:func:`grid_tile`), and how many of its own points voxel thinning dropped."""
     pts = job_points(spill, job, buffer_m)
     stats: dict = {}
-    out, _ = pipeline.run(pts, crs, engine=engine, stats=stats)
+    out, _ = pipeline.run(pts, crs, engine=engine, stats=stats, consume=True)   # read for this job alone
+    del pts
     row, col, _ = spill.grid.index(out["X"], out["Y"])
     out = select(out, job.holds(row, col))
     txy = stats.get("thinned_xy")
@@ -575,7 +576,8 @@ def classify_job_to_file(spill: TileSpill, job: Job, buffer_m: float, pipeline: 
     :func:`~inventory.io.lazparts.encode_part`), all in the spill folder."""
     out, cells, thinned = classify_job(spill, job, buffer_m, pipeline, crs, engine, statistic)
     cls = out["Classification"]
-    counts = {int(c): int(n) for c, n in zip(*np.unique(cls, return_counts=True))}
+    tally = np.bincount(cls, minlength=256)
+    counts = {int(c): int(tally[c]) for c in np.flatnonzero(tally)}
     g = out[cls == GROUND]
     box = None
     if len(g):
