@@ -151,7 +151,8 @@ def spatial_order(x: np.ndarray, y: np.ndarray, cell: float = 1.0) -> np.ndarray
 
 
 def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2.0,
-                         plan: "np.ndarray | None" = None, plan_index: "Any | None" = None) -> np.ndarray:
+                         plan: "np.ndarray | None" = None, plan_index: "Any | None" = None,
+                         order: "np.ndarray | None" = None) -> np.ndarray:
     """Mask of outliers by statistical outlier removal (Rusu et al. 2008; PDAL semantics).
 
     The mean distance of each point to its ``mean_k`` nearest neighbours (the point itself
@@ -177,13 +178,16 @@ def statistical_outliers(xyz: np.ndarray, mean_k: int = 8, multiplier: float = 2
     plan_index : CellIndex, optional
         The cell index the table was searched on (its points in that order): the rest are
         searched on it.
+    order : ndarray of int, optional
+        ``spatial_order(x, y)`` of the points when the caller has it (the table's).
     """
     from inventory.survey.kernels import CellIndex, knn3_mean, knn3_mean_from_plan
 
     n = len(xyz)
     if n <= mean_k:
         return np.zeros(n, bool)
-    order = spatial_order(xyz[:, 0], xyz[:, 1])
+    if order is None:
+        order = spatial_order(xyz[:, 0], xyz[:, 1])
     x, y, z = (np.ascontiguousarray(xyz[:, i], dtype=np.float64) for i in range(3))
     # the point itself is left out (PDAL asks for k + 1 and drops the first, itself)
     mean_d = np.empty(n)

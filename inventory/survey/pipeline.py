@@ -236,7 +236,8 @@ def _outlier(stage: Stage, pts: np.ndarray, ctx: _Context) -> np.ndarray:
                 ctx.plan = (pts["X"].copy(), pts["Y"].copy(), table)
         bad = statistical_outliers(xyz, _as_int(o["mean_k"], "mean_k"), _as_float(o["multiplier"], "multiplier"),
                                    plan=table.plan.nb if table is not None else None,
-                                   plan_index=table.plan.index if table is not None else None)
+                                   plan_index=table.plan.index if table is not None else None,
+                                   order=table.order if table is not None else None)
     elif method == "radius":
         from scipy.spatial import cKDTree
 
