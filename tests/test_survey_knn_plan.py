@@ -100,3 +100,25 @@ def test_ties_on_a_cell_edge_beyond_the_first_ring(brute_knn):
             far = ref_nb[0, 4:]
             eight = np.flatnonzero(np.isclose(np.hypot(x - 0.5, y - 0.5), np.sqrt(2.5)))
             assert far.tolist() == sorted(eight.tolist())[:k - 4]
+
+
+@settings(max_examples=100, deadline=None)
+@given(_clouds(), st.sampled_from([2, 5, 17]), st.floats(0.0, 0.5), st.floats(0.0, 0.3))
+def test_within_a_subset_from_an_earlier_superset_is_the_direct_answer(cloud, k, drop1, drop2):
+    # the surface stage asks the 17 nearest among the points left after two rounds of
+    # noise; the second answer, built from the first, must be the one asked directly
+    from inventory.survey.ground import _PlanNeighbours
+
+    xyz, rng = cloud
+    x, y = np.ascontiguousarray(xyz[:, 0]), np.ascontiguousarray(xyz[:, 1])
+    first = rng.random(len(x)) >= drop1
+    second = first & (rng.random(len(x)) >= drop2)
+    if first.sum() < 2 or second.sum() < 2:
+        return
+    plan = _PlanNeighbours(x, y)
+    before = plan.within(first, k)
+    direct = plan.within(second, k)
+    np.testing.assert_array_equal(plan.within(second, k, earlier=(first, before)), direct)
+    # an earlier answer of another k, or of a set that is no superset, is not used
+    np.testing.assert_array_equal(plan.within(first | ~second, k, earlier=(second, direct)),
+                                  plan.within(first | ~second, k))

@@ -239,11 +239,17 @@ class _PlanNeighbours:
         if n >= 2:
             self.nb = plan_knn(self.index, x, y, min(self.K, n), dist=False)
 
-    def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None) -> np.ndarray:
+    def within(self, members: np.ndarray, k: int, rows: "np.ndarray | None" = None,
+               earlier: "tuple[np.ndarray, np.ndarray] | None" = None) -> np.ndarray:
         """Numbers (within the subset, int32; -1: fewer members than asked) of each
         member's k nearest members, the member itself among them.
 
         ``rows`` (a mask, members only) limits the answer to those members' rows.
+        ``earlier``: the mask and the answer (all rows, k columns) of an earlier call for
+        a superset of ``members``. A member whose k nearest there are all members has
+        the same k nearest here (a nearer member would have been among them), and only
+        the other rows are asked again: far fewer than the rows beside a point outside
+        ``members``, when the two subsets differ by a few points.
         """
         idx = np.flatnonzero(members)
         sel = idx if rows is None else np.flatnonzero(rows & members)
@@ -256,8 +262,15 @@ class _PlanNeighbours:
             if rows is None:
                 return self.nb[:, :k]
             return np.take(self.nb[:, :k], sel, axis=0)
-        # rows whose k nearest are all members are answered; the others asked again
-        nn, mixed = member_rows(self.nb, sel, members, pos, k)
+        if (earlier is not None and earlier[1].shape[1] == k and len(earlier[0]) == len(members)
+                and not (members & ~earlier[0]).any()):
+            # rows whose k nearest in the superset are all members are answered
+            before = earlier[0]
+            nn, mixed = member_rows(earlier[1], (np.cumsum(before) - 1)[sel], members, pos, k,
+                                    numbers=np.flatnonzero(before))
+        else:
+            # rows whose k nearest are all members are answered; the others asked again
+            nn, mixed = member_rows(self.nb, sel, members, pos, k)
         mixed = np.flatnonzero(mixed)
         if len(mixed):
             q = sel[mixed]
@@ -631,14 +644,15 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     if plan is None:
         plan = _PlanNeighbours(x, y)
     index = plan.index
-    nb = plan.within(use, k2 + 1)[:, 1:]
+    nn = plan.within(use, k2 + 1)
+    nb = nn[:, 1:]
     # the plan test and the first half of the isolation test, point by point
     plan, deep = below_tests(nb, np.arange(len(idx)), xs, ys, zs, t, params.tolerance, params.overhead_gap, k2)
 
     # Deeper points: above-reach neighbours in plan (any height) and almost no points
     # within 1 m in 3D, i.e. no surface at the point's own level.
-    if near3 is not None:   # handed on to _isolated
-        near3.update(idx=idx, nb=nb, x=xs, y=ys, z=zs)
+    if near3 is not None:   # handed on to _isolated, and the whole table to the caller
+        near3.update(idx=idx, nb=nb, x=xs, y=ys, z=zs, use=use, table=nn)
     # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
     # point itself included, is farther than r": one 4-nearest query answers both radii,
     # asked only for the points that pass the plan tests (a few per cent).
@@ -789,7 +803,6 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     # A return with no other return within ISOLATION_M is nobody's surface (range
     # ambiguity ghosts, birds far out); alone it would be its own envelope.
     alone = _isolated(x, y, z, ~ignore & ~low, near or None, plan.index)
-    near.clear()    # its table of neighbours (4 bytes x 16 a point) is not needed again
     out[alone] = HIGH_NOISE
     classification = out.copy()
     ignore = ignore | low | alone
@@ -797,9 +810,13 @@ def _slope_ground(x: np.ndarray, y: np.ndarray, z: np.ndarray, classification: n
     height = np.full(len(z), np.nan)
     if not use.any():
         return out, height
+    # the 17 nearest of the points left, from those of the points before (a superset)
+    knn_use = plan.within(use, 17, earlier=(near["use"], near["table"]) if "table" in near else None)
+    near.clear()    # its table of neighbours (4 bytes x 17 a point) is not needed again
     xu, yu, zu = x[use], y[use], z[use]
     envelope = _EnvelopeGrid(xu, yu, zu, params)   # built once: points and noise query it
-    e_local = _local_envelope(xu, yu, zu, params, knn=(plan.within(use, 17), np.arange(len(zu))))
+    e_local = _local_envelope(xu, yu, zu, params, knn=(knn_use, np.arange(len(zu))))
+    del knn_use
     e = np.minimum(envelope.at(xu, yu), e_local)
     walled, e_walled, in_wall = _behind_walls(xu, yu, zu, zu - e, e_local, envelope, params)
     e[walled] = e_walled

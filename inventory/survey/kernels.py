@@ -1035,20 +1035,44 @@ def _member_rows(a, b, nb, sel, members, pos, k, nn, mixed):
         mixed[i] = m
 
 
-def member_rows(nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.ndarray, k: int
-                ) -> tuple[np.ndarray, np.ndarray]:
+def member_rows(nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.ndarray, k: int,
+                numbers: "np.ndarray | None" = None) -> tuple[np.ndarray, np.ndarray]:
     """Rows ``sel`` of a k-nearest answer ``nb`` (numbered among all points), first ``k``
     columns, neighbours renumbered by ``pos`` (their number among the members), int32; and
-    which rows hold a neighbour that is not a member (its number is then -1)."""
+    which rows hold a neighbour that is not a member (its number is then -1).
+
+    ``numbers``: ``nb`` is numbered among a subset instead, whose points' numbers among all
+    points these are."""
     n = len(sel)
     nn = np.empty((n, k), np.int32)
     mixed = np.empty(n, np.bool_)
 
     def piece(a: int, b: int) -> None:
-        _member_rows(a, b, nb, sel, members, pos, k, nn, mixed)
+        if numbers is None:
+            _member_rows(a, b, nb, sel, members, pos, k, nn, mixed)
+        else:
+            _member_rows_of(a, b, nb, sel, numbers, members, pos, k, nn, mixed)
 
     run_rows(piece, n)
     return nn, mixed
+
+
+@njit(cache=True, nogil=True)
+def _member_rows_of(a, b, nb, sel, numbers, members, pos, k, nn, mixed):
+    # _member_rows of a table numbered among a subset (numbers: their numbers among all)
+    for i in range(a, b):
+        r = sel[i]
+        m = False
+        for j in range(k):
+            q = nb[r, j]
+            if q >= 0:
+                q = numbers[q]
+            if q < 0 or not members[q]:
+                m = True
+                nn[i, j] = -1
+            else:
+                nn[i, j] = pos[q]
+        mixed[i] = m
 
 
 @njit(cache=True, nogil=True)
