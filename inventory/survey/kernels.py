@@ -1021,12 +1021,15 @@ def envelope_at(qx, qy, x0, y0, c, ncol, gf, ax, ay, t):
 
 
 @njit(cache=True, nogil=True)
-def _member_rows(a, b, nb, sel, members, pos, k, nn, mixed):
+def _member_rows(a, b, nb, sel, numbers, members, pos, k, nn, mixed):
+    # numbers None: nb numbered among all points (compiled apart, without the lookup)
     for i in range(a, b):
         r = sel[i]
         m = False
         for j in range(k):
             q = nb[r, j]
+            if numbers is not None and q >= 0:
+                q = numbers[q]
             if q < 0 or not members[q]:
                 m = True
                 nn[i, j] = -1
@@ -1048,31 +1051,10 @@ def member_rows(nb: np.ndarray, sel: np.ndarray, members: np.ndarray, pos: np.nd
     mixed = np.empty(n, np.bool_)
 
     def piece(a: int, b: int) -> None:
-        if numbers is None:
-            _member_rows(a, b, nb, sel, members, pos, k, nn, mixed)
-        else:
-            _member_rows_of(a, b, nb, sel, numbers, members, pos, k, nn, mixed)
+        _member_rows(a, b, nb, sel, numbers, members, pos, k, nn, mixed)
 
     run_rows(piece, n)
     return nn, mixed
-
-
-@njit(cache=True, nogil=True)
-def _member_rows_of(a, b, nb, sel, numbers, members, pos, k, nn, mixed):
-    # _member_rows of a table numbered among a subset (numbers: their numbers among all)
-    for i in range(a, b):
-        r = sel[i]
-        m = False
-        for j in range(k):
-            q = nb[r, j]
-            if q >= 0:
-                q = numbers[q]
-            if q < 0 or not members[q]:
-                m = True
-                nn[i, j] = -1
-            else:
-                nn[i, j] = pos[q]
-        mixed[i] = m
 
 
 @njit(cache=True, nogil=True)
