@@ -653,9 +653,9 @@ def _below_neighbours(x: np.ndarray, y: np.ndarray, z: np.ndarray, use: np.ndarr
     # within 1 m in 3D, i.e. no surface at the point's own level.
     if near3 is not None:   # handed on to _isolated, and the whole table to the caller
         near3.update(idx=idx, nb=nb, x=xs, y=ys, z=zs, use=use, table=nn)
-    # "Fewer than three other points within r in 3D" is "the fourth nearest point, the
-    # point itself included, is farther than r": one 4-nearest query answers both radii,
-    # asked only for the points that pass the plan tests (a few per cent).
+    # "Fewer than three other points within r in 3D" is "fewer than four members within r,
+    # the point itself included": one count answers both radii, asked only for the points
+    # that pass the plan tests (a few per cent).
     cand = np.flatnonzero(plan | deep)
     if len(cand):
         # A point with company within 0.5 m (the foot of a wall, ground under a gallery)
