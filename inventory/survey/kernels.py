@@ -992,15 +992,21 @@ def _grid_envelope_rows(a, b, qx, qy, x0, y0, c, ncol, gf, ax, ay, t, out):
     for i in range(a, b):
         px, py = qx[i], qy[i]
         base = np.int64(math.floor((py - y0) / c)) * ncol + np.int64(math.floor((px - x0) / c))
-        # the point's own cell first (mostly the least); a cell whose seed is no lower
-        # than the least so far cannot give less (t * distance >= 0), and is not measured
+        # the point's own cell first (mostly the least); a cell cannot give less when its
+        # seed plus t times the larger of the two offsets is no less than the least so far
+        # (hypot, within an ulp, is never below that offset, a float itself; rounding keeps
+        # the products and sums in order): it is not measured
         e = math.hypot(px - ax[base], py - ay[base]) * t + gf[base]
         for dr in (-ncol, 0, ncol):
             for dc in (-1, 0, 1):
                 k = base + dr + dc
                 if gf[k] >= e or k == base:
                     continue
-                v = math.hypot(px - ax[k], py - ay[k]) * t + gf[k]
+                dx = px - ax[k]
+                dy = py - ay[k]
+                if max(abs(dx), abs(dy)) * t + gf[k] >= e:
+                    continue
+                v = math.hypot(dx, dy) * t + gf[k]
                 if v < e:
                     e = v
         out[i] = e
