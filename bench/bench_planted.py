@@ -13,7 +13,10 @@ with that module's own builder, then for each pipeline and grid cell runs ``inve
 the handbook volume, the measured grid and TIN volumes and their relative errors, whether the
 95 % interval holds the handbook volume, the flags; and what the classifier did to the pile's
 returns (share classed surface, 2) and the RMS of the surface grid against the analytic surface
-on the pile's base (scanned cells). Numbers only; nothing is asserted.
+on the pile's base (scanned cells; "n/a" where none is left). The bare-earth pipelines
+(``terrain.json``, ``terrain-csf.json``) strip stockpiles as objects, so their volumes miss
+by design: they are printed to show how far they go, not as errors. Numbers only; nothing is
+asserted.
 """
 
 from __future__ import annotations
@@ -95,12 +98,13 @@ def main() -> None:
                     ring = toe.buffer(2 * planted_mod.FOOTPRINT_MARGIN_M).difference(toe)  # the lot around it
                     plane = planted_mod._lot_plane(ring, cx, cy, cz, np.ones(len(cx), bool))
                     model = plane(gx[on], gy[on]) + p.thickness(gx[on], gy[on], x0, y0)
-                    rms = float(np.sqrt(np.mean((surf[on] - model) ** 2)))
+                    # no scanned cell 1 m inside the toe (a terrain pipeline takes the pile out)
+                    rms = float(np.sqrt(np.mean((surf[on] - model) ** 2))) if on.any() else float("nan")
                     held = row.volume_low95_m3 <= truth <= row.volume_high95_m3
                     print(f"  {p.pile_id:<8} V {truth:8.1f} m3  grid {row.volume_m3:8.1f} ({100 * (row.volume_m3 / truth - 1):+6.2f} %)"
                           f"  TIN {row.volume_tin_m3:8.1f} ({100 * (row.volume_tin_m3 / truth - 1):+6.2f} %)"
                           f"  95 % [{row.volume_low95_m3:.1f}, {row.volume_high95_m3:.1f}] {'holds' if held else 'MISSES'}"
-                          f"  ground {100 * ground:5.1f} %  surface RMS {rms:.3f} m  flags {row['flags'] if isinstance(row['flags'], str) else ''}")
+                          f"  ground {100 * ground:5.1f} %  surface RMS {'n/a' if rms != rms else f'{rms:.3f} m'}  flags {row['flags'] if isinstance(row['flags'], str) else ''}")
 
 
 if __name__ == "__main__":
