@@ -804,8 +804,10 @@ def fewer_within(index: "CellIndex", x: np.ndarray, y: np.ndarray, z: np.ndarray
     within ``r_small``, and within ``r_big`` (>= ``r_small``), in 3D, the point itself
     counted when it is a member? The same as the ``need``-th distance of
     :func:`plan_knn3` being beyond each radius (the distances worked out alike), without
-    ordering the neighbours: the members within ``r_big`` in plan are counted, and the count
-    stops once ``need`` lie within ``r_small``. ``z`` holds the heights of all points."""
+    ordering the neighbours: the members within ``r_small`` are counted first, up to
+    ``need`` (enough there answers both), and those within ``r_big`` only when fewer; each
+    count reads the cells of the square of its radius about the point. ``z`` holds the
+    heights of all points."""
     n = len(rows)
     few_small, few_big = np.ones(n, bool), np.ones(n, bool)
     if n == 0 or index.n == 0:
